@@ -1,0 +1,142 @@
+"""Prediction matrices of the incremental MPC formulation, built by recursion.
+
+For ``x(k+1) = A x(k) + B u(k)`` and controlled outputs ``z = C x``, with moves
+``du(k+j)`` for ``j = 0 .. Hu-1`` (zero afterwards), the predictions over the penalized
+steps ``i = Hw .. Hp`` stack as ::
+
+    Z = Fx x(k) + Fu u(k-1) + G dU
+
+with, for step ``i`` (block row ``i - Hw``)::
+
+    Fx_i = C A^i                                   (free response to the state)
+    Fu_i = S_i = C (A^0 + ... + A^(i-1)) B          (free response to the held input)
+    G_ij = S_(i-j) for j < i, 0 otherwise          (block step-response matrix)
+
+``S_i`` is the step response of the plant ``i`` samples after a unit step in the input.
+Everything comes from one recursion ``C A^i = (C A^(i-1)) A``; no matrix power is formed.
+This is the standard condensed formulation of discrete-time MPC in incremental ("velocity")
+form (common practice); each block follows by substituting the state equation into itself.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+__all__ = ["Prediction", "prediction_matrices", "step_response_coefficients"]
+
+
+@dataclass(frozen=True)
+class Prediction:
+    """The stacked prediction ``Z = Fx x + Fu u(k-1) + G dU`` over steps Hw..Hp.
+
+    Attributes
+    ----------
+    free_state : ndarray, shape (Np*p, n)
+        ``Fx``; block row ``i - Hw`` is ``C A^i``.  ``Np = Hp - Hw + 1``.
+    free_input : ndarray, shape (Np*p, m)
+        ``Fu``; block row ``i - Hw`` is the step response ``S_i``.
+    moves : ndarray, shape (Np*p, Hu*m)
+        ``G``, block lower-triangular (block Toeplitz) step-response matrix.
+    step_response : ndarray, shape (Hp+1, p, m)
+        ``S_0 = 0, S_1, ..., S_Hp``.
+    prediction, control, first_penalized : int
+        ``Hp``, ``Hu`` and ``Hw``.
+    """
+
+    free_state: NDArray[np.float64]
+    free_input: NDArray[np.float64]
+    moves: NDArray[np.float64]
+    step_response: NDArray[np.float64]
+    prediction: int
+    control: int
+    first_penalized: int
+
+    @property
+    def penalized_steps(self) -> int:
+        """``Np = Hp - Hw + 1``, the number of penalized prediction steps."""
+        return self.prediction - self.first_penalized + 1
+
+
+def step_response_coefficients(
+    a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64], steps: int
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Return ``C A^i`` for ``i = 0..steps`` and the step responses ``S_0..S_steps``.
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, n)
+    b : ndarray, shape (n, m)
+    c : ndarray, shape (p, n)
+    steps : int
+        Last step ``Hp`` (>= 1).
+
+    Returns
+    -------
+    c_powers : ndarray, shape (steps+1, p, n)
+        ``C A^i``.
+    step : ndarray, shape (steps+1, p, m)
+        ``S_i = sum_{l<i} C A^l B``, ``S_0 = 0``.
+    """
+    n = a.shape[0]
+    p, m = c.shape[0], b.shape[1]
+    c_powers = np.empty((steps + 1, p, n))
+    step = np.zeros((steps + 1, p, m))
+    c_powers[0] = c
+    for i in range(1, steps + 1):
+        step[i] = step[i - 1] + c_powers[i - 1] @ b
+        c_powers[i] = c_powers[i - 1] @ a
+    return c_powers, step
+
+
+def prediction_matrices(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    *,
+    prediction: int,
+    control: int,
+    first_penalized: int = 1,
+) -> Prediction:
+    """Build ``Fx``, ``Fu`` and ``G`` for horizons ``Hp``, ``Hu`` and first penalized step ``Hw``.
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, n)
+        Discrete state matrix.
+    b : ndarray, shape (n, m)
+        Input matrix (manipulated variables only).
+    c : ndarray, shape (p, n)
+        Controlled-output matrix (strictly proper: no feed-through).
+    prediction : int
+        Prediction horizon ``Hp >= 1``.
+    control : int
+        Control horizon ``1 <= Hu <= Hp``.
+    first_penalized : int, optional
+        First penalized step ``1 <= Hw <= Hp`` (default 1).
+
+    Returns
+    -------
+    Prediction
+    """
+    hp, hu, hw = prediction, control, first_penalized
+    assert 1 <= hu <= hp and 1 <= hw <= hp, (hp, hu, hw)
+    p, m = c.shape[0], b.shape[1]
+    c_powers, step = step_response_coefficients(a, b, c, hp)
+    steps = np.arange(hw, hp + 1)
+    free_state = c_powers[hw:].reshape(-1, a.shape[0])
+    free_input = step[hw:].reshape(-1, m)
+    # G_ij = S_(i-j), and S_k = 0 for k <= 0: one gather from the step-response table.
+    lag = np.clip(steps[:, None] - np.arange(hu)[None, :], 0, None)  # (Np, Hu)
+    moves = step[lag].transpose(0, 2, 1, 3).reshape(len(steps) * p, hu * m)
+    return Prediction(
+        free_state=free_state,
+        free_input=free_input,
+        moves=moves,
+        step_response=step,
+        prediction=hp,
+        control=hu,
+        first_penalized=hw,
+    )
