@@ -125,6 +125,7 @@ def design_controller(
         weighted=weighted,
         move_weight=r,
         control=control,
+        outputs=p,
         input_labels=input_labels,
     )
     gain = first_move_gain(pred, hessian, weighted, root)

@@ -166,6 +166,7 @@ def factor_hessian(
     weighted: NDArray[np.float64],
     move_weight: NDArray[np.float64],
     control: int,
+    outputs: int | None = None,
     input_labels: Sequence[str] | None = None,
 ) -> FactoredHessian:
     """Check that ``H`` is positive definite, then factor it by Cholesky.
@@ -178,6 +179,8 @@ def factor_hessian(
     move_weight : ndarray, shape (m, m)
     control : int
         ``Hu``.
+    outputs : int, optional
+        Number of controlled outputs ``p``, to explain a failure with more inputs than outputs.
     input_labels : sequence of str, optional
         Names of the m inputs for the error message (default ``u1 .. um``).
 
@@ -207,13 +210,19 @@ def factor_hessian(
         inputs, rank, count = _unseen_free_moves(weighted, move_weight, control)
         if inputs:
             names = ", ".join(labels[j] for j in inputs)
+            why = (
+                f" With {m} inputs and only {outputs} controlled output(s), some combinations "
+                f"of moves leave every output unchanged."
+                if outputs is not None and m > outputs
+                else ""
+            )
             detail = (
                 f"The Hessian G'QG + R is not positive definite (smallest eigenvalue "
                 f"{eigenvalues[0]:.3g}): the moves of {names} carry no move penalty, and the "
                 f"outputs cannot see all of them (the step-response matrix has rank {rank} over "
-                f"those {count} move directions; zero move weight needs full column rank there). "
-                f"Give these inputs a positive move weight, or remove inputs that act in the "
-                f"same direction."
+                f"those {count} move directions; zero move weight needs full column rank "
+                f"there).{why} Give these inputs a positive move weight, or remove inputs that "
+                f"act in the same direction."
             )
         else:
             detail = (
