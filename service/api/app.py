@@ -1,0 +1,51 @@
+"""The application factory."""
+
+from __future__ import annotations
+
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+
+from fastapi import FastAPI
+
+from service import __version__
+from service.api.deps import get_settings
+from service.api.problems import install_problem_handlers
+from service.api.routes import design, health
+from service.api.settings import Settings
+from service.schemas.design import ADVISORY
+
+__all__ = ["create_app"]
+
+DESCRIPTION = f"""movecast designs and checks predictive controllers (MPC) for process plants:
+post a linear plant model with weights and horizons, get the controller's gains, the Hessian's
+conditioning and the closed-loop poles.
+
+**{ADVISORY}**
+"""
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    """Build the app; ``settings`` defaults to the environment's."""
+    chosen = settings or get_settings()
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        app.state.ready = True
+        try:
+            yield
+        finally:
+            app.state.ready = False
+
+    app = FastAPI(
+        title="movecast",
+        version=__version__,
+        description=DESCRIPTION,
+        lifespan=lifespan,
+    )
+    app.state.settings = chosen
+    app.state.ready = False
+    app.dependency_overrides[get_settings] = lambda: chosen
+    install_problem_handlers(app)
+    app.include_router(design.router)
+    app.include_router(health.router)
+    return app

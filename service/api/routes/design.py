@@ -1,0 +1,45 @@
+"""POST /design: the unconstrained predictive controller and its diagnostics."""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from fastapi import APIRouter, Body
+
+from service.api.deps import CapsDep
+from service.api.problems import PROBLEM_JSON
+from service.schemas.design import DesignRequest, DesignResponse
+from service.schemas.design_convert import run_design
+from service.schemas.examples import load_example
+
+__all__ = ["router"]
+
+router = APIRouter(tags=["design"])
+
+PROBLEMS = {
+    400: {"description": "The body is not valid JSON.", "content": {PROBLEM_JSON: {}}},
+    422: {
+        "description": "A field is invalid, or the design problem cannot be solved; "
+        "`errors` names each field by JSON pointer.",
+        "content": {PROBLEM_JSON: {}},
+    },
+}
+
+
+@router.post("/design", response_model=DesignResponse, responses=PROBLEMS)
+def design(
+    request: Annotated[
+        DesignRequest,
+        Body(
+            openapi_examples={
+                "example_plant": {
+                    "summary": "The bundled example plant (invented numbers)",
+                    "value": load_example("design_request.json"),
+                }
+            }
+        ),
+    ],
+    caps: CapsDep,
+) -> DesignResponse:
+    """Design the predictive controller: gains, Hessian conditioning, closed-loop poles. Design aid only."""
+    return run_design(request, caps)

@@ -1,0 +1,145 @@
+"""The ``movecast`` command line: serve, design, openapi.
+
+    movecast serve [--host H] [--port P] [--workers N]   run the HTTP service (uvicorn)
+    movecast design [FILE | -]                           print a design as JSON, no server
+    movecast openapi [--output FILE]                     print or write the OpenAPI document
+
+``movecast design`` with no FILE designs the bundled example plant.  A request that fails
+its checks prints the same problem details the service would answer, on standard error,
+and exits with status 2.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any
+
+from pydantic import BaseModel, ValidationError
+
+from service.errors import FieldProblem, InvalidRequest, NumericalError
+
+__all__ = ["main"]
+
+EXIT_INVALID = 2
+
+
+def _read_request(source: str | None, example: str) -> Any:
+    if source is None:
+        from service.schemas.examples import load_example
+
+        return load_example(example)
+    text = sys.stdin.read() if source == "-" else Path(source).read_text(encoding="utf-8")
+    return json.loads(text)
+
+
+def _problem(kind: str, detail: str, problems: Sequence[FieldProblem] = ()) -> dict[str, Any]:
+    return {
+        "type": f"urn:movecast:problem:{kind}",
+        "detail": detail,
+        "errors": [{"pointer": p.pointer, "detail": p.detail} for p in problems],
+    }
+
+
+def _run_offline(
+    source: str | None,
+    example: str,
+    parse: Callable[[Any], BaseModel],
+    answer: Callable[[Any], BaseModel],
+) -> int:
+    """Parse, check and answer one request without a server; print JSON."""
+    from service.api.problems import validation_problems
+
+    try:
+        request = parse(_read_request(source, example))
+        response = answer(request)
+    except json.JSONDecodeError as exc:
+        body = _problem("malformed-body", f"The request is not valid JSON: {exc}")
+    except OSError as exc:
+        body = _problem("malformed-body", f"Cannot read the request: {exc.strerror or exc}")
+    except ValidationError as exc:
+        problems = validation_problems(exc.errors())  # type: ignore[arg-type]
+        body = _problem("invalid-request", f"The request has {len(problems)} invalid field(s).", problems)
+    except InvalidRequest as exc:
+        body = _problem("invalid-request", f"The request has {len(exc.problems)} invalid field(s).", exc.problems)
+    except NumericalError as exc:
+        body = _problem("numerical-problem", exc.detail, [FieldProblem(exc.pointer, exc.detail)] if exc.pointer else [])
+    else:
+        print(response.model_dump_json(indent=2))
+        return 0
+    print(json.dumps(body, indent=2), file=sys.stderr)
+    return EXIT_INVALID
+
+
+def _design(args: argparse.Namespace) -> int:
+    from service.api.settings import Settings
+    from service.schemas.design import DesignRequest
+    from service.schemas.design_convert import run_design
+
+    caps = Settings().caps()
+    return _run_offline(
+        args.file, "design_request.json", DesignRequest.model_validate, lambda r: run_design(r, caps)
+    )
+
+
+def _serve(args: argparse.Namespace) -> int:
+    import uvicorn
+
+    from service.api.settings import Settings
+
+    settings = Settings()
+    uvicorn.run(
+        "service.api.app:create_app",
+        factory=True,
+        host=args.host or settings.host,
+        port=args.port or settings.port,
+        workers=args.workers or settings.workers,
+        log_level=settings.log_level,
+    )
+    return 0
+
+
+def _openapi(args: argparse.Namespace) -> int:
+    from service.api.app import create_app
+
+    text = json.dumps(create_app().openapi(), indent=2, sort_keys=True) + "\n"
+    if args.output:
+        Path(args.output).write_text(text, encoding="utf-8")
+    else:
+        sys.stdout.write(text)
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser (public so the tests can inspect it)."""
+    parser = argparse.ArgumentParser(prog="movecast", description=__doc__.splitlines()[0])
+    commands = parser.add_subparsers(dest="command", required=True)
+
+    serve = commands.add_parser("serve", help="run the HTTP service")
+    serve.add_argument("--host", help="address to listen on (default MOVECAST_HOST or 127.0.0.1)")
+    serve.add_argument("--port", type=int, help="TCP port (default MOVECAST_PORT or 8000)")
+    serve.add_argument("--workers", type=int, help="worker processes (default MOVECAST_WORKERS or 1)")
+    serve.set_defaults(run=_serve)
+
+    design = commands.add_parser("design", help="print a design as JSON without a server")
+    design.add_argument("file", nargs="?", help="request JSON file, '-' for standard input; default: the example plant")
+    design.set_defaults(run=_design)
+
+    openapi = commands.add_parser("openapi", help="print or write the OpenAPI document")
+    openapi.add_argument("--output", help="write to this file instead of standard output")
+    openapi.set_defaults(run=_openapi)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``movecast`` console script."""
+    args = build_parser().parse_args(argv)
+    result: int = args.run(args)
+    return result
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,40 @@
+"""Shared fixtures: random plants with a fixed seed, the example request, a test client."""
+
+from __future__ import annotations
+
+import copy
+from collections.abc import Iterator
+from typing import Any
+
+import numpy as np
+import pytest
+from fastapi.testclient import TestClient
+
+from service.api import Settings, create_app
+from service.schemas.examples import load_example
+
+
+def random_plant(
+    rng: np.random.Generator, n: int, m: int, p: int, radius: float = 0.95
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """A random stable discrete plant (A scaled to spectral radius ``radius``), B, C."""
+    a = rng.normal(size=(n, n))
+    a *= radius / max(abs(np.linalg.eigvals(a)))
+    return a, rng.normal(size=(n, m)), rng.normal(size=(p, n))
+
+
+@pytest.fixture
+def rng() -> np.random.Generator:
+    return np.random.default_rng(20261201)
+
+
+@pytest.fixture
+def example() -> dict[str, Any]:
+    """A fresh copy of the bundled example /design request."""
+    return copy.deepcopy(load_example("design_request.json"))
+
+
+@pytest.fixture
+def client() -> Iterator[TestClient]:
+    with TestClient(create_app(Settings())) as c:
+        yield c

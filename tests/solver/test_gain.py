@@ -1,0 +1,132 @@
+"""The first-move gain against references outside the project."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.linalg
+
+from service.errors import HessianNotPositiveDefinite
+from service.solver.design import design_controller
+from service.solver.gain import optimal_moves
+from tests.conftest import random_plant
+
+
+def incremental_lqr_gain(a, b, c, q, r):
+    """Infinite-horizon LQR gain of the incremental system on xi = [x; u(k-1)].
+
+    xi(k+1) = [[A, B], [0, I]] xi(k) + [B; I] du(k), stage cost |C x|^2_Q + |du|^2_R.
+    Reference: scipy.linalg.solve_discrete_are (the discrete algebraic Riccati equation).
+    """
+    n, m = b.shape
+    ai = np.block([[a, b], [np.zeros((m, n)), np.eye(m)]])
+    bi = np.vstack([b, np.eye(m)])
+    ci = np.hstack([c, np.zeros((c.shape[0], m))])
+    p = scipy.linalg.solve_discrete_are(ai, bi, ci.T @ q @ ci, r)
+    return np.linalg.solve(r + bi.T @ p @ bi, bi.T @ p @ ai)
+
+
+def test_long_horizon_gain_equals_infinite_horizon_lqr(rng):
+    # Standard result: as Hp = Hu grows the receding-horizon gain tends to the LQR gain
+    # (scipy.linalg.solve_discrete_are is the reference).
+    n, m, p = 4, 2, 2
+    a, b, c = random_plant(rng, n, m, p, radius=0.9)
+    q, r = np.diag([1.0, 2.0]), np.diag([0.1, 0.3])
+    d = design_controller(a, b, c, output_weight=[1.0, 2.0], move_weight=[0.1, 0.3], prediction=150, control=150)
+    lqr = incremental_lqr_gain(a, b, c, q, r)
+    np.testing.assert_allclose(np.hstack([d.gain.state, d.gain.previous_input]), lqr, atol=1e-9)
+
+
+def test_long_horizon_gain_with_full_weights(rng):
+    # Same reference with full (non-diagonal) symmetric positive-definite weights.
+    a, b, c = random_plant(rng, 3, 2, 2, radius=0.85)
+    q = np.array([[2.0, 0.5], [0.5, 1.0]])
+    r = np.array([[0.2, 0.05], [0.05, 0.1]])
+    d = design_controller(a, b, c, output_weight=q, move_weight=r, prediction=120, control=120)
+    np.testing.assert_allclose(
+        np.hstack([d.gain.state, d.gain.previous_input]), incremental_lqr_gain(a, b, c, q, r), atol=1e-9
+    )
+
+
+@pytest.mark.parametrize(("a", "b", "c", "q", "r"), [(0.5, 1.0, 1.0, 1.0, 1.0), (0.9, 0.3, 2.0, 3.0, 0.5), (1.2, -0.7, 1.5, 1.0, 0.01)])
+def test_scalar_one_step_gain_in_closed_form(a, b, c, q, r):
+    # Derived by hand: with Hp = Hu = 1, z(k+1) = c a x + c b u(k-1) + c b du, so
+    # V = q (c a x + c b u(k-1) + c b du - r0)^2 + r du^2 and dV/d(du) = 0 gives
+    # du = kh (r0 - c a x - c b u(k-1)) with kh = q c b / (q c^2 b^2 + r).
+    kh = q * c * b / (q * c**2 * b**2 + r)
+    d = design_controller([[a]], [[b]], [[c]], output_weight=[q], move_weight=[r], prediction=1, control=1)
+    assert d.gain.horizon[0, 0] == pytest.approx(kh, rel=1e-13)
+    assert d.gain.state[0, 0] == pytest.approx(kh * c * a, rel=1e-13)
+    assert d.gain.previous_input[0, 0] == pytest.approx(kh * c * b, rel=1e-13)
+    assert d.gain.setpoint[0, 0] == pytest.approx(kh, rel=1e-13)
+    assert d.hessian.matrix[0, 0] == pytest.approx(q * c**2 * b**2 + r, rel=1e-13)
+
+
+def test_horizon_gain_is_first_rows_of_the_full_solution(rng):
+    # Receding horizon (common practice): only the first move of H^-1 G'Q E is applied.
+    # Reference: the dense formula with numpy.linalg.inv and kron weights, as written.
+    n, m, p, hp, hu = 4, 2, 3, 12, 4
+    a, b, c = random_plant(rng, n, m, p)
+    qd, rd = rng.uniform(0.5, 2.0, p), rng.uniform(0.1, 1.0, m)
+    d = design_controller(a, b, c, output_weight=qd, move_weight=rd, prediction=hp, control=hu)
+    g = d.prediction.moves
+    qbar, rbar = np.kron(np.eye(hp), np.diag(qd)), np.kron(np.eye(hu), np.diag(rd))
+    full = np.linalg.inv(g.T @ qbar @ g + rbar) @ g.T @ qbar
+    np.testing.assert_allclose(d.gain.horizon, full[:m], atol=1e-12)
+    np.testing.assert_allclose(d.gain.state, full[:m] @ d.prediction.free_state, atol=1e-12)
+    np.testing.assert_allclose(d.gain.setpoint, full[:m] @ np.tile(np.eye(p), (hp, 1)), atol=1e-12)
+    e = rng.normal(size=hp * p)
+    np.testing.assert_allclose(optimal_moves(d.hessian, d.weighted, d.output_root, e), full @ e, atol=1e-12)
+
+
+def test_optimal_moves_solve_the_least_squares_problem(rng):
+    # Reference: numpy.linalg.lstsq on the stacked problem min |[Wbar G; Rbar^1/2] dU - [Wbar E; 0]|.
+    n, m, p, hp, hu = 5, 3, 2, 10, 3
+    a, b, c = random_plant(rng, n, m, p)
+    q = np.array([[1.0, 0.3], [0.3, 0.5]])
+    d = design_controller(a, b, c, output_weight=q, move_weight=[0.2, 0.1, 0.4], prediction=hp, control=hu)
+    e = rng.normal(size=hp * p)
+    wq = scipy.linalg.sqrtm(q).real
+    stacked = np.vstack([np.kron(np.eye(hp), wq) @ d.prediction.moves, np.sqrt(np.kron(np.eye(hu), np.diag([0.2, 0.1, 0.4])))])
+    rhs = np.concatenate([np.kron(np.eye(hp), wq) @ e, np.zeros(hu * m)])
+    reference = np.linalg.lstsq(stacked, rhs, rcond=None)[0]
+    np.testing.assert_allclose(optimal_moves(d.hessian, d.weighted, d.output_root, e), reference, atol=1e-10)
+
+
+def test_positive_move_weights_always_give_a_positive_definite_hessian(rng):
+    # Fact of the trade: G'QG is PSD, so R > 0 makes H PD whatever the plant (common practice).
+    for _ in range(20):
+        n, m, p = rng.integers(1, 6, size=3)
+        a, b, c = random_plant(rng, n, m, p, radius=rng.uniform(0.1, 1.5))
+        b[:, 0] = 0.0  # even an input that acts on nothing
+        d = design_controller(a, b, c, output_weight=rng.uniform(0, 1, p), move_weight=rng.uniform(1e-3, 1, m), prediction=8, control=3)
+        assert d.hessian.smallest_eigenvalue > 0
+        np.testing.assert_allclose(scipy.linalg.eigvalsh(d.hessian.matrix), d.hessian.eigenvalues, rtol=1e-10)
+        assert d.hessian.condition_number == pytest.approx(np.linalg.cond(d.hessian.matrix, 2), rel=1e-8)
+
+
+def test_zero_move_weight_with_more_inputs_than_outputs_is_rejected(rng):
+    # Fact of the trade: with m > p and R = 0, G cannot have full column rank, so H is singular.
+    a, b, c = random_plant(rng, 3, 3, 2)
+    with pytest.raises(HessianNotPositiveDefinite) as caught:
+        design_controller(a, b, c, output_weight=[1.0, 1.0], move_weight=[0.0, 0.0, 0.0], prediction=10, control=2)
+    message = str(caught.value)
+    assert "u1, u2, u3" in message and "no move penalty" in message
+    assert "cannot see" in message and "full column rank" in message
+    assert "3 inputs and only 2 controlled output" in message
+    assert caught.value.pointer == "/weights/move"
+
+
+def test_zero_move_weight_on_one_blind_input_names_that_input(rng):
+    a, b, c = random_plant(rng, 3, 2, 2)
+    b[:, 1] = 0.0  # the second input acts on nothing
+    with pytest.raises(HessianNotPositiveDefinite) as caught:
+        design_controller(a, b, c, output_weight=[1.0, 1.0], move_weight=[0.1, 0.0], prediction=6, control=2, input_labels=["steam", "outlet"])
+    assert "the moves of outlet carry no move penalty" in str(caught.value)
+
+
+def test_zero_move_weight_with_full_rank_moves_is_accepted(rng):
+    # With m <= p and G of full column rank, R = 0 is well-posed (H = G'QG is PD).
+    a, b, c = random_plant(rng, 4, 2, 2)
+    d = design_controller(a, b, c, output_weight=[1.0, 1.0], move_weight=[0.0, 0.0], prediction=10, control=3)
+    assert d.hessian.smallest_eigenvalue > 0
