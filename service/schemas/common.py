@@ -76,6 +76,7 @@ def check_matrix(
     *,
     rows: int | None = None,
     cols: int | None = None,
+    square: bool = False,
     what: str = "matrix",
 ) -> tuple[NDArray[np.float64] | None, list[FieldProblem]]:
     """Check a list of rows is a non-empty rectangular matrix of the expected size.
@@ -87,6 +88,9 @@ def check_matrix(
         Pointer parts of the field, e.g. ``("model", "a")``.
     rows, cols : int, optional
         Expected size; ``None`` accepts any.
+    square : bool
+        The matrix should be square: a row whose length differs from the row count is the
+        one reported when rows disagree.
     what : str
         How to call the matrix in messages.
 
@@ -98,15 +102,21 @@ def check_matrix(
     problems: list[FieldProblem] = []
     if len(value) == 0:
         return None, [FieldProblem(pointer(*where), f"{what} must have at least one row")]
-    width = len(value[0])
+    lengths = [len(row) for row in value]
+    if cols is not None and cols in lengths:
+        width = cols
+    elif square and len(value) in lengths:
+        width = len(value)
+    else:
+        width = max(set(lengths), key=lambda w: (lengths.count(w), -lengths.index(w)))
     if width == 0:
         return None, [FieldProblem(pointer(*where, 0), f"{what} rows must not be empty")]
-    for i, row in enumerate(value):
-        if len(row) != width:
+    for i, length in enumerate(lengths):
+        if length != width:
             problems.append(
                 FieldProblem(
                     pointer(*where, i),
-                    f"{what} is not rectangular: row {i} has {len(row)} entries, row 0 has {width}",
+                    f"{what} is not rectangular: row {i} has {length} entries, the others {width}",
                 )
             )
     if problems:

@@ -79,7 +79,7 @@ def plant_arrays(
     -------
     DiscretePlant or None, list of FieldProblem
     """
-    a, problems = check_matrix(model.a, (*where, "a"), what="A")
+    a, problems = check_matrix(model.a, (*where, "a"), square=True, what="A")
     if a is None:
         return None, problems
     n = a.shape[0]

@@ -1,0 +1,122 @@
+"""Schema-level checks of the /design request: each bad input names its field."""
+
+from __future__ import annotations
+
+import copy
+
+import pytest
+from pydantic import ValidationError
+
+from service.errors import InvalidRequest
+from service.schemas.common import Caps
+from service.schemas.design import DesignRequest
+from service.schemas.design_convert import check_design_request
+from service.schemas.fingerprint import fingerprint
+
+
+def problems_of(body, caps=Caps()):
+    """The (pointer, detail) pairs the checks report for a request body."""
+    with pytest.raises(InvalidRequest) as caught:
+        check_design_request(DesignRequest.model_validate(body), caps)
+    return [(p.pointer, p.detail) for p in caught.value.problems]
+
+
+def test_the_example_passes_every_check(example):
+    inputs = check_design_request(DesignRequest.model_validate(example), Caps())
+    assert inputs.plant.states == 4 and inputs.plant.inputs == 2 and inputs.plant.outputs == 2
+    assert inputs.first_penalized == 1
+
+
+def test_first_penalized_defaults_to_one(example):
+    del example["horizons"]["first_penalized"]
+    assert DesignRequest.model_validate(example).horizons.first_penalized == 1
+
+
+@pytest.mark.parametrize(
+    ("edit", "where"),
+    [
+        (lambda b: b["model"]["a"][0].append(1.0), "/model/a/0"),
+        (lambda b: b["model"].__setitem__("a", [[0.5, 0.1]]), "/model/a"),
+        (lambda b: b["model"].__setitem__("a", []), "/model/a"),
+        (lambda b: b["model"]["b"].pop(), "/model/b"),
+        (lambda b: b["model"]["c"][1].pop(), "/model/c/1"),
+        (lambda b: b["model"]["c"].__setitem__(0, [1.0, 0.0, 0.0]), "/model/c/0"),
+        (lambda b: b["horizons"].__setitem__("control", 31), "/horizons/control"),
+        (lambda b: b["horizons"].__setitem__("first_penalized", 31), "/horizons/first_penalized"),
+        (lambda b: b["weights"].__setitem__("output", [1.0]), "/weights/output"),
+        (lambda b: b["weights"].__setitem__("output", [1.0, -2.0]), "/weights/output/1"),
+        (lambda b: b["weights"].__setitem__("output", [0.0, 0.0]), "/weights/output"),
+        (lambda b: b["weights"].__setitem__("move", [0.1, 0.1, 0.1]), "/weights/move"),
+        (lambda b: b["weights"].__setitem__("move", [[1.0, 2.0], [0.0, 1.0]]), "/weights/move"),
+        (lambda b: b["weights"].__setitem__("move", [[1.0, 2.0], [2.0, 1.0]]), "/weights/move"),
+        (lambda b: b["weights"].__setitem__("move", [[1.0, 0.0]]), "/weights/move"),
+        (lambda b: b["weights"].__setitem__("move", []), "/weights/move"),
+    ],
+)
+def test_sizes_signs_and_shapes_are_checked(example, edit, where):
+    edit(example)
+    pointers = [p for p, _ in problems_of(example)]
+    assert where in pointers
+
+
+def test_messages_say_what_is_wrong(example):
+    example["weights"]["move"] = [[1.0, 2.0], [2.0, 1.0]]
+    [(where, detail)] = problems_of(example)
+    assert "positive semidefinite" in detail
+    example["weights"]["move"] = [0.1, 0.1]
+    example["horizons"]["control"] = 40
+    [(where, detail)] = problems_of(example)
+    assert where == "/horizons/control" and "must not exceed the prediction horizon (30)" in detail
+
+
+@pytest.mark.parametrize(
+    ("caps", "where"),
+    [
+        (Caps(max_states=3), "/model/a"),
+        (Caps(max_signals=1), "/model/b"),
+        (Caps(max_prediction_horizon=20), "/horizons/prediction"),
+        (Caps(max_hessian_size=9), "/horizons/control"),
+        (Caps(max_prediction_entries=500), "/horizons/prediction"),
+        (Caps(max_response_entries=100), "/horizons/prediction"),
+    ],
+)
+def test_size_caps_come_from_the_caps(example, caps, where):
+    assert where in [p for p, _ in problems_of(example, caps)]
+
+
+@pytest.mark.parametrize(
+    ("edit", "where"),
+    [
+        (lambda b: b["weights"].__setitem__("mov", [1.0]), ("weights", "mov")),
+        (lambda b: b.__setitem__("horizon", {}), ("horizon",)),
+        (lambda b: b["model"].__setitem__("kind", "transfer"), ("model",)),
+        (lambda b: b["model"].__setitem__("sample_time", 0.0), ("model", "sample_time")),
+        (lambda b: b["model"].__setitem__("sample_time", -1.0), ("model", "sample_time")),
+        (lambda b: b["model"]["a"][1].__setitem__(2, "0.3"), ("model", "a", 1, 2)),
+        (lambda b: b["model"]["a"][1].__setitem__(2, True), ("model", "a", 1, 2)),
+        (lambda b: b["model"]["a"][1].__setitem__(2, float("nan")), ("model", "a", 1, 2)),
+        (lambda b: b["model"]["b"][0].__setitem__(0, float("inf")), ("model", "b", 0, 0)),
+        (lambda b: b["horizons"].__setitem__("prediction", 0), ("horizons", "prediction")),
+        (lambda b: b["horizons"].__setitem__("control", 2.5), ("horizons", "control")),
+        (lambda b: b["horizons"].__setitem__("control", "5"), ("horizons", "control")),
+        (lambda b: b["horizons"].pop("prediction"), ("horizons", "prediction")),
+    ],
+)
+def test_field_types_are_strict(example, edit, where):
+    edit(example)
+    with pytest.raises(ValidationError) as caught:
+        DesignRequest.model_validate(example)
+    assert any(tuple(e["loc"])[: len(where)] == where for e in caught.value.errors())
+
+
+def test_fingerprint_is_canonical_and_sensitive(example):
+    base = fingerprint(DesignRequest.model_validate(example))
+    same = copy.deepcopy(example)
+    del same["horizons"]["first_penalized"]  # the default, written or not
+    same["model"]["a"][0][0] = 0.92  # the same number
+    reordered = {k: same[k] for k in reversed(list(same))}
+    assert fingerprint(DesignRequest.model_validate(reordered)) == base
+    changed = copy.deepcopy(example)
+    changed["model"]["a"][0][0] = 0.9200000000000001
+    assert fingerprint(DesignRequest.model_validate(changed)) != base
+    assert base.startswith("sha256:") and len(base) == len("sha256:") + 64
