@@ -1,0 +1,173 @@
+"""Steady-state gain, relative gain array, condition number and poles of a plant."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from service.solver.plant import (
+    gain_condition_number,
+    open_loop_poles,
+    plant_properties,
+    plant_warnings,
+    relative_gain_array,
+    steady_state_gain,
+)
+from service.solver.sampling import sample_zero_order_hold
+from service.solver.transfer import TransferElement, transfer_matrix_model
+
+E = TransferElement
+
+# Wood and Berry distillation column (Wood & Berry 1973, Chem. Eng. Sci. 28:1707), minutes.
+WOOD_BERRY_GAIN = np.array([[12.8, -18.9], [6.6, -19.4]])
+WOOD_BERRY = [
+    [E(12.8, (16.7,), 1.0), E(-18.9, (21.0,), 3.0)],
+    [E(6.6, (10.9,), 7.0), E(-19.4, (14.4,), 3.0)],
+]
+
+
+@pytest.mark.parametrize("ts", [1.0, 0.7])
+def test_wood_berry_keeps_its_published_gains_and_rga(ts: float) -> None:
+    model = transfer_matrix_model(WOOD_BERRY, sample_time=ts)
+    props = plant_properties(model.a, model.b, model.c, model.d)
+    # zero-order hold keeps the steady-state gain of each element (final value theorem)
+    np.testing.assert_allclose(props.steady_state.gain, WOOD_BERRY_GAIN, rtol=1e-11)
+    assert props.steady_state.finite and not props.steady_state.integrating.any()
+    # Bristol 1966, 2 x 2: lambda_11 = 1 / (1 - g12 g21 / (g11 g22)), rows and columns sum to 1
+    g = WOOD_BERRY_GAIN
+    lam = 1.0 / (1.0 - g[0, 1] * g[1, 0] / (g[0, 0] * g[1, 1]))
+    np.testing.assert_allclose(props.relative_gain, [[lam, 1 - lam], [1 - lam, lam]], rtol=1e-10)
+    assert lam == pytest.approx(2.01, abs=0.005)  # value recalled from memory for this column
+    # poles: e^(-Ts/tau) of the four lags, and zero for every dead-time register state
+    lags = sorted(math.exp(-ts / tau) for tau in (16.7, 21.0, 10.9, 14.4))
+    assert sorted(props.poles[:4].real) == pytest.approx(lags, rel=1e-12)
+    np.testing.assert_array_equal(props.poles[4:], 0.0)
+    assert props.condition_number == pytest.approx(gain_condition_number(WOOD_BERRY_GAIN), rel=1e-9)
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_rga_rows_and_columns_sum_to_one_and_ignore_scaling(seed: int) -> None:
+    # Properties of the RGA (Bristol 1966): each row and column sums to one, and
+    # Lambda(S1 G S2) = Lambda(G) for diagonal scalings S1, S2.
+    rng = np.random.default_rng(seed)
+    size = 2 + seed % 3
+    g = rng.normal(size=(size, size))
+    rga = relative_gain_array(g)
+    np.testing.assert_allclose(rga.sum(axis=0), 1.0, atol=1e-10)
+    np.testing.assert_allclose(rga.sum(axis=1), 1.0, atol=1e-10)
+    s1, s2 = np.diag(rng.uniform(0.1, 10, size)), np.diag(rng.uniform(0.1, 10, size))
+    np.testing.assert_allclose(relative_gain_array(s1 @ g @ s2), rga, rtol=1e-9, atol=1e-9)
+    # and it is the elementwise product with the transposed inverse (definition)
+    np.testing.assert_allclose(rga, g * np.linalg.inv(g).T, rtol=1e-10, atol=1e-12)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_steady_state_gain_of_a_stable_model_is_the_final_value(seed: int) -> None:
+    # Final value theorem: a held unit input settles at C (I - A)^-1 B + D; checked by
+    # running the model to steady state (a direct simulation).
+    rng = np.random.default_rng(seed)
+    n, m, p = 4, 2, 3
+    a = rng.normal(size=(n, n))
+    a *= 0.8 / np.abs(np.linalg.eigvals(a)).max()
+    b, c, d = rng.normal(size=(n, m)), rng.normal(size=(p, n)), rng.normal(size=(p, m))
+    x = np.zeros((n, m))
+    for _ in range(400):
+        x = a @ x + b
+    np.testing.assert_allclose(steady_state_gain(a, b, c, d).gain, c @ x + d, rtol=1e-10, atol=1e-12)
+
+
+def test_integrating_pair_is_marked_with_its_ramp_rate_and_the_others_keep_their_gains() -> None:
+    # A level (integrating element K/s: dy/dt = K u, so y rises K Ts per sample of a unit
+    # input under zero-order hold) beside settling elements with known gains.
+    ts = 0.5
+    grid = [
+        [E(2.0, (3.0,), 1.2), E(0.4, (), 0.7, integrating=True)],
+        [E(-1.0, (2.0, 5.0), 0.0), None],
+    ]
+    model = transfer_matrix_model(grid, sample_time=ts)
+    steady = steady_state_gain(model.a, model.b, model.c, model.d)
+    np.testing.assert_array_equal(steady.integration_order, [[0, 1], [0, 0]])
+    assert steady.gain[0, 0] == pytest.approx(2.0, rel=1e-12)
+    assert steady.gain[1, 0] == pytest.approx(-1.0, rel=1e-12)
+    assert steady.gain[1, 1] == 0.0
+    assert math.isnan(steady.gain[0, 1])
+    assert steady.ramp_rate[0, 1] == pytest.approx(0.4 * ts, rel=1e-12)
+    np.testing.assert_array_equal(steady.ramp_rate[[0, 1, 1], [0, 0, 1]], 0.0)
+    props = plant_properties(model.a, model.b, model.c, model.d)
+    assert props.relative_gain is None and props.condition_number is None
+    assert plant_warnings(props) == []
+
+
+def test_integrating_element_with_a_lag_ramps_at_its_gain() -> None:
+    # K/(s (tau s + 1)) ramps at K per time unit once the lag has settled (final value
+    # theorem on s G(s)).
+    ts = 2.0
+    model = transfer_matrix_model([[E(0.3, (4.0,), 1.0, integrating=True)]], sample_time=ts)
+    steady = steady_state_gain(model.a, model.b, model.c)
+    assert steady.integration_order[0, 0] == 1
+    assert steady.ramp_rate[0, 0] == pytest.approx(0.3 * ts, rel=1e-11)
+
+
+def test_double_integrator_in_disguise_integrates_twice() -> None:
+    # d2y/dt2 = u sampled (elementary calculus: a parabola), then hidden by a random change
+    # of state coordinates, which changes no transfer function.
+    ts = 0.4
+    s = sample_zero_order_hold([[0.0, 1.0], [0.0, 0.0]], [[0.0], [1.0]], sample_time=ts)
+    rng = np.random.default_rng(3)
+    basis = rng.normal(size=(3, 3))
+    a = np.zeros((3, 3))
+    a[:2, :2], a[2, 2] = s.a, 0.5
+    b = np.vstack([s.b, [[1.0]]])
+    c = np.array([[1.0, 0.0, 0.0], [0.0, 0.0, 2.0]])
+    a_t, b_t, c_t = basis @ a @ np.linalg.inv(basis), basis @ b, c @ np.linalg.inv(basis)
+    steady = steady_state_gain(a_t, b_t, c_t)
+    np.testing.assert_array_equal(steady.integration_order, [[2], [0]])
+    assert math.isnan(steady.ramp_rate[0, 0]) and math.isnan(steady.gain[0, 0])
+    # the settling output: 2 / (1 - 0.5) = 4 (geometric series)
+    assert steady.gain[1, 0] == pytest.approx(4.0, rel=1e-10)
+
+
+def test_integrator_that_no_output_sees_does_not_integrate() -> None:
+    # An unobservable integrating mode has no effect on any transfer function.
+    a = np.diag([1.0, 0.5])
+    b = np.array([[1.0], [1.0]])
+    c = np.array([[0.0, 1.0]])
+    steady = steady_state_gain(a, b, c)
+    assert steady.integration_order[0, 0] == 0
+    assert steady.gain[0, 0] == pytest.approx(2.0, rel=1e-14)
+
+
+def test_condition_number_and_near_singular_warning() -> None:
+    # 2-norm condition number of diag(10, 0.001) is 10 / 0.001 = 1e4 (definition).
+    a = np.diag([0.5, 0.5])
+    b = np.diag([5.0, 0.0005])
+    props = plant_properties(a, b, np.eye(2))
+    assert props.condition_number == pytest.approx(1e4, rel=1e-12)
+    (warning,) = plant_warnings(props)
+    assert warning.code == "near_singular_gain"
+    assert plant_warnings(props, near_singular=1e5) == []
+    # a rank-one gain: singular up to rounding
+    assert gain_condition_number([[1.0, 2.0], [2.0, 4.0]]) > 1e15
+    assert gain_condition_number([[1.0, 0.0], [0.0, 0.0]]) == math.inf
+    singular = plant_properties(a, np.array([[1.0, 2.0], [2.0, 4.0]]), np.eye(2))
+    assert singular.relative_gain is None
+
+
+def test_non_square_plant_has_no_rga_but_a_condition_number() -> None:
+    props = plant_properties(np.diag([0.5, 0.2]), np.eye(2), np.array([[1.0, 0.0], [0.0, 1.0], [1.0, 1.0]]))
+    assert props.relative_gain is None
+    assert props.condition_number is not None and math.isfinite(props.condition_number)
+
+
+def test_poles_are_the_eigenvalues_by_descending_modulus() -> None:
+    a = np.array([[0.2, 0.0, 0.0], [0.0, 0.0, -0.9], [0.0, 0.9, 0.0]])
+    poles = open_loop_poles(a)
+    np.testing.assert_allclose(np.abs(poles), [0.9, 0.9, 0.2])
+    np.testing.assert_allclose(sorted(poles.imag), [-0.9, 0.0, 0.9], atol=1e-15)
+
+
+def test_model_without_states_is_its_feed_through() -> None:
+    steady = steady_state_gain(np.zeros((0, 0)), np.zeros((0, 2)), np.zeros((1, 0)), [[3.0, -1.0]])
+    np.testing.assert_array_equal(steady.gain, [[3.0, -1.0]])
