@@ -259,13 +259,19 @@ def _rank(matrix: NDArray[np.float64]) -> tuple[int, NDArray[np.float64]]:
 
 
 def _format_vector(v: NDArray[np.float64], labels: Sequence[str]) -> str:
-    """``"on y2"`` for one signal, ``"0.5 u1 - u2"`` for a combination (largest entry 1)."""
+    """``"on y2"`` for one signal, ``"along 0.5 u1 - u2"`` for a combination (largest entry 1)."""
     v = v / v[np.argmax(np.abs(v))]
     used = [(float(x), name) for x, name in zip(v, labels) if abs(x) > 1e-9]
+    if used[0][0] < 0:  # a direction's sign is arbitrary: lead with a plus
+        used = [(-x, name) for x, name in used]
     if len(used) == 1:
         return f"on {used[0][1]}"
-    parts = [name if abs(x - 1.0) < 1e-12 else f"{x:.3g} {name}" for x, name in used]
-    return "along " + " + ".join(parts).replace("+ -", "- ")
+    text = ""
+    for i, (x, name) in enumerate(used):
+        sign = "-" if x < 0 else "+"
+        size = "" if abs(abs(x) - 1.0) < 1e-9 else f"{abs(x):.3g} "
+        text += ("" if i == 0 else f" {sign} ") + size + name
+    return "along " + text
 
 
 def _format_complex(z: complex) -> str:
