@@ -2,10 +2,14 @@
 
 ``design_controller`` strings the solver together: prediction matrices, weighted Hessian,
 positive-definiteness check and Cholesky factor, first-move gains, closed loop and warnings.
+Two options change the problem, both off by default: a Riccati terminal weight on the last
+predicted ``[x; u]`` (:mod:`service.solver.terminal`) and move blocking
+(:mod:`service.solver.blocking`).
 """
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -13,6 +17,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.analysis import ClosedLoop, Diagnostic, closed_loop, design_warnings
+from service.solver.blocking import blocked_prediction, check_blocking, select_moves
 from service.solver.gain import (
     FactoredHessian,
     PredictiveGain,
@@ -22,6 +27,13 @@ from service.solver.gain import (
     weighted_moves,
 )
 from service.solver.prediction import Prediction, prediction_matrices
+from service.solver.terminal import (
+    TerminalKind,
+    TerminalWeight,
+    terminal_first_move_gain,
+    terminal_weight,
+    with_terminal_gain,
+)
 from service.solver.weights import weight_matrix, weight_root
 
 __all__ = ["ControllerDesign", "design_controller"]
@@ -34,7 +46,7 @@ class ControllerDesign:
     Attributes
     ----------
     prediction : Prediction
-        ``Fx``, ``Fu``, ``G``.
+        ``Fx``, ``Fu``, ``G``.  With blocking, ``G M`` (the free moves' columns only).
     output_weight : ndarray, shape (p, p)
         ``Q`` per penalized step.
     move_weight : ndarray, shape (m, m)
@@ -42,11 +54,21 @@ class ControllerDesign:
     output_root : ndarray, shape (p, p)
         ``W`` with ``W' W = Q``.
     weighted : ndarray, shape (Np*p, Hu*m)
-        ``Wbar G``.
+        ``Wbar G`` (``nb*m`` columns with blocking; the last step's rows zero with the
+        terminal weight, whose own rows ``W_P Gamma`` are in ``terminal.weighted_moves``).
     hessian : FactoredHessian
+        Includes the terminal term ``Gamma' P Gamma`` when there is one.
     gain : PredictiveGain
+        With the terminal weight ``Kx``, ``Ku`` and ``Kr`` include the terminal term and
+        ``Kh`` is its stage part: ``du = Kh E + Kt (xi_s - Phi xi)``.
     loop : ClosedLoop
     warnings : list of Diagnostic
+    terminal : TerminalWeight or None
+        The Riccati terminal weight, when asked for.
+    terminal_gain : ndarray, shape (m, n+m), or None
+        ``Kt`` of the terminal weight.
+    blocking : tuple of int or None
+        The free move steps, when the moves are blocked.
     """
 
     prediction: Prediction
@@ -58,6 +80,9 @@ class ControllerDesign:
     gain: PredictiveGain
     loop: ClosedLoop
     warnings: list[Diagnostic]
+    terminal: TerminalWeight | None = None
+    terminal_gain: NDArray[np.float64] | None = None
+    blocking: tuple[int, ...] | None = None
 
 
 def design_controller(
@@ -71,6 +96,8 @@ def design_controller(
     control: int,
     first_penalized: int = 1,
     input_labels: Sequence[str] | None = None,
+    terminal: TerminalKind = "none",
+    blocking: Sequence[int] | None = None,
 ) -> ControllerDesign:
     """Design the unconstrained predictive controller of the design notes.
 
@@ -90,6 +117,14 @@ def design_controller(
         ``Hp``, ``Hu`` and ``Hw`` with ``1 <= Hu <= Hp`` and ``1 <= Hw <= Hp``.
     input_labels : sequence of str, optional
         Input names used in error messages.
+    terminal : {"none", "riccati"}, optional
+        ``"riccati"`` puts the stabilizing Riccati solution of the incremental system on the
+        last predicted ``[x; u]`` in place of the last step's output weight
+        (:mod:`service.solver.terminal`).  Default ``"none"``.
+    blocking : sequence of int, optional
+        Steps (0-based, first 0, increasing, below ``Hu``) at which moves are allowed; the
+        moves in between are zero, so the input is held (:mod:`service.solver.blocking`).
+        Default: every step free.
 
     Returns
     -------
@@ -99,6 +134,8 @@ def design_controller(
     ------
     service.errors.HessianNotPositiveDefinite
         When unpenalized moves are invisible to the outputs.
+    service.errors.NumericalError
+        Pointer ``/weights/terminal`` when the Riccati terminal weight does not exist.
 
     Examples
     --------
@@ -118,17 +155,36 @@ def design_controller(
     pred = prediction_matrices(
         a_, b_, c_, prediction=prediction, control=control, first_penalized=first_penalized
     )
+    free = None if blocking is None else check_blocking(blocking, control=control)
+    if free is not None:
+        pred = blocked_prediction(pred, free)
+    moves = control if free is None else len(free)
     root = weight_root(q)
     weighted = weighted_moves(pred, root)
+    rows = weighted
+    term = None
+    if terminal == "riccati":
+        term = terminal_weight(a_, b_, c_, output_weight=q, move_weight=r, prediction=prediction, control=control)
+        if free is not None:
+            term = dataclasses.replace(term, moves=select_moves(term.moves, free, inputs=m))
+        weighted = weighted.copy()
+        weighted[-p:] = 0.0  # the last step's output weight gives way to P
+        rows = np.vstack([weighted, term.weighted_moves])
+    else:
+        assert terminal == "none", f"unknown terminal weight {terminal!r}"
     hessian = factor_hessian(
-        hessian_matrix(weighted, r, control=control),
-        weighted=weighted,
+        hessian_matrix(rows, r, control=moves),
+        weighted=rows,
         move_weight=r,
-        control=control,
+        control=moves,
         outputs=p,
         input_labels=input_labels,
     )
     gain = first_move_gain(pred, hessian, weighted, root)
+    kt = None
+    if term is not None:
+        kt = terminal_first_move_gain(hessian, term, inputs=m)
+        gain = with_terminal_gain(gain, term, kt)
     loop = closed_loop(a_, b_, gain.state, gain.previous_input)
     warnings = design_warnings(condition_number=hessian.condition_number, loop=loop)
     return ControllerDesign(
@@ -141,4 +197,7 @@ def design_controller(
         gain=gain,
         loop=loop,
         warnings=warnings,
+        terminal=term,
+        terminal_gain=kt,
+        blocking=free,
     )

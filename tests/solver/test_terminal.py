@@ -1,0 +1,124 @@
+"""The Riccati terminal weight against scipy's Riccati solver and the LQR gain."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.linalg
+
+from service.errors import NumericalError
+from service.solver.design import design_controller
+from service.solver.terminal import incremental_system, terminal_prediction
+from tests.conftest import random_plant
+
+
+def lqr_on_increments(a, b, c, q, r):
+    """Infinite-horizon LQR gain on xi = [x; u(k-1)] with the move as input.
+
+    Reference: scipy.linalg.solve_discrete_are for the Riccati solution, then the textbook
+    gain K = (R + B' P B)^-1 B' P A of discrete linear-quadratic regulation.
+    """
+    n, m = b.shape
+    ai = np.block([[a, b], [np.zeros((m, n)), np.eye(m)]])
+    bi = np.vstack([b, np.eye(m)])
+    ci = np.hstack([c, np.zeros((c.shape[0], m))])
+    p = scipy.linalg.solve_discrete_are(ai, bi, ci.T @ q @ ci, r)
+    return np.linalg.solve(r + bi.T @ p @ bi, bi.T @ p @ ai), ai, bi
+
+
+@pytest.mark.parametrize("horizon", [1, 2, 5])
+def test_terminal_weight_gives_the_lqr_gain_for_any_horizon(rng, horizon):
+    # Standard result (dynamic programming): with the Riccati cost to go on the last state the
+    # horizon problem is the infinite-horizon one, so Hu = Hp gives the LQR gain for any Hp.
+    # Reference gain from scipy.linalg.solve_discrete_are.  The plant is open-loop unstable.
+    a, b, c = random_plant(rng, 4, 2, 2, radius=1.1)
+    q, r = np.diag([1.0, 3.0]), np.diag([0.2, 0.05])
+    lqr, ai, bi = lqr_on_increments(a, b, c, q, r)
+    d = design_controller(
+        a, b, c, output_weight=[1.0, 3.0], move_weight=[0.2, 0.05],
+        prediction=horizon, control=horizon, terminal="riccati",
+    )
+    np.testing.assert_allclose(np.hstack([d.gain.state, d.gain.previous_input]), lqr, atol=1e-10)
+    np.testing.assert_allclose(d.terminal.lqr_gain, lqr, atol=1e-10)
+    # ... and the closed loop is the LQR closed loop, hence stable.
+    lqr_poles = np.sort_complex(scipy.linalg.eigvals(ai - bi @ lqr))
+    np.testing.assert_allclose(np.sort_complex(d.loop.poles), lqr_poles, atol=1e-8)
+    assert d.loop.stable
+
+
+def test_terminal_weight_with_full_weight_matrices(rng):
+    # Same standard result with non-diagonal Q and R (scipy reference as above).
+    a, b, c = random_plant(rng, 3, 2, 2, radius=0.97)
+    q = np.array([[2.0, 0.5], [0.5, 1.0]])
+    r = np.array([[0.3, 0.1], [0.1, 0.2]])
+    lqr, _, _ = lqr_on_increments(a, b, c, q, r)
+    d = design_controller(a, b, c, output_weight=q, move_weight=r, prediction=3, control=3, terminal="riccati")
+    np.testing.assert_allclose(np.hstack([d.gain.state, d.gain.previous_input]), lqr, atol=1e-10)
+
+
+def test_riccati_solution_solves_the_riccati_equation(rng):
+    # Put the answer back into the equation (the residual check of scipy's own tests).
+    a, b, c = random_plant(rng, 3, 1, 1)
+    q, r = np.eye(1), np.array([[0.5]])
+    d = design_controller(a, b, c, output_weight=[1.0], move_weight=[0.5], prediction=4, control=2, terminal="riccati")
+    ai, bi, ci = incremental_system(a, b, c)
+    p = d.terminal.matrix
+    residual = ai.T @ p @ ai - ai.T @ p @ bi @ np.linalg.solve(r + bi.T @ p @ bi, bi.T @ p @ ai) + ci.T @ q @ ci - p
+    assert np.abs(residual).max() < 1e-10 * max(1.0, np.abs(p).max())
+    np.testing.assert_allclose(d.terminal.root.T @ d.terminal.root, p, atol=1e-10)
+
+
+def test_terminal_prediction_equals_simulating_the_incremental_system(rng):
+    # Definition check: xi(k+Hp) by stepping xi(k+1) = A_i xi(k) + B_i du(k) one step at a time.
+    a, b, c = random_plant(rng, 3, 2, 1)
+    hp, hu = 6, 4
+    phi, gamma = terminal_prediction(a, b, prediction=hp, control=hu)
+    ai, bi, _ = incremental_system(a, b, c)
+    xi0 = rng.normal(size=5)
+    du = rng.normal(size=(hu, 2))
+    xi = xi0.copy()
+    for j in range(hp):
+        xi = ai @ xi + bi @ (du[j] if j < hu else np.zeros(2))
+    np.testing.assert_allclose(phi @ xi0 + gamma @ du.reshape(-1), xi, atol=1e-12)
+
+
+def test_terminal_design_is_offset_free_at_a_reachable_setpoint(rng):
+    # At the steady state [x_s; u_s] of a setpoint (x_s = A x_s + B u_s, C x_s = r) the law
+    # du = Kr r - Kx x_s - Ku u_s must not move (the definition of a steady state).
+    a, b, c = random_plant(rng, 4, 2, 2)
+    d = design_controller(a, b, c, output_weight=[1.0, 1.0], move_weight=[1.0, 1.0], prediction=5, control=3, terminal="riccati")
+    r = np.array([1.5, -0.5])
+    steady = np.linalg.solve(np.block([[np.eye(4) - a, -b], [c, np.zeros((2, 2))]]), np.r_[np.zeros(4), r])
+    du = d.gain.setpoint @ r - d.gain.state @ steady[:4] - d.gain.previous_input @ steady[4:]
+    np.testing.assert_allclose(du, 0.0, atol=1e-12)
+
+
+def test_terminal_none_is_the_default_and_changes_nothing(rng):
+    # The option must leave today's behaviour exactly as it was.
+    a, b, c = random_plant(rng, 3, 2, 2)
+    kwargs = dict(output_weight=[1.0, 2.0], move_weight=[0.1, 0.1], prediction=6, control=3)
+    plain = design_controller(a, b, c, **kwargs)
+    none = design_controller(a, b, c, terminal="none", **kwargs)
+    assert np.array_equal(plain.gain.state, none.gain.state)
+    assert np.array_equal(plain.hessian.matrix, none.hessian.matrix)
+    assert none.terminal is None and none.terminal_gain is None
+
+
+def test_more_inputs_than_outputs_has_no_stabilizing_terminal_weight():
+    # Two inputs acting alike on one output: u1 - u2 held is an equilibrium of [x; u] on the
+    # unit circle that no output sees, so the Riccati equation has no stabilizing solution
+    # (existence condition of the stabilizing solution, standard LQ theory).
+    with pytest.raises(NumericalError) as info:
+        design_controller([[0.5]], [[1.0, 1.0]], [[1.0]], output_weight=[1.0], move_weight=[1.0, 1.0],
+                          prediction=3, control=3, terminal="riccati")
+    assert info.value.pointer == "/weights/terminal"
+    assert "z = 1" in info.value.detail
+
+
+def test_uncontrollable_integrator_has_no_stabilizing_terminal_weight():
+    # An integrating state the input cannot reach is not stabilizable (PBH test).
+    with pytest.raises(NumericalError) as info:
+        design_controller(np.diag([0.5, 1.0]), [[1.0], [0.0]], [[1.0, 1.0]], output_weight=[1.0],
+                          move_weight=[1.0], prediction=3, control=3, terminal="riccati")
+    assert info.value.pointer == "/weights/terminal"
+    assert "cannot be moved" in info.value.detail
