@@ -115,10 +115,15 @@ class PlantProperties:
     poles: NDArray[np.complex128]
 
 
-def _sorted_schur(a: NDArray[np.float64], tolerance: float) -> tuple[NDArray[np.complex128], NDArray[np.complex128], int]:
+def _sorted_schur(
+    a: NDArray[np.float64], tolerance: float
+) -> tuple[NDArray[np.complex128], NDArray[np.complex128], int]:
     """Complex Schur form with the eigenvalues within ``tolerance`` of 1 leading."""
     t, z, count = scipy.linalg.schur(
-        a.astype(complex), output="complex", sort=lambda v: abs(v - 1.0) <= tolerance, check_finite=False
+        a.astype(complex),
+        output="complex",
+        sort=lambda v: abs(v - 1.0) <= tolerance,
+        check_finite=False,
     )
     return t, z, int(count)
 
@@ -169,13 +174,17 @@ def steady_state_gain(
         return SteadyStateGain(gain=gain, integration_order=order, ramp_rate=ramp)
 
     bz, cz = z.conj().T @ b_, c_ @ z
-    x = scipy.linalg.solve_sylvester(t[:k, :k], -t[k:, k:], -t[:k, k:]) if k < n else np.zeros((k, 0))
+    if k < n:
+        x = scipy.linalg.solve_sylvester(t[:k, :k], -t[k:, k:], -t[:k, k:])
+    else:
+        x = np.zeros((k, 0))
     b1, b2 = bz[:k] - x @ bz[k:], bz[k:]
     c1 = cz[:, :k]
     c2 = cz[:, k:] + c1 @ x
     nil = np.triu(t[:k, :k], 1)  # T11 - I with its eigenvalues taken as exactly 1
     # Rounding in the Schur form is of order eps |A|, in N^l of order eps |A|^l.
-    scale = np.sqrt(np.finfo(float).eps) * np.linalg.norm(c_, 2) * max(np.linalg.norm(b_, 2), np.linalg.norm(b1, 2))
+    b_size = max(np.linalg.norm(b_, 2), np.linalg.norm(b1, 2))
+    scale = np.sqrt(np.finfo(float).eps) * np.linalg.norm(c_, 2) * b_size
     growth = max(1.0, float(np.linalg.norm(a_, 2)))
     power = np.eye(k, dtype=complex)
     markov0 = c1 @ b1
@@ -273,7 +282,9 @@ def plant_properties(
     )
 
 
-def plant_warnings(properties: PlantProperties, *, near_singular: float = NEAR_SINGULAR_GAIN) -> list[Diagnostic]:
+def plant_warnings(
+    properties: PlantProperties, *, near_singular: float = NEAR_SINGULAR_GAIN
+) -> list[Diagnostic]:
     """Return the warnings about a plant: ``near_singular_gain`` when its condition is high.
 
     Parameters

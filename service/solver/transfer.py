@@ -280,7 +280,10 @@ def _sampled(
     return phi, phi @ gamma0 + gamma1, cc, float((cc @ gamma0 + dc)[0, 0]), whole + 1
 
 
-def _columns(elements: Grid, disturbance_elements: Grid | None) -> tuple[list[list[TransferElement | None]], int]:
+Rows = list[list[TransferElement | None]]
+
+
+def _columns(elements: Grid, disturbance_elements: Grid | None) -> tuple[Rows, int]:
     """Rows over all columns (inputs then disturbances) and the number of inputs ``m``."""
     p = len(elements)
     assert p >= 1, "a transfer matrix needs at least one output"
@@ -295,7 +298,9 @@ def _columns(elements: Grid, disturbance_elements: Grid | None) -> tuple[list[li
     return rows, m
 
 
-def _split_delays(delays: dict[tuple[int, int], int], p: int, columns: int) -> tuple[list[int], list[int]]:
+def _split_delays(
+    delays: dict[tuple[int, int], int], p: int, columns: int
+) -> tuple[list[int], list[int]]:
     """Output delays ``e`` and input register lengths minimising the delay states."""
     input_reg = [0] * columns
     for (_, j), h in delays.items():
@@ -316,7 +321,9 @@ def _split_delays(delays: dict[tuple[int, int], int], p: int, columns: int) -> t
         cost,
         integrality=np.ones(p + columns),
         bounds=scipy.optimize.Bounds(0.0, np.array(row_min + input_reg, dtype=float)),
-        constraints=scipy.optimize.LinearConstraint(matrix, lb=[delays[k] for k in pairs], ub=np.inf),
+        constraints=scipy.optimize.LinearConstraint(
+            matrix, lb=[delays[k] for k in pairs], ub=np.inf
+        ),
         options={"mip_rel_gap": 0.0},
     )
     assert result.success, result.message
@@ -327,7 +334,8 @@ def _split_delays(delays: dict[tuple[int, int], int], p: int, columns: int) -> t
     return out, regs
 
 
-def _plan(rows: list[list[TransferElement | None]], sample_time: float) -> tuple[list[int], list[int]]:
+def _plan(rows: Rows, sample_time: float) -> tuple[list[int], list[int]]:
+    """Output delays and input register lengths for the elements' whole delays."""
     delays = {
         (i, j): _delay_count(el, sample_time)
         for i, row in enumerate(rows)
@@ -406,7 +414,8 @@ def transfer_matrix_model(
                 continue
             where = f"{pointer}/{i}/{j}" if j < m else f"{disturbance_pointer}/{i}/{j - m}"
             sampled[i, j] = (len(roles), *_sampled(el, ts, where))
-            roles += [StateRole("element", i, j - m if j >= m else j, j >= m, s) for s in range(el.order)]
+            col = j - m if j >= m else j
+            roles += [StateRole("element", i, col, j >= m, s) for s in range(el.order)]
     reg_start = []
     for j in range(columns):
         reg_start.append(len(roles))
