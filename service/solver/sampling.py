@@ -98,10 +98,11 @@ def hold_integrals(
     with np.errstate(over="ignore", invalid="ignore"):
         exponential = scipy.linalg.expm(block)
     if not np.all(np.isfinite(exponential)):
+        growth = np.linalg.eigvals(a).real
         raise NumericalError(
             f"The continuous model cannot be sampled: its matrix exponential over {interval:g} "
-            f"time units overflows double precision (the state matrix has eigenvalues with real "
-            f"part up to {np.max(np.linalg.eigvals(a).real, initial=0.0):.3g} per time unit). "
+            f"time units is not finite in double precision (the state matrix has eigenvalues "
+            f"with real parts from {growth.min():.3g} to {growth.max():.3g} per time unit). "
             f"Check the units of the state matrix and of the sample time.",
             pointer=pointer,
         )

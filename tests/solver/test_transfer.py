@@ -8,10 +8,13 @@ import numpy as np
 import pytest
 import scipy.signal
 
+from service.errors import NumericalError
 from service.solver.transfer import (
+    STIFFNESS_LIMIT,
     SampledTransferModel,
     TransferElement,
     delay_samples,
+    stiffness_ratio,
     transfer_matrix_model,
     transfer_state_count,
 )
@@ -274,3 +277,23 @@ def test_state_roles_describe_each_state() -> None:
     ]
     assert model.input_delays == (1, 0) and model.output_delays == (1,)
     np.testing.assert_allclose(simulate_step(model, 0, 3, disturbance=True)[:, 0], [0, 1, 1, 1], atol=1e-15)
+
+
+@pytest.mark.parametrize("ratio", [1e2, 1e5, 1e8])
+def test_fast_lags_within_the_stiffness_limit_sample_accurately(ratio: float) -> None:
+    # First-order plus a fast lag and lead; compared with the analytic step (table pairs).
+    el = E(1.5, (1.0 / ratio, 2.0), 0.5, lead=0.7)
+    model = transfer_matrix_model([[el]], sample_time=1.0)
+    np.testing.assert_allclose(
+        simulate_step(model, 0, 20)[:, 0], analytic_step(el, np.arange(21.0)), rtol=0, atol=1e-7
+    )
+
+
+def test_lag_too_fast_for_the_sample_time_is_a_numerical_error_naming_the_element() -> None:
+    el = E(1.0, (1e-12,), 0.5)
+    assert stiffness_ratio(el, 1.0) > STIFFNESS_LIMIT
+    with pytest.raises(NumericalError) as caught:
+        transfer_matrix_model(
+            [[E(1.0, (1.0,))]], sample_time=1.0, disturbance_elements=[[None, el]]
+        )
+    assert caught.value.pointer == "/model/disturbance_elements/0/1"
