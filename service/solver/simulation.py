@@ -369,7 +369,7 @@ def simulate_loop(
                 zs = zs + z_d @ d
                 us = us + u_d @ d
             free = fx @ xf + fu @ u
-            error = np.tile(zs, np_) - free
+            error = (zs - free.reshape(np_, p)).reshape(-1)  # (1 (x) I_p) z_s - free
             result = policy(error=error, free_prediction=free, previous_input=u, step=k)
             du = np.asarray(result.move, dtype=float)
             assert du.shape == (m,), du.shape
