@@ -40,7 +40,7 @@ Detectability.  The augmented pair is detectable if and only if ``(A, C)`` is de
 
     rank [[I - A, -Bd], [C, Cd]] = n + nd
 
-(Pannocchia and Rawlings 2003, Lemma 1; it follows from the PBH test: at an eigenvalue
+(Pannocchia and Rawlings 2003; it follows from the PBH test: at an eigenvalue
 ``z != 1`` the identity block ``(z - 1) I`` removes the disturbance columns, and at ``z = 1``
 the PBH matrix is the one above).  The rank condition needs ``nd <= p`` — at most one
 disturbance per measured output — and fails when a disturbance direction produces no

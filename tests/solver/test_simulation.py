@@ -250,3 +250,22 @@ def test_a_blown_up_run_stops_cleanly_and_says_where():
     assert np.all(np.isnan(sim.inputs[sim.diverged_at:]))
     assert np.all(np.isfinite(sim.inputs[: sim.diverged_at]))
     assert len(sim.reports) == 100000
+
+
+def test_with_fewer_inputs_than_outputs_the_loop_settles_on_the_nearest_reachable_steady_state(rng):
+    # One input, two outputs, an output disturbance: r cannot be reached, and the loop must
+    # settle where the steady-state gain G0 = C (I - A)^-1 B can get closest in the Q-norm,
+    # z = G0 u* + d with u* = argmin |W (G0 u + d - r)| (weighted least squares, reference
+    # numpy.linalg.lstsq), plant equal to the model.
+    a, b, c = random_plant(rng, 3, 1, 2, radius=0.9)
+    q = np.array([1.0, 3.0])
+    d = design_controller(a, b, c, output_weight=q, move_weight=[0.3], prediction=12, control=2)
+    r, dist = np.array([1.0, 0.5]), np.array([0.5, -0.2])
+    sim = simulate_loop(d, design_estimator(a, b, c), Scenario(
+        steps=800, setpoint_changes=[Event(3, r)], output_disturbances=[Event(100, dist)]))
+    g0 = c @ np.linalg.solve(np.eye(3) - a, b)
+    w = np.sqrt(q)[:, None]
+    u_star = np.linalg.lstsq(w * g0, (w * (r - dist)[:, None]).ravel(), rcond=None)[0]
+    np.testing.assert_allclose(sim.outputs[-1], g0 @ u_star + dist, atol=1e-8)
+    np.testing.assert_allclose(sim.targets[-1], sim.outputs[-1], atol=1e-8)
+    assert np.abs(sim.outputs[-1] - r).max() > 0.1
