@@ -43,11 +43,13 @@ import numpy as np
 import scipy.optimize
 from numpy.typing import NDArray
 
+from service.errors import NumericalError
 from service.solver.design import ControllerDesign
 from service.solver.estimation import Estimator
 from service.solver.realization import StateSpace, closed_loop_poles, controller_system, plant_system
 
 __all__ = [
+    "ANALYSIS_POINTER",
     "BANDWIDTH_LEVEL",
     "DEFAULT_DECADES",
     "DEFAULT_POINTS",
@@ -68,6 +70,8 @@ BANDWIDTH_LEVEL = 1.0 / np.sqrt(2.0)
 DEFAULT_POINTS = 200
 #: Default span of the grid below the Nyquist frequency, in decades.
 DEFAULT_DECADES = 4.0
+#: The request field a failure of the analysis points at.
+ANALYSIS_POINTER = "/analysis"
 #: Relative tolerance of the refinements on ``w`` (``brentq`` xtol / ``minimize_scalar`` xatol).
 _FREQUENCY_TOLERANCE = 1e-12
 
@@ -362,6 +366,13 @@ def frequency_analysis(
     Returns
     -------
     FrequencyAnalysis
+
+    Raises
+    ------
+    service.errors.NumericalError
+        Pointer ``/analysis``, when a pole of the plant, the controller or the closed loop
+        lies on the unit circle exactly at a grid frequency (the responses are infinite
+        there; the Nyquist end ``z = -1`` is always on the grid).
     """
     assert plant.inputs == controller.outputs and plant.outputs == controller.inputs, (
         plant.d.shape,
@@ -369,11 +380,22 @@ def frequency_analysis(
     )
     grid = frequency_grid(sample_time, points=points, decades=decades)
     poles = closed_loop_poles(plant, controller)
+    try:
+        with np.errstate(all="ignore"):
+            at_input = _loop_sensitivity(plant, controller, "input", grid, sample_time)
+            at_output = _loop_sensitivity(plant, controller, "output", grid, sample_time)
+    except np.linalg.LinAlgError as exc:
+        raise NumericalError(
+            "The frequency analysis cannot evaluate the loop: a pole of the plant, the "
+            "controller or the closed loop lies on the unit circle at a frequency of the grid "
+            f"({exc}). Change the number of points, or move that pole off the unit circle.",
+            pointer=ANALYSIS_POINTER,
+        ) from exc
     return FrequencyAnalysis(
         frequencies=grid,
         sample_time=float(sample_time),
-        plant_input=_loop_sensitivity(plant, controller, "input", grid, sample_time),
-        plant_output=_loop_sensitivity(plant, controller, "output", grid, sample_time),
+        plant_input=at_input,
+        plant_output=at_output,
         closed_loop_poles=poles,
         stable=bool(np.abs(poles).max(initial=0.0) < 1.0),
     )
