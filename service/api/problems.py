@@ -17,8 +17,9 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.errors import FieldProblem, InvalidRequest, NumericalError
 from service.schemas.common import pointer
+from service.schemas.model import MODEL_KINDS
 
-__all__ = ["PROBLEM_JSON", "install_problem_handlers", "problem_response", "validation_problems"]
+__all__ = ["PROBLEM_JSON", "install_problem_handlers", "problem_body", "problem_response", "validation_problems"]
 
 PROBLEM_JSON = "application/problem+json"
 log = logging.getLogger("movecast.problems")
@@ -29,6 +30,9 @@ _TYPES = {
     "numerical-problem": "The design problem cannot be solved",
     "http-error": "HTTP error",
     "internal-error": "Internal error",
+    "unauthorized": "Authentication required",
+    "payload-too-large": "Request body too large",
+    "time-limit": "Compute time limit exceeded",
 }
 
 
@@ -63,12 +67,22 @@ def problem_response(
     )
 
 
-def _location(loc: Sequence[Any]) -> tuple[str | int, ...]:
-    """Drop FastAPI's ``body`` prefix and pydantic's union/function tags from a location."""
-    parts = list(loc)
+def _location(error: dict[str, Any]) -> tuple[str | int, ...]:
+    """The error's field: FastAPI's ``body`` prefix and pydantic's union tags dropped.
+
+    A discriminated union puts the tag it chose (``state_space``) into the location; a tag
+    that matches no member is reported on the discriminator field itself (``/model/kind``).
+    """
+    parts = list(error.get("loc", ()))
     if parts and parts[0] == "body":
         parts = parts[1:]
-    return tuple(p for p in parts if not (isinstance(p, str) and ("[" in p or p in {"function-after"})))
+    kept = tuple(
+        p for p in parts if not (isinstance(p, str) and ("[" in p or p == "function-after" or p in MODEL_KINDS))
+    )
+    if error.get("type") in {"union_tag_invalid", "union_tag_not_found"}:
+        field = str((error.get("ctx") or {}).get("discriminator", "kind")).strip("'\"")
+        kept = (*kept, field)
+    return kept
 
 
 def _sentence(error: dict[str, Any]) -> str:
@@ -85,7 +99,7 @@ def validation_problems(errors: Sequence[dict[str, Any]]) -> list[FieldProblem]:
     """Turn pydantic errors into FieldProblems, one per distinct pointer and sentence."""
     seen: dict[tuple[str, str], FieldProblem] = {}
     for error in errors:
-        item = FieldProblem(pointer(*_location(error.get("loc", ()))), _sentence(error))
+        item = FieldProblem(pointer(*_location(error)), _sentence(error))
         seen.setdefault((item.pointer, item.detail), item)
     return list(seen.values())
 

@@ -11,6 +11,12 @@ from service.schemas.tuning import Horizons, Weights
 __all__ = [
     "ADVISORY",
     "ClosedLoopReport",
+    "DesignAnalysis",
+    "GainLabels",
+    "LabelledMatrix",
+    "PlantReport",
+    "SampledModelReport",
+    "SignalReport",
     "DesignRequest",
     "DesignResponse",
     "GainReport",
@@ -26,21 +32,49 @@ ADVISORY = (
 )
 
 
+class DesignAnalysis(RequestModel):
+    """What to add to the answer beyond gains, conditioning and poles."""
+
+    sampled_model: bool = Field(
+        default=False, description="Return the sampled A, B, C the design used (under plant.sampled_model)."
+    )
+
+
 class DesignRequest(RequestModel):
     """A plant model with tuning: everything needed to design the predictive controller."""
 
     model: PlantModel
     horizons: Horizons
     weights: Weights
+    analysis: DesignAnalysis = Field(default_factory=DesignAnalysis)
+
+
+class GainLabels(ResponseModel):
+    """Names of the rows and columns of each gain matrix."""
+
+    rows: list[str] = Field(description="Manipulated variables: the rows of every gain.")
+    horizon: list[str] = Field(description="Columns of Kh: controlled output and prediction step.")
+    state: list[str] = Field(description="Columns of Kx: the states.")
+    previous_input: list[str] = Field(description="Columns of Ku: the manipulated variables.")
+    setpoint: list[str] = Field(description="Columns of Kr: the controlled outputs.")
+    disturbance: list[str] = Field(description="Columns of Kd: the measured disturbances.")
 
 
 class GainReport(ResponseModel):
-    """The first-move gain in both forms: du(k) = Kh E = Kr r - Kx x(k) - Ku u(k-1)."""
+    """The first-move gain in both forms: du(k) = Kh E = Kr r - Kx x(k) - Ku u(k-1) - Kd d(k).
+
+    In engineering units of the tagged signals (scaling, when given, changes the design's
+    weights, not the units of the gains).
+    """
 
     horizon: Matrix = Field(description="Kh, m x (Hp-Hw+1)*p: gain on the free-response error E.")
     state: Matrix = Field(description="Kx, m x n: gain on the state x(k).")
     previous_input: Matrix = Field(description="Ku, m x m: gain on the previous input u(k-1).")
     setpoint: Matrix = Field(description="Kr, m x p: gain on a constant setpoint r.")
+    disturbance: Matrix | None = Field(
+        default=None, description="Kd, m x md: feed-forward gain on the measured disturbances d(k); null without any."
+    )
+    labels: GainLabels
 
 
 class HessianReport(ResponseModel):
@@ -67,6 +101,58 @@ class ClosedLoopReport(ResponseModel):
     stable: bool = Field(description="True when every pole lies strictly inside the unit circle.")
 
 
+class SignalReport(ResponseModel):
+    """A signal as the design used it."""
+
+    name: str
+    unit: str | None
+    span: float
+
+
+class LabelledMatrix(ResponseModel):
+    """A matrix with named rows and columns; null where a value does not exist."""
+
+    rows: list[str]
+    columns: list[str]
+    values: list[list[float | None]]
+
+
+class SampledModelReport(ResponseModel):
+    """The discrete model the design used, in engineering units."""
+
+    a: Matrix
+    b: Matrix
+    c: Matrix
+    b_disturbance: Matrix | None
+    c_measured: Matrix
+    d_measured: Matrix
+
+
+class PlantReport(ResponseModel):
+    """Open-loop facts about the plant."""
+
+    states: int = Field(description="State count of the discrete model (dead-time states included).")
+    sample_time: float
+    inputs: list[SignalReport]
+    outputs: list[SignalReport]
+    disturbances: list[SignalReport]
+    measured: list[SignalReport]
+    steady_state_gain: LabelledMatrix = Field(
+        description="Outputs x inputs, engineering units; null for an integrating pair (no finite gain)."
+    )
+    ramp_rate: LabelledMatrix = Field(
+        description="Output change per sample per unit input once a ramp is established (0 for pairs that settle)."
+    )
+    relative_gain_array: LabelledMatrix | None = Field(
+        description="Bristol's relative gain array at steady state; null unless the gain is square, finite and nonsingular."
+    )
+    gain_condition_number: float | None = Field(
+        description="2-norm condition number of the steady-state gain of the scaled signals."
+    )
+    open_loop_poles: list[PoleReport]
+    sampled_model: SampledModelReport | None = Field(default=None, description="When analysis.sampled_model is true.")
+
+
 class WarningReport(ResponseModel):
     """A numerical or behavioural warning about the design."""
 
@@ -80,6 +166,7 @@ class DesignResponse(ResponseModel):
     gain: GainReport
     hessian: HessianReport
     closed_loop: ClosedLoopReport
+    plant: PlantReport
     warnings: list[WarningReport]
     fingerprint: str = Field(
         description="SHA-256 of the canonical request: equal for equal requests on any replica."

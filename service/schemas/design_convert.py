@@ -1,7 +1,13 @@
-"""From a validated /design request to solver arrays, and from the solver's result back."""
+"""From a validated /design request to solver arrays, and from the solver's result back.
+
+Three steps, each reusable by the other endpoints: :func:`check_design_request` (every
+check that needs several fields or the caps), :func:`compute_design` (scale, design, add
+feed-forward and plant facts; arrays only) and :func:`design_response` (the JSON answer).
+"""
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -13,16 +19,33 @@ from service.schemas.design import (
     ClosedLoopReport,
     DesignRequest,
     DesignResponse,
+    GainLabels,
     GainReport,
     HessianReport,
+    LabelledMatrix,
+    PlantReport,
     PoleReport,
+    SampledModelReport,
+    SignalReport,
     WarningReport,
 )
 from service.schemas.fingerprint import fingerprint
-from service.schemas.model import DiscretePlant, plant_arrays
+from service.schemas.plant import DiscretePlant, Signal, plant_arrays
+from service.solver.analysis import Diagnostic
 from service.solver.design import ControllerDesign, design_controller
+from service.solver.feedforward import disturbance_free_response, feedforward_gain
+from service.solver.gain import PredictiveGain
+from service.solver.plant import PlantProperties, plant_properties, plant_warnings
+from service.solver.scaling import ScaledPlant, scale_plant, unscale_feedforward, unscale_gain
 
-__all__ = ["DesignInputs", "check_design_request", "design_response", "run_design"]
+__all__ = [
+    "DesignInputs",
+    "DesignOutcome",
+    "check_design_request",
+    "compute_design",
+    "design_response",
+    "run_design",
+]
 
 
 @dataclass(frozen=True)
@@ -37,16 +60,36 @@ class DesignInputs:
     first_penalized: int
 
 
-def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
-    """Check everything the field types alone cannot: sizes that must agree, and the caps.
+@dataclass(frozen=True)
+class DesignOutcome:
+    """What :func:`compute_design` computed.
 
-    Raises
-    ------
-    InvalidRequest
-        With one FieldProblem per broken rule, each naming its field by JSON pointer.
+    Attributes
+    ----------
+    scaled : ScaledPlant
+        The plant in scaled signals, which the design used.
+    design : ControllerDesign
+        The design on the scaled plant (its gains are in scaled units).
+    gain : PredictiveGain
+        The gains in engineering units.
+    feedforward : ndarray, shape (m, md), or None
+        ``Kd`` in engineering units.
+    properties : PlantProperties
+        Of the scaled plant.
+    warnings : list of Diagnostic
     """
-    plant, problems = plant_arrays(request.model, caps)
+
+    scaled: ScaledPlant
+    design: ControllerDesign
+    gain: PredictiveGain
+    feedforward: NDArray[np.float64] | None
+    properties: PlantProperties
+    warnings: list[Diagnostic]
+
+
+def _horizon_problems(request: DesignRequest, caps: Caps) -> list[FieldProblem]:
     h = request.horizons
+    problems: list[FieldProblem] = []
     if h.control > h.prediction:
         problems.append(
             FieldProblem(
@@ -70,12 +113,62 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
                 f"{caps.max_prediction_horizon} samples",
             )
         )
+    return problems
+
+
+def _size_problems(request: DesignRequest, plant: DiscretePlant, caps: Caps) -> list[FieldProblem]:
+    h = request.horizons
+    n, m, p = plant.states, plant.input_count, plant.output_count
+    penalized = h.prediction - h.first_penalized + 1
+    hessian_size = h.control * m
+    if hessian_size > caps.max_hessian_size:
+        return [
+            FieldProblem(
+                pointer("horizons", "control"),
+                f"the Hessian would be {hessian_size} x {hessian_size} (control horizon {h.control} "
+                f"x {m} inputs); this service accepts at most {caps.max_hessian_size}",
+            )
+        ]
+    entries = penalized * p * (n + m + hessian_size)
+    if entries > caps.max_prediction_entries:
+        return [
+            FieldProblem(
+                pointer("horizons", "prediction"),
+                f"the prediction matrices would hold {entries:,} numbers; this service accepts at most "
+                f"{caps.max_prediction_entries:,}. Shorten the prediction or control horizon",
+            )
+        ]
+    if m * penalized * p > caps.max_response_entries:
+        return [
+            FieldProblem(
+                pointer("horizons", "prediction"),
+                f"the horizon gain would hold {m * penalized * p:,} numbers; this service returns at "
+                f"most {caps.max_response_entries:,}",
+            )
+        ]
+    return []
+
+
+def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
+    """Check everything the field types alone cannot: sizes that must agree, tags, and the caps.
+
+    Raises
+    ------
+    InvalidRequest
+        With one FieldProblem per broken rule, each naming its field by JSON pointer.
+    service.errors.NumericalError
+        When a continuous model cannot be sampled.
+    """
+    problems = _horizon_problems(request, caps)
+    plant, found = plant_arrays(request.model, caps)
+    problems += found
     if plant is None:
         raise InvalidRequest(problems)
-    n, m, p = plant.states, plant.inputs, plant.outputs
-    q, found = check_weight(request.weights.output, ("weights", "output"), size=p, what="output weight")
+    q, found = check_weight(
+        request.weights.output, ("weights", "output"), size=plant.output_count, what="output weight"
+    )
     problems += found
-    r, found = check_weight(request.weights.move, ("weights", "move"), size=m, what="move weight")
+    r, found = check_weight(request.weights.move, ("weights", "move"), size=plant.input_count, what="move weight")
     problems += found
     if q is not None and not np.any(q):
         problems.append(
@@ -85,36 +178,11 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
             )
         )
     if not problems:
-        penalized = h.prediction - h.first_penalized + 1
-        hessian_size = h.control * m
-        if hessian_size > caps.max_hessian_size:
-            problems.append(
-                FieldProblem(
-                    pointer("horizons", "control"),
-                    f"the Hessian would be {hessian_size} x {hessian_size} (control horizon {h.control} "
-                    f"x {m} inputs); this service accepts at most {caps.max_hessian_size}",
-                )
-            )
-        elif penalized * p * (n + m + hessian_size) > caps.max_prediction_entries:
-            problems.append(
-                FieldProblem(
-                    pointer("horizons", "prediction"),
-                    f"the prediction matrices would hold {penalized * p * (n + m + hessian_size):,} "
-                    f"numbers; this service accepts at most {caps.max_prediction_entries:,}. Shorten "
-                    f"the prediction or control horizon",
-                )
-            )
-        elif m * penalized * p > caps.max_response_entries:
-            problems.append(
-                FieldProblem(
-                    pointer("horizons", "prediction"),
-                    f"the horizon gain would hold {m * penalized * p:,} numbers; this service "
-                    f"returns at most {caps.max_response_entries:,}",
-                )
-            )
+        problems += _size_problems(request, plant, caps)
     if problems:
         raise InvalidRequest(problems)
     assert q is not None and r is not None
+    h = request.horizons
     return DesignInputs(
         plant=plant,
         output_weight=q,
@@ -125,16 +193,122 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
     )
 
 
-def design_response(request: DesignRequest, design: ControllerDesign) -> DesignResponse:
-    """Turn the solver's result into the response model."""
-    gain = design.gain
-    loop = design.loop
+def compute_design(inputs: DesignInputs) -> DesignOutcome:
+    """Scale the plant, design on it, and return gains in engineering units with the plant's facts.
+
+    Raises
+    ------
+    service.errors.NumericalError
+    """
+    plant = inputs.plant
+    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
+    sd = plant.spans(plant.disturbances) if plant.b_disturbance is not None else None
+    scaled = scale_plant(
+        plant.a, plant.b, plant.c, input_span=su, output_span=sz, b_disturbance=plant.b_disturbance, disturbance_span=sd
+    )
+    design = design_controller(
+        scaled.a,
+        scaled.b,
+        scaled.c,
+        output_weight=inputs.output_weight,
+        move_weight=inputs.move_weight,
+        prediction=inputs.prediction,
+        control=inputs.control,
+        first_penalized=inputs.first_penalized,
+        input_labels=[s.name for s in plant.inputs],
+    )
+    feedforward = None
+    if scaled.b_disturbance is not None and sd is not None:
+        fd = disturbance_free_response(
+            scaled.a, scaled.b_disturbance, scaled.c, prediction=inputs.prediction, first_penalized=inputs.first_penalized
+        )
+        feedforward = unscale_feedforward(feedforward_gain(design.gain.horizon, fd), input_span=su, disturbance_span=sd)
+    properties = plant_properties(scaled.a, scaled.b, scaled.c)
+    return DesignOutcome(
+        scaled=scaled,
+        design=design,
+        gain=unscale_gain(design.gain, input_span=su, output_span=sz),
+        feedforward=feedforward,
+        properties=properties,
+        warnings=[*design.warnings, *plant_warnings(properties)],
+    )
+
+
+def _optional(x: float) -> float | None:
+    return float(x) if math.isfinite(x) else None
+
+
+def _labelled(values: NDArray[np.float64], rows: list[str], columns: list[str]) -> LabelledMatrix:
+    return LabelledMatrix(
+        rows=rows, columns=columns, values=[[_optional(v) for v in row] for row in values.tolist()]
+    )
+
+
+def _signal_reports(signals: tuple[Signal, ...]) -> list[SignalReport]:
+    return [SignalReport(name=s.name, unit=s.unit, span=s.span) for s in signals]
+
+
+def _poles(values: NDArray[np.complex128]) -> list[PoleReport]:
+    return [PoleReport(real=float(z.real), imag=float(z.imag)) for z in values]
+
+
+def _plant_report(request: DesignRequest, plant: DiscretePlant, outcome: DesignOutcome) -> PlantReport:
+    inputs = [s.name for s in plant.inputs]
+    outputs = [s.name for s in plant.outputs]
+    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
+    steady = outcome.properties.steady_state
+    to_engineering = sz[:, None] / su[None, :]
+    rga = outcome.properties.relative_gain
+    condition = outcome.properties.condition_number
+    sampled = None
+    if request.analysis.sampled_model:
+        sampled = SampledModelReport(
+            a=plant.a.tolist(),
+            b=plant.b.tolist(),
+            c=plant.c.tolist(),
+            b_disturbance=None if plant.b_disturbance is None else plant.b_disturbance.tolist(),
+            c_measured=plant.c_measured.tolist(),
+            d_measured=plant.d_measured.tolist(),
+        )
+    return PlantReport(
+        states=plant.states,
+        sample_time=plant.sample_time,
+        inputs=_signal_reports(plant.inputs),
+        outputs=_signal_reports(plant.outputs),
+        disturbances=_signal_reports(plant.disturbances),
+        measured=_signal_reports(plant.measured),
+        steady_state_gain=_labelled(steady.gain * to_engineering, outputs, inputs),
+        ramp_rate=_labelled(steady.ramp_rate * to_engineering, outputs, inputs),
+        relative_gain_array=None if rga is None else _labelled(rga, outputs, inputs),
+        gain_condition_number=None if condition is None else _optional(condition),
+        open_loop_poles=_poles(outcome.properties.poles),
+        sampled_model=sampled,
+    )
+
+
+def design_response(request: DesignRequest, inputs: DesignInputs, outcome: DesignOutcome) -> DesignResponse:
+    """Turn the computed design into the response model."""
+    plant = inputs.plant
+    gain, design, loop = outcome.gain, outcome.design, outcome.design.loop
+    names = [s.name for s in plant.inputs]
+    outputs = [s.name for s in plant.outputs]
+    steps = range(inputs.first_penalized, inputs.prediction + 1)
+    labels = GainLabels(
+        rows=names,
+        horizon=[f"{name}(k+{i})" for i in steps for name in outputs],
+        state=list(plant.state_labels),
+        previous_input=names,
+        setpoint=outputs,
+        disturbance=[s.name for s in plant.disturbances],
+    )
     return DesignResponse(
         gain=GainReport(
             horizon=gain.horizon.tolist(),
             state=gain.state.tolist(),
             previous_input=gain.previous_input.tolist(),
             setpoint=gain.setpoint.tolist(),
+            disturbance=None if outcome.feedforward is None else outcome.feedforward.tolist(),
+            labels=labels,
         ),
         hessian=HessianReport(
             condition_number=design.hessian.condition_number,
@@ -143,11 +317,10 @@ def design_response(request: DesignRequest, design: ControllerDesign) -> DesignR
             size=design.hessian.matrix.shape[0],
         ),
         closed_loop=ClosedLoopReport(
-            poles=[PoleReport(real=float(z.real), imag=float(z.imag)) for z in loop.poles],
-            spectral_radius=loop.spectral_radius,
-            stable=loop.stable,
+            poles=_poles(loop.poles), spectral_radius=loop.spectral_radius, stable=loop.stable
         ),
-        warnings=[WarningReport(code=w.code, message=w.message) for w in design.warnings],
+        plant=_plant_report(request, plant, outcome),
+        warnings=[WarningReport(code=w.code, message=w.message) for w in outcome.warnings],
         fingerprint=fingerprint(request),
     )
 
@@ -160,14 +333,4 @@ def run_design(request: DesignRequest, caps: Caps) -> DesignResponse:
     InvalidRequest, NumericalError
     """
     inputs = check_design_request(request, caps)
-    design = design_controller(
-        inputs.plant.a,
-        inputs.plant.b,
-        inputs.plant.c,
-        output_weight=inputs.output_weight,
-        move_weight=inputs.move_weight,
-        prediction=inputs.prediction,
-        control=inputs.control,
-        first_penalized=inputs.first_penalized,
-    )
-    return design_response(request, design)
+    return design_response(request, inputs, compute_design(inputs))

@@ -1,106 +1,96 @@
-"""Plant models as requests carry them, and their conversion to discrete arrays."""
+"""Plant models as requests carry them: state space (discrete or continuous) or transfer matrix."""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-from typing import Literal
+from typing import Annotated, Literal
 
-import numpy as np
-from numpy.typing import NDArray
 from pydantic import Field
 
-from service.errors import FieldProblem
-from service.schemas.common import Caps, FiniteFloat, Matrix, RequestModel, check_matrix, pointer
+from service.schemas.common import FiniteFloat, Matrix, RequestModel
+from service.schemas.signals import TagList
 
-__all__ = ["DiscretePlant", "PlantModel", "StateSpaceModel", "plant_arrays"]
+__all__ = ["MODEL_KINDS", "PlantModel", "StateSpaceModel", "TransferElementModel", "TransferMatrixModel"]
+
+Positive = Annotated[FiniteFloat, Field(gt=0)]
 
 
-class StateSpaceModel(RequestModel):
-    """A linear state-space model ``x+ = A x + B u``, controlled outputs ``z = C x``."""
+class _Tagged(RequestModel):
+    """Tags shared by every model kind; each list is optional."""
+
+    inputs: TagList | None = Field(default=None, description="One tag per manipulated variable.")
+    outputs: TagList | None = Field(default=None, description="One tag per controlled output.")
+    disturbances: TagList | None = Field(default=None, description="One tag per measured disturbance.")
+
+
+class StateSpaceModel(_Tagged):
+    """``x+ = A x + B u + Bd d`` (or ``dx/dt = ...``), controlled ``z = C x``, measured ``y = Cm x + Dm u``."""
 
     kind: Literal["state_space"] = Field(description="Model form: matrices A, B, C.")
     a: Matrix = Field(description="State matrix A, n x n, as a list of rows.")
     b: Matrix = Field(description="Input matrix B, n x m (one column per manipulated variable).")
-    c: Matrix = Field(description="Controlled-output matrix C, p x n (strictly proper).")
-    time_domain: Literal["discrete"] = Field(
-        default="discrete", description="'discrete': the matrices are already sampled."
+    c: Matrix = Field(description="Controlled-output matrix C, p x n.")
+    d: Matrix | None = Field(
+        default=None,
+        description="Feed-through of the controlled outputs, p x m. The formulation needs strictly "
+        "proper controlled outputs, so it must be zero when given.",
     )
-    sample_time: FiniteFloat = Field(
-        gt=0, description="Sample time in the time unit the user works in (e.g. seconds)."
+    b_disturbance: Matrix | None = Field(
+        default=None, description="Measured-disturbance matrix Bd, n x md (feed-forward)."
     )
+    c_measured: Matrix | None = Field(
+        default=None, description="Measured-output matrix, py x n; default: the controlled outputs."
+    )
+    d_measured: Matrix | None = Field(
+        default=None, description="Feed-through of the measured outputs, py x m; default zero."
+    )
+    measured: TagList | None = Field(default=None, description="One tag per measured output.")
+    time_domain: Literal["discrete", "continuous"] = Field(
+        default="discrete",
+        description="'discrete': the matrices are sampled already; 'continuous': they are sampled "
+        "exactly under zero-order hold at sample_time.",
+    )
+    sample_time: Positive = Field(description="Sample time, in the time unit of the model.")
 
 
-PlantModel = StateSpaceModel
+class TransferElementModel(RequestModel):
+    """One input/output pair: K (L s + 1) / ((t1 s + 1)(t2 s + 1)) (1/s if integrating) e^(-theta s)."""
+
+    gain: FiniteFloat = Field(
+        description="Steady-state gain (output unit per input unit); for an integrating element the "
+        "ramp rate (output unit per input unit per time unit)."
+    )
+    time_constants: Annotated[list[Positive], Field(max_length=2)] = Field(
+        default_factory=list, description="Zero, one or two lag time constants, in the model's time unit."
+    )
+    dead_time: Annotated[FiniteFloat, Field(ge=0)] = Field(
+        default=0.0, description="Dead time, in the model's time unit; need not be whole samples."
+    )
+    lead: FiniteFloat | None = Field(
+        default=None, description="Lead time constant L of (L s + 1); negative for an inverse response."
+    )
+    integrating: bool = Field(default=False, description="A ramp response (common for levels).")
 
 
-@dataclass(frozen=True)
-class DiscretePlant:
-    """A validated discrete-time plant as arrays.
-
-    Attributes
-    ----------
-    a : ndarray, shape (n, n)
-    b : ndarray, shape (n, m)
-    c : ndarray, shape (p, n)
-    sample_time : float
-    """
-
-    a: NDArray[np.float64]
-    b: NDArray[np.float64]
-    c: NDArray[np.float64]
-    sample_time: float
-
-    @property
-    def states(self) -> int:
-        return self.a.shape[0]
-
-    @property
-    def inputs(self) -> int:
-        return self.b.shape[1]
-
-    @property
-    def outputs(self) -> int:
-        return self.c.shape[0]
+ElementGrid = list[list[TransferElementModel | None]]
 
 
-def plant_arrays(
-    model: PlantModel, caps: Caps, where: tuple[str | int, ...] = ("model",)
-) -> tuple[DiscretePlant | None, list[FieldProblem]]:
-    """Check a model's sizes against each other and the caps; return it as discrete arrays.
+class TransferMatrixModel(_Tagged):
+    """A transfer matrix from step tests: one row per controlled output, one element per input."""
 
-    Parameters
-    ----------
-    model : PlantModel
-    caps : Caps
-    where : tuple
-        Pointer parts of the model in the request.
+    kind: Literal["transfer_matrix"] = Field(description="Model form: transfer-function elements.")
+    elements: ElementGrid = Field(
+        description="p rows of m elements; null where an input does not affect an output."
+    )
+    disturbance_elements: ElementGrid | None = Field(
+        default=None, description="p rows of md elements for the measured disturbances."
+    )
+    time_domain: Literal["continuous"] = Field(
+        default="continuous", description="Elements are continuous-time; sampled exactly under zero-order hold."
+    )
+    sample_time: Positive = Field(description="Sample time, in the time unit of the elements.")
 
-    Returns
-    -------
-    DiscretePlant or None, list of FieldProblem
-    """
-    a, problems = check_matrix(model.a, (*where, "a"), square=True, what="A")
-    if a is None:
-        return None, problems
-    n = a.shape[0]
-    if a.shape[1] != n:
-        return None, [FieldProblem(pointer(*where, "a"), f"A must be square; it is {n} x {a.shape[1]}")]
-    if n > caps.max_states:
-        return None, [
-            FieldProblem(pointer(*where, "a"), f"A has {n} states; this service accepts at most {caps.max_states}")
-        ]
-    b, found = check_matrix(model.b, (*where, "b"), rows=n, what="B")
-    problems += found
-    c, found = check_matrix(model.c, (*where, "c"), cols=n, what="C")
-    problems += found
-    if b is not None and b.shape[1] > caps.max_signals:
-        problems.append(
-            FieldProblem(pointer(*where, "b"), f"B has {b.shape[1]} inputs; at most {caps.max_signals} are accepted")
-        )
-    if c is not None and c.shape[0] > caps.max_signals:
-        problems.append(
-            FieldProblem(pointer(*where, "c"), f"C has {c.shape[0]} outputs; at most {caps.max_signals} are accepted")
-        )
-    if problems or b is None or c is None:
-        return None, problems
-    return DiscretePlant(a=a, b=b, c=c, sample_time=float(model.sample_time)), []
+
+PlantModel = Annotated[StateSpaceModel | TransferMatrixModel, Field(discriminator="kind")]
+
+#: The values of ``kind``; pydantic puts the chosen one into error locations.
+MODEL_KINDS = frozenset({"state_space", "transfer_matrix"})
