@@ -280,7 +280,8 @@ def loop_margins(loop: Callable[[NDArray[np.float64]], NDArray[np.complex128]], 
         w, v = min(phase, key=lambda item: abs(np.log(abs(item[1]))))
         gm, gm_w = 1.0 / abs(v), w
     # Gain crossovers: |L| - 1 changes sign.
-    magnitude = np.log(np.abs(values))
+    with np.errstate(divide="ignore"):
+        magnitude = np.log(np.abs(values))
     pm, pm_w = float("inf"), None
     crossings = np.nonzero(np.sign(magnitude[:-1]) * np.sign(magnitude[1:]) <= 0)[0]
     margins: list[tuple[float, float]] = []

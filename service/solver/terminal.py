@@ -66,6 +66,7 @@ __all__ = [
     "incremental_system",
     "riccati_terminal_weight",
     "terminal_first_move_gain",
+    "terminal_gradient",
     "terminal_prediction",
     "terminal_weight",
     "with_terminal_gain",
@@ -363,6 +364,31 @@ def terminal_first_move_gain(hessian: FactoredHessian, terminal: TerminalWeight,
     selector[:inputs, :inputs] = np.eye(inputs)
     y = hessian.solve(selector)
     return (terminal.weighted_moves @ y).T @ terminal.root
+
+
+def terminal_gradient(
+    terminal: TerminalWeight, state: NDArray[np.float64], target: NDArray[np.float64]
+) -> NDArray[np.float64]:
+    """Return the terminal term of the right-hand side, ``Gamma' P (xi_s - Phi xi(k))``.
+
+    Add it to ``G' Q E`` (:func:`service.solver.gain.optimal_moves` gives ``H^-1 G' Q E``
+    only) whenever the whole move sequence of a terminal design is needed, for instance as
+    the linear term of a constrained move problem.
+
+    Parameters
+    ----------
+    terminal : TerminalWeight
+    state : ndarray, shape (n+m,)
+        ``xi(k) = [x(k); u(k-1)]``.
+    target : ndarray, shape (n+m,)
+        ``xi_s`` (``terminal.target @ r`` for a constant setpoint ``r``).
+
+    Returns
+    -------
+    ndarray, shape (cols,)
+        ``(W_P Gamma)' W_P (xi_s - Phi xi)``.
+    """
+    return terminal.weighted_moves.T @ (terminal.root @ (target - terminal.free_response @ state))
 
 
 def with_terminal_gain(

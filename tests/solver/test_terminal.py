@@ -122,3 +122,21 @@ def test_uncontrollable_integrator_has_no_stabilizing_terminal_weight():
                           move_weight=[1.0], prediction=3, control=3, terminal="riccati")
     assert info.value.pointer == "/weights/terminal"
     assert "cannot be moved" in info.value.detail
+
+
+def test_whole_move_sequence_with_the_terminal_term_starts_with_the_gain_move(rng):
+    # Receding horizon (the design notes): the first m entries of H^-1 (G'Q E + Gamma'P(xi_s -
+    # Phi xi)) are the fixed law's move Kr r - Kx x - Ku u(k-1), here with blocking as well.
+    from service.solver.gain import optimal_moves
+    from service.solver.terminal import terminal_gradient
+
+    a, b, c = random_plant(rng, 3, 2, 2)
+    d = design_controller(a, b, c, output_weight=[1.0, 2.0], move_weight=[0.2, 0.3], prediction=7, control=4,
+                          terminal="riccati", blocking=[0, 1, 3])
+    x, u, r = rng.normal(size=3), rng.normal(size=2), rng.normal(size=2)
+    pred = d.prediction
+    error = np.tile(r, pred.penalized_steps) - pred.free_state @ x - pred.free_input @ u
+    rhs_moves = optimal_moves(d.hessian, d.weighted, d.output_root, error)
+    extra = d.hessian.solve(terminal_gradient(d.terminal, np.r_[x, u], d.terminal.target @ r))
+    first = (rhs_moves + extra)[:2]
+    np.testing.assert_allclose(first, d.gain.setpoint @ r - d.gain.state @ x - d.gain.previous_input @ u, atol=1e-10)
