@@ -6,19 +6,27 @@ One step ``k = 0 .. steps-1`` of :func:`simulate_loop` (the plant may differ fro
     y_m(k)   = y(k) + v(k)                                 measured, v ~ N(0, diag(std^2))
     x(k|k)   = x(k|k-1) + L (y_m(k) - Cy x(k|k-1))         estimate (full_state: x(k|k) = x(k))
     z_s(k)   = Z_r r(k) + Z_d d(k|k)                       target outputs (target.py)
-    free     = Fx_aug x(k|k) + Fu u(k-1)                   free prediction (loop.py)
+    free     = Fx_aug x(k|k) + Fu u(k-1) [+ Fd d_m(k)]     free prediction (loop.py)
     E        = (1 (x) I_p) z_s(k) - free
     du(k)    = policy(error=E, free_prediction=free, previous_input=u(k-1), step=k).move
     u(k)     = u(k-1) + du(k)
-    x(k+1)   = A_true x(k) + B_true (u(k) + d_in(k))
-    x(k+1|k) = A_aug x(k|k) + B_aug u(k)
+    x(k+1)   = A_true x(k) + B_true (u(k) + d_in(k)) [+ Bd_true d_m(k)]
+    x(k+1|k) = A_aug x(k|k) + B_aug u(k) [+ [Bd; 0] d_m(k)]
+
+The bracketed terms are there with measured disturbances ``d_m`` (``b_disturbance``): the
+model's ``Bd`` enters the estimator's prediction, and its free response ``Fd`` (``Cz sum_{l<i}
+A^l Bd`` at steps ``Hw..Hp``, :func:`service.solver.feedforward.disturbance_free_response`)
+the free prediction, so the unconstrained law is ``du = Kr r - Kx x - Ku u(k-1) - Kd d_m`` with
+``Kd = Kh Fd``.  The steady-state target does not use ``d_m``: with a reachable setpoint its
+outputs are the setpoint whatever ``d_m`` is.
 
 Events hold from their step on: a setpoint change sets ``r``, an output (input) disturbance
 event sets the level of ``d_out`` (``d_in``) — each event replaces the previous level, it does
 not add to it.  Before the first setpoint change the setpoint is ``initial_setpoint`` (default:
 the true output at the initial state, so the loop starts at rest); disturbances start at zero.
 The estimator starts from ``x(0|-1) = [x(0); 0]``: it knows the initial state, not the
-disturbances.  Noise comes from ``numpy.random.default_rng(seed)``, drawn once as a
+disturbances.  A true plant with another state count than the model starts from rest,
+``x_true(0) = 0`` (``initial_state`` must then be left out), and so does the estimator.  Noise comes from ``numpy.random.default_rng(seed)``, drawn once as a
 ``(steps, p)`` standard-normal array times ``std``: the same scenario always gives the same run.
 For ``full_state`` the measured outputs are still recorded (with noise), but the controller
 reads the true state, noise-free.
@@ -39,6 +47,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design import ControllerDesign
 from service.solver.estimation import Estimator
+from service.solver.feedforward import disturbance_free_response
 from service.solver.loop import ControlLoop, control_loop
 
 __all__ = [
@@ -144,7 +153,8 @@ class Event:
     step : int
         ``0 <= step < steps``.
     value : ndarray
-        Shape (p,) for setpoints and output disturbances, (m,) for input disturbances.
+        Shape (p,) for setpoints and output disturbances, (m,) for input disturbances,
+        (md,) for measured disturbances.
     """
 
     step: int
@@ -153,18 +163,26 @@ class Event:
 
 @dataclass(frozen=True)
 class TruePlant:
-    """The plant the loop runs on: same sizes as the model, possibly other numbers.
+    """The plant the loop runs on: the model's inputs and outputs, possibly other numbers.
+
+    Its state count ``nt`` may differ from the model's ``n`` (a longer dead time, a lag the
+    model leaves out); the run then starts from rest (see the module notes).  ``full_state``
+    reads the true state, so it needs ``nt = n``.
 
     Attributes
     ----------
-    a : ndarray, shape (n, n)
-    b : ndarray, shape (n, m)
-    c : ndarray, shape (p, n)
+    a : ndarray, shape (nt, nt)
+    b : ndarray, shape (nt, m)
+    c : ndarray, shape (p, nt)
+    b_disturbance : ndarray, shape (nt, md), optional
+        How the measured disturbances enter the true plant; required when the loop has
+        measured disturbances (``simulate_loop(..., b_disturbance=...)``).
     """
 
     a: NDArray[np.float64]
     b: NDArray[np.float64]
     c: NDArray[np.float64]
+    b_disturbance: NDArray[np.float64] | None = None
 
 
 @dataclass(frozen=True)
@@ -177,6 +195,9 @@ class Scenario:
         Number of simulated steps (>= 1).
     setpoint_changes, output_disturbances, input_disturbances : sequence of Event
         Applied in order of step; for equal steps the later in the sequence wins.
+    measured_disturbances : sequence of Event
+        Levels of the measured disturbances ``d_m`` (start at zero); only with
+        ``simulate_loop(..., b_disturbance=...)``.
     noise_std : ndarray, shape (p,), optional
         Standard deviation of the measurement noise per output (default: none).
     seed : int
@@ -195,6 +216,7 @@ class Scenario:
     setpoint_changes: Sequence[Event] = ()
     output_disturbances: Sequence[Event] = ()
     input_disturbances: Sequence[Event] = ()
+    measured_disturbances: Sequence[Event] = ()
     noise_std: NDArray[np.float64] | None = None
     seed: int = 0
     initial_state: NDArray[np.float64] | None = None
@@ -230,7 +252,7 @@ class Simulation:
         ``x(k|k)`` = [plant states; disturbance estimate].  The true state for ``full_state``.
     disturbance_estimates : ndarray, shape (steps, nd)
         The disturbance part of ``estimates``.
-    states : ndarray, shape (steps, n)
+    states : ndarray, shape (steps, nt)
         True plant states ``x(k)``.
     reports : list
         ``PolicyStep.report`` of every step (``None`` for the unconstrained policy).
@@ -241,6 +263,8 @@ class Simulation:
         ``u(-1)``.
     initial_setpoint : ndarray, shape (p,)
         Setpoint before step 0.
+    measured_disturbances : ndarray, shape (steps, md)
+        ``d_m(k)`` (no columns without measured disturbances).
     """
 
     time: NDArray[np.float64]
@@ -258,15 +282,22 @@ class Simulation:
     diverged_at: int | None
     initial_input: NDArray[np.float64]
     initial_setpoint: NDArray[np.float64]
+    measured_disturbances: NDArray[np.float64] = field(default_factory=lambda: np.zeros((0, 0)))
 
 
 def _held(events: Sequence[Event], steps: int, initial: NDArray[np.float64]) -> NDArray[np.float64]:
-    """Row ``k`` holds the value of the last event at or before ``k`` (``initial`` before)."""
+    """Row ``k`` holds the value of the last event at or before ``k`` (``initial`` before).
+
+    Each row is written once (an event fills up to the next one), so many events cost no more
+    than one.
+    """
     out = np.tile(initial, (steps, 1))
-    for event in sorted(events, key=lambda e: e.step):
+    ordered = sorted(events, key=lambda e: e.step)  # stable: at equal steps the later wins
+    for i, event in enumerate(ordered):
         value = np.asarray(event.value, dtype=float)
         assert 0 <= event.step < steps and value.shape == initial.shape, (event.step, value.shape)
-        out[event.step :] = value
+        end = ordered[i + 1].step if i + 1 < len(ordered) else steps
+        out[event.step : end] = value
     return out
 
 
@@ -284,6 +315,7 @@ def simulate_loop(
     plant: TruePlant | None = None,
     policy: MovePolicy | None = None,
     loop: ControlLoop | None = None,
+    b_disturbance: ArrayLike | None = None,
 ) -> Simulation:
     """Simulate the closed loop of a scenario (see the module notes for one step).
 
@@ -299,6 +331,10 @@ def simulate_loop(
         Default ``UnconstrainedPolicy(design.gain.horizon)``.
     loop : ControlLoop, optional
         ``control_loop(design, estimator)`` when already formed.
+    b_disturbance : array_like, shape (n, md), optional
+        The model's measured-disturbance matrix ``Bd``, in the units of the design: the
+        loop then reads ``scenario.measured_disturbances`` and feeds them forward (module
+        notes).  ``plant``, when given, must carry its own ``b_disturbance``.
 
     Returns
     -------
@@ -314,19 +350,32 @@ def simulate_loop(
     est = loop.estimator
     n, nd, na = est.state_size, est.disturbance_size, est.augmented_size
     m, p = est.b.shape[1], est.c_controlled.shape[0]
-    true = plant or TruePlant(est.model_a, est.model_b, est.model_c)
+    bd = np.zeros((n, 0)) if b_disturbance is None else np.asarray(b_disturbance, dtype=float)
+    md = bd.shape[1]
+    true = plant or TruePlant(est.model_a, est.model_b, est.model_c, bd)
     at, bt, ct = (np.asarray(v, dtype=float) for v in (true.a, true.b, true.c))
-    assert at.shape == (n, n) and bt.shape == (n, m) and ct.shape == (p, n), (at.shape, bt.shape, ct.shape)
+    nt = at.shape[0]
+    assert at.shape == (nt, nt) and bt.shape == (nt, m) and ct.shape == (p, nt), (at.shape, bt.shape, ct.shape)
+    assert nt == n or (scenario.initial_state is None and not est.full_state), (nt, n)
+    bdt = np.zeros((nt, 0)) if true.b_disturbance is None else np.asarray(true.b_disturbance, dtype=float)
+    assert bd.shape == (n, md) and bdt.shape == (nt, md), (bd.shape, bdt.shape)
     steps = int(scenario.steps)
     assert steps >= 1, steps
     policy = UnconstrainedPolicy(loop.horizon_gain) if policy is None else policy
 
     x0 = _vector(scenario.initial_state, n)
+    xt0 = x0 if nt == n else np.zeros(nt)
     u0 = _vector(scenario.initial_input, m)
-    r0 = ct @ x0 if scenario.initial_setpoint is None else _vector(scenario.initial_setpoint, p)
+    r0 = ct @ xt0 if scenario.initial_setpoint is None else _vector(scenario.initial_setpoint, p)
     setpoints = _held(scenario.setpoint_changes, steps, r0)
     d_out = _held(scenario.output_disturbances, steps, np.zeros(p))
     d_in = _held(scenario.input_disturbances, steps, np.zeros(m))
+    d_meas = _held(scenario.measured_disturbances, steps, np.zeros(md))
+    if md:
+        pred = loop.design.prediction
+        fd = disturbance_free_response(est.a, np.vstack([bd, np.zeros((nd, md))]), est.c_controlled,
+                                       prediction=pred.prediction, first_penalized=pred.first_penalized)
+        bda = np.vstack([bd, np.zeros((nd, md))])
     rng = np.random.default_rng(scenario.seed)
     noise = np.zeros((steps, p))
     if scenario.noise_std is not None:
@@ -351,11 +400,11 @@ def simulate_loop(
     targets = np.full((steps, p), np.nan)
     target_inputs = np.full((steps, m), np.nan)
     estimates = np.full((steps, na), np.nan)
-    states = np.full((steps, n), np.nan)
+    states = np.full((steps, nt), np.nan)
     reports: list[Mapping[str, Any] | None] = []
     diverged_at: int | None = None
 
-    x, u = x0, u0
+    x, u = xt0, u0
     xp = np.concatenate([x0, np.zeros(nd)])
     with np.errstate(over="ignore", invalid="ignore"):
         for k in range(steps):
@@ -369,6 +418,8 @@ def simulate_loop(
                 zs = zs + z_d @ d
                 us = us + u_d @ d
             free = fx @ xf + fu @ u
+            if md:
+                free = free + fd @ d_meas[k]
             error = (zs - free.reshape(np_, p)).reshape(-1)  # (1 (x) I_p) z_s - free
             result = policy(error=error, free_prediction=free, previous_input=u, step=k)
             du = np.asarray(result.move, dtype=float)
@@ -385,6 +436,9 @@ def simulate_loop(
             reports.append(result.report)
             x = at @ x + bt @ (u + d_in[k])
             xp = aa @ xf + ba @ u
+            if md:
+                x = x + bdt @ d_meas[k]
+                xp = xp + bda @ d_meas[k]
             if not (x @ x < DIVERGENCE_LIMIT and xp @ xp < DIVERGENCE_LIMIT and u @ u < DIVERGENCE_LIMIT):
                 if k + 1 < steps:
                     diverged_at = k + 1
@@ -406,4 +460,5 @@ def simulate_loop(
         diverged_at=diverged_at,
         initial_input=u0,
         initial_setpoint=r0,
+        measured_disturbances=d_meas,
     )
