@@ -63,6 +63,8 @@ class Caps:
     max_prediction_entries: int = 25_000_000
     #: Entries of the horizon gain ``Kh`` returned in a response.
     max_response_entries: int = 2_000_000
+    #: Values in one tuning sweep.
+    max_sweep_values: int = 50
 
 
 def pointer(*parts: str | int) -> str:

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import Literal
 
 import numpy as np
 from numpy.typing import NDArray
@@ -36,6 +37,7 @@ from service.solver.design import ControllerDesign, design_controller
 from service.solver.feedforward import disturbance_free_response, feedforward_gain
 from service.solver.gain import PredictiveGain
 from service.solver.plant import PlantProperties, plant_properties, plant_warnings
+from service.solver.tuning_advice import merge_warnings, tuning_advice
 from service.solver.scaling import ScaledPlant, scale_plant, unscale_feedforward, unscale_gain
 
 __all__ = [
@@ -58,6 +60,13 @@ class DesignInputs:
     prediction: int
     control: int
     first_penalized: int
+    terminal: Literal["none", "riccati"] = "none"
+    move_steps: tuple[int, ...] | None = None
+
+    @property
+    def free_moves(self) -> int:
+        """Moves per input the optimizer chooses: Hu, or the number of blocking steps."""
+        return self.control if self.move_steps is None else len(self.move_steps)
 
 
 @dataclass(frozen=True)
@@ -105,6 +114,23 @@ def _horizon_problems(request: DesignRequest, caps: Caps) -> list[FieldProblem]:
                 f"horizon ({h.prediction})",
             )
         )
+    if h.move_steps is not None:
+        steps = h.move_steps
+        if steps[0] != 0:
+            problems.append(FieldProblem(pointer("horizons", "move_steps", 0), "the first move step must be 0 (the move applied now)"))
+        for i in range(1, len(steps)):
+            if steps[i] <= steps[i - 1]:
+                problems.append(
+                    FieldProblem(pointer("horizons", "move_steps", i), f"move steps must increase; {steps[i]} follows {steps[i - 1]}")
+                )
+        for i, step in enumerate(steps):
+            if step >= h.control:
+                problems.append(
+                    FieldProblem(
+                        pointer("horizons", "move_steps", i),
+                        f"move step {step} is not inside the control horizon (steps 0 to {h.control - 1})",
+                    )
+                )
     if h.prediction > caps.max_prediction_horizon:
         problems.append(
             FieldProblem(
@@ -120,16 +146,17 @@ def _size_problems(request: DesignRequest, plant: DiscretePlant, caps: Caps) -> 
     h = request.horizons
     n, m, p = plant.states, plant.input_count, plant.output_count
     penalized = h.prediction - h.first_penalized + 1
-    hessian_size = h.control * m
+    moves = h.control if h.move_steps is None else len(h.move_steps)
+    hessian_size = moves * m
     if hessian_size > caps.max_hessian_size:
         return [
             FieldProblem(
                 pointer("horizons", "control"),
-                f"the Hessian would be {hessian_size} x {hessian_size} (control horizon {h.control} "
-                f"x {m} inputs); this service accepts at most {caps.max_hessian_size}",
+                f"the Hessian would be {hessian_size} x {hessian_size} ({moves} moves x {m} inputs); "
+                f"this service accepts at most {caps.max_hessian_size}",
             )
         ]
-    entries = penalized * p * (n + m + hessian_size)
+    entries = penalized * p * (n + m + h.control * m)
     if entries > caps.max_prediction_entries:
         return [
             FieldProblem(
@@ -177,6 +204,14 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
                 "every output weight is zero, so no output is controlled; give at least one a positive weight",
             )
         )
+    if request.weights.terminal == "riccati" and plant.b_disturbance is not None:
+        problems.append(
+            FieldProblem(
+                pointer("weights", "terminal"),
+                "a Riccati terminal weight together with measured disturbances is not supported yet: the "
+                "feed-forward gain would miss the terminal term. Leave out one of them",
+            )
+        )
     if not problems:
         problems += _size_problems(request, plant, caps)
     if problems:
@@ -190,6 +225,8 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         prediction=h.prediction,
         control=h.control,
         first_penalized=h.first_penalized,
+        terminal=request.weights.terminal,
+        move_steps=None if h.move_steps is None else tuple(h.move_steps),
     )
 
 
@@ -216,6 +253,8 @@ def compute_design(inputs: DesignInputs) -> DesignOutcome:
         control=inputs.control,
         first_penalized=inputs.first_penalized,
         input_labels=[s.name for s in plant.inputs],
+        terminal=inputs.terminal,
+        blocking=inputs.move_steps,
     )
     feedforward = None
     if scaled.b_disturbance is not None and sd is not None:
@@ -230,7 +269,10 @@ def compute_design(inputs: DesignInputs) -> DesignOutcome:
         gain=unscale_gain(design.gain, input_span=su, output_span=sz),
         feedforward=feedforward,
         properties=properties,
-        warnings=[*design.warnings, *plant_warnings(properties)],
+        warnings=[
+            *merge_warnings(design.warnings, tuning_advice(scaled.a, scaled.b, scaled.c, design, sample_time=plant.sample_time)),
+            *plant_warnings(properties),
+        ],
     )
 
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Literal
 
 from pydantic import Field
 
@@ -21,6 +21,11 @@ class Horizons(RequestModel):
     first_penalized: Horizon = Field(
         default=1, description="First penalized prediction step Hw, 1 <= Hw <= Hp (default 1)."
     )
+    move_steps: Annotated[list[Annotated[int, Field(strict=True, ge=0)]], Field(min_length=1)] | None = Field(
+        default=None,
+        description="Move blocking: the steps j (0-based, starting at 0, increasing, below Hu) at which "
+        "moves du(k+j) are allowed; between them the input is held. Default: a move at every step.",
+    )
 
 
 class Weights(RequestModel):
@@ -33,4 +38,10 @@ class Weights(RequestModel):
     move: Vector | Matrix = Field(
         description="R (move suppression): one non-negative number per manipulated variable, or a "
         "full symmetric positive-semidefinite m x m matrix."
+    )
+    terminal: Literal["none", "riccati"] = Field(
+        default="none",
+        description="'riccati' puts the solution of the discrete Riccati equation of the incremental "
+        "system on the last predicted [x; u] in place of the last step's output weight; with Hu = Hp "
+        "the gain is then the infinite-horizon LQR gain for any horizon.",
     )

@@ -159,3 +159,9 @@ def test_bad_transfer_matrices_name_the_element(client, edit, pointer):
 def test_bad_state_space_parts_name_the_field(client, example, edit, pointer):
     edit(example["model"])
     assert pointer in problem_pointers(client.post("/design", json=example))
+
+
+def test_terminal_weight_with_measured_disturbances_is_refused(client, example):
+    example["model"]["b_disturbance"] = [[0.05], [0.0], [0.02], [0.0]]
+    example["weights"]["terminal"] = "riccati"
+    assert "/weights/terminal" in problem_pointers(client.post("/design", json=example))

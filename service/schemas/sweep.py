@@ -1,0 +1,75 @@
+"""POST /design/sweep: one tuning parameter varied over a list of values."""
+
+from __future__ import annotations
+
+from typing import Annotated, Literal
+
+from pydantic import Field, model_validator
+
+from service.schemas.common import FiniteFloat, RequestModel, ResponseModel
+from service.schemas.design import ADVISORY, DesignRequest, WarningReport
+
+__all__ = ["SweepEntryReport", "SweepParameter", "SweepProblem", "SweepRequest", "SweepResponse"]
+
+SweepParameter = Literal["move_weight", "output_weight", "prediction", "control", "first_penalized"]
+HORIZON_PARAMETERS = frozenset({"prediction", "control", "first_penalized"})
+
+
+class SweepRequest(RequestModel):
+    """A base design and one parameter to vary over ``values``."""
+
+    design: DesignRequest = Field(description="The base design request; every entry changes only the swept parameter.")
+    parameter: SweepParameter = Field(
+        description="'move_weight' or 'output_weight' (of one signal, or of all), or a horizon: "
+        "'prediction', 'control' or 'first_penalized'."
+    )
+    signal: Annotated[int, Field(strict=True, ge=0)] | None = Field(
+        default=None,
+        description="For a weight: the 0-based index of the signal whose (diagonal) weight is swept; "
+        "null sets every signal's weight to the value.",
+    )
+    values: Annotated[list[FiniteFloat], Field(min_length=1)] = Field(
+        description="The values to try, in order: weights >= 0, horizons whole numbers >= 1."
+    )
+
+    @model_validator(mode="after")
+    def _values_fit_the_parameter(self) -> SweepRequest:
+        if self.parameter in HORIZON_PARAMETERS:
+            if self.signal is not None:
+                raise ValueError("'signal' applies to weights only; leave it out when sweeping a horizon")
+            bad = [v for v in self.values if v != int(v) or v < 1]
+            if bad:
+                raise ValueError(f"horizon values must be whole numbers >= 1; got {bad[0]:g}")
+        elif any(v < 0 for v in self.values):
+            raise ValueError("weight values must not be negative")
+        return self
+
+
+class SweepProblem(ResponseModel):
+    """Why one entry could not be designed: problem details for that value alone."""
+
+    type: str
+    detail: str
+    errors: list[dict[str, str]]
+
+
+class SweepEntryReport(ResponseModel):
+    """What the design gives at one value: the same numbers a separate /design call gives."""
+
+    value: float
+    status: Literal["designed", "failed"]
+    fingerprint: str = Field(description="Fingerprint of the design request with this value substituted.")
+    spectral_radius: float | None = None
+    stable: bool | None = None
+    condition_number: float | None = None
+    warnings: list[WarningReport] = Field(default_factory=list)
+    problem: SweepProblem | None = None
+
+
+class SweepResponse(ResponseModel):
+    """One entry per value, in the order given."""
+
+    parameter: SweepParameter
+    signal: int | None
+    entries: list[SweepEntryReport]
+    advisory: str = ADVISORY
