@@ -9,8 +9,9 @@ from fastapi import FastAPI
 
 from service import __version__
 from service.api.deps import get_settings
+from service.api.operations import install_operations
 from service.api.problems import install_problem_handlers
-from service.api.routes import design, health
+from service.api.routes import batch, design, health
 from service.api.settings import Settings
 from service.schemas.design import ADVISORY
 
@@ -48,4 +49,6 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     install_problem_handlers(app)
     app.include_router(design.router)
     app.include_router(health.router)
+    app.include_router(batch.router)
+    install_operations(app, chosen)  # last: it documents the routes included above
     return app

@@ -2,9 +2,13 @@
 
 from __future__ import annotations
 
-from pydantic import Field
-from pydantic_settings import BaseSettings, SettingsConfigDict
+from pathlib import Path
+from typing import Annotated, Any
 
+from pydantic import Field, PrivateAttr, SecretStr, field_validator, model_validator
+from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
+
+from service.api import settings_checks as checks
 from service.schemas.common import Caps
 
 __all__ = ["Settings"]
@@ -18,7 +22,9 @@ class Settings(BaseSettings):
     host: str = Field(default="127.0.0.1", description="Address to listen on.")
     port: int = Field(default=8000, ge=1, le=65535, description="TCP port to listen on.")
     workers: int = Field(default=1, ge=1, le=64, description="Worker processes.")
-    log_level: str = Field(default="info", description="Log level of the service.")
+    log_level: str = Field(
+        default="info", description="Log level of the service: critical, error, warning, info, debug."
+    )
 
     max_states: int = Field(default=500, ge=1, description="Largest state count accepted.")
     max_signals: int = Field(default=100, ge=1, description="Most inputs or outputs accepted.")
@@ -30,6 +36,58 @@ class Settings(BaseSettings):
     max_response_entries: int = Field(
         default=2_000_000, ge=1, description="Most entries of the horizon gain in a response."
     )
+
+    max_body_bytes: int = Field(
+        default=1_048_576, ge=1024, description="Largest request body in bytes; larger ones get 413."
+    )
+    max_batch_items: int = Field(default=100, ge=1, le=10_000, description="Most items in one batch.")
+    request_timeout_seconds: float = Field(
+        default=30.0, gt=0, le=3600, description="Compute time limit of one request, queueing included."
+    )
+    solver_processes: int = Field(
+        default=1, ge=1, le=64, description="Solver processes per worker (each runs one computation at a time)."
+    )
+    cors_origins: Annotated[tuple[str, ...], NoDecode] = Field(
+        default=(), description="Browser origins allowed by CORS, comma-separated; none by default."
+    )
+    api_keys: Annotated[tuple[SecretStr, ...], NoDecode] = Field(
+        default=(), description="API keys, comma-separated; with none (and no file) there is no authentication."
+    )
+    api_keys_file: Path | None = Field(default=None, description="File of API keys, one per line.")
+
+    _file_keys: tuple[str, ...] = PrivateAttr(default=())
+
+    @field_validator("cors_origins", "api_keys", mode="before")
+    @classmethod
+    def _split(cls, value: Any) -> Any:
+        return checks.split_list(value)
+
+    @field_validator("cors_origins")
+    @classmethod
+    def _origins(cls, value: tuple[str, ...]) -> tuple[str, ...]:
+        return tuple(checks.check_origins(value))
+
+    @field_validator("api_keys")
+    @classmethod
+    def _keys(cls, value: tuple[SecretStr, ...]) -> tuple[SecretStr, ...]:
+        checks.check_keys((k.get_secret_value() for k in value), source="MOVECAST_API_KEYS")
+        return value
+
+    @field_validator("log_level", mode="before")
+    @classmethod
+    def _level(cls, value: Any) -> Any:
+        return checks.check_log_level(value)
+
+    @model_validator(mode="after")
+    def _read_key_file(self) -> Settings:
+        if self.api_keys_file is not None:
+            self._file_keys = tuple(checks.read_key_file(self.api_keys_file))
+        return self
+
+    def api_key_values(self) -> tuple[str, ...]:
+        """Every accepted API key (environment and file), without repeats; empty: no auth."""
+        keys = [k.get_secret_value() for k in self.api_keys] + list(self._file_keys)
+        return tuple(dict.fromkeys(keys))
 
     def caps(self) -> Caps:
         """The size caps handed to the schema layer."""

@@ -23,6 +23,8 @@ import kubernetes_validate.utils
 import pytest
 import yaml
 
+from service.api.settings import Settings
+
 ROOT = pathlib.Path(__file__).resolve().parents[2]
 DEPLOY = ROOT / "deploy"
 KUBERNETES = DEPLOY / "kubernetes"
@@ -32,26 +34,7 @@ DOCKERFILE = DEPLOY / "Dockerfile"
 KUBERNETES_VERSION = "1.32.0"
 
 # The settings the service reads (service.api.settings.Settings, prefix MOVECAST_).
-SETTINGS_NAMES = frozenset(
-    {
-        "MOVECAST_HOST",
-        "MOVECAST_PORT",
-        "MOVECAST_WORKERS",
-        "MOVECAST_MAX_STATES",
-        "MOVECAST_MAX_SIGNALS",
-        "MOVECAST_MAX_PREDICTION_HORIZON",
-        "MOVECAST_MAX_HESSIAN_SIZE",
-        "MOVECAST_MAX_PREDICTION_ENTRIES",
-        "MOVECAST_MAX_RESPONSE_ENTRIES",
-        "MOVECAST_MAX_BODY_BYTES",
-        "MOVECAST_MAX_BATCH_ITEMS",
-        "MOVECAST_REQUEST_TIMEOUT_SECONDS",
-        "MOVECAST_CORS_ORIGINS",
-        "MOVECAST_API_KEYS",
-        "MOVECAST_API_KEYS_FILE",
-        "MOVECAST_LOG_LEVEL",
-    }
-)
+SETTINGS_NAMES = frozenset(f"MOVECAST_{name.upper()}" for name in Settings.model_fields)
 
 
 # --------------------------------------------------------------------------- loading

@@ -6,7 +6,9 @@ from typing import Annotated
 
 from fastapi import APIRouter, Body
 
+from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
+from service.api.metrics import observe_design
 from service.api.problems import PROBLEM_JSON
 from service.schemas.design import DesignRequest, DesignResponse
 from service.schemas.design_convert import run_design
@@ -40,6 +42,9 @@ def design(
         ),
     ],
     caps: CapsDep,
+    budget: BudgetDep,
 ) -> DesignResponse:
     """Design the predictive controller: gains, Hessian conditioning, closed-loop poles. Design aid only."""
-    return run_design(request, caps)
+    response = budget.run(run_design, request, caps, operation="design")
+    observe_design(response)
+    return response

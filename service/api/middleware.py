@@ -1,0 +1,211 @@
+"""ASGI middleware: request ids, access log, request metrics, the last-resort 500, body limit.
+
+Both classes are plain ASGI middleware (no ``BaseHTTPMiddleware``), so they stream and add
+nothing per request but a few dictionary look-ups.  The order, outermost first, is set in
+:mod:`service.api.operations`: request context, CORS, API key, body limit, the app.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import re
+import time
+import uuid
+from typing import Any
+
+from starlette.datastructures import Headers, MutableHeaders
+from starlette.routing import BaseRoute, Match
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
+
+from service.api.logs import request_id_var
+from service.api.metrics import REQUEST_SECONDS, REQUESTS, count_rejection
+from service.api.problems import PROBLEM_JSON, problem_response
+
+try:  # FastAPI >= 0.150 keeps included routers as branches; this walks their routes
+    from fastapi.routing import iter_route_contexts as _flatten
+except ImportError:  # pragma: no cover - older FastAPI lists every route in app.routes
+    _flatten = None
+
+__all__ = [
+    "BodyLimitMiddleware",
+    "REQUEST_ID_HEADER",
+    "RequestContextMiddleware",
+    "flat_routes",
+    "route_template",
+    "sane_request_id",
+]
+
+REQUEST_ID_HEADER = "X-Request-ID"
+#: A caller's request id is echoed when it is 1 to 128 of these characters (UUIDs, ULIDs,
+#: trace ids); anything else is replaced by a fresh id, so logs never carry junk.
+_SANE_ID = re.compile(r"[A-Za-z0-9._:-]{1,128}")
+UNMATCHED = "<unmatched>"
+#: Largest problem body read back to find its kind for the rejection metric.
+_PEEK_BYTES = 65_536
+
+access_log = logging.getLogger("movecast.access")
+error_log = logging.getLogger("movecast.errors")
+
+
+def sane_request_id(value: str | None) -> str | None:
+    """Return ``value`` when it is a usable request id, else ``None``."""
+    return value if value is not None and _SANE_ID.fullmatch(value) else None
+
+
+def flat_routes(routes: list[BaseRoute]) -> list[Any]:
+    """Every route of an app, included routers walked through; each has ``path``, ``matches``."""
+    return list(_flatten(routes)) if _flatten is not None else list(routes)
+
+
+def route_template(scope: Scope) -> str:
+    """The path template of the route a request goes to (``/design``), or ``<unmatched>``."""
+    app = scope.get("app")
+    partial = None
+    for route in flat_routes(getattr(app, "routes", [])):
+        match, _ = route.matches(scope)
+        if match is Match.FULL:
+            return str(route.path)
+        if match is Match.PARTIAL and partial is None:
+            partial = str(route.path)
+    return partial or UNMATCHED
+
+
+class RequestContextMiddleware:
+    """Give every request an id, log one line for it, count it, and never leak a traceback.
+
+    - ``X-Request-ID``: the caller's when sane (:func:`sane_request_id`), else a new UUID;
+      set on every response, errors included, and on every log line of the request.
+    - One ``movecast.access`` line per request: method, route, status, duration_ms,
+      request_id, client.
+    - ``movecast_requests_total`` and ``movecast_request_duration_seconds`` by route
+      template; problem responses also count in ``movecast_rejected_requests_total``.
+    - An exception escaping the app (a handler, another middleware) is logged with its
+      traceback and answered as a 500 problem without one.
+    """
+
+    def __init__(self, app: ASGIApp) -> None:
+        self.app = app
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        start = time.perf_counter()
+        request_id = sane_request_id(Headers(scope=scope).get(REQUEST_ID_HEADER)) or uuid.uuid4().hex
+        token = request_id_var.set(request_id)
+        route = route_template(scope)
+        state: dict[str, Any] = {"status": 500, "started": False, "problem": None}
+
+        async def send_with_id(message: Message) -> None:
+            if message["type"] == "http.response.start":
+                state["started"] = True
+                state["status"] = message["status"]
+                headers = MutableHeaders(scope=message)
+                headers[REQUEST_ID_HEADER] = request_id
+                if headers.get("content-type", "").startswith(PROBLEM_JSON):
+                    state["problem"] = bytearray()
+            elif message["type"] == "http.response.body" and state["problem"] is not None:
+                if len(state["problem"]) < _PEEK_BYTES:
+                    state["problem"] += message.get("body", b"")
+            await send(message)
+
+        try:
+            await self.app(scope, receive, send_with_id)
+        except Exception:
+            error_log.exception("unhandled error", extra={"route": route})
+            if not state["started"]:
+                response = problem_response(
+                    "internal-error",
+                    500,
+                    "The service failed to answer; the error is logged with this request's id.",
+                    scope.get("path", ""),
+                )
+                await response(scope, receive, send_with_id)
+        finally:
+            self._record(scope, route, state, time.perf_counter() - start)
+            request_id_var.reset(token)
+
+    @staticmethod
+    def _record(scope: Scope, route: str, state: dict[str, Any], seconds: float) -> None:
+        method, status = scope.get("method", ""), str(state["status"])
+        REQUESTS.labels(method=method, route=route, status=status).inc()
+        REQUEST_SECONDS.labels(method=method, route=route, status=status).observe(seconds)
+        if state["problem"]:
+            try:
+                kind = str(json.loads(bytes(state["problem"])).get("type", "")).rsplit(":", 1)[-1]
+            except (ValueError, AttributeError):
+                kind = ""
+            count_rejection(kind)
+        client = scope.get("client")
+        access_log.info(
+            "%s %s %s",
+            method,
+            route,
+            status,
+            extra={
+                "method": method,
+                "route": route,
+                "status": state["status"],
+                "duration_ms": round(seconds * 1000, 3),
+                "client": client[0] if client else None,
+            },
+        )
+
+
+class BodyLimitMiddleware:
+    """Refuse a request body larger than ``max_bytes`` with 413, before anything parses it.
+
+    The declared ``Content-Length`` is checked first (nothing is read when it is too big);
+    then the body is read as it streams and counted, which also covers chunked bodies and
+    bodies longer than declared.  The body, once read within the limit, is handed on whole.
+    """
+
+    def __init__(self, app: ASGIApp, *, max_bytes: int) -> None:
+        self.app = app
+        self.max_bytes = max_bytes
+
+    def _too_large(self, scope: Scope) -> Any:
+        return problem_response(
+            "payload-too-large",
+            413,
+            f"The request body exceeds this service's limit of {self.max_bytes:,} bytes.",
+            scope.get("path", ""),
+        )
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        declared = Headers(scope=scope).get("content-length")
+        if declared is not None:
+            if not declared.strip().isdigit():
+                response = problem_response(
+                    "malformed-body", 400, "The Content-Length header is not a number.", scope.get("path", "")
+                )
+                await response(scope, receive, send)
+                return
+            if int(declared) > self.max_bytes:
+                await self._too_large(scope)(scope, receive, send)
+                return
+        body = bytearray()
+        pending: list[Message] = []
+        while True:
+            message = await receive()
+            if message["type"] != "http.request":
+                pending.append(message)
+                break
+            body += message.get("body", b"")
+            if len(body) > self.max_bytes:
+                await self._too_large(scope)(scope, receive, send)
+                return
+            if not message.get("more_body", False):
+                break
+        first: list[Message] = [{"type": "http.request", "body": bytes(body), "more_body": False}, *pending]
+
+        async def replay() -> Message:
+            if first:
+                return first.pop(0)
+            return await receive()
+
+        await self.app(scope, replay, send)

@@ -1,0 +1,166 @@
+"""What makes the app fit to run as infrastructure, installed in one call by the factory.
+
+:func:`install_operations` adds, around the routers already included:
+
+- the middleware stack, outermost first: request context (request id, access log, request
+  metrics, last-resort 500), CORS (only with ``MOVECAST_CORS_ORIGINS``), API key (only with
+  keys), body limit (``MOVECAST_MAX_BODY_BYTES``);
+- GET /metrics;
+- handlers for the compute time limit (503) and a failed solver process (500);
+- the shared error responses (401, 413, 503, 500) in the OpenAPI document of every route
+  they can come from;
+- at start-up: a warning when no API key is configured, the solver processes started, and
+  a SIGTERM hook that turns /readyz to 503 at the *start* of shutdown (the server goes on
+  answering in-flight requests; readiness must not wait for them).
+"""
+
+from __future__ import annotations
+
+import copy
+import logging
+import signal
+import threading
+from collections.abc import AsyncIterator, Callable
+from contextlib import asynccontextmanager
+from types import FrameType
+from typing import Any
+
+from fastapi import FastAPI, Request
+from fastapi.responses import JSONResponse
+from starlette.middleware.cors import CORSMiddleware
+
+from service.api import metrics
+from service.api.compute import SolverCrashed, TimeLimitExceeded, solver_pool
+from service.api.middleware import REQUEST_ID_HEADER, BodyLimitMiddleware, RequestContextMiddleware
+from service.api.problems import PROBLEM_JSON, problem_response
+from service.api.security import OPEN_PATHS, ApiKeyMiddleware, KeyRing
+from service.api.settings import Settings
+
+__all__ = ["COMMON_RESPONSES", "install_operations"]
+
+log = logging.getLogger("movecast.operations")
+
+COMMON_RESPONSES: dict[int | str, dict[str, Any]] = {
+    401: {"description": "An API key is required and was missing or not accepted.", "content": {PROBLEM_JSON: {}}},
+    413: {"description": "The request body exceeds the size limit.", "content": {PROBLEM_JSON: {}}},
+    500: {"description": "The service failed; the error is logged with the request id.", "content": {PROBLEM_JSON: {}}},
+    503: {
+        "description": "The compute time limit ran out (waiting for a solver or solving).",
+        "content": {PROBLEM_JSON: {}},
+    },
+}
+
+
+def _document_common_responses(app: FastAPI) -> None:
+    """Add the shared error responses to every operation outside the open paths.
+
+    Done on the generated document (not on the routes), so routes included later and any
+    router layout of FastAPI are covered alike.
+    """
+    generate = app.openapi
+
+    def openapi() -> dict[str, Any]:
+        if app.openapi_schema is None:
+            schema = generate()
+            for path, operations in schema.get("paths", {}).items():
+                if path in OPEN_PATHS:
+                    continue
+                for operation in operations.values():
+                    for status, response in COMMON_RESPONSES.items():
+                        operation.setdefault("responses", {}).setdefault(str(status), copy.deepcopy(response))
+        return app.openapi_schema
+
+    app.openapi = openapi  # type: ignore[method-assign]
+
+
+def _install_handlers(app: FastAPI) -> None:
+    async def _time_limit(request: Request, exc: Exception) -> JSONResponse:
+        assert isinstance(exc, TimeLimitExceeded)
+        where = "waiting for a free solver" if exc.queued else "solving"
+        headers = {"Retry-After": "1"} if exc.queued else None
+        return problem_response(
+            "time-limit",
+            503,
+            f"The compute time limit of {exc.seconds:g} s ran out while {where}. "
+            + ("Retry later." if exc.queued else "Shorten the horizons or reduce the model."),
+            request.url.path,
+            headers=headers,
+        )
+
+    async def _crashed(request: Request, exc: Exception) -> JSONResponse:
+        log.error("solver failure: %s", exc)
+        return problem_response(
+            "internal-error", 500, "The service failed to answer; the error is logged.", request.url.path
+        )
+
+    app.add_exception_handler(TimeLimitExceeded, _time_limit)
+    app.add_exception_handler(SolverCrashed, _crashed)
+
+
+def _sigterm_hook(app: FastAPI) -> Callable[[], None]:
+    """Chain a SIGTERM handler that marks the app not ready; return a function undoing it.
+
+    Only the main thread may set signal handlers: under a test client (lifespan in another
+    thread) nothing is installed.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        return lambda: None
+    previous = signal.getsignal(signal.SIGTERM)
+
+    def on_sigterm(signum: int, frame: FrameType | None) -> None:
+        app.state.ready = False
+        log.info("SIGTERM received: not ready; finishing in-flight requests")
+        if callable(previous):
+            previous(signum, frame)
+
+    signal.signal(signal.SIGTERM, on_sigterm)
+
+    def undo() -> None:
+        if signal.getsignal(signal.SIGTERM) is on_sigterm:
+            signal.signal(signal.SIGTERM, previous)
+
+    return undo
+
+
+def _wrap_lifespan(app: FastAPI, settings: Settings) -> None:
+    inner = app.router.lifespan_context
+
+    @asynccontextmanager
+    async def lifespan(app_: FastAPI) -> AsyncIterator[Any]:
+        if not settings.api_key_values():
+            log.warning(
+                "no API key configured (MOVECAST_API_KEYS, MOVECAST_API_KEYS_FILE): "
+                "every endpoint is open to anyone who can reach this port"
+            )
+        solver_pool(processes=settings.solver_processes).start()
+        async with inner(app_) as state:
+            undo = _sigterm_hook(app_)
+            try:
+                yield state
+            finally:
+                undo()
+
+    app.router.lifespan_context = lifespan
+
+
+def install_operations(app: FastAPI, settings: Settings) -> None:
+    """Install middleware, /metrics, handlers, shared responses and start-up hooks."""
+    app.include_router(metrics.router)
+    _install_handlers(app)
+    _document_common_responses(app)
+    _wrap_lifespan(app, settings)
+    # add_middleware puts each new one outside the previous: add innermost first.
+    app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes)
+    keys = KeyRing(settings.api_key_values())
+    if keys:
+        app.add_middleware(ApiKeyMiddleware, keys=keys)
+    if settings.cors_origins:
+        app.add_middleware(
+            CORSMiddleware,
+            allow_origins=list(settings.cors_origins),
+            allow_methods=["GET", "POST"],
+            allow_headers=["Authorization", "Content-Type", REQUEST_ID_HEADER],
+            expose_headers=[REQUEST_ID_HEADER],
+            max_age=600,
+        )
+    app.add_middleware(RequestContextMiddleware)
