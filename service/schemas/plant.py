@@ -348,6 +348,8 @@ def _state_labels(
         output = outputs[role.output].name if role.output is not None else None
         if role.kind == "element":
             labels.append(f"lag {role.lag + 1} of {output} from {column}")
+        elif role.kind == "output_integrator":
+            labels.append(f"{output} integrator")
         elif role.kind == "input_delay":
             labels.append(f"{column}(k-{role.lag})")
         else:

@@ -44,7 +44,36 @@ and the ``e_i`` are chosen to minimise it (a tiny integer program, solved exactl
 ``scipy.optimize.milp``; ties go to the input side).  With all ``e_i = 0`` this is one
 register per input as long as its column's longest delay, which never needs more states
 than delaying each input by its column's shortest delay and the elements by the rest.
-The element dynamics add their orders (number of time constants, plus one if integrating).
+
+Sharing the integrators
+-----------------------
+All integrating elements of a row, manipulated and disturbance columns alike, share one
+integrator at the output, because ::
+
+    sum_j K_j h_j(s) e^(-theta_j s) u_j / s  =  (1/s) sum_j K_j h_j(s) e^(-theta_j s) u_j
+
+with ``h_j = (L_j s + 1) / prod (tau s + 1)`` the element's non-integrating part.  (A level
+driven by a valve and by a measured inflow is one level: with an integrator per element the
+inflow's integrator is a mode at ``z = 1`` that no manipulated input reaches, and every
+closed loop would keep a pole at 1.)  The sampled form is exact as well, whatever the
+fractional dead times: in the chain realization the integrator ``q_j`` comes last and
+nothing depends on it, so ``Ac``, and with it ``e^(Ac t)`` and every term of the sampled
+element above, is block lower triangular with a 1 on the integrator's diagonal ::
+
+    xi_lag(k+1) = Phi_lag xi_lag(k) + Gamma_lag v(k)
+    q_j(k+1)    = q_j(k) + phi_j xi_lag(k) + gamma_j v(k)
+    y_j(k)      = K_j q_j(k) + c_j xi_lag(k) + D_j v(k)
+
+(``phi_j xi_lag + gamma_j v`` is the exact integral over one sample of the element's lagged,
+delayed, held input, the switch at ``f Ts`` included; ``c_j = K_j L_j`` on the last lag).
+The row's output sees the integrators only through ``Q_i = sum_j K_j q_j``, and ::
+
+    Q_i(k+1) = Q_i(k) + sum_j K_j (phi_j xi_lag,j(k) + gamma_j v_j(k))
+
+so ``Q_i``, in the output's units, replaces them all with the same output sequence for every
+input sequence (a linear change of variables that drops states the output never sees
+separately).  The element dynamics then add one state per time constant, plus one integrator
+per output row that has an integrating element.
 """
 
 from __future__ import annotations
@@ -121,7 +150,11 @@ class TransferElement:
 
     @property
     def order(self) -> int:
-        """Number of states of the element's dynamics (without its dead time)."""
+        """Number of states of the element's dynamics alone (without its dead time).
+
+        In a transfer matrix the integrating elements of a row share one integrator, so
+        there an element holds only its ``len(time_constants)`` lag states.
+        """
         return len(self.time_constants) + int(self.integrating)
 
 
@@ -132,19 +165,22 @@ class StateRole:
     Attributes
     ----------
     kind : str
-        ``"element"`` (a state of the dynamics of element ``(output, column)``),
+        ``"element"`` (a lag state of element ``(output, column)``),
+        ``"output_integrator"`` (the integrator shared by all integrating elements of row
+        ``output``, in the output's units),
         ``"input_delay"`` (input ``column`` as it was ``lag`` samples ago) or
         ``"output_delay"`` (the summed response of output ``output`` before the dead time
         moved to its end, as it was ``lag`` samples ago).
     output : int or None
-        Output (row) index, for ``"element"`` and ``"output_delay"``.
+        Output (row) index, for ``"element"``, ``"output_integrator"`` and
+        ``"output_delay"``.
     column : int or None
         Column index in its grid, for ``"element"`` and ``"input_delay"``.
     disturbance : bool
         ``column`` indexes the disturbance grid rather than the manipulated inputs.
     lag : int
         Delay states: samples back (from 1).  Element states: the state's place in the
-        element's chain of lags (from 0).
+        element's chain of lags (from 0).  0 for an output integrator.
     """
 
     kind: str
@@ -159,6 +195,8 @@ class StateRole:
         out = f"y{(self.output or 0) + 1}"
         if self.kind == "element":
             return f"state {self.lag + 1} of element ({out}, {col})"
+        if self.kind == "output_integrator":
+            return f"integrator of {out}"
         if self.kind == "input_delay":
             return f"{col} {self.lag} sample{'s' if self.lag != 1 else ''} ago"
         return f"response of {out} {self.lag} sample{'s' if self.lag != 1 else ''} ago"
@@ -361,6 +399,11 @@ def _split_delays(
     return out, regs
 
 
+def _integrates(row: list[TransferElement | None]) -> bool:
+    """The row has an integrating element (and so one shared output integrator)."""
+    return any(el is not None and el.integrating for el in row)
+
+
 def _plan(rows: Rows, sample_time: float) -> tuple[list[int], list[int]]:
     """Output delays and input register lengths for the elements' whole delays."""
     delays = {
@@ -386,8 +429,8 @@ def transfer_state_count(
     assert sample_time > 0.0, sample_time
     rows, _ = _columns(elements, disturbance_elements)
     out, regs = _plan(rows, sample_time)
-    dynamics = sum(el.order for row in rows for el in row if el is not None)
-    return dynamics + sum(out) + sum(regs)
+    lags = sum(len(el.time_constants) for row in rows for el in row if el is not None)
+    return lags + sum(map(_integrates, rows)) + sum(out) + sum(regs)
 
 
 def transfer_matrix_model(
@@ -414,7 +457,8 @@ def transfer_matrix_model(
     Returns
     -------
     SampledTransferModel
-        With ``transfer_state_count(...)`` states: element orders plus shared delays.
+        With ``transfer_state_count(...)`` states: the elements' lags, one integrator per
+        row with integrating elements, and the shared delays.
 
     Raises
     ------
@@ -424,9 +468,10 @@ def transfer_matrix_model(
 
     Notes
     -----
-    The module docstring derives the sampled element and the delay sharing.  The element
-    states come first (row by row, inputs then disturbances), then each column's input
-    register, then each output's register; ``states`` says which is which.
+    The module docstring derives the sampled element, the delay sharing and the shared
+    integrators.  The element states come first (row by row: the lags of each element,
+    inputs then disturbances, then the row's integrator if it has one), then each column's
+    input register, then each output's register; ``states`` says which is which.
     """
     assert sample_time > 0.0, sample_time
     ts = float(sample_time)
@@ -436,6 +481,7 @@ def transfer_matrix_model(
 
     sampled: dict[tuple[int, int], tuple] = {}
     roles: list[StateRole] = []
+    integrator: dict[int, int] = {}  # row -> index of its shared integrator state
     for i, row in enumerate(rows):
         for j, el in enumerate(row):
             if el is None:
@@ -443,7 +489,11 @@ def transfer_matrix_model(
             where = f"{pointer}/{i}/{j}" if j < m else f"{disturbance_pointer}/{i}/{j - m}"
             sampled[i, j] = (len(roles), *_sampled(el, ts, where))
             col = j - m if j >= m else j
-            roles += [StateRole("element", i, col, j >= m, s) for s in range(el.order)]
+            lags = len(el.time_constants)
+            roles += [StateRole("element", i, col, j >= m, s) for s in range(lags)]
+        if _integrates(row):
+            integrator[i] = len(roles)
+            roles.append(StateRole("output_integrator", i, None, False, 0))
     reg_start = []
     for j in range(columns):
         reg_start.append(len(roles))
@@ -471,8 +521,16 @@ def transfer_matrix_model(
         if out[i]:
             c[i, out_start[i] + out[i] - 1] = 1.0
 
+    for i, q in integrator.items():
+        a[q, q] = 1.0
+        if out[i]:
+            a[out_start[i], q] = 1.0
+        else:
+            c[i, q] = 1.0
     for (i, j), (start, phi, gamma, cp, dp, h) in sampled.items():
-        k = phi.shape[0]
+        el = rows[i][j]
+        assert el is not None
+        k = len(el.time_constants)  # the element's own (lag) states
         lag = h - out[i]  # samples back in input j's register
         # the element's input v = u_j(k - lag): the input itself, or a register state
         if lag == 0:
@@ -480,14 +538,21 @@ def transfer_matrix_model(
         else:
             into_state, into_output, col = a, c, reg_start[j] + lag - 1
         block = slice(start, start + k)
-        a[block, block] = phi
-        into_state[block, col] += gamma[:, 0]
+        a[block, block] = phi[:k, :k]
+        into_state[block, col] += gamma[:k, 0]
+        if el.integrating:
+            # its integrator (the last chain state, weighted K in the output) joins the
+            # row's: Q(k+1) = Q(k) + K (phi_row xi_lag(k) + gamma_q v(k)); module docstring
+            assert abs(phi[k, k] - 1.0) <= 1e-12 and not phi[:k, k].any() and cp[0, k] == el.gain
+            q = integrator[i]
+            a[q, block] += el.gain * phi[k, :k]
+            into_state[q, col] += el.gain * gamma[k, 0]
         if out[i]:
             # the element's response enters the first cell of output i's register
-            a[out_start[i], block] += cp[0]
+            a[out_start[i], block] += cp[0, :k]
             into_state[out_start[i], col] += dp
         else:
-            c[i, block] += cp[0]
+            c[i, block] += cp[0, :k]
             into_output[i, col] += dp
 
     has_disturbance = disturbance_elements is not None

@@ -100,7 +100,8 @@ def test_sampled_step_equals_analytic_step_at_the_sample_instants(element: Trans
     y = simulate_step(model, 0, steps)[:, 0]
     expected = analytic_step(element, ts * np.arange(steps + 1))
     np.testing.assert_allclose(y, expected, rtol=1e-10, atol=1e-11 * abs(element.gain) * steps)
-    # the element's order plus one state per whole or started sample of dead time
+    # the element's order plus one state per whole or started sample of dead time (an
+    # integrating element's integrator is its row's shared one: still one state here)
     whole, fraction = delay_samples(element.dead_time, ts)
     assert model.state_count == element.order + whole + (fraction > 0)
 
@@ -297,3 +298,66 @@ def test_lag_too_fast_for_the_sample_time_is_a_numerical_error_naming_the_elemen
             [[E(1.0, (1.0,))]], sample_time=1.0, disturbance_elements=[[None, el]]
         )
     assert caught.value.pointer == "/model/disturbance_elements/0/1"
+
+
+# Two levels.  y1 integrates u1 (0.5/s, dead time 0.4 Ts: a started sample), u2 through a
+# lag (-0.3/(s (2s + 1))) and the measured disturbance d1 (0.2/s, dead time 1.5 Ts), and d2
+# adds a settling lag 1/(3s + 1); y2 integrates u1 (0.1/s) and d2 (0.7/s, dead time 0.2 Ts).
+LEVELS = [
+    [E(0.5, (), 0.4, integrating=True), E(-0.3, (2.0,), 0.0, integrating=True)],
+    [E(0.1, (), 0.0, integrating=True), None],
+]
+LEVEL_INFLOWS = [
+    [E(0.2, (), 1.5, integrating=True), E(1.0, (3.0,), 0.0)],
+    [None, E(0.7, (), 0.2, integrating=True)],
+]
+
+
+def test_integrating_elements_of_a_row_share_one_integrator_and_stay_exact() -> None:
+    ts = 1.0
+    model = transfer_matrix_model(LEVELS, sample_time=ts, disturbance_elements=LEVEL_INFLOWS)
+    # By hand: whole or started delay samples 1, 0, 2, 0 on row 1 and 0, 1 on row 2.  Both
+    # rows have a delay-free element, so nothing moves to the outputs; the registers are
+    # u1: 1, u2: 0, d1: 2, d2: 1 = 4 cells.  Two lags, one integrator per row: 4 + 2 + 2 = 8
+    # states (an integrator per integrating element would take 4 + 2 + 5 = 11).
+    assert model.state_count == transfer_state_count(
+        LEVELS, sample_time=ts, disturbance_elements=LEVEL_INFLOWS
+    ) == 8
+    assert model.input_delays == (1, 0, 2, 1) and model.output_delays == (0, 0)
+    integrators = [s for s in model.states if s.kind == "output_integrator"]
+    assert [s.describe() for s in integrators] == ["integrator of y1", "integrator of y2"]
+    # Exactness at the sample instants, every column against the table step responses.
+    steps = 30
+    times = ts * np.arange(steps + 1)
+    for disturbance, grid in ((False, LEVELS), (True, LEVEL_INFLOWS)):
+        for j in range(2):
+            y = simulate_step(model, j, steps, disturbance=disturbance)
+            for i in range(2):
+                el = grid[i][j]
+                expected = np.zeros(steps + 1) if el is None else analytic_step(el, times)
+                np.testing.assert_allclose(y[:, i], expected, rtol=1e-11, atol=1e-12)
+    # Two modes at z = 1 (one per level), both reachable from the manipulated inputs:
+    # PBH test, rank [A - I, B] = n (the ramp rates [[0.5, -0.3], [0.1, 0]] are independent).
+    eigenvalues = np.linalg.eigvals(model.a)
+    assert np.sum(np.abs(eigenvalues - 1.0) < 1e-9) == 2
+    n = model.state_count
+    assert np.linalg.matrix_rank(np.hstack([model.a - np.eye(n), model.b])) == n
+
+
+def test_row_integrator_behind_an_output_delay() -> None:
+    # A common analyser dead time of 3 samples on both integrating elements of one row (and
+    # 3.5 on a disturbance): the 3 samples move to the output, after the shared integrator.
+    # By hand: 1 integrator + 3 output cells + 1 cell for the disturbance's started sample.
+    row = [[E(0.4, (), 3.0, integrating=True), E(-0.2, (1.5,), 3.0, integrating=True)]]
+    dist = [[E(0.3, (), 3.5, integrating=True)]]
+    model = transfer_matrix_model(row, sample_time=1.0, disturbance_elements=dist)
+    assert model.state_count == transfer_state_count(row, sample_time=1.0, disturbance_elements=dist) == 1 + 1 + 3 + 1
+    assert model.output_delays == (3,) and model.input_delays == (0, 0, 1)
+    for disturbance, grid in ((False, row), (True, dist)):
+        for j, el in enumerate(grid[0]):
+            np.testing.assert_allclose(
+                simulate_step(model, j, 25, disturbance=disturbance)[:, 0],
+                analytic_step(el, np.arange(26.0)),
+                rtol=1e-11,
+                atol=1e-12,
+            )
