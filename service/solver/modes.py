@@ -1,0 +1,217 @@
+"""Plant modes that no manipulated input can move (PBH controllability test).
+
+An eigenvalue ``lambda`` of ``A`` is an uncontrollable mode of ``x(k+1) = A x(k) + B u(k)``
+when some left eigenvector ``w`` (``w' A = lambda w'``) is blind to the inputs, ``w' B = 0``;
+equivalently (the Popov-Belevitch-Hautus test, standard linear systems theory) ::
+
+    rank [A - lambda I, B] < n
+
+and ``n - rank`` independent such ``w`` exist.  Then ``w' x(k) = lambda^k w' x(0)`` whatever
+the inputs, so with any state feedback, the predictive law ``du = Kr r - Kx x - Ku u(k-1)``
+included, ``[w; 0]`` is a left eigenvector of the closed loop on ``[x; u(k-1)]`` (its
+``B``-columns vanish): ``lambda`` appears unchanged among the closed-loop poles.  Inside the
+unit circle that is harmless (the mode decays by itself); on or outside it no tuning can make
+the loop stable.  Typical causes are a realization with a separate integrator for a
+disturbance path (a level integrating both a valve and a measured inflow modelled as two
+integrators), or a genuine disturbance mode (a drifting load the inputs can only offset).
+
+Numerical rank
+--------------
+The rank is counted by the singular values of ``[A - lambda I, B]``: those above
+``tolerance`` times the largest one (default ``1e-9``, common practice).  Input units are
+arbitrary, so each nonzero column of ``B`` is first scaled to the 2-norm of ``A`` (to 1 when
+``A`` is zero); this changes no rank in exact arithmetic and keeps a small-unit input from
+looking uncontrollable.  Eigenvalues closer than ``1e-6`` (relative) are treated as one
+repeated eigenvalue, tested at each computed copy, with the largest rank drop kept (at most
+the number of copies).
+
+The count is geometric: ``n - rank`` at ``lambda`` is the number of independent Jordan chains
+of ``lambda`` in the uncontrollable part.  It equals ``n - rank [B, AB, ..., A^(n-1) B]`` (the
+Kalman rank test) whenever that part has no Jordan block longer than one.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+import scipy.linalg
+from numpy.typing import ArrayLike, NDArray
+
+from service.solver.analysis import UNIT_CIRCLE_MARGIN, Diagnostic
+
+__all__ = [
+    "RANK_TOLERANCE",
+    "uncontrollable_mode_warnings",
+    "uncontrollable_modes",
+]
+
+#: Relative singular-value threshold of the PBH rank (common practice).
+RANK_TOLERANCE = 1e-9
+#: Eigenvalues this close (relative to ``max(1, |lambda|)``) count as one repeated eigenvalue.
+_SAME_EIGENVALUE = 1e-6
+#: A state is named in a warning when its weight in the blind direction is at least this
+#: fraction of the largest.
+_NAMED_SHARE = 0.1
+#: At most this many states are named per mode.
+_NAMED_MOST = 3
+
+
+def _scaled_inputs(a: NDArray[np.float64], b: NDArray[np.float64]) -> NDArray[np.float64]:
+    """``B`` with each nonzero column scaled to ``||A||_2`` (or 1)."""
+    scale = float(np.linalg.norm(a, 2)) if a.size else 0.0
+    scale = scale if scale > 0.0 else 1.0
+    norms = np.linalg.norm(b, axis=0)
+    factors = np.divide(scale, norms, out=np.zeros_like(norms), where=norms > 0.0)
+    return b * factors
+
+
+def _blind_directions(
+    a: NDArray[np.float64], b: NDArray[np.float64], z: complex, tolerance: float
+) -> NDArray[np.complex128]:
+    """Orthonormal ``w`` (columns, shape (n, n - rank)) with ``w^H [A - z I, B] ~ 0``."""
+    n = a.shape[0]
+    pbh = np.hstack([a - z * np.eye(n), b.astype(complex)])
+    u, s, _ = np.linalg.svd(pbh)
+    floor = tolerance * max(float(s[0]) if s.size else 0.0, np.finfo(float).tiny)
+    rank = int(np.count_nonzero(s > floor))
+    return u[:, rank:]
+
+
+def _clusters(eigenvalues: NDArray[np.complex128]) -> list[list[complex]]:
+    """Group eigenvalues closer than :data:`_SAME_EIGENVALUE` (relative)."""
+    groups: list[list[complex]] = []
+    for z in eigenvalues:
+        for group in groups:
+            if abs(z - group[0]) <= _SAME_EIGENVALUE * max(1.0, abs(group[0])):
+                group.append(complex(z))
+                break
+        else:
+            groups.append([complex(z)])
+    return groups
+
+
+def _modes(
+    a: NDArray[np.float64], b: NDArray[np.float64], tolerance: float
+) -> list[tuple[complex, NDArray[np.complex128]]]:
+    """Each uncontrollable eigenvalue with its orthonormal blind directions."""
+    n = a.shape[0]
+    if n == 0:
+        return []
+    b_scaled = _scaled_inputs(a, b)
+    found = []
+    for group in _clusters(scipy.linalg.eigvals(a, check_finite=False)):
+        best = max(((z, _blind_directions(a, b_scaled, z, tolerance)) for z in group), key=lambda t: t[1].shape[1])
+        z, w = best
+        if w.shape[1]:
+            found.append((z, w[:, : len(group)]))
+    return found
+
+
+def uncontrollable_modes(
+    a: ArrayLike, b: ArrayLike, *, tolerance: float = RANK_TOLERANCE
+) -> NDArray[np.complex128]:
+    """Return the eigenvalues of ``A`` that no input reaches (PBH test).
+
+    Parameters
+    ----------
+    a : array_like, shape (n, n)
+        Discrete (or continuous: the test is the same) state matrix.
+    b : array_like, shape (n, m)
+        Input matrix of the manipulated variables (``m = 0`` allowed: every mode is then
+        uncontrollable).
+    tolerance : float, keyword-only
+        Relative singular-value threshold of the rank (see the module notes).
+
+    Returns
+    -------
+    ndarray of complex, shape (k,)
+        Each uncontrollable eigenvalue ``n - rank [A - lambda I, B]`` times, by descending
+        modulus; empty when ``(A, B)`` is controllable.  Complex modes of a real model come
+        in conjugate pairs.
+
+    Notes
+    -----
+    Popov-Belevitch-Hautus rank test at every eigenvalue (standard linear systems theory);
+    the rank by singular values, module notes.
+    """
+    a_ = np.asarray(a, dtype=float)
+    b_ = np.asarray(b, dtype=float)
+    n = a_.shape[0]
+    assert a_.shape == (n, n) and b_.ndim == 2 and b_.shape[0] == n, (a_.shape, b_.shape)
+    assert tolerance > 0.0, tolerance
+    modes = [z for z, w in _modes(a_, b_, tolerance) for _ in range(w.shape[1])]
+    values = np.array(modes, dtype=complex)
+    return values[np.argsort(-np.abs(values), kind="stable")]
+
+
+def _is_real(z: complex) -> bool:
+    return abs(z.imag) <= 1e-12 * max(1.0, abs(z))
+
+
+def _named_states(w: NDArray[np.complex128], labels: Sequence[str]) -> list[str]:
+    """The states that carry most of the blind directions (row norms of the orthonormal basis)."""
+    weight = np.linalg.norm(w, axis=1)
+    order = np.argsort(-weight, kind="stable")
+    keep = [int(i) for i in order if weight[i] >= _NAMED_SHARE * weight[order[0]]]
+    return [labels[i] for i in keep[:_NAMED_MOST]]
+
+
+def uncontrollable_mode_warnings(
+    a: ArrayLike,
+    b: ArrayLike,
+    *,
+    labels: Sequence[str] | None = None,
+    tolerance: float = RANK_TOLERANCE,
+) -> list[Diagnostic]:
+    """Warn about plant modes on or outside the unit circle that no input can move.
+
+    Parameters
+    ----------
+    a : array_like, shape (n, n)
+        Discrete state matrix.
+    b : array_like, shape (n, m)
+        Input matrix of the manipulated variables.
+    labels : sequence of n str, keyword-only, optional
+        State names used in the message (default ``x1 .. xn``).
+    tolerance : float, keyword-only
+        As for :func:`uncontrollable_modes`.
+
+    Returns
+    -------
+    list of Diagnostic
+        Empty, or one ``uncontrollable_mode`` naming every such pole (a conjugate pair
+        once), the states that carry it, and why no tuning can fix it.  A mode counts as
+        on the unit circle when ``|lambda| >= 1 - UNIT_CIRCLE_MARGIN`` (the margin of
+        :func:`service.solver.analysis.design_warnings`).
+    """
+    a_ = np.asarray(a, dtype=float)
+    b_ = np.asarray(b, dtype=float)
+    n = a_.shape[0]
+    assert a_.shape == (n, n) and b_.ndim == 2 and b_.shape[0] == n, (a_.shape, b_.shape)
+    names = list(labels) if labels is not None else [f"x{i + 1}" for i in range(n)]
+    assert len(names) == n, (len(names), n)
+    parts, total = [], 0
+    for z, w in _modes(a_, b_, tolerance):
+        if abs(z) < 1.0 - UNIT_CIRCLE_MARGIN or (not _is_real(z) and z.imag < 0.0):
+            continue  # inside the circle, or the second of a conjugate pair
+        where = f"z = {z.real:.6g}" if _is_real(z) else f"the pair z = {z.real:.6g} +/- {abs(z.imag):.6g}j"
+        count = f" ({w.shape[1]} independent modes)" if w.shape[1] > 1 else ""
+        states = ", ".join(repr(s) for s in _named_states(w, names))
+        parts.append(f"{where}{count}, carried by {states}")
+        total += w.shape[1] * (1 if _is_real(z) else 2)
+    if not parts:
+        return []
+    one = total == 1
+    return [
+        Diagnostic(
+            "uncontrollable_mode",
+            f"The plant has {'a mode' if one else f'{total} modes'} on or outside the unit circle "
+            f"that no manipulated input can move (PBH test, rank [A - zI, B] < n): "
+            f"{'; '.join(parts)}. {'It appears' if one else 'They appear'} unchanged among the "
+            f"closed-loop poles, and no tuning can fix {'it' if one else 'them'}. Either the model needs a "
+            f"different realization (for example one integrator per output rather than one "
+            f"per disturbance path), or the mode belongs to a disturbance that the controller "
+            f"can only compensate, not remove.",
+        )
+    ]
