@@ -19,11 +19,11 @@ Numerical rank
 --------------
 The rank is counted by the singular values of ``[A - lambda I, B]``: those above
 ``tolerance`` times the largest one (default ``1e-9``, common practice).  Input units are
-arbitrary, so each nonzero column of ``B`` is first scaled to the 2-norm of ``A`` (to 1 when
-``A`` is zero); this changes no rank in exact arithmetic and keeps a small-unit input from
-looking uncontrollable.  Eigenvalues closer than ``1e-6`` (relative) are treated as one
-repeated eigenvalue, tested at each computed copy, with the largest rank drop kept (at most
-the number of copies).
+arbitrary, so each nonzero column of ``B`` is first scaled to the 1-norm of ``A`` (to 1 when
+``A`` is zero; a scale, so the cheapest norm does); this changes no rank in exact arithmetic
+and keeps a small-unit input from looking uncontrollable.  Eigenvalues closer than ``1e-6``
+(relative) are treated as one repeated eigenvalue, tested at each computed copy, with the
+largest rank drop kept (at most the number of copies).
 
 The count is geometric: ``n - rank`` at ``lambda`` is the number of independent Jordan chains
 of ``lambda`` in the uncontrollable part.  It equals ``n - rank [B, AB, ..., A^(n-1) B]`` (the
@@ -57,9 +57,14 @@ _NAMED_SHARE = 0.1
 _NAMED_MOST = 3
 
 
+def _is_real(z: complex) -> bool:
+    """``z`` is real up to rounding (a real model's real eigenvalue)."""
+    return abs(z.imag) <= 1e-12 * max(1.0, abs(z))
+
+
 def _scaled_inputs(a: NDArray[np.float64], b: NDArray[np.float64]) -> NDArray[np.float64]:
-    """``B`` with each nonzero column scaled to ``||A||_2`` (or 1)."""
-    scale = float(np.linalg.norm(a, 2)) if a.size else 0.0
+    """``B`` with each nonzero column scaled to ``||A||_1`` (or 1)."""
+    scale = float(np.linalg.norm(a, 1)) if a.size else 0.0
     scale = scale if scale > 0.0 else 1.0
     norms = np.linalg.norm(b, axis=0)
     factors = np.divide(scale, norms, out=np.zeros_like(norms), where=norms > 0.0)
@@ -71,11 +76,14 @@ def _blind_directions(
 ) -> NDArray[np.complex128]:
     """Orthonormal ``w`` (columns, shape (n, n - rank)) with ``w^H [A - z I, B] ~ 0``."""
     n = a.shape[0]
-    pbh = np.hstack([a - z * np.eye(n), b.astype(complex)])
-    u, s, _ = np.linalg.svd(pbh)
-    floor = tolerance * max(float(s[0]) if s.size else 0.0, np.finfo(float).tiny)
-    rank = int(np.count_nonzero(s > floor))
-    return u[:, rank:]
+    shift = z.real if _is_real(z) else z  # real arithmetic for a real eigenvalue
+    pbh = np.hstack([a - shift * np.eye(n), b])
+    s = np.linalg.svd(pbh, compute_uv=False)  # n values: pbh is n x (n+m), m >= 0
+    rank = int(np.count_nonzero(s > tolerance * max(float(s[0]), np.finfo(float).tiny)))
+    if rank == n:
+        return np.zeros((n, 0), dtype=complex)
+    u = np.linalg.svd(pbh, full_matrices=False)[0]  # only on a rank drop: the costly part
+    return u[:, rank:].astype(complex)
 
 
 def _clusters(eigenvalues: NDArray[np.complex128]) -> list[list[complex]]:
@@ -92,24 +100,31 @@ def _clusters(eigenvalues: NDArray[np.complex128]) -> list[list[complex]]:
 
 
 def _modes(
-    a: NDArray[np.float64], b: NDArray[np.float64], tolerance: float
+    a: NDArray[np.float64], b: NDArray[np.float64], tolerance: float, smallest_modulus: float
 ) -> list[tuple[complex, NDArray[np.complex128]]]:
-    """Each uncontrollable eigenvalue with its orthonormal blind directions."""
+    """Each uncontrollable eigenvalue (of modulus at least ``smallest_modulus``) with its
+    orthonormal blind directions."""
     n = a.shape[0]
     if n == 0:
         return []
     b_scaled = _scaled_inputs(a, b)
+    eigenvalues = scipy.linalg.eigvals(a, check_finite=False)
     found = []
-    for group in _clusters(scipy.linalg.eigvals(a, check_finite=False)):
-        best = max(((z, _blind_directions(a, b_scaled, z, tolerance)) for z in group), key=lambda t: t[1].shape[1])
-        z, w = best
+    for group in _clusters(eigenvalues[np.abs(eigenvalues) >= smallest_modulus]):
+        z, w = group[0], np.zeros((n, 0), dtype=complex)
+        for candidate in group:  # the largest rank drop over the copies, at most their number
+            directions = _blind_directions(a, b_scaled, candidate, tolerance)
+            if directions.shape[1] > w.shape[1]:
+                z, w = candidate, directions
+            if w.shape[1] >= len(group):
+                break
         if w.shape[1]:
             found.append((z, w[:, : len(group)]))
     return found
 
 
 def uncontrollable_modes(
-    a: ArrayLike, b: ArrayLike, *, tolerance: float = RANK_TOLERANCE
+    a: ArrayLike, b: ArrayLike, *, tolerance: float = RANK_TOLERANCE, smallest_modulus: float = 0.0
 ) -> NDArray[np.complex128]:
     """Return the eigenvalues of ``A`` that no input reaches (PBH test).
 
@@ -122,6 +137,10 @@ def uncontrollable_modes(
         uncontrollable).
     tolerance : float, keyword-only
         Relative singular-value threshold of the rank (see the module notes).
+    smallest_modulus : float, keyword-only
+        Test only the eigenvalues of at least this modulus (default 0: all).  Each test is
+        one SVD of an ``n x (n+m)`` matrix, so on a large model (long dead-time registers)
+        testing only the modes near or outside the unit circle is much cheaper.
 
     Returns
     -------
@@ -133,20 +152,17 @@ def uncontrollable_modes(
     Notes
     -----
     Popov-Belevitch-Hautus rank test at every eigenvalue (standard linear systems theory);
-    the rank by singular values, module notes.
+    the rank by singular values, module notes.  Cost: one ``scipy.linalg.eigvals`` and one
+    SVD per tested eigenvalue.
     """
     a_ = np.asarray(a, dtype=float)
     b_ = np.asarray(b, dtype=float)
     n = a_.shape[0]
     assert a_.shape == (n, n) and b_.ndim == 2 and b_.shape[0] == n, (a_.shape, b_.shape)
     assert tolerance > 0.0, tolerance
-    modes = [z for z, w in _modes(a_, b_, tolerance) for _ in range(w.shape[1])]
+    modes = [z for z, w in _modes(a_, b_, tolerance, smallest_modulus) for _ in range(w.shape[1])]
     values = np.array(modes, dtype=complex)
     return values[np.argsort(-np.abs(values), kind="stable")]
-
-
-def _is_real(z: complex) -> bool:
-    return abs(z.imag) <= 1e-12 * max(1.0, abs(z))
 
 
 def _named_states(w: NDArray[np.complex128], labels: Sequence[str]) -> list[str]:
@@ -192,9 +208,9 @@ def uncontrollable_mode_warnings(
     names = list(labels) if labels is not None else [f"x{i + 1}" for i in range(n)]
     assert len(names) == n, (len(names), n)
     parts, total = [], 0
-    for z, w in _modes(a_, b_, tolerance):
-        if abs(z) < 1.0 - UNIT_CIRCLE_MARGIN or (not _is_real(z) and z.imag < 0.0):
-            continue  # inside the circle, or the second of a conjugate pair
+    for z, w in _modes(a_, b_, tolerance, 1.0 - UNIT_CIRCLE_MARGIN):
+        if not _is_real(z) and z.imag < 0.0:
+            continue  # the second of a conjugate pair
         where = f"z = {z.real:.6g}" if _is_real(z) else f"the pair z = {z.real:.6g} +/- {abs(z.imag):.6g}j"
         count = f" ({w.shape[1]} independent modes)" if w.shape[1] > 1 else ""
         states = ", ".join(repr(s) for s in _named_states(w, names))

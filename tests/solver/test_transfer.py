@@ -351,7 +351,8 @@ def test_row_integrator_behind_an_output_delay() -> None:
     row = [[E(0.4, (), 3.0, integrating=True), E(-0.2, (1.5,), 3.0, integrating=True)]]
     dist = [[E(0.3, (), 3.5, integrating=True)]]
     model = transfer_matrix_model(row, sample_time=1.0, disturbance_elements=dist)
-    assert model.state_count == transfer_state_count(row, sample_time=1.0, disturbance_elements=dist) == 1 + 1 + 3 + 1
+    count = transfer_state_count(row, sample_time=1.0, disturbance_elements=dist)
+    assert model.state_count == count == 1 + 1 + 3 + 1
     assert model.output_delays == (3,) and model.input_delays == (0, 0, 1)
     for disturbance, grid in ((False, row), (True, dist)):
         for j, el in enumerate(grid[0]):
