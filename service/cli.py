@@ -12,8 +12,12 @@ and exits with status 2.
 from __future__ import annotations
 
 import argparse
+import atexit
 import json
+import os
+import shutil
 import sys
+import tempfile
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
@@ -85,21 +89,63 @@ def _design(args: argparse.Namespace) -> int:
     )
 
 
-def _serve(args: argparse.Namespace) -> int:
-    import uvicorn
+def _positive_env(name: str, default: int) -> int:
+    try:
+        return max(1, int(os.environ.get(name, default)))
+    except ValueError:
+        return default  # the settings check reports it
 
+
+def _prepare_process_environment(workers: int) -> None:
+    """Set what numpy and prometheus-client read once, at import: before importing them.
+
+    BLAS/OpenMP threads per solver process: the CPUs this process may use divided by the
+    solver processes of all workers (at least 1), unless the variables are already set.
+    With several workers, a fresh prometheus-client multiprocess folder (or the given one,
+    emptied of old samples) so that /metrics adds up every worker.
+    """
+    solvers = workers * _positive_env("MOVECAST_SOLVER_PROCESSES", 1)
+    cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    threads = str(max(1, cpus // solvers))
+    for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+        os.environ.setdefault(name, threads)
+    folder = os.environ.get("PROMETHEUS_MULTIPROC_DIR")
+    if folder:
+        for old in Path(folder).glob("*.db"):
+            old.unlink()
+    elif workers > 1:
+        made = tempfile.mkdtemp(prefix="movecast-metrics-")
+        os.environ["PROMETHEUS_MULTIPROC_DIR"] = made
+        atexit.register(shutil.rmtree, made, True)
+
+
+def _settings_or_message() -> Any:
+    """The settings, or None after printing each bad one by its variable (never its value)."""
     from service.api.settings import Settings
 
-    settings = Settings()
-    uvicorn.run(
-        "service.api.app:create_app",
-        factory=True,
+    try:
+        return Settings()
+    except ValidationError as exc:
+        print("movecast: invalid settings, not starting:", file=sys.stderr)
+        for error in exc.errors():
+            name = "MOVECAST_" + "_".join(str(p) for p in error["loc"][:1]).upper()
+            print(f"  {name}: {error['msg']}", file=sys.stderr)
+        return None
+
+
+def _serve(args: argparse.Namespace) -> int:
+    _prepare_process_environment(args.workers or _positive_env("MOVECAST_WORKERS", 1))
+    settings = _settings_or_message()
+    if settings is None:
+        return EXIT_INVALID
+    from service.api.serving import run_server
+
+    return run_server(
+        settings,
         host=args.host or settings.host,
         port=args.port or settings.port,
         workers=args.workers or settings.workers,
-        log_level=settings.log_level,
     )
-    return 0
 
 
 def _openapi(args: argparse.Namespace) -> int:

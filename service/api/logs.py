@@ -21,7 +21,7 @@ __all__ = ["JsonFormatter", "RequestIdFilter", "logging_config", "request_id_var
 request_id_var: contextvars.ContextVar[str] = contextvars.ContextVar("movecast_request_id", default="")
 
 #: Attributes every LogRecord has; anything else given through ``extra=`` is written out.
-_STANDARD = set(vars(logging.makeLogRecord({}))) | {"message", "asctime", "request_id", "taskName"}
+_STANDARD = set(vars(logging.makeLogRecord({}))) | {"message", "asctime", "request_id", "taskName", "color_message"}
 
 
 class RequestIdFilter(logging.Filter):

@@ -1,0 +1,163 @@
+"""Graceful shutdown of a real server process (``python -m service.cli serve``) on loopback.
+
+Several slow designs are sent at once to a server with one solver process, so that some are
+being solved and others wait for the solver when SIGTERM arrives. All of them must be
+answered 200 with a full design; a new connection after SIGTERM must be refused or told
+503 by /readyz; the process must exit with status 0, well within its grace period.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import socket
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+import httpx
+import numpy as np
+import pytest
+
+ROOT = Path(__file__).resolve().parents[2]
+pytestmark = pytest.mark.skipif(not hasattr(signal, "SIGTERM") or os.name != "posix", reason="POSIX signals")
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def medium_request(seed: int) -> dict:
+    """A valid design of about a second of solver work (Hessian 1000 x 1000)."""
+    rng = np.random.default_rng(seed)
+    n = 10
+    a = rng.normal(size=(n, n))
+    a *= 0.9 / max(abs(np.linalg.eigvals(a)))
+    return {
+        "model": {
+            "kind": "state_space",
+            "a": a.tolist(),
+            "b": rng.normal(size=(n, n)).tolist(),
+            "c": rng.normal(size=(n, n)).tolist(),
+            "sample_time": 1.0,
+        },
+        "horizons": {"prediction": 150, "control": 100},
+        "weights": {"output": [1.0] * n, "move": [0.1] * n},
+    }
+
+
+def wait_ready(base: str, process: subprocess.Popen, *, seconds: float = 90) -> None:
+    give_up = time.monotonic() + seconds
+    while time.monotonic() < give_up:
+        assert process.poll() is None, "the server exited during start-up"
+        try:
+            if httpx.get(f"{base}/readyz", timeout=2).status_code == 200:
+                return
+        except httpx.TransportError:
+            pass
+        time.sleep(0.2)
+    raise AssertionError("the server did not become ready")
+
+
+def test_sigterm_finishes_in_flight_requests_refuses_new_ones_and_exits_cleanly(tmp_path):
+    port = free_port()
+    base = f"http://127.0.0.1:{port}"
+    env = {
+        **os.environ,
+        "MOVECAST_HOST": "127.0.0.1",
+        "MOVECAST_SOLVER_PROCESSES": "1",
+        "MOVECAST_REQUEST_TIMEOUT_SECONDS": "60",
+        "PYTHONPATH": str(ROOT),
+    }
+    log_path = tmp_path / "server.log"
+    with log_path.open("w", encoding="utf-8") as log:
+        process = subprocess.Popen(
+            [sys.executable, "-m", "service.cli", "serve", "--port", str(port)],
+            cwd=ROOT,
+            env=env,
+            stdout=log,
+            stderr=subprocess.STDOUT,
+        )
+    try:
+        wait_ready(base, process)
+        answers: dict[int, httpx.Response | Exception] = {}
+
+        def post(i: int) -> None:
+            try:
+                answers[i] = httpx.post(f"{base}/design", json=medium_request(i), timeout=120)
+            except Exception as exc:  # noqa: BLE001 - reported by the assertion below
+                answers[i] = exc
+
+        threads = [threading.Thread(target=post, args=(i,)) for i in range(4)]
+        for thread in threads:
+            thread.start()
+        time.sleep(1.0)  # all four are in the server: one solving, the others queued
+        process.send_signal(signal.SIGTERM)
+        time.sleep(0.5)
+
+        try:
+            late = httpx.get(f"{base}/readyz", timeout=5)
+        except httpx.TransportError:
+            pass  # refused: the listening socket is closed
+        else:
+            assert late.status_code == 503 and late.json()["status"] == "not_ready"
+
+        for thread in threads:
+            thread.join(timeout=120)
+        assert process.wait(timeout=90) == 0
+    finally:
+        if process.poll() is None:
+            process.kill()
+            process.wait(timeout=10)
+
+    for i in range(4):
+        answer = answers[i]
+        assert isinstance(answer, httpx.Response), f"request {i} failed: {answer!r}"
+        assert answer.status_code == 200, answer.text
+        assert answer.json()["hessian"]["size"] == 1000
+
+    text = log_path.read_text(encoding="utf-8")
+    lines = [json.loads(line) for line in text.splitlines() if line.startswith("{")]
+    access = [line for line in lines if line["logger"] == "movecast.access" and line["route"] == "/design"]
+    assert len(access) == 4 and all(line["status"] == 200 and line["request_id"] for line in access)
+    assert any("SIGTERM" in line["message"] for line in lines)
+    assert not [line for line in lines if line["logger"] == "uvicorn.access"]
+
+
+def test_serve_refuses_bad_settings_naming_the_variable_not_the_value():
+    env = {**os.environ, "MOVECAST_API_KEYS": "tooshort", "PYTHONPATH": str(ROOT)}
+    done = subprocess.run(
+        [sys.executable, "-m", "service.cli", "serve", "--port", str(free_port())],
+        cwd=ROOT, env=env, capture_output=True, text=True, timeout=60,
+    )
+    assert done.returncode == 2
+    assert "MOVECAST_API_KEYS" in done.stderr and "at least 16" in done.stderr
+    assert "tooshort" not in done.stderr
+
+
+def test_serve_sizes_thread_pools_and_the_metrics_folder_before_numpy(monkeypatch):
+    from service import cli
+
+    # A private copy of the environment, put back after the test (nothing leaks to others).
+    environment = dict(os.environ)
+    for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "PROMETHEUS_MULTIPROC_DIR"):
+        environment.pop(name, None)
+    environment["MOVECAST_SOLVER_PROCESSES"] = "1"
+    monkeypatch.setattr(os, "environ", environment)
+    monkeypatch.setattr(cli.os, "sched_getaffinity", lambda pid: set(range(8)), raising=False)
+    cli._prepare_process_environment(2)
+    # 8 CPUs shared by 2 workers x 1 solver process each: 4 BLAS threads per solver.
+    assert os.environ["OMP_NUM_THREADS"] == os.environ["OPENBLAS_NUM_THREADS"] == "4"
+    folder = Path(os.environ["PROMETHEUS_MULTIPROC_DIR"])
+    assert folder.is_dir() and not list(folder.iterdir())
+    # Variables the operator set are kept (the image sets one thread per worker).
+    environment["OMP_NUM_THREADS"] = "1"
+    (folder / "counter_1.db").write_bytes(b"old")
+    cli._prepare_process_environment(2)
+    assert os.environ["OMP_NUM_THREADS"] == "1"
+    assert not list(folder.glob("*.db")), "old samples are wiped at start-up"
