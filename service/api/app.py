@@ -10,7 +10,6 @@ from fastapi import FastAPI
 from service import __version__
 from service.api.deps import get_settings
 from service.api.operations import install_operations
-from service.api.operations import install_operations
 from service.api.problems import install_problem_handlers
 from service.api.routes import batch, design, health
 from service.api.settings import Settings
