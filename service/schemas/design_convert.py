@@ -36,6 +36,7 @@ from service.solver.analysis import Diagnostic
 from service.solver.design import ControllerDesign, design_controller
 from service.solver.feedforward import disturbance_free_response, feedforward_gain
 from service.solver.gain import PredictiveGain
+from service.solver.modes import uncontrollable_mode_warnings
 from service.solver.plant import PlantProperties, plant_properties, plant_warnings
 from service.solver.tuning_advice import merge_warnings, tuning_advice
 from service.solver.scaling import ScaledPlant, scale_plant, unscale_feedforward, unscale_gain
@@ -272,6 +273,9 @@ def compute_design(inputs: DesignInputs) -> DesignOutcome:
         warnings=[
             *merge_warnings(design.warnings, tuning_advice(scaled.a, scaled.b, scaled.c, design, sample_time=plant.sample_time)),
             *plant_warnings(properties),
+            *uncontrollable_mode_warnings(
+                scaled.a, scaled.b, labels=plant.state_labels, loop_poles=design.loop.poles
+            ),
         ],
     )
 

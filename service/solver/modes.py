@@ -41,6 +41,7 @@ from numpy.typing import ArrayLike, NDArray
 from service.solver.analysis import UNIT_CIRCLE_MARGIN, Diagnostic
 
 __all__ = [
+    "LOOP_POLE_MATCH",
     "RANK_TOLERANCE",
     "uncontrollable_mode_warnings",
     "uncontrollable_modes",
@@ -56,6 +57,11 @@ _NAMED_SHARE = 0.1
 #: At most this many states are named per mode.
 _NAMED_MOST = 3
 
+
+#: An eigenvalue of A within this distance (relative) of a closed-loop pole may be a mode
+#: the feedback did not move; eigenvalues of uncontrollable modes are computed twice, from
+#: A and from the closed loop, so they agree to rounding (far inside this).
+LOOP_POLE_MATCH = 1e-6
 
 def _is_real(z: complex) -> bool:
     """``z`` is real up to rounding (a real model's real eigenvalue)."""
@@ -100,17 +106,26 @@ def _clusters(eigenvalues: NDArray[np.complex128]) -> list[list[complex]]:
 
 
 def _modes(
-    a: NDArray[np.float64], b: NDArray[np.float64], tolerance: float, smallest_modulus: float
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    tolerance: float,
+    smallest_modulus: float,
+    loop_poles: NDArray[np.complex128] | None = None,
 ) -> list[tuple[complex, NDArray[np.complex128]]]:
-    """Each uncontrollable eigenvalue (of modulus at least ``smallest_modulus``) with its
-    orthonormal blind directions."""
+    """Each uncontrollable eigenvalue (of modulus at least ``smallest_modulus``, and among
+    ``loop_poles`` when given) with its orthonormal blind directions."""
     n = a.shape[0]
     if n == 0:
         return []
     b_scaled = _scaled_inputs(a, b)
     eigenvalues = scipy.linalg.eigvals(a, check_finite=False)
+    eigenvalues = eigenvalues[np.abs(eigenvalues) >= smallest_modulus]
+    if loop_poles is not None and eigenvalues.size:
+        poles = np.asarray(loop_poles, dtype=complex)
+        gap = np.abs(eigenvalues[:, None] - poles[None, :]).min(axis=1, initial=np.inf) if poles.size else np.full(eigenvalues.size, np.inf)
+        eigenvalues = eigenvalues[gap <= LOOP_POLE_MATCH * np.maximum(1.0, np.abs(eigenvalues))]
     found = []
-    for group in _clusters(eigenvalues[np.abs(eigenvalues) >= smallest_modulus]):
+    for group in _clusters(eigenvalues):
         z, w = group[0], np.zeros((n, 0), dtype=complex)
         for candidate in group:  # the largest rank drop over the copies, at most their number
             directions = _blind_directions(a, b_scaled, candidate, tolerance)
@@ -179,6 +194,7 @@ def uncontrollable_mode_warnings(
     *,
     labels: Sequence[str] | None = None,
     tolerance: float = RANK_TOLERANCE,
+    loop_poles: ArrayLike | None = None,
 ) -> list[Diagnostic]:
     """Warn about plant modes on or outside the unit circle that no input can move.
 
@@ -192,6 +208,11 @@ def uncontrollable_mode_warnings(
         State names used in the message (default ``x1 .. xn``).
     tolerance : float, keyword-only
         As for :func:`uncontrollable_modes`.
+    loop_poles : array_like of complex, keyword-only, optional
+        Closed-loop poles of some state feedback on this plant (e.g. the design's).  A mode
+        that no input can move stays a pole under every feedback, so only eigenvalues of ``A``
+        within :data:`LOOP_POLE_MATCH` (relative) of one of these are tested: the PBH test
+        then runs only where it can fail, which keeps large models cheap.
 
     Returns
     -------
@@ -208,7 +229,8 @@ def uncontrollable_mode_warnings(
     names = list(labels) if labels is not None else [f"x{i + 1}" for i in range(n)]
     assert len(names) == n, (len(names), n)
     parts, total = [], 0
-    for z, w in _modes(a_, b_, tolerance, 1.0 - UNIT_CIRCLE_MARGIN):
+    poles = None if loop_poles is None else np.asarray(loop_poles, dtype=complex)
+    for z, w in _modes(a_, b_, tolerance, 1.0 - UNIT_CIRCLE_MARGIN, poles):
         if not _is_real(z) and z.imag < 0.0:
             continue  # the second of a conjugate pair
         where = f"z = {z.real:.6g}" if _is_real(z) else f"the pair z = {z.real:.6g} +/- {abs(z.imag):.6g}j"

@@ -170,3 +170,18 @@ def test_an_output_only_a_disturbance_integrates_is_a_genuine_warning() -> None:
     (warning,) = uncontrollable_mode_warnings(model.a, model.b, labels=labels)
     assert "z = 1, carried by 'integrator of y2'" in warning.message
     np.testing.assert_allclose(uncontrollable_modes(model.a, model.b), [1.0], atol=1e-12)
+
+
+def test_loop_poles_only_narrow_the_search(rng):
+    # Screening by the closed-loop poles of a design changes nothing: an uncontrollable mode
+    # is a pole under every feedback (PBH; standard linear systems theory).
+    from service.solver.design import design_controller
+    from service.solver.modes import uncontrollable_mode_warnings
+
+    a = np.diag([1.0, 0.5, 0.8])
+    b = np.array([[0.0], [1.0], [1.0]])
+    c = np.array([[1.0, 1.0, 0.0]])
+    d = design_controller(a, b, c, output_weight=[1.0], move_weight=[0.1], prediction=10, control=3)
+    screened = uncontrollable_mode_warnings(a, b, loop_poles=d.loop.poles)
+    assert screened == uncontrollable_mode_warnings(a, b) and len(screened) == 1
+    assert uncontrollable_mode_warnings(a, b, loop_poles=np.array([0.1 + 0j])) == []
