@@ -1,10 +1,12 @@
-"""The ``movecast`` command line: serve, design, openapi.
+"""The ``movecast`` command line: serve, design, simulate, openapi.
 
     movecast serve [--host H] [--port P] [--workers N]   run the HTTP service (uvicorn)
     movecast design [FILE | -]                           print a design as JSON, no server
+    movecast simulate [FILE | -] [--csv]                 print a simulated run as JSON (or CSV)
     movecast openapi [--output FILE]                     print or write the OpenAPI document
 
-``movecast design`` with no FILE designs the bundled example plant.  A request that fails
+``movecast design`` with no FILE designs the bundled example plant; ``movecast simulate``
+with no FILE simulates the bundled example scenario.  A request that fails
 its checks prints the same problem details the service would answer, on standard error,
 and exits with status 2.
 """
@@ -53,8 +55,9 @@ def _run_offline(
     example: str,
     parse: Callable[[Any], BaseModel],
     answer: Callable[[Any], BaseModel],
+    render: Callable[[Any], str] | None = None,
 ) -> int:
-    """Parse, check and answer one request without a server; print JSON."""
+    """Parse, check and answer one request without a server; print JSON (or ``render(response)``)."""
     from service.api.problems import validation_problems
 
     try:
@@ -72,7 +75,10 @@ def _run_offline(
     except NumericalError as exc:
         body = _problem("numerical-problem", exc.detail, [FieldProblem(exc.pointer, exc.detail)] if exc.pointer else [])
     else:
-        print(response.model_dump_json(indent=2))
+        if render is None:
+            print(response.model_dump_json(indent=2))
+        else:
+            sys.stdout.write(render(response))
         return 0
     print(json.dumps(body, indent=2), file=sys.stderr)
     return EXIT_INVALID
@@ -86,6 +92,21 @@ def _design(args: argparse.Namespace) -> int:
     caps = Settings().caps()
     return _run_offline(
         args.file, "design_request.json", DesignRequest.model_validate, lambda r: run_design(r, caps)
+    )
+
+
+def _simulate(args: argparse.Namespace) -> int:
+    from service.api.settings import Settings
+    from service.schemas.simulate import SimulateRequest
+    from service.schemas.simulate_convert import run_simulation, simulation_csv
+
+    caps = Settings().caps()
+    return _run_offline(
+        args.file,
+        "simulate_request.json",
+        SimulateRequest.model_validate,
+        lambda r: run_simulation(r, caps),
+        simulation_csv if args.csv else None,
     )
 
 
@@ -173,6 +194,13 @@ def build_parser() -> argparse.ArgumentParser:
     design = commands.add_parser("design", help="print a design as JSON without a server")
     design.add_argument("file", nargs="?", help="request JSON file, '-' for standard input; default: the example plant")
     design.set_defaults(run=_design)
+
+    simulate = commands.add_parser("simulate", help="print a simulated closed-loop run as JSON without a server")
+    simulate.add_argument(
+        "file", nargs="?", help="request JSON file, '-' for standard input; default: the example plant and scenario"
+    )
+    simulate.add_argument("--csv", action="store_true", help="print the time series as CSV instead")
+    simulate.set_defaults(run=_simulate)
 
     openapi = commands.add_parser("openapi", help="print or write the OpenAPI document")
     openapi.add_argument("--output", help="write to this file instead of standard output")

@@ -12,6 +12,7 @@ from service.api.deps import get_settings
 from service.api.operations import install_operations
 from service.api.problems import install_problem_handlers
 from service.api.routes import batch, design, health
+from service.api.routes import simulate
 from service.api.settings import Settings
 from service.schemas.design import ADVISORY
 
@@ -50,5 +51,6 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.include_router(design.router)
     app.include_router(health.router)
     app.include_router(batch.router)
+    app.include_router(simulate.router)
     install_operations(app, chosen)  # last: it documents the routes included above
     return app

@@ -36,6 +36,12 @@ class Settings(BaseSettings):
     max_response_entries: int = Field(
         default=2_000_000, ge=1, description="Most entries of the horizon gain in a response."
     )
+    max_simulation_steps: int = Field(default=100_000, ge=1, description="Longest run of POST /simulate, in steps.")
+    max_simulation_work: int = Field(
+        default=5_000_000_000,
+        ge=1,
+        description="Most estimated floating-point work of one simulated run (steps x cost of a step).",
+    )
 
     max_body_bytes: int = Field(
         default=1_048_576, ge=1024, description="Largest request body in bytes; larger ones get 413."
@@ -98,4 +104,6 @@ class Settings(BaseSettings):
             max_hessian_size=self.max_hessian_size,
             max_prediction_entries=self.max_prediction_entries,
             max_response_entries=self.max_response_entries,
+            max_simulation_steps=self.max_simulation_steps,
+            max_simulation_work=self.max_simulation_work,
         )

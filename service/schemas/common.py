@@ -65,6 +65,13 @@ class Caps:
     max_response_entries: int = 2_000_000
     #: Values in one tuning sweep.
     max_sweep_values: int = 50
+    #: Longest simulated run of POST /simulate, in steps.
+    max_simulation_steps: int = 100_000
+    #: Estimated work of one simulated run: steps times the floating-point operations of a
+    #: step (its matrix-vector products) plus a fixed 30 000 per step for the interpreter's
+    #: own cost (``service.schemas.simulate_checks.simulation_work``).  The default is
+    #: about 5 s of one core at 1 GFLOP/s, a rough rate for matrix-vector products this small.
+    max_simulation_work: int = 5_000_000_000
 
 
 def pointer(*parts: str | int) -> str:

@@ -1,0 +1,91 @@
+"""POST /simulate: a closed-loop preview of the design with an estimator, as JSON or CSV."""
+
+from __future__ import annotations
+
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Body, Request
+from fastapi.responses import Response
+
+from service.api.compute import BudgetDep
+from service.api.deps import CapsDep
+from service.api.problems import PROBLEM_JSON
+from service.schemas.examples import load_example
+from service.schemas.simulate import SimulateRequest, SimulateResponse
+from service.schemas.simulate_convert import run_simulation, simulation_csv
+
+__all__ = ["CSV", "prefers_csv", "router"]
+
+router = APIRouter(tags=["simulate"])
+
+CSV = "text/csv"
+
+RESPONSES: dict[int | str, dict[str, Any]] = {
+    200: {
+        "description": "The run: time series, figures of merit, estimator, whole-loop poles and the design. "
+        "With `Accept: text/csv`, the time series alone as CSV (time, outputs, setpoints, inputs).",
+        "content": {CSV: {"schema": {"type": "string"}}},
+    },
+    400: {"description": "The body is not valid JSON.", "content": {PROBLEM_JSON: {}}},
+    422: {
+        "description": "A field is invalid, the run is too large, or the design or estimator cannot be "
+        "formed; `errors` names each field by JSON pointer.",
+        "content": {PROBLEM_JSON: {}},
+    },
+}
+
+_RANGES = {"csv": ("text/csv", "text/*"), "json": ("application/json", "application/*")}
+
+
+def prefers_csv(accept: str | None) -> bool:
+    """Whether an ``Accept`` header asks for CSV rather than JSON (JSON on a tie or by default).
+
+    Each type takes the quality of the most specific range that matches it (RFC 9110,
+    section 12.5.1); on equal quality the more specific match wins.
+    """
+    if not accept:
+        return False
+    best = {"csv": (0.0, -1), "json": (0.0, -1)}
+    for part in accept.split(","):
+        media, *params = (item.strip() for item in part.split(";"))
+        media = media.lower()
+        quality = 1.0
+        for param in params:
+            key, _, value = param.partition("=")
+            if key.strip().lower() == "q":
+                try:
+                    quality = float(value)
+                except ValueError:
+                    quality = 0.0
+                if not 0.0 <= quality <= 1.0:
+                    quality = 0.0
+        for kind, (full, group) in _RANGES.items():
+            specific = 2 if media == full else 1 if media == group else 0 if media == "*/*" else -1
+            if specific > best[kind][1]:
+                best[kind] = (quality, specific)
+    (q_csv, s_csv), (q_json, s_json) = best["csv"], best["json"]
+    return q_csv > 0.0 and (q_csv > q_json or (q_csv == q_json and s_csv > s_json))
+
+
+@router.post("/simulate", response_model=SimulateResponse, responses=RESPONSES)
+def simulate(
+    request: Annotated[
+        SimulateRequest,
+        Body(
+            openapi_examples={
+                "example_plant": {
+                    "summary": "The bundled example plant with a scenario (invented numbers)",
+                    "value": load_example("simulate_request.json"),
+                }
+            }
+        ),
+    ],
+    caps: CapsDep,
+    budget: BudgetDep,
+    http: Request,
+) -> Any:
+    """Simulate the loop of design, estimator and (true) plant through a scenario. Design aid only."""
+    response = budget.run(run_simulation, request, caps, operation="simulate")
+    if prefers_csv(http.headers.get("accept")):
+        return Response(simulation_csv(response), media_type=CSV)
+    return response

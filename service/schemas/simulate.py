@@ -1,0 +1,238 @@
+"""POST /simulate: the request and response models.
+
+The request is a /design request (it subclasses :class:`DesignRequest`, so the two cannot
+drift apart) plus an ``estimator`` and a ``scenario``.  Every value is in the engineering
+units of the model's tags; covariances are in those units squared.
+"""
+
+from __future__ import annotations
+
+from typing import Annotated, Literal
+
+from pydantic import Field
+
+from service.schemas.common import FiniteFloat, Matrix, RequestModel, ResponseModel, Vector
+from service.schemas.design import DesignRequest, DesignResponse, LabelledMatrix, PoleReport, WarningReport
+from service.schemas.model import PlantModel
+
+__all__ = [
+    "DisturbanceChange",
+    "EstimatorReport",
+    "EstimatorRequest",
+    "InitialConditions",
+    "InputFigures",
+    "MeasurementNoise",
+    "OutputFigures",
+    "PerformanceReport",
+    "ScenarioRequest",
+    "SeriesColumns",
+    "SetpointChange",
+    "SimulateRequest",
+    "SimulateResponse",
+    "WholeLoopReport",
+]
+
+StepIndex = Annotated[int, Field(strict=True, ge=0)]
+Spread = Annotated[FiniteFloat, Field(ge=0)]
+Covariance = Vector | Matrix
+
+
+class EstimatorRequest(RequestModel):
+    """How the controller estimates the state (and a constant disturbance) from the outputs."""
+
+    kind: Literal["full_state", "output_disturbance", "input_disturbance", "kalman"] = Field(
+        default="output_disturbance",
+        description="'full_state': the state is read as measured (analysis only); 'output_disturbance' "
+        "(default): a constant disturbance on each output, for offset-free control; "
+        "'input_disturbance': a constant disturbance entering with each input; 'kalman': a "
+        "steady-state Kalman filter from the covariances below, with the disturbance model "
+        "of 'disturbance'. Every kind but full_state is a steady-state Kalman filter.",
+    )
+    disturbance: Literal["output", "input", "none"] | None = Field(
+        default=None, description="Disturbance model of a 'kalman' estimator (default 'output'); only with kalman."
+    )
+    process_noise: Covariance | None = Field(
+        default=None,
+        description="Covariance of the noise on each model state per sample: n variances or an n x n "
+        "symmetric positive-semidefinite matrix (default 0.01 per state).",
+    )
+    disturbance_noise: Covariance | None = Field(
+        default=None,
+        description="Covariance of the per-sample change of each estimated disturbance (output units "
+        "squared for output disturbances, input units squared for input ones; default 1 per "
+        "disturbance, in units of the span when spans are given).",
+    )
+    measurement_noise: Covariance | None = Field(
+        default=None,
+        description="Covariance of the noise on each measured output: p variances or a p x p symmetric "
+        "positive-definite matrix (default 1 per output, in units of the span when spans are given).",
+    )
+
+
+class SetpointChange(RequestModel):
+    """A new setpoint for every controlled output, held from ``step`` on."""
+
+    step: StepIndex = Field(description="Step of the change, 0 <= step < scenario.steps.")
+    setpoint: Vector = Field(description="One value per controlled output, engineering units.")
+
+
+class DisturbanceChange(RequestModel):
+    """A new disturbance level, held from ``step`` on (it replaces the previous level)."""
+
+    step: StepIndex = Field(description="Step of the change, 0 <= step < scenario.steps.")
+    value: Vector = Field(
+        description="One value per controlled output (output disturbances), per manipulated variable "
+        "(input disturbances) or per measured disturbance, engineering units."
+    )
+
+
+class MeasurementNoise(RequestModel):
+    """White Gaussian noise on the measured outputs, seeded so that a run repeats exactly."""
+
+    std: list[Spread] = Field(description="Standard deviation per controlled output, engineering units.")
+    seed: Annotated[int, Field(strict=True, ge=0, le=2**63 - 1)] = Field(
+        default=0, description="Seed of the noise generator: the same seed gives the same noise."
+    )
+
+
+class InitialConditions(RequestModel):
+    """Where the run starts; by default at rest at the origin."""
+
+    state: Vector | None = Field(
+        default=None, description="x(0), one value per model state (default zeros); the estimator starts there too."
+    )
+    input: Vector | None = Field(default=None, description="u(-1), one value per manipulated variable (default zeros).")
+    setpoint: Vector | None = Field(
+        default=None, description="Setpoint before the first change (default: the outputs at x(0))."
+    )
+
+
+class ScenarioRequest(RequestModel):
+    """What happens during the run: setpoint changes, disturbances, noise, a plant that differs."""
+
+    steps: Annotated[int, Field(strict=True, ge=1)] = Field(
+        description="Number of simulated samples (the run lasts steps x sample_time)."
+    )
+    setpoint_changes: list[SetpointChange] = Field(default_factory=list)
+    output_disturbances: list[DisturbanceChange] = Field(
+        default_factory=list, description="Unmeasured steps added to the controlled outputs."
+    )
+    input_disturbances: list[DisturbanceChange] = Field(
+        default_factory=list, description="Unmeasured steps added to the manipulated variables at the plant."
+    )
+    measured_disturbances: list[DisturbanceChange] = Field(
+        default_factory=list,
+        description="Levels of the model's measured disturbances (b_disturbance or disturbance_elements), "
+        "applied to the plant and fed forward through the design's Kd.",
+    )
+    measurement_noise: MeasurementNoise | None = Field(default=None, description="Default: no noise.")
+    true_plant: PlantModel | None = Field(
+        default=None,
+        description="The plant the loop runs on, in any model form (default: the model itself). Same "
+        "inputs, outputs and sample time as the model; its state count may differ when "
+        "initial.state is not given and the estimator is not full_state.",
+    )
+    initial: InitialConditions = Field(default_factory=InitialConditions)
+
+
+class SimulateRequest(DesignRequest):
+    """A /design request with an estimator and a scenario: everything needed to preview the loop."""
+
+    estimator: EstimatorRequest = Field(default_factory=EstimatorRequest)
+    scenario: ScenarioRequest
+
+
+class SeriesColumns(ResponseModel):
+    """Names of the columns of each time series (also the CSV header)."""
+
+    outputs: list[str] = Field(description="Controlled outputs (their tags).")
+    measured: list[str] = Field(description="What the estimator read: the outputs with noise.")
+    setpoints: list[str]
+    inputs: list[str] = Field(description="Manipulated variables (their tags).")
+    estimates: list[str] = Field(description="Estimated states, then the estimated disturbances.")
+    measured_disturbances: list[str]
+
+
+class OutputFigures(ResponseModel):
+    """Step figures of one controlled output, for its last setpoint change.
+
+    Times in the model's time unit from the step instant; null where a figure does not exist
+    (no setpoint change, never reached 90 %, not settled within the run, a run that blew up).
+    """
+
+    name: str
+    step: int | None = Field(description="Step of the last setpoint change of this output.")
+    rise_time: float | None = Field(description="From 10 % to 90 % of the setpoint step.")
+    settling_time: float | None = Field(description="Until the output stays within 2 % of the setpoint step.")
+    overshoot_percent: float | None
+    integral_absolute_error: float | None = Field(
+        description="Sum of |setpoint - output| x sample time from the last change (whole run without one)."
+    )
+    final_offset: float | None = Field(description="Setpoint minus output at the last step.")
+
+
+class InputFigures(ResponseModel):
+    """Move figures of one manipulated variable over the whole run."""
+
+    name: str
+    total_move: float | None = Field(description="Sum of |du(k)|, engineering units.")
+    largest_move: float | None = Field(description="Largest |du(k)|, engineering units.")
+
+
+class PerformanceReport(ResponseModel):
+    """Figures of merit per controlled output and per manipulated variable."""
+
+    outputs: list[OutputFigures]
+    inputs: list[InputFigures]
+
+
+class EstimatorReport(ResponseModel):
+    """The estimator the run used."""
+
+    kind: str
+    disturbance: str = Field(description="Disturbance model in use: 'output', 'input' or 'none'.")
+    gain: LabelledMatrix | None = Field(
+        description="Filter gain L of x(k|k) = x(k|k-1) + L (y(k) - C x(k|k-1)), engineering units: rows "
+        "the estimates, columns the measured outputs. Null for full_state."
+    )
+    poles: list[PoleReport] = Field(description="Eigenvalues of (I - L C) A, by descending modulus.")
+    spectral_radius: float
+
+
+class WholeLoopReport(ResponseModel):
+    """Poles of plant, controller and estimator together, and the separation check."""
+
+    poles: list[PoleReport] = Field(description="Of the loop on [x; x(k|k-1); u(k-1)], descending modulus.")
+    controller_poles: list[PoleReport]
+    estimator_poles: list[PoleReport]
+    separation_holds: bool = Field(description="The poles are the union of controller and estimator poles.")
+    separation_error: float = Field(description="Largest distance between a pole and its partner in that union.")
+    spectral_radius: float
+    stable: bool
+
+
+class SimulateResponse(ResponseModel):
+    """The loop's response to the scenario, with the design and estimator that produced it.
+
+    Each series has one row per step (``time[k] = k x sample_time``); a run that blew up stops
+    at ``diverged_at`` (JSON has no NaN, so the series are cut there).
+    """
+
+    steps: int = Field(description="Steps requested.")
+    sample_time: float
+    time: list[float]
+    outputs: list[list[float]] = Field(description="True controlled outputs (noise-free), engineering units.")
+    measured: list[list[float]]
+    setpoints: list[list[float]]
+    inputs: list[list[float]] = Field(description="u(k), applied from step k to k+1.")
+    estimates: list[list[float]] = Field(description="x(k|k): states, then disturbance estimates.")
+    measured_disturbances: list[list[float]]
+    columns: SeriesColumns
+    diverged_at: int | None = Field(description="First step not computed because the run blew up; null when complete.")
+    performance: PerformanceReport
+    estimator: EstimatorReport
+    whole_loop: WholeLoopReport
+    design: DesignResponse = Field(description="The design the run used, as POST /design answers it.")
+    warnings: list[WarningReport] = Field(description="About the run (the design's own are under design).")
+    fingerprint: str = Field(description="SHA-256 of the canonical request: equal for equal requests.")
+    advisory: str
