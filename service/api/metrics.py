@@ -21,6 +21,7 @@ from prometheus_client import (
     REGISTRY,
     CollectorRegistry,
     Counter,
+    Gauge,
     Histogram,
     generate_latest,
 )
@@ -30,6 +31,7 @@ from service.schemas.design import DesignResponse
 
 __all__ = [
     "DESIGN_SIZE",
+    "IN_PROGRESS",
     "REJECTED",
     "REJECTION_REASONS",
     "REQUESTS",
@@ -51,6 +53,12 @@ REQUEST_SECONDS = Histogram(
     "Time from request to the end of the response.",
     ["method", "route", "status"],
     buckets=_LATENCY_BUCKETS,
+)
+IN_PROGRESS = Gauge(
+    "movecast_requests_in_progress",
+    "Requests received and not yet answered.",
+    ["route"],
+    multiprocess_mode="livesum",
 )
 SOLVER_SECONDS = Histogram(
     "movecast_solver_duration_seconds",

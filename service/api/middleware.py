@@ -19,7 +19,7 @@ from starlette.routing import BaseRoute, Match
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service.api.logs import request_id_var
-from service.api.metrics import REQUEST_SECONDS, REQUESTS, count_rejection
+from service.api.metrics import IN_PROGRESS, REQUEST_SECONDS, REQUESTS, count_rejection
 from service.api.problems import PROBLEM_JSON, problem_response
 
 try:  # FastAPI >= 0.150 keeps included routers as branches; this walks their routes
@@ -110,6 +110,8 @@ class RequestContextMiddleware:
                     state["problem"] += message.get("body", b"")
             await send(message)
 
+        in_progress = IN_PROGRESS.labels(route=route)
+        in_progress.inc()
         try:
             await self.app(scope, receive, send_with_id)
         except Exception:
@@ -123,6 +125,7 @@ class RequestContextMiddleware:
                 )
                 await response(scope, receive, send_with_id)
         finally:
+            in_progress.dec()
             self._record(scope, route, state, time.perf_counter() - start)
             request_id_var.reset(token)
 

@@ -49,6 +49,8 @@ def test_requests_are_counted_by_route_template_method_and_status(make_client, e
     # Raw paths never become labels: an unknown path is "<unmatched>".
     assert value(after, "movecast_requests_total", method="GET", route="<unmatched>", status="404") >= 1
     assert not [key for key in after if "secret-looking-path" in str(key)]
+    # Every request answered: none left in progress.
+    assert value(after, "movecast_requests_in_progress", route="/design") == 0
 
 
 def test_design_sizes_and_solver_time(make_client, example):

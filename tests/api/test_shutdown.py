@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import signal
 import socket
 import subprocess
@@ -64,6 +65,18 @@ def wait_ready(base: str, process: subprocess.Popen, *, seconds: float = 90) -> 
     raise AssertionError("the server did not become ready")
 
 
+def wait_in_progress(base: str, count: int, *, seconds: float = 60) -> None:
+    """Wait until the server has ``count`` POST /design requests in hand (its own gauge)."""
+    give_up = time.monotonic() + seconds
+    while time.monotonic() < give_up:
+        text = httpx.get(f"{base}/metrics", timeout=5).text
+        found = re.search(r'^movecast_requests_in_progress\{route="/design"\} ([0-9.]+)$', text, flags=re.M)
+        if found and float(found.group(1)) >= count:
+            return
+        time.sleep(0.05)
+    raise AssertionError(f"the server never had {count} designs in progress")
+
+
 def test_sigterm_finishes_in_flight_requests_refuses_new_ones_and_exits_cleanly(tmp_path):
     port = free_port()
     base = f"http://127.0.0.1:{port}"
@@ -96,7 +109,7 @@ def test_sigterm_finishes_in_flight_requests_refuses_new_ones_and_exits_cleanly(
         threads = [threading.Thread(target=post, args=(i,)) for i in range(4)]
         for thread in threads:
             thread.start()
-        time.sleep(1.0)  # all four are in the server: one solving, the others queued
+        wait_in_progress(base, 4)  # all four are in the server: one solving, the others queued
         process.send_signal(signal.SIGTERM)
         time.sleep(0.5)
 
