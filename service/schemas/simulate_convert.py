@@ -182,9 +182,10 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
         initial_setpoint=None if inputs.initial_setpoint is None else inputs.initial_setpoint / sz,
         sample_time=plant.sample_time,
     )
-    sim = simulate_loop(
-        outcome.design, estimator, scenario, plant=true_plant, loop=loop, b_disturbance=scaled.b_disturbance
-    )
+    with np.errstate(over="ignore", invalid="ignore"):  # absurd levels overflow: the series are cut below
+        sim = simulate_loop(
+            outcome.design, estimator, scenario, plant=true_plant, loop=loop, b_disturbance=scaled.b_disturbance
+        )
 
     n = estimator.state_size
     estimate_span = np.concatenate([np.ones(n), s_dist if estimator.disturbance_size else np.ones(0)])

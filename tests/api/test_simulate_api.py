@@ -438,3 +438,36 @@ def test_the_cli_simulates_the_example_and_prints_csv(capsys, client, request_bo
     assert json.loads(capsys.readouterr().out) == post(client, request_body).json()
     assert main(["simulate", "--csv"]) == 0
     assert capsys.readouterr().out == post(client, request_body, accept="text/csv").text
+
+
+def test_figures_are_in_the_model_s_time_unit(client):
+    # time[k] = k x sample_time (the definition of a sampled run): the same discrete model at
+    # twice the sample time gives the same series on a time axis twice as long, so every
+    # time figure and the integral absolute error double.
+    one = plain_request(steps=400, true_plant=MISMATCH, **EVENTS)
+    two = copy.deepcopy(one)
+    two["model"]["sample_time"] = two["scenario"]["true_plant"]["sample_time"] = 2.0
+    a, b = post(client, one).json(), post(client, two).json()
+    assert b["time"] == [2.0 * t for t in a["time"]] and b["outputs"] == a["outputs"]
+    for f, g in zip(a["performance"]["outputs"], b["performance"]["outputs"], strict=True):
+        for key in ("rise_time", "settling_time", "integral_absolute_error"):
+            assert g[key] == pytest.approx(2.0 * f[key], rel=1e-12), key
+        assert g["overshoot_percent"] == pytest.approx(f["overshoot_percent"], rel=1e-12)
+    assert a["performance"]["inputs"] == b["performance"]["inputs"]
+
+
+@pytest.mark.parametrize(
+    "edit",
+    [
+        _edit(("scenario", "setpoint_changes"), [{"step": 10, "setpoint": [1e308, -1e308]}]),
+        _edit(("scenario", "measurement_noise"), {"std": [1e308, 1e308]}),
+        _edit(("scenario", "initial"), {"input": [1e308, 1e308]}),
+        _edit(("scenario", "output_disturbances"), [{"step": 120, "value": [1e308, 1e308]}]),
+    ],
+)
+def test_absurd_levels_overflow_into_a_cut_run_not_a_server_error(client, request_body, edit):
+    edit(request_body)
+    r = post(client, request_body)
+    assert "NaN" not in r.text and "Infinity" not in r.text
+    answer = r.json()
+    assert answer["diverged_at"] is not None and len(answer["outputs"]) == answer["diverged_at"]
