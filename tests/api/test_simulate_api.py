@@ -383,6 +383,7 @@ def _edit(path, value):
         (_edit(("estimator",), {"kind": "kalman", "measurement_noise": [1.0, 0.0]}), "/estimator/measurement_noise/1"),
         (_edit(("estimator",), {"kind": "kalman", "measurement_noise": [[1.0, 1.0], [1.0, 1.0]]}), "/estimator/measurement_noise"),
         (_edit(("horizons", "control"), 50), "/horizons/control"),
+        (_edit(("weights", "terminal"), "riccati"), "/weights/terminal"),
     ],
 )
 def test_bad_input_is_a_422_naming_the_field(client, request_body, edit, pointer):
@@ -471,3 +472,20 @@ def test_absurd_levels_overflow_into_a_cut_run_not_a_server_error(client, reques
     assert "NaN" not in r.text and "Infinity" not in r.text
     answer = r.json()
     assert answer["diverged_at"] is not None and len(answer["outputs"]) == answer["diverged_at"]
+
+
+def test_move_blocking_is_simulated_with_the_design_s_gains(client):
+    # The law of the design notes with the gains of a blocked design (moves at steps 0, 2, 4).
+    body = plain_request(steps=120, kind="full_state", setpoint_changes=[{"step": 5, "setpoint": [1.0, -0.5]}])
+    body["horizons"]["move_steps"] = [0, 2, 4]
+    answer = post(client, body).json()
+    gain = answer["design"]["gain"]
+    kr, kx, ku = (np.array(gain[k]) for k in ("setpoint", "state", "previous_input"))
+    x, u, r = np.zeros(4), np.zeros(2), np.zeros(2)
+    inputs = []
+    for k in range(120):
+        r = {5: np.array([1.0, -0.5])}.get(k, r)
+        u = u + kr @ r - kx @ x - ku @ u
+        inputs.append(u)
+        x = A @ x + B @ u
+    np.testing.assert_allclose(answer["inputs"], inputs, rtol=1e-9, atol=1e-12)
