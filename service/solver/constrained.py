@@ -84,7 +84,7 @@ class ConstrainedPolicy:
 
     @classmethod
     def from_design(
-        cls, design: ControllerDesign, limits: Limits, *, hard_outputs: bool = False, warm_start: bool = True
+        cls, design: ControllerDesign, limits: Limits, *, hard_outputs: bool = False, warm_start: str = "previous"
     ) -> ConstrainedPolicy:
         """Set up the move QP of ``design`` under ``limits`` and wrap it."""
         return cls(MoveQP.from_design(design, limits, hard_outputs=hard_outputs, warm_start=warm_start), limits)

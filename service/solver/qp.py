@@ -20,8 +20,8 @@ Slacks: one per output bound present (``output_max`` of output j, ``output_min``
 shared by all penalized steps, so ``s_b`` is the largest violation of bound ``b`` over the
 prediction horizon and the QP grows by at most ``2 p`` variables, not ``2 p Np``.  The linear
 weight ``rho_b`` is the output's ``output_softness``.  It is an *exact* penalty: by the exact
-penalty theorem for the l1 penalty (e.g. Nocedal and Wright, *Numerical Optimization*, 2nd ed.,
-theorem 17.3, recalled from memory) the soft problem has the same solution as the hard one
+penalty property of the l1 penalty (a standard result of constrained optimization; common
+practice) the soft problem has the same solution as the hard one
 whenever the hard one is feasible and ``rho_b`` exceeds the sum, over the penalized steps, of
 the hard problem's multipliers on bound ``b`` (a shared slack's stationarity condition reads
 ``rho_b - sum_i lambda_bi - mu_b = 0`` with ``mu_b >= 0`` the multiplier of ``s_b >= 0``).
@@ -29,14 +29,16 @@ The small quadratic term ``c = lambda_min(H)`` keeps the QP's Hessian positive d
 solver needs it) without raising its condition number; it does not change an exact solution
 (its gradient vanishes at ``s = 0``).
 
-Solver: DAQP, a dual active-set method for the small dense QPs of MPC (Arnström, Bemporad
-and Axehill, "A dual active-set solver for embedded quadratic programming using recursive
-LDL' updates", IEEE TAC 67(8), 2022, doi:10.1109/TAC.2022.3176430).  Its answer is exact at
-its active set (an equality-constrained solve, not an iterate stopped at a tolerance).  The
-workspace is set up once per controller with ``H`` and the constraint matrix; each step only
-updates the linear term and the bounds, and starts from the previous step's active set shifted
-one sample ahead.  Before calling it, each step tries the unconstrained optimum with the
-design's own Cholesky factor: when that already satisfies every limit it is the QP's solution.
+Solver: DAQP (the ``daqp`` package), a dual active-set method written for the small dense
+QPs of predictive control, with recursive LDL' updates of the working set.  Its answer is exact
+at its active set (an equality-constrained solve, not an iterate stopped at a tolerance).  The
+workspace is set up once per controller with ``H`` (which it factors once) and the constraint
+matrix; each step only updates the linear term and the bounds.  By default a step starts from
+the previous step's working set, whose factorization DAQP keeps; a start from the previous
+active set shifted one sample ahead is available (``warm_start="shifted"``) but must refactor
+the working set from scratch and measured slower on the benchmark cases.  Before calling the
+solver, each step tries the unconstrained optimum with the design's own Cholesky factor: when
+that already satisfies every limit it is the QP's solution (and its first move is ``Kh E``).
 """
 
 from __future__ import annotations
@@ -54,6 +56,7 @@ from service.solver.limits import Limits
 from service.solver.prediction import Prediction
 
 __all__ = [
+    "WARM_STARTS",
     "ActiveLimit",
     "MoveProblem",
     "MoveQP",
@@ -64,6 +67,9 @@ __all__ = [
 #: Absolute tolerance on every limit, in the units of the limited signal.  DAQP's answer is
 #: exact at its active set; the tolerance only decides when a constraint counts as violated.
 PRIMAL_TOLERANCE = 1e-9
+
+#: The ways a step can start (see :class:`MoveQP`).
+WARM_STARTS = ("previous", "shifted", "none")
 
 # DAQP's constraint-state bits (its documentation, "sense"): active, and active at the lower bound.
 _ACTIVE, _LOWER = 1, 2
@@ -190,9 +196,13 @@ class MoveQP:
     tolerance : float, optional
         Absolute primal tolerance on every limit (default :data:`PRIMAL_TOLERANCE`).
     iteration_limit : int, optional
-        Most active-set iterations per step (default 1000).
-    warm_start : bool, optional
-        Start each step from the previous step's active set shifted one sample (default true).
+        Most active-set iterations per start (default 10000, DAQP's own).
+    warm_start : {"previous", "shifted", "none"}, optional
+        How each step starts: ``"previous"`` (default) from the previous step's working set,
+        kept in DAQP's workspace with its factorization; ``"shifted"`` from the previous
+        solution's active set shifted one sample ahead (refactored from scratch); ``"none"``
+        from the empty set.  The answer is the same; only the work differs (see
+        ``tests/bench/bench_qp.py``).
 
     Notes
     -----
@@ -210,8 +220,8 @@ class MoveQP:
         limits: Limits,
         hard_outputs: bool = False,
         tolerance: float = PRIMAL_TOLERANCE,
-        iteration_limit: int = 1000,
-        warm_start: bool = True,
+        iteration_limit: int = 10000,
+        warm_start: str = "previous",
     ) -> None:
         g = prediction.moves
         hu, m = prediction.control, limits.inputs
@@ -223,7 +233,9 @@ class MoveQP:
         self._limits = limits
         self._m, self._p, self._hu, self._first = m, p, hu, prediction.first_penalized
         self._tolerance = tolerance
+        assert warm_start in WARM_STARTS, warm_start
         self._warm = warm_start
+        self._kept = False  # whether DAQP's workspace holds a working set worth starting from
         nu = hu * m
 
         # Input rows: u(k+j) - u(k-1) = sum_{l<=j} du(k+l), for inputs with a limit.
@@ -267,6 +279,35 @@ class MoveQP:
         self._var_lower = np.concatenate([-np.tile(limits.move_max, hu), np.zeros(ns)])
         self._var_upper = np.concatenate([np.tile(limits.move_max, hu), np.full(ns, np.inf)])
         self._shift = self._shift_map(nv, nr, steps)
+        lim = limits
+        self._lower_template = np.concatenate([
+            self._var_lower,
+            np.tile(lim.input_min[limited_in], hu),
+            np.full(out_up.size, -np.inf),
+            np.tile(lim.output_min[lower_out], steps),
+        ])
+        self._upper_template = np.concatenate([
+            self._var_upper,
+            np.tile(lim.input_max[limited_in], hu),
+            np.tile(lim.output_max[upper_out], steps),
+            np.full(out_lo.size, np.inf),
+        ])
+        # What each constraint is, for the report: kind (0 move, 1 input, 2 output; -1 slack
+        # bound), signal index and step.
+        kinds = np.full(nv + nr, -1)
+        index = np.zeros(nv + nr, dtype=int)
+        step = np.zeros(nv + nr, dtype=int)
+        kinds[:nu], index[:nu], step[:nu] = 0, np.tile(np.arange(m), hu), np.repeat(np.arange(hu), m)
+        for key, code, signals, count, first in (
+            ("input", 1, limited_in, hu, 0),
+            ("upper", 2, upper_out, steps, prediction.first_penalized),
+            ("lower", 2, lower_out, steps, prediction.first_penalized),
+        ):
+            start, stop = self._ranges[key]
+            kinds[start:stop] = code
+            index[start:stop] = np.tile(signals, count)
+            step[start:stop] = first + np.repeat(np.arange(count), signals.size)
+        self._kind_of, self._index_of, self._step_of = kinds, index, step
 
         lower, upper = self._bounds(np.zeros(m), np.zeros(steps * p))
         self._model = daqp.Model()
@@ -286,8 +327,8 @@ class MoveQP:
         *,
         hard_outputs: bool = False,
         tolerance: float = PRIMAL_TOLERANCE,
-        iteration_limit: int = 1000,
-        warm_start: bool = True,
+        iteration_limit: int = 10000,
+        warm_start: str = "previous",
     ) -> MoveQP:
         """Build from a :class:`service.solver.design.ControllerDesign` and limits."""
         return cls(
@@ -348,14 +389,16 @@ class MoveQP:
     def _bounds(
         self, previous_input: NDArray[np.float64], free_prediction: NDArray[np.float64]
     ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-        lim, idx = self._limits, self._in_index
-        in_lo = np.tile(lim.input_min[idx] - previous_input[idx], self._hu)
-        in_hi = np.tile(lim.input_max[idx] - previous_input[idx], self._hu)
-        steps = free_prediction.size // self._p
-        up_hi = np.tile(lim.output_max[self._upper_out], steps) - free_prediction[self._out_up]
-        lo_lo = np.tile(lim.output_min[self._lower_out], steps) - free_prediction[self._out_lo]
-        lower = np.concatenate([self._var_lower, in_lo, np.full(up_hi.size, -np.inf), lo_lo])
-        upper = np.concatenate([self._var_upper, in_hi, up_hi, np.full(lo_lo.size, np.inf)])
+        """Bounds of one step: the constant templates less ``u(k-1)`` and ``Zfree`` where they enter."""
+        lower, upper = self._lower_template.copy(), self._upper_template.copy()
+        start, stop = self._ranges["input"]
+        held = np.tile(previous_input[self._in_index], self._hu)
+        lower[start:stop] -= held
+        upper[start:stop] -= held
+        start, stop = self._ranges["upper"]
+        upper[start:stop] -= free_prediction[self._out_up]
+        start, stop = self._ranges["lower"]
+        lower[start:stop] -= free_prediction[self._out_lo]
         return lower, upper
 
     def problem(
@@ -416,11 +459,18 @@ class MoveQP:
             return self._result(trial, multipliers, "optimal", 0, "unconstrained")
 
         iterations = 0
-        starts = [self._shifted_sense()] if self._warm else []
+        starts: list[NDArray[np.int32] | None] = []
+        if self._warm == "shifted":
+            starts.append(self._shifted_sense())
+        elif self._warm == "previous" and self._kept:
+            starts.append(None)  # DAQP keeps its last working set and its factorization
         starts.append(np.zeros_like(self._last_sense))
         for sense in starts:
             try:
-                self._model.update(f=qp.linear, bupper=qp.upper, blower=qp.lower, sense=sense)
+                if sense is None:
+                    self._model.update(f=qp.linear, bupper=qp.upper, blower=qp.lower)
+                else:
+                    self._model.update(f=qp.linear, bupper=qp.upper, blower=qp.lower, sense=sense)
                 x, _, flag, info = self._model.solve()
             except Exception:  # the solver must never end the run
                 flag, info, x = -99, {"iterations": 0}, None
@@ -430,11 +480,13 @@ class MoveQP:
                 if np.isfinite(x).all() and self._violation(x, qp) <= 10.0 * self._tolerance:
                     multipliers = np.asarray(info["lam"], dtype=float).copy()
                     self._last_sense = _sense_of(multipliers)
+                    self._kept = True
                     return self._result(x, multipliers, "optimal", iterations, "active_set")
                 flag = -99
             if flag == -1:
                 break  # infeasible is a property of the problem, not of the start
         self._last_sense = np.zeros_like(self._last_sense)
+        self._kept = False
         return self._failure(_STATUS.get(flag, "failed"), iterations)
 
     def _shifted_sense(self) -> NDArray[np.int32]:
@@ -488,22 +540,17 @@ class MoveQP:
         )
 
     def _active(self, multipliers: NDArray[np.float64]) -> tuple[ActiveLimit, ...]:
-        m, first = self._m, self._first
-        found: list[ActiveLimit] = []
-        for k in np.flatnonzero(multipliers[: self._hu * m]):
-            side = "max" if multipliers[k] > 0 else "min"
-            found.append(ActiveLimit("move", side, int(k % m), int(k // m)))
-        start, stop = self._ranges["input"]
-        width = max(self._in_index.size, 1)
-        for k in np.flatnonzero(multipliers[start:stop]):
-            side = "max" if multipliers[start + k] > 0 else "min"
-            found.append(ActiveLimit("input", side, int(self._in_index[k % width]), int(k // width)))
-        for key, index, side in (("upper", self._upper_out, "max"), ("lower", self._lower_out, "min")):
-            start, stop = self._ranges[key]
-            width = max(index.size, 1)
-            for k in np.flatnonzero(multipliers[start:stop]):
-                found.append(ActiveLimit("output", side, int(index[k % width]), first + int(k // width)))
-        return tuple(found)
+        found = np.flatnonzero((multipliers != 0.0) & (self._kind_of >= 0))
+        names = ("move", "input", "output")
+        return tuple(
+            ActiveLimit(names[kind], "max" if value > 0 else "min", index, step)
+            for kind, value, index, step in zip(
+                self._kind_of[found].tolist(),
+                multipliers[found].tolist(),
+                self._index_of[found].tolist(),
+                self._step_of[found].tolist(),
+            )
+        )
 
 
 def _sense_of(multipliers: NDArray[np.float64]) -> NDArray[np.int32]:

@@ -75,7 +75,7 @@ def test_solution_satisfies_the_kkt_conditions(seed):
     # complementary slackness lambda_i (a_i x - bound_i) = 0.
     rng = np.random.default_rng(seed)
     design, limits = active_limits_setup(rng)
-    qp = MoveQP.from_design(design, limits, warm_start=False)
+    qp = MoveQP.from_design(design, limits, warm_start="none")
     actives = 0
     for _ in range(5):
         error, free, u = random_step(rng, design)
@@ -206,10 +206,11 @@ def test_wide_limits_give_the_unconstrained_trajectory(rng):
 
 
 def test_exact_penalty_gives_the_hard_solution_above_the_multiplier_sum(rng):
-    # Exact l1 penalty (Nocedal and Wright, Numerical Optimization, 2nd ed., theorem 17.3,
-    # recalled from memory): with a feasible hard problem and a penalty above the dual norm
-    # of its multipliers -- here, one slack per bound shared over the horizon, the sum of the
-    # bound's multipliers -- the soft problem has the hard one's solution; below it, it does not.
+    # Exact l1 penalty (a standard result of constrained optimization; common practice): with
+    # a feasible hard problem and a penalty above the dual norm of its multipliers -- here, one
+    # slack per bound shared over the horizon, the sum of the bound's multipliers -- the soft
+    # problem has the hard one's solution; below it, it does not.  The hard problem's multipliers
+    # come from the same solver, checked by the KKT test above.
     _, _, _, design = small_design(rng)
     base = dict(input_min=-3.0, input_max=3.0, output_max=[0.5, np.nan])
     hard_qp = MoveQP.from_design(design, make_limits(M, P, **base), hard_outputs=True)
@@ -273,14 +274,15 @@ def test_infeasible_hard_output_limits_fall_back(rng):
     np.testing.assert_array_equal(solution.moves, 0.0)
 
 
-def test_warm_start_finds_the_cold_solution(rng):
-    # The shifted active set is only a starting guess: warm and cold runs must agree.
+@pytest.mark.parametrize("warm_start", ["previous", "shifted"])
+def test_warm_start_finds_the_cold_solution(rng, warm_start):
+    # A warm start is only a starting guess: warm and cold runs must agree.
     a, b, c, design = small_design(rng)
     limits = make_limits(M, P, input_min=-1.0, input_max=1.0, move_max=0.3, output_max=[2.0, 2.0])
     estimator = design_estimator(a, b, c, kind="full_state")
     scenario = Scenario(steps=40, setpoint_changes=[Event(0, np.array([4.0, -3.0])), Event(20, np.array([-2.0, 1.0]))])
-    warm = simulate_loop(design, estimator, scenario, policy=ConstrainedPolicy.from_design(design, limits))
-    cold = simulate_loop(design, estimator, scenario, policy=ConstrainedPolicy.from_design(design, limits, warm_start=False))
+    warm = simulate_loop(design, estimator, scenario, policy=ConstrainedPolicy.from_design(design, limits, warm_start=warm_start))
+    cold = simulate_loop(design, estimator, scenario, policy=ConstrainedPolicy.from_design(design, limits, warm_start="none"))
     np.testing.assert_allclose(warm.inputs, cold.inputs, atol=1e-9)
 
 
