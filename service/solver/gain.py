@@ -26,6 +26,7 @@ from numpy.typing import NDArray
 
 from service.errors import HessianNotPositiveDefinite
 from service.solver.prediction import Prediction
+from service.solver.spectrum import extreme_eigenvalues
 
 __all__ = [
     "FactoredHessian",
@@ -40,28 +41,21 @@ __all__ = [
 
 @dataclass(frozen=True)
 class FactoredHessian:
-    """The Hessian ``H`` (Hu*m square), its Cholesky factor and its eigenvalues.
+    """The Hessian ``H`` (Hu*m square), its Cholesky factor and its extreme eigenvalues.
 
     Attributes
     ----------
     matrix : ndarray, shape (Hu*m, Hu*m)
     factor : tuple (ndarray, bool)
         ``scipy.linalg.cho_factor`` output, for ``scipy.linalg.cho_solve``.
-    eigenvalues : ndarray, shape (Hu*m,)
-        Ascending, from ``scipy.linalg.eigvalsh``.
+    smallest_eigenvalue, largest_eigenvalue : float
+        From :func:`service.solver.spectrum.extreme_eigenvalues`.
     """
 
     matrix: NDArray[np.float64]
     factor: tuple[NDArray[np.float64], bool]
-    eigenvalues: NDArray[np.float64]
-
-    @property
-    def smallest_eigenvalue(self) -> float:
-        return float(self.eigenvalues[0])
-
-    @property
-    def largest_eigenvalue(self) -> float:
-        return float(self.eigenvalues[-1])
+    smallest_eigenvalue: float
+    largest_eigenvalue: float
 
     @property
     def condition_number(self) -> float:
@@ -191,20 +185,22 @@ def factor_hessian(
     Raises
     ------
     HessianNotPositiveDefinite
-        When the smallest eigenvalue is not above ``size * eps * l_max`` (the rank tolerance
-        of ``numpy.linalg.matrix_rank``), or Cholesky fails.  ``H`` is singular exactly when
+        When Cholesky fails, or the smallest eigenvalue is not above ``size * eps * l_max``
+        (the rank tolerance of ``numpy.linalg.matrix_rank``).  ``H`` is singular exactly when
         a move direction has zero move weight and ``G`` maps it to zero, i.e. ``G`` lacks full
         column rank over the unpenalized moves.
     """
-    eigenvalues = scipy.linalg.eigvalsh(hessian, check_finite=False)
-    tolerance = hessian.shape[0] * np.finfo(float).eps * max(abs(eigenvalues[-1]), np.finfo(float).tiny)
-    factor = None
-    if eigenvalues[0] > tolerance:
-        try:
-            factor = scipy.linalg.cho_factor(hessian, lower=True, check_finite=False)
-        except np.linalg.LinAlgError:
+    factor: tuple[NDArray[np.float64], bool] | None
+    try:
+        factor = scipy.linalg.cho_factor(hessian, lower=True, check_finite=False)
+    except np.linalg.LinAlgError:
+        factor = None
+    if factor is not None:
+        low, high = extreme_eigenvalues(hessian)
+        if low <= hessian.shape[0] * np.finfo(float).eps * max(abs(high), np.finfo(float).tiny):
             factor = None
     if factor is None:
+        eigenvalues = scipy.linalg.eigvalsh(hessian, check_finite=False)  # for the message only
         m = move_weight.shape[0]
         labels = list(input_labels) if input_labels else [f"u{j + 1}" for j in range(m)]
         inputs, rank, count = _unseen_free_moves(weighted, move_weight, control)
@@ -230,7 +226,7 @@ def factor_hessian(
                 f"{eigenvalues[0]:.3g} to {eigenvalues[-1]:.3g}). Raise the move weights."
             )
         raise HessianNotPositiveDefinite(detail, pointer="/weights/move")
-    return FactoredHessian(matrix=hessian, factor=factor, eigenvalues=eigenvalues)
+    return FactoredHessian(matrix=hessian, factor=factor, smallest_eigenvalue=low, largest_eigenvalue=high)
 
 
 def first_move_gain(

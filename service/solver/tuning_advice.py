@@ -52,6 +52,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from service.errors import NumericalError
 from service.solver.analysis import ILL_CONDITIONED, UNIT_CIRCLE_MARGIN, Diagnostic
+from service.solver.spectrum import extreme_eigenvalues
 from service.solver.design import ControllerDesign, design_controller
 from service.solver.frequency import FrequencyAnalysis
 from service.solver.prediction import step_response_coefficients
@@ -89,7 +90,21 @@ def _fmt(z: complex) -> str:
 
 
 def _condition_number(a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64], design: ControllerDesign, *, move_scale: float, control: int) -> float | None:
-    """Condition number of the same design with scaled move weights or another ``Hu``; ``None`` if singular."""
+    """Condition number of the same design with scaled move weights or another ``Hu``; ``None`` if singular.
+
+    Without a terminal weight or blocking no new design is needed: scaling every move weight
+    by ``s`` adds ``(s - 1) blockdiag(R)`` to ``H``, and a shorter control horizon ``Hu'``
+    keeps the first ``Hu'`` block columns of ``G`` (``G_ij = S_(i-j)`` does not depend on
+    ``Hu``), so its Hessian is the leading ``Hu' m`` block of ``H``.
+    """
+    if design.terminal is None and design.blocking is None:
+        m = design.move_weight.shape[0]
+        h = design.hessian.matrix
+        if move_scale != 1.0:
+            h = h + (move_scale - 1.0) * np.kron(np.eye(h.shape[0] // m), design.move_weight)
+        h = h[: control * m, : control * m]
+        low, high = extreme_eigenvalues(h)
+        return None if low <= h.shape[0] * np.finfo(float).eps * high else high / low
     pred = design.prediction
     blocking = None if design.blocking is None else [j for j in design.blocking if j < control]
     try:

@@ -101,7 +101,9 @@ def test_positive_move_weights_always_give_a_positive_definite_hessian(rng):
         b[:, 0] = 0.0  # even an input that acts on nothing
         d = design_controller(a, b, c, output_weight=rng.uniform(0, 1, p), move_weight=rng.uniform(1e-3, 1, m), prediction=8, control=3)
         assert d.hessian.smallest_eigenvalue > 0
-        np.testing.assert_allclose(scipy.linalg.eigvalsh(d.hessian.matrix), d.hessian.eigenvalues, rtol=1e-10)
+        reference = scipy.linalg.eigvalsh(d.hessian.matrix)
+        assert d.hessian.smallest_eigenvalue == pytest.approx(reference[0], rel=1e-10)
+        assert d.hessian.largest_eigenvalue == pytest.approx(reference[-1], rel=1e-10)
         assert d.hessian.condition_number == pytest.approx(np.linalg.cond(d.hessian.matrix, 2), rel=1e-8)
 
 

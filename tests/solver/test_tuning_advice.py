@@ -221,3 +221,21 @@ def test_every_check_reports_in_the_fixed_order():
     d = design_controller(a, b, c, output_weight=[1.0], move_weight=[1e4], prediction=5, control=2)
     codes = [w.code for w in tuning_advice(a, b, c, d, sample_time=ts)]
     assert codes == ["slow_pole", "non_minimum_phase_short_horizon"]
+
+
+def test_shortcut_condition_numbers_equal_full_redesigns(rng):
+    # The advice's shortcut (H + (s-1) blockdiag(R), leading block for a shorter Hu) must give
+    # what a separate design gives; the reference is design_controller itself.
+    from service.solver.design import design_controller
+    from service.solver.tuning_advice import _condition_number
+
+    n, m, p = 4, 2, 2
+    a = rng.normal(size=(n, n))
+    a *= 0.9 / max(abs(np.linalg.eigvals(a)))
+    b, c = rng.normal(size=(n, m)), rng.normal(size=(p, n))
+    base = dict(output_weight=[1.0, 2.0], move_weight=[0.1, 0.3], prediction=20)
+    d = design_controller(a, b, c, control=6, **base)
+    heavier = design_controller(a, b, c, control=6, **{**base, "move_weight": [1.0, 3.0]})
+    shorter = design_controller(a, b, c, control=3, **base)
+    assert _condition_number(a, b, c, d, move_scale=10.0, control=6) == pytest.approx(heavier.hessian.condition_number, rel=1e-9)
+    assert _condition_number(a, b, c, d, move_scale=1.0, control=3) == pytest.approx(shorter.hessian.condition_number, rel=1e-9)
