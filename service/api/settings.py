@@ -36,6 +36,7 @@ class Settings(BaseSettings):
     max_response_entries: int = Field(
         default=2_000_000, ge=1, description="Most entries of the horizon gain in a response."
     )
+    max_sweep_values: int = Field(default=50, ge=1, le=1000, description="Most values in one tuning sweep.")
     max_simulation_steps: int = Field(default=100_000, ge=1, description="Longest run of POST /simulate, in steps.")
     max_simulation_work: int = Field(
         default=5_000_000_000,
@@ -104,6 +105,7 @@ class Settings(BaseSettings):
             max_hessian_size=self.max_hessian_size,
             max_prediction_entries=self.max_prediction_entries,
             max_response_entries=self.max_response_entries,
+            max_sweep_values=self.max_sweep_values,
             max_simulation_steps=self.max_simulation_steps,
             max_simulation_work=self.max_simulation_work,
         )
