@@ -528,6 +528,8 @@ def main(argv: list[str] | None = None) -> int:
         f"{os.cpu_count()} CPUs, {platform.machine()}; seed {SEED}; best of N, budget {args.budget:g} s; "
         f"load average {load_average()}"
     )
+    threads = {k: os.environ[k] for k in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS") if k in os.environ}
+    print(f"BLAS threads: {', '.join(f'{k}={v}' for k, v in threads.items()) or 'library default (one per CPU)'}")
     if cases:
         print("\nSolver against the textbook version and the BLAS floor (G'G + Cholesky):")
         rows = run_solver_benchmark(cases, budget=args.budget)
