@@ -24,6 +24,7 @@ from service.solver.gain import (
     factor_hessian,
     first_move_gain,
     hessian_matrix,
+    toeplitz_hessian,
     weighted_moves,
 )
 from service.solver.prediction import Prediction, prediction_matrices
@@ -172,8 +173,12 @@ def design_controller(
         rows = np.vstack([weighted, term.weighted_moves])
     else:
         assert terminal == "none", f"unknown terminal weight {terminal!r}"
+    if term is None and (free is None or free == tuple(range(control))):
+        matrix = toeplitz_hessian(pred, weighted, root, r)  # G keeps its block-Toeplitz form
+    else:
+        matrix = hessian_matrix(rows, r, control=moves)
     hessian = factor_hessian(
-        hessian_matrix(rows, r, control=moves),
+        matrix,
         weighted=rows,
         move_weight=r,
         control=moves,

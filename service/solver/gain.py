@@ -35,6 +35,7 @@ __all__ = [
     "first_move_gain",
     "hessian_matrix",
     "optimal_moves",
+    "toeplitz_hessian",
     "weighted_moves",
 ]
 
@@ -134,6 +135,64 @@ def hessian_matrix(
     m = move_weight.shape[0]
     h = weighted.T @ weighted
     for j in range(control):
+        h[j * m : (j + 1) * m, j * m : (j + 1) * m] += move_weight
+    return np.triu(h) + np.triu(h, 1).T
+
+
+def toeplitz_hessian(
+    prediction: Prediction,
+    weighted: NDArray[np.float64],
+    output_root: NDArray[np.float64],
+    move_weight: NDArray[np.float64],
+) -> NDArray[np.float64]:
+    """Return the same ``H`` as :func:`hessian_matrix`, from the block-Toeplitz structure of ``G``.
+
+    Parameters
+    ----------
+    prediction : Prediction
+        Unblocked (``G_ij = S_(i-j)`` for every move step).
+    weighted : ndarray, shape (Np*p, Hu*m)
+        ``Wbar G`` from :func:`weighted_moves`.
+    output_root : ndarray, shape (p, p)
+        ``W`` with ``W' W = Q``.
+    move_weight : ndarray, shape (m, m)
+
+    Returns
+    -------
+    ndarray, shape (Hu*m, Hu*m)
+        Symmetric (the lower triangle is mirrored).
+
+    Notes
+    -----
+    With ``V_k = W S_k`` (zero for ``k <= 0``), block ``(j, k)`` of ``G' Q G`` is
+    ``sum_{i=Hw}^{Hp} V_(i-j)' V_(i-k)``; shifting both indices by one moves the sum's
+    window, so ::
+
+        H0(j+1, k+1) = H0(j, k) + V_(Hw-1-j)' V_(Hw-1-k) - V_(Hp-j)' V_(Hp-k)
+
+    Block row 0 costs one thin product ``(Wbar G)[:, :m]' (Wbar G)``, the two corrections are
+    the Gram matrices of ``Hu`` step-response blocks each, and the rest is a running sum
+    down each block diagonal: about ``Np p (Hu m) m`` operations instead of
+    ``Np p (Hu m)^2`` for the dense product.
+    """
+    hp, hu, hw = prediction.prediction, prediction.control, prediction.first_penalized
+    m = move_weight.shape[0]
+    steps = prediction.step_response  # (Hp+1, p, m), S_0 = 0
+
+    def blocks(first: int) -> NDArray[np.float64]:
+        """[V_first, V_(first-1), ..., V_(first-Hu+1)] as a p x Hu*m matrix (V_k = 0 for k <= 0)."""
+        index = first - np.arange(hu)
+        stacked = np.where((index > 0)[:, None, None], steps[np.clip(index, 0, hp)], 0.0)
+        return np.einsum("ij,kjl->ikl", output_root, stacked).reshape(output_root.shape[0], hu * m)
+
+    early, late = blocks(hw - 1), blocks(hp)
+    step = early.T @ early - late.T @ late  # increments H0(j+1, k+1) - H0(j, k)
+    h = np.empty((hu * m, hu * m))
+    h[:m] = weighted[:, :m].T @ weighted
+    for j in range(1, hu):
+        rows, prev = slice(j * m, (j + 1) * m), slice((j - 1) * m, j * m)
+        h[rows, j * m :] = h[prev, (j - 1) * m : -m] + step[prev, (j - 1) * m : -m]
+    for j in range(hu):
         h[j * m : (j + 1) * m, j * m : (j + 1) * m] += move_weight
     return np.triu(h) + np.triu(h, 1).T
 

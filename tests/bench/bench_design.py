@@ -8,7 +8,7 @@ Part one times, on random stable plants with a fixed seed,
 
 - ``design_controller`` (the whole design: prediction matrices, Hessian, Cholesky factor,
   its eigenvalues, first-move gains, closed-loop poles, warnings);
-- the gain part alone (``prediction_matrices`` + ``weighted_moves`` + ``hessian_matrix`` +
+- the gain part alone (``prediction_matrices`` + ``weighted_moves`` + ``toeplitz_hessian`` +
   ``factor_hessian`` + ``first_move_gain``);
 - a textbook direct implementation written here: ``G`` from explicit matrix powers, dense
   ``kron(I, Q)`` and ``kron(I, R)`` weights and ``numpy.linalg.inv`` of ``H``;
@@ -57,7 +57,7 @@ from service.solver.gain import (  # noqa: E402
     PredictiveGain,
     factor_hessian,
     first_move_gain,
-    hessian_matrix,
+    toeplitz_hessian,
     weighted_moves,
 )
 from service.solver.prediction import prediction_matrices  # noqa: E402
@@ -149,7 +149,7 @@ def movecast_gain(plant: Plant) -> PredictiveGain:
     root = weight_root(q)
     weighted = weighted_moves(pred, root)
     hessian = factor_hessian(
-        hessian_matrix(weighted, r, control=case.control),
+        toeplitz_hessian(pred, weighted, root, r),
         weighted=weighted,
         move_weight=r,
         control=case.control,

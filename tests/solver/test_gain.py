@@ -132,3 +132,23 @@ def test_zero_move_weight_with_full_rank_moves_is_accepted(rng):
     a, b, c = random_plant(rng, 4, 2, 2)
     d = design_controller(a, b, c, output_weight=[1.0, 1.0], move_weight=[0.0, 0.0], prediction=10, control=3)
     assert d.hessian.smallest_eigenvalue > 0
+
+
+@pytest.mark.parametrize(("hp", "hu", "hw"), [(1, 1, 1), (12, 4, 1), (12, 12, 1), (15, 5, 4), (9, 3, 9)])
+def test_toeplitz_hessian_equals_the_dense_product(rng, hp, hu, hw):
+    # Reference: the definition H = (Wbar G)'(Wbar G) + blockdiag(R), formed densely.
+    from service.solver.gain import hessian_matrix, toeplitz_hessian, weighted_moves
+    from service.solver.prediction import prediction_matrices
+    from service.solver.weights import weight_root
+
+    n, m, p = 4, 2, 3
+    a, b, c = random_plant(rng, n, m, p)
+    pred = prediction_matrices(a, b, c, prediction=hp, control=hu, first_penalized=hw)
+    q = np.array([[2.0, 0.3, 0.0], [0.3, 1.0, 0.1], [0.0, 0.1, 0.5]])
+    r = np.array([[0.2, 0.05], [0.05, 0.1]])
+    root = weight_root(q)
+    weighted = weighted_moves(pred, root)
+    dense = hessian_matrix(weighted, r, control=hu)
+    fast = toeplitz_hessian(pred, weighted, root, r)
+    np.testing.assert_allclose(fast, dense, rtol=0, atol=1e-13 * np.abs(dense).max())
+    assert np.array_equal(fast, fast.T)
