@@ -37,7 +37,7 @@ from numpy.typing import ArrayLike, NDArray
 from service.solver.target import REACHABLE_TOLERANCE, TargetProblem, steady_state_target
 from service.solver.weights import weight_root
 
-__all__ = ["ReachableTarget", "ReachableTargetProblem", "reachable_target"]
+__all__ = ["TARGET_TOLERANCE", "ReachableTarget", "ReachableTargetProblem", "reachable_target"]
 
 #: Absolute tolerance on the input limits of the target, in input units.
 TARGET_TOLERANCE = 1e-10
