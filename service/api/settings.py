@@ -43,6 +43,11 @@ class Settings(BaseSettings):
         ge=1,
         description="Most estimated floating-point work of one simulated run (steps x cost of a step).",
     )
+    max_frequency_work: int = Field(
+        default=5_000_000_000,
+        ge=1,
+        description="Most estimated floating-point work of one frequency analysis (points x cost of a point).",
+    )
 
     max_body_bytes: int = Field(
         default=1_048_576, ge=1024, description="Largest request body in bytes; larger ones get 413."
@@ -108,4 +113,5 @@ class Settings(BaseSettings):
             max_sweep_values=self.max_sweep_values,
             max_simulation_steps=self.max_simulation_steps,
             max_simulation_work=self.max_simulation_work,
+            max_frequency_work=self.max_frequency_work,
         )

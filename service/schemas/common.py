@@ -72,6 +72,10 @@ class Caps:
     #: own cost (``service.schemas.simulate_checks.simulation_work``).  The default is
     #: about 5 s of one core at 1 GFLOP/s, a rough rate for matrix-vector products this small.
     max_simulation_work: int = 5_000_000_000
+    #: Estimated work of one frequency analysis (``analysis.frequency`` of /design): grid
+    #: points times the floating-point operations of evaluating the loop there
+    #: (``service.schemas.robustness_convert.frequency_work``); the same rough 5 s.
+    max_frequency_work: int = 5_000_000_000
 
 
 def pointer(*parts: str | int) -> str:

@@ -2,14 +2,20 @@
 
 from __future__ import annotations
 
+from typing import Annotated
+
 from pydantic import Field
 
 from service.schemas.common import FiniteFloat, Matrix, RequestModel, ResponseModel
+from service.schemas.estimator import EstimatorRequest
 from service.schemas.model import PlantModel
+from service.schemas.robustness import RobustnessReport
 from service.schemas.tuning import Horizons, Weights
 
 __all__ = [
     "ADVISORY",
+    "MAX_FREQUENCY_POINTS",
+    "MIN_FREQUENCY_POINTS",
     "ClosedLoopReport",
     "DesignAnalysis",
     "GainLabels",
@@ -31,12 +37,26 @@ ADVISORY = (
     "under local codes."
 )
 
+#: Bounds of ``analysis.points`` (the frequency grid of the robustness block).
+MIN_FREQUENCY_POINTS = 10
+MAX_FREQUENCY_POINTS = 2000
+
 
 class DesignAnalysis(RequestModel):
     """What to add to the answer beyond gains, conditioning and poles."""
 
     sampled_model: bool = Field(
         default=False, description="Return the sampled A, B, C the design used (under plant.sampled_model)."
+    )
+    frequency: bool = Field(
+        default=False,
+        description="Return the robustness block: sensitivities, peaks, bandwidth and margins of the loop with "
+        "the request's estimator, at the plant input and output.",
+    )
+    points: Annotated[int, Field(strict=True, ge=MIN_FREQUENCY_POINTS, le=MAX_FREQUENCY_POINTS)] = Field(
+        default=200,
+        description=f"Frequencies of the grid of the robustness block, {MIN_FREQUENCY_POINTS} to "
+        f"{MAX_FREQUENCY_POINTS} (and within the service's work cap for the loop's size).",
     )
 
 
@@ -47,6 +67,11 @@ class DesignRequest(RequestModel):
     horizons: Horizons
     weights: Weights
     analysis: DesignAnalysis = Field(default_factory=DesignAnalysis)
+    estimator: EstimatorRequest = Field(
+        default_factory=EstimatorRequest,
+        description="The estimator that closes the loop: /design uses it for analysis.frequency only, "
+        "/simulate for the run.",
+    )
 
 
 class GainLabels(ResponseModel):
@@ -168,6 +193,9 @@ class DesignResponse(ResponseModel):
     closed_loop: ClosedLoopReport
     plant: PlantReport
     warnings: list[WarningReport]
+    robustness: RobustnessReport | None = Field(
+        default=None, description="When analysis.frequency is true: the loop in frequency (scaled signals)."
+    )
     fingerprint: str = Field(
         description="SHA-256 of the canonical request: equal for equal requests on any replica."
     )

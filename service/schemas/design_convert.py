@@ -1,8 +1,9 @@
 """From a validated /design request to solver arrays, and from the solver's result back.
 
 Three steps, each reusable by the other endpoints: :func:`check_design_request` (every
-check that needs several fields or the caps), :func:`compute_design` (scale, design, add
-feed-forward and plant facts; arrays only) and :func:`design_response` (the JSON answer).
+check that needs several fields or the caps, the estimator's included), :func:`compute_design`
+(scale, design, add feed-forward and plant facts and, when asked, the frequency analysis
+with the estimator; arrays only) and :func:`design_response` (the JSON answer).
 """
 
 from __future__ import annotations
@@ -30,11 +31,15 @@ from service.schemas.design import (
     SignalReport,
     WarningReport,
 )
+from service.schemas.estimator_convert import EstimatorInputs, check_estimator, scaled_estimator
 from service.schemas.fingerprint import fingerprint
 from service.schemas.plant import DiscretePlant, Signal, plant_arrays
+from service.schemas.robustness_convert import frequency_problems, robustness_report
 from service.solver.analysis import Diagnostic
 from service.solver.design import ControllerDesign, design_controller
+from service.solver.estimation import Estimator
 from service.solver.feedforward import disturbance_free_response, feedforward_gain
+from service.solver.frequency import FrequencyAnalysis, design_frequency_analysis
 from service.solver.gain import PredictiveGain
 from service.solver.modes import uncontrollable_mode_warnings
 from service.solver.plant import PlantProperties, plant_properties, plant_warnings
@@ -63,6 +68,10 @@ class DesignInputs:
     first_penalized: int
     terminal: Literal["none", "riccati"] = "none"
     move_steps: tuple[int, ...] | None = None
+    #: The checked estimator (of every request: /simulate runs with it).
+    estimator: EstimatorInputs | None = None
+    #: Grid size of the frequency analysis; ``None``: not asked.
+    frequency_points: int | None = None
 
     @property
     def free_moves(self) -> int:
@@ -87,6 +96,10 @@ class DesignOutcome:
     properties : PlantProperties
         Of the scaled plant.
     warnings : list of Diagnostic
+    estimator : Estimator or None
+        On the scaled plant, when the frequency analysis was asked.
+    analysis : FrequencyAnalysis or None
+        Of the design with that estimator, in scaled signals.
     """
 
     scaled: ScaledPlant
@@ -95,6 +108,8 @@ class DesignOutcome:
     feedforward: NDArray[np.float64] | None
     properties: PlantProperties
     warnings: list[Diagnostic]
+    estimator: Estimator | None = None
+    analysis: FrequencyAnalysis | None = None
 
 
 def _horizon_problems(request: DesignRequest, caps: Caps) -> list[FieldProblem]:
@@ -205,6 +220,10 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
                 "every output weight is zero, so no output is controlled; give at least one a positive weight",
             )
         )
+    estimator, found = check_estimator(request.estimator, plant)
+    problems += found
+    if request.analysis.frequency and not found:
+        problems += frequency_problems(plant, estimator, points=request.analysis.points, caps=caps)
     if request.weights.terminal == "riccati" and plant.b_disturbance is not None:
         problems.append(
             FieldProblem(
@@ -228,6 +247,8 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         first_penalized=h.first_penalized,
         terminal=request.weights.terminal,
         move_steps=None if h.move_steps is None else tuple(h.move_steps),
+        estimator=estimator,
+        frequency_points=request.analysis.points if request.analysis.frequency else None,
     )
 
 
@@ -263,6 +284,14 @@ def compute_design(inputs: DesignInputs) -> DesignOutcome:
             scaled.a, scaled.b_disturbance, scaled.c, prediction=inputs.prediction, first_penalized=inputs.first_penalized
         )
         feedforward = unscale_feedforward(feedforward_gain(design.gain.horizon, fd), input_span=su, disturbance_span=sd)
+    estimator, analysis = None, None
+    if inputs.frequency_points is not None:
+        assert inputs.estimator is not None
+        estimator = scaled_estimator(inputs.estimator, plant, scaled)
+        analysis = design_frequency_analysis(
+            design, estimator, sample_time=plant.sample_time, points=inputs.frequency_points
+        )
+    advice = tuning_advice(scaled.a, scaled.b, scaled.c, design, sample_time=plant.sample_time, analysis=analysis)
     properties = plant_properties(scaled.a, scaled.b, scaled.c)
     return DesignOutcome(
         scaled=scaled,
@@ -271,12 +300,14 @@ def compute_design(inputs: DesignInputs) -> DesignOutcome:
         feedforward=feedforward,
         properties=properties,
         warnings=[
-            *merge_warnings(design.warnings, tuning_advice(scaled.a, scaled.b, scaled.c, design, sample_time=plant.sample_time)),
+            *merge_warnings(design.warnings, advice),
             *plant_warnings(properties),
             *uncontrollable_mode_warnings(
                 scaled.a, scaled.b, labels=plant.state_labels, loop_poles=design.loop.poles
             ),
         ],
+        estimator=estimator,
+        analysis=analysis,
     )
 
 
@@ -367,6 +398,9 @@ def design_response(request: DesignRequest, inputs: DesignInputs, outcome: Desig
         ),
         plant=_plant_report(request, plant, outcome),
         warnings=[WarningReport(code=w.code, message=w.message) for w in outcome.warnings],
+        robustness=None
+        if outcome.analysis is None or outcome.estimator is None
+        else robustness_report(outcome.analysis, outcome.estimator),
         fingerprint=fingerprint(request),
     )
 

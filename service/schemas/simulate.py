@@ -1,18 +1,20 @@
 """POST /simulate: the request and response models.
 
 The request is a /design request (it subclasses :class:`DesignRequest`, so the two cannot
-drift apart) plus an ``estimator`` and a ``scenario``.  Every value is in the engineering
-units of the model's tags; covariances are in those units squared.
+drift apart; the ``estimator`` is one of its fields, :mod:`service.schemas.estimator`) plus a
+``scenario``.  Every value is in the engineering units of the model's tags; covariances are
+in those units squared.
 """
 
 from __future__ import annotations
 
-from typing import Annotated, Literal
+from typing import Annotated
 
 from pydantic import Field
 
-from service.schemas.common import FiniteFloat, Matrix, RequestModel, ResponseModel, Vector
+from service.schemas.common import FiniteFloat, RequestModel, ResponseModel, Vector
 from service.schemas.design import DesignRequest, DesignResponse, LabelledMatrix, PoleReport, WarningReport
+from service.schemas.estimator import EstimatorRequest
 from service.schemas.model import PlantModel
 
 __all__ = [
@@ -34,39 +36,6 @@ __all__ = [
 
 StepIndex = Annotated[int, Field(strict=True, ge=0)]
 Spread = Annotated[FiniteFloat, Field(ge=0)]
-Covariance = Vector | Matrix
-
-
-class EstimatorRequest(RequestModel):
-    """How the controller estimates the state (and a constant disturbance) from the outputs."""
-
-    kind: Literal["full_state", "output_disturbance", "input_disturbance", "kalman"] = Field(
-        default="output_disturbance",
-        description="'full_state': the state is read as measured (analysis only); 'output_disturbance' "
-        "(default): a constant disturbance on each output, for offset-free control; "
-        "'input_disturbance': a constant disturbance entering with each input; 'kalman': a "
-        "steady-state Kalman filter from the covariances below, with the disturbance model "
-        "of 'disturbance'. Every kind but full_state is a steady-state Kalman filter.",
-    )
-    disturbance: Literal["output", "input", "none"] | None = Field(
-        default=None, description="Disturbance model of a 'kalman' estimator (default 'output'); only with kalman."
-    )
-    process_noise: Covariance | None = Field(
-        default=None,
-        description="Covariance of the noise on each model state per sample: n variances or an n x n "
-        "symmetric positive-semidefinite matrix (default 0.01 per state).",
-    )
-    disturbance_noise: Covariance | None = Field(
-        default=None,
-        description="Covariance of the per-sample change of each estimated disturbance (output units "
-        "squared for output disturbances, input units squared for input ones; default 1 per "
-        "disturbance, in units of the span when spans are given).",
-    )
-    measurement_noise: Covariance | None = Field(
-        default=None,
-        description="Covariance of the noise on each measured output: p variances or a p x p symmetric "
-        "positive-definite matrix (default 1 per output, in units of the span when spans are given).",
-    )
 
 
 class SetpointChange(RequestModel):
@@ -136,9 +105,8 @@ class ScenarioRequest(RequestModel):
 
 
 class SimulateRequest(DesignRequest):
-    """A /design request with an estimator and a scenario: everything needed to preview the loop."""
+    """A /design request (its ``estimator`` included) with a scenario: everything needed to preview the loop."""
 
-    estimator: EstimatorRequest = Field(default_factory=EstimatorRequest)
     scenario: ScenarioRequest
 
 

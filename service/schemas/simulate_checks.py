@@ -1,10 +1,11 @@
 """The checks of a /simulate request: everything its field types alone cannot say.
 
-:func:`check_simulate_request` runs the /design checks, then those of the estimator (kinds,
-covariance sizes, positive-definite measurement noise), the scenario (events inside the run
-and of the right length, the true plant's sizes, sample time and tags, the initial
-conditions) and the caps (steps, numbers kept, estimated work).  Every problem names its
-field by JSON pointer; problems are collected, not raised one at a time.
+:func:`check_simulate_request` runs the /design checks (the estimator's among them: kinds,
+covariance sizes, positive-definite measurement noise; :mod:`service.schemas.estimator_convert`),
+then those of the scenario (events inside the run and of the right length, the true plant's
+sizes, sample time and tags, the initial conditions) and the caps (steps, numbers kept,
+estimated work).  Every problem names its field by JSON pointer; problems are collected, not
+raised one at a time.
 """
 
 from __future__ import annotations
@@ -16,7 +17,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import FieldProblem, InvalidRequest
-from service.schemas.common import Caps, check_weight, pointer
+from service.schemas.common import Caps, pointer
 from service.schemas.design_convert import DesignInputs, check_design_request
 from service.schemas.plant import DiscretePlant, plant_arrays
 from service.schemas.simulate import SimulateRequest
@@ -30,7 +31,6 @@ __all__ = ["STEP_OVERHEAD", "SimulationInputs", "check_simulate_request", "simul
 STEP_OVERHEAD = 30_000
 
 Where = tuple[str | int, ...]
-_IMPLIED = {"full_state": "none", "output_disturbance": "output", "input_disturbance": "input"}
 
 
 @dataclass(frozen=True)
@@ -96,58 +96,6 @@ def _events(
         problems += _length(value, size, (*where, value_field), what)
         events.append(Event(change.step, np.asarray(value, dtype=float)))
     return events, problems
-
-
-def _estimator_problems(request: SimulateRequest, plant: DiscretePlant) -> tuple[dict[str, object], list[FieldProblem]]:
-    est = request.estimator
-    problems: list[FieldProblem] = []
-    if est.kind != "kalman" and est.disturbance is not None:
-        problems.append(
-            FieldProblem(
-                pointer("estimator", "disturbance"),
-                f"only a kalman estimator takes a disturbance model; {est.kind} implies "
-                f"'{_IMPLIED[est.kind]}'. Leave it out, or use kind 'kalman'",
-            )
-        )
-    disturbance = (est.disturbance or "output") if est.kind == "kalman" else _IMPLIED[est.kind]
-    covariances: dict[str, object] = {"process_noise": None, "disturbance_noise": None, "measurement_noise": None}
-    if est.kind == "full_state":
-        for name in covariances:
-            if getattr(est, name) is not None:
-                problems.append(
-                    FieldProblem(pointer("estimator", name), "a full_state estimator reads the state and has no filter to tune; leave it out")
-                )
-        return {"kind": est.kind, "disturbance": disturbance, **covariances}, problems
-    nd = {"output": plant.output_count, "input": plant.input_count, "none": 0}[disturbance]
-    sizes = {
-        "process_noise": (plant.states, "process-noise covariance", "model states"),
-        "disturbance_noise": (nd, "disturbance-noise covariance", f"{disturbance} disturbances"),
-        "measurement_noise": (plant.output_count, "measurement-noise covariance", "measured outputs"),
-    }
-    for name, (size, what, of) in sizes.items():
-        value = getattr(est, name)
-        if value is None:
-            continue
-        if size == 0:
-            problems.append(
-                FieldProblem(pointer("estimator", name), "the disturbance model is 'none', so there is no disturbance to give a noise; leave it out")
-            )
-            continue
-        w, found = check_weight(value, ("estimator", name), size=size, what=f"{what} of the {of}")
-        problems += found
-        if w is not None and name == "measurement_noise":
-            smallest = float(np.min(w)) if w.ndim == 1 else float(np.linalg.eigvalsh(0.5 * (w + w.T))[0])
-            if not smallest > 0.0:
-                where = ("estimator", name, int(np.argmin(w))) if w.ndim == 1 else ("estimator", name)
-                problems.append(
-                    FieldProblem(
-                        pointer(*where),
-                        "the measurement-noise covariance must be positive definite: a noise-free measurement "
-                        "would ask the filter for an infinite gain. Give every output some noise",
-                    )
-                )
-        covariances[name] = w
-    return {"kind": est.kind, "disturbance": disturbance, **covariances}, problems
 
 
 def _true_plant_problems(request: SimulateRequest, plant: DiscretePlant, caps: Caps) -> tuple[DiscretePlant | None, list[FieldProblem]]:
@@ -338,8 +286,6 @@ def check_simulate_request(request: SimulateRequest, caps: Caps) -> SimulationIn
                 "its terminal term and differ from the design's gains. Use terminal 'none' to preview the loop",
             )
         )
-    options, found = _estimator_problems(request, plant)
-    problems += found
     true, found = _true_plant_problems(request, plant, caps)
     problems += found
 
@@ -373,21 +319,24 @@ def check_simulate_request(request: SimulateRequest, caps: Caps) -> SimulationIn
     problems += _length(init.state, n, ("scenario", "initial", "state"), "the initial state")
     problems += _length(init.input, m, ("scenario", "initial", "input"), "the initial input")
     problems += _length(init.setpoint, p, ("scenario", "initial", "setpoint"), "the initial setpoint")
-    if not problems:
-        problems += _run_size_problems(request, plant, true, str(options["disturbance"]), caps)
+    if not problems and design is not None:
+        assert design.estimator is not None  # check_design_request checks every request's estimator
+        problems += _run_size_problems(request, plant, true, design.estimator.disturbance, caps)
     if problems or design is None:
         raise InvalidRequest(problems)
+    est = design.estimator
+    assert est is not None
 
     def vector(value: list[float] | None) -> NDArray[np.float64] | None:
         return None if value is None else np.asarray(value, dtype=float)
 
     return SimulationInputs(
         design=design,
-        kind=str(options["kind"]),
-        disturbance=str(options["disturbance"]),
-        process_noise=options["process_noise"],  # type: ignore[arg-type]
-        disturbance_noise=options["disturbance_noise"],  # type: ignore[arg-type]
-        measurement_noise=options["measurement_noise"],  # type: ignore[arg-type]
+        kind=est.kind,
+        disturbance=est.disturbance,
+        process_noise=est.process_noise,
+        disturbance_noise=est.disturbance_noise,
+        measurement_noise=est.measurement_noise,
         true_plant=true,
         steps=steps,
         setpoints=setpoints,

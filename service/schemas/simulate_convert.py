@@ -33,6 +33,7 @@ from service.errors import NumericalError
 from service.schemas.common import Caps
 from service.schemas.design import ADVISORY, DesignRequest, LabelledMatrix, PoleReport, WarningReport
 from service.schemas.design_convert import DesignOutcome, compute_design, design_response
+from service.schemas.estimator_convert import scaled_estimator
 from service.schemas.fingerprint import fingerprint
 from service.schemas.plant import DiscretePlant
 from service.schemas.simulate_checks import SimulationInputs, check_simulate_request
@@ -46,13 +47,20 @@ from service.schemas.simulate import (
     SimulateResponse,
     WholeLoopReport,
 )
-from service.solver.estimation import Estimator, design_estimator
+from service.solver.estimation import Estimator
 from service.solver.loop import WholeLoop, control_loop, whole_loop
 from service.solver.performance import Performance, loop_performance
 from service.solver.scaling import scale_plant
 from service.solver.simulation import Event, Scenario, Simulation, TruePlant, simulate_loop
 
-__all__ = ["SimulationOutcome", "compute_simulation", "run_simulation", "simulate_response", "simulation_csv"]
+__all__ = [
+    "SimulationOutcome",
+    "compute_simulation",
+    "performance_report",
+    "run_simulation",
+    "simulate_response",
+    "simulation_csv",
+]
 
 
 @dataclass(frozen=True)
@@ -96,15 +104,6 @@ class SimulationOutcome:
 # --------------------------------------------------------------------------- compute
 
 
-def _scaled_covariance(value: NDArray[np.float64] | None, span: NDArray[np.float64]) -> NDArray[np.float64] | None:
-    """``S^-1 V S^-1`` of a covariance in engineering units (a diagonal stays a diagonal)."""
-    if value is None:
-        return None
-    if value.ndim == 1:
-        return value / span**2
-    return value / np.outer(span, span)
-
-
 def _scaled_events(events: list[Event], span: NDArray[np.float64]) -> list[Event]:
     return [Event(e.step, e.value / span) for e in events]
 
@@ -135,24 +134,10 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
     su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
     sd = plant.spans(plant.disturbances) if plant.b_disturbance is not None else np.ones(0)
     s_dist = {"output": sz, "input": su, "none": np.ones(0)}[inputs.disturbance]
-    estimator = design_estimator(
-        scaled.a,
-        scaled.b,
-        scaled.c,
-        kind=inputs.kind,  # type: ignore[arg-type]
-        disturbance=inputs.disturbance if inputs.kind == "kalman" else None,  # type: ignore[arg-type]
-        process_noise=inputs.process_noise,
-        disturbance_noise=_scaled_covariance(inputs.disturbance_noise, s_dist),
-        measurement_noise=_scaled_covariance(inputs.measurement_noise, sz),
-        output_labels=[s.name for s in plant.outputs],
-        input_labels=[s.name for s in plant.inputs],
-    )
-    if not (np.all(np.isfinite(estimator.gain)) and np.all(np.isfinite(estimator.poles))):
-        raise NumericalError(
-            "The estimator's gain or poles are not finite numbers: the model's numbers are too large "
-            "or too small to estimate its state in double precision. Rescale the model",
-            pointer="/estimator",
-        )
+    estimator = outcome.estimator  # already built when the design's frequency analysis was asked
+    if estimator is None:
+        assert inputs.design.estimator is not None
+        estimator = scaled_estimator(inputs.design.estimator, plant, scaled)
     loop = control_loop(outcome.design, estimator)
     whole = whole_loop(loop)
     if not np.all(np.isfinite(whole.poles)):
@@ -268,7 +253,8 @@ def _optional(value: float | None) -> float | None:
     return None if value is None or not np.isfinite(value) else float(value)
 
 
-def _performance(plant: DiscretePlant, outcome: SimulationOutcome) -> PerformanceReport:
+def performance_report(plant: DiscretePlant, outcome: SimulationOutcome) -> PerformanceReport:
+    """The figures of merit of a run, named by the plant's tags (null where the run blew up)."""
     figures = outcome.performance
     outputs, inputs = [], []
     for i, signal in enumerate(plant.outputs):
@@ -348,7 +334,7 @@ def simulate_response(request: SimulateRequest, inputs: SimulationInputs, outcom
         measured_disturbances=outcome.measured_disturbances.tolist(),
         columns=columns,
         diverged_at=None if outcome.rows == inputs.steps else outcome.rows,
-        performance=_performance(plant, outcome),
+        performance=performance_report(plant, outcome),
         estimator=EstimatorReport(
             kind=est.kind,
             disturbance=est.disturbance,

@@ -1,4 +1,9 @@
-"""POST /design/sweep: one tuning parameter varied over a list of values."""
+"""POST /design/sweep: one tuning parameter varied over a list of values.
+
+The base design request carries the analysis and the estimator: with
+``design.analysis.frequency`` each entry gets its peak sensitivity, and with a ``scenario``
+its figures of merit, each exactly as a separate /design or /simulate call with that value.
+"""
 
 from __future__ import annotations
 
@@ -8,6 +13,7 @@ from pydantic import Field, model_validator
 
 from service.schemas.common import FiniteFloat, RequestModel, ResponseModel
 from service.schemas.design import ADVISORY, DesignRequest, WarningReport
+from service.schemas.simulate import PerformanceReport, ScenarioRequest
 
 __all__ = ["SweepEntryReport", "SweepParameter", "SweepProblem", "SweepRequest", "SweepResponse"]
 
@@ -30,6 +36,12 @@ class SweepRequest(RequestModel):
     )
     values: Annotated[list[FiniteFloat], Field(min_length=1)] = Field(
         description="The values to try, in order: weights >= 0, horizons whole numbers >= 1."
+    )
+    scenario: ScenarioRequest | None = Field(
+        default=None,
+        description="With a scenario, each entry is also simulated as POST /simulate would with that value "
+        "(the base design's estimator closes the loop); the runs together stay within the service's "
+        "simulation work cap.",
     )
 
     @model_validator(mode="after")
@@ -63,6 +75,14 @@ class SweepEntryReport(ResponseModel):
     stable: bool | None = None
     condition_number: float | None = None
     warnings: list[WarningReport] = Field(default_factory=list)
+    peak_sensitivity: float | None = Field(
+        default=None,
+        description="With design.analysis.frequency: the larger of the robustness block's peak sensitivities "
+        "at the plant input and output.",
+    )
+    performance: PerformanceReport | None = Field(
+        default=None, description="With a scenario: the figures of merit /simulate answers for this value."
+    )
     problem: SweepProblem | None = None
 
 

@@ -134,3 +134,105 @@ def test_an_invalid_base_design_is_refused_with_pointers_under_design(client, ex
     r = client.post("/design/sweep", json=sweep)
     assert r.status_code == 422
     assert all(e["pointer"].startswith("/design/weights/move") for e in r.json()["errors"])
+
+
+# --------------------------------------------------------------------------- robustness and runs
+
+SCENARIO = {
+    "steps": 80,
+    "setpoint_changes": [{"step": 5, "setpoint": [1.0, -0.5]}],
+    "output_disturbances": [{"step": 40, "value": [0.2, 0.1]}],
+}
+
+
+def analysed_sweep(points=60, **extra):
+    sweep = load_example("sweep_request.json")
+    sweep["values"] = [0.03, 0.3, 3.0]
+    sweep["design"]["analysis"] = {"frequency": True, "points": points}
+    sweep.update(extra)
+    return sweep
+
+
+def test_sweep_entries_with_frequency_and_scenario_equal_separate_design_and_simulate_calls(client):
+    sweep = analysed_sweep(scenario=SCENARIO)
+    r = client.post("/design/sweep", json=sweep)
+    assert r.status_code == 200, r.text
+    for entry, value in zip(r.json()["entries"], sweep["values"], strict=True):
+        single = copy.deepcopy(sweep["design"])
+        single["weights"]["move"][sweep["signal"]] = value
+        design = client.post("/design", json=single).json()
+        run = client.post("/simulate", json={**single, "scenario": SCENARIO}).json()
+        assert entry["status"] == "designed" and entry["fingerprint"] == design["fingerprint"]
+        robustness = design["robustness"]
+        assert entry["peak_sensitivity"] == max(
+            robustness["plant_input"]["peak_sensitivity"], robustness["plant_output"]["peak_sensitivity"]
+        )
+        assert entry["warnings"] == design["warnings"] == run["design"]["warnings"]
+        assert entry["spectral_radius"] == design["closed_loop"]["spectral_radius"]
+        assert entry["performance"] == run["performance"]
+        assert entry["performance"]["outputs"][0]["rise_time"] is not None
+
+
+def test_sweep_entries_without_analysis_or_scenario_have_neither(client):
+    entries = client.post("/design/sweep", json=load_example("sweep_request.json")).json()["entries"]
+    assert all(e["peak_sensitivity"] is None and e["performance"] is None for e in entries)
+
+
+def test_a_horizon_sweep_with_a_scenario_fails_only_the_invalid_value(client, example):
+    # Hu = 5 in the example: a prediction horizon of 3 is invalid for that value alone.
+    sweep = {"design": example, "parameter": "prediction", "values": [3, 12], "scenario": SCENARIO}
+    entries = client.post("/design/sweep", json=sweep).json()["entries"]
+    assert entries[0]["status"] == "failed"
+    assert entries[0]["problem"]["errors"][0]["pointer"] == "/design/horizons/control"
+    single = copy.deepcopy(example)
+    single["horizons"]["prediction"] = 12
+    run = client.post("/simulate", json={**single, "scenario": SCENARIO}).json()
+    assert entries[1]["status"] == "designed" and entries[1]["performance"] == run["performance"]
+
+
+def test_sweep_runs_together_respect_the_simulation_work_cap(make_client):
+    from service.schemas.simulate_checks import simulation_work
+
+    # The example: 4 states, 2 inputs, 2 outputs, output disturbances, Hp = 30 (Hw = 1).
+    one = simulation_work(steps=80, states=4, true_states=4, inputs=2, outputs=2, disturbances=2,
+                          measured_disturbances=0, penalized_steps=30)
+    sweep = analysed_sweep(scenario=SCENARIO)
+    client = make_client(max_simulation_work=2 * one)  # one run fits, three do not
+    r = client.post("/design/sweep", json=sweep)
+    assert r.status_code == 422 and [e["pointer"] for e in r.json()["errors"]] == ["/values"]
+    sweep["values"] = sweep["values"][:2]
+    assert client.post("/design/sweep", json=sweep).status_code == 200
+    client = make_client(max_simulation_work=one - 1)  # not even one run
+    r = client.post("/design/sweep", json=sweep)
+    assert r.status_code == 422 and [e["pointer"] for e in r.json()["errors"]] == ["/scenario/steps"]
+
+
+def test_sweep_analyses_together_respect_the_frequency_work_cap(make_client):
+    from service.schemas.robustness_convert import frequency_work
+
+    # Controller states with the output-disturbance estimator: n + p + m = 8.
+    one = frequency_work(points=60, plant_states=4, controller_states=8, inputs=2, measured=2)
+    client = make_client(max_frequency_work=2 * one)
+    r = client.post("/design/sweep", json=analysed_sweep())
+    assert r.status_code == 422 and [e["pointer"] for e in r.json()["errors"]] == ["/values"]
+    assert client.post("/design/sweep", json=analysed_sweep(values=[0.1, 1.0])).status_code == 200
+
+
+@pytest.mark.parametrize(
+    ("edit", "pointer"),
+    [
+        (lambda s: s["design"]["analysis"].update(points=5), "/design/analysis/points"),
+        (lambda s: s["design"].update(estimator={"kind": "full_state", "measurement_noise": [1.0, 1.0]}),
+         "/design/estimator/measurement_noise"),
+        (lambda s: s.update(scenario={"steps": 0}), "/scenario/steps"),
+        (lambda s: s.update(scenario={"steps": 10, "setpoint_changes": [{"step": 20, "setpoint": [1.0, 0.0]}]}),
+         "/scenario/setpoint_changes/0/step"),
+        (lambda s: s.update(scenario={"steps": 10}) or s["design"]["weights"].update(terminal="riccati"),
+         "/design/weights/terminal"),
+    ],
+)
+def test_bad_analysis_estimator_or_scenario_of_a_sweep_name_the_field(client, edit, pointer):
+    sweep = analysed_sweep()
+    edit(sweep)
+    r = client.post("/design/sweep", json=sweep)
+    assert r.status_code == 422 and pointer in [e["pointer"] for e in r.json()["errors"]], r.text

@@ -37,7 +37,11 @@ def design(
                 "example_plant": {
                     "summary": "The bundled example plant (invented numbers)",
                     "value": load_example("design_request.json"),
-                }
+                },
+                "robustness": {
+                    "summary": "The example plant with its estimator and the robustness block (invented numbers)",
+                    "value": load_example("design_request_robustness.json"),
+                },
             }
         ),
     ],

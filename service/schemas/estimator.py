@@ -1,0 +1,49 @@
+"""The estimator as requests carry it: shared by /design (robustness analysis) and /simulate.
+
+Every value is in the engineering units of the model's tags; covariances are in those units
+squared.
+"""
+
+from __future__ import annotations
+
+from typing import Literal
+
+from pydantic import Field
+
+from service.schemas.common import Matrix, RequestModel, Vector
+
+__all__ = ["Covariance", "EstimatorRequest"]
+
+Covariance = Vector | Matrix
+
+
+class EstimatorRequest(RequestModel):
+    """How the controller estimates the state (and a constant disturbance) from the outputs."""
+
+    kind: Literal["full_state", "output_disturbance", "input_disturbance", "kalman"] = Field(
+        default="output_disturbance",
+        description="'full_state': the state is read as measured (analysis only); 'output_disturbance' "
+        "(default): a constant disturbance on each output, for offset-free control; "
+        "'input_disturbance': a constant disturbance entering with each input; 'kalman': a "
+        "steady-state Kalman filter from the covariances below, with the disturbance model "
+        "of 'disturbance'. Every kind but full_state is a steady-state Kalman filter.",
+    )
+    disturbance: Literal["output", "input", "none"] | None = Field(
+        default=None, description="Disturbance model of a 'kalman' estimator (default 'output'); only with kalman."
+    )
+    process_noise: Covariance | None = Field(
+        default=None,
+        description="Covariance of the noise on each model state per sample: n variances or an n x n "
+        "symmetric positive-semidefinite matrix (default 0.01 per state).",
+    )
+    disturbance_noise: Covariance | None = Field(
+        default=None,
+        description="Covariance of the per-sample change of each estimated disturbance (output units "
+        "squared for output disturbances, input units squared for input ones; default 1 per "
+        "disturbance, in units of the span when spans are given).",
+    )
+    measurement_noise: Covariance | None = Field(
+        default=None,
+        description="Covariance of the noise on each measured output: p variances or a p x p symmetric "
+        "positive-definite matrix (default 1 per output, in units of the span when spans are given).",
+    )

@@ -1,0 +1,94 @@
+"""The ``robustness`` block of POST /design: the loop in frequency, broken at the plant input and output.
+
+Asked for by ``analysis: {"frequency": true, "points": N}``; computed by
+:func:`service.solver.frequency.design_frequency_analysis` on the design and its estimator
+(the request's ``estimator``, by default that of /simulate).
+
+Units.  Frequencies are in rad per time unit of the model's sample time (rad/min for a
+sample time in minutes), on a log-spaced grid of ``points`` frequencies that ends at the
+Nyquist frequency ``pi / sample_time`` and starts four decades below it.  The loop is the
+design's, in scaled signals (``u / span``, ``z / span``): for a multivariable loop the
+singular values of S and T, and so their peaks and the bandwidth, are those of the scaled
+signals and change with the spans (a diagonal change of units changes singular values); for
+a single loop S, T and the classical margins do not depend on the spans.
+"""
+
+from __future__ import annotations
+
+from pydantic import Field
+
+from service.schemas.common import ResponseModel
+
+__all__ = [
+    "LoopRobustnessReport",
+    "MarginsReport",
+    "RobustnessEstimatorReport",
+    "RobustnessReport",
+    "SingularValueReport",
+]
+
+
+class MarginsReport(ResponseModel):
+    """Classical margins of a single loop (one manipulated variable, one measured output).
+
+    Null stands for infinite: no phase crossover (``L`` never real and negative) gives no
+    gain margin, no gain crossover (``|L|`` never 1) no phase margin.
+    """
+
+    gain_margin: float | None = Field(
+        description="Factor by which the loop gain may change before the loop becomes unstable (below 1: a decrease)."
+    )
+    gain_margin_db: float | None = Field(description="20 log10 of the gain margin.")
+    phase_crossover_frequency: float | None = Field(description="Where L is real and negative, rad per time unit.")
+    phase_margin: float | None = Field(description="Degrees, in (-180, 180].")
+    gain_crossover_frequency: float | None = Field(description="Where |L| = 1, rad per time unit.")
+
+
+class SingularValueReport(ResponseModel):
+    """Largest and smallest singular value of a transfer matrix at each grid frequency."""
+
+    largest: list[float] = Field(description="One per frequency of robustness.frequencies.")
+    smallest: list[float] = Field(description="One per frequency (equal to largest for a single loop).")
+
+
+class LoopRobustnessReport(ResponseModel):
+    """The loop broken at one point: L = -K P at the plant input, L = -P K at the plant output.
+
+    S = (I + L)^-1 (sensitivity) and T = L (I + L)^-1 (complementary sensitivity), S + T = I.
+    """
+
+    peak_sensitivity: float = Field(description="Ms = max over frequency of the largest singular value of S.")
+    peak_sensitivity_db: float = Field(description="20 log10 Ms.")
+    peak_sensitivity_frequency: float = Field(description="Where Ms occurs, rad per time unit.")
+    peak_complementary: float = Field(description="Mt = max over frequency of the largest singular value of T.")
+    peak_complementary_frequency: float = Field(description="Where Mt occurs, rad per time unit.")
+    bandwidth: float | None = Field(
+        description="Lowest frequency where the largest singular value of S first rises through 1/sqrt(2) "
+        "(-3 dB), rad per time unit; null when it never does on the grid."
+    )
+    margins: MarginsReport | None = Field(description="For a single loop (1 x 1) only; null otherwise.")
+    sensitivity: SingularValueReport = Field(description="Singular values of S over the grid.")
+    complementary: SingularValueReport = Field(description="Singular values of T over the grid.")
+
+
+class RobustnessEstimatorReport(ResponseModel):
+    """The estimator inside the analysed loop."""
+
+    kind: str
+    disturbance: str = Field(description="Disturbance model in use: 'output', 'input' or 'none'.")
+    spectral_radius: float = Field(description="Largest modulus of the estimator's poles (0 for full_state).")
+
+
+class RobustnessReport(ResponseModel):
+    """Sensitivities of the loop of controller, estimator and plant; see the notes on units and scaling."""
+
+    frequencies: list[float] = Field(description="The grid, rad per time unit of the sample time, ascending.")
+    nyquist_frequency: float = Field(description="pi / sample_time, the last grid frequency.")
+    plant_input: LoopRobustnessReport
+    plant_output: LoopRobustnessReport
+    estimator: RobustnessEstimatorReport
+    spectral_radius: float = Field(description="Largest modulus of the poles of plant, controller and estimator together.")
+    stable: bool = Field(
+        description="That loop's poles all lie strictly inside the unit circle; margins and peaks speak about "
+        "robustness only when it is stable."
+    )
