@@ -33,7 +33,9 @@ reads the true state, noise-free.
 
 The move computation is a :class:`MovePolicy`, so a constrained quadratic program can replace
 the fixed gain without touching the loop; :class:`UnconstrainedPolicy` is the design's
-``du = Kh E``.
+``du = Kh E``.  Likewise the target: by default the linear maps of ``loop.target`` above; a
+:class:`TargetRule` (``target_rule=``) replaces them, e.g. by the nearest steady state that is
+reachable inside input limits (:mod:`service.solver.limited_loop`).
 """
 
 from __future__ import annotations
@@ -57,6 +59,7 @@ __all__ = [
     "PolicyStep",
     "Scenario",
     "Simulation",
+    "TargetRule",
     "TruePlant",
     "UnconstrainedPolicy",
     "simulate_loop",
@@ -119,6 +122,25 @@ class MovePolicy(Protocol):
         previous_input: NDArray[np.float64],
         step: int,
     ) -> PolicyStep: ...
+
+
+class TargetRule(Protocol):
+    """Computes the steady-state target of one step from the setpoint and the disturbance estimate.
+
+    The loop calls it once per step, in order, with keyword arguments only::
+
+        rule(setpoint=r, disturbance=d) -> (z_s, u_s)
+
+    ``setpoint`` has shape (p,) (``r(k)``), ``disturbance`` shape (nd,) (the disturbance part
+    of ``x(k|k)``; empty without a disturbance model), both in the design's signals; the rule
+    returns the target outputs ``z_s`` (p,), which the controller tracks, and the target
+    inputs ``u_s`` (m,), which the loop records.  The rule must not change its arguments; a
+    rule with state keeps it on itself.
+    """
+
+    def __call__(
+        self, *, setpoint: NDArray[np.float64], disturbance: NDArray[np.float64]
+    ) -> tuple[NDArray[np.float64], NDArray[np.float64]]: ...
 
 
 @dataclass(frozen=True)
@@ -316,6 +338,7 @@ def simulate_loop(
     policy: MovePolicy | None = None,
     loop: ControlLoop | None = None,
     b_disturbance: ArrayLike | None = None,
+    target_rule: TargetRule | None = None,
 ) -> Simulation:
     """Simulate the closed loop of a scenario (see the module notes for one step).
 
@@ -335,6 +358,9 @@ def simulate_loop(
         The model's measured-disturbance matrix ``Bd``, in the units of the design: the
         loop then reads ``scenario.measured_disturbances`` and feeds them forward (module
         notes).  ``plant``, when given, must carry its own ``b_disturbance``.
+    target_rule : TargetRule, optional
+        Replaces the linear target maps ``z_s = Z_r r + Z_d d`` (default: those maps, the
+        unconstrained target of :mod:`service.solver.target`).
 
     Returns
     -------
@@ -411,12 +437,15 @@ def simulate_loop(
             y = ct @ x
             ym = y + offset[k]
             xf = x if full else xp + gain @ (ym - cy @ xp)
-            zs = targets_r[k]
-            us = target_inputs_r[k]
-            if use_d:
-                d = xf[dsl]
-                zs = zs + z_d @ d
-                us = us + u_d @ d
+            if target_rule is not None:
+                zs, us = target_rule(setpoint=setpoints[k], disturbance=xf[dsl])
+            else:
+                zs = targets_r[k]
+                us = target_inputs_r[k]
+                if use_d:
+                    d = xf[dsl]
+                    zs = zs + z_d @ d
+                    us = us + u_d @ d
             free = fx @ xf + fu @ u
             if md:
                 free = free + fd @ d_meas[k]
