@@ -8,6 +8,7 @@ from pydantic import Field
 
 from service.schemas.common import FiniteFloat, Matrix, RequestModel, ResponseModel
 from service.schemas.estimator import EstimatorRequest
+from service.schemas.limits import LimitCheckReport, LimitsRequest
 from service.schemas.model import PlantModel
 from service.schemas.robustness import RobustnessReport
 from service.schemas.tuning import Horizons, Weights
@@ -71,6 +72,11 @@ class DesignRequest(RequestModel):
         default_factory=EstimatorRequest,
         description="The estimator that closes the loop: /design uses it for analysis.frequency only, "
         "/simulate for the run.",
+    )
+    limits: LimitsRequest | None = Field(
+        default=None,
+        description="Limits on inputs, moves and outputs: /simulate solves a QP under them at every step; "
+        "/design checks the unconstrained law against them for a nominal setpoint step (limit_check).",
     )
 
 
@@ -195,6 +201,9 @@ class DesignResponse(ResponseModel):
     warnings: list[WarningReport]
     robustness: RobustnessReport | None = Field(
         default=None, description="When analysis.frequency is true: the loop in frequency (scaled signals)."
+    )
+    limit_check: LimitCheckReport | None = Field(
+        default=None, description="When the request has limits: does the unconstrained law alone break them?"
     )
     fingerprint: str = Field(
         description="SHA-256 of the canonical request: equal for equal requests on any replica."

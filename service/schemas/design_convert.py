@@ -33,6 +33,8 @@ from service.schemas.design import (
 )
 from service.schemas.estimator_convert import EstimatorInputs, check_estimator, scaled_estimator
 from service.schemas.fingerprint import fingerprint
+from service.schemas.limits_checks import LimitInputs, check_limits
+from service.schemas.limits_convert import DesignLimitCheck, design_limit_check, limit_check_report, limit_check_warnings
 from service.schemas.plant import DiscretePlant, Signal, plant_arrays
 from service.schemas.robustness_convert import frequency_problems, robustness_report
 from service.solver.analysis import Diagnostic
@@ -72,6 +74,8 @@ class DesignInputs:
     estimator: EstimatorInputs | None = None
     #: Grid size of the frequency analysis; ``None``: not asked.
     frequency_points: int | None = None
+    #: The checked limits; ``None``: the request has none.
+    limits: LimitInputs | None = None
 
     @property
     def free_moves(self) -> int:
@@ -100,6 +104,8 @@ class DesignOutcome:
         On the scaled plant, when the frequency analysis was asked.
     analysis : FrequencyAnalysis or None
         Of the design with that estimator, in scaled signals.
+    limit_check : DesignLimitCheck or None
+        The unconstrained law against the request's limits, when it has limits.
     """
 
     scaled: ScaledPlant
@@ -110,6 +116,7 @@ class DesignOutcome:
     warnings: list[Diagnostic]
     estimator: Estimator | None = None
     analysis: FrequencyAnalysis | None = None
+    limit_check: DesignLimitCheck | None = None
 
 
 def _horizon_problems(request: DesignRequest, caps: Caps) -> list[FieldProblem]:
@@ -222,6 +229,8 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         )
     estimator, found = check_estimator(request.estimator, plant)
     problems += found
+    limits, found = check_limits(request.limits, plant)
+    problems += found
     if request.analysis.frequency and not found:
         problems += frequency_problems(plant, estimator, points=request.analysis.points, caps=caps)
     if request.weights.terminal == "riccati" and plant.b_disturbance is not None:
@@ -249,6 +258,7 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         move_steps=None if h.move_steps is None else tuple(h.move_steps),
         estimator=estimator,
         frequency_points=request.analysis.points if request.analysis.frequency else None,
+        limits=limits,
     )
 
 
@@ -293,10 +303,14 @@ def compute_design(inputs: DesignInputs) -> DesignOutcome:
         )
     advice = tuning_advice(scaled.a, scaled.b, scaled.c, design, sample_time=plant.sample_time, analysis=analysis)
     properties = plant_properties(scaled.a, scaled.b, scaled.c)
+    gain = unscale_gain(design.gain, input_span=su, output_span=sz)
+    limit_check = None
+    if inputs.limits is not None:
+        limit_check = design_limit_check(inputs.limits, plant, gain, prediction=inputs.prediction)
     return DesignOutcome(
         scaled=scaled,
         design=design,
-        gain=unscale_gain(design.gain, input_span=su, output_span=sz),
+        gain=gain,
         feedforward=feedforward,
         properties=properties,
         warnings=[
@@ -305,9 +319,11 @@ def compute_design(inputs: DesignInputs) -> DesignOutcome:
             *uncontrollable_mode_warnings(
                 scaled.a, scaled.b, labels=plant.state_labels, loop_poles=design.loop.poles
             ),
+            *([] if limit_check is None else limit_check_warnings(limit_check, plant)),
         ],
         estimator=estimator,
         analysis=analysis,
+        limit_check=limit_check,
     )
 
 
@@ -401,6 +417,7 @@ def design_response(request: DesignRequest, inputs: DesignInputs, outcome: Desig
         robustness=None
         if outcome.analysis is None or outcome.estimator is None
         else robustness_report(outcome.analysis, outcome.estimator),
+        limit_check=None if outcome.limit_check is None else limit_check_report(outcome.limit_check, plant),
         fingerprint=fingerprint(request),
     )
 

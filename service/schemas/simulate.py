@@ -15,6 +15,7 @@ from pydantic import Field
 from service.schemas.common import FiniteFloat, RequestModel, ResponseModel, Vector
 from service.schemas.design import DesignRequest, DesignResponse, LabelledMatrix, PoleReport, WarningReport
 from service.schemas.estimator import EstimatorRequest
+from service.schemas.limits import LimitRunReport, LimitSummary
 from service.schemas.model import PlantModel
 
 __all__ = [
@@ -201,6 +202,12 @@ class SimulateResponse(ResponseModel):
     estimator: EstimatorReport
     whole_loop: WholeLoopReport
     design: DesignResponse = Field(description="The design the run used, as POST /design answers it.")
+    limits: LimitRunReport | None = Field(
+        default=None, description="With limits: the move QP at the steps where the limits mattered."
+    )
+    limit_summary: LimitSummary | None = Field(
+        default=None, description="With limits: time at each limit, fallbacks, corrected setpoints, largest slack."
+    )
     warnings: list[WarningReport] = Field(description="About the run (the design's own are under design).")
     fingerprint: str = Field(description="SHA-256 of the canonical request: equal for equal requests.")
     advisory: str

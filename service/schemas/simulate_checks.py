@@ -19,8 +19,10 @@ from numpy.typing import NDArray
 from service.errors import FieldProblem, InvalidRequest
 from service.schemas.common import Caps, pointer
 from service.schemas.design_convert import DesignInputs, check_design_request
+from service.schemas.limits_checks import check_initial_input, limit_work_problems
 from service.schemas.plant import DiscretePlant, plant_arrays
 from service.schemas.simulate import SimulateRequest
+from service.solver.analysis import Diagnostic
 from service.solver.simulation import Event
 
 __all__ = ["STEP_OVERHEAD", "SimulationInputs", "check_simulate_request", "simulation_work"]
@@ -51,6 +53,10 @@ class SimulationInputs:
     noise_std : ndarray, shape (p,), or None
     seed : int
     initial_state, initial_input, initial_setpoint : ndarray or None
+        ``initial_input`` is clipped into the input limits when ``limits.clamp_initial_input``
+        asked for it.
+    limit_warnings : tuple of Diagnostic
+        What the limit checks changed (a clipped initial input).
     """
 
     design: DesignInputs
@@ -70,6 +76,7 @@ class SimulationInputs:
     initial_state: NDArray[np.float64] | None
     initial_input: NDArray[np.float64] | None
     initial_setpoint: NDArray[np.float64] | None
+    limit_warnings: tuple[Diagnostic, ...] = ()
 
 
 def _length(value: list[float] | None, size: int, where: Where, what: str) -> list[FieldProblem]:
@@ -319,9 +326,19 @@ def check_simulate_request(request: SimulateRequest, caps: Caps) -> SimulationIn
     problems += _length(init.state, n, ("scenario", "initial", "state"), "the initial state")
     problems += _length(init.input, m, ("scenario", "initial", "input"), "the initial input")
     problems += _length(init.setpoint, p, ("scenario", "initial", "setpoint"), "the initial setpoint")
+    clamped, limit_warnings, found = check_initial_input(None if design is None else design.limits, init.input, plant)
+    problems += found
     if not problems and design is not None:
         assert design.estimator is not None  # check_design_request checks every request's estimator
         problems += _run_size_problems(request, plant, true, design.estimator.disturbance, caps)
+        if not problems:
+            problems += limit_work_problems(
+                design.limits,
+                steps=steps,
+                free_moves=design.free_moves,
+                penalized_steps=max(design.prediction - design.first_penalized + 1, 1),
+                caps=caps,
+            )
     if problems or design is None:
         raise InvalidRequest(problems)
     est = design.estimator
@@ -346,6 +363,7 @@ def check_simulate_request(request: SimulateRequest, caps: Caps) -> SimulationIn
         noise_std=None if noise is None else np.asarray(noise.std, dtype=float),
         seed=0 if noise is None else noise.seed,
         initial_state=vector(init.state),
-        initial_input=vector(init.input),
+        initial_input=vector(init.input) if clamped is None else clamped,
         initial_setpoint=vector(init.setpoint),
+        limit_warnings=tuple(limit_warnings),
     )

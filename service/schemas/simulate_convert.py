@@ -8,8 +8,9 @@ chains them and :func:`simulation_csv` writes the time series of a response as C
 Units.  The design is made on the plant in scaled signals (``u / span``, ``z / span``, see
 ``service.solver.scaling``); so are the estimator and the run.  Everything a request gives
 in engineering units is scaled on the way in with the *model's* spans — the true plant,
-setpoints, disturbance levels, noise spreads, the initial input and setpoint, the
-covariances of the output and input disturbances and of the measurement noise — and every
+setpoints, disturbance levels, noise spreads, the initial input and setpoint, the limits
+(``service.schemas.limits_convert``), the covariances of the output and input disturbances
+and of the measurement noise — and every
 series and figure is unscaled on the way out.  The state is never scaled, so the process
 noise covariance and the initial state go in as given.  With spans, a run is therefore the
 same as the unscaled run with weights divided by span squared and the same covariances
@@ -35,6 +36,7 @@ from service.schemas.design import ADVISORY, DesignRequest, LabelledMatrix, Pole
 from service.schemas.design_convert import DesignOutcome, compute_design, design_response
 from service.schemas.estimator_convert import scaled_estimator
 from service.schemas.fingerprint import fingerprint
+from service.schemas.limits_convert import LimitedRun, limit_run_reports, limited_run
 from service.schemas.plant import DiscretePlant
 from service.schemas.simulate_checks import SimulationInputs, check_simulate_request
 from service.schemas.simulate import (
@@ -83,6 +85,8 @@ class SimulationOutcome:
         The kept rows, engineering units.
     performance : Performance or None
         ``None`` when the run blew up.
+    limited : LimitedRun or None
+        The move QP and target rule of a run under limits (``None`` without limits).
     """
 
     design: DesignOutcome
@@ -99,6 +103,7 @@ class SimulationOutcome:
     estimates: NDArray[np.float64]
     measured_disturbances: NDArray[np.float64]
     performance: Performance | None
+    limited: LimitedRun | None = None
 
 
 # --------------------------------------------------------------------------- compute
@@ -167,9 +172,18 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
         initial_setpoint=None if inputs.initial_setpoint is None else inputs.initial_setpoint / sz,
         sample_time=plant.sample_time,
     )
+    limits = inputs.design.limits
+    limited = None if limits is None else limited_run(limits, plant, outcome.design, loop)
     with np.errstate(over="ignore", invalid="ignore"):  # absurd levels overflow: the series are cut below
         sim = simulate_loop(
-            outcome.design, estimator, scenario, plant=true_plant, loop=loop, b_disturbance=scaled.b_disturbance
+            outcome.design,
+            estimator,
+            scenario,
+            plant=true_plant,
+            loop=loop,
+            b_disturbance=scaled.b_disturbance,
+            policy=None if limited is None else limited.policy,
+            target_rule=None if limited is None else limited.target,
         )
 
     n = estimator.state_size
@@ -207,6 +221,7 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
         estimates=estimates[:rows],
         measured_disturbances=dm[:rows],
         performance=performance,
+        limited=limited,
     )
 
 
@@ -309,6 +324,7 @@ def _warnings(inputs: SimulationInputs, outcome: SimulationOutcome) -> list[Warn
                 f"figures of merit are null. Check the true plant against the model, or detune the controller.",
             )
         )
+    out += [WarningReport(code=d.code, message=d.message) for d in inputs.limit_warnings]
     return out
 
 
@@ -322,6 +338,11 @@ def simulate_response(request: SimulateRequest, inputs: SimulationInputs, outcom
     if outcome.estimator_gain is not None:
         gain = LabelledMatrix(rows=columns.estimates, columns=[s.name for s in plant.outputs], values=outcome.estimator_gain.tolist())
     whole = outcome.whole
+    warnings = _warnings(inputs, outcome)
+    limits, limit_summary = None, None
+    if outcome.limited is not None:
+        limits, limit_summary, found = limit_run_reports(outcome.limited, outcome.simulation, outcome.rows, plant)
+        warnings += found
     return SimulateResponse(
         steps=inputs.steps,
         sample_time=plant.sample_time,
@@ -352,7 +373,9 @@ def simulate_response(request: SimulateRequest, inputs: SimulationInputs, outcom
             stable=whole.stable,
         ),
         design=design_response(design_request, inputs.design, outcome.design),
-        warnings=_warnings(inputs, outcome),
+        limits=limits,
+        limit_summary=limit_summary,
+        warnings=warnings,
         fingerprint=fingerprint(request),
         advisory=ADVISORY,
     )
@@ -373,14 +396,23 @@ def simulation_csv(response: SimulateResponse) -> str:
     """The time series of a response as CSV (RFC 4180: CRLF line ends, quoted where needed).
 
     Columns: ``time``, the controlled outputs, their setpoints (``<output>.setpoint``), then
-    the manipulated variables, named as in ``response.columns``; one row per step kept.
+    the manipulated variables, named as in ``response.columns``; one row per step kept.  A
+    run under limits adds ``limits.fallback`` (1 where the step's QP failed and held the last
+    input, else 0) and ``limits.active`` (the number of active limits the step lists).
     Numbers are written in Python's shortest round-trip form, so the same response always
     gives the same bytes and every value reads back exactly.
     """
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\r\n")
     c = response.columns
-    writer.writerow(["time", *c.outputs, *c.setpoints, *c.inputs])
-    for t, y, r, u in zip(response.time, response.outputs, response.setpoints, response.inputs, strict=True):
-        writer.writerow([repr(t), *map(repr, y), *map(repr, r), *map(repr, u)])
+    extra: list[list[str]] = [[] for _ in response.time]
+    header = ["time", *c.outputs, *c.setpoints, *c.inputs]
+    if response.limits is not None:
+        header = _unique([*header, "limits.fallback", "limits.active"])
+        extra = [["0", "0"] for _ in response.time]
+        for row in response.limits.steps:
+            extra[row.step] = [str(int(row.fallback)), str(len(row.active))]
+    writer.writerow(header)
+    for t, y, r, u, more in zip(response.time, response.outputs, response.setpoints, response.inputs, extra, strict=True):
+        writer.writerow([repr(t), *map(repr, y), *map(repr, r), *map(repr, u), *more])
     return buffer.getvalue()

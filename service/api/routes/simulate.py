@@ -76,7 +76,11 @@ def simulate(
                 "example_plant": {
                     "summary": "The bundled example plant with a scenario (invented numbers)",
                     "value": load_example("simulate_request.json"),
-                }
+                },
+                "example_plant_limits": {
+                    "summary": "The example plant under valve, move and soft output limits (invented numbers)",
+                    "value": load_example("simulate_request_limits.json"),
+                },
             }
         ),
     ],
