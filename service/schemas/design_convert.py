@@ -15,7 +15,7 @@ from typing import Literal
 import numpy as np
 from numpy.typing import NDArray
 
-from service.errors import FieldProblem, InvalidRequest
+from service.errors import FieldProblem, InvalidRequest, NumericalError
 from service.schemas.common import Caps, check_weight, pointer
 from service.schemas.design import (
     ClosedLoopReport,
@@ -268,7 +268,22 @@ def compute_design(inputs: DesignInputs) -> DesignOutcome:
     Raises
     ------
     service.errors.NumericalError
+        Also when the numbers leave double precision on the way (entries or spans near
+        1e300): that is a problem of the request's units, never a silently wrong answer.
     """
+    try:
+        with np.errstate(over="raise", invalid="raise"):
+            return _compute_design(inputs)
+    except FloatingPointError:
+        raise NumericalError(
+            "The design overflows double precision: some entries of the model, weights or spans "
+            "are too large (or too small) for their units. Express the signals in units where "
+            "the numbers are moderate, or give spans.",
+            pointer="/model",
+        ) from None
+
+
+def _compute_design(inputs: DesignInputs) -> DesignOutcome:
     plant = inputs.plant
     su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
     sd = plant.spans(plant.disturbances) if plant.b_disturbance is not None else None

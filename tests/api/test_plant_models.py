@@ -165,3 +165,17 @@ def test_terminal_weight_with_measured_disturbances_is_refused(client, example):
     example["model"]["b_disturbance"] = [[0.05], [0.0], [0.02], [0.0]]
     example["weights"]["terminal"] = "riccati"
     assert "/weights/terminal" in problem_pointers(client.post("/design", json=example))
+
+
+@pytest.mark.parametrize(
+    "edit",
+    [
+        lambda m: m.__setitem__("inputs", [{"name": "steam", "span": 1e300}, {"name": "outlet", "span": 1e300}]),
+        lambda m: m.__setitem__("c", [[1e300, 0.0, 0.0, 0.0], [0.0, 0.0, 1e300, 0.0]]),
+    ],
+)
+def test_numbers_that_overflow_are_a_422_not_a_500(client, example, edit):
+    edit(example["model"])
+    r = client.post("/design", json=example)
+    assert r.status_code == 422, r.text
+    assert "/model" in problem_pointers(r)
