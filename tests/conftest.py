@@ -23,6 +23,18 @@ def random_plant(
     return a, rng.normal(size=(n, m)), rng.normal(size=(p, n))
 
 
+def random_design_request(
+    rng: np.random.Generator, *, states: int, signals: int, prediction: int, control: int
+) -> dict[str, Any]:
+    """A valid /design request for a random stable square plant (``signals`` inputs and outputs)."""
+    a, b, c = random_plant(rng, states, signals, signals, radius=0.9)
+    return {
+        "model": {"kind": "state_space", "a": a.tolist(), "b": b.tolist(), "c": c.tolist(), "sample_time": 1.0},
+        "horizons": {"prediction": prediction, "control": control},
+        "weights": {"output": [1.0] * signals, "move": [0.1] * signals},
+    }
+
+
 @pytest.fixture
 def rng() -> np.random.Generator:
     return np.random.default_rng(20261201)

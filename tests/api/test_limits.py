@@ -11,24 +11,12 @@ import pytest
 
 from service.api.compute import SolverCrashed, SolverPool, TimeLimitExceeded
 from tests.api.conftest import assert_problem
+from tests.conftest import random_design_request
 
 
 def slow_request(rng: np.random.Generator) -> dict:
     """A valid design whose Hessian is 2000 x 2000 (Hu 100 x 20 inputs): seconds of work."""
-    n = m = p = 20
-    a = rng.normal(size=(n, n))
-    a *= 0.9 / max(abs(np.linalg.eigvals(a)))
-    return {
-        "model": {
-            "kind": "state_space",
-            "a": a.tolist(),
-            "b": rng.normal(size=(n, m)).tolist(),
-            "c": rng.normal(size=(p, n)).tolist(),
-            "sample_time": 1.0,
-        },
-        "horizons": {"prediction": 200, "control": 100},
-        "weights": {"output": [1.0] * p, "move": [0.1] * m},
-    }
+    return random_design_request(rng, states=20, signals=20, prediction=200, control=100)
 
 
 # ------------------------------------------------------------------ body size limit

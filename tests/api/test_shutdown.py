@@ -23,6 +23,8 @@ import httpx
 import numpy as np
 import pytest
 
+from tests.conftest import random_design_request
+
 ROOT = Path(__file__).resolve().parents[2]
 pytestmark = pytest.mark.skipif(not hasattr(signal, "SIGTERM") or os.name != "posix", reason="POSIX signals")
 
@@ -35,21 +37,7 @@ def free_port() -> int:
 
 def medium_request(seed: int) -> dict:
     """A valid design of about a second of solver work (Hessian 1000 x 1000)."""
-    rng = np.random.default_rng(seed)
-    n = 10
-    a = rng.normal(size=(n, n))
-    a *= 0.9 / max(abs(np.linalg.eigvals(a)))
-    return {
-        "model": {
-            "kind": "state_space",
-            "a": a.tolist(),
-            "b": rng.normal(size=(n, n)).tolist(),
-            "c": rng.normal(size=(n, n)).tolist(),
-            "sample_time": 1.0,
-        },
-        "horizons": {"prediction": 150, "control": 100},
-        "weights": {"output": [1.0] * n, "move": [0.1] * n},
-    }
+    return random_design_request(np.random.default_rng(seed), states=10, signals=10, prediction=150, control=100)
 
 
 def wait_ready(base: str, process: subprocess.Popen, *, seconds: float = 90) -> None:
