@@ -41,7 +41,14 @@ from service.solver.estimation import Estimator
 from service.solver.prediction import prediction_matrices
 from service.solver.target import TargetProblem, target_problem
 
-__all__ = ["SEPARATION_TOLERANCE", "ControlLoop", "WholeLoop", "control_loop", "whole_loop"]
+__all__ = [
+    "SEPARATION_TOLERANCE",
+    "ControlLoop",
+    "WholeLoop",
+    "control_loop",
+    "estimator_target",
+    "whole_loop",
+]
 
 #: Largest distance, relative to ``max(1, spectral radius)``, between a whole-loop pole and its
 #: partner in the union of controller and estimator poles for the separation check to pass.
@@ -87,6 +94,18 @@ class ControlLoop:
         return np.tile(target_output, self.penalized_steps)
 
 
+def estimator_target(design: ControllerDesign, estimator: Estimator) -> TargetProblem:
+    """The offset-free target equations of the estimator's model, weighted by the design's ``Q``."""
+    return target_problem(
+        estimator.model_a,
+        estimator.model_b,
+        estimator.model_c,
+        disturbance_input=estimator.disturbance_input,
+        disturbance_output=estimator.disturbance_controlled,
+        output_weight=design.output_weight,
+    )
+
+
 def control_loop(design: ControllerDesign, estimator: Estimator) -> ControlLoop:
     """Join a design and an estimator of the same model.
 
@@ -124,14 +143,7 @@ def control_loop(design: ControllerDesign, estimator: Estimator) -> ControlLoop:
         or not np.allclose(aug.free_state[:, :n], pred.free_state, rtol=0.0, atol=1e-10 * scale)
     ):
         raise ValueError("the estimator's model is not the model of the design")
-    target = target_problem(
-        estimator.model_a,
-        estimator.model_b,
-        estimator.model_c,
-        disturbance_input=estimator.disturbance_input,
-        disturbance_output=estimator.disturbance_controlled,
-        output_weight=design.output_weight,
-    )
+    target = estimator_target(design, estimator)
     return ControlLoop(
         design=design,
         estimator=estimator,

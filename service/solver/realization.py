@@ -44,7 +44,7 @@ from numpy.typing import NDArray
 from service.solver.design import ControllerDesign
 from service.solver.estimation import Estimator
 from service.solver.prediction import step_response_coefficients
-from service.solver.target import target_problem
+from service.solver.loop import estimator_target
 from service.solver.terminal import terminal_prediction
 
 __all__ = [
@@ -203,14 +203,7 @@ def estimate_feedback_gain(design: ControllerDesign, estimator: Estimator) -> ND
     free_state = c_powers[hw:].reshape(-1, na)  # Fx_a
     select = np.zeros((estimator.disturbance_size, na))
     select[:, estimator.disturbance_slice] = np.eye(estimator.disturbance_size)
-    target = target_problem(
-        estimator.model_a,
-        estimator.model_b,
-        estimator.model_c,
-        disturbance_input=estimator.disturbance_input,
-        disturbance_output=estimator.disturbance_controlled,
-        output_weight=design.output_weight,
-    )
+    target = estimator_target(design, estimator)
     corrected = np.tile(target.output_disturbance_map @ select, (pred.penalized_steps, 1))
     gain = design.gain.horizon @ (free_state - corrected)
     if design.terminal is not None and design.terminal_gain is not None:
