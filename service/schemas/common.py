@@ -148,7 +148,7 @@ def check_matrix(
 
 
 def check_weight(
-    value: Sequence[Any], where: tuple[str | int, ...], *, size: int, what: str
+    value: Sequence[Any], where: tuple[str | int, ...], *, size: int, what: str, names: Sequence[str] = ()
 ) -> tuple[NDArray[np.float64] | None, list[FieldProblem]]:
     """Check a weight given as one non-negative number per signal or a full PSD matrix.
 
@@ -161,6 +161,8 @@ def check_weight(
         Number of signals.
     what : str
         Name for messages, e.g. ``"output weight"``.
+    names : sequence of str, optional
+        The signals' tags, for the messages.
 
     Returns
     -------
@@ -184,7 +186,10 @@ def check_weight(
         negative = [i for i in range(size) if w[i] < 0]
         if negative:
             return None, [
-                FieldProblem(pointer(*where, i), f"{what} must not be negative (got {w[i]:g})")
+                FieldProblem(
+                    pointer(*where, i),
+                    f"{what}{f' of {names[i]}' if i < len(names) else ''} must not be negative (got {w[i]:g})",
+                )
                 for i in negative
             ]
         return w, []

@@ -215,10 +215,20 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
     if plant is None:
         raise InvalidRequest(problems)
     q, found = check_weight(
-        request.weights.output, ("weights", "output"), size=plant.output_count, what="output weight"
+        request.weights.output,
+        ("weights", "output"),
+        size=plant.output_count,
+        what="output weight",
+        names=[sig.name for sig in plant.outputs],
     )
     problems += found
-    r, found = check_weight(request.weights.move, ("weights", "move"), size=plant.input_count, what="move weight")
+    r, found = check_weight(
+        request.weights.move,
+        ("weights", "move"),
+        size=plant.input_count,
+        what="move weight",
+        names=[sig.name for sig in plant.inputs],
+    )
     problems += found
     if q is not None and not np.any(q):
         problems.append(

@@ -204,8 +204,12 @@ def _grid(
     expected_rows: int | None,
     allow_empty_rows: bool,
     sample_time: float,
+    row_names: Sequence[str] = (),
 ) -> tuple[list[list[TransferElement | None]] | None, list[FieldProblem]]:
-    """Check an element grid's shape and each element; convert to solver elements."""
+    """Check an element grid's shape and each element; convert to solver elements.
+
+    ``row_names`` are the outputs' tags, when the request gives them, for the messages.
+    """
     if not rows:
         return None, [FieldProblem(pointer(*where), "give at least one row of elements")]
     problems: list[FieldProblem] = []
@@ -222,7 +226,11 @@ def _grid(
     for i, row in enumerate(rows):
         if not allow_empty_rows and row and all(el is None for el in row):
             problems.append(
-                FieldProblem(pointer(*where, i), f"row {i} has no element: no input affects this output, so it cannot be controlled")
+                FieldProblem(
+                    pointer(*where, i),
+                    f"row {i}{f' ({row_names[i]})' if i < len(row_names) else ''} has no element: no input "
+                    f"affects this output, so it cannot be controlled",
+                )
             )
         out: list[TransferElement | None] = []
         for j, el in enumerate(row):
@@ -265,7 +273,10 @@ def _longest_dead_time(rows: list[list[TransferElementModel | None]]) -> tuple[i
 
 def _transfer_matrix(model: TransferMatrixModel, caps: Caps, where: Where) -> tuple[dict[str, object] | None, list[FieldProblem]]:
     ts = float(model.sample_time)
-    elements, problems = _grid(model.elements, (*where, "elements"), expected_rows=None, allow_empty_rows=False, sample_time=ts)
+    names = [tag.name for tag in model.outputs or []]
+    elements, problems = _grid(
+        model.elements, (*where, "elements"), expected_rows=None, allow_empty_rows=False, sample_time=ts, row_names=names
+    )
     if elements is None:
         return None, problems
     p, m = len(elements), len(elements[0])

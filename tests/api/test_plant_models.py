@@ -179,3 +179,14 @@ def test_numbers_that_overflow_are_a_422_not_a_500(client, example, edit):
     r = client.post("/design", json=example)
     assert r.status_code == 422, r.text
     assert "/model" in problem_pointers(r)
+
+
+def test_messages_use_the_tag_names(client):
+    request = wood_berry_request()
+    request["model"]["elements"][1] = [None, None]
+    detail = client.post("/design", json=request).json()["errors"][0]["detail"]
+    assert "(bottom_purity)" in detail
+    request = wood_berry_request()
+    request["weights"]["move"] = [0.1, -0.5]
+    detail = client.post("/design", json=request).json()["errors"][0]["detail"]
+    assert "move weight of steam must not be negative" in detail
