@@ -35,7 +35,7 @@ EXIT_INVALID = 2
 
 def _read_request(source: str | None, example: str) -> Any:
     if source is None:
-        from service.schemas.examples import load_example
+        from service.pipeline.examples import load_example
 
         return load_example(example)
     text = sys.stdin.read() if source == "-" else Path(source).read_text(encoding="utf-8")
@@ -86,19 +86,17 @@ def _run_offline(
 
 def _design(args: argparse.Namespace) -> int:
     from service.api.settings import Settings
+    from service.pipeline.design import run_design
     from service.schemas.design import DesignRequest
-    from service.schemas.design_convert import run_design
 
     caps = Settings().caps()
-    return _run_offline(
-        args.file, "design_request.json", DesignRequest.model_validate, lambda r: run_design(r, caps)
-    )
+    return _run_offline(args.file, "design_request.json", DesignRequest.model_validate, lambda r: run_design(r, caps))
 
 
 def _simulate(args: argparse.Namespace) -> int:
     from service.api.settings import Settings
+    from service.pipeline.simulate import run_simulation, simulation_csv
     from service.schemas.simulate import SimulateRequest
-    from service.schemas.simulate_convert import run_simulation, simulation_csv
 
     caps = Settings().caps()
     return _run_offline(

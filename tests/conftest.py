@@ -11,7 +11,7 @@ import pytest
 from fastapi.testclient import TestClient
 
 from service.api import Settings, create_app
-from service.schemas.examples import load_example
+from service.pipeline.examples import load_example
 
 
 def random_plant(

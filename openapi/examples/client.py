@@ -166,8 +166,14 @@ class MovecastClient:
             try:
                 problem = response.json()
             except ValueError:
-                problem = {"type": "about:blank", "title": "", "status": response.status_code,
-                           "detail": response.text[:200], "instance": path, "errors": []}
+                problem = {
+                    "type": "about:blank",
+                    "title": "",
+                    "status": response.status_code,
+                    "detail": response.text[:200],
+                    "instance": path,
+                    "errors": [],
+                }
             raise ProblemError(response.status_code, problem, response.headers.get("x-request-id", ""))
         return response.json()
 
@@ -202,8 +208,10 @@ def main(argv: list[str]) -> int:
         except ProblemError as exc:
             print(f"refused: {exc}", file=sys.stderr)
             return 1
-    print(f"stable: {design['closed_loop']['stable']}, spectral radius "
-          f"{design['closed_loop']['spectral_radius']:.4f}, Kx = {design['gain']['state']}")
+    print(
+        f"stable: {design['closed_loop']['stable']}, spectral radius "
+        f"{design['closed_loop']['spectral_radius']:.4f}, Kx = {design['gain']['state']}"
+    )
     return 0
 
 

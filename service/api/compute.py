@@ -49,7 +49,7 @@ __all__ = [
 T = TypeVar("T")
 
 #: Modules the fork server imports once, so each solver process starts ready.
-PRELOAD = ["numpy", "scipy.linalg", "service.schemas.design_convert", "service.api.solver_worker"]
+PRELOAD = ["numpy", "scipy.linalg", "service.pipeline.design", "service.api.solver_worker"]
 
 
 class TimeLimitExceeded(Exception):

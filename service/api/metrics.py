@@ -24,8 +24,8 @@ from prometheus_client import (
     Gauge,
     Histogram,
     generate_latest,
+    multiprocess,
 )
-from prometheus_client import multiprocess
 
 from service.schemas.design import DesignResponse
 
@@ -45,9 +45,7 @@ __all__ = [
 _LATENCY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10, 30, 60)
 _SIZE_BUCKETS = (1, 2, 5, 10, 20, 50, 100, 200, 500, 1000, 2000, 5000)
 
-REQUESTS = Counter(
-    "movecast_requests", "HTTP requests answered.", ["method", "route", "status"]
-)
+REQUESTS = Counter("movecast_requests", "HTTP requests answered.", ["method", "route", "status"])
 REQUEST_SECONDS = Histogram(
     "movecast_request_duration_seconds",
     "Time from request to the end of the response.",

@@ -28,8 +28,8 @@ except ImportError:  # pragma: no cover - older FastAPI lists every route in app
     _flatten = None
 
 __all__ = [
-    "BodyLimitMiddleware",
     "REQUEST_ID_HEADER",
+    "BodyLimitMiddleware",
     "RequestContextMiddleware",
     "flat_routes",
     "route_template",

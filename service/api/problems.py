@@ -111,9 +111,7 @@ def install_problem_handlers(app: FastAPI) -> None:
     async def _invalid(request: Request, exc: RequestValidationError) -> JSONResponse:
         errors = list(exc.errors())
         if any(e.get("type") == "json_invalid" for e in errors):
-            return problem_response(
-                "malformed-body", 400, "The request body is not valid JSON.", request.url.path
-            )
+            return problem_response("malformed-body", 400, "The request body is not valid JSON.", request.url.path)
         problems = validation_problems(errors)
         return problem_response(
             "invalid-request",
@@ -140,9 +138,7 @@ def install_problem_handlers(app: FastAPI) -> None:
 
     @app.exception_handler(StarletteHTTPException)
     async def _http(request: Request, exc: StarletteHTTPException) -> JSONResponse:
-        return problem_response(
-            "http-error", exc.status_code, str(exc.detail), request.url.path, headers=exc.headers
-        )
+        return problem_response("http-error", exc.status_code, str(exc.detail), request.url.path, headers=exc.headers)
 
     @app.exception_handler(Exception)
     async def _internal(request: Request, exc: Exception) -> JSONResponse:

@@ -23,7 +23,7 @@ from starlette.types import ASGIApp, Receive, Scope, Send
 
 from service.api.problems import problem_response
 
-__all__ = ["ApiKeyMiddleware", "KeyRing", "OPEN_PATHS"]
+__all__ = ["OPEN_PATHS", "ApiKeyMiddleware", "KeyRing"]
 
 OPEN_PATHS = frozenset({"/healthz", "/readyz", "/openapi.json", "/docs", "/docs/oauth2-redirect", "/redoc"})
 REALM = 'Bearer realm="movecast"'

@@ -60,8 +60,7 @@ def check_keys(keys: Iterable[str], *, source: str) -> list[str]:
     for number, key in enumerate(keys, start=1):
         if len(key) < MIN_KEY_LENGTH:
             raise ValueError(
-                f"key {number} from {source} has {len(key)} characters; use at least "
-                f"{MIN_KEY_LENGTH} random characters"
+                f"key {number} from {source} has {len(key)} characters; use at least {MIN_KEY_LENGTH} random characters"
             )
         if any(ch.isspace() or ch == "," for ch in key) or not key.isprintable():
             raise ValueError(f"key {number} from {source} holds whitespace, a comma or a control character")

@@ -76,7 +76,7 @@ def serve_calls(conn: Connection, blas_threads: int) -> None:
             conn.send(outcome)
         except (EOFError, OSError, BrokenPipeError):
             return
-        except Exception as exc:  # noqa: BLE001 - reported to the caller as a crash
+        except Exception as exc:
             try:
                 conn.send(("crash", type(exc).__name__))
             except (OSError, pickle.PicklingError):

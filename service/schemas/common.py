@@ -69,12 +69,12 @@ class Caps:
     max_simulation_steps: int = 100_000
     #: Estimated work of one simulated run: steps times the floating-point operations of a
     #: step (its matrix-vector products) plus a fixed 30 000 per step for the interpreter's
-    #: own cost (``service.schemas.simulate_checks.simulation_work``).  The default is
+    #: own cost (``service.pipeline.simulate_checks.simulation_work``).  The default is
     #: about 5 s of one core at 1 GFLOP/s, a rough rate for matrix-vector products this small.
     max_simulation_work: int = 5_000_000_000
     #: Estimated work of one frequency analysis (``analysis.frequency`` of /design): grid
     #: points times the floating-point operations of evaluating the loop there
-    #: (``service.schemas.robustness_convert.frequency_work``); the same rough 5 s.
+    #: (``service.pipeline.robustness.frequency_work``); the same rough 5 s.
     max_frequency_work: int = 5_000_000_000
 
 
@@ -135,13 +135,9 @@ def check_matrix(
     if problems:
         return None, problems
     if rows is not None and len(value) != rows:
-        problems.append(
-            FieldProblem(pointer(*where), f"{what} has {len(value)} rows, expected {rows}")
-        )
+        problems.append(FieldProblem(pointer(*where), f"{what} has {len(value)} rows, expected {rows}"))
     if cols is not None and width != cols:
-        problems.append(
-            FieldProblem(pointer(*where), f"{what} has {width} columns, expected {cols}")
-        )
+        problems.append(FieldProblem(pointer(*where), f"{what} has {width} columns, expected {cols}"))
     if problems:
         return None, problems
     return np.asarray(value, dtype=float), []
@@ -180,9 +176,7 @@ def check_weight(
     if not isinstance(value[0], list):
         w = np.asarray(value, dtype=float)
         if w.shape != (size,):
-            return None, [
-                FieldProblem(pointer(*where), f"{what} has {w.size} entries, expected {size}")
-            ]
+            return None, [FieldProblem(pointer(*where), f"{what} has {w.size} entries, expected {size}")]
         negative = [i for i in range(size) if w[i] < 0]
         if negative:
             return None, [

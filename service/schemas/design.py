@@ -19,16 +19,16 @@ __all__ = [
     "MIN_FREQUENCY_POINTS",
     "ClosedLoopReport",
     "DesignAnalysis",
-    "GainLabels",
-    "LabelledMatrix",
-    "PlantReport",
-    "SampledModelReport",
-    "SignalReport",
     "DesignRequest",
     "DesignResponse",
+    "GainLabels",
     "GainReport",
     "HessianReport",
+    "LabelledMatrix",
+    "PlantReport",
     "PoleReport",
+    "SampledModelReport",
+    "SignalReport",
     "WarningReport",
 ]
 
@@ -205,7 +205,5 @@ class DesignResponse(ResponseModel):
     limit_check: LimitCheckReport | None = Field(
         default=None, description="When the request has limits: does the unconstrained law alone break them?"
     )
-    fingerprint: str = Field(
-        description="SHA-256 of the canonical request: equal for equal requests on any replica."
-    )
+    fingerprint: str = Field(description="SHA-256 of the canonical request: equal for equal requests on any replica.")
     advisory: str = Field(default=ADVISORY, description="Results are design aids; see the text.")

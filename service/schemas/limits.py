@@ -3,7 +3,7 @@
 The request block ``limits`` sits on every /design request (so /simulate inherits it).  All
 numbers are in the engineering units of the model's tags, and apply to the model's own
 signals: when the model is written in deviations from an operating point, so are its limits.
-On /simulate each step solves the move QP under these limits (``service.solver.qp``); on
+On /simulate each step solves the move QP under these limits (``service.solver.limits.qp``); on
 /design the unconstrained law is checked against them for a nominal setpoint step
 (:class:`LimitCheckReport`).
 """
@@ -15,7 +15,7 @@ from typing import Annotated
 from pydantic import Field
 
 from service.schemas.common import FiniteFloat, RequestModel, ResponseModel
-from service.solver.limits import DEFAULT_OUTPUT_SOFTNESS
+from service.solver.limits.bounds import DEFAULT_OUTPUT_SOFTNESS
 
 __all__ = [
     "MAX_OUTPUT_SOFTNESS",
@@ -53,10 +53,12 @@ class LimitsRequest(RequestModel):
         "units; above 0.",
     )
     output_min: OptionalVector | None = Field(
-        default=None, description="Lowest value of each controlled output (soft unless hard_outputs), engineering units."
+        default=None,
+        description="Lowest value of each controlled output (soft unless hard_outputs), engineering units.",
     )
     output_max: OptionalVector | None = Field(
-        default=None, description="Highest value of each controlled output (soft unless hard_outputs), engineering units."
+        default=None,
+        description="Highest value of each controlled output (soft unless hard_outputs), engineering units.",
     )
     output_softness: Annotated[FiniteFloat, Field(ge=0, le=MAX_OUTPUT_SOFTNESS)] = Field(
         default=DEFAULT_OUTPUT_SOFTNESS,

@@ -78,9 +78,7 @@ class TransferMatrixModel(_Tagged):
     """A transfer matrix from step tests: one row per controlled output, one element per input."""
 
     kind: Literal["transfer_matrix"] = Field(description="Model form: transfer-function elements.")
-    elements: ElementGrid = Field(
-        description="p rows of m elements; null where an input does not affect an output."
-    )
+    elements: ElementGrid = Field(description="p rows of m elements; null where an input does not affect an output.")
     disturbance_elements: ElementGrid | None = Field(
         default=None, description="p rows of md elements for the measured disturbances."
     )

@@ -1,7 +1,7 @@
 """The ``robustness`` block of POST /design: the loop in frequency, broken at the plant input and output.
 
 Asked for by ``analysis: {"frequency": true, "points": N}``; computed by
-:func:`service.solver.frequency.design_frequency_analysis` on the design and its estimator
+:func:`service.solver.evaluation.frequency.design_frequency_analysis` on the design and its estimator
 (the request's ``estimator``, by default that of /simulate).
 
 Units.  Frequencies are in rad per time unit of the model's sample time (rad/min for a
@@ -87,7 +87,9 @@ class RobustnessReport(ResponseModel):
     plant_input: LoopRobustnessReport
     plant_output: LoopRobustnessReport
     estimator: RobustnessEstimatorReport
-    spectral_radius: float = Field(description="Largest modulus of the poles of plant, controller and estimator together.")
+    spectral_radius: float = Field(
+        description="Largest modulus of the poles of plant, controller and estimator together."
+    )
     stable: bool = Field(
         description="That loop's poles all lie strictly inside the unit circle; margins and peaks speak about "
         "robustness only when it is stable."

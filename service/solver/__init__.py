@@ -5,9 +5,9 @@ functions directly; the schema layer has already checked every precondition a us
 break, so the solver only asserts them.
 """
 
-from service.solver.analysis import ClosedLoop, Diagnostic, closed_loop, closed_loop_matrix, design_warnings
-from service.solver.design import ControllerDesign, design_controller
-from service.solver.gain import (
+from service.solver.design.closed_loop import ClosedLoop, Diagnostic, closed_loop, closed_loop_matrix, design_warnings
+from service.solver.design.controller import ControllerDesign, design_controller
+from service.solver.design.gain import (
     FactoredHessian,
     PredictiveGain,
     factor_hessian,
@@ -16,8 +16,8 @@ from service.solver.gain import (
     optimal_moves,
     weighted_moves,
 )
-from service.solver.prediction import Prediction, prediction_matrices, step_response_coefficients
-from service.solver.weights import weight_matrix, weight_root
+from service.solver.design.prediction import Prediction, prediction_matrices, step_response_coefficients
+from service.solver.design.weights import weight_matrix, weight_root
 
 __all__ = [
     "ClosedLoop",

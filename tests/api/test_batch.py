@@ -6,7 +6,7 @@ import copy
 
 import pytest
 
-from service.schemas.examples import load_example
+from service.pipeline.examples import load_example
 from tests.api.conftest import assert_problem
 from tests.api.test_limits import slow_request
 
@@ -29,7 +29,7 @@ def test_each_result_equals_the_single_design_bit_for_bit(client, example):
     other["horizons"]["prediction"] = 40
     r = client.post("/design/batch", json={"items": [_item("a", example), _item("b", other)]})
     items = r.json()["items"]
-    for item, request in zip(items, (example, other)):
+    for item, request in zip(items, (example, other), strict=False):
         single = client.post("/design", json=request).json()
         assert item["result"] == single  # JSON floats round-trip exactly: equal dicts, equal bits
         assert item["fingerprint"] == single["fingerprint"] and item["problem"] is None

@@ -27,9 +27,9 @@ from schemathesis.specs.openapi.checks import (
 )
 
 from service.api import Settings, create_app
+from service.pipeline.examples import load_example
 from service.schemas.batch import BatchRequest
 from service.schemas.design import DesignRequest
-from service.schemas.examples import load_example
 
 ROOT = Path(__file__).resolve().parents[2]
 COMMITTED = ROOT / "openapi" / "openapi.json"
@@ -79,7 +79,7 @@ def test_curl_examples_cover_every_endpoint():
     headings = set(re.findall(r"^## (GET|POST) (\S+)$", text, flags=re.M))
     endpoints = {(m.upper(), p) for p, ops in served()["paths"].items() for m in ops}
     assert endpoints | {("GET", "/metrics"), ("GET", "/openapi.json")} <= headings, endpoints - headings
-    for method, path in headings:
+    for _method, path in headings:
         assert f"http://127.0.0.1:8000{path}" in text, path
     for name in re.findall(r"@openapi/examples/(\S+)", text):
         assert (EXAMPLES / name).is_file(), name
@@ -104,7 +104,10 @@ def test_the_client_example_works_against_the_app(make_client, example):
         assert design["closed_loop"]["stable"] is True
         bad = copy.deepcopy(example)
         bad["model"]["a"][2].pop()
-        items = [{"id": "ok", "request": example, "known_fingerprint": design["fingerprint"]}, {"id": "bad", "request": bad}]
+        items = [
+            {"id": "ok", "request": example, "known_fingerprint": design["fingerprint"]},
+            {"id": "bad", "request": bad},
+        ]
         same, failed = client.design_batch(items)
         assert (same["status"], failed["status"]) == ("unchanged", "failed")
         assert failed["problem"]["errors"][0]["pointer"].startswith("/items/1/request/model/a")

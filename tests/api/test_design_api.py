@@ -5,10 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from service.schemas.design import DesignRequest
-from service.schemas.design_convert import check_design_request
+from service.pipeline.design import check_design_request
 from service.schemas.common import Caps
-from service.solver.design import design_controller
+from service.schemas.design import DesignRequest
+from service.solver.design.controller import design_controller
 
 
 def assert_problem(response, status, pointer):
@@ -34,8 +34,15 @@ def test_design_answers_the_contract(client, example):
     assert "management-of-change" in body["advisory"]
     # The HTTP answer carries the solver's numbers unchanged (JSON floats round-trip exactly).
     inputs = check_design_request(DesignRequest.model_validate(example), Caps())
-    d = design_controller(inputs.plant.a, inputs.plant.b, inputs.plant.c, output_weight=inputs.output_weight,
-                          move_weight=inputs.move_weight, prediction=30, control=5)
+    d = design_controller(
+        inputs.plant.a,
+        inputs.plant.b,
+        inputs.plant.c,
+        output_weight=inputs.output_weight,
+        move_weight=inputs.move_weight,
+        prediction=30,
+        control=5,
+    )
     assert np.array_equal(np.array(body["gain"]["state"]), d.gain.state)
     assert np.array_equal(np.array(body["gain"]["horizon"]), d.gain.horizon)
     assert body["hessian"]["size"] == 10

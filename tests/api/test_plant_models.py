@@ -8,13 +8,19 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from service.schemas.examples import load_example
+from service.pipeline.examples import load_example
 
 # Wood and Berry (1973), "Terminal composition control of a binary distillation column",
 # Chem. Eng. Sci. 28:1707: gains, time constants and dead times in minutes.
 WOOD_BERRY = [
-    [{"gain": 12.8, "time_constants": [16.7], "dead_time": 1.0}, {"gain": -18.9, "time_constants": [21.0], "dead_time": 3.0}],
-    [{"gain": 6.6, "time_constants": [10.9], "dead_time": 7.0}, {"gain": -19.4, "time_constants": [14.4], "dead_time": 3.0}],
+    [
+        {"gain": 12.8, "time_constants": [16.7], "dead_time": 1.0},
+        {"gain": -18.9, "time_constants": [21.0], "dead_time": 3.0},
+    ],
+    [
+        {"gain": 6.6, "time_constants": [10.9], "dead_time": 7.0},
+        {"gain": -19.4, "time_constants": [14.4], "dead_time": 3.0},
+    ],
 ]
 
 
@@ -124,7 +130,10 @@ def test_hessian_error_uses_tag_names(client, example):
     [
         (lambda m: m["elements"][1][0].__setitem__("time_constants", [-2.0]), "/model/elements/1/0/time_constants/0"),
         (lambda m: m["elements"][1][0].__setitem__("dead_time", -1.0), "/model/elements/1/0/dead_time"),
-        (lambda m: m["elements"][1][0].__setitem__("time_constants", [1.0, 2.0, 3.0]), "/model/elements/1/0/time_constants"),
+        (
+            lambda m: m["elements"][1][0].__setitem__("time_constants", [1.0, 2.0, 3.0]),
+            "/model/elements/1/0/time_constants",
+        ),
         (lambda m: m["elements"].__setitem__(1, [None, None]), "/model/elements/1"),
         (lambda m: m["elements"][1].pop(), "/model/elements/1"),
         (lambda m: m["elements"].__setitem__(1, []), "/model/elements/1"),
@@ -153,7 +162,12 @@ def test_bad_transfer_matrices_name_the_element(client, edit, pointer):
         (lambda m: m.__setitem__("b_disturbance", [[1.0], [0.0]]), "/model/b_disturbance"),
         (lambda m: m.__setitem__("c_measured", [[1.0, 0.0]]), "/model/c_measured"),
         (lambda m: m.update(c_measured=[[1.0, 0.0, 0.0, 0.0]], d_measured=[[1.0]]), "/model/d_measured"),
-        (lambda m: m.update(time_domain="continuous", a=[[800.0, 0, 0, 0], [0, 1, 0, 0], [0, 0, 1, 0], [0, 0, 0, 1]]), "/model/a"),
+        (
+            lambda m: m.update(
+                time_domain="continuous", a=[[800.0, 0, 0, 0], [0, 1, 0, 0], [0, 0, 1, 0], [0, 0, 0, 1]]
+            ),
+            "/model/a",
+        ),
     ],
 )
 def test_bad_state_space_parts_name_the_field(client, example, edit, pointer):

@@ -13,11 +13,11 @@ import copy
 
 import numpy as np
 import pytest
+from service.solver.estimation.estimator import design_estimator
+from service.solver.estimation.realization import controller_system, plant_system
 
-from service.solver.design import design_controller
-from service.solver.estimation import design_estimator
-from service.solver.frequency import frequency_analysis
-from service.solver.realization import controller_system, plant_system
+from service.solver.design.controller import design_controller
+from service.solver.evaluation.frequency import frequency_analysis
 
 #: The first-order plant P(z) = b/(z - a) of tests/solver/test_frequency.py (a = 0.5, b = 1),
 #: here sampled every 0.5 time units, with spans on both signals.
@@ -78,7 +78,11 @@ def test_single_loop_block_equals_the_solver_on_the_scaled_model(client):
         np.testing.assert_allclose(got["sensitivity"]["largest"], loop.sensitivity_singular_values[:, 0], rtol=1e-9)
         # A single loop: one singular value, |S| itself.
         assert got["sensitivity"]["largest"] == got["sensitivity"]["smallest"]
-    assert rb["estimator"] == {"kind": "output_disturbance", "disturbance": "output", "spectral_radius": pytest.approx(est.spectral_radius, rel=1e-9)}
+    assert rb["estimator"] == {
+        "kind": "output_disturbance",
+        "disturbance": "output",
+        "spectral_radius": pytest.approx(est.spectral_radius, rel=1e-9),
+    }
     assert rb["stable"] is True
 
 
@@ -93,7 +97,9 @@ def test_single_loop_margins_do_not_depend_on_the_spans(client):
     for name in ("plant_input", "plant_output"):
         for key in ("gain_margin", "phase_margin", "gain_crossover_frequency", "phase_crossover_frequency"):
             assert plain[name]["margins"][key] == pytest.approx(spanned[name]["margins"][key], rel=1e-7), key
-        np.testing.assert_allclose(plain[name]["sensitivity"]["largest"], spanned[name]["sensitivity"]["largest"], rtol=1e-7)
+        np.testing.assert_allclose(
+            plain[name]["sensitivity"]["largest"], spanned[name]["sensitivity"]["largest"], rtol=1e-7
+        )
 
 
 def test_multivariable_peaks_bandwidth_and_grid(client, example):
@@ -203,7 +209,7 @@ def test_high_peak_sensitivity_warns_for_an_aggressive_tuning_only(client, examp
 
 
 def test_the_robustness_example_answers_a_robustness_block(client):
-    from service.schemas.examples import load_example
+    from service.pipeline.examples import load_example
 
     body = design(client, load_example("design_request_robustness.json"))
     assert len(body["robustness"]["frequencies"]) == 200 and body["robustness"]["stable"] is True

@@ -8,8 +8,7 @@ import pytest
 from fastapi.testclient import TestClient
 from pydantic import ValidationError
 
-from service.api import Settings, create_app
-from service.api import security
+from service.api import Settings, create_app, security
 from service.api.security import KeyRing, bearer_token
 from tests.api.conftest import KEY, OTHER_KEY, assert_problem
 
@@ -43,7 +42,14 @@ def test_a_missing_key_is_a_401_with_a_bearer_challenge(make_client, example):
 
 @pytest.mark.parametrize(
     "header",
-    [f"Bearer {KEY}x", f"Bearer {KEY[:-1]}", "Bearer not-a-key-at-all-really", f"Token {KEY}", f"Basic {KEY}", "Bearer"],
+    [
+        f"Bearer {KEY}x",
+        f"Bearer {KEY[:-1]}",
+        "Bearer not-a-key-at-all-really",
+        f"Token {KEY}",
+        f"Basic {KEY}",
+        "Bearer",
+    ],
 )
 def test_a_wrong_key_or_scheme_is_a_401(make_client, example, header):
     client = make_client(api_keys=KEY)
@@ -84,7 +90,9 @@ def test_keys_from_a_file_one_per_line(make_client, example, tmp_path):
     client = make_client(api_keys_file=path)
     for key in (KEY, OTHER_KEY):
         assert client.post("/design", json=example, headers={"Authorization": f"Bearer {key}"}).status_code == 200
-    assert client.post("/design", json=example, headers={"Authorization": "Bearer # rotated monthly"}).status_code == 401
+    assert (
+        client.post("/design", json=example, headers={"Authorization": "Bearer # rotated monthly"}).status_code == 401
+    )
 
 
 def test_keys_from_the_environment_and_a_file_add_up(tmp_path, monkeypatch):

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from service.schemas.examples import load_example
+from service.pipeline.examples import load_example
 
 
 def test_the_transfer_matrix_example_has_one_level_integrator_and_a_stable_closed_loop(client):

@@ -20,7 +20,7 @@ import pytest
 import scipy.linalg
 
 from service.api.routes.simulate import prefers_csv
-from service.schemas.examples import load_example
+from service.pipeline.examples import load_example
 
 # The example vessel (invented numbers, openapi/examples/simulate_request.json).
 A = np.array(load_example("simulate_request.json")["model"]["a"])
@@ -104,8 +104,13 @@ def test_the_example_posts_and_answers_every_block(client, request_body):
 def test_full_state_without_mismatch_applies_the_design_gains_by_hand(client):
     # The law of the design notes, du = Kr r - Kx x - Ku u(k-1), in engineering units with
     # the gains the response reports; spans on every signal exercise the unscaling too.
-    body = plain_request(steps=300, kind="full_state", initial={"state": [0.2, -0.1, 0.05, 0.0], "input": [0.1, 0.0]},
-                         measurement_noise={"std": [0.05, 0.05], "seed": 4}, **EVENTS)
+    body = plain_request(
+        steps=300,
+        kind="full_state",
+        initial={"state": [0.2, -0.1, 0.05, 0.0], "input": [0.1, 0.0]},
+        measurement_noise={"std": [0.05, 0.05], "seed": 4},
+        **EVENTS,
+    )
     body["model"]["inputs"] = [{"name": "steam", "span": 20.0}, {"name": "outlet", "span": 5.0}]
     body["model"]["outputs"] = [{"name": "temperature", "span": 4.0}, {"name": "level", "span": 0.5}]
     answer = post(client, body).json()
@@ -167,8 +172,13 @@ def test_the_kalman_gain_is_the_riccati_one_for_the_posted_covariances(client):
     qd = np.array([[0.5, 0.1], [0.1, 0.3]])
     rv = np.array([[0.04, 0.01], [0.01, 0.09]])
     body = plain_request(steps=20)
-    body["estimator"] = {"kind": "kalman", "disturbance": "output", "process_noise": qx.tolist(),
-                         "disturbance_noise": qd.tolist(), "measurement_noise": rv.tolist()}
+    body["estimator"] = {
+        "kind": "kalman",
+        "disturbance": "output",
+        "process_noise": qx.tolist(),
+        "disturbance_noise": qd.tolist(),
+        "measurement_noise": rv.tolist(),
+    }
     answer = post(client, body).json()
     a_aug = scipy.linalg.block_diag(A, np.eye(2))
     c_aug = np.hstack([C, np.eye(2)])
@@ -203,10 +213,20 @@ def test_spans_give_the_run_of_weights_divided_by_span_squared(client):
     # on z and u with Q/span^2, R/span^2; with covariances given in engineering units the
     # filter is the same too, so the runs agree in engineering units.
     spans_u, spans_z = [50.0, 4.0], [10.0, 0.5]
-    plain = plain_request(steps=400, true_plant=MISMATCH, measurement_noise={"std": [0.02, 0.01], "seed": 9},
-                          initial={"input": [0.5, -0.2], "setpoint": [0.1, 0.0]}, **EVENTS)
-    plain["estimator"] = {"kind": "kalman", "disturbance": "input", "process_noise": [0.01, 0.02, 0.01, 0.02],
-                          "disturbance_noise": [[0.3, 0.05], [0.05, 0.2]], "measurement_noise": [0.04, 0.01]}
+    plain = plain_request(
+        steps=400,
+        true_plant=MISMATCH,
+        measurement_noise={"std": [0.02, 0.01], "seed": 9},
+        initial={"input": [0.5, -0.2], "setpoint": [0.1, 0.0]},
+        **EVENTS,
+    )
+    plain["estimator"] = {
+        "kind": "kalman",
+        "disturbance": "input",
+        "process_noise": [0.01, 0.02, 0.01, 0.02],
+        "disturbance_noise": [[0.3, 0.05], [0.05, 0.2]],
+        "measurement_noise": [0.04, 0.01],
+    }
     scaled = copy.deepcopy(plain)
     scaled["model"]["inputs"] = [{"name": "u1", "span": spans_u[0]}, {"name": "u2", "span": spans_u[1]}]
     scaled["model"]["outputs"] = [{"name": "z1", "span": spans_z[0]}, {"name": "z2", "span": spans_z[1]}]
@@ -217,7 +237,9 @@ def test_spans_give_the_run_of_weights_divided_by_span_squared(client):
     one, two = post(client, scaled).json(), post(client, plain).json()
     for key in ("outputs", "measured", "setpoints", "inputs", "estimates"):
         np.testing.assert_allclose(one[key], two[key], rtol=1e-7, atol=1e-10, err_msg=key)
-    np.testing.assert_allclose(one["estimator"]["gain"]["values"], two["estimator"]["gain"]["values"], rtol=1e-7, atol=1e-12)
+    np.testing.assert_allclose(
+        one["estimator"]["gain"]["values"], two["estimator"]["gain"]["values"], rtol=1e-7, atol=1e-12
+    )
     for f, g in zip(one["performance"]["outputs"], two["performance"]["outputs"], strict=True):
         assert f["final_offset"] == pytest.approx(g["final_offset"], rel=1e-6, abs=1e-9)
 
@@ -226,8 +248,12 @@ def test_measured_disturbances_are_fed_forward_through_kd(client):
     # The law with feed-forward, du = Kr r - Kx x - Ku u(k-1) - Kd d(k), with the Kd the
     # design reports (full state, no mismatch).
     bd = [[0.05], [0.0], [0.02], [0.0]]
-    body = plain_request(steps=150, kind="full_state", setpoint_changes=[{"step": 5, "setpoint": [1.0, -0.5]}],
-                         measured_disturbances=[{"step": 40, "value": [2.0]}, {"step": 100, "value": [-1.0]}])
+    body = plain_request(
+        steps=150,
+        kind="full_state",
+        setpoint_changes=[{"step": 5, "setpoint": [1.0, -0.5]}],
+        measured_disturbances=[{"step": 40, "value": [2.0]}, {"step": 100, "value": [-1.0]}],
+    )
     body["model"]["b_disturbance"] = bd
     body["model"]["disturbances"] = [{"name": "inlet_flow", "unit": "t/h", "span": 4.0}]
     answer = post(client, body).json()
@@ -252,13 +278,23 @@ def test_a_true_plant_with_a_longer_dead_time_and_more_states_is_still_offset_fr
     def element(gain, tau, dead):
         return {"gain": gain, "time_constants": [tau], "dead_time": dead}
 
-    model = {"kind": "transfer_matrix", "sample_time": 1.0,
-             "elements": [[element(2.0, 8.0, 1.0), element(0.5, 5.0, 2.0)], [element(-0.4, 6.0, 1.0), element(1.5, 4.0, 1.0)]]}
+    model = {
+        "kind": "transfer_matrix",
+        "sample_time": 1.0,
+        "elements": [
+            [element(2.0, 8.0, 1.0), element(0.5, 5.0, 2.0)],
+            [element(-0.4, 6.0, 1.0), element(1.5, 4.0, 1.0)],
+        ],
+    }
     true = copy.deepcopy(model)
     true["elements"][0][0] = element(2.3, 9.0, 3.0)
     true["elements"][1][1] = element(1.3, 4.5, 2.0)
-    body = {"model": model, "horizons": {"prediction": 40, "control": 4}, "weights": {"output": [1.0, 1.0], "move": [1.0, 1.0]},
-            "scenario": {"steps": 600, "true_plant": true, **EVENTS}}
+    body = {
+        "model": model,
+        "horizons": {"prediction": 40, "control": 4},
+        "weights": {"output": [1.0, 1.0], "move": [1.0, 1.0]},
+        "scenario": {"steps": 600, "true_plant": true, **EVENTS},
+    }
     answer = post(client, body).json()
     assert answer["diverged_at"] is None
     assert max(abs(f["final_offset"]) for f in answer["performance"]["outputs"]) < 1e-6
@@ -266,8 +302,12 @@ def test_a_true_plant_with_a_longer_dead_time_and_more_states_is_still_offset_fr
 
 def test_a_run_that_blows_up_is_cut_and_reported(client):
     true = dict(MISMATCH, b=(-3.0 * B).tolist())
-    r = post(client, plain_request(steps=5000, kind="full_state", true_plant=true,
-                                   setpoint_changes=[{"step": 0, "setpoint": [1.0, 1.0]}]))
+    r = post(
+        client,
+        plain_request(
+            steps=5000, kind="full_state", true_plant=true, setpoint_changes=[{"step": 0, "setpoint": [1.0, 1.0]}]
+        ),
+    )
     assert "NaN" not in r.text and "Infinity" not in r.text
     answer = r.json()
     cut = answer["diverged_at"]
@@ -275,9 +315,13 @@ def test_a_run_that_blows_up_is_cut_and_reported(client):
     assert len(answer["time"]) == len(answer["outputs"]) == len(answer["inputs"]) == cut
     assert "run_diverged" in [w["code"] for w in answer["warnings"]]
     assert all(f["final_offset"] is None for f in answer["performance"]["outputs"])
-    csv_rows = post(client, plain_request(steps=5000, kind="full_state", true_plant=true,
-                                          setpoint_changes=[{"step": 0, "setpoint": [1.0, 1.0]}]),
-                    accept="text/csv").text.splitlines()
+    csv_rows = post(
+        client,
+        plain_request(
+            steps=5000, kind="full_state", true_plant=true, setpoint_changes=[{"step": 0, "setpoint": [1.0, 1.0]}]
+        ),
+        accept="text/csv",
+    ).text.splitlines()
     assert len(csv_rows) == cut + 1
 
 
@@ -286,8 +330,15 @@ def test_csv_has_a_header_of_tag_names_and_one_row_per_step(client, request_body
     assert r.headers["content-type"].startswith("text/csv")
     assert r.content.count(b"\r\n") == request_body["scenario"]["steps"] + 1  # RFC 4180 line ends
     rows = list(csv.reader(io.StringIO(r.text)))
-    assert rows[0] == ["time", "vessel_temperature", "vessel_level", "vessel_temperature.setpoint",
-                       "vessel_level.setpoint", "steam_valve", "outlet_valve"]
+    assert rows[0] == [
+        "time",
+        "vessel_temperature",
+        "vessel_level",
+        "vessel_temperature.setpoint",
+        "vessel_level.setpoint",
+        "steam_valve",
+        "outlet_valve",
+    ]
     assert len(rows) == request_body["scenario"]["steps"] + 1
     answer = post(client, request_body).json()
     values = np.array(rows[1:], dtype=float)
@@ -300,7 +351,9 @@ def test_csv_has_a_header_of_tag_names_and_one_row_per_step(client, request_body
 
 def test_same_request_same_bytes(client, request_body):
     assert post(client, request_body).content == post(client, request_body).content
-    assert post(client, request_body, accept="text/csv").content == post(client, request_body, accept="text/csv").content
+    assert (
+        post(client, request_body, accept="text/csv").content == post(client, request_body, accept="text/csv").content
+    )
     other = copy.deepcopy(request_body)
     other["scenario"]["measurement_noise"]["seed"] = 2
     one, two = post(client, request_body).json(), post(client, other).json()
@@ -343,15 +396,38 @@ def _edit(path, value):
 @pytest.mark.parametrize(
     ("edit", "pointer"),
     [
-        (_edit(("scenario", "setpoint_changes"), [{"step": 300, "setpoint": [1.0, 0.0]}]), "/scenario/setpoint_changes/0/step"),
-        (_edit(("scenario", "setpoint_changes"), [{"step": -1, "setpoint": [1.0, 0.0]}]), "/scenario/setpoint_changes/0/step"),
-        (_edit(("scenario", "setpoint_changes"), [{"step": 3, "setpoint": [1.0]}]), "/scenario/setpoint_changes/0/setpoint"),
-        (_edit(("scenario", "output_disturbances"), [{"step": 3, "value": [1.0, 2.0, 3.0]}]), "/scenario/output_disturbances/0/value"),
-        (_edit(("scenario", "input_disturbances"), [{"step": 1, "value": [1.0]}, {"step": 240, "value": [1.0, 0.0]}]),
-         "/scenario/input_disturbances/0/value"),
-        (_edit(("scenario", "input_disturbances"), [{"step": 1, "value": [1.0]}, {"step": 240, "value": [1.0, 0.0]}]),
-         "/scenario/input_disturbances/1/step"),
-        (_edit(("scenario", "measured_disturbances"), [{"step": 1, "value": [1.0]}]), "/scenario/measured_disturbances"),
+        (
+            _edit(("scenario", "setpoint_changes"), [{"step": 300, "setpoint": [1.0, 0.0]}]),
+            "/scenario/setpoint_changes/0/step",
+        ),
+        (
+            _edit(("scenario", "setpoint_changes"), [{"step": -1, "setpoint": [1.0, 0.0]}]),
+            "/scenario/setpoint_changes/0/step",
+        ),
+        (
+            _edit(("scenario", "setpoint_changes"), [{"step": 3, "setpoint": [1.0]}]),
+            "/scenario/setpoint_changes/0/setpoint",
+        ),
+        (
+            _edit(("scenario", "output_disturbances"), [{"step": 3, "value": [1.0, 2.0, 3.0]}]),
+            "/scenario/output_disturbances/0/value",
+        ),
+        (
+            _edit(
+                ("scenario", "input_disturbances"), [{"step": 1, "value": [1.0]}, {"step": 240, "value": [1.0, 0.0]}]
+            ),
+            "/scenario/input_disturbances/0/value",
+        ),
+        (
+            _edit(
+                ("scenario", "input_disturbances"), [{"step": 1, "value": [1.0]}, {"step": 240, "value": [1.0, 0.0]}]
+            ),
+            "/scenario/input_disturbances/1/step",
+        ),
+        (
+            _edit(("scenario", "measured_disturbances"), [{"step": 1, "value": [1.0]}]),
+            "/scenario/measured_disturbances",
+        ),
         (_edit(("scenario", "measurement_noise"), {"std": [0.1, -0.1]}), "/scenario/measurement_noise/std/1"),
         (_edit(("scenario", "measurement_noise"), {"std": [0.1]}), "/scenario/measurement_noise/std"),
         (_edit(("scenario", "measurement_noise"), {"std": [0.1, 0.1], "seed": -3}), "/scenario/measurement_noise/seed"),
@@ -366,8 +442,10 @@ def _edit(path, value):
         (_edit(("scenario", "true_plant", "c"), [[1.0, 0.0, 0.0, 0.0]]), "/scenario/true_plant"),
         (_edit(("scenario", "true_plant", "a"), [[0.5, 0.1]]), "/scenario/true_plant/a"),
         (_edit(("scenario", "true_plant", "sample_time"), 2.0), "/scenario/true_plant/sample_time"),
-        (_edit(("scenario", "true_plant", "inputs"), [{"name": "outlet_valve"}, {"name": "steam_valve"}]),
-         "/scenario/true_plant/inputs/0/name"),
+        (
+            _edit(("scenario", "true_plant", "inputs"), [{"name": "outlet_valve"}, {"name": "steam_valve"}]),
+            "/scenario/true_plant/inputs/0/name",
+        ),
         (_edit(("scenario", "true_plant", "c_measured"), [[1.0, 0.0, 0.0, 0.0]]), "/scenario/true_plant/c_measured"),
         (_edit(("scenario", "true_plant", "kind"), "mystery"), "/scenario/true_plant/kind"),
         (_edit(("model", "c_measured"), [[1.0, 0.0, 0.0, 0.0]]), "/model/c_measured"),
@@ -375,13 +453,28 @@ def _edit(path, value):
         (_edit(("estimator",), {"kind": "output_disturbance", "disturbance": "input"}), "/estimator/disturbance"),
         (_edit(("estimator",), {"kind": "kalman", "disturbance": "sideways"}), "/estimator/disturbance"),
         (_edit(("estimator",), {"kind": "observer"}), "/estimator/kind"),
-        (_edit(("estimator",), {"kind": "full_state", "measurement_noise": [1.0, 1.0]}), "/estimator/measurement_noise"),
+        (
+            _edit(("estimator",), {"kind": "full_state", "measurement_noise": [1.0, 1.0]}),
+            "/estimator/measurement_noise",
+        ),
         (_edit(("estimator",), {"kind": "kalman", "process_noise": [1.0, 1.0]}), "/estimator/process_noise"),
-        (_edit(("estimator",), {"kind": "kalman", "process_noise": [1.0, 1.0, -1.0, 1.0]}), "/estimator/process_noise/2"),
-        (_edit(("estimator",), {"kind": "kalman", "disturbance_noise": [[1.0, 2.0], [2.0, 1.0]]}), "/estimator/disturbance_noise"),
-        (_edit(("estimator",), {"kind": "kalman", "disturbance": "none", "disturbance_noise": [1.0]}), "/estimator/disturbance_noise"),
+        (
+            _edit(("estimator",), {"kind": "kalman", "process_noise": [1.0, 1.0, -1.0, 1.0]}),
+            "/estimator/process_noise/2",
+        ),
+        (
+            _edit(("estimator",), {"kind": "kalman", "disturbance_noise": [[1.0, 2.0], [2.0, 1.0]]}),
+            "/estimator/disturbance_noise",
+        ),
+        (
+            _edit(("estimator",), {"kind": "kalman", "disturbance": "none", "disturbance_noise": [1.0]}),
+            "/estimator/disturbance_noise",
+        ),
         (_edit(("estimator",), {"kind": "kalman", "measurement_noise": [1.0, 0.0]}), "/estimator/measurement_noise/1"),
-        (_edit(("estimator",), {"kind": "kalman", "measurement_noise": [[1.0, 1.0], [1.0, 1.0]]}), "/estimator/measurement_noise"),
+        (
+            _edit(("estimator",), {"kind": "kalman", "measurement_noise": [[1.0, 1.0], [1.0, 1.0]]}),
+            "/estimator/measurement_noise",
+        ),
         (_edit(("horizons", "control"), 50), "/horizons/control"),
         (_edit(("weights", "terminal"), "riccati"), "/weights/terminal"),
     ],
@@ -398,8 +491,13 @@ def test_design_and_scenario_problems_come_back_together(client, request_body):
 
 
 def test_a_true_plant_of_another_state_count_needs_no_initial_state(client, request_body):
-    request_body["scenario"]["true_plant"] = {"kind": "state_space", "a": [[0.9, 0.0], [0.0, 0.8]], "b": [[0.1, 0.0], [0.0, 0.1]],
-                                              "c": [[1.0, 0.0], [0.0, 1.0]], "sample_time": 1.0}
+    request_body["scenario"]["true_plant"] = {
+        "kind": "state_space",
+        "a": [[0.9, 0.0], [0.0, 0.8]],
+        "b": [[0.1, 0.0], [0.0, 0.1]],
+        "c": [[1.0, 0.0], [0.0, 1.0]],
+        "sample_time": 1.0,
+    }
     request_body["scenario"]["initial"] = {"state": [0.0] * 4}
     assert "/scenario/initial/state" in pointers(client, request_body)
     request_body["scenario"]["initial"] = {}

@@ -17,8 +17,8 @@ import numpy as np
 import pytest
 import scipy.optimize
 
-from service.schemas.examples import load_example
-from service.solver.limits import DEFAULT_OUTPUT_SOFTNESS
+from service.pipeline.examples import load_example
+from service.solver.limits.bounds import DEFAULT_OUTPUT_SOFTNESS
 
 EXAMPLE = load_example("simulate_request.json")
 A, B, C = (np.array(EXAMPLE["model"][k]) for k in ("a", "b", "c"))
@@ -113,7 +113,9 @@ def test_limits_hold_at_every_step_and_soft_outputs_stay_within_the_reported_sla
     )
     # The summary counts what the step rows list.
     for (kind, side, signal), entry in largest.items():
-        at = sum(any((a["kind"], a["side"], a["signal"]) == (kind, side, signal) for a in r["active"]) for r in rows.values())
+        at = sum(
+            any((a["kind"], a["side"], a["signal"]) == (kind, side, signal) for a in r["active"]) for r in rows.values()
+        )
         assert entry["steps_at_limit"] == at and entry["fraction"] == pytest.approx(at / 150)
     assert len(summary["signals"]) == 4 + 4 + 2  # input min/max, both move sides, two output bounds
 
@@ -326,8 +328,11 @@ def test_an_initial_input_outside_its_limits_is_refused_unless_clamping_is_asked
     found = problems(client, body)
     assert "/scenario/initial/input" in found and "by default 0" in found["/scenario/initial/input"]
     # Asked to clamp: the run starts from the clipped input, and a warning says so.
-    body = request(steps=20, limits={**limits, "clamp_initial_input": True, "move_max": [0.05, 0.05]},
-                   initial={"input": [0.5, 0.8]})
+    body = request(
+        steps=20,
+        limits={**limits, "clamp_initial_input": True, "move_max": [0.05, 0.05]},
+        initial={"input": [0.5, 0.8]},
+    )
     answer = post(client, body).json()
     warning = next(w for w in answer["warnings"] if w["code"] == "initial_input_clamped")
     assert "outlet" in warning["message"] and "0.5" in warning["message"]

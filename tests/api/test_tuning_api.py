@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 import scipy.linalg
 
-from service.schemas.examples import load_example
+from service.pipeline.examples import load_example
 
 
 def lqr_gain(a, b, c, q, r):
@@ -49,7 +49,12 @@ def test_move_blocking_shrinks_the_hessian(client, example):
 
 @pytest.mark.parametrize(
     ("steps", "pointer"),
-    [([1, 2], "/horizons/move_steps/0"), ([0, 2, 2], "/horizons/move_steps/2"), ([0, 5], "/horizons/move_steps/1"), ([], "/horizons/move_steps")],
+    [
+        ([1, 2], "/horizons/move_steps/0"),
+        ([0, 2, 2], "/horizons/move_steps/2"),
+        ([0, 5], "/horizons/move_steps/1"),
+        ([], "/horizons/move_steps"),
+    ],
 )
 def test_bad_move_steps_name_the_step(client, example, steps, pointer):
     example["horizons"]["move_steps"] = steps
@@ -191,11 +196,19 @@ def test_a_horizon_sweep_with_a_scenario_fails_only_the_invalid_value(client, ex
 
 
 def test_sweep_runs_together_respect_the_simulation_work_cap(make_client):
-    from service.schemas.simulate_checks import simulation_work
+    from service.pipeline.simulate_checks import simulation_work
 
     # The example: 4 states, 2 inputs, 2 outputs, output disturbances, Hp = 30 (Hw = 1).
-    one = simulation_work(steps=80, states=4, true_states=4, inputs=2, outputs=2, disturbances=2,
-                          measured_disturbances=0, penalized_steps=30)
+    one = simulation_work(
+        steps=80,
+        states=4,
+        true_states=4,
+        inputs=2,
+        outputs=2,
+        disturbances=2,
+        measured_disturbances=0,
+        penalized_steps=30,
+    )
     sweep = analysed_sweep(scenario=SCENARIO)
     client = make_client(max_simulation_work=2 * one)  # one run fits, three do not
     r = client.post("/design/sweep", json=sweep)
@@ -208,7 +221,7 @@ def test_sweep_runs_together_respect_the_simulation_work_cap(make_client):
 
 
 def test_sweep_analyses_together_respect_the_frequency_work_cap(make_client):
-    from service.schemas.robustness_convert import frequency_work
+    from service.pipeline.robustness import frequency_work
 
     # Controller states with the output-disturbance estimator: n + p + m = 8.
     one = frequency_work(points=60, plant_states=4, controller_states=8, inputs=2, measured=2)
@@ -222,13 +235,19 @@ def test_sweep_analyses_together_respect_the_frequency_work_cap(make_client):
     ("edit", "pointer"),
     [
         (lambda s: s["design"]["analysis"].update(points=5), "/design/analysis/points"),
-        (lambda s: s["design"].update(estimator={"kind": "full_state", "measurement_noise": [1.0, 1.0]}),
-         "/design/estimator/measurement_noise"),
+        (
+            lambda s: s["design"].update(estimator={"kind": "full_state", "measurement_noise": [1.0, 1.0]}),
+            "/design/estimator/measurement_noise",
+        ),
         (lambda s: s.update(scenario={"steps": 0}), "/scenario/steps"),
-        (lambda s: s.update(scenario={"steps": 10, "setpoint_changes": [{"step": 20, "setpoint": [1.0, 0.0]}]}),
-         "/scenario/setpoint_changes/0/step"),
-        (lambda s: s.update(scenario={"steps": 10}) or s["design"]["weights"].update(terminal="riccati"),
-         "/design/weights/terminal"),
+        (
+            lambda s: s.update(scenario={"steps": 10, "setpoint_changes": [{"step": 20, "setpoint": [1.0, 0.0]}]}),
+            "/scenario/setpoint_changes/0/step",
+        ),
+        (
+            lambda s: s.update(scenario={"steps": 10}) or s["design"]["weights"].update(terminal="riccati"),
+            "/design/weights/terminal",
+        ),
     ],
 )
 def test_bad_analysis_estimator_or_scenario_of_a_sweep_name_the_field(client, edit, pointer):

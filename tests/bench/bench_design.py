@@ -52,16 +52,16 @@ ROOT = Path(__file__).resolve().parents[2]
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from service.solver.design import design_controller  # noqa: E402
-from service.solver.gain import (  # noqa: E402
+from service.solver.design.controller import design_controller  # noqa: E402
+from service.solver.design.gain import (  # noqa: E402
     PredictiveGain,
     factor_hessian,
     first_move_gain,
     toeplitz_hessian,
     weighted_moves,
 )
-from service.solver.prediction import prediction_matrices  # noqa: E402
-from service.solver.weights import weight_matrix, weight_root  # noqa: E402
+from service.solver.design.prediction import prediction_matrices  # noqa: E402
+from service.solver.design.weights import weight_matrix, weight_root  # noqa: E402
 
 __all__ = ["main"]
 
@@ -206,9 +206,7 @@ def blas_floor(g: Array, diagonal: Array) -> None:
 # --------------------------------------------------------------------------- timing
 
 
-def best_of(
-    runs: dict[str, Callable[[], object]], *, budget: float, most: int = 500
-) -> dict[str, tuple[float, int]]:
+def best_of(runs: dict[str, Callable[[], object]], *, budget: float, most: int = 500) -> dict[str, tuple[float, int]]:
     """Best wall time (``time.perf_counter``) of each callable over N interleaved rounds.
 
     After one warm-up call of each, every round calls each callable once, so load from
@@ -292,7 +290,9 @@ def run_solver_benchmark(cases: list[Case], *, budget: float) -> list[dict[str, 
                 "cond": design.hessian.condition_number,
             }
         )
-        print(f"  timed {case.name}: N = design {design_n}, gain {gain_n}, textbook {book_n}, floor {floor_n}", flush=True)
+        print(
+            f"  timed {case.name}: N = design {design_n}, gain {gain_n}, textbook {book_n}, floor {floor_n}", flush=True
+        )
     return rows
 
 
@@ -528,7 +528,9 @@ def main(argv: list[str] | None = None) -> int:
         f"{os.cpu_count()} CPUs, {platform.machine()}; seed {SEED}; best of N, budget {args.budget:g} s; "
         f"load average {load_average()}"
     )
-    threads = {k: os.environ[k] for k in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS") if k in os.environ}
+    threads = {
+        k: os.environ[k] for k in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS") if k in os.environ
+    }
     print(f"BLAS threads: {', '.join(f'{k}={v}' for k, v in threads.items()) or 'library default (one per CPU)'}")
     if cases:
         print("\nSolver against the textbook version and the BLAS floor (G'G + Cholesky):")

@@ -49,12 +49,13 @@ ROOT = Path(__file__).resolve().parents[2]
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from service.solver.constrained import ConstrainedPolicy  # noqa: E402
-from service.solver.design import ControllerDesign, design_controller  # noqa: E402
-from service.solver.estimation import design_estimator  # noqa: E402
-from service.solver.limits import Limits, make_limits  # noqa: E402
-from service.solver.qp import MoveProblem, MoveQP  # noqa: E402
-from service.solver.simulation import Event, Scenario, simulate_loop  # noqa: E402
+from service.solver.estimation.estimator import design_estimator  # noqa: E402
+
+from service.solver.design.controller import ControllerDesign, design_controller  # noqa: E402
+from service.solver.evaluation.simulation import Event, Scenario, simulate_loop  # noqa: E402
+from service.solver.limits.bounds import Limits, make_limits  # noqa: E402
+from service.solver.limits.policy import ConstrainedPolicy  # noqa: E402
+from service.solver.limits.qp import MoveProblem, MoveQP  # noqa: E402
 
 
 @dataclass(frozen=True)
@@ -96,14 +97,21 @@ def build(case: Case, seed: int = 7) -> Setup:
     a *= 0.95 / max(abs(np.linalg.eigvals(a)))
     b, c = rng.normal(size=(case.n, case.m)), rng.normal(size=(case.p, case.n))
     design = design_controller(
-        a, b, c, output_weight=np.ones(case.p), move_weight=np.full(case.m, 0.1),
-        prediction=case.prediction, control=case.control,
+        a,
+        b,
+        c,
+        output_weight=np.ones(case.p),
+        move_weight=np.full(case.m, 0.1),
+        prediction=case.prediction,
+        control=case.control,
     )
     gain = c @ np.linalg.solve(np.eye(case.n) - a, b)
     reach = np.abs(gain).sum(axis=1)  # largest |z| at steady state with |u| <= 1
     bound = np.full(case.p, np.nan)
     bound[: case.p // 2 + 1] = 0.8 * reach[: case.p // 2 + 1]
-    limits = make_limits(case.m, case.p, input_min=-1.0, input_max=1.0, move_max=0.2, output_max=bound, output_min=-bound)
+    limits = make_limits(
+        case.m, case.p, input_min=-1.0, input_max=1.0, move_max=0.2, output_max=bound, output_min=-bound
+    )
     return Setup((a, b, c), design, limits, 1.5 * reach * np.sign(rng.normal(size=case.p)))
 
 
@@ -113,7 +121,7 @@ def record(setup: Setup, steps: int) -> list[Step]:
     steps_seen: list[Step] = []
     policy = ConstrainedPolicy.from_design(design, limits)
 
-    def recording(*, error, free_prediction, previous_input, step):  # noqa: ANN001, ANN202
+    def recording(*, error, free_prediction, previous_input, step):
         steps_seen.append(Step(error.copy(), free_prediction.copy(), previous_input.copy()))
         return policy(error=error, free_prediction=free_prediction, previous_input=previous_input, step=step)
 
@@ -146,13 +154,22 @@ def scipy_solve(problem: MoveProblem, method: str) -> np.ndarray:
         constraints = [{"type": "ineq", "fun": lambda z: b_ineq - a_ineq @ z, "jac": lambda z: -a_ineq}]
         options = {"ftol": 1e-12, "maxiter": 2000}
         result = scipy.optimize.minimize(
-            lambda z: 0.5 * z @ h @ z + f @ z, np.zeros(nv), jac=lambda z: h @ z + f,
-            method="SLSQP", bounds=bounds, constraints=constraints, options=options,
+            lambda z: 0.5 * z @ h @ z + f @ z,
+            np.zeros(nv),
+            jac=lambda z: h @ z + f,
+            method="SLSQP",
+            bounds=bounds,
+            constraints=constraints,
+            options=options,
         )
     else:
         result = scipy.optimize.minimize(
-            lambda z: 0.5 * z @ h @ z + f @ z, np.zeros(nv), jac=lambda z: h @ z + f, hess=lambda z: h,
-            method="trust-constr", bounds=bounds,
+            lambda z: 0.5 * z @ h @ z + f @ z,
+            np.zeros(nv),
+            jac=lambda z: h @ z + f,
+            hess=lambda z: h,
+            method="trust-constr",
+            bounds=bounds,
             constraints=[scipy.optimize.LinearConstraint(rows, lower, upper)],
             options={"gtol": 1e-10, "xtol": 1e-12, "maxiter": 5000},
         )
@@ -178,12 +195,26 @@ def other_solvers() -> dict[str, Callable[[list[MoveProblem]], list[np.ndarray]]
             def clip(v: np.ndarray) -> np.ndarray:
                 return np.clip(v, -big, big)
 
-            qp.init(first.hessian, first.linear, np.zeros((0, nv)), np.zeros(0), first.rows,
-                    clip(first.lower[nv:]), clip(first.upper[nv:]), clip(first.lower[:nv]), clip(first.upper[:nv]))
+            qp.init(
+                first.hessian,
+                first.linear,
+                np.zeros((0, nv)),
+                np.zeros(0),
+                first.rows,
+                clip(first.lower[nv:]),
+                clip(first.upper[nv:]),
+                clip(first.lower[:nv]),
+                clip(first.upper[:nv]),
+            )
             out = []
             for problem in problems:
-                qp.update(g=problem.linear, l=clip(problem.lower[nv:]), u=clip(problem.upper[nv:]),
-                          l_box=clip(problem.lower[:nv]), u_box=clip(problem.upper[:nv]))
+                qp.update(
+                    g=problem.linear,
+                    l=clip(problem.lower[nv:]),
+                    u=clip(problem.upper[nv:]),
+                    l_box=clip(problem.lower[:nv]),
+                    u_box=clip(problem.upper[:nv]),
+                )
                 qp.solve()
                 out.append(np.array(qp.results.x))
             return out
@@ -201,10 +232,21 @@ def other_solvers() -> dict[str, Callable[[list[MoveProblem]], list[np.ndarray]]
             solver.settings.eps_abs = 1e-9
             solver.settings.eps_rel = 0.0
             big = 1e30
+
             def clip(v: np.ndarray) -> np.ndarray:
                 return np.clip(v, -big, big)
-            solver.setup(np.asfortranarray(first.hessian), first.linear, None, None, np.asfortranarray(first.rows),
-                         clip(first.lower[nv:]), clip(first.upper[nv:]), clip(first.lower[:nv]), clip(first.upper[:nv]))
+
+            solver.setup(
+                np.asfortranarray(first.hessian),
+                first.linear,
+                None,
+                None,
+                np.asfortranarray(first.rows),
+                clip(first.lower[nv:]),
+                clip(first.upper[nv:]),
+                clip(first.lower[:nv]),
+                clip(first.upper[:nv]),
+            )
             out = []
             for problem in problems:
                 solver.update(c=problem.linear, h_l=clip(problem.lower[nv:]), h_u=clip(problem.upper[nv:]))
@@ -223,8 +265,18 @@ def other_solvers() -> dict[str, Callable[[list[MoveProblem]], list[np.ndarray]]
             nv = first.hessian.shape[0]
             a = scipy.sparse.csc_matrix(np.vstack([np.eye(nv), first.rows]))
             solver = osqp.OSQP()
-            solver.setup(scipy.sparse.csc_matrix(np.triu(first.hessian)), first.linear, a, first.lower, first.upper,
-                         eps_abs=1e-9, eps_rel=0.0, polishing=True, verbose=False, max_iter=100000)
+            solver.setup(
+                scipy.sparse.csc_matrix(np.triu(first.hessian)),
+                first.linear,
+                a,
+                first.lower,
+                first.upper,
+                eps_abs=1e-9,
+                eps_rel=0.0,
+                polishing=True,
+                verbose=False,
+                max_iter=100000,
+            )
             out = []
             for problem in problems:
                 solver.update(q=problem.linear, l=problem.lower, u=problem.upper)
@@ -249,8 +301,12 @@ def other_solvers() -> dict[str, Callable[[list[MoveProblem]], list[np.ndarray]]
                 settings.verbose = False
                 settings.tol_gap_abs = settings.tol_gap_rel = settings.tol_feas = 1e-10
                 solver = clarabel.DefaultSolver(
-                    scipy.sparse.csc_matrix(np.triu(problem.hessian)), problem.linear,
-                    scipy.sparse.csc_matrix(rows), rhs, [clarabel.NonnegativeConeT(rows.shape[0])], settings,
+                    scipy.sparse.csc_matrix(np.triu(problem.hessian)),
+                    problem.linear,
+                    scipy.sparse.csc_matrix(rows),
+                    rhs,
+                    [clarabel.NonnegativeConeT(rows.shape[0])],
+                    settings,
                 )
                 out.append(np.array(solver.solve().x))
             return out
@@ -275,25 +331,33 @@ def bench_case(case: Case, *, steps: int, scipy_steps: int, budget: float, compa
     active = [k for k, s in enumerate(solutions) if s.active]
     print(f"\n== {case.name}: n={case.n}, m={case.m}, p={case.p}, Hp={case.prediction}, Hu={case.control} ==")
     first = qp.problem(error=recorded[0].error, free_prediction=recorded[0].free, previous_input=recorded[0].previous)
-    print(f"QP size: {qp.variables} variables ({case.control * m} moves + {qp.variables - case.control * m} slacks), "
-          f"{first.rows.shape[0]} rows besides the variable bounds")
-    print(f"{len(recorded)} steps, {len(active)} with active limits, "
-          f"{sum(s.method == 'unconstrained' for s in solutions)} solved by the unconstrained shortcut")
+    print(
+        f"QP size: {qp.variables} variables ({case.control * m} moves + {qp.variables - case.control * m} slacks), "
+        f"{first.rows.shape[0]} rows besides the variable bounds"
+    )
+    print(
+        f"{len(recorded)} steps, {len(active)} with active limits, "
+        f"{sum(s.method == 'unconstrained' for s in solutions)} solved by the unconstrained shortcut"
+    )
     per_step = {}
     for warm in ("previous", "shifted", "none"):
-        spent = timed(lambda: replay(warm), repeat=3)  # noqa: B023
+        spent = timed(lambda: replay(warm), repeat=3)
         answers, _ = replay(warm)
         iterations = np.array([s.iterations for s in answers])
-        agree = max(float(np.abs(s.moves[:m] - t.moves[:m]).max()) for s, t in zip(answers, solutions))
+        agree = max(float(np.abs(s.moves[:m] - t.moves[:m]).max()) for s, t in zip(answers, solutions, strict=False))
         per_step[warm] = spent / len(recorded)
-        print(f"DAQP, start {warm:9s}: {len(recorded) / spent:9.0f} steps/s ({1e6 * per_step[warm]:9.1f} us/step), "
-              f"iterations mean {iterations.mean():6.1f}, max {iterations.max():5d}; "
-              f"|du0 - du0 cold| <= {agree:.1e}")
+        print(
+            f"DAQP, start {warm:9s}: {len(recorded) / spent:9.0f} steps/s ({1e6 * per_step[warm]:9.1f} us/step), "
+            f"iterations mean {iterations.mean():6.1f}, max {iterations.max():5d}; "
+            f"|du0 - du0 cold| <= {agree:.1e}"
+        )
     per_step_daqp = per_step["previous"]
 
     chosen = active[:scipy_steps]
-    problems = [qp.problem(error=recorded[k].error, free_prediction=recorded[k].free, previous_input=recorded[k].previous)
-                for k in chosen]
+    problems = [
+        qp.problem(error=recorded[k].error, free_prediction=recorded[k].free, previous_input=recorded[k].previous)
+        for k in chosen
+    ]
     for method in ("SLSQP", "trust-constr"):
         answers, start = [], time.perf_counter()
         for problem in problems:  # at least one step, then as many as the budget allows
@@ -301,11 +365,15 @@ def bench_case(case: Case, *, steps: int, scipy_steps: int, budget: float, compa
             if time.perf_counter() - start > budget:
                 break
         spent = (time.perf_counter() - start) / len(answers)
-        error = max(float(np.abs(x[:m] - solutions[k].moves[:m]).max()) for x, k in zip(answers, chosen))
-        print(f"scipy {method:12s}    : {1 / spent:9.2f} steps/s ({1e6 * spent:9.0f} us/step) on {len(answers)} active "
-              f"step(s); DAQP is {spent / per_step_daqp:7.0f}x faster; max |du0 - du0_DAQP| = {error:.1e}")
+        error = max(float(np.abs(x[:m] - solutions[k].moves[:m]).max()) for x, k in zip(answers, chosen, strict=False))
+        print(
+            f"scipy {method:12s}    : {1 / spent:9.2f} steps/s ({1e6 * spent:9.0f} us/step) on {len(answers)} active "
+            f"step(s); DAQP is {spent / per_step_daqp:7.0f}x faster; max |du0 - du0_DAQP| = {error:.1e}"
+        )
     if compare:
-        some = [qp.problem(error=s.error, free_prediction=s.free, previous_input=s.previous) for s in recorded[:compare]]
+        some = [
+            qp.problem(error=s.error, free_prediction=s.free, previous_input=s.previous) for s in recorded[:compare]
+        ]
         for name, run in other_solvers().items():
             try:
                 start = time.perf_counter()
@@ -314,9 +382,11 @@ def bench_case(case: Case, *, steps: int, scipy_steps: int, budget: float, compa
             except Exception as exc:  # a candidate that fails is reported, not fatal
                 print(f"{name:40s}: failed ({type(exc).__name__}: {exc})")
                 continue
-            error = max(float(np.abs(x[:m] - s.moves[:m]).max()) for x, s in zip(answers, solutions))
-            print(f"{name:40s}: {1 / spent:9.0f} steps/s ({1e6 * spent:9.1f} us/step) on {len(some)} steps; "
-                  f"max |du0 - du0_DAQP| = {error:.1e}")
+            error = max(float(np.abs(x[:m] - s.moves[:m]).max()) for x, s in zip(answers, solutions, strict=False))
+            print(
+                f"{name:40s}: {1 / spent:9.0f} steps/s ({1e6 * spent:9.1f} us/step) on {len(some)} steps; "
+                f"max |du0 - du0_DAQP| = {error:.1e}"
+            )
 
 
 def main() -> None:
@@ -325,17 +395,25 @@ def main() -> None:
     parser.add_argument("--steps", type=int, default=200, help="closed-loop steps per case")
     parser.add_argument("--scipy-steps", type=int, default=3, help="most active steps solved by each scipy minimizer")
     parser.add_argument("--scipy-budget", type=float, default=60.0, help="seconds per scipy minimizer and case")
-    parser.add_argument("--compare", type=int, default=0, metavar="STEPS",
-                        help="also run the other candidate QP solvers on the first STEPS steps")
+    parser.add_argument(
+        "--compare",
+        type=int,
+        default=0,
+        metavar="STEPS",
+        help="also run the other candidate QP solvers on the first STEPS steps",
+    )
     args = parser.parse_args()
     from importlib.metadata import version
 
-    print(f"python {platform.python_version()}, numpy {np.__version__}, scipy {scipy.__version__}, "
-          f"daqp {version('daqp')}, {platform.machine()}, {os.cpu_count()} CPUs, "
-          f"load average {os.getloadavg()[0]:.2f}")
+    print(
+        f"python {platform.python_version()}, numpy {np.__version__}, scipy {scipy.__version__}, "
+        f"daqp {version('daqp')}, {platform.machine()}, {os.cpu_count()} CPUs, "
+        f"load average {os.getloadavg()[0]:.2f}"
+    )
     for name in args.cases.split(","):
-        bench_case(CASES[name], steps=args.steps, scipy_steps=args.scipy_steps, budget=args.scipy_budget,
-                   compare=args.compare)
+        bench_case(
+            CASES[name], steps=args.steps, scipy_steps=args.scipy_steps, budget=args.scipy_budget, compare=args.compare
+        )
     print(f"load average at the end {os.getloadavg()[0]:.2f} (other work inflates every figure)")
 
 

@@ -191,8 +191,10 @@ def run(url: str, *, seconds: float, concurrency: int, key: str | None) -> None:
     wall = time.perf_counter() - began
 
     every = [x for values in tally.latencies.values() for x in values]
-    print(f"machine: {platform.machine()}, {len(os.sched_getaffinity(0)) if hasattr(os, 'sched_getaffinity') else os.cpu_count()} CPUs, "
-          f"Python {platform.python_version()}, {platform.system()} {platform.release()}")
+    print(
+        f"machine: {platform.machine()}, {len(os.sched_getaffinity(0)) if hasattr(os, 'sched_getaffinity') else os.cpu_count()} CPUs, "
+        f"Python {platform.python_version()}, {platform.system()} {platform.release()}"
+    )
     print(f"date: {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}")
     print(f"{seconds:g} s at concurrency {concurrency}: {len(every)} requests, {len(every) / wall:.1f} requests/s")
     print(f"{'kind':<15}{'count':>8}{'p50 ms':>10}{'p99 ms':>10}")

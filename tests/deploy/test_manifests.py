@@ -58,7 +58,8 @@ def _one(kind: str, *, name: str | None = None) -> dict[str, Any]:
     matches = [
         doc
         for file, doc in RESOURCES
-        if doc["kind"] == kind and not file.endswith(".example.yaml")
+        if doc["kind"] == kind
+        and not file.endswith(".example.yaml")
         and (name is None or doc["metadata"]["name"] == name)
     ]
     assert len(matches) == 1, f"expected one {kind}, found {len(matches)}"
@@ -115,9 +116,7 @@ def test_pinned_kubernetes_version_is_bundled() -> None:
     assert KUBERNETES_VERSION in bundled, f"kubernetes-validate bundles {bundled}"
 
 
-@pytest.mark.parametrize(
-    "document", [doc for _, doc in RESOURCES], ids=[f"{f}:{d['kind']}" for f, d in RESOURCES]
-)
+@pytest.mark.parametrize("document", [doc for _, doc in RESOURCES], ids=[f"{f}:{d['kind']}" for f, d in RESOURCES])
 def test_manifest_matches_the_kubernetes_schema(document: dict[str, Any]) -> None:
     kubernetes_validate.validate(document, KUBERNETES_VERSION, strict=True)
 

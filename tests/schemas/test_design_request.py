@@ -8,10 +8,10 @@ import pytest
 from pydantic import ValidationError
 
 from service.errors import InvalidRequest
+from service.pipeline.design import check_design_request
+from service.pipeline.fingerprint import fingerprint
 from service.schemas.common import Caps
 from service.schemas.design import DesignRequest
-from service.schemas.design_convert import check_design_request
-from service.schemas.fingerprint import fingerprint
 from service.schemas.model import MODEL_KINDS
 
 

@@ -8,11 +8,11 @@ import dataclasses
 import pytest
 
 from service.errors import InvalidRequest
+from service.pipeline.examples import load_example
+from service.pipeline.simulate_checks import check_simulate_request, simulation_work
 from service.schemas.common import Caps
 from service.schemas.design import DesignRequest
-from service.schemas.examples import load_example
 from service.schemas.simulate import SimulateRequest
-from service.schemas.simulate_checks import check_simulate_request, simulation_work
 
 
 @pytest.fixture
@@ -80,7 +80,7 @@ def test_the_suggested_step_count_is_the_largest_that_fits_the_work_cap(body):
 
 
 def test_work_grows_with_steps_and_with_the_horizon():
-    sizes = dict(states=4, true_states=4, inputs=2, outputs=2, disturbances=2, measured_disturbances=0)
+    sizes = {"states": 4, "true_states": 4, "inputs": 2, "outputs": 2, "disturbances": 2, "measured_disturbances": 0}
     one = simulation_work(steps=1, penalized_steps=30, **sizes)
     assert simulation_work(steps=1000, penalized_steps=30, **sizes) == 1000 * one
     assert simulation_work(steps=1, penalized_steps=300, **sizes) > one

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from service.solver.design import design_controller
+from service.solver.design.controller import design_controller
 from tests.conftest import random_plant
 
 

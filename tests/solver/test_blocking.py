@@ -5,12 +5,12 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from service.solver.blocking import blocking_matrix, expand_moves, select_moves
-from service.solver.design import design_controller
-from service.solver.gain import optimal_moves
+from service.solver.design.blocking import blocking_matrix, expand_moves, select_moves
+from service.solver.design.controller import design_controller
+from service.solver.design.gain import optimal_moves
 from tests.conftest import random_plant
 
-KW = dict(output_weight=[1.0, 2.0], move_weight=[0.1, 0.4], prediction=12, control=6)
+KW = {"output_weight": [1.0, 2.0], "move_weight": [0.1, 0.4], "prediction": 12, "control": 6}
 
 
 @pytest.mark.parametrize("terminal", ["none", "riccati"])
@@ -73,6 +73,8 @@ def test_blocking_a_single_move_is_control_horizon_one(rng):
     # Definition: moving only at step 0 is the same problem as Hu = 1.
     a, b, c = random_plant(rng, 3, 2, 2)
     one = design_controller(a, b, c, output_weight=[1.0, 1.0], move_weight=[0.1, 0.1], prediction=10, control=1)
-    blocked = design_controller(a, b, c, output_weight=[1.0, 1.0], move_weight=[0.1, 0.1], prediction=10, control=4, blocking=[0])
+    blocked = design_controller(
+        a, b, c, output_weight=[1.0, 1.0], move_weight=[0.1, 0.1], prediction=10, control=4, blocking=[0]
+    )
     np.testing.assert_allclose(blocked.gain.state, one.gain.state, rtol=1e-12, atol=1e-14)
     np.testing.assert_allclose(blocked.hessian.matrix, one.hessian.matrix, rtol=1e-12)

@@ -13,15 +13,15 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.linalg
-
-from service.errors import NumericalError
-from service.solver.estimation import (
+from service.solver.estimation.estimator import (
     DEFAULT_DISTURBANCE_NOISE,
     DEFAULT_MEASUREMENT_NOISE,
     DEFAULT_STATE_NOISE,
     augmented_model,
     design_estimator,
 )
+
+from service.errors import NumericalError
 from tests.conftest import random_plant
 
 
@@ -55,7 +55,8 @@ def test_kalman_gain_solves_the_filter_riccati_and_innovation_equations(rng, dis
     np.testing.assert_allclose(aa @ posterior @ aa.T + qw, pk, rtol=1e-9, atol=1e-9)
     # Estimator poles: eig((I - L C) A), the same as the prior-error matrix A (I - L C).
     np.testing.assert_allclose(
-        np.sort_complex(est.poles), np.sort_complex(np.linalg.eigvals(aa @ (np.eye(aa.shape[0]) - est.gain @ ca))),
+        np.sort_complex(est.poles),
+        np.sort_complex(np.linalg.eigvals(aa @ (np.eye(aa.shape[0]) - est.gain @ ca))),
         atol=1e-9,
     )
     assert np.abs(est.poles).max() < 1.0
@@ -65,8 +66,9 @@ def test_kalman_covariance_is_the_limit_of_the_covariance_recursion(rng):
     # Independent of any Riccati solver: iterate the time-varying filter's covariance
     # P+ = A (P - P C' (C P C' + R)^-1 C P) A' + Q from P = Q until it settles (Kalman 1960).
     a, b, c = random_plant(rng, 3, 1, 1, radius=0.9)
-    est = design_estimator(a, b, c, kind="kalman", process_noise=[0.5, 0.2, 0.1], disturbance_noise=[0.3],
-                           measurement_noise=[0.05])
+    est = design_estimator(
+        a, b, c, kind="kalman", process_noise=[0.5, 0.2, 0.1], disturbance_noise=[0.3], measurement_noise=[0.05]
+    )
     aa, ca, q, r = est.a, est.c_measured, est.process_noise, est.measurement_noise
     pk = q.copy()
     for _ in range(5000):
@@ -79,8 +81,13 @@ def test_disturbance_kinds_are_kalman_filters_with_the_documented_default_covari
     for kind, disturbance, nd in [("output_disturbance", "output", 2), ("input_disturbance", "input", 2)]:
         est = design_estimator(a, b, c, kind=kind)
         same = design_estimator(
-            a, b, c, kind="kalman", disturbance=disturbance,
-            process_noise=[DEFAULT_STATE_NOISE] * 3, disturbance_noise=[DEFAULT_DISTURBANCE_NOISE] * nd,
+            a,
+            b,
+            c,
+            kind="kalman",
+            disturbance=disturbance,
+            process_noise=[DEFAULT_STATE_NOISE] * 3,
+            disturbance_noise=[DEFAULT_DISTURBANCE_NOISE] * nd,
             measurement_noise=[DEFAULT_MEASUREMENT_NOISE] * 2,
         )
         assert est.disturbance == disturbance and est.kind == kind
@@ -92,8 +99,7 @@ def test_scalar_output_disturbance_gain_by_hand():
     # p = p - p^2/(p + r) + q gives p = (q + sqrt(q^2 + 4 q r))/2 and L = p/(p + r).
     # With A = 0 the plant state is forgotten each step, so the d-channel is exactly this.
     q, r = 0.7, 0.2
-    est = design_estimator([[0.0]], [[1.0]], [[1.0]], process_noise=[0.0], disturbance_noise=[q],
-                           measurement_noise=[r])
+    est = design_estimator([[0.0]], [[1.0]], [[1.0]], process_noise=[0.0], disturbance_noise=[q], measurement_noise=[r])
     p_d = (q + np.sqrt(q * q + 4 * q * r)) / 2
     np.testing.assert_allclose(est.gain[1, 0], p_d / (p_d + r), rtol=1e-10)
     np.testing.assert_allclose(np.sort(est.poles.real), [0.0, 1 - p_d / (p_d + r)], atol=1e-10)

@@ -5,10 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from service.solver.design import design_controller
-from service.solver.feedforward import disturbance_free_response, feedforward_gain
-from service.solver.gain import optimal_moves
-from service.solver.transfer import TransferElement, transfer_matrix_model
+from service.solver.design.controller import design_controller
+from service.solver.design.feedforward import disturbance_free_response, feedforward_gain
+from service.solver.design.gain import optimal_moves
+from service.solver.models.transfer import TransferElement, transfer_matrix_model
 
 E = TransferElement
 

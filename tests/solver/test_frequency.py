@@ -6,17 +6,17 @@ import numpy as np
 import pytest
 import scipy.linalg
 import scipy.signal
-
-from service.solver.design import design_controller
-from service.solver.estimation import design_estimator
-from service.solver.frequency import design_frequency_analysis, frequency_analysis, frequency_grid
-from service.solver.realization import (
+from service.solver.estimation.estimator import design_estimator
+from service.solver.estimation.realization import (
     StateSpace,
     closed_loop_poles,
     controller_system,
     estimate_feedback_gain,
     plant_system,
 )
+
+from service.solver.design.controller import design_controller
+from service.solver.evaluation.frequency import design_frequency_analysis, frequency_analysis, frequency_grid
 from tests.conftest import random_plant
 
 
@@ -43,14 +43,19 @@ def test_sensitivity_plus_complementary_is_identity_at_every_frequency(rng):
         fa = design_frequency_analysis(design, est, sample_time=0.5, points=120)
         for loop in (fa.plant_input, fa.plant_output):
             eye = np.eye(loop.sensitivity.shape[-1])
-            np.testing.assert_allclose(loop.sensitivity + loop.complementary, np.broadcast_to(eye, loop.sensitivity.shape), atol=1e-9, err_msg=kind)
+            np.testing.assert_allclose(
+                loop.sensitivity + loop.complementary,
+                np.broadcast_to(eye, loop.sensitivity.shape),
+                atol=1e-9,
+                err_msg=kind,
+            )
 
 
 def test_sensitivities_equal_closed_loop_transfers_from_a_disturbance_at_the_break_point(rng):
     # Block-diagram algebra (the definition of S): with an output disturbance y = P u + d_o the
     # loop gives y = S_o d_o; with an input disturbance u_p = u + d_i it gives u_p = S_i d_i.
     # Both transfers are formed here from one closed-loop realization, independently of L.
-    for kind, a, b, c, design, est in designed_loops(rng):
+    for kind, a, b, _c, design, est in designed_loops(rng):
         n = a.shape[0]
         plant = plant_system(a, b, est.c_measured[:, :n])
         ctrl = controller_system(design, est)
@@ -59,8 +64,12 @@ def test_sensitivities_equal_closed_loop_transfers_from_a_disturbance_at_the_bre
         cy = plant.c
         a_cl = np.block([[a + b @ ctrl.d @ cy, b @ ctrl.c], [ctrl.b @ cy, ctrl.a]])
         py, m = cy.shape[0], b.shape[1]
-        out = StateSpace(a=a_cl, b=np.vstack([b @ ctrl.d, ctrl.b]), c=np.hstack([cy, np.zeros((py, ctrl.a.shape[0]))]), d=np.eye(py))
-        inp = StateSpace(a=a_cl, b=np.vstack([b, np.zeros((ctrl.a.shape[0], m))]), c=np.hstack([ctrl.d @ cy, ctrl.c]), d=np.eye(m))
+        out = StateSpace(
+            a=a_cl, b=np.vstack([b @ ctrl.d, ctrl.b]), c=np.hstack([cy, np.zeros((py, ctrl.a.shape[0]))]), d=np.eye(py)
+        )
+        inp = StateSpace(
+            a=a_cl, b=np.vstack([b, np.zeros((ctrl.a.shape[0], m))]), c=np.hstack([ctrl.d @ cy, ctrl.c]), d=np.eye(m)
+        )
         np.testing.assert_allclose(fa.plant_output.sensitivity, out.evaluate(z), atol=1e-9, err_msg=kind)
         np.testing.assert_allclose(fa.plant_input.sensitivity, inp.evaluate(z), atol=1e-9, err_msg=kind)
 
@@ -132,7 +141,7 @@ def test_full_state_loop_at_the_plant_input_against_scipy_signal(rng):
 def test_separation_principle_for_every_estimator(rng):
     # Separation principle (common practice): the loop's poles are the state-feedback poles
     # together with the estimator poles eig((I - L Cy) A_aug).
-    for kind, a, b, c, design, est in designed_loops(rng):
+    for kind, a, b, _c, design, est in designed_loops(rng):
         n = a.shape[0]
         poles = closed_loop_poles(plant_system(a, b, est.c_measured[:, :n]), controller_system(design, est))
         union = np.concatenate([design.loop.poles, est.poles])
@@ -146,7 +155,9 @@ def test_feedback_on_the_estimate_keeps_the_design_state_gain(rng):
     # The plant columns of K are Kx (module notes), also with the terminal weight.
     a, b, c = random_plant(rng, 3, 2, 2, radius=0.9)
     for terminal in ("none", "riccati"):
-        design = design_controller(a, b, c, output_weight=[1.0, 2.0], move_weight=[0.3, 0.1], prediction=6, control=6, terminal=terminal)
+        design = design_controller(
+            a, b, c, output_weight=[1.0, 2.0], move_weight=[0.3, 0.1], prediction=6, control=6, terminal=terminal
+        )
         for kind in ("output_disturbance", "input_disturbance"):
             est = design_estimator(a, b, c, kind=kind)
             k = estimate_feedback_gain(design, est)
@@ -159,11 +170,18 @@ def test_terminal_design_with_input_disturbance_is_offset_free_in_closed_loop(rn
     # the closed loop's DC operating point the plant output is zero for any disturbance:
     # the transfer from an input disturbance to y vanishes at z = 1.
     a, b, c = random_plant(rng, 3, 2, 2, radius=0.9)
-    design = design_controller(a, b, c, output_weight=[1.0, 1.0], move_weight=[0.3, 0.3], prediction=5, control=5, terminal="riccati")
+    design = design_controller(
+        a, b, c, output_weight=[1.0, 1.0], move_weight=[0.3, 0.3], prediction=5, control=5, terminal="riccati"
+    )
     est = design_estimator(a, b, c, kind="input_disturbance")
     ctrl = controller_system(design, est)
     a_cl = np.block([[a + b @ ctrl.d @ c, b @ ctrl.c], [ctrl.b @ c, ctrl.a]])
-    to_y = StateSpace(a=a_cl, b=np.vstack([b, np.zeros((ctrl.a.shape[0], 2))]), c=np.hstack([c, np.zeros((2, ctrl.a.shape[0]))]), d=np.zeros((2, 2)))
+    to_y = StateSpace(
+        a=a_cl,
+        b=np.vstack([b, np.zeros((ctrl.a.shape[0], 2))]),
+        c=np.hstack([c, np.zeros((2, ctrl.a.shape[0]))]),
+        d=np.zeros((2, 2)),
+    )
     assert np.abs(closed_loop_poles(plant_system(a, b, c), ctrl)).max() < 1
     np.testing.assert_allclose(to_y.evaluate(np.array([1.0 + 0j]))[0], 0.0, atol=1e-9)
 
@@ -190,7 +208,7 @@ def test_frequency_grid_is_log_spaced_up_to_nyquist():
 
 def test_multivariable_loop_has_no_classical_margins(rng):
     # Classical margins are defined for a single loop only.
-    for _, a, b, c, design, est in designed_loops(rng):
+    for _, _a, _b, _c, design, est in designed_loops(rng):
         fa = design_frequency_analysis(design, est, sample_time=1.0, points=20)
         assert fa.plant_input.margins is None and fa.plant_output.margins is None
         assert fa.stable == bool(np.abs(fa.closed_loop_poles).max() < 1)

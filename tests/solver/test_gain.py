@@ -7,8 +7,8 @@ import pytest
 import scipy.linalg
 
 from service.errors import HessianNotPositiveDefinite
-from service.solver.design import design_controller
-from service.solver.gain import optimal_moves
+from service.solver.design.controller import design_controller
+from service.solver.design.gain import optimal_moves
 from tests.conftest import random_plant
 
 
@@ -48,7 +48,9 @@ def test_long_horizon_gain_with_full_weights(rng):
     )
 
 
-@pytest.mark.parametrize(("a", "b", "c", "q", "r"), [(0.5, 1.0, 1.0, 1.0, 1.0), (0.9, 0.3, 2.0, 3.0, 0.5), (1.2, -0.7, 1.5, 1.0, 0.01)])
+@pytest.mark.parametrize(
+    ("a", "b", "c", "q", "r"), [(0.5, 1.0, 1.0, 1.0, 1.0), (0.9, 0.3, 2.0, 3.0, 0.5), (1.2, -0.7, 1.5, 1.0, 0.01)]
+)
 def test_scalar_one_step_gain_in_closed_form(a, b, c, q, r):
     # Derived by hand: with Hp = Hu = 1, z(k+1) = c a x + c b u(k-1) + c b du, so
     # V = q (c a x + c b u(k-1) + c b du - r0)^2 + r du^2 and dV/d(du) = 0 gives
@@ -87,7 +89,9 @@ def test_optimal_moves_solve_the_least_squares_problem(rng):
     d = design_controller(a, b, c, output_weight=q, move_weight=[0.2, 0.1, 0.4], prediction=hp, control=hu)
     e = rng.normal(size=hp * p)
     wq = scipy.linalg.sqrtm(q).real
-    stacked = np.vstack([np.kron(np.eye(hp), wq) @ d.prediction.moves, np.sqrt(np.kron(np.eye(hu), np.diag([0.2, 0.1, 0.4])))])
+    stacked = np.vstack(
+        [np.kron(np.eye(hp), wq) @ d.prediction.moves, np.sqrt(np.kron(np.eye(hu), np.diag([0.2, 0.1, 0.4])))]
+    )
     rhs = np.concatenate([np.kron(np.eye(hp), wq) @ e, np.zeros(hu * m)])
     reference = np.linalg.lstsq(stacked, rhs, rcond=None)[0]
     np.testing.assert_allclose(optimal_moves(d.hessian, d.weighted, d.output_root, e), reference, atol=1e-10)
@@ -99,7 +103,9 @@ def test_positive_move_weights_always_give_a_positive_definite_hessian(rng):
         n, m, p = rng.integers(1, 6, size=3)
         a, b, c = random_plant(rng, n, m, p, radius=rng.uniform(0.1, 1.5))
         b[:, 0] = 0.0  # even an input that acts on nothing
-        d = design_controller(a, b, c, output_weight=rng.uniform(0, 1, p), move_weight=rng.uniform(1e-3, 1, m), prediction=8, control=3)
+        d = design_controller(
+            a, b, c, output_weight=rng.uniform(0, 1, p), move_weight=rng.uniform(1e-3, 1, m), prediction=8, control=3
+        )
         assert d.hessian.smallest_eigenvalue > 0
         reference = scipy.linalg.eigvalsh(d.hessian.matrix)
         assert d.hessian.smallest_eigenvalue == pytest.approx(reference[0], rel=1e-10)
@@ -123,7 +129,16 @@ def test_zero_move_weight_on_one_blind_input_names_that_input(rng):
     a, b, c = random_plant(rng, 3, 2, 2)
     b[:, 1] = 0.0  # the second input acts on nothing
     with pytest.raises(HessianNotPositiveDefinite) as caught:
-        design_controller(a, b, c, output_weight=[1.0, 1.0], move_weight=[0.1, 0.0], prediction=6, control=2, input_labels=["steam", "outlet"])
+        design_controller(
+            a,
+            b,
+            c,
+            output_weight=[1.0, 1.0],
+            move_weight=[0.1, 0.0],
+            prediction=6,
+            control=2,
+            input_labels=["steam", "outlet"],
+        )
     assert "the moves of outlet carry no move penalty" in str(caught.value)
 
 
@@ -137,9 +152,9 @@ def test_zero_move_weight_with_full_rank_moves_is_accepted(rng):
 @pytest.mark.parametrize(("hp", "hu", "hw"), [(1, 1, 1), (12, 4, 1), (12, 12, 1), (15, 5, 4), (9, 3, 9)])
 def test_toeplitz_hessian_equals_the_dense_product(rng, hp, hu, hw):
     # Reference: the definition H = (Wbar G)'(Wbar G) + blockdiag(R), formed densely.
-    from service.solver.gain import hessian_matrix, toeplitz_hessian, weighted_moves
-    from service.solver.prediction import prediction_matrices
-    from service.solver.weights import weight_root
+    from service.solver.design.gain import hessian_matrix, toeplitz_hessian, weighted_moves
+    from service.solver.design.prediction import prediction_matrices
+    from service.solver.design.weights import weight_root
 
     n, m, p = 4, 2, 3
     a, b, c = random_plant(rng, n, m, p)

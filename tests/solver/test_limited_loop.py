@@ -12,19 +12,19 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.optimize
+from service.solver.estimation.estimator import design_estimator
+from service.solver.estimation.loop import control_loop
 
-from service.solver.constrained import ConstrainedPolicy
-from service.solver.design import design_controller
-from service.solver.estimation import design_estimator
-from service.solver.limited_loop import (
+from service.solver.design.controller import design_controller
+from service.solver.evaluation.simulation import Event, Scenario, UnconstrainedPolicy, simulate_loop
+from service.solver.limits.bounds import limit_violations, make_limits
+from service.solver.limits.limited_run import (
     GainWhenFreePolicy,
     ReachableTargetRule,
     limit_excursions,
     nominal_setpoint_run,
 )
-from service.solver.limits import limit_violations, make_limits
-from service.solver.loop import control_loop
-from service.solver.simulation import Event, Scenario, UnconstrainedPolicy, simulate_loop
+from service.solver.limits.policy import ConstrainedPolicy
 from tests.conftest import random_plant
 
 N, M, P = 4, 2, 2
@@ -102,7 +102,10 @@ def test_busy_steps_keep_the_qp_s_move(rng):
     scenario = Scenario(steps=40, setpoint_changes=[Event(0, np.array([3.0, -2.0]))])
     plain = simulate_loop(design, estimator, scenario, policy=ConstrainedPolicy.from_design(design, limits))
     wrapped = simulate_loop(
-        design, estimator, scenario, policy=GainWhenFreePolicy(ConstrainedPolicy.from_design(design, limits), design.gain.horizon)
+        design,
+        estimator,
+        scenario,
+        policy=GainWhenFreePolicy(ConstrainedPolicy.from_design(design, limits), design.gain.horizon),
     )
     busy = [k for k, r in enumerate(plain.reports) if r["method"] == "active_set"]
     assert busy and busy[0] == 0
@@ -146,9 +149,11 @@ def test_the_nominal_run_is_the_design_law_by_hand(rng):
 def test_an_unstable_law_is_cut_before_it_overflows():
     # x+ = 3 x + u with a law that cannot hold it (a zero gain on the state): the run stops
     # while every number is still finite.
-    from service.solver.gain import PredictiveGain
+    from service.solver.design.gain import PredictiveGain
 
-    zero = PredictiveGain(horizon=np.zeros((1, 1)), state=np.zeros((1, 1)), previous_input=np.zeros((1, 1)), setpoint=np.ones((1, 1)))
+    zero = PredictiveGain(
+        horizon=np.zeros((1, 1)), state=np.zeros((1, 1)), previous_input=np.zeros((1, 1)), setpoint=np.ones((1, 1))
+    )
     run = nominal_setpoint_run([[3.0]], [[1.0]], [[1.0]], zero, setpoint=[1.0], steps=2000)
     assert not run.completed and 0 < run.inputs.shape[0] < 2000
     assert np.isfinite(run.outputs).all()

@@ -6,9 +6,9 @@ import numpy as np
 import pytest
 import scipy.linalg
 
-from service.solver.design import design_controller
-from service.solver.modes import uncontrollable_mode_warnings, uncontrollable_modes
-from service.solver.transfer import TransferElement, transfer_matrix_model
+from service.solver.design.controller import design_controller
+from service.solver.models.modes import uncontrollable_mode_warnings, uncontrollable_modes
+from service.solver.models.transfer import TransferElement, transfer_matrix_model
 
 E = TransferElement
 ROTATION = 1.1 * np.array([[np.cos(0.3), -np.sin(0.3)], [np.sin(0.3), np.cos(0.3)]])
@@ -78,7 +78,7 @@ def test_hand_case_warning_names_the_poles_and_states_on_or_outside_the_circle()
 
 def test_uncontrollable_poles_stay_among_the_closed_loop_poles() -> None:
     # [w; 0] with w' A = z w', w' B = 0 is a left eigenvector of the loop on [x; u(k-1)]
-    # (its B-columns vanish): module notes of service.solver.modes.
+    # (its B-columns vanish): module notes of service.solver.models.modes.
     a, b = hand_case()
     c = np.zeros((2, 7))
     c[0, 0], c[1, 2], c[0, 1] = 1.0, 1.0, 1.0
@@ -175,8 +175,8 @@ def test_an_output_only_a_disturbance_integrates_is_a_genuine_warning() -> None:
 def test_loop_poles_only_narrow_the_search(rng):
     # Screening by the closed-loop poles of a design changes nothing: an uncontrollable mode
     # is a pole under every feedback (PBH; standard linear systems theory).
-    from service.solver.design import design_controller
-    from service.solver.modes import uncontrollable_mode_warnings
+    from service.solver.design.controller import design_controller
+    from service.solver.models.modes import uncontrollable_mode_warnings
 
     a = np.diag([1.0, 0.5, 0.8])
     b = np.array([[0.0], [1.0], [1.0]])

@@ -10,11 +10,11 @@ sampled integral absolute error.
 from __future__ import annotations
 
 import numpy as np
+from service.solver.estimation.estimator import design_estimator
 
-from service.solver.design import design_controller
-from service.solver.estimation import design_estimator
-from service.solver.performance import loop_performance
-from service.solver.simulation import Event, Scenario, simulate_loop
+from service.solver.design.controller import design_controller
+from service.solver.evaluation.performance import loop_performance
+from service.solver.evaluation.simulation import Event, Scenario, simulate_loop
 
 TAU = 2.5
 H = 1e-3 * TAU  # fine sampling: linear interpolation between samples is then exact to ~1e-6
@@ -53,8 +53,9 @@ def test_underdamped_second_order_overshoot_by_formula():
     wd = wn * np.sqrt(1 - zeta**2)
     phi = np.arccos(zeta)
     y = 1 - np.exp(-zeta * wn * t) * np.sin(wd * t + phi) / np.sqrt(1 - zeta**2)
-    perf = loop_performance(t, y[:, None], np.ones((t.size, 1)), np.zeros((t.size, 1)),
-                            initial_input=[0.0], initial_setpoint=[0.0])
+    perf = loop_performance(
+        t, y[:, None], np.ones((t.size, 1)), np.zeros((t.size, 1)), initial_input=[0.0], initial_setpoint=[0.0]
+    )
     expected = 100 * np.exp(-zeta * np.pi / np.sqrt(1 - zeta**2))
     np.testing.assert_allclose(perf.outputs[0].overshoot, expected, rtol=1e-5)
     # The decay envelope exp(-zeta wn t)/sqrt(1 - zeta^2) enters the 2 % band at
@@ -86,9 +87,10 @@ def test_no_setpoint_change_gives_none_for_step_figures():
 
 def test_a_response_that_never_gets_there_has_no_rise_or_settling_time():
     t = np.arange(100.0)
-    y = 0.5 * (1 - 0.9 ** t)  # stops at half the step
-    perf = loop_performance(t, y[:, None], np.ones((100, 1)), np.zeros((100, 1)), initial_input=[0.0],
-                            initial_setpoint=[0.0])
+    y = 0.5 * (1 - 0.9**t)  # stops at half the step
+    perf = loop_performance(
+        t, y[:, None], np.ones((100, 1)), np.zeros((100, 1)), initial_input=[0.0], initial_setpoint=[0.0]
+    )
     f = perf.outputs[0]
     assert f.rise_time is None and f.settling_time is None and f.overshoot == 0.0
     np.testing.assert_allclose(f.final_offset, 1 - y[-1])
@@ -97,16 +99,16 @@ def test_a_response_that_never_gets_there_has_no_rise_or_settling_time():
 def test_input_moves_by_hand_and_non_finite_figures_are_none():
     u = np.array([[1.0, 0.0], [1.5, -1.0], [0.5, -1.0], [np.nan, np.nan]])
     y = np.array([[0.0], [0.5], [np.nan], [np.nan]])
-    perf = loop_performance(np.arange(4.0), y, np.ones((4, 1)), u, initial_input=[0.5, 0.0],
-                            initial_setpoint=[0.0])
+    perf = loop_performance(np.arange(4.0), y, np.ones((4, 1)), u, initial_input=[0.5, 0.0], initial_setpoint=[0.0])
     assert perf.inputs[0].total_move is None and perf.inputs[0].largest_move is None
     u = u[:3]
     perf = loop_performance(np.arange(3.0), np.zeros((3, 1)), np.zeros((3, 1)), u, initial_input=[0.5, 0.0])
     # moves u1: 0.5, 0.5, -1.0 ; u2: 0, -1, 0
     assert perf.inputs[0].total_move == 2.0 and perf.inputs[0].largest_move == 1.0
     assert perf.inputs[1].total_move == 1.0 and perf.inputs[1].largest_move == 1.0
-    f = loop_performance(np.arange(4.0), y, np.ones((4, 1)), np.zeros((4, 1)), initial_input=[0.0],
-                         initial_setpoint=[0.0]).outputs[0]
+    f = loop_performance(
+        np.arange(4.0), y, np.ones((4, 1)), np.zeros((4, 1)), initial_input=[0.0], initial_setpoint=[0.0]
+    ).outputs[0]
     assert f.integral_absolute_error is None and f.final_offset is None and f.settling_time is None
     assert f.overshoot is None
 
@@ -117,10 +119,19 @@ def test_figures_of_a_simulated_first_order_loop():
     # one sample: rise time 0.8 sample (10 % -> 90 % interpolated on the jump), no overshoot.
     a = 0.8
     d = design_controller([[a]], [[1 - a]], [[1.0]], output_weight=[1.0], move_weight=[0.0], prediction=1, control=1)
-    sim = simulate_loop(d, design_estimator([[a]], [[1 - a]], [[1.0]], kind="full_state"),
-                        Scenario(steps=20, setpoint_changes=[Event(3, np.array([1.0]))], sample_time=0.5))
-    perf = loop_performance(sim.time, sim.outputs, sim.setpoints, sim.inputs, initial_input=sim.initial_input,
-                            initial_setpoint=sim.initial_setpoint)
+    sim = simulate_loop(
+        d,
+        design_estimator([[a]], [[1 - a]], [[1.0]], kind="full_state"),
+        Scenario(steps=20, setpoint_changes=[Event(3, np.array([1.0]))], sample_time=0.5),
+    )
+    perf = loop_performance(
+        sim.time,
+        sim.outputs,
+        sim.setpoints,
+        sim.inputs,
+        initial_input=sim.initial_input,
+        initial_setpoint=sim.initial_setpoint,
+    )
     f = perf.outputs[0]
     np.testing.assert_allclose(sim.outputs[4:, 0], 1.0, atol=1e-12)
     np.testing.assert_allclose(f.rise_time, 0.8 * 0.5, rtol=1e-12)

@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 
-from service.solver.plant import (
+from service.solver.models.properties import (
     gain_condition_number,
     open_loop_poles,
     plant_properties,
@@ -15,8 +15,8 @@ from service.solver.plant import (
     relative_gain_array,
     steady_state_gain,
 )
-from service.solver.sampling import sample_zero_order_hold
-from service.solver.transfer import TransferElement, transfer_matrix_model
+from service.solver.models.sampling import sample_zero_order_hold
+from service.solver.models.transfer import TransferElement, transfer_matrix_model
 
 E = TransferElement
 

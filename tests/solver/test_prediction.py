@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from service.solver.prediction import prediction_matrices
+from service.solver.design.prediction import prediction_matrices
 from tests.conftest import random_plant
 
 

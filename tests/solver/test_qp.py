@@ -5,13 +5,13 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.optimize
+from service.solver.estimation.estimator import design_estimator
 
-from service.solver.constrained import ConstrainedPolicy
-from service.solver.design import design_controller
-from service.solver.estimation import design_estimator
-from service.solver.limits import Limits, limit_violations, make_limits
-from service.solver.qp import MoveProblem, MoveQP
-from service.solver.simulation import Event, Scenario, UnconstrainedPolicy, simulate_loop
+from service.solver.design.controller import design_controller
+from service.solver.evaluation.simulation import Event, Scenario, UnconstrainedPolicy, simulate_loop
+from service.solver.limits.bounds import Limits, limit_violations, make_limits
+from service.solver.limits.policy import ConstrainedPolicy
+from service.solver.limits.qp import MoveProblem, MoveQP
 from tests.conftest import random_plant
 
 N, M, P, HP, HU = 4, 2, 2, 12, 4
@@ -20,7 +20,13 @@ N, M, P, HP, HU = 4, 2, 2, 12, 4
 def small_design(rng, *, n=N, m=M, p=P, hp=HP, hu=HU, radius=0.9):
     a, b, c = random_plant(rng, n, m, p, radius=radius)
     design = design_controller(
-        a, b, c, output_weight=rng.uniform(0.5, 2.0, p), move_weight=rng.uniform(0.05, 0.5, m), prediction=hp, control=hu
+        a,
+        b,
+        c,
+        output_weight=rng.uniform(0.5, 2.0, p),
+        move_weight=rng.uniform(0.05, 0.5, m),
+        prediction=hp,
+        control=hu,
     )
     return a, b, c, design
 
@@ -117,7 +123,7 @@ def test_solution_agrees_with_scipy_trust_constr(seed):
 
 def test_unconstrained_optimum_when_the_limits_are_wide(rng):
     # Design notes: without active limits the QP's minimizer is H^-1 G'QE, whose first move is
-    # Kh E (service.solver.gain); the QP must not be a different controller.
+    # Kh E (service.solver.design.gain); the QP must not be a different controller.
     _, _, _, design = small_design(rng)
     limits = make_limits(M, P, input_min=-1e6, input_max=1e6, move_max=1e6, output_min=-1e6, output_max=1e6)
     qp = MoveQP.from_design(design, limits)
@@ -172,7 +178,9 @@ def test_limits_hold_at_every_step(rng):
     # Inputs and moves within their hard limits at every step; each controlled output within
     # its soft limits plus the slack the QP reported one step earlier (with the state known and
     # no mismatch the one-step prediction is exact).
-    limits = make_limits(M, P, input_min=[-1.0, -0.8], input_max=[1.0, 0.8], move_max=[0.3, 0.2], output_max=[3.0, np.nan])
+    limits = make_limits(
+        M, P, input_min=[-1.0, -0.8], input_max=[1.0, 0.8], move_max=[0.3, 0.2], output_max=[3.0, np.nan]
+    )
     design, sim, policy = saturating_run(rng, limits, steps=50)
     violation = limit_violations(limits, inputs=sim.inputs, previous_input=sim.initial_input)
     assert violation.input.max() <= 1e-9 and violation.move.max() <= 1e-9
@@ -187,7 +195,7 @@ def test_limits_hold_at_every_step(rng):
 
 def test_wide_limits_give_the_unconstrained_trajectory(rng):
     # The fixed gain is the special case: limits that never bind give the same run as
-    # UnconstrainedPolicy (service.solver.simulation), to rounding.
+    # UnconstrainedPolicy (service.solver.evaluation.simulation), to rounding.
     a, b, c, design = small_design(rng)
     estimator = design_estimator(a, b, c, kind="output_disturbance")
     scenario = Scenario(
@@ -212,7 +220,7 @@ def test_exact_penalty_gives_the_hard_solution_above_the_multiplier_sum(rng):
     # problem has the hard one's solution; below it, it does not.  The hard problem's multipliers
     # come from the same solver, checked by the KKT test above.
     _, _, _, design = small_design(rng)
-    base = dict(input_min=-3.0, input_max=3.0, output_max=[0.5, np.nan])
+    base = {"input_min": -3.0, "input_max": 3.0, "output_max": [0.5, np.nan]}
     hard_qp = MoveQP.from_design(design, make_limits(M, P, **base), hard_outputs=True)
     pred = design.prediction
     free = np.zeros(pred.penalized_steps * P)
@@ -281,8 +289,12 @@ def test_warm_start_finds_the_cold_solution(rng, warm_start):
     limits = make_limits(M, P, input_min=-1.0, input_max=1.0, move_max=0.3, output_max=[2.0, 2.0])
     estimator = design_estimator(a, b, c, kind="full_state")
     scenario = Scenario(steps=40, setpoint_changes=[Event(0, np.array([4.0, -3.0])), Event(20, np.array([-2.0, 1.0]))])
-    warm = simulate_loop(design, estimator, scenario, policy=ConstrainedPolicy.from_design(design, limits, warm_start=warm_start))
-    cold = simulate_loop(design, estimator, scenario, policy=ConstrainedPolicy.from_design(design, limits, warm_start="none"))
+    warm = simulate_loop(
+        design, estimator, scenario, policy=ConstrainedPolicy.from_design(design, limits, warm_start=warm_start)
+    )
+    cold = simulate_loop(
+        design, estimator, scenario, policy=ConstrainedPolicy.from_design(design, limits, warm_start="none")
+    )
     np.testing.assert_allclose(warm.inputs, cold.inputs, atol=1e-9)
 
 

@@ -5,14 +5,14 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.optimize
+from service.solver.estimation.estimator import design_estimator
+from service.solver.estimation.target import steady_state_target, target_problem
 
-from service.solver.constrained import ConstrainedPolicy
-from service.solver.design import design_controller
-from service.solver.estimation import design_estimator
-from service.solver.limits import make_limits
-from service.solver.reachable_target import ReachableTargetProblem, reachable_target
-from service.solver.simulation import Event, Scenario, simulate_loop
-from service.solver.target import steady_state_target, target_problem
+from service.solver.design.controller import design_controller
+from service.solver.evaluation.simulation import Event, Scenario, simulate_loop
+from service.solver.limits.bounds import make_limits
+from service.solver.limits.policy import ConstrainedPolicy
+from service.solver.limits.reachable_target import ReachableTargetProblem, reachable_target
 from tests.conftest import random_plant
 
 
@@ -47,7 +47,7 @@ def test_square_plant_matches_bounded_least_squares(seed):
 
 
 def test_limits_out_of_the_way_give_the_unconstrained_target(rng):
-    # Where the limits do not bind, the answer is service.solver.target's own (least-norm) target.
+    # Where the limits do not bind, the answer is service.solver.estimation.target's own (least-norm) target.
     a, b, c = random_plant(rng, 3, 2, 2, radius=0.7)
     problem = target_problem(a, b, c)
     r = np.array([0.1, -0.2])
@@ -84,7 +84,7 @@ def test_more_inputs_than_outputs_takes_the_least_norm_best_fit(rng):
         norm2,
         fit.x,
         method="SLSQP",
-        bounds=list(zip(low, high)),
+        bounds=list(zip(low, high, strict=False)),
         constraints=[{"type": "eq", "fun": lambda u: k @ u - k @ fit.x}],
         options={"ftol": 1e-14, "maxiter": 500},
     )

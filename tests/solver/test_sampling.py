@@ -7,7 +7,7 @@ import pytest
 import scipy.signal
 
 from service.errors import NumericalError
-from service.solver.sampling import hold_integrals, sample_zero_order_hold
+from service.solver.models.sampling import hold_integrals, sample_zero_order_hold
 
 
 @pytest.mark.parametrize("seed", range(6))
@@ -21,9 +21,7 @@ def test_sampling_equals_scipy_cont2discrete_on_random_systems(seed: int) -> Non
     c = rng.normal(size=(p, n))
     ts = float(rng.uniform(0.05, 2.0))
     ours = sample_zero_order_hold(a, b, sample_time=ts, b_disturbance=bd)
-    ad, bdd, _, _, _ = scipy.signal.cont2discrete(
-        (a, np.hstack([b, bd]), c, np.zeros((p, m + md))), ts, method="zoh"
-    )
+    ad, bdd, _, _, _ = scipy.signal.cont2discrete((a, np.hstack([b, bd]), c, np.zeros((p, m + md))), ts, method="zoh")
     np.testing.assert_allclose(ours.a, ad, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(ours.b, bdd[:, :m], rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(ours.b_disturbance, bdd[:, m:], rtol=1e-12, atol=1e-12)

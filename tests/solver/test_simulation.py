@@ -13,12 +13,19 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from service.solver.estimation.estimator import design_estimator
+from service.solver.estimation.loop import control_loop, whole_loop
 
-from service.solver.design import design_controller
-from service.solver.estimation import design_estimator
-from service.solver.gain import optimal_moves
-from service.solver.loop import control_loop, whole_loop
-from service.solver.simulation import Event, PolicyStep, Scenario, TruePlant, UnconstrainedPolicy, simulate_loop
+from service.solver.design.controller import design_controller
+from service.solver.design.gain import optimal_moves
+from service.solver.evaluation.simulation import (
+    Event,
+    PolicyStep,
+    Scenario,
+    TruePlant,
+    UnconstrainedPolicy,
+    simulate_loop,
+)
 from tests.conftest import random_plant
 
 # An invented two-by-two process (not from any publication): two coupled first-order lags.
@@ -31,7 +38,7 @@ B_TRUE = np.array([[0.12, 0.03], [0.025, 0.24]])
 
 
 def _design(a=A, b=B, c=C, **kw):
-    options = dict(output_weight=[1.0, 1.0], move_weight=[0.1, 0.1], prediction=20, control=3)
+    options = {"output_weight": [1.0, 1.0], "move_weight": [0.1, 0.1], "prediction": 20, "control": 3}
     options.update(kw)
     return design_controller(a, b, c, **options)
 
@@ -53,8 +60,13 @@ def _scenario(steps=600, **kw):
 
 def test_full_state_without_mismatch_applies_the_design_gains(rng):
     d = _design()
-    scenario = _scenario(steps=300, noise_std=np.array([0.05, 0.05]), seed=3,
-                         initial_state=np.array([0.2, -0.1]), initial_input=np.array([0.05, 0.0]))
+    scenario = _scenario(
+        steps=300,
+        noise_std=np.array([0.05, 0.05]),
+        seed=3,
+        initial_state=np.array([0.2, -0.1]),
+        initial_input=np.array([0.05, 0.0]),
+    )
     sim = simulate_loop(d, design_estimator(A, B, C, kind="full_state"), scenario)
     # The loop by hand with du = Kr r - Kx x - Ku u(k-1), input disturbances in the plant.
     kr, kx, ku = d.gain.setpoint, d.gain.state, d.gain.previous_input
@@ -93,10 +105,24 @@ def test_events_hold_from_their_step_and_replace_the_previous_level():
     [
         ("output_disturbance", {}),
         ("input_disturbance", {}),
-        ("kalman", dict(disturbance="output", process_noise=[0.1, 0.1], disturbance_noise=[0.5, 0.5],
-                        measurement_noise=[0.2, 0.2])),
-        ("kalman", dict(disturbance="input", process_noise=[0.1, 0.1], disturbance_noise=[0.5, 0.5],
-                        measurement_noise=[0.2, 0.2])),
+        (
+            "kalman",
+            {
+                "disturbance": "output",
+                "process_noise": [0.1, 0.1],
+                "disturbance_noise": [0.5, 0.5],
+                "measurement_noise": [0.2, 0.2],
+            },
+        ),
+        (
+            "kalman",
+            {
+                "disturbance": "input",
+                "process_noise": [0.1, 0.1],
+                "disturbance_noise": [0.5, 0.5],
+                "measurement_noise": [0.2, 0.2],
+            },
+        ),
     ],
 )
 def test_disturbance_models_remove_the_offset_under_mismatch(kind, options):
@@ -110,13 +136,14 @@ def test_disturbance_models_remove_the_offset_under_mismatch(kind, options):
     np.testing.assert_allclose(sim.targets[-1], sim.setpoints[-1], atol=1e-12)
 
 
-@pytest.mark.parametrize("kind, options", [("full_state", {}), ("kalman", dict(disturbance="none"))])
+@pytest.mark.parametrize("kind, options", [("full_state", {}), ("kalman", {"disturbance": "none"})])
 def test_without_a_disturbance_model_mismatch_leaves_an_offset(kind, options):
     # The classic steady-state offset of a model-based loop without disturbance estimation
     # (common practice): the estimate is consistent with the model, not with the plant.
     d = _design()
-    sim = simulate_loop(d, design_estimator(A, B, C, kind=kind, **options), _scenario(steps=900),
-                        plant=TruePlant(A_TRUE, B_TRUE, C))
+    sim = simulate_loop(
+        d, design_estimator(A, B, C, kind=kind, **options), _scenario(steps=900), plant=TruePlant(A_TRUE, B_TRUE, C)
+    )
     assert sim.diverged_at is None
     tail = sim.outputs[-50:] - sim.setpoints[-50:]
     assert np.ptp(tail, axis=0).max() < 1e-6  # settled ...
@@ -136,8 +163,11 @@ def test_the_response_decays_at_the_design_s_dominant_closed_loop_pole():
     d = design_controller(a, b, c, output_weight=[1.0], move_weight=[1.0], prediction=10, control=1)
     lam = _dominant_real(d.loop.poles)
     second = float(np.sort(np.abs(d.loop.poles))[0])
-    sim = simulate_loop(d, design_estimator(a, b, c, kind="full_state"),
-                        Scenario(steps=80, setpoint_changes=[Event(0, np.array([1.0]))]))
+    sim = simulate_loop(
+        d,
+        design_estimator(a, b, c, kind="full_state"),
+        Scenario(steps=80, setpoint_changes=[Event(0, np.array([1.0]))]),
+    )
     e = sim.setpoints[:, 0] - sim.outputs[:, 0]
     k = 40  # (second/lam)^40 is about 1e-12 here
     assert (second / lam) ** k < 1e-10
@@ -149,8 +179,9 @@ def test_an_output_disturbance_decays_at_the_whole_loop_s_dominant_pole():
     # pole of the whole loop (controller and estimator), here the estimator's.
     a, b, c = [[0.9]], [[0.1]], [[1.0]]
     d = design_controller(a, b, c, output_weight=[1.0], move_weight=[1.0], prediction=10, control=1)
-    est = design_estimator(a, b, c, kind="kalman", process_noise=[1.0], disturbance_noise=[0.01],
-                           measurement_noise=[1.0])
+    est = design_estimator(
+        a, b, c, kind="kalman", process_noise=[1.0], disturbance_noise=[0.01], measurement_noise=[1.0]
+    )
     loop = whole_loop(control_loop(d, est))
     lam = _dominant_real(loop.poles)
     assert np.isclose(lam, _dominant_real(est.poles))  # the slow mode is the estimator's
@@ -184,8 +215,7 @@ def test_whole_loop_matrix_reproduces_the_simulated_run(rng):
     est = design_estimator(a, b, c, kind="input_disturbance")
     loop = whole_loop(control_loop(d, est))
     x0, u0 = rng.normal(size=3), rng.normal(size=2)
-    sim = simulate_loop(d, est, Scenario(steps=30, initial_state=x0, initial_input=u0,
-                                         initial_setpoint=np.zeros(2)))
+    sim = simulate_loop(d, est, Scenario(steps=30, initial_state=x0, initial_input=u0, initial_setpoint=np.zeros(2)))
     z = np.concatenate([x0, x0, np.zeros(2), u0])
     for k in range(30):
         z = loop.matrix @ z
@@ -228,8 +258,9 @@ def test_a_policy_plugs_in_and_its_reports_are_kept():
     est = design_estimator(A, B, C)
     policy = _RecordingPolicy(d)
     sim = simulate_loop(d, est, _scenario(steps=200), plant=TruePlant(A_TRUE, B_TRUE, C), policy=policy)
-    plain = simulate_loop(d, est, _scenario(steps=200), plant=TruePlant(A_TRUE, B_TRUE, C),
-                          policy=UnconstrainedPolicy(d.gain.horizon))
+    plain = simulate_loop(
+        d, est, _scenario(steps=200), plant=TruePlant(A_TRUE, B_TRUE, C), policy=UnconstrainedPolicy(d.gain.horizon)
+    )
     # dU* = H^-1 G'Q E solved afresh equals Kh E: same run
     np.testing.assert_allclose(sim.inputs, plain.inputs, atol=1e-10)
     assert [c[3] for c in policy.calls] == list(range(200))
@@ -244,10 +275,14 @@ def test_a_blown_up_run_stops_cleanly_and_says_where():
     # Reversing the plant's gain makes the loop unstable; no floating-point warning may
     # escape (pytest turns warnings into errors here).
     d = _design()
-    sim = simulate_loop(d, design_estimator(A, B, C, kind="full_state"), Scenario(
-        steps=100000, setpoint_changes=[Event(0, np.array([1.0, 1.0]))]), plant=TruePlant(A, -3.0 * B, C))
+    sim = simulate_loop(
+        d,
+        design_estimator(A, B, C, kind="full_state"),
+        Scenario(steps=100000, setpoint_changes=[Event(0, np.array([1.0, 1.0]))]),
+        plant=TruePlant(A, -3.0 * B, C),
+    )
     assert sim.diverged_at is not None and 0 < sim.diverged_at < 100000
-    assert np.all(np.isnan(sim.inputs[sim.diverged_at:]))
+    assert np.all(np.isnan(sim.inputs[sim.diverged_at :]))
     assert np.all(np.isfinite(sim.inputs[: sim.diverged_at]))
     assert len(sim.reports) == 100000
 
@@ -261,8 +296,11 @@ def test_with_fewer_inputs_than_outputs_the_loop_settles_on_the_nearest_reachabl
     q = np.array([1.0, 3.0])
     d = design_controller(a, b, c, output_weight=q, move_weight=[0.3], prediction=12, control=2)
     r, dist = np.array([1.0, 0.5]), np.array([0.5, -0.2])
-    sim = simulate_loop(d, design_estimator(a, b, c), Scenario(
-        steps=800, setpoint_changes=[Event(3, r)], output_disturbances=[Event(100, dist)]))
+    sim = simulate_loop(
+        d,
+        design_estimator(a, b, c),
+        Scenario(steps=800, setpoint_changes=[Event(3, r)], output_disturbances=[Event(100, dist)]),
+    )
     g0 = c @ np.linalg.solve(np.eye(3) - a, b)
     w = np.sqrt(q)[:, None]
     u_star = np.linalg.lstsq(w * g0, (w * (r - dist)[:, None]).ravel(), rcond=None)[0]

@@ -11,11 +11,11 @@ event at or before step k") written out naively.
 from __future__ import annotations
 
 import numpy as np
+from service.solver.estimation.estimator import design_estimator
 
-from service.solver.design import design_controller
-from service.solver.estimation import design_estimator
-from service.solver.feedforward import disturbance_free_response, feedforward_gain
-from service.solver.simulation import Event, Scenario, TruePlant, simulate_loop
+from service.solver.design.controller import design_controller
+from service.solver.design.feedforward import disturbance_free_response, feedforward_gain
+from service.solver.evaluation.simulation import Event, Scenario, TruePlant, simulate_loop
 
 # An invented two-by-two process with one measured disturbance (not from any publication).
 A = np.array([[0.9, 0.05], [0.0, 0.8]])
@@ -54,8 +54,11 @@ def test_feed_forward_with_an_estimator_under_mismatch_stays_offset_free():
     d = _design()
     est = design_estimator(A, B, C, kind="output_disturbance")
     true = TruePlant(A * 1.02, B * 1.2, C, BD * 1.5)
-    scenario = Scenario(steps=600, setpoint_changes=[Event(5, np.array([1.0, -0.5]))],
-                        measured_disturbances=[Event(200, np.array([3.0]))])
+    scenario = Scenario(
+        steps=600,
+        setpoint_changes=[Event(5, np.array([1.0, -0.5]))],
+        measured_disturbances=[Event(200, np.array([3.0]))],
+    )
     sim = simulate_loop(d, est, scenario, plant=true, b_disturbance=BD)
     assert sim.diverged_at is None
     assert np.abs(sim.outputs[-1] - sim.setpoints[-1]).max() < 1e-6
@@ -76,8 +79,11 @@ def test_a_true_plant_with_one_more_sample_of_dead_time_is_still_offset_free():
     bt = np.vstack([np.zeros((2, 2)), np.eye(2)])
     ct = np.hstack([C, np.zeros((2, 2))])
     d = _design()
-    scenario = Scenario(steps=800, setpoint_changes=[Event(5, np.array([1.0, -0.5]))],
-                        output_disturbances=[Event(300, np.array([0.2, 0.1]))])
+    scenario = Scenario(
+        steps=800,
+        setpoint_changes=[Event(5, np.array([1.0, -0.5]))],
+        output_disturbances=[Event(300, np.array([0.2, 0.1]))],
+    )
     sim = simulate_loop(d, design_estimator(A, B, C), scenario, plant=TruePlant(at, bt, ct))
     assert sim.diverged_at is None and sim.states.shape == (800, nt)
     assert np.abs(sim.outputs[-1] - sim.setpoints[-1]).max() < 1e-6

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from service.solver.spectrum import extreme_eigenvalues
+from service.solver.design.spectrum import extreme_eigenvalues
 
 
 @pytest.mark.parametrize("spread", [1e2, 1e9])

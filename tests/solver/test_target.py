@@ -9,8 +9,8 @@ with ``numpy.linalg.solve`` (equality-constrained least squares, common practice
 from __future__ import annotations
 
 import numpy as np
+from service.solver.estimation.target import steady_state_target, target_problem
 
-from service.solver.target import steady_state_target, target_problem
 from tests.conftest import random_plant
 
 
@@ -66,8 +66,9 @@ def test_fewer_inputs_than_outputs_gives_the_weighted_nearest_steady_state(rng):
     assert not t.reachable
     np.testing.assert_allclose(t.offset, t.output - r)
     # the maps give the same outputs: z_s = Z_r r + Z_d d
-    np.testing.assert_allclose(problem.output_setpoint_map @ r + problem.output_disturbance_map @ d, t.output,
-                               atol=1e-12)
+    np.testing.assert_allclose(
+        problem.output_setpoint_map @ r + problem.output_disturbance_map @ d, t.output, atol=1e-12
+    )
 
 
 def test_integrating_plant_target_with_an_input_disturbance():

@@ -7,8 +7,8 @@ import pytest
 import scipy.linalg
 
 from service.errors import NumericalError
-from service.solver.design import design_controller
-from service.solver.terminal import incremental_system, terminal_prediction
+from service.solver.design.controller import design_controller
+from service.solver.design.terminal import incremental_system, terminal_prediction
 from tests.conftest import random_plant
 
 
@@ -35,8 +35,14 @@ def test_terminal_weight_gives_the_lqr_gain_for_any_horizon(rng, horizon):
     q, r = np.diag([1.0, 3.0]), np.diag([0.2, 0.05])
     lqr, ai, bi = lqr_on_increments(a, b, c, q, r)
     d = design_controller(
-        a, b, c, output_weight=[1.0, 3.0], move_weight=[0.2, 0.05],
-        prediction=horizon, control=horizon, terminal="riccati",
+        a,
+        b,
+        c,
+        output_weight=[1.0, 3.0],
+        move_weight=[0.2, 0.05],
+        prediction=horizon,
+        control=horizon,
+        terminal="riccati",
     )
     np.testing.assert_allclose(np.hstack([d.gain.state, d.gain.previous_input]), lqr, atol=1e-10)
     np.testing.assert_allclose(d.terminal.lqr_gain, lqr, atol=1e-10)
@@ -86,7 +92,9 @@ def test_terminal_design_is_offset_free_at_a_reachable_setpoint(rng):
     # At the steady state [x_s; u_s] of a setpoint (x_s = A x_s + B u_s, C x_s = r) the law
     # du = Kr r - Kx x_s - Ku u_s must not move (the definition of a steady state).
     a, b, c = random_plant(rng, 4, 2, 2)
-    d = design_controller(a, b, c, output_weight=[1.0, 1.0], move_weight=[1.0, 1.0], prediction=5, control=3, terminal="riccati")
+    d = design_controller(
+        a, b, c, output_weight=[1.0, 1.0], move_weight=[1.0, 1.0], prediction=5, control=3, terminal="riccati"
+    )
     r = np.array([1.5, -0.5])
     steady = np.linalg.solve(np.block([[np.eye(4) - a, -b], [c, np.zeros((2, 2))]]), np.r_[np.zeros(4), r])
     du = d.gain.setpoint @ r - d.gain.state @ steady[:4] - d.gain.previous_input @ steady[4:]
@@ -96,7 +104,7 @@ def test_terminal_design_is_offset_free_at_a_reachable_setpoint(rng):
 def test_terminal_none_is_the_default_and_changes_nothing(rng):
     # The option must leave today's behaviour exactly as it was.
     a, b, c = random_plant(rng, 3, 2, 2)
-    kwargs = dict(output_weight=[1.0, 2.0], move_weight=[0.1, 0.1], prediction=6, control=3)
+    kwargs = {"output_weight": [1.0, 2.0], "move_weight": [0.1, 0.1], "prediction": 6, "control": 3}
     plain = design_controller(a, b, c, **kwargs)
     none = design_controller(a, b, c, terminal="none", **kwargs)
     assert np.array_equal(plain.gain.state, none.gain.state)
@@ -109,8 +117,16 @@ def test_more_inputs_than_outputs_has_no_stabilizing_terminal_weight():
     # unit circle that no output sees, so the Riccati equation has no stabilizing solution
     # (existence condition of the stabilizing solution, standard LQ theory).
     with pytest.raises(NumericalError) as info:
-        design_controller([[0.5]], [[1.0, 1.0]], [[1.0]], output_weight=[1.0], move_weight=[1.0, 1.0],
-                          prediction=3, control=3, terminal="riccati")
+        design_controller(
+            [[0.5]],
+            [[1.0, 1.0]],
+            [[1.0]],
+            output_weight=[1.0],
+            move_weight=[1.0, 1.0],
+            prediction=3,
+            control=3,
+            terminal="riccati",
+        )
     assert info.value.pointer == "/weights/terminal"
     assert "z = 1" in info.value.detail
 
@@ -118,8 +134,16 @@ def test_more_inputs_than_outputs_has_no_stabilizing_terminal_weight():
 def test_uncontrollable_integrator_has_no_stabilizing_terminal_weight():
     # An integrating state the input cannot reach is not stabilizable (PBH test).
     with pytest.raises(NumericalError) as info:
-        design_controller(np.diag([0.5, 1.0]), [[1.0], [0.0]], [[1.0, 1.0]], output_weight=[1.0],
-                          move_weight=[1.0], prediction=3, control=3, terminal="riccati")
+        design_controller(
+            np.diag([0.5, 1.0]),
+            [[1.0], [0.0]],
+            [[1.0, 1.0]],
+            output_weight=[1.0],
+            move_weight=[1.0],
+            prediction=3,
+            control=3,
+            terminal="riccati",
+        )
     assert info.value.pointer == "/weights/terminal"
     assert "cannot be moved" in info.value.detail
 
@@ -127,12 +151,21 @@ def test_uncontrollable_integrator_has_no_stabilizing_terminal_weight():
 def test_whole_move_sequence_with_the_terminal_term_starts_with_the_gain_move(rng):
     # Receding horizon (the design notes): the first m entries of H^-1 (G'Q E + Gamma'P(xi_s -
     # Phi xi)) are the fixed law's move Kr r - Kx x - Ku u(k-1), here with blocking as well.
-    from service.solver.gain import optimal_moves
-    from service.solver.terminal import terminal_gradient
+    from service.solver.design.gain import optimal_moves
+    from service.solver.design.terminal import terminal_gradient
 
     a, b, c = random_plant(rng, 3, 2, 2)
-    d = design_controller(a, b, c, output_weight=[1.0, 2.0], move_weight=[0.2, 0.3], prediction=7, control=4,
-                          terminal="riccati", blocking=[0, 1, 3])
+    d = design_controller(
+        a,
+        b,
+        c,
+        output_weight=[1.0, 2.0],
+        move_weight=[0.2, 0.3],
+        prediction=7,
+        control=4,
+        terminal="riccati",
+        blocking=[0, 1, 3],
+    )
     x, u, r = rng.normal(size=3), rng.normal(size=2), rng.normal(size=2)
     pred = d.prediction
     error = np.tile(r, pred.penalized_steps) - pred.free_state @ x - pred.free_input @ u

@@ -9,7 +9,7 @@ import pytest
 import scipy.signal
 
 from service.errors import NumericalError
-from service.solver.transfer import (
+from service.solver.models.transfer import (
     STIFFNESS_LIMIT,
     SampledTransferModel,
     TransferElement,
@@ -119,7 +119,7 @@ def test_first_order_element_has_the_handbook_pole_and_gain() -> None:
 
 def test_delayed_first_order_matches_the_modified_z_transform() -> None:
     # Modified z-transform of K e^(-theta s)/(tau s + 1), theta = (d + f) Ts (standard table
-    # result, recalled from memory and re-derived in service.solver.transfer):
+    # result, recalled from memory and re-derived in service.solver.models.transfer):
     #   G(z) = K z^(-d-1) (b0 z + b1) / (z - a),  a = e^(-Ts/tau),
     #   b0 = 1 - e^(-(1-f) Ts/tau),  b1 = e^(-(1-f) Ts/tau) - e^(-Ts/tau).
     # Reference simulation: scipy.signal.dimpulse of that transfer function.
@@ -285,18 +285,14 @@ def test_fast_lags_within_the_stiffness_limit_sample_accurately(ratio: float) ->
     # First-order plus a fast lag and lead; compared with the analytic step (table pairs).
     el = E(1.5, (1.0 / ratio, 2.0), 0.5, lead=0.7)
     model = transfer_matrix_model([[el]], sample_time=1.0)
-    np.testing.assert_allclose(
-        simulate_step(model, 0, 20)[:, 0], analytic_step(el, np.arange(21.0)), rtol=0, atol=1e-7
-    )
+    np.testing.assert_allclose(simulate_step(model, 0, 20)[:, 0], analytic_step(el, np.arange(21.0)), rtol=0, atol=1e-7)
 
 
 def test_lag_too_fast_for_the_sample_time_is_a_numerical_error_naming_the_element() -> None:
     el = E(1.0, (1e-12,), 0.5)
     assert stiffness_ratio(el, 1.0) > STIFFNESS_LIMIT
     with pytest.raises(NumericalError) as caught:
-        transfer_matrix_model(
-            [[E(1.0, (1.0,))]], sample_time=1.0, disturbance_elements=[[None, el]]
-        )
+        transfer_matrix_model([[E(1.0, (1.0,))]], sample_time=1.0, disturbance_elements=[[None, el]])
     assert caught.value.pointer == "/model/disturbance_elements/0/1"
 
 
@@ -320,9 +316,7 @@ def test_integrating_elements_of_a_row_share_one_integrator_and_stay_exact() -> 
     # rows have a delay-free element, so nothing moves to the outputs; the registers are
     # u1: 1, u2: 0, d1: 2, d2: 1 = 4 cells.  Two lags, one integrator per row: 4 + 2 + 2 = 8
     # states (an integrator per integrating element would take 4 + 2 + 5 = 11).
-    assert model.state_count == transfer_state_count(
-        LEVELS, sample_time=ts, disturbance_elements=LEVEL_INFLOWS
-    ) == 8
+    assert model.state_count == transfer_state_count(LEVELS, sample_time=ts, disturbance_elements=LEVEL_INFLOWS) == 8
     assert model.input_delays == (1, 0, 2, 1) and model.output_delays == (0, 0)
     integrators = [s for s in model.states if s.kind == "output_integrator"]
     assert [s.describe() for s in integrators] == ["integrator of y1", "integrator of y2"]

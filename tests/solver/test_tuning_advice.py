@@ -6,14 +6,12 @@ import numpy as np
 import pytest
 import scipy.optimize
 import scipy.signal
+from service.solver.estimation.estimator import design_estimator
+from service.solver.estimation.realization import StateSpace, plant_system
 
-from service.solver.analysis import Diagnostic, design_warnings
-from service.solver.design import design_controller
-from service.solver.estimation import design_estimator
-from service.solver.frequency import design_frequency_analysis, frequency_analysis
-from service.solver.realization import StateSpace, plant_system
-from service.solver.sampling import sample_zero_order_hold
-from service.solver.tuning_advice import (
+from service.solver.design.closed_loop import Diagnostic, design_warnings
+from service.solver.design.controller import design_controller
+from service.solver.evaluation.advice import (
     hessian_advice,
     inverse_response_time,
     merge_warnings,
@@ -23,6 +21,8 @@ from service.solver.tuning_advice import (
     transmission_zeros,
     tuning_advice,
 )
+from service.solver.evaluation.frequency import design_frequency_analysis, frequency_analysis
+from service.solver.models.sampling import sample_zero_order_hold
 
 # Two inputs acting almost alike on two outputs: G'QG is nearly singular, so with tiny move
 # weights the Hessian is ill-conditioned (invented example).
@@ -31,7 +31,9 @@ TWIN = (np.diag([0.9, 0.8]), np.array([[1.0, 1.001], [1.0, 0.999]]), np.eye(2))
 
 def twin_design(move: float, control: int):
     a, b, c = TWIN
-    return design_controller(a, b, c, output_weight=[1.0, 1.0], move_weight=[move, move], prediction=20, control=control)
+    return design_controller(
+        a, b, c, output_weight=[1.0, 1.0], move_weight=[move, move], prediction=20, control=control
+    )
 
 
 def inverse_response_plant(ts: float = 0.1):
@@ -226,16 +228,20 @@ def test_every_check_reports_in_the_fixed_order():
 def test_shortcut_condition_numbers_equal_full_redesigns(rng):
     # The advice's shortcut (H + (s-1) blockdiag(R), leading block for a shorter Hu) must give
     # what a separate design gives; the reference is design_controller itself.
-    from service.solver.design import design_controller
-    from service.solver.tuning_advice import _condition_number
+    from service.solver.design.controller import design_controller
+    from service.solver.evaluation.advice import _condition_number
 
     n, m, p = 4, 2, 2
     a = rng.normal(size=(n, n))
     a *= 0.9 / max(abs(np.linalg.eigvals(a)))
     b, c = rng.normal(size=(n, m)), rng.normal(size=(p, n))
-    base = dict(output_weight=[1.0, 2.0], move_weight=[0.1, 0.3], prediction=20)
+    base = {"output_weight": [1.0, 2.0], "move_weight": [0.1, 0.3], "prediction": 20}
     d = design_controller(a, b, c, control=6, **base)
     heavier = design_controller(a, b, c, control=6, **{**base, "move_weight": [1.0, 3.0]})
     shorter = design_controller(a, b, c, control=3, **base)
-    assert _condition_number(a, b, c, d, move_scale=10.0, control=6) == pytest.approx(heavier.hessian.condition_number, rel=1e-9)
-    assert _condition_number(a, b, c, d, move_scale=1.0, control=3) == pytest.approx(shorter.hessian.condition_number, rel=1e-9)
+    assert _condition_number(a, b, c, d, move_scale=10.0, control=6) == pytest.approx(
+        heavier.hessian.condition_number, rel=1e-9
+    )
+    assert _condition_number(a, b, c, d, move_scale=1.0, control=3) == pytest.approx(
+        shorter.hessian.condition_number, rel=1e-9
+    )

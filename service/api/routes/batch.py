@@ -21,12 +21,12 @@ from service.api.deps import SettingsDep
 from service.api.metrics import count_rejection, observe_design
 from service.api.problems import PROBLEM_JSON, problem_body, validation_problems
 from service.errors import FieldProblem, InvalidRequest, NumericalError
+from service.pipeline.design import run_design
+from service.pipeline.examples import load_example
+from service.pipeline.fingerprint import fingerprint
 from service.schemas.batch import BatchItem, BatchItemResult, BatchRequest, BatchResponse
 from service.schemas.common import Caps, pointer
 from service.schemas.design import DesignRequest
-from service.schemas.design_convert import run_design
-from service.schemas.examples import load_example
-from service.schemas.fingerprint import fingerprint
 
 __all__ = ["router"]
 
@@ -89,7 +89,9 @@ def _answer(index: int, item: BatchItem, caps: Caps, budget: Budget) -> BatchIte
         )
     except SolverCrashed:
         log.exception("solver failure on batch item %d", index)
-        return _failed(item, "internal-error", 500, "The service failed to design this item; the error is logged.", fp=fp)
+        return _failed(
+            item, "internal-error", 500, "The service failed to design this item; the error is logged.", fp=fp
+        )
     observe_design(response)
     return BatchItemResult(id=item.id, status="designed", fingerprint=fp, result=response, problem=None)
 
@@ -123,7 +125,9 @@ def design_batch(
     for index, item in enumerate(batch.items):
         if item.id in seen:
             problems.append(
-                FieldProblem(pointer("items", index, "id"), f"the id {item.id!r} is already used by item {seen[item.id]}")
+                FieldProblem(
+                    pointer("items", index, "id"), f"the id {item.id!r} is already used by item {seen[item.id]}"
+                )
             )
         seen.setdefault(item.id, index)
     if problems:

@@ -10,9 +10,9 @@ from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
 from service.api.metrics import observe_design
 from service.api.problems import PROBLEM_JSON
+from service.pipeline.design import run_design
+from service.pipeline.examples import load_example
 from service.schemas.design import DesignRequest, DesignResponse
-from service.schemas.design_convert import run_design
-from service.schemas.examples import load_example
 
 __all__ = ["router"]
 

@@ -22,6 +22,4 @@ def healthz() -> dict[str, str]:
 def readyz(request: Request) -> JSONResponse:
     """Readiness: 200 while the service accepts work, 503 while starting or shutting down."""
     ready = bool(getattr(request.app.state, "ready", False))
-    return JSONResponse(
-        {"status": "ready" if ready else "not_ready"}, status_code=200 if ready else 503
-    )
+    return JSONResponse({"status": "ready" if ready else "not_ready"}, status_code=200 if ready else 503)

@@ -10,9 +10,9 @@ from fastapi.responses import Response
 from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
 from service.api.problems import PROBLEM_JSON
-from service.schemas.examples import load_example
+from service.pipeline.examples import load_example
+from service.pipeline.simulate import run_simulation, simulation_csv
 from service.schemas.simulate import SimulateRequest, SimulateResponse
-from service.schemas.simulate_convert import run_simulation, simulation_csv
 
 __all__ = ["CSV", "prefers_csv", "router"]
 

@@ -9,9 +9,9 @@ from fastapi import APIRouter, Body
 from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
 from service.api.routes.design import PROBLEMS
-from service.schemas.examples import load_example
+from service.pipeline.examples import load_example
+from service.pipeline.sweep import run_sweep
 from service.schemas.sweep import SweepRequest, SweepResponse
-from service.schemas.sweep_convert import run_sweep
 
 __all__ = ["router"]
 

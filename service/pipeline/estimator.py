@@ -1,0 +1,180 @@
+"""The estimator of a request: its checks, and the solver's estimator on the scaled plant.
+
+Shared by /design (the robustness analysis) and /simulate, so that both build the very same
+estimator from the same request: :func:`check_estimator` turns an
+:class:`~service.schemas.estimator.EstimatorRequest` into :class:`EstimatorInputs` (collecting
+one FieldProblem per broken rule) and :func:`scaled_estimator` designs it on the plant in
+scaled signals, the plant the design uses (``service.solver.models.scaling``).
+
+Units.  Covariances are given in engineering units squared; those of the disturbances and
+of the measurement noise are scaled with the model's spans (``S^-1 V S^-1``).  The state is
+never scaled, so the process-noise covariance goes in as given.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from service.errors import FieldProblem, NumericalError
+from service.pipeline.plant import DiscretePlant
+from service.schemas.common import check_weight, pointer
+from service.schemas.estimator import EstimatorRequest
+from service.solver.estimation.estimator import Estimator, design_estimator
+from service.solver.models.scaling import ScaledPlant
+
+__all__ = ["EstimatorInputs", "check_estimator", "scaled_covariance", "scaled_estimator"]
+
+#: The disturbance model each kind but kalman implies.
+_IMPLIED = {"full_state": "none", "output_disturbance": "output", "input_disturbance": "input"}
+
+
+@dataclass(frozen=True)
+class EstimatorInputs:
+    """An estimator request after its checks, in engineering units.
+
+    Attributes
+    ----------
+    kind, disturbance : str
+        Estimator kind and its disturbance model (``"output"``, ``"input"``, ``"none"``).
+    process_noise, disturbance_noise, measurement_noise : ndarray or None
+        Covariances as given (diagonal ``(k,)`` or full ``(k, k)``); ``None`` for the default.
+    """
+
+    kind: str
+    disturbance: str
+    process_noise: NDArray[np.float64] | None = None
+    disturbance_noise: NDArray[np.float64] | None = None
+    measurement_noise: NDArray[np.float64] | None = None
+
+
+def check_estimator(request: EstimatorRequest, plant: DiscretePlant) -> tuple[EstimatorInputs, list[FieldProblem]]:
+    """Check an estimator request against the plant: kinds, covariance sizes, a positive-definite noise.
+
+    Parameters
+    ----------
+    request : EstimatorRequest
+    plant : DiscretePlant
+        The (sampled) model the estimator is for.
+
+    Returns
+    -------
+    EstimatorInputs, list of FieldProblem
+        The inputs are meaningful only when no problem was found; pointers under ``/estimator``.
+    """
+    est = request
+    problems: list[FieldProblem] = []
+    if est.kind != "kalman" and est.disturbance is not None:
+        problems.append(
+            FieldProblem(
+                pointer("estimator", "disturbance"),
+                f"only a kalman estimator takes a disturbance model; {est.kind} implies "
+                f"'{_IMPLIED[est.kind]}'. Leave it out, or use kind 'kalman'",
+            )
+        )
+    disturbance = (est.disturbance or "output") if est.kind == "kalman" else _IMPLIED[est.kind]
+    covariances: dict[str, NDArray[np.float64] | None] = {
+        "process_noise": None,
+        "disturbance_noise": None,
+        "measurement_noise": None,
+    }
+    if est.kind == "full_state":
+        for name in covariances:
+            if getattr(est, name) is not None:
+                problems.append(
+                    FieldProblem(
+                        pointer("estimator", name),
+                        "a full_state estimator reads the state and has no filter to tune; leave it out",
+                    )
+                )
+        return EstimatorInputs(kind=est.kind, disturbance=disturbance), problems
+    nd = {"output": plant.output_count, "input": plant.input_count, "none": 0}[disturbance]
+    sizes = {
+        "process_noise": (plant.states, "process-noise covariance", "model states"),
+        "disturbance_noise": (nd, "disturbance-noise covariance", f"{disturbance} disturbances"),
+        "measurement_noise": (plant.output_count, "measurement-noise covariance", "measured outputs"),
+    }
+    for name, (size, what, of) in sizes.items():
+        value = getattr(est, name)
+        if value is None:
+            continue
+        if size == 0:
+            problems.append(
+                FieldProblem(
+                    pointer("estimator", name),
+                    "the disturbance model is 'none', so there is no disturbance to give a noise; leave it out",
+                )
+            )
+            continue
+        w, found = check_weight(value, ("estimator", name), size=size, what=f"{what} of the {of}")
+        problems += found
+        if w is not None and name == "measurement_noise":
+            smallest = float(np.min(w)) if w.ndim == 1 else float(np.linalg.eigvalsh(0.5 * (w + w.T))[0])
+            if not smallest > 0.0:
+                where = ("estimator", name, int(np.argmin(w))) if w.ndim == 1 else ("estimator", name)
+                problems.append(
+                    FieldProblem(
+                        pointer(*where),
+                        "the measurement-noise covariance must be positive definite: a noise-free measurement "
+                        "would ask the filter for an infinite gain. Give every output some noise",
+                    )
+                )
+        covariances[name] = w
+    return EstimatorInputs(kind=est.kind, disturbance=disturbance, **covariances), problems
+
+
+def scaled_covariance(value: NDArray[np.float64] | None, span: NDArray[np.float64]) -> NDArray[np.float64] | None:
+    """``S^-1 V S^-1`` of a covariance in engineering units (a diagonal stays a diagonal)."""
+    if value is None:
+        return None
+    if value.ndim == 1:
+        return value / span**2
+    return value / np.outer(span, span)
+
+
+def scaled_estimator(inputs: EstimatorInputs, plant: DiscretePlant, scaled: ScaledPlant) -> Estimator:
+    """Design the estimator on the scaled plant, as /simulate and the robustness analysis use it.
+
+    Parameters
+    ----------
+    inputs : EstimatorInputs
+    plant : DiscretePlant
+        The model in engineering units (its spans and tags).
+    scaled : ScaledPlant
+        The same model in scaled signals (``service.solver.models.scaling.scale_plant``).
+
+    Returns
+    -------
+    Estimator
+        Of ``(scaled.a, scaled.b, scaled.c)``; its gain acts on scaled outputs.
+
+    Raises
+    ------
+    service.errors.NumericalError
+        From :func:`service.solver.estimation.estimator.design_estimator` (an undetectable disturbance
+        model, a Riccati equation without a stabilizing solution), or pointer ``/estimator``
+        when the gain or poles come out as numbers that are not finite.
+    """
+    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
+    s_dist = {"output": sz, "input": su, "none": np.ones(0)}[inputs.disturbance]
+    estimator = design_estimator(
+        scaled.a,
+        scaled.b,
+        scaled.c,
+        kind=inputs.kind,  # type: ignore[arg-type]
+        disturbance=inputs.disturbance if inputs.kind == "kalman" else None,  # type: ignore[arg-type]
+        process_noise=inputs.process_noise,
+        disturbance_noise=scaled_covariance(inputs.disturbance_noise, s_dist),
+        measurement_noise=scaled_covariance(inputs.measurement_noise, sz),
+        output_labels=[s.name for s in plant.outputs],
+        input_labels=[s.name for s in plant.inputs],
+    )
+    if not (np.all(np.isfinite(estimator.gain)) and np.all(np.isfinite(estimator.poles))):
+        raise NumericalError(
+            "The estimator's gain or poles are not finite numbers: the model's numbers are too large "
+            "or too small to estimate its state in double precision. Rescale the model",
+            pointer="/estimator",
+        )
+    return estimator

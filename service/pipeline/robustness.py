@@ -1,0 +1,203 @@
+"""The robustness analysis of a /design request: its checks, its work estimate and its report.
+
+:func:`frequency_problems` refuses what the analysis cannot do or what would cost too much
+(before anything is computed), :func:`frequency_work` estimates that cost, and
+:func:`robustness_report` turns a :class:`service.solver.evaluation.frequency.FrequencyAnalysis` into
+the response block (:mod:`service.schemas.robustness`).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from service.errors import FieldProblem, NumericalError
+from service.pipeline.estimator import EstimatorInputs
+from service.pipeline.plant import DiscretePlant
+from service.schemas.common import Caps, pointer
+from service.schemas.robustness import (
+    LoopRobustnessReport,
+    MarginsReport,
+    RobustnessEstimatorReport,
+    RobustnessReport,
+    SingularValueReport,
+)
+from service.solver.estimation.estimator import Estimator
+from service.solver.evaluation.frequency import ANALYSIS_POINTER, FrequencyAnalysis, LoopSensitivity
+
+__all__ = ["REFINEMENT_EVALUATIONS", "frequency_problems", "frequency_work", "loop_frequency_work", "robustness_report"]
+
+#: Single-frequency evaluations of the loop the refinements of peaks, bandwidth and
+#: crossovers add to the grid, counted per break point in :func:`frequency_work` (a bound
+#: of what bounded Brent and ``brentq`` take at their tolerances, common practice).
+REFINEMENT_EVALUATIONS = 30
+
+
+def frequency_work(*, points: int, plant_states: int, controller_states: int, inputs: int, measured: int) -> int:
+    """Estimated floating-point operations of the analysis (the quantity capped by ``max_frequency_work``).
+
+    Parameters
+    ----------
+    points : int
+        Grid size.
+    plant_states, controller_states : int
+        ``n`` and ``nc`` (``nc = n + nd + m`` with an estimator, ``m`` for ``full_state``).
+    inputs, measured : int
+        ``m`` and the measured outputs ``py`` (``n`` for ``full_state``).
+
+    Returns
+    -------
+    int
+
+    Notes
+    -----
+    Per break point and frequency (``points`` plus :data:`REFINEMENT_EVALUATIONS`): the plant
+    and the controller each evaluated by a complex LU factorization and solve (about
+    ``3 k^3 + 8 k^2 r`` real operations for ``k`` states and ``r`` right-hand sides), then
+    ``S`` and ``T`` of the loop by a solve, a product and two singular value decompositions
+    (about ``50 l^3`` for a loop of size ``l``: ``m`` at the input, ``py`` at the output).
+    Memory follows the same sizes: ``points x nc^2`` complex numbers at most.
+    """
+    n, nc, m, py = plant_states, controller_states, inputs, measured
+    systems = 3 * (n**3 + nc**3) + 8 * (n * n * m + nc * nc * py)
+    loops = 50 * (m**3 + py**3)
+    return (points + REFINEMENT_EVALUATIONS) * (2 * systems + loops)
+
+
+def loop_frequency_work(plant: DiscretePlant, estimator: EstimatorInputs, *, points: int) -> int:
+    """:func:`frequency_work` of the loop of this plant with this estimator (its disturbance model
+    sets the controller's state count)."""
+    n, m, p = plant.states, plant.input_count, plant.output_count
+    full_state = estimator.kind == "full_state"
+    nd = {"output": p, "input": m, "none": 0}[estimator.disturbance]
+    return frequency_work(
+        points=points,
+        plant_states=n,
+        controller_states=m if full_state else n + nd + m,
+        inputs=m,
+        measured=n if full_state else p,
+    )
+
+
+def frequency_problems(
+    plant: DiscretePlant, estimator: EstimatorInputs, *, points: int, caps: Caps
+) -> list[FieldProblem]:
+    """What stops the analysis of this request: measured outputs it cannot read, or too much work.
+
+    Parameters
+    ----------
+    plant : DiscretePlant
+    estimator : EstimatorInputs
+        As checked (its disturbance model sets the controller's state count).
+    points : int
+    caps : Caps
+
+    Returns
+    -------
+    list of FieldProblem
+    """
+    problems: list[FieldProblem] = []
+    full_state = estimator.kind == "full_state"
+    if not full_state and not np.array_equal(plant.c_measured, plant.c):
+        problems.append(
+            FieldProblem(
+                pointer("model", "c_measured"),
+                "the robustness analysis, like /simulate, has the estimator read the controlled outputs; measured "
+                "outputs other than those are not supported yet. Leave c_measured out, use a full_state "
+                "estimator, or leave analysis.frequency false",
+            )
+        )
+    if not full_state and np.any(plant.d_measured):
+        problems.append(
+            FieldProblem(
+                pointer("model", "d_measured"),
+                "a measured feed-through is not supported by the robustness analysis yet; leave it out",
+            )
+        )
+    work = loop_frequency_work(plant, estimator, points=points)
+    if work > caps.max_frequency_work:
+        per_point = work / (points + REFINEMENT_EVALUATIONS)
+        most = math.floor(caps.max_frequency_work / per_point) - REFINEMENT_EVALUATIONS
+        advice = f"Ask for at most {most:,} points" if most >= 10 else "This loop is too large to analyse here"
+        problems.append(
+            FieldProblem(
+                pointer("analysis", "points"),
+                f"the frequency analysis of this loop at {points:,} points would take about {work:.2e} "
+                f"floating-point operations; this service accepts at most {caps.max_frequency_work:.2e}. {advice}",
+            )
+        )
+    return problems
+
+
+def _finite(value: float) -> float | None:
+    return float(value) if math.isfinite(value) else None
+
+
+def _values(values: np.ndarray) -> list[float]:
+    if not np.all(np.isfinite(values)):
+        raise NumericalError(
+            "The frequency analysis produced numbers that are not finite: a pole of the loop lies on or next to "
+            "the unit circle at a frequency of the grid. Change the number of points, or move that pole off "
+            "the unit circle",
+            pointer=ANALYSIS_POINTER,
+        )
+    return [float(v) for v in values]
+
+
+def _loop(loop: LoopSensitivity) -> LoopRobustnessReport:
+    margins = None
+    if loop.margins is not None:
+        g = loop.margins
+        margins = MarginsReport(
+            gain_margin=_finite(g.gain_margin),
+            gain_margin_db=_finite(g.gain_margin_db),
+            phase_crossover_frequency=g.phase_crossover_frequency,
+            phase_margin=_finite(g.phase_margin),
+            gain_crossover_frequency=g.gain_crossover_frequency,
+        )
+    s, t = loop.sensitivity_singular_values, loop.complementary_singular_values
+    peaks = _values(
+        np.array(
+            [
+                loop.peak_sensitivity,
+                loop.peak_sensitivity_frequency,
+                loop.peak_complementary,
+                loop.peak_complementary_frequency,
+            ]
+        )
+    )
+    return LoopRobustnessReport(
+        peak_sensitivity=peaks[0],
+        peak_sensitivity_db=loop.peak_sensitivity_db,
+        peak_sensitivity_frequency=peaks[1],
+        peak_complementary=peaks[2],
+        peak_complementary_frequency=peaks[3],
+        bandwidth=None if loop.bandwidth is None else _finite(loop.bandwidth),
+        margins=margins,
+        sensitivity=SingularValueReport(largest=_values(s[:, 0]), smallest=_values(s[:, -1])),
+        complementary=SingularValueReport(largest=_values(t[:, 0]), smallest=_values(t[:, -1])),
+    )
+
+
+def robustness_report(analysis: FrequencyAnalysis, estimator: Estimator) -> RobustnessReport:
+    """Turn the solver's frequency analysis into the response block.
+
+    Raises
+    ------
+    service.errors.NumericalError
+        Pointer ``/analysis`` when a singular value or peak is not a finite number (JSON has
+        neither NaN nor infinity); an infinite margin is reported as null instead.
+    """
+    poles = analysis.closed_loop_poles
+    return RobustnessReport(
+        frequencies=_values(analysis.frequencies),
+        nyquist_frequency=analysis.nyquist_frequency,
+        plant_input=_loop(analysis.plant_input),
+        plant_output=_loop(analysis.plant_output),
+        estimator=RobustnessEstimatorReport(
+            kind=estimator.kind, disturbance=estimator.disturbance, spectral_radius=estimator.spectral_radius
+        ),
+        spectral_radius=float(np.abs(poles).max(initial=0.0)),
+        stable=analysis.stable,
+    )

@@ -1,0 +1,430 @@
+"""From a validated /simulate request to a simulated run, and from the run back to JSON or CSV.
+
+Three steps, as for /design: :func:`service.pipeline.simulate_checks.check_simulate_request`
+(every check that needs several fields or the caps), :func:`compute_simulation` (scale,
+design, estimate, simulate; arrays only) and :func:`simulate_response`; :func:`run_simulation`
+chains them and :func:`simulation_csv` writes the time series of a response as CSV.
+
+Units.  The design is made on the plant in scaled signals (``u / span``, ``z / span``, see
+``service.solver.models.scaling``); so are the estimator and the run.  Everything a request gives
+in engineering units is scaled on the way in with the *model's* spans — the true plant,
+setpoints, disturbance levels, noise spreads, the initial input and setpoint, the limits
+(``service.pipeline.limits``), the covariances of the output and input disturbances
+and of the measurement noise — and every
+series and figure is unscaled on the way out.  The state is never scaled, so the process
+noise covariance and the initial state go in as given.  With spans, a run is therefore the
+same as the unscaled run with weights divided by span squared and the same covariances
+(a change of units; tests/api/test_simulate_api.py).
+
+Divergence.  JSON has no NaN or infinity.  When the run blows up (the solver stops it) or a
+value overflows, every series is cut at the first step that is not finite, ``diverged_at``
+says where, the figures of merit are null and a warning says so.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from service.errors import NumericalError
+from service.pipeline.design import DesignOutcome, compute_design, design_response
+from service.pipeline.estimator import scaled_estimator
+from service.pipeline.fingerprint import fingerprint
+from service.pipeline.limits import LimitedRun, limit_run_reports, limited_run
+from service.pipeline.plant import DiscretePlant
+from service.pipeline.simulate_checks import SimulationInputs, check_simulate_request
+from service.schemas.common import Caps
+from service.schemas.design import ADVISORY, DesignRequest, LabelledMatrix, PoleReport, WarningReport
+from service.schemas.simulate import (
+    EstimatorReport,
+    InputFigures,
+    OutputFigures,
+    PerformanceReport,
+    SeriesColumns,
+    SimulateRequest,
+    SimulateResponse,
+    WholeLoopReport,
+)
+from service.solver.estimation.estimator import Estimator
+from service.solver.estimation.loop import WholeLoop, control_loop, whole_loop
+from service.solver.evaluation.performance import Performance, loop_performance
+from service.solver.evaluation.simulation import Event, Scenario, Simulation, TruePlant, simulate_loop
+from service.solver.models.scaling import scale_plant
+
+__all__ = [
+    "SimulationOutcome",
+    "compute_simulation",
+    "performance_report",
+    "run_simulation",
+    "simulate_response",
+    "simulation_csv",
+]
+
+
+@dataclass(frozen=True)
+class SimulationOutcome:
+    """What :func:`compute_simulation` computed; series in engineering units.
+
+    Attributes
+    ----------
+    design : DesignOutcome
+    estimator : Estimator
+        On the scaled plant.
+    estimator_gain : ndarray, shape (na, p), or None
+        ``L`` in engineering units (``None`` for ``full_state``).
+    whole : WholeLoop
+    simulation : Simulation
+        As the solver returned it (scaled signals).
+    rows : int
+        Rows kept: ``steps``, or the first step that is not finite.
+    time, outputs, measured, setpoints, inputs, estimates, measured_disturbances : ndarray
+        The kept rows, engineering units.
+    performance : Performance or None
+        ``None`` when the run blew up.
+    limited : LimitedRun or None
+        The move QP and target rule of a run under limits (``None`` without limits).
+    """
+
+    design: DesignOutcome
+    estimator: Estimator
+    estimator_gain: NDArray[np.float64] | None
+    whole: WholeLoop
+    simulation: Simulation
+    rows: int
+    time: NDArray[np.float64]
+    outputs: NDArray[np.float64]
+    measured: NDArray[np.float64]
+    setpoints: NDArray[np.float64]
+    inputs: NDArray[np.float64]
+    estimates: NDArray[np.float64]
+    measured_disturbances: NDArray[np.float64]
+    performance: Performance | None
+    limited: LimitedRun | None = None
+
+
+# --------------------------------------------------------------------------- compute
+
+
+def _scaled_events(events: list[Event], span: NDArray[np.float64]) -> list[Event]:
+    return [Event(e.step, e.value / span) for e in events]
+
+
+def _first_bad_row(*series: NDArray[np.float64]) -> int:
+    """Index of the first row with a value that is not finite (the row count when none)."""
+    rows = series[0].shape[0]
+    bad = np.zeros(rows, dtype=bool)
+    for s in series:
+        if s.shape[1]:
+            bad |= ~np.all(np.isfinite(s), axis=1)
+    hits = np.nonzero(bad)[0]
+    return int(hits[0]) if hits.size else rows
+
+
+def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
+    """Design, estimate and simulate in scaled signals; return the run in engineering units.
+
+    Raises
+    ------
+    service.errors.NumericalError
+        From the design, or from the estimator (an undetectable disturbance model, a Riccati
+        equation without a stabilizing solution).
+    """
+    plant = inputs.design.plant
+    outcome = compute_design(inputs.design)
+    scaled = outcome.scaled
+    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
+    sd = plant.spans(plant.disturbances) if plant.b_disturbance is not None else np.ones(0)
+    s_dist = {"output": sz, "input": su, "none": np.ones(0)}[inputs.disturbance]
+    estimator = outcome.estimator  # already built when the design's frequency analysis was asked
+    if estimator is None:
+        assert inputs.design.estimator is not None
+        estimator = scaled_estimator(inputs.design.estimator, plant, scaled)
+    loop = control_loop(outcome.design, estimator)
+    whole = whole_loop(loop)
+    if not np.all(np.isfinite(whole.poles)):
+        raise NumericalError(
+            "The poles of the whole loop are not finite numbers: the model's numbers are too large or "
+            "too small for the loop's eigenvalues in double precision. Rescale the model",
+            pointer="/model",
+        )
+
+    true_plant = None
+    if inputs.true_plant is not None:
+        t = inputs.true_plant
+        ts = scale_plant(
+            t.a,
+            t.b,
+            t.c,
+            input_span=su,
+            output_span=sz,
+            b_disturbance=t.b_disturbance,
+            disturbance_span=sd if sd.size else None,
+        )
+        true_plant = TruePlant(ts.a, ts.b, ts.c, ts.b_disturbance)
+    scenario = Scenario(
+        steps=inputs.steps,
+        setpoint_changes=_scaled_events(inputs.setpoints, sz),
+        output_disturbances=_scaled_events(inputs.output_disturbances, sz),
+        input_disturbances=_scaled_events(inputs.input_disturbances, su),
+        measured_disturbances=_scaled_events(inputs.measured_disturbances, sd),
+        noise_std=None if inputs.noise_std is None else inputs.noise_std / sz,
+        seed=inputs.seed,
+        initial_state=inputs.initial_state,
+        initial_input=None if inputs.initial_input is None else inputs.initial_input / su,
+        initial_setpoint=None if inputs.initial_setpoint is None else inputs.initial_setpoint / sz,
+        sample_time=plant.sample_time,
+    )
+    limits = inputs.design.limits
+    limited = None if limits is None else limited_run(limits, plant, outcome.design, loop)
+    with np.errstate(over="ignore", invalid="ignore"):  # absurd levels overflow: the series are cut below
+        sim = simulate_loop(
+            outcome.design,
+            estimator,
+            scenario,
+            plant=true_plant,
+            loop=loop,
+            b_disturbance=scaled.b_disturbance,
+            policy=None if limited is None else limited.policy,
+            target_rule=None if limited is None else limited.target,
+        )
+
+    n = estimator.state_size
+    estimate_span = np.concatenate([np.ones(n), s_dist if estimator.disturbance_size else np.ones(0)])
+    with np.errstate(over="ignore", invalid="ignore"):  # an overflow here is cut off just below
+        outputs, measured, setpoints = sim.outputs * sz, sim.measured * sz, sim.setpoints * sz
+        inputs_eng, estimates = sim.inputs * su, sim.estimates * estimate_span
+        dm = sim.measured_disturbances * sd if sd.size else np.zeros((inputs.steps, 0))
+    rows = _first_bad_row(sim.time[:, None], outputs, measured, setpoints, inputs_eng, estimates, dm)
+    performance = None
+    if rows == inputs.steps:
+        performance = loop_performance(
+            sim.time,
+            outputs,
+            setpoints,
+            inputs_eng,
+            initial_input=sim.initial_input * su,
+            initial_setpoint=sim.initial_setpoint * sz,
+        )
+    gain = None
+    if not estimator.full_state:
+        gain = estimate_span[:, None] * estimator.gain / sz[None, :]
+    return SimulationOutcome(
+        design=outcome,
+        estimator=estimator,
+        estimator_gain=gain,
+        whole=whole,
+        simulation=sim,
+        rows=rows,
+        time=sim.time[:rows],
+        outputs=outputs[:rows],
+        measured=measured[:rows],
+        setpoints=setpoints[:rows],
+        inputs=inputs_eng[:rows],
+        estimates=estimates[:rows],
+        measured_disturbances=dm[:rows],
+        performance=performance,
+        limited=limited,
+    )
+
+
+# --------------------------------------------------------------------------- response
+
+
+def _unique(names: list[str]) -> list[str]:
+    """Make column names unique by numbering repeats (``name``, ``name#2``, ...)."""
+    seen: dict[str, int] = {}
+    out = []
+    for name in names:
+        count = seen.get(name, 0) + 1
+        seen[name] = count
+        out.append(name if count == 1 else f"{name}#{count}")
+    return out
+
+
+def _columns(plant: DiscretePlant, estimator: Estimator) -> SeriesColumns:
+    outputs = [s.name for s in plant.outputs]
+    inputs = [s.name for s in plant.inputs]
+    setpoints = [f"{name}.setpoint" for name in outputs]
+    measured = [f"{name}.measured" for name in outputs]
+    clash = set(outputs) | set(setpoints) | set(measured)
+    inputs = [f"{name}.input" if name in clash else name for name in inputs]
+    named = _unique([*outputs, *setpoints, *inputs, *measured])
+    p, m = len(outputs), len(inputs)
+    source = {"output": outputs, "input": [s.name for s in plant.inputs], "none": []}[estimator.disturbance]
+    disturbances = [f"{name}.{estimator.disturbance}_disturbance" for name in source]
+    return SeriesColumns(
+        outputs=named[:p],
+        setpoints=named[p : 2 * p],
+        inputs=named[2 * p : 2 * p + m],
+        measured=named[2 * p + m :],
+        estimates=[*plant.state_labels, *disturbances],
+        measured_disturbances=[s.name for s in plant.disturbances],
+    )
+
+
+def _poles(values: NDArray[np.complex128]) -> list[PoleReport]:
+    return [PoleReport(real=float(z.real), imag=float(z.imag)) for z in values]
+
+
+def _optional(value: float | None) -> float | None:
+    return None if value is None or not np.isfinite(value) else float(value)
+
+
+def performance_report(plant: DiscretePlant, outcome: SimulationOutcome) -> PerformanceReport:
+    """The figures of merit of a run, named by the plant's tags (null where the run blew up)."""
+    figures = outcome.performance
+    outputs, inputs = [], []
+    for i, signal in enumerate(plant.outputs):
+        f = figures.outputs[i] if figures is not None else None
+        outputs.append(
+            OutputFigures(
+                name=signal.name,
+                step=None if f is None else f.step,
+                rise_time=None if f is None else _optional(f.rise_time),
+                settling_time=None if f is None else _optional(f.settling_time),
+                overshoot_percent=None if f is None else _optional(f.overshoot),
+                integral_absolute_error=None if f is None else _optional(f.integral_absolute_error),
+                final_offset=None if f is None else _optional(f.final_offset),
+            )
+        )
+    for j, signal in enumerate(plant.inputs):
+        g = figures.inputs[j] if figures is not None else None
+        inputs.append(
+            InputFigures(
+                name=signal.name,
+                total_move=None if g is None else _optional(g.total_move),
+                largest_move=None if g is None else _optional(g.largest_move),
+            )
+        )
+    return PerformanceReport(outputs=outputs, inputs=inputs)
+
+
+def _warnings(inputs: SimulationInputs, outcome: SimulationOutcome) -> list[WarningReport]:
+    out: list[WarningReport] = []
+    whole = outcome.whole
+    if not whole.stable:
+        out.append(
+            WarningReport(
+                code="whole_loop_unstable",
+                message=f"The loop of controller, estimator and model is unstable (spectral radius "
+                f"{whole.spectral_radius:.6g}): the run grows without bound even on the model itself.",
+            )
+        )
+    if not whole.separation_holds:
+        out.append(
+            WarningReport(
+                code="separation_check_failed",
+                message=f"The whole loop's poles differ from the union of controller and estimator poles by "
+                f"{whole.separation_error:.3g}: the eigenvalues are ill-conditioned, so treat every pole with care.",
+            )
+        )
+    if outcome.rows < inputs.steps:
+        out.append(
+            WarningReport(
+                code="run_diverged",
+                message=f"The run blew up: the series stop at step {outcome.rows} of {inputs.steps} and the "
+                f"figures of merit are null. Check the true plant against the model, or detune the controller.",
+            )
+        )
+    out += [WarningReport(code=d.code, message=d.message) for d in inputs.limit_warnings]
+    return out
+
+
+def simulate_response(
+    request: SimulateRequest, inputs: SimulationInputs, outcome: SimulationOutcome
+) -> SimulateResponse:
+    """Turn the computed run into the response model."""
+    plant = inputs.design.plant
+    design_request = DesignRequest(**{name: getattr(request, name) for name in DesignRequest.model_fields})
+    columns = _columns(plant, outcome.estimator)
+    est = outcome.estimator
+    gain = None
+    if outcome.estimator_gain is not None:
+        gain = LabelledMatrix(
+            rows=columns.estimates, columns=[s.name for s in plant.outputs], values=outcome.estimator_gain.tolist()
+        )
+    whole = outcome.whole
+    warnings = _warnings(inputs, outcome)
+    limits, limit_summary = None, None
+    if outcome.limited is not None:
+        limits, limit_summary, found = limit_run_reports(outcome.limited, outcome.simulation, outcome.rows, plant)
+        warnings += found
+    return SimulateResponse(
+        steps=inputs.steps,
+        sample_time=plant.sample_time,
+        time=outcome.time.tolist(),
+        outputs=outcome.outputs.tolist(),
+        measured=outcome.measured.tolist(),
+        setpoints=outcome.setpoints.tolist(),
+        inputs=outcome.inputs.tolist(),
+        estimates=outcome.estimates.tolist(),
+        measured_disturbances=outcome.measured_disturbances.tolist(),
+        columns=columns,
+        diverged_at=None if outcome.rows == inputs.steps else outcome.rows,
+        performance=performance_report(plant, outcome),
+        estimator=EstimatorReport(
+            kind=est.kind,
+            disturbance=est.disturbance,
+            gain=gain,
+            poles=_poles(est.poles),
+            spectral_radius=est.spectral_radius,
+        ),
+        whole_loop=WholeLoopReport(
+            poles=_poles(whole.poles),
+            controller_poles=_poles(whole.controller_poles),
+            estimator_poles=_poles(whole.estimator_poles),
+            separation_holds=whole.separation_holds,
+            separation_error=whole.separation_error,
+            spectral_radius=whole.spectral_radius,
+            stable=whole.stable,
+        ),
+        design=design_response(design_request, inputs.design, outcome.design),
+        limits=limits,
+        limit_summary=limit_summary,
+        warnings=warnings,
+        fingerprint=fingerprint(request),
+        advisory=ADVISORY,
+    )
+
+
+def run_simulation(request: SimulateRequest, caps: Caps) -> SimulateResponse:
+    """Check, design, estimate, simulate and report: the whole of POST /simulate without HTTP.
+
+    Raises
+    ------
+    InvalidRequest, NumericalError
+    """
+    inputs = check_simulate_request(request, caps)
+    return simulate_response(request, inputs, compute_simulation(inputs))
+
+
+def simulation_csv(response: SimulateResponse) -> str:
+    """The time series of a response as CSV (RFC 4180: CRLF line ends, quoted where needed).
+
+    Columns: ``time``, the controlled outputs, their setpoints (``<output>.setpoint``), then
+    the manipulated variables, named as in ``response.columns``; one row per step kept.  A
+    run under limits adds ``limits.fallback`` (1 where the step's QP failed and held the last
+    input, else 0) and ``limits.active`` (the number of active limits the step lists).
+    Numbers are written in Python's shortest round-trip form, so the same response always
+    gives the same bytes and every value reads back exactly.
+    """
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\r\n")
+    c = response.columns
+    extra: list[list[str]] = [[] for _ in response.time]
+    header = ["time", *c.outputs, *c.setpoints, *c.inputs]
+    if response.limits is not None:
+        header = _unique([*header, "limits.fallback", "limits.active"])
+        extra = [["0", "0"] for _ in response.time]
+        for row in response.limits.steps:
+            extra[row.step] = [str(int(row.fallback)), str(len(row.active))]
+    writer.writerow(header)
+    for t, y, r, u, more in zip(
+        response.time, response.outputs, response.setpoints, response.inputs, extra, strict=True
+    ):
+        writer.writerow([repr(t), *map(repr, y), *map(repr, r), *map(repr, u), *more])
+    return buffer.getvalue()

@@ -1,0 +1,401 @@
+"""The checks of a /simulate request: everything its field types alone cannot say.
+
+:func:`check_simulate_request` runs the /design checks (the estimator's among them: kinds,
+covariance sizes, positive-definite measurement noise; :mod:`service.pipeline.estimator`),
+then those of the scenario (events inside the run and of the right length, the true plant's
+sizes, sample time and tags, the initial conditions) and the caps (steps, numbers kept,
+estimated work).  Every problem names its field by JSON pointer; problems are collected, not
+raised one at a time.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from service.errors import FieldProblem, InvalidRequest
+from service.pipeline.design import DesignInputs, check_design_request
+from service.pipeline.limits_checks import check_initial_input, limit_work_problems
+from service.pipeline.plant import DiscretePlant, plant_arrays
+from service.schemas.common import Caps, pointer
+from service.schemas.simulate import SimulateRequest
+from service.solver.design.closed_loop import Diagnostic
+from service.solver.evaluation.simulation import Event
+
+__all__ = ["STEP_OVERHEAD", "SimulationInputs", "check_simulate_request", "simulation_work"]
+
+#: The interpreter's own cost of one simulated step, counted as this many floating-point
+#: operations in :func:`simulation_work` (a step of a small plant takes some tens of
+#: microseconds whatever its products cost).
+STEP_OVERHEAD = 30_000
+
+Where = tuple[str | int, ...]
+
+
+@dataclass(frozen=True)
+class SimulationInputs:
+    """A /simulate request after every check, in engineering units.
+
+    Attributes
+    ----------
+    design : DesignInputs
+    kind, disturbance : str
+        Estimator kind and its disturbance model (``"output"``, ``"input"``, ``"none"``).
+    process_noise, disturbance_noise, measurement_noise : ndarray or None
+        Covariances as given (diagonal ``(k,)`` or full ``(k, k)``); ``None`` for the default.
+    true_plant : DiscretePlant or None
+        ``None``: the loop runs on the model.
+    steps : int
+    setpoints, output_disturbances, input_disturbances, measured_disturbances : list of Event
+    noise_std : ndarray, shape (p,), or None
+    seed : int
+    initial_state, initial_input, initial_setpoint : ndarray or None
+        ``initial_input`` is clipped into the input limits when ``limits.clamp_initial_input``
+        asked for it.
+    limit_warnings : tuple of Diagnostic
+        What the limit checks changed (a clipped initial input).
+    """
+
+    design: DesignInputs
+    kind: str
+    disturbance: str
+    process_noise: NDArray[np.float64] | None
+    disturbance_noise: NDArray[np.float64] | None
+    measurement_noise: NDArray[np.float64] | None
+    true_plant: DiscretePlant | None
+    steps: int
+    setpoints: list[Event]
+    output_disturbances: list[Event]
+    input_disturbances: list[Event]
+    measured_disturbances: list[Event]
+    noise_std: NDArray[np.float64] | None
+    seed: int
+    initial_state: NDArray[np.float64] | None
+    initial_input: NDArray[np.float64] | None
+    initial_setpoint: NDArray[np.float64] | None
+    limit_warnings: tuple[Diagnostic, ...] = ()
+
+
+def _length(value: list[float] | None, size: int, where: Where, what: str) -> list[FieldProblem]:
+    if value is None or len(value) == size:
+        return []
+    return [FieldProblem(pointer(*where), f"{what} has {len(value)} values, expected {size}")]
+
+
+def _events(
+    changes: list[Any], field: str, value_field: str, *, steps: int, size: int, what: str
+) -> tuple[list[Event], list[FieldProblem]]:
+    problems: list[FieldProblem] = []
+    events: list[Event] = []
+    for i, change in enumerate(changes):
+        where = ("scenario", field, i)
+        if change.step >= steps:
+            problems.append(
+                FieldProblem(
+                    pointer(*where, "step"),
+                    f"step {change.step} is outside the run: steps go from 0 to {steps - 1} (scenario.steps = {steps})",
+                )
+            )
+        value = getattr(change, value_field)
+        problems += _length(value, size, (*where, value_field), what)
+        events.append(Event(change.step, np.asarray(value, dtype=float)))
+    return events, problems
+
+
+def _true_plant_problems(
+    request: SimulateRequest, plant: DiscretePlant, caps: Caps
+) -> tuple[DiscretePlant | None, list[FieldProblem]]:
+    model = request.scenario.true_plant
+    if model is None:
+        return None, []
+    where = ("scenario", "true_plant")
+    true, problems = plant_arrays(model, caps, where)
+    if true is None:
+        return None, problems
+    if true.input_count != plant.input_count:
+        problems.append(
+            FieldProblem(
+                pointer(*where), f"the true plant has {true.input_count} inputs; the model has {plant.input_count}"
+            )
+        )
+    if true.output_count != plant.output_count:
+        problems.append(
+            FieldProblem(
+                pointer(*where),
+                f"the true plant has {true.output_count} controlled outputs; the model has {plant.output_count}",
+            )
+        )
+    md_true = 0 if true.b_disturbance is None else true.b_disturbance.shape[1]
+    md = 0 if plant.b_disturbance is None else plant.b_disturbance.shape[1]
+    if md_true != md:
+        problems.append(
+            FieldProblem(
+                pointer(*where),
+                f"the true plant has {md_true} measured disturbances; the model has {md} (the same signals must "
+                f"enter both: give the true plant's own b_disturbance or disturbance_elements)",
+            )
+        )
+    if true.sample_time != plant.sample_time:
+        problems.append(
+            FieldProblem(
+                pointer(*where, "sample_time"),
+                f"the true plant's sample time {true.sample_time:g} differs from the model's {plant.sample_time:g}",
+            )
+        )
+    for tags, mine, theirs in (("inputs", plant.inputs, true.inputs), ("outputs", plant.outputs, true.outputs)):
+        if getattr(model, tags) is None or len(mine) != len(theirs):
+            continue
+        for i, (a, b) in enumerate(zip(mine, theirs, strict=True)):
+            if a.name != b.name:
+                problems.append(
+                    FieldProblem(
+                        pointer(*where, tags, i, "name"),
+                        f"the true plant's {tags} must be the model's, in the same order: expected {a.name!r}, got {b.name!r}",
+                    )
+                )
+    problems += _measured_output_problems(true, where)
+    if true.states != plant.states:
+        if request.scenario.initial.state is not None:
+            problems.append(
+                FieldProblem(
+                    pointer("scenario", "initial", "state"),
+                    f"the true plant has {true.states} states and the model {plant.states}: an initial state cannot "
+                    f"mean both. Leave it out (the run then starts from rest) or give the true plant the model's states",
+                )
+            )
+        if request.estimator.kind == "full_state":
+            problems.append(
+                FieldProblem(
+                    pointer(*where),
+                    f"a full_state estimator reads the true state, so the true plant needs the model's {plant.states} "
+                    f"states (it has {true.states}); use an estimator, or a true plant of the model's form",
+                )
+            )
+    return true, problems
+
+
+def _measured_output_problems(plant: DiscretePlant, where: Where) -> list[FieldProblem]:
+    problems: list[FieldProblem] = []
+    if not np.array_equal(plant.c_measured, plant.c):
+        problems.append(
+            FieldProblem(
+                pointer(*where, "c_measured"),
+                "measured outputs other than the controlled ones are not yet supported by /simulate: the "
+                "estimator reads the controlled outputs. Leave c_measured out to simulate this model",
+            )
+        )
+    if np.any(plant.d_measured):
+        problems.append(
+            FieldProblem(
+                pointer(*where, "d_measured"), "a measured feed-through is not yet supported by /simulate; leave it out"
+            )
+        )
+    return problems
+
+
+def simulation_work(
+    *,
+    steps: int,
+    states: int,
+    true_states: int,
+    inputs: int,
+    outputs: int,
+    disturbances: int,
+    measured_disturbances: int,
+    penalized_steps: int,
+) -> int:
+    """Estimated floating-point operations of a run (the quantity capped by ``max_simulation_work``).
+
+    Per step, ``2 x`` the entries of every matrix applied to a vector (see
+    ``service.solver.evaluation.simulation``): the free prediction ``Fx_aug`` (Np*p x na), ``Fu`` and
+    ``Fd``; the move ``Kh`` (m x Np*p); the true plant ``[A B Bd]`` and ``C``; the estimator's
+    ``L``, ``Cy`` and ``[A_aug B_aug]``; plus :data:`STEP_OVERHEAD`.  ``na = n + nd``.
+    """
+    n, nt, m, p, nd, md, np_ = (
+        states,
+        true_states,
+        inputs,
+        outputs,
+        disturbances,
+        measured_disturbances,
+        penalized_steps,
+    )
+    na = n + nd
+    rows = np_ * p
+    per_step = (
+        2 * rows * (na + m + md)  # free prediction
+        + 2 * m * rows  # du = Kh E
+        + 2 * nt * (nt + m + md)
+        + 2 * p * nt  # true plant and its outputs
+        + 2 * na * (na + m + md)
+        + 4 * p * na  # estimator update and prediction
+        + STEP_OVERHEAD
+    )
+    return steps * per_step
+
+
+def _run_size_problems(
+    request: SimulateRequest, plant: DiscretePlant, true: DiscretePlant | None, disturbance: str, caps: Caps
+) -> list[FieldProblem]:
+    sc = request.scenario
+    where = pointer("scenario", "steps")
+    if sc.steps > caps.max_simulation_steps:
+        return [FieldProblem(where, f"{sc.steps:,} steps exceed this service's cap of {caps.max_simulation_steps:,}")]
+    n, m, p = plant.states, plant.input_count, plant.output_count
+    md = 0 if plant.b_disturbance is None else plant.b_disturbance.shape[1]
+    nd = {"output": p, "input": m, "none": 0}[disturbance]
+    nt = true.states if true is not None else n
+    h = request.horizons
+    penalized = max(h.prediction - h.first_penalized + 1, 1)
+    # the series returned (outputs, measured, setpoints, inputs, estimates, measured
+    # disturbances) and the true plant's states, which the run keeps too
+    entries = sc.steps * (3 * p + m + n + nd + md + nt)
+    if entries > caps.max_response_entries:
+        return [
+            FieldProblem(
+                where,
+                f"the run would hold {entries:,} numbers ({sc.steps:,} steps of every series); this service "
+                f"returns at most {caps.max_response_entries:,}. Simulate at most "
+                f"{caps.max_response_entries // (entries // sc.steps):,} steps of this loop",
+            )
+        ]
+    work = simulation_work(
+        steps=sc.steps,
+        states=n,
+        true_states=nt,
+        inputs=m,
+        outputs=p,
+        disturbances=nd,
+        measured_disturbances=md,
+        penalized_steps=penalized,
+    )
+    if work > caps.max_simulation_work:
+        most = caps.max_simulation_work // max(work // sc.steps, 1)
+        return [
+            FieldProblem(
+                where,
+                f"the run would take about {work:.2e} floating-point operations; this service accepts at most "
+                f"{caps.max_simulation_work:.2e}. Simulate at most {most:,} steps of this loop, or shorten the "
+                f"prediction horizon",
+            )
+        ]
+    return []
+
+
+def check_simulate_request(request: SimulateRequest, caps: Caps) -> SimulationInputs:
+    """Check everything the field types alone cannot, naming each field by JSON pointer.
+
+    Raises
+    ------
+    InvalidRequest
+        With one FieldProblem per broken rule.
+    service.errors.NumericalError
+        When a continuous model (or true plant) cannot be sampled.
+    """
+    problems: list[FieldProblem] = []
+    design: DesignInputs | None = None
+    try:
+        design = check_design_request(request, caps)
+        plant: DiscretePlant | None = design.plant
+    except InvalidRequest as exc:
+        problems += exc.problems
+        plant, _ = plant_arrays(request.model, caps)
+    if plant is None:
+        raise InvalidRequest(problems)
+    problems += _measured_output_problems(plant, ("model",))
+    if request.weights.terminal != "none":
+        problems.append(
+            FieldProblem(
+                pointer("weights", "terminal"),
+                "/simulate does not simulate the Riccati terminal weight yet: the simulated law would leave out "
+                "its terminal term and differ from the design's gains. Use terminal 'none' to preview the loop",
+            )
+        )
+    true, found = _true_plant_problems(request, plant, caps)
+    problems += found
+
+    sc = request.scenario
+    steps = sc.steps
+    n, m, p = plant.states, plant.input_count, plant.output_count
+    md = 0 if plant.b_disturbance is None else plant.b_disturbance.shape[1]
+    setpoints, found = _events(
+        sc.setpoint_changes, "setpoint_changes", "setpoint", steps=steps, size=p, what="setpoint"
+    )
+    problems += found
+    d_out, found = _events(
+        sc.output_disturbances, "output_disturbances", "value", steps=steps, size=p, what="output disturbance"
+    )
+    problems += found
+    d_in, found = _events(
+        sc.input_disturbances, "input_disturbances", "value", steps=steps, size=m, what="input disturbance"
+    )
+    problems += found
+    if sc.measured_disturbances and md == 0:
+        problems.append(
+            FieldProblem(
+                pointer("scenario", "measured_disturbances"),
+                "the model has no measured disturbances (give b_disturbance or disturbance_elements) to apply these to",
+            )
+        )
+        d_meas: list[Event] = []
+    else:
+        d_meas, found = _events(
+            sc.measured_disturbances,
+            "measured_disturbances",
+            "value",
+            steps=steps,
+            size=md,
+            what="measured disturbance",
+        )
+        problems += found
+    noise = sc.measurement_noise
+    if noise is not None:
+        problems += _length(noise.std, p, ("scenario", "measurement_noise", "std"), "the noise spread")
+    init = sc.initial
+    problems += _length(init.state, n, ("scenario", "initial", "state"), "the initial state")
+    problems += _length(init.input, m, ("scenario", "initial", "input"), "the initial input")
+    problems += _length(init.setpoint, p, ("scenario", "initial", "setpoint"), "the initial setpoint")
+    clamped, limit_warnings, found = check_initial_input(None if design is None else design.limits, init.input, plant)
+    problems += found
+    if not problems and design is not None:
+        assert design.estimator is not None  # check_design_request checks every request's estimator
+        problems += _run_size_problems(request, plant, true, design.estimator.disturbance, caps)
+        if not problems:
+            problems += limit_work_problems(
+                design.limits,
+                steps=steps,
+                free_moves=design.free_moves,
+                penalized_steps=max(design.prediction - design.first_penalized + 1, 1),
+                caps=caps,
+            )
+    if problems or design is None:
+        raise InvalidRequest(problems)
+    est = design.estimator
+    assert est is not None
+
+    def vector(value: list[float] | None) -> NDArray[np.float64] | None:
+        return None if value is None else np.asarray(value, dtype=float)
+
+    return SimulationInputs(
+        design=design,
+        kind=est.kind,
+        disturbance=est.disturbance,
+        process_noise=est.process_noise,
+        disturbance_noise=est.disturbance_noise,
+        measurement_noise=est.measurement_noise,
+        true_plant=true,
+        steps=steps,
+        setpoints=setpoints,
+        output_disturbances=d_out,
+        input_disturbances=d_in,
+        measured_disturbances=d_meas,
+        noise_std=None if noise is None else np.asarray(noise.std, dtype=float),
+        seed=0 if noise is None else noise.seed,
+        initial_state=vector(init.state),
+        initial_input=vector(init.input) if clamped is None else clamped,
+        initial_setpoint=vector(init.setpoint),
+        limit_warnings=tuple(limit_warnings),
+    )

@@ -1,0 +1,247 @@
+"""Run a tuning sweep through the /design (and /simulate) pipeline, one substituted request per value.
+
+Each entry is what a separate call gives: the base design request with the value put in,
+checked and designed by the same functions as POST /design, or, with a ``scenario``, checked,
+designed and simulated by those of POST /simulate (the base design's estimator closing the
+loop).  The work caps hold for the sweep as a whole: the values' frequency analyses together
+within ``max_frequency_work``, their runs together within ``max_simulation_work``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import TypeVar
+
+from service.errors import FieldProblem, InvalidRequest, NumericalError
+from service.pipeline.design import DesignInputs, DesignOutcome, check_design_request, compute_design
+from service.pipeline.fingerprint import fingerprint
+from service.pipeline.robustness import loop_frequency_work, robustness_report
+from service.pipeline.simulate import compute_simulation, performance_report
+from service.pipeline.simulate_checks import SimulationInputs, check_simulate_request, simulation_work
+from service.schemas.common import Caps, pointer
+from service.schemas.design import DesignRequest, WarningReport
+from service.schemas.simulate import PerformanceReport, ScenarioRequest, SimulateRequest
+from service.schemas.sweep import HORIZON_PARAMETERS, SweepEntryReport, SweepProblem, SweepRequest, SweepResponse
+
+__all__ = ["run_sweep", "simulate_request", "substituted_request"]
+
+T = TypeVar("T")
+
+
+def _weight(
+    weight: list[float] | list[list[float]], signal: int | None, value: float, size: int
+) -> list[float] | list[list[float]]:
+    if signal is None:
+        return [value] * size
+    if weight and isinstance(weight[0], list):
+        matrix = [list(row) for row in weight]  # type: ignore[arg-type]
+        matrix[signal][signal] = value
+        return matrix
+    diagonal = list(weight)  # type: ignore[arg-type]
+    diagonal[signal] = value
+    return diagonal
+
+
+def substituted_request(request: SweepRequest, value: float) -> DesignRequest:
+    """The base design request with the swept parameter set to ``value``.
+
+    A weight sweep sets one diagonal entry (``signal``) or every signal's weight (a diagonal);
+    a horizon sweep sets the horizon (with move blocking, steps beyond a swept control horizon
+    are dropped).
+    """
+    base = request.design
+    if request.parameter in HORIZON_PARAMETERS:
+        update: dict[str, object] = {request.parameter: int(value)}
+        steps = base.horizons.move_steps
+        if request.parameter == "control" and steps is not None:
+            update["move_steps"] = [j for j in steps if j < int(value)] or [0]
+        return base.model_copy(update={"horizons": base.horizons.model_copy(update=update)})
+    field = "move" if request.parameter == "move_weight" else "output"
+    weight = getattr(base.weights, field)
+    updated = _weight(weight, request.signal, float(value), len(weight))
+    return base.model_copy(update={"weights": base.weights.model_copy(update={field: updated})})
+
+
+def _signal_problem(request: SweepRequest) -> list[FieldProblem]:
+    if request.signal is None:
+        return []
+    field = "move" if request.parameter == "move_weight" else "output"
+    size = len(getattr(request.design.weights, field))
+    if request.signal >= size:
+        return [
+            FieldProblem(
+                pointer("signal"), f"signal {request.signal} does not exist: the {field} weight has {size} entries"
+            )
+        ]
+    return []
+
+
+def simulate_request(design: DesignRequest, scenario: ScenarioRequest) -> SimulateRequest:
+    """The /simulate request of a design request and a scenario."""
+    fields = {name: getattr(design, name) for name in DesignRequest.model_fields}
+    return SimulateRequest.model_validate({**fields, "scenario": scenario})
+
+
+def _sweep_pointer(where: str) -> str:
+    """Where a field of the substituted /design or /simulate request sits in the sweep request."""
+    return where if where == "/scenario" or where.startswith("/scenario/") else "/design" + where
+
+
+def _in_sweep(check: Callable[[], T]) -> T:
+    """Run a check of the base request, its problems pointing into the sweep request."""
+    try:
+        return check()
+    except InvalidRequest as exc:
+        raise InvalidRequest([FieldProblem(_sweep_pointer(p.pointer), p.detail) for p in exc.problems]) from None
+    except NumericalError as exc:
+        raise type(exc)(exc.detail, pointer=_sweep_pointer(exc.pointer) if exc.pointer else "/design") from None
+
+
+def _failed(request: SweepRequest, value: float, mark: str, exc: InvalidRequest | NumericalError) -> SweepEntryReport:
+    if isinstance(exc, InvalidRequest):
+        problem = SweepProblem(
+            type="urn:movecast:problem:invalid-request",
+            detail=f"The design with {request.parameter} = {value:g} is invalid.",
+            errors=[{"pointer": _sweep_pointer(p.pointer), "detail": p.detail} for p in exc.problems],
+        )
+    else:
+        problem = SweepProblem(
+            type="urn:movecast:problem:numerical-problem",
+            detail=exc.detail,
+            errors=[{"pointer": _sweep_pointer(exc.pointer), "detail": exc.detail}] if exc.pointer else [],
+        )
+    return SweepEntryReport(value=value, status="failed", fingerprint=mark, problem=problem)
+
+
+def _entry(request: SweepRequest, value: float, caps: Caps) -> SweepEntryReport:
+    design_request = substituted_request(request, value)
+    mark = fingerprint(design_request)
+    performance: PerformanceReport | None = None
+    peak: float | None = None
+    try:
+        outcome: DesignOutcome
+        if request.scenario is None:
+            outcome = compute_design(check_design_request(design_request, caps))
+        else:
+            inputs = check_simulate_request(simulate_request(design_request, request.scenario), caps)
+            run = compute_simulation(inputs)
+            outcome = run.design
+            performance = performance_report(inputs.design.plant, run)
+        if outcome.analysis is not None and outcome.estimator is not None:
+            robustness = robustness_report(outcome.analysis, outcome.estimator)
+            peak = max(robustness.plant_input.peak_sensitivity, robustness.plant_output.peak_sensitivity)
+    except (InvalidRequest, NumericalError) as exc:
+        return _failed(request, value, mark, exc)
+    loop = outcome.design.loop
+    return SweepEntryReport(
+        value=value,
+        status="designed",
+        fingerprint=mark,
+        spectral_radius=loop.spectral_radius,
+        stable=loop.stable,
+        condition_number=outcome.design.hessian.condition_number,
+        warnings=[WarningReport(code=w.code, message=w.message) for w in outcome.warnings],
+        peak_sensitivity=peak,
+        performance=performance,
+    )
+
+
+def _frequency_work_problems(request: SweepRequest, base: DesignInputs, caps: Caps) -> list[FieldProblem]:
+    """The values' frequency analyses together (the loop's size does not depend on the tuning)."""
+    if base.frequency_points is None or base.estimator is None:
+        return []
+    each = loop_frequency_work(base.plant, base.estimator, points=base.frequency_points)
+    total = each * len(request.values)
+    if total <= caps.max_frequency_work:
+        return []
+    most = max(caps.max_frequency_work // each, 1)
+    return [
+        FieldProblem(
+            pointer("values"),
+            f"{len(request.values)} frequency analyses of about {each:.2e} floating-point operations each "
+            f"would take {total:.2e}; this service accepts at most {caps.max_frequency_work:.2e} for a sweep. "
+            f"Sweep at most {most:,} values, or ask for fewer analysis points",
+        )
+    ]
+
+
+def _run_work(request: SweepRequest, base: SimulationInputs, value: float) -> int:
+    """The estimated work of the run with ``value`` (``service.pipeline.simulate_checks.simulation_work``)."""
+    plant, h = base.design.plant, substituted_request(request, value).horizons
+    md = 0 if plant.b_disturbance is None else plant.b_disturbance.shape[1]
+    m, p = plant.input_count, plant.output_count
+    return simulation_work(
+        steps=base.steps,
+        states=plant.states,
+        true_states=plant.states if base.true_plant is None else base.true_plant.states,
+        inputs=m,
+        outputs=p,
+        disturbances={"output": p, "input": m, "none": 0}[base.disturbance],
+        measured_disturbances=md,
+        penalized_steps=max(h.prediction - h.first_penalized + 1, 1),
+    )
+
+
+def _simulation_work_problems(request: SweepRequest, base: SimulationInputs, caps: Caps) -> list[FieldProblem]:
+    """The values' runs together; a single run over the cap names the scenario's steps."""
+    works = [_run_work(request, base, value) for value in request.values]
+    total = sum(works)
+    if total <= caps.max_simulation_work:
+        return []
+    largest = max(works)
+    if largest > caps.max_simulation_work:
+        value = request.values[works.index(largest)]
+        return [
+            FieldProblem(
+                pointer("scenario", "steps"),
+                f"the run with {request.parameter} = {value:g} alone would take about {largest:.2e} floating-point "
+                f"operations; this service accepts at most {caps.max_simulation_work:.2e}. Simulate fewer steps",
+            )
+        ]
+    return [
+        FieldProblem(
+            pointer("values"),
+            f"{len(request.values)} runs would take about {total:.2e} floating-point operations together; this "
+            f"service accepts at most {caps.max_simulation_work:.2e} for a sweep. Sweep fewer values, or "
+            f"simulate fewer steps",
+        )
+    ]
+
+
+def run_sweep(request: SweepRequest, caps: Caps) -> SweepResponse:
+    """Design (and simulate) once per value; one failed value never fails the others.
+
+    Raises
+    ------
+    InvalidRequest
+        When the base request is invalid (pointers under ``/design``, or ``/scenario``) or the
+        sweep itself is malformed (too many values, a signal that does not exist, more work
+        than the caps allow).
+    NumericalError
+        When the base model cannot be sampled.
+    """
+    scenario = request.scenario
+    base_run: SimulationInputs | None = None
+    if scenario is None:
+        base = _in_sweep(lambda: check_design_request(request.design, caps))
+    else:
+        base_run = _in_sweep(lambda: check_simulate_request(simulate_request(request.design, scenario), caps))
+        base = base_run.design
+    problems = _signal_problem(request)
+    if len(request.values) > caps.max_sweep_values:
+        problems.append(
+            FieldProblem(
+                pointer("values"), f"{len(request.values)} values given; a sweep takes at most {caps.max_sweep_values}"
+            )
+        )
+    elif not problems:
+        problems += _frequency_work_problems(request, base, caps)
+        if base_run is not None:
+            problems += _simulation_work_problems(request, base_run, caps)
+    if problems:
+        raise InvalidRequest(problems)
+    return SweepResponse(
+        parameter=request.parameter,
+        signal=request.signal,
+        entries=[_entry(request, value, caps) for value in request.values],
+    )

@@ -1,0 +1,157 @@
+"""Closed-loop analysis of the unconstrained law and the design's numerical warnings.
+
+With ``du(k) = Kr r - Kx x(k) - Ku u(k-1)`` on ``x(k+1) = A x(k) + B u(k)``, the loop on
+the augmented state ``[x(k); u(k-1)]`` (setpoint held at zero) is ::
+
+    [x(k+1)]   [A - B Kx   B (I - Ku)] [x(k)  ]
+    [u(k)  ] = [  -Kx        I - Ku  ] [u(k-1)]
+
+since ``u(k) = u(k-1) + du(k)``.  Its eigenvalues are the closed-loop poles; the loop is
+asymptotically stable when all lie strictly inside the unit circle (the discrete-time
+Lyapunov criterion, common practice).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg
+from numpy.typing import NDArray
+
+__all__ = [
+    "ILL_CONDITIONED",
+    "UNIT_CIRCLE_MARGIN",
+    "ClosedLoop",
+    "Diagnostic",
+    "closed_loop",
+    "closed_loop_matrix",
+    "design_warnings",
+]
+
+#: Condition number above which the Hessian is called near-singular.  A solve then loses
+#: about log10(cond) of the ~16 significant digits of double precision (common practice).
+ILL_CONDITIONED = 1e8
+#: A pole this close to the unit circle (in modulus) is reported as nearly marginal.
+UNIT_CIRCLE_MARGIN = 1e-3
+
+
+@dataclass(frozen=True)
+class Diagnostic:
+    """A warning about a design: a stable machine-readable code and a plain sentence."""
+
+    code: str
+    message: str
+
+
+@dataclass(frozen=True)
+class ClosedLoop:
+    """Closed-loop matrix on ``[x; u(k-1)]``, its poles and the stability verdict.
+
+    Attributes
+    ----------
+    matrix : ndarray, shape (n+m, n+m)
+    poles : ndarray of complex, shape (n+m,)
+        Sorted by descending modulus.
+    spectral_radius : float
+        Largest pole modulus.
+    stable : bool
+        ``spectral_radius < 1``.
+    """
+
+    matrix: NDArray[np.float64]
+    poles: NDArray[np.complex128]
+    spectral_radius: float
+    stable: bool
+
+
+def closed_loop_matrix(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    state_gain: NDArray[np.float64],
+    input_gain: NDArray[np.float64],
+) -> NDArray[np.float64]:
+    """Return the closed-loop matrix on ``[x(k); u(k-1)]``.
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, n)
+    b : ndarray, shape (n, m)
+    state_gain : ndarray, shape (m, n)
+        ``Kx``.
+    input_gain : ndarray, shape (m, m)
+        ``Ku``.
+
+    Returns
+    -------
+    ndarray, shape (n+m, n+m)
+    """
+    m = b.shape[1]
+    hold = np.eye(m) - input_gain
+    return np.block([[a - b @ state_gain, b @ hold], [-state_gain, hold]])
+
+
+def closed_loop(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    state_gain: NDArray[np.float64],
+    input_gain: NDArray[np.float64],
+) -> ClosedLoop:
+    """Return the closed loop's matrix, poles (``scipy.linalg.eigvals``) and verdict.
+
+    Parameters are as for :func:`closed_loop_matrix`.
+    """
+    matrix = closed_loop_matrix(a, b, state_gain, input_gain)
+    poles = scipy.linalg.eigvals(matrix, check_finite=False)
+    poles = poles[np.argsort(-np.abs(poles), kind="stable")]
+    radius = float(np.abs(poles).max())
+    return ClosedLoop(matrix=matrix, poles=poles, spectral_radius=radius, stable=radius < 1.0)
+
+
+def design_warnings(*, condition_number: float, loop: ClosedLoop) -> list[Diagnostic]:
+    """Return the warnings of a design that solved but may not behave.
+
+    Parameters
+    ----------
+    condition_number : float
+        Exact 2-norm condition number of the Hessian.
+    loop : ClosedLoop
+
+    Returns
+    -------
+    list of Diagnostic
+        ``ill_conditioned_hessian``, ``pole_near_unit_circle`` and ``unstable_closed_loop``,
+        in that order, each at most once.
+    """
+    found: list[Diagnostic] = []
+    if condition_number > ILL_CONDITIONED:
+        found.append(
+            Diagnostic(
+                "ill_conditioned_hessian",
+                f"The Hessian is near-singular (condition number {condition_number:.3g} above "
+                f"{ILL_CONDITIONED:.0e}): the gains keep only about "
+                f"{max(0, 16 - int(np.log10(condition_number)))} significant digits. Raise the move "
+                f"weights or shorten the control horizon.",
+            )
+        )
+    moduli = np.abs(loop.poles)
+    near = moduli[np.abs(moduli - 1.0) < UNIT_CIRCLE_MARGIN]
+    if near.size:
+        found.append(
+            Diagnostic(
+                "pole_near_unit_circle",
+                f"{near.size} closed-loop pole(s) lie within {UNIT_CIRCLE_MARGIN:g} of the unit "
+                f"circle (largest modulus {near.max():.6f}): the loop is nearly marginal and "
+                f"will respond very slowly or oscillate in that mode.",
+            )
+        )
+    if not loop.stable:
+        found.append(
+            Diagnostic(
+                "unstable_closed_loop",
+                f"The closed loop is unstable: spectral radius {loop.spectral_radius:.6f} is not "
+                f"below 1. Lengthen the prediction horizon, raise the move weights, or check "
+                f"the model.",
+            )
+        )
+    return found

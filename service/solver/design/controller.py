@@ -1,0 +1,206 @@
+"""One call from plant matrices and tuning to a checked predictive controller.
+
+``design_controller`` strings the solver together: prediction matrices, weighted Hessian,
+positive-definiteness check and Cholesky factor, first-move gains, closed loop and warnings.
+Two options change the problem, both off by default: a Riccati terminal weight on the last
+predicted ``[x; u]`` (:mod:`service.solver.design.terminal`) and move blocking
+(:mod:`service.solver.design.blocking`).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from service.solver.design.blocking import blocked_prediction, check_blocking, select_moves
+from service.solver.design.closed_loop import ClosedLoop, Diagnostic, closed_loop, design_warnings
+from service.solver.design.gain import (
+    FactoredHessian,
+    PredictiveGain,
+    factor_hessian,
+    first_move_gain,
+    hessian_matrix,
+    toeplitz_hessian,
+    weighted_moves,
+)
+from service.solver.design.prediction import Prediction, prediction_matrices
+from service.solver.design.terminal import (
+    TerminalKind,
+    TerminalWeight,
+    terminal_first_move_gain,
+    terminal_weight,
+    with_terminal_gain,
+)
+from service.solver.design.weights import weight_matrix, weight_root
+
+__all__ = ["ControllerDesign", "design_controller"]
+
+
+@dataclass(frozen=True)
+class ControllerDesign:
+    """Everything the unconstrained design produces, as arrays.
+
+    Attributes
+    ----------
+    prediction : Prediction
+        ``Fx``, ``Fu``, ``G``.  With blocking, ``G M`` (the free moves' columns only).
+    output_weight : ndarray, shape (p, p)
+        ``Q`` per penalized step.
+    move_weight : ndarray, shape (m, m)
+        ``R`` per move.
+    output_root : ndarray, shape (p, p)
+        ``W`` with ``W' W = Q``.
+    weighted : ndarray, shape (Np*p, Hu*m)
+        ``Wbar G`` (``nb*m`` columns with blocking; the last step's rows zero with the
+        terminal weight, whose own rows ``W_P Gamma`` are in ``terminal.weighted_moves``).
+    hessian : FactoredHessian
+        Includes the terminal term ``Gamma' P Gamma`` when there is one.
+    gain : PredictiveGain
+        With the terminal weight ``Kx``, ``Ku`` and ``Kr`` include the terminal term and
+        ``Kh`` is its stage part: ``du = Kh E + Kt (xi_s - Phi xi)``.
+    loop : ClosedLoop
+    warnings : list of Diagnostic
+    terminal : TerminalWeight or None
+        The Riccati terminal weight, when asked for.
+    terminal_gain : ndarray, shape (m, n+m), or None
+        ``Kt`` of the terminal weight.
+    blocking : tuple of int or None
+        The free move steps, when the moves are blocked.
+    """
+
+    prediction: Prediction
+    output_weight: NDArray[np.float64]
+    move_weight: NDArray[np.float64]
+    output_root: NDArray[np.float64]
+    weighted: NDArray[np.float64]
+    hessian: FactoredHessian
+    gain: PredictiveGain
+    loop: ClosedLoop
+    warnings: list[Diagnostic]
+    terminal: TerminalWeight | None = None
+    terminal_gain: NDArray[np.float64] | None = None
+    blocking: tuple[int, ...] | None = None
+
+
+def design_controller(
+    a: ArrayLike,
+    b: ArrayLike,
+    c: ArrayLike,
+    *,
+    output_weight: ArrayLike,
+    move_weight: ArrayLike,
+    prediction: int,
+    control: int,
+    first_penalized: int = 1,
+    input_labels: Sequence[str] | None = None,
+    terminal: TerminalKind = "none",
+    blocking: Sequence[int] | None = None,
+) -> ControllerDesign:
+    """Design the unconstrained predictive controller of the design notes.
+
+    Parameters
+    ----------
+    a : array_like, shape (n, n)
+        Discrete state matrix.
+    b : array_like, shape (n, m)
+        Input matrix of the manipulated variables.
+    c : array_like, shape (p, n)
+        Controlled-output matrix.
+    output_weight : array_like, shape (p,) or (p, p)
+        ``Q``: a diagonal or a full symmetric positive-semidefinite matrix.
+    move_weight : array_like, shape (m,) or (m, m)
+        ``R``: a diagonal or a full symmetric positive-semidefinite matrix.
+    prediction, control, first_penalized : int
+        ``Hp``, ``Hu`` and ``Hw`` with ``1 <= Hu <= Hp`` and ``1 <= Hw <= Hp``.
+    input_labels : sequence of str, optional
+        Input names used in error messages.
+    terminal : {"none", "riccati"}, optional
+        ``"riccati"`` puts the stabilizing Riccati solution of the incremental system on the
+        last predicted ``[x; u]`` in place of the last step's output weight
+        (:mod:`service.solver.design.terminal`).  Default ``"none"``.
+    blocking : sequence of int, optional
+        Steps (0-based, first 0, increasing, below ``Hu``) at which moves are allowed; the
+        moves in between are zero, so the input is held (:mod:`service.solver.design.blocking`).
+        Default: every step free.
+
+    Returns
+    -------
+    ControllerDesign
+
+    Raises
+    ------
+    service.errors.HessianNotPositiveDefinite
+        When unpenalized moves are invisible to the outputs.
+    service.errors.NumericalError
+        Pointer ``/weights/terminal`` when the Riccati terminal weight does not exist.
+
+    Examples
+    --------
+    A scalar plant with one-step horizons; the gain follows by hand (see the tests):
+
+    >>> d = design_controller([[0.5]], [[1.0]], [[1.0]], output_weight=[1.0],
+    ...                       move_weight=[1.0], prediction=1, control=1)
+    >>> round(float(d.gain.state[0, 0]), 12)
+    0.25
+    """
+    a_ = np.asarray(a, dtype=float)
+    b_ = np.asarray(b, dtype=float)
+    c_ = np.asarray(c, dtype=float)
+    p, m = c_.shape[0], b_.shape[1]
+    q = weight_matrix(output_weight, p)
+    r = weight_matrix(move_weight, m)
+    pred = prediction_matrices(a_, b_, c_, prediction=prediction, control=control, first_penalized=first_penalized)
+    free = None if blocking is None else check_blocking(blocking, control=control)
+    if free is not None:
+        pred = blocked_prediction(pred, free)
+    moves = control if free is None else len(free)
+    root = weight_root(q)
+    weighted = weighted_moves(pred, root)
+    rows = weighted
+    term = None
+    if terminal == "riccati":
+        term = terminal_weight(a_, b_, c_, output_weight=q, move_weight=r, prediction=prediction, control=control)
+        if free is not None:
+            term = dataclasses.replace(term, moves=select_moves(term.moves, free, inputs=m))
+        weighted = weighted.copy()
+        weighted[-p:] = 0.0  # the last step's output weight gives way to P
+        rows = np.vstack([weighted, term.weighted_moves])
+    else:
+        assert terminal == "none", f"unknown terminal weight {terminal!r}"
+    if term is None and (free is None or free == tuple(range(control))):
+        matrix = toeplitz_hessian(pred, weighted, root, r)  # G keeps its block-Toeplitz form
+    else:
+        matrix = hessian_matrix(rows, r, control=moves)
+    hessian = factor_hessian(
+        matrix,
+        weighted=rows,
+        move_weight=r,
+        control=moves,
+        outputs=p,
+        input_labels=input_labels,
+    )
+    gain = first_move_gain(pred, hessian, weighted, root)
+    kt = None
+    if term is not None:
+        kt = terminal_first_move_gain(hessian, term, inputs=m)
+        gain = with_terminal_gain(gain, term, kt)
+    loop = closed_loop(a_, b_, gain.state, gain.previous_input)
+    warnings = design_warnings(condition_number=hessian.condition_number, loop=loop)
+    return ControllerDesign(
+        prediction=pred,
+        output_weight=q,
+        move_weight=r,
+        output_root=root,
+        weighted=weighted,
+        hessian=hessian,
+        gain=gain,
+        loop=loop,
+        warnings=warnings,
+        terminal=term,
+        terminal_gain=kt,
+        blocking=free,
+    )

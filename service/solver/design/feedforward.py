@@ -1,0 +1,98 @@
+"""Feed-forward from measured disturbances: the disturbance's free response and the gain Kd.
+
+With measured disturbances ``x(k+1) = A x(k) + B u(k) + Bd d(k)``, and ``d`` predicted to
+stay at its measured value ``d(k)`` over the horizon (the usual assumption for a measured
+step, common practice), the stacked prediction of the design notes gains one term ::
+
+    Z = Fx x(k) + Fu u(k-1) + Fd d(k) + G dU
+
+where block row ``i - Hw`` of ``Fd`` (``i = Hw .. Hp``) is ``Cz sum_{l<i} A^l Bd`` — the
+step response of the disturbance channel, built exactly like ``Fu`` with ``Bd`` for ``B``
+(plus ``Dd`` if the controlled outputs see the disturbance directly).  The free-response
+error becomes ``E = T - Fx x(k) - Fu u(k-1) - Fd d(k)``, so the first move ::
+
+    du(k) = Kh E = Kr r - Kx x(k) - Ku u(k-1) - Kd d(k),       Kd = Kh Fd
+
+``Kh`` does not depend on the disturbance: feed-forward adds one gain and changes neither
+the Hessian nor the closed-loop poles.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from service.solver.design.prediction import step_response_coefficients
+
+__all__ = ["disturbance_free_response", "feedforward_gain"]
+
+
+def disturbance_free_response(
+    a: ArrayLike,
+    b_disturbance: ArrayLike,
+    c: ArrayLike,
+    *,
+    prediction: int,
+    first_penalized: int = 1,
+    feed_through: ArrayLike | None = None,
+) -> NDArray[np.float64]:
+    """Return ``Fd``, the predicted controlled outputs per unit disturbance held from now.
+
+    Parameters
+    ----------
+    a : array_like, shape (n, n)
+        Discrete state matrix.
+    b_disturbance : array_like, shape (n, md)
+        ``Bd``, the measured disturbances' input matrix.
+    c : array_like, shape (p, n)
+        Controlled-output matrix ``Cz``.
+    prediction : int, keyword-only
+        ``Hp >= 1``.
+    first_penalized : int, keyword-only
+        ``1 <= Hw <= Hp`` (default 1).
+    feed_through : array_like, shape (p, md), optional
+        ``Dd``, added to every block row (the controlled outputs see ``d(k+i) = d(k)``).
+
+    Returns
+    -------
+    ndarray, shape (Np*p, md)
+        Block row ``i - Hw`` is ``Cz sum_{l<i} A^l Bd (+ Dd)``, ``Np = Hp - Hw + 1``.
+
+    Notes
+    -----
+    The step responses come from
+    :func:`service.solver.design.prediction.step_response_coefficients`, the recursion that
+    builds ``Fu``.
+    """
+    hp, hw = prediction, first_penalized
+    assert 1 <= hw <= hp, (hp, hw)
+    a_ = np.asarray(a, dtype=float)
+    bd = np.asarray(b_disturbance, dtype=float)
+    c_ = np.asarray(c, dtype=float)
+    _, step = step_response_coefficients(a_, bd, c_, hp)
+    blocks = step[hw:]  # (Np, p, md)
+    if feed_through is not None:
+        dd = np.asarray(feed_through, dtype=float)
+        assert dd.shape == blocks.shape[1:], (dd.shape, blocks.shape)
+        blocks = blocks + dd
+    return blocks.reshape(-1, bd.shape[1])
+
+
+def feedforward_gain(horizon_gain: ArrayLike, free_disturbance: ArrayLike) -> NDArray[np.float64]:
+    """Return ``Kd = Kh Fd`` for ``du(k) = Kr r - Kx x(k) - Ku u(k-1) - Kd d(k)``.
+
+    Parameters
+    ----------
+    horizon_gain : array_like, shape (m, Np*p)
+        ``Kh`` (``PredictiveGain.horizon``).
+    free_disturbance : array_like, shape (Np*p, md)
+        ``Fd`` from :func:`disturbance_free_response`, for the same horizons.
+
+    Returns
+    -------
+    ndarray, shape (m, md)
+    """
+    kh = np.asarray(horizon_gain, dtype=float)
+    fd = np.asarray(free_disturbance, dtype=float)
+    assert kh.shape[1] == fd.shape[0], (kh.shape, fd.shape)
+    return kh @ fd

@@ -1,0 +1,354 @@
+"""The unconstrained predictive controller: Hessian, its factor, optimal moves and gains.
+
+With ``E = T - Fx x(k) - Fu u(k-1)`` the free-response error, the cost
+``V = |G dU - E|^2_Q + |dU|^2_R`` is minimised by ::
+
+    H dU* = G' Q E,        H = G' Q G + R        (Q, R block diagonal over the steps)
+
+Only the first move is applied, so the controller is the fixed law ::
+
+    du(k) = Kh E = Kr r - Kx x(k) - Ku u(k-1)
+
+with ``Kh`` the first m rows of ``H^-1 G' Q``, ``Kx = Kh Fx``, ``Ku = Kh Fu`` and
+``Kr = Kh (1 (x) I_p)``.  ``H`` is factored once by Cholesky (``scipy.linalg.cho_factor``);
+no inverse is formed.  The normal equations of a weighted linear least-squares problem
+(common practice; e.g. Golub and Van Loan, *Matrix Computations*, 4th ed., section 6.1).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg
+from numpy.typing import NDArray
+
+from service.errors import HessianNotPositiveDefinite
+from service.solver.design.prediction import Prediction
+from service.solver.design.spectrum import extreme_eigenvalues
+
+__all__ = [
+    "FactoredHessian",
+    "PredictiveGain",
+    "factor_hessian",
+    "first_move_gain",
+    "hessian_matrix",
+    "optimal_moves",
+    "toeplitz_hessian",
+    "weighted_moves",
+]
+
+
+@dataclass(frozen=True)
+class FactoredHessian:
+    """The Hessian ``H`` (Hu*m square), its Cholesky factor and its extreme eigenvalues.
+
+    Attributes
+    ----------
+    matrix : ndarray, shape (Hu*m, Hu*m)
+    factor : tuple (ndarray, bool)
+        ``scipy.linalg.cho_factor`` output, for ``scipy.linalg.cho_solve``.
+    smallest_eigenvalue, largest_eigenvalue : float
+        From :func:`service.solver.design.spectrum.extreme_eigenvalues`.
+    """
+
+    matrix: NDArray[np.float64]
+    factor: tuple[NDArray[np.float64], bool]
+    smallest_eigenvalue: float
+    largest_eigenvalue: float
+
+    @property
+    def condition_number(self) -> float:
+        """Exact 2-norm condition number ``l_max / l_min`` of the symmetric positive-definite H."""
+        return self.largest_eigenvalue / self.smallest_eigenvalue
+
+    def solve(self, rhs: NDArray[np.float64]) -> NDArray[np.float64]:
+        """Return ``H^-1 rhs`` by two triangular solves."""
+        return scipy.linalg.cho_solve(self.factor, rhs, check_finite=False)
+
+
+@dataclass(frozen=True)
+class PredictiveGain:
+    """The receding-horizon first-move gain in both forms of the formulation.
+
+    Attributes
+    ----------
+    horizon : ndarray, shape (m, Np*p)
+        ``Kh``: ``du(k) = Kh E`` for any reference trajectory.
+    state : ndarray, shape (m, n)
+        ``Kx``.
+    previous_input : ndarray, shape (m, m)
+        ``Ku``.
+    setpoint : ndarray, shape (m, p)
+        ``Kr``: ``du(k) = Kr r - Kx x(k) - Ku u(k-1)`` for a constant setpoint ``r``.
+    """
+
+    horizon: NDArray[np.float64]
+    state: NDArray[np.float64]
+    previous_input: NDArray[np.float64]
+    setpoint: NDArray[np.float64]
+
+
+def weighted_moves(prediction: Prediction, output_root: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Return ``Wbar G`` where ``Wbar = blockdiag(W, ..., W)`` and ``W' W = Q``.
+
+    Parameters
+    ----------
+    prediction : Prediction
+        Holds ``G`` of shape (Np*p, Hu*m).
+    output_root : ndarray, shape (p, p)
+        Square root ``W`` of the output weight (``service.solver.design.weights.weight_root``).
+
+    Returns
+    -------
+    ndarray, shape (Np*p, Hu*m)
+    """
+    g = prediction.moves
+    p = output_root.shape[0]
+    if np.count_nonzero(output_root - np.diag(np.diag(output_root))) == 0:
+        scale = np.tile(np.diag(output_root), g.shape[0] // p)
+        return g * scale[:, None]
+    blocks = g.reshape(-1, p, g.shape[1])
+    return np.einsum("ij,kjl->kil", output_root, blocks).reshape(g.shape)
+
+
+def hessian_matrix(
+    weighted: NDArray[np.float64], move_weight: NDArray[np.float64], *, control: int
+) -> NDArray[np.float64]:
+    """Return ``H = (Wbar G)'(Wbar G) + blockdiag(R, ..., R)``.
+
+    Parameters
+    ----------
+    weighted : ndarray, shape (Np*p, Hu*m)
+        ``Wbar G`` from :func:`weighted_moves`.
+    move_weight : ndarray, shape (m, m)
+        ``R``, symmetric positive semidefinite.
+    control : int
+        ``Hu``.
+
+    Returns
+    -------
+    ndarray, shape (Hu*m, Hu*m)
+        Symmetric (exactly: the lower triangle is mirrored).
+    """
+    m = move_weight.shape[0]
+    h = weighted.T @ weighted
+    for j in range(control):
+        h[j * m : (j + 1) * m, j * m : (j + 1) * m] += move_weight
+    return np.triu(h) + np.triu(h, 1).T
+
+
+def toeplitz_hessian(
+    prediction: Prediction,
+    weighted: NDArray[np.float64],
+    output_root: NDArray[np.float64],
+    move_weight: NDArray[np.float64],
+) -> NDArray[np.float64]:
+    """Return the same ``H`` as :func:`hessian_matrix`, from the block-Toeplitz structure of ``G``.
+
+    Parameters
+    ----------
+    prediction : Prediction
+        Unblocked (``G_ij = S_(i-j)`` for every move step).
+    weighted : ndarray, shape (Np*p, Hu*m)
+        ``Wbar G`` from :func:`weighted_moves`.
+    output_root : ndarray, shape (p, p)
+        ``W`` with ``W' W = Q``.
+    move_weight : ndarray, shape (m, m)
+
+    Returns
+    -------
+    ndarray, shape (Hu*m, Hu*m)
+        Symmetric (the lower triangle is mirrored).
+
+    Notes
+    -----
+    With ``V_k = W S_k`` (zero for ``k <= 0``), block ``(j, k)`` of ``G' Q G`` is
+    ``sum_{i=Hw}^{Hp} V_(i-j)' V_(i-k)``; shifting both indices by one moves the sum's
+    window, so ::
+
+        H0(j+1, k+1) = H0(j, k) + V_(Hw-1-j)' V_(Hw-1-k) - V_(Hp-j)' V_(Hp-k)
+
+    Block row 0 costs one thin product ``(Wbar G)[:, :m]' (Wbar G)``, the two corrections are
+    the Gram matrices of ``Hu`` step-response blocks each, and the rest is a running sum
+    down each block diagonal: about ``Np p (Hu m) m`` operations instead of
+    ``Np p (Hu m)^2`` for the dense product.
+    """
+    hp, hu, hw = prediction.prediction, prediction.control, prediction.first_penalized
+    m = move_weight.shape[0]
+    steps = prediction.step_response  # (Hp+1, p, m), S_0 = 0
+
+    def blocks(first: int) -> NDArray[np.float64]:
+        """[V_first, V_(first-1), ..., V_(first-Hu+1)] as a p x Hu*m matrix (V_k = 0 for k <= 0)."""
+        index = first - np.arange(hu)
+        stacked = np.where((index > 0)[:, None, None], steps[np.clip(index, 0, hp)], 0.0)
+        return np.einsum("ij,kjl->ikl", output_root, stacked).reshape(output_root.shape[0], hu * m)
+
+    early, late = blocks(hw - 1), blocks(hp)
+    step = early.T @ early - late.T @ late  # increments H0(j+1, k+1) - H0(j, k)
+    h = np.empty((hu * m, hu * m))
+    h[:m] = weighted[:, :m].T @ weighted
+    for j in range(1, hu):
+        rows, prev = slice(j * m, (j + 1) * m), slice((j - 1) * m, j * m)
+        h[rows, j * m :] = h[prev, (j - 1) * m : -m] + step[prev, (j - 1) * m : -m]
+    for j in range(hu):
+        h[j * m : (j + 1) * m, j * m : (j + 1) * m] += move_weight
+    return np.triu(h) + np.triu(h, 1).T
+
+
+def _unseen_free_moves(
+    weighted: NDArray[np.float64], move_weight: NDArray[np.float64], control: int
+) -> tuple[list[int], int, int]:
+    """Inputs with an unpenalized move direction, and the rank G shows over those directions."""
+    m = move_weight.shape[0]
+    values, vectors = np.linalg.eigh(move_weight)
+    free = vectors[:, values <= max(values.max(initial=0.0), 1.0) * m * np.finfo(float).eps]
+    if free.shape[1] == 0:
+        return [], 0, 0
+    inputs = sorted({int(i) for i in np.nonzero(np.abs(free).max(axis=1) > 1e-12)[0]})
+    directions = np.kron(np.eye(control), free)  # free move directions over the horizon
+    seen = weighted @ directions
+    rank = int(np.linalg.matrix_rank(seen)) if seen.size else 0
+    return inputs, rank, directions.shape[1]
+
+
+def factor_hessian(
+    hessian: NDArray[np.float64],
+    *,
+    weighted: NDArray[np.float64],
+    move_weight: NDArray[np.float64],
+    control: int,
+    outputs: int | None = None,
+    input_labels: Sequence[str] | None = None,
+) -> FactoredHessian:
+    """Check that ``H`` is positive definite, then factor it by Cholesky.
+
+    Parameters
+    ----------
+    hessian : ndarray, shape (Hu*m, Hu*m)
+    weighted : ndarray, shape (Np*p, Hu*m)
+        ``Wbar G``, used only to explain a failure.
+    move_weight : ndarray, shape (m, m)
+    control : int
+        ``Hu``.
+    outputs : int, optional
+        Number of controlled outputs ``p``, to explain a failure with more inputs than outputs.
+    input_labels : sequence of str, optional
+        Names of the m inputs for the error message (default ``u1 .. um``).
+
+    Returns
+    -------
+    FactoredHessian
+
+    Raises
+    ------
+    HessianNotPositiveDefinite
+        When Cholesky fails, or the smallest eigenvalue is not above ``size * eps * l_max``
+        (the rank tolerance of ``numpy.linalg.matrix_rank``).  ``H`` is singular exactly when
+        a move direction has zero move weight and ``G`` maps it to zero, i.e. ``G`` lacks full
+        column rank over the unpenalized moves.
+    """
+    factor: tuple[NDArray[np.float64], bool] | None
+    try:
+        factor = scipy.linalg.cho_factor(hessian, lower=True, check_finite=False)
+    except np.linalg.LinAlgError:
+        factor = None
+    if factor is not None:
+        low, high = extreme_eigenvalues(hessian)
+        if low <= hessian.shape[0] * np.finfo(float).eps * max(abs(high), np.finfo(float).tiny):
+            factor = None
+    if factor is None:
+        eigenvalues = scipy.linalg.eigvalsh(hessian, check_finite=False)  # for the message only
+        m = move_weight.shape[0]
+        labels = list(input_labels) if input_labels else [f"u{j + 1}" for j in range(m)]
+        inputs, rank, count = _unseen_free_moves(weighted, move_weight, control)
+        if inputs:
+            names = ", ".join(labels[j] for j in inputs)
+            why = (
+                f" With {m} inputs and only {outputs} controlled output(s), some combinations "
+                f"of moves leave every output unchanged."
+                if outputs is not None and m > outputs
+                else ""
+            )
+            detail = (
+                f"The Hessian G'QG + R is not positive definite (smallest eigenvalue "
+                f"{eigenvalues[0]:.3g}): the moves of {names} carry no move penalty, and the "
+                f"outputs cannot see all of them (the step-response matrix has rank {rank} over "
+                f"those {count} move directions; zero move weight needs full column rank "
+                f"there).{why} Give these inputs a positive move weight, or remove inputs that "
+                f"act in the same direction."
+            )
+        else:
+            detail = (
+                f"The Hessian G'QG + R is not numerically positive definite (eigenvalues from "
+                f"{eigenvalues[0]:.3g} to {eigenvalues[-1]:.3g}). Raise the move weights."
+            )
+        raise HessianNotPositiveDefinite(detail, pointer="/weights/move")
+    return FactoredHessian(matrix=hessian, factor=factor, smallest_eigenvalue=low, largest_eigenvalue=high)
+
+
+def first_move_gain(
+    prediction: Prediction,
+    hessian: FactoredHessian,
+    weighted: NDArray[np.float64],
+    output_root: NDArray[np.float64],
+) -> PredictiveGain:
+    """Return ``Kh`` (first m rows of ``H^-1 G' Q``) and ``Kx``, ``Ku``, ``Kr``.
+
+    Parameters
+    ----------
+    prediction : Prediction
+    hessian : FactoredHessian
+    weighted : ndarray, shape (Np*p, Hu*m)
+        ``Wbar G``.
+    output_root : ndarray, shape (p, p)
+        ``W`` with ``W' W = Q``.
+
+    Returns
+    -------
+    PredictiveGain
+
+    Notes
+    -----
+    ``H^-1`` is symmetric, so the first m rows of ``H^-1 G' Q`` are ``Y' G' Q`` with
+    ``Y = H^-1 [I_m; 0]``: m pairs of triangular solves instead of Np*p.  Then
+    ``G' Q = (Wbar G)' Wbar``.
+    """
+    m = prediction.free_input.shape[1]
+    p = output_root.shape[0]
+    selector = np.zeros((hessian.matrix.shape[0], m))
+    selector[:m, :m] = np.eye(m)
+    y = hessian.solve(selector)  # (Hu*m, m)
+    seen = (weighted @ y).reshape(-1, p, m)  # blocks of Wbar G Y
+    kh = np.einsum("ji,kjl->lki", output_root, seen).reshape(m, -1)  # (Wbar' Wbar G Y)'
+    kx = kh @ prediction.free_state
+    ku = kh @ prediction.free_input
+    kr = kh.reshape(m, -1, p).sum(axis=1)
+    return PredictiveGain(horizon=kh, state=kx, previous_input=ku, setpoint=kr)
+
+
+def optimal_moves(
+    hessian: FactoredHessian,
+    weighted: NDArray[np.float64],
+    output_root: NDArray[np.float64],
+    error: NDArray[np.float64],
+) -> NDArray[np.float64]:
+    """Return the whole optimal move sequence ``dU* = H^-1 G' Q E``.
+
+    Parameters
+    ----------
+    hessian : FactoredHessian
+    weighted : ndarray, shape (Np*p, Hu*m)
+    output_root : ndarray, shape (p, p)
+    error : ndarray, shape (Np*p,)
+        Free-response error ``E = T - Fx x(k) - Fu u(k-1)``.
+
+    Returns
+    -------
+    ndarray, shape (Hu*m,)
+        Moves ``[du(k); du(k+1); ...; du(k+Hu-1)]``.
+    """
+    p = output_root.shape[0]
+    scaled = (error.reshape(-1, p) @ output_root.T).reshape(-1)  # Wbar E
+    return hessian.solve(weighted.T @ scaled)

@@ -1,0 +1,415 @@
+"""The Riccati terminal weight: the infinite-horizon cost to go on the last predicted [x; u].
+
+The incremental ("velocity") form of the plant, on ``xi(k) = [x(k); u(k-1)]`` with the move
+``du(k)`` as its input, is ::
+
+    xi(k+1) = A_i xi(k) + B_i du(k),    A_i = [[A, B], [0, I]],   B_i = [B; I],
+    z(k)    = C_i xi(k),                C_i = [C, 0]
+
+and the stage cost of the design notes is ``|C_i xi|^2_Q + |du|^2_R``.  The stabilizing
+solution ``P`` of the discrete algebraic Riccati equation ::
+
+    P = A_i' P A_i - A_i' P B_i (R + B_i' P B_i)^-1 B_i' P A_i + C_i' Q C_i
+
+is the optimal cost of the infinite-horizon problem from ``xi``: ``V(xi) = xi' P xi``.  With
+the terminal option the last penalized step ``Hp`` carries ``|xi(k+Hp) - xi_s|^2_P`` instead
+of its output weight ``|z(k+Hp) - r|^2_Q`` (``P`` already contains ``C_i' Q C_i``).  By
+dynamic programming (Bellman's principle of optimality) the horizon cost is then the
+infinite-horizon cost, so with ``Hu = Hp`` and ``Hw = 1`` the first move equals the
+infinite-horizon LQR move ``du = -K xi``, ``K = (R + B_i' P B_i)^-1 B_i' P A_i``, for every
+horizon, ``Hp = 1`` included, and the loop is stable whenever the stabilizing solution
+exists (standard results of linear-quadratic regulation; common practice).  The stage cost
+at ``i = 0`` the horizon cost omits is a constant and does not change the minimiser.
+
+Steady-state target.  For a constant setpoint ``r`` the terminal deviation is taken from
+the steady state ``xi_s = [x_s; u_s] = S_r r`` of :mod:`service.solver.estimation.target` (exact when
+the setpoint is reachable; the ``Q``-weighted least-squares compromise otherwise).  Every
+steady state with ``z = r`` gives the same terminal cost: two of them differ by an
+equilibrium of ``A_i`` with zero output, a direction in the null space of ``P``.
+
+The terminal prediction.  With ``du(k+j) = 0`` for ``j >= Hu`` ::
+
+    xi(k+Hp) = Phi xi(k) + Gamma dU,      Phi = A_i^Hp,    Gamma_j = A_i^(Hp-1-j) B_i
+
+formed by the recursion ``M_l = A_i M_(l-1)`` (no matrix power).  The terminal term adds ::
+
+    H += Gamma' P Gamma,        G'Q E  +=  Gamma' P (xi_s - Phi xi(k))
+
+to the Hessian and the gradient of the design notes, i.e. ``n + m`` extra rows
+``W_P Gamma`` (``W_P' W_P = P``) under the weighted step-response matrix.  The first-move
+law becomes ::
+
+    du(k) = Kh E + Kt (xi_s - Phi xi(k)),     Kt = first m rows of H^-1 Gamma' P
+
+so ``Kx = Kh Fx + Kt Phi_x``, ``Ku = Kh Fu + Kt Phi_u`` and ``Kr = Kh (1 (x) I) + Kt S_r``
+(``Phi = [Phi_x, Phi_u]``).  ``Kh`` keeps the last stage's columns at zero.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Literal
+
+import numpy as np
+import scipy.linalg
+from numpy.typing import NDArray
+
+from service.errors import NumericalError
+from service.solver.design.gain import FactoredHessian, PredictiveGain
+from service.solver.design.weights import weight_root
+from service.solver.estimation.target import target_problem
+
+__all__ = [
+    "TERMINAL_POINTER",
+    "TerminalKind",
+    "TerminalWeight",
+    "incremental_system",
+    "riccati_terminal_weight",
+    "terminal_first_move_gain",
+    "terminal_gradient",
+    "terminal_prediction",
+    "terminal_weight",
+    "with_terminal_gain",
+]
+
+TerminalKind = Literal["none", "riccati"]
+
+#: The request field a Riccati failure points at.
+TERMINAL_POINTER = "/weights/terminal"
+#: A closed loop ``A_i - B_i K`` with a pole this close to the unit circle (or outside) is not
+#: the stabilizing solution (common practice for a marginal eigenvalue in double precision).
+_STABILIZING_MARGIN = 1e-8
+#: Largest relative residual of the Riccati equation accepted from the solver: ``scipy`` can
+#: return a matrix that does not solve the equation when the problem has no stabilizing
+#: solution, without raising (common practice: put the answer back into the equation).
+_RESIDUAL = 1e-8
+
+
+@dataclass(frozen=True)
+class TerminalWeight:
+    """The Riccati terminal weight of one design and its prediction.
+
+    Attributes
+    ----------
+    matrix : ndarray, shape (n+m, n+m)
+        ``P``, the stabilizing solution of the incremental Riccati equation (symmetric).
+    root : ndarray, shape (n+m, n+m)
+        ``W_P`` with ``W_P' W_P = P``.
+    lqr_gain : ndarray, shape (m, n+m)
+        ``K = (R + B_i' P B_i)^-1 B_i' P A_i``, the infinite-horizon move law ``du = -K xi``.
+    free_response : ndarray, shape (n+m, n+m)
+        ``Phi = A_i^Hp``: ``xi(k+Hp)`` from ``xi(k) = [x(k); u(k-1)]`` with no moves.
+    moves : ndarray, shape (n+m, Hu*m) or (n+m, nb*m)
+        ``Gamma``: ``xi(k+Hp)`` from the moves (only the free moves' columns with blocking).
+    target : ndarray, shape (n+m, p)
+        ``S_r``: the steady state ``xi_s = S_r r`` for a constant setpoint.
+    """
+
+    matrix: NDArray[np.float64]
+    root: NDArray[np.float64]
+    lqr_gain: NDArray[np.float64]
+    free_response: NDArray[np.float64]
+    moves: NDArray[np.float64]
+    target: NDArray[np.float64]
+
+    @property
+    def weighted_moves(self) -> NDArray[np.float64]:
+        """``W_P Gamma``, the rows the terminal term adds under ``Wbar G``; shape (n+m, cols)."""
+        return self.root @ self.moves
+
+
+def incremental_system(
+    a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64]
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+    """Return ``(A_i, B_i, C_i)`` of the incremental system on ``[x; u(k-1)]``.
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, n)
+    b : ndarray, shape (n, m)
+    c : ndarray, shape (p, n)
+
+    Returns
+    -------
+    a_i : ndarray, shape (n+m, n+m)
+        ``[[A, B], [0, I]]``.
+    b_i : ndarray, shape (n+m, m)
+        ``[B; I]``.
+    c_i : ndarray, shape (p, n+m)
+        ``[C, 0]``.
+    """
+    n, m = b.shape
+    a_i = np.block([[a, b], [np.zeros((m, n)), np.eye(m)]])
+    b_i = np.vstack([b, np.eye(m)])
+    c_i = np.hstack([c, np.zeros((c.shape[0], m))])
+    return a_i, b_i, c_i
+
+
+def _rank_drop(matrix: NDArray[np.complex128]) -> bool:
+    """Whether a tall or wide PBH matrix has lost rank (relative tolerance 1e-9, common practice)."""
+    s = np.linalg.svd(matrix, compute_uv=False)
+    return bool(s.size == 0 or s[-1] <= 1e-9 * max(float(s[0]), np.finfo(float).tiny))
+
+
+def _why_no_stabilizing_solution(a_i: NDArray[np.float64], b_i: NDArray[np.float64], seen: NDArray[np.float64]) -> str:
+    """Name the mode that spoils the Riccati equation (PBH tests on the unit circle and outside)."""
+    size = a_i.shape[0]
+    for z in scipy.linalg.eigvals(a_i, check_finite=False):
+        if abs(z) < 1.0 - 1e-9:
+            continue
+        shifted = z * np.eye(size) - a_i
+        where = f"z = {z.real:.6g}" if abs(z.imag) < 1e-12 else f"z = {z.real:.6g}{z.imag:+.6g}j"
+        if _rank_drop(np.hstack([shifted, b_i.astype(complex)])):
+            return (
+                f"the mode of [x; u] at {where} cannot be moved by the inputs (the incremental "
+                f"system is not stabilizable)"
+            )
+        if abs(abs(z) - 1.0) <= 1e-9 and _rank_drop(np.vstack([shifted, seen.astype(complex)])):
+            return (
+                f"the mode of [x; u] at {where}, on the unit circle, changes no weighted "
+                f"controlled output (with more manipulated variables than weighted controlled "
+                f"outputs, or a plant zero at z = 1, some input combination leaves every "
+                f"output unchanged at steady state)"
+            )
+    return "the solver found no stabilizing solution"
+
+
+def riccati_terminal_weight(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    output_weight: NDArray[np.float64],
+    move_weight: NDArray[np.float64],
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Return the stabilizing Riccati solution ``P`` and the LQR gain ``K`` of the incremental system.
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, n)
+    b : ndarray, shape (n, m)
+    c : ndarray, shape (p, n)
+        Controlled outputs.
+    output_weight : ndarray, shape (p, p)
+        ``Q``.
+    move_weight : ndarray, shape (m, m)
+        ``R``.
+
+    Returns
+    -------
+    p : ndarray, shape (n+m, n+m)
+        Symmetric stabilizing solution (``scipy.linalg.solve_discrete_are``).
+    k : ndarray, shape (m, n+m)
+        ``(R + B_i' P B_i)^-1 B_i' P A_i``, by a Cholesky solve.
+
+    Raises
+    ------
+    service.errors.NumericalError
+        Pointer ``/weights/terminal``, when the equation has no stabilizing solution: a mode
+        of ``[x; u]`` on or outside the unit circle that the moves cannot reach, or one on the
+        unit circle that no weighted output sees (e.g. more inputs than controlled outputs),
+        or ``R + B_i' P B_i`` singular.  ``scipy`` can return a non-stabilizing matrix, or
+        one that does not solve the equation, in such cases without raising, so the
+        residual and the closed loop ``A_i - B_i K`` are checked explicitly.
+    """
+    a_i, b_i, c_i = incremental_system(a, b, c)
+    state_weight = c_i.T @ output_weight @ c_i
+    seen = weight_root(output_weight) @ c_i
+    failure = ""
+    p = k = None
+    try:
+        with np.errstate(all="ignore"):
+            p = scipy.linalg.solve_discrete_are(a_i, b_i, state_weight, move_weight)
+        p = 0.5 * (p + p.T)
+        lhs = move_weight + b_i.T @ p @ b_i
+        k = scipy.linalg.cho_solve(scipy.linalg.cho_factor(0.5 * (lhs + lhs.T), lower=True), b_i.T @ p @ a_i)
+    except (np.linalg.LinAlgError, ValueError) as exc:
+        failure = str(exc)
+    if p is not None and k is not None and np.all(np.isfinite(p)) and np.all(np.isfinite(k)):
+        residual = a_i.T @ p @ a_i - a_i.T @ p @ b_i @ k + state_weight - p
+        scale = max(1.0, float(np.abs(p).max()), float(np.abs(state_weight).max()))
+        radius = float(np.abs(scipy.linalg.eigvals(a_i - b_i @ k, check_finite=False)).max(initial=0.0))
+        if radius < 1.0 - _STABILIZING_MARGIN and float(np.abs(residual).max()) <= _RESIDUAL * scale:
+            return p, k
+        failure = failure or (
+            f"closed-loop spectral radius {radius:.9f}, relative residual {float(np.abs(residual).max()) / scale:.3g}"
+        )
+    reason = _why_no_stabilizing_solution(a_i, b_i, seen)
+    raise NumericalError(
+        f"The Riccati terminal weight does not exist: the Riccati equation of the incremental "
+        f"system has no stabilizing solution because {reason} ({failure or 'non-finite result'}). "
+        f'Use terminal "none", weight an output that sees this mode, or give every move a '
+        f"positive move weight.",
+        pointer=TERMINAL_POINTER,
+    )
+
+
+def terminal_prediction(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    *,
+    prediction: int,
+    control: int,
+    states: int | None = None,
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Return ``Phi`` and ``Gamma`` of ``[x(k+Hp); u(k+Hp-1)] = Phi [x(k); u(k-1)] + Gamma dU``.
+
+    Parameters
+    ----------
+    a : ndarray, shape (na, na)
+        State matrix of the model the controller predicts with (the plant, or the plant with
+        disturbance states appended after the first ``states`` plant states).
+    b : ndarray, shape (na, m)
+    prediction : int
+        ``Hp >= 1``.
+    control : int
+        ``1 <= Hu <= Hp``.
+    states : int, optional
+        How many leading states belong in the terminal ``x`` (default all ``na``).
+
+    Returns
+    -------
+    free_response : ndarray, shape (states+m, na+m)
+        ``Phi``: rows of ``A_i^Hp`` for the kept states and the inputs.
+    moves : ndarray, shape (states+m, Hu*m)
+        ``Gamma``, block ``j`` is the kept rows of ``A_i^(Hp-1-j) B_i``.
+
+    Notes
+    -----
+    One recursion ``M_l = A_i M_(l-1)`` over ``l = 0..Hp`` on the incremental matrices of
+    ``(a, b)`` gives both; no matrix power is formed.
+    """
+    hp, hu = prediction, control
+    assert 1 <= hu <= hp, (hp, hu)
+    na, m = b.shape
+    kept = na if states is None else states
+    a_i = np.block([[a, b], [np.zeros((m, na)), np.eye(m)]])
+    b_i = np.vstack([b, np.eye(m)])
+    rows = np.r_[np.arange(kept), na + np.arange(m)]
+    moves = np.empty((kept + m, hu * m))
+    power = np.eye(na + m)  # A_i^l
+    for lag in range(hp):
+        j = hp - 1 - lag  # the move that acts with A_i^lag B_i on xi(k+Hp)
+        if j < hu:
+            moves[:, j * m : (j + 1) * m] = (power @ b_i)[rows]
+        power = a_i @ power
+    return power[rows], moves
+
+
+def terminal_weight(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    *,
+    output_weight: NDArray[np.float64],
+    move_weight: NDArray[np.float64],
+    prediction: int,
+    control: int,
+) -> TerminalWeight:
+    """Return the Riccati terminal weight with its prediction and steady-state target map.
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, n)
+    b : ndarray, shape (n, m)
+    c : ndarray, shape (p, n)
+    output_weight : ndarray, shape (p, p)
+        ``Q``.
+    move_weight : ndarray, shape (m, m)
+        ``R``.
+    prediction, control : int
+        ``Hp`` and ``Hu``.
+
+    Returns
+    -------
+    TerminalWeight
+
+    Raises
+    ------
+    service.errors.NumericalError
+        From :func:`riccati_terminal_weight`.
+    """
+    p, k = riccati_terminal_weight(a, b, c, output_weight, move_weight)
+    phi, gamma = terminal_prediction(a, b, prediction=prediction, control=control)
+    target = target_problem(a, b, c, output_weight=output_weight).setpoint_map
+    return TerminalWeight(matrix=p, root=weight_root(p), lqr_gain=k, free_response=phi, moves=gamma, target=target)
+
+
+def terminal_first_move_gain(hessian: FactoredHessian, terminal: TerminalWeight, *, inputs: int) -> NDArray[np.float64]:
+    """Return ``Kt``, the first m rows of ``H^-1 Gamma' P``.
+
+    Parameters
+    ----------
+    hessian : FactoredHessian
+        The Hessian with the terminal term included.
+    terminal : TerminalWeight
+    inputs : int
+        ``m``.
+
+    Returns
+    -------
+    ndarray, shape (m, n+m)
+        ``du(k) = Kh E + Kt (xi_s - Phi xi(k))``.
+
+    Notes
+    -----
+    As in :func:`service.solver.design.gain.first_move_gain`: ``Y = H^-1 [I_m; 0]`` by two
+    triangular solves, then ``Kt = Y' Gamma' P = (W_P Gamma Y)' W_P``.
+    """
+    selector = np.zeros((hessian.matrix.shape[0], inputs))
+    selector[:inputs, :inputs] = np.eye(inputs)
+    y = hessian.solve(selector)
+    return (terminal.weighted_moves @ y).T @ terminal.root
+
+
+def terminal_gradient(
+    terminal: TerminalWeight, state: NDArray[np.float64], target: NDArray[np.float64]
+) -> NDArray[np.float64]:
+    """Return the terminal term of the right-hand side, ``Gamma' P (xi_s - Phi xi(k))``.
+
+    Add it to ``G' Q E`` (:func:`service.solver.design.gain.optimal_moves` gives ``H^-1 G' Q E``
+    only) whenever the whole move sequence of a terminal design is needed, for instance as
+    the linear term of a constrained move problem.
+
+    Parameters
+    ----------
+    terminal : TerminalWeight
+    state : ndarray, shape (n+m,)
+        ``xi(k) = [x(k); u(k-1)]``.
+    target : ndarray, shape (n+m,)
+        ``xi_s`` (``terminal.target @ r`` for a constant setpoint ``r``).
+
+    Returns
+    -------
+    ndarray, shape (cols,)
+        ``(W_P Gamma)' W_P (xi_s - Phi xi)``.
+    """
+    return terminal.weighted_moves.T @ (terminal.root @ (target - terminal.free_response @ state))
+
+
+def with_terminal_gain(
+    gain: PredictiveGain, terminal: TerminalWeight, terminal_gain: NDArray[np.float64]
+) -> PredictiveGain:
+    """Add the terminal term to the state, previous-input and setpoint gains.
+
+    Parameters
+    ----------
+    gain : PredictiveGain
+        From :func:`service.solver.design.gain.first_move_gain` with the terminal Hessian (the
+        stage part: ``Kh`` and ``Kh Fx``, ``Kh Fu``, ``Kh (1 (x) I)``).
+    terminal : TerminalWeight
+    terminal_gain : ndarray, shape (m, n+m)
+        ``Kt``.
+
+    Returns
+    -------
+    PredictiveGain
+        ``Kh`` unchanged; ``Kx + Kt Phi_x``, ``Ku + Kt Phi_u``, ``Kr + Kt S_r``.
+    """
+    n = gain.state.shape[1]
+    through = terminal_gain @ terminal.free_response
+    return PredictiveGain(
+        horizon=gain.horizon,
+        state=gain.state + through[:, :n],
+        previous_input=gain.previous_input + through[:, n:],
+        setpoint=gain.setpoint + terminal_gain @ terminal.target,
+    )

@@ -1,0 +1,258 @@
+"""The controller as it runs on an estimate, and the poles of the whole loop.
+
+A :class:`ControlLoop` joins a design (the gain ``Kh``), an estimator and the steady-state
+target.  At every step, with ``x(k|k)`` the augmented estimate (plant states and disturbance
+estimate, or the measured state for ``full_state``) ::
+
+    z_s(k) = Z_r r(k) + Z_d d(k|k)                        target outputs (target.py)
+    free   = Fx_aug x(k|k) + Fu u(k-1)                     free prediction, disturbance included
+    E      = (1 (x) I_p) z_s(k) - free                     error over the horizon
+    du(k)  = Kh E                                          (or a constrained policy on E)
+
+``Fx_aug`` stacks ``[Cz, Dz] A_aug^i`` for ``i = Hw..Hp``: the prediction carries the constant
+disturbance estimate forward, which is what makes the loop offset-free.  ``Fu`` is the
+design's (the disturbance states do not respond to ``u``).
+
+The whole loop, with the plant equal to the model, on ``[x(k); x(k|k-1); u(k-1)]`` ::
+
+    x(k|k)   = L C x(k) + (I - L Cy) x(k|k-1)              =: Mx x + Mp x(k|k-1)
+    u(k)     = -K x(k|k) + (I - Ku) u(k-1),    K = Kh (Fx_aug - (1 (x) I_p) Z_d S_d)
+    x(k+1)   = A x(k) + B u(k)
+    x(k+1|k) = A_aug x(k|k) + B_aug u(k)
+
+(``S_d`` picks the disturbance estimate; setpoint at zero).  In the coordinates ``[x; e; u]``
+with ``e = [x; 0] - x(k|k-1)`` the matrix is block triangular, so its eigenvalues are those of
+the controller loop and of ``(I - L Cy) A_aug`` together: the separation principle (common
+practice).  :func:`whole_loop` forms the matrix in the original coordinates and checks the
+union numerically instead of assuming it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg
+import scipy.optimize
+from numpy.typing import NDArray
+
+from service.solver.design.controller import ControllerDesign
+from service.solver.design.prediction import prediction_matrices
+from service.solver.estimation.estimator import Estimator
+from service.solver.estimation.target import TargetProblem, target_problem
+
+__all__ = [
+    "SEPARATION_TOLERANCE",
+    "ControlLoop",
+    "WholeLoop",
+    "control_loop",
+    "estimator_target",
+    "whole_loop",
+]
+
+#: Largest distance, relative to ``max(1, spectral radius)``, between a whole-loop pole and its
+#: partner in the union of controller and estimator poles for the separation check to pass.
+#: Loose enough for the ``eps^(1/k)`` spread of a defective eigenvalue of multiplicity ``k <= 3``
+#: (common practice of eigenvalue perturbation).
+SEPARATION_TOLERANCE = 1e-5
+
+
+@dataclass(frozen=True)
+class ControlLoop:
+    """Everything the running controller needs, formed once.
+
+    Attributes
+    ----------
+    design : ControllerDesign
+    estimator : Estimator
+    target : TargetProblem
+        Target equations of the model, its disturbance layout and the design's ``Q``.
+    free_state : ndarray, shape (Np*p, na)
+        ``Fx_aug``.
+    free_input : ndarray, shape (Np*p, m)
+        ``Fu``.
+    horizon_gain : ndarray, shape (m, Np*p)
+        ``Kh``.
+    penalized_steps : int
+        ``Np``.
+    """
+
+    design: ControllerDesign
+    estimator: Estimator
+    target: TargetProblem
+    free_state: NDArray[np.float64]
+    free_input: NDArray[np.float64]
+    horizon_gain: NDArray[np.float64]
+    penalized_steps: int
+
+    def free_prediction(
+        self, estimate: NDArray[np.float64], previous_input: NDArray[np.float64]
+    ) -> NDArray[np.float64]:
+        """Return ``Fx_aug x(k|k) + Fu u(k-1)``, shape (Np*p,)."""
+        return self.free_state @ estimate + self.free_input @ previous_input
+
+    def reference(self, target_output: NDArray[np.float64]) -> NDArray[np.float64]:
+        """Return the reference trajectory ``(1 (x) I_p) z_s``, shape (Np*p,)."""
+        return np.tile(target_output, self.penalized_steps)
+
+
+def estimator_target(design: ControllerDesign, estimator: Estimator) -> TargetProblem:
+    """The offset-free target equations of the estimator's model, weighted by the design's ``Q``."""
+    return target_problem(
+        estimator.model_a,
+        estimator.model_b,
+        estimator.model_c,
+        disturbance_input=estimator.disturbance_input,
+        disturbance_output=estimator.disturbance_controlled,
+        output_weight=design.output_weight,
+    )
+
+
+def control_loop(design: ControllerDesign, estimator: Estimator) -> ControlLoop:
+    """Join a design and an estimator of the same model.
+
+    Parameters
+    ----------
+    design : ControllerDesign
+    estimator : Estimator
+        Designed on the same ``(A, B, C)`` as ``design``.
+
+    Returns
+    -------
+    ControlLoop
+
+    Raises
+    ------
+    ValueError
+        When the estimator's model does not reproduce the design's prediction matrices (a
+        programming error: both must come from the same model).
+    """
+    pred = design.prediction
+    aug = prediction_matrices(
+        estimator.a,
+        estimator.b,
+        estimator.c_controlled,
+        prediction=pred.prediction,
+        control=pred.control,
+        first_penalized=pred.first_penalized,
+    )
+    n = estimator.state_size
+    scale = max(1.0, float(np.abs(pred.free_state).max(initial=0.0)), float(np.abs(pred.free_input).max(initial=0.0)))
+    if (
+        aug.free_input.shape != pred.free_input.shape
+        or aug.free_state.shape[0] != pred.free_state.shape[0]
+        or not np.allclose(aug.free_input, pred.free_input, rtol=0.0, atol=1e-10 * scale)
+        or not np.allclose(aug.free_state[:, :n], pred.free_state, rtol=0.0, atol=1e-10 * scale)
+    ):
+        raise ValueError("the estimator's model is not the model of the design")
+    target = estimator_target(design, estimator)
+    return ControlLoop(
+        design=design,
+        estimator=estimator,
+        target=target,
+        free_state=aug.free_state,
+        free_input=pred.free_input,
+        horizon_gain=design.gain.horizon,
+        penalized_steps=pred.penalized_steps,
+    )
+
+
+@dataclass(frozen=True)
+class WholeLoop:
+    """Poles of plant, controller and estimator together, and the separation check.
+
+    Attributes
+    ----------
+    matrix : ndarray, shape (n+na+m, n+na+m)
+        On ``[x(k); x(k|k-1); u(k-1)]``; for ``full_state`` the controller loop on
+        ``[x(k); u(k-1)]`` (no estimator states).
+    poles : ndarray of complex
+        Eigenvalues of ``matrix``, by descending modulus.
+    controller_poles : ndarray of complex, shape (n+m,)
+        The design's closed-loop poles.
+    estimator_poles : ndarray of complex, shape (na,)
+        ``eig((I - L Cy) A_aug)``; empty for ``full_state``.
+    separation_error : float
+        Largest distance between a whole-loop pole and its partner in the union of
+        controller and estimator poles (optimal one-to-one matching).
+    separation_holds : bool
+        ``separation_error <= SEPARATION_TOLERANCE * max(1, spectral_radius)``.
+    spectral_radius : float
+    stable : bool
+    """
+
+    matrix: NDArray[np.float64]
+    poles: NDArray[np.complex128]
+    controller_poles: NDArray[np.complex128]
+    estimator_poles: NDArray[np.complex128]
+    separation_error: float
+    separation_holds: bool
+    spectral_radius: float
+    stable: bool
+
+
+def _whole_loop_matrix(loop: ControlLoop) -> NDArray[np.float64]:
+    est = loop.estimator
+    design = loop.design
+    if est.full_state:
+        return design.loop.matrix
+    n, na = est.state_size, est.augmented_size
+    m = est.b.shape[1]
+    a, b = est.model_a, est.model_b
+    mx = est.gain @ est.c_measured[:, :n]  # (na, n)
+    mp = np.eye(na) - est.gain @ est.c_measured  # (na, na)
+    select = np.zeros((est.disturbance_size, na))
+    select[:, est.disturbance_slice] = np.eye(est.disturbance_size)
+    corrected = np.tile(loop.target.output_disturbance_map @ select, (loop.penalized_steps, 1))
+    k = loop.horizon_gain @ (loop.free_state - corrected)  # (m, na)
+    hold = np.eye(m) - design.gain.previous_input
+    u_row = np.hstack([-k @ mx, -k @ mp, hold])  # u(k) in terms of [x; x(k|k-1); u(k-1)]
+    xf_row = np.hstack([mx, mp, np.zeros((na, m))])  # x(k|k)
+    x_row = np.hstack([a, np.zeros((n, na)), np.zeros((n, m))]) + b @ u_row
+    xp_row = est.a @ xf_row + est.b @ u_row
+    return np.vstack([x_row, xp_row, u_row])
+
+
+def _sorted(poles: NDArray[np.complex128]) -> NDArray[np.complex128]:
+    return poles[np.argsort(-np.abs(poles), kind="stable")]
+
+
+def whole_loop(loop: ControlLoop) -> WholeLoop:
+    """Return the whole loop's poles and check them against the separation principle.
+
+    Parameters
+    ----------
+    loop : ControlLoop
+
+    Returns
+    -------
+    WholeLoop
+
+    Notes
+    -----
+    The matching pairs each whole-loop pole with one pole of the union so that the largest
+    distance is small (``scipy.optimize.linear_sum_assignment`` on the distance matrix, then
+    the largest matched distance).
+    """
+    matrix = _whole_loop_matrix(loop)
+    poles = _sorted(scipy.linalg.eigvals(matrix, check_finite=False))
+    controller = loop.design.loop.poles
+    estimator = loop.estimator.poles
+    union = np.concatenate([controller, estimator])
+    if union.size != poles.size:  # pragma: no cover - sizes agree by construction
+        error = float("inf")
+    else:
+        distance = np.abs(poles[:, None] - union[None, :])
+        rows, cols = scipy.optimize.linear_sum_assignment(distance)
+        error = float(distance[rows, cols].max(initial=0.0))
+    radius = float(np.abs(poles).max(initial=0.0))
+    return WholeLoop(
+        matrix=matrix,
+        poles=poles,
+        controller_poles=controller,
+        estimator_poles=estimator,
+        separation_error=error,
+        separation_holds=error <= SEPARATION_TOLERANCE * max(1.0, radius),
+        spectral_radius=radius,
+        stable=radius < 1.0,
+    )

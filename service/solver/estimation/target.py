@@ -1,0 +1,273 @@
+"""The offset-free steady-state target: where the plant must settle for ``z = r``.
+
+Given the disturbance estimate ``d``, the steady state ``(x_s, u_s)`` whose controlled outputs
+equal the setpoint ``r`` solves the target equations (Muske and Badgwell 2002; Pannocchia and
+Rawlings 2003) ::
+
+    [I - A   -B] [x_s]   [Bd d      ]          steady state of the disturbed model
+    [Cz       0] [u_s] = [r - Dz d  ]          controlled outputs on the setpoint
+
+The first block row is kept exactly (a steady state must be a steady state); the second is
+met in the weighted least-squares sense ``min |W (Cz x_s + Dz d - r)|`` with ``W' W = Q``, so
+the same function covers every shape:
+
+- square and nonsingular (``m = pz``, no plant zero at ``z = 1``): the unique exact target;
+- more inputs than controlled outputs: every setpoint reachable; among the exact targets the
+  one of least norm ``|[x_s; u_s]|``;
+- fewer inputs, or a singular steady-state gain: the reachable steady state nearest the
+  setpoint in the ``Q``-weighted norm (least norm among ties).
+
+The solution is linear in ``(r, d)``: ``[x_s; u_s] = S_r r + S_d d``.  Both maps are formed
+once (:func:`target_problem`), so a target costs two matrix-vector products.  A constrained
+target (input limits, a nearest reachable steady state under limits) starts from the same
+pieces: the equality block :meth:`TargetProblem.steady_state_equations`, the objective block
+:meth:`TargetProblem.output_equations`, and the null-space parametrization ``[x_s; u_s] =
+particular(d) + N c`` in :attr:`TargetProblem.null_space`.
+
+Notes
+-----
+With ``d`` estimated by a detectable model with ``nd = p`` and the loop stable, the controlled
+outputs settle on the target's outputs under any model mismatch (Pannocchia and Rawlings
+2003, offset-free conditions); when the target is exact they settle on ``r``.
+
+References
+----------
+K. R. Muske and T. A. Badgwell, "Disturbance modeling for offset-free linear model predictive
+control", J. Process Control 12 (2002) 617-632, doi:10.1016/S0959-1524(01)00051-8.
+G. Pannocchia and J. B. Rawlings, "Disturbance models for offset-free model-predictive
+control", AIChE J. 49 (2003) 426-437, doi:10.1002/aic.690490213.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg
+from numpy.typing import ArrayLike, NDArray
+
+from service.solver.design.weights import weight_matrix, weight_root
+
+__all__ = ["REACHABLE_TOLERANCE", "SteadyStateTarget", "TargetProblem", "steady_state_target", "target_problem"]
+
+#: A target counts as exact when its output misses the setpoint by at most this much, relative
+#: to ``max(1, |r|, |d|)`` (infinity norms; common practice for a least-squares residual).
+REACHABLE_TOLERANCE = 1e-9
+
+
+@dataclass(frozen=True)
+class SteadyStateTarget:
+    """One target.
+
+    Attributes
+    ----------
+    state : ndarray, shape (n,)
+        ``x_s``.
+    input : ndarray, shape (m,)
+        ``u_s``.
+    output : ndarray, shape (pz,)
+        ``z_s = Cz x_s + Dz d``, the corrected setpoint to hand to the controller.
+    offset : ndarray, shape (pz,)
+        ``z_s - r``; zero (to :data:`REACHABLE_TOLERANCE`) when the setpoint is reachable.
+    reachable : bool
+    """
+
+    state: NDArray[np.float64]
+    input: NDArray[np.float64]
+    output: NDArray[np.float64]
+    offset: NDArray[np.float64]
+    reachable: bool
+
+
+@dataclass(frozen=True)
+class TargetProblem:
+    """The target equations of one model and disturbance layout, with their solution maps.
+
+    Attributes
+    ----------
+    a : ndarray, shape (n, n)
+    b : ndarray, shape (n, m)
+    c : ndarray, shape (pz, n)
+        ``Cz``.
+    disturbance_input : ndarray, shape (n, nd)
+        ``Bd``.
+    disturbance_output : ndarray, shape (pz, nd)
+        ``Dz``.
+    output_weight : ndarray, shape (pz, pz)
+        ``Q`` of the least-squares fit.
+    null_space : ndarray, shape (n+m, k)
+        Orthonormal basis ``N`` of the null space of ``[I - A, -B]``: the free directions of
+        the steady state (``k >= m``).
+    particular : ndarray, shape (n+m, nd)
+        ``P0`` with ``P0 d`` the least-norm solution of ``[I - A, -B] [x; u] = Bd d``.
+    setpoint_map : ndarray, shape (n+m, pz)
+        ``S_r``.
+    disturbance_map : ndarray, shape (n+m, nd)
+        ``S_d``: ``[x_s; u_s] = S_r r + S_d d``.
+    output_setpoint_map : ndarray, shape (pz, pz)
+        ``Z_r``.
+    output_disturbance_map : ndarray, shape (pz, nd)
+        ``Z_d``: ``z_s = Z_r r + Z_d d``.  ``Z_r = I`` and ``Z_d = 0`` when every setpoint is
+        reachable.
+    every_setpoint_reachable : bool
+        Whether ``[[I - A, -B], [Cz, 0]]`` has full row rank ``n + pz``.
+    """
+
+    a: NDArray[np.float64]
+    b: NDArray[np.float64]
+    c: NDArray[np.float64]
+    disturbance_input: NDArray[np.float64]
+    disturbance_output: NDArray[np.float64]
+    output_weight: NDArray[np.float64]
+    null_space: NDArray[np.float64]
+    particular: NDArray[np.float64]
+    setpoint_map: NDArray[np.float64]
+    disturbance_map: NDArray[np.float64]
+    output_setpoint_map: NDArray[np.float64]
+    output_disturbance_map: NDArray[np.float64]
+    every_setpoint_reachable: bool
+
+    @property
+    def state_size(self) -> int:
+        return self.a.shape[0]
+
+    def steady_state_equations(
+        self, disturbance: NDArray[np.float64]
+    ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """Return ``(E, e)`` of the equality ``E [x_s; u_s] = e``: ``E = [I - A, -B]``, ``e = Bd d``.
+
+        Shapes (n, n+m) and (n,).
+        """
+        n = self.state_size
+        return np.hstack([np.eye(n) - self.a, -self.b]), self.disturbance_input @ disturbance
+
+    def output_equations(
+        self, setpoint: NDArray[np.float64], disturbance: NDArray[np.float64]
+    ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """Return ``(F, f)`` of the objective ``|W (F [x_s; u_s] - f)|^2``: ``F = [Cz, 0]``, ``f = r - Dz d``.
+
+        Shapes (pz, n+m) and (pz,).
+        """
+        m = self.b.shape[1]
+        return (
+            np.hstack([self.c, np.zeros((self.c.shape[0], m))]),
+            setpoint - self.disturbance_output @ disturbance,
+        )
+
+
+def target_problem(
+    a: ArrayLike,
+    b: ArrayLike,
+    c: ArrayLike,
+    *,
+    disturbance_input: ArrayLike | None = None,
+    disturbance_output: ArrayLike | None = None,
+    output_weight: ArrayLike | None = None,
+) -> TargetProblem:
+    """Form the target equations and their least-squares solution maps.
+
+    Parameters
+    ----------
+    a : array_like, shape (n, n)
+    b : array_like, shape (n, m)
+    c : array_like, shape (pz, n)
+        Controlled-output matrix ``Cz``.
+    disturbance_input : array_like, shape (n, nd), optional
+        ``Bd`` (default: no disturbance, ``nd = 0``).
+    disturbance_output : array_like, shape (pz, nd), optional
+        ``Dz`` (default zeros of the matching size).
+    output_weight : array_like, shape (pz,) or (pz, pz), optional
+        ``Q`` of the fit for unreachable setpoints (default identity).  Use the controller's
+        output weight so that the target agrees with the controller's own compromise.
+
+    Returns
+    -------
+    TargetProblem
+
+    Notes
+    -----
+    With ``N`` an orthonormal null-space basis of ``E = [I - A, -B]`` (``scipy.linalg.null_space``)
+    and ``P0 = E^+ Bd`` (``scipy.linalg.pinv``), every steady state is ``P0 d + N c``; the fit
+    ``min |W (F N c - (r - Dz d - F P0 d))|`` has the least-norm solution
+    ``c = (W F N)^+ W (r - Dz d - F P0 d)``.  ``P0 d`` lies in the row space of ``E``,
+    orthogonal to ``N c``, so ``[x_s; u_s]`` is of least norm among the best fits.
+    """
+    a_ = np.asarray(a, dtype=float)
+    b_ = np.asarray(b, dtype=float)
+    c_ = np.asarray(c, dtype=float)
+    n, m, pz = a_.shape[0], b_.shape[1], c_.shape[0]
+    bd = np.zeros((n, 0)) if disturbance_input is None else np.asarray(disturbance_input, dtype=float)
+    nd = bd.shape[1]
+    dz = np.zeros((pz, nd)) if disturbance_output is None else np.asarray(disturbance_output, dtype=float)
+    assert bd.shape == (n, nd) and dz.shape == (pz, nd), (bd.shape, dz.shape)
+    q = np.eye(pz) if output_weight is None else weight_matrix(output_weight, pz)
+    w = weight_root(q)
+    steady = np.hstack([np.eye(n) - a_, -b_])
+    fit = np.hstack([c_, np.zeros((pz, m))])
+    null = scipy.linalg.null_space(steady)  # (n+m, k)
+    particular = scipy.linalg.pinv(steady) @ bd  # (n+m, nd)
+    solve = scipy.linalg.pinv(w @ fit @ null)  # (k, pz)
+    setpoint_map = null @ solve @ w
+    disturbance_map = particular - setpoint_map @ (dz + fit @ particular)
+    output_setpoint_map = fit @ setpoint_map
+    output_disturbance_map = fit @ disturbance_map + dz
+    full = np.vstack([steady, fit])
+    sv = scipy.linalg.svdvals(full)
+    reach = bool(sv.size >= n + pz and sv[n + pz - 1] > REACHABLE_TOLERANCE * sv[0])
+    if reach:  # exact in exact arithmetic: clean off the rounding
+        output_setpoint_map = np.eye(pz)
+        output_disturbance_map = np.zeros((pz, nd))
+    return TargetProblem(
+        a=a_,
+        b=b_,
+        c=c_,
+        disturbance_input=bd,
+        disturbance_output=dz,
+        output_weight=q,
+        null_space=null,
+        particular=particular,
+        setpoint_map=setpoint_map,
+        disturbance_map=disturbance_map,
+        output_setpoint_map=output_setpoint_map,
+        output_disturbance_map=output_disturbance_map,
+        every_setpoint_reachable=reach,
+    )
+
+
+def steady_state_target(
+    problem: TargetProblem, setpoint: ArrayLike, disturbance: ArrayLike | None = None
+) -> SteadyStateTarget:
+    """Return the target for a setpoint and a disturbance estimate.
+
+    Parameters
+    ----------
+    problem : TargetProblem
+    setpoint : array_like, shape (pz,)
+        ``r``.
+    disturbance : array_like, shape (nd,), optional
+        ``d``, the disturbance estimate (default zero).
+
+    Returns
+    -------
+    SteadyStateTarget
+
+    Examples
+    --------
+    The plant ``x+ = 0.5 x + u``, ``z = x + d`` with an output disturbance ``d = 0.5``: reaching
+    ``r = 1`` needs ``x_s = r - d = 0.5`` and ``u_s = (1 - 0.5) x_s = 0.25``:
+
+    >>> t = steady_state_target(target_problem([[0.5]], [[1.0]], [[1.0]],
+    ...     disturbance_input=[[0.0]], disturbance_output=[[1.0]]), [1.0], [0.5])
+    >>> [round(float(t.state[0]), 12), round(float(t.input[0]), 12), t.reachable]
+    [0.5, 0.25, True]
+    """
+    r = np.asarray(setpoint, dtype=float)
+    nd = problem.disturbance_input.shape[1]
+    d = np.zeros(nd) if disturbance is None else np.asarray(disturbance, dtype=float)
+    n = problem.state_size
+    xu = problem.setpoint_map @ r + problem.disturbance_map @ d
+    output = problem.c @ xu[:n] + problem.disturbance_output @ d
+    offset = output - r
+    scale = max(1.0, float(np.abs(r).max(initial=0.0)), float(np.abs(d).max(initial=0.0)))
+    reachable = bool(np.abs(offset).max(initial=0.0) <= REACHABLE_TOLERANCE * scale)
+    return SteadyStateTarget(state=xu[:n], input=xu[n:], output=output, offset=offset, reachable=reachable)

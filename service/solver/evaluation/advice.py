@@ -1,0 +1,464 @@
+"""Plain-language tuning advice: what looks wrong with a design and what to change.
+
+Each check returns a :class:`service.solver.design.closed_loop.Diagnostic` (a stable code and a
+sentence a control engineer can act on) or nothing.  The checks and their definitions:
+
+``ill_conditioned_hessian``
+    The Hessian's condition number is above :data:`service.solver.design.closed_loop.ILL_CONDITIONED`.
+    The advice states the condition number the same design would have with every move
+    weight raised tenfold and with the control horizon halved (each computed by designing
+    again), so the user sees which change helps and by how much.  It carries the same code
+    as the plain warning of :func:`service.solver.design.closed_loop.design_warnings` and replaces it
+    in :func:`merge_warnings`.
+
+``slow_pole``
+    The slowest strictly stable closed-loop pole (the dominant mode; poles within
+    :data:`service.solver.design.closed_loop.UNIT_CIRCLE_MARGIN` of the unit circle are reported by
+    the design warnings instead) has a time constant ``tau = -1 / ln|lambda|`` samples
+    longer than the prediction horizon: the controller plans over a window in which that
+    mode does not settle (our definition; the horizon should cover the closed-loop response,
+    common practice).  The advice says whose pole it is: an open-loop pole of the plant left
+    unchanged by the controller (not reachable by the inputs, or seen by no weighted
+    output), an estimator pole, or a pole the tuning put there.
+
+``high_peak_sensitivity``
+    ``max sigma_max(S) > 2`` (6 dB, the usual rule of thumb) at the plant input or output of a
+    stable loop; ``Ms`` then guarantees only ``GM >= Ms/(Ms-1)`` and
+    ``PM >= 2 arcsin(1/(2 Ms))``.
+
+``non_minimum_phase_short_horizon``
+    The plant has a transmission zero outside the unit circle and the prediction horizon
+    is shorter than the inverse response.  Transmission zeros of a square plant are the
+    finite generalized eigenvalues of the Rosenbrock system matrix pencil
+    ``([[A, B], [C, 0]], [[I, 0], [0, 0]])`` (``scipy.linalg.eig``); non-square plants
+    generically have none and are not checked.  The inverse-response time of a zero ``z0``
+    (our definition) is read off the step response along the zero's directions
+    (``y0' S_k u0`` with ``u0`` and ``y0`` the input and output null directions of the
+    system matrix at ``z0``; for a single loop, the plant's own step response): the number
+    of samples until it has come back to the side of its final value for good, i.e. one
+    more than the last step at which it is still on the wrong side.  Where that channel has
+    no wrong-way part (complex zeros, zeros on the negative real axis that show as ringing)
+    the zero's time constant ``ceil(1 / ln|z0|)`` samples is used instead.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+import numpy as np
+import scipy.linalg
+from numpy.typing import ArrayLike, NDArray
+
+from service.errors import NumericalError
+from service.solver.design.closed_loop import ILL_CONDITIONED, UNIT_CIRCLE_MARGIN, Diagnostic
+from service.solver.design.controller import ControllerDesign, design_controller
+from service.solver.design.prediction import step_response_coefficients
+from service.solver.design.spectrum import extreme_eigenvalues
+from service.solver.evaluation.frequency import FrequencyAnalysis
+
+__all__ = [
+    "PEAK_SENSITIVITY_LIMIT",
+    "hessian_advice",
+    "inverse_response_time",
+    "merge_warnings",
+    "non_minimum_phase_advice",
+    "sensitivity_advice",
+    "slow_pole_advice",
+    "transmission_zeros",
+    "tuning_advice",
+]
+
+#: Peak sensitivity above which a loop is called fragile (6 dB; the usual rule of thumb).
+PEAK_SENSITIVITY_LIMIT = 2.0
+#: Relative distance under which a closed-loop pole counts as an open-loop or estimator pole
+#: (loose enough for the spread of a repeated eigenvalue; common practice).
+_SAME_POLE = 1e-6
+#: Longest step response used to find the side an output settles on (samples).
+_LONGEST_STEP = 5000
+
+
+def _seconds(samples: float, sample_time: float | None) -> str:
+    return "" if sample_time is None else f" ({samples * sample_time:.4g} in the unit of the sample time)"
+
+
+def _fmt(z: complex) -> str:
+    return f"{z.real:.6g}" if abs(z.imag) < 1e-12 else f"{z.real:.6g}{z.imag:+.6g}j"
+
+
+# --- ill-conditioned Hessian ---------------------------------------------------------------
+
+
+def _condition_number(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    design: ControllerDesign,
+    *,
+    move_scale: float,
+    control: int,
+) -> float | None:
+    """Condition number of the same design with scaled move weights or another ``Hu``; ``None`` if singular.
+
+    Without a terminal weight or blocking no new design is needed: scaling every move weight
+    by ``s`` adds ``(s - 1) blockdiag(R)`` to ``H``, and a shorter control horizon ``Hu'``
+    keeps the first ``Hu'`` block columns of ``G`` (``G_ij = S_(i-j)`` does not depend on
+    ``Hu``), so its Hessian is the leading ``Hu' m`` block of ``H``.
+    """
+    if design.terminal is None and design.blocking is None:
+        m = design.move_weight.shape[0]
+        h = design.hessian.matrix
+        if move_scale != 1.0:
+            h = h + (move_scale - 1.0) * np.kron(np.eye(h.shape[0] // m), design.move_weight)
+        h = h[: control * m, : control * m]
+        low, high = extreme_eigenvalues(h)
+        return None if low <= h.shape[0] * np.finfo(float).eps * high else high / low
+    pred = design.prediction
+    blocking = None if design.blocking is None else [j for j in design.blocking if j < control]
+    try:
+        other = design_controller(
+            a,
+            b,
+            c,
+            output_weight=design.output_weight,
+            move_weight=move_scale * design.move_weight,
+            prediction=pred.prediction,
+            control=control,
+            first_penalized=pred.first_penalized,
+            terminal="none" if design.terminal is None else "riccati",
+            blocking=blocking,
+        )
+    except NumericalError:
+        return None
+    return other.hessian.condition_number
+
+
+def hessian_advice(a: ArrayLike, b: ArrayLike, c: ArrayLike, design: ControllerDesign) -> Diagnostic | None:
+    """Advise on an ill-conditioned Hessian, with the effect of the two usual fixes.
+
+    Parameters
+    ----------
+    a : array_like, shape (n, n)
+    b : array_like, shape (n, m)
+    c : array_like, shape (p, n)
+        The model of ``design``.
+    design : ControllerDesign
+
+    Returns
+    -------
+    Diagnostic or None
+        ``ill_conditioned_hessian`` when the condition number exceeds ``ILL_CONDITIONED``.
+    """
+    cond = design.hessian.condition_number
+    if cond <= ILL_CONDITIONED:
+        return None
+    a_, b_, c_ = (np.asarray(x, dtype=float) for x in (a, b, c))
+    hu = design.prediction.control
+
+    def effect(value: float | None) -> str:
+        if value is None:
+            return "would leave the Hessian singular"
+        factor = cond / value
+        how = f"about {factor:.3g} times smaller" if factor >= 1 else f"about {1 / factor:.3g} times larger"
+        return f"changes it to {value:.3g} ({how})"
+
+    heavier = _condition_number(a_, b_, c_, design, move_scale=10.0, control=hu)
+    parts = [f"raising every move weight tenfold {effect(heavier)}"]
+    if hu > 1:
+        shorter = _condition_number(a_, b_, c_, design, move_scale=1.0, control=hu // 2)
+        parts.append(f"halving the control horizon from {hu} to {hu // 2} {effect(shorter)}")
+    digits = max(0, 16 - int(np.log10(cond)))
+    return Diagnostic(
+        "ill_conditioned_hessian",
+        f"The Hessian is ill-conditioned (condition number {cond:.3g}, above {ILL_CONDITIONED:.0e}): "
+        f"the gains keep only about {digits} significant digits. Raise the move weights or "
+        f"shorten the control horizon: {'; '.join(parts)}.",
+    )
+
+
+# --- slow pole -----------------------------------------------------------------------------
+
+
+def slow_pole_advice(
+    a: ArrayLike,
+    design: ControllerDesign,
+    *,
+    sample_time: float | None = None,
+    estimator_poles: ArrayLike | None = None,
+) -> Diagnostic | None:
+    """Advise when the dominant closed-loop pole is slower than the prediction horizon.
+
+    Parameters
+    ----------
+    a : array_like, shape (n, n)
+        The plant's state matrix (its eigenvalues are the open-loop poles).
+    design : ControllerDesign
+    sample_time : float, optional
+        To state the time constant in time units as well as samples.
+    estimator_poles : array_like of complex, optional
+        Poles of the estimator (``Estimator.poles``); they join the loop's poles.
+
+    Returns
+    -------
+    Diagnostic or None
+        ``slow_pole``.
+    """
+    open_loop = scipy.linalg.eigvals(np.asarray(a, dtype=float), check_finite=False)
+    estimator = np.zeros(0, complex) if estimator_poles is None else np.asarray(estimator_poles, dtype=complex)
+    candidates = [(complex(z), "controller") for z in design.loop.poles] + [
+        (complex(z), "estimator") for z in estimator
+    ]
+    candidates = [(z, who) for z, who in candidates if 0.0 < abs(z) < 1.0 - UNIT_CIRCLE_MARGIN]
+    if not candidates:
+        return None
+    pole, owner = max(candidates, key=lambda item: abs(item[0]))
+    tau = -1.0 / math.log(abs(pole))
+    hp = design.prediction.prediction
+    if tau <= hp:
+        return None
+    if (
+        owner == "controller"
+        and open_loop.size
+        and np.min(np.abs(open_loop - pole)) <= _SAME_POLE * max(1.0, abs(pole))
+    ):
+        whose = (
+            "It is an open-loop pole of the plant that the controller leaves where it is: the "
+            "inputs cannot move this mode, or no weighted controlled output sees it. Check the "
+            "model, or give weight to an output that sees this mode; more tuning will not "
+            "speed it up otherwise."
+        )
+    elif owner == "estimator":
+        whose = (
+            "It is an estimator pole: the filter corrects its estimate slowly. Raise the "
+            "disturbance (or process) noise or lower the measurement noise to speed it up."
+        )
+    else:
+        whose = (
+            "The tuning put it there: lower the move weights or raise the output weights to "
+            "speed it up, or lengthen the prediction horizon to cover it."
+        )
+    return Diagnostic(
+        "slow_pole",
+        f"The dominant closed-loop pole {_fmt(pole)} has a time constant of {tau:.3g} samples"
+        f"{_seconds(tau, sample_time)}, longer than the prediction horizon of {hp} samples, so "
+        f"the controller plans over a window in which this mode does not settle. {whose}",
+    )
+
+
+# --- peak sensitivity ----------------------------------------------------------------------
+
+
+def sensitivity_advice(analysis: FrequencyAnalysis) -> Diagnostic | None:
+    """Advise when the peak sensitivity exceeds :data:`PEAK_SENSITIVITY_LIMIT` (6 dB).
+
+    Parameters
+    ----------
+    analysis : FrequencyAnalysis
+
+    Returns
+    -------
+    Diagnostic or None
+        ``high_peak_sensitivity``; nothing for an unstable loop (its peaks mean nothing and
+        the design warnings already say it is unstable).
+    """
+    if not analysis.stable:
+        return None
+    high = [
+        loop for loop in (analysis.plant_input, analysis.plant_output) if loop.peak_sensitivity > PEAK_SENSITIVITY_LIMIT
+    ]
+    if not high:
+        return None
+    where = "; ".join(
+        f"at the plant {loop.location} {loop.peak_sensitivity:.3g} ({loop.peak_sensitivity_db:.3g} dB) "
+        f"at {loop.peak_sensitivity_frequency:.3g} rad per time unit"
+        for loop in high
+    )
+    ms = max(loop.peak_sensitivity for loop in high)
+    gm = ms / (ms - 1.0)
+    pm = math.degrees(2.0 * math.asin(1.0 / (2.0 * ms)))
+    return Diagnostic(
+        "high_peak_sensitivity",
+        f"The loop is fragile: the peak sensitivity is {where}, above {PEAK_SENSITIVITY_LIMIT:g} "
+        f"(6 dB, the usual rule of thumb). The Nyquist curve passes within {1.0 / ms:.3g} of the "
+        f"critical point, which guarantees only a gain margin of {gm:.3g} and a phase margin of "
+        f"{pm:.3g} degrees, so a modest model error can destabilize the loop. Raise the move "
+        f"weights to detune the controller, or slow the estimator (more measurement noise).",
+    )
+
+
+# --- non-minimum-phase plant with a short horizon -----------------------------------------
+
+
+def transmission_zeros(a: ArrayLike, b: ArrayLike, c: ArrayLike) -> NDArray[np.complex128]:
+    """Return the finite transmission zeros of a square plant ``(A, B, C)`` (no feed-through).
+
+    Parameters
+    ----------
+    a : array_like, shape (n, n)
+    b : array_like, shape (n, m)
+    c : array_like, shape (m, n)
+
+    Returns
+    -------
+    ndarray of complex
+        By descending modulus; empty for a non-square plant (see the module notes).
+
+    Notes
+    -----
+    Generalized eigenvalues ``alpha / beta`` of the Rosenbrock pencil
+    ``([[A, B], [C, 0]], [[I, 0], [0, 0]])`` from ``scipy.linalg.eig`` in homogeneous form;
+    pairs with ``|beta|`` at rounding level are the infinite zeros and are dropped.
+    """
+    a_, b_, c_ = (np.asarray(x, dtype=float) for x in (a, b, c))
+    n, m = b_.shape
+    if c_.shape[0] != m:
+        return np.zeros(0, dtype=complex)
+    system = np.block([[a_, b_], [c_, np.zeros((m, m))]])
+    mass = scipy.linalg.block_diag(np.eye(n), np.zeros((m, m)))
+    pairs = scipy.linalg.eig(system, mass, right=False, homogeneous_eigvals=True)
+    alpha, beta = pairs[0], pairs[1]
+    # QZ returns |beta| of order one for a finite zero; an infinite zero has |beta| at rounding
+    # level, and a zero beyond 1e8 in modulus is taken as infinite (common practice).
+    finite = (np.abs(beta) > 1e-8 * np.abs(alpha)) & (np.abs(beta) > 1e3 * np.finfo(float).eps)
+    zeros = alpha[finite] / beta[finite]
+    return zeros[np.argsort(-np.abs(zeros), kind="stable")]
+
+
+def inverse_response_time(a: ArrayLike, b: ArrayLike, c: ArrayLike, zero: complex) -> int:
+    """Return the inverse-response time (samples) of a zero outside the unit circle.
+
+    Parameters
+    ----------
+    a : array_like, shape (n, n)
+    b : array_like, shape (n, m)
+    c : array_like, shape (m, n)
+    zero : complex
+        A transmission zero with ``|zero| > 1``.
+
+    Returns
+    -------
+    int
+        See the module notes.
+    """
+    a_, b_, c_ = (np.asarray(x, dtype=float) for x in (a, b, c))
+    fallback = max(1, math.ceil(1.0 / math.log(abs(zero))))
+    if abs(complex(zero).imag) > 1e-9 * abs(zero) or complex(zero).real < 0:
+        return fallback
+    z0 = complex(zero).real
+    n, m = b_.shape
+    system = np.block([[a_ - z0 * np.eye(n), b_], [c_, np.zeros((m, m))]])
+    left, _, right = np.linalg.svd(system)
+    u0 = right[-1, n:]
+    y0 = left[n:, -1]
+    moduli = np.abs(scipy.linalg.eigvals(a_, check_finite=False))
+    stable = moduli[(moduli > 0) & (moduli < 1.0)]
+    slowest = float((-1.0 / np.log(stable)).max(initial=1.0))
+    steps = int(min(_LONGEST_STEP, max(50, math.ceil(10.0 * slowest))))
+    _, step = step_response_coefficients(a_, b_, c_, steps)
+    channel = np.einsum("i,kij,j->k", y0, step[1:], u0)  # y0' S_k u0, k = 1..steps
+    final = channel[-1]
+    size = float(np.abs(channel).max(initial=0.0))
+    if size == 0.0 or abs(final) <= 1e-9 * size:
+        return fallback
+    wrong = np.nonzero((channel * np.sign(final) < 0) & (np.abs(channel) > 1e-12 * size))[0]
+    if wrong.size == 0:
+        return fallback
+    return int(wrong[-1]) + 2  # channel[k] is step k + 1; one more than the last wrong step
+
+
+def non_minimum_phase_advice(
+    a: ArrayLike, b: ArrayLike, c: ArrayLike, *, prediction: int, sample_time: float | None = None
+) -> Diagnostic | None:
+    """Advise when a non-minimum-phase plant meets a prediction horizon shorter than its inverse response.
+
+    Parameters
+    ----------
+    a, b, c : array_like
+        The plant (controlled outputs).
+    prediction : int
+        ``Hp``.
+    sample_time : float, optional
+        To state times in time units as well.
+
+    Returns
+    -------
+    Diagnostic or None
+        ``non_minimum_phase_short_horizon``.
+    """
+    zeros = [complex(z) for z in transmission_zeros(a, b, c) if abs(z) > 1.0 + 1e-9]
+    if not zeros:
+        return None
+    timed = [(z, inverse_response_time(a, b, c, z)) for z in zeros]
+    _zero, needed = max(timed, key=lambda item: item[1])
+    if prediction >= needed:
+        return None
+    names = ", ".join(_fmt(z) for z in zeros)
+    return Diagnostic(
+        "non_minimum_phase_short_horizon",
+        f"The plant is non-minimum-phase (transmission zero(s) outside the unit circle: {names}). "
+        f"Its inverse response lasts about {needed} samples{_seconds(needed, sample_time)} (the "
+        f"output first moves the wrong way and comes back past its start only then), but the "
+        f"prediction horizon is {prediction} samples: the controller sees mostly the wrong-way "
+        f"part of its moves and may push the wrong way. Lengthen the prediction horizon to at "
+        f"least {needed} samples (well beyond is better), or raise the move weights.",
+    )
+
+
+# --- all together --------------------------------------------------------------------------
+
+
+def tuning_advice(
+    a: ArrayLike,
+    b: ArrayLike,
+    c: ArrayLike,
+    design: ControllerDesign,
+    *,
+    sample_time: float | None = None,
+    analysis: FrequencyAnalysis | None = None,
+    estimator_poles: ArrayLike | None = None,
+) -> list[Diagnostic]:
+    """Return every piece of advice that applies, in a fixed order.
+
+    Parameters
+    ----------
+    a, b, c : array_like
+        The model of ``design`` (controlled outputs).
+    design : ControllerDesign
+    sample_time : float, optional
+    analysis : FrequencyAnalysis, optional
+        Needed for the peak-sensitivity check.
+    estimator_poles : array_like of complex, optional
+
+    Returns
+    -------
+    list of Diagnostic
+        ``ill_conditioned_hessian``, ``slow_pole``, ``high_peak_sensitivity``,
+        ``non_minimum_phase_short_horizon``, each at most once.
+    """
+    found = [
+        hessian_advice(a, b, c, design),
+        slow_pole_advice(a, design, sample_time=sample_time, estimator_poles=estimator_poles),
+        None if analysis is None else sensitivity_advice(analysis),
+        non_minimum_phase_advice(a, b, c, prediction=design.prediction.prediction, sample_time=sample_time),
+    ]
+    return [d for d in found if d is not None]
+
+
+def merge_warnings(warnings: Sequence[Diagnostic], advice: Sequence[Diagnostic]) -> list[Diagnostic]:
+    """Return the warnings with each advice of the same code in its place, then the other advice.
+
+    Parameters
+    ----------
+    warnings : sequence of Diagnostic
+        From :func:`service.solver.design.closed_loop.design_warnings`.
+    advice : sequence of Diagnostic
+        From :func:`tuning_advice`.
+
+    Returns
+    -------
+    list of Diagnostic
+        One entry per code.
+    """
+    by_code = {d.code: d for d in advice}
+    merged = [by_code.pop(d.code, d) for d in warnings]
+    return merged + [d for d in advice if d.code in by_code]

@@ -1,0 +1,498 @@
+"""Closed-loop simulation of a run: a true plant, the estimator and a move policy.
+
+One step ``k = 0 .. steps-1`` of :func:`simulate_loop` (the plant may differ from the model)::
+
+    y(k)     = C_true x(k) + d_out(k)                      true outputs (controlled)
+    y_m(k)   = y(k) + v(k)                                 measured, v ~ N(0, diag(std^2))
+    x(k|k)   = x(k|k-1) + L (y_m(k) - Cy x(k|k-1))         estimate (full_state: x(k|k) = x(k))
+    z_s(k)   = Z_r r(k) + Z_d d(k|k)                       target outputs (target.py)
+    free     = Fx_aug x(k|k) + Fu u(k-1) [+ Fd d_m(k)]     free prediction (loop.py)
+    E        = (1 (x) I_p) z_s(k) - free
+    du(k)    = policy(error=E, free_prediction=free, previous_input=u(k-1), step=k).move
+    u(k)     = u(k-1) + du(k)
+    x(k+1)   = A_true x(k) + B_true (u(k) + d_in(k)) [+ Bd_true d_m(k)]
+    x(k+1|k) = A_aug x(k|k) + B_aug u(k) [+ [Bd; 0] d_m(k)]
+
+The bracketed terms are there with measured disturbances ``d_m`` (``b_disturbance``): the
+model's ``Bd`` enters the estimator's prediction, and its free response ``Fd`` (``Cz sum_{l<i}
+A^l Bd`` at steps ``Hw..Hp``, :func:`service.solver.design.feedforward.disturbance_free_response`)
+the free prediction, so the unconstrained law is ``du = Kr r - Kx x - Ku u(k-1) - Kd d_m`` with
+``Kd = Kh Fd``.  The steady-state target does not use ``d_m``: with a reachable setpoint its
+outputs are the setpoint whatever ``d_m`` is.
+
+Events hold from their step on: a setpoint change sets ``r``, an output (input) disturbance
+event sets the level of ``d_out`` (``d_in``) — each event replaces the previous level, it does
+not add to it.  Before the first setpoint change the setpoint is ``initial_setpoint`` (default:
+the true output at the initial state, so the loop starts at rest); disturbances start at zero.
+The estimator starts from ``x(0|-1) = [x(0); 0]``: it knows the initial state, not the
+disturbances.  A true plant with another state count than the model starts from rest,
+``x_true(0) = 0`` (``initial_state`` must then be left out), and so does the estimator.  Noise comes from ``numpy.random.default_rng(seed)``, drawn once as a
+``(steps, p)`` standard-normal array times ``std``: the same scenario always gives the same run.
+For ``full_state`` the measured outputs are still recorded (with noise), but the controller
+reads the true state, noise-free.
+
+The move computation is a :class:`MovePolicy`, so a constrained quadratic program can replace
+the fixed gain without touching the loop; :class:`UnconstrainedPolicy` is the design's
+``du = Kh E``.  Likewise the target: by default the linear maps of ``loop.target`` above; a
+:class:`TargetRule` (``target_rule=``) replaces them, e.g. by the nearest steady state that is
+reachable inside input limits (:mod:`service.solver.limits.limited_run`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any, Protocol
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from service.solver.design.controller import ControllerDesign
+from service.solver.design.feedforward import disturbance_free_response
+from service.solver.estimation.estimator import Estimator
+from service.solver.estimation.loop import ControlLoop, control_loop
+
+__all__ = [
+    "DIVERGENCE_LIMIT",
+    "Event",
+    "MovePolicy",
+    "PolicyStep",
+    "Scenario",
+    "Simulation",
+    "TargetRule",
+    "TruePlant",
+    "UnconstrainedPolicy",
+    "simulate_loop",
+]
+
+#: The run stops as diverged once the squared norm of the plant state or of the estimate
+#: passes this (far below overflow, so no floating-point warning is ever raised).
+DIVERGENCE_LIMIT = 1e200
+
+
+@dataclass(frozen=True)
+class PolicyStep:
+    """What a move policy returns for one step.
+
+    Attributes
+    ----------
+    move : ndarray, shape (m,)
+        ``du(k)``, applied as ``u(k) = u(k-1) + du(k)``.
+    report : mapping or None
+        Anything the policy wants recorded for this step (e.g. active limits, solver
+        iterations); stored as-is in :attr:`Simulation.reports`.  ``None`` when there is
+        nothing to say.
+    """
+
+    move: NDArray[np.float64]
+    report: Mapping[str, Any] | None = None
+
+
+class MovePolicy(Protocol):
+    """Computes the move of one step from the free-response error.
+
+    The loop calls the policy once per step, in order ``step = 0, 1, ...``, with keyword
+    arguments only::
+
+        policy(error=E, free_prediction=F, previous_input=u_prev, step=k) -> PolicyStep
+
+    Parameters (all fresh arrays; the policy may keep them but must not change them)
+
+    - ``error``, shape (Np*p,): ``E = T - F`` with ``T`` the reference over the penalized
+      steps ``Hw..Hp`` (the target outputs held constant), stacked step by step
+      (``p`` outputs per block).  The unconstrained optimum of the design's cost is
+      ``dU* = H^-1 G' Q E``.
+    - ``free_prediction``, shape (Np*p,): ``F``, the controlled outputs predicted at steps
+      ``Hw..Hp`` if every future move is zero (disturbance estimate included); the
+      prediction with moves ``dU`` is ``F + G dU`` with ``G = design.prediction.moves``
+      — what an output-limit constraint needs.
+    - ``previous_input``, shape (m,): ``u(k-1)`` — what input-level and move limits need
+      (``u(k+j) = u(k-1) + du(k) + ... + du(k+j)``).
+    - ``step``: ``k``, the index of the simulated step (for logging or time-varying limits).
+
+    A policy with state (a warm start) keeps it on itself; the loop builds no copy.
+    Return a :class:`PolicyStep` with ``move`` of shape (m,) and finite values.
+    """
+
+    def __call__(
+        self,
+        *,
+        error: NDArray[np.float64],
+        free_prediction: NDArray[np.float64],
+        previous_input: NDArray[np.float64],
+        step: int,
+    ) -> PolicyStep: ...
+
+
+class TargetRule(Protocol):
+    """Computes the steady-state target of one step from the setpoint and the disturbance estimate.
+
+    The loop calls it once per step, in order, with keyword arguments only::
+
+        rule(setpoint=r, disturbance=d) -> (z_s, u_s)
+
+    ``setpoint`` has shape (p,) (``r(k)``), ``disturbance`` shape (nd,) (the disturbance part
+    of ``x(k|k)``; empty without a disturbance model), both in the design's signals; the rule
+    returns the target outputs ``z_s`` (p,), which the controller tracks, and the target
+    inputs ``u_s`` (m,), which the loop records.  The rule must not change its arguments; a
+    rule with state keeps it on itself.
+    """
+
+    def __call__(
+        self, *, setpoint: NDArray[np.float64], disturbance: NDArray[np.float64]
+    ) -> tuple[NDArray[np.float64], NDArray[np.float64]]: ...
+
+
+@dataclass(frozen=True)
+class UnconstrainedPolicy:
+    """The design's fixed law ``du(k) = Kh E`` (no limits); reports nothing.
+
+    Attributes
+    ----------
+    horizon_gain : ndarray, shape (m, Np*p)
+        ``Kh`` (``ControllerDesign.gain.horizon``).
+    """
+
+    horizon_gain: NDArray[np.float64]
+
+    def __call__(
+        self,
+        *,
+        error: NDArray[np.float64],
+        free_prediction: NDArray[np.float64],
+        previous_input: NDArray[np.float64],
+        step: int,
+    ) -> PolicyStep:
+        return PolicyStep(self.horizon_gain @ error)
+
+
+@dataclass(frozen=True)
+class Event:
+    """A change that holds from ``step`` on: a new setpoint or a new disturbance level.
+
+    Attributes
+    ----------
+    step : int
+        ``0 <= step < steps``.
+    value : ndarray
+        Shape (p,) for setpoints and output disturbances, (m,) for input disturbances,
+        (md,) for measured disturbances.
+    """
+
+    step: int
+    value: NDArray[np.float64]
+
+
+@dataclass(frozen=True)
+class TruePlant:
+    """The plant the loop runs on: the model's inputs and outputs, possibly other numbers.
+
+    Its state count ``nt`` may differ from the model's ``n`` (a longer dead time, a lag the
+    model leaves out); the run then starts from rest (see the module notes).  ``full_state``
+    reads the true state, so it needs ``nt = n``.
+
+    Attributes
+    ----------
+    a : ndarray, shape (nt, nt)
+    b : ndarray, shape (nt, m)
+    c : ndarray, shape (p, nt)
+    b_disturbance : ndarray, shape (nt, md), optional
+        How the measured disturbances enter the true plant; required when the loop has
+        measured disturbances (``simulate_loop(..., b_disturbance=...)``).
+    """
+
+    a: NDArray[np.float64]
+    b: NDArray[np.float64]
+    c: NDArray[np.float64]
+    b_disturbance: NDArray[np.float64] | None = None
+
+
+@dataclass(frozen=True)
+class Scenario:
+    """A run: its length, its events, its noise and where it starts.
+
+    Attributes
+    ----------
+    steps : int
+        Number of simulated steps (>= 1).
+    setpoint_changes, output_disturbances, input_disturbances : sequence of Event
+        Applied in order of step; for equal steps the later in the sequence wins.
+    measured_disturbances : sequence of Event
+        Levels of the measured disturbances ``d_m`` (start at zero); only with
+        ``simulate_loop(..., b_disturbance=...)``.
+    noise_std : ndarray, shape (p,), optional
+        Standard deviation of the measurement noise per output (default: none).
+    seed : int
+        Seed of ``numpy.random.default_rng`` (default 0).
+    initial_state : ndarray, shape (n,), optional
+        ``x(0)`` of the true plant (default zeros).
+    initial_input : ndarray, shape (m,), optional
+        ``u(-1)`` (default zeros).
+    initial_setpoint : ndarray, shape (p,), optional
+        Setpoint before the first change (default ``C_true x(0)``).
+    sample_time : float
+        Time between steps (default 1); sets the ``time`` axis only.
+    """
+
+    steps: int
+    setpoint_changes: Sequence[Event] = ()
+    output_disturbances: Sequence[Event] = ()
+    input_disturbances: Sequence[Event] = ()
+    measured_disturbances: Sequence[Event] = ()
+    noise_std: NDArray[np.float64] | None = None
+    seed: int = 0
+    initial_state: NDArray[np.float64] | None = None
+    initial_input: NDArray[np.float64] | None = None
+    initial_setpoint: NDArray[np.float64] | None = None
+    sample_time: float = 1.0
+
+
+@dataclass(frozen=True)
+class Simulation:
+    """The time series of a run, one row per step ``k = 0 .. steps-1``.
+
+    Attributes
+    ----------
+    time : ndarray, shape (steps,)
+        ``k * sample_time``.
+    outputs : ndarray, shape (steps, p)
+        True controlled outputs ``y(k) = C_true x(k) + d_out(k)`` (noise-free).
+    measured : ndarray, shape (steps, p)
+        ``y(k) + v(k)``, what the estimator read.
+    inputs : ndarray, shape (steps, m)
+        ``u(k)``, applied from step ``k`` to ``k+1``.
+    moves : ndarray, shape (steps, m)
+        ``du(k) = u(k) - u(k-1)``.
+    setpoints : ndarray, shape (steps, p)
+        ``r(k)``.
+    targets : ndarray, shape (steps, p)
+        ``z_s(k)``, the target outputs handed to the controller (equal to ``r(k)`` when the
+        setpoint is reachable).
+    target_inputs : ndarray, shape (steps, m)
+        ``u_s(k)``.
+    estimates : ndarray, shape (steps, na)
+        ``x(k|k)`` = [plant states; disturbance estimate].  The true state for ``full_state``.
+    disturbance_estimates : ndarray, shape (steps, nd)
+        The disturbance part of ``estimates``.
+    states : ndarray, shape (steps, nt)
+        True plant states ``x(k)``.
+    reports : list
+        ``PolicyStep.report`` of every step (``None`` for the unconstrained policy).
+    diverged_at : int or None
+        First step whose values were not computed because the run blew up (those rows are
+        NaN); ``None`` when the run completed.
+    initial_input : ndarray, shape (m,)
+        ``u(-1)``.
+    initial_setpoint : ndarray, shape (p,)
+        Setpoint before step 0.
+    measured_disturbances : ndarray, shape (steps, md)
+        ``d_m(k)`` (no columns without measured disturbances).
+    """
+
+    time: NDArray[np.float64]
+    outputs: NDArray[np.float64]
+    measured: NDArray[np.float64]
+    inputs: NDArray[np.float64]
+    moves: NDArray[np.float64]
+    setpoints: NDArray[np.float64]
+    targets: NDArray[np.float64]
+    target_inputs: NDArray[np.float64]
+    estimates: NDArray[np.float64]
+    disturbance_estimates: NDArray[np.float64]
+    states: NDArray[np.float64]
+    reports: list[Mapping[str, Any] | None] = field(repr=False)
+    diverged_at: int | None
+    initial_input: NDArray[np.float64]
+    initial_setpoint: NDArray[np.float64]
+    measured_disturbances: NDArray[np.float64] = field(default_factory=lambda: np.zeros((0, 0)))
+
+
+def _held(events: Sequence[Event], steps: int, initial: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Row ``k`` holds the value of the last event at or before ``k`` (``initial`` before).
+
+    Each row is written once (an event fills up to the next one), so many events cost no more
+    than one.
+    """
+    out = np.tile(initial, (steps, 1))
+    ordered = sorted(events, key=lambda e: e.step)  # stable: at equal steps the later wins
+    for i, event in enumerate(ordered):
+        value = np.asarray(event.value, dtype=float)
+        assert 0 <= event.step < steps and value.shape == initial.shape, (event.step, value.shape)
+        end = ordered[i + 1].step if i + 1 < len(ordered) else steps
+        out[event.step : end] = value
+    return out
+
+
+def _vector(value: ArrayLike | None, size: int) -> NDArray[np.float64]:
+    out = np.zeros(size) if value is None else np.asarray(value, dtype=float).reshape(-1)
+    assert out.shape == (size,), (out.shape, size)
+    return out
+
+
+def simulate_loop(
+    design: ControllerDesign,
+    estimator: Estimator,
+    scenario: Scenario,
+    *,
+    plant: TruePlant | None = None,
+    policy: MovePolicy | None = None,
+    loop: ControlLoop | None = None,
+    b_disturbance: ArrayLike | None = None,
+    target_rule: TargetRule | None = None,
+) -> Simulation:
+    """Simulate the closed loop of a scenario (see the module notes for one step).
+
+    Parameters
+    ----------
+    design : ControllerDesign
+    estimator : Estimator
+        Designed on the same model as ``design``.
+    scenario : Scenario
+    plant : TruePlant, optional
+        The plant the loop runs on (default: the model itself, no mismatch).
+    policy : MovePolicy, optional
+        Default ``UnconstrainedPolicy(design.gain.horizon)``.
+    loop : ControlLoop, optional
+        ``control_loop(design, estimator)`` when already formed.
+    b_disturbance : array_like, shape (n, md), optional
+        The model's measured-disturbance matrix ``Bd``, in the units of the design: the
+        loop then reads ``scenario.measured_disturbances`` and feeds them forward (module
+        notes).  ``plant``, when given, must carry its own ``b_disturbance``.
+    target_rule : TargetRule, optional
+        Replaces the linear target maps ``z_s = Z_r r + Z_d d`` (default: those maps, the
+        unconstrained target of :mod:`service.solver.estimation.target`).
+
+    Returns
+    -------
+    Simulation
+
+    Notes
+    -----
+    Everything constant is formed before the loop (noise, event levels, target maps); a
+    step is a handful of small matrix-vector products, so 10^5 steps of a small plant take
+    seconds (``tests/bench/bench_simulation.py``).
+    """
+    loop = control_loop(design, estimator) if loop is None else loop
+    est = loop.estimator
+    n, nd, na = est.state_size, est.disturbance_size, est.augmented_size
+    m, p = est.b.shape[1], est.c_controlled.shape[0]
+    bd = np.zeros((n, 0)) if b_disturbance is None else np.asarray(b_disturbance, dtype=float)
+    md = bd.shape[1]
+    true = plant or TruePlant(est.model_a, est.model_b, est.model_c, bd)
+    at, bt, ct = (np.asarray(v, dtype=float) for v in (true.a, true.b, true.c))
+    nt = at.shape[0]
+    assert at.shape == (nt, nt) and bt.shape == (nt, m) and ct.shape == (p, nt), (at.shape, bt.shape, ct.shape)
+    assert nt == n or (scenario.initial_state is None and not est.full_state), (nt, n)
+    bdt = np.zeros((nt, 0)) if true.b_disturbance is None else np.asarray(true.b_disturbance, dtype=float)
+    assert bd.shape == (n, md) and bdt.shape == (nt, md), (bd.shape, bdt.shape)
+    steps = int(scenario.steps)
+    assert steps >= 1, steps
+    policy = UnconstrainedPolicy(loop.horizon_gain) if policy is None else policy
+
+    x0 = _vector(scenario.initial_state, n)
+    xt0 = x0 if nt == n else np.zeros(nt)
+    u0 = _vector(scenario.initial_input, m)
+    r0 = ct @ xt0 if scenario.initial_setpoint is None else _vector(scenario.initial_setpoint, p)
+    setpoints = _held(scenario.setpoint_changes, steps, r0)
+    d_out = _held(scenario.output_disturbances, steps, np.zeros(p))
+    d_in = _held(scenario.input_disturbances, steps, np.zeros(m))
+    d_meas = _held(scenario.measured_disturbances, steps, np.zeros(md))
+    if md:
+        pred = loop.design.prediction
+        fd = disturbance_free_response(
+            est.a,
+            np.vstack([bd, np.zeros((nd, md))]),
+            est.c_controlled,
+            prediction=pred.prediction,
+            first_penalized=pred.first_penalized,
+        )
+        bda = np.vstack([bd, np.zeros((nd, md))])
+    rng = np.random.default_rng(scenario.seed)
+    noise = np.zeros((steps, p))
+    if scenario.noise_std is not None:
+        noise = rng.standard_normal((steps, p)) * _vector(scenario.noise_std, p)
+    offset = d_out + noise  # what adds to C_true x in the measurement
+
+    target = loop.target
+    targets_r = setpoints @ target.output_setpoint_map.T  # Z_r r(k), all steps at once
+    target_inputs_r = setpoints @ target.setpoint_map[n:].T
+    z_d = target.output_disturbance_map
+    u_d = target.disturbance_map[n:]
+    use_d = nd > 0 and bool(np.any(z_d) or np.any(u_d))
+    dsl = est.disturbance_slice
+    fx, fu, np_ = loop.free_state, loop.free_input, loop.penalized_steps
+    gain, cy, aa, ba = est.gain, est.c_measured, est.a, est.b
+    full = est.full_state
+
+    outputs = np.full((steps, p), np.nan)
+    measured = np.full((steps, p), np.nan)
+    inputs = np.full((steps, m), np.nan)
+    moves = np.full((steps, m), np.nan)
+    targets = np.full((steps, p), np.nan)
+    target_inputs = np.full((steps, m), np.nan)
+    estimates = np.full((steps, na), np.nan)
+    states = np.full((steps, nt), np.nan)
+    reports: list[Mapping[str, Any] | None] = []
+    diverged_at: int | None = None
+
+    x, u = xt0, u0
+    xp = np.concatenate([x0, np.zeros(nd)])
+    with np.errstate(over="ignore", invalid="ignore"):
+        for k in range(steps):
+            y = ct @ x
+            ym = y + offset[k]
+            xf = x if full else xp + gain @ (ym - cy @ xp)
+            if target_rule is not None:
+                zs, us = target_rule(setpoint=setpoints[k], disturbance=xf[dsl])
+            else:
+                zs = targets_r[k]
+                us = target_inputs_r[k]
+                if use_d:
+                    d = xf[dsl]
+                    zs = zs + z_d @ d
+                    us = us + u_d @ d
+            free = fx @ xf + fu @ u
+            if md:
+                free = free + fd @ d_meas[k]
+            error = (zs - free.reshape(np_, p)).reshape(-1)  # (1 (x) I_p) z_s - free
+            result = policy(error=error, free_prediction=free, previous_input=u, step=k)
+            du = np.asarray(result.move, dtype=float)
+            assert du.shape == (m,), du.shape
+            u = u + du
+            outputs[k] = y + d_out[k]
+            measured[k] = ym
+            inputs[k] = u
+            moves[k] = du
+            targets[k] = zs
+            target_inputs[k] = us
+            estimates[k] = xf
+            states[k] = x
+            reports.append(result.report)
+            x = at @ x + bt @ (u + d_in[k])
+            xp = aa @ xf + ba @ u
+            if md:
+                x = x + bdt @ d_meas[k]
+                xp = xp + bda @ d_meas[k]
+            if not (x @ x < DIVERGENCE_LIMIT and xp @ xp < DIVERGENCE_LIMIT and u @ u < DIVERGENCE_LIMIT):
+                if k + 1 < steps:
+                    diverged_at = k + 1
+                break
+    reports.extend([None] * (steps - len(reports)))
+    return Simulation(
+        time=np.arange(steps) * float(scenario.sample_time),
+        outputs=outputs,
+        measured=measured,
+        inputs=inputs,
+        moves=moves,
+        setpoints=setpoints,
+        targets=targets,
+        target_inputs=target_inputs,
+        estimates=estimates,
+        disturbance_estimates=estimates[:, dsl],
+        states=states,
+        reports=reports,
+        diverged_at=diverged_at,
+        initial_input=u0,
+        initial_setpoint=r0,
+        measured_disturbances=d_meas,
+    )

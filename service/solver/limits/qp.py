@@ -1,0 +1,570 @@
+"""The condensed move QP of the constrained predictive controller, solved at every step.
+
+With limits the controller is no longer a fixed gain: at every sample it solves, in the moves
+``dU = [du(k); ...; du(k+Hu-1)]`` over the control horizon and one slack per output bound
+that is present, ::
+
+    minimize   1/2 dU' H dU - (G' Q E)' dU  +  sum_b rho_b s_b + 1/2 c sum_b s_b^2
+    subject to |du(k+j)| <= move_max                               (hard, j = 0..Hu-1)
+               input_min <= u(k-1) + du(k) + ... + du(k+j) <= input_max   (hard)
+               Zfree_i + (G dU)_i <= output_max + s_b    for every penalized step i (soft)
+               Zfree_i + (G dU)_i >= output_min - s_b
+               s_b >= 0
+
+``H = G'QG + R`` and ``E`` are those of the unconstrained design (:mod:`service.solver.design.gain`);
+``Zfree = Fx x(k) + Fu u(k-1)`` is the free prediction over the penalized steps ``Hw..Hp``.
+Without the slacks the cost is ``V`` of the design notes less a constant, so when no limit is
+active the solution is ``H^-1 G'QE`` and its first move is ``Kh E``.
+
+Slacks: one per output bound present (``output_max`` of output j, ``output_min`` of output j),
+shared by all penalized steps, so ``s_b`` is the largest violation of bound ``b`` over the
+prediction horizon and the QP grows by at most ``2 p`` variables, not ``2 p Np``.  The linear
+weight ``rho_b`` is the output's ``output_softness``.  It is an *exact* penalty: by the exact
+penalty property of the l1 penalty (a standard result of constrained optimization; common
+practice) the soft problem has the same solution as the hard one
+whenever the hard one is feasible and ``rho_b`` exceeds the sum, over the penalized steps, of
+the hard problem's multipliers on bound ``b`` (a shared slack's stationarity condition reads
+``rho_b - sum_i lambda_bi - mu_b = 0`` with ``mu_b >= 0`` the multiplier of ``s_b >= 0``).
+The small quadratic term ``c = lambda_min(H)`` keeps the QP's Hessian positive definite (the
+solver needs it) without raising its condition number; it does not change an exact solution
+(its gradient vanishes at ``s = 0``).
+
+Solver: DAQP (the ``daqp`` package), a dual active-set method written for the small dense
+QPs of predictive control, with recursive LDL' updates of the working set.  Its answer is exact
+at its active set (an equality-constrained solve, not an iterate stopped at a tolerance).  The
+workspace is set up once per controller with ``H`` (which it factors once) and the constraint
+matrix; each step only updates the linear term and the bounds.  By default a step starts from
+the previous step's working set, whose factorization DAQP keeps; a start from the previous
+active set shifted one sample ahead is available (``warm_start="shifted"``) but must refactor
+the working set from scratch and measured slower on the benchmark cases.  Before calling the
+solver, each step tries the unconstrained optimum with the design's own Cholesky factor: when
+that already satisfies every limit it is the QP's solution (and its first move is ``Kh E``).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import daqp
+import numpy as np
+import scipy.linalg
+from numpy.typing import NDArray
+
+from service.solver.design.controller import ControllerDesign
+from service.solver.design.gain import FactoredHessian
+from service.solver.design.prediction import Prediction
+from service.solver.limits.bounds import Limits
+
+__all__ = [
+    "PRIMAL_TOLERANCE",
+    "WARM_STARTS",
+    "ActiveLimit",
+    "MoveProblem",
+    "MoveQP",
+    "MoveSolution",
+]
+
+#: Absolute tolerance on every limit, in the units of the limited signal.  DAQP's answer is
+#: exact at its active set; the tolerance only decides when a constraint counts as violated.
+PRIMAL_TOLERANCE = 1e-9
+
+#: The ways a step can start (see :class:`MoveQP`).
+WARM_STARTS = ("previous", "shifted", "none")
+
+# DAQP's constraint-state bits (its documentation, "sense"): active, and active at the lower bound.
+_ACTIVE, _LOWER = 1, 2
+
+_STATUS = {
+    1: "optimal",
+    2: "optimal",
+    -1: "infeasible",
+    -2: "cycling",
+    -3: "unbounded",
+    -4: "iteration_limit",
+    -5: "not_convex",
+    -6: "bad_start",
+}
+
+
+@dataclass(frozen=True)
+class ActiveLimit:
+    """One limit the QP's solution holds at its bound.
+
+    Attributes
+    ----------
+    kind : str
+        ``"input"``, ``"move"`` or ``"output"``.
+    side : str
+        ``"min"`` or ``"max"``.
+    index : int
+        Which input (0..m-1) or controlled output (0..p-1).
+    step : int
+        For inputs and moves, the offset ``j`` in the control horizon (0 is the move applied
+        now, ``u(k)``); for outputs, the prediction step ``i`` in ``Hw..Hp``.
+    """
+
+    kind: str
+    side: str
+    index: int
+    step: int
+
+
+@dataclass(frozen=True)
+class MoveSolution:
+    """The answer of one QP step.
+
+    Attributes
+    ----------
+    moves : ndarray, shape (Hu*m,)
+        ``dU``; zeros when ``solved`` is false.
+    output_max_slack, output_min_slack : ndarray, shape (p,)
+        Slack used on each output's upper and lower bound (largest violation over the
+        horizon the QP accepts); 0 where the bound is absent or holds.
+    solved : bool
+        Whether ``moves`` is an optimal solution.
+    status : str
+        ``"optimal"``, ``"infeasible"``, ``"iteration_limit"``, ``"cycling"``, ``"failed"``, ...
+    iterations : int
+        Active-set iterations (0 when the unconstrained optimum was already feasible).
+    method : str
+        ``"unconstrained"`` (the design's Cholesky solve sufficed) or ``"active_set"``.
+    active : tuple of ActiveLimit
+        The limits in the solution's active set.
+    variables : ndarray, shape (Hu*m + ns,)
+        ``[dU; s]``, the QP's full solution.
+    multipliers : ndarray, shape (Hu*m + ns + rows,)
+        Lagrange multipliers in DAQP's convention: for the bounds on the variables first, then
+        the rows of :attr:`MoveProblem.rows`; positive at an upper bound, negative at a lower.
+    """
+
+    moves: NDArray[np.float64]
+    output_max_slack: NDArray[np.float64]
+    output_min_slack: NDArray[np.float64]
+    solved: bool
+    status: str
+    iterations: int
+    method: str
+    active: tuple[ActiveLimit, ...]
+    variables: NDArray[np.float64]
+    multipliers: NDArray[np.float64]
+
+    def first_move(self, inputs: int) -> NDArray[np.float64]:
+        """Return ``du(k)``, the first ``inputs`` entries of :attr:`moves`."""
+        return self.moves[:inputs]
+
+
+@dataclass(frozen=True)
+class MoveProblem:
+    """One step's QP in full: ``min 1/2 x'Hx + f'x  s.t.  lower <= [x; rows x] <= upper``.
+
+    Attributes
+    ----------
+    hessian : ndarray, shape (nv, nv)
+        ``blockdiag(H, c I)`` with ``nv = Hu*m + ns``.
+    linear : ndarray, shape (nv,)
+        ``f = [-G'QE; rho]``.
+    rows : ndarray, shape (nr, nv)
+        The general constraints (input sums, then output upper rows, then output lower rows).
+    lower, upper : ndarray, shape (nv + nr,)
+        Bounds on the variables first, then on the rows; ``+-inf`` where absent.
+    """
+
+    hessian: NDArray[np.float64]
+    linear: NDArray[np.float64]
+    rows: NDArray[np.float64]
+    lower: NDArray[np.float64]
+    upper: NDArray[np.float64]
+
+
+class MoveQP:
+    """The move QP of one controller, set up once and solved step after step.
+
+    Parameters
+    ----------
+    prediction : Prediction
+        ``G`` of shape (Np*p, Hu*m) and the horizons.
+    hessian : FactoredHessian
+        ``H = G'QG + R`` with its Cholesky factor, from the design.
+    weighted : ndarray, shape (Np*p, Hu*m)
+        ``Wbar G`` (:func:`service.solver.design.gain.weighted_moves`).
+    output_root : ndarray, shape (p, p)
+        ``W`` with ``W'W = Q``.
+    limits : Limits
+    hard_outputs : bool, optional
+        Treat the output limits as hard (no slacks; the step fails when they cannot hold).
+        Default false: soft, exact-penalty outputs.
+    tolerance : float, optional
+        Absolute primal tolerance on every limit (default :data:`PRIMAL_TOLERANCE`).
+    iteration_limit : int, optional
+        Most active-set iterations per start (default 10000, DAQP's own).
+    warm_start : {"previous", "shifted", "none"}, optional
+        How each step starts: ``"previous"`` (default) from the previous step's working set,
+        kept in DAQP's workspace with its factorization; ``"shifted"`` from the previous
+        solution's active set shifted one sample ahead (refactored from scratch); ``"none"``
+        from the empty set.  The answer is the same; only the work differs (see
+        ``tests/bench/bench_qp.py``).
+
+    Notes
+    -----
+    An instance keeps the solver's workspace and the last active set: use one per closed-loop
+    run, never from two threads at once.
+    """
+
+    def __init__(
+        self,
+        *,
+        prediction: Prediction,
+        hessian: FactoredHessian,
+        weighted: NDArray[np.float64],
+        output_root: NDArray[np.float64],
+        limits: Limits,
+        hard_outputs: bool = False,
+        tolerance: float = PRIMAL_TOLERANCE,
+        iteration_limit: int = 10000,
+        warm_start: str = "previous",
+    ) -> None:
+        g = prediction.moves
+        hu, m = prediction.control, limits.inputs
+        p, steps = limits.outputs, prediction.penalized_steps
+        assert g.shape == (steps * p, hu * m), (g.shape, steps, p, hu, m)
+        self._hessian = hessian
+        self._weighted = weighted
+        self._root = output_root
+        self._limits = limits
+        self._m, self._p, self._hu, self._first = m, p, hu, prediction.first_penalized
+        self._tolerance = tolerance
+        assert warm_start in WARM_STARTS, warm_start
+        self._warm = warm_start
+        self._kept = False  # whether DAQP's workspace holds a working set worth starting from
+        nu = hu * m
+
+        # Input rows: u(k+j) - u(k-1) = sum_{l<=j} du(k+l), for inputs with a limit.
+        limited_in = np.flatnonzero(np.isfinite(limits.input_min) | np.isfinite(limits.input_max))
+        cumulative = np.kron(np.tril(np.ones((hu, hu))), np.eye(m))
+        in_rows = (np.arange(hu)[:, None] * m + limited_in[None, :]).reshape(-1)
+        self._in_index = limited_in
+        self._in_rows = cumulative[in_rows]
+
+        # Output rows: one block per bound present; slack columns (soft) follow the moves.
+        upper_out = np.flatnonzero(np.isfinite(limits.output_max))
+        lower_out = np.flatnonzero(np.isfinite(limits.output_min))
+        self._upper_out, self._lower_out = upper_out, lower_out
+        self._hard = hard_outputs
+        out_up = (np.arange(steps)[:, None] * p + upper_out[None, :]).reshape(-1)
+        out_lo = (np.arange(steps)[:, None] * p + lower_out[None, :]).reshape(-1)
+        self._out_up, self._out_lo = out_up, out_lo
+        ns = 0 if hard_outputs else upper_out.size + lower_out.size
+        self._ns = ns
+        nv = nu + ns
+        blocks = [np.hstack([self._in_rows, np.zeros((self._in_rows.shape[0], ns))])]
+        up_block = np.hstack([g[out_up], np.zeros((out_up.size, ns))])
+        lo_block = np.hstack([g[out_lo], np.zeros((out_lo.size, ns))])
+        if ns:
+            # Row (step t, bound b) carries -s_b (upper) or +s_b (lower).
+            up_block[np.arange(out_up.size), nu + np.tile(np.arange(upper_out.size), steps)] = -1.0
+            lo_block[np.arange(out_lo.size), nu + upper_out.size + np.tile(np.arange(lower_out.size), steps)] = 1.0
+        self._rows = np.ascontiguousarray(np.vstack([*blocks, up_block, lo_block]))
+        nr = self._rows.shape[0]
+        self._ranges = {
+            "input": (nv, nv + self._in_rows.shape[0]),
+            "upper": (nv + self._in_rows.shape[0], nv + self._in_rows.shape[0] + out_up.size),
+            "lower": (nv + self._in_rows.shape[0] + out_up.size, nv + nr),
+        }
+
+        curvature = max(hessian.smallest_eigenvalue, np.finfo(float).tiny)
+        self._full_hessian = scipy.linalg.block_diag(hessian.matrix, curvature * np.eye(ns))
+        softness = np.concatenate([limits.output_softness[upper_out], limits.output_softness[lower_out]])
+        self._slack_weight = softness if ns else np.zeros(0)
+        # Constant bounds: moves, slacks.
+        self._var_lower = np.concatenate([-np.tile(limits.move_max, hu), np.zeros(ns)])
+        self._var_upper = np.concatenate([np.tile(limits.move_max, hu), np.full(ns, np.inf)])
+        self._shift = self._shift_map(nv, nr, steps)
+        lim = limits
+        self._lower_template = np.concatenate(
+            [
+                self._var_lower,
+                np.tile(lim.input_min[limited_in], hu),
+                np.full(out_up.size, -np.inf),
+                np.tile(lim.output_min[lower_out], steps),
+            ]
+        )
+        self._upper_template = np.concatenate(
+            [
+                self._var_upper,
+                np.tile(lim.input_max[limited_in], hu),
+                np.tile(lim.output_max[upper_out], steps),
+                np.full(out_lo.size, np.inf),
+            ]
+        )
+        # What each constraint is, for the report: kind (0 move, 1 input, 2 output; -1 slack
+        # bound), signal index and step.
+        kinds = np.full(nv + nr, -1)
+        index = np.zeros(nv + nr, dtype=int)
+        step = np.zeros(nv + nr, dtype=int)
+        kinds[:nu], index[:nu], step[:nu] = 0, np.tile(np.arange(m), hu), np.repeat(np.arange(hu), m)
+        for key, code, signals, count, first in (
+            ("input", 1, limited_in, hu, 0),
+            ("upper", 2, upper_out, steps, prediction.first_penalized),
+            ("lower", 2, lower_out, steps, prediction.first_penalized),
+        ):
+            start, stop = self._ranges[key]
+            kinds[start:stop] = code
+            index[start:stop] = np.tile(signals, count)
+            step[start:stop] = first + np.repeat(np.arange(count), signals.size)
+        self._kind_of, self._index_of, self._step_of = kinds, index, step
+
+        lower, upper = self._bounds(np.zeros(m), np.zeros(steps * p))
+        self._model = daqp.Model()
+        self._model.setup(self._full_hessian, np.zeros(nv), self._rows, upper, lower)
+        self._model.settings = {
+            "primal_tol": tolerance,
+            "eps_prox": 0.0,  # H is positive definite: no proximal regularization
+            "iter_limit": int(iteration_limit),
+        }
+        self._last_sense = np.zeros(nv + nr, dtype=np.int32)
+
+    @classmethod
+    def from_design(
+        cls,
+        design: ControllerDesign,
+        limits: Limits,
+        *,
+        hard_outputs: bool = False,
+        tolerance: float = PRIMAL_TOLERANCE,
+        iteration_limit: int = 10000,
+        warm_start: str = "previous",
+    ) -> MoveQP:
+        """Build from a :class:`service.solver.design.controller.ControllerDesign` and limits."""
+        return cls(
+            prediction=design.prediction,
+            hessian=design.hessian,
+            weighted=design.weighted,
+            output_root=design.output_root,
+            limits=limits,
+            hard_outputs=hard_outputs,
+            tolerance=tolerance,
+            iteration_limit=iteration_limit,
+            warm_start=warm_start,
+        )
+
+    @property
+    def blocks(self) -> dict[str, slice]:
+        """Where each kind of constraint sits in :attr:`MoveSolution.multipliers`.
+
+        Keys ``"moves"`` (the move bounds, ordered step by step), ``"slacks"`` (``s >= 0``),
+        ``"input"`` (input rows, step by step over the limited inputs), ``"output_max"`` and
+        ``"output_min"`` (output rows, prediction step by step over the bounded outputs).
+        """
+        nu = self._hu * self._m
+        return {
+            "moves": slice(0, nu),
+            "slacks": slice(nu, self.variables),
+            "input": slice(*self._ranges["input"]),
+            "output_max": slice(*self._ranges["upper"]),
+            "output_min": slice(*self._ranges["lower"]),
+        }
+
+    @property
+    def variables(self) -> int:
+        """``Hu*m + ns``: moves plus slacks."""
+        return self._full_hessian.shape[0]
+
+    def _shift_map(self, nv: int, nr: int, steps: int) -> NDArray[np.intp]:
+        """For each constraint, the one of the previous step it inherits its state from (-1: none).
+
+        The previous plan shifted one sample ahead, ``[du(k+1); ...; du(k+Hu-1); 0]``: move
+        bounds move one block earlier and the last move starts free.
+        """
+        m, hu = self._m, self._hu
+        source = np.full(nv + nr, -1, dtype=np.intp)
+        moves = np.arange(hu * m)
+        source[moves[: (hu - 1) * m]] = moves[m:]  # du(k+j) <- du(k+j+1)
+        source[hu * m : nv] = np.arange(hu * m, nv)  # slack bounds keep their state
+        # Input and output rows move one block earlier; the last block keeps the last block's
+        # state, since the shifted plan ends with a zero move (inputs and outputs level off).
+        blocks = (
+            ("input", self._in_index.size, hu),
+            ("upper", self._upper_out.size, steps),
+            ("lower", self._lower_out.size, steps),
+        )
+        for key, width, count in blocks:
+            start, _ = self._ranges[key]
+            inner = (count - 1) * width
+            source[start : start + inner] = start + width + np.arange(inner)
+            source[start + inner : start + inner + width] = start + inner + np.arange(width)
+        return source
+
+    def _bounds(
+        self, previous_input: NDArray[np.float64], free_prediction: NDArray[np.float64]
+    ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """Bounds of one step: the constant templates less ``u(k-1)`` and ``Zfree`` where they enter."""
+        lower, upper = self._lower_template.copy(), self._upper_template.copy()
+        start, stop = self._ranges["input"]
+        held = np.tile(previous_input[self._in_index], self._hu)
+        lower[start:stop] -= held
+        upper[start:stop] -= held
+        start, stop = self._ranges["upper"]
+        upper[start:stop] -= free_prediction[self._out_up]
+        start, stop = self._ranges["lower"]
+        lower[start:stop] -= free_prediction[self._out_lo]
+        return lower, upper
+
+    def problem(
+        self,
+        *,
+        error: NDArray[np.float64],
+        free_prediction: NDArray[np.float64],
+        previous_input: NDArray[np.float64],
+    ) -> MoveProblem:
+        """Return one step's QP as plain arrays (for checking with another solver).
+
+        Parameters
+        ----------
+        error : ndarray, shape (Np*p,)
+            ``E = T - Fx x(k) - Fu u(k-1)``.
+        free_prediction : ndarray, shape (Np*p,)
+            ``Zfree = Fx x(k) + Fu u(k-1)``.
+        previous_input : ndarray, shape (m,)
+            ``u(k-1)``.
+        """
+        scaled = (error.reshape(-1, self._p) @ self._root.T).reshape(-1)  # Wbar E
+        linear = np.concatenate([-(self._weighted.T @ scaled), self._slack_weight])
+        lower, upper = self._bounds(previous_input, free_prediction)
+        return MoveProblem(self._full_hessian, linear, self._rows, lower, upper)
+
+    def solve(
+        self,
+        *,
+        error: NDArray[np.float64],
+        free_prediction: NDArray[np.float64],
+        previous_input: NDArray[np.float64],
+    ) -> MoveSolution:
+        """Solve one step's QP; never raises on a failed or infeasible solve.
+
+        Parameters are as for :meth:`problem`.
+
+        Returns
+        -------
+        MoveSolution
+            ``solved`` false (and zero moves) when the solver found the problem infeasible,
+            stopped early, or returned a point that breaks a hard limit.
+        """
+        error = np.asarray(error, dtype=float)
+        free_prediction = np.asarray(free_prediction, dtype=float)
+        previous_input = np.asarray(previous_input, dtype=float)
+        if not (np.isfinite(error).all() and np.isfinite(free_prediction).all() and np.isfinite(previous_input).all()):
+            return self._failure("failed", 0)
+        qp = self.problem(error=error, free_prediction=free_prediction, previous_input=previous_input)
+        nu = self._hu * self._m
+        # The unconstrained optimum, by the design's factor: the answer whenever it is feasible.
+        moves = self._hessian.solve(-qp.linear[:nu])
+        trial = np.concatenate([moves, np.zeros(self._ns)])
+        if self._violation(trial, qp) <= self._tolerance:
+            multipliers = np.zeros(qp.lower.size)
+            multipliers[nu : self.variables] = -self._slack_weight  # s >= 0 holds its bound
+            self._last_sense = np.zeros_like(self._last_sense)
+            self._last_sense[nu : self.variables] = _ACTIVE | _LOWER
+            return self._result(trial, multipliers, "optimal", 0, "unconstrained")
+
+        iterations = 0
+        starts: list[NDArray[np.int32] | None] = []
+        if self._warm == "shifted":
+            starts.append(self._shifted_sense())
+        elif self._warm == "previous" and self._kept:
+            starts.append(None)  # DAQP keeps its last working set and its factorization
+        starts.append(np.zeros_like(self._last_sense))
+        for sense in starts:
+            try:
+                if sense is None:
+                    self._model.update(f=qp.linear, bupper=qp.upper, blower=qp.lower)
+                else:
+                    self._model.update(f=qp.linear, bupper=qp.upper, blower=qp.lower, sense=sense)
+                x, _, flag, info = self._model.solve()
+            except Exception:  # the solver must never end the run
+                flag, info, x = -99, {"iterations": 0}, None
+            iterations += int(info.get("iterations", 0))
+            if flag > 0 and x is not None:
+                x = np.asarray(x, dtype=float)
+                if np.isfinite(x).all() and self._violation(x, qp) <= 10.0 * self._tolerance:
+                    multipliers = np.asarray(info["lam"], dtype=float).copy()
+                    self._last_sense = _sense_of(multipliers)
+                    self._kept = True
+                    return self._result(x, multipliers, "optimal", iterations, "active_set")
+                flag = -99
+            if flag == -1:
+                break  # infeasible is a property of the problem, not of the start
+        self._last_sense = np.zeros_like(self._last_sense)
+        self._kept = False
+        return self._failure(_STATUS.get(flag, "failed"), iterations)
+
+    def _shifted_sense(self) -> NDArray[np.int32]:
+        sense = np.zeros_like(self._last_sense)
+        has = self._shift >= 0
+        sense[has] = self._last_sense[self._shift[has]]
+        return sense
+
+    def _violation(self, x: NDArray[np.float64], qp: MoveProblem) -> float:
+        values = np.concatenate([x, self._rows @ x])
+        excess = np.maximum(values - qp.upper, qp.lower - values)
+        return float(excess.max(initial=0.0))
+
+    def _result(
+        self, x: NDArray[np.float64], multipliers: NDArray[np.float64], status: str, iterations: int, method: str
+    ) -> MoveSolution:
+        nu = self._hu * self._m
+        slack = x[nu:]
+        upper = np.zeros(self._p)
+        lower = np.zeros(self._p)
+        if self._ns:
+            used = np.where(slack > self._tolerance, slack, 0.0)  # below tolerance: rounding
+            upper[self._upper_out] = used[: self._upper_out.size]
+            lower[self._lower_out] = used[self._upper_out.size :]
+        return MoveSolution(
+            moves=x[:nu].copy(),
+            output_max_slack=upper,
+            output_min_slack=lower,
+            solved=True,
+            status=status,
+            iterations=iterations,
+            method=method,
+            active=self._active(multipliers),
+            variables=x.copy(),
+            multipliers=multipliers,
+        )
+
+    def _failure(self, status: str, iterations: int) -> MoveSolution:
+        nv = self.variables
+        return MoveSolution(
+            moves=np.zeros(self._hu * self._m),
+            output_max_slack=np.zeros(self._p),
+            output_min_slack=np.zeros(self._p),
+            solved=False,
+            status=status,
+            iterations=iterations,
+            method="active_set",
+            active=(),
+            variables=np.zeros(nv),
+            multipliers=np.zeros(nv + self._rows.shape[0]),
+        )
+
+    def _active(self, multipliers: NDArray[np.float64]) -> tuple[ActiveLimit, ...]:
+        found = np.flatnonzero((multipliers != 0.0) & (self._kind_of >= 0))
+        names = ("move", "input", "output")
+        return tuple(
+            ActiveLimit(names[kind], "max" if value > 0 else "min", index, step)
+            for kind, value, index, step in zip(
+                self._kind_of[found].tolist(),
+                multipliers[found].tolist(),
+                self._index_of[found].tolist(),
+                self._step_of[found].tolist(),
+                strict=False,
+            )
+        )
+
+
+def _sense_of(multipliers: NDArray[np.float64]) -> NDArray[np.int32]:
+    """DAQP's constraint states from its multipliers: active, and at which bound."""
+    sense = np.zeros(multipliers.size, dtype=np.int32)
+    sense[multipliers > 0] = _ACTIVE
+    sense[multipliers < 0] = _ACTIVE | _LOWER
+    return sense

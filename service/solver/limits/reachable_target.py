@@ -1,0 +1,258 @@
+"""The steady-state target under input limits: the nearest reachable steady state.
+
+When the setpoint asks for an input beyond its limits, no steady state inside the limits puts
+the controlled outputs on the setpoint.  A controller that keeps chasing the setpoint then
+pushes against the limit for ever (windup).  The remedy is to hand it the steady state it can
+reach: with ``[x_s; u_s] = P0 d + N c`` the steady states of :mod:`service.solver.estimation.target`
+(``N`` an orthonormal null-space basis of ``[I - A, -B]``), ::
+
+    minimize   |W (Cz x_s + Dz d - r)|^2                  (W'W = Q, the output weight)
+    subject to input_min <= u_s <= input_max
+
+and among the minimizers the one of least norm ``|[x_s; u_s]|`` (the unconstrained target's
+own tie-break, so both agree whenever the limits are not in the way).  The two objectives are
+taken in order (a lexicographic target calculation, common practice):
+
+1. the fit, a small QP in ``c`` whose Hessian ``(W F N)'(W F N)`` is singular when the weighted
+   outputs do not see every steady-state direction (more inputs than outputs, a zero weight);
+   DAQP solves it with its proximal-point iterations, which converge to an exact minimizer
+   of a positive-semidefinite QP;
+2. the least norm ``|c|`` on the set where the fit is optimal: ``V1' c = V1' c1``, with ``V1``
+   the right singular vectors of ``W F N`` of nonzero singular value (``W F N c`` is unique at
+   the optimum because the fit is strictly convex in ``W F N c``).  Skipped when there is no
+   such freedom.
+
+Only the limits' row bounds change with ``(r, d)``: both workspaces are set up once.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import daqp
+import numpy as np
+import scipy.linalg
+from numpy.typing import ArrayLike, NDArray
+
+from service.solver.design.weights import weight_root
+from service.solver.estimation.target import REACHABLE_TOLERANCE, TargetProblem, steady_state_target
+
+__all__ = ["TARGET_TOLERANCE", "ReachableTarget", "ReachableTargetProblem", "reachable_target"]
+
+#: Absolute tolerance on the input limits of the target, in input units.
+TARGET_TOLERANCE = 1e-10
+# DAQP's constraint-state value of an equality (its documentation, "sense").
+_EQUALITY = 5
+
+
+@dataclass(frozen=True)
+class ReachableTarget:
+    """A steady-state target inside the input limits.
+
+    Attributes
+    ----------
+    state : ndarray, shape (n,)
+        ``x_s``.
+    input : ndarray, shape (m,)
+        ``u_s``, inside the input limits.
+    output : ndarray, shape (pz,)
+        ``z_s = Cz x_s + Dz d``: the corrected setpoint for the controller.
+    offset : ndarray, shape (pz,)
+        ``z_s - r``; zero (to :data:`service.solver.estimation.target.REACHABLE_TOLERANCE`) when the
+        setpoint is reachable inside the limits.
+    reachable : bool
+        Whether the setpoint itself is reachable inside the limits.
+    input_at_min, input_at_max : ndarray of bool, shape (m,)
+        Inputs whose target sits on a limit.
+    solved : bool
+        False when the QP failed; the target is then the unconstrained one clipped into the
+        limits (and ``state``/``output`` follow from it only approximately).
+    status : str
+        ``"unconstrained"`` (the limits were not in the way), ``"optimal"``, or the failure.
+    """
+
+    state: NDArray[np.float64]
+    input: NDArray[np.float64]
+    output: NDArray[np.float64]
+    offset: NDArray[np.float64]
+    reachable: bool
+    input_at_min: NDArray[np.bool_]
+    input_at_max: NDArray[np.bool_]
+    solved: bool
+    status: str
+
+
+class ReachableTargetProblem:
+    """The target QP of one model and one set of input limits, set up once.
+
+    Parameters
+    ----------
+    problem : TargetProblem
+        From :func:`service.solver.estimation.target.target_problem` (model, disturbance layout, ``Q``).
+    input_min, input_max : array_like, shape (m,)
+        Input limits; ``-inf``/``+inf`` (or ``NaN``) where absent.
+    tolerance : float, optional
+        Absolute tolerance on the limits (default 1e-10).
+
+    Notes
+    -----
+    Holds solver workspaces: one instance per run, not shared between threads.
+    """
+
+    def __init__(
+        self,
+        problem: TargetProblem,
+        *,
+        input_min: ArrayLike,
+        input_max: ArrayLike,
+        tolerance: float = TARGET_TOLERANCE,
+    ) -> None:
+        n, m = problem.state_size, problem.b.shape[1]
+        low = np.array(input_min, dtype=float).reshape(m)
+        high = np.array(input_max, dtype=float).reshape(m)
+        low[np.isnan(low)] = -np.inf
+        high[np.isnan(high)] = np.inf
+        self._problem, self._n, self._m = problem, n, m
+        self._low, self._high, self._tolerance = low, high, tolerance
+        null = problem.null_space  # (n+m, k)
+        k = null.shape[1]
+        self._limited = np.flatnonzero(np.isfinite(low) | np.isfinite(high))
+        self._rows = np.ascontiguousarray(null[n:][self._limited])  # u_s rows of N
+        fit, _ = problem.output_equations(np.zeros(problem.c.shape[0]), np.zeros(problem.disturbance_input.shape[1]))
+        root = weight_root(problem.output_weight)
+        self._root = root
+        self._seen = root @ fit @ null  # W F N, (pz, k)
+        _, sv, vt = scipy.linalg.svd(self._seen, full_matrices=True)
+        rank = int(np.count_nonzero(sv > max(self._seen.shape) * np.finfo(float).eps * sv.max(initial=0.0)))
+        self._visible = vt[:rank].T  # V1, (k, rank)
+        self._k, self._rank = k, rank
+        bounds = (np.full(self._limited.size, np.inf), np.full(self._limited.size, -np.inf))
+        self._norm_model: daqp.Model | None = None
+        self._fit_model: daqp.Model | None = None
+        if self._limited.size == 0:
+            return  # no limit: the unconstrained target is always the answer
+        self._fit_model = daqp.Model()
+        self._fit_model.setup(self._seen.T @ self._seen, np.zeros(k), self._rows, *bounds)
+        self._fit_model.settings = {"primal_tol": tolerance, "eta_prox": 1e-12, "iter_limit": 2000}
+        if rank < k:
+            rows = np.ascontiguousarray(np.vstack([self._visible.T, self._rows]))
+            self._norm_sense = np.concatenate([np.full(rank, _EQUALITY), np.zeros(self._limited.size)]).astype(np.int32)
+            upper = np.concatenate([np.zeros(rank), bounds[0]])
+            lower = np.concatenate([np.zeros(rank), bounds[1]])
+            self._norm_model = daqp.Model()
+            self._norm_model.setup(np.eye(k), np.zeros(k), rows, upper, lower, self._norm_sense)
+            self._norm_model.settings = {"primal_tol": tolerance, "eps_prox": 0.0, "iter_limit": 2000}
+
+    def solve(self, setpoint: ArrayLike, disturbance: ArrayLike | None = None) -> ReachableTarget:
+        """Return the nearest reachable steady state for a setpoint and disturbance estimate.
+
+        Parameters
+        ----------
+        setpoint : array_like, shape (pz,)
+            ``r``.
+        disturbance : array_like, shape (nd,), optional
+            ``d`` (default zero).
+
+        Returns
+        -------
+        ReachableTarget
+            Never raises on a failed solve: see :attr:`ReachableTarget.solved`.
+        """
+        problem, n = self._problem, self._n
+        r = np.asarray(setpoint, dtype=float)
+        nd = problem.disturbance_input.shape[1]
+        d = np.zeros(nd) if disturbance is None else np.asarray(disturbance, dtype=float)
+        free = steady_state_target(problem, r, d)
+        if self._fit_model is None or self._inside(free.input):
+            return self._target(np.concatenate([free.state, free.input]), r, d, True, "unconstrained")
+
+        base = problem.particular @ d  # P0 d, orthogonal to every N c
+        fit, goal = problem.output_equations(r, d)
+        residual = self._root @ (goal - fit @ base)  # W (r - Dz d - F P0 d)
+        upper = self._high[self._limited] - base[n:][self._limited]
+        lower = self._low[self._limited] - base[n:][self._limited]
+        c, status = _run(self._fit_model, -(self._seen.T @ residual), upper, lower, None)
+        if c is not None and self._norm_model is not None:
+            level = self._visible.T @ c
+            c2, _ = _run(
+                self._norm_model,
+                np.zeros(self._k),
+                np.concatenate([level, upper]),
+                np.concatenate([level, lower]),
+                self._norm_sense,
+            )
+            c = c2 if c2 is not None else c  # the fit's own minimizer is optimal, just not least norm
+        if c is None:
+            clipped = np.clip(free.input, self._low, self._high)
+            return self._target(np.concatenate([free.state, clipped]), r, d, False, status)
+        return self._target(base + problem.null_space @ c, r, d, True, "optimal")
+
+    def _inside(self, u: NDArray[np.float64]) -> bool:
+        return bool(np.all(u >= self._low - self._tolerance) and np.all(u <= self._high + self._tolerance))
+
+    def _target(
+        self, xu: NDArray[np.float64], r: NDArray[np.float64], d: NDArray[np.float64], solved: bool, status: str
+    ) -> ReachableTarget:
+        problem, n = self._problem, self._n
+        u = np.clip(xu[n:], self._low, self._high)  # remove tolerance-sized excursions
+        output = problem.c @ xu[:n] + problem.disturbance_output @ d
+        offset = output - r
+        scale = max(1.0, float(np.abs(r).max(initial=0.0)), float(np.abs(d).max(initial=0.0)))
+        gap = self._tolerance * np.maximum(1.0, np.abs(u))
+        return ReachableTarget(
+            state=xu[:n].copy(),
+            input=u,
+            output=output,
+            offset=offset,
+            reachable=bool(np.abs(offset).max(initial=0.0) <= REACHABLE_TOLERANCE * scale),
+            input_at_min=np.abs(u - self._low) <= gap,
+            input_at_max=np.abs(u - self._high) <= gap,
+            solved=solved,
+            status=status,
+        )
+
+
+def reachable_target(
+    problem: TargetProblem,
+    setpoint: ArrayLike,
+    disturbance: ArrayLike | None = None,
+    *,
+    input_min: ArrayLike,
+    input_max: ArrayLike,
+) -> ReachableTarget:
+    """Return the nearest reachable steady state inside the input limits (one-off call).
+
+    Parameters are those of :class:`ReachableTargetProblem` and its ``solve``.
+
+    Examples
+    --------
+    The plant ``x+ = 0.5 x + u``, ``z = x`` has steady-state gain 2; with ``u <= 1`` the output
+    cannot pass 2, so the setpoint 3 is corrected to 2 with the input on its limit:
+
+    >>> from service.solver.estimation.target import target_problem
+    >>> t = reachable_target(target_problem([[0.5]], [[1.0]], [[1.0]]), [3.0],
+    ...                      input_min=[-1.0], input_max=[1.0])
+    >>> [round(float(t.output[0]), 12), round(float(t.input[0]), 12), bool(t.input_at_max[0])]
+    [2.0, 1.0, True]
+    """
+    return ReachableTargetProblem(problem, input_min=input_min, input_max=input_max).solve(setpoint, disturbance)
+
+
+def _run(
+    model: daqp.Model,
+    linear: NDArray[np.float64],
+    upper: NDArray[np.float64],
+    lower: NDArray[np.float64],
+    sense: NDArray[np.int32] | None,
+) -> tuple[NDArray[np.float64] | None, str]:
+    """Update and solve a DAQP workspace cold; return the solution or None and a status."""
+    size = upper.size
+    cold = np.zeros(size, dtype=np.int32) if sense is None else sense
+    try:
+        model.update(f=linear, bupper=upper, blower=lower, sense=cold)
+        x, _, flag, _ = model.solve()
+    except Exception:  # the solver must never end the run
+        return None, "failed"
+    if flag <= 0 or not np.isfinite(x).all():
+        return None, {-1: "infeasible", -4: "iteration_limit"}.get(int(flag), "failed")
+    return np.asarray(x, dtype=float), "optimal"

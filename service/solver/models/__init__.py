@@ -1,0 +1,8 @@
+"""Plant model forms and what they are made of.
+
+- :mod:`.sampling`: exact zero-order-hold sampling of continuous state-space models;
+- :mod:`.transfer`: transfer matrices with fractional dead times as exact discrete models;
+- :mod:`.properties`: steady-state gain, relative gain array, open-loop poles;
+- :mod:`.modes`: plant modes no input can move (PBH test);
+- :mod:`.scaling`: signal spans, the scaled plant, and gains back in engineering units.
+"""

@@ -1,0 +1,308 @@
+"""Open-loop properties of a discrete plant: steady-state gain, relative gain array, poles.
+
+For ``x(k+1) = A x(k) + B u(k)``, ``y(k) = C x(k) + D u(k)`` a held unit input settles at ::
+
+    G = C (I - A)^-1 B + D                      (final value theorem at z = 1)
+
+which exists only where no pole at ``z = 1`` reaches the output.  An integrating plant (a
+level, an inventory) has such a pole, and then only some input/output pairs lack a finite
+gain.  This module reports, per pair, the **integration order** (0: settles; 1: ramps; 2:
+parabola, ...) and for order-0 pairs the finite gain; an order-1 pair gets its **ramp rate**
+``lim_{z->1} (z - 1) G_ij(z)``, the change of the output per sample per unit input held.
+
+Splitting off the integrating modes
+-----------------------------------
+``A`` is brought to complex Schur form with the eigenvalues within a tolerance of 1 first,
+``A = Z [[T11, T12], [0, T22]] Z^H``, and the Sylvester equation ``T11 X - X T22 = -T12``
+decouples the two blocks (``scipy.linalg.solve_sylvester``).  In those coordinates the
+transfer matrix is ``C1 (zI - T11)^-1 B1 + C2 (zI - T22)^-1 B2 + D`` with ::
+
+    B1 = (Z^H B)_1 - X (Z^H B)_2,   B2 = (Z^H B)_2,   C1 = (C Z)_1,   C2 = (C Z)_2 + C1 X
+
+Taking the eigenvalues of ``T11`` as exactly 1, ``T11 = I + N`` with ``N`` strictly upper
+triangular (nilpotent), and ``C1 (zI - T11)^-1 B1 = sum_l C1 N^l B1 / (z - 1)^(l+1)``: pair
+``(i, j)`` integrates ``r`` times when the last nonzero term is ``l = r - 1``.  Pairs that
+do not integrate have the finite gain ``C2 (I - T22)^-1 B2 + D``.
+
+The relative gain array of a square nonsingular gain is ``Lambda = G .* (G^-1)^T``
+(Bristol 1966, "On a new measure of interaction for multivariable process control",
+IEEE Trans. Automatic Control 11:133, doi:10.1109/TAC.1966.1098266); its rows and columns
+each sum to one and it does not change when inputs or outputs are rescaled.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg
+from numpy.typing import ArrayLike, NDArray
+
+from service.solver.design.closed_loop import Diagnostic
+
+__all__ = [
+    "INTEGRATING_TOLERANCE",
+    "NEAR_SINGULAR_GAIN",
+    "PlantProperties",
+    "SteadyStateGain",
+    "gain_condition_number",
+    "open_loop_poles",
+    "plant_properties",
+    "plant_warnings",
+    "relative_gain_array",
+    "steady_state_gain",
+]
+
+#: A pole within this distance of ``z = 1`` counts as integrating (a time constant longer
+#: than about 10^5 sample times behaves as an integrator for control).
+INTEGRATING_TOLERANCE = 1e-5
+#: Condition number of the steady-state gain above which the plant is called near-singular:
+#: some output direction then needs input moves a thousand times larger than another
+#: (common practice; meaningful only on scaled signals).
+NEAR_SINGULAR_GAIN = 1e3
+
+
+@dataclass(frozen=True)
+class SteadyStateGain:
+    """Steady-state behaviour of each input/output pair.
+
+    Attributes
+    ----------
+    gain : ndarray, shape (p, m)
+        Final output change per unit input held; ``nan`` for integrating pairs.
+    integration_order : ndarray of int, shape (p, m)
+        0 where the pair settles, ``r >= 1`` where it integrates ``r`` times.
+    ramp_rate : ndarray, shape (p, m)
+        Output change per sample per unit input held, once the ramp is established:
+        the ramp slope for order-1 pairs, 0 for order 0, ``nan`` for order 2 and above.
+    """
+
+    gain: NDArray[np.float64]
+    integration_order: NDArray[np.int_]
+    ramp_rate: NDArray[np.float64]
+
+    @property
+    def integrating(self) -> NDArray[np.bool_]:
+        """``integration_order > 0``."""
+        return self.integration_order > 0
+
+    @property
+    def finite(self) -> bool:
+        """Every pair settles, so ``gain`` has no ``nan``."""
+        return not bool(self.integrating.any())
+
+
+@dataclass(frozen=True)
+class PlantProperties:
+    """What :func:`plant_properties` reports about an open-loop plant.
+
+    Attributes
+    ----------
+    steady_state : SteadyStateGain
+    relative_gain : ndarray, shape (p, p), or None
+        Bristol's relative gain array; ``None`` unless the gain is square, finite and
+        numerically nonsingular.
+    condition_number : float or None
+        2-norm condition number of the gain (``inf`` when singular); ``None`` when some pair
+        integrates.
+    poles : ndarray of complex, shape (n,)
+        Eigenvalues of ``A``, by descending modulus.
+    """
+
+    steady_state: SteadyStateGain
+    relative_gain: NDArray[np.float64] | None
+    condition_number: float | None
+    poles: NDArray[np.complex128]
+
+
+def _sorted_schur(
+    a: NDArray[np.float64], tolerance: float
+) -> tuple[NDArray[np.complex128], NDArray[np.complex128], int]:
+    """Complex Schur form with the eigenvalues within ``tolerance`` of 1 leading."""
+    t, z, count = scipy.linalg.schur(
+        a.astype(complex),
+        output="complex",
+        sort=lambda v: abs(v - 1.0) <= tolerance,
+        check_finite=False,
+    )
+    return t, z, int(count)
+
+
+def steady_state_gain(
+    a: ArrayLike,
+    b: ArrayLike,
+    c: ArrayLike,
+    d: ArrayLike | None = None,
+    *,
+    integrating_tolerance: float = INTEGRATING_TOLERANCE,
+) -> SteadyStateGain:
+    """Return the steady-state gain of a discrete model, pair by pair.
+
+    Parameters
+    ----------
+    a : array_like, shape (n, n)
+    b : array_like, shape (n, m)
+    c : array_like, shape (p, n)
+    d : array_like, shape (p, m), optional
+        Feed-through (default zero).
+    integrating_tolerance : float, keyword-only
+        Poles with ``|z - 1|`` up to this count as integrating.
+
+    Returns
+    -------
+    SteadyStateGain
+
+    Notes
+    -----
+    See the module docstring.  Without poles near 1 this is one solve of ``(I - A) X = B``.
+    A Markov term ``C1 N^l B1`` counts as nonzero above ``sqrt(eps) |C| |B| |A|^l``
+    (2-norms; ``|B1|`` for ``|B|`` when larger), well above the rounding of the Schur form.
+    """
+    a_ = np.asarray(a, dtype=float)
+    b_ = np.asarray(b, dtype=float)
+    c_ = np.asarray(c, dtype=float)
+    n, m = b_.shape
+    p = c_.shape[0]
+    d_ = np.zeros((p, m)) if d is None else np.asarray(d, dtype=float)
+    order = np.zeros((p, m), dtype=int)
+    ramp = np.zeros((p, m))
+    if n == 0:
+        return SteadyStateGain(gain=d_.copy(), integration_order=order, ramp_rate=ramp)
+    t, z, k = _sorted_schur(a_, integrating_tolerance)
+    if k == 0:
+        gain = c_ @ np.linalg.solve(np.eye(n) - a_, b_) + d_
+        return SteadyStateGain(gain=gain, integration_order=order, ramp_rate=ramp)
+
+    bz, cz = z.conj().T @ b_, c_ @ z
+    if k < n:
+        x = scipy.linalg.solve_sylvester(t[:k, :k], -t[k:, k:], -t[:k, k:])
+    else:
+        x = np.zeros((k, 0))
+    b1, b2 = bz[:k] - x @ bz[k:], bz[k:]
+    c1 = cz[:, :k]
+    c2 = cz[:, k:] + c1 @ x
+    nil = np.triu(t[:k, :k], 1)  # T11 - I with its eigenvalues taken as exactly 1
+    # Rounding in the Schur form is of order eps |A|, in N^l of order eps |A|^l.
+    b_size = max(np.linalg.norm(b_, 2), np.linalg.norm(b1, 2))
+    scale = np.sqrt(np.finfo(float).eps) * np.linalg.norm(c_, 2) * b_size
+    growth = max(1.0, float(np.linalg.norm(a_, 2)))
+    power = np.eye(k, dtype=complex)
+    markov0 = c1 @ b1
+    for level in range(k):
+        if not power.any():
+            break
+        term = c1 @ power @ b1
+        order[np.abs(term) > scale * growth**level] = level + 1
+        power = power @ nil
+    gain = np.full((p, m), np.nan)
+    settles = order == 0
+    if k < n:
+        finite = (c2 @ np.linalg.solve(np.eye(n - k) - t[k:, k:], b2)).real + d_
+    else:
+        finite = d_
+    gain[settles] = finite[settles]
+    ramp = np.where(order == 1, markov0.real, np.where(settles, 0.0, np.nan))
+    return SteadyStateGain(gain=gain, integration_order=order, ramp_rate=ramp)
+
+
+def relative_gain_array(gain: ArrayLike) -> NDArray[np.float64]:
+    """Return Bristol's relative gain array ``G .* (G^-1)^T`` of a square nonsingular gain.
+
+    Parameters
+    ----------
+    gain : array_like, shape (p, p)
+        Finite steady-state gain, nonsingular (asserted by ``numpy.linalg.solve``).
+
+    Returns
+    -------
+    ndarray, shape (p, p)
+        ``lambda_ij`` = the gain of pair ``(i, j)`` with all other loops open, divided by
+        its gain with all other outputs held by perfect control (Bristol 1966).
+
+    Examples
+    --------
+    For 2 x 2, ``lambda_11 = 1 / (1 - g12 g21 / (g11 g22))``:
+
+    >>> rga = relative_gain_array([[2.0, 1.0], [1.0, 2.0]])
+    >>> bool(np.isclose(rga[0, 0], 1 / (1 - 1 / 4)))
+    True
+    """
+    g = np.asarray(gain, dtype=float)
+    assert g.ndim == 2 and g.shape[0] == g.shape[1], g.shape
+    # (G^-1)^T = (G^T)^-1, by one LU solve rather than an explicit inverse.
+    return g * np.linalg.solve(g.T, np.eye(g.shape[0]))
+
+
+def gain_condition_number(gain: ArrayLike) -> float:
+    """Return the 2-norm condition number ``s_max / s_min`` of a gain (``inf`` if singular).
+
+    Parameters
+    ----------
+    gain : array_like, shape (p, m)
+        Finite; for a non-square gain, the ratio over its ``min(p, m)`` singular values.
+    """
+    s = scipy.linalg.svdvals(np.asarray(gain, dtype=float), check_finite=False)
+    if s.size == 0 or s[-1] == 0.0:
+        return float("inf")
+    return float(s[0] / s[-1])
+
+
+def open_loop_poles(a: ArrayLike) -> NDArray[np.complex128]:
+    """Return the eigenvalues of ``A`` by descending modulus (``scipy.linalg.eigvals``).
+
+    Balancing in LAPACK isolates the exact zero poles of shift-register (dead-time) states.
+    """
+    poles = scipy.linalg.eigvals(np.asarray(a, dtype=float), check_finite=False)
+    return poles[np.argsort(-np.abs(poles), kind="stable")]
+
+
+def plant_properties(
+    a: ArrayLike,
+    b: ArrayLike,
+    c: ArrayLike,
+    d: ArrayLike | None = None,
+    *,
+    integrating_tolerance: float = INTEGRATING_TOLERANCE,
+) -> PlantProperties:
+    """Return the steady-state gain, its RGA and condition number, and the open-loop poles.
+
+    Parameters are as for :func:`steady_state_gain`.  The RGA is left out (``None``) for a
+    non-square gain, one with an integrating pair, or one whose condition number exceeds
+    ``1 / eps`` (numerically singular); the condition number is ``None`` with integrating
+    pairs (their gain is not finite).
+    """
+    steady = steady_state_gain(a, b, c, d, integrating_tolerance=integrating_tolerance)
+    condition = gain_condition_number(steady.gain) if steady.finite else None
+    square = steady.gain.shape[0] == steady.gain.shape[1]
+    rga = None
+    if square and condition is not None and condition < 1.0 / np.finfo(float).eps:
+        rga = relative_gain_array(steady.gain)
+    return PlantProperties(steady_state=steady, relative_gain=rga, condition_number=condition, poles=open_loop_poles(a))
+
+
+def plant_warnings(properties: PlantProperties, *, near_singular: float = NEAR_SINGULAR_GAIN) -> list[Diagnostic]:
+    """Return the warnings about a plant: ``near_singular_gain`` when its condition is high.
+
+    Parameters
+    ----------
+    properties : PlantProperties
+    near_singular : float, keyword-only
+        Condition-number threshold (default :data:`NEAR_SINGULAR_GAIN`).
+
+    Returns
+    -------
+    list of Diagnostic
+    """
+    found: list[Diagnostic] = []
+    cond = properties.condition_number
+    if cond is not None and cond > near_singular:
+        found.append(
+            Diagnostic(
+                "near_singular_gain",
+                f"The steady-state gain matrix is near-singular (condition number {cond:.3g} above "
+                f"{near_singular:g}, on the signals as scaled): some combinations of outputs need "
+                f"far larger input moves than others, and the controller will be sensitive to "
+                f"model error there. Check the gains, the scaling, or control fewer outputs.",
+            )
+        )
+    return found
