@@ -9,6 +9,7 @@ with the estimator; arrays only) and :func:`design_response` (the JSON answer).
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Literal
 
@@ -36,6 +37,7 @@ from service.schemas.design import (
     GainReport,
     HessianReport,
     LabelledMatrix,
+    MarginalModeReport,
     PlantReport,
     PoleReport,
     SampledModelReport,
@@ -46,6 +48,7 @@ from service.solver.design.closed_loop import Diagnostic
 from service.solver.design.controller import ControllerDesign, design_controller
 from service.solver.design.feedforward import disturbance_free_response, feedforward_gain
 from service.solver.design.gain import PredictiveGain
+from service.solver.design.marginal import MarginalMode, describe_signals
 from service.solver.estimation.estimator import Estimator
 from service.solver.evaluation.advice import merge_warnings, tuning_advice
 from service.solver.evaluation.frequency import FrequencyAnalysis, design_frequency_analysis
@@ -59,6 +62,7 @@ __all__ = [
     "check_design_request",
     "compute_design",
     "design_response",
+    "marginal_mode_reports",
     "run_design",
 ]
 
@@ -322,6 +326,8 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
         control=inputs.control,
         first_penalized=inputs.first_penalized,
         input_labels=[s.name for s in plant.inputs],
+        output_labels=[s.name for s in plant.outputs],
+        state_labels=list(plant.state_labels),
         terminal=inputs.terminal,
         blocking=inputs.move_steps,
     )
@@ -380,6 +386,24 @@ def _signal_reports(signals: tuple[Signal, ...]) -> list[SignalReport]:
 
 def _poles(values: NDArray[np.complex128]) -> list[PoleReport]:
     return [PoleReport(real=float(z.real), imag=float(z.imag)) for z in values]
+
+
+def marginal_mode_reports(modes: Sequence[MarginalMode], plant: DiscretePlant) -> list[MarginalModeReport]:
+    """The marginal modes of a closed loop, the signals named by their tags."""
+    names = {
+        "inputs": [s.name for s in plant.inputs],
+        "outputs": [s.name for s in plant.outputs],
+        "states": list(plant.state_labels),
+    }
+    return [
+        MarginalModeReport(
+            pole=PoleReport(real=float(mode.pole.real), imag=float(mode.pole.imag)),
+            cause=mode.cause,  # type: ignore[arg-type]
+            signals=describe_signals(mode, **names),
+            direction=None if mode.direction is None else [float(v) for v in mode.direction],
+        )
+        for mode in modes
+    ]
 
 
 def _plant_report(request: DesignRequest, plant: DiscretePlant, outcome: DesignOutcome) -> PlantReport:
@@ -447,7 +471,10 @@ def design_response(request: DesignRequest, inputs: DesignInputs, outcome: Desig
             size=design.hessian.matrix.shape[0],
         ),
         closed_loop=ClosedLoopReport(
-            poles=_poles(loop.poles), spectral_radius=loop.spectral_radius, stable=loop.stable
+            poles=_poles(loop.poles),
+            spectral_radius=loop.spectral_radius,
+            stable=loop.stable,
+            marginal_modes=marginal_mode_reports(loop.marginal, plant),
         ),
         plant=_plant_report(request, plant, outcome),
         warnings=[WarningReport(code=w.code, message=w.message) for w in outcome.warnings],

@@ -31,7 +31,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import NumericalError
-from service.pipeline.design import DesignOutcome, compute_design, design_response
+from service.pipeline.design import DesignOutcome, compute_design, design_response, marginal_mode_reports
 from service.pipeline.estimator import scaled_estimator
 from service.pipeline.fingerprint import fingerprint
 from service.pipeline.limits import LimitedRun, limit_run_reports, limited_run
@@ -306,7 +306,7 @@ def performance_report(plant: DiscretePlant, outcome: SimulationOutcome) -> Perf
 def _warnings(inputs: SimulationInputs, outcome: SimulationOutcome) -> list[WarningReport]:
     out: list[WarningReport] = []
     whole = outcome.whole
-    if not whole.stable:
+    if whole.unstable:
         out.append(
             WarningReport(
                 code="whole_loop_unstable",
@@ -381,6 +381,7 @@ def simulate_response(
             separation_error=whole.separation_error,
             spectral_radius=whole.spectral_radius,
             stable=whole.stable,
+            marginal_modes=marginal_mode_reports(outcome.design.design.loop.marginal, plant),
         ),
         design=design_response(design_request, inputs.design, outcome.design),
         limits=limits,

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Literal
 
 from pydantic import Field
 
@@ -124,12 +124,49 @@ class PoleReport(ResponseModel):
     imag: FiniteFloat
 
 
+class MarginalModeReport(ResponseModel):
+    """A closed-loop pole on the unit circle and what holds it there."""
+
+    pole: PoleReport
+    cause: Literal[
+        "free_input_direction",
+        "input_reaches_no_output",
+        "unweighted_output",
+        "unobservable_mode",
+        "uncontrollable_mode",
+        "tuning",
+    ] = Field(
+        description="'free_input_direction': a direction of the inputs that changes no weighted output "
+        "at steady state (more inputs than outputs; fix: input targets, weights.input); "
+        "'input_reaches_no_output': an input no weighted output responds to within the prediction "
+        "horizon; 'unweighted_output': a plant mode on the circle (an integrating level) seen only by "
+        "outputs with weight 0; 'unobservable_mode': a plant mode no output shows; "
+        "'uncontrollable_mode': a plant mode no input moves; 'tuning': none of these."
+    )
+    signals: list[str] = Field(
+        description="Tags of the signals the mode concerns: inputs, then outputs, then model states."
+    )
+    direction: list[FiniteFloat] | None = Field(
+        default=None,
+        description="For 'free_input_direction': the direction, one entry per input in model order (largest entry 1).",
+    )
+
+
 class ClosedLoopReport(ResponseModel):
     """Poles of the loop on [x; u(k-1)] and the stability verdict."""
 
     poles: list[PoleReport] = Field(description="Sorted by descending modulus.")
     spectral_radius: FiniteFloat
-    stable: bool = Field(description="True when every pole lies strictly inside the unit circle.")
+    stable: bool = Field(
+        description="True when every pole has modulus below 1 - 1e-6 and no pole is held on the unit "
+        "circle by a structural cause (see marginal_modes). A pole within 1e-6 of the circle is "
+        "marginal, never unstable; unstable_closed_loop is only for a pole above 1 + 1e-6."
+    )
+    marginal_modes: list[MarginalModeReport] = Field(
+        default_factory=list,
+        description="Every closed-loop pole on the unit circle (within 1e-6) with its cause and the "
+        "signals it concerns; each cause also gives one warning with the fix that removes it.",
+    )
 
 
 class SignalReport(ResponseModel):

@@ -13,7 +13,14 @@ from typing import Annotated
 from pydantic import Field
 
 from service.schemas.common import FiniteFloat, RequestModel, ResponseModel, Vector
-from service.schemas.design import DesignRequest, DesignResponse, LabelledMatrix, PoleReport, WarningReport
+from service.schemas.design import (
+    DesignRequest,
+    DesignResponse,
+    LabelledMatrix,
+    MarginalModeReport,
+    PoleReport,
+    WarningReport,
+)
 from service.schemas.estimator import EstimatorRequest
 from service.schemas.limits import LimitRunReport, LimitSummary
 from service.schemas.model import PlantModel
@@ -177,7 +184,14 @@ class WholeLoopReport(ResponseModel):
     separation_holds: bool = Field(description="The poles are the union of controller and estimator poles.")
     separation_error: float = Field(description="Largest distance between a pole and its partner in that union.")
     spectral_radius: float
-    stable: bool
+    stable: bool = Field(
+        description="Every pole below 1 - 1e-6 in modulus and no marginal mode (as closed_loop.stable)."
+    )
+    marginal_modes: list[MarginalModeReport] = Field(
+        default_factory=list,
+        description="The poles on the unit circle with their causes: those of the design's closed loop "
+        "(the estimator's poles are strictly stable).",
+    )
 
 
 class SimulateResponse(ResponseModel):

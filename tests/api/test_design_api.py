@@ -28,7 +28,7 @@ def test_design_answers_the_contract(client, example):
     body = r.json()
     assert set(body["gain"]) >= {"horizon", "state", "previous_input", "setpoint"}
     assert set(body["hessian"]) == {"condition_number", "smallest_eigenvalue", "largest_eigenvalue", "size"}
-    assert set(body["closed_loop"]) == {"poles", "spectral_radius", "stable"}
+    assert set(body["closed_loop"]) == {"poles", "spectral_radius", "stable", "marginal_modes"}
     assert set(body["closed_loop"]["poles"][0]) == {"real", "imag"}
     assert isinstance(body["warnings"], list) and body["fingerprint"].startswith("sha256:")
     assert "management-of-change" in body["advisory"]

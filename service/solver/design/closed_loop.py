@@ -9,15 +9,25 @@ the augmented state ``[x(k); u(k-1)]`` (setpoint held at zero) is ::
 since ``u(k) = u(k-1) + du(k)``.  Its eigenvalues are the closed-loop poles; the loop is
 asymptotically stable when all lie strictly inside the unit circle (the discrete-time
 Lyapunov criterion, common practice).
+
+The verdict uses an explicit tolerance, :data:`service.solver.design.marginal.MARGINAL_TOLERANCE`:
+``stable`` means every pole has modulus below ``1 - MARGINAL_TOLERANCE`` and no pole is held
+on the circle by a structural cause; ``unstable_closed_loop`` means some pole has modulus above
+``1 + MARGINAL_TOLERANCE``.  Poles in between are marginal: they are named with their cause
+(:mod:`service.solver.design.marginal`), never called unstable, and rounding never flips
+either verdict.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from collections.abc import Sequence
+from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.linalg
 from numpy.typing import NDArray
+
+from service.solver.design.marginal import MARGINAL_TOLERANCE, MarginalMode, marginal_mode_warnings
 
 __all__ = [
     "ILL_CONDITIONED",
@@ -56,13 +66,22 @@ class ClosedLoop:
     spectral_radius : float
         Largest pole modulus.
     stable : bool
-        ``spectral_radius < 1``.
+        ``spectral_radius < 1 - MARGINAL_TOLERANCE`` and no marginal mode.
+    marginal : tuple of MarginalMode
+        The poles on the unit circle with their causes (filled in by the design, which
+        knows the weights; empty from :func:`closed_loop` alone).
     """
 
     matrix: NDArray[np.float64]
     poles: NDArray[np.complex128]
     spectral_radius: float
     stable: bool
+    marginal: tuple[MarginalMode, ...] = field(default=())
+
+    @property
+    def unstable(self) -> bool:
+        """Some pole lies outside the unit circle by more than ``MARGINAL_TOLERANCE``."""
+        return self.spectral_radius > 1.0 + MARGINAL_TOLERANCE
 
 
 def closed_loop_matrix(
@@ -105,10 +124,17 @@ def closed_loop(
     poles = scipy.linalg.eigvals(matrix, check_finite=False)
     poles = poles[np.argsort(-np.abs(poles), kind="stable")]
     radius = float(np.abs(poles).max())
-    return ClosedLoop(matrix=matrix, poles=poles, spectral_radius=radius, stable=radius < 1.0)
+    return ClosedLoop(matrix=matrix, poles=poles, spectral_radius=radius, stable=radius < 1.0 - MARGINAL_TOLERANCE)
 
 
-def design_warnings(*, condition_number: float, loop: ClosedLoop) -> list[Diagnostic]:
+def design_warnings(
+    *,
+    condition_number: float,
+    loop: ClosedLoop,
+    input_labels: Sequence[str] | None = None,
+    output_labels: Sequence[str] | None = None,
+    state_labels: Sequence[str] | None = None,
+) -> list[Diagnostic]:
     """Return the warnings of a design that solved but may not behave.
 
     Parameters
@@ -116,12 +142,17 @@ def design_warnings(*, condition_number: float, loop: ClosedLoop) -> list[Diagno
     condition_number : float
         Exact 2-norm condition number of the Hessian.
     loop : ClosedLoop
+    input_labels, output_labels, state_labels : sequence of str, optional
+        Signal tags for the messages (default ``u1..``, ``z1..``, ``x1..``).
 
     Returns
     -------
     list of Diagnostic
-        ``ill_conditioned_hessian``, ``pole_near_unit_circle`` and ``unstable_closed_loop``,
-        in that order, each at most once.
+        ``ill_conditioned_hessian``, one warning per cause of the marginal modes
+        (:func:`service.solver.design.marginal.marginal_mode_warnings`),
+        ``pole_near_unit_circle`` (poles inside the circle within ``UNIT_CIRCLE_MARGIN`` of
+        it, marginal modes left out) and ``unstable_closed_loop`` (a pole outside the
+        circle), in that order, each at most once.
     """
     found: list[Diagnostic] = []
     if condition_number > ILL_CONDITIONED:
@@ -134,8 +165,20 @@ def design_warnings(*, condition_number: float, loop: ClosedLoop) -> list[Diagno
                 f"weights or shorten the control horizon.",
             )
         )
+    most = 1 + max((max((*mode.inputs, *mode.outputs, *mode.states), default=0) for mode in loop.marginal), default=0)
+    inputs = list(input_labels) if input_labels is not None else [f"u{j + 1}" for j in range(most)]
+    outputs = list(output_labels) if output_labels is not None else [f"z{i + 1}" for i in range(most)]
+    states = list(state_labels) if state_labels is not None else [f"x{i + 1}" for i in range(most)]
+    found += [
+        Diagnostic(code, message)
+        for code, message in marginal_mode_warnings(loop.marginal, inputs=inputs, outputs=outputs, states=states)
+    ]
+    marginal = np.zeros(loop.poles.size, dtype=bool)
+    for mode in loop.marginal:
+        gaps = np.where(marginal, np.inf, np.abs(loop.poles - mode.pole))
+        marginal[int(np.argmin(gaps))] = True
     moduli = np.abs(loop.poles)
-    near = moduli[np.abs(moduli - 1.0) < UNIT_CIRCLE_MARGIN]
+    near = moduli[~marginal & (moduli <= 1.0 + MARGINAL_TOLERANCE) & (np.abs(moduli - 1.0) < UNIT_CIRCLE_MARGIN)]
     if near.size:
         found.append(
             Diagnostic(
@@ -145,13 +188,14 @@ def design_warnings(*, condition_number: float, loop: ClosedLoop) -> list[Diagno
                 f"will respond very slowly or oscillate in that mode.",
             )
         )
-    if not loop.stable:
+    if loop.unstable:
+        outside = int(np.count_nonzero(moduli > 1.0 + MARGINAL_TOLERANCE))
         found.append(
             Diagnostic(
                 "unstable_closed_loop",
-                f"The closed loop is unstable: spectral radius {loop.spectral_radius:.6f} is not "
-                f"below 1. Lengthen the prediction horizon, raise the move weights, or check "
-                f"the model.",
+                f"The closed loop is unstable: {outside} pole(s) lie outside the unit circle "
+                f"(spectral radius {loop.spectral_radius:.6f}). Lengthen the prediction horizon, "
+                f"raise the move weights, or check the model.",
             )
         )
     return found

@@ -27,6 +27,7 @@ from service.solver.design.gain import (
     toeplitz_hessian,
     weighted_moves,
 )
+from service.solver.design.marginal import marginal_modes
 from service.solver.design.prediction import Prediction, prediction_matrices
 from service.solver.design.terminal import (
     TerminalKind,
@@ -97,6 +98,8 @@ def design_controller(
     control: int,
     first_penalized: int = 1,
     input_labels: Sequence[str] | None = None,
+    output_labels: Sequence[str] | None = None,
+    state_labels: Sequence[str] | None = None,
     terminal: TerminalKind = "none",
     blocking: Sequence[int] | None = None,
 ) -> ControllerDesign:
@@ -118,6 +121,8 @@ def design_controller(
         ``Hp``, ``Hu`` and ``Hw`` with ``1 <= Hu <= Hp`` and ``1 <= Hw <= Hp``.
     input_labels : sequence of str, optional
         Input names used in error messages.
+    output_labels, state_labels : sequence of str, optional
+        Output and state names used in the warnings about marginal modes.
     terminal : {"none", "riccati"}, optional
         ``"riccati"`` puts the stabilizing Riccati solution of the incremental system on the
         last predicted ``[x; u]`` in place of the last step's output weight
@@ -189,7 +194,15 @@ def design_controller(
         kt = terminal_first_move_gain(hessian, term, inputs=m)
         gain = with_terminal_gain(gain, term, kt)
     loop = closed_loop(a_, b_, gain.state, gain.previous_input)
-    warnings = design_warnings(condition_number=hessian.condition_number, loop=loop)
+    marginal = tuple(marginal_modes(a_, b_, c_, output_root=root, weighted=rows, poles=loop.poles))
+    loop = dataclasses.replace(loop, marginal=marginal, stable=loop.stable and not marginal)
+    warnings = design_warnings(
+        condition_number=hessian.condition_number,
+        loop=loop,
+        input_labels=input_labels,
+        output_labels=output_labels,
+        state_labels=state_labels,
+    )
     return ControllerDesign(
         prediction=pred,
         output_weight=q,

@@ -37,6 +37,7 @@ import scipy.optimize
 from numpy.typing import NDArray
 
 from service.solver.design.controller import ControllerDesign
+from service.solver.design.marginal import MARGINAL_TOLERANCE
 from service.solver.design.prediction import prediction_matrices
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.target import TargetProblem, target_problem
@@ -179,6 +180,8 @@ class WholeLoop:
         ``separation_error <= SEPARATION_TOLERANCE * max(1, spectral_radius)``.
     spectral_radius : float
     stable : bool
+        ``spectral_radius < 1 - MARGINAL_TOLERANCE`` and no marginal mode in the controller's
+        loop (:mod:`service.solver.design.marginal`; the estimator's poles are strictly stable).
     """
 
     matrix: NDArray[np.float64]
@@ -189,6 +192,11 @@ class WholeLoop:
     separation_holds: bool
     spectral_radius: float
     stable: bool
+
+    @property
+    def unstable(self) -> bool:
+        """Some pole lies outside the unit circle by more than ``MARGINAL_TOLERANCE``."""
+        return self.spectral_radius > 1.0 + MARGINAL_TOLERANCE
 
 
 def _whole_loop_matrix(loop: ControlLoop) -> NDArray[np.float64]:
@@ -254,5 +262,5 @@ def whole_loop(loop: ControlLoop) -> WholeLoop:
         separation_error=error,
         separation_holds=error <= SEPARATION_TOLERANCE * max(1.0, radius),
         spectral_radius=radius,
-        stable=radius < 1.0,
+        stable=radius < 1.0 - MARGINAL_TOLERANCE and not loop.design.loop.marginal,
     )
