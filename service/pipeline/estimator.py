@@ -22,13 +22,23 @@ from service.errors import FieldProblem, NumericalError
 from service.pipeline.plant import DiscretePlant
 from service.schemas.common import check_weight, pointer
 from service.schemas.estimator import EstimatorRequest
-from service.solver.estimation.estimator import Estimator, design_estimator
+from service.solver.estimation.estimator import (
+    Estimator,
+    default_disturbances,
+    design_estimator,
+    integrating_outputs,
+)
 from service.solver.models.scaling import ScaledPlant
 
 __all__ = ["EstimatorInputs", "check_estimator", "scaled_covariance", "scaled_estimator"]
 
 #: The disturbance model each kind but kalman implies.
-_IMPLIED = {"full_state": "none", "output_disturbance": "output", "input_disturbance": "input"}
+_IMPLIED = {
+    "full_state": "none",
+    "per_output": "per_output",
+    "output_disturbance": "output",
+    "input_disturbance": "input",
+}
 
 
 @dataclass(frozen=True)
@@ -38,7 +48,11 @@ class EstimatorInputs:
     Attributes
     ----------
     kind, disturbance : str
-        Estimator kind and its disturbance model (``"output"``, ``"input"``, ``"none"``).
+        Estimator kind and its disturbance model (``"per_output"``, ``"output"``, ``"input"``,
+        ``"none"``).
+    disturbances : tuple of str or None
+        For ``"per_output"``: ``"output"`` or ``"rate"`` per output, as given or by default
+        from the model's structure.
     process_noise, disturbance_noise, measurement_noise : ndarray or None
         Covariances as given (diagonal ``(k,)`` or full ``(k, k)``); ``None`` for the default.
     """
@@ -48,6 +62,44 @@ class EstimatorInputs:
     process_noise: NDArray[np.float64] | None = None
     disturbance_noise: NDArray[np.float64] | None = None
     measurement_noise: NDArray[np.float64] | None = None
+    disturbances: tuple[str, ...] | None = None
+
+
+def _disturbance_problems(
+    given: list[str] | None, disturbance: str, plant: DiscretePlant
+) -> tuple[tuple[str, ...] | None, list[FieldProblem]]:
+    """The per-output disturbance models: as given (checked) or by default from the structure."""
+    if disturbance != "per_output":
+        if given is None:
+            return None, []
+        return None, [
+            FieldProblem(
+                pointer("estimator", "disturbances"),
+                "a disturbance model per output needs kind 'per_output' (the default), or 'kalman' with "
+                "disturbance 'per_output'",
+            )
+        ]
+    flags = integrating_outputs(plant.a, plant.c)
+    if given is None:
+        return default_disturbances(plant.a, plant.c), []
+    names = [s.name for s in plant.outputs]
+    if len(given) != len(names):
+        return None, [
+            FieldProblem(
+                pointer("estimator", "disturbances"),
+                f"needs one entry per controlled output ({len(names)}: {', '.join(names)}), got {len(given)}",
+            )
+        ]
+    problems = [
+        FieldProblem(
+            pointer("estimator", "disturbances", i),
+            f"'{names[i]}' does not integrate (it sees no mode of the model at z = 1), so a bias on its rate "
+            f"has nothing to act through; use 'output' for it",
+        )
+        for i, kind in enumerate(given)
+        if kind == "rate" and not flags[i]
+    ]
+    return tuple(given), problems
 
 
 def check_estimator(request: EstimatorRequest, plant: DiscretePlant) -> tuple[EstimatorInputs, list[FieldProblem]]:
@@ -75,6 +127,10 @@ def check_estimator(request: EstimatorRequest, plant: DiscretePlant) -> tuple[Es
             )
         )
     disturbance = (est.disturbance or "output") if est.kind == "kalman" else _IMPLIED[est.kind]
+    disturbances, found = _disturbance_problems(
+        None if est.disturbances is None else list(est.disturbances), disturbance, plant
+    )
+    problems += found
     covariances: dict[str, NDArray[np.float64] | None] = {
         "process_noise": None,
         "disturbance_noise": None,
@@ -90,7 +146,9 @@ def check_estimator(request: EstimatorRequest, plant: DiscretePlant) -> tuple[Es
                     )
                 )
         return EstimatorInputs(kind=est.kind, disturbance=disturbance), problems
-    nd = {"output": plant.output_count, "input": plant.input_count, "none": 0}[disturbance]
+    nd = {"per_output": plant.output_count, "output": plant.output_count, "input": plant.input_count, "none": 0}[
+        disturbance
+    ]
     sizes = {
         "process_noise": (plant.states, "process-noise covariance", "model states"),
         "disturbance_noise": (nd, "disturbance-noise covariance", f"{disturbance} disturbances"),
@@ -122,7 +180,7 @@ def check_estimator(request: EstimatorRequest, plant: DiscretePlant) -> tuple[Es
                     )
                 )
         covariances[name] = w
-    return EstimatorInputs(kind=est.kind, disturbance=disturbance, **covariances), problems
+    return EstimatorInputs(kind=est.kind, disturbance=disturbance, disturbances=disturbances, **covariances), problems
 
 
 def scaled_covariance(value: NDArray[np.float64] | None, span: NDArray[np.float64]) -> NDArray[np.float64] | None:
@@ -158,13 +216,14 @@ def scaled_estimator(inputs: EstimatorInputs, plant: DiscretePlant, scaled: Scal
         when the gain or poles come out as numbers that are not finite.
     """
     su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
-    s_dist = {"output": sz, "input": su, "none": np.ones(0)}[inputs.disturbance]
+    s_dist = {"per_output": sz, "output": sz, "input": su, "none": np.ones(0)}[inputs.disturbance]
     estimator = design_estimator(
         scaled.a,
         scaled.b,
         scaled.c,
         kind=inputs.kind,  # type: ignore[arg-type]
         disturbance=inputs.disturbance if inputs.kind == "kalman" else None,  # type: ignore[arg-type]
+        disturbances=inputs.disturbances,  # type: ignore[arg-type]
         process_noise=inputs.process_noise,
         disturbance_noise=scaled_covariance(inputs.disturbance_noise, s_dist),
         measurement_noise=scaled_covariance(inputs.measurement_noise, sz),

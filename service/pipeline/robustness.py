@@ -70,7 +70,7 @@ def loop_frequency_work(plant: DiscretePlant, estimator: EstimatorInputs, *, poi
     sets the controller's state count)."""
     n, m, p = plant.states, plant.input_count, plant.output_count
     full_state = estimator.kind == "full_state"
-    nd = {"output": p, "input": m, "none": 0}[estimator.disturbance]
+    nd = {"per_output": p, "output": p, "input": m, "none": 0}[estimator.disturbance]
     return frequency_work(
         points=points,
         plant_states=n,
@@ -196,7 +196,10 @@ def robustness_report(analysis: FrequencyAnalysis, estimator: Estimator) -> Robu
         plant_input=_loop(analysis.plant_input),
         plant_output=_loop(analysis.plant_output),
         estimator=RobustnessEstimatorReport(
-            kind=estimator.kind, disturbance=estimator.disturbance, spectral_radius=estimator.spectral_radius
+            kind=estimator.kind,
+            disturbance=estimator.disturbance,
+            disturbances=list(estimator.disturbances) or None,
+            spectral_radius=estimator.spectral_radius,
         ),
         spectral_radius=float(np.abs(poles).max(initial=0.0)),
         stable=analysis.stable,

@@ -138,7 +138,7 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
     scaled = outcome.scaled
     su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
     sd = plant.spans(plant.disturbances) if plant.b_disturbance is not None else np.ones(0)
-    s_dist = {"output": sz, "input": su, "none": np.ones(0)}[inputs.disturbance]
+    s_dist = {"per_output": sz, "output": sz, "input": su, "none": np.ones(0)}[inputs.disturbance]
     estimator = outcome.estimator  # already built when the design's frequency analysis was asked
     if estimator is None:
         assert inputs.design.estimator is not None
@@ -254,8 +254,13 @@ def _columns(plant: DiscretePlant, estimator: Estimator) -> SeriesColumns:
     inputs = [f"{name}.input" if name in clash else name for name in inputs]
     named = _unique([*outputs, *setpoints, *inputs, *measured])
     p, m = len(outputs), len(inputs)
-    source = {"output": outputs, "input": [s.name for s in plant.inputs], "none": []}[estimator.disturbance]
-    disturbances = [f"{name}.{estimator.disturbance}_disturbance" for name in source]
+    if estimator.disturbance == "per_output":
+        disturbances = [
+            f"{name}.{kind}_disturbance" for name, kind in zip(outputs, estimator.disturbances, strict=True)
+        ]
+    else:
+        source = {"output": outputs, "input": [s.name for s in plant.inputs], "none": []}[estimator.disturbance]
+        disturbances = [f"{name}.{estimator.disturbance}_disturbance" for name in source]
     return SeriesColumns(
         outputs=named[:p],
         setpoints=named[p : 2 * p],
@@ -369,6 +374,7 @@ def simulate_response(
         estimator=EstimatorReport(
             kind=est.kind,
             disturbance=est.disturbance,
+            disturbances=list(est.disturbances) or None,
             gain=gain,
             poles=_poles(est.poles),
             spectral_radius=est.spectral_radius,

@@ -246,7 +246,7 @@ def _run_size_problems(
         return [FieldProblem(where, f"{sc.steps:,} steps exceed this service's cap of {caps.max_simulation_steps:,}")]
     n, m, p = plant.states, plant.input_count, plant.output_count
     md = 0 if plant.b_disturbance is None else plant.b_disturbance.shape[1]
-    nd = {"output": p, "input": m, "none": 0}[disturbance]
+    nd = {"per_output": p, "output": p, "input": m, "none": 0}[disturbance]
     nt = true.states if true is not None else n
     h = request.horizons
     penalized = max(h.prediction - h.first_penalized + 1, 1)

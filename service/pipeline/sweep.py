@@ -176,7 +176,7 @@ def _run_work(request: SweepRequest, base: SimulationInputs, value: float) -> in
         true_states=plant.states if base.true_plant is None else base.true_plant.states,
         inputs=m,
         outputs=p,
-        disturbances={"output": p, "input": m, "none": 0}[base.disturbance],
+        disturbances={"per_output": p, "output": p, "input": m, "none": 0}[base.disturbance],
         measured_disturbances=md,
         penalized_steps=max(h.prediction - h.first_penalized + 1, 1),
     )

@@ -20,16 +20,27 @@ Covariance = Vector | Matrix
 class EstimatorRequest(RequestModel):
     """How the controller estimates the state (and a constant disturbance) from the outputs."""
 
-    kind: Literal["full_state", "output_disturbance", "input_disturbance", "kalman"] = Field(
-        default="output_disturbance",
-        description="'full_state': the state is read as measured (analysis only); 'output_disturbance' "
-        "(default): a constant disturbance on each output, for offset-free control; "
+    kind: Literal["full_state", "per_output", "output_disturbance", "input_disturbance", "kalman"] = Field(
+        default="per_output",
+        description="'per_output' (default): one step disturbance per controlled output, for offset-free "
+        "control: a bias on the output for a self-regulating output, a bias on its rate for an "
+        "integrating output (a level), chosen from the model's structure or per output by "
+        "'disturbances'; 'full_state': the state is read as measured (analysis only); 'output_disturbance': "
+        "a constant disturbance on each output (fails on integrating outputs); "
         "'input_disturbance': a constant disturbance entering with each input; 'kalman': a "
         "steady-state Kalman filter from the covariances below, with the disturbance model "
         "of 'disturbance'. Every kind but full_state is a steady-state Kalman filter.",
     )
-    disturbance: Literal["output", "input", "none"] | None = Field(
+    disturbance: Literal["per_output", "output", "input", "none"] | None = Field(
         default=None, description="Disturbance model of a 'kalman' estimator (default 'output'); only with kalman."
+    )
+    disturbances: list[Literal["output", "rate"]] | None = Field(
+        default=None,
+        description="The per-output disturbance model, one entry per controlled output in model order: "
+        "'output' (a step bias on the output, for self-regulating outputs) or 'rate' (a step bias on its "
+        "rate, for integrating outputs such as a level with an unmeasured inflow). Default: 'rate' for "
+        "each output that sees a mode of the model at z = 1, 'output' for the others. Only with kind "
+        "'per_output', or 'kalman' with disturbance 'per_output'.",
     )
     process_noise: Covariance | None = Field(
         default=None,

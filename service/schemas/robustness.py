@@ -75,7 +75,10 @@ class RobustnessEstimatorReport(ResponseModel):
     """The estimator inside the analysed loop."""
 
     kind: str
-    disturbance: str = Field(description="Disturbance model in use: 'output', 'input' or 'none'.")
+    disturbance: str = Field(description="Disturbance model in use: 'per_output', 'output', 'input' or 'none'.")
+    disturbances: list[str] | None = Field(
+        default=None, description="For 'per_output': per output, 'output' or 'rate' (as estimator.disturbances)."
+    )
     spectral_radius: float = Field(description="Largest modulus of the estimator's poles (0 for full_state).")
 
 

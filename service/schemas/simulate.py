@@ -166,7 +166,12 @@ class EstimatorReport(ResponseModel):
     """The estimator the run used."""
 
     kind: str
-    disturbance: str = Field(description="Disturbance model in use: 'output', 'input' or 'none'.")
+    disturbance: str = Field(description="Disturbance model in use: 'per_output', 'output', 'input' or 'none'.")
+    disturbances: list[str] | None = Field(
+        default=None,
+        description="For 'per_output': per output, 'output' (a step bias on the output) or 'rate' (a step "
+        "bias on its rate, for an integrating output).",
+    )
     gain: LabelledMatrix | None = Field(
         description="Filter gain L of x(k|k) = x(k|k-1) + L (y(k) - C x(k|k-1)), engineering units: rows "
         "the estimates, columns the measured outputs. Null for full_state."

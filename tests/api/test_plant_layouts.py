@@ -53,3 +53,54 @@ def test_a_spare_input_run_stays_bounded_and_is_not_called_unstable(client):
     outputs = np.array(body["outputs"])
     assert np.all(np.abs(outputs) < 10.0)
     assert np.allclose(outputs[-1], [1.0, -0.5], atol=1e-6)  # the setpoints are still met
+
+
+def _transfer_example_with_gain_error(factor):
+    from service.pipeline.examples import load_example
+
+    request = load_example("design_request_transfer_matrix.json")
+    true = copy.deepcopy(request["model"])
+    for row in true["elements"]:
+        for element in row:
+            if element is not None:
+                element["gain"] *= factor
+    return request, true
+
+
+def test_the_default_estimator_is_offset_free_on_the_transfer_matrix_example(client):
+    # The bundled example has an integrating level: output_disturbance is undetectable there
+    # (Pannocchia and Rawlings 2003), the default per-output model is not.
+    request, true = _transfer_example_with_gain_error(1.2)  # a true plant with 20 % gain error
+    request["scenario"] = {
+        "steps": 400,
+        "setpoint_changes": [{"step": 5, "setpoint": [1.0, 5.0]}],
+        "input_disturbances": [{"step": 150, "value": [2.0, -1.0]}],
+        "true_plant": true,
+    }
+    response = client.post("/simulate", json=request)
+    assert response.status_code == 200, response.text
+    body = response.json()
+    assert body["estimator"]["kind"] == "per_output"
+    assert body["estimator"]["disturbances"] == ["output", "rate"]
+    assert body["columns"]["estimates"][-2:] == [
+        "vessel_temperature.output_disturbance",
+        "vessel_level.rate_disturbance",
+    ]
+    # Offset-free under 20 % gain error and an unmeasured step: the last output equals the setpoint.
+    np.testing.assert_allclose(body["outputs"][-1], [1.0, 5.0], atol=1e-6)
+    explicit = copy.deepcopy(request)
+    explicit["estimator"] = {"kind": "output_disturbance"}
+    problem = client.post("/simulate", json=explicit).json()
+    assert "per_output" in problem["errors"][0]["detail"]
+
+
+def test_a_rate_bias_on_a_self_regulating_output_is_a_422_naming_it(client):
+    from service.pipeline.examples import load_example
+
+    request = load_example("design_request_transfer_matrix.json")
+    request["estimator"] = {"disturbances": ["rate", "rate"]}
+    request["scenario"] = {"steps": 5}
+    response = client.post("/simulate", json=request)
+    assert response.status_code == 422
+    (error,) = response.json()["errors"]
+    assert error["pointer"] == "/estimator/disturbances/0" and "vessel_temperature" in error["detail"]

@@ -13,10 +13,10 @@ import copy
 
 import numpy as np
 import pytest
-from service.solver.estimation.estimator import design_estimator
-from service.solver.estimation.realization import controller_system, plant_system
 
 from service.solver.design.controller import design_controller
+from service.solver.estimation.estimator import design_estimator
+from service.solver.estimation.realization import controller_system, plant_system
 from service.solver.evaluation.frequency import frequency_analysis
 
 #: The first-order plant P(z) = b/(z - a) of tests/solver/test_frequency.py (a = 0.5, b = 1),
@@ -78,9 +78,11 @@ def test_single_loop_block_equals_the_solver_on_the_scaled_model(client):
         np.testing.assert_allclose(got["sensitivity"]["largest"], loop.sensitivity_singular_values[:, 0], rtol=1e-9)
         # A single loop: one singular value, |S| itself.
         assert got["sensitivity"]["largest"] == got["sensitivity"]["smallest"]
+    # The default estimator is per_output (issue 10): on this self-regulating loop an output bias.
     assert rb["estimator"] == {
-        "kind": "output_disturbance",
-        "disturbance": "output",
+        "kind": "per_output",
+        "disturbance": "per_output",
+        "disturbances": ["output"],
         "spectral_radius": pytest.approx(est.spectral_radius, rel=1e-9),
     }
     assert rb["stable"] is True
@@ -137,7 +139,7 @@ def test_the_default_estimator_and_loop_are_those_of_simulate(client, example):
     body = with_frequency(example, points=20)
     body["scenario"] = {"steps": 5}
     run = client.post("/simulate", json=body).json()
-    assert rb["estimator"]["kind"] == run["estimator"]["kind"] == "output_disturbance"
+    assert rb["estimator"]["kind"] == run["estimator"]["kind"] == "per_output"  # the default (issue 10)
     assert rb["estimator"]["spectral_radius"] == pytest.approx(run["estimator"]["spectral_radius"], rel=1e-12)
     assert rb["spectral_radius"] == pytest.approx(run["whole_loop"]["spectral_radius"], rel=1e-7)
     assert rb["stable"] == run["whole_loop"]["stable"]

@@ -94,7 +94,7 @@ def test_the_example_posts_and_answers_every_block(client, request_body):
     assert body["estimator"]["kind"] == "output_disturbance" and body["whole_loop"]["stable"] is True
     assert body["fingerprint"].startswith("sha256:") and "management-of-change" in body["advisory"]
     # The design block is what POST /design answers for the same design fields.
-    design_only = {k: request_body[k] for k in ("model", "horizons", "weights")}
+    design_only = {k: request_body[k] for k in ("model", "horizons", "weights", "estimator")}
     assert body["design"] == client.post("/design", json=design_only).json()
     # final offset is setpoint minus output at the last step, engineering units
     offsets = [f["final_offset"] for f in body["performance"]["outputs"]]

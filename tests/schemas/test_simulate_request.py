@@ -44,7 +44,7 @@ def test_the_example_passes_and_defaults_fill_in(body):
     del body["estimator"]
     body["scenario"] = {"steps": 5}
     request = SimulateRequest.model_validate(body)
-    assert request.estimator.kind == "output_disturbance" and request.scenario.initial.state is None
+    assert request.estimator.kind == "per_output" and request.scenario.initial.state is None  # the default (issue 10)
     plain = check_simulate_request(request, Caps())
     assert plain.noise_std is None and plain.seed == 0 and plain.true_plant is None
 

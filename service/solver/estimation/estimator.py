@@ -9,8 +9,14 @@ disturbance, is estimated from the measured outputs with the augmented model ::
 (``y`` measured, ``z`` controlled; in movecast every output is both, so ``Dz = Cd``).  The
 disturbance models are
 
+- ``"per_output"`` (the default): one disturbance per output, chosen per output — a step
+  bias on the output (``Bd`` column 0, ``Cd`` column ``e_i``) for a self-regulating output,
+  a step bias on its rate for an integrating output (``Bd`` column ``v_i`` in the null space
+  of ``I - A`` with ``C v_i = e_i`` on the integrating outputs, ``Cd`` column 0: an
+  unmeasured inflow into a level).  By default an output is integrating when it sees a
+  mode of ``A`` at ``z = 1`` (:func:`default_disturbances`); ``disturbances`` overrides it;
 - ``"output_disturbance"``: one constant disturbance on each measured output,
-  ``Bd = 0``, ``Cd = I_p`` (``nd = p``) — the default;
+  ``Bd = 0``, ``Cd = I_p`` (``nd = p``);
 - ``"input_disturbance"``: one constant disturbance entering with each input,
   ``Bd = B``, ``Cd = 0`` (``nd = m``);
 - ``"full_state"``: no estimator at all; the state is taken as measured (analysis only);
@@ -81,13 +87,18 @@ __all__ = [
     "DisturbanceModel",
     "Estimator",
     "EstimatorKind",
+    "OutputDisturbance",
     "augmented_model",
+    "default_disturbances",
     "design_estimator",
+    "integrating_outputs",
     "kalman_filter",
 ]
 
-EstimatorKind = Literal["full_state", "output_disturbance", "input_disturbance", "kalman"]
-DisturbanceModel = Literal["output", "input", "none"]
+EstimatorKind = Literal["full_state", "per_output", "output_disturbance", "input_disturbance", "kalman"]
+DisturbanceModel = Literal["output", "input", "none", "per_output"]
+#: The disturbance of one output in the per-output model: a bias on the output or on its rate.
+OutputDisturbance = Literal["output", "rate"]
 
 #: Default process-noise variance of each plant state (per sample, model units squared).
 DEFAULT_STATE_NOISE = 1e-2
@@ -101,6 +112,7 @@ DEFAULT_MEASUREMENT_NOISE = 1.0
 DETECTABILITY_TOLERANCE = 1e-9
 
 _KIND_POINTER = "/estimator/kind"
+_DISTURBANCES_POINTER = "/estimator/disturbances"
 _MODEL_POINTER = "/model"
 _NOISE_POINTER = "/estimator"
 
@@ -166,6 +178,8 @@ class Estimator:
     measurement_noise: NDArray[np.float64] | None
     covariance: NDArray[np.float64] | None
     innovation_covariance: NDArray[np.float64] | None
+    #: Per output, ``"output"`` or ``"rate"``, for the per-output model; empty otherwise.
+    disturbances: tuple[str, ...] = ()
 
     @property
     def full_state(self) -> bool:
@@ -204,11 +218,77 @@ class Estimator:
         return float(np.abs(self.poles).max(initial=0.0))
 
 
+def _integrator_space(a: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Orthonormal basis of the null space of ``I - A`` (the modes at ``z = 1``), shape (n, k)."""
+    n = a.shape[0]
+    if n == 0:
+        return np.zeros((0, 0))
+    _, s, vt = np.linalg.svd(np.eye(n) - a)
+    scale = max(float(np.linalg.norm(a, 1)), 1.0)
+    rank = int(np.count_nonzero(s > DETECTABILITY_TOLERANCE * scale))
+    return np.asarray(vt[rank:].T)
+
+
+def integrating_outputs(a: ArrayLike, c: ArrayLike) -> NDArray[np.bool_]:
+    """Return which outputs integrate: those that see a mode of ``A`` at ``z = 1``.
+
+    Parameters
+    ----------
+    a : array_like, shape (n, n)
+    c : array_like, shape (p, n)
+
+    Returns
+    -------
+    ndarray of bool, shape (p,)
+        ``|C_i N| > DETECTABILITY_TOLERANCE |C_i|`` with ``N`` an orthonormal basis of the
+        null space of ``I - A`` (the right eigenvectors at 1; a relative test per row, so a
+        change of output units changes nothing).
+    """
+    a_ = np.asarray(a, dtype=float)
+    c_ = np.asarray(c, dtype=float)
+    null = _integrator_space(a_)
+    if null.shape[1] == 0:
+        return np.zeros(c_.shape[0], dtype=bool)
+    seen = np.linalg.norm(c_ @ null, axis=1)
+    size = np.linalg.norm(c_, axis=1)
+    return np.asarray(seen > 1e-6 * size, dtype=bool)
+
+
+def default_disturbances(a: ArrayLike, c: ArrayLike) -> tuple[OutputDisturbance, ...]:
+    """The default per-output model: ``"rate"`` for integrating outputs, ``"output"`` otherwise."""
+    return tuple("rate" if flag else "output" for flag in integrating_outputs(a, c))
+
+
+def _rate_directions(
+    a: NDArray[np.float64], c: NDArray[np.float64], rows: Sequence[int], output_labels: Sequence[str]
+) -> NDArray[np.float64]:
+    """``V`` (n, r) in the null space of ``I - A`` with ``C[rows] V = I``: a unit rate per output."""
+    null = _integrator_space(a)
+    seen = c[list(rows)] @ null
+    if null.shape[1] == 0 or np.linalg.matrix_rank(seen, tol=1e-6 * max(float(np.abs(seen).max()), 1e-300)) < len(rows):
+        flags = integrating_outputs(a, c)
+        lonely = [output_labels[i] for i in rows if not flags[i]]
+        what = (
+            f"{', '.join(repr(x) for x in lonely)} does not integrate (it sees no mode of the model at z = 1)"
+            if lonely
+            else f"{', '.join(repr(output_labels[i]) for i in rows)} share their integrating modes, so their rates "
+            f"cannot be biased independently"
+        )
+        raise NumericalError(
+            f"A bias on the rate of an output needs an integrator of its own: {what}. Use 'output' for "
+            f"such an output in estimator.disturbances.",
+            pointer=_DISTURBANCES_POINTER,
+        )
+    return np.asarray(null @ np.linalg.lstsq(seen, np.eye(len(rows)), rcond=None)[0])
+
+
 def augmented_model(
     a: NDArray[np.float64],
     b: NDArray[np.float64],
     c: NDArray[np.float64],
     disturbance: DisturbanceModel,
+    disturbances: Sequence[OutputDisturbance] | None = None,
+    output_labels: Sequence[str] | None = None,
 ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
     """Return ``(A_aug, B_aug, C_aug, Bd, Cd)`` for a disturbance model.
 
@@ -218,7 +298,11 @@ def augmented_model(
     b : ndarray, shape (n, m)
     c : ndarray, shape (p, n)
         Output matrix (measured and controlled outputs).
-    disturbance : {"output", "input", "none"}
+    disturbance : {"per_output", "output", "input", "none"}
+    disturbances : sequence of {"output", "rate"}, shape (p,), optional
+        For ``"per_output"``: each output's model (default :func:`default_disturbances`).
+    output_labels : sequence of str, optional
+        Output names for the error message of a rate bias without an integrator.
 
     Returns
     -------
@@ -238,6 +322,17 @@ def augmented_model(
         bd, cd = b.copy(), np.zeros((p, m))
     elif disturbance == "none":
         bd, cd = np.zeros((n, 0)), np.zeros((p, 0))
+    elif disturbance == "per_output":
+        kinds = tuple(disturbances) if disturbances is not None else default_disturbances(a, c)
+        assert len(kinds) == p, (kinds, p)
+        labels = list(output_labels) if output_labels else [f"y{i + 1}" for i in range(p)]
+        rate = [i for i, k in enumerate(kinds) if k == "rate"]
+        bd, cd = np.zeros((n, p)), np.zeros((p, p))
+        for i, k in enumerate(kinds):
+            if k == "output":
+                cd[i, i] = 1.0
+        if rate:
+            bd[:, rate] = _rate_directions(a, c, rate, labels)
     else:  # pragma: no cover - the schema edge allows only the three
         raise ValueError(f"unknown disturbance model {disturbance!r}")
     nd = bd.shape[1]
@@ -259,7 +354,7 @@ def _rank(matrix: NDArray[np.float64]) -> tuple[int, NDArray[np.float64]]:
 def _format_vector(v: NDArray[np.float64], labels: Sequence[str]) -> str:
     """``"on y2"`` for one signal, ``"along 0.5 u1 - u2"`` for a combination (largest entry 1)."""
     v = v / v[np.argmax(np.abs(v))]
-    used = [(float(x), name) for x, name in zip(v, labels, strict=False) if abs(x) > 1e-9]
+    used = [(float(x), name) for x, name in zip(v, labels, strict=True) if abs(x) > 1e-9]
     if used[0][0] < 0:  # a direction's sign is arbitrary: lead with a plus
         used = [(-x, name) for x, name in used]
     if len(used) == 1:
@@ -285,6 +380,7 @@ def _check_detectable(
     disturbance: DisturbanceModel,
     output_labels: Sequence[str],
     input_labels: Sequence[str],
+    disturbances: Sequence[str] = (),
 ) -> None:
     """Raise ``NumericalError`` unless the augmented model is detectable (see module notes)."""
     n, p, nd = a.shape[0], c.shape[0], bd.shape[1]
@@ -303,14 +399,15 @@ def _check_detectable(
             )
     if nd == 0:
         return
-    name = f"{disturbance}_disturbance"
+    name = "per_output" if disturbance == "per_output" else f"{disturbance}_disturbance"
     # 2. counting: at most one disturbance per measured output.
     if nd > p:
         raise NumericalError(
             f"The {name} model adds {nd} disturbances but the plant has only {p} measured "
             f"output(s): at most one constant disturbance per measured output can be "
             f"estimated, so the augmented model is not detectable (rank [[I - A, -Bd], "
-            f"[C, Cd]] < n + nd; Pannocchia and Rawlings 2003). Use output_disturbance.",
+            f"[C, Cd]] < n + nd; Pannocchia and Rawlings 2003). Use per_output (the default), "
+            f"which puts one disturbance on each output.",
             pointer=_KIND_POINTER,
         )
     # 3. the rank condition at z = 1.
@@ -319,26 +416,54 @@ def _check_detectable(
     if rank == n + nd:
         return
     hidden = vt[-1, n:]  # disturbance part of a null vector
-    labels = output_labels if disturbance == "output" else input_labels
+    if disturbance == "per_output":
+        labels = [
+            f"{o} ({'rate' if k == 'rate' else 'output'} bias)"
+            for o, k in zip(output_labels, disturbances, strict=True)
+        ]
+    else:
+        labels = list(output_labels if disturbance == "output" else input_labels)
     direction = _format_vector(hidden, labels) if np.abs(hidden).max() > 1e-9 else "(unnamed)"
-    integrates = bool(np.any(np.abs(scipy.linalg.eigvals(a, check_finite=False) - 1.0) < 1e-6))
+    flags = integrating_outputs(a, c)
+    integrates = bool(np.any(flags))
+    pointer = _KIND_POINTER
     if disturbance == "output" and integrates:
+        levels = ", ".join(repr(o) for o, f in zip(output_labels, flags, strict=True) if f)
         why = (
-            "the plant integrates (it has a pole at z = 1), and a constant disturbance on "
-            "its outputs looks exactly like a steady drift of its integrating state. Use "
-            "input_disturbance for an integrating plant."
+            f"the plant integrates ({levels} see a pole at z = 1), and a constant bias on an "
+            f"integrating output looks exactly like a steady drift of its integrator. Use "
+            f"per_output (the default), which models a bias on the rate of {levels} instead."
         )
+    elif disturbance == "per_output":
+        pointer = _DISTURBANCES_POINTER
+        involved = [i for i in range(len(hidden)) if abs(hidden[i]) > 1e-6 * np.abs(hidden).max()]
+        named = ", ".join(repr(output_labels[i]) for i in involved)
+        wrong = [i for i in involved if (disturbances[i] == "output") == bool(flags[i])]
+        if wrong:
+            fix = "; ".join(
+                f"{output_labels[i]!r} {'integrates' if flags[i] else 'does not integrate'}, so use "
+                f"'{'rate' if flags[i] else 'output'}' for it"
+                for i in wrong
+            )
+            why = f"the chosen model does not fit the output's structure: {fix}."
+        else:
+            why = (
+                f"no choice of bias on {named} can be told apart from a shift of the state: a zero of "
+                f"the plant at z = 1 (or integrators shared between these outputs) hides it in every "
+                f"measured output. No disturbance model per output is detectable for {named}; measure "
+                f"another output that sees this direction, or correct the model."
+            )
     else:
         why = (
             "a zero of the plant at z = 1 hides that disturbance direction: it causes no "
             "steady-state change in any measured output, so it cannot be told apart from "
-            "a shift of the state. Use output_disturbance for this plant."
+            "a shift of the state. Use per_output (the default), which puts one disturbance on each output."
         )
     raise NumericalError(
         f"The {name} model makes the augmented model undetectable: rank [[I - A, -Bd], "
         f"[C, Cd]] = {rank} < n + nd = {n + nd} (Pannocchia and Rawlings 2003). The "
         f"disturbance direction {direction} cannot be estimated: {why}",
-        pointer=_KIND_POINTER,
+        pointer=pointer,
     )
 
 
@@ -413,8 +538,9 @@ def design_estimator(
     b: ArrayLike,
     c: ArrayLike,
     *,
-    kind: EstimatorKind = "output_disturbance",
+    kind: EstimatorKind = "per_output",
     disturbance: DisturbanceModel | None = None,
+    disturbances: Sequence[OutputDisturbance] | None = None,
     process_noise: ArrayLike | None = None,
     disturbance_noise: ArrayLike | None = None,
     measurement_noise: ArrayLike | None = None,
@@ -429,11 +555,13 @@ def design_estimator(
     b : array_like, shape (n, m)
     c : array_like, shape (p, n)
         Outputs, each both measured and controlled (the design's output matrix).
-    kind : {"full_state", "output_disturbance", "input_disturbance", "kalman"}
-        Default ``"output_disturbance"``.
-    disturbance : {"output", "input", "none"}, optional
+    kind : {"full_state", "per_output", "output_disturbance", "input_disturbance", "kalman"}
+        Default ``"per_output"``.
+    disturbance : {"per_output", "output", "input", "none"}, optional
         Disturbance model; only for ``kind="kalman"`` (default ``"output"`` there).  The
         other kinds imply theirs, and passing a different one is an error.
+    disturbances : sequence of {"output", "rate"}, shape (p,), optional
+        The per-output model's choice per output (default :func:`default_disturbances`).
     process_noise : array_like, shape (n,) or (n, n), optional
         Process-noise covariance of the plant states (a diagonal or a full matrix); default
         ``DEFAULT_STATE_NOISE * I``.
@@ -474,6 +602,7 @@ def design_estimator(
     assert a_.shape == (n, n) and b_.shape == (n, m) and c_.shape == (p, n), (a_.shape, b_.shape, c_.shape)
     implied: dict[str, DisturbanceModel] = {
         "full_state": "none",
+        "per_output": "per_output",
         "output_disturbance": "output",
         "input_disturbance": "input",
         "kalman": "output",
@@ -508,9 +637,19 @@ def design_estimator(
 
     outputs = list(output_labels) if output_labels else [f"y{i + 1}" for i in range(p)]
     inputs = list(input_labels) if input_labels else [f"u{j + 1}" for j in range(m)]
-    a_aug, b_aug, c_aug, bd, cd = augmented_model(a_, b_, c_, model)
+    kinds: tuple[OutputDisturbance, ...] = ()
+    if model == "per_output":
+        kinds = tuple(disturbances) if disturbances is not None else default_disturbances(a_, c_)
+    a_aug, b_aug, c_aug, bd, cd = augmented_model(
+        a_,
+        b_,
+        c_,
+        model,
+        disturbances=kinds or None,
+        output_labels=outputs,
+    )
     nd = bd.shape[1]
-    _check_detectable(a_, c_, bd, cd, disturbance=model, output_labels=outputs, input_labels=inputs)
+    _check_detectable(a_, c_, bd, cd, disturbance=model, output_labels=outputs, input_labels=inputs, disturbances=kinds)
     qw = scipy.linalg.block_diag(
         _covariance(process_noise, n, DEFAULT_STATE_NOISE),
         _covariance(disturbance_noise, nd, DEFAULT_DISTURBANCE_NOISE),
@@ -545,4 +684,5 @@ def design_estimator(
         measurement_noise=rv,
         covariance=cov,
         innovation_covariance=innovation,
+        disturbances=kinds,
     )
