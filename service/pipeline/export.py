@@ -102,7 +102,7 @@ def _law_problems(request: DesignRequest, inputs: DesignInputs) -> list[FieldPro
             FieldProblem(
                 pointer("estimator", "kind"),
                 "the exported law reads measured outputs, but a full_state estimator reads the plant state, which "
-                "a control system does not measure. Choose an estimator (e.g. output_disturbance)",
+                "a control system does not measure. Choose an estimator (e.g. per_output, the default)",
             )
         )
     if inputs.terminal != "none":
@@ -145,7 +145,7 @@ def check_export_request(request: ExportRequest, caps: Caps) -> ExportInputs:
 
 def _disturbance_spans(plant: DiscretePlant, estimator: Estimator) -> NDArray[np.float64]:
     su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
-    return {"output": sz, "input": su, "none": np.ones(0)}[estimator.disturbance]
+    return {"per_output": sz, "output": sz, "input": su, "none": np.ones(0)}[estimator.disturbance]
 
 
 def compute_export(inputs: ExportInputs) -> ExportOutcome:
@@ -194,9 +194,12 @@ def law_labels(plant: DiscretePlant, estimator: Estimator) -> LawLabels:
     ]
     outputs = [LawSignal(name=s.name, role="input", tag=s.name, unit=s.unit) for s in plant.inputs]
     outputs += [LawSignal(name=f"{s.name}.move", role="move", tag=s.name, unit=s.unit) for s in plant.inputs]
-    source = {"output": plant.outputs, "input": plant.inputs, "none": ()}[estimator.disturbance]
     states = [f"{label}.estimate" for label in plant.state_labels]
-    states += [f"{s.name}.{estimator.disturbance}_disturbance" for s in source]
+    if estimator.disturbance == "per_output":
+        states += [f"{s.name}.{k}_disturbance" for s, k in zip(plant.outputs, estimator.disturbances, strict=True)]
+    else:
+        source = {"output": plant.outputs, "input": plant.inputs, "none": ()}[estimator.disturbance]
+        states += [f"{s.name}.{estimator.disturbance}_disturbance" for s in source]
     states += [f"{s.name}.previous" for s in plant.inputs]
     return LawLabels(inputs=inputs, outputs=outputs, states=states)
 
