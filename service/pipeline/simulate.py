@@ -47,10 +47,12 @@ from service.schemas.simulate import (
     SeriesColumns,
     SimulateRequest,
     SimulateResponse,
+    TrueLoopReport,
     WholeLoopReport,
 )
 from service.solver.estimation.estimator import Estimator
-from service.solver.estimation.loop import WholeLoop, control_loop, whole_loop
+from service.solver.estimation.loop import TrueLoop, WholeLoop, control_loop, true_loop, whole_loop
+from service.solver.evaluation.divergence import DIVERGENCE_LEVEL, divergence_onset
 from service.solver.evaluation.performance import Performance, loop_performance
 from service.solver.evaluation.simulation import Event, Scenario, Simulation, TruePlant, simulate_loop
 from service.solver.models.scaling import scale_plant
@@ -104,6 +106,10 @@ class SimulationOutcome:
     measured_disturbances: NDArray[np.float64]
     performance: Performance | None
     limited: LimitedRun | None = None
+    #: The loop analysed on the true plant, when the scenario has one.
+    true: TrueLoop | None = None
+    #: The step from which the run grows without bound and its growth per sample, if it does.
+    diverging: tuple[int, float] | None = None
 
 
 # --------------------------------------------------------------------------- compute
@@ -152,7 +158,7 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
             pointer="/model",
         )
 
-    true_plant = None
+    true_plant, true = None, None
     if inputs.true_plant is not None:
         t = inputs.true_plant
         ts = scale_plant(
@@ -165,6 +171,7 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
             disturbance_span=sd if sd.size else None,
         )
         true_plant = TruePlant(ts.a, ts.b, ts.c, ts.b_disturbance)
+        true = true_loop(loop, ts.a, ts.b, ts.c)
     scenario = Scenario(
         steps=inputs.steps,
         setpoint_changes=_scaled_events(inputs.setpoints, sz),
@@ -199,6 +206,12 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
         inputs_eng, estimates = sim.inputs * su, sim.estimates * estimate_span
         dm = sim.measured_disturbances * sd if sd.size else np.zeros((inputs.steps, 0))
     rows = _first_bad_row(sim.time[:, None], outputs, measured, setpoints, inputs_eng, estimates, dm)
+    sizes = [np.abs(e.value).max(initial=0.0) for e in (*scenario.setpoint_changes, *scenario.output_disturbances)]
+    sizes += [np.abs(e.value).max(initial=0.0) for e in (*scenario.input_disturbances, *scenario.measured_disturbances)]
+    for start in (scenario.initial_input, scenario.initial_setpoint):
+        if start is not None:
+            sizes.append(float(np.abs(start).max(initial=0.0)))
+    diverging = divergence_onset(np.hstack([sim.outputs[:rows], sim.inputs[:rows]]), reference=max([1.0, *sizes]))
     performance = None
     if rows == inputs.steps:
         performance = loop_performance(
@@ -228,6 +241,8 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
         measured_disturbances=dm[:rows],
         performance=performance,
         limited=limited,
+        true=true,
+        diverging=diverging,
     )
 
 
@@ -327,6 +342,26 @@ def _warnings(inputs: SimulationInputs, outcome: SimulationOutcome) -> list[Warn
                 f"{whole.separation_error:.3g}: the eigenvalues are ill-conditioned, so treat every pole with care.",
             )
         )
+    if outcome.true is not None and outcome.true.unstable:
+        out.append(
+            WarningReport(
+                code="true_loop_unstable",
+                message=f"On the true plant the loop of this controller and estimator is unstable (spectral "
+                f"radius {outcome.true.spectral_radius:.6g}), although they were designed on the model: the "
+                f"tuning does not tolerate this model error. Check the model against the true plant (gain "
+                f"signs, dead times), or detune (raise the move weights) and check analysis.model_error.",
+            )
+        )
+    if outcome.diverging is not None and outcome.rows == inputs.steps:
+        step, rate = outcome.diverging
+        out.append(
+            WarningReport(
+                code="run_diverging",
+                message=f"The run grows without bound: from step {step} its outputs and inputs are more than "
+                f"{DIVERGENCE_LEVEL:.0e} times the scenario's own size and still grow by a factor "
+                f"{rate:.4g} per sample. The figures of merit describe a loop that is not under control.",
+            )
+        )
     if outcome.rows < inputs.steps:
         out.append(
             WarningReport(
@@ -369,7 +404,16 @@ def simulate_response(
         estimates=outcome.estimates.tolist(),
         measured_disturbances=outcome.measured_disturbances.tolist(),
         columns=columns,
-        diverged_at=None if outcome.rows == inputs.steps else outcome.rows,
+        diverged_at=outcome.rows
+        if outcome.rows < inputs.steps
+        else (None if outcome.diverging is None else outcome.diverging[0]),
+        true_loop=None
+        if outcome.true is None
+        else TrueLoopReport(
+            poles=_poles(outcome.true.poles),
+            spectral_radius=outcome.true.spectral_radius,
+            stable=outcome.true.stable,
+        ),
         performance=performance_report(plant, outcome),
         estimator=EstimatorReport(
             kind=est.kind,

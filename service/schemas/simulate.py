@@ -199,6 +199,16 @@ class WholeLoopReport(ResponseModel):
     )
 
 
+class TrueLoopReport(ResponseModel):
+    """The loop of the controller and estimator (designed on the model) analysed on the true plant."""
+
+    poles: list[PoleReport] = Field(
+        description="Of the loop on [x_true; x(k|k-1); u(k-1)] (setpoint at zero), descending modulus."
+    )
+    spectral_radius: float
+    stable: bool = Field(description="Every pole below 1 - 1e-6 in modulus.")
+
+
 class SimulateResponse(ResponseModel):
     """The loop's response to the scenario, with the design and estimator that produced it.
 
@@ -216,7 +226,17 @@ class SimulateResponse(ResponseModel):
     estimates: list[list[float]] = Field(description="x(k|k): states, then disturbance estimates.")
     measured_disturbances: list[list[float]]
     columns: SeriesColumns
-    diverged_at: int | None = Field(description="First step not computed because the run blew up; null when complete.")
+    true_loop: TrueLoopReport | None = Field(
+        default=None,
+        description="With a true_plant: the loop of this controller and estimator on the true plant "
+        "(warning true_loop_unstable when a pole lies outside the unit circle).",
+    )
+    diverged_at: int | None = Field(
+        description="The step from which the run grows without bound: the first step not computed because "
+        "the numbers overflowed (the series stop there), or the first step at which the outputs and inputs "
+        "exceed 1000 times the scenario's own size (in spans) while still growing by more than 0.1 % per "
+        "sample (the series run to the end; warning run_diverging). Null for a bounded run."
+    )
     performance: PerformanceReport
     estimator: EstimatorReport
     whole_loop: WholeLoopReport

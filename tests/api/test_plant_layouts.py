@@ -104,3 +104,37 @@ def test_a_rate_bias_on_a_self_regulating_output_is_a_422_naming_it(client):
     assert response.status_code == 422
     (error,) = response.json()["errors"]
     assert error["pointer"] == "/estimator/disturbances/0" and "vessel_temperature" in error["detail"]
+
+
+def _vessel(true_b_factor=None, steps=300):
+    from service.pipeline.examples import load_example
+
+    request = load_example("simulate_request.json")
+    request["scenario"] = {"steps": steps, "setpoint_changes": [{"step": 5, "setpoint": [1.0, -0.5]}]}
+    if true_b_factor is not None:
+        true = copy.deepcopy(request["model"])
+        true["b"] = (np.array(true["b"]) * np.array(true_b_factor)).tolist()
+        request["scenario"]["true_plant"] = true
+    return request
+
+
+def test_a_true_plant_with_a_flipped_gain_sign_is_flagged_as_diverging(client):
+    # The steam valve's effect reversed on the true plant: positive feedback through the law.
+    body = client.post("/simulate", json=_vessel([[-1.0, 1.0]] * 4)).json()
+    codes = [w["code"] for w in body["warnings"]]
+    assert body["whole_loop"]["stable"] is True  # the model's own loop is fine ...
+    assert body["true_loop"]["stable"] is False and body["true_loop"]["spectral_radius"] > 1.0
+    assert "true_loop_unstable" in codes and body["diverged_at"] is not None
+    # diverged_at is where the run left 1000 times the scenario's size (a setpoint of 1) while growing.
+    outputs = np.abs(np.array(body["outputs"][: body["diverged_at"] + 1]))
+    assert outputs[-1].max() > 1e3 or np.abs(np.array(body["inputs"][body["diverged_at"]])).max() > 1e3
+
+
+def test_the_true_loop_equals_the_whole_loop_on_the_model_and_is_stable_with_20_percent_gain_error(client):
+    same = client.post("/simulate", json=_vessel([[1.0, 1.0]] * 4)).json()
+    poles = np.sort_complex(np.array([complex(p["real"], p["imag"]) for p in same["true_loop"]["poles"]]))
+    whole = np.sort_complex(np.array([complex(p["real"], p["imag"]) for p in same["whole_loop"]["poles"]]))
+    np.testing.assert_allclose(poles, whole, atol=1e-9)  # the same matrix when the true plant is the model
+    error = client.post("/simulate", json=_vessel([[1.2, 1.2]] * 4)).json()
+    assert error["true_loop"]["stable"] is True and error["diverged_at"] is None
+    np.testing.assert_allclose(error["outputs"][-1], [1.0, -0.5], atol=1e-6)  # offset-free under the error

@@ -117,8 +117,11 @@ def _null_space(matrix: NDArray[np.complex128] | NDArray[np.float64], reference:
     cols = matrix.shape[1]
     if matrix.shape[0] == 0 or cols == 0:
         return np.eye(cols, dtype=complex)
-    _, s, vh = np.linalg.svd(matrix)
+    s = np.linalg.svd(matrix, compute_uv=False)  # the cheap part first: most tests find full rank
     rank = int(np.count_nonzero(s > RANK_TOLERANCE * reference))
+    if rank == cols:
+        return np.zeros((cols, 0), dtype=complex)
+    _, s, vh = np.linalg.svd(matrix, full_matrices=matrix.shape[0] < cols)  # vh complete either way
     return np.asarray(vh[rank:].conj().T, dtype=complex)
 
 
@@ -144,34 +147,37 @@ def _scale(matrix: NDArray[np.float64]) -> float:
     return value if value > 0.0 else 1.0
 
 
-def _unobservable_subspace(a: NDArray[np.float64], c: NDArray[np.float64], reference: float) -> NDArray[np.complex128]:
-    """Orthonormal basis of the largest ``A``-invariant subspace in the null space of ``C``.
-
-    The staircase iteration ``V <- V null((I - V V') A V)`` from ``V = null(C)`` (the dual of
-    the controllability staircase, standard linear systems theory); each step keeps the
-    directions of ``span V`` that ``A`` maps into ``span V``.
-    """
-    v = _null_space(c, reference)
-    while v.shape[1]:
-        leak = a @ v - v @ (v.conj().T @ (a @ v))
-        keep = _null_space(leak, reference)
-        if keep.shape[1] == v.shape[1]:
-            break
-        v, _ = np.linalg.qr(v @ keep)
-    return v
-
-
-def _generalized_eigenspace(
-    v: NDArray[np.complex128], restricted: NDArray[np.complex128], z: complex, count: int, reference: float
+def _blind_eigenspace(
+    big_a: NDArray[np.float64],
+    observed: NDArray[np.complex128] | NDArray[np.float64],
+    z: complex,
+    count: int,
+    reference: float,
 ) -> NDArray[np.complex128]:
-    """Basis of the generalized eigenspace at ``z`` of ``A`` restricted to ``span v``."""
-    k = restricted.shape[0]
-    power = np.linalg.matrix_power(restricted - z * np.eye(k), count)
-    basis = _null_space(power, reference**count)
-    if basis.shape[1] != count:  # rounding of a defective cluster: keep the count's worth
-        _, _, vh = np.linalg.svd(power)
-        basis = vh[k - count :].conj().T
-    return np.asarray(v @ basis, dtype=complex)
+    """Basis of the generalized eigenvectors of ``big_a`` at ``z`` that ``observed`` never sees.
+
+    The ``count`` eigenvalues of ``big_a`` nearest ``z`` are moved to the front of an ordered
+    complex Schur form ``A Z = Z T`` (``scipy.linalg.schur`` with ``sort``), so the leading
+    columns ``Z1`` span their invariant subspace with ``A Z1 = Z1 T11``.  Its unobservable
+    part is ``Z1 null([O Z1; O Z1 T11; ...; O Z1 T11^(count-1)])`` (the Kalman observability
+    test on the small restricted pair, standard linear systems theory).
+    """
+    if count <= 0:
+        return np.zeros((big_a.shape[0], 0), dtype=complex)
+    values = scipy.linalg.eigvals(big_a, check_finite=False)
+    gaps = np.sort(np.abs(values - z))
+    reach = float(gaps[min(count, gaps.size) - 1]) * (1.0 + 1e-9) + 1e-300
+    t, zs, size = scipy.linalg.schur(big_a, output="complex", sort=lambda x: abs(x - z) <= reach)
+    z1, t11 = zs[:, :size], t[:size, :size]
+    blocks, current = [], z1
+    for _ in range(size):
+        blocks.append(observed @ current)
+        current = current @ t11
+    blind = _null_space(np.vstack(blocks), max(reference, 1.0))
+    if not blind.shape[1]:
+        return np.zeros((big_a.shape[0], 0), dtype=complex)
+    basis, _ = np.linalg.qr(z1 @ blind)
+    return np.asarray(basis, dtype=complex)
 
 
 def _structural_modes(
@@ -181,6 +187,7 @@ def _structural_modes(
     output_root: NDArray[np.float64],
     weighted: NDArray[np.float64],
     input_weight_root: NDArray[np.float64] | None,
+    poles: NDArray[np.complex128],
 ) -> list[MarginalMode]:
     n, m = a.shape[0], b.shape[1]
     cw = output_root @ c
@@ -193,12 +200,18 @@ def _structural_modes(
     # component of the state stays out of the cost-blind subspace below (the inputs only
     # compensate it there, they do not have a free direction).
     blind_rows: list[NDArray[np.complex128]] = []
-    for z in _clusters(
+    circle = (
         [complex(x) for x in scipy.linalg.eigvals(a, check_finite=False) if on_unit_circle(complex(x))] if n else []
-    ):
+    )
+    for z in _clusters(circle):
         if z.imag < -1e-12:
             continue
-        hidden = _null_space(np.vstack([(a - z * np.eye(n)).conj().T, (b * d).conj().T]), reference)
+        if not np.any(np.abs(poles - z) <= POLE_MATCH * max(1.0, abs(z))):
+            continue  # an uncontrollable mode stays a closed-loop pole: none here
+        if abs(z.imag) <= 1e-12:  # real arithmetic for a real eigenvalue (a quarter of the work)
+            hidden = _null_space(np.vstack([(a - z.real * np.eye(n)).T, (b * d).T]), reference)
+        else:
+            hidden = _null_space(np.vstack([(a - z * np.eye(n)).conj().T, (b * d).conj().T]), reference)
         blind_rows.append(hidden.conj().T)
         if abs(z.imag) > 1e-12:
             blind_rows.append(hidden.T)
@@ -224,50 +237,47 @@ def _structural_modes(
         rows.append(np.hstack([np.zeros((input_weight_root.shape[0], n)), scale * input_weight_root * d]))
     for w in blind_rows:
         rows.append(np.hstack([scale * w, np.zeros((w.shape[0], m))]))
-    blind = _unobservable_subspace(big_a, np.vstack(rows), reference)
-    if blind.shape[1]:
-        restricted = blind.conj().T @ big_a @ blind
-        values = scipy.linalg.eigvals(restricted, check_finite=False)
-        for z in _clusters([complex(x) for x in values if on_unit_circle(complex(x), tolerance=POLE_MATCH)]):
-            if z.imag < -1e-12:
-                continue
-            count = sum(1 for x in values if abs(x - z) <= POLE_MATCH * max(1.0, abs(z)))
-            space = _generalized_eigenspace(blind, restricted, z, count, reference)
-            moved = space[n:, :]
-            if abs(z - 1.0) <= POLE_MATCH:
-                inputs_part = moved * d[:, None]
-                if dead:
-                    inputs_part = inputs_part.copy()
-                    inputs_part[dead, :] = 0.0  # the dead inputs are named on their own
-                directions = _range(inputs_part, PART_TOLERANCE * max(float(d.max()), 1.0))
-                for v in directions.T:
-                    real = np.real(v * np.exp(-1j * np.angle(v[np.argmax(np.abs(v))])))
-                    real = real / real[np.argmax(np.abs(real))]
-                    modes.append(
-                        MarginalMode(pole=1.0 + 0.0j, cause="free_input_direction", inputs=_named(real), direction=real)
-                    )
-                plant_count = count - _range(moved).shape[1]
-            else:
-                plant_count = count
-            if plant_count <= 0:
-                continue
-            states = space[:n, :]
-            plant = _range(states)[:, :plant_count]
-            outputs = c @ plant
-            seen = _range(outputs, PART_TOLERANCE * _scale(c)).shape[1]
-            for _ in range(plant_count - seen):
-                modes += _pair(
-                    MarginalMode(pole=z, cause="unobservable_mode", states=_named(np.linalg.norm(plant, axis=1)))
+    observed = np.asarray(np.vstack(rows), dtype=complex)
+    plant_values = [complex(x) for x in scipy.linalg.eigvals(a, check_finite=False)] if n else []
+    candidates = [z for z in plant_values if on_unit_circle(z, tolerance=POLE_MATCH)] + ([1.0 + 0j] if m else [])
+    for z in _clusters(candidates):
+        if z.imag < -1e-12:
+            continue
+        count = sum(1 for x in plant_values if abs(x - z) <= POLE_MATCH * max(1.0, abs(z)))
+        count += m if abs(z - 1.0) <= POLE_MATCH else 0
+        space = _blind_eigenspace(big_a, observed, z, count, reference)
+        if not space.shape[1]:
+            continue
+        count = space.shape[1]
+        moved = space[n:, :]
+        if abs(z - 1.0) <= POLE_MATCH:
+            inputs_part = moved * d[:, None]
+            if dead:
+                inputs_part = inputs_part.copy()
+                inputs_part[dead, :] = 0.0  # the dead inputs are named on their own
+            for v in _range(inputs_part, PART_TOLERANCE * max(float(d.max()), 1.0)).T:
+                real = np.real(v * np.exp(-1j * np.angle(v[np.argmax(np.abs(v))])))
+                real = real / real[np.argmax(np.abs(real))]
+                modes.append(
+                    MarginalMode(pole=1.0 + 0.0j, cause="free_input_direction", inputs=_named(real), direction=real)
                 )
-            for _ in range(min(seen, plant_count)):
-                modes += _pair(
-                    MarginalMode(
-                        pole=z,
-                        cause="unweighted_output",
-                        outputs=_named(np.linalg.norm(outputs, axis=1)),
-                        states=_named(np.linalg.norm(plant, axis=1)),
-                    )
+            plant_count = count - _range(moved).shape[1]
+        else:
+            plant_count = count
+        if plant_count <= 0:
+            continue
+        plant = _range(space[:n, :])[:, :plant_count]
+        outputs = c @ plant
+        seen = _range(outputs, PART_TOLERANCE * _scale(c)).shape[1]
+        states = _named(np.linalg.norm(plant, axis=1))
+        for _ in range(plant_count - seen):
+            modes += _pair(MarginalMode(pole=z, cause="unobservable_mode", states=states))
+        for _ in range(min(seen, plant_count)):
+            modes += _pair(
+                MarginalMode(
+                    pole=z, cause="unweighted_output", outputs=_named(np.linalg.norm(outputs, axis=1)), states=states
                 )
+            )
     return modes
 
 
@@ -331,7 +341,7 @@ def marginal_modes(
     computed = np.asarray(poles, dtype=complex)
     used = np.zeros(computed.size, dtype=bool)
     found: list[MarginalMode] = []
-    structural = _structural_modes(a_, b_, c_, output_root, weighted, input_weight_root)
+    structural = _structural_modes(a_, b_, c_, output_root, weighted, input_weight_root, computed)
     for mode in structural:
         gap = np.where(used, np.inf, np.abs(computed - mode.pole))
         if not gap.size:

@@ -36,6 +36,7 @@ import scipy.linalg
 import scipy.optimize
 from numpy.typing import NDArray
 
+from service.solver.design.closed_loop import closed_loop_matrix
 from service.solver.design.controller import ControllerDesign
 from service.solver.design.marginal import MARGINAL_TOLERANCE
 from service.solver.design.prediction import prediction_matrices
@@ -45,9 +46,12 @@ from service.solver.estimation.target import TargetProblem, target_problem
 __all__ = [
     "SEPARATION_TOLERANCE",
     "ControlLoop",
+    "TrueLoop",
     "WholeLoop",
     "control_loop",
     "estimator_target",
+    "separation_check",
+    "true_loop",
     "whole_loop",
 ]
 
@@ -56,6 +60,55 @@ __all__ = [
 #: Loose enough for the ``eps^(1/k)`` spread of a defective eigenvalue of multiplicity ``k <= 3``
 #: (common practice of eigenvalue perturbation).
 SEPARATION_TOLERANCE = 1e-5
+#: The separation check compares the power sums of the poles up to this power.
+_POWER_SUMS = 6
+
+
+def separation_check(
+    whole: NDArray[np.complex128], union: NDArray[np.complex128], matrix_norm: float, radius: float
+) -> bool:
+    """Whether the whole loop's poles are the union of the parts' poles, up to rounding.
+
+    Parameters
+    ----------
+    whole : ndarray of complex, shape (N,)
+        Poles of the whole loop.
+    union : ndarray of complex, shape (N,)
+        The controller's and the estimator's poles together.
+    matrix_norm : float
+        1-norm of the whole-loop matrix.
+    radius : float
+        Spectral radius of the whole loop.
+
+    Returns
+    -------
+    bool
+        As many poles in both, and the power sums ``s_j = sum z^j``, ``j = 1..``
+        :data:`_POWER_SUMS`, agree within ``j SEPARATION_TOLERANCE max(1, sum |z|^j)``.
+
+    Notes
+    -----
+    A defective eigenvalue of multiplicity ``k`` (the chain of poles at 0 of a dead time is
+    one) scatters under rounding on a circle of radius about ``(eps ||M||)^(1/k)`` (Wilkinson's
+    perturbation bound for a Jordan block, standard numerical linear algebra), differently
+    in the whole loop and in its parts: with 20 delays that is about 0.2, so single poles
+    cannot be paired there.  The power sums are ``trace(M^j)`` on each side; the scattered
+    copies of a block at ``z0`` are ``z0`` plus the ``k``-th roots of a tiny number, whose
+    powers below ``k`` sum to ``k z0^j`` plus rounding, so the sums keep the sensitivity of
+    a simple eigenvalue (Newton's identities tie them to the characteristic polynomial).
+    A pole of the whole loop that moved by ``delta`` changes ``s_1`` by ``delta``.
+    """
+    if whole.size != union.size:
+        return False
+    scale = max(matrix_norm, 1.0)
+    eps = float(np.finfo(float).eps)
+    for j in range(1, _POWER_SUMS + 1):
+        mine, theirs = np.sum(whole**j), np.sum(union**j)
+        size = max(1.0, float(np.sum(np.abs(union) ** j)))
+        rounding = whole.size * eps * scale**j
+        if abs(mine - theirs) > j * SEPARATION_TOLERANCE * max(1.0, radius) ** j * size + rounding:
+            return False
+    return True
 
 
 @dataclass(frozen=True)
@@ -177,7 +230,8 @@ class WholeLoop:
         Largest distance between a whole-loop pole and its partner in the union of
         controller and estimator poles (optimal one-to-one matching).
     separation_holds : bool
-        ``separation_error <= SEPARATION_TOLERANCE * max(1, spectral_radius)``.
+        :func:`separation_check`: the power sums of both sets of poles agree (insensitive
+        to the rounding scatter of repeated poles, such as the poles at 0 of dead times).
     spectral_radius : float
     stable : bool
         ``spectral_radius < 1 - MARGINAL_TOLERANCE`` and no marginal mode in the controller's
@@ -199,15 +253,25 @@ class WholeLoop:
         return self.spectral_radius > 1.0 + MARGINAL_TOLERANCE
 
 
-def _whole_loop_matrix(loop: ControlLoop) -> NDArray[np.float64]:
+def _whole_loop_matrix(
+    loop: ControlLoop,
+    plant: tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]] | None = None,
+) -> NDArray[np.float64]:
     est = loop.estimator
     design = loop.design
-    if est.full_state:
+    if est.full_state and plant is None:
         return design.loop.matrix
-    n, na = est.state_size, est.augmented_size
+    if est.full_state:
+        assert plant is not None
+        return closed_loop_matrix(plant[0], plant[1], design.gain.state, design.gain.previous_input)
+    na = est.augmented_size
     m = est.b.shape[1]
-    a, b = est.model_a, est.model_b
-    mx = est.gain @ est.c_measured[:, :n]  # (na, n)
+    if plant is None:
+        a, b, c = est.model_a, est.model_b, est.c_measured[:, : est.state_size]
+    else:
+        a, b, c = plant
+    n = a.shape[0]
+    mx = est.gain @ c  # (na, n): the estimator reads the plant's measured outputs
     mp = np.eye(na) - est.gain @ est.c_measured  # (na, na)
     select = np.zeros((est.disturbance_size, na))
     select[:, est.disturbance_slice] = np.eye(est.disturbance_size)
@@ -223,6 +287,63 @@ def _whole_loop_matrix(loop: ControlLoop) -> NDArray[np.float64]:
 
 def _sorted(poles: NDArray[np.complex128]) -> NDArray[np.complex128]:
     return poles[np.argsort(-np.abs(poles), kind="stable")]
+
+
+@dataclass(frozen=True)
+class TrueLoop:
+    """The loop of controller and estimator (designed on the model) running on another plant.
+
+    Attributes
+    ----------
+    matrix : ndarray, shape (nt+na+m, nt+na+m)
+        On ``[x_true(k); x(k|k-1); u(k-1)]`` (``[x_true; u(k-1)]`` for ``full_state``).
+    poles : ndarray of complex
+        By descending modulus.
+    spectral_radius : float
+    stable : bool
+        ``spectral_radius < 1 - MARGINAL_TOLERANCE``.
+    unstable : bool
+        ``spectral_radius > 1 + MARGINAL_TOLERANCE``.
+    """
+
+    matrix: NDArray[np.float64]
+    poles: NDArray[np.complex128]
+    spectral_radius: float
+    stable: bool
+    unstable: bool
+
+
+def true_loop(loop: ControlLoop, a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64]) -> TrueLoop:
+    """Return the poles of the loop on a true plant ``(A_t, B_t, C_t)`` (setpoint at zero).
+
+    The same equations as :func:`whole_loop` with the true plant in place of the model:
+    ``x(k|k) = L C_t x_t(k) + (I - L Cy) x(k|k-1)``, ``u(k) = -K x(k|k) + (I - Ku) u(k-1)``,
+    ``x_t(k+1) = A_t x_t(k) + B_t u(k)``.  With the true plant equal to the model they are
+    the whole loop's poles.
+
+    Parameters
+    ----------
+    loop : ControlLoop
+    a : ndarray, shape (nt, nt)
+    b : ndarray, shape (nt, m)
+    c : ndarray, shape (p, nt)
+        The true plant in the signals of the loop (scaled like the model); ``nt = n`` for
+        ``full_state``.
+
+    Returns
+    -------
+    TrueLoop
+    """
+    matrix = _whole_loop_matrix(loop, (a, b, c))
+    poles = _sorted(scipy.linalg.eigvals(matrix, check_finite=False))
+    radius = float(np.abs(poles).max(initial=0.0))
+    return TrueLoop(
+        matrix=matrix,
+        poles=poles,
+        spectral_radius=radius,
+        stable=radius < 1.0 - MARGINAL_TOLERANCE,
+        unstable=radius > 1.0 + MARGINAL_TOLERANCE,
+    )
 
 
 def whole_loop(loop: ControlLoop) -> WholeLoop:
@@ -247,20 +368,22 @@ def whole_loop(loop: ControlLoop) -> WholeLoop:
     controller = loop.design.loop.poles
     estimator = loop.estimator.poles
     union = np.concatenate([controller, estimator])
+    radius = float(np.abs(poles).max(initial=0.0))
     if union.size != poles.size:  # pragma: no cover - sizes agree by construction
-        error = float("inf")
+        error, holds = float("inf"), False
     else:
         distance = np.abs(poles[:, None] - union[None, :])
         rows, cols = scipy.optimize.linear_sum_assignment(distance)
         error = float(distance[rows, cols].max(initial=0.0))
-    radius = float(np.abs(poles).max(initial=0.0))
+        norm = float(np.linalg.norm(matrix, 1)) if matrix.size else 0.0
+        holds = separation_check(poles, union, norm, radius)
     return WholeLoop(
         matrix=matrix,
         poles=poles,
         controller_poles=controller,
         estimator_poles=estimator,
         separation_error=error,
-        separation_holds=error <= SEPARATION_TOLERANCE * max(1.0, radius),
+        separation_holds=holds,
         spectral_radius=radius,
         stable=radius < 1.0 - MARGINAL_TOLERANCE and not loop.design.loop.marginal,
     )
