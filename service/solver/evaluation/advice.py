@@ -185,8 +185,14 @@ def slow_pole_advice(
     *,
     sample_time: float | None = None,
     estimator_poles: ArrayLike | None = None,
+    keep_move_weights: bool = False,
 ) -> Diagnostic | None:
     """Advise when the dominant closed-loop pole is slower than the prediction horizon.
+
+    Nothing when the loop is unstable (``unstable_closed_loop`` is the diagnosis then).  With
+    ``keep_move_weights`` (the Hessian advice already asks to raise them) the fix for a pole
+    the tuning put there leaves the move weights alone, so that no answer asks for opposite
+    changes of one weight.
 
     Parameters
     ----------
@@ -208,10 +214,16 @@ def slow_pole_advice(
     candidates = [(complex(z), "controller") for z in design.loop.poles] + [
         (complex(z), "estimator") for z in estimator
     ]
+    if design.loop.unstable:
+        return None  # one diagnosis: the loop is unstable (unstable_closed_loop), not slow
+    largest = max((abs(z) for z, _ in candidates), default=0.0)
     candidates = [(z, who) for z, who in candidates if 0.0 < abs(z) < 1.0 - UNIT_CIRCLE_MARGIN]
     if not candidates:
         return None
     pole, owner = max(candidates, key=lambda item: abs(item[0]))
+    # "dominant" is the pole of largest modulus; one nearer the circle (marginal, named on its
+    # own) makes this the slowest of the others.
+    which = "dominant closed-loop pole" if abs(pole) >= largest else "slowest closed-loop pole off the unit circle"
     tau = -1.0 / math.log(abs(pole))
     hp = design.prediction.prediction
     if tau <= hp:
@@ -234,12 +246,15 @@ def slow_pole_advice(
         )
     else:
         whose = (
-            "The tuning put it there: lower the move weights or raise the output weights to "
+            "The tuning put it there: raise the output weights to speed it up, or lengthen the "
+            "prediction horizon to cover it."
+            if keep_move_weights
+            else "The tuning put it there: lower the move weights or raise the output weights to "
             "speed it up, or lengthen the prediction horizon to cover it."
         )
     return Diagnostic(
         "slow_pole",
-        f"The dominant closed-loop pole {_fmt(pole)} has a time constant of {tau:.3g} samples"
+        f"The {which} {_fmt(pole)} has a time constant of {tau:.3g} samples"
         f"{_seconds(tau, sample_time)}, longer than the prediction horizon of {hp} samples, so "
         f"the controller plans over a window in which this mode does not settle. {whose}",
     )
@@ -435,9 +450,16 @@ def tuning_advice(
         ``ill_conditioned_hessian``, ``slow_pole``, ``high_peak_sensitivity``,
         ``non_minimum_phase_short_horizon``, each at most once.
     """
+    hessian = hessian_advice(a, b, c, design)
     found = [
-        hessian_advice(a, b, c, design),
-        slow_pole_advice(a, design, sample_time=sample_time, estimator_poles=estimator_poles),
+        hessian,
+        slow_pole_advice(
+            a,
+            design,
+            sample_time=sample_time,
+            estimator_poles=estimator_poles,
+            keep_move_weights=hessian is not None or design.hessian.condition_number > ILL_CONDITIONED,
+        ),
         None if analysis is None else sensitivity_advice(analysis),
         non_minimum_phase_advice(a, b, c, prediction=design.prediction.prediction, sample_time=sample_time),
     ]
