@@ -339,6 +339,8 @@ def marginal_modes(
     b_ = np.asarray(b, dtype=float)
     c_ = np.asarray(c, dtype=float)
     computed = np.asarray(poles, dtype=complex)
+    if not np.any(np.abs(np.abs(computed) - 1.0) <= POLE_MATCH):
+        return []  # every structural cause is a closed-loop pole on the circle: none is
     used = np.zeros(computed.size, dtype=bool)
     found: list[MarginalMode] = []
     structural = _structural_modes(a_, b_, c_, output_root, weighted, input_weight_root, computed)
