@@ -26,6 +26,7 @@ from service.pipeline.limits import (
     limit_check_warnings,
 )
 from service.pipeline.limits_checks import LimitInputs, check_limits
+from service.pipeline.operating_point import check_operating_point, design_to_absolute, explain_failure, to_deviations
 from service.pipeline.plant import DiscretePlant, Signal, plant_arrays
 from service.pipeline.robustness import frequency_problems, robustness_report
 from service.schemas.common import Caps, check_weight, pointer
@@ -226,6 +227,14 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         When a continuous model cannot be sampled.
     """
     problems = _horizon_problems(request, caps)
+    if request.model.operating_point is not None:
+        problems.append(
+            FieldProblem(
+                pointer("model", "operating_point"),
+                "this endpoint works in deviations only for now; give the values as deviations from the "
+                "operating point and leave it out (POST /design, /design/batch and /simulate take it)",
+            )
+        )
     plant, found = plant_arrays(request.model, caps)
     problems += found
     if plant is None:
@@ -494,5 +503,16 @@ def run_design(request: DesignRequest, caps: Caps) -> DesignResponse:
     ------
     InvalidRequest, NumericalError
     """
-    inputs = check_design_request(request, caps)
-    return design_response(request, inputs, compute_design(inputs))
+    deviations, point = to_deviations(request)
+    try:
+        inputs = check_design_request(deviations, caps)
+    except InvalidRequest:
+        explain_failure(deviations, point, caps)
+        raise
+    if point is None:
+        return design_response(request, inputs, compute_design(inputs))
+    check_operating_point(deviations, point, inputs.plant)
+    response = design_response(deviations, inputs, compute_design(inputs))
+    design_to_absolute(response, point, inputs.plant)
+    response.fingerprint = fingerprint(request)
+    return response

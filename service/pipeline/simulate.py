@@ -30,11 +30,17 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from service.errors import NumericalError
+from service.errors import InvalidRequest, NumericalError
 from service.pipeline.design import DesignOutcome, compute_design, design_response, marginal_mode_reports
 from service.pipeline.estimator import scaled_estimator
 from service.pipeline.fingerprint import fingerprint
 from service.pipeline.limits import LimitedRun, limit_run_reports, limited_run
+from service.pipeline.operating_point import (
+    check_operating_point,
+    explain_failure,
+    simulation_to_absolute,
+    to_deviations,
+)
 from service.pipeline.plant import DiscretePlant
 from service.pipeline.simulate_checks import SimulationInputs, check_simulate_request
 from service.schemas.common import Caps
@@ -449,8 +455,23 @@ def run_simulation(request: SimulateRequest, caps: Caps) -> SimulateResponse:
     ------
     InvalidRequest, NumericalError
     """
-    inputs = check_simulate_request(request, caps)
-    return simulate_response(request, inputs, compute_simulation(inputs))
+    deviations, point = to_deviations(request)
+    assert isinstance(deviations, SimulateRequest)
+    try:
+        inputs = check_simulate_request(deviations, caps)
+    except InvalidRequest:
+        explain_failure(deviations, point, caps)
+        raise
+    if point is None:
+        return simulate_response(request, inputs, compute_simulation(inputs))
+    check_operating_point(deviations, point, inputs.design.plant)
+    response = simulate_response(deviations, inputs, compute_simulation(inputs))
+    simulation_to_absolute(response, point, inputs.design.plant)
+    response.fingerprint = fingerprint(request)
+    response.design.fingerprint = fingerprint(
+        DesignRequest(**{name: getattr(request, name) for name in DesignRequest.model_fields})
+    )
+    return response
 
 
 def simulation_csv(response: SimulateResponse) -> str:

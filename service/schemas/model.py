@@ -7,7 +7,7 @@ from typing import Annotated, Literal
 from pydantic import Field
 
 from service.schemas.common import FiniteFloat, Matrix, RequestModel
-from service.schemas.signals import TagList
+from service.schemas.signals import OperatingPoint, TagList
 from service.schemas.step_response import StepResponseModel
 
 __all__ = [
@@ -28,6 +28,14 @@ class _Tagged(RequestModel):
     inputs: TagList | None = Field(default=None, description="One tag per manipulated variable.")
     outputs: TagList | None = Field(default=None, description="One tag per controlled output.")
     disturbances: TagList | None = Field(default=None, description="One tag per measured disturbance.")
+    operating_point: OperatingPoint | None = Field(
+        default=None,
+        description="The steady values at which this linear model holds (engineering units). With it, "
+        "limits, setpoints, initial input and setpoint, measured disturbance values, every series, CSV "
+        "column and limit report are absolute; the solver works in deviations from it, and the gains "
+        "act on deviations (du = Kr (r - z0) - Kx x - Ku (u(k-1) - u0)). Without it, all those values are "
+        "deviations from the model's origin.",
+    )
 
 
 class StateSpaceModel(_Tagged):

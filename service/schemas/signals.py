@@ -8,7 +8,7 @@ from pydantic import Field
 
 from service.schemas.common import FiniteFloat, RequestModel
 
-__all__ = ["SignalTag", "TagList"]
+__all__ = ["OperatingPoint", "SignalTag", "TagList"]
 
 TagName = Annotated[str, Field(min_length=1, max_length=64, pattern=r"^[^\x00-\x1f]+$")]
 
@@ -28,3 +28,17 @@ class SignalTag(RequestModel):
 
 
 TagList = list[SignalTag]
+
+
+class OperatingPoint(RequestModel):
+    """The steady values at which the linear model holds, in engineering units.
+
+    With it, every value a request gives or an answer returns (limits, setpoints, initial
+    input and setpoint, measured disturbance values, every series and limit report) is
+    absolute; the solver works in deviations from it.  Without it, those values are
+    deviations from the model's origin.
+    """
+
+    inputs: list[FiniteFloat] | None = Field(default=None, description="One value per manipulated variable.")
+    outputs: list[FiniteFloat] | None = Field(default=None, description="One value per controlled output.")
+    disturbances: list[FiniteFloat] | None = Field(default=None, description="One value per measured disturbance.")

@@ -7,7 +7,7 @@ from typing import Annotated, Literal
 from pydantic import Field
 
 from service.schemas.common import FiniteFloat, RequestModel, ResponseModel
-from service.schemas.signals import TagList
+from service.schemas.signals import OperatingPoint, TagList
 
 __all__ = ["ReductionReport", "StepReductionModel", "StepResponseModel", "StepResponsePairModel"]
 
@@ -64,6 +64,11 @@ class StepResponseModel(RequestModel):
         default=None,
         description="Reduce the exact realization (one state per coefficient of the longest pair of each "
         "input, plus one integrator per integrating output) by balanced truncation of its stable part.",
+    )
+    operating_point: OperatingPoint | None = Field(
+        default=None,
+        description="The steady values at which this linear model holds (engineering units); see the "
+        "state-space model's operating_point.",
     )
 
 
