@@ -150,7 +150,13 @@ def test_the_default_estimator_and_loop_are_those_of_simulate(client, example):
 def test_an_estimator_given_changes_the_loop(client, example):
     default = design(client, with_frequency(example, points=20))["robustness"]
     full = design(client, with_frequency(example, points=20, kind="full_state"))["robustness"]
-    assert full["estimator"] == {"kind": "full_state", "disturbance": "none", "spectral_radius": 0.0}
+    # disturbances: the per-output model field added by issue 10 (null for other kinds)
+    assert full["estimator"] == {
+        "kind": "full_state",
+        "disturbance": "none",
+        "disturbances": None,
+        "spectral_radius": 0.0,
+    }
     assert full["plant_input"]["peak_sensitivity"] != default["plant_input"]["peak_sensitivity"]
 
 
