@@ -18,19 +18,22 @@ schemas, so replacing one takes milliseconds, not the second a fresh interpreter
 
 from __future__ import annotations
 
+import asyncio
 import atexit
+import logging
 import multiprocessing
 import os
 import queue
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import AsyncIterator, Callable
 from dataclasses import dataclass
 from multiprocessing.connection import Connection
 from multiprocessing.process import BaseProcess
 from typing import Annotated, Any, TypeVar
 
-from fastapi import Depends
+from fastapi import Depends, Request
+from starlette.types import Receive
 
 from service.api.deps import SettingsDep
 from service.api.metrics import SOLVER_SECONDS
@@ -39,7 +42,10 @@ from service.api.solver_worker import rebuild_error, serve_calls
 __all__ = [
     "Budget",
     "BudgetDep",
+    "Cancelled",
     "SolverCrashed",
+    "SolverDied",
+    "SolverOutOfMemory",
     "SolverPool",
     "TimeLimitExceeded",
     "get_budget",
@@ -47,6 +53,10 @@ __all__ = [
 ]
 
 T = TypeVar("T")
+
+log = logging.getLogger("movecast.compute")
+#: Warnings raised inside solver calls (numpy overflow and the like), one JSON line each.
+solver_log = logging.getLogger("movecast.solver")
 
 #: Modules the fork server imports once, so each solver process starts ready.
 PRELOAD = ["numpy", "scipy.linalg", "service.pipeline.design", "service.api.solver_worker"]
@@ -62,7 +72,23 @@ class TimeLimitExceeded(Exception):
 
 
 class SolverCrashed(Exception):
-    """A solver process died or failed in an unexpected way (it has been replaced)."""
+    """The call raised something other than a movecast error (its traceback is in the log)."""
+
+
+class SolverDied(SolverCrashed):
+    """The solver process died while running the call (killed, out of memory); replaced."""
+
+
+class SolverOutOfMemory(Exception):
+    """The call ran out of memory in its solver process (``MemoryError``)."""
+
+
+class Cancelled(Exception):
+    """The request's client went away; its call was stopped and its solver replaced."""
+
+
+#: Seconds between two looks at a request's cancellation while it waits or runs.
+_POLL_SECONDS = 0.05
 
 
 def _context() -> multiprocessing.context.BaseContext:
@@ -125,8 +151,51 @@ class SolverPool:
             solver.process.kill()
         solver.process.join(timeout=5)
 
-    def run(self, call: Callable[..., T], args: tuple[Any, ...], *, deadline: float, seconds: float) -> tuple[T, float]:
+    def _take(self, deadline: float, seconds: float, cancel: threading.Event | None) -> _Solver:
+        """An idle, living solver (a dead one found idle is replaced first)."""
+        while True:
+            if cancel is not None and cancel.is_set():
+                raise Cancelled
+            left = deadline - time.monotonic()
+            if left <= 0:
+                raise TimeLimitExceeded(seconds, queued=True)
+            try:
+                solver = self._idle.get(timeout=min(left, _POLL_SECONDS) if cancel is not None else left)
+            except queue.Empty:
+                continue
+            if solver.process.is_alive() and not solver.conn.poll(0):
+                return solver
+            log.warning("an idle solver process had died (exit code %s); replaced", solver.process.exitcode)
+            self._replace(solver)
+
+    def _replace(self, solver: _Solver) -> None:
+        self._retire(solver)
+        if not self._closed:
+            self._idle.put(self._spawn())
+
+    def _wait(self, solver: _Solver, deadline: float, seconds: float, cancel: threading.Event | None) -> Any:
+        while True:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                raise TimeLimitExceeded(seconds, queued=False)
+            if solver.conn.poll(min(left, _POLL_SECONDS) if cancel is not None else left):
+                return solver.conn.recv()
+            if cancel is not None and cancel.is_set():
+                raise Cancelled
+
+    def run(
+        self,
+        call: Callable[..., T],
+        args: tuple[Any, ...],
+        *,
+        deadline: float,
+        seconds: float,
+        cancel: threading.Event | None = None,
+    ) -> tuple[T, float]:
         """Run ``call(*args)`` in a solver before ``deadline`` (``time.monotonic``).
+
+        A solver found dead while idle is replaced before it gets the call; a call whose
+        solver dies before it could be sent is sent once more, to a fresh solver.
 
         Returns
         -------
@@ -138,40 +207,54 @@ class SolverPool:
         TimeLimitExceeded
             No solver was free in time, or the call did not finish in time (its solver is
             killed and replaced).
+        Cancelled
+            ``cancel`` was set (the client left): the call is stopped, its solver replaced.
+        SolverDied
+            The solver process died during the call (replaced).
+        SolverOutOfMemory
+            The call raised ``MemoryError`` in the solver.
         SolverCrashed
-            The solver died or raised something other than a movecast error.
+            The call raised something other than a movecast error (traceback logged).
         MovecastError
             Whatever the call raised on purpose (InvalidRequest, NumericalError).
         """
-        if deadline <= time.monotonic():
-            raise TimeLimitExceeded(seconds, queued=True)
         self.start()
-        try:
-            solver = self._idle.get(timeout=max(deadline - time.monotonic(), 0.0))
-        except queue.Empty:
-            raise TimeLimitExceeded(seconds, queued=True) from None
+        for attempt in (1, 2):
+            solver = self._take(deadline, seconds, cancel)
+            try:
+                solver.conn.send((call, args))
+            except (OSError, EOFError):
+                log.warning(
+                    "a solver process died before its call was sent; %s", "retrying" if attempt == 1 else "giving up"
+                )
+                self._replace(solver)
+                if attempt == 2:
+                    raise SolverDied("the solver process stopped before the call") from None
+                continue
+            break
         healthy = False
         try:
             try:
-                solver.conn.send((call, args))
-                if not solver.conn.poll(max(deadline - time.monotonic(), 0.0)):
-                    raise TimeLimitExceeded(seconds, queued=False)
-                outcome = solver.conn.recv()
+                outcome = self._wait(solver, deadline, seconds, cancel)
             except (EOFError, OSError) as exc:
-                raise SolverCrashed("the solver process stopped") from exc
-            if outcome[0] == "crash":
-                raise SolverCrashed(f"the solver raised {outcome[1]}")
+                raise SolverDied(f"the solver process stopped (exit code {solver.process.exitcode})") from exc
             healthy = True
         finally:
             if healthy:
                 self._idle.put(solver)
             else:
-                self._retire(solver)
-                if not self._closed:
-                    self._idle.put(self._spawn())
-        if outcome[0] == "ok":
-            return outcome[1], outcome[2]
-        raise rebuild_error(outcome[1], outcome[2], outcome[3])
+                self._replace(solver)
+        *result, caught = outcome
+        for category, message in caught:
+            solver_log.warning("%s: %s", category, message, extra={"category": category})
+        if result[0] == "ok":
+            return result[1], result[2]
+        if result[0] == "memory":
+            raise SolverOutOfMemory("the solver ran out of memory")
+        if result[0] == "crash":
+            log.error("the solver raised %s", result[1], extra={"exception_type": result[1], "traceback": result[2]})
+            raise SolverCrashed(f"the solver raised {result[1]}")
+        raise rebuild_error(result[1], result[2], result[3])
 
     def close(self) -> None:
         """Stop every idle solver; busy ones stop when their pipe closes."""
@@ -214,25 +297,48 @@ def _blas_threads_from_env() -> int:
         return 1
 
 
-class Budget:
-    """The compute time left to one request; every solver call of the request draws on it."""
+async def _watch_disconnect(receive: Receive, cancel: threading.Event) -> None:
+    """Set ``cancel`` when the client goes away (the ASGI server says ``http.disconnect``)."""
+    while True:
+        message = await receive()
+        if message["type"] == "http.disconnect":
+            cancel.set()
+            return
 
-    def __init__(self, pool: SolverPool, *, seconds: float) -> None:
+
+class Budget:
+    """The compute time left to one request; every solver call of the request draws on it.
+
+    ``cancel`` is set when the request's client goes away: the call running then is stopped
+    (its solver killed and replaced) and no further call starts.
+    """
+
+    def __init__(self, pool: SolverPool, *, seconds: float, cancel: threading.Event | None = None) -> None:
         self.pool = pool
         self.seconds = seconds
         self.deadline = time.monotonic() + seconds
+        self.cancel = cancel
 
     def run(self, call: Callable[..., T], *args: Any, operation: str) -> T:
         """Run ``call(*args)`` in a solver process within the budget; record its time."""
-        value, spent = self.pool.run(call, args, deadline=self.deadline, seconds=self.seconds)
+        value, spent = self.pool.run(call, args, deadline=self.deadline, seconds=self.seconds, cancel=self.cancel)
         SOLVER_SECONDS.labels(operation=operation).observe(spent)
         return value
 
 
-def get_budget(settings: SettingsDep) -> Budget:
-    """A fresh budget of ``request_timeout_seconds`` for this request."""
+async def get_budget(settings: SettingsDep, request: Request) -> AsyncIterator[Budget]:
+    """A fresh budget of ``request_timeout_seconds`` for this request, cancelled if its client leaves.
+
+    The watch runs on the event loop (it only awaits the ASGI ``http.disconnect`` message);
+    the handler, in its worker thread, finds the budget cancelled.
+    """
     pool = solver_pool(processes=settings.solver_processes)
-    return Budget(pool, seconds=settings.request_timeout_seconds)
+    cancel = threading.Event()
+    watcher = asyncio.ensure_future(_watch_disconnect(request.receive, cancel))
+    try:
+        yield Budget(pool, seconds=settings.request_timeout_seconds, cancel=cancel)
+    finally:
+        watcher.cancel()
 
 
 BudgetDep = Annotated[Budget, Depends(get_budget)]

@@ -56,6 +56,18 @@ class Settings(BaseSettings):
     request_timeout_seconds: float = Field(
         default=30.0, gt=0, le=3600, description="Compute time limit of one request, queueing included."
     )
+    read_timeout_seconds: float = Field(
+        default=15.0,
+        gt=0,
+        le=600,
+        description="A request must arrive whole (line, headers, body) within this time of its first byte; else 408.",
+    )
+    keep_alive_seconds: int = Field(
+        default=5, ge=1, le=600, description="An idle kept-alive connection is closed after this time."
+    )
+    max_connections: int = Field(
+        default=256, ge=1, le=100_000, description="Open connections per worker; past it a new one gets 503."
+    )
     solver_processes: int = Field(
         default=1, ge=1, le=64, description="Solver processes per worker (each runs one computation at a time)."
     )

@@ -6,7 +6,7 @@ from typing import Annotated
 
 from pydantic import Field
 
-from service.schemas.common import FiniteFloat, Matrix, RequestModel, ResponseModel
+from service.schemas.common import FiniteFloat, MatrixOut, RequestModel, ResponseModel
 from service.schemas.estimator import EstimatorRequest
 from service.schemas.limits import LimitCheckReport, LimitsRequest
 from service.schemas.model import PlantModel
@@ -99,11 +99,11 @@ class GainReport(ResponseModel):
     weights, not the units of the gains).
     """
 
-    horizon: Matrix = Field(description="Kh, m x (Hp-Hw+1)*p: gain on the free-response error E.")
-    state: Matrix = Field(description="Kx, m x n: gain on the state x(k).")
-    previous_input: Matrix = Field(description="Ku, m x m: gain on the previous input u(k-1).")
-    setpoint: Matrix = Field(description="Kr, m x p: gain on a constant setpoint r.")
-    disturbance: Matrix | None = Field(
+    horizon: MatrixOut = Field(description="Kh, m x (Hp-Hw+1)*p: gain on the free-response error E.")
+    state: MatrixOut = Field(description="Kx, m x n: gain on the state x(k).")
+    previous_input: MatrixOut = Field(description="Ku, m x m: gain on the previous input u(k-1).")
+    setpoint: MatrixOut = Field(description="Kr, m x p: gain on a constant setpoint r.")
+    disturbance: MatrixOut | None = Field(
         default=None, description="Kd, m x md: feed-forward gain on the measured disturbances d(k); null without any."
     )
     labels: GainLabels
@@ -152,12 +152,12 @@ class LabelledMatrix(ResponseModel):
 class SampledModelReport(ResponseModel):
     """The discrete model the design used, in engineering units."""
 
-    a: Matrix
-    b: Matrix
-    c: Matrix
-    b_disturbance: Matrix | None
-    c_measured: Matrix
-    d_measured: Matrix
+    a: MatrixOut
+    b: MatrixOut
+    c: MatrixOut
+    b_disturbance: MatrixOut | None
+    c_measured: MatrixOut
+    d_measured: MatrixOut
 
 
 class PlantReport(ResponseModel):

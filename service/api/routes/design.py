@@ -6,6 +6,7 @@ from typing import Annotated
 
 from fastapi import APIRouter, Body
 
+from service.api.bodies import CheckedBodyRoute
 from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
 from service.api.metrics import observe_design
@@ -16,7 +17,7 @@ from service.schemas.design import DesignRequest, DesignResponse
 
 __all__ = ["router"]
 
-router = APIRouter(tags=["design"])
+router = APIRouter(tags=["design"], route_class=CheckedBodyRoute)
 
 PROBLEMS = {
     400: {"description": "The body is not valid JSON.", "content": {PROBLEM_JSON: {}}},
