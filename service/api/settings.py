@@ -33,6 +33,11 @@ class Settings(BaseSettings):
     max_prediction_entries: int = Field(
         default=25_000_000, ge=1, description="Most entries of the prediction matrices [Fx Fu G]."
     )
+    max_design_memory_bytes: int = Field(
+        default=384 * 1024 * 1024,
+        ge=1024 * 1024,
+        description="Most estimated memory of one design in the solver, in bytes (fits the 1 GiB pod of deploy/).",
+    )
     max_response_entries: int = Field(
         default=2_000_000, ge=1, description="Most entries of the horizon gain in a response."
     )
@@ -121,6 +126,7 @@ class Settings(BaseSettings):
             max_prediction_horizon=self.max_prediction_horizon,
             max_hessian_size=self.max_hessian_size,
             max_prediction_entries=self.max_prediction_entries,
+            max_design_memory_bytes=self.max_design_memory_bytes,
             max_response_entries=self.max_response_entries,
             max_sweep_values=self.max_sweep_values,
             max_simulation_steps=self.max_simulation_steps,

@@ -16,6 +16,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import FieldProblem, InvalidRequest, NumericalError
+from service.pipeline.estimates import design_memory_bytes
 from service.pipeline.estimator import EstimatorInputs, check_estimator, scaled_estimator
 from service.pipeline.fingerprint import fingerprint
 from service.pipeline.limits import (
@@ -199,6 +200,19 @@ def _size_problems(request: DesignRequest, plant: DiscretePlant, caps: Caps) -> 
                 f"the prediction matrices would hold {entries:,} numbers; this service accepts at most "
                 f"{caps.max_prediction_entries:,}. Shorten the prediction or control horizon",
             )
+        ]
+    memory = design_memory_bytes(states=n, inputs=m, outputs=p, penalized_steps=penalized, control=h.control)
+    if memory > caps.max_design_memory_bytes:
+        mib = 1024 * 1024
+        return [
+            FieldProblem(
+                pointer(*where),
+                f"this design would need about {memory / mib:,.0f} MiB in the solver ({penalized} predicted steps "
+                f"x {p} outputs, {h.control} moves x {m} inputs, {n} states); this service allows "
+                f"{caps.max_design_memory_bytes / mib:,.0f} MiB. Shorten the control horizon first (memory grows "
+                "with its square), then the prediction horizon",
+            )
+            for where in (("horizons", "control"), ("horizons", "prediction"))
         ]
     if m * penalized * p > caps.max_response_entries:
         return [

@@ -1,9 +1,9 @@
 """POST /design/batch: many design requests in one call, each answered on its own.
 
 The envelope (ids, fingerprints) is validated as a whole; each item's ``request`` is taken
-as a raw JSON object and validated separately as a :class:`~service.schemas.design.DesignRequest`,
+as raw JSON and validated separately as a :class:`~service.schemas.design.DesignRequest`,
 so one bad item gets its own problem and never fails the others.  The schema says so: ``request``
-is an object (``x-validated-as`` names the DesignRequest schema), validated per item.
+takes any JSON value (``x-validated-as`` names the DesignRequest schema), validated per item.
 """
 
 from __future__ import annotations
@@ -29,11 +29,11 @@ class BatchItem(RequestModel):
     """One design request of a batch, named by the caller."""
 
     id: str = Field(min_length=1, max_length=200, description="The caller's name for the item, unique in the batch.")
-    request: dict[str, Any] = Field(
-        description="A POST /design request body (the DesignRequest schema). It is validated on its own, item "
-        "by item: an item that is not a valid DesignRequest is answered inside the 200 response with its own "
-        "problem (status 'failed', pointers into the batch such as /items/3/request/model/a), never failing "
-        "the batch. Only the envelope (ids, an object here) is checked as a whole.",
+    request: Any = Field(
+        description="A POST /design request body (the DesignRequest schema). Any JSON value is taken here and "
+        "validated on its own, item by item: an item that is not a valid DesignRequest is answered inside the "
+        "200 response with its own problem (status 'failed', pointers into the batch such as "
+        "/items/3/request/model/a), never failing the batch. Only the envelope (ids) is checked as a whole.",
         json_schema_extra={"x-validated-as": "#/components/schemas/DesignRequest"},
     )
     known_fingerprint: str | None = Field(

@@ -71,6 +71,11 @@ class Caps:
     max_hessian_size: int = 4000
     #: Entries of the stacked prediction matrices ``[Fx Fu G]`` (8 bytes each).
     max_prediction_entries: int = 25_000_000
+    #: Peak bytes of one design in the solver process
+    #: (``service.pipeline.estimates.design_memory_bytes``).  The default leaves room, inside
+    #: the 1 GiB memory limit of ``deploy/``, for the serving process, the fork server and the
+    #: solver process's own interpreter and libraries (about 475 MB together, measured).
+    max_design_memory_bytes: int = 384 * 1024 * 1024
     #: Entries of the horizon gain ``Kh`` returned in a response.
     max_response_entries: int = 2_000_000
     #: Values in one tuning sweep.
