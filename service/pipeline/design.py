@@ -56,11 +56,13 @@ from service.solver.models.scaling import ScaledPlant, scale_plant, unscale_feed
 
 __all__ = [
     "DesignInputs",
+    "DesignJson",
     "DesignOutcome",
     "check_design_request",
     "compute_design",
     "design_response",
     "run_design",
+    "run_design_json",
 ]
 
 
@@ -501,3 +503,39 @@ def run_design(request: DesignRequest, caps: Caps) -> DesignResponse:
     """
     inputs = check_design_request(request, caps)
     return design_response(request, inputs, compute_design(inputs))
+
+
+@dataclass(frozen=True)
+class DesignJson:
+    """A /design answer already written as JSON, with the sizes the metrics record.
+
+    Attributes
+    ----------
+    body : bytes
+        ``DesignResponse.model_dump_json()``: what the endpoint answers, written by
+        pydantic-core in the solver process, so the serving process neither unpickles the
+        response model nor validates and serializes it again.
+    sizes : dict of str to int
+        ``states``, ``inputs``, ``outputs`` and ``hessian`` of the design.
+    """
+
+    body: bytes
+    sizes: dict[str, int]
+
+
+def run_design_json(request: DesignRequest, caps: Caps) -> DesignJson:
+    """:func:`run_design`, answered as JSON bytes (the same numbers as the response model).
+
+    Raises
+    ------
+    InvalidRequest, NumericalError
+    """
+    response = run_design(request, caps)
+    state, setpoint = response.gain.state, response.gain.setpoint
+    sizes = {
+        "states": len(state[0]) if state else 0,
+        "inputs": len(state),
+        "outputs": len(setpoint[0]) if setpoint else 0,
+        "hessian": response.hessian.size,
+    }
+    return DesignJson(body=response.model_dump_json().encode("utf-8"), sizes=sizes)
