@@ -7,9 +7,10 @@ floating-point operations of the dominant steps (common practice: the leading te
 the textbook operation counts, Golub and Van Loan, *Matrix Computations*, 4th ed.,
 table 1.1.2 and sections 4.2, 7.5, 8.3); it is a scheduling figure, not a bound.
 
-Sizes come from the request as posted: a state-space model's matrices, or for a transfer
+Sizes come from the request as posted: a state-space model's matrices; for a transfer
 matrix the lags, integrators and whole samples of dead time of every element (an upper
-bound of the realization, which shares delays).
+bound of the realization, which shares delays); for step-response tables one shift register
+per input as long as its longest table (before any reduction).
 """
 
 from __future__ import annotations
@@ -20,6 +21,7 @@ from pydantic import BaseModel
 
 from service.schemas.design import DesignRequest
 from service.schemas.model import StateSpaceModel, TransferMatrixModel
+from service.schemas.step_response import StepResponseModel
 from service.schemas.simulate import SimulateRequest
 from service.schemas.sweep import SweepRequest
 
@@ -31,11 +33,19 @@ __all__ = ["HEAVY_WORK", "design_work", "model_sizes", "request_work"]
 HEAVY_WORK = 50_000_000
 
 
-def model_sizes(model: StateSpaceModel | TransferMatrixModel) -> tuple[int, int, int]:
+def model_sizes(model: StateSpaceModel | TransferMatrixModel | StepResponseModel) -> tuple[int, int, int]:
     """Return ``(states, inputs, outputs)`` of a posted model (see the module notes)."""
     if isinstance(model, StateSpaceModel):
         inputs = len(model.b[0]) if model.b else 0
         return len(model.a), inputs, len(model.c)
+    if isinstance(model, StepResponseModel):
+        grid = [*model.responses, *(model.disturbance_responses or [])]
+        columns = max((len(row) for row in grid), default=0)
+        states = 0
+        for j in range(columns):  # one shift register per input, as long as its longest table
+            pairs = [row[j] for row in grid if j < len(row) and row[j] is not None]
+            states += max((len(pair.coefficients) + int(pair.integrating) for pair in pairs), default=0)
+        return states, max((len(row) for row in model.responses), default=0), len(model.responses)
     rows = model.elements
     outputs = len(rows)
     inputs = max((len(row) for row in rows), default=0)

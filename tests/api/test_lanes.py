@@ -129,3 +129,29 @@ def test_random_requests_sort_by_their_size(rng):
     works = [request_work(DesignRequest.model_validate(r)) for r in (small, medium)]
     assert works[0] < works[1] < HEAVY_WORK
     assert np.isfinite(works).all()
+
+
+@pytest.mark.parametrize("name", ["design_request.json", "design_request_transfer_matrix.json", "step_response"])
+def test_every_model_kind_has_a_work_estimate(example, name):
+    from service.pipeline.caps import model_sizes
+    from service.pipeline.examples import load_example
+
+    if name == "step_response":  # a 2 x 2 table (invented numbers), one pair integrating
+        pair = {"coefficients": [0.0, 0.4, 0.7, 0.9, 1.0]}
+        body = {
+            **example,
+            "model": {
+                "kind": "step_response",
+                "responses": [[pair, None], [pair, {**pair, "integrating": True}]],
+                "sample_time": 1.0,
+            },
+            "weights": {"output": [1.0, 1.0], "move": [0.1, 0.1]},
+        }
+    else:
+        body = load_example(name)
+    request = DesignRequest.model_validate(body)
+    states, inputs, outputs = model_sizes(request.model)
+    assert states >= 1 and inputs >= 1 and outputs >= 1
+    if name == "step_response":
+        assert (states, inputs, outputs) == (5 + 6, 2, 2)  # one register per input, its longest table
+    assert 0 < request_work(request) < HEAVY_WORK
