@@ -21,8 +21,8 @@ from pydantic import BaseModel
 
 from service.schemas.design import DesignRequest
 from service.schemas.model import StateSpaceModel, TransferMatrixModel
-from service.schemas.step_response import StepResponseModel
 from service.schemas.simulate import SimulateRequest
+from service.schemas.step_response import StepResponseModel
 from service.schemas.sweep import SweepRequest
 
 __all__ = ["HEAVY_WORK", "design_work", "model_sizes", "request_work"]
