@@ -14,11 +14,11 @@ schemas, so replacing one takes milliseconds, not the second a fresh interpreter
 
 Two lanes.  Before a request runs, its work is estimated from its sizes
 (:func:`service.pipeline.caps.request_work`).  Work above ``MOVECAST_HEAVY_WORK`` goes to
-the heavy lane (``MOVECAST_HEAVY_SOLVER_PROCESSES``, one by default, running at a lower
-CPU priority), everything else to the light lane (``MOVECAST_SOLVER_PROCESSES``, one per
-core by default).  A small request therefore never queues behind a large one, and while
-the heavy lane is busy the operating system gives the light lane's processes the CPU
-first.  At most ``MOVECAST_HEAVY_QUEUE`` heavy requests wait for the heavy lane; more are
+the heavy lane (``MOVECAST_HEAVY_SOLVER_PROCESSES``, one by default), everything else to
+the light lane (``MOVECAST_SOLVER_PROCESSES``, one per core by default).  A small request
+therefore never queues behind a large one.  With ``MOVECAST_HEAVY_NICENESS`` (for example
+10, on a host of its own) the operating system also gives the light lane's processes the
+CPU first while the heavy lane is busy.  At most ``MOVECAST_HEAVY_QUEUE`` heavy requests wait for the heavy lane; more are
 answered 503 at once with ``Retry-After``, so that waiting heavy requests cannot hold every
 thread of the serving process.
 
@@ -245,7 +245,9 @@ class SolverPool:
 _pools: dict[tuple[int, str, int, int, int | None], SolverPool] = {}
 _pools_lock = threading.Lock()
 
-#: Niceness added to the heavy lane's solver processes.
+#: Niceness to add to the heavy lane's solver processes on a dedicated host
+#: (``MOVECAST_HEAVY_NICENESS``; 0 by default, since on a shared host it would also yield to
+#: every other tenant).
 HEAVY_NICENESS = 10
 
 
@@ -310,7 +312,7 @@ def solver_lanes(settings: Any) -> Lanes:
         heavy=solver_pool(
             processes=settings.heavy_solver_processes,
             lane="heavy",
-            niceness=HEAVY_NICENESS,
+            niceness=settings.heavy_niceness,
             max_waiting=settings.heavy_queue,
         ),
         heavy_work=float(settings.heavy_work),
@@ -333,7 +335,7 @@ class Budget:
         argument when that is a request model (:func:`service.pipeline.caps.request_work`).
         """
         if work is None:
-            work = float(request_work(args[0])) if args and isinstance(args[0], BaseModel) else 0.0
+            work = request_work(args[0]) if args and isinstance(args[0], BaseModel) else 0.0
         pool, lane = self.lanes.pick(work)
         value, spent = pool.run(call, args, deadline=self.deadline, seconds=self.seconds)
         SOLVER_SECONDS.labels(operation=operation).observe(spent)

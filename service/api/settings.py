@@ -72,6 +72,13 @@ class Settings(BaseSettings):
         gt=0,
         description="Estimated operations above which a request runs in the heavy lane.",
     )
+    heavy_niceness: int = Field(
+        default=0,
+        ge=0,
+        le=19,
+        description="Niceness added to the heavy lane's solver processes (10 gives small requests the CPU first "
+        "on a host of its own).",
+    )
     heavy_queue: int = Field(
         default=8, ge=1, le=1000, description="Most heavy requests waiting for the heavy lane; more get 503."
     )

@@ -31,6 +31,8 @@ __all__ = ["HEAVY_WORK", "design_work", "model_sizes", "request_work"]
 #: bundled example takes about 1e5, the large benchmark case (200 states, 20 x 20,
 #: Hp 200, Hu 50) about 2e9.
 HEAVY_WORK = 50_000_000
+#: Sizes past any cap are counted as this (the caps reject them in the solver process).
+_MOST_STATES = 10**9
 
 
 def model_sizes(model: StateSpaceModel | TransferMatrixModel | StepResponseModel) -> tuple[int, int, int]:
@@ -43,8 +45,12 @@ def model_sizes(model: StateSpaceModel | TransferMatrixModel | StepResponseModel
         columns = max((len(row) for row in grid), default=0)
         states = 0
         for j in range(columns):  # one shift register per input, as long as its longest table
-            pairs = [row[j] for row in grid if j < len(row) and row[j] is not None]
-            states += max((len(pair.coefficients) + int(pair.integrating) for pair in pairs), default=0)
+            lengths = [
+                len(pair.coefficients) + int(pair.integrating)
+                for row in grid
+                if j < len(row) and (pair := row[j]) is not None
+            ]
+            states += max(lengths, default=0)
         return states, max((len(row) for row in model.responses), default=0), len(model.responses)
     rows = model.elements
     outputs = len(rows)
@@ -54,8 +60,9 @@ def model_sizes(model: StateSpaceModel | TransferMatrixModel | StepResponseModel
         for element in row:
             if element is None:
                 continue
-            delay = math.ceil(element.dead_time / model.sample_time)
-            states += len(element.time_constants) + int(element.integrating) + delay
+            delay = element.dead_time / model.sample_time
+            samples = math.ceil(delay) if math.isfinite(delay) and delay < _MOST_STATES else _MOST_STATES
+            states += len(element.time_constants) + int(element.integrating) + samples
     return states, inputs, outputs
 
 
@@ -83,7 +90,7 @@ def _design_request_work(request: DesignRequest) -> int:
     return work
 
 
-def request_work(request: BaseModel) -> int:
+def request_work(request: BaseModel) -> float:
     """Estimated operations of a /design (or a batch item), /design/sweep or /simulate request.
 
     Parameters
@@ -93,19 +100,23 @@ def request_work(request: BaseModel) -> int:
 
     Returns
     -------
-    int
-        For /simulate the design plus ``steps`` times the per-step products (the free
+    float
+        ``inf`` when the sizes are beyond any cap (the request is then refused by the caps in
+        its solver process, in the heavy lane).  For /simulate the design plus ``steps`` times the per-step products (the free
         prediction, the move and the plant: ``2 Hp p (n + m) + 2 m Hp p + 4 n (n + m)``);
         a sweep adds up its designs.  Requests that extend the /design request (an export)
         count as their design.
     """
-    if isinstance(request, SimulateRequest):
-        n, m, p = model_sizes(request.model)
-        rows = request.horizons.prediction * p
-        per_step = 2 * rows * (n + m) + 2 * m * rows + 4 * n * (n + m)
-        return _design_request_work(request) + request.scenario.steps * per_step
-    if isinstance(request, DesignRequest):
-        return _design_request_work(request)
-    if isinstance(request, SweepRequest):
-        return len(request.values) * _design_request_work(request.design)
-    return 0
+    try:
+        if isinstance(request, SimulateRequest):
+            n, m, p = model_sizes(request.model)
+            rows = request.horizons.prediction * p
+            per_step = 2 * rows * (n + m) + 2 * m * rows + 4 * n * (n + m)
+            return float(_design_request_work(request) + request.scenario.steps * per_step)
+        if isinstance(request, DesignRequest):
+            return float(_design_request_work(request))
+        if isinstance(request, SweepRequest):
+            return float(len(request.values) * _design_request_work(request.design))
+    except OverflowError:
+        return math.inf
+    return 0.0

@@ -54,7 +54,8 @@ def test_both_lanes_give_the_same_answer(make_client, request_name):
 
 
 def test_a_light_call_is_answered_while_the_heavy_lane_is_busy():
-    lanes = Lanes(light=SolverPool(processes=1), heavy=SolverPool(processes=1), heavy_work=100.0)
+    heavy = SolverPool(processes=1, niceness=HEAVY_NICENESS)
+    lanes = Lanes(light=SolverPool(processes=1), heavy=heavy, heavy_work=100.0)
     try:
         lanes.start()
         heavy_pool, lane = lanes.pick(1e9)
@@ -103,7 +104,7 @@ def test_a_full_heavy_lane_is_a_503_problem(make_client, example):
     # Every request heavy, room for one to wait; the heavy solver and the waiting place are
     # taken by calls made here on the app's own heavy pool.
     client = make_client(heavy_work=1.0, heavy_queue=1)
-    pool = solver_pool(processes=1, lane="heavy", niceness=HEAVY_NICENESS, max_waiting=1)
+    pool = solver_pool(processes=1, lane="heavy", niceness=0, max_waiting=1)
     held = [
         threading.Thread(
             target=pool.run, args=(time.sleep, (2.0,)), kwargs={"deadline": time.monotonic() + 60, "seconds": 60}
@@ -155,3 +156,24 @@ def test_every_model_kind_has_a_work_estimate(example, name):
     if name == "step_response":
         assert (states, inputs, outputs) == (5 + 6, 2, 2)  # one register per input, its longest table
     assert 0 < request_work(request) < HEAVY_WORK
+
+
+def test_sizes_beyond_every_cap_are_heavy_not_an_error(example):
+    # A dead time of 1e300 time units at a sample time of 1e-300: no finite sample count.
+    body = {
+        **example,
+        "model": {
+            "kind": "transfer_matrix",
+            "elements": [[{"gain": 1.0, "time_constants": [1.0], "dead_time": 1e300}]],
+            "sample_time": 1e-300,
+        },
+        "weights": {"output": [1.0], "move": [0.1]},
+    }
+    assert request_work(DesignRequest.model_validate(body)) > HEAVY_WORK
+    huge = {**example, "horizons": {"prediction": 10**200, "control": 10**200}}
+    assert request_work(DesignRequest.model_validate(huge)) > HEAVY_WORK
+
+
+def test_a_request_beyond_the_caps_is_still_a_422(client, example):
+    example["horizons"] = {"prediction": 10**200, "control": 10**200}
+    assert client.post("/design", json=example).status_code == 422
