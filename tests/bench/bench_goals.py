@@ -163,8 +163,8 @@ def http_goals(floor: float, large: dict[str, Any], *, seconds: float, rounds: i
     command = [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port", str(port)]
     server = subprocess.Popen(command, cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     try:
-        if not wait_until_healthy(base, server, timeout=60.0):
-            print(f"  the server did not answer GET /healthz within 60 s (exit status {server.poll()})")
+        if not wait_until_healthy(base, server, timeout=180.0):
+            print(f"  the server did not answer GET /healthz within 180 s (exit status {server.poll()})")
             return
         large_body = json.dumps(large).encode()
         small_body = json.dumps(design_body(random_plant_for(CASES["small"]))).encode()
