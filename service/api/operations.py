@@ -34,11 +34,12 @@ from fastapi.responses import JSONResponse
 from service.api import metrics
 from service.api.compute import (
     Cancelled,
+    HeavyLaneFull,
     SolverCrashed,
     SolverDied,
     SolverOutOfMemory,
     TimeLimitExceeded,
-    solver_pool,
+    solver_lanes,
 )
 from service.api.middleware import (
     REQUEST_ID_HEADER,
@@ -152,7 +153,19 @@ def _install_handlers(app: FastAPI) -> None:
             "client-closed", CLIENT_CLOSED, "The client closed the connection before the answer.", request.url.path
         )
 
+    async def _lane_full(request: Request, exc: Exception) -> JSONResponse:
+        assert isinstance(exc, HeavyLaneFull)
+        return problem_response(
+            "busy",
+            503,
+            f"The service's lane for large computations is full ({exc.waiting} large requests are "
+            "already waiting). Retry later, or make the request smaller.",
+            request.url.path,
+            headers={"Retry-After": "5"},
+        )
+
     app.add_exception_handler(TimeLimitExceeded, _time_limit)
+    app.add_exception_handler(HeavyLaneFull, _lane_full)
     app.add_exception_handler(SolverDied, _died)
     app.add_exception_handler(SolverOutOfMemory, _memory)
     app.add_exception_handler(SolverCrashed, _crashed)
@@ -194,7 +207,7 @@ def _wrap_lifespan(app: FastAPI, settings: Settings) -> None:
                 "no API key configured (MOVECAST_API_KEYS, MOVECAST_API_KEYS_FILE): "
                 "every endpoint is open to anyone who can reach this port"
             )
-        solver_pool(processes=settings.solver_processes).start()
+        solver_lanes(settings).start()
         async with inner(app_) as state:
             undo = _sigterm_hook(app_)
             try:

@@ -52,6 +52,7 @@ _TYPES = {
     "out-of-memory": "Not enough memory for this request",
     "forbidden-origin": "Origin not allowed",
     "client-closed": "Client closed the request",
+    "busy": "Too many large requests waiting",
 }
 
 
