@@ -42,7 +42,10 @@ def run_server(settings: Settings, *, host: str, port: int, workers: int) -> int
     """Serve until stopped; return the exit status (0 after a graceful shutdown)."""
     import uvicorn
 
+    from service.api.logs import log_warnings
     from service.api.protocol import GuardedH11Protocol
+
+    log_warnings()
 
     # uvicorn restores the handlers it found and raises the stopping signal again after a
     # graceful shutdown; with these in place that ends in a clean exit, not a kill.
