@@ -9,6 +9,7 @@ from fastapi import FastAPI
 
 from service import __version__
 from service.api.deps import get_settings
+from service.api.docs import install_docs
 from service.api.operations import install_operations
 from service.api.problems import install_problem_handlers
 from service.api.routes import batch, compare, design, export, health, simulate, sweep, workbench
@@ -42,11 +43,14 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         version=__version__,
         description=DESCRIPTION,
         lifespan=lifespan,
+        docs_url=None,
+        redoc_url=None,
     )
     app.state.settings = chosen
     app.state.ready = False
     app.dependency_overrides[get_settings] = lambda: chosen
     install_problem_handlers(app)
+    install_docs(app)
     app.include_router(design.router)
     app.include_router(sweep.router)
     app.include_router(export.router)

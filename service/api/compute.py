@@ -12,37 +12,60 @@ settings still reject what is plainly too big up front, with a 422 naming the fi
 Solver processes start from a fork server that has already imported numpy, scipy and the
 schemas, so replacing one takes milliseconds, not the second a fresh interpreter takes.
 
-    budget = Budget(pool, seconds=30.0)
+Two lanes.  Before a request runs, its work is estimated from its sizes
+(:func:`service.pipeline.caps.request_work`).  Work above ``MOVECAST_HEAVY_WORK`` goes to
+the heavy lane (``MOVECAST_HEAVY_SOLVER_PROCESSES``, one by default), everything else to
+the light lane (``MOVECAST_SOLVER_PROCESSES``, one per core by default).  A small request
+therefore never queues behind a large one.  With ``MOVECAST_HEAVY_NICENESS`` (for example
+10, on a host of its own) the operating system also gives the light lane's processes the
+CPU first while the heavy lane is busy.  At most ``MOVECAST_HEAVY_QUEUE`` heavy requests wait for the heavy lane; more are
+answered 503 at once with ``Retry-After``, so that waiting heavy requests cannot hold every
+thread of the serving process.
+
+    budget = Budget(lanes, seconds=30.0)
     response = budget.run(run_design, request, caps, operation="design")
 """
 
 from __future__ import annotations
 
+import asyncio
 import atexit
+import logging
 import multiprocessing
 import os
 import queue
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import AsyncIterator, Callable
 from dataclasses import dataclass
 from multiprocessing.connection import Connection
 from multiprocessing.process import BaseProcess
 from typing import Annotated, Any, TypeVar
 
-from fastapi import Depends
+from fastapi import Depends, Request
+from pydantic import BaseModel
+from starlette.types import Receive
 
 from service.api.deps import SettingsDep
-from service.api.metrics import SOLVER_SECONDS
+from service.api.metrics import LANE_REQUESTS, SOLVER_SECONDS
 from service.api.solver_worker import rebuild_error, serve_calls
+from service.pipeline.caps import request_work
 
 __all__ = [
+    "HEAVY_NICENESS",
     "Budget",
     "BudgetDep",
+    "Cancelled",
+    "HeavyLaneFull",
+    "Lanes",
     "SolverCrashed",
+    "SolverDied",
+    "SolverOutOfMemory",
     "SolverPool",
     "TimeLimitExceeded",
+    "default_solver_processes",
     "get_budget",
+    "solver_lanes",
     "solver_pool",
 ]
 
@@ -62,7 +85,42 @@ class TimeLimitExceeded(Exception):
 
 
 class SolverCrashed(Exception):
-    """A solver process died or failed in an unexpected way (it has been replaced)."""
+    """The call raised something other than a movecast error (its traceback is in the log)."""
+
+
+class SolverDied(SolverCrashed):
+    """The solver process died while running the call (killed, out of memory); replaced."""
+
+
+class SolverOutOfMemory(Exception):
+    """The call ran out of memory in its solver process (``MemoryError``)."""
+
+
+class Cancelled(Exception):
+    """The request's client went away; its call was stopped and its solver replaced."""
+
+
+#: Seconds between two looks at a request's cancellation while it waits or runs.
+_POLL_SECONDS = 0.05
+log = logging.getLogger("movecast.compute")
+#: Warnings raised inside solver calls (numpy overflow and the like), one JSON line each.
+solver_log = logging.getLogger("movecast.solver")
+
+
+class HeavyLaneFull(Exception):
+    """The heavy lane has as many requests waiting as it accepts; retry later."""
+
+    def __init__(self, waiting: int) -> None:
+        self.waiting = waiting
+        super().__init__(f"{waiting} heavy requests are already waiting")
+
+
+def default_solver_processes() -> int:
+    """One light-lane solver process per core this process may run on."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # not on Linux
+        return max(1, os.cpu_count() or 1)
 
 
 def _context() -> multiprocessing.context.BaseContext:
@@ -88,13 +146,22 @@ class SolverPool:
         Number of solver processes.
     blas_threads : int
         BLAS/OpenMP threads in each solver process.
+    niceness : int
+        Added to each solver process's CPU niceness (0: as the serving process).
+    max_waiting : int or None
+        Most calls waiting for a free solver; one more raises :class:`HeavyLaneFull`.
 
     Processes start on first use; :meth:`close` stops them (also at interpreter exit).
     """
 
-    def __init__(self, *, processes: int, blas_threads: int = 1) -> None:
+    def __init__(
+        self, *, processes: int, blas_threads: int = 1, niceness: int = 0, max_waiting: int | None = None
+    ) -> None:
         self.processes = processes
         self.blas_threads = blas_threads
+        self.niceness = niceness
+        self.max_waiting = max_waiting
+        self._waiting = 0
         self._idle: queue.Queue[_Solver] = queue.Queue()
         self._lock = threading.Lock()
         self._started = False
@@ -104,7 +171,10 @@ class SolverPool:
     def _spawn(self) -> _Solver:
         parent, child = self._context.Pipe(duplex=True)
         process = self._context.Process(
-            target=serve_calls, args=(child, self.blas_threads), name="movecast-solver", daemon=True
+            target=serve_calls,
+            args=(child, self.blas_threads, self.niceness),
+            name="movecast-solver",
+            daemon=True,
         )
         process.start()
         child.close()
@@ -125,8 +195,76 @@ class SolverPool:
             solver.process.kill()
         solver.process.join(timeout=5)
 
-    def run(self, call: Callable[..., T], args: tuple[Any, ...], *, deadline: float, seconds: float) -> tuple[T, float]:
+    def _take(self, deadline: float, seconds: float, cancel: threading.Event | None) -> _Solver:
+        """An idle, living solver (a dead one found idle is replaced first).
+
+        Raises :class:`HeavyLaneFull` when ``max_waiting`` calls already wait for this pool.
+        """
+        try:
+            solver = self._idle.get_nowait()
+        except queue.Empty:
+            return self._wait_for_solver(deadline, seconds, cancel)
+        if solver.process.is_alive() and not solver.conn.poll(0):
+            return solver
+        log.warning("an idle solver process had died (exit code %s); replaced", solver.process.exitcode)
+        self._replace(solver)
+        return self._wait_for_solver(deadline, seconds, cancel)
+
+    def _wait_for_solver(self, deadline: float, seconds: float, cancel: threading.Event | None) -> _Solver:
+        with self._lock:
+            if self.max_waiting is not None and self._waiting >= self.max_waiting:
+                raise HeavyLaneFull(self._waiting)
+            self._waiting += 1
+        try:
+            return self._poll_idle(deadline, seconds, cancel)
+        finally:
+            with self._lock:
+                self._waiting -= 1
+
+    def _poll_idle(self, deadline: float, seconds: float, cancel: threading.Event | None) -> _Solver:
+        while True:
+            if cancel is not None and cancel.is_set():
+                raise Cancelled
+            left = deadline - time.monotonic()
+            if left <= 0:
+                raise TimeLimitExceeded(seconds, queued=True)
+            try:
+                solver = self._idle.get(timeout=min(left, _POLL_SECONDS) if cancel is not None else left)
+            except queue.Empty:
+                continue
+            if solver.process.is_alive() and not solver.conn.poll(0):
+                return solver
+            log.warning("an idle solver process had died (exit code %s); replaced", solver.process.exitcode)
+            self._replace(solver)
+
+    def _replace(self, solver: _Solver) -> None:
+        self._retire(solver)
+        if not self._closed:
+            self._idle.put(self._spawn())
+
+    def _wait(self, solver: _Solver, deadline: float, seconds: float, cancel: threading.Event | None) -> Any:
+        while True:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                raise TimeLimitExceeded(seconds, queued=False)
+            if solver.conn.poll(min(left, _POLL_SECONDS) if cancel is not None else left):
+                return solver.conn.recv()
+            if cancel is not None and cancel.is_set():
+                raise Cancelled
+
+    def run(
+        self,
+        call: Callable[..., T],
+        args: tuple[Any, ...],
+        *,
+        deadline: float,
+        seconds: float,
+        cancel: threading.Event | None = None,
+    ) -> tuple[T, float]:
         """Run ``call(*args)`` in a solver before ``deadline`` (``time.monotonic``).
+
+        A solver found dead while idle is replaced before it gets the call; a call whose
+        solver dies before it could be sent is sent once more, to a fresh solver.
 
         Returns
         -------
@@ -138,40 +276,54 @@ class SolverPool:
         TimeLimitExceeded
             No solver was free in time, or the call did not finish in time (its solver is
             killed and replaced).
+        Cancelled
+            ``cancel`` was set (the client left): the call is stopped, its solver replaced.
+        SolverDied
+            The solver process died during the call (replaced).
+        SolverOutOfMemory
+            The call raised ``MemoryError`` in the solver.
         SolverCrashed
-            The solver died or raised something other than a movecast error.
+            The call raised something other than a movecast error (traceback logged).
         MovecastError
             Whatever the call raised on purpose (InvalidRequest, NumericalError).
         """
-        if deadline <= time.monotonic():
-            raise TimeLimitExceeded(seconds, queued=True)
         self.start()
-        try:
-            solver = self._idle.get(timeout=max(deadline - time.monotonic(), 0.0))
-        except queue.Empty:
-            raise TimeLimitExceeded(seconds, queued=True) from None
+        for attempt in (1, 2):
+            solver = self._take(deadline, seconds, cancel)
+            try:
+                solver.conn.send((call, args))
+            except (OSError, EOFError):
+                log.warning(
+                    "a solver process died before its call was sent; %s", "retrying" if attempt == 1 else "giving up"
+                )
+                self._replace(solver)
+                if attempt == 2:
+                    raise SolverDied("the solver process stopped before the call") from None
+                continue
+            break
         healthy = False
         try:
             try:
-                solver.conn.send((call, args))
-                if not solver.conn.poll(max(deadline - time.monotonic(), 0.0)):
-                    raise TimeLimitExceeded(seconds, queued=False)
-                outcome = solver.conn.recv()
+                outcome = self._wait(solver, deadline, seconds, cancel)
             except (EOFError, OSError) as exc:
-                raise SolverCrashed("the solver process stopped") from exc
-            if outcome[0] == "crash":
-                raise SolverCrashed(f"the solver raised {outcome[1]}")
+                raise SolverDied(f"the solver process stopped (exit code {solver.process.exitcode})") from exc
             healthy = True
         finally:
             if healthy:
                 self._idle.put(solver)
             else:
-                self._retire(solver)
-                if not self._closed:
-                    self._idle.put(self._spawn())
-        if outcome[0] == "ok":
-            return outcome[1], outcome[2]
-        raise rebuild_error(outcome[1], outcome[2], outcome[3])
+                self._replace(solver)
+        *result, caught = outcome
+        for category, message in caught:
+            solver_log.warning("%s: %s", category, message, extra={"category": category})
+        if result[0] == "ok":
+            return result[1], result[2]
+        if result[0] == "memory":
+            raise SolverOutOfMemory("the solver ran out of memory")
+        if result[0] == "crash":
+            log.error("the solver raised %s", result[1], extra={"exception_type": result[1], "traceback": result[2]})
+            raise SolverCrashed(f"the solver raised {result[1]}")
+        raise rebuild_error(result[1], result[2], result[3])
 
     def close(self) -> None:
         """Stop every idle solver; busy ones stop when their pipe closes."""
@@ -184,8 +336,13 @@ class SolverPool:
                 return
 
 
-_pools: dict[tuple[int, int], SolverPool] = {}
+_pools: dict[tuple[int, str, int, int, int | None], SolverPool] = {}
 _pools_lock = threading.Lock()
+
+#: Niceness to add to the heavy lane's solver processes on a dedicated host
+#: (``MOVECAST_HEAVY_NICENESS``; 0 by default, since on a shared host it would also yield to
+#: every other tenant).
+HEAVY_NICENESS = 10
 
 
 def _close_all() -> None:
@@ -193,16 +350,25 @@ def _close_all() -> None:
         pool.close()
 
 
-def solver_pool(*, processes: int, blas_threads: int | None = None) -> SolverPool:
-    """The serving process's pool of that size (one per process, shared by its apps)."""
+def solver_pool(
+    *,
+    processes: int,
+    blas_threads: int | None = None,
+    lane: str = "light",
+    niceness: int = 0,
+    max_waiting: int | None = None,
+) -> SolverPool:
+    """The serving process's pool of that lane and size (one per process, shared by its apps)."""
     threads = blas_threads if blas_threads is not None else _blas_threads_from_env()
     with _pools_lock:
-        key = (os.getpid(), processes)
+        key = (os.getpid(), lane, processes, niceness, max_waiting)
         pool = _pools.get(key)
         if pool is None:
             if not _pools:
                 atexit.register(_close_all)
-            pool = _pools[key] = SolverPool(processes=processes, blas_threads=threads)
+            pool = _pools[key] = SolverPool(
+                processes=processes, blas_threads=threads, niceness=niceness, max_waiting=max_waiting
+            )
         return pool
 
 
@@ -214,25 +380,89 @@ def _blas_threads_from_env() -> int:
         return 1
 
 
-class Budget:
-    """The compute time left to one request; every solver call of the request draws on it."""
+@dataclass(frozen=True)
+class Lanes:
+    """The light and the heavy pool, and the work that sends a request to the heavy one."""
 
-    def __init__(self, pool: SolverPool, *, seconds: float) -> None:
-        self.pool = pool
+    light: SolverPool
+    heavy: SolverPool
+    heavy_work: float
+
+    def pick(self, work: float) -> tuple[SolverPool, str]:
+        """The pool for a request of ``work`` operations, and the lane's name."""
+        return (self.heavy, "heavy") if work > self.heavy_work else (self.light, "light")
+
+    def start(self) -> None:
+        """Start both pools' processes now (idempotent)."""
+        self.light.start()
+        self.heavy.start()
+
+
+def solver_lanes(settings: Any) -> Lanes:
+    """The serving process's two lanes for these settings (``service.api.settings.Settings``)."""
+    light = settings.solver_processes or default_solver_processes()
+    return Lanes(
+        light=solver_pool(processes=light, lane="light"),
+        heavy=solver_pool(
+            processes=settings.heavy_solver_processes,
+            lane="heavy",
+            niceness=settings.heavy_niceness,
+            max_waiting=settings.heavy_queue,
+        ),
+        heavy_work=float(settings.heavy_work),
+    )
+
+
+async def _watch_disconnect(receive: Receive, cancel: threading.Event) -> None:
+    """Set ``cancel`` when the client goes away (the ASGI server says ``http.disconnect``)."""
+    while True:
+        message = await receive()
+        if message["type"] == "http.disconnect":
+            cancel.set()
+            return
+
+
+class Budget:
+    """The compute time left to one request; every solver call of the request draws on it.
+
+    ``cancel`` is set when the request's client goes away: the call running then is stopped
+    (its solver killed and replaced) and no further call starts.
+    """
+
+    def __init__(self, lanes: Lanes | SolverPool, *, seconds: float, cancel: threading.Event | None = None) -> None:
+        self.lanes = lanes if isinstance(lanes, Lanes) else Lanes(light=lanes, heavy=lanes, heavy_work=float("inf"))
+        self.pool = self.lanes.light
         self.seconds = seconds
         self.deadline = time.monotonic() + seconds
+        self.cancel = cancel
 
-    def run(self, call: Callable[..., T], *args: Any, operation: str) -> T:
-        """Run ``call(*args)`` in a solver process within the budget; record its time."""
-        value, spent = self.pool.run(call, args, deadline=self.deadline, seconds=self.seconds)
+    def run(self, call: Callable[..., T], *args: Any, operation: str, work: float | None = None) -> T:
+        """Run ``call(*args)`` in a solver process of its lane within the budget; record its time.
+
+        ``work`` (operations) chooses the lane; by default it is estimated from the first
+        argument when that is a request model (:func:`service.pipeline.caps.request_work`).
+        """
+        if work is None:
+            work = request_work(args[0]) if args and isinstance(args[0], BaseModel) else 0.0
+        pool, lane = self.lanes.pick(work)
+        value, spent = pool.run(call, args, deadline=self.deadline, seconds=self.seconds, cancel=self.cancel)
         SOLVER_SECONDS.labels(operation=operation).observe(spent)
+        LANE_REQUESTS.labels(lane=lane).inc()
         return value
 
 
-def get_budget(settings: SettingsDep) -> Budget:
-    """A fresh budget of ``request_timeout_seconds`` for this request."""
-    pool = solver_pool(processes=settings.solver_processes)
-    return Budget(pool, seconds=settings.request_timeout_seconds)
+async def get_budget(settings: SettingsDep, request: Request) -> AsyncIterator[Budget]:
+    """A fresh budget of ``request_timeout_seconds`` over the two lanes, cancelled if the client leaves.
+
+    The watch runs on the event loop (it only awaits the ASGI ``http.disconnect`` message);
+    the handler, in its worker thread, finds the budget cancelled.
+    """
+    cancel = threading.Event()
+    watcher = asyncio.ensure_future(_watch_disconnect(request.receive, cancel))
+    try:
+        yield Budget(solver_lanes(settings), seconds=settings.request_timeout_seconds, cancel=cancel)
+    finally:
+        watcher.cancel()
 
 
 BudgetDep = Annotated[Budget, Depends(get_budget)]

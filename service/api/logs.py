@@ -13,9 +13,10 @@ import contextvars
 import json
 import logging
 import time
-from typing import Any
+import warnings
+from typing import Any, TextIO
 
-__all__ = ["JsonFormatter", "RequestIdFilter", "logging_config", "request_id_var"]
+__all__ = ["JsonFormatter", "RequestIdFilter", "log_warnings", "logging_config", "request_id_var"]
 
 #: The id of the request being answered ("" outside a request).
 request_id_var: contextvars.ContextVar[str] = contextvars.ContextVar("movecast_request_id", default="")
@@ -79,3 +80,27 @@ def logging_config(level: str) -> dict[str, Any]:
         },
         "root": {"level": upper, "handlers": ["stderr"]},
     }
+
+
+def _show_warning(
+    message: Warning | str,
+    category: type[Warning],
+    filename: str,
+    lineno: int,
+    file: TextIO | None = None,
+    line: str | None = None,
+) -> None:
+    logging.getLogger("movecast.warnings").warning(
+        "%s: %s", category.__name__, message, extra={"category": category.__name__}
+    )
+
+
+def log_warnings() -> None:
+    """Send Python warnings (numpy's RuntimeWarning and the like) to the JSON log.
+
+    One ``movecast.warnings`` line per warning with its category and message, never the raw
+    ``file:line: ...`` text with source paths that Python writes to standard error.  Warnings
+    raised inside solver calls travel back with their outcome and are logged by
+    ``movecast.solver`` the same way.
+    """
+    warnings.showwarning = _show_warning

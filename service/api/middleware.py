@@ -15,6 +15,8 @@ import uuid
 from typing import Any
 
 from starlette.datastructures import Headers, MutableHeaders
+from starlette.middleware.cors import CORSMiddleware
+from starlette.responses import Response
 from starlette.routing import BaseRoute, Match
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
@@ -30,6 +32,7 @@ except ImportError:  # pragma: no cover - older FastAPI lists every route in app
 __all__ = [
     "REQUEST_ID_HEADER",
     "BodyLimitMiddleware",
+    "ProblemCORSMiddleware",
     "RequestContextMiddleware",
     "flat_routes",
     "method_label",
@@ -207,6 +210,8 @@ class BodyLimitMiddleware:
         pending: list[Message] = []
         while True:
             message = await receive()
+            if message["type"] == "http.disconnect":
+                return  # the client left before its body was in: nothing to answer
             if message["type"] != "http.request":
                 pending.append(message)
                 break
@@ -224,3 +229,26 @@ class BodyLimitMiddleware:
             return await receive()
 
         await self.app(scope, replay, send)
+
+
+class ProblemCORSMiddleware(CORSMiddleware):
+    """Starlette's CORS middleware, with a refused preflight answered as a 403 problem.
+
+    Starlette answers a preflight it refuses with ``400 text/plain``; here the answer is
+    problem details naming what was refused (origin, method, headers), CORS headers kept.
+    """
+
+    def preflight_response(self, request_headers: Headers) -> Response:
+        response = super().preflight_response(request_headers)
+        if response.status_code < 400:
+            return response
+        refused = bytes(response.body).decode("utf-8", "replace").removeprefix("Disallowed CORS ")
+        headers = {k: v for k, v in response.headers.items() if k.lower() not in {"content-length", "content-type"}}
+        return problem_response(
+            "forbidden-origin",
+            403,
+            f"This cross-origin request is not allowed here (refused: {refused}). "
+            "The allowed origins are set by MOVECAST_CORS_ORIGINS.",
+            "",
+            headers=headers,
+        )

@@ -19,9 +19,20 @@ from service.errors import FieldProblem, InvalidRequest, NumericalError
 from service.schemas.common import pointer
 from service.schemas.model import MODEL_KINDS
 
-__all__ = ["PROBLEM_JSON", "install_problem_handlers", "problem_body", "problem_response", "validation_problems"]
+__all__ = [
+    "MAX_REPORTED_ERRORS",
+    "PROBLEM_JSON",
+    "BodyProblem",
+    "install_problem_handlers",
+    "problem_body",
+    "problem_response",
+    "validation_problems",
+]
 
 PROBLEM_JSON = "application/problem+json"
+#: Most ``errors`` entries of one problem; the rest are counted in ``omitted_errors``, so a
+#: body with a hundred thousand bad entries cannot make a huge answer.
+MAX_REPORTED_ERRORS = 50
 log = logging.getLogger("movecast.problems")
 
 _TYPES = {
@@ -33,21 +44,48 @@ _TYPES = {
     "unauthorized": "Authentication required",
     "payload-too-large": "Request body too large",
     "time-limit": "Compute time limit exceeded",
+    "unsupported-media-type": "Unsupported media type",
+    "not-acceptable": "Not acceptable",
+    "request-timeout": "Request not received in time",
+    "too-many-connections": "Too many connections",
+    "solver-failed": "The solver process failed",
+    "out-of-memory": "Not enough memory for this request",
+    "forbidden-origin": "Origin not allowed",
+    "client-closed": "Client closed the request",
+    "busy": "Too many large requests waiting",
 }
+
+
+class BodyProblem(Exception):
+    """A body that cannot be read as a request: 400 (malformed) or 415 (not JSON), and its kind."""
+
+    def __init__(self, status: int, kind: str, detail: str, *, headers: dict[str, str] | None = None) -> None:
+        self.status = status
+        self.kind = kind
+        self.detail = detail
+        self.headers = headers
+        super().__init__(detail)
 
 
 def problem_body(
     kind: str, status: int, detail: str, instance: str, problems: Iterable[FieldProblem] = ()
 ) -> dict[str, Any]:
-    """The JSON body of one problem."""
-    return {
+    """The JSON body of one problem: at most :data:`MAX_REPORTED_ERRORS` entries in ``errors``.
+
+    When there are more, ``omitted_errors`` counts the rest (an RFC 9457 extension member).
+    """
+    listed = list(problems)
+    body: dict[str, Any] = {
         "type": f"urn:movecast:problem:{kind}",
         "title": _TYPES[kind],
         "status": status,
         "detail": detail,
         "instance": instance,
-        "errors": [{"pointer": p.pointer, "detail": p.detail} for p in problems],
+        "errors": [{"pointer": p.pointer, "detail": p.detail} for p in listed[:MAX_REPORTED_ERRORS]],
     }
+    if len(listed) > MAX_REPORTED_ERRORS:
+        body["omitted_errors"] = len(listed) - MAX_REPORTED_ERRORS
+    return body
 
 
 def problem_response(
@@ -120,6 +158,10 @@ def install_problem_handlers(app: FastAPI) -> None:
             request.url.path,
             problems,
         )
+
+    @app.exception_handler(BodyProblem)
+    async def _body(request: Request, exc: BodyProblem) -> JSONResponse:
+        return problem_response(exc.kind, exc.status, exc.detail, request.url.path, headers=exc.headers)
 
     @app.exception_handler(InvalidRequest)
     async def _semantic(request: Request, exc: InvalidRequest) -> JSONResponse:

@@ -3,7 +3,7 @@
 With no key configured (``MOVECAST_API_KEYS`` and ``MOVECAST_API_KEYS_FILE`` both empty) the
 service is open and says so in a warning at start-up.  With keys, every path needs one except
 :data:`OPEN_PATHS`: the health endpoints (probes carry no credentials) and the OpenAPI
-document and its pages (the contract is public; it is committed with the code), and the
+document and its pages with their assets under ``/docs/assets/`` (the contract is public; it is committed with the code), and the
 browser workbench (``/`` and :data:`OPEN_PREFIXES`: static files and the bundled examples,
 no data; the page sends a key with every API call it makes).  /metrics is protected like the
 API.  Paths are compared without the ASGI ``root_path`` (a reverse proxy's prefix).
@@ -28,8 +28,9 @@ from service.api.problems import problem_response
 __all__ = ["OPEN_PATHS", "OPEN_PREFIXES", "ApiKeyMiddleware", "KeyRing", "is_open_path", "route_path"]
 
 OPEN_PATHS = frozenset({"/healthz", "/readyz", "/openapi.json", "/docs", "/docs/oauth2-redirect", "/redoc", "/"})
-#: Path prefixes open to anyone: the workbench's static files and bundled examples.
-OPEN_PREFIXES = ("/workbench/",)
+#: Path prefixes open to anyone: the workbench's static files and bundled examples,
+#: and the assets of the /docs page (service.api.docs).
+OPEN_PREFIXES = ("/workbench/", "/docs/assets/")
 REALM = 'Bearer realm="movecast"'
 
 

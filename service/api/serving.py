@@ -1,5 +1,9 @@
 """Run the service under uvicorn: JSON logs, no uvicorn access log, graceful shutdown.
 
+Connections are handled by :class:`service.api.protocol.GuardedH11Protocol` (problem
+details for malformed HTTP, a read deadline, a connection cap); idle kept-alive connections
+close after ``MOVECAST_KEEP_ALIVE_SECONDS``.
+
 ``movecast serve`` sizes the BLAS/OpenMP pools and, with several workers, prepares
 prometheus-client's multiprocess folder *before* numpy or prometheus-client is imported
 (both read their environment once, at import); then it calls :func:`run_server`.
@@ -38,6 +42,11 @@ def run_server(settings: Settings, *, host: str, port: int, workers: int) -> int
     """Serve until stopped; return the exit status (0 after a graceful shutdown)."""
     import uvicorn
 
+    from service.api.logs import log_warnings
+    from service.api.protocol import GuardedH11Protocol
+
+    log_warnings()
+
     # uvicorn restores the handlers it found and raises the stopping signal again after a
     # graceful shutdown; with these in place that ends in a clean exit, not a kill.
     signal.signal(signal.SIGTERM, _ignore)
@@ -52,5 +61,7 @@ def run_server(settings: Settings, *, host: str, port: int, workers: int) -> int
         log_config=logging_config(settings.log_level),
         access_log=False,
         timeout_graceful_shutdown=graceful_shutdown_seconds(settings),
+        http=GuardedH11Protocol,
+        timeout_keep_alive=settings.keep_alive_seconds,
     )
     return 0

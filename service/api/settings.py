@@ -9,6 +9,7 @@ from pydantic import Field, PrivateAttr, SecretStr, field_validator, model_valid
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
 from service.api import settings_checks as checks
+from service.pipeline.caps import HEAVY_WORK
 from service.schemas.common import Caps
 
 __all__ = ["Settings"]
@@ -33,6 +34,11 @@ class Settings(BaseSettings):
     max_prediction_entries: int = Field(
         default=25_000_000, ge=1, description="Most entries of the prediction matrices [Fx Fu G]."
     )
+    max_design_memory_bytes: int = Field(
+        default=384 * 1024 * 1024,
+        ge=1024 * 1024,
+        description="Most estimated memory of one design in the solver, in bytes (fits the 1 GiB pod of deploy/).",
+    )
     max_response_entries: int = Field(
         default=2_000_000, ge=1, description="Most entries of the horizon gain in a response."
     )
@@ -56,8 +62,42 @@ class Settings(BaseSettings):
     request_timeout_seconds: float = Field(
         default=30.0, gt=0, le=3600, description="Compute time limit of one request, queueing included."
     )
-    solver_processes: int = Field(
-        default=1, ge=1, le=64, description="Solver processes per worker (each runs one computation at a time)."
+    read_timeout_seconds: float = Field(
+        default=15.0,
+        gt=0,
+        le=600,
+        description="A request must arrive whole (line, headers, body) within this time of its first byte; else 408.",
+    )
+    keep_alive_seconds: int = Field(
+        default=5, ge=1, le=600, description="An idle kept-alive connection is closed after this time."
+    )
+    max_connections: int = Field(
+        default=256, ge=1, le=100_000, description="Open connections per worker; past it a new one gets 503."
+    )
+    solver_processes: int | None = Field(
+        default=None,
+        ge=1,
+        le=64,
+        description="Light-lane solver processes per worker (each runs one computation at a time); "
+        "default one per core.",
+    )
+    heavy_solver_processes: int = Field(
+        default=1, ge=1, le=64, description="Heavy-lane solver processes per worker (lower CPU priority)."
+    )
+    heavy_work: float = Field(
+        default=HEAVY_WORK,
+        gt=0,
+        description="Estimated operations above which a request runs in the heavy lane.",
+    )
+    heavy_niceness: int = Field(
+        default=0,
+        ge=0,
+        le=19,
+        description="Niceness added to the heavy lane's solver processes (10 gives small requests the CPU first "
+        "on a host of its own).",
+    )
+    heavy_queue: int = Field(
+        default=8, ge=1, le=1000, description="Most heavy requests waiting for the heavy lane; more get 503."
     )
     cors_origins: Annotated[tuple[str, ...], NoDecode] = Field(
         default=(), description="Browser origins allowed by CORS, comma-separated; none by default."
@@ -109,6 +149,7 @@ class Settings(BaseSettings):
             max_prediction_horizon=self.max_prediction_horizon,
             max_hessian_size=self.max_hessian_size,
             max_prediction_entries=self.max_prediction_entries,
+            max_design_memory_bytes=self.max_design_memory_bytes,
             max_response_entries=self.max_response_entries,
             max_sweep_values=self.max_sweep_values,
             max_simulation_steps=self.max_simulation_steps,

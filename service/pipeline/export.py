@@ -25,6 +25,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import FieldProblem, InvalidRequest, NumericalError
+from service.pipeline.csv_cells import text_cell
 from service.pipeline.design import DesignInputs, DesignOutcome, check_design_request, compute_design
 from service.pipeline.estimator import scaled_estimator
 from service.pipeline.fingerprint import fingerprint
@@ -211,9 +212,9 @@ def _labelled(values: NDArray[np.float64], rows: list[str], columns: list[str]) 
 def _table(matrix: LabelledMatrix) -> str:
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\r\n")
-    writer.writerow(["", *matrix.columns])
+    writer.writerow(["", *(text_cell(c) for c in matrix.columns)])
     for name, row in zip(matrix.rows, matrix.values, strict=True):
-        writer.writerow([name, *(repr(v) for v in row)])
+        writer.writerow([text_cell(name), *(repr(v) for v in row)])
     return buffer.getvalue()
 
 

@@ -213,6 +213,11 @@ def _state_space(
     }, []
 
 
+#: Longest dead time accepted, in sample times: far beyond any state cap (each sample of dead
+#: time is a state), and short enough that counting its samples stays exact in floating point.
+MAX_DEAD_TIME_SAMPLES = 10_000
+
+
 def _grid(
     rows: list[list[TransferElementModel | None]],
     where: Where,
@@ -260,6 +265,17 @@ def _grid(
                 problems.append(
                     FieldProblem(
                         pointer(*here, "lead"), "a lead needs at least one time constant (or an integrating element)"
+                    )
+                )
+                out.append(None)
+                continue
+            if el.dead_time > MAX_DEAD_TIME_SAMPLES * sample_time:
+                problems.append(
+                    FieldProblem(
+                        pointer(*here, "dead_time"),
+                        f"a dead time of {el.dead_time:g} is {el.dead_time / sample_time:.3g} sample times; this "
+                        f"service accepts at most {MAX_DEAD_TIME_SAMPLES:,} (and no more than its state cap in "
+                        "dead-time samples). Check its unit against the sample time's",
                     )
                 )
                 out.append(None)

@@ -31,6 +31,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import InvalidRequest, NumericalError
+from service.pipeline.csv_cells import text_cell
 from service.pipeline.design import DesignOutcome, compute_design, design_response, marginal_mode_reports
 from service.pipeline.estimator import scaled_estimator
 from service.pipeline.fingerprint import fingerprint
@@ -482,7 +483,8 @@ def simulation_csv(response: SimulateResponse) -> str:
     run under limits adds ``limits.fallback`` (1 where the step's QP failed and held the last
     input, else 0) and ``limits.active`` (the number of active limits the step lists).
     Numbers are written in Python's shortest round-trip form, so the same response always
-    gives the same bytes and every value reads back exactly.
+    gives the same bytes and every value reads back exactly; header cells a spreadsheet
+    could run as a formula get a leading ``'`` (:func:`~service.pipeline.csv_cells.text_cell`).
     """
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\r\n")
@@ -494,7 +496,7 @@ def simulation_csv(response: SimulateResponse) -> str:
         extra = [["0", "0"] for _ in response.time]
         for row in response.limits.steps:
             extra[row.step] = [str(int(row.fallback)), str(len(row.active))]
-    writer.writerow(header)
+    writer.writerow([text_cell(name) for name in header])
     for t, y, r, u, more in zip(
         response.time, response.outputs, response.setpoints, response.inputs, extra, strict=True
     ):

@@ -2,7 +2,10 @@
 
 Numbers are strict finite floats (integers accepted, booleans and strings refused, NaN and
 infinity refused); matrices travel as lists of rows.  Every request model forbids unknown
-fields, so a misspelt field is an error, never a silent default.
+fields, so a misspelt field is an error, never a silent default, and validates strictly:
+a boolean is ``true`` or ``false`` (never ``0``, ``1`` or ``"yes"``), an integer is a JSON
+integer (never ``"10"``).  Vectors and matrices stop at their first bad entry (``fail_fast``),
+so a list of a hundred thousand bad entries costs one error, not a hundred thousand.
 """
 
 from __future__ import annotations
@@ -21,6 +24,7 @@ __all__ = [
     "Caps",
     "FiniteFloat",
     "Matrix",
+    "MatrixOut",
     "RequestModel",
     "ResponseModel",
     "Vector",
@@ -32,14 +36,20 @@ __all__ = [
 FiniteFloat = Annotated[float, Field(strict=True, allow_inf_nan=False)]
 """A finite real number; JSON integers are accepted, booleans and strings are not."""
 
-Vector = list[FiniteFloat]
-Matrix = list[list[FiniteFloat]]
+Vector = Annotated[list[FiniteFloat], Field(min_length=1, fail_fast=True)]
+"""A non-empty list of numbers of a request (the schema says ``minItems: 1``)."""
+Matrix = Annotated[
+    list[Annotated[list[FiniteFloat], Field(min_length=1, fail_fast=True)]], Field(min_length=1, fail_fast=True)
+]
+"""A non-empty list of non-empty rows of a request."""
+MatrixOut = list[list[float]]
+"""A matrix of a response (may be empty, e.g. no measured disturbances)."""
 
 
 class RequestModel(BaseModel):
-    """Base of request models: unknown fields are rejected."""
+    """Base of request models: unknown fields are rejected, types are strict."""
 
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
 
 
 class ResponseModel(BaseModel):
@@ -61,6 +71,11 @@ class Caps:
     max_hessian_size: int = 4000
     #: Entries of the stacked prediction matrices ``[Fx Fu G]`` (8 bytes each).
     max_prediction_entries: int = 25_000_000
+    #: Peak bytes of one design in the solver process
+    #: (``service.pipeline.estimates.design_memory_bytes``).  The default leaves room, inside
+    #: the 1 GiB memory limit of ``deploy/``, for the serving process, the fork server and the
+    #: solver process's own interpreter and libraries (about 475 MB together, measured).
+    max_design_memory_bytes: int = 384 * 1024 * 1024
     #: Entries of the horizon gain ``Kh`` returned in a response.
     max_response_entries: int = 2_000_000
     #: Values in one tuning sweep.

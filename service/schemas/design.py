@@ -6,7 +6,7 @@ from typing import Annotated, Literal
 
 from pydantic import Field
 
-from service.schemas.common import FiniteFloat, Matrix, RequestModel, ResponseModel
+from service.schemas.common import FiniteFloat, MatrixOut, RequestModel, ResponseModel
 from service.schemas.estimator import EstimatorRequest
 from service.schemas.limits import LimitCheckReport, LimitsRequest
 from service.schemas.model import PlantModel
@@ -99,11 +99,11 @@ class GainReport(ResponseModel):
     weights, not the units of the gains).
     """
 
-    horizon: Matrix = Field(description="Kh, m x (Hp-Hw+1)*p: gain on the free-response error E.")
-    state: Matrix = Field(description="Kx, m x n: gain on the state x(k).")
-    previous_input: Matrix = Field(description="Ku, m x m: gain on the previous input u(k-1).")
-    setpoint: Matrix = Field(description="Kr, m x p: gain on a constant setpoint r.")
-    disturbance: Matrix | None = Field(
+    horizon: MatrixOut = Field(description="Kh, m x (Hp-Hw+1)*p: gain on the free-response error E.")
+    state: MatrixOut = Field(description="Kx, m x n: gain on the state x(k).")
+    previous_input: MatrixOut = Field(description="Ku, m x m: gain on the previous input u(k-1).")
+    setpoint: MatrixOut = Field(description="Kr, m x p: gain on a constant setpoint r.")
+    disturbance: MatrixOut | None = Field(
         default=None, description="Kd, m x md: feed-forward gain on the measured disturbances d(k); null without any."
     )
     labels: GainLabels
@@ -189,12 +189,12 @@ class LabelledMatrix(ResponseModel):
 class SampledModelReport(ResponseModel):
     """The discrete model the design used, in engineering units."""
 
-    a: Matrix
-    b: Matrix
-    c: Matrix
-    b_disturbance: Matrix | None
-    c_measured: Matrix
-    d_measured: Matrix
+    a: MatrixOut
+    b: MatrixOut
+    c: MatrixOut
+    b_disturbance: MatrixOut | None
+    c_measured: MatrixOut
+    d_measured: MatrixOut
 
 
 class PlantReport(ResponseModel):
@@ -232,6 +232,33 @@ class WarningReport(ResponseModel):
     message: str
 
 
+class SkippedDiagnostic(ResponseModel):
+    """A diagnostic left out, and why."""
+
+    name: str
+    reason: str
+
+
+class DiagnosticsReport(ResponseModel):
+    """Which diagnostics this answer holds."""
+
+    computed: list[str] = Field(
+        description="Names of the diagnostics computed for this answer: hessian_eigenvalues, closed_loop_poles, "
+        "open_loop_poles, steady_state_gain, relative_gain_array, hessian_what_if (the advice's condition "
+        "numbers with heavier move weights and a shorter control horizon, when the Hessian is ill-conditioned), "
+        "slow_pole, transmission_zeros (square plants), uncontrollable_modes, frequency_analysis, limit_check."
+    )
+    hessian_eigenvalue_method: Literal["dense", "lanczos"] = Field(
+        description="How the Hessian's extreme eigenvalues were found: LAPACK's dense symmetric eigensolver, or "
+        "(above 400 rows) the Lanczos method with the Cholesky factor, to the same accuracy."
+    )
+    skipped: list[SkippedDiagnostic] = Field(
+        default_factory=list,
+        description="Diagnostics left out by a work budget, each with the reason; empty when every one that "
+        "applies was computed.",
+    )
+
+
 class DesignResponse(ResponseModel):
     """The designed controller and its diagnostics."""
 
@@ -245,6 +272,9 @@ class DesignResponse(ResponseModel):
     )
     limit_check: LimitCheckReport | None = Field(
         default=None, description="When the request has limits: does the unconstrained law alone break them?"
+    )
+    diagnostics: DiagnosticsReport | None = Field(
+        default=None, description="Which diagnostics this answer holds and which a work budget left out."
     )
     fingerprint: str = Field(description="SHA-256 of the canonical request: equal for equal requests on any replica.")
     advisory: str = Field(default=ADVISORY, description="Results are design aids; see the text.")

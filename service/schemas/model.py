@@ -79,7 +79,9 @@ class TransferElementModel(RequestModel):
         default_factory=list, description="Zero, one or two lag time constants, in the model's time unit."
     )
     dead_time: Annotated[FiniteFloat, Field(ge=0)] = Field(
-        default=0.0, description="Dead time, in the model's time unit; need not be whole samples."
+        default=0.0,
+        description="Dead time, in the model's time unit; need not be whole samples. At most 10 000 sample "
+        "times, and its samples count as states within the state cap.",
     )
     lead: FiniteFloat | None = Field(
         default=None, description="Lead time constant L of (L s + 1); negative for an inverse response."

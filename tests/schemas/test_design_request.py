@@ -7,6 +7,7 @@ import copy
 import pytest
 from pydantic import ValidationError
 
+from service.api.problems import validation_problems
 from service.errors import InvalidRequest
 from service.pipeline.design import check_design_request
 from service.pipeline.fingerprint import fingerprint
@@ -16,9 +17,17 @@ from service.schemas.model import MODEL_KINDS
 
 
 def problems_of(body, caps=Caps()):
-    """The (pointer, detail) pairs the checks report for a request body."""
+    """The (pointer, detail) pairs the checks report for a request body.
+
+    Empty matrices and weights are refused by the schema itself (``minItems: 1``), the other
+    rules by ``check_design_request``; either way each problem names its field.
+    """
+    try:
+        request = DesignRequest.model_validate(body)
+    except ValidationError as exc:
+        return [(p.pointer, p.detail) for p in validation_problems(exc.errors())]
     with pytest.raises(InvalidRequest) as caught:
-        check_design_request(DesignRequest.model_validate(body), caps)
+        check_design_request(request, caps)
     return [(p.pointer, p.detail) for p in caught.value.problems]
 
 

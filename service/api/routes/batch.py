@@ -16,7 +16,8 @@ from typing import Annotated
 from fastapi import APIRouter, Body
 from pydantic import ValidationError
 
-from service.api.compute import Budget, BudgetDep, SolverCrashed, TimeLimitExceeded
+from service.api.bodies import CheckedBodyRoute
+from service.api.compute import Budget, BudgetDep, SolverCrashed, SolverDied, SolverOutOfMemory, TimeLimitExceeded
 from service.api.deps import SettingsDep
 from service.api.metrics import count_rejection, observe_design
 from service.api.problems import PROBLEM_JSON, problem_body, validation_problems
@@ -30,7 +31,7 @@ from service.schemas.design import DesignRequest
 
 __all__ = ["router"]
 
-router = APIRouter(tags=["design"])
+router = APIRouter(tags=["design"], route_class=CheckedBodyRoute)
 log = logging.getLogger("movecast.batch")
 
 PATH = "/design/batch"
@@ -87,8 +88,21 @@ def _answer(index: int, item: BatchItem, caps: Caps, budget: Budget) -> BatchIte
             f"The batch's compute time limit of {exc.seconds:g} s ran out before this item was designed.",
             fp=fp,
         )
+    except SolverOutOfMemory:
+        return _failed(
+            item,
+            "out-of-memory",
+            422,
+            "The solver ran out of memory designing this item; shorten its horizons or reduce its model.",
+            fp=fp,
+        )
+    except SolverDied:
+        log.error("the solver process died on batch item %d", index)
+        return _failed(
+            item, "solver-failed", 503, "The solver process stopped while designing this item; retry it.", fp=fp
+        )
     except SolverCrashed:
-        log.exception("solver failure on batch item %d", index)
+        log.error("solver failure on batch item %d", index)
         return _failed(
             item, "internal-error", 500, "The service failed to design this item; the error is logged.", fp=fp
         )

@@ -7,6 +7,7 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Body, Request
 from fastapi.responses import Response
 
+from service.api.bodies import CheckedBodyRoute
 from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
 from service.api.problems import PROBLEM_JSON
@@ -17,7 +18,7 @@ from service.schemas.compare import CompareRequest, CompareResponse
 
 __all__ = ["MARKDOWN", "prefers_markdown", "router"]
 
-router = APIRouter(tags=["design"])
+router = APIRouter(tags=["design"], route_class=CheckedBodyRoute)
 
 MARKDOWN = "text/markdown"
 

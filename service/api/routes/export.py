@@ -8,6 +8,7 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Body
 from fastapi.responses import PlainTextResponse
 
+from service.api.bodies import CheckedBodyRoute
 from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
 from service.api.problems import PROBLEM_JSON
@@ -17,7 +18,7 @@ from service.schemas.export import ExportRequest, ExportResponse
 
 __all__ = ["router"]
 
-router = APIRouter(tags=["design"])
+router = APIRouter(tags=["design"], route_class=CheckedBodyRoute)
 
 RESPONSES: dict[int | str, dict[str, Any]] = {
     200: {

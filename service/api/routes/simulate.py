@@ -7,6 +7,7 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Body, Request
 from fastapi.responses import Response
 
+from service.api.bodies import CheckedBodyRoute
 from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
 from service.api.problems import PROBLEM_JSON
@@ -16,7 +17,7 @@ from service.schemas.simulate import SimulateRequest, SimulateResponse
 
 __all__ = ["CSV", "prefers_csv", "router"]
 
-router = APIRouter(tags=["simulate"])
+router = APIRouter(tags=["simulate"], route_class=CheckedBodyRoute)
 
 CSV = "text/csv"
 

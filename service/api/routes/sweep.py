@@ -6,6 +6,7 @@ from typing import Annotated
 
 from fastapi import APIRouter, Body
 
+from service.api.bodies import CheckedBodyRoute
 from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
 from service.api.routes.design import PROBLEMS
@@ -15,7 +16,7 @@ from service.schemas.sweep import SweepRequest, SweepResponse
 
 __all__ = ["router"]
 
-router = APIRouter(tags=["design"])
+router = APIRouter(tags=["design"], route_class=CheckedBodyRoute)
 
 
 @router.post("/design/sweep", response_model=SweepResponse, responses=PROBLEMS)

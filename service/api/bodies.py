@@ -1,0 +1,195 @@
+"""Request bodies of the compute routes: strict JSON, parsed and validated off the event loop.
+
+:class:`CheckedBodyRoute` is the route class of every router whose handler takes a JSON body.
+Before FastAPI sees the request it
+
+1. refuses any content type but ``application/json`` (or ``application/*+json``, charset
+   UTF-8 when given) with 415, a body-less request with 422 at pointer ``""``;
+2. reads the body (the body limit has already counted it) and, in a worker thread of its own
+   small pool (never the event loop, never the compute threads), decodes it as UTF-8, parses
+   it strictly (:func:`parse_json`) and validates it with the route's request model;
+3. hands FastAPI the validated model, which it accepts as it is.
+
+Problems come back as :class:`BodyProblem` (400 malformed, 415) or
+:class:`~service.errors.InvalidRequest` (422, one entry per field, pointers into the body).
+A huge list of bad entries costs little: matrices and vectors stop at their first bad entry
+(``fail_fast``), and a problem lists at most
+:data:`~service.api.problems.MAX_REPORTED_ERRORS` fields with the count of the rest.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Callable, Coroutine
+from typing import Any
+
+import anyio
+from fastapi import Request, Response
+from fastapi.routing import APIRoute
+from pydantic import BaseModel, ValidationError
+
+from service.api.problems import BodyProblem, validation_problems
+from service.errors import FieldProblem, InvalidRequest
+from service.schemas.common import pointer
+
+__all__ = ["BodyProblem", "CheckedBodyRoute", "parse_and_validate", "parse_json"]
+
+#: Digits beyond which a JSON integer is read as a float (no field takes so large an integer;
+#: Python refuses to convert integers of more than 4300 digits at all).
+MAX_INTEGER_DIGITS = 30
+#: Threads that parse and validate bodies at once (their own pool: compute never waits on them).
+PARSE_THREADS = 2
+_parse_limiter: anyio.CapacityLimiter | None = None
+
+
+class _Members(dict[str, Any]):
+    """A JSON object whose text repeated a member name (the names are kept for the report)."""
+
+    repeated: tuple[str, ...] = ()
+
+
+def _object(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+    result = dict(pairs)
+    if len(result) == len(pairs):
+        return result
+    seen: set[str] = set()
+    repeated = []
+    for key, _ in pairs:
+        if key in seen and key not in repeated:
+            repeated.append(key)
+        seen.add(key)
+    flagged = _Members(result)
+    flagged.repeated = tuple(repeated)
+    return flagged
+
+
+def _integer(text: str) -> int | float:
+    if len(text.lstrip("-")) > MAX_INTEGER_DIGITS:
+        return float(text)  # inf beyond 1e308: refused as "finite number" at the field
+    return int(text)
+
+
+def _repeated_members(value: Any) -> list[FieldProblem]:
+    """Every object of the parsed body that repeated a member name, by pointer."""
+    found: list[FieldProblem] = []
+    stack: list[tuple[Any, tuple[str | int, ...]]] = [(value, ())]
+    while stack:
+        item, where = stack.pop()
+        if isinstance(item, dict):
+            if isinstance(item, _Members):
+                found.extend(
+                    FieldProblem(pointer(*where, key), "this member appears more than once in its object; send it once")
+                    for key in item.repeated
+                )
+            stack.extend((v, (*where, k)) for k, v in item.items() if isinstance(v, (dict, list)))
+        elif isinstance(item, list):
+            stack.extend((v, (*where, i)) for i, v in enumerate(item) if isinstance(v, (dict, list)))
+    return sorted(found, key=lambda p: p.pointer)
+
+
+def parse_json(body: bytes) -> Any:
+    """Parse a request body as strict JSON (RFC 8259 in UTF-8, I-JSON's unique member names).
+
+    Raises
+    ------
+    BodyProblem
+        400: not UTF-8, not JSON, nesting too deep for the parser.  (``NaN`` and
+        ``Infinity`` parse, so that the field refusing them is named by pointer.)
+    InvalidRequest
+        422: a member name repeated in one object (each one named by pointer).
+    """
+    try:
+        text = body.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise BodyProblem(400, "malformed-body", f"The request body is not valid UTF-8 (byte {exc.start}).") from None
+    repeated = False
+
+    def members(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+        nonlocal repeated
+        result = _object(pairs)
+        repeated = repeated or isinstance(result, _Members)
+        return result
+
+    try:
+        value = json.loads(text, object_pairs_hook=members, parse_int=_integer)
+    except json.JSONDecodeError as exc:
+        raise BodyProblem(
+            400,
+            "malformed-body",
+            f"The request body is not valid JSON: {exc.msg} at line {exc.lineno}, column {exc.colno}.",
+        ) from None
+    except RecursionError:
+        raise BodyProblem(400, "malformed-body", "The request body is nested too deeply to be a request.") from None
+    except ValueError as exc:
+        raise BodyProblem(400, "malformed-body", f"The request body is not valid JSON: {exc}.") from None
+    if repeated:
+        raise InvalidRequest(_repeated_members(value))
+    return value
+
+
+def parse_and_validate(body: bytes, model: type[BaseModel]) -> BaseModel:
+    """Parse ``body`` (:func:`parse_json`) and validate it as ``model``; meant for a worker thread.
+
+    Raises
+    ------
+    BodyProblem, InvalidRequest
+    """
+    value = parse_json(body)
+    try:
+        return model.model_validate(value)
+    except ValidationError as exc:
+        errors = exc.errors(include_url=False, include_input=False)
+        raise InvalidRequest(validation_problems(errors)) from None  # type: ignore[arg-type]
+    except RecursionError:
+        raise BodyProblem(400, "malformed-body", "The request body is nested too deeply to be a request.") from None
+
+
+def json_content_type(value: str | None) -> bool:
+    """Whether a ``Content-Type`` names JSON in UTF-8 (``application/json``, ``application/*+json``)."""
+    if not value:
+        return False
+    media, *params = (part.strip() for part in value.split(";"))
+    media = media.lower()
+    if not (media == "application/json" or (media.startswith("application/") and media.endswith("+json"))):
+        return False
+    for param in params:
+        key, _, given = param.partition("=")
+        if key.strip().lower() == "charset" and given.strip().strip('"').lower() not in {"utf-8", "utf8"}:
+            return False
+    return True
+
+
+def _limiter() -> anyio.CapacityLimiter:
+    global _parse_limiter
+    if _parse_limiter is None:
+        _parse_limiter = anyio.CapacityLimiter(PARSE_THREADS)
+    return _parse_limiter
+
+
+class CheckedBodyRoute(APIRoute):
+    """A route whose JSON body is checked by :func:`parse_and_validate` in a worker thread."""
+
+    def get_route_handler(self) -> Callable[[Request], Coroutine[Any, Any, Response]]:
+        handler = super().get_route_handler()
+        body_field = self.body_field
+        if body_field is None:
+            return handler
+        model = body_field.field_info.annotation
+        if not (isinstance(model, type) and issubclass(model, BaseModel)):
+            return handler
+
+        async def checked(request: Request) -> Response:
+            if not json_content_type(request.headers.get("content-type")):
+                raise BodyProblem(
+                    415,
+                    "unsupported-media-type",
+                    "Send the request body as JSON with 'Content-Type: application/json'.",
+                    headers={"Accept-Post": "application/json"},
+                )
+            body = await request.body()
+            if not body.strip():
+                raise InvalidRequest([FieldProblem("", "the request body is required: a JSON object")])
+            request._json = await anyio.to_thread.run_sync(parse_and_validate, body, model, limiter=_limiter())
+            return await handler(request)
+
+        return checked

@@ -1,0 +1,86 @@
+"""Slow and excess connections against a real server: a read deadline and a connection cap.
+
+``MOVECAST_READ_TIMEOUT_SECONDS`` bounds how long a request may take to arrive whole (headers
+trickled a byte at a time, or a body that never comes); ``MOVECAST_MAX_CONNECTIONS`` caps open
+connections.  Both answers are problem details, and the server goes on serving.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import socket
+import time
+
+import httpx
+import pytest
+
+from tests.api.live import live_server
+
+pytestmark = pytest.mark.skipif(os.name != "posix", reason="POSIX process groups")
+
+
+def read_answer(sock: socket.socket) -> bytes:
+    answer = b""
+    for _ in range(200):  # bounded; the server closes after its answer
+        try:
+            chunk = sock.recv(65536)
+        except (ConnectionResetError, TimeoutError):
+            break
+        if not chunk:
+            break
+        answer += chunk
+    return answer
+
+
+def problem_of(answer: bytes) -> tuple[int, dict]:
+    head, _, body = answer.partition(b"\r\n\r\n")
+    assert b"content-type: application/problem+json" in head.lower(), head
+    return int(head.split(b" ", 2)[1]), json.loads(body)
+
+
+def test_trickled_headers_and_missing_bodies_are_cut_off_and_excess_connections_refused(tmp_path):
+    with live_server(tmp_path, read_timeout_seconds="1", max_connections="8", solver_processes="1") as server:
+        address = (server.host, server.port)
+        # Headers a byte at a time, slower than the deadline allows in total: 408, closed.
+        with socket.create_connection(address, timeout=20) as sock:
+            request = b"GET /healthz HTTP/1.1\r\nHost: x\r\nX-Slow: " + b"a" * 40
+            for byte in request:  # bounded: at most 60 bytes, 0.05 s apart
+                try:
+                    sock.send(bytes([byte]))
+                except (BrokenPipeError, ConnectionResetError):
+                    break
+                time.sleep(0.05)
+            status, problem = problem_of(read_answer(sock))
+            assert (status, problem["type"]) == (408, "urn:movecast:problem:request-timeout")
+        # A body declared and never sent: 408 too (the app never sees a half body).
+        with socket.create_connection(address, timeout=20) as sock:
+            sock.sendall(
+                b"POST /design HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\nContent-Length: 500\r\n\r\n{"
+            )
+            status, problem = problem_of(read_answer(sock))
+            assert status == 408
+        # A connection that sends nothing at all is closed too.
+        with socket.create_connection(address, timeout=20) as sock:
+            status, _ = problem_of(read_answer(sock))
+            assert status == 408
+        # More connections than the cap: the excess ones are told 503 with Retry-After at once.
+        held = [socket.create_connection(address, timeout=20) for _ in range(8)]
+        try:
+            with socket.create_connection(address, timeout=20) as extra:
+                answer = read_answer(extra)
+                status, problem = problem_of(answer)
+                assert status == 503 and problem["type"] == "urn:movecast:problem:too-many-connections"
+                assert b"retry-after: 1" in answer.lower()
+        finally:
+            for sock in held:
+                sock.close()
+        # Still serving once they are gone (the held ones are closed by the deadline anyway).
+        for _ in range(100):  # bounded
+            try:
+                if httpx.get(f"{server.base}/healthz", timeout=5).status_code == 200:
+                    break
+            except httpx.TransportError:
+                pass
+            time.sleep(0.05)
+        assert httpx.get(f"{server.base}/healthz", timeout=5).json()["status"] == "ok"

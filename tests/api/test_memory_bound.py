@@ -1,0 +1,116 @@
+"""The memory estimate is an upper bound: the largest design the caps allow runs inside it.
+
+A solver process of its own gets an address-space limit (``resource.setrlimit(RLIMIT_AS)``)
+of what it already maps plus the design memory cap, then runs the largest design the cap
+allows (the example plant, Hp = 2000, the longest control horizon within the cap); it must
+answer, and one move longer must be refused with a 422 naming the horizons, never a
+``MemoryError``.  The cap is set low here (96 MiB) to keep the test to seconds; the default's
+fit to the pod limit of ``deploy/`` is checked from the manifest's own numbers.
+"""
+
+from __future__ import annotations
+
+import copy
+import os
+import re
+import time
+from pathlib import Path
+
+import pytest
+import yaml
+
+from service.api.compute import SolverPool
+from service.errors import InvalidRequest
+from service.pipeline.design import run_design
+from service.pipeline.estimates import design_memory_bytes
+from service.pipeline.examples import load_example
+from service.schemas.common import Caps
+from service.schemas.design import DesignRequest
+
+ROOT = Path(__file__).resolve().parents[2]
+resource = pytest.importorskip("resource")
+pytestmark = pytest.mark.skipif(not Path("/proc/self/status").exists(), reason="reads /proc/self/status")
+
+CAP = 96 * 1024 * 1024
+#: Address space for what the estimate leaves out on purpose: Python objects of the request
+#: and the answer, and allocator slack (common practice: a few tens of MiB).
+SLACK = 48 * 1024 * 1024
+#: Measured beside the solver's arrays in one pod: serving process, fork server and the
+#: solver's own interpreter and libraries (issue 15: 1.37 GB in all for 895 MB of arrays).
+OVERHEAD = 475 * 1000 * 1000
+
+
+def mapped_bytes() -> int:
+    text = Path("/proc/self/status").read_text()
+    return int(re.search(r"^VmSize:\s+(\d+) kB", text, flags=re.M).group(1)) * 1024
+
+
+def design_within(body: dict, caps: Caps, extra: int) -> str:
+    """Run in a solver process: limit its address space, then design (module level: it pickles)."""
+    limit = mapped_bytes() + extra
+    resource.setrlimit(resource.RLIMIT_AS, (limit, resource.getrlimit(resource.RLIMIT_AS)[1]))
+    try:
+        run_design(DesignRequest.model_validate(body), caps)
+    except MemoryError:
+        return "memory"
+    except InvalidRequest as exc:
+        return "invalid:" + ",".join(p.pointer for p in exc.problems)
+    return "ok"
+
+
+def largest_control(prediction: int) -> int:
+    """The longest control horizon of the example plant (n 4, m p 2) within the cap."""
+    return max(
+        hu
+        for hu in range(1, prediction + 1)
+        if design_memory_bytes(states=4, inputs=2, outputs=2, penalized_steps=prediction, control=hu) <= CAP
+    )
+
+
+def test_the_largest_design_the_cap_allows_runs_inside_it_and_one_more_move_is_refused():
+    caps = Caps(max_design_memory_bytes=CAP)
+    hu = largest_control(2000)
+    body = copy.deepcopy(load_example("design_request.json"))
+    body["horizons"] = {"prediction": 2000, "control": hu}
+    pool = SolverPool(processes=1)
+    try:
+        outcome, _ = pool.run(design_within, (body, caps, CAP + SLACK), deadline=time.monotonic() + 300, seconds=300)
+        assert outcome == "ok"
+    finally:
+        pool.close()  # its solver keeps the limit: never reused
+    body["horizons"]["control"] = hu + 1
+    pool = SolverPool(processes=1)
+    try:
+        outcome, _ = pool.run(design_within, (body, caps, CAP + SLACK), deadline=time.monotonic() + 300, seconds=300)
+        assert outcome == "invalid:/horizons/control,/horizons/prediction"
+    finally:
+        pool.close()
+
+
+def test_the_default_cap_fits_the_pod_memory_limit_of_deploy():
+    manifest = yaml.safe_load((ROOT / "deploy" / "kubernetes" / "deployment.yaml").read_text())
+    (container,) = manifest["spec"]["template"]["spec"]["containers"]
+    limit = container["resources"]["limits"]["memory"]
+    assert limit.endswith("Gi")
+    pod = int(limit[:-2]) * 1024**3
+    assert Caps().max_design_memory_bytes + OVERHEAD + SLACK <= pod
+    # The design of issue 15 (the example plant, Hp = Hu = 2000) is refused by the default cap.
+    assert (
+        design_memory_bytes(states=4, inputs=2, outputs=2, penalized_steps=2000, control=2000)
+        > Caps().max_design_memory_bytes
+    )
+
+
+def test_a_memory_error_in_the_solver_is_a_422_problem(make_client, example, monkeypatch):
+    from service.api import compute
+    from tests.api.conftest import assert_problem
+
+    client = make_client(solver_processes=1)
+
+    def out_of_memory(*args, **kwargs):
+        raise compute.SolverOutOfMemory("the solver ran out of memory")
+
+    monkeypatch.setattr(compute.SolverPool, "run", out_of_memory)
+    body = assert_problem(client.post("/design", json=example), 422, "out-of-memory")
+    assert "memory" in body["detail"]
+    assert os.getpid()  # the serving process itself is untouched

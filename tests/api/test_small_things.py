@@ -1,0 +1,71 @@
+"""The small findings: /docs without a CDN, CSV cells that cannot run, warnings as JSON log lines."""
+
+from __future__ import annotations
+
+import copy
+import csv
+import io
+import json
+import logging
+import re
+import warnings
+
+from service.api.logs import JsonFormatter, log_warnings
+from service.pipeline.csv_cells import text_cell
+from service.pipeline.examples import load_example
+from tests.api.conftest import KEY
+
+
+def test_docs_load_their_assets_from_the_service_and_stay_open(make_client):
+    client = make_client(api_keys=KEY)
+    page = client.get("/docs")
+    assert page.status_code == 200
+    sources = re.findall(r'(?:src|href)="([^"]+)"', page.text)
+    assert sources and all(s.startswith("/docs/assets/") for s in sources), sources
+    assert "http://" not in page.text and "https://" not in page.text
+    for source in sources:
+        asset = client.get(source)
+        assert asset.status_code == 200 and len(asset.content) > 500, source
+    assert client.get("/redoc", follow_redirects=False).headers["location"] == "/docs"
+    assert client.get("/openapi.json").status_code == 200
+    assert client.get("/metrics").status_code == 401  # metrics stay behind the key
+
+
+def test_text_cells_that_a_spreadsheet_could_run_are_quoted():
+    # OWASP "CSV Injection": cells starting with = + - @ tab or CR are formulas to a spreadsheet.
+    for dangerous in ("=HYPERLINK(1)", "+1+1", "-2+3", "@SUM(A1)", "\tx", "\rx"):
+        assert text_cell(dangerous) == "'" + dangerous
+    assert text_cell("TIC-101.PV") == "TIC-101.PV"
+
+
+def test_the_simulation_csv_quotes_a_formula_like_tag_and_keeps_negative_numbers(make_client):
+    body = copy.deepcopy(load_example("simulate_request.json"))
+    body["model"]["outputs"] = [{"name": "=cmd|' /C calc'!A0"}, {"name": "@level"}]
+    body["scenario"]["steps"] = 150
+    body["scenario"].pop("output_disturbances", None)
+    client = make_client()
+    answer = client.post("/simulate", json=body, headers={"Accept": "text/csv"})
+    assert answer.status_code == 200, answer.text
+    rows = list(csv.reader(io.StringIO(answer.text)))
+    assert rows[0][1].startswith("'=") and rows[0][2] == "'@level"
+    assert not [cell for cell in rows[0] if cell[:1] in "=+-@"]
+    numbers = [float(cell) for row in rows[1:] for cell in row]  # every data cell still a number
+    assert any(n < 0 for n in numbers)
+
+
+def test_warnings_reach_the_log_as_json_lines_without_source_paths(caplog):
+    previous = warnings.showwarning
+    try:
+        log_warnings()
+        with caplog.at_level("WARNING", logger="movecast.warnings"), warnings.catch_warnings():
+            warnings.simplefilter("always")
+            warnings.showwarning = __import__("service.api.logs", fromlist=["_show_warning"])._show_warning
+            warnings.warn("overflow encountered in multiply", RuntimeWarning, stacklevel=1)
+        (record,) = [r for r in caplog.records if r.name == "movecast.warnings"]
+        line = JsonFormatter().format(record)
+        entry = json.loads(line)
+        assert entry["message"] == "RuntimeWarning: overflow encountered in multiply"
+        assert ".py" not in line and entry["level"] == "warning"
+    finally:
+        warnings.showwarning = previous
+        logging.getLogger("movecast.warnings").handlers.clear()
