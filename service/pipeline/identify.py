@@ -387,6 +387,7 @@ def compute_identify(inputs: IdentifyInputs) -> IdentifyOutcome:
     fits = []
     for i, pairs in enumerate(inputs.pairs):
         y = inputs.outputs_data[:, i]
+        fit: OutputFit | None = None
         try:
             with np.errstate(all="ignore"):
                 fit = fit_output(
@@ -404,7 +405,7 @@ def compute_identify(inputs: IdentifyInputs) -> IdentifyOutcome:
             fit, finite = None, False
             reason = str(exc) or type(exc).__name__
         else:
-            finite = all(np.all(np.isfinite(t)) for t in fit.parameters) and np.all(np.isfinite(fit.fitted))
+            finite = bool(all(np.all(np.isfinite(t)) for t in fit.parameters) and np.all(np.isfinite(fit.fitted)))
             reason = "the fitted parameters are not finite"
         if fit is None or not finite:
             raise NumericalError(

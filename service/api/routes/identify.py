@@ -4,14 +4,16 @@ from __future__ import annotations
 
 from typing import Annotated
 
-from fastapi import APIRouter, Body
+from fastapi import APIRouter, Body, Query
 
 from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
 from service.api.routes.design import PROBLEMS
-from service.pipeline.examples import load_example
+from service.pipeline.examples import example_path, load_example
 from service.pipeline.identify import run_identify
+from service.pipeline.identify_csv import identify_request_from_csv
 from service.schemas.identify import IdentifyRequest, IdentifyResponse
+from service.schemas.identify_csv import IdentifyCsvOptions
 
 __all__ = ["router"]
 
@@ -35,4 +37,33 @@ def identify(
     budget: BudgetDep,
 ) -> IdentifyResponse:
     """Fit a dead-time model per output/input pair to plant-test data. Design aid only: review the fit."""
+    return budget.run(run_identify, request, caps, operation="identify")
+
+
+@router.post(
+    "/identify/csv",
+    response_model=IdentifyResponse,
+    responses=PROBLEMS,
+)
+def identify_csv(
+    body: Annotated[
+        bytes,
+        Body(
+            media_type="text/csv",
+            description="A historian export: a header row of tags, then one row per sample; a time column "
+            "(numbers in the time unit, or ISO 8601 date-times) is the first column unless time_column says.",
+            openapi_examples={
+                "plant_test": {
+                    "summary": "The plant test of the example vessel (invented numbers)",
+                    "value": example_path("plant_test.csv").read_text(encoding="utf-8"),
+                }
+            },
+        ),
+    ],
+    options: Annotated[IdentifyCsvOptions, Query()],
+    caps: CapsDep,
+    budget: BudgetDep,
+) -> IdentifyResponse:
+    """POST /identify with the data as CSV and the choices as query parameters. Design aid only: review the fit."""
+    request = identify_request_from_csv(body, options)
     return budget.run(run_identify, request, caps, operation="identify")
