@@ -34,6 +34,7 @@ from service.solver.identification.data import hold_missing, resample_held, resa
 from service.solver.identification.diagnostics import find_outliers, fit_measures, residual_correlations
 from service.solver.identification.least_squares import OutputFit, PairSpec, fit_output
 from service.solver.identification.process_models import STRUCTURES, element_of, step_values
+from service.solver.identification.subspace import SubspaceModel, moesp
 
 __all__ = [
     "MIN_SAMPLES",
@@ -87,6 +88,9 @@ class IdentifyInputs:
     """Inputs then disturbances, ``(N, M)``, absolute values, missing samples held."""
     operating_point: NDArray[np.float64]
     """Of the columns: their values at the first sample, ``(M,)``."""
+    structure: str
+    order: int | None
+    block_rows: int
     outputs_data: NDArray[np.float64]
     """``(N, p)``, ``nan`` where missing or an outlier."""
     pairs: tuple[tuple[PairSpec, ...], ...]
@@ -105,10 +109,11 @@ class IdentifyInputs:
 
 @dataclass(frozen=True)
 class IdentifyOutcome:
-    """The fits per output."""
+    """The fits per output, or the subspace model."""
 
     fits: tuple[OutputFit, ...]
     warnings: tuple[WarningReport, ...] = field(default=())
+    subspace: SubspaceModel | None = None
 
 
 def identify_work(samples: int, parameters: int) -> int:
@@ -298,7 +303,10 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
     overrides = {(p.output, p.input): p.structure for p in request.pairs}
     pairs: list[tuple[PairSpec, ...]] = []
     parameters = 0
-    for tag in request.outputs:
+    block_rows = 0
+    if request.structure == "subspace":
+        block_rows, parameters = _subspace_checks(request, column_tags, outputs, estimation, still)
+    for tag in request.outputs if request.structure != "subspace" else ():
         integrating = tag in request.integrating
         default = INTEGRATING[request.structure] if integrating else request.structure
         row = []
@@ -358,6 +366,9 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
     max_dead = float(request.max_dead_time) if request.max_dead_time is not None else record / 3.0
     settling = float(request.settling_time) if request.settling_time is not None else record / 4.0
     return IdentifyInputs(
+        structure=request.structure,
+        order=request.order,
+        block_rows=block_rows,
         sample_time=ts,
         inputs=tuple(request.inputs),
         disturbances=tuple(request.disturbances),
@@ -378,9 +389,68 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
     )
 
 
+def _subspace_checks(
+    request: IdentifyRequest,
+    column_tags: list[str],
+    outputs: NDArray[np.float64],
+    estimation: int,
+    still: set[str],
+) -> tuple[int, int]:
+    """Block rows and a parameter count of a subspace fit; every output sample must be there."""
+    problems = []
+    for i, tag in enumerate(request.outputs):
+        gaps = np.nonzero(~np.isfinite(outputs[:estimation, i]))[0]
+        if gaps.size:
+            problems.append(
+                FieldProblem(
+                    pointer("data", tag, int(gaps[0])),
+                    f"the subspace fit needs every sample of the outputs, and {tag} misses {gaps.size} (missing or "
+                    f"outliers) from here on: cut the record, or fit first_order_dead_time pairs",
+                )
+            )
+    for tag in column_tags:
+        if tag in still:
+            problems.append(
+                FieldProblem(
+                    pointer("data", tag), f"{tag} did not move during the test; leave it out of a subspace fit"
+                )
+            )
+    width = len(column_tags) + len(request.outputs)
+    largest = (estimation - 1) // (2 * (width + 1)) - 1
+    rows = request.block_rows if request.block_rows is not None else min(20, largest)
+    if rows < 2 or rows > largest:
+        problems.append(
+            FieldProblem(
+                pointer("block_rows"),
+                f"{estimation} samples of {width} signals allow 2 to {max(largest, 2)} block rows"
+                + ("" if largest >= 2 else "; the record is too short for a subspace fit"),
+            )
+        )
+    elif request.order is not None and request.order >= rows * len(request.outputs):
+        problems.append(
+            FieldProblem(
+                pointer("order"), f"the order must be below block_rows x outputs ({rows * len(request.outputs)})"
+            )
+        )
+    if problems:
+        raise InvalidRequest(problems)
+    # The QR factorization of the stacked Hankel matrices dominates: about samples x (2 s w)^2 operations.
+    return rows, max(1, (2 * rows * width) ** 2 // WORK_PER_PARAMETER)
+
+
 def compute_identify(inputs: IdentifyInputs) -> IdentifyOutcome:
-    """Fit every output's pairs by nonlinear least squares."""
+    """Fit every output's pairs by nonlinear least squares (or the subspace model)."""
     n = inputs.columns.shape[0]
+    if inputs.structure == "subspace":
+        deviations = inputs.columns - inputs.operating_point
+        e = inputs.estimation
+        with np.errstate(all="ignore"):
+            model = moesp(deviations[:e], inputs.outputs_data[:e], block_rows=inputs.block_rows, order=inputs.order)
+        if not all(np.all(np.isfinite(x)) for x in (model.a, model.b, model.c, model.fitted)):
+            raise NumericalError(
+                "The subspace fit failed: its matrices are not finite. Check the data", pointer="/data"
+            )
+        return IdentifyOutcome(fits=(), subspace=model)
     deviations = inputs.columns - inputs.operating_point
     used = np.zeros(n, dtype=bool)
     used[: inputs.estimation] = True
@@ -439,6 +509,10 @@ def _step_steps(structure: str, theta: NDArray[np.float64], sample_time: float, 
 
 def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> IdentifyResponse:
     """The answer: the model for /design, the operating point, parameters, fits and checks."""
+    if outcome.subspace is not None:
+        from service.pipeline.identify_subspace import subspace_response
+
+        return subspace_response(inputs, outcome.subspace, data_report(inputs))
     ts = inputs.sample_time
     column_tags = [*inputs.inputs, *inputs.disturbances]
     m = len(inputs.inputs)
@@ -555,9 +629,24 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
         outputs=[SignalTag(name=t) for t in inputs.outputs],
         disturbances=[SignalTag(name=t) for t in inputs.disturbances] if inputs.disturbances else None,
     )
-    data = DataReport(
+    data = data_report(inputs)
+    return IdentifyResponse(
+        model=model,
+        operating_point=operating_point,
+        pairs=pair_reports,
+        fits=fit_reports,
+        step_responses=steps,
+        data=data,
+        warnings=warnings,
+    )
+
+
+def data_report(inputs: IdentifyInputs) -> DataReport:
+    """What was found in the data and done with it."""
+    n = inputs.columns.shape[0]
+    return DataReport(
         samples=n,
-        sample_time=ts,
+        sample_time=inputs.sample_time,
         resampling=inputs.resampling,
         estimation_samples=inputs.estimation,
         validation_samples=n - inputs.estimation,
@@ -572,15 +661,6 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
             )
             for note in inputs.notes
         ],
-    )
-    return IdentifyResponse(
-        model=model,
-        operating_point=operating_point,
-        pairs=pair_reports,
-        fits=fit_reports,
-        step_responses=steps,
-        data=data,
-        warnings=warnings,
     )
 
 

@@ -8,7 +8,7 @@ from pydantic import Field
 
 from service.schemas.common import FiniteFloat, RequestModel, ResponseModel
 from service.schemas.design import ADVISORY, WarningReport
-from service.schemas.model import TransferMatrixModel
+from service.schemas.model import StateSpaceModel, TransferMatrixModel
 from service.schemas.signals import TagName
 
 __all__ = [
@@ -21,6 +21,7 @@ __all__ = [
     "PairStructure",
     "ParameterReport",
     "StepSeriesReport",
+    "SubspaceReport",
     "TagDataReport",
 ]
 
@@ -68,11 +69,18 @@ class IdentifyRequest(RequestModel):
         default=None,
         description="Time of each sample, increasing, in the time unit; default: one sample_time apart.",
     )
-    structure: Literal["first_order_dead_time", "second_order_dead_time"] = Field(
+    structure: Literal["first_order_dead_time", "second_order_dead_time", "subspace"] = Field(
         default="first_order_dead_time",
         description="Structure of every pair: K e^(-theta s)/(tau s + 1), or with two lags. Pairs of an "
         "integrating output use the integrating variant of the same order (K e^(-theta s)/s, or "
-        "K e^(-theta s)/(s (tau s + 1))).",
+        "K e^(-theta s)/(s (tau s + 1))). 'subspace': one discrete state-space model of all inputs and "
+        "outputs by PO-MOESP (Verhaegen 1994), its order read from the singular values.",
+    )
+    order: Annotated[int, Field(ge=1, le=100)] | None = Field(
+        default=None, description="Subspace fit: the model order; default read from the singular values."
+    )
+    block_rows: Annotated[int, Field(ge=2, le=200)] | None = Field(
+        default=None, description="Subspace fit: block rows of the Hankel matrices; default up to 20."
     )
     integrating: list[TagName] = Field(default_factory=list, description="Outputs that integrate (levels).")
     pairs: list[PairStructure] = Field(default_factory=list, description="Structures of single pairs.")
@@ -183,10 +191,23 @@ class DataReport(ResponseModel):
     tags: list[TagDataReport]
 
 
+class SubspaceReport(ResponseModel):
+    """How the subspace fit chose its order."""
+
+    method: str
+    order: int
+    block_rows: int
+    singular_values: list[float] = Field(description="Largest first; the order is where they drop.")
+
+
 class IdentifyResponse(ResponseModel):
     """The fitted model and everything needed to judge it."""
 
-    model: TransferMatrixModel = Field(description="Post it unchanged as a /design model.")
+    model: Annotated[TransferMatrixModel | StateSpaceModel, Field(discriminator="kind")] = Field(
+        description="Post it unchanged as a /design model: a transfer matrix, or a discrete state-space model "
+        "from the subspace fit."
+    )
+    subspace: SubspaceReport | None = Field(default=None, description="For structure 'subspace'.")
     operating_point: dict[str, float] = Field(
         description="Per tag: the inputs' values at the start of the test and the outputs' fitted offsets; "
         "the model holds for deviations from them."
