@@ -19,21 +19,31 @@ __all__ = ["router"]
 
 router = APIRouter(tags=["identify"])
 
-#: The OpenAPI examples carry the first five hours of the example plant test (the whole
-#: twelve hours are in openapi/examples/), so that trying them stays quick.
-EXAMPLE_SAMPLES = 300
+#: The OpenAPI examples carry two hours of the steam valve and the temperature from the
+#: example plant test (the whole test, every tag, is in openapi/examples/), so that trying
+#: them stays quick.
+EXAMPLE_SAMPLES = 120
+EXAMPLE_TAGS = ("steam_valve", "vessel_temperature")
 
 
 def _json_example() -> dict[str, object]:
     request = load_example("identify_request.json")
-    request["data"] = {tag: values[:EXAMPLE_SAMPLES] for tag, values in request["data"].items()}
-    request["pairs"] = [p for p in request["pairs"] if p["structure"] == "none"]
-    return request
+    return {
+        "sample_time": request["sample_time"],
+        "inputs": [EXAMPLE_TAGS[0]],
+        "outputs": [EXAMPLE_TAGS[1]],
+        "data": {tag: request["data"][tag][:EXAMPLE_SAMPLES] for tag in EXAMPLE_TAGS},
+        "max_dead_time": 10.0,
+        "settling_time": 40.0,
+    }
 
 
 def _csv_example() -> str:
     lines = example_path("plant_test.csv").read_text(encoding="utf-8").splitlines()
-    return "\n".join(lines[: EXAMPLE_SAMPLES + 1]) + "\n"
+    header = lines[0].split(",")
+    keep = [0, *(header.index(tag) for tag in EXAMPLE_TAGS)]
+    rows = [",".join(line.split(",")[k] for k in keep) for line in lines[: EXAMPLE_SAMPLES + 1]]
+    return "\n".join(rows) + "\n"
 
 
 @router.post("/identify", response_model=IdentifyResponse, responses=PROBLEMS)
@@ -43,7 +53,7 @@ def identify(
         Body(
             openapi_examples={
                 "plant_test": {
-                    "summary": "Five hours of a plant test of the example vessel (invented numbers)",
+                    "summary": "Two hours of a plant test of the example vessel (invented numbers)",
                     "value": _json_example(),
                 }
             }
@@ -70,7 +80,7 @@ def identify_csv(
             "(numbers in the time unit, or ISO 8601 date-times) is the first column unless time_column says.",
             openapi_examples={
                 "plant_test": {
-                    "summary": "Five hours of the plant test of the example vessel (invented numbers)",
+                    "summary": "Two hours of the plant test of the example vessel (invented numbers)",
                     "value": _csv_example(),
                 }
             },
