@@ -12,7 +12,17 @@ settings still reject what is plainly too big up front, with a 422 naming the fi
 Solver processes start from a fork server that has already imported numpy, scipy and the
 schemas, so replacing one takes milliseconds, not the second a fresh interpreter takes.
 
-    budget = Budget(pool, seconds=30.0)
+Two lanes.  Before a request runs, its work is estimated from its sizes
+(:func:`service.pipeline.caps.request_work`).  Work above ``MOVECAST_HEAVY_WORK`` goes to
+the heavy lane (``MOVECAST_HEAVY_SOLVER_PROCESSES``, one by default), everything else to
+the light lane (``MOVECAST_SOLVER_PROCESSES``, one per core by default).  A small request
+therefore never queues behind a large one.  With ``MOVECAST_HEAVY_NICENESS`` (for example
+10, on a host of its own) the operating system also gives the light lane's processes the
+CPU first while the heavy lane is busy.  At most ``MOVECAST_HEAVY_QUEUE`` heavy requests wait for the heavy lane; more are
+answered 503 at once with ``Retry-After``, so that waiting heavy requests cannot hold every
+thread of the serving process.
+
+    budget = Budget(lanes, seconds=30.0)
     response = budget.run(run_design, request, caps, operation="design")
 """
 
@@ -31,18 +41,25 @@ from multiprocessing.process import BaseProcess
 from typing import Annotated, Any, TypeVar
 
 from fastapi import Depends
+from pydantic import BaseModel
 
 from service.api.deps import SettingsDep
-from service.api.metrics import SOLVER_SECONDS
+from service.api.metrics import LANE_REQUESTS, SOLVER_SECONDS
 from service.api.solver_worker import rebuild_error, serve_calls
+from service.pipeline.caps import request_work
 
 __all__ = [
+    "HEAVY_NICENESS",
     "Budget",
     "BudgetDep",
+    "HeavyLaneFull",
+    "Lanes",
     "SolverCrashed",
     "SolverPool",
     "TimeLimitExceeded",
+    "default_solver_processes",
     "get_budget",
+    "solver_lanes",
     "solver_pool",
 ]
 
@@ -63,6 +80,22 @@ class TimeLimitExceeded(Exception):
 
 class SolverCrashed(Exception):
     """A solver process died or failed in an unexpected way (it has been replaced)."""
+
+
+class HeavyLaneFull(Exception):
+    """The heavy lane has as many requests waiting as it accepts; retry later."""
+
+    def __init__(self, waiting: int) -> None:
+        self.waiting = waiting
+        super().__init__(f"{waiting} heavy requests are already waiting")
+
+
+def default_solver_processes() -> int:
+    """One light-lane solver process per core this process may run on."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # not on Linux
+        return max(1, os.cpu_count() or 1)
 
 
 def _context() -> multiprocessing.context.BaseContext:
@@ -88,13 +121,22 @@ class SolverPool:
         Number of solver processes.
     blas_threads : int
         BLAS/OpenMP threads in each solver process.
+    niceness : int
+        Added to each solver process's CPU niceness (0: as the serving process).
+    max_waiting : int or None
+        Most calls waiting for a free solver; one more raises :class:`HeavyLaneFull`.
 
     Processes start on first use; :meth:`close` stops them (also at interpreter exit).
     """
 
-    def __init__(self, *, processes: int, blas_threads: int = 1) -> None:
+    def __init__(
+        self, *, processes: int, blas_threads: int = 1, niceness: int = 0, max_waiting: int | None = None
+    ) -> None:
         self.processes = processes
         self.blas_threads = blas_threads
+        self.niceness = niceness
+        self.max_waiting = max_waiting
+        self._waiting = 0
         self._idle: queue.Queue[_Solver] = queue.Queue()
         self._lock = threading.Lock()
         self._started = False
@@ -104,7 +146,10 @@ class SolverPool:
     def _spawn(self) -> _Solver:
         parent, child = self._context.Pipe(duplex=True)
         process = self._context.Process(
-            target=serve_calls, args=(child, self.blas_threads), name="movecast-solver", daemon=True
+            target=serve_calls,
+            args=(child, self.blas_threads, self.niceness),
+            name="movecast-solver",
+            daemon=True,
         )
         process.start()
         child.close()
@@ -147,9 +192,9 @@ class SolverPool:
             raise TimeLimitExceeded(seconds, queued=True)
         self.start()
         try:
-            solver = self._idle.get(timeout=max(deadline - time.monotonic(), 0.0))
+            solver = self._idle.get_nowait()
         except queue.Empty:
-            raise TimeLimitExceeded(seconds, queued=True) from None
+            solver = self._wait_for_solver(deadline, seconds)
         healthy = False
         try:
             try:
@@ -173,6 +218,19 @@ class SolverPool:
             return outcome[1], outcome[2]
         raise rebuild_error(outcome[1], outcome[2], outcome[3])
 
+    def _wait_for_solver(self, deadline: float, seconds: float) -> _Solver:
+        with self._lock:
+            if self.max_waiting is not None and self._waiting >= self.max_waiting:
+                raise HeavyLaneFull(self._waiting)
+            self._waiting += 1
+        try:
+            return self._idle.get(timeout=max(deadline - time.monotonic(), 0.0))
+        except queue.Empty:
+            raise TimeLimitExceeded(seconds, queued=True) from None
+        finally:
+            with self._lock:
+                self._waiting -= 1
+
     def close(self) -> None:
         """Stop every idle solver; busy ones stop when their pipe closes."""
         with self._lock:
@@ -184,8 +242,13 @@ class SolverPool:
                 return
 
 
-_pools: dict[tuple[int, int], SolverPool] = {}
+_pools: dict[tuple[int, str, int, int, int | None], SolverPool] = {}
 _pools_lock = threading.Lock()
+
+#: Niceness to add to the heavy lane's solver processes on a dedicated host
+#: (``MOVECAST_HEAVY_NICENESS``; 0 by default, since on a shared host it would also yield to
+#: every other tenant).
+HEAVY_NICENESS = 10
 
 
 def _close_all() -> None:
@@ -193,16 +256,25 @@ def _close_all() -> None:
         pool.close()
 
 
-def solver_pool(*, processes: int, blas_threads: int | None = None) -> SolverPool:
-    """The serving process's pool of that size (one per process, shared by its apps)."""
+def solver_pool(
+    *,
+    processes: int,
+    blas_threads: int | None = None,
+    lane: str = "light",
+    niceness: int = 0,
+    max_waiting: int | None = None,
+) -> SolverPool:
+    """The serving process's pool of that lane and size (one per process, shared by its apps)."""
     threads = blas_threads if blas_threads is not None else _blas_threads_from_env()
     with _pools_lock:
-        key = (os.getpid(), processes)
+        key = (os.getpid(), lane, processes, niceness, max_waiting)
         pool = _pools.get(key)
         if pool is None:
             if not _pools:
                 atexit.register(_close_all)
-            pool = _pools[key] = SolverPool(processes=processes, blas_threads=threads)
+            pool = _pools[key] = SolverPool(
+                processes=processes, blas_threads=threads, niceness=niceness, max_waiting=max_waiting
+            )
         return pool
 
 
@@ -214,25 +286,66 @@ def _blas_threads_from_env() -> int:
         return 1
 
 
+@dataclass(frozen=True)
+class Lanes:
+    """The light and the heavy pool, and the work that sends a request to the heavy one."""
+
+    light: SolverPool
+    heavy: SolverPool
+    heavy_work: float
+
+    def pick(self, work: float) -> tuple[SolverPool, str]:
+        """The pool for a request of ``work`` operations, and the lane's name."""
+        return (self.heavy, "heavy") if work > self.heavy_work else (self.light, "light")
+
+    def start(self) -> None:
+        """Start both pools' processes now (idempotent)."""
+        self.light.start()
+        self.heavy.start()
+
+
+def solver_lanes(settings: Any) -> Lanes:
+    """The serving process's two lanes for these settings (``service.api.settings.Settings``)."""
+    light = settings.solver_processes or default_solver_processes()
+    return Lanes(
+        light=solver_pool(processes=light, lane="light"),
+        heavy=solver_pool(
+            processes=settings.heavy_solver_processes,
+            lane="heavy",
+            niceness=settings.heavy_niceness,
+            max_waiting=settings.heavy_queue,
+        ),
+        heavy_work=float(settings.heavy_work),
+    )
+
+
 class Budget:
     """The compute time left to one request; every solver call of the request draws on it."""
 
-    def __init__(self, pool: SolverPool, *, seconds: float) -> None:
-        self.pool = pool
+    def __init__(self, lanes: Lanes | SolverPool, *, seconds: float) -> None:
+        self.lanes = lanes if isinstance(lanes, Lanes) else Lanes(light=lanes, heavy=lanes, heavy_work=float("inf"))
+        self.pool = self.lanes.light
         self.seconds = seconds
         self.deadline = time.monotonic() + seconds
 
-    def run(self, call: Callable[..., T], *args: Any, operation: str) -> T:
-        """Run ``call(*args)`` in a solver process within the budget; record its time."""
-        value, spent = self.pool.run(call, args, deadline=self.deadline, seconds=self.seconds)
+    def run(self, call: Callable[..., T], *args: Any, operation: str, work: float | None = None) -> T:
+        """Run ``call(*args)`` in a solver process of its lane within the budget; record its time.
+
+        ``work`` (operations) chooses the lane; by default it is estimated from the first
+        argument when that is a request model (:func:`service.pipeline.caps.request_work`).
+        """
+        if work is None:
+            work = request_work(args[0]) if args and isinstance(args[0], BaseModel) else 0.0
+        pool, lane = self.lanes.pick(work)
+        value, spent = pool.run(call, args, deadline=self.deadline, seconds=self.seconds)
         SOLVER_SECONDS.labels(operation=operation).observe(spent)
+        LANE_REQUESTS.labels(lane=lane).inc()
         return value
 
 
 def get_budget(settings: SettingsDep) -> Budget:
-    """A fresh budget of ``request_timeout_seconds`` for this request."""
-    pool = solver_pool(processes=settings.solver_processes)
-    return Budget(pool, seconds=settings.request_timeout_seconds)
+    """A fresh budget of ``request_timeout_seconds`` for this request, over the two lanes."""
+    return Budget(solver_lanes(settings), seconds=settings.request_timeout_seconds)
 
 
 BudgetDep = Annotated[Budget, Depends(get_budget)]

@@ -30,7 +30,7 @@ from fastapi.responses import JSONResponse
 from starlette.middleware.cors import CORSMiddleware
 
 from service.api import metrics
-from service.api.compute import SolverCrashed, TimeLimitExceeded, solver_pool
+from service.api.compute import HeavyLaneFull, SolverCrashed, TimeLimitExceeded, solver_lanes
 from service.api.middleware import REQUEST_ID_HEADER, BodyLimitMiddleware, RequestContextMiddleware
 from service.api.problems import PROBLEM_JSON, problem_response
 from service.api.security import OPEN_PATHS, ApiKeyMiddleware, KeyRing
@@ -93,7 +93,19 @@ def _install_handlers(app: FastAPI) -> None:
             "internal-error", 500, "The service failed to answer; the error is logged.", request.url.path
         )
 
+    async def _lane_full(request: Request, exc: Exception) -> JSONResponse:
+        assert isinstance(exc, HeavyLaneFull)
+        return problem_response(
+            "busy",
+            503,
+            f"The service's lane for large computations is full ({exc.waiting} large requests are "
+            "already waiting). Retry later, or make the request smaller.",
+            request.url.path,
+            headers={"Retry-After": "5"},
+        )
+
     app.add_exception_handler(TimeLimitExceeded, _time_limit)
+    app.add_exception_handler(HeavyLaneFull, _lane_full)
     app.add_exception_handler(SolverCrashed, _crashed)
 
 
@@ -132,7 +144,7 @@ def _wrap_lifespan(app: FastAPI, settings: Settings) -> None:
                 "no API key configured (MOVECAST_API_KEYS, MOVECAST_API_KEYS_FILE): "
                 "every endpoint is open to anyone who can reach this port"
             )
-        solver_pool(processes=settings.solver_processes).start()
+        solver_lanes(settings).start()
         async with inner(app_) as state:
             undo = _sigterm_hook(app_)
             try:

@@ -33,6 +33,7 @@ _TYPES = {
     "unauthorized": "Authentication required",
     "payload-too-large": "Request body too large",
     "time-limit": "Compute time limit exceeded",
+    "busy": "Too many large requests waiting",
 }
 
 
