@@ -3,6 +3,8 @@
     movecast serve [--host H] [--port P] [--workers N]   run the HTTP service (uvicorn)
     movecast design [FILE | -]                           print a design as JSON, no server
     movecast simulate [FILE | -] [--csv]                 print a simulated run as JSON (or CSV)
+    movecast identify FILE.csv --inputs A,B --outputs Y,Z --sample-time TS [...]
+                                                         fit a model to plant-test data, print JSON
     movecast openapi [--output FILE]                     print or write the OpenAPI document
 
 ``movecast design`` with no FILE designs the bundled example plant; ``movecast simulate``
@@ -56,12 +58,14 @@ def _run_offline(
     parse: Callable[[Any], BaseModel],
     answer: Callable[[Any], BaseModel],
     render: Callable[[Any], str] | None = None,
+    *,
+    read: Callable[[str | None], Any] | None = None,
 ) -> int:
     """Parse, check and answer one request without a server; print JSON (or ``render(response)``)."""
     from service.api.problems import validation_problems
 
     try:
-        request = parse(_read_request(source, example))
+        request = parse(read(source) if read is not None else _read_request(source, example))
         response = answer(request)
     except json.JSONDecodeError as exc:
         body = _problem("malformed-body", f"The request is not valid JSON: {exc}")
@@ -106,6 +110,45 @@ def _simulate(args: argparse.Namespace) -> int:
         lambda r: run_simulation(r, caps),
         simulation_csv if args.csv else None,
     )
+
+
+#: Options of ``movecast identify`` that are query parameters of POST /identify/csv.
+IDENTIFY_OPTIONS = (
+    "sample_time",
+    "inputs",
+    "outputs",
+    "disturbances",
+    "integrating",
+    "pairs",
+    "time_column",
+    "time_unit",
+    "structure",
+    "max_dead_time",
+    "settling_time",
+    "outlier_limit",
+    "validation_fraction",
+    "correlation_lags",
+)
+
+
+def _identify(args: argparse.Namespace) -> int:
+    from service.api.settings import Settings
+    from service.pipeline.identify import run_identify
+    from service.pipeline.identify_csv import identify_request_from_csv
+    from service.schemas.identify_csv import IdentifyCsvOptions
+
+    caps = Settings().caps()
+    chosen = {name: getattr(args, name) for name in IDENTIFY_OPTIONS if getattr(args, name) is not None}
+    if args.detrend:
+        chosen["detrend"] = True
+
+    def read(_: object) -> bytes:
+        return sys.stdin.buffer.read() if args.file == "-" else Path(args.file).read_bytes()
+
+    def parse(body: Any) -> BaseModel:
+        return identify_request_from_csv(body, IdentifyCsvOptions.model_validate(chosen))
+
+    return _run_offline(args.file, "", parse, lambda r: run_identify(r, caps), read=read)
 
 
 def _positive_env(name: str, default: int) -> int:
@@ -199,6 +242,25 @@ def build_parser() -> argparse.ArgumentParser:
     )
     simulate.add_argument("--csv", action="store_true", help="print the time series as CSV instead")
     simulate.set_defaults(run=_simulate)
+
+    identify = commands.add_parser("identify", help="fit a model to plant-test data (CSV) without a server")
+    identify.add_argument("file", help="CSV file with a header row of tags, '-' for standard input")
+    identify.add_argument("--inputs", required=True, help="manipulated inputs, comma-separated")
+    identify.add_argument("--outputs", required=True, help="controlled outputs, comma-separated")
+    identify.add_argument("--sample-time", dest="sample_time", type=float, required=True, help="sample time")
+    identify.add_argument("--disturbances", help="measured disturbances, comma-separated")
+    identify.add_argument("--integrating", help="outputs that integrate, comma-separated")
+    identify.add_argument("--pairs", help="single pairs as output:input:structure, comma-separated")
+    identify.add_argument("--time-column", dest="time_column", help="column of the time stamps")
+    identify.add_argument("--time-unit", dest="time_unit", choices=("s", "min", "h"), help="unit of date-times")
+    identify.add_argument("--structure", choices=("first_order_dead_time", "second_order_dead_time"))
+    identify.add_argument("--detrend", action="store_true", help="fit a linear drift per output")
+    identify.add_argument("--max-dead-time", dest="max_dead_time", type=float)
+    identify.add_argument("--settling-time", dest="settling_time", type=float)
+    identify.add_argument("--outlier-limit", dest="outlier_limit", type=float)
+    identify.add_argument("--validation-fraction", dest="validation_fraction", type=float)
+    identify.add_argument("--correlation-lags", dest="correlation_lags", type=int)
+    identify.set_defaults(run=_identify)
 
     openapi = commands.add_parser("openapi", help="print or write the OpenAPI document")
     openapi.add_argument("--output", help="write to this file instead of standard output")

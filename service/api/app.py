@@ -12,7 +12,7 @@ from service.api.deps import get_settings
 from service.api.docs import install_docs
 from service.api.operations import install_operations
 from service.api.problems import install_problem_handlers
-from service.api.routes import batch, compare, design, export, health, simulate, sweep, workbench
+from service.api.routes import batch, compare, design, export, health, identify, simulate, sweep, workbench
 from service.api.settings import Settings
 from service.schemas.design import ADVISORY
 
@@ -58,6 +58,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.include_router(health.router)
     app.include_router(batch.router)
     app.include_router(simulate.router)
+    app.include_router(identify.router)
     app.include_router(workbench.router)
     install_operations(app, chosen)  # last: it documents the routes included above
     return app

@@ -54,6 +54,15 @@ class Settings(BaseSettings):
         ge=1,
         description="Most estimated floating-point work of one frequency analysis (points x cost of a point).",
     )
+    max_identify_samples: int = Field(
+        default=100_000, ge=20, description="Most samples per column of one POST /identify (after resampling)."
+    )
+    max_identify_work: int = Field(
+        default=2_000_000_000,
+        ge=1,
+        description="Most estimated work of one POST /identify (samples x fitted parameters x a fixed 2 000 "
+        "simulated samples per parameter for the starts, iterations and Jacobians).",
+    )
 
     max_body_bytes: int = Field(
         default=1_048_576, ge=1024, description="Largest request body in bytes; larger ones get 413."
@@ -155,4 +164,6 @@ class Settings(BaseSettings):
             max_simulation_steps=self.max_simulation_steps,
             max_simulation_work=self.max_simulation_work,
             max_frequency_work=self.max_frequency_work,
+            max_identify_samples=self.max_identify_samples,
+            max_identify_work=self.max_identify_work,
         )

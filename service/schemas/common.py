@@ -91,6 +91,12 @@ class Caps:
     #: points times the floating-point operations of evaluating the loop there
     #: (``service.pipeline.robustness.frequency_work``); the same rough 5 s.
     max_frequency_work: int = 5_000_000_000
+    #: Most samples per column of one POST /identify (after resampling).
+    max_identify_samples: int = 100_000
+    #: Estimated work of one POST /identify: samples times fitted parameters times
+    #: ``service.pipeline.identify.WORK_PER_PARAMETER`` (simulated samples per parameter over the
+    #: starts, iterations and Jacobians); the default is some 10 s of one core.
+    max_identify_work: int = 2_000_000_000
 
 
 def pointer(*parts: str | int) -> str:

@@ -96,6 +96,7 @@ __all__ = [
     "StateRole",
     "TransferElement",
     "delay_samples",
+    "sampled_element",
     "stiffness_ratio",
     "transfer_matrix_model",
     "transfer_state_count",
@@ -343,6 +344,23 @@ def _sampled(
     phi = phi_late @ phi_early
     gamma1 = phi_late @ gamma_early
     return phi, phi @ gamma0 + gamma1, cc, float((cc @ gamma0 + dc)[0, 0]), whole + 1
+
+
+def sampled_element(
+    element: TransferElement, sample_time: float, *, pointer: str = "/model/elements"
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], float, int]:
+    """One element sampled exactly: ``(Phi, Gamma, C, D)`` driven by the input ``h`` samples back.
+
+    ``xi(k+1) = Phi xi(k) + Gamma u(k-h)``, ``y(k) = C xi(k) + D u(k-h)`` (the module
+    docstring: a fractional dead time adds one whole sample to ``h`` and changes ``Gamma``
+    and ``D``).  Shapes ``(k, k)``, ``(k, 1)``, ``(1, k)`` with ``k`` the element's order.
+
+    Raises
+    ------
+    service.errors.NumericalError
+        A time constant too short to sample (see :data:`STIFFNESS_LIMIT`).
+    """
+    return _sampled(element, sample_time, pointer)
 
 
 Rows = list[list[TransferElement | None]]

@@ -1,0 +1,670 @@
+"""POST /identify: check the plant-test data, fit each output, answer with a /design model.
+
+``check_identify -> IdentifyInputs``, ``compute_identify -> IdentifyOutcome``,
+``identify_response``; ``run_identify`` does all three.  Every check names its field by
+JSON pointer; the solver sees only clean arrays.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from numpy.typing import NDArray
+
+from service.errors import FieldProblem, InvalidRequest, NumericalError
+from service.schemas.common import Caps, pointer
+from service.schemas.design import WarningReport
+from service.schemas.identify import (
+    CorrelationReport,
+    CrossCorrelationReport,
+    DataReport,
+    IdentifyRequest,
+    IdentifyResponse,
+    OutputFitReport,
+    PairFitReport,
+    ParameterReport,
+    SegmentFitReport,
+    StepSeriesReport,
+    TagDataReport,
+)
+from service.schemas.model import TransferElementModel, TransferMatrixModel
+from service.schemas.signals import SignalTag
+from service.solver.identification.data import hold_missing, resample_held, resample_interpolated, sample_grid
+from service.solver.identification.diagnostics import find_outliers, fit_measures, residual_correlations
+from service.solver.identification.least_squares import OutputFit, PairSpec, fit_output
+from service.solver.identification.process_models import STRUCTURES, element_of, step_values
+from service.solver.identification.subspace import SubspaceModel, moesp
+
+__all__ = [
+    "MIN_SAMPLES",
+    "WORK_PER_PARAMETER",
+    "IdentifyInputs",
+    "IdentifyOutcome",
+    "check_identify",
+    "compute_identify",
+    "identify_response",
+    "identify_work",
+    "run_identify",
+]
+
+#: Fewest samples a fit takes (after the held-out segment).
+MIN_SAMPLES = 20
+#: Simulated samples per fitted parameter and data sample, over the three starts, their
+#: iterations and Jacobians (a rough count; the work cap multiplies by it).
+WORK_PER_PARAMETER = 2_000
+#: An input whose range is below this share of its magnitude (and of 1e-12) did not move.
+STILL = 1e-9
+#: A gain whose standard error exceeds this share of it counts as not identified.
+WEAK_GAIN = 0.25
+#: Inputs whose moves correlate more than this are reported.
+CORRELATED = 0.9
+#: Integrating variant of each structure (same order).
+INTEGRATING = {
+    "first_order_dead_time": "integrating_dead_time",
+    "second_order_dead_time": "integrating_first_order_dead_time",
+}
+
+
+@dataclass(frozen=True)
+class ColumnNote:
+    """What was found in one column of the data."""
+
+    tag: str
+    missing: NDArray[np.int64]
+    outliers: NDArray[np.int64]
+    handling: str
+
+
+@dataclass(frozen=True)
+class IdentifyInputs:
+    """The checked data as arrays, with what was found in it."""
+
+    sample_time: float
+    inputs: tuple[str, ...]
+    disturbances: tuple[str, ...]
+    outputs: tuple[str, ...]
+    columns: NDArray[np.float64]
+    """Inputs then disturbances, ``(N, M)``, absolute values, missing samples held."""
+    operating_point: NDArray[np.float64]
+    """Of the columns: their values at the first sample, ``(M,)``."""
+    structure: str
+    order: int | None
+    block_rows: int
+    outputs_data: NDArray[np.float64]
+    """``(N, p)``, ``nan`` where missing or an outlier."""
+    pairs: tuple[tuple[PairSpec, ...], ...]
+    """Per output, the pairs to fit."""
+    integrating: tuple[bool, ...]
+    estimation: int
+    """Samples of the fit (the first ones); the rest is held out."""
+    max_dead_time: float
+    settling_samples: int
+    detrend: bool
+    lags: int
+    notes: tuple[ColumnNote, ...]
+    resampling: str | None
+    warnings: tuple[WarningReport, ...]
+
+
+@dataclass(frozen=True)
+class IdentifyOutcome:
+    """The fits per output, or the subspace model."""
+
+    fits: tuple[OutputFit, ...]
+    warnings: tuple[WarningReport, ...] = field(default=())
+    subspace: SubspaceModel | None = None
+
+
+def identify_work(samples: int, parameters: int) -> int:
+    """Estimated work of a fit: samples x parameters x :data:`WORK_PER_PARAMETER`."""
+    return samples * parameters * WORK_PER_PARAMETER
+
+
+def _tag_problems(request: IdentifyRequest) -> list[FieldProblem]:
+    problems: list[FieldProblem] = []
+    seen: dict[str, str] = {}
+    for group in ("inputs", "outputs", "disturbances"):
+        for i, tag in enumerate(getattr(request, group)):
+            if tag in seen:
+                problems.append(FieldProblem(pointer(group, i), f"tag {tag!r} is listed twice (also in {seen[tag]})"))
+                continue
+            seen[tag] = group
+            if tag not in request.data:
+                problems.append(FieldProblem(pointer(group, i), f"tag {tag!r} has no column in data"))
+    for i, tag in enumerate(request.integrating):
+        if tag not in request.outputs:
+            problems.append(FieldProblem(pointer("integrating", i), f"{tag!r} is not one of the outputs"))
+    columns = set(request.inputs) | set(request.disturbances)
+    for i, pair in enumerate(request.pairs):
+        if pair.output not in request.outputs:
+            problems.append(FieldProblem(pointer("pairs", i, "output"), f"{pair.output!r} is not one of the outputs"))
+        if pair.input not in columns:
+            problems.append(
+                FieldProblem(pointer("pairs", i, "input"), f"{pair.input!r} is not an input or a disturbance")
+            )
+        integrating = pair.output in request.integrating
+        if pair.structure != "none" and pair.structure.startswith("integrating") != integrating:
+            what = "is listed as integrating" if integrating else "is not listed as integrating"
+            problems.append(
+                FieldProblem(
+                    pointer("pairs", i, "structure"),
+                    f"{pair.output!r} {what}; its pairs take {'an' if integrating else 'a non-'}integrating structure",
+                )
+            )
+    return problems
+
+
+def _columns(
+    request: IdentifyRequest, caps: Caps
+) -> tuple[dict[str, NDArray[np.float64]], str | None, list[FieldProblem]]:
+    """The used columns on the sample time: resampled when a time column says so."""
+    used = [*request.inputs, *request.disturbances, *request.outputs]
+    lengths = {tag: len(request.data[tag]) for tag in used}
+    n = max(lengths.values())
+    problems = [
+        FieldProblem(pointer("data", tag), f"{length} values; the longest column has {n}")
+        for tag, length in lengths.items()
+        if length != n
+    ]
+    if problems:
+        return {}, None, problems
+    raw = {tag: np.array([np.nan if v is None else v for v in request.data[tag]], dtype=float) for tag in used}
+    ts = float(request.sample_time)
+    if request.time is None:
+        if n > caps.max_identify_samples:
+            return (
+                {},
+                None,
+                [
+                    FieldProblem(
+                        pointer("data"), f"{n} samples; this service accepts at most {caps.max_identify_samples}"
+                    )
+                ],
+            )
+        return raw, None, []
+    time = np.array(request.time, dtype=float)
+    if time.size != n:
+        return {}, None, [FieldProblem(pointer("time"), f"{time.size} time stamps for {n} samples")]
+    steps = np.diff(time)
+    if np.any(steps <= 0):
+        k = int(np.argmax(steps <= 0)) + 1
+        return {}, None, [FieldProblem(pointer("time", k), "time stamps must increase strictly")]
+    if np.allclose(steps, ts, rtol=1e-6, atol=0.0):
+        return raw, None, []
+    grid = sample_grid(time, ts)
+    if grid.size > caps.max_identify_samples:
+        return (
+            {},
+            None,
+            [
+                FieldProblem(
+                    pointer("time"),
+                    f"{grid.size} samples at this sample time; this service accepts at most {caps.max_identify_samples}",
+                )
+            ],
+        )
+    out = {}
+    for tag in used:
+        if tag in request.outputs:
+            out[tag] = resample_interpolated(time, raw[tag], grid, sample_time=ts)
+        else:
+            out[tag] = resample_held(time, raw[tag], grid)
+    median = float(np.median(steps))
+    how = (
+        f"{n} samples {median:g} apart (median{', irregular' if not np.allclose(steps, median, rtol=1e-3) else ''}) put "
+        f"on {grid.size} instants {ts:g} apart: inputs and disturbances take the last value at or before each "
+        f"instant (zero-order hold), outputs the linear interpolation between the samples on either side "
+        f"(missing across a missing sample or a gap longer than two sample times)"
+    )
+    return out, how, []
+
+
+def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
+    """Check the request against itself and the caps; clean the data and say how.
+
+    Raises
+    ------
+    InvalidRequest
+        Naming each field by JSON pointer.
+    """
+    problems = _tag_problems(request)
+    if problems:
+        raise InvalidRequest(problems)
+    data, resampling, problems = _columns(request, caps)
+    if problems:
+        raise InvalidRequest(problems)
+    ts = float(request.sample_time)
+    column_tags = [*request.inputs, *request.disturbances]
+    n = data[request.outputs[0]].size
+    held_out = int(np.floor(n * request.validation.fraction)) if request.validation else 0
+    estimation = n - held_out
+    if estimation < MIN_SAMPLES:
+        raise InvalidRequest(
+            [FieldProblem(pointer("data"), f"{estimation} samples to fit; at least {MIN_SAMPLES} are needed")]
+        )
+    notes: list[ColumnNote] = []
+    warnings: list[WarningReport] = []
+    columns = np.zeros((n, len(column_tags)))
+    still: set[str] = set()
+    for j, tag in enumerate(column_tags):
+        values = data[tag]
+        missing = np.nonzero(~np.isfinite(values))[0]
+        if missing.size == n:
+            raise InvalidRequest([FieldProblem(pointer("data", tag), "every value is missing")])
+        held, _ = hold_missing(values)
+        columns[:, j] = held
+        handling = "held at the last valid value (the first valid one before it)" if missing.size else "none needed"
+        notes.append(ColumnNote(tag, missing, np.zeros(0, dtype=np.int64), handling))
+        if missing.size:
+            warnings.append(
+                WarningReport(
+                    code="missing_samples",
+                    message=f"{tag} has {missing.size} missing samples; each holds the last valid value",
+                )
+            )
+        part = held[:estimation]
+        if np.ptp(part) <= STILL * max(float(np.max(np.abs(part))), 1e-12):
+            still.add(tag)
+    operating_point = columns[0].copy()
+    outputs = np.zeros((n, len(request.outputs)))
+    for i, tag in enumerate(request.outputs):
+        values = data[tag].copy()
+        missing = np.nonzero(~np.isfinite(values))[0]
+        if n - missing.size < MIN_SAMPLES:
+            raise InvalidRequest(
+                [
+                    FieldProblem(
+                        pointer("data", tag),
+                        f"only {n - missing.size} values present; at least {MIN_SAMPLES} are needed",
+                    )
+                ]
+            )
+        outliers = (
+            np.nonzero(find_outliers(values, limit=request.outlier_limit))[0]
+            if request.outlier_limit is not None
+            else np.zeros(0, dtype=np.int64)
+        )
+        values[outliers] = np.nan
+        outputs[:, i] = values
+        parts = []
+        if missing.size:
+            parts.append(f"{missing.size} missing")
+        if outliers.size:
+            parts.append(f"{outliers.size} outliers (beyond {request.outlier_limit:g} robust standard deviations)")
+        handling = "left out of the fit" if parts else "none needed"
+        notes.append(ColumnNote(tag, missing, outliers, handling))
+        if parts:
+            warnings.append(
+                WarningReport(
+                    code="samples_left_out", message=f"{tag}: {' and '.join(parts)} samples left out of the fit"
+                )
+            )
+    overrides = {(p.output, p.input): p.structure for p in request.pairs}
+    pairs: list[tuple[PairSpec, ...]] = []
+    parameters = 0
+    block_rows = 0
+    if request.structure == "subspace":
+        block_rows, parameters = _subspace_checks(request, column_tags, outputs, estimation, still)
+    for tag in request.outputs if request.structure != "subspace" else ():
+        integrating = tag in request.integrating
+        default = INTEGRATING[request.structure] if integrating else request.structure
+        row = []
+        for j, column in enumerate(column_tags):
+            structure = overrides.get((tag, column), default)
+            if structure == "none":
+                continue
+            if column in still:
+                warnings.append(
+                    WarningReport(
+                        code="input_did_not_move",
+                        message=f"input {column} did not move during the test, so its effect on {tag} cannot be "
+                        f"identified; the pair is left out of the model (null)",
+                    )
+                )
+                continue
+            row.append(PairSpec(j, structure))
+            parameters += len(STRUCTURES[structure])
+        if not row:
+            i = request.outputs.index(tag)
+            raise InvalidRequest(
+                [
+                    FieldProblem(
+                        pointer("outputs", i), f"no input moved during the test, so nothing acts on {tag} to fit"
+                    )
+                ]
+            )
+        pairs.append(tuple(row))
+        parameters += 2 if request.detrend else 1
+    work = identify_work(estimation, parameters)
+    if work > caps.max_identify_work:
+        raise InvalidRequest(
+            [
+                FieldProblem(
+                    pointer("data"),
+                    f"fitting {parameters} parameters to {estimation} samples is estimated at {work:.3g} units of work; "
+                    f"this service accepts at most {caps.max_identify_work:.3g}. Use a longer sample time, a shorter "
+                    f"record or fewer pairs",
+                )
+            ]
+        )
+    moves = np.diff(columns[:estimation], axis=0)
+    for a in range(len(column_tags)):
+        for b in range(a + 1, len(column_tags)):
+            if column_tags[a] in still or column_tags[b] in still:
+                continue
+            r = float(np.corrcoef(moves[:, a], moves[:, b])[0, 1])
+            if abs(r) > CORRELATED:
+                warnings.append(
+                    WarningReport(
+                        code="correlated_inputs",
+                        message=f"inputs {column_tags[a]} and {column_tags[b]} moved together (correlation of their "
+                        f"moves {r:.2f}); their separate effects are poorly determined: move them independently",
+                    )
+                )
+    record = estimation * ts
+    max_dead = float(request.max_dead_time) if request.max_dead_time is not None else record / 3.0
+    settling = float(request.settling_time) if request.settling_time is not None else record / 4.0
+    return IdentifyInputs(
+        structure=request.structure,
+        order=request.order,
+        block_rows=block_rows,
+        sample_time=ts,
+        inputs=tuple(request.inputs),
+        disturbances=tuple(request.disturbances),
+        outputs=tuple(request.outputs),
+        columns=columns,
+        operating_point=operating_point,
+        outputs_data=outputs,
+        pairs=tuple(pairs),
+        integrating=tuple(tag in request.integrating for tag in request.outputs),
+        estimation=estimation,
+        max_dead_time=max_dead,
+        settling_samples=max(2, int(np.ceil(settling / ts))),
+        detrend=request.detrend,
+        lags=request.correlation_lags,
+        notes=tuple(notes),
+        resampling=resampling,
+        warnings=tuple(warnings),
+    )
+
+
+def _subspace_checks(
+    request: IdentifyRequest,
+    column_tags: list[str],
+    outputs: NDArray[np.float64],
+    estimation: int,
+    still: set[str],
+) -> tuple[int, int]:
+    """Block rows and a parameter count of a subspace fit; every output sample must be there."""
+    problems = []
+    for i, tag in enumerate(request.outputs):
+        gaps = np.nonzero(~np.isfinite(outputs[:estimation, i]))[0]
+        if gaps.size:
+            problems.append(
+                FieldProblem(
+                    pointer("data", tag, int(gaps[0])),
+                    f"the subspace fit needs every sample of the outputs, and {tag} misses {gaps.size} (missing or "
+                    f"outliers) from here on: cut the record, or fit first_order_dead_time pairs",
+                )
+            )
+    for tag in column_tags:
+        if tag in still:
+            problems.append(
+                FieldProblem(
+                    pointer("data", tag), f"{tag} did not move during the test; leave it out of a subspace fit"
+                )
+            )
+    width = len(column_tags) + len(request.outputs)
+    largest = (estimation - 1) // (2 * (width + 1)) - 1
+    rows = request.block_rows if request.block_rows is not None else min(20, largest)
+    if rows < 2 or rows > largest:
+        problems.append(
+            FieldProblem(
+                pointer("block_rows"),
+                f"{estimation} samples of {width} signals allow 2 to {max(largest, 2)} block rows"
+                + ("" if largest >= 2 else "; the record is too short for a subspace fit"),
+            )
+        )
+    elif request.order is not None and request.order >= rows * len(request.outputs):
+        problems.append(
+            FieldProblem(
+                pointer("order"), f"the order must be below block_rows x outputs ({rows * len(request.outputs)})"
+            )
+        )
+    if problems:
+        raise InvalidRequest(problems)
+    # The QR factorization of the stacked Hankel matrices dominates: about samples x (2 s w)^2 operations.
+    return rows, max(1, (2 * rows * width) ** 2 // WORK_PER_PARAMETER)
+
+
+def compute_identify(inputs: IdentifyInputs) -> IdentifyOutcome:
+    """Fit every output's pairs by nonlinear least squares (or the subspace model)."""
+    n = inputs.columns.shape[0]
+    if inputs.structure == "subspace":
+        deviations = inputs.columns - inputs.operating_point
+        e = inputs.estimation
+        with np.errstate(all="ignore"):
+            model = moesp(deviations[:e], inputs.outputs_data[:e], block_rows=inputs.block_rows, order=inputs.order)
+        if not all(np.all(np.isfinite(x)) for x in (model.a, model.b, model.c, model.fitted)):
+            raise NumericalError(
+                "The subspace fit failed: its matrices are not finite. Check the data", pointer="/data"
+            )
+        return IdentifyOutcome(fits=(), subspace=model)
+    deviations = inputs.columns - inputs.operating_point
+    used = np.zeros(n, dtype=bool)
+    used[: inputs.estimation] = True
+    fits = []
+    for i, pairs in enumerate(inputs.pairs):
+        y = inputs.outputs_data[:, i]
+        fit: OutputFit | None = None
+        try:
+            with np.errstate(all="ignore"):
+                fit = fit_output(
+                    y,
+                    deviations,
+                    pairs,
+                    sample_time=inputs.sample_time,
+                    used=used & np.isfinite(y),
+                    max_dead_time=inputs.max_dead_time,
+                    settling_samples=inputs.settling_samples,
+                    integrating=inputs.integrating[i],
+                    detrend=inputs.detrend,
+                )
+        except (ValueError, np.linalg.LinAlgError, FloatingPointError, AssertionError) as exc:
+            fit, finite = None, False
+            reason = str(exc) or type(exc).__name__
+        else:
+            finite = bool(all(np.all(np.isfinite(t)) for t in fit.parameters) and np.all(np.isfinite(fit.fitted)))
+            reason = "the fitted parameters are not finite"
+        if fit is None or not finite:
+            raise NumericalError(
+                f"The fit of {inputs.outputs[i]} failed ({reason}): the data overflow double precision or the "
+                f"pairs cannot be told apart. Check the units and the magnitudes of the columns",
+                pointer=pointer("data", inputs.outputs[i]),
+            )
+        fits.append(fit)
+    return IdentifyOutcome(fits=tuple(fits))
+
+
+def _number(value: float) -> float | None:
+    return float(value) if np.isfinite(value) else None
+
+
+def _parameter(name: str, estimate: float, error: float, at_bound: bool = False) -> ParameterReport:
+    return ParameterReport(name=name, estimate=float(estimate), standard_error=_number(error), at_bound=bool(at_bound))
+
+
+def _segment(y: NDArray[np.float64], fitted: NDArray[np.float64], used: NDArray[np.bool_]) -> SegmentFitReport:
+    fit, r2 = fit_measures(y, fitted, used)
+    return SegmentFitReport(samples=int(used.sum()), nrmse_fit_percent=_number(fit), r_squared=_number(r2))
+
+
+def _step_steps(structure: str, theta: NDArray[np.float64], sample_time: float, cap: int) -> int:
+    names = STRUCTURES[structure]
+    values = dict(zip(names, theta, strict=True))
+    lags = sum(v for k, v in values.items() if k.startswith("time_constant"))
+    return int(min(cap, max(10, np.ceil((values["dead_time"] + 5.0 * lags) / sample_time) + 2)))
+
+
+def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> IdentifyResponse:
+    """The answer: the model for /design, the operating point, parameters, fits and checks."""
+    if outcome.subspace is not None:
+        from service.pipeline.identify_subspace import subspace_response
+
+        return subspace_response(inputs, outcome.subspace, data_report(inputs))
+    ts = inputs.sample_time
+    column_tags = [*inputs.inputs, *inputs.disturbances]
+    m = len(inputs.inputs)
+    n = inputs.columns.shape[0]
+    deviations = inputs.columns - inputs.operating_point
+    warnings = list(inputs.warnings) + list(outcome.warnings)
+    elements: list[list[TransferElementModel | None]] = []
+    disturbance_elements: list[list[TransferElementModel | None]] = []
+    pair_reports: list[PairFitReport] = []
+    fit_reports: list[OutputFitReport] = []
+    steps: list[StepSeriesReport] = []
+    operating_point = {tag: float(v) for tag, v in zip(column_tags, inputs.operating_point, strict=True)}
+    estimation = np.zeros(n, dtype=bool)
+    estimation[: inputs.estimation] = True
+    for i, (tag, pairs, fit) in enumerate(zip(inputs.outputs, inputs.pairs, outcome.fits, strict=True)):
+        row: list[TransferElementModel | None] = [None] * len(column_tags)
+        for spec, theta, error, bound in zip(pairs, fit.parameters, fit.standard_errors, fit.at_bound, strict=True):
+            column = column_tags[spec.column]
+            element = element_of(spec.structure, theta)
+            row[spec.column] = TransferElementModel(
+                gain=element.gain,
+                time_constants=list(element.time_constants),
+                dead_time=element.dead_time,
+                integrating=element.integrating,
+            )
+            names = STRUCTURES[spec.structure]
+            pair_reports.append(
+                PairFitReport(
+                    output=tag,
+                    input=column,
+                    structure=spec.structure,
+                    parameters=[_parameter(*z) for z in zip(names, theta, error, bound, strict=True)],
+                )
+            )
+            gain, gain_error = float(theta[0]), float(error[0])
+            if not np.isfinite(gain_error) or gain_error > WEAK_GAIN * abs(gain):
+                warnings.append(
+                    WarningReport(
+                        code="weak_excitation",
+                        message=f"input {column} moved too little to identify its effect on {tag}: gain "
+                        f"{gain:.4g} with a standard error of {gain_error:.2g}. Repeat the test with larger "
+                        f"or more moves of {column}, or leave the pair out (structure 'none')",
+                    )
+                )
+            for name, flag in zip(names, bound, strict=True):
+                if flag and name == "dead_time" and theta[names.index("dead_time")] > 0:
+                    warnings.append(
+                        WarningReport(
+                            code="parameter_at_bound",
+                            message=f"the dead time of {tag} from {column} ended at its limit "
+                            f"({inputs.max_dead_time:g}); raise max_dead_time or check the data",
+                        )
+                    )
+            count = _step_steps(spec.structure, theta, ts, 2000)
+            steps.append(
+                StepSeriesReport(
+                    output=tag,
+                    input=column,
+                    time=(ts * np.arange(count + 1)).tolist(),
+                    value=step_values(spec.structure, theta, count, sample_time=ts).tolist(),
+                )
+            )
+        elements.append(row[:m])
+        disturbance_elements.append(row[m:])
+        y = inputs.outputs_data[:, i]
+        present = np.isfinite(y)
+        residuals = np.where(present, y - fit.fitted, 0.0)
+        used = estimation & present
+        auto, cross = residual_correlations(residuals, used, deviations, lags=inputs.lags)
+        if auto.outside > max(1, inputs.lags // 10):
+            warnings.append(
+                WarningReport(
+                    code="residuals_correlated",
+                    message=f"the residuals of {tag} are correlated ({auto.outside} of {inputs.lags} lags outside "
+                    f"the 99 % bound): the model leaves dynamics unexplained (try second_order_dead_time, "
+                    f"detrend, or look for unmeasured disturbances)",
+                )
+            )
+        validation = None
+        if inputs.estimation < n:
+            validation = _segment(y, fit.fitted, ~estimation & present)
+        operating_point[tag] = fit.offset
+        fit_reports.append(
+            OutputFitReport(
+                output=tag,
+                estimation=_segment(y, fit.fitted, used),
+                validation=validation,
+                residual_std=fit.residual_std,
+                offset=_parameter("offset", fit.offset, fit.offset_error),
+                drift=None
+                if fit.drift is None
+                else _parameter("drift", fit.drift, fit.drift_error if fit.drift_error is not None else np.nan),
+                autocorrelation=CorrelationReport(
+                    lags=auto.lags.tolist(), values=auto.values.tolist(), bound=auto.bound, outside=auto.outside
+                ),
+                cross_correlation=[
+                    CrossCorrelationReport(
+                        input=column,
+                        lags=c.lags.tolist(),
+                        values=c.values.tolist(),
+                        bound=c.bound,
+                        outside=c.outside,
+                    )
+                    for column, c in zip(column_tags, cross, strict=True)
+                ],
+            )
+        )
+    model = TransferMatrixModel(
+        kind="transfer_matrix",
+        sample_time=ts,
+        elements=elements,
+        disturbance_elements=disturbance_elements if inputs.disturbances else None,
+        inputs=[SignalTag(name=t) for t in inputs.inputs],
+        outputs=[SignalTag(name=t) for t in inputs.outputs],
+        disturbances=[SignalTag(name=t) for t in inputs.disturbances] if inputs.disturbances else None,
+    )
+    data = data_report(inputs)
+    return IdentifyResponse(
+        model=model,
+        operating_point=operating_point,
+        pairs=pair_reports,
+        fits=fit_reports,
+        step_responses=steps,
+        data=data,
+        warnings=warnings,
+    )
+
+
+def data_report(inputs: IdentifyInputs) -> DataReport:
+    """What was found in the data and done with it."""
+    n = inputs.columns.shape[0]
+    return DataReport(
+        samples=n,
+        sample_time=inputs.sample_time,
+        resampling=inputs.resampling,
+        estimation_samples=inputs.estimation,
+        validation_samples=n - inputs.estimation,
+        tags=[
+            TagDataReport(
+                tag=note.tag,
+                missing=int(note.missing.size),
+                outliers=int(note.outliers.size),
+                first_missing=note.missing[:20].tolist(),
+                first_outliers=note.outliers[:20].tolist(),
+                handling=note.handling,
+            )
+            for note in inputs.notes
+        ],
+    )
+
+
+def run_identify(request: IdentifyRequest, caps: Caps) -> IdentifyResponse:
+    """Check, fit, answer."""
+    inputs = check_identify(request, caps)
+    return identify_response(inputs, compute_identify(inputs))

@@ -1,0 +1,159 @@
+"""A historian's CSV export (header row of tags, a time column) as an identification request.
+
+Cells that are empty or read ``nan``, ``null``, ``NA`` or ``-`` are missing values.  Time
+stamps are numbers in the time unit, or ISO 8601 date-times converted to seconds, minutes or
+hours from the first one.  Every problem names the column and row (``/data/TAG/ROW``, rows
+from 0 below the header) or the query parameter.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import math
+from datetime import datetime
+
+from pydantic import ValidationError
+
+from service.errors import FieldProblem, InvalidRequest
+from service.schemas.common import pointer
+from service.schemas.identify import IdentifyRequest
+from service.schemas.identify_csv import IdentifyCsvOptions
+
+__all__ = ["MISSING", "identify_request_from_csv"]
+
+#: Cell texts read as a missing value (case-insensitive, after stripping).
+MISSING = frozenset({"", "nan", "null", "na", "n/a", "-", "none"})
+SECONDS = {"s": 1.0, "min": 60.0, "h": 3600.0}
+
+
+def _tags(text: str) -> list[str]:
+    return [t.strip() for t in text.split(",") if t.strip()]
+
+
+def _number(cell: str) -> float | None:
+    text = cell.strip()
+    if text.lower() in MISSING:
+        return None
+    value = float(text)
+    if not math.isfinite(value):
+        raise ValueError(text)
+    return value
+
+
+def _times(cells: list[str], options: IdentifyCsvOptions, column: str) -> list[float]:
+    try:
+        return [float(c) for c in cells]
+    except ValueError:
+        pass
+    stamps = []
+    for k, cell in enumerate(cells):
+        try:
+            stamps.append(datetime.fromisoformat(cell.strip()))
+        except ValueError:
+            raise InvalidRequest(
+                [FieldProblem(pointer("data", column, k), f"{cell!r} is neither a number nor an ISO 8601 date-time")]
+            ) from None
+    try:
+        first = stamps[0]
+        scale = SECONDS[options.time_unit]
+        return [(s - first).total_seconds() / scale for s in stamps]
+    except TypeError:
+        raise InvalidRequest(
+            [FieldProblem(pointer("data", column), "time stamps mix dates with and without a time zone")]
+        ) from None
+
+
+def identify_request_from_csv(body: bytes, options: IdentifyCsvOptions) -> IdentifyRequest:
+    """Build the JSON request of POST /identify from a CSV body and the query's choices.
+
+    Raises
+    ------
+    InvalidRequest
+        The CSV cannot be read, a cell is not a number, or the assembled request is invalid.
+    """
+    try:
+        text = body.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise InvalidRequest([FieldProblem("/body", f"the CSV is not UTF-8 text (byte {exc.start})")]) from None
+    try:
+        sample = text[:4096]
+        dialect: type[csv.Dialect] | csv.Dialect = csv.Sniffer().sniff(sample, delimiters=",;\t")
+    except csv.Error:
+        dialect = csv.excel
+    try:
+        rows = [row for row in csv.reader(io.StringIO(text), dialect) if any(c.strip() for c in row)]
+    except csv.Error as exc:
+        raise InvalidRequest([FieldProblem("/body", f"the CSV cannot be read: {exc}")]) from None
+    if len(rows) < 2:
+        raise InvalidRequest([FieldProblem("/body", "give a header row of tags and at least one row of values")])
+    header = [h.strip() for h in rows[0]]
+    duplicates = sorted({h for h in header if header.count(h) > 1})
+    if duplicates:
+        raise InvalidRequest([FieldProblem("/body", f"the header names {duplicates[0]!r} twice")])
+    inputs, outputs = _tags(options.inputs), _tags(options.outputs)
+    disturbances = _tags(options.disturbances)
+    listed = [*inputs, *outputs, *disturbances]
+    problems = [
+        FieldProblem(pointer(name), f"{tag!r} is not a column of the CSV (its header: {', '.join(header[:12])})")
+        for name, tags in (("inputs", inputs), ("outputs", outputs), ("disturbances", disturbances))
+        for tag in tags
+        if tag not in header
+    ]
+    time_column = options.time_column
+    if time_column is None and header[0] not in listed:
+        time_column = header[0]
+    if time_column is not None and time_column not in header:
+        problems.append(FieldProblem("/time_column", f"{time_column!r} is not a column of the CSV"))
+    if problems:
+        raise InvalidRequest(problems)
+    width = len(header)
+    for k, row in enumerate(rows[1:]):
+        if len(row) != width:
+            raise InvalidRequest(
+                [FieldProblem(f"/body/{k + 1}", f"row {k} has {len(row)} cells; the header has {width}")]
+            )
+    data: dict[str, list[float | None]] = {}
+    for tag in listed:
+        j = header.index(tag)
+        values: list[float | None] = []
+        for k, row in enumerate(rows[1:]):
+            try:
+                values.append(_number(row[j]))
+            except ValueError:
+                raise InvalidRequest([FieldProblem(pointer("data", tag, k), f"{row[j]!r} is not a number")]) from None
+        data[tag] = values
+    time = None
+    if time_column is not None:
+        j = header.index(time_column)
+        time = _times([row[j] for row in rows[1:]], options, time_column)
+    pairs = []
+    for i, item in enumerate(_tags(options.pairs)):
+        parts = [p.strip() for p in item.split(":")]
+        if len(parts) != 3:
+            raise InvalidRequest([FieldProblem("/pairs", f"pair {i} ({item!r}) is not output:input:structure")])
+        pairs.append({"output": parts[0], "input": parts[1], "structure": parts[2]})
+    request = {
+        "sample_time": options.sample_time,
+        "inputs": inputs,
+        "outputs": outputs,
+        "disturbances": disturbances,
+        "integrating": _tags(options.integrating),
+        "pairs": pairs,
+        "data": data,
+        "time": time,
+        "structure": options.structure,
+        "detrend": options.detrend,
+        "max_dead_time": options.max_dead_time,
+        "settling_time": options.settling_time,
+        "outlier_limit": options.outlier_limit,
+        "validation": None if options.validation_fraction is None else {"fraction": options.validation_fraction},
+        "correlation_lags": options.correlation_lags,
+    }
+    try:
+        return IdentifyRequest.model_validate(request)
+    except ValidationError as exc:
+        problems = [
+            FieldProblem(pointer(*(p for p in e["loc"] if isinstance(p, (str, int)))), e["msg"]) for e in exc.errors()
+        ]
+        raise InvalidRequest(problems) from None

@@ -1,0 +1,149 @@
+"""Checks of plant-test data and of a fitted model: outliers, fit measures, residual correlations.
+
+- Outliers: a Hampel identifier (Pearson, "Outliers in process modeling and identification",
+  IEEE Trans. Control Syst. Technol. 10(1), 2002, doi:10.1109/87.974338): a sample is an
+  outlier when it lies farther than ``limit`` robust standard deviations from the median of
+  its window; the scale is ``1.4826`` times the median absolute deviation of the signal
+  from its running median over the whole record (the factor makes it the standard
+  deviation for Gaussian noise).  A running median passes monotone edges unchanged, so
+  steps and ramps of a plant test are not outliers.
+- Fit measures: the normalized root-mean-square fit ``100 (1 - |y - y_hat| / |y - mean y|)``
+  in percent (Ljung, *System Identification*, 2nd ed., 1999, section 16.4) and the
+  coefficient of determination ``R^2 = 1 - SS_res / SS_tot``.
+- Residual checks: the normalized autocorrelation of the residuals at lags ``1 .. M`` and
+  their cross-correlation with each input at lags ``0 .. M``, against the usual bound
+  ``2.58 / sqrt(N)`` (99 % for white residuals independent of the input; Ljung 1999,
+  section 16.6).  Samples left out of the fit count as zero residuals there.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.ndimage
+from numpy.typing import NDArray
+
+__all__ = ["Correlation", "find_outliers", "fit_measures", "residual_correlations"]
+
+Array = NDArray[np.float64]
+
+#: Normal quantile of the two-sided 99 % bound.
+Z99 = 2.576
+
+
+@dataclass(frozen=True)
+class Correlation:
+    """A normalized correlation sequence and its confidence bound.
+
+    Attributes
+    ----------
+    lags : ndarray of int, shape (L,)
+    values : ndarray, shape (L,)
+    bound : float
+        ``2.58 / sqrt(N)``.
+    outside : int
+        Lags whose value lies outside ``+-bound``.
+    """
+
+    lags: NDArray[np.int64]
+    values: Array
+    bound: float
+    outside: int
+
+
+def find_outliers(y: Array, *, limit: float, window: int = 7) -> NDArray[np.bool_]:
+    """Samples farther than ``limit`` robust standard deviations from their running median.
+
+    Parameters
+    ----------
+    y : ndarray, shape (N,)
+        ``nan`` where missing (never an outlier).
+    limit : float, keyword-only
+        In robust standard deviations (``6`` is a conservative choice, common practice).
+    window : int, keyword-only
+        Odd window of the running median, in samples.
+
+    Returns
+    -------
+    ndarray of bool, shape (N,)
+    """
+    finite = np.isfinite(y)
+    out = np.zeros(y.shape, dtype=bool)
+    if finite.sum() < window:
+        return out
+    values = y[finite]
+    median = scipy.ndimage.median_filter(values, size=window, mode="nearest")
+    deviation = values - median
+    scale = 1.4826 * float(np.median(np.abs(deviation - np.median(deviation))))
+    if scale <= 0.0:
+        scale = float(np.std(deviation))
+    if scale <= 0.0:
+        return out
+    out[np.nonzero(finite)[0]] = np.abs(deviation) > limit * scale
+    return out
+
+
+def fit_measures(y: Array, fitted: Array, used: NDArray[np.bool_]) -> tuple[float, float]:
+    """NRMSE fit in percent and ``R^2`` over the samples ``used``.
+
+    Returns
+    -------
+    fit_percent, r_squared : float
+        ``nan`` when the output does not vary over those samples.
+    """
+    yy, ff = y[used], fitted[used]
+    error = float(np.sum((yy - ff) ** 2))
+    total = float(np.sum((yy - np.mean(yy)) ** 2)) if yy.size else 0.0
+    if total <= 0.0:
+        return float("nan"), float("nan")
+    return 100.0 * (1.0 - np.sqrt(error / total)), 1.0 - error / total
+
+
+def _normalized(a: Array, b: Array, lags: NDArray[np.int64]) -> Array:
+    """``sum_k a(k + lag) b(k) / sqrt(sum a^2 sum b^2)`` for each lag."""
+    norm = np.sqrt(float(np.sum(a * a)) * float(np.sum(b * b)))
+    n = a.size
+    out = np.zeros(lags.size)
+    if norm <= 0.0:
+        return out
+    for i, lag in enumerate(lags):
+        out[i] = float(np.dot(a[lag:], b[: n - lag])) / norm
+    return out
+
+
+def residual_correlations(
+    residuals: Array, used: NDArray[np.bool_], inputs: Array, *, lags: int
+) -> tuple[Correlation, list[Correlation]]:
+    """Autocorrelation of the residuals and their cross-correlation with each input.
+
+    Parameters
+    ----------
+    residuals : ndarray, shape (N,)
+    used : ndarray of bool, shape (N,)
+        Samples of the fit; the others count as zero residuals.
+    inputs : ndarray, shape (N, M)
+        Input deviations (their mean is removed here).
+    lags : int, keyword-only
+        ``M``.
+
+    Returns
+    -------
+    autocorrelation : Correlation
+        Lags ``1 .. M``.
+    cross : list of Correlation
+        Per input, lags ``0 .. M`` (the residual ``tau`` samples after the input).
+    """
+    e = np.where(used, residuals, 0.0)
+    e = np.where(used, e - (e[used].mean() if used.any() else 0.0), 0.0)
+    count = max(int(used.sum()), 1)
+    bound = Z99 / np.sqrt(count)
+    auto_lags = np.arange(1, lags + 1, dtype=np.int64)
+    auto = _normalized(e, e, auto_lags)
+    cross_lags = np.arange(0, lags + 1, dtype=np.int64)
+    cross = []
+    for j in range(inputs.shape[1]):
+        u = inputs[:, j] - inputs[:, j].mean()
+        values = _normalized(e, u, cross_lags)
+        cross.append(Correlation(cross_lags, values, bound, int(np.sum(np.abs(values) > bound))))
+    return Correlation(auto_lags, auto, bound, int(np.sum(np.abs(auto) > bound))), cross

@@ -1,0 +1,116 @@
+"""Plant-test CSV to a model: POST /identify/csv, resampling, caps, and `movecast identify`."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+from service.cli import main
+from service.errors import InvalidRequest
+from service.pipeline.examples import example_path, load_example
+from service.pipeline.identify import check_identify
+from service.pipeline.identify_csv import identify_request_from_csv
+from service.schemas.common import Caps
+from service.schemas.identify import IdentifyRequest
+from service.schemas.identify_csv import IdentifyCsvOptions
+from tests.api.conftest import assert_problem
+
+QUERY = {
+    "sample_time": 1.0,
+    "inputs": "steam_valve,outlet_valve",
+    "outputs": "vessel_temperature,vessel_level",
+    "disturbances": "inlet_flow",
+    "integrating": "vessel_level",
+    "pairs": "vessel_level:steam_valve:none,vessel_temperature:inlet_flow:second_order_dead_time",
+    "max_dead_time": 20.0,
+    "settling_time": 60.0,
+    "validation_fraction": 0.25,
+}
+
+
+def csv_body() -> bytes:
+    return example_path("plant_test.csv").read_bytes()
+
+
+def test_the_csv_is_the_json_example() -> None:
+    from_csv = identify_request_from_csv(csv_body(), IdentifyCsvOptions.model_validate(QUERY))
+    from_json = IdentifyRequest.model_validate(load_example("identify_request.json"))
+    assert from_csv.data == from_json.data
+    assert from_csv.time == [float(k) for k in range(len(from_json.data["steam_valve"]))]
+    assert from_csv.model_copy(update={"time": None}) == from_json
+
+
+def test_csv_to_identify_to_design_in_two_requests(make_client) -> None:
+    client = make_client()
+    r = client.post("/identify/csv", params=QUERY, content=csv_body(), headers={"Content-Type": "text/csv"})
+    assert r.status_code == 200, r.text
+    design = load_example("design_request_transfer_matrix.json")
+    design["model"] = r.json()["model"]
+    answer = client.post("/design", json=design)
+    assert answer.status_code == 200, answer.text
+    gain = answer.json()["plant"]["steady_state_gain"]["values"]
+    assert gain[0][0] == pytest.approx(0.8, rel=0.05)  # the example's invented steam-valve gain
+
+
+def test_irregular_timestamps_are_resampled_and_said_so() -> None:
+    # Irregular ISO 8601 stamps, faster than the sample time: inputs held (zero-order hold), outputs interpolated.
+    rng = np.random.default_rng(0)
+    seconds = np.cumsum(rng.uniform(4.0, 8.0, size=400))
+    seconds -= seconds[0]
+    valve = np.where((seconds // 120) % 2 == 0, 40.0, 45.0)
+    temperature = 80.0 + 0.1 * seconds / 60.0
+    lines = ["stamp,FIC101,TI201"]
+    for t, v, y in zip(seconds, valve, temperature, strict=True):
+        stamp = np.datetime64("2026-03-01T06:00:00") + np.timedelta64(round(t * 1000), "ms")
+        lines.append(f"{stamp},{v},{y:.6f}")
+    options = IdentifyCsvOptions(sample_time=0.5, inputs="FIC101", outputs="TI201", time_unit="min")
+    request = identify_request_from_csv("\n".join(lines).encode(), options)
+    assert request.time is not None and request.time[0] == 0.0
+    inputs = check_identify(request, Caps())
+    assert inputs.resampling is not None and "zero-order hold" in inputs.resampling
+    minutes = np.round(np.array(request.time), 6)
+    grid = 0.5 * np.arange(inputs.columns.shape[0])
+    # Held: each instant has the valve value of the last stamp at or before it.
+    last = np.searchsorted(minutes, grid + 1e-9, side="right") - 1
+    np.testing.assert_array_equal(inputs.columns[:, 0], valve[last])
+    # Interpolated: the temperature ramp is linear in time, so interpolation is exact (to the 6 decimals).
+    np.testing.assert_allclose(inputs.outputs_data[:, 0], 80.0 + 0.1 * grid, atol=2e-6)
+
+
+def test_bad_csv_names_the_cell(make_client) -> None:
+    client = make_client()
+    text = csv_body().decode().splitlines()
+    text[6] = text[6].replace("55.0", "open", 1)
+    r = client.post(
+        "/identify/csv", params=QUERY, content="\n".join(text).encode(), headers={"Content-Type": "text/csv"}
+    )
+    body = assert_problem(r, 422, "invalid-request")
+    assert body["errors"][0]["pointer"] == "/data/outlet_valve/5"
+    r = client.post("/identify/csv", params=QUERY, content=b"\xff\xfe\x00", headers={"Content-Type": "text/csv"})
+    assert assert_problem(r, 422, "invalid-request")["errors"][0]["pointer"] == "/body"
+    with pytest.raises(InvalidRequest) as caught:
+        identify_request_from_csv(csv_body(), IdentifyCsvOptions.model_validate({**QUERY, "inputs": "steam"}))
+    assert caught.value.problems[0].pointer == "/inputs"
+
+
+def test_data_length_cap_from_settings(make_client) -> None:
+    client = make_client(max_identify_samples=100)
+    r = client.post("/identify", json=load_example("identify_request.json"))
+    body = assert_problem(r, 422, "invalid-request")
+    assert body["errors"][0]["pointer"] == "/data" and "at most 100" in body["errors"][0]["detail"]
+    client = make_client(max_identify_work=1000)
+    body = assert_problem(client.post("/identify", json=load_example("identify_request.json")), 422, "invalid-request")
+    assert "work" in body["errors"][0]["detail"]
+
+
+def test_movecast_identify_without_a_server(capsys) -> None:
+    args = [f"--{k.replace('_', '-')}={v}" for k, v in QUERY.items()]
+    assert main(["identify", str(example_path("plant_test.csv")), *args]) == 0
+    answer = json.loads(capsys.readouterr().out)
+    assert answer["model"]["kind"] == "transfer_matrix"
+    assert answer["model"]["elements"][1][0] is None
+    assert main(["identify", str(example_path("plant_test.csv")), *args, "--inputs=steam"]) == 2
+    problem = json.loads(capsys.readouterr().err)
+    assert problem["errors"][0]["pointer"] == "/inputs"

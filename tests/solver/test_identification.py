@@ -1,0 +1,203 @@
+"""Identification: recovery of known plants from simulated plant tests, against independent references."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.optimize
+import scipy.signal
+
+from service.solver.identification.data import hold_missing, resample_held, resample_interpolated, sample_grid
+from service.solver.identification.diagnostics import find_outliers, fit_measures, residual_correlations
+from service.solver.identification.least_squares import PairSpec, fit_output, model_output
+from service.solver.identification.process_models import pair_response
+from service.solver.models.transfer import TransferElement, transfer_matrix_model
+
+FO, SO, INT = "first_order_dead_time", "second_order_dead_time", "integrating_dead_time"
+
+
+def binary_signal(rng: np.random.Generator, count: int, shortest: int) -> np.ndarray:
+    """A random binary test signal (+-1, holds of ``shortest`` to 4x ``shortest`` samples), rest first."""
+    out = np.empty(count)
+    level, k = 1.0, 20
+    out[:20] = 0.0
+    while k < count:
+        hold = int(rng.integers(shortest, 4 * shortest))
+        out[k : k + hold] = level
+        level = -level
+        k += hold
+    return out
+
+
+def dlsim_response(element: TransferElement, u: np.ndarray) -> np.ndarray:
+    """Reference: the element's exact sampled state-space model (service transfer module) run by scipy.signal.dlsim."""
+    sampled = transfer_matrix_model([[element]], sample_time=1.0)
+    _, y, _ = scipy.signal.dlsim((sampled.a, sampled.b, sampled.c, sampled.d, 1.0), u[:, None])
+    return y[:, 0]
+
+
+def test_pair_response_equals_the_sampled_state_space_model() -> None:
+    rng = np.random.default_rng(0)
+    u = rng.normal(size=200)
+    for structure, theta, element in (
+        (FO, [2.0, 7.0, 3.4], TransferElement(2.0, (7.0,), 3.4)),
+        (SO, [-1.0, 6.0, 2.0, 0.6], TransferElement(-1.0, (6.0, 2.0), 0.6)),
+        (INT, [0.05, 2.5], TransferElement(0.05, (), 2.5, integrating=True)),
+    ):
+        ours = pair_response(structure, np.array(theta), u, sample_time=1.0)
+        np.testing.assert_allclose(ours, dlsim_response(element, u), rtol=1e-9, atol=1e-12)
+
+
+def test_first_order_recovery_from_a_binary_test_with_noise() -> None:
+    # Two inputs on one output, fractional dead times, noise at 5 % of the output's spread
+    # (signal-to-noise ratio about 20 in amplitude: a realistic plant test, common practice).
+    rng = np.random.default_rng(11)
+    n = 900
+    u = np.column_stack([binary_signal(rng, n, 12), 3.0 * binary_signal(rng, n, 8)])
+    truth = [np.array([2.5, 10.0, 3.4]), np.array([-0.4, 6.0, 7.0])]
+    clean = sum(pair_response(FO, t, u[:, j], sample_time=1.0) for j, t in enumerate(truth))
+    y = 120.0 + clean + rng.normal(scale=0.05 * np.std(clean), size=n)
+    fit = fit_output(
+        y,
+        u,
+        [PairSpec(0, FO), PairSpec(1, FO)],
+        sample_time=1.0,
+        used=np.ones(n, dtype=bool),
+        max_dead_time=30.0,
+        settling_samples=60,
+    )
+    for got, want in zip(fit.parameters, truth, strict=True):
+        assert got[0] == pytest.approx(want[0], rel=0.02)  # gain within 2 %
+        assert got[1] == pytest.approx(want[1], rel=0.05)  # time constant within 5 %
+        assert abs(got[2] - want[2]) < 0.5  # dead time within half a sample
+    assert fit.offset == pytest.approx(120.0, abs=3 * fit.offset_error + 1e-3)
+    # The reported standard errors are about the scatter: the truth lies within 4 of them.
+    for got, se, want in zip(fit.parameters, fit.standard_errors, truth, strict=True):
+        assert np.all(np.abs(got - want) < 4 * se)
+
+
+def test_least_squares_agrees_with_curve_fit_on_the_same_residual() -> None:
+    # Independent general-purpose fit: scipy.optimize.curve_fit on the same model function,
+    # started where ours started (its covariance is the same first-order formula, computed by scipy).
+    rng = np.random.default_rng(5)
+    n = 500
+    u = binary_signal(rng, n, 10)[:, None]
+    y = 10.0 + pair_response(FO, np.array([1.5, 8.0, 2.3]), u[:, 0], sample_time=1.0)
+    y = y + rng.normal(scale=0.05, size=n)
+    pairs = [PairSpec(0, FO)]
+    fit = fit_output(y, u, pairs, sample_time=1.0, used=np.ones(n, dtype=bool), max_dead_time=20, settling_samples=50)
+    ours = np.concatenate((fit.parameters[0], [fit.offset]))
+
+    def model(_: np.ndarray, *x: float) -> np.ndarray:
+        return model_output(np.array(x), u, pairs, sample_time=1.0)
+
+    p0 = ours * np.array([1.1, 0.9, 1.0, 1.0])
+    reference, cov = scipy.optimize.curve_fit(
+        model, np.arange(n), y, p0=p0, bounds=([-np.inf, 0.01, 0.0, -np.inf], [np.inf, 5000, 20, np.inf])
+    )
+    np.testing.assert_allclose(ours, reference, rtol=2e-3)
+    ours_se = np.concatenate((fit.standard_errors[0], [fit.offset_error]))
+    np.testing.assert_allclose(ours_se, np.sqrt(np.diag(cov)), rtol=0.05)
+
+
+def test_integrating_level_recovered() -> None:
+    rng = np.random.default_rng(8)
+    n = 600
+    u = binary_signal(rng, n, 6)[:, None] * 2.0
+    y = 50.0 + pair_response(INT, np.array([-0.05, 2.6]), u[:, 0], sample_time=1.0) + rng.normal(scale=0.01, size=n)
+    fit = fit_output(
+        y,
+        u,
+        [PairSpec(0, INT)],
+        sample_time=1.0,
+        used=np.ones(n, dtype=bool),
+        max_dead_time=20,
+        settling_samples=30,
+        integrating=True,
+    )
+    assert fit.parameters[0][0] == pytest.approx(-0.05, rel=0.02)
+    assert abs(fit.parameters[0][1] - 2.6) < 0.5
+
+
+def test_wood_berry_column_recovered_from_a_simulated_test() -> None:
+    # Wood and Berry distillation column (Wood & Berry 1973, Chem. Eng. Sci. 28:1707), values
+    # recalled from memory as in tests/solver/test_transfer.py; minutes, sampled every minute.
+    wood_berry = [[(12.8, 16.7, 1.0), (-18.9, 21.0, 3.0)], [(6.6, 10.9, 7.0), (-19.4, 14.4, 3.0)]]
+    rng = np.random.default_rng(1973)
+    n = 1000
+    u = np.column_stack([0.1 * binary_signal(rng, n, 25), 0.1 * binary_signal(rng, n, 25)])
+    for row in wood_berry:
+        clean = sum(pair_response(FO, np.array(p), u[:, j], sample_time=1.0) for j, p in enumerate(row))
+        y = clean + rng.normal(scale=0.05 * np.std(clean), size=n)
+        fit = fit_output(
+            y,
+            u,
+            [PairSpec(0, FO), PairSpec(1, FO)],
+            sample_time=1.0,
+            used=np.ones(n, dtype=bool),
+            max_dead_time=30,
+            settling_samples=80,
+        )
+        for got, (k, tau, theta) in zip(fit.parameters, row, strict=True):
+            assert got[0] == pytest.approx(k, rel=0.02)
+            assert got[1] == pytest.approx(tau, rel=0.05)
+            assert abs(got[2] - theta) < 0.5
+        measured = fit_measures(y, fit.fitted, np.ones(n, dtype=bool))
+        assert measured[1] > 0.99
+
+
+def test_second_order_fit_reproduces_the_step_response() -> None:
+    # Two lags trade off against the dead time, so the check is the step response (the use of
+    # the model), within 2 % of the gain at every sample.
+    rng = np.random.default_rng(2)
+    n = 800
+    u = binary_signal(rng, n, 15)[:, None]
+    truth = np.array([1.2, 9.0, 4.0, 2.5])
+    y = pair_response(SO, truth, u[:, 0], sample_time=1.0) + rng.normal(scale=0.02, size=n)
+    fit = fit_output(
+        y, u, [PairSpec(0, SO)], sample_time=1.0, used=np.ones(n, bool), max_dead_time=20, settling_samples=60
+    )
+    steps = np.ones(80)
+    np.testing.assert_allclose(
+        pair_response(SO, fit.parameters[0], steps, sample_time=1.0),
+        pair_response(SO, truth, steps, sample_time=1.0),
+        atol=0.02 * 1.2,
+    )
+
+
+def test_outliers_found_and_steps_kept() -> None:
+    rng = np.random.default_rng(4)
+    y = np.concatenate((np.zeros(100), 5.0 * np.ones(100))) + rng.normal(scale=0.1, size=200)
+    y[50] += 3.0
+    y[150] -= 2.5
+    y[120] = np.nan
+    found = find_outliers(y, limit=6.0)
+    assert set(np.nonzero(found)[0]) == {50, 150}
+
+
+def test_missing_inputs_held_and_resampling() -> None:
+    held, filled = hold_missing(np.array([np.nan, 1.0, np.nan, np.nan, 3.0]))
+    np.testing.assert_array_equal(held, [1.0, 1.0, 1.0, 1.0, 3.0])
+    assert filled == 3
+    time = np.array([0.0, 0.4, 1.7, 2.0, 2.9, 7.0])
+    values = np.array([0.0, 1.0, 2.0, 3.0, 4.0, 5.0])
+    grid = sample_grid(time, 1.0)
+    np.testing.assert_array_equal(grid, np.arange(8.0))
+    np.testing.assert_array_equal(resample_held(time, values, grid), [0, 1, 3, 4, 4, 4, 4, 5])
+    interpolated = resample_interpolated(time, values, grid, sample_time=1.0)
+    np.testing.assert_allclose(interpolated[:3], [0.0, 1.0 + 0.6 / 1.3, 3.0])
+    assert np.all(np.isnan(interpolated[3:7]))  # between 2.9 and 7.0: a gap of 4.1 > 2 Ts
+    assert interpolated[7] == 5.0
+
+
+def test_residual_checks_of_white_noise_stay_inside_the_bound() -> None:
+    # White residuals independent of the input: about 1 % of lags outside the 99 % bound (Ljung 1999, 16.6).
+    rng = np.random.default_rng(9)
+    e = rng.normal(size=4000)
+    u = rng.normal(size=(4000, 1))
+    auto, cross = residual_correlations(e, np.ones(4000, bool), u, lags=20)
+    assert auto.bound == pytest.approx(2.576 / np.sqrt(4000))
+    assert auto.outside <= 2 and cross[0].outside <= 2
+    coloured = scipy.signal.lfilter([1.0], [1.0, -0.8], e)
+    auto, _ = residual_correlations(coloured, np.ones(4000, bool), u, lags=20)
+    assert auto.values[0] == pytest.approx(0.8, abs=0.05) and auto.outside >= 10
