@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Annotated, Literal
 
-from pydantic import Field
+from pydantic import ConfigDict, Field
 
 from service.schemas.common import RequestModel
 
@@ -18,6 +18,10 @@ TagText = Annotated[str, Field(max_length=4000)]
 
 class IdentifyCsvOptions(RequestModel):
     """The request's choices; tag lists are comma-separated."""
+
+    # Query parameters arrive as text, so numbers and booleans are parsed from it here (the
+    # JSON bodies stay strict); unknown parameters are still refused.
+    model_config = ConfigDict(extra="forbid", frozen=True, strict=False)
 
     sample_time: Positive = Field(description="Sample time of the fitted model, in the time unit.")
     inputs: TagText = Field(description="Manipulated inputs: column names, comma-separated.")
