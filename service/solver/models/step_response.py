@@ -19,9 +19,8 @@ so the taps ``h_l - g`` of an integrating pair vanish once its slope is establis
 balanced truncation then drops them).  The states are one shift register per input column,
 ``u_j(k-1) .. u_j(k-L_j)`` with ``L_j`` the longest history its column needs (``N`` for a
 self-regulating pair, ``N-1`` for an integrating one), and one integrator per output row
-with an integrating pair: a finite impulse response model in state-space form (e.g.
-Maciejowski, *Predictive Control with Constraints*, 2002, section 4.1, for the step-response
-form; the register is the standard realization of an FIR filter).  For a unit step of input
+with an integrating pair: a finite impulse response model in state-space form (the
+register is the standard shift-register realization of an FIR filter, common practice).  For a unit step of input
 ``j`` at ``k = 0``, ``u_j(k-l) = 1`` exactly when ``k >= l``, so ``y_i(k) = s_min(k, N)``
 (plus ``g (k - N)`` for ``k > N`` when integrating): every coefficient is reproduced
 exactly, up to the rounding of the sums.
