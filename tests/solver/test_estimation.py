@@ -13,6 +13,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.linalg
+
+from service.errors import NumericalError
 from service.solver.estimation.estimator import (
     DEFAULT_DISTURBANCE_NOISE,
     DEFAULT_MEASUREMENT_NOISE,
@@ -20,8 +22,6 @@ from service.solver.estimation.estimator import (
     augmented_model,
     design_estimator,
 )
-
-from service.errors import NumericalError
 from tests.conftest import random_plant
 
 
