@@ -6,14 +6,25 @@ The whole tree::
     ├── InvalidRequest               the request breaks a rule the schema alone cannot check
     │                                (sizes that must agree, caps from settings); carries
     │                                one FieldProblem per broken rule
-    └── NumericalError               the numbers are well-formed but the problem is not
-        └── HessianNotPositiveDefinite
-                                     some moves carry no penalty and the outputs cannot see
-                                     them, so the optimal move sequence is not unique
+    ├── NumericalError               the numbers are well-formed but the problem is not;
+    │   │                            carries the field key of the input a user should change
+    │   └── HessianNotPositiveDefinite
+    │                                some moves carry no penalty and the outputs cannot see
+    │                                them, so the optimal move sequence is not unique
+    ├── MalformedBody                the request body cannot be read or is not JSON
+    ├── TimeLimitExceeded            the request's compute time ran out, waiting for a
+    │                                compute process or in one
+    └── SolverCrashed                a compute process died or failed unexpectedly (it has
+                                     been replaced); the details go to the log only
 
-The solver raises only ``NumericalError`` and its children; the schema edge raises
-``InvalidRequest``.  One handler at the HTTP edge turns each kind into an RFC 9457 problem
-details response.  This module imports nothing from movecast, so every layer may use it.
+The solver raises only ``NumericalError`` and its children, naming the input by a *field
+key*: the path of keys of that input in the request (``("weights", "move")``), never a JSON
+pointer.  The pipeline raises ``InvalidRequest``, the edges ``MalformedBody``; the compute pool
+raises the last two.
+:func:`service.pipeline.problems.problem_of` turns any of them into the one problem model
+that the HTTP handlers, batch items, sweep entries and the command line all answer (and
+there field keys become JSON pointers).  This module imports nothing from movecast, so
+every layer may use it.
 """
 
 from __future__ import annotations
@@ -21,12 +32,19 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 __all__ = [
+    "FieldKey",
     "FieldProblem",
     "HessianNotPositiveDefinite",
     "InvalidRequest",
+    "MalformedBody",
     "MovecastError",
     "NumericalError",
+    "SolverCrashed",
+    "TimeLimitExceeded",
 ]
+
+FieldKey = tuple[str | int, ...]
+"""The path of keys of one input in the request, e.g. ``("model", "elements", 0, 1)``."""
 
 
 @dataclass(frozen=True)
@@ -54,14 +72,35 @@ class InvalidRequest(MovecastError):
 class NumericalError(MovecastError):
     """The numbers are valid but describe a problem the controller design cannot solve.
 
-    ``pointer`` names the request field a user should change, where one can be named.
+    ``field`` is the key of the input a user should change (empty when none can be named).
     """
 
-    def __init__(self, detail: str, *, pointer: str = "") -> None:
+    def __init__(self, detail: str, *, field: FieldKey = ()) -> None:
         self.detail = detail
-        self.pointer = pointer
+        self.field: FieldKey = tuple(field)
         super().__init__(detail)
 
 
 class HessianNotPositiveDefinite(NumericalError):
     """The Hessian G'QG + R is singular: some move directions change neither cost term."""
+
+
+class MalformedBody(MovecastError):
+    """The request body cannot be read or is not valid JSON."""
+
+    def __init__(self, detail: str) -> None:
+        self.detail = detail
+        super().__init__(detail)
+
+
+class TimeLimitExceeded(MovecastError):
+    """The request's compute time limit passed, waiting for a compute process (``queued``) or in one."""
+
+    def __init__(self, seconds: float, *, queued: bool) -> None:
+        self.seconds = seconds
+        self.queued = queued
+        super().__init__(f"time limit of {seconds:g} s exceeded")
+
+
+class SolverCrashed(MovecastError):
+    """A compute process died or failed in an unexpected way (it has been replaced)."""

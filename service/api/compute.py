@@ -35,6 +35,7 @@ from fastapi import Depends
 from service.api.deps import SettingsDep
 from service.api.metrics import SOLVER_SECONDS
 from service.api.solver_worker import rebuild_error, serve_calls
+from service.errors import SolverCrashed, TimeLimitExceeded
 
 __all__ = [
     "Budget",
@@ -50,19 +51,6 @@ T = TypeVar("T")
 
 #: Modules the fork server imports once, so each solver process starts ready.
 PRELOAD = ["numpy", "scipy.linalg", "service.pipeline.design", "service.api.solver_worker"]
-
-
-class TimeLimitExceeded(Exception):
-    """The request's compute time limit passed, waiting for a solver (``queued``) or in one."""
-
-    def __init__(self, seconds: float, *, queued: bool) -> None:
-        self.seconds = seconds
-        self.queued = queued
-        super().__init__(f"time limit of {seconds:g} s exceeded")
-
-
-class SolverCrashed(Exception):
-    """A solver process died or failed in an unexpected way (it has been replaced)."""
 
 
 def _context() -> multiprocessing.context.BaseContext:

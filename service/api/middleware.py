@@ -21,6 +21,8 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 from service.api.logs import request_id_var
 from service.api.metrics import IN_PROGRESS, REQUEST_SECONDS, REQUESTS, count_rejection
 from service.api.problems import PROBLEM_JSON, problem_response
+from service.errors import MalformedBody
+from service.pipeline.problems import Problem, problem_of
 
 try:  # FastAPI >= 0.150 keeps included routers as branches; this walks their routes
     from fastapi.routing import iter_route_contexts as _flatten
@@ -118,9 +120,11 @@ class RequestContextMiddleware:
             error_log.exception("unhandled error", extra={"route": route})
             if not state["started"]:
                 response = problem_response(
-                    "internal-error",
-                    500,
-                    "The service failed to answer; the error is logged with this request's id.",
+                    Problem(
+                        "internal-error",
+                        500,
+                        "The service failed to answer; the error is logged with this request's id.",
+                    ),
                     scope.get("path", ""),
                 )
                 await response(scope, receive, send_with_id)
@@ -170,9 +174,9 @@ class BodyLimitMiddleware:
 
     def _too_large(self, scope: Scope) -> Any:
         return problem_response(
-            "payload-too-large",
-            413,
-            f"The request body exceeds this service's limit of {self.max_bytes:,} bytes.",
+            Problem(
+                "payload-too-large", 413, f"The request body exceeds this service's limit of {self.max_bytes:,} bytes."
+            ),
             scope.get("path", ""),
         )
 
@@ -184,7 +188,7 @@ class BodyLimitMiddleware:
         if declared is not None:
             if not declared.strip().isdigit():
                 response = problem_response(
-                    "malformed-body", 400, "The Content-Length header is not a number.", scope.get("path", "")
+                    problem_of(MalformedBody("The Content-Length header is not a number.")), scope.get("path", "")
                 )
                 await response(scope, receive, send)
                 return

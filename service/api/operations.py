@@ -6,7 +6,6 @@
   metrics, last-resort 500), CORS (only with ``MOVECAST_CORS_ORIGINS``), API key (only with
   keys), body limit (``MOVECAST_MAX_BODY_BYTES``);
 - GET /metrics;
-- handlers for the compute time limit (503) and a failed solver process (500);
 - the shared error responses (401, 413, 503, 500) in the OpenAPI document of every route
   they can come from;
 - at start-up: a warning when no API key is configured, the solver processes started, and
@@ -25,14 +24,13 @@ from contextlib import asynccontextmanager
 from types import FrameType
 from typing import Any
 
-from fastapi import FastAPI, Request
-from fastapi.responses import JSONResponse
+from fastapi import FastAPI
 from starlette.middleware.cors import CORSMiddleware
 
 from service.api import metrics
-from service.api.compute import SolverCrashed, TimeLimitExceeded, solver_pool
+from service.api.compute import solver_pool
 from service.api.middleware import REQUEST_ID_HEADER, BodyLimitMiddleware, RequestContextMiddleware
-from service.api.problems import PROBLEM_JSON, problem_response
+from service.api.problems import PROBLEM_JSON
 from service.api.security import OPEN_PATHS, ApiKeyMiddleware, KeyRing
 from service.api.settings import Settings
 
@@ -71,30 +69,6 @@ def _document_common_responses(app: FastAPI) -> None:
         return app.openapi_schema
 
     app.openapi = openapi  # type: ignore[method-assign]
-
-
-def _install_handlers(app: FastAPI) -> None:
-    async def _time_limit(request: Request, exc: Exception) -> JSONResponse:
-        assert isinstance(exc, TimeLimitExceeded)
-        where = "waiting for a free solver" if exc.queued else "solving"
-        headers = {"Retry-After": "1"} if exc.queued else None
-        return problem_response(
-            "time-limit",
-            503,
-            f"The compute time limit of {exc.seconds:g} s ran out while {where}. "
-            + ("Retry later." if exc.queued else "Shorten the horizons or reduce the model."),
-            request.url.path,
-            headers=headers,
-        )
-
-    async def _crashed(request: Request, exc: Exception) -> JSONResponse:
-        log.error("solver failure: %s", exc)
-        return problem_response(
-            "internal-error", 500, "The service failed to answer; the error is logged.", request.url.path
-        )
-
-    app.add_exception_handler(TimeLimitExceeded, _time_limit)
-    app.add_exception_handler(SolverCrashed, _crashed)
 
 
 def _sigterm_hook(app: FastAPI) -> Callable[[], None]:
@@ -146,7 +120,6 @@ def _wrap_lifespan(app: FastAPI, settings: Settings) -> None:
 def install_operations(app: FastAPI, settings: Settings) -> None:
     """Install middleware, /metrics, handlers, shared responses and start-up hooks."""
     app.include_router(metrics.router)
-    _install_handlers(app)
     _document_common_responses(app)
     _wrap_lifespan(app, settings)
     # add_middleware puts each new one outside the previous: add innermost first.

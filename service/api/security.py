@@ -22,6 +22,7 @@ from starlette.datastructures import Headers
 from starlette.types import ASGIApp, Receive, Scope, Send
 
 from service.api.problems import problem_response
+from service.pipeline.problems import Problem
 
 __all__ = ["OPEN_PATHS", "ApiKeyMiddleware", "KeyRing"]
 
@@ -81,6 +82,6 @@ class ApiKeyMiddleware:
             detail = "The API key is not accepted."
             challenge = f'{REALM}, error="invalid_token"'
         response = problem_response(
-            "unauthorized", 401, detail, scope.get("path", ""), headers={"WWW-Authenticate": challenge}
+            Problem("unauthorized", 401, detail), scope.get("path", ""), headers={"WWW-Authenticate": challenge}
         )
         await response(scope, receive, send)

@@ -27,7 +27,7 @@ def _error_state(exc: MovecastError) -> Outcome:
     if isinstance(exc, InvalidRequest):
         return ("invalid", type(exc), {"problems": exc.problems})
     if isinstance(exc, NumericalError):
-        return ("numerical", type(exc), {"detail": exc.detail, "pointer": exc.pointer})
+        return ("numerical", type(exc), {"detail": exc.detail, "field": exc.field})
     return ("other", type(exc), {"message": str(exc)})
 
 
@@ -36,7 +36,7 @@ def rebuild_error(kind: str, cls: type[MovecastError], state: dict[str, Any]) ->
     if kind == "invalid":
         return cls(state["problems"])  # type: ignore[call-arg]
     if kind == "numerical":
-        return cls(state["detail"], pointer=state["pointer"])  # type: ignore[call-arg]
+        return cls(state["detail"], field=state["field"])  # type: ignore[call-arg]
     return cls(state["message"])
 
 

@@ -16,6 +16,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import FieldProblem, InvalidRequest, NumericalError
+from service.pipeline.arrays import check_weight
 from service.pipeline.estimator import EstimatorInputs, check_estimator, scaled_estimator
 from service.pipeline.fingerprint import fingerprint
 from service.pipeline.limits import (
@@ -26,8 +27,9 @@ from service.pipeline.limits import (
 )
 from service.pipeline.limits_checks import LimitInputs, check_limits
 from service.pipeline.plant import DiscretePlant, Signal, plant_arrays
+from service.pipeline.problems import pointer
 from service.pipeline.robustness import frequency_problems, robustness_report
-from service.schemas.common import Caps, check_weight, pointer
+from service.schemas.common import Caps
 from service.schemas.design import (
     ClosedLoopReport,
     DesignRequest,
@@ -301,7 +303,7 @@ def compute_design(inputs: DesignInputs) -> DesignOutcome:
             "The design overflows double precision: some entries of the model, weights or spans "
             "are too large (or too small) for their units. Express the signals in units where "
             "the numbers are moderate, or give spans.",
-            pointer="/model",
+            field=("model",),
         ) from None
 
 

@@ -19,8 +19,9 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import FieldProblem, NumericalError
+from service.pipeline.arrays import check_weight
 from service.pipeline.plant import DiscretePlant
-from service.schemas.common import check_weight, pointer
+from service.pipeline.problems import pointer
 from service.schemas.estimator import EstimatorRequest
 from service.solver.estimation.estimator import Estimator, design_estimator
 from service.solver.models.scaling import ScaledPlant
@@ -175,6 +176,6 @@ def scaled_estimator(inputs: EstimatorInputs, plant: DiscretePlant, scaled: Scal
         raise NumericalError(
             "The estimator's gain or poles are not finite numbers: the model's numbers are too large "
             "or too small to estimate its state in double precision. Rescale the model",
-            pointer="/estimator",
+            field=("estimator",),
         )
     return estimator

@@ -197,7 +197,7 @@ def limited_run(limits: LimitInputs, plant: DiscretePlant, design: ControllerDes
         target = ReachableTargetRule.from_loop(loop, scaled)
         exact = GainWhenFreePolicy(policy, loop.horizon_gain)
     except (ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:  # pragma: no cover - defensive
-        raise NumericalError(f"The limits' QP could not be set up: {exc}", pointer="/limits") from exc
+        raise NumericalError(f"The limits' QP could not be set up: {exc}", field=("limits",)) from exc
     return LimitedRun(
         limits=scaled,
         policy=exact,

@@ -18,7 +18,8 @@ from numpy.typing import NDArray
 
 from service.errors import FieldProblem
 from service.pipeline.plant import DiscretePlant, Signal
-from service.schemas.common import Caps, pointer
+from service.pipeline.problems import pointer
+from service.schemas.common import Caps
 from service.schemas.limits import LimitsRequest
 from service.solver.design.closed_loop import Diagnostic
 from service.solver.limits.bounds import Limits, make_limits

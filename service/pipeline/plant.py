@@ -12,7 +12,9 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import FieldProblem, InvalidRequest
-from service.schemas.common import Caps, check_matrix, pointer
+from service.pipeline.arrays import check_matrix
+from service.pipeline.problems import pointer
+from service.schemas.common import Caps
 from service.schemas.model import PlantModel, StateSpaceModel, TransferElementModel, TransferMatrixModel
 from service.schemas.signals import SignalTag
 from service.solver.models.sampling import sample_zero_order_hold
@@ -192,9 +194,7 @@ def _state_space(
     if problems or cm is None:
         return None, problems
     if model.time_domain == "continuous":
-        sampled = sample_zero_order_hold(
-            a, b, sample_time=model.sample_time, b_disturbance=bd, pointer=pointer(*where, "a")
-        )
+        sampled = sample_zero_order_hold(a, b, sample_time=model.sample_time, b_disturbance=bd, field=(*where, "a"))
         a, b, bd = sampled.a, sampled.b, sampled.b_disturbance
     return {
         "a": a,
@@ -341,8 +341,8 @@ def _transfer_matrix(
         elements,
         sample_time=ts,
         disturbance_elements=disturbance,
-        pointer=pointer(*where, "elements"),
-        disturbance_pointer=pointer(*where, "disturbance_elements"),
+        field=(*where, "elements"),
+        disturbance_field=(*where, "disturbance_elements"),
     )
     for matrix, grid in ((sampled.d, "elements"), (sampled.d_disturbance, "disturbance_elements")):
         if matrix is not None and np.any(matrix):

@@ -15,7 +15,8 @@ import numpy as np
 from service.errors import FieldProblem, NumericalError
 from service.pipeline.estimator import EstimatorInputs
 from service.pipeline.plant import DiscretePlant
-from service.schemas.common import Caps, pointer
+from service.pipeline.problems import pointer
+from service.schemas.common import Caps
 from service.schemas.robustness import (
     LoopRobustnessReport,
     MarginsReport,
@@ -24,7 +25,7 @@ from service.schemas.robustness import (
     SingularValueReport,
 )
 from service.solver.estimation.estimator import Estimator
-from service.solver.evaluation.frequency import ANALYSIS_POINTER, FrequencyAnalysis, LoopSensitivity
+from service.solver.evaluation.frequency import ANALYSIS_FIELD, FrequencyAnalysis, LoopSensitivity
 
 __all__ = ["REFINEMENT_EVALUATIONS", "frequency_problems", "frequency_work", "loop_frequency_work", "robustness_report"]
 
@@ -140,7 +141,7 @@ def _values(values: np.ndarray) -> list[float]:
             "The frequency analysis produced numbers that are not finite: a pole of the loop lies on or next to "
             "the unit circle at a frequency of the grid. Change the number of points, or move that pole off "
             "the unit circle",
-            pointer=ANALYSIS_POINTER,
+            field=ANALYSIS_FIELD,
         )
     return [float(v) for v in values]
 

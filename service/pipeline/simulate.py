@@ -149,7 +149,7 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
         raise NumericalError(
             "The poles of the whole loop are not finite numbers: the model's numbers are too large or "
             "too small for the loop's eigenvalues in double precision. Rescale the model",
-            pointer="/model",
+            field=("model",),
         )
 
     true_plant = None

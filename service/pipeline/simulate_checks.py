@@ -20,7 +20,8 @@ from service.errors import FieldProblem, InvalidRequest
 from service.pipeline.design import DesignInputs, check_design_request
 from service.pipeline.limits_checks import check_initial_input, limit_work_problems
 from service.pipeline.plant import DiscretePlant, plant_arrays
-from service.schemas.common import Caps, pointer
+from service.pipeline.problems import pointer
+from service.schemas.common import Caps
 from service.schemas.simulate import SimulateRequest
 from service.solver.design.closed_loop import Diagnostic
 from service.solver.evaluation.simulation import Event

@@ -12,13 +12,14 @@ from __future__ import annotations
 from collections.abc import Callable
 from typing import TypeVar
 
-from service.errors import FieldProblem, InvalidRequest, NumericalError
+from service.errors import FieldKey, FieldProblem, InvalidRequest, NumericalError
 from service.pipeline.design import DesignInputs, DesignOutcome, check_design_request, compute_design
 from service.pipeline.fingerprint import fingerprint
+from service.pipeline.problems import pointer, problem_of
 from service.pipeline.robustness import loop_frequency_work, robustness_report
 from service.pipeline.simulate import compute_simulation, performance_report
 from service.pipeline.simulate_checks import SimulationInputs, check_simulate_request, simulation_work
-from service.schemas.common import Caps, pointer
+from service.schemas.common import Caps
 from service.schemas.design import DesignRequest, WarningReport
 from service.schemas.simulate import PerformanceReport, ScenarioRequest, SimulateRequest
 from service.schemas.sweep import HORIZON_PARAMETERS, SweepEntryReport, SweepProblem, SweepRequest, SweepResponse
@@ -87,30 +88,28 @@ def _sweep_pointer(where: str) -> str:
     return where if where == "/scenario" or where.startswith("/scenario/") else "/design" + where
 
 
+def _into_sweep(exc: InvalidRequest | NumericalError, *, unnamed: FieldKey = ()) -> InvalidRequest | NumericalError:
+    """The same failure naming fields of the sweep request (``unnamed`` when it names none)."""
+    if isinstance(exc, InvalidRequest):
+        return InvalidRequest([FieldProblem(_sweep_pointer(p.pointer), p.detail) for p in exc.problems])
+    if not exc.field:
+        return type(exc)(exc.detail, field=unnamed)
+    return type(exc)(exc.detail, field=exc.field if exc.field[0] == "scenario" else ("design", *exc.field))
+
+
 def _in_sweep(check: Callable[[], T]) -> T:
     """Run a check of the base request, its problems pointing into the sweep request."""
     try:
         return check()
-    except InvalidRequest as exc:
-        raise InvalidRequest([FieldProblem(_sweep_pointer(p.pointer), p.detail) for p in exc.problems]) from None
-    except NumericalError as exc:
-        raise type(exc)(exc.detail, pointer=_sweep_pointer(exc.pointer) if exc.pointer else "/design") from None
+    except (InvalidRequest, NumericalError) as exc:
+        raise _into_sweep(exc, unnamed=("design",)) from None
 
 
 def _failed(request: SweepRequest, value: float, mark: str, exc: InvalidRequest | NumericalError) -> SweepEntryReport:
+    problem = problem_of(_into_sweep(exc))
     if isinstance(exc, InvalidRequest):
-        problem = SweepProblem(
-            type="urn:movecast:problem:invalid-request",
-            detail=f"The design with {request.parameter} = {value:g} is invalid.",
-            errors=[{"pointer": _sweep_pointer(p.pointer), "detail": p.detail} for p in exc.problems],
-        )
-    else:
-        problem = SweepProblem(
-            type="urn:movecast:problem:numerical-problem",
-            detail=exc.detail,
-            errors=[{"pointer": _sweep_pointer(exc.pointer), "detail": exc.detail}] if exc.pointer else [],
-        )
-    return SweepEntryReport(value=value, status="failed", fingerprint=mark, problem=problem)
+        problem = problem.with_detail(f"The design with {request.parameter} = {value:g} is invalid.")
+    return SweepEntryReport(value=value, status="failed", fingerprint=mark, problem=SweepProblem(**problem.brief()))
 
 
 def _entry(request: SweepRequest, value: float, caps: Caps) -> SweepEntryReport:

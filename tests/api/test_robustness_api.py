@@ -13,10 +13,10 @@ import copy
 
 import numpy as np
 import pytest
-from service.solver.estimation.estimator import design_estimator
-from service.solver.estimation.realization import controller_system, plant_system
 
 from service.solver.design.controller import design_controller
+from service.solver.estimation.estimator import design_estimator
+from service.solver.estimation.realization import controller_system, plant_system
 from service.solver.evaluation.frequency import frequency_analysis
 
 #: The first-order plant P(z) = b/(z - a) of tests/solver/test_frequency.py (a = 0.5, b = 1),

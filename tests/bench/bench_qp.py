@@ -49,9 +49,8 @@ ROOT = Path(__file__).resolve().parents[2]
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from service.solver.estimation.estimator import design_estimator  # noqa: E402
-
 from service.solver.design.controller import ControllerDesign, design_controller  # noqa: E402
+from service.solver.estimation.estimator import design_estimator  # noqa: E402
 from service.solver.evaluation.simulation import Event, Scenario, simulate_loop  # noqa: E402
 from service.solver.limits.bounds import Limits, make_limits  # noqa: E402
 from service.solver.limits.policy import ConstrainedPolicy  # noqa: E402

@@ -27,10 +27,9 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
+from service.solver.design.controller import design_controller
 from service.solver.estimation.estimator import design_estimator
 from service.solver.estimation.loop import control_loop
-
-from service.solver.design.controller import design_controller
 from service.solver.evaluation.simulation import Event, Scenario, simulate_loop
 
 CASES = {"small (n=2, m=2, Hp=20)": (2, 2, 2, 20, 3), "medium (n=10, m=3, Hp=60)": (10, 3, 3, 60, 5)}

@@ -6,6 +6,8 @@ import numpy as np
 import pytest
 import scipy.linalg
 import scipy.signal
+
+from service.solver.design.controller import design_controller
 from service.solver.estimation.estimator import design_estimator
 from service.solver.estimation.realization import (
     StateSpace,
@@ -14,8 +16,6 @@ from service.solver.estimation.realization import (
     estimate_feedback_gain,
     plant_system,
 )
-
-from service.solver.design.controller import design_controller
 from service.solver.evaluation.frequency import design_frequency_analysis, frequency_analysis, frequency_grid
 from tests.conftest import random_plant
 

@@ -122,7 +122,7 @@ def test_zero_move_weight_with_more_inputs_than_outputs_is_rejected(rng):
     assert "u1, u2, u3" in message and "no move penalty" in message
     assert "cannot see" in message and "full column rank" in message
     assert "3 inputs and only 2 controlled output" in message
-    assert caught.value.pointer == "/weights/move"
+    assert caught.value.field == ("weights", "move")
 
 
 def test_zero_move_weight_on_one_blind_input_names_that_input(rng):

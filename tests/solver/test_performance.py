@@ -10,9 +10,9 @@ sampled integral absolute error.
 from __future__ import annotations
 
 import numpy as np
-from service.solver.estimation.estimator import design_estimator
 
 from service.solver.design.controller import design_controller
+from service.solver.estimation.estimator import design_estimator
 from service.solver.evaluation.performance import loop_performance
 from service.solver.evaluation.simulation import Event, Scenario, simulate_loop
 

@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.optimize
-from service.solver.estimation.estimator import design_estimator
 
 from service.solver.design.controller import design_controller
+from service.solver.estimation.estimator import design_estimator
 from service.solver.evaluation.simulation import Event, Scenario, UnconstrainedPolicy, simulate_loop
 from service.solver.limits.bounds import Limits, limit_violations, make_limits
 from service.solver.limits.policy import ConstrainedPolicy

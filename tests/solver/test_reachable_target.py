@@ -5,10 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.optimize
-from service.solver.estimation.estimator import design_estimator
-from service.solver.estimation.target import steady_state_target, target_problem
 
 from service.solver.design.controller import design_controller
+from service.solver.estimation.estimator import design_estimator
+from service.solver.estimation.target import steady_state_target, target_problem
 from service.solver.evaluation.simulation import Event, Scenario, simulate_loop
 from service.solver.limits.bounds import make_limits
 from service.solver.limits.policy import ConstrainedPolicy

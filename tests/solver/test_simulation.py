@@ -13,11 +13,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from service.solver.estimation.estimator import design_estimator
-from service.solver.estimation.loop import control_loop, whole_loop
 
 from service.solver.design.controller import design_controller
 from service.solver.design.gain import optimal_moves
+from service.solver.estimation.estimator import design_estimator
+from service.solver.estimation.loop import control_loop, whole_loop
 from service.solver.evaluation.simulation import (
     Event,
     PolicyStep,

@@ -11,10 +11,10 @@ event at or before step k") written out naively.
 from __future__ import annotations
 
 import numpy as np
-from service.solver.estimation.estimator import design_estimator
 
 from service.solver.design.controller import design_controller
 from service.solver.design.feedforward import disturbance_free_response, feedforward_gain
+from service.solver.estimation.estimator import design_estimator
 from service.solver.evaluation.simulation import Event, Scenario, TruePlant, simulate_loop
 
 # An invented two-by-two process with one measured disturbance (not from any publication).

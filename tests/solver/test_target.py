@@ -9,8 +9,8 @@ with ``numpy.linalg.solve`` (equality-constrained least squares, common practice
 from __future__ import annotations
 
 import numpy as np
-from service.solver.estimation.target import steady_state_target, target_problem
 
+from service.solver.estimation.target import steady_state_target, target_problem
 from tests.conftest import random_plant
 
 

@@ -6,11 +6,11 @@ import numpy as np
 import pytest
 import scipy.optimize
 import scipy.signal
-from service.solver.estimation.estimator import design_estimator
-from service.solver.estimation.realization import StateSpace, plant_system
 
 from service.solver.design.closed_loop import Diagnostic, design_warnings
 from service.solver.design.controller import design_controller
+from service.solver.estimation.estimator import design_estimator
+from service.solver.estimation.realization import StateSpace, plant_system
 from service.solver.evaluation.advice import (
     hessian_advice,
     inverse_response_time,

@@ -10,22 +10,22 @@ a ``time-limit`` problem while the ones answered before keep their results.
 from __future__ import annotations
 
 import logging
-from collections.abc import Sequence
 from typing import Annotated
 
 from fastapi import APIRouter, Body
 from pydantic import ValidationError
 
-from service.api.compute import Budget, BudgetDep, SolverCrashed, TimeLimitExceeded
+from service.api.compute import Budget, BudgetDep
 from service.api.deps import SettingsDep
 from service.api.metrics import count_rejection, observe_design
-from service.api.problems import PROBLEM_JSON, problem_body, validation_problems
-from service.errors import FieldProblem, InvalidRequest, NumericalError
+from service.api.problems import PROBLEM_JSON
+from service.errors import FieldProblem, InvalidRequest, MovecastError, SolverCrashed
 from service.pipeline.design import run_design
 from service.pipeline.examples import load_example
 from service.pipeline.fingerprint import fingerprint
-from service.schemas.batch import BatchItem, BatchItemResult, BatchRequest, BatchResponse
-from service.schemas.common import Caps, pointer
+from service.pipeline.problems import pointer, problem_of
+from service.schemas.batch import BatchItem, BatchItemResult, BatchRequest, BatchResponse, ProblemReport
+from service.schemas.common import Caps
 from service.schemas.design import DesignRequest
 
 __all__ = ["router"]
@@ -44,54 +44,28 @@ PROBLEMS = {
 }
 
 
-def _prefixed(base: str, problems: list[FieldProblem]) -> list[FieldProblem]:
-    return [FieldProblem(base + p.pointer, p.detail) for p in problems]
-
-
-def _failed(
-    item: BatchItem,
-    kind: str,
-    status: int,
-    detail: str,
-    problems: Sequence[FieldProblem] = (),
-    fp: str | None = None,
-) -> BatchItemResult:
-    count_rejection(kind)
-    return BatchItemResult.failed(item.id, problem_body(kind, status, detail, PATH, problems), fp)
+def _failed(item: BatchItem, index: int, exc: BaseException, fp: str | None = None) -> BatchItemResult:
+    """The item answered by the problem of ``exc``, its pointers leading from the batch's root."""
+    if isinstance(exc, SolverCrashed):
+        log.error("solver failure on batch item %d: %s", index, exc)
+    problem = problem_of(exc, base=pointer("items", index, "request"), scope="item")
+    count_rejection(problem.kind)
+    return BatchItemResult.failed(item.id, ProblemReport(**problem.body(PATH)), fp)
 
 
 def _answer(index: int, item: BatchItem, caps: Caps, budget: Budget) -> BatchItemResult:
     """Validate, fingerprint and design one item; every failure stays inside the item."""
-    base = pointer("items", index, "request")
     try:
         request = DesignRequest.model_validate(item.request)
     except ValidationError as exc:
-        problems = _prefixed(base, validation_problems(exc.errors()))  # type: ignore[arg-type]
-        return _failed(item, "invalid-request", 422, f"The item has {len(problems)} invalid field(s).", problems)
+        return _failed(item, index, exc)
     fp = fingerprint(request)
     if item.known_fingerprint is not None and item.known_fingerprint == fp:
         return BatchItemResult(id=item.id, status="unchanged", fingerprint=fp, result=None, problem=None)
     try:
         response = budget.run(run_design, request, caps, operation="design")
-    except InvalidRequest as exc:
-        problems = _prefixed(base, exc.problems)
-        return _failed(item, "invalid-request", 422, f"The item has {len(problems)} invalid field(s).", problems, fp)
-    except NumericalError as exc:
-        problems = [FieldProblem(base + exc.pointer, exc.detail)] if exc.pointer else []
-        return _failed(item, "numerical-problem", 422, exc.detail, problems, fp)
-    except TimeLimitExceeded as exc:
-        return _failed(
-            item,
-            "time-limit",
-            503,
-            f"The batch's compute time limit of {exc.seconds:g} s ran out before this item was designed.",
-            fp=fp,
-        )
-    except SolverCrashed:
-        log.exception("solver failure on batch item %d", index)
-        return _failed(
-            item, "internal-error", 500, "The service failed to design this item; the error is logged.", fp=fp
-        )
+    except MovecastError as exc:
+        return _failed(item, index, exc, fp)
     observe_design(response)
     return BatchItemResult(id=item.id, status="designed", fingerprint=fp, result=response, problem=None)
 

@@ -284,7 +284,7 @@ def factor_hessian(
                 f"The Hessian G'QG + R is not numerically positive definite (eigenvalues from "
                 f"{eigenvalues[0]:.3g} to {eigenvalues[-1]:.3g}). Raise the move weights."
             )
-        raise HessianNotPositiveDefinite(detail, pointer="/weights/move")
+        raise HessianNotPositiveDefinite(detail, field=("weights", "move"))
     return FactoredHessian(matrix=hessian, factor=factor, smallest_eigenvalue=low, largest_eigenvalue=high)
 
 

@@ -60,7 +60,7 @@ from service.solver.design.weights import weight_root
 from service.solver.estimation.target import target_problem
 
 __all__ = [
-    "TERMINAL_POINTER",
+    "TERMINAL_FIELD",
     "TerminalKind",
     "TerminalWeight",
     "incremental_system",
@@ -74,8 +74,8 @@ __all__ = [
 
 TerminalKind = Literal["none", "riccati"]
 
-#: The request field a Riccati failure points at.
-TERMINAL_POINTER = "/weights/terminal"
+#: The key of the request field a Riccati failure names.
+TERMINAL_FIELD = ("weights", "terminal")
 #: A closed loop ``A_i - B_i K`` with a pole this close to the unit circle (or outside) is not
 #: the stabilizing solution (common practice for a marginal eigenvalue in double precision).
 _STABILIZING_MARGIN = 1e-8
@@ -239,7 +239,7 @@ def riccati_terminal_weight(
         f"system has no stabilizing solution because {reason} ({failure or 'non-finite result'}). "
         f'Use terminal "none", weight an output that sees this mode, or give every move a '
         f"positive move weight.",
-        pointer=TERMINAL_POINTER,
+        field=TERMINAL_FIELD,
     )
 
 

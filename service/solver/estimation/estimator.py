@@ -100,9 +100,9 @@ DEFAULT_MEASUREMENT_NOISE = 1.0
 #: directions, which would need enormous estimator gains, are also refused (common practice).
 DETECTABILITY_TOLERANCE = 1e-9
 
-_KIND_POINTER = "/estimator/kind"
-_MODEL_POINTER = "/model"
-_NOISE_POINTER = "/estimator"
+_KIND_FIELD = ("estimator", "kind")
+_MODEL_FIELD = ("model",)
+_NOISE_FIELD = ("estimator",)
 
 
 @dataclass(frozen=True)
@@ -299,7 +299,7 @@ def _check_detectable(
                 f"z = {_format_complex(z)} (on or outside the unit circle) does not "
                 f"show in any measured output (PBH test), so no estimator can track it. "
                 f"Measure an output that sees this mode.",
-                pointer=_MODEL_POINTER,
+                field=_MODEL_FIELD,
             )
     if nd == 0:
         return
@@ -311,7 +311,7 @@ def _check_detectable(
             f"output(s): at most one constant disturbance per measured output can be "
             f"estimated, so the augmented model is not detectable (rank [[I - A, -Bd], "
             f"[C, Cd]] < n + nd; Pannocchia and Rawlings 2003). Use output_disturbance.",
-            pointer=_KIND_POINTER,
+            field=_KIND_FIELD,
         )
     # 3. the rank condition at z = 1.
     matrix = np.block([[np.eye(n) - a, -bd], [c, cd]])
@@ -338,7 +338,7 @@ def _check_detectable(
         f"The {name} model makes the augmented model undetectable: rank [[I - A, -Bd], "
         f"[C, Cd]] = {rank} < n + nd = {n + nd} (Pannocchia and Rawlings 2003). The "
         f"disturbance direction {direction} cannot be estimated: {why}",
-        pointer=_KIND_POINTER,
+        field=_KIND_FIELD,
     )
 
 
@@ -392,12 +392,12 @@ def kalman_filter(
             f"The Kalman filter's Riccati equation has no stabilizing solution ({exc}). "
             f"Give every mode on the unit circle some process noise and make the "
             f"measurement noise covariance positive definite.",
-            pointer=_NOISE_POINTER,
+            field=_NOISE_FIELD,
         ) from exc
     if not np.all(np.isfinite(gain)):
         raise NumericalError(
             "The Kalman filter's Riccati equation gave a non-finite gain. Check the noise covariances.",
-            pointer=_NOISE_POINTER,
+            field=_NOISE_FIELD,
         )
     return gain, p, s
 
@@ -525,7 +525,7 @@ def design_estimator(
             f"The Kalman filter is not stable (largest estimator pole modulus "
             f"{np.abs(poles).max():.6f}). Give every mode on the unit circle some process "
             f"noise.",
-            pointer=_NOISE_POINTER,
+            field=_NOISE_FIELD,
         )
     return Estimator(
         kind=kind,

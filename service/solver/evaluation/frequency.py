@@ -54,7 +54,7 @@ from service.solver.estimation.realization import (
 )
 
 __all__ = [
-    "ANALYSIS_POINTER",
+    "ANALYSIS_FIELD",
     "BANDWIDTH_LEVEL",
     "DEFAULT_DECADES",
     "DEFAULT_POINTS",
@@ -75,8 +75,8 @@ BANDWIDTH_LEVEL = 1.0 / np.sqrt(2.0)
 DEFAULT_POINTS = 200
 #: Default span of the grid below the Nyquist frequency, in decades.
 DEFAULT_DECADES = 4.0
-#: The request field a failure of the analysis points at.
-ANALYSIS_POINTER = "/analysis"
+#: The key of the request field a failure of the analysis names.
+ANALYSIS_FIELD = ("analysis",)
 #: Relative tolerance of the refinements on ``w`` (``brentq`` xtol / ``minimize_scalar`` xatol).
 _FREQUENCY_TOLERANCE = 1e-12
 
@@ -405,7 +405,7 @@ def frequency_analysis(
             "The frequency analysis cannot evaluate the loop: a pole of the plant, the "
             "controller or the closed loop lies on the unit circle at a frequency of the grid "
             f"({exc}). Change the number of points, or move that pole off the unit circle.",
-            pointer=ANALYSIS_POINTER,
+            field=ANALYSIS_FIELD,
         ) from exc
     return FrequencyAnalysis(
         frequencies=grid,

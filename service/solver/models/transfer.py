@@ -86,7 +86,7 @@ import numpy as np
 import scipy.optimize
 from numpy.typing import NDArray
 
-from service.errors import NumericalError
+from service.errors import FieldKey, NumericalError
 from service.solver.models.sampling import hold_integrals
 
 __all__ = [
@@ -322,7 +322,7 @@ def _continuous(element: TransferElement) -> tuple[NDArray[np.float64], ...]:
 
 
 def _sampled(
-    element: TransferElement, sample_time: float, pointer: str
+    element: TransferElement, sample_time: float, field: FieldKey
 ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], float, int]:
     """Sampled dynamics ``(Phi, Gamma, C, D)`` of an element and its whole delay ``h``."""
     ratio = stiffness_ratio(element, sample_time)
@@ -331,15 +331,15 @@ def _sampled(
             f"A time constant of {min(element.time_constants):.3g} is too short to sample "
             f"accurately: the sample time or lead is {ratio:.3g} times longer (at most "
             f"{STIFFNESS_LIMIT:.0e}). A lag this fast settles within one sample; leave it out.",
-            pointer=pointer,
+            field=field,
         )
     ac, bc, cc, dc = _continuous(element)
     whole, fraction = delay_samples(element.dead_time, sample_time)
     if fraction == 0.0:
-        phi, gamma = hold_integrals(ac, bc, sample_time, pointer=pointer)
+        phi, gamma = hold_integrals(ac, bc, sample_time, field=field)
         return phi, gamma, cc, float(dc[0, 0]), whole
-    phi_late, gamma0 = hold_integrals(ac, bc, (1.0 - fraction) * sample_time, pointer=pointer)
-    phi_early, gamma_early = hold_integrals(ac, bc, fraction * sample_time, pointer=pointer)
+    phi_late, gamma0 = hold_integrals(ac, bc, (1.0 - fraction) * sample_time, field=field)
+    phi_early, gamma_early = hold_integrals(ac, bc, fraction * sample_time, field=field)
     phi = phi_late @ phi_early
     gamma1 = phi_late @ gamma_early
     return phi, phi @ gamma0 + gamma1, cc, float((cc @ gamma0 + dc)[0, 0]), whole + 1
@@ -434,8 +434,8 @@ def transfer_matrix_model(
     *,
     sample_time: float,
     disturbance_elements: Grid | None = None,
-    pointer: str = "/model/elements",
-    disturbance_pointer: str = "/model/disturbance_elements",
+    field: FieldKey = ("model", "elements"),
+    disturbance_field: FieldKey = ("model", "disturbance_elements"),
 ) -> SampledTransferModel:
     """Convert a transfer matrix to its exact discrete state-space model under zero-order hold.
 
@@ -447,8 +447,8 @@ def transfer_matrix_model(
         ``Ts > 0``, in the time unit of the time constants and dead times.
     disturbance_elements : sequence of p rows of md ``TransferElement | None``, optional
         How each measured disturbance moves each output (held between samples too).
-    pointer, disturbance_pointer : str, keyword-only
-        JSON pointers of the two grids; an element's error carries ``{pointer}/{i}/{j}``.
+    field, disturbance_field : tuple of str and int, keyword-only
+        Keys of the two grids in the request; an element's error carries ``(*field, i, j)``.
 
     Returns
     -------
@@ -460,7 +460,7 @@ def transfer_matrix_model(
     ------
     service.errors.NumericalError
         When an element's :func:`stiffness_ratio` exceeds :data:`STIFFNESS_LIMIT`, with the
-        element's pointer.
+        element's field key.
 
     Notes
     -----
@@ -482,7 +482,7 @@ def transfer_matrix_model(
         for j, el in enumerate(row):
             if el is None:
                 continue
-            where = f"{pointer}/{i}/{j}" if j < m else f"{disturbance_pointer}/{i}/{j - m}"
+            where = (*field, i, j) if j < m else (*disturbance_field, i, j - m)
             sampled[i, j] = (len(roles), *_sampled(el, ts, where))
             col = j - m if j >= m else j
             lags = len(el.time_constants)
