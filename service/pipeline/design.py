@@ -17,6 +17,7 @@ from numpy.typing import NDArray
 
 from service.errors import FieldProblem, InvalidRequest, NumericalError
 from service.pipeline.arrays import check_weight
+from service.pipeline.caps import Caps, hessian_size, horizon_gain_entries, prediction_entries
 from service.pipeline.estimator import EstimatorInputs, check_estimator, scaled_estimator
 from service.pipeline.fingerprint import fingerprint
 from service.pipeline.limits import (
@@ -29,7 +30,6 @@ from service.pipeline.limits_checks import LimitInputs, check_limits
 from service.pipeline.plant import DiscretePlant, Signal, plant_arrays
 from service.pipeline.problems import pointer
 from service.pipeline.robustness import frequency_problems, robustness_report
-from service.schemas.common import Caps
 from service.schemas.design import (
     ClosedLoopReport,
     DesignRequest,
@@ -184,16 +184,16 @@ def _size_problems(request: DesignRequest, plant: DiscretePlant, caps: Caps) -> 
     n, m, p = plant.states, plant.input_count, plant.output_count
     penalized = h.prediction - h.first_penalized + 1
     moves = h.control if h.move_steps is None else len(h.move_steps)
-    hessian_size = moves * m
-    if hessian_size > caps.max_hessian_size:
+    size = hessian_size(moves=moves, inputs=m)
+    if size > caps.max_hessian_size:
         return [
             FieldProblem(
                 pointer("horizons", "control"),
-                f"the Hessian would be {hessian_size} x {hessian_size} ({moves} moves x {m} inputs); "
+                f"the Hessian would be {size} x {size} ({moves} moves x {m} inputs); "
                 f"this service accepts at most {caps.max_hessian_size}",
             )
         ]
-    entries = penalized * p * (n + m + h.control * m)
+    entries = prediction_entries(penalized_steps=penalized, outputs=p, states=n, inputs=m, control=h.control)
     if entries > caps.max_prediction_entries:
         return [
             FieldProblem(
@@ -202,11 +202,12 @@ def _size_problems(request: DesignRequest, plant: DiscretePlant, caps: Caps) -> 
                 f"{caps.max_prediction_entries:,}. Shorten the prediction or control horizon",
             )
         ]
-    if m * penalized * p > caps.max_response_entries:
+    gain_entries = horizon_gain_entries(penalized_steps=penalized, outputs=p, inputs=m)
+    if gain_entries > caps.max_response_entries:
         return [
             FieldProblem(
                 pointer("horizons", "prediction"),
-                f"the horizon gain would hold {m * penalized * p:,} numbers; this service returns at "
+                f"the horizon gain would hold {gain_entries:,} numbers; this service returns at "
                 f"most {caps.max_response_entries:,}",
             )
         ]

@@ -13,8 +13,8 @@ from numpy.typing import NDArray
 
 from service.errors import FieldProblem, InvalidRequest
 from service.pipeline.arrays import check_matrix
+from service.pipeline.caps import Caps
 from service.pipeline.problems import pointer
-from service.schemas.common import Caps
 from service.schemas.model import PlantModel, StateSpaceModel, TransferElementModel, TransferMatrixModel
 from service.schemas.signals import SignalTag
 from service.solver.models.sampling import sample_zero_order_hold

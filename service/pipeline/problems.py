@@ -163,7 +163,7 @@ def problem_of(exc: BaseException, *, base: str = "", scope: Scope = "request") 
     """
     noun = "item" if scope == "item" else "request"
     if isinstance(exc, ValidationError):
-        exc = InvalidRequest(validation_problems(exc.errors()))  # type: ignore[arg-type]
+        exc = InvalidRequest(validation_problems(exc.errors()))
     if isinstance(exc, InvalidRequest):
         problems = _prefixed(base, exc.problems)
         return Problem("invalid-request", 422, f"The {noun} has {len(problems)} invalid field(s).", problems)

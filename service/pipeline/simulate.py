@@ -31,13 +31,13 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import NumericalError
+from service.pipeline.caps import Caps
 from service.pipeline.design import DesignOutcome, compute_design, design_response
 from service.pipeline.estimator import scaled_estimator
 from service.pipeline.fingerprint import fingerprint
 from service.pipeline.limits import LimitedRun, limit_run_reports, limited_run
 from service.pipeline.plant import DiscretePlant
 from service.pipeline.simulate_checks import SimulationInputs, check_simulate_request
-from service.schemas.common import Caps
 from service.schemas.design import ADVISORY, DesignRequest, LabelledMatrix, PoleReport, WarningReport
 from service.schemas.simulate import (
     EstimatorReport,

@@ -13,13 +13,13 @@ from collections.abc import Callable
 from typing import TypeVar
 
 from service.errors import FieldKey, FieldProblem, InvalidRequest, NumericalError
+from service.pipeline.caps import Caps, loop_frequency_work, plant_run_work
 from service.pipeline.design import DesignInputs, DesignOutcome, check_design_request, compute_design
 from service.pipeline.fingerprint import fingerprint
 from service.pipeline.problems import pointer, problem_of
-from service.pipeline.robustness import loop_frequency_work, robustness_report
+from service.pipeline.robustness import robustness_report
 from service.pipeline.simulate import compute_simulation, performance_report
-from service.pipeline.simulate_checks import SimulationInputs, check_simulate_request, simulation_work
-from service.schemas.common import Caps
+from service.pipeline.simulate_checks import SimulationInputs, check_simulate_request
 from service.schemas.design import DesignRequest, WarningReport
 from service.schemas.simulate import PerformanceReport, ScenarioRequest, SimulateRequest
 from service.schemas.sweep import HORIZON_PARAMETERS, SweepEntryReport, SweepProblem, SweepRequest, SweepResponse
@@ -165,18 +165,13 @@ def _frequency_work_problems(request: SweepRequest, base: DesignInputs, caps: Ca
 
 
 def _run_work(request: SweepRequest, base: SimulationInputs, value: float) -> int:
-    """The estimated work of the run with ``value`` (``service.pipeline.simulate_checks.simulation_work``)."""
-    plant, h = base.design.plant, substituted_request(request, value).horizons
-    md = 0 if plant.b_disturbance is None else plant.b_disturbance.shape[1]
-    m, p = plant.input_count, plant.output_count
-    return simulation_work(
+    """The estimated work of the run with ``value`` (``service.pipeline.caps.plant_run_work``)."""
+    h = substituted_request(request, value).horizons
+    return plant_run_work(
+        base.design.plant,
+        true_plant=base.true_plant,
+        disturbance=base.disturbance,
         steps=base.steps,
-        states=plant.states,
-        true_states=plant.states if base.true_plant is None else base.true_plant.states,
-        inputs=m,
-        outputs=p,
-        disturbances={"output": p, "input": m, "none": 0}[base.disturbance],
-        measured_disturbances=md,
         penalized_steps=max(h.prediction - h.first_penalized + 1, 1),
     )
 

@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from service.pipeline.caps import Caps
 from service.pipeline.design import check_design_request
-from service.schemas.common import Caps
 from service.schemas.design import DesignRequest
 from service.solver.design.controller import design_controller
 

@@ -196,7 +196,7 @@ def test_a_horizon_sweep_with_a_scenario_fails_only_the_invalid_value(client, ex
 
 
 def test_sweep_runs_together_respect_the_simulation_work_cap(make_client):
-    from service.pipeline.simulate_checks import simulation_work
+    from service.pipeline.caps import simulation_work
 
     # The example: 4 states, 2 inputs, 2 outputs, output disturbances, Hp = 30 (Hw = 1).
     one = simulation_work(
@@ -221,7 +221,7 @@ def test_sweep_runs_together_respect_the_simulation_work_cap(make_client):
 
 
 def test_sweep_analyses_together_respect_the_frequency_work_cap(make_client):
-    from service.pipeline.robustness import frequency_work
+    from service.pipeline.caps import frequency_work
 
     # Controller states with the output-disturbance estimator: n + p + m = 8.
     one = frequency_work(points=60, plant_states=4, controller_states=8, inputs=2, measured=2)

@@ -8,9 +8,9 @@ import pytest
 from pydantic import ValidationError
 
 from service.errors import InvalidRequest
+from service.pipeline.caps import Caps
 from service.pipeline.design import check_design_request
 from service.pipeline.fingerprint import fingerprint
-from service.schemas.common import Caps
 from service.schemas.design import DesignRequest
 from service.schemas.model import MODEL_KINDS
 

@@ -20,12 +20,12 @@ from service.api.deps import SettingsDep
 from service.api.metrics import count_rejection, observe_design
 from service.api.problems import PROBLEM_JSON
 from service.errors import FieldProblem, InvalidRequest, MovecastError, SolverCrashed
+from service.pipeline.caps import Caps
 from service.pipeline.design import run_design
 from service.pipeline.examples import load_example
 from service.pipeline.fingerprint import fingerprint
 from service.pipeline.problems import pointer, problem_of
 from service.schemas.batch import BatchItem, BatchItemResult, BatchRequest, BatchResponse, ProblemReport
-from service.schemas.common import Caps
 from service.schemas.design import DesignRequest
 
 __all__ = ["router"]
