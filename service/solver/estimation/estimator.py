@@ -64,7 +64,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Literal
+from typing import Any, Literal
 
 import numpy as np
 import scipy.linalg
@@ -72,6 +72,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from service.errors import NumericalError
 from service.solver.design.weights import weight_matrix
+from service.solver.numerics import eigenvalues_by_modulus, format_complex, pbh_matrix, singular_value_rank
 
 __all__ = [
     "DEFAULT_DISTURBANCE_NOISE",
@@ -247,13 +248,12 @@ def augmented_model(
     return a_aug, b_aug, c_aug, bd, cd
 
 
-def _rank(matrix: NDArray[np.float64]) -> tuple[int, NDArray[np.float64]]:
+def _rank(matrix: NDArray[Any]) -> tuple[int, NDArray[Any]]:
     """Numerical rank with :data:`DETECTABILITY_TOLERANCE`, and the right singular vectors."""
     if matrix.size == 0:
         return 0, np.eye(matrix.shape[1])
     _, s, vt = np.linalg.svd(matrix)
-    tol = DETECTABILITY_TOLERANCE * max(float(s[0]), np.finfo(float).tiny)
-    return int(np.count_nonzero(s > tol)), vt
+    return singular_value_rank(s, DETECTABILITY_TOLERANCE), vt
 
 
 def _format_vector(v: NDArray[np.float64], labels: Sequence[str]) -> str:
@@ -272,10 +272,6 @@ def _format_vector(v: NDArray[np.float64], labels: Sequence[str]) -> str:
     return "along " + text
 
 
-def _format_complex(z: complex) -> str:
-    return f"{z.real:.6g}" if abs(z.imag) < 1e-12 else f"{z.real:.6g}{z.imag:+.6g}j"
-
-
 def _check_detectable(
     a: NDArray[np.float64],
     c: NDArray[np.float64],
@@ -292,11 +288,11 @@ def _check_detectable(
     for z in scipy.linalg.eigvals(a, check_finite=False):
         if abs(z) < 1.0 - 1e-9:
             continue
-        rank, _ = _rank(np.vstack([z * np.eye(n) - a, c.astype(complex)]))
+        rank, _ = _rank(pbh_matrix(a, z, outputs=c))
         if rank < n:
             raise NumericalError(
                 f"The plant is not detectable from its measured outputs: the mode at "
-                f"z = {_format_complex(z)} (on or outside the unit circle) does not "
+                f"z = {format_complex(z)} (on or outside the unit circle) does not "
                 f"show in any measured output (PBH test), so no estimator can track it. "
                 f"Measure an output that sees this mode.",
                 field=_MODEL_FIELD,
@@ -518,8 +514,7 @@ def design_estimator(
     rv = _covariance(measurement_noise, p, DEFAULT_MEASUREMENT_NOISE)
     gain, cov, innovation = kalman_filter(a_aug, c_aug, qw, rv)
     error_matrix = (np.eye(n + nd) - gain @ c_aug) @ a_aug
-    poles = scipy.linalg.eigvals(error_matrix, check_finite=False)
-    poles = poles[np.argsort(-np.abs(poles), kind="stable")]
+    poles = eigenvalues_by_modulus(error_matrix)
     if poles.size and np.abs(poles).max() >= 1.0:
         raise NumericalError(
             f"The Kalman filter is not stable (largest estimator pole modulus "

@@ -40,6 +40,7 @@ from service.solver.design.controller import ControllerDesign
 from service.solver.design.prediction import prediction_matrices
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.target import TargetProblem, target_problem
+from service.solver.numerics import eigenvalues_by_modulus
 
 __all__ = [
     "SEPARATION_TOLERANCE",
@@ -90,10 +91,6 @@ class ControlLoop:
     ) -> NDArray[np.float64]:
         """Return ``Fx_aug x(k|k) + Fu u(k-1)``, shape (Np*p,)."""
         return self.free_state @ estimate + self.free_input @ previous_input
-
-    def reference(self, target_output: NDArray[np.float64]) -> NDArray[np.float64]:
-        """Return the reference trajectory ``(1 (x) I_p) z_s``, shape (Np*p,)."""
-        return np.tile(target_output, self.penalized_steps)
 
 
 def estimator_target(design: ControllerDesign, estimator: Estimator) -> TargetProblem:
@@ -213,10 +210,6 @@ def _whole_loop_matrix(loop: ControlLoop) -> NDArray[np.float64]:
     return np.vstack([x_row, xp_row, u_row])
 
 
-def _sorted(poles: NDArray[np.complex128]) -> NDArray[np.complex128]:
-    return poles[np.argsort(-np.abs(poles), kind="stable")]
-
-
 def whole_loop(loop: ControlLoop) -> WholeLoop:
     """Return the whole loop's poles and check them against the separation principle.
 
@@ -235,7 +228,7 @@ def whole_loop(loop: ControlLoop) -> WholeLoop:
     the largest matched distance).
     """
     matrix = _whole_loop_matrix(loop)
-    poles = _sorted(scipy.linalg.eigvals(matrix, check_finite=False))
+    poles = eigenvalues_by_modulus(matrix)
     controller = loop.design.loop.poles
     estimator = loop.estimator.poles
     union = np.concatenate([controller, estimator])

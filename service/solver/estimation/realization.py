@@ -46,6 +46,7 @@ from service.solver.design.prediction import step_response_coefficients
 from service.solver.design.terminal import terminal_prediction
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.loop import estimator_target
+from service.solver.numerics import by_modulus
 
 __all__ = [
     "StateSpace",
@@ -259,5 +260,4 @@ def closed_loop_poles(plant: StateSpace, controller: StateSpace) -> NDArray[np.c
             [controller.b @ plant.c, controller.a],
         ]
     )
-    poles = np.linalg.eigvals(matrix)
-    return poles[np.argsort(-np.abs(poles), kind="stable")]
+    return by_modulus(np.linalg.eigvals(matrix))
