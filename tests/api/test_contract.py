@@ -8,8 +8,10 @@ gets a 5xx and that every response conforms to the document (status, content typ
 from __future__ import annotations
 
 import copy
+import importlib
 import importlib.util
 import json
+import pkgutil
 import re
 import sys
 import tempfile
@@ -19,6 +21,7 @@ import hypothesis
 import pytest
 import schemathesis
 from hypothesis import HealthCheck, settings
+from pydantic import BaseModel, ValidationError
 from schemathesis.checks import not_a_server_error
 from schemathesis.specs.openapi.checks import (
     content_type_conformance,
@@ -26,6 +29,7 @@ from schemathesis.specs.openapi.checks import (
     status_code_conformance,
 )
 
+import service.schemas
 from service.api import Settings, create_app
 from service.pipeline.examples import load_example
 from service.schemas.batch import BatchRequest
@@ -53,7 +57,18 @@ def test_the_committed_document_is_the_served_schema():
     )
 
 
+def _request_model(schema: dict) -> type[BaseModel]:
+    """The request model a body schema refers to, found by name among the contract's models."""
+    name = schema["$ref"].rsplit("/", 1)[-1]
+    for module in pkgutil.iter_modules(service.schemas.__path__):
+        found = getattr(importlib.import_module(f"service.schemas.{module.name}"), name, None)
+        if isinstance(found, type) and issubclass(found, BaseModel):
+            return found
+    raise AssertionError(f"no request model named {name} in service.schemas")
+
+
 def test_every_request_body_has_an_example_that_is_valid():
+    checked = set()
     for path, operations in served()["paths"].items():
         for method, operation in operations.items():
             if "requestBody" not in operation:
@@ -61,10 +76,14 @@ def test_every_request_body_has_an_example_that_is_valid():
             for media, content in operation["requestBody"]["content"].items():
                 examples = content.get("examples") or {}
                 assert examples, f"{method.upper()} {path} ({media}) has no example"
-                for example in examples.values():
-                    model = BatchRequest if path == "/design/batch" else None
-                    if model is not None:
+                model = _request_model(content["schema"])
+                for name, example in examples.items():
+                    try:
                         model.model_validate(example["value"])
+                    except ValidationError as exc:
+                        pytest.fail(f"{method.upper()} {path}: example {name!r} is not a valid {model.__name__}: {exc}")
+                checked.add(path)
+    assert {"/design", "/design/batch", "/design/sweep", "/simulate"} <= checked
 
 
 def test_the_example_files_are_valid_requests():

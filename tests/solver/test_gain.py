@@ -10,20 +10,7 @@ from service.errors import HessianNotPositiveDefinite
 from service.solver.design.controller import design_controller
 from service.solver.design.gain import optimal_moves
 from tests.conftest import random_plant
-
-
-def incremental_lqr_gain(a, b, c, q, r):
-    """Infinite-horizon LQR gain of the incremental system on xi = [x; u(k-1)].
-
-    xi(k+1) = [[A, B], [0, I]] xi(k) + [B; I] du(k), stage cost |C x|^2_Q + |du|^2_R.
-    Reference: scipy.linalg.solve_discrete_are (the discrete algebraic Riccati equation).
-    """
-    n, m = b.shape
-    ai = np.block([[a, b], [np.zeros((m, n)), np.eye(m)]])
-    bi = np.vstack([b, np.eye(m)])
-    ci = np.hstack([c, np.zeros((c.shape[0], m))])
-    p = scipy.linalg.solve_discrete_are(ai, bi, ci.T @ q @ ci, r)
-    return np.linalg.solve(r + bi.T @ p @ bi, bi.T @ p @ ai)
+from tests.references import incremental_lqr_gain
 
 
 def test_long_horizon_gain_equals_infinite_horizon_lqr(rng):
