@@ -14,7 +14,7 @@ The whole tree::
     ├── MalformedBody                the request body cannot be read or is not JSON
     ├── TimeLimitExceeded            the request's compute time ran out, waiting for a
     │                                compute process or in one
-    └── SolverCrashed                a compute process died or failed unexpectedly (it has
+    └── ComputeCrashed                a compute process died or failed unexpectedly (it has
                                      been replaced); the details go to the log only
 
 The solver raises only ``NumericalError`` and its children, naming the input by a *field
@@ -32,6 +32,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 __all__ = [
+    "ComputeCrashed",
     "FieldKey",
     "FieldProblem",
     "HessianNotPositiveDefinite",
@@ -39,7 +40,6 @@ __all__ = [
     "MalformedBody",
     "MovecastError",
     "NumericalError",
-    "SolverCrashed",
     "TimeLimitExceeded",
 ]
 
@@ -102,5 +102,5 @@ class TimeLimitExceeded(MovecastError):
         super().__init__(f"time limit of {seconds:g} s exceeded")
 
 
-class SolverCrashed(MovecastError):
+class ComputeCrashed(MovecastError):
     """A compute process died or failed in an unexpected way (it has been replaced)."""

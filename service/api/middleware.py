@@ -27,7 +27,7 @@ from service.pipeline.problems import Problem, problem_of
 try:  # FastAPI >= 0.150 keeps included routers as branches; this walks their routes
     from fastapi.routing import iter_route_contexts as _flatten
 except ImportError:  # pragma: no cover - older FastAPI lists every route in app.routes
-    _flatten = None
+    _flatten = None  # type: ignore[assignment]
 
 __all__ = [
     "REQUEST_ID_HEADER",

@@ -28,7 +28,7 @@ from fastapi import FastAPI
 from starlette.middleware.cors import CORSMiddleware
 
 from service.api import metrics
-from service.api.compute import solver_pool
+from service.api.compute import compute_pool
 from service.api.middleware import REQUEST_ID_HEADER, BodyLimitMiddleware, RequestContextMiddleware
 from service.api.problems import PROBLEM_JSON
 from service.api.security import OPEN_PATHS, ApiKeyMiddleware, KeyRing
@@ -66,6 +66,7 @@ def _document_common_responses(app: FastAPI) -> None:
                 for operation in operations.values():
                     for status, response in COMMON_RESPONSES.items():
                         operation.setdefault("responses", {}).setdefault(str(status), copy.deepcopy(response))
+        assert app.openapi_schema is not None
         return app.openapi_schema
 
     app.openapi = openapi  # type: ignore[method-assign]
@@ -106,7 +107,7 @@ def _wrap_lifespan(app: FastAPI, settings: Settings) -> None:
                 "no API key configured (MOVECAST_API_KEYS, MOVECAST_API_KEYS_FILE): "
                 "every endpoint is open to anyone who can reach this port"
             )
-        solver_pool(processes=settings.solver_processes).start()
+        compute_pool(processes=settings.solver_processes).start()
         async with inner(app_) as state:
             undo = _sigterm_hook(app_)
             try:

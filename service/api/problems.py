@@ -16,7 +16,7 @@ from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
-from service.errors import InvalidRequest, MalformedBody, MovecastError, SolverCrashed
+from service.errors import ComputeCrashed, InvalidRequest, MalformedBody, MovecastError
 from service.pipeline.problems import Problem, problem_of, validation_problems
 
 __all__ = ["PROBLEM_JSON", "install_problem_handlers", "problem_response"]
@@ -47,8 +47,8 @@ def install_problem_handlers(app: FastAPI) -> None:
 
     @app.exception_handler(MovecastError)
     async def _movecast(request: Request, exc: MovecastError) -> JSONResponse:
-        if isinstance(exc, SolverCrashed):
-            log.error("solver failure: %s", exc)
+        if isinstance(exc, ComputeCrashed):
+            log.error("compute process failure: %s", exc)
         return problem_response(problem_of(exc), request.url.path)
 
     @app.exception_handler(StarletteHTTPException)

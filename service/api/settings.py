@@ -70,7 +70,7 @@ class Settings(BaseSettings):
         default=30.0, gt=0, le=3600, description="Compute time limit of one request, queueing included."
     )
     solver_processes: int = Field(
-        default=1, ge=1, le=64, description="Solver processes per worker (each runs one computation at a time)."
+        default=1, ge=1, le=64, description="Compute processes per worker (each runs one computation at a time)."
     )
     cors_origins: Annotated[tuple[str, ...], NoDecode] = Field(
         default=(), description="Browser origins allowed by CORS, comma-separated; none by default."

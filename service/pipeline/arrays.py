@@ -122,9 +122,10 @@ def check_weight(
                 for i in negative
             ]
         return w, []
-    w, problems = check_matrix(value, where, rows=size, cols=size, what=what)
-    if w is None:
+    full, problems = check_matrix(value, where, rows=size, cols=size, what=what)
+    if full is None:
         return None, problems
+    w = full
     scale = max(float(np.abs(w).max()), np.finfo(float).tiny)
     if float(np.abs(w - w.T).max()) > 1e-10 * scale:
         return None, [FieldProblem(pointer(*where), f"{what} matrix must be symmetric")]

@@ -322,11 +322,11 @@ def limit_run_reports(
     )
 
     warnings: list[WarningReport] = []
-    for status, at in fallbacks.items():
+    for status, steps_at in fallbacks.items():
         warnings.append(
             WarningReport(
                 code="limits_fallback",
-                message=f"At {len(at)} step(s) ({_first_steps(at)}) the move QP ended '{status}': each such step "
+                message=f"At {len(steps_at)} step(s) ({_first_steps(steps_at)}) the move QP ended '{status}': each such step "
                 f"held the last input (du = 0) and the run went on. See limits.steps (fallback true).",
             )
         )
@@ -339,11 +339,11 @@ def limit_run_reports(
                 f"(limits.steps[].target), so it does not wind up against a limit.",
             )
         )
-    for status, at in failed_targets.items():
+    for status, steps_at in failed_targets.items():
         warnings.append(
             WarningReport(
                 code="target_calculation_failed",
-                message=f"At {len(at)} step(s) ({_first_steps(at)}) the reachable steady-state target ended "
+                message=f"At {len(steps_at)} step(s) ({_first_steps(steps_at)}) the reachable steady-state target ended "
                 f"'{status}': the controller aimed at the unconstrained target with its inputs clipped into the limits.",
             )
         )

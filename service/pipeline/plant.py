@@ -82,15 +82,15 @@ class DiscretePlant:
 
     @property
     def states(self) -> int:
-        return self.a.shape[0]
+        return int(self.a.shape[0])
 
     @property
     def input_count(self) -> int:
-        return self.b.shape[1]
+        return int(self.b.shape[1])
 
     @property
     def output_count(self) -> int:
-        return self.c.shape[0]
+        return int(self.c.shape[0])
 
     @property
     def scaled(self) -> bool:
@@ -184,7 +184,7 @@ def _state_space(
         problems += found
         if bd is not None:
             problems += _cap_signals(bd.shape[1], (*where, "b_disturbance"), "disturbances", caps)
-    cm = c
+    cm: NDArray[np.float64] | None = c
     if model.c_measured is not None:
         cm, found = check_matrix(model.c_measured, (*where, "c_measured"), cols=n, what="measured-output matrix")
         problems += found
@@ -433,7 +433,7 @@ def plant_arrays(
         return None, problems
     b, c, bd, cm = parts["b"], parts["c"], parts["b_disturbance"], parts["c_measured"]
     assert isinstance(b, np.ndarray) and isinstance(c, np.ndarray) and isinstance(cm, np.ndarray)
-    md = 0 if bd is None else bd.shape[1]  # type: ignore[union-attr]
+    md = 0 if not isinstance(bd, np.ndarray) else bd.shape[1]
     inputs, found = _signals(model.inputs, b.shape[1], "u", (*where, "inputs"), "inputs")
     problems += found
     outputs, found = _signals(model.outputs, c.shape[0], "z", (*where, "outputs"), "controlled outputs")

@@ -154,7 +154,7 @@ def problem_of(exc: BaseException, *, base: str = "", scope: Scope = "request") 
     ----------
     exc : BaseException
         A movecast exception (:mod:`service.errors`), a pydantic ``ValidationError``, or
-        anything else (an unexpected failure, ``SolverCrashed`` included: ``internal-error``,
+        anything else (an unexpected failure, ``ComputeCrashed`` included: ``internal-error``,
         nothing of it disclosed; the caller logs it).
     base : str, keyword-only
         JSON pointer put before every field's pointer (``/items/3/request`` for a batch item).

@@ -35,10 +35,10 @@ def _weight(
     if signal is None:
         return [value] * size
     if weight and isinstance(weight[0], list):
-        matrix = [list(row) for row in weight]  # type: ignore[arg-type]
+        matrix = [[float(x) for x in row] for row in weight if isinstance(row, list)]
         matrix[signal][signal] = value
         return matrix
-    diagonal = list(weight)  # type: ignore[arg-type]
+    diagonal = [float(x) for x in weight if not isinstance(x, list)]
     diagonal[signal] = value
     return diagonal
 
@@ -61,6 +61,22 @@ def substituted_request(request: SweepRequest, value: float) -> DesignRequest:
     weight = getattr(base.weights, field)
     updated = _weight(weight, request.signal, float(value), len(weight))
     return base.model_copy(update={"weights": base.weights.model_copy(update={field: updated})})
+
+
+def _value_problems(request: SweepRequest) -> list[FieldProblem]:
+    """The values (and ``signal``) must fit the parameter: the sweep request's own cross-field rule.
+
+    Named at the request's root, as the schema's validator named it before it moved here.
+    """
+    if request.parameter in HORIZON_PARAMETERS:
+        if request.signal is not None:
+            return [FieldProblem("", "'signal' applies to weights only; leave it out when sweeping a horizon")]
+        bad = [v for v in request.values if v != int(v) or v < 1]
+        if bad:
+            return [FieldProblem("", f"horizon values must be whole numbers >= 1; got {bad[0]:g}")]
+    elif any(v < 0 for v in request.values):
+        return [FieldProblem("", "weight values must not be negative")]
+    return []
 
 
 def _signal_problem(request: SweepRequest) -> list[FieldProblem]:
@@ -214,6 +230,9 @@ def run_sweep(request: SweepRequest, caps: Caps) -> SweepResponse:
     NumericalError
         When the base model cannot be sampled.
     """
+    found = _value_problems(request)
+    if found:
+        raise InvalidRequest(found)
     scenario = request.scenario
     base_run: SimulationInputs | None = None
     if scenario is None:

@@ -10,7 +10,7 @@ a ``time-limit`` problem while the ones answered before keep their results.
 from __future__ import annotations
 
 import logging
-from typing import Annotated
+from typing import Annotated, Any
 
 from fastapi import APIRouter, Body
 from pydantic import ValidationError
@@ -19,13 +19,13 @@ from service.api.compute import Budget, BudgetDep
 from service.api.deps import SettingsDep
 from service.api.metrics import count_rejection, observe_design
 from service.api.problems import PROBLEM_JSON
-from service.errors import FieldProblem, InvalidRequest, MovecastError, SolverCrashed
+from service.errors import ComputeCrashed, MovecastError
+from service.pipeline.batch import check_batch, failed_item
 from service.pipeline.caps import Caps
 from service.pipeline.design import run_design
 from service.pipeline.examples import load_example
 from service.pipeline.fingerprint import fingerprint
-from service.pipeline.problems import pointer, problem_of
-from service.schemas.batch import BatchItem, BatchItemResult, BatchRequest, BatchResponse, ProblemReport
+from service.schemas.batch import BatchItem, BatchItemResult, BatchRequest, BatchResponse
 from service.schemas.design import DesignRequest
 
 __all__ = ["router"]
@@ -33,8 +33,7 @@ __all__ = ["router"]
 router = APIRouter(tags=["design"])
 log = logging.getLogger("movecast.batch")
 
-PATH = "/design/batch"
-PROBLEMS = {
+PROBLEMS: dict[int | str, dict[str, Any]] = {
     400: {"description": "The body is not valid JSON.", "content": {PROBLEM_JSON: {}}},
     422: {
         "description": "The batch itself is invalid (too many items, a duplicate or missing id); "
@@ -45,12 +44,12 @@ PROBLEMS = {
 
 
 def _failed(item: BatchItem, index: int, exc: BaseException, fp: str | None = None) -> BatchItemResult:
-    """The item answered by the problem of ``exc``, its pointers leading from the batch's root."""
-    if isinstance(exc, SolverCrashed):
-        log.error("solver failure on batch item %d: %s", index, exc)
-    problem = problem_of(exc, base=pointer("items", index, "request"), scope="item")
-    count_rejection(problem.kind)
-    return BatchItemResult.failed(item.id, ProblemReport(**problem.body(PATH)), fp)
+    if isinstance(exc, ComputeCrashed):
+        log.error("compute process failure on batch item %d: %s", index, exc)
+    result = failed_item(item, index, exc, fp)
+    assert result.problem is not None
+    count_rejection(result.problem.type.rsplit(":", 1)[-1])
+    return result
 
 
 def _answer(index: int, item: BatchItem, caps: Caps, budget: Budget) -> BatchItemResult:
@@ -87,24 +86,6 @@ def design_batch(
     budget: BudgetDep,
 ) -> BatchResponse:
     """Design many controllers in one call; each item gets its own result or problem, in order."""
-    problems: list[FieldProblem] = []
-    if len(batch.items) > settings.max_batch_items:
-        problems.append(
-            FieldProblem(
-                "/items",
-                f"the batch has {len(batch.items)} items; this service accepts at most {settings.max_batch_items}",
-            )
-        )
-    seen: dict[str, int] = {}
-    for index, item in enumerate(batch.items):
-        if item.id in seen:
-            problems.append(
-                FieldProblem(
-                    pointer("items", index, "id"), f"the id {item.id!r} is already used by item {seen[item.id]}"
-                )
-            )
-        seen.setdefault(item.id, index)
-    if problems:
-        raise InvalidRequest(problems)
+    check_batch(batch, max_items=settings.max_batch_items)
     caps = settings.caps()
     return BatchResponse(items=[_answer(i, item, caps, budget) for i, item in enumerate(batch.items)])

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Any
 
 from fastapi import APIRouter, Body
 
@@ -18,7 +18,7 @@ __all__ = ["router"]
 
 router = APIRouter(tags=["design"])
 
-PROBLEMS = {
+PROBLEMS: dict[int | str, dict[str, Any]] = {
     400: {"description": "The body is not valid JSON.", "content": {PROBLEM_JSON: {}}},
     422: {
         "description": "A field is invalid, or the design problem cannot be solved; "

@@ -78,11 +78,11 @@ class StateSpace:
 
     @property
     def inputs(self) -> int:
-        return self.d.shape[1]
+        return int(self.d.shape[1])
 
     @property
     def outputs(self) -> int:
-        return self.d.shape[0]
+        return int(self.d.shape[0])
 
     def evaluate(self, z: NDArray[np.complex128]) -> NDArray[np.complex128]:
         """Return the transfer matrix ``C (z I - A)^-1 B + D`` at each point of ``z``.

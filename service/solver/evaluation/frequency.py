@@ -37,7 +37,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Literal
+from typing import Any, Literal
 
 import numpy as np
 import scipy.optimize
@@ -219,12 +219,14 @@ def _loop_function(
 def _sensitivities(loop: NDArray[np.complex128]) -> tuple[NDArray[np.complex128], NDArray[np.complex128]]:
     """``S = (I + L)^-1`` by a linear solve and ``T = L S``."""
     eye = np.eye(loop.shape[-1])
-    s = np.linalg.solve(eye + loop, np.broadcast_to(eye, loop.shape).astype(complex))
-    return s, loop @ s
+    s: NDArray[Any] = np.linalg.solve(eye + loop, np.broadcast_to(eye, loop.shape).astype(complex))
+    t: NDArray[np.complex128] = loop @ s
+    return s, t
 
 
 def _largest(matrices: NDArray[np.complex128]) -> NDArray[np.float64]:
-    return np.linalg.svd(matrices, compute_uv=False)[..., 0]
+    values: NDArray[Any] = np.linalg.svd(matrices, compute_uv=False)[..., 0]
+    return values
 
 
 def _peak(
@@ -336,8 +338,8 @@ def _loop_sensitivity(
 
     loop = loop_fn(grid)
     s, t = _sensitivities(loop)
-    sv_s = np.linalg.svd(s, compute_uv=False)
-    sv_t = np.linalg.svd(t, compute_uv=False)
+    sv_s: NDArray[Any] = np.linalg.svd(s, compute_uv=False)
+    sv_t: NDArray[Any] = np.linalg.svd(t, compute_uv=False)
     peak_s, peak_s_w = _peak(grid, sv_s[:, 0], largest(0))
     peak_t, peak_t_w = _peak(grid, sv_t[:, 0], largest(1))
     return LoopSensitivity(

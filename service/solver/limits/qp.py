@@ -366,7 +366,7 @@ class MoveQP:
     @property
     def variables(self) -> int:
         """``Hu*m + ns``: moves plus slacks."""
-        return self._full_hessian.shape[0]
+        return int(self._full_hessian.shape[0])
 
     def _shift_map(self, nv: int, nr: int, steps: int) -> NDArray[np.intp]:
         """For each constraint, the one of the previous step it inherits its state from (-1: none).

@@ -71,7 +71,8 @@ def _scaled_inputs(a: NDArray[np.float64], b: NDArray[np.float64]) -> NDArray[np
     scale = scale if scale > 0.0 else 1.0
     norms = np.linalg.norm(b, axis=0)
     factors = np.divide(scale, norms, out=np.zeros_like(norms), where=norms > 0.0)
-    return b * factors
+    result: NDArray[np.float64] = b * factors
+    return result
 
 
 def _blind_directions(

@@ -81,6 +81,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import scipy.optimize
@@ -242,7 +243,7 @@ class SampledTransferModel:
     @property
     def state_count(self) -> int:
         """``n``."""
-        return self.a.shape[0]
+        return int(self.a.shape[0])
 
     @property
     def strictly_proper(self) -> bool:
@@ -475,7 +476,7 @@ def transfer_matrix_model(
     p, columns = len(rows), len(rows[0])
     out, regs = _plan(rows, ts)
 
-    sampled: dict[tuple[int, int], tuple] = {}
+    sampled: dict[tuple[int, int], tuple[Any, ...]] = {}
     roles: list[StateRole] = []
     integrator: dict[int, int] = {}  # row -> index of its shared integrator state
     for i, row in enumerate(rows):
