@@ -19,7 +19,7 @@ from service.errors import FieldProblem, InvalidRequest, NumericalError
 from service.pipeline.arrays import check_weight
 from service.pipeline.caps import Caps, hessian_size, horizon_gain_entries, prediction_entries
 from service.pipeline.estimator import EstimatorInputs, check_estimator, scaled_estimator
-from service.pipeline.fingerprint import fingerprint
+from service.pipeline.fingerprint import design_fingerprint
 from service.pipeline.limits import (
     DesignLimitCheck,
     design_limit_check,
@@ -83,6 +83,10 @@ class DesignInputs:
     frequency_points: int | None = None
     #: The checked limits; ``None``: the request has none.
     limits: LimitInputs | None = None
+    #: Whether the answer shows the sampled model (``analysis.sampled_model``).
+    sampled_model: bool = False
+    #: The fingerprint of the design request (its design fields alone).
+    fingerprint: str = ""
 
     @property
     def free_moves(self) -> int:
@@ -284,6 +288,8 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         estimator=estimator,
         frequency_points=request.analysis.points if request.analysis.frequency else None,
         limits=limits,
+        sampled_model=request.analysis.sampled_model,
+        fingerprint=design_fingerprint(request),
     )
 
 
@@ -385,7 +391,7 @@ def _poles(values: NDArray[np.complex128]) -> list[PoleReport]:
     return [PoleReport(real=float(z.real), imag=float(z.imag)) for z in values]
 
 
-def _plant_report(request: DesignRequest, plant: DiscretePlant, outcome: DesignOutcome) -> PlantReport:
+def _plant_report(checked: DesignInputs, plant: DiscretePlant, outcome: DesignOutcome) -> PlantReport:
     inputs = [s.name for s in plant.inputs]
     outputs = [s.name for s in plant.outputs]
     su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
@@ -394,7 +400,7 @@ def _plant_report(request: DesignRequest, plant: DiscretePlant, outcome: DesignO
     rga = outcome.properties.relative_gain
     condition = outcome.properties.condition_number
     sampled = None
-    if request.analysis.sampled_model:
+    if checked.sampled_model:
         sampled = SampledModelReport(
             a=plant.a.tolist(),
             b=plant.b.tolist(),
@@ -420,8 +426,8 @@ def _plant_report(request: DesignRequest, plant: DiscretePlant, outcome: DesignO
     )
 
 
-def design_response(request: DesignRequest, inputs: DesignInputs, outcome: DesignOutcome) -> DesignResponse:
-    """Turn the computed design into the response model."""
+def design_response(inputs: DesignInputs, outcome: DesignOutcome) -> DesignResponse:
+    """Turn the computed design into the response model (the checked inputs carry all it needs)."""
     plant = inputs.plant
     gain, design, loop = outcome.gain, outcome.design, outcome.design.loop
     names = [s.name for s in plant.inputs]
@@ -453,13 +459,13 @@ def design_response(request: DesignRequest, inputs: DesignInputs, outcome: Desig
         closed_loop=ClosedLoopReport(
             poles=_poles(loop.poles), spectral_radius=loop.spectral_radius, stable=loop.stable
         ),
-        plant=_plant_report(request, plant, outcome),
+        plant=_plant_report(inputs, plant, outcome),
         warnings=[WarningReport(code=w.code, message=w.message) for w in outcome.warnings],
         robustness=None
         if outcome.analysis is None or outcome.estimator is None
         else robustness_report(outcome.analysis, outcome.estimator),
         limit_check=None if outcome.limit_check is None else limit_check_report(outcome.limit_check, plant),
-        fingerprint=fingerprint(request),
+        fingerprint=inputs.fingerprint,
     )
 
 
@@ -471,4 +477,4 @@ def run_design(request: DesignRequest, caps: Caps) -> DesignResponse:
     InvalidRequest, NumericalError
     """
     inputs = check_design_request(request, caps)
-    return design_response(request, inputs, compute_design(inputs))
+    return design_response(inputs, compute_design(inputs))

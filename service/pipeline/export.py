@@ -28,7 +28,7 @@ from service.errors import FieldProblem, InvalidRequest, NumericalError
 from service.pipeline.caps import Caps
 from service.pipeline.design import DesignInputs, DesignOutcome, check_design_request, compute_design
 from service.pipeline.estimator import scaled_estimator
-from service.pipeline.fingerprint import fingerprint
+from service.pipeline.fingerprint import design_fingerprint
 from service.pipeline.plant import DiscretePlant
 from service.pipeline.problems import pointer
 from service.pipeline.structured_text import BlockText, structured_text
@@ -44,7 +44,6 @@ __all__ = [
     "block_source",
     "check_export_request",
     "compute_export",
-    "design_fingerprint",
     "difference_equations",
     "export_response",
     "law_labels",
@@ -86,12 +85,6 @@ class LawLabels:
     inputs: list[LawSignal]
     outputs: list[LawSignal]
     states: list[str]
-
-
-def design_fingerprint(request: DesignRequest) -> str:
-    """The fingerprint /design gives the design part of ``request`` (a subclass's own fields left out)."""
-    fields = {name: getattr(request, name) for name in DesignRequest.model_fields}
-    return fingerprint(DesignRequest.model_validate(fields))
 
 
 def _law_problems(request: DesignRequest, inputs: DesignInputs) -> list[FieldProblem]:

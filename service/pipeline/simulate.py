@@ -38,7 +38,7 @@ from service.pipeline.fingerprint import fingerprint
 from service.pipeline.limits import LimitedRun, limit_run_reports, limited_run
 from service.pipeline.plant import DiscretePlant
 from service.pipeline.simulate_checks import SimulationInputs, check_simulate_request
-from service.schemas.design import ADVISORY, DesignRequest, LabelledMatrix, PoleReport, WarningReport
+from service.schemas.design import ADVISORY, LabelledMatrix, PoleReport, WarningReport
 from service.schemas.simulate import (
     EstimatorReport,
     InputFigures,
@@ -339,7 +339,6 @@ def simulate_response(
 ) -> SimulateResponse:
     """Turn the computed run into the response model."""
     plant = inputs.design.plant
-    design_request = DesignRequest(**{name: getattr(request, name) for name in DesignRequest.model_fields})
     columns = _columns(plant, outcome.estimator)
     est = outcome.estimator
     gain = None
@@ -382,7 +381,7 @@ def simulate_response(
             spectral_radius=whole.spectral_radius,
             stable=whole.stable,
         ),
-        design=design_response(design_request, inputs.design, outcome.design),
+        design=design_response(inputs.design, outcome.design),
         limits=limits,
         limit_summary=limit_summary,
         warnings=warnings,
