@@ -316,8 +316,8 @@ def compute_design(inputs: DesignInputs) -> DesignOutcome:
 
 def _compute_design(inputs: DesignInputs) -> DesignOutcome:
     plant = inputs.plant
-    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
-    sd = plant.spans(plant.disturbances) if plant.b_disturbance is not None else None
+    su, sz = plant.input_spans, plant.output_spans
+    sd = plant.disturbance_spans if plant.b_disturbance is not None else None
     scaled = scale_plant(
         plant.a, plant.b, plant.c, input_span=su, output_span=sz, b_disturbance=plant.b_disturbance, disturbance_span=sd
     )
@@ -394,7 +394,7 @@ def _poles(values: NDArray[np.complex128]) -> list[PoleReport]:
 def _plant_report(checked: DesignInputs, plant: DiscretePlant, outcome: DesignOutcome) -> PlantReport:
     inputs = [s.name for s in plant.inputs]
     outputs = [s.name for s in plant.outputs]
-    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
+    su, sz = plant.input_spans, plant.output_spans
     steady = outcome.properties.steady_state
     to_engineering = sz[:, None] / su[None, :]
     rga = outcome.properties.relative_gain

@@ -158,7 +158,7 @@ def scaled_estimator(inputs: EstimatorInputs, plant: DiscretePlant, scaled: Scal
         model, a Riccati equation without a stabilizing solution), or pointer ``/estimator``
         when the gain or poles come out as numbers that are not finite.
     """
-    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
+    su, sz = plant.input_spans, plant.output_spans
     s_dist = {"output": sz, "input": su, "none": np.ones(0)}[inputs.disturbance]
     estimator = design_estimator(
         scaled.a,

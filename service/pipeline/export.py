@@ -138,7 +138,7 @@ def check_export_request(request: ExportRequest, caps: Caps) -> ExportInputs:
 
 
 def _disturbance_spans(plant: DiscretePlant, estimator: Estimator) -> NDArray[np.float64]:
-    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
+    su, sz = plant.input_spans, plant.output_spans
     return {"output": sz, "input": su, "none": np.ones(0)}[estimator.disturbance]
 
 
@@ -157,8 +157,8 @@ def compute_export(inputs: ExportInputs) -> ExportOutcome:
     if estimator is None:
         assert inputs.design.estimator is not None
         estimator = scaled_estimator(inputs.design.estimator, plant, outcome.scaled)
-    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
-    sd = plant.spans(plant.disturbances) if plant.b_disturbance is not None else np.ones(0)
+    su, sz = plant.input_spans, plant.output_spans
+    sd = plant.disturbance_spans if plant.b_disturbance is not None else np.ones(0)
     with np.errstate(over="ignore", invalid="ignore"):
         scaled_law = fixed_law(outcome.design, estimator, b_disturbance=outcome.scaled.b_disturbance)
         law = law_in_units(

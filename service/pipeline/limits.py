@@ -179,7 +179,7 @@ def limited_run(limits: LimitInputs, plant: DiscretePlant, design: ControllerDes
     service.errors.NumericalError
         When the QP or the target calculation cannot be set up (pointer ``/limits``).
     """
-    scaled = limits.limits(plant.spans(plant.inputs), plant.spans(plant.outputs))
+    scaled = limits.limits(plant.input_spans, plant.output_spans)
     try:
         if design.blocking is None:
             policy = ConstrainedPolicy.from_design(design, scaled, hard_outputs=limits.hard_outputs)
@@ -237,7 +237,7 @@ def limit_run_reports(
         Steps kept in the response (the run may have been cut where it blew up).
     plant : DiscretePlant
     """
-    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
+    su, sz = plant.input_spans, plant.output_spans
     names = {"input": _names(plant, "input"), "move": _names(plant, "input"), "output": _names(plant, "output")}
     lim = run.limits
     statuses, reachable = run.target.statuses, run.target.reachable

@@ -149,7 +149,7 @@ def check_limits(request: LimitsRequest | None, plant: DiscretePlant) -> tuple[L
                 f"(null for no limit)",
             )
         )
-    su, sz = plant.spans(inputs), plant.spans(outputs)
+    su, sz = plant.input_spans, plant.output_spans
     for field, spans, signals in (
         ("input_min", su, inputs),
         ("input_max", su, inputs),

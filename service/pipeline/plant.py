@@ -7,6 +7,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 from numpy.typing import NDArray
@@ -101,6 +102,26 @@ class DiscretePlant:
     def spans(signals: Sequence[Signal]) -> NDArray[np.float64]:
         """Spans of ``signals`` as an array."""
         return np.array([s.span for s in signals], dtype=float)
+
+    @cached_property
+    def input_spans(self) -> NDArray[np.float64]:
+        """Spans of the manipulated variables, shape (m,); computed once, read-only."""
+        return _read_only(self.spans(self.inputs))
+
+    @cached_property
+    def output_spans(self) -> NDArray[np.float64]:
+        """Spans of the controlled outputs, shape (p,); computed once, read-only."""
+        return _read_only(self.spans(self.outputs))
+
+    @cached_property
+    def disturbance_spans(self) -> NDArray[np.float64]:
+        """Spans of the measured disturbances, shape (md,) (empty without any); computed once, read-only."""
+        return _read_only(self.spans(self.disturbances))
+
+
+def _read_only(values: NDArray[np.float64]) -> NDArray[np.float64]:
+    values.setflags(write=False)
+    return values
 
 
 def _signals(

@@ -136,8 +136,8 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
     plant = inputs.design.plant
     outcome = compute_design(inputs.design)
     scaled = outcome.scaled
-    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
-    sd = plant.spans(plant.disturbances) if plant.b_disturbance is not None else np.ones(0)
+    su, sz = plant.input_spans, plant.output_spans
+    sd = plant.disturbance_spans if plant.b_disturbance is not None else np.ones(0)
     s_dist = {"output": sz, "input": su, "none": np.ones(0)}[inputs.disturbance]
     estimator = outcome.estimator  # already built when the design's frequency analysis was asked
     if estimator is None:
