@@ -12,6 +12,8 @@ The whole tree::
     │                                some moves carry no penalty and the outputs cannot see
     │                                them, so the optimal move sequence is not unique
     ├── MalformedBody                the request body cannot be read or is not JSON
+    ├── HeavyLaneFull                the lane for large computations has as many requests
+    │                                waiting as it accepts; retry later
     ├── TimeLimitExceeded            the request's compute time ran out, waiting for a
     │                                compute process or in one
     └── ComputeCrashed                a compute process died or failed unexpectedly (it has
@@ -35,6 +37,7 @@ __all__ = [
     "ComputeCrashed",
     "FieldKey",
     "FieldProblem",
+    "HeavyLaneFull",
     "HessianNotPositiveDefinite",
     "InvalidRequest",
     "MalformedBody",
@@ -91,6 +94,14 @@ class MalformedBody(MovecastError):
     def __init__(self, detail: str) -> None:
         self.detail = detail
         super().__init__(detail)
+
+
+class HeavyLaneFull(MovecastError):
+    """The heavy lane has as many requests waiting as it accepts; retry later."""
+
+    def __init__(self, waiting: int) -> None:
+        self.waiting = waiting
+        super().__init__(f"{waiting} heavy requests are already waiting")
 
 
 class TimeLimitExceeded(MovecastError):

@@ -1,18 +1,28 @@
-"""Compute work under a deadline, in separate processes that can be stopped.
+"""Solver work under a deadline, in separate processes that can be stopped.
 
 Why processes: the time limit must truly bound a request.  A thread cannot be stopped, and
 an estimate of the cost from the sizes is only an estimate; a process can be killed.  Each
-serving process keeps a small pool of compute processes (``MOVECAST_SOLVER_PROCESSES``, one
+serving process keeps a small pool of solver processes (``MOVECAST_SOLVER_PROCESSES``, one
 by default).  A request takes an idle one, sends it the call and waits until its deadline
-(``MOVECAST_REQUEST_TIMEOUT_SECONDS`` from the start of the handler, waiting for a free compute process
-included).  When the deadline passes, that compute process is killed and replaced, and the request is
-answered 503 with problem details; the other compute processes keep working.  The size caps of the
+(``MOVECAST_REQUEST_TIMEOUT_SECONDS`` from the start of the handler, waiting for a free solver
+included).  When the deadline passes, that solver is killed and replaced, and the request is
+answered 503 with problem details; the other solvers keep working.  The size caps of the
 settings still reject what is plainly too big up front, with a 422 naming the field.
 
-Compute processes start from a fork server that has already imported numpy, scipy and the
+Solver processes start from a fork server that has already imported numpy, scipy and the
 schemas, so replacing one takes milliseconds, not the second a fresh interpreter takes.
 
-    budget = Budget(pool, seconds=30.0)
+Two lanes.  Before a request runs, its work is estimated from its sizes
+(:func:`service.pipeline.caps.request_work`).  Work above ``MOVECAST_HEAVY_WORK`` goes to
+the heavy lane (``MOVECAST_HEAVY_SOLVER_PROCESSES``, one by default), everything else to
+the light lane (``MOVECAST_SOLVER_PROCESSES``, one per core by default).  A small request
+therefore never queues behind a large one.  With ``MOVECAST_HEAVY_NICENESS`` (for example
+10, on a host of its own) the operating system also gives the light lane's processes the
+CPU first while the heavy lane is busy.  At most ``MOVECAST_HEAVY_QUEUE`` heavy requests wait for the heavy lane; more are
+answered 503 at once with ``Retry-After``, so that waiting heavy requests cannot hold every
+thread of the serving process.
+
+    budget = Budget(lanes, seconds=30.0)
     response = budget.run(run_design, request, caps, operation="design")
 """
 
@@ -31,26 +41,41 @@ from multiprocessing.process import BaseProcess
 from typing import Annotated, Any, TypeVar
 
 from fastapi import Depends
+from pydantic import BaseModel
 
 from service.api.compute_worker import rebuild_error, serve_calls
 from service.api.deps import SettingsDep
-from service.api.metrics import SOLVER_SECONDS
-from service.errors import ComputeCrashed, TimeLimitExceeded
+from service.api.metrics import LANE_REQUESTS, SOLVER_SECONDS
+from service.errors import ComputeCrashed, HeavyLaneFull, TimeLimitExceeded
+from service.pipeline.caps import request_work
 
 __all__ = [
+    "HEAVY_NICENESS",
     "Budget",
     "BudgetDep",
     "ComputeCrashed",
-    "ComputePool",
+    "HeavyLaneFull",
+    "Lanes",
+    "SolverPool",
     "TimeLimitExceeded",
-    "compute_pool",
+    "default_solver_processes",
     "get_budget",
+    "solver_lanes",
+    "solver_pool",
 ]
 
 T = TypeVar("T")
 
-#: Modules the fork server imports once, so each compute process starts ready.
+#: Modules the fork server imports once, so each solver process starts ready.
 PRELOAD = ["numpy", "scipy.linalg", "service.pipeline.design", "service.api.compute_worker"]
+
+
+def default_solver_processes() -> int:
+    """One light-lane solver process per core this process may run on."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # not on Linux
+        return max(1, os.cpu_count() or 1)
 
 
 def _context() -> Any:
@@ -62,44 +87,56 @@ def _context() -> Any:
 
 
 @dataclass
-class _Worker:
+class _Solver:
     process: BaseProcess
     conn: Connection
 
 
-class ComputePool:
-    """A fixed number of compute processes, each running one call at a time.
+class SolverPool:
+    """A fixed number of solver processes, each running one call at a time.
 
     Parameters
     ----------
     processes : int
-        Number of compute processes.
+        Number of solver processes.
     blas_threads : int
-        BLAS/OpenMP threads in each compute process.
+        BLAS/OpenMP threads in each solver process.
+    niceness : int
+        Added to each solver process's CPU niceness (0: as the serving process).
+    max_waiting : int or None
+        Most calls waiting for a free solver; one more raises :class:`HeavyLaneFull`.
 
     Processes start on first use; :meth:`close` stops them (also at interpreter exit).
     """
 
-    def __init__(self, *, processes: int, blas_threads: int = 1) -> None:
+    def __init__(
+        self, *, processes: int, blas_threads: int = 1, niceness: int = 0, max_waiting: int | None = None
+    ) -> None:
         self.processes = processes
         self.blas_threads = blas_threads
-        self._idle: queue.Queue[_Worker] = queue.Queue()
+        self.niceness = niceness
+        self.max_waiting = max_waiting
+        self._waiting = 0
+        self._idle: queue.Queue[_Solver] = queue.Queue()
         self._lock = threading.Lock()
         self._started = False
         self._closed = False
         self._context = _context()
 
-    def _spawn(self) -> _Worker:
+    def _spawn(self) -> _Solver:
         parent, child = self._context.Pipe(duplex=True)
         process = self._context.Process(
-            target=serve_calls, args=(child, self.blas_threads), name="movecast-compute", daemon=True
+            target=serve_calls,
+            args=(child, self.blas_threads, self.niceness),
+            name="movecast-solver",
+            daemon=True,
         )
         process.start()
         child.close()
-        return _Worker(process, parent)
+        return _Solver(process, parent)
 
     def start(self) -> None:
-        """Start the compute processes now (idempotent)."""
+        """Start the solver processes now (idempotent)."""
         with self._lock:
             if self._started or self._closed:
                 return
@@ -107,27 +144,27 @@ class ComputePool:
                 self._idle.put(self._spawn())
             self._started = True
 
-    def _retire(self, worker: _Worker) -> None:
-        worker.conn.close()
-        if worker.process.is_alive():
-            worker.process.kill()
-        worker.process.join(timeout=5)
+    def _retire(self, solver: _Solver) -> None:
+        solver.conn.close()
+        if solver.process.is_alive():
+            solver.process.kill()
+        solver.process.join(timeout=5)
 
     def run(self, call: Callable[..., T], args: tuple[Any, ...], *, deadline: float, seconds: float) -> tuple[T, float]:
-        """Run ``call(*args)`` in a compute process before ``deadline`` (``time.monotonic``).
+        """Run ``call(*args)`` in a solver before ``deadline`` (``time.monotonic``).
 
         Returns
         -------
         value, seconds
-            The call's result and the time it took in the compute process.
+            The call's result and the time it took in the solver.
 
         Raises
         ------
         TimeLimitExceeded
-            No compute process was free in time, or the call did not finish in time (its compute process is
+            No solver was free in time, or the call did not finish in time (its solver is
             killed and replaced).
         ComputeCrashed
-            The compute process died or raised something other than a movecast error.
+            The solver died or raised something other than a movecast error.
         MovecastError
             Whatever the call raised on purpose (InvalidRequest, NumericalError).
         """
@@ -135,34 +172,47 @@ class ComputePool:
             raise TimeLimitExceeded(seconds, queued=True)
         self.start()
         try:
-            worker = self._idle.get(timeout=max(deadline - time.monotonic(), 0.0))
+            solver = self._idle.get_nowait()
         except queue.Empty:
-            raise TimeLimitExceeded(seconds, queued=True) from None
+            solver = self._wait_for_solver(deadline, seconds)
         healthy = False
         try:
             try:
-                worker.conn.send((call, args))
-                if not worker.conn.poll(max(deadline - time.monotonic(), 0.0)):
+                solver.conn.send((call, args))
+                if not solver.conn.poll(max(deadline - time.monotonic(), 0.0)):
                     raise TimeLimitExceeded(seconds, queued=False)
-                outcome = worker.conn.recv()
+                outcome = solver.conn.recv()
             except (EOFError, OSError) as exc:
-                raise ComputeCrashed("the compute process stopped") from exc
+                raise ComputeCrashed("the solver process stopped") from exc
             if outcome[0] == "crash":
-                raise ComputeCrashed(f"the compute process raised {outcome[1]}")
+                raise ComputeCrashed(f"the solver raised {outcome[1]}")
             healthy = True
         finally:
             if healthy:
-                self._idle.put(worker)
+                self._idle.put(solver)
             else:
-                self._retire(worker)
+                self._retire(solver)
                 if not self._closed:
                     self._idle.put(self._spawn())
         if outcome[0] == "ok":
             return outcome[1], outcome[2]
         raise rebuild_error(outcome[1], outcome[2], outcome[3])
 
+    def _wait_for_solver(self, deadline: float, seconds: float) -> _Solver:
+        with self._lock:
+            if self.max_waiting is not None and self._waiting >= self.max_waiting:
+                raise HeavyLaneFull(self._waiting)
+            self._waiting += 1
+        try:
+            return self._idle.get(timeout=max(deadline - time.monotonic(), 0.0))
+        except queue.Empty:
+            raise TimeLimitExceeded(seconds, queued=True) from None
+        finally:
+            with self._lock:
+                self._waiting -= 1
+
     def close(self) -> None:
-        """Stop every idle compute process; busy ones stop when their pipe closes."""
+        """Stop every idle solver; busy ones stop when their pipe closes."""
         with self._lock:
             self._closed = True
         while True:
@@ -172,8 +222,13 @@ class ComputePool:
                 return
 
 
-_pools: dict[tuple[int, int], ComputePool] = {}
+_pools: dict[tuple[int, str, int, int, int | None], SolverPool] = {}
 _pools_lock = threading.Lock()
+
+#: Niceness to add to the heavy lane's solver processes on a dedicated host
+#: (``MOVECAST_HEAVY_NICENESS``; 0 by default, since on a shared host it would also yield to
+#: every other tenant).
+HEAVY_NICENESS = 10
 
 
 def _close_all() -> None:
@@ -181,46 +236,96 @@ def _close_all() -> None:
         pool.close()
 
 
-def compute_pool(*, processes: int, blas_threads: int | None = None) -> ComputePool:
-    """The serving process's pool of that size (one per process, shared by its apps)."""
+def solver_pool(
+    *,
+    processes: int,
+    blas_threads: int | None = None,
+    lane: str = "light",
+    niceness: int = 0,
+    max_waiting: int | None = None,
+) -> SolverPool:
+    """The serving process's pool of that lane and size (one per process, shared by its apps)."""
     threads = blas_threads if blas_threads is not None else _blas_threads_from_env()
     with _pools_lock:
-        key = (os.getpid(), processes)
+        key = (os.getpid(), lane, processes, niceness, max_waiting)
         pool = _pools.get(key)
         if pool is None:
             if not _pools:
                 atexit.register(_close_all)
-            pool = _pools[key] = ComputePool(processes=processes, blas_threads=threads)
+            pool = _pools[key] = SolverPool(
+                processes=processes, blas_threads=threads, niceness=niceness, max_waiting=max_waiting
+            )
         return pool
 
 
 def _blas_threads_from_env() -> int:
-    """Threads per compute process: ``OMP_NUM_THREADS`` when set (``movecast serve`` sets it), else 1."""
+    """Threads per solver: ``OMP_NUM_THREADS`` when set (``movecast serve`` sets it), else 1."""
     try:
         return max(1, int(os.environ.get("OMP_NUM_THREADS", "1")))
     except ValueError:
         return 1
 
 
-class Budget:
-    """The compute time left to one request; every compute call of the request draws on it."""
+@dataclass(frozen=True)
+class Lanes:
+    """The light and the heavy pool, and the work that sends a request to the heavy one."""
 
-    def __init__(self, pool: ComputePool, *, seconds: float) -> None:
-        self.pool = pool
+    light: SolverPool
+    heavy: SolverPool
+    heavy_work: float
+
+    def pick(self, work: float) -> tuple[SolverPool, str]:
+        """The pool for a request of ``work`` operations, and the lane's name."""
+        return (self.heavy, "heavy") if work > self.heavy_work else (self.light, "light")
+
+    def start(self) -> None:
+        """Start both pools' processes now (idempotent)."""
+        self.light.start()
+        self.heavy.start()
+
+
+def solver_lanes(settings: Any) -> Lanes:
+    """The serving process's two lanes for these settings (``service.api.settings.Settings``)."""
+    light = settings.solver_processes or default_solver_processes()
+    return Lanes(
+        light=solver_pool(processes=light, lane="light"),
+        heavy=solver_pool(
+            processes=settings.heavy_solver_processes,
+            lane="heavy",
+            niceness=settings.heavy_niceness,
+            max_waiting=settings.heavy_queue,
+        ),
+        heavy_work=float(settings.heavy_work),
+    )
+
+
+class Budget:
+    """The compute time left to one request; every solver call of the request draws on it."""
+
+    def __init__(self, lanes: Lanes | SolverPool, *, seconds: float) -> None:
+        self.lanes = lanes if isinstance(lanes, Lanes) else Lanes(light=lanes, heavy=lanes, heavy_work=float("inf"))
+        self.pool = self.lanes.light
         self.seconds = seconds
         self.deadline = time.monotonic() + seconds
 
-    def run(self, call: Callable[..., T], *args: Any, operation: str) -> T:
-        """Run ``call(*args)`` in a compute process within the budget; record its time."""
-        value, spent = self.pool.run(call, args, deadline=self.deadline, seconds=self.seconds)
+    def run(self, call: Callable[..., T], *args: Any, operation: str, work: float | None = None) -> T:
+        """Run ``call(*args)`` in a solver process of its lane within the budget; record its time.
+
+        ``work`` (operations) chooses the lane; by default it is estimated from the first
+        argument when that is a request model (:func:`service.pipeline.caps.request_work`).
+        """
+        if work is None:
+            work = request_work(args[0]) if args and isinstance(args[0], BaseModel) else 0.0
+        pool, lane = self.lanes.pick(work)
+        value, spent = pool.run(call, args, deadline=self.deadline, seconds=self.seconds)
         SOLVER_SECONDS.labels(operation=operation).observe(spent)
+        LANE_REQUESTS.labels(lane=lane).inc()
         return value
 
 
 def get_budget(settings: SettingsDep) -> Budget:
-    """A fresh budget of ``request_timeout_seconds`` for this request."""
-    pool = compute_pool(processes=settings.solver_processes)
-    return Budget(pool, seconds=settings.request_timeout_seconds)
+    """A fresh budget of ``request_timeout_seconds`` for this request, over the two lanes."""
+    return Budget(solver_lanes(settings), seconds=settings.request_timeout_seconds)
 
 
 BudgetDep = Annotated[Budget, Depends(get_budget)]

@@ -7,6 +7,7 @@ outlives the process that started it.
 
 from __future__ import annotations
 
+import os
 import pickle
 import signal
 import time
@@ -49,7 +50,7 @@ def _run(call: Callable[..., Any], args: tuple[Any, ...]) -> Outcome:
     return ("ok", value, time.perf_counter() - start)
 
 
-def serve_calls(conn: Connection, blas_threads: int) -> None:
+def serve_calls(conn: Connection, blas_threads: int, niceness: int = 0) -> None:
     """Answer calls sent on ``conn`` until it closes.
 
     Parameters
@@ -60,7 +61,12 @@ def serve_calls(conn: Connection, blas_threads: int) -> None:
         its traceback stays in this process's standard error.
     blas_threads : int
         Threads of the BLAS/OpenMP pools in this process (threadpoolctl).
+    niceness : int
+        Added to this process's niceness (``os.nice``): the heavy lane yields the CPU to
+        the light one.
     """
+    if niceness:
+        os.nice(niceness)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
     from threadpoolctl import threadpool_limits

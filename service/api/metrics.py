@@ -33,6 +33,7 @@ from service.schemas.design import DesignResponse
 __all__ = [
     "DESIGN_SIZE",
     "IN_PROGRESS",
+    "LANE_REQUESTS",
     "REJECTED",
     "REJECTION_REASONS",
     "REQUESTS",
@@ -40,6 +41,7 @@ __all__ = [
     "SOLVER_SECONDS",
     "count_rejection",
     "observe_design",
+    "observe_design_sizes",
     "router",
 ]
 
@@ -64,6 +66,11 @@ SOLVER_SECONDS = Histogram(
     "Time spent in the solver process per call.",
     ["operation"],
     buckets=_LATENCY_BUCKETS,
+)
+LANE_REQUESTS = Counter(
+    "movecast_solver_lane_calls_total",
+    "Solver calls per lane (light or heavy, by the work estimated from the request's sizes).",
+    ["lane"],
 )
 DESIGN_SIZE = Histogram(
     "movecast_design_size",
@@ -98,12 +105,18 @@ def count_rejection(kind: str) -> None:
 def observe_design(response: DesignResponse) -> None:
     """Record the sizes of one answered design, read from its gains (any model form)."""
     state, setpoint = response.gain.state, response.gain.setpoint
-    sizes = {
-        "states": len(state[0]) if state else 0,
-        "inputs": len(state),
-        "outputs": len(setpoint[0]) if setpoint else 0,
-        "hessian": response.hessian.size,
-    }
+    observe_design_sizes(
+        {
+            "states": len(state[0]) if state else 0,
+            "inputs": len(state),
+            "outputs": len(setpoint[0]) if setpoint else 0,
+            "hessian": response.hessian.size,
+        }
+    )
+
+
+def observe_design_sizes(sizes: dict[str, int]) -> None:
+    """Record the sizes of one answered design (``states``, ``inputs``, ``outputs``, ``hessian``)."""
     for dimension, value in sizes.items():
         DESIGN_SIZE.labels(dimension=dimension).observe(value)
 

@@ -6,6 +6,7 @@
   metrics, last-resort 500), CORS (only with ``MOVECAST_CORS_ORIGINS``), API key (only with
   keys), body limit (``MOVECAST_MAX_BODY_BYTES``);
 - GET /metrics;
+- handlers for the compute time limit (503) and a failed solver process (500);
 - the shared error responses (401, 413, 503, 500) in the OpenAPI document of every route
   they can come from;
 - at start-up: a warning when no API key is configured, the solver processes started, and
@@ -28,7 +29,7 @@ from fastapi import FastAPI
 from starlette.middleware.cors import CORSMiddleware
 
 from service.api import metrics
-from service.api.compute import compute_pool
+from service.api.compute import solver_lanes
 from service.api.middleware import REQUEST_ID_HEADER, BodyLimitMiddleware, RequestContextMiddleware
 from service.api.problems import PROBLEM_JSON
 from service.api.security import OPEN_PATHS, ApiKeyMiddleware, KeyRing
@@ -107,7 +108,7 @@ def _wrap_lifespan(app: FastAPI, settings: Settings) -> None:
                 "no API key configured (MOVECAST_API_KEYS, MOVECAST_API_KEYS_FILE): "
                 "every endpoint is open to anyone who can reach this port"
             )
-        compute_pool(processes=settings.solver_processes).start()
+        solver_lanes(settings).start()
         async with inner(app_) as state:
             undo = _sigterm_hook(app_)
             try:

@@ -14,7 +14,7 @@ from pydantic import Field, PrivateAttr, SecretStr, field_validator, model_valid
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
 from service.api import settings_checks as checks
-from service.pipeline.caps import DEFAULT_CAPS, Caps
+from service.pipeline.caps import DEFAULT_CAPS, HEAVY_WORK, Caps
 
 __all__ = ["Settings"]
 
@@ -69,8 +69,30 @@ class Settings(BaseSettings):
     request_timeout_seconds: float = Field(
         default=30.0, gt=0, le=3600, description="Compute time limit of one request, queueing included."
     )
-    solver_processes: int = Field(
-        default=1, ge=1, le=64, description="Compute processes per worker (each runs one computation at a time)."
+    solver_processes: int | None = Field(
+        default=None,
+        ge=1,
+        le=64,
+        description="Light-lane solver processes per worker (each runs one computation at a time); "
+        "default one per core.",
+    )
+    heavy_solver_processes: int = Field(
+        default=1, ge=1, le=64, description="Heavy-lane solver processes per worker (lower CPU priority)."
+    )
+    heavy_work: float = Field(
+        default=HEAVY_WORK,
+        gt=0,
+        description="Estimated operations above which a request runs in the heavy lane.",
+    )
+    heavy_niceness: int = Field(
+        default=0,
+        ge=0,
+        le=19,
+        description="Niceness added to the heavy lane's solver processes (10 gives small requests the CPU first "
+        "on a host of its own).",
+    )
+    heavy_queue: int = Field(
+        default=8, ge=1, le=1000, description="Most heavy requests waiting for the heavy lane; more get 503."
     )
     cors_origins: Annotated[tuple[str, ...], NoDecode] = Field(
         default=(), description="Browser origins allowed by CORS, comma-separated; none by default."

@@ -34,6 +34,7 @@ from service.schemas.design import (
     ClosedLoopReport,
     DesignRequest,
     DesignResponse,
+    DiagnosticsReport,
     GainLabels,
     GainReport,
     HessianReport,
@@ -44,7 +45,7 @@ from service.schemas.design import (
     SignalReport,
     WarningReport,
 )
-from service.solver.design.closed_loop import Diagnostic
+from service.solver.design.closed_loop import ILL_CONDITIONED, Diagnostic
 from service.solver.design.controller import ControllerDesign, design_controller
 from service.solver.design.feedforward import disturbance_free_response, feedforward_gain
 from service.solver.design.gain import PredictiveGain
@@ -57,11 +58,13 @@ from service.solver.models.scaling import ScaledPlant, scale_plant, unscale_feed
 
 __all__ = [
     "DesignInputs",
+    "DesignJson",
     "DesignOutcome",
     "check_design_request",
     "compute_design",
     "design_response",
     "run_design",
+    "run_design_json",
 ]
 
 
@@ -351,8 +354,16 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
         analysis = design_frequency_analysis(
             design, estimator, sample_time=plant.sample_time, points=inputs.frequency_points
         )
-    advice = tuning_advice(scaled.a, scaled.b, scaled.c, design, sample_time=plant.sample_time, analysis=analysis)
     properties = plant_properties(scaled.a, scaled.b, scaled.c)
+    advice = tuning_advice(
+        scaled.a,
+        scaled.b,
+        scaled.c,
+        design,
+        sample_time=plant.sample_time,
+        analysis=analysis,
+        poles=properties.poles,
+    )
     gain = unscale_gain(design.gain, input_span=su, output_span=sz)
     limit_check = None
     if inputs.limits is not None:
@@ -366,7 +377,9 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
         warnings=[
             *merge_warnings(design.warnings, advice),
             *plant_warnings(properties),
-            *uncontrollable_mode_warnings(scaled.a, scaled.b, labels=plant.state_labels, loop_poles=design.loop.poles),
+            *uncontrollable_mode_warnings(
+                scaled.a, scaled.b, labels=plant.state_labels, loop_poles=design.loop.poles, poles=properties.poles
+            ),
             *([] if limit_check is None else limit_check_warnings(limit_check, plant)),
         ],
         estimator=estimator,
@@ -426,6 +439,27 @@ def _plant_report(checked: DesignInputs, plant: DiscretePlant, outcome: DesignOu
     )
 
 
+def _diagnostics(inputs: DesignInputs, outcome: DesignOutcome) -> DiagnosticsReport:
+    """The names of the diagnostics this answer holds; none is skipped by a work budget today."""
+    plant = inputs.plant
+    computed = ["hessian_eigenvalues", "closed_loop_poles", "open_loop_poles", "steady_state_gain"]
+    if outcome.properties.relative_gain is not None:
+        computed.append("relative_gain_array")
+    if outcome.design.hessian.condition_number > ILL_CONDITIONED:
+        computed.append("hessian_what_if")
+    computed.append("slow_pole")
+    if plant.input_count == plant.output_count:
+        computed.append("transmission_zeros")
+    computed.append("uncontrollable_modes")
+    if outcome.analysis is not None:
+        computed.append("frequency_analysis")
+    if outcome.limit_check is not None:
+        computed.append("limit_check")
+    return DiagnosticsReport(
+        computed=computed, hessian_eigenvalue_method=outcome.design.hessian.eigenvalue_method, skipped=[]
+    )
+
+
 def design_response(inputs: DesignInputs, outcome: DesignOutcome) -> DesignResponse:
     """Turn the computed design into the response model (the checked inputs carry all it needs)."""
     plant = inputs.plant
@@ -465,6 +499,7 @@ def design_response(inputs: DesignInputs, outcome: DesignOutcome) -> DesignRespo
         if outcome.analysis is None or outcome.estimator is None
         else robustness_report(outcome.analysis, outcome.estimator),
         limit_check=None if outcome.limit_check is None else limit_check_report(outcome.limit_check, plant),
+        diagnostics=_diagnostics(inputs, outcome),
         fingerprint=inputs.fingerprint,
     )
 
@@ -478,3 +513,39 @@ def run_design(request: DesignRequest, caps: Caps) -> DesignResponse:
     """
     inputs = check_design_request(request, caps)
     return design_response(inputs, compute_design(inputs))
+
+
+@dataclass(frozen=True)
+class DesignJson:
+    """A /design answer already written as JSON, with the sizes the metrics record.
+
+    Attributes
+    ----------
+    body : bytes
+        ``DesignResponse.model_dump_json()``: what the endpoint answers, written by
+        pydantic-core in the solver process, so the serving process neither unpickles the
+        response model nor validates and serializes it again.
+    sizes : dict of str to int
+        ``states``, ``inputs``, ``outputs`` and ``hessian`` of the design.
+    """
+
+    body: bytes
+    sizes: dict[str, int]
+
+
+def run_design_json(request: DesignRequest, caps: Caps) -> DesignJson:
+    """:func:`run_design`, answered as JSON bytes (the same numbers as the response model).
+
+    Raises
+    ------
+    InvalidRequest, NumericalError
+    """
+    response = run_design(request, caps)
+    state, setpoint = response.gain.state, response.gain.setpoint
+    sizes = {
+        "states": len(state[0]) if state else 0,
+        "inputs": len(state),
+        "outputs": len(setpoint[0]) if setpoint else 0,
+        "hessian": response.hessian.size,
+    }
+    return DesignJson(body=response.model_dump_json().encode("utf-8"), sizes=sizes)

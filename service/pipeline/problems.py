@@ -20,6 +20,7 @@ from pydantic import ValidationError
 from service.errors import (
     FieldKey,
     FieldProblem,
+    HeavyLaneFull,
     InvalidRequest,
     MalformedBody,
     NumericalError,
@@ -46,6 +47,7 @@ PROBLEM_TITLES = {
     "unauthorized": "Authentication required",
     "payload-too-large": "Request body too large",
     "time-limit": "Compute time limit exceeded",
+    "busy": "Too many large requests waiting",
 }
 
 #: What a problem is about: a whole request, or one item of a batch (sweep entries are
@@ -171,6 +173,12 @@ def problem_of(exc: BaseException, *, base: str = "", scope: Scope = "request") 
         return Problem("numerical-problem", 422, exc.detail, _field_problems(base, exc.field, exc.detail))
     if isinstance(exc, MalformedBody):
         return Problem("malformed-body", 400, exc.detail)
+    if isinstance(exc, HeavyLaneFull):
+        detail = (
+            f"The service's lane for large computations is full ({exc.waiting} large requests are "
+            "already waiting). Retry later, or make the request smaller."
+        )
+        return Problem("busy", 503, detail, headers={"Retry-After": "5"})
     if isinstance(exc, TimeLimitExceeded):
         if scope == "item":
             detail = f"The batch's compute time limit of {exc.seconds:g} s ran out before this item was designed."

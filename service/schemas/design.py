@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Literal
 
 from pydantic import Field
 
@@ -195,6 +195,33 @@ class WarningReport(ResponseModel):
     message: str
 
 
+class SkippedDiagnostic(ResponseModel):
+    """A diagnostic left out, and why."""
+
+    name: str
+    reason: str
+
+
+class DiagnosticsReport(ResponseModel):
+    """Which diagnostics this answer holds."""
+
+    computed: list[str] = Field(
+        description="Names of the diagnostics computed for this answer: hessian_eigenvalues, closed_loop_poles, "
+        "open_loop_poles, steady_state_gain, relative_gain_array, hessian_what_if (the advice's condition "
+        "numbers with heavier move weights and a shorter control horizon, when the Hessian is ill-conditioned), "
+        "slow_pole, transmission_zeros (square plants), uncontrollable_modes, frequency_analysis, limit_check."
+    )
+    hessian_eigenvalue_method: Literal["dense", "lanczos"] = Field(
+        description="How the Hessian's extreme eigenvalues were found: LAPACK's dense symmetric eigensolver, or "
+        "(above 400 rows) the Lanczos method with the Cholesky factor, to the same accuracy."
+    )
+    skipped: list[SkippedDiagnostic] = Field(
+        default_factory=list,
+        description="Diagnostics left out by a work budget, each with the reason; empty when every one that "
+        "applies was computed.",
+    )
+
+
 class DesignResponse(ResponseModel):
     """The designed controller and its diagnostics."""
 
@@ -208,6 +235,9 @@ class DesignResponse(ResponseModel):
     )
     limit_check: LimitCheckReport | None = Field(
         default=None, description="When the request has limits: does the unconstrained law alone break them?"
+    )
+    diagnostics: DiagnosticsReport | None = Field(
+        default=None, description="Which diagnostics this answer holds and which a work budget left out."
     )
     fingerprint: str = Field(description="SHA-256 of the canonical request: equal for equal requests on any replica.")
     advisory: str = Field(default=ADVISORY, description="Results are design aids; see the text.")

@@ -38,7 +38,11 @@ def in_progress(base: str) -> float:
 
 
 def test_probes_and_metrics_answer_while_every_compute_thread_waits_for_the_solver(tmp_path):
-    with live_server(tmp_path, solver_processes="1", request_timeout_seconds="120") as server:
+    # Every slow design is heavy (service/pipeline/caps.py); the heavy lane's queue is opened
+    # wide enough for all of them to wait, so every compute thread is blocked as intended.
+    with live_server(
+        tmp_path, solver_processes="1", heavy_queue=str(2 * HEAVY), request_timeout_seconds="120"
+    ) as server:
         body = slow_request(1)
         stop = threading.Event()
 

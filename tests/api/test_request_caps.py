@@ -9,7 +9,7 @@ import time
 import numpy as np
 import pytest
 
-from service.api.compute import ComputeCrashed, ComputePool, TimeLimitExceeded
+from service.api.compute import ComputeCrashed, SolverPool, TimeLimitExceeded
 from tests.api.conftest import assert_problem
 from tests.conftest import random_design_request
 
@@ -86,7 +86,7 @@ def test_a_design_beyond_the_time_limit_is_a_503_and_the_service_recovers(make_c
 
 
 def test_the_time_limit_counts_waiting_for_a_solver():
-    pool = ComputePool(processes=1)
+    pool = SolverPool(processes=1)
     try:
         busy = threading.Thread(
             target=pool.run, args=(time.sleep, (1.0,)), kwargs={"deadline": time.monotonic() + 30, "seconds": 30}
@@ -104,7 +104,7 @@ def test_the_time_limit_counts_waiting_for_a_solver():
 
 
 def test_a_call_past_its_deadline_is_stopped_and_its_solver_replaced():
-    pool = ComputePool(processes=1)
+    pool = SolverPool(processes=1)
     try:
         pool.start()
         (first,) = list(pool._idle.queue)
@@ -120,7 +120,7 @@ def test_a_call_past_its_deadline_is_stopped_and_its_solver_replaced():
 
 
 def test_a_dead_or_failing_solver_is_reported_and_replaced():
-    pool = ComputePool(processes=1)
+    pool = SolverPool(processes=1)
     try:
         with pytest.raises(ComputeCrashed):
             pool.run(os._exit, (3,), deadline=time.monotonic() + 30, seconds=30)

@@ -5,12 +5,13 @@ from __future__ import annotations
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Body
+from fastapi.responses import Response
 
 from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
-from service.api.metrics import observe_design
+from service.api.metrics import observe_design_sizes
 from service.api.problems import PROBLEM_JSON
-from service.pipeline.design import run_design
+from service.pipeline.design import run_design_json
 from service.pipeline.examples import load_example
 from service.schemas.design import DesignRequest, DesignResponse
 
@@ -47,8 +48,10 @@ def design(
     ],
     caps: CapsDep,
     budget: BudgetDep,
-) -> DesignResponse:
+) -> Response:
     """Design the predictive controller: gains, Hessian conditioning, closed-loop poles. Design aid only."""
-    response = budget.run(run_design, request, caps, operation="design")
-    observe_design(response)
-    return response
+    # The solver process writes the JSON (the response model's own serializer), so this
+    # process neither unpickles the model nor validates and serializes it again.
+    answer = budget.run(run_design_json, request, caps, operation="design")
+    observe_design_sizes(answer.sizes)
+    return Response(answer.body, media_type="application/json")

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Literal
 
 import numpy as np
 import scipy.linalg
@@ -26,7 +27,7 @@ from numpy.typing import NDArray
 
 from service.errors import HessianNotPositiveDefinite
 from service.solver.design.prediction import Prediction
-from service.solver.design.spectrum import extreme_eigenvalues
+from service.solver.design.spectrum import spectrum_ends
 
 __all__ = [
     "FactoredHessian",
@@ -50,13 +51,16 @@ class FactoredHessian:
     factor : tuple (ndarray, bool)
         ``scipy.linalg.cho_factor`` output, for ``scipy.linalg.cho_solve``.
     smallest_eigenvalue, largest_eigenvalue : float
-        From :func:`service.solver.design.spectrum.extreme_eigenvalues`.
+        From :func:`service.solver.design.spectrum.spectrum_ends`.
+    eigenvalue_method : {"dense", "lanczos"}
+        The route that found them.
     """
 
     matrix: NDArray[np.float64]
     factor: tuple[NDArray[np.float64], bool]
     smallest_eigenvalue: float
     largest_eigenvalue: float
+    eigenvalue_method: Literal["dense", "lanczos"] = "dense"
 
     @property
     def condition_number(self) -> float:
@@ -260,7 +264,8 @@ def factor_hessian(
     except np.linalg.LinAlgError:
         factor = None
     if factor is not None:
-        low, high = extreme_eigenvalues(hessian)
+        ends = spectrum_ends(hessian, factor=factor)
+        low, high = ends.low, ends.high
         if low <= hessian.shape[0] * np.finfo(float).eps * max(abs(high), np.finfo(float).tiny):
             factor = None
     if factor is None:
@@ -290,7 +295,13 @@ def factor_hessian(
                 f"{eigenvalues[0]:.3g} to {eigenvalues[-1]:.3g}). Raise the move weights."
             )
         raise HessianNotPositiveDefinite(detail, field=("weights", "move"))
-    return FactoredHessian(matrix=hessian, factor=factor, smallest_eigenvalue=low, largest_eigenvalue=high)
+    return FactoredHessian(
+        matrix=hessian,
+        factor=factor,
+        smallest_eigenvalue=low,
+        largest_eigenvalue=high,
+        eigenvalue_method=ends.method,
+    )
 
 
 def first_move_gain(

@@ -6,8 +6,9 @@ sentence a control engineer can act on) or nothing.  The checks and their defini
 ``ill_conditioned_hessian``
     The Hessian's condition number is above :data:`service.solver.design.closed_loop.ILL_CONDITIONED`.
     The advice states the condition number the same design would have with every move
-    weight raised tenfold and with the control horizon halved (each computed by designing
-    again), so the user sees which change helps and by how much.  It carries the same code
+    weight raised tenfold and with the control horizon halved (updated from the design's own
+    Hessian and factor without a terminal weight or blocking, by designing again with them),
+    so the user sees which change helps and by how much.  It carries the same code
     as the plain warning of :func:`service.solver.design.closed_loop.design_warnings` and replaces it
     in :func:`merge_warnings`.
 
@@ -53,7 +54,6 @@ from numpy.typing import ArrayLike, NDArray
 from service.errors import NumericalError
 from service.solver.design.closed_loop import ILL_CONDITIONED, UNIT_CIRCLE_MARGIN, Diagnostic
 from service.solver.design.controller import ControllerDesign, design_controller
-from service.solver.design.prediction import step_response_coefficients
 from service.solver.design.spectrum import extreme_eigenvalues
 from service.solver.evaluation.frequency import FrequencyAnalysis
 from service.solver.numerics import by_modulus, format_complex
@@ -100,16 +100,11 @@ def _condition_number(
     Without a terminal weight or blocking no new design is needed: scaling every move weight
     by ``s`` adds ``(s - 1) blockdiag(R)`` to ``H``, and a shorter control horizon ``Hu'``
     keeps the first ``Hu'`` block columns of ``G`` (``G_ij = S_(i-j)`` does not depend on
-    ``Hu``), so its Hessian is the leading ``Hu' m`` block of ``H``.
+    ``Hu``), so its Hessian is the leading ``Hu' m`` block of ``H``
+    (:func:`_updated_condition_number`).
     """
     if design.terminal is None and design.blocking is None:
-        m = design.move_weight.shape[0]
-        h = design.hessian.matrix
-        if move_scale != 1.0:
-            h = h + (move_scale - 1.0) * np.kron(np.eye(h.shape[0] // m), design.move_weight)
-        h = h[: control * m, : control * m]
-        low, high = extreme_eigenvalues(h)
-        return None if low <= h.shape[0] * np.finfo(float).eps * high else high / low
+        return _updated_condition_number(design, move_scale=move_scale, control=control)
     pred = design.prediction
     blocking = None if design.blocking is None else [j for j in design.blocking if j < control]
     try:
@@ -128,6 +123,39 @@ def _condition_number(
     except NumericalError:
         return None
     return other.hessian.condition_number
+
+
+def _updated_condition_number(design: ControllerDesign, *, move_scale: float, control: int) -> float | None:
+    """The condition number of a "what if" Hessian, updated from the design's own.
+
+    The leading ``Hu' m`` block of ``H`` has the leading block of ``H``'s Cholesky factor
+    as its own (``L11 L11' = H11``, Golub and Van Loan, *Matrix Computations*, 4th ed.,
+    section 4.2), so a shorter control horizon needs no new factorization.  Scaling every
+    move weight by ``s`` adds ``(s - 1) blockdiag(R)``; when ``R = r I`` that shifts every
+    eigenvalue by ``(s - 1) r`` exactly, otherwise the sum is factored once more.
+    """
+    m = design.move_weight.shape[0]
+    size = control * m
+    h = design.hessian.matrix[:size, :size]
+    triangle, lower = design.hessian.factor
+    factor: tuple[NDArray[np.float64], bool] | None = (triangle[:size, :size], lower)
+    shift = 0.0
+    if move_scale != 1.0:
+        r = design.move_weight
+        if np.array_equal(r, r[0, 0] * np.eye(m)):
+            shift = (move_scale - 1.0) * float(r[0, 0])
+        else:
+            h = h + (move_scale - 1.0) * np.kron(np.eye(control), r)
+            try:
+                factor = scipy.linalg.cho_factor(h, lower=True, check_finite=False)
+            except np.linalg.LinAlgError:
+                factor = None
+    if size == design.hessian.matrix.shape[0] and (move_scale == 1.0 or shift):
+        low, high = design.hessian.smallest_eigenvalue, design.hessian.largest_eigenvalue
+    else:
+        low, high = extreme_eigenvalues(h, factor=factor)
+    low, high = low + shift, high + shift
+    return None if low <= size * np.finfo(float).eps * high else high / low
 
 
 def hessian_advice(a: ArrayLike, b: ArrayLike, c: ArrayLike, design: ControllerDesign) -> Diagnostic | None:
@@ -182,6 +210,7 @@ def slow_pole_advice(
     *,
     sample_time: float | None = None,
     estimator_poles: ArrayLike | None = None,
+    poles: ArrayLike | None = None,
 ) -> Diagnostic | None:
     """Advise when the dominant closed-loop pole is slower than the prediction horizon.
 
@@ -194,13 +223,18 @@ def slow_pole_advice(
         To state the time constant in time units as well as samples.
     estimator_poles : array_like of complex, optional
         Poles of the estimator (``Estimator.poles``); they join the loop's poles.
+    poles : array_like of complex, optional
+        The eigenvalues of ``a`` when the caller has them (they are computed otherwise).
 
     Returns
     -------
     Diagnostic or None
         ``slow_pole``.
     """
-    open_loop = scipy.linalg.eigvals(np.asarray(a, dtype=float), check_finite=False)
+    if poles is None:
+        open_loop = scipy.linalg.eigvals(np.asarray(a, dtype=float), check_finite=False)
+    else:
+        open_loop = np.asarray(poles, dtype=complex)
     estimator = np.zeros(0, complex) if estimator_poles is None else np.asarray(estimator_poles, dtype=complex)
     candidates = [(complex(z), "controller") for z in design.loop.poles] + [
         (complex(z), "estimator") for z in estimator
@@ -302,23 +336,115 @@ def transmission_zeros(a: ArrayLike, b: ArrayLike, c: ArrayLike) -> NDArray[np.c
 
     Notes
     -----
-    Generalized eigenvalues ``alpha / beta`` of the Rosenbrock pencil
-    ``([[A, B], [C, 0]], [[I, 0], [0, 0]])`` from ``scipy.linalg.eig`` in homogeneous form;
-    pairs with ``|beta|`` at rounding level are the infinite zeros and are dropped.
+    When ``CB`` is well conditioned (:data:`_REDUCED_CB_CONDITION`) the zeros are the
+    eigenvalues of the ``(n-m)``-square matrix ``N' (I - B (CB)^-1 C) A N``, ``N`` an
+    orthonormal basis of the null space of ``C``: a zero needs ``(A - z I) x + B u = 0``
+    with ``C x = 0``, so ``x = N xi``, ``u = -(CB)^-1 C A N xi`` and
+    ``N' (I - B (CB)^-1 C) A N xi = z xi`` (the reduced pencil of Emami-Naeini and
+    Van Dooren, "Computation of zeros of linear multivariable systems", Automatica 18(4),
+    1982, doi:10.1016/0005-1098(82)90070-X, after one step; common practice).  There are
+    then exactly ``n - m`` finite zeros.  Otherwise: the generalized eigenvalues
+    ``alpha / beta`` of the Rosenbrock pencil ``([[A, B], [C, 0]], [[I, 0], [0, 0]])``
+    from ``scipy.linalg.eig`` in homogeneous form; pairs with ``|beta|`` at rounding level
+    are the infinite zeros and are dropped.  Either way a zero beyond ``1e8`` in modulus is
+    taken as infinite (common practice).
     """
     a_, b_, c_ = (np.asarray(x, dtype=float) for x in (a, b, c))
     n, m = b_.shape
     if c_.shape[0] != m:
         return np.zeros(0, dtype=complex)
-    system = np.block([[a_, b_], [c_, np.zeros((m, m))]])
-    mass = scipy.linalg.block_diag(np.eye(n), np.zeros((m, m)))
-    pairs = scipy.linalg.eig(system, mass, right=False, homogeneous_eigvals=True)
-    alpha, beta = pairs[0], pairs[1]
-    # QZ returns |beta| of order one for a finite zero; an infinite zero has |beta| at rounding
-    # level, and a zero beyond 1e8 in modulus is taken as infinite (common practice).
-    finite = (np.abs(beta) > 1e-8 * np.abs(alpha)) & (np.abs(beta) > 1e3 * np.finfo(float).eps)
-    zeros = alpha[finite] / beta[finite]
+    zeros = _reduced_zeros(a_, b_, c_)
+    if zeros is None:
+        system = np.block([[a_, b_], [c_, np.zeros((m, m))]])
+        mass = scipy.linalg.block_diag(np.eye(n), np.zeros((m, m)))
+        pairs = scipy.linalg.eig(system, mass, right=False, homogeneous_eigvals=True)
+        alpha, beta = pairs[0], pairs[1]
+        # QZ returns |beta| of order one for a finite zero; an infinite zero has |beta| at
+        # rounding level, and a zero beyond 1e8 in modulus is taken as infinite.
+        finite = (np.abs(beta) > 1e-8 * np.abs(alpha)) & (np.abs(beta) > 1e3 * np.finfo(float).eps)
+        zeros = alpha[finite] / beta[finite]
     return by_modulus(zeros)
+
+
+#: Largest condition number of ``CB`` for which the zeros come from the reduced matrix.
+_REDUCED_CB_CONDITION = 1e6
+
+
+def _reduced_zeros(
+    a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64]
+) -> NDArray[np.complex128] | None:
+    """The zeros from ``N' (I - B (CB)^-1 C) A N`` (see :func:`transmission_zeros`); ``None`` if ``CB`` is ill-conditioned."""
+    n, m = b.shape
+    if m == 0 or m > n:
+        return None
+    cb = c @ b
+    singular = scipy.linalg.svdvals(cb, check_finite=False)
+    if singular[-1] <= singular[0] / _REDUCED_CB_CONDITION or singular[0] == 0.0:
+        return None
+    if m == n:
+        return np.zeros(0, dtype=complex)
+    q, _ = scipy.linalg.qr(c.T, check_finite=False)  # C' = Q R: the last n - m columns span null(C)
+    null = q[:, m:]
+    an = a @ null
+    coupling = scipy.linalg.solve(cb, c @ an, check_finite=False)  # (CB)^-1 C A N
+    reduced = null.T @ an - (null.T @ b) @ coupling
+    zeros: NDArray[np.complex128] = scipy.linalg.eigvals(reduced, check_finite=False)
+    return zeros[np.abs(zeros) < 1e8]
+
+
+def _null_directions(
+    a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64], z0: float
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Input and output null directions ``u0``, ``y0`` of the system matrix at a real zero."""
+    n, m = b.shape
+    system = np.block([[a - z0 * np.eye(n), b], [c, np.zeros((m, m))]])
+    left, _, right = np.linalg.svd(system)
+    return right[-1, n:], left[n:, -1]
+
+
+def _inverse_response_times(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    zeros: Sequence[complex],
+    *,
+    poles: NDArray[np.complex128] | None = None,
+) -> list[int]:
+    """:func:`inverse_response_time` of several zeros, sharing the poles and the step response."""
+    fallbacks = [max(1, math.ceil(1.0 / math.log(abs(z)))) for z in zeros]
+    real = [i for i, z in enumerate(zeros) if not (abs(complex(z).imag) > 1e-9 * abs(z) or complex(z).real < 0)]
+    times = list(fallbacks)
+    if not real:
+        return times
+    inputs, outputs = [], []
+    for i in real:
+        u0, y0 = _null_directions(a, b, c, complex(zeros[i]).real)
+        inputs.append(u0)
+        outputs.append(y0)
+    all_poles = scipy.linalg.eigvals(a, check_finite=False) if poles is None else poles
+    moduli = np.abs(all_poles)
+    stable = moduli[(moduli > 0) & (moduli < 1.0)]
+    slowest = float((-1.0 / np.log(stable)).max(initial=1.0))
+    steps = int(min(_LONGEST_STEP, max(50, math.ceil(10.0 * slowest))))
+    # y0' S_k u0 for k = 1..steps, every zero at once: S_k u0 = sum_{l<k} C A^l (B u0).
+    state = b @ np.array(inputs).T  # (n, zeros): A^l B u0
+    seen = c.T @ np.array(outputs).T  # (n, zeros): C' y0
+    channels = np.empty((steps, len(real)))
+    total = np.zeros(len(real))
+    for k in range(steps):
+        total = total + np.einsum("ij,ij->j", seen, state)
+        channels[k] = total
+        state = a @ state
+    for column, i in enumerate(real):
+        channel = channels[:, column]
+        final = channel[-1]
+        size = float(np.abs(channel).max(initial=0.0))
+        if size == 0.0 or abs(final) <= 1e-9 * size:
+            continue
+        wrong = np.nonzero((channel * np.sign(final) < 0) & (np.abs(channel) > 1e-12 * size))[0]
+        if wrong.size:
+            times[i] = int(wrong[-1]) + 2  # channel[k] is step k + 1; one more than the last wrong step
+    return times
 
 
 def inverse_response_time(a: ArrayLike, b: ArrayLike, c: ArrayLike, zero: complex) -> int:
@@ -338,33 +464,17 @@ def inverse_response_time(a: ArrayLike, b: ArrayLike, c: ArrayLike, zero: comple
         See the module notes.
     """
     a_, b_, c_ = (np.asarray(x, dtype=float) for x in (a, b, c))
-    fallback = max(1, math.ceil(1.0 / math.log(abs(zero))))
-    if abs(complex(zero).imag) > 1e-9 * abs(zero) or complex(zero).real < 0:
-        return fallback
-    z0 = complex(zero).real
-    n, m = b_.shape
-    system = np.block([[a_ - z0 * np.eye(n), b_], [c_, np.zeros((m, m))]])
-    left, _, right = np.linalg.svd(system)
-    u0 = right[-1, n:]
-    y0 = left[n:, -1]
-    moduli = np.abs(scipy.linalg.eigvals(a_, check_finite=False))
-    stable = moduli[(moduli > 0) & (moduli < 1.0)]
-    slowest = float((-1.0 / np.log(stable)).max(initial=1.0))
-    steps = int(min(_LONGEST_STEP, max(50, math.ceil(10.0 * slowest))))
-    _, step = step_response_coefficients(a_, b_, c_, steps)
-    channel = np.einsum("i,kij,j->k", y0, step[1:], u0)  # y0' S_k u0, k = 1..steps
-    final = channel[-1]
-    size = float(np.abs(channel).max(initial=0.0))
-    if size == 0.0 or abs(final) <= 1e-9 * size:
-        return fallback
-    wrong = np.nonzero((channel * np.sign(final) < 0) & (np.abs(channel) > 1e-12 * size))[0]
-    if wrong.size == 0:
-        return fallback
-    return int(wrong[-1]) + 2  # channel[k] is step k + 1; one more than the last wrong step
+    return _inverse_response_times(a_, b_, c_, [zero])[0]
 
 
 def non_minimum_phase_advice(
-    a: ArrayLike, b: ArrayLike, c: ArrayLike, *, prediction: int, sample_time: float | None = None
+    a: ArrayLike,
+    b: ArrayLike,
+    c: ArrayLike,
+    *,
+    prediction: int,
+    sample_time: float | None = None,
+    poles: ArrayLike | None = None,
 ) -> Diagnostic | None:
     """Advise when a non-minimum-phase plant meets a prediction horizon shorter than its inverse response.
 
@@ -376,16 +486,20 @@ def non_minimum_phase_advice(
         ``Hp``.
     sample_time : float, optional
         To state times in time units as well.
+    poles : array_like of complex, optional
+        The eigenvalues of ``A`` when the caller has them (they are computed otherwise).
 
     Returns
     -------
     Diagnostic or None
         ``non_minimum_phase_short_horizon``.
     """
-    zeros = [complex(z) for z in transmission_zeros(a, b, c) if abs(z) > 1.0 + 1e-9]
+    a_, b_, c_ = (np.asarray(x, dtype=float) for x in (a, b, c))
+    zeros = [complex(z) for z in transmission_zeros(a_, b_, c_) if abs(z) > 1.0 + 1e-9]
     if not zeros:
         return None
-    timed = [(z, inverse_response_time(a, b, c, z)) for z in zeros]
+    known = None if poles is None else np.asarray(poles, dtype=complex)
+    timed = list(zip(zeros, _inverse_response_times(a_, b_, c_, zeros, poles=known), strict=True))
     _zero, needed = max(timed, key=lambda item: item[1])
     if prediction >= needed:
         return None
@@ -413,6 +527,7 @@ def tuning_advice(
     sample_time: float | None = None,
     analysis: FrequencyAnalysis | None = None,
     estimator_poles: ArrayLike | None = None,
+    poles: ArrayLike | None = None,
 ) -> list[Diagnostic]:
     """Return every piece of advice that applies, in a fixed order.
 
@@ -425,6 +540,8 @@ def tuning_advice(
     analysis : FrequencyAnalysis, optional
         Needed for the peak-sensitivity check.
     estimator_poles : array_like of complex, optional
+    poles : array_like of complex, optional
+        The open-loop poles (eigenvalues of ``a``) when the caller has them.
 
     Returns
     -------
@@ -434,9 +551,11 @@ def tuning_advice(
     """
     found = [
         hessian_advice(a, b, c, design),
-        slow_pole_advice(a, design, sample_time=sample_time, estimator_poles=estimator_poles),
+        slow_pole_advice(a, design, sample_time=sample_time, estimator_poles=estimator_poles, poles=poles),
         None if analysis is None else sensitivity_advice(analysis),
-        non_minimum_phase_advice(a, b, c, prediction=design.prediction.prediction, sample_time=sample_time),
+        non_minimum_phase_advice(
+            a, b, c, prediction=design.prediction.prediction, sample_time=sample_time, poles=poles
+        ),
     ]
     return [d for d in found if d is not None]
 

@@ -108,14 +108,16 @@ def _modes(
     tolerance: float,
     smallest_modulus: float,
     loop_poles: NDArray[np.complex128] | None = None,
+    poles: NDArray[np.complex128] | None = None,
 ) -> list[tuple[complex, NDArray[np.complex128]]]:
     """Each uncontrollable eigenvalue (of modulus at least ``smallest_modulus``, and among
-    ``loop_poles`` when given) with its orthonormal blind directions."""
+    ``loop_poles`` when given) with its orthonormal blind directions; ``poles`` are the
+    eigenvalues of ``a`` when the caller has them."""
     n = a.shape[0]
     if n == 0:
         return []
     b_scaled = _scaled_inputs(a, b)
-    eigenvalues = scipy.linalg.eigvals(a, check_finite=False)
+    eigenvalues = scipy.linalg.eigvals(a, check_finite=False) if poles is None else poles
     eigenvalues = eigenvalues[np.abs(eigenvalues) >= smallest_modulus]
     if loop_poles is not None and eigenvalues.size:
         poles = np.asarray(loop_poles, dtype=complex)
@@ -196,6 +198,7 @@ def uncontrollable_mode_warnings(
     labels: Sequence[str] | None = None,
     tolerance: float = RANK_TOLERANCE,
     loop_poles: ArrayLike | None = None,
+    poles: ArrayLike | None = None,
 ) -> list[Diagnostic]:
     """Warn about plant modes on or outside the unit circle that no input can move.
 
@@ -214,6 +217,8 @@ def uncontrollable_mode_warnings(
         that no input can move stays a pole under every feedback, so only eigenvalues of ``A``
         within :data:`LOOP_POLE_MATCH` (relative) of one of these are tested: the PBH test
         then runs only where it can fail, which keeps large models cheap.
+    poles : array_like of complex, keyword-only, optional
+        The eigenvalues of ``a`` (``scipy.linalg.eigvals``) when the caller has them.
 
     Returns
     -------
@@ -230,8 +235,9 @@ def uncontrollable_mode_warnings(
     names = list(labels) if labels is not None else [f"x{i + 1}" for i in range(n)]
     assert len(names) == n, (len(names), n)
     parts, total = [], 0
-    poles = None if loop_poles is None else np.asarray(loop_poles, dtype=complex)
-    for z, w in _modes(a_, b_, tolerance, 1.0 - UNIT_CIRCLE_MARGIN, poles):
+    loop = None if loop_poles is None else np.asarray(loop_poles, dtype=complex)
+    known = None if poles is None else np.asarray(poles, dtype=complex)
+    for z, w in _modes(a_, b_, tolerance, 1.0 - UNIT_CIRCLE_MARGIN, loop, known):
         if not is_real(z) and z.imag < 0.0:
             continue  # the second of a conjugate pair
         where = f"z = {z.real:.6g}" if is_real(z) else f"the pair z = {z.real:.6g} +/- {abs(z.imag):.6g}j"

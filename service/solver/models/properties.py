@@ -136,6 +136,7 @@ def steady_state_gain(
     d: ArrayLike | None = None,
     *,
     integrating_tolerance: float = INTEGRATING_TOLERANCE,
+    poles: ArrayLike | None = None,
 ) -> SteadyStateGain:
     """Return the steady-state gain of a discrete model, pair by pair.
 
@@ -148,6 +149,11 @@ def steady_state_gain(
         Feed-through (default zero).
     integrating_tolerance : float, keyword-only
         Poles with ``|z - 1|`` up to this count as integrating.
+    poles : array_like of complex, optional
+        The eigenvalues of ``A`` (``scipy.linalg.eigvals``), when the caller has them.  When
+        none lies within ``2 * integrating_tolerance + sqrt(eps) |A|`` of 1 the sorted
+        Schur form is skipped: it would find no integrating pole, and the answer is the
+        same one solve.
 
     Returns
     -------
@@ -169,6 +175,13 @@ def steady_state_gain(
     ramp = np.zeros((p, m))
     if n == 0:
         return SteadyStateGain(gain=d_.copy(), integration_order=order, ramp_rate=ramp)
+    if poles is not None:
+        # The Schur form's eigenvalues and LAPACK's balanced ones differ by rounding only;
+        # the margin keeps any pole the Schur form could count as integrating.
+        margin = 2.0 * integrating_tolerance + np.sqrt(np.finfo(float).eps) * float(np.linalg.norm(a_, 1))
+        if np.all(np.abs(np.asarray(poles, dtype=complex) - 1.0) > margin):
+            gain = c_ @ np.linalg.solve(np.eye(n) - a_, b_) + d_
+            return SteadyStateGain(gain=gain, integration_order=order, ramp_rate=ramp)
     t, z, k = _sorted_schur(a_, integrating_tolerance)
     if k == 0:
         gain = c_ @ np.linalg.solve(np.eye(n) - a_, b_) + d_
@@ -271,13 +284,14 @@ def plant_properties(
     ``1 / eps`` (numerically singular); the condition number is ``None`` with integrating
     pairs (their gain is not finite).
     """
-    steady = steady_state_gain(a, b, c, d, integrating_tolerance=integrating_tolerance)
+    poles = open_loop_poles(a)
+    steady = steady_state_gain(a, b, c, d, integrating_tolerance=integrating_tolerance, poles=poles)
     condition = gain_condition_number(steady.gain) if steady.finite else None
     square = steady.gain.shape[0] == steady.gain.shape[1]
     rga = None
     if square and condition is not None and condition < 1.0 / np.finfo(float).eps:
         rga = relative_gain_array(steady.gain)
-    return PlantProperties(steady_state=steady, relative_gain=rga, condition_number=condition, poles=open_loop_poles(a))
+    return PlantProperties(steady_state=steady, relative_gain=rga, condition_number=condition, poles=poles)
 
 
 def plant_warnings(properties: PlantProperties, *, near_singular: float = NEAR_SINGULAR_GAIN) -> list[Diagnostic]:

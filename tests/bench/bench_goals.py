@@ -1,0 +1,246 @@
+"""The performance goals, each as a ratio against its floor measured in the same run.
+
+Run from the repository root (it starts ``movecast serve`` on a free loopback port and stops
+it at the end; every load loop is bounded in time)::
+
+    python tests/bench/bench_goals.py [--seconds 5] [--skip-http]
+
+1. Large design (200 states, 20 x 20, Hp 200, Hu 50): the whole ``run_design`` (every
+   diagnostic) in this process, and ``POST /design`` one at a time, against numpy's floor
+   (``G'G`` plus one Cholesky factorization of that size), best of N.  Goals: at most 2x
+   and 3x.
+2. Light behind heavy: small ``POST /design`` p99 from 4 clients while 2 clients keep the
+   heavy lane busy with the large design.  Goal: under 100 ms.
+3. Small design against ``GET /healthz`` on the same server at 16 clients (goal: at least
+   0.6x the rate), and its p99 at 4 clients (goal: under 50 ms).
+4. ``POST /simulate`` of the bundled example and of the limits example: simulated steps per
+   second, one client (goal of the issue: 2x the figure before it; printed for the record).
+
+This is a script, not a test: it prints figures and asserts nothing.  The machine's load
+average is printed before and after: other work inflates every figure, ratios less so.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[2]
+for path in (ROOT, ROOT / "tests" / "bench"):
+    if str(path) not in sys.path:
+        sys.path.insert(0, str(path))
+
+from bench_design import (  # noqa: E402
+    CASES,
+    blas_floor,
+    design_body,
+    floor_inputs,
+    format_time,
+    free_port,
+    load_average,
+    random_plant_for,
+    wait_until_healthy,
+)
+from threadpoolctl import threadpool_limits  # noqa: E402
+
+from service.api.settings import Settings  # noqa: E402
+from service.pipeline.design import run_design  # noqa: E402
+from service.schemas.design import DesignRequest  # noqa: E402
+
+__all__ = ["main"]
+
+EXAMPLES = ROOT / "openapi" / "examples"
+
+
+def verdict(ok: bool) -> str:
+    return "met" if ok else "NOT met"
+
+
+def best(call: Any, *, rounds: int) -> float:
+    times = []
+    for _ in range(rounds):
+        start = time.perf_counter()
+        call()
+        times.append(time.perf_counter() - start)
+    return min(times)
+
+
+def goal_one_solver(rounds: int) -> tuple[float, dict[str, Any]]:
+    """Floor and run_design of the large case, interleaved, one BLAS thread (as a solver runs)."""
+    plant = random_plant_for(CASES["large"])
+    body = design_body(plant)
+    request = DesignRequest.model_validate(body)
+    caps = Settings().caps()
+    g, diagonal = floor_inputs(plant)
+    with threadpool_limits(limits=1):
+        run_design(request, caps)
+        floor, whole = [], []
+        for _ in range(rounds):
+            floor.append(best(lambda: blas_floor(g, diagonal), rounds=1))
+            whole.append(best(lambda: run_design(request, caps), rounds=1))
+        answer = run_design(request, caps)
+    f, w = min(floor), min(whole)
+    print(f"  floor (G'G + Cholesky, 1 thread)      {format_time(f)}")
+    print(
+        f"  run_design, every diagnostic           {format_time(w)}   {w / f:5.2f}x the floor (goal <= 2x: {verdict(w / f <= 2.0)})"
+    )
+    assert answer.diagnostics is not None
+    print(
+        f"  diagnostics computed: {', '.join(answer.diagnostics.computed)}; Hessian eigenvalues by "
+        f"{answer.diagnostics.hessian_eigenvalue_method}; skipped: {answer.diagnostics.skipped or 'none'}"
+    )
+    return f, body
+
+
+def latencies(
+    base: str, method: str, path: str, payload: bytes | None, *, seconds: float, clients: int
+) -> dict[str, float]:
+    import httpx
+
+    found: list[list[float]] = [[] for _ in range(clients)]
+    errors = [0] * clients
+    gate = threading.Barrier(clients + 1)
+    end: list[float] = []
+    headers = {"content-type": "application/json"}
+
+    def worker(slot: int) -> None:
+        with httpx.Client(base_url=base, timeout=60.0) as client:
+            client.request(method, path, content=payload, headers=headers)
+            gate.wait()
+            while time.perf_counter() < end[0]:
+                start = time.perf_counter()
+                try:
+                    ok = client.request(method, path, content=payload, headers=headers).status_code == 200
+                except httpx.HTTPError:
+                    ok = False
+                if ok:
+                    found[slot].append(time.perf_counter() - start)
+                else:
+                    errors[slot] += 1
+
+    threads = [threading.Thread(target=worker, args=(i,), daemon=True) for i in range(clients)]
+    for thread in threads:
+        thread.start()
+    began = time.perf_counter()
+    end.append(began + seconds)
+    gate.wait()
+    for thread in threads:
+        thread.join(timeout=seconds + 120.0)
+    done = np.array([t for slot in found for t in slot])
+    return {
+        "ok": float(done.size),
+        "errors": float(sum(errors)),
+        "rate": done.size / (time.perf_counter() - began),
+        "p50": float(np.percentile(done, 50)) if done.size else float("nan"),
+        "p99": float(np.percentile(done, 99)) if done.size else float("nan"),
+    }
+
+
+def row(label: str, got: dict[str, float]) -> None:
+    print(
+        f"  {label:<44} {int(got['ok']):>6} ok {int(got['errors']):>4} errors {got['rate']:>8.1f}/s "
+        f"p50 {format_time(got['p50'])} p99 {format_time(got['p99'])}",
+        flush=True,
+    )
+
+
+def http_goals(floor: float, large: dict[str, Any], *, seconds: float, rounds: int) -> None:
+    import httpx
+
+    port = free_port()
+    base = f"http://127.0.0.1:{port}"
+    env = dict(os.environ, MOVECAST_LOG_LEVEL="warning")
+    command = [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port", str(port)]
+    server = subprocess.Popen(command, cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    try:
+        if not wait_until_healthy(base, server, timeout=180.0):
+            print(f"  the server did not answer GET /healthz within 180 s (exit status {server.poll()})")
+            return
+        large_body = json.dumps(large).encode()
+        small_body = json.dumps(design_body(random_plant_for(CASES["small"]))).encode()
+        headers = {"content-type": "application/json"}
+        with httpx.Client(base_url=base, timeout=120.0) as client:
+            first = client.post("/design", content=large_body, headers=headers)
+            print(
+                f"  server on 127.0.0.1:{port} (defaults); large design answered {first.status_code}, {len(first.content):,} bytes"
+            )
+            took = best(lambda: client.post("/design", content=large_body, headers=headers), rounds=rounds)
+        print(
+            f"  POST /design large, one at a time        {format_time(took)}   {took / floor:5.2f}x the floor "
+            f"(goal <= 3x: {verdict(took / floor <= 3.0)})"
+        )
+
+        print("\n2. Small designs while the heavy lane is saturated (2 clients posting the large design):")
+        heavy: dict[str, dict[str, float]] = {}
+        hold = threading.Thread(
+            target=lambda: heavy.setdefault(
+                "got", latencies(base, "POST", "/design", large_body, seconds=seconds + 4.0, clients=2)
+            ),
+            daemon=True,
+        )
+        hold.start()
+        time.sleep(2.0)  # let the heavy requests occupy their lane
+        light = latencies(base, "POST", "/design", small_body, seconds=seconds, clients=4)
+        hold.join(timeout=seconds + 180.0)
+        row("small POST /design, 4 clients", light)
+        if "got" in heavy:
+            row("large POST /design, 2 clients (heavy lane)", heavy["got"])
+        print(f"  small p99 {format_time(light['p99'])} (goal < 100 ms: {verdict(light['p99'] < 0.1)})")
+
+        print("\n3. Small design against /healthz on the same server:")
+        health = latencies(base, "GET", "/healthz", None, seconds=seconds, clients=16)
+        design16 = latencies(base, "POST", "/design", small_body, seconds=seconds, clients=16)
+        design4 = latencies(base, "POST", "/design", small_body, seconds=seconds, clients=4)
+        row("GET /healthz, 16 clients", health)
+        row("small POST /design, 16 clients", design16)
+        row("small POST /design, 4 clients", design4)
+        ratio = design16["rate"] / health["rate"] if health["rate"] else float("nan")
+        print(f"  rate ratio at 16 clients {ratio:.2f}x (goal >= 0.6x: {verdict(ratio >= 0.6)})")
+        print(f"  p99 at 4 clients {format_time(design4['p99'])} (goal < 50 ms: {verdict(design4['p99'] < 0.05)})")
+
+        print("\n4. POST /simulate, one client:")
+        for name in ("simulate_request.json", "simulate_request_limits.json"):
+            body = (EXAMPLES / name).read_bytes()
+            steps = json.loads(body)["scenario"]["steps"]
+            got = latencies(base, "POST", "/simulate", body, seconds=seconds, clients=1)
+            row(f"{name} ({steps} steps)", got)
+            print(f"  {'':<44} {got['rate'] * steps:,.0f} simulated steps per second")
+    finally:
+        server.terminate()
+        try:
+            server.wait(timeout=20.0)
+        except subprocess.TimeoutExpired:
+            server.kill()
+            server.wait(timeout=10.0)
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--seconds", type=float, default=5.0, help="seconds of each load phase (default 5)")
+    parser.add_argument("--rounds", type=int, default=5, help="best of this many for the large design (default 5)")
+    parser.add_argument("--skip-http", action="store_true", help="do not start a server")
+    args = parser.parse_args(argv)
+    print(
+        f"{time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}; python {platform.python_version()}, "
+        f"{os.cpu_count()} CPUs, {platform.machine()}; load average {load_average()}"
+    )
+    print("\n1. Large design (200 states, 20 x 20, Hp 200, Hu 50) against numpy's floor:")
+    floor, large = goal_one_solver(args.rounds)
+    if not args.skip_http:
+        http_goals(floor, large, seconds=args.seconds, rounds=args.rounds)
+    print(f"\nload average at the end: {load_average()} (other work on the machine inflates every figure)")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

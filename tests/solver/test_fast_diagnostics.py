@@ -1,0 +1,194 @@
+"""The faster routes to the design's diagnostics give the answers of the plain routes.
+
+Each fast route (Lanczos eigenvalues with the Cholesky factor, the "what if" condition numbers
+updated from the design's Hessian, transmission zeros from the reduced matrix, the inverse
+response of several zeros at once, the steady-state gain without the Schur form) is checked
+against the plain route it replaces, computed here with scipy directly.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.linalg
+
+from service.solver.design.controller import design_controller
+from service.solver.design.prediction import step_response_coefficients
+from service.solver.design.spectrum import spectrum_ends
+from service.solver.evaluation.advice import (
+    _condition_number,
+    _inverse_response_times,
+    transmission_zeros,
+)
+from service.solver.models.properties import open_loop_poles, steady_state_gain
+from tests.conftest import random_plant
+
+EPS = np.finfo(float).eps
+
+
+def _large_design(rng: np.random.Generator, *, move: float = 0.1, control: int = 60):
+    # A random stable 40-state plant with 8 inputs and outputs: a 480 x 480 Hessian, above
+    # the dense threshold (invented numbers, like the large benchmark case).
+    a, b, c = random_plant(rng, 40, 8, 8, radius=0.95)
+    return (
+        a,
+        b,
+        c,
+        design_controller(
+            a, b, c, output_weight=np.ones(8), move_weight=np.full(8, move), prediction=80, control=control
+        ),
+    )
+
+
+@pytest.mark.parametrize("separated", [True, False])
+def test_lanczos_ends_of_a_known_spectrum_equal_dense_eigvalsh(rng, separated):
+    # Reference: the eigenvalues the matrix was built from, and scipy.linalg.eigvalsh.  With
+    # both ends apart from the rest (as in a design Hessian) Lanczos answers; with a
+    # geometric spectrum (relative gaps of 1 %) it does not converge in one basis and the
+    # dense route answers; the numbers agree either way.
+    size = 450
+    q, _ = np.linalg.qr(rng.normal(size=(size, size)))
+    values = np.geomspace(2.0, 1e3, size)
+    if separated:
+        values[0], values[-1] = 1.0, 3e3
+    h = (q * values) @ q.T
+    h = 0.5 * (h + h.T)
+    ends = spectrum_ends(h, factor=scipy.linalg.cho_factor(h, lower=True))
+    assert ends.method == ("lanczos" if separated else "dense")
+    dense = scipy.linalg.eigvalsh(h)
+    assert ends.low == pytest.approx(dense[0], rel=1e-10)
+    assert ends.high == pytest.approx(dense[-1], rel=1e-10)
+    assert (ends.low, ends.high) == pytest.approx((values[0], values[-1]), rel=1e-10)
+
+
+def test_lanczos_ends_of_a_design_hessian_equal_dense_eigvalsh(rng):
+    # Reference: scipy.linalg.eigvalsh of the same Hessian.  l_max to 1e-10 relative; l_min
+    # to 1e-10 relative or, when the Hessian is ill-conditioned, to the dense solver's own
+    # error bound k eps l_max (LAPACK Users' Guide, 3rd ed., section 4.7).
+    *_, d = _large_design(rng)
+    h = d.hessian.matrix
+    assert d.hessian.eigenvalue_method == "lanczos"
+    dense = scipy.linalg.eigvalsh(h)
+    assert d.hessian.largest_eigenvalue == pytest.approx(dense[-1], rel=1e-10)
+    bound = max(1e-10 * dense[0], h.shape[0] * EPS * dense[-1])
+    assert abs(d.hessian.smallest_eigenvalue - dense[0]) <= bound
+
+
+def test_lanczos_ends_are_the_same_on_every_call(rng):
+    # The start vector is fixed: the same request always gives the same numbers.
+    *_, d = _large_design(rng)
+    again = spectrum_ends(d.hessian.matrix, factor=d.hessian.factor)
+    assert (again.low, again.high) == (d.hessian.smallest_eigenvalue, d.hessian.largest_eigenvalue)
+
+
+def test_a_clustered_end_falls_back_to_the_dense_solver(rng):
+    # Slow first-order lags with a control horizon as long as the plant's settling put
+    # hundreds of eigenvalues within 1e-6 of the move weight: Lanczos cannot resolve them in
+    # one basis, and the dense answer (scipy.linalg.eigvalsh) is returned exactly.
+    n = 5
+    a = np.diag(np.exp(-1.0 / np.linspace(20.0, 80.0, n)))
+    b = np.eye(n) * (1.0 - np.diag(a))
+    c = rng.normal(size=(n, n))
+    d = design_controller(a, b, c, output_weight=np.ones(n), move_weight=np.full(n, 0.01), prediction=150, control=100)
+    dense = scipy.linalg.eigvalsh(d.hessian.matrix)
+    assert d.hessian.eigenvalue_method == "dense"
+    assert (d.hessian.smallest_eigenvalue, d.hessian.largest_eigenvalue) == (dense[0], dense[-1])
+
+
+@pytest.mark.parametrize("move", [[0.1] * 8, [0.1, 0.2, 0.3, 0.4, 0.1, 0.2, 0.3, 0.4]])
+def test_updated_what_if_condition_numbers_equal_full_redesigns(rng, move):
+    # Reference: design_controller run again with the heavier weights and the shorter horizon
+    # (its condition number from the dense eigensolver, forced by a large threshold).  R = r I
+    # takes the exact shift of the spectrum, any other R one more Cholesky factorization.
+    a, b, c = random_plant(rng, 40, 8, 8, radius=0.95)
+    base = {"output_weight": np.ones(8), "prediction": 80}
+    d = design_controller(a, b, c, move_weight=np.array(move), control=60, **base)
+    heavier = design_controller(a, b, c, move_weight=10.0 * np.array(move), control=60, **base)
+    shorter = design_controller(a, b, c, move_weight=np.array(move), control=30, **base)
+
+    def dense_condition(h):
+        values = scipy.linalg.eigvalsh(h)
+        return values[-1] / values[0]
+
+    assert _condition_number(a, b, c, d, move_scale=10.0, control=60) == pytest.approx(
+        dense_condition(heavier.hessian.matrix), rel=1e-9
+    )
+    assert _condition_number(a, b, c, d, move_scale=1.0, control=30) == pytest.approx(
+        dense_condition(shorter.hessian.matrix), rel=1e-9
+    )
+
+
+def test_reduced_zeros_equal_the_rosenbrock_pencil(rng):
+    # Reference: the finite generalized eigenvalues of the Rosenbrock pencil by QZ
+    # (scipy.linalg.eig), the route the reduction replaces when CB is well conditioned.
+    a, b, c = random_plant(rng, 30, 4, 4, radius=0.95)
+    n, m = b.shape
+    system = np.block([[a, b], [c, np.zeros((m, m))]])
+    mass = scipy.linalg.block_diag(np.eye(n), np.zeros((m, m)))
+    alpha, beta = scipy.linalg.eig(system, mass, right=False, homogeneous_eigvals=True)
+    finite = np.abs(beta) > 1e-8 * np.abs(alpha)
+    reference = alpha[finite] / beta[finite]
+    ours = transmission_zeros(a, b, c)
+    assert ours.size == n - m == reference.size
+    distance = np.abs(ours[:, None] - reference[None, :])
+    assert np.all(distance.min(axis=0) <= 1e-8 * np.maximum(1.0, np.abs(reference)))
+    assert np.all(distance.min(axis=1) <= 1e-8 * np.maximum(1.0, np.abs(ours)))
+
+
+def test_zeros_of_a_plant_with_dead_time_take_the_pencil():
+    # CB = 0 (one sample of dead time in front of 1/(z - 0.5)): the reduction does not apply,
+    # and the pencil finds no finite zero; the transfer function 1/(z (z - 0.5)) has none
+    # (textbook: the numerator is 1).
+    a = np.array([[0.5, 1.0], [0.0, 0.0]])
+    b = np.array([[0.0], [1.0]])
+    c = np.array([[1.0, 0.0]])
+    assert transmission_zeros(a, b, c).size == 0
+
+
+def test_inverse_response_of_several_zeros_at_once_equals_each_alone(rng):
+    # Reference: the step response S_k from step_response_coefficients read along each
+    # zero's null directions from a full SVD of the system matrix, one zero at a time
+    # (the plain route of the module notes).
+    a, b, c = random_plant(rng, 20, 3, 3, radius=0.9)
+    zeros = [z for z in transmission_zeros(a, b, c) if abs(z) > 1.0 + 1e-9]
+    real = [z for z in zeros if abs(z.imag) <= 1e-9 * abs(z) and z.real > 0]
+    assert real, "the seeded plant has a real zero outside the unit circle"
+    together = _inverse_response_times(a, b, c, zeros)
+    poles = np.abs(scipy.linalg.eigvals(a))
+    slowest = float((-1.0 / np.log(poles[(poles > 0) & (poles < 1)])).max(initial=1.0))
+    steps = int(min(5000, max(50, np.ceil(10.0 * slowest))))
+    _, step = step_response_coefficients(a, b, c, steps)
+    n, m = b.shape
+    for z, time in zip(zeros, together, strict=True):
+        fallback = max(1, int(np.ceil(1.0 / np.log(abs(z)))))
+        if z not in real:
+            assert time == fallback
+            continue
+        system = np.block([[a - z.real * np.eye(n), b], [c, np.zeros((m, m))]])
+        left, _, right = np.linalg.svd(system)
+        channel = np.einsum("i,kij,j->k", left[n:, -1], step[1:], right[-1, n:])
+        final, size = channel[-1], np.abs(channel).max()
+        wrong = np.nonzero((channel * np.sign(final) < 0) & (np.abs(channel) > 1e-12 * size))[0]
+        assert time == (int(wrong[-1]) + 2 if wrong.size else fallback)
+
+
+def test_steady_state_gain_with_known_poles_equals_the_schur_route(rng):
+    # Reference: C (I - A)^-1 B by numpy.linalg.solve (final value theorem), and the same
+    # function without the poles (the sorted Schur route).
+    a, b, c = random_plant(rng, 12, 3, 2, radius=0.9)
+    fast = steady_state_gain(a, b, c, poles=open_loop_poles(a))
+    plain = steady_state_gain(a, b, c)
+    np.testing.assert_array_equal(fast.gain, plain.gain)
+    np.testing.assert_allclose(fast.gain, c @ np.linalg.solve(np.eye(12) - a, b), rtol=1e-12)
+
+
+def test_steady_state_gain_of_an_integrating_plant_still_takes_the_schur_route():
+    # A level (pole at 1) beside a first-order lag: order 1 with ramp rate 1 and the finite
+    # gain 1 / (1 - 0.5) = 2 (final value theorem), whether or not the poles are passed.
+    a = np.diag([1.0, 0.5])
+    b = np.eye(2)
+    c = np.eye(2)
+    fast = steady_state_gain(a, b, c, poles=open_loop_poles(a))
+    assert fast.integration_order.tolist() == [[1, 0], [0, 0]]
+    assert fast.ramp_rate[0, 0] == pytest.approx(1.0)
+    assert fast.gain[1, 1] == pytest.approx(2.0)
