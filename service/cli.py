@@ -28,7 +28,7 @@ from typing import Any
 
 from pydantic import BaseModel, ValidationError
 
-from service.errors import FieldProblem, InvalidRequest, NumericalError
+from service.errors import MalformedBody, MovecastError
 
 __all__ = ["main"]
 
@@ -44,14 +44,6 @@ def _read_request(source: str | None, example: str) -> Any:
     return json.loads(text)
 
 
-def _problem(kind: str, detail: str, problems: Sequence[FieldProblem] = ()) -> dict[str, Any]:
-    return {
-        "type": f"urn:movecast:problem:{kind}",
-        "detail": detail,
-        "errors": [{"pointer": p.pointer, "detail": p.detail} for p in problems],
-    }
-
-
 def _run_offline(
     source: str | None,
     example: str,
@@ -61,31 +53,29 @@ def _run_offline(
     *,
     read: Callable[[str | None], Any] | None = None,
 ) -> int:
-    """Parse, check and answer one request without a server; print JSON (or ``render(response)``)."""
-    from service.api.problems import validation_problems
+    """Parse, check and answer one request without a server; print JSON (or ``render(response)``).
+
+    A failure prints the problem the service would answer at the endpoint named by ``example``.
+    """
+    from service.pipeline.problems import problem_of
 
     try:
-        request = parse(read(source) if read is not None else _read_request(source, example))
+        try:
+            request = parse(read(source) if read is not None else _read_request(source, example))
+        except json.JSONDecodeError as exc:
+            raise MalformedBody(f"The request is not valid JSON: {exc}") from exc
+        except OSError as exc:
+            raise MalformedBody(f"Cannot read the request: {exc.strerror or exc}") from exc
         response = answer(request)
-    except json.JSONDecodeError as exc:
-        body = _problem("malformed-body", f"The request is not valid JSON: {exc}")
-    except OSError as exc:
-        body = _problem("malformed-body", f"Cannot read the request: {exc.strerror or exc}")
-    except ValidationError as exc:
-        problems = validation_problems(exc.errors())  # type: ignore[arg-type]
-        body = _problem("invalid-request", f"The request has {len(problems)} invalid field(s).", problems)
-    except InvalidRequest as exc:
-        body = _problem("invalid-request", f"The request has {len(exc.problems)} invalid field(s).", exc.problems)
-    except NumericalError as exc:
-        body = _problem("numerical-problem", exc.detail, [FieldProblem(exc.pointer, exc.detail)] if exc.pointer else [])
+    except (ValidationError, MovecastError) as exc:
+        instance = "/" + example.removesuffix("_request.json")
+        print(json.dumps(problem_of(exc).body(instance), indent=2), file=sys.stderr)
+        return EXIT_INVALID
+    if render is None:
+        print(response.model_dump_json(indent=2))
     else:
-        if render is None:
-            print(response.model_dump_json(indent=2))
-        else:
-            sys.stdout.write(render(response))
-        return 0
-    print(json.dumps(body, indent=2), file=sys.stderr)
-    return EXIT_INVALID
+        sys.stdout.write(render(response))
+    return 0
 
 
 def _design(args: argparse.Namespace) -> int:

@@ -87,3 +87,23 @@ def test_no_machine_paths_in_the_project():
         if path.suffix in {".py", ".md", ".toml", ".json", ".yaml", ".yml", ".js", ".css", ".html", ".csv", ""}:
             text = path.read_text(encoding="utf-8", errors="ignore")
             assert not pattern.search(text), f"machine path in {path.relative_to(ROOT)}"
+
+
+@pytest.mark.parametrize(
+    "command",
+    [
+        ["ruff", "check", "service", "tests", "openapi"],
+        ["ruff", "format", "--check", "service", "tests", "openapi"],
+        ["mypy"],
+    ],
+    ids=["ruff-check", "ruff-format", "mypy"],
+)
+def test_the_tree_is_clean_for_the_linter_formatter_and_type_checker(command):
+    # The configuration is in pyproject.toml (mypy strict on the solver); any finding fails.
+    import shutil
+    import sys
+
+    tool = shutil.which(command[0], path=str(Path(sys.executable).parent)) or shutil.which(command[0])
+    assert tool is not None, f"{command[0]} is not installed; it is in the test extra"
+    result = subprocess.run([tool, *command[1:]], cwd=ROOT, capture_output=True, text=True, timeout=900)
+    assert result.returncode == 0, result.stdout + result.stderr

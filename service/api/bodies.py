@@ -10,11 +10,12 @@ Before FastAPI sees the request it
    it strictly (:func:`parse_json`) and validates it with the route's request model;
 3. hands FastAPI the validated model, which it accepts as it is.
 
-Problems come back as :class:`BodyProblem` (400 malformed, 415) or
+Problems come back as :class:`~service.errors.MalformedBody` (400),
+:class:`~service.errors.UnsupportedMediaType` (415) or
 :class:`~service.errors.InvalidRequest` (422, one entry per field, pointers into the body).
 A huge list of bad entries costs little: matrices and vectors stop at their first bad entry
 (``fail_fast``), and a problem lists at most
-:data:`~service.api.problems.MAX_REPORTED_ERRORS` fields with the count of the rest.
+:data:`~service.pipeline.problems.MAX_REPORTED_ERRORS` fields with the count of the rest.
 """
 
 from __future__ import annotations
@@ -28,11 +29,10 @@ from fastapi import Request, Response
 from fastapi.routing import APIRoute
 from pydantic import BaseModel, ValidationError
 
-from service.api.problems import BodyProblem, validation_problems
-from service.errors import FieldProblem, InvalidRequest
-from service.schemas.common import pointer
+from service.errors import FieldProblem, InvalidRequest, MalformedBody, UnsupportedMediaType
+from service.pipeline.problems import pointer, validation_problems
 
-__all__ = ["BodyProblem", "CheckedBodyRoute", "parse_and_validate", "parse_json"]
+__all__ = ["CheckedBodyRoute", "parse_and_validate", "parse_json"]
 
 #: Digits beyond which a JSON integer is read as a float (no field takes so large an integer;
 #: Python refuses to convert integers of more than 4300 digits at all).
@@ -92,7 +92,7 @@ def parse_json(body: bytes) -> Any:
 
     Raises
     ------
-    BodyProblem
+    MalformedBody
         400: not UTF-8, not JSON, nesting too deep for the parser.  (``NaN`` and
         ``Infinity`` parse, so that the field refusing them is named by pointer.)
     InvalidRequest
@@ -101,7 +101,7 @@ def parse_json(body: bytes) -> Any:
     try:
         text = body.decode("utf-8")
     except UnicodeDecodeError as exc:
-        raise BodyProblem(400, "malformed-body", f"The request body is not valid UTF-8 (byte {exc.start}).") from None
+        raise MalformedBody(f"The request body is not valid UTF-8 (byte {exc.start}).") from None
     repeated = False
 
     def members(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
@@ -113,15 +113,13 @@ def parse_json(body: bytes) -> Any:
     try:
         value = json.loads(text, object_pairs_hook=members, parse_int=_integer)
     except json.JSONDecodeError as exc:
-        raise BodyProblem(
-            400,
-            "malformed-body",
+        raise MalformedBody(
             f"The request body is not valid JSON: {exc.msg} at line {exc.lineno}, column {exc.colno}.",
         ) from None
     except RecursionError:
-        raise BodyProblem(400, "malformed-body", "The request body is nested too deeply to be a request.") from None
+        raise MalformedBody("The request body is nested too deeply to be a request.") from None
     except ValueError as exc:
-        raise BodyProblem(400, "malformed-body", f"The request body is not valid JSON: {exc}.") from None
+        raise MalformedBody(f"The request body is not valid JSON: {exc}.") from None
     if repeated:
         raise InvalidRequest(_repeated_members(value))
     return value
@@ -132,16 +130,16 @@ def parse_and_validate(body: bytes, model: type[BaseModel]) -> BaseModel:
 
     Raises
     ------
-    BodyProblem, InvalidRequest
+    MalformedBody, InvalidRequest
     """
     value = parse_json(body)
     try:
         return model.model_validate(value)
     except ValidationError as exc:
         errors = exc.errors(include_url=False, include_input=False)
-        raise InvalidRequest(validation_problems(errors)) from None  # type: ignore[arg-type]
+        raise InvalidRequest(validation_problems(errors)) from None
     except RecursionError:
-        raise BodyProblem(400, "malformed-body", "The request body is nested too deeply to be a request.") from None
+        raise MalformedBody("The request body is nested too deeply to be a request.") from None
 
 
 def json_content_type(value: str | None) -> bool:
@@ -180,12 +178,7 @@ class CheckedBodyRoute(APIRoute):
 
         async def checked(request: Request) -> Response:
             if not json_content_type(request.headers.get("content-type")):
-                raise BodyProblem(
-                    415,
-                    "unsupported-media-type",
-                    "Send the request body as JSON with 'Content-Type: application/json'.",
-                    headers={"Accept-Post": "application/json"},
-                )
+                raise UnsupportedMediaType("Send the request body as JSON with 'Content-Type: application/json'.")
             body = await request.body()
             if not body.strip():
                 raise InvalidRequest([FieldProblem("", "the request body is required: a JSON object")])

@@ -46,21 +46,24 @@ from fastapi import Depends, Request
 from pydantic import BaseModel
 from starlette.types import Receive
 
+from service.api.compute_worker import rebuild_error, serve_calls
 from service.api.deps import SettingsDep
 from service.api.metrics import LANE_REQUESTS, SOLVER_SECONDS
-from service.api.solver_worker import rebuild_error, serve_calls
+from service.errors import (
+    Cancelled,
+    ComputeCrashed,
+    ComputeDied,
+    ComputeOutOfMemory,
+    HeavyLaneFull,
+    TimeLimitExceeded,
+)
 from service.pipeline.caps import request_work
 
 __all__ = [
     "HEAVY_NICENESS",
     "Budget",
     "BudgetDep",
-    "Cancelled",
-    "HeavyLaneFull",
     "Lanes",
-    "SolverCrashed",
-    "SolverDied",
-    "SolverOutOfMemory",
     "SolverPool",
     "TimeLimitExceeded",
     "default_solver_processes",
@@ -72,47 +75,13 @@ __all__ = [
 T = TypeVar("T")
 
 #: Modules the fork server imports once, so each solver process starts ready.
-PRELOAD = ["numpy", "scipy.linalg", "service.pipeline.design", "service.api.solver_worker"]
-
-
-class TimeLimitExceeded(Exception):
-    """The request's compute time limit passed, waiting for a solver (``queued``) or in one."""
-
-    def __init__(self, seconds: float, *, queued: bool) -> None:
-        self.seconds = seconds
-        self.queued = queued
-        super().__init__(f"time limit of {seconds:g} s exceeded")
-
-
-class SolverCrashed(Exception):
-    """The call raised something other than a movecast error (its traceback is in the log)."""
-
-
-class SolverDied(SolverCrashed):
-    """The solver process died while running the call (killed, out of memory); replaced."""
-
-
-class SolverOutOfMemory(Exception):
-    """The call ran out of memory in its solver process (``MemoryError``)."""
-
-
-class Cancelled(Exception):
-    """The request's client went away; its call was stopped and its solver replaced."""
-
+PRELOAD = ["numpy", "scipy.linalg", "service.pipeline.design", "service.api.compute_worker"]
 
 #: Seconds between two looks at a request's cancellation while it waits or runs.
 _POLL_SECONDS = 0.05
 log = logging.getLogger("movecast.compute")
-#: Warnings raised inside solver calls (numpy overflow and the like), one JSON line each.
+#: Warnings raised inside compute calls (numpy overflow and the like), one JSON line each.
 solver_log = logging.getLogger("movecast.solver")
-
-
-class HeavyLaneFull(Exception):
-    """The heavy lane has as many requests waiting as it accepts; retry later."""
-
-    def __init__(self, waiting: int) -> None:
-        self.waiting = waiting
-        super().__init__(f"{waiting} heavy requests are already waiting")
 
 
 def default_solver_processes() -> int:
@@ -123,11 +92,11 @@ def default_solver_processes() -> int:
         return max(1, os.cpu_count() or 1)
 
 
-def _context() -> multiprocessing.context.BaseContext:
+def _context() -> Any:
     methods = multiprocessing.get_all_start_methods()
     context = multiprocessing.get_context("forkserver" if "forkserver" in methods else "spawn")
     if context.get_start_method() == "forkserver":
-        context.set_forkserver_preload(PRELOAD)  # type: ignore[attr-defined]
+        context.set_forkserver_preload(PRELOAD)
     return context
 
 
@@ -278,11 +247,11 @@ class SolverPool:
             killed and replaced).
         Cancelled
             ``cancel`` was set (the client left): the call is stopped, its solver replaced.
-        SolverDied
+        ComputeDied
             The solver process died during the call (replaced).
-        SolverOutOfMemory
+        ComputeOutOfMemory
             The call raised ``MemoryError`` in the solver.
-        SolverCrashed
+        ComputeCrashed
             The call raised something other than a movecast error (traceback logged).
         MovecastError
             Whatever the call raised on purpose (InvalidRequest, NumericalError).
@@ -298,7 +267,7 @@ class SolverPool:
                 )
                 self._replace(solver)
                 if attempt == 2:
-                    raise SolverDied("the solver process stopped before the call") from None
+                    raise ComputeDied("the solver process stopped before the call") from None
                 continue
             break
         healthy = False
@@ -306,7 +275,7 @@ class SolverPool:
             try:
                 outcome = self._wait(solver, deadline, seconds, cancel)
             except (EOFError, OSError) as exc:
-                raise SolverDied(f"the solver process stopped (exit code {solver.process.exitcode})") from exc
+                raise ComputeDied(f"the solver process stopped (exit code {solver.process.exitcode})") from exc
             healthy = True
         finally:
             if healthy:
@@ -319,10 +288,10 @@ class SolverPool:
         if result[0] == "ok":
             return result[1], result[2]
         if result[0] == "memory":
-            raise SolverOutOfMemory("the solver ran out of memory")
+            raise ComputeOutOfMemory("the solver ran out of memory")
         if result[0] == "crash":
             log.error("the solver raised %s", result[1], extra={"exception_type": result[1], "traceback": result[2]})
-            raise SolverCrashed(f"the solver raised {result[1]}")
+            raise ComputeCrashed(f"the solver raised {result[1]}")
         raise rebuild_error(result[1], result[2], result[3])
 
     def close(self) -> None:

@@ -8,7 +8,7 @@ from typing import Annotated
 from fastapi import Depends
 
 from service.api.settings import Settings
-from service.schemas.common import Caps
+from service.pipeline.caps import Caps
 
 __all__ = ["CapsDep", "SettingsDep", "get_caps", "get_settings"]
 

@@ -23,11 +23,13 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 from service.api.logs import request_id_var
 from service.api.metrics import IN_PROGRESS, REQUEST_SECONDS, REQUESTS, count_rejection
 from service.api.problems import PROBLEM_JSON, problem_response
+from service.errors import MalformedBody
+from service.pipeline.problems import Problem, problem_of
 
 try:  # FastAPI >= 0.150 keeps included routers as branches; this walks their routes
     from fastapi.routing import iter_route_contexts as _flatten
 except ImportError:  # pragma: no cover - older FastAPI lists every route in app.routes
-    _flatten = None
+    _flatten = None  # type: ignore[assignment]
 
 __all__ = [
     "REQUEST_ID_HEADER",
@@ -133,9 +135,11 @@ class RequestContextMiddleware:
             error_log.exception("unhandled error", extra={"route": route})
             if not state["started"]:
                 response = problem_response(
-                    "internal-error",
-                    500,
-                    "The service failed to answer; the error is logged with this request's id.",
+                    Problem(
+                        "internal-error",
+                        500,
+                        "The service failed to answer; the error is logged with this request's id.",
+                    ),
                     scope.get("path", ""),
                 )
                 await response(scope, receive, send_with_id)
@@ -185,9 +189,9 @@ class BodyLimitMiddleware:
 
     def _too_large(self, scope: Scope) -> Any:
         return problem_response(
-            "payload-too-large",
-            413,
-            f"The request body exceeds this service's limit of {self.max_bytes:,} bytes.",
+            Problem(
+                "payload-too-large", 413, f"The request body exceeds this service's limit of {self.max_bytes:,} bytes."
+            ),
             scope.get("path", ""),
         )
 
@@ -199,7 +203,7 @@ class BodyLimitMiddleware:
         if declared is not None:
             if not declared.strip().isdigit():
                 response = problem_response(
-                    "malformed-body", 400, "The Content-Length header is not a number.", scope.get("path", "")
+                    problem_of(MalformedBody("The Content-Length header is not a number.")), scope.get("path", "")
                 )
                 await response(scope, receive, send)
                 return
@@ -244,11 +248,8 @@ class ProblemCORSMiddleware(CORSMiddleware):
             return response
         refused = bytes(response.body).decode("utf-8", "replace").removeprefix("Disallowed CORS ")
         headers = {k: v for k, v in response.headers.items() if k.lower() not in {"content-length", "content-type"}}
-        return problem_response(
-            "forbidden-origin",
-            403,
+        detail = (
             f"This cross-origin request is not allowed here (refused: {refused}). "
-            "The allowed origins are set by MOVECAST_CORS_ORIGINS.",
-            "",
-            headers=headers,
+            "The allowed origins are set by MOVECAST_CORS_ORIGINS."
         )
+        return problem_response(Problem("forbidden-origin", 403, detail), "", headers=headers)

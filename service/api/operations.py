@@ -6,9 +6,6 @@
   metrics, last-resort 500), CORS (only with ``MOVECAST_CORS_ORIGINS``), API key (only with
   keys), body limit (``MOVECAST_MAX_BODY_BYTES``);
 - GET /metrics;
-- handlers for the compute time limit (503 with ``Retry-After``), a solver process that died
-  (503 with ``Retry-After``), a solver out of memory (422), an unexpected solver error (500,
-  its traceback in the log only) and a request whose client left (its work stopped);
 - the shared error responses (401, 413, 503, 500) in the OpenAPI document of every route
   they can come from;
 - at start-up: a warning when no API key is configured, the solver processes started, and
@@ -20,7 +17,6 @@ from __future__ import annotations
 
 import copy
 import logging
-import math
 import signal
 import threading
 from collections.abc import AsyncIterator, Callable
@@ -28,26 +24,17 @@ from contextlib import asynccontextmanager
 from types import FrameType
 from typing import Any
 
-from fastapi import FastAPI, Request
-from fastapi.responses import JSONResponse
+from fastapi import FastAPI
 
 from service.api import metrics
-from service.api.compute import (
-    Cancelled,
-    HeavyLaneFull,
-    SolverCrashed,
-    SolverDied,
-    SolverOutOfMemory,
-    TimeLimitExceeded,
-    solver_lanes,
-)
+from service.api.compute import solver_lanes
 from service.api.middleware import (
     REQUEST_ID_HEADER,
     BodyLimitMiddleware,
     ProblemCORSMiddleware,
     RequestContextMiddleware,
 )
-from service.api.problems import PROBLEM_JSON, problem_response
+from service.api.problems import PROBLEM_JSON
 from service.api.security import OPEN_PATHS, ApiKeyMiddleware, KeyRing
 from service.api.settings import Settings
 
@@ -92,84 +79,10 @@ def _document_common_responses(app: FastAPI) -> None:
                         operation.setdefault("responses", {}).setdefault(str(status), copy.deepcopy(response))
                     if "requestBody" in operation:
                         operation["responses"].setdefault("415", copy.deepcopy(UNSUPPORTED_MEDIA_TYPE))
+        assert app.openapi_schema is not None
         return app.openapi_schema
 
     app.openapi = openapi  # type: ignore[method-assign]
-
-
-#: Seconds a client is told to wait before retrying a request the service could not take now.
-RETRY_AFTER_SECONDS = 1
-#: Status of an answer to a client that has gone away (nobody reads it; logs and metrics do),
-#: "client closed request" as common practice names it.
-CLIENT_CLOSED = 499
-
-
-def _install_handlers(app: FastAPI) -> None:
-    async def _time_limit(request: Request, exc: Exception) -> JSONResponse:
-        assert isinstance(exc, TimeLimitExceeded)
-        if exc.queued:
-            detail = (
-                f"The compute time limit of {exc.seconds:g} s ran out while waiting for a free solver: "
-                "the service is busy. Retry after the time given in Retry-After."
-            )
-            retry = RETRY_AFTER_SECONDS
-        else:
-            detail = (
-                f"The compute time limit of {exc.seconds:g} s ran out while solving. A retry helps only if "
-                "the service was busy; otherwise shorten the horizons or reduce the model."
-            )
-            retry = max(1, math.ceil(exc.seconds))
-        return problem_response("time-limit", 503, detail, request.url.path, headers={"Retry-After": str(retry)})
-
-    async def _died(request: Request, exc: Exception) -> JSONResponse:
-        log.error("solver process died: %s", exc)
-        return problem_response(
-            "solver-failed",
-            503,
-            "The solver process stopped while answering this request (it has been replaced). Retry it.",
-            request.url.path,
-            headers={"Retry-After": str(RETRY_AFTER_SECONDS)},
-        )
-
-    async def _memory(request: Request, exc: Exception) -> JSONResponse:
-        log.warning("solver out of memory on %s", request.url.path)
-        return problem_response(
-            "out-of-memory",
-            422,
-            "The solver ran out of memory for this request. Shorten the prediction or control horizon, "
-            "simulate fewer steps or reduce the model.",
-            request.url.path,
-        )
-
-    async def _crashed(request: Request, exc: Exception) -> JSONResponse:
-        log.error("solver failure: %s", exc)
-        return problem_response(
-            "internal-error", 500, "The service failed to answer; the error is logged.", request.url.path
-        )
-
-    async def _cancelled(request: Request, exc: Exception) -> JSONResponse:
-        log.info("client went away; its computation was stopped")
-        return problem_response(
-            "client-closed", CLIENT_CLOSED, "The client closed the connection before the answer.", request.url.path
-        )
-
-    async def _lane_full(request: Request, exc: Exception) -> JSONResponse:
-        assert isinstance(exc, HeavyLaneFull)
-        return problem_response(
-            "busy",
-            503,
-            f"The service's lane for large computations is full ({exc.waiting} large requests are "
-            "already waiting). Retry later, or make the request smaller.",
-            request.url.path,
-            headers={"Retry-After": "5"},
-        )
-
-    app.add_exception_handler(TimeLimitExceeded, _time_limit)
-    app.add_exception_handler(HeavyLaneFull, _lane_full)
-    app.add_exception_handler(SolverDied, _died)
-    app.add_exception_handler(SolverOutOfMemory, _memory)
-    app.add_exception_handler(SolverCrashed, _crashed)
-    app.add_exception_handler(Cancelled, _cancelled)
 
 
 def _sigterm_hook(app: FastAPI) -> Callable[[], None]:
@@ -221,7 +134,6 @@ def _wrap_lifespan(app: FastAPI, settings: Settings) -> None:
 def install_operations(app: FastAPI, settings: Settings) -> None:
     """Install middleware, /metrics, handlers, shared responses and start-up hooks."""
     app.include_router(metrics.router)
-    _install_handlers(app)
     _document_common_responses(app)
     _wrap_lifespan(app, settings)
     # add_middleware puts each new one outside the previous: add innermost first.

@@ -27,7 +27,8 @@ import h11
 from uvicorn.protocols.http.h11_impl import H11Protocol
 
 from service.api.deps import get_settings
-from service.api.problems import PROBLEM_JSON, problem_body
+from service.api.problems import PROBLEM_JSON
+from service.pipeline.problems import Problem
 
 __all__ = ["GuardedH11Protocol", "raw_problem"]
 
@@ -38,7 +39,7 @@ _REASONS = {400: "Bad Request", 408: "Request Timeout", 503: "Service Unavailabl
 
 def raw_problem(status: int, kind: str, detail: str, headers: dict[str, str] | None = None) -> bytes:
     """A whole HTTP/1.1 problem response that closes the connection, as bytes on the wire."""
-    body = json.dumps(problem_body(kind, status, detail, "")).encode("utf-8")
+    body = json.dumps(Problem(kind, status, detail).body("")).encode("utf-8")
     lines = [
         f"HTTP/1.1 {status} {_REASONS.get(status, 'Error')}",
         f"content-type: {PROBLEM_JSON}",

@@ -24,6 +24,7 @@ from starlette.datastructures import Headers
 from starlette.types import ASGIApp, Receive, Scope, Send
 
 from service.api.problems import problem_response
+from service.pipeline.problems import Problem
 
 __all__ = ["OPEN_PATHS", "OPEN_PREFIXES", "ApiKeyMiddleware", "KeyRing", "is_open_path", "route_path"]
 
@@ -102,6 +103,6 @@ class ApiKeyMiddleware:
             detail = "The API key is not accepted."
             challenge = f'{REALM}, error="invalid_token"'
         response = problem_response(
-            "unauthorized", 401, detail, scope.get("path", ""), headers={"WWW-Authenticate": challenge}
+            Problem("unauthorized", 401, detail), scope.get("path", ""), headers={"WWW-Authenticate": challenge}
         )
         await response(scope, receive, send)

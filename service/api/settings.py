@@ -1,7 +1,12 @@
-"""Service settings, read from the environment (prefix ``MOVECAST_``) by pydantic-settings."""
+"""Service settings, read from the environment (prefix ``MOVECAST_``) by pydantic-settings.
+
+The cap fields (``max_*`` but the body size and batch items) take their defaults from
+:data:`service.pipeline.caps.DEFAULT_CAPS`, where they are written once.
+"""
 
 from __future__ import annotations
 
+from dataclasses import fields
 from pathlib import Path
 from typing import Annotated, Any
 
@@ -9,8 +14,7 @@ from pydantic import Field, PrivateAttr, SecretStr, field_validator, model_valid
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
 from service.api import settings_checks as checks
-from service.pipeline.caps import HEAVY_WORK
-from service.schemas.common import Caps
+from service.pipeline.caps import DEFAULT_CAPS, HEAVY_WORK, Caps
 
 __all__ = ["Settings"]
 
@@ -27,38 +31,48 @@ class Settings(BaseSettings):
         default="info", description="Log level of the service: critical, error, warning, info, debug."
     )
 
-    max_states: int = Field(default=500, ge=1, description="Largest state count accepted.")
-    max_signals: int = Field(default=100, ge=1, description="Most inputs or outputs accepted.")
-    max_prediction_horizon: int = Field(default=2000, ge=1, description="Longest Hp accepted.")
-    max_hessian_size: int = Field(default=4000, ge=1, description="Largest Hu*m accepted.")
+    max_states: int = Field(default=DEFAULT_CAPS.max_states, ge=1, description="Largest state count accepted.")
+    max_signals: int = Field(default=DEFAULT_CAPS.max_signals, ge=1, description="Most inputs or outputs accepted.")
+    max_prediction_horizon: int = Field(
+        default=DEFAULT_CAPS.max_prediction_horizon, ge=1, description="Longest Hp accepted."
+    )
+    max_hessian_size: int = Field(default=DEFAULT_CAPS.max_hessian_size, ge=1, description="Largest Hu*m accepted.")
     max_prediction_entries: int = Field(
-        default=25_000_000, ge=1, description="Most entries of the prediction matrices [Fx Fu G]."
+        default=DEFAULT_CAPS.max_prediction_entries,
+        ge=1,
+        description="Most entries of the prediction matrices [Fx Fu G].",
     )
     max_design_memory_bytes: int = Field(
-        default=384 * 1024 * 1024,
+        default=DEFAULT_CAPS.max_design_memory_bytes,
         ge=1024 * 1024,
         description="Most estimated memory of one design in the solver, in bytes (fits the 1 GiB pod of deploy/).",
     )
     max_response_entries: int = Field(
-        default=2_000_000, ge=1, description="Most entries of the horizon gain in a response."
+        default=DEFAULT_CAPS.max_response_entries, ge=1, description="Most entries of the horizon gain in a response."
     )
-    max_sweep_values: int = Field(default=50, ge=1, le=1000, description="Most values in one tuning sweep.")
-    max_simulation_steps: int = Field(default=100_000, ge=1, description="Longest run of POST /simulate, in steps.")
+    max_sweep_values: int = Field(
+        default=DEFAULT_CAPS.max_sweep_values, ge=1, le=1000, description="Most values in one tuning sweep."
+    )
+    max_simulation_steps: int = Field(
+        default=DEFAULT_CAPS.max_simulation_steps, ge=1, description="Longest run of POST /simulate, in steps."
+    )
     max_simulation_work: int = Field(
-        default=5_000_000_000,
+        default=DEFAULT_CAPS.max_simulation_work,
         ge=1,
         description="Most estimated floating-point work of one simulated run (steps x cost of a step).",
     )
     max_frequency_work: int = Field(
-        default=5_000_000_000,
+        default=DEFAULT_CAPS.max_frequency_work,
         ge=1,
         description="Most estimated floating-point work of one frequency analysis (points x cost of a point).",
     )
     max_identify_samples: int = Field(
-        default=100_000, ge=20, description="Most samples per column of one POST /identify (after resampling)."
+        default=DEFAULT_CAPS.max_identify_samples,
+        ge=20,
+        description="Most samples per column of one POST /identify (after resampling).",
     )
     max_identify_work: int = Field(
-        default=2_000_000_000,
+        default=DEFAULT_CAPS.max_identify_work,
         ge=1,
         description="Most estimated work of one POST /identify (samples x fitted parameters x a fixed 2 000 "
         "simulated samples per parameter for the starts, iterations and Jacobians).",
@@ -151,19 +165,5 @@ class Settings(BaseSettings):
         return tuple(dict.fromkeys(keys))
 
     def caps(self) -> Caps:
-        """The size caps handed to the schema layer."""
-        return Caps(
-            max_states=self.max_states,
-            max_signals=self.max_signals,
-            max_prediction_horizon=self.max_prediction_horizon,
-            max_hessian_size=self.max_hessian_size,
-            max_prediction_entries=self.max_prediction_entries,
-            max_design_memory_bytes=self.max_design_memory_bytes,
-            max_response_entries=self.max_response_entries,
-            max_sweep_values=self.max_sweep_values,
-            max_simulation_steps=self.max_simulation_steps,
-            max_simulation_work=self.max_simulation_work,
-            max_frequency_work=self.max_frequency_work,
-            max_identify_samples=self.max_identify_samples,
-            max_identify_work=self.max_identify_work,
-        )
+        """The size caps handed to the pipeline (the settings' fields of the same names)."""
+        return Caps(**{cap.name: getattr(self, cap.name) for cap in fields(Caps)})

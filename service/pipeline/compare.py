@@ -22,13 +22,14 @@ from dataclasses import dataclass
 from typing import TypeVar
 
 from service.errors import FieldProblem, InvalidRequest, NumericalError
+from service.pipeline.caps import Caps
 from service.pipeline.compare_text import summary
 from service.pipeline.design import DesignInputs, check_design_request, compute_design, design_response
-from service.pipeline.export import design_fingerprint
+from service.pipeline.fingerprint import design_fingerprint
+from service.pipeline.problems import pointer
 from service.pipeline.simulate import compute_simulation, performance_report
 from service.pipeline.simulate_checks import check_simulate_request
 from service.pipeline.sweep import simulate_request
-from service.schemas.common import Caps, pointer
 from service.schemas.compare import (
     CompareRequest,
     CompareResponse,
@@ -87,7 +88,10 @@ def _on_side(side: str, check: Callable[[], T]) -> T:
     except InvalidRequest as exc:
         raise InvalidRequest([FieldProblem(_moved(p.pointer, side), p.detail) for p in exc.problems]) from None
     except NumericalError as exc:
-        raise type(exc)(exc.detail, pointer=_moved(exc.pointer, side) if exc.pointer else f"/{side}") from None
+        if not exc.field:
+            raise type(exc)(exc.detail, field=(side,)) from None
+        key = exc.field if exc.field[0] == "scenario" else (side, *exc.field)
+        raise type(exc)(exc.detail, field=key) from None
 
 
 def _with_robustness(request: DesignRequest, wanted: bool) -> DesignRequest:
@@ -278,11 +282,11 @@ def compare_response(request: CompareRequest, inputs: CompareInputs, caps: Caps)
     """
     before = _on_side(
         "in_service",
-        lambda: design_response(inputs.in_service, inputs.in_service_inputs, compute_design(inputs.in_service_inputs)),
+        lambda: design_response(inputs.in_service_inputs, compute_design(inputs.in_service_inputs)),
     )
     after = _on_side(
         "proposed",
-        lambda: design_response(inputs.proposed, inputs.proposed_inputs, compute_design(inputs.proposed_inputs)),
+        lambda: design_response(inputs.proposed_inputs, compute_design(inputs.proposed_inputs)),
     )
     sample_time = inputs.in_service_inputs.plant.sample_time
     scenario = request.scenario or default_scenario([before, after], inputs.in_service_inputs)

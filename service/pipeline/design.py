@@ -10,16 +10,18 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Literal
 
 import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import FieldProblem, InvalidRequest, NumericalError
+from service.pipeline.arrays import check_weight
+from service.pipeline.caps import Caps, hessian_size, horizon_gain_entries, prediction_entries
 from service.pipeline.estimates import design_memory_bytes
 from service.pipeline.estimator import EstimatorInputs, check_estimator, scaled_estimator
-from service.pipeline.fingerprint import fingerprint
+from service.pipeline.fingerprint import design_fingerprint
 from service.pipeline.limits import (
     DesignLimitCheck,
     design_limit_check,
@@ -29,8 +31,8 @@ from service.pipeline.limits import (
 from service.pipeline.limits_checks import LimitInputs, check_limits
 from service.pipeline.operating_point import check_operating_point, design_to_absolute, explain_failure, to_deviations
 from service.pipeline.plant import DiscretePlant, Signal, plant_arrays
+from service.pipeline.problems import pointer
 from service.pipeline.robustness import frequency_problems, robustness_report
-from service.schemas.common import Caps, check_weight, pointer
 from service.schemas.design import (
     ClosedLoopReport,
     DesignRequest,
@@ -90,6 +92,10 @@ class DesignInputs:
     frequency_points: int | None = None
     #: The checked limits; ``None``: the request has none.
     limits: LimitInputs | None = None
+    #: Whether the answer shows the sampled model (``analysis.sampled_model``).
+    sampled_model: bool = False
+    #: The fingerprint of the design request (its design fields alone).
+    fingerprint: str = ""
 
     @property
     def free_moves(self) -> int:
@@ -191,16 +197,16 @@ def _size_problems(request: DesignRequest, plant: DiscretePlant, caps: Caps) -> 
     n, m, p = plant.states, plant.input_count, plant.output_count
     penalized = h.prediction - h.first_penalized + 1
     moves = h.control if h.move_steps is None else len(h.move_steps)
-    hessian_size = moves * m
-    if hessian_size > caps.max_hessian_size:
+    size = hessian_size(moves=moves, inputs=m)
+    if size > caps.max_hessian_size:
         return [
             FieldProblem(
                 pointer("horizons", "control"),
-                f"the Hessian would be {hessian_size} x {hessian_size} ({moves} moves x {m} inputs); "
+                f"the Hessian would be {size} x {size} ({moves} moves x {m} inputs); "
                 f"this service accepts at most {caps.max_hessian_size}",
             )
         ]
-    entries = penalized * p * (n + m + h.control * m)
+    entries = prediction_entries(penalized_steps=penalized, outputs=p, states=n, inputs=m, control=h.control)
     if entries > caps.max_prediction_entries:
         return [
             FieldProblem(
@@ -222,11 +228,12 @@ def _size_problems(request: DesignRequest, plant: DiscretePlant, caps: Caps) -> 
             )
             for where in (("horizons", "control"), ("horizons", "prediction"))
         ]
-    if m * penalized * p > caps.max_response_entries:
+    gain_entries = horizon_gain_entries(penalized_steps=penalized, outputs=p, inputs=m)
+    if gain_entries > caps.max_response_entries:
         return [
             FieldProblem(
                 pointer("horizons", "prediction"),
-                f"the horizon gain would hold {m * penalized * p:,} numbers; this service returns at "
+                f"the horizon gain would hold {gain_entries:,} numbers; this service returns at "
                 f"most {caps.max_response_entries:,}",
             )
         ]
@@ -311,6 +318,8 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         estimator=estimator,
         frequency_points=request.analysis.points if request.analysis.frequency else None,
         limits=limits,
+        sampled_model=request.analysis.sampled_model,
+        fingerprint=design_fingerprint(request),
     )
 
 
@@ -331,14 +340,14 @@ def compute_design(inputs: DesignInputs) -> DesignOutcome:
             "The design overflows double precision: some entries of the model, weights or spans "
             "are too large (or too small) for their units. Express the signals in units where "
             "the numbers are moderate, or give spans.",
-            pointer="/model",
+            field=("model",),
         ) from None
 
 
 def _compute_design(inputs: DesignInputs) -> DesignOutcome:
     plant = inputs.plant
-    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
-    sd = plant.spans(plant.disturbances) if plant.b_disturbance is not None else None
+    su, sz = plant.input_spans, plant.output_spans
+    sd = plant.disturbance_spans if plant.b_disturbance is not None else None
     scaled = scale_plant(
         plant.a, plant.b, plant.c, input_span=su, output_span=sz, b_disturbance=plant.b_disturbance, disturbance_span=sd
     )
@@ -442,16 +451,16 @@ def marginal_mode_reports(modes: Sequence[MarginalMode], plant: DiscretePlant) -
     ]
 
 
-def _plant_report(request: DesignRequest, plant: DiscretePlant, outcome: DesignOutcome) -> PlantReport:
+def _plant_report(checked: DesignInputs, plant: DiscretePlant, outcome: DesignOutcome) -> PlantReport:
     inputs = [s.name for s in plant.inputs]
     outputs = [s.name for s in plant.outputs]
-    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
+    su, sz = plant.input_spans, plant.output_spans
     steady = outcome.properties.steady_state
     to_engineering = sz[:, None] / su[None, :]
     rga = outcome.properties.relative_gain
     condition = outcome.properties.condition_number
     sampled = None
-    if request.analysis.sampled_model:
+    if checked.sampled_model:
         sampled = SampledModelReport(
             a=plant.a.tolist(),
             b=plant.b.tolist(),
@@ -498,8 +507,8 @@ def _diagnostics(inputs: DesignInputs, outcome: DesignOutcome) -> DiagnosticsRep
     )
 
 
-def design_response(request: DesignRequest, inputs: DesignInputs, outcome: DesignOutcome) -> DesignResponse:
-    """Turn the computed design into the response model."""
+def design_response(inputs: DesignInputs, outcome: DesignOutcome) -> DesignResponse:
+    """Turn the computed design into the response model (the checked inputs carry all it needs)."""
     plant = inputs.plant
     gain, design, loop = outcome.gain, outcome.design, outcome.design.loop
     names = [s.name for s in plant.inputs]
@@ -534,14 +543,14 @@ def design_response(request: DesignRequest, inputs: DesignInputs, outcome: Desig
             stable=loop.stable,
             marginal_modes=marginal_mode_reports(loop.marginal, plant),
         ),
-        plant=_plant_report(request, plant, outcome),
+        plant=_plant_report(inputs, plant, outcome),
         warnings=[WarningReport(code=w.code, message=w.message) for w in outcome.warnings],
         robustness=None
         if outcome.analysis is None or outcome.estimator is None
         else robustness_report(outcome.analysis, outcome.estimator),
         limit_check=None if outcome.limit_check is None else limit_check_report(outcome.limit_check, plant),
         diagnostics=_diagnostics(inputs, outcome),
-        fingerprint=fingerprint(request),
+        fingerprint=inputs.fingerprint,
     )
 
 
@@ -559,11 +568,12 @@ def run_design(request: DesignRequest, caps: Caps) -> DesignResponse:
         explain_failure(deviations, point, caps)
         raise
     if point is None:
-        return design_response(request, inputs, compute_design(inputs))
+        return design_response(inputs, compute_design(inputs))
     check_operating_point(deviations, point, inputs.plant)
-    response = design_response(deviations, inputs, compute_design(inputs))
+    # The fingerprint names the request as sent, in absolute units.
+    inputs = replace(inputs, fingerprint=design_fingerprint(request))
+    response = design_response(inputs, compute_design(inputs))
     design_to_absolute(response, point, inputs.plant)
-    response.fingerprint = fingerprint(request)
     return response
 
 

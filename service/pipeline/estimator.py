@@ -19,8 +19,9 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import FieldProblem, NumericalError
+from service.pipeline.arrays import check_weight
 from service.pipeline.plant import DiscretePlant
-from service.schemas.common import check_weight, pointer
+from service.pipeline.problems import pointer
 from service.schemas.estimator import EstimatorRequest
 from service.solver.estimation.estimator import (
     Estimator,
@@ -215,7 +216,7 @@ def scaled_estimator(inputs: EstimatorInputs, plant: DiscretePlant, scaled: Scal
         model, a Riccati equation without a stabilizing solution), or pointer ``/estimator``
         when the gain or poles come out as numbers that are not finite.
     """
-    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
+    su, sz = plant.input_spans, plant.output_spans
     s_dist = {"per_output": sz, "output": sz, "input": su, "none": np.ones(0)}[inputs.disturbance]
     estimator = design_estimator(
         scaled.a,
@@ -234,6 +235,6 @@ def scaled_estimator(inputs: EstimatorInputs, plant: DiscretePlant, scaled: Scal
         raise NumericalError(
             "The estimator's gain or poles are not finite numbers: the model's numbers are too large "
             "or too small to estimate its state in double precision. Rescale the model",
-            pointer="/estimator",
+            field=("estimator",),
         )
     return estimator

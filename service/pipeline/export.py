@@ -25,13 +25,14 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import FieldProblem, InvalidRequest, NumericalError
+from service.pipeline.caps import Caps
 from service.pipeline.csv_cells import text_cell
 from service.pipeline.design import DesignInputs, DesignOutcome, check_design_request, compute_design
 from service.pipeline.estimator import scaled_estimator
-from service.pipeline.fingerprint import fingerprint
+from service.pipeline.fingerprint import design_fingerprint
 from service.pipeline.plant import DiscretePlant
+from service.pipeline.problems import pointer
 from service.pipeline.structured_text import BlockText, structured_text
-from service.schemas.common import Caps, pointer
 from service.schemas.design import DesignRequest, LabelledMatrix, WarningReport
 from service.schemas.export import ExportRequest, ExportResponse, LawLimits, LawSignal, LawTables
 from service.solver.estimation.estimator import Estimator
@@ -44,7 +45,6 @@ __all__ = [
     "block_source",
     "check_export_request",
     "compute_export",
-    "design_fingerprint",
     "difference_equations",
     "export_response",
     "law_labels",
@@ -86,12 +86,6 @@ class LawLabels:
     inputs: list[LawSignal]
     outputs: list[LawSignal]
     states: list[str]
-
-
-def design_fingerprint(request: DesignRequest) -> str:
-    """The fingerprint /design gives the design part of ``request`` (a subclass's own fields left out)."""
-    fields = {name: getattr(request, name) for name in DesignRequest.model_fields}
-    return fingerprint(DesignRequest.model_validate(fields))
 
 
 def _law_problems(request: DesignRequest, inputs: DesignInputs) -> list[FieldProblem]:
@@ -145,7 +139,7 @@ def check_export_request(request: ExportRequest, caps: Caps) -> ExportInputs:
 
 
 def _disturbance_spans(plant: DiscretePlant, estimator: Estimator) -> NDArray[np.float64]:
-    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
+    su, sz = plant.input_spans, plant.output_spans
     return {"per_output": sz, "output": sz, "input": su, "none": np.ones(0)}[estimator.disturbance]
 
 
@@ -164,8 +158,8 @@ def compute_export(inputs: ExportInputs) -> ExportOutcome:
     if estimator is None:
         assert inputs.design.estimator is not None
         estimator = scaled_estimator(inputs.design.estimator, plant, outcome.scaled)
-    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
-    sd = plant.spans(plant.disturbances) if plant.b_disturbance is not None else np.ones(0)
+    su, sz = plant.input_spans, plant.output_spans
+    sd = plant.disturbance_spans if plant.b_disturbance is not None else np.ones(0)
     with np.errstate(over="ignore", invalid="ignore"):
         scaled_law = fixed_law(outcome.design, estimator, b_disturbance=outcome.scaled.b_disturbance)
         law = law_in_units(
@@ -180,7 +174,7 @@ def compute_export(inputs: ExportInputs) -> ExportOutcome:
         raise NumericalError(
             "The exported law's matrices are not finite numbers: the model's numbers are too large or too "
             "small for double precision. Rescale the model",
-            pointer="/model",
+            field=("model",),
         )
     return ExportOutcome(design=outcome, estimator=estimator, law=law)
 

@@ -6,7 +6,7 @@ import hashlib
 
 from pydantic import BaseModel
 
-__all__ = ["fingerprint"]
+__all__ = ["design_fingerprint", "fingerprint"]
 
 #: Bumped whenever the meaning of a request changes, so old fingerprints stop matching.
 CONTRACT = "movecast-design-2"
@@ -26,3 +26,15 @@ def fingerprint(request: BaseModel) -> str:
     digest.update(b"\n")
     digest.update(request.model_dump_json().encode("utf-8"))
     return "sha256:" + digest.hexdigest()
+
+
+def design_fingerprint(request: BaseModel) -> str:
+    """The :func:`fingerprint` of the /design request within ``request`` (its design fields).
+
+    A /simulate request carries a design request's fields and a scenario; its design part
+    hashes exactly as the same fields sent to POST /design.
+    """
+    from service.schemas.design import DesignRequest
+
+    fields = {name: getattr(request, name) for name in DesignRequest.model_fields}
+    return fingerprint(DesignRequest.model_validate(fields))

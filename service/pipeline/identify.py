@@ -13,7 +13,8 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import FieldProblem, InvalidRequest, NumericalError
-from service.schemas.common import Caps, pointer
+from service.pipeline.caps import Caps
+from service.pipeline.problems import pointer
 from service.schemas.design import WarningReport
 from service.schemas.identify import (
     CorrelationReport,
@@ -448,7 +449,7 @@ def compute_identify(inputs: IdentifyInputs) -> IdentifyOutcome:
             model = moesp(deviations[:e], inputs.outputs_data[:e], block_rows=inputs.block_rows, order=inputs.order)
         if not all(np.all(np.isfinite(x)) for x in (model.a, model.b, model.c, model.fitted)):
             raise NumericalError(
-                "The subspace fit failed: its matrices are not finite. Check the data", pointer="/data"
+                "The subspace fit failed: its matrices are not finite. Check the data", field=("data",)
             )
         return IdentifyOutcome(fits=(), subspace=model)
     deviations = inputs.columns - inputs.operating_point
@@ -481,7 +482,7 @@ def compute_identify(inputs: IdentifyInputs) -> IdentifyOutcome:
             raise NumericalError(
                 f"The fit of {inputs.outputs[i]} failed ({reason}): the data overflow double precision or the "
                 f"pairs cannot be told apart. Check the units and the magnitudes of the columns",
-                pointer=pointer("data", inputs.outputs[i]),
+                field=("data", inputs.outputs[i]),
             )
         fits.append(fit)
     return IdentifyOutcome(fits=tuple(fits))

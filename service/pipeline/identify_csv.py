@@ -16,7 +16,7 @@ from datetime import datetime
 from pydantic import ValidationError
 
 from service.errors import FieldProblem, InvalidRequest
-from service.schemas.common import pointer
+from service.pipeline.problems import pointer
 from service.schemas.identify import IdentifyRequest
 from service.schemas.identify_csv import IdentifyCsvOptions
 

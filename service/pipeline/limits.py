@@ -179,7 +179,7 @@ def limited_run(limits: LimitInputs, plant: DiscretePlant, design: ControllerDes
     service.errors.NumericalError
         When the QP or the target calculation cannot be set up (pointer ``/limits``).
     """
-    scaled = limits.limits(plant.spans(plant.inputs), plant.spans(plant.outputs))
+    scaled = limits.limits(plant.input_spans, plant.output_spans)
     try:
         if design.blocking is None:
             policy = ConstrainedPolicy.from_design(design, scaled, hard_outputs=limits.hard_outputs)
@@ -197,7 +197,7 @@ def limited_run(limits: LimitInputs, plant: DiscretePlant, design: ControllerDes
         target = ReachableTargetRule.from_loop(loop, scaled)
         exact = GainWhenFreePolicy(policy, loop.horizon_gain)
     except (ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:  # pragma: no cover - defensive
-        raise NumericalError(f"The limits' QP could not be set up: {exc}", pointer="/limits") from exc
+        raise NumericalError(f"The limits' QP could not be set up: {exc}", field=("limits",)) from exc
     return LimitedRun(
         limits=scaled,
         policy=exact,
@@ -237,7 +237,7 @@ def limit_run_reports(
         Steps kept in the response (the run may have been cut where it blew up).
     plant : DiscretePlant
     """
-    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
+    su, sz = plant.input_spans, plant.output_spans
     names = {"input": _names(plant, "input"), "move": _names(plant, "input"), "output": _names(plant, "output")}
     lim = run.limits
     statuses, reachable = run.target.statuses, run.target.reachable
@@ -322,11 +322,11 @@ def limit_run_reports(
     )
 
     warnings: list[WarningReport] = []
-    for status, at in fallbacks.items():
+    for status, steps_at in fallbacks.items():
         warnings.append(
             WarningReport(
                 code="limits_fallback",
-                message=f"At {len(at)} step(s) ({_first_steps(at)}) the move QP ended '{status}': each such step "
+                message=f"At {len(steps_at)} step(s) ({_first_steps(steps_at)}) the move QP ended '{status}': each such step "
                 f"held the last input (du = 0) and the run went on. See limits.steps (fallback true).",
             )
         )
@@ -339,11 +339,11 @@ def limit_run_reports(
                 f"(limits.steps[].target), so it does not wind up against a limit.",
             )
         )
-    for status, at in failed_targets.items():
+    for status, steps_at in failed_targets.items():
         warnings.append(
             WarningReport(
                 code="target_calculation_failed",
-                message=f"At {len(at)} step(s) ({_first_steps(at)}) the reachable steady-state target ended "
+                message=f"At {len(steps_at)} step(s) ({_first_steps(steps_at)}) the reachable steady-state target ended "
                 f"'{status}': the controller aimed at the unconstrained target with its inputs clipped into the limits.",
             )
         )

@@ -17,31 +17,19 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import FieldProblem
+from service.pipeline.caps import Caps, limit_report_entries, qp_step_work
 from service.pipeline.plant import DiscretePlant, Signal
-from service.schemas.common import Caps, pointer
+from service.pipeline.problems import pointer
 from service.schemas.limits import LimitsRequest
 from service.solver.design.closed_loop import Diagnostic
 from service.solver.limits.bounds import Limits, make_limits
 
 __all__ = [
-    "QP_STEP_OVERHEAD",
-    "QP_WORK_FACTOR",
     "LimitInputs",
     "check_initial_input",
     "check_limits",
     "limit_work_problems",
-    "qp_step_work",
 ]
-
-#: The interpreter's and the solver interface's own cost of one QP step and one target
-#: calculation, counted as this many floating-point operations (a rough fit to
-#: ``tests/bench/bench_qp.py``: about 0.2 ms per step of a small QP).
-QP_STEP_OVERHEAD = 200_000
-
-#: Operations per step counted per entry of the QP's matrices ``[H; rows]``: the checks of
-#: the unconstrained optimum plus some tens of active-set iterations (a rough fit to the
-#: same benchmark, warm-started).
-QP_WORK_FACTOR = 12
 
 
 @dataclass(frozen=True)
@@ -161,7 +149,7 @@ def check_limits(request: LimitsRequest | None, plant: DiscretePlant) -> tuple[L
                 f"(null for no limit)",
             )
         )
-    su, sz = plant.spans(inputs), plant.spans(outputs)
+    su, sz = plant.input_spans, plant.output_spans
     for field, spans, signals in (
         ("input_min", su, inputs),
         ("input_max", su, inputs),
@@ -249,20 +237,6 @@ def check_initial_input(
     return (clipped if limits.clamp_initial_input else None), warnings, problems
 
 
-def qp_step_work(
-    *, free_moves: int, inputs: int, limited_inputs: int, penalized_steps: int, output_bounds: int, soft: bool
-) -> int:
-    """Estimated floating-point operations of one QP step (and its target) of a run under limits.
-
-    ``nv = free_moves * inputs (+ output_bounds when soft)`` variables and ``nr = free_moves *
-    limited_inputs + penalized_steps * output_bounds`` rows: :data:`QP_WORK_FACTOR` ``x nv x
-    (nv + nr)`` plus :data:`QP_STEP_OVERHEAD`.
-    """
-    nv = free_moves * inputs + (output_bounds if soft else 0)
-    nr = free_moves * limited_inputs + penalized_steps * output_bounds
-    return QP_STEP_OVERHEAD + QP_WORK_FACTOR * nv * (nv + nr)
-
-
 def limit_work_problems(
     limits: LimitInputs | None, *, steps: int, free_moves: int, penalized_steps: int, caps: Caps
 ) -> list[FieldProblem]:
@@ -291,7 +265,7 @@ def limit_work_problems(
                 f"Simulate at most {most:,} steps, or shorten the horizons",
             )
         ]
-    entries = steps * (8 + 3 * m + 4 * p)  # the worst case of the per-step limit report
+    entries = limit_report_entries(steps=steps, inputs=m, outputs=p)
     if entries > caps.max_response_entries:
         return [
             FieldProblem(

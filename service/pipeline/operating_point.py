@@ -17,8 +17,9 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 from service.errors import FieldProblem, InvalidRequest
+from service.pipeline.caps import Caps
 from service.pipeline.plant import DiscretePlant, plant_arrays
-from service.schemas.common import Caps, pointer
+from service.pipeline.problems import pointer
 from service.schemas.design import DesignRequest, DesignResponse
 from service.schemas.simulate import SimulateRequest, SimulateResponse
 

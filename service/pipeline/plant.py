@@ -7,13 +7,16 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import FieldProblem, InvalidRequest
+from service.pipeline.arrays import check_matrix
+from service.pipeline.caps import Caps
+from service.pipeline.problems import pointer
 from service.pipeline.step_response import step_response_parts
-from service.schemas.common import Caps, check_matrix, pointer
 from service.schemas.model import PlantModel, StateSpaceModel, TransferElementModel, TransferMatrixModel
 from service.schemas.signals import SignalTag
 from service.schemas.step_response import ReductionReport, StepResponseModel
@@ -80,15 +83,15 @@ class DiscretePlant:
 
     @property
     def states(self) -> int:
-        return self.a.shape[0]
+        return int(self.a.shape[0])
 
     @property
     def input_count(self) -> int:
-        return self.b.shape[1]
+        return int(self.b.shape[1])
 
     @property
     def output_count(self) -> int:
-        return self.c.shape[0]
+        return int(self.c.shape[0])
 
     @property
     def scaled(self) -> bool:
@@ -99,6 +102,26 @@ class DiscretePlant:
     def spans(signals: Sequence[Signal]) -> NDArray[np.float64]:
         """Spans of ``signals`` as an array."""
         return np.array([s.span for s in signals], dtype=float)
+
+    @cached_property
+    def input_spans(self) -> NDArray[np.float64]:
+        """Spans of the manipulated variables, shape (m,); computed once, read-only."""
+        return _read_only(self.spans(self.inputs))
+
+    @cached_property
+    def output_spans(self) -> NDArray[np.float64]:
+        """Spans of the controlled outputs, shape (p,); computed once, read-only."""
+        return _read_only(self.spans(self.outputs))
+
+    @cached_property
+    def disturbance_spans(self) -> NDArray[np.float64]:
+        """Spans of the measured disturbances, shape (md,) (empty without any); computed once, read-only."""
+        return _read_only(self.spans(self.disturbances))
+
+
+def _read_only(values: NDArray[np.float64]) -> NDArray[np.float64]:
+    values.setflags(write=False)
+    return values
 
 
 def _signals(
@@ -182,7 +205,7 @@ def _state_space(
         problems += found
         if bd is not None:
             problems += _cap_signals(bd.shape[1], (*where, "b_disturbance"), "disturbances", caps)
-    cm = c
+    cm: NDArray[np.float64] | None = c
     if model.c_measured is not None:
         cm, found = check_matrix(model.c_measured, (*where, "c_measured"), cols=n, what="measured-output matrix")
         problems += found
@@ -197,9 +220,7 @@ def _state_space(
     if problems or cm is None:
         return None, problems
     if model.time_domain == "continuous":
-        sampled = sample_zero_order_hold(
-            a, b, sample_time=model.sample_time, b_disturbance=bd, pointer=pointer(*where, "a")
-        )
+        sampled = sample_zero_order_hold(a, b, sample_time=model.sample_time, b_disturbance=bd, field=(*where, "a"))
         a, b, bd = sampled.a, sampled.b, sampled.b_disturbance
     return {
         "a": a,
@@ -362,8 +383,8 @@ def _transfer_matrix(
         elements,
         sample_time=ts,
         disturbance_elements=disturbance,
-        pointer=pointer(*where, "elements"),
-        disturbance_pointer=pointer(*where, "disturbance_elements"),
+        field=(*where, "elements"),
+        disturbance_field=(*where, "disturbance_elements"),
     )
     for matrix, grid in ((sampled.d, "elements"), (sampled.d_disturbance, "disturbance_elements")):
         if matrix is not None and np.any(matrix):
@@ -449,7 +470,7 @@ def plant_arrays(
         return None, problems
     b, c, bd, cm = parts["b"], parts["c"], parts["b_disturbance"], parts["c_measured"]
     assert isinstance(b, np.ndarray) and isinstance(c, np.ndarray) and isinstance(cm, np.ndarray)
-    md = 0 if bd is None else bd.shape[1]  # type: ignore[union-attr]
+    md = 0 if not isinstance(bd, np.ndarray) else bd.shape[1]
     inputs, found = _signals(model.inputs, b.shape[1], "u", (*where, "inputs"), "inputs")
     problems += found
     outputs, found = _signals(model.outputs, c.shape[0], "z", (*where, "outputs"), "controlled outputs")

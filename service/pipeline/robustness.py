@@ -13,9 +13,10 @@ import math
 import numpy as np
 
 from service.errors import FieldProblem, NumericalError
+from service.pipeline.caps import REFINEMENT_EVALUATIONS, Caps, loop_frequency_work
 from service.pipeline.estimator import EstimatorInputs
 from service.pipeline.plant import DiscretePlant
-from service.schemas.common import Caps, pointer
+from service.pipeline.problems import pointer
 from service.schemas.robustness import (
     LoopRobustnessReport,
     MarginsReport,
@@ -24,60 +25,9 @@ from service.schemas.robustness import (
     SingularValueReport,
 )
 from service.solver.estimation.estimator import Estimator
-from service.solver.evaluation.frequency import ANALYSIS_POINTER, FrequencyAnalysis, LoopSensitivity
+from service.solver.evaluation.frequency import ANALYSIS_FIELD, FrequencyAnalysis, LoopSensitivity
 
-__all__ = ["REFINEMENT_EVALUATIONS", "frequency_problems", "frequency_work", "loop_frequency_work", "robustness_report"]
-
-#: Single-frequency evaluations of the loop the refinements of peaks, bandwidth and
-#: crossovers add to the grid, counted per break point in :func:`frequency_work` (a bound
-#: of what bounded Brent and ``brentq`` take at their tolerances, common practice).
-REFINEMENT_EVALUATIONS = 30
-
-
-def frequency_work(*, points: int, plant_states: int, controller_states: int, inputs: int, measured: int) -> int:
-    """Estimated floating-point operations of the analysis (the quantity capped by ``max_frequency_work``).
-
-    Parameters
-    ----------
-    points : int
-        Grid size.
-    plant_states, controller_states : int
-        ``n`` and ``nc`` (``nc = n + nd + m`` with an estimator, ``m`` for ``full_state``).
-    inputs, measured : int
-        ``m`` and the measured outputs ``py`` (``n`` for ``full_state``).
-
-    Returns
-    -------
-    int
-
-    Notes
-    -----
-    Per break point and frequency (``points`` plus :data:`REFINEMENT_EVALUATIONS`): the plant
-    and the controller each evaluated by a complex LU factorization and solve (about
-    ``3 k^3 + 8 k^2 r`` real operations for ``k`` states and ``r`` right-hand sides), then
-    ``S`` and ``T`` of the loop by a solve, a product and two singular value decompositions
-    (about ``50 l^3`` for a loop of size ``l``: ``m`` at the input, ``py`` at the output).
-    Memory follows the same sizes: ``points x nc^2`` complex numbers at most.
-    """
-    n, nc, m, py = plant_states, controller_states, inputs, measured
-    systems = 3 * (n**3 + nc**3) + 8 * (n * n * m + nc * nc * py)
-    loops = 50 * (m**3 + py**3)
-    return (points + REFINEMENT_EVALUATIONS) * (2 * systems + loops)
-
-
-def loop_frequency_work(plant: DiscretePlant, estimator: EstimatorInputs, *, points: int) -> int:
-    """:func:`frequency_work` of the loop of this plant with this estimator (its disturbance model
-    sets the controller's state count)."""
-    n, m, p = plant.states, plant.input_count, plant.output_count
-    full_state = estimator.kind == "full_state"
-    nd = {"per_output": p, "output": p, "input": m, "none": 0}[estimator.disturbance]
-    return frequency_work(
-        points=points,
-        plant_states=n,
-        controller_states=m if full_state else n + nd + m,
-        inputs=m,
-        measured=n if full_state else p,
-    )
+__all__ = ["frequency_problems", "robustness_report"]
 
 
 def frequency_problems(
@@ -140,7 +90,7 @@ def _values(values: np.ndarray) -> list[float]:
             "The frequency analysis produced numbers that are not finite: a pole of the loop lies on or next to "
             "the unit circle at a frequency of the grid. Change the number of points, or move that pole off "
             "the unit circle",
-            pointer=ANALYSIS_POINTER,
+            field=ANALYSIS_FIELD,
         )
     return [float(v) for v in values]
 

@@ -31,10 +31,11 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import InvalidRequest, NumericalError
+from service.pipeline.caps import Caps
 from service.pipeline.csv_cells import text_cell
 from service.pipeline.design import DesignOutcome, compute_design, design_response, marginal_mode_reports
 from service.pipeline.estimator import scaled_estimator
-from service.pipeline.fingerprint import fingerprint
+from service.pipeline.fingerprint import design_fingerprint, fingerprint
 from service.pipeline.limits import LimitedRun, limit_run_reports, limited_run
 from service.pipeline.operating_point import (
     check_operating_point,
@@ -44,8 +45,7 @@ from service.pipeline.operating_point import (
 )
 from service.pipeline.plant import DiscretePlant
 from service.pipeline.simulate_checks import SimulationInputs, check_simulate_request
-from service.schemas.common import Caps
-from service.schemas.design import ADVISORY, DesignRequest, LabelledMatrix, PoleReport, WarningReport
+from service.schemas.design import ADVISORY, LabelledMatrix, PoleReport, WarningReport
 from service.schemas.simulate import (
     EstimatorReport,
     InputFigures,
@@ -149,8 +149,8 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
     plant = inputs.design.plant
     outcome = compute_design(inputs.design)
     scaled = outcome.scaled
-    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
-    sd = plant.spans(plant.disturbances) if plant.b_disturbance is not None else np.ones(0)
+    su, sz = plant.input_spans, plant.output_spans
+    sd = plant.disturbance_spans if plant.b_disturbance is not None else np.ones(0)
     s_dist = {"per_output": sz, "output": sz, "input": su, "none": np.ones(0)}[inputs.disturbance]
     estimator = outcome.estimator  # already built when the design's frequency analysis was asked
     if estimator is None:
@@ -162,7 +162,7 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
         raise NumericalError(
             "The poles of the whole loop are not finite numbers: the model's numbers are too large or "
             "too small for the loop's eigenvalues in double precision. Rescale the model",
-            pointer="/model",
+            field=("model",),
         )
 
     true_plant, true = None, None
@@ -386,7 +386,6 @@ def simulate_response(
 ) -> SimulateResponse:
     """Turn the computed run into the response model."""
     plant = inputs.design.plant
-    design_request = DesignRequest(**{name: getattr(request, name) for name in DesignRequest.model_fields})
     columns = _columns(plant, outcome.estimator)
     est = outcome.estimator
     gain = None
@@ -440,7 +439,7 @@ def simulate_response(
             stable=whole.stable,
             marginal_modes=marginal_mode_reports(outcome.design.design.loop.marginal, plant),
         ),
-        design=design_response(design_request, inputs.design, outcome.design),
+        design=design_response(inputs.design, outcome.design),
         limits=limits,
         limit_summary=limit_summary,
         warnings=warnings,
@@ -469,9 +468,7 @@ def run_simulation(request: SimulateRequest, caps: Caps) -> SimulateResponse:
     response = simulate_response(deviations, inputs, compute_simulation(inputs))
     simulation_to_absolute(response, point, inputs.design.plant)
     response.fingerprint = fingerprint(request)
-    response.design.fingerprint = fingerprint(
-        DesignRequest(**{name: getattr(request, name) for name in DesignRequest.model_fields})
-    )
+    response.design.fingerprint = design_fingerprint(request)
     return response
 
 

@@ -17,20 +17,16 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import FieldProblem, InvalidRequest
+from service.pipeline.caps import Caps, plant_run_entries, plant_run_work
 from service.pipeline.design import DesignInputs, check_design_request
 from service.pipeline.limits_checks import check_initial_input, limit_work_problems
 from service.pipeline.plant import DiscretePlant, plant_arrays
-from service.schemas.common import Caps, pointer
+from service.pipeline.problems import pointer
 from service.schemas.simulate import SimulateRequest
 from service.solver.design.closed_loop import Diagnostic
 from service.solver.evaluation.simulation import Event
 
-__all__ = ["STEP_OVERHEAD", "SimulationInputs", "check_simulate_request", "simulation_work"]
-
-#: The interpreter's own cost of one simulated step, counted as this many floating-point
-#: operations in :func:`simulation_work` (a step of a small plant takes some tens of
-#: microseconds whatever its products cost).
-STEP_OVERHEAD = 30_000
+__all__ = ["SimulationInputs", "check_simulate_request"]
 
 Where = tuple[str | int, ...]
 
@@ -196,47 +192,6 @@ def _measured_output_problems(plant: DiscretePlant, where: Where) -> list[FieldP
     return problems
 
 
-def simulation_work(
-    *,
-    steps: int,
-    states: int,
-    true_states: int,
-    inputs: int,
-    outputs: int,
-    disturbances: int,
-    measured_disturbances: int,
-    penalized_steps: int,
-) -> int:
-    """Estimated floating-point operations of a run (the quantity capped by ``max_simulation_work``).
-
-    Per step, ``2 x`` the entries of every matrix applied to a vector (see
-    ``service.solver.evaluation.simulation``): the free prediction ``Fx_aug`` (Np*p x na), ``Fu`` and
-    ``Fd``; the move ``Kh`` (m x Np*p); the true plant ``[A B Bd]`` and ``C``; the estimator's
-    ``L``, ``Cy`` and ``[A_aug B_aug]``; plus :data:`STEP_OVERHEAD`.  ``na = n + nd``.
-    """
-    n, nt, m, p, nd, md, np_ = (
-        states,
-        true_states,
-        inputs,
-        outputs,
-        disturbances,
-        measured_disturbances,
-        penalized_steps,
-    )
-    na = n + nd
-    rows = np_ * p
-    per_step = (
-        2 * rows * (na + m + md)  # free prediction
-        + 2 * m * rows  # du = Kh E
-        + 2 * nt * (nt + m + md)
-        + 2 * p * nt  # true plant and its outputs
-        + 2 * na * (na + m + md)
-        + 4 * p * na  # estimator update and prediction
-        + STEP_OVERHEAD
-    )
-    return steps * per_step
-
-
 def _run_size_problems(
     request: SimulateRequest, plant: DiscretePlant, true: DiscretePlant | None, disturbance: str, caps: Caps
 ) -> list[FieldProblem]:
@@ -244,15 +199,9 @@ def _run_size_problems(
     where = pointer("scenario", "steps")
     if sc.steps > caps.max_simulation_steps:
         return [FieldProblem(where, f"{sc.steps:,} steps exceed this service's cap of {caps.max_simulation_steps:,}")]
-    n, m, p = plant.states, plant.input_count, plant.output_count
-    md = 0 if plant.b_disturbance is None else plant.b_disturbance.shape[1]
-    nd = {"per_output": p, "output": p, "input": m, "none": 0}[disturbance]
-    nt = true.states if true is not None else n
     h = request.horizons
     penalized = max(h.prediction - h.first_penalized + 1, 1)
-    # the series returned (outputs, measured, setpoints, inputs, estimates, measured
-    # disturbances) and the true plant's states, which the run keeps too
-    entries = sc.steps * (3 * p + m + n + nd + md + nt)
+    entries = plant_run_entries(plant, true_plant=true, disturbance=disturbance, steps=sc.steps)
     if entries > caps.max_response_entries:
         return [
             FieldProblem(
@@ -262,16 +211,7 @@ def _run_size_problems(
                 f"{caps.max_response_entries // (entries // sc.steps):,} steps of this loop",
             )
         ]
-    work = simulation_work(
-        steps=sc.steps,
-        states=n,
-        true_states=nt,
-        inputs=m,
-        outputs=p,
-        disturbances=nd,
-        measured_disturbances=md,
-        penalized_steps=penalized,
-    )
+    work = plant_run_work(plant, true_plant=true, disturbance=disturbance, steps=sc.steps, penalized_steps=penalized)
     if work > caps.max_simulation_work:
         most = caps.max_simulation_work // max(work // sc.steps, 1)
         return [

@@ -8,7 +8,8 @@ from __future__ import annotations
 import numpy as np
 
 from service.errors import FieldProblem
-from service.schemas.common import Caps, pointer
+from service.pipeline.caps import Caps
+from service.pipeline.problems import pointer
 from service.schemas.step_response import ReductionReport, StepGrid, StepResponseModel
 from service.solver.models.reduction import balanced_truncation
 from service.solver.models.step_response import StepResponse, step_response_model, step_state_count

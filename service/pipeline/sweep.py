@@ -12,13 +12,14 @@ from __future__ import annotations
 from collections.abc import Callable
 from typing import TypeVar
 
-from service.errors import FieldProblem, InvalidRequest, NumericalError
+from service.errors import FieldKey, FieldProblem, InvalidRequest, NumericalError
+from service.pipeline.caps import Caps, loop_frequency_work, plant_run_work
 from service.pipeline.design import DesignInputs, DesignOutcome, check_design_request, compute_design
 from service.pipeline.fingerprint import fingerprint
-from service.pipeline.robustness import loop_frequency_work, robustness_report
+from service.pipeline.problems import pointer, problem_of
+from service.pipeline.robustness import robustness_report
 from service.pipeline.simulate import compute_simulation, performance_report
-from service.pipeline.simulate_checks import SimulationInputs, check_simulate_request, simulation_work
-from service.schemas.common import Caps, pointer
+from service.pipeline.simulate_checks import SimulationInputs, check_simulate_request
 from service.schemas.design import DesignRequest, WarningReport
 from service.schemas.simulate import PerformanceReport, ScenarioRequest, SimulateRequest
 from service.schemas.sweep import HORIZON_PARAMETERS, SweepEntryReport, SweepProblem, SweepRequest, SweepResponse
@@ -34,10 +35,10 @@ def _weight(
     if signal is None:
         return [value] * size
     if weight and isinstance(weight[0], list):
-        matrix = [list(row) for row in weight]  # type: ignore[arg-type]
+        matrix = [[float(x) for x in row] for row in weight if isinstance(row, list)]
         matrix[signal][signal] = value
         return matrix
-    diagonal = list(weight)  # type: ignore[arg-type]
+    diagonal = [float(x) for x in weight if not isinstance(x, list)]
     diagonal[signal] = value
     return diagonal
 
@@ -60,6 +61,22 @@ def substituted_request(request: SweepRequest, value: float) -> DesignRequest:
     weight = getattr(base.weights, field)
     updated = _weight(weight, request.signal, float(value), len(weight))
     return base.model_copy(update={"weights": base.weights.model_copy(update={field: updated})})
+
+
+def _value_problems(request: SweepRequest) -> list[FieldProblem]:
+    """The values (and ``signal``) must fit the parameter: the sweep request's own cross-field rule.
+
+    Named at the request's root, as the schema's validator named it before it moved here.
+    """
+    if request.parameter in HORIZON_PARAMETERS:
+        if request.signal is not None:
+            return [FieldProblem("", "'signal' applies to weights only; leave it out when sweeping a horizon")]
+        bad = [v for v in request.values if v != int(v) or v < 1]
+        if bad:
+            return [FieldProblem("", f"horizon values must be whole numbers >= 1; got {bad[0]:g}")]
+    elif any(v < 0 for v in request.values):
+        return [FieldProblem("", "weight values must not be negative")]
+    return []
 
 
 def _signal_problem(request: SweepRequest) -> list[FieldProblem]:
@@ -87,30 +104,28 @@ def _sweep_pointer(where: str) -> str:
     return where if where == "/scenario" or where.startswith("/scenario/") else "/design" + where
 
 
+def _into_sweep(exc: InvalidRequest | NumericalError, *, unnamed: FieldKey = ()) -> InvalidRequest | NumericalError:
+    """The same failure naming fields of the sweep request (``unnamed`` when it names none)."""
+    if isinstance(exc, InvalidRequest):
+        return InvalidRequest([FieldProblem(_sweep_pointer(p.pointer), p.detail) for p in exc.problems])
+    if not exc.field:
+        return type(exc)(exc.detail, field=unnamed)
+    return type(exc)(exc.detail, field=exc.field if exc.field[0] == "scenario" else ("design", *exc.field))
+
+
 def _in_sweep(check: Callable[[], T]) -> T:
     """Run a check of the base request, its problems pointing into the sweep request."""
     try:
         return check()
-    except InvalidRequest as exc:
-        raise InvalidRequest([FieldProblem(_sweep_pointer(p.pointer), p.detail) for p in exc.problems]) from None
-    except NumericalError as exc:
-        raise type(exc)(exc.detail, pointer=_sweep_pointer(exc.pointer) if exc.pointer else "/design") from None
+    except (InvalidRequest, NumericalError) as exc:
+        raise _into_sweep(exc, unnamed=("design",)) from None
 
 
 def _failed(request: SweepRequest, value: float, mark: str, exc: InvalidRequest | NumericalError) -> SweepEntryReport:
+    problem = problem_of(_into_sweep(exc))
     if isinstance(exc, InvalidRequest):
-        problem = SweepProblem(
-            type="urn:movecast:problem:invalid-request",
-            detail=f"The design with {request.parameter} = {value:g} is invalid.",
-            errors=[{"pointer": _sweep_pointer(p.pointer), "detail": p.detail} for p in exc.problems],
-        )
-    else:
-        problem = SweepProblem(
-            type="urn:movecast:problem:numerical-problem",
-            detail=exc.detail,
-            errors=[{"pointer": _sweep_pointer(exc.pointer), "detail": exc.detail}] if exc.pointer else [],
-        )
-    return SweepEntryReport(value=value, status="failed", fingerprint=mark, problem=problem)
+        problem = problem.with_detail(f"The design with {request.parameter} = {value:g} is invalid.")
+    return SweepEntryReport(value=value, status="failed", fingerprint=mark, problem=SweepProblem(**problem.brief()))
 
 
 def _entry(request: SweepRequest, value: float, caps: Caps) -> SweepEntryReport:
@@ -166,18 +181,13 @@ def _frequency_work_problems(request: SweepRequest, base: DesignInputs, caps: Ca
 
 
 def _run_work(request: SweepRequest, base: SimulationInputs, value: float) -> int:
-    """The estimated work of the run with ``value`` (``service.pipeline.simulate_checks.simulation_work``)."""
-    plant, h = base.design.plant, substituted_request(request, value).horizons
-    md = 0 if plant.b_disturbance is None else plant.b_disturbance.shape[1]
-    m, p = plant.input_count, plant.output_count
-    return simulation_work(
+    """The estimated work of the run with ``value`` (``service.pipeline.caps.plant_run_work``)."""
+    h = substituted_request(request, value).horizons
+    return plant_run_work(
+        base.design.plant,
+        true_plant=base.true_plant,
+        disturbance=base.disturbance,
         steps=base.steps,
-        states=plant.states,
-        true_states=plant.states if base.true_plant is None else base.true_plant.states,
-        inputs=m,
-        outputs=p,
-        disturbances={"per_output": p, "output": p, "input": m, "none": 0}[base.disturbance],
-        measured_disturbances=md,
         penalized_steps=max(h.prediction - h.first_penalized + 1, 1),
     )
 
@@ -220,6 +230,9 @@ def run_sweep(request: SweepRequest, caps: Caps) -> SweepResponse:
     NumericalError
         When the base model cannot be sampled.
     """
+    found = _value_problems(request)
+    if found:
+        raise InvalidRequest(found)
     scenario = request.scenario
     base_run: SimulationInputs | None = None
     if scenario is None:

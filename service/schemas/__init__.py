@@ -1,6 +1,5 @@
 """Request and response models (pydantic v2) of the public contract, and nothing else."""
 
-from service.schemas.common import Caps
 from service.schemas.design import DesignRequest, DesignResponse
 
-__all__ = ["Caps", "DesignRequest", "DesignResponse"]
+__all__ = ["DesignRequest", "DesignResponse"]

@@ -82,9 +82,9 @@ class BatchItemResult(ResponseModel):
     problem: ProblemReport | None
 
     @classmethod
-    def failed(cls, item_id: str, problem: dict[str, Any], fingerprint: str | None = None) -> BatchItemResult:
-        """An item answered by a problem body."""
-        return cls(id=item_id, status="failed", fingerprint=fingerprint, result=None, problem=ProblemReport(**problem))
+    def failed(cls, item_id: str, problem: ProblemReport, fingerprint: str | None = None) -> BatchItemResult:
+        """An item answered by a problem."""
+        return cls(id=item_id, status="failed", fingerprint=fingerprint, result=None, problem=problem)
 
 
 class BatchResponse(ResponseModel):

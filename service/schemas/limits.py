@@ -15,9 +15,9 @@ from typing import Annotated
 from pydantic import Field
 
 from service.schemas.common import FiniteFloat, RequestModel, ResponseModel
-from service.solver.limits.bounds import DEFAULT_OUTPUT_SOFTNESS
 
 __all__ = [
+    "DEFAULT_OUTPUT_SOFTNESS",
     "MAX_OUTPUT_SOFTNESS",
     "ActiveLimitReport",
     "LimitCheckReport",
@@ -28,6 +28,10 @@ __all__ = [
     "LimitSummary",
     "LimitsRequest",
 ]
+
+#: Default ``output_softness`` of the contract: the solver's own default
+#: (``service.solver.limits.bounds.DEFAULT_OUTPUT_SOFTNESS``; a test keeps the two equal).
+DEFAULT_OUTPUT_SOFTNESS = 1.0e5
 
 #: Largest accepted ``output_softness``: beyond it the penalty only worsens the QP's numbers.
 MAX_OUTPUT_SOFTNESS = 1e12

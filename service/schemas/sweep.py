@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from typing import Annotated, Literal
 
-from pydantic import Field, model_validator
+from pydantic import Field
 
 from service.schemas.common import FiniteFloat, RequestModel, ResponseModel
 from service.schemas.design import ADVISORY, DesignRequest, WarningReport
@@ -43,18 +43,6 @@ class SweepRequest(RequestModel):
         "(the base design's estimator closes the loop); the runs together stay within the service's "
         "simulation work cap.",
     )
-
-    @model_validator(mode="after")
-    def _values_fit_the_parameter(self) -> SweepRequest:
-        if self.parameter in HORIZON_PARAMETERS:
-            if self.signal is not None:
-                raise ValueError("'signal' applies to weights only; leave it out when sweeping a horizon")
-            bad = [v for v in self.values if v != int(v) or v < 1]
-            if bad:
-                raise ValueError(f"horizon values must be whole numbers >= 1; got {bad[0]:g}")
-        elif any(v < 0 for v in self.values):
-            raise ValueError("weight values must not be negative")
-        return self
 
 
 class SweepProblem(ResponseModel):

@@ -42,3 +42,15 @@ def assert_problem(response: Any, status: int, kind: str) -> dict[str, Any]:
     assert "Traceback" not in response.text and ".py" not in response.text
     assert "X-Request-ID" in response.headers
     return body
+
+
+def assert_field_problem(response: Any, status: int, pointer: str) -> dict[str, Any]:
+    """The response is a problem of that status naming the field at ``pointer``, each field with a sentence."""
+    assert response.status_code == status, response.text
+    assert response.headers["content-type"].startswith("application/problem+json")
+    body = response.json()
+    assert body["status"] == status and body["type"].startswith("urn:movecast:problem:")
+    assert pointer in [e["pointer"] for e in body["errors"]], body
+    assert all(e["detail"] for e in body["errors"])
+    assert "Traceback" not in response.text and "/site-packages/" not in response.text
+    return body

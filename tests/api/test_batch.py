@@ -8,7 +8,7 @@ import pytest
 
 from service.pipeline.examples import load_example
 from tests.api.conftest import assert_problem
-from tests.api.test_limits import slow_request
+from tests.api.test_request_caps import slow_request
 
 
 def _item(item_id, request, **extra):

@@ -9,8 +9,10 @@ refused, valid data accepted, and the rest).
 from __future__ import annotations
 
 import copy
+import importlib
 import importlib.util
 import json
+import pkgutil
 import re
 import sys
 import tempfile
@@ -20,12 +22,16 @@ import hypothesis
 import pytest
 import schemathesis
 from hypothesis import HealthCheck, settings
+from pydantic import BaseModel, ValidationError
 from schemathesis.config import SchemathesisConfig
 
+import service.schemas
 from service.api import Settings, create_app
 from service.pipeline.examples import load_example
+from service.pipeline.identify_csv import identify_request_from_csv
 from service.schemas.batch import BatchRequest
 from service.schemas.design import DesignRequest
+from service.schemas.identify_csv import IdentifyCsvOptions
 
 ROOT = Path(__file__).resolve().parents[2]
 COMMITTED = ROOT / "openapi" / "openapi.json"
@@ -49,7 +55,18 @@ def test_the_committed_document_is_the_served_schema():
     )
 
 
+def _request_model(schema: dict) -> type[BaseModel]:
+    """The request model a body schema refers to, found by name among the contract's models."""
+    name = schema["$ref"].rsplit("/", 1)[-1]
+    for module in pkgutil.iter_modules(service.schemas.__path__):
+        found = getattr(importlib.import_module(f"service.schemas.{module.name}"), name, None)
+        if isinstance(found, type) and issubclass(found, BaseModel):
+            return found
+    raise AssertionError(f"no request model named {name} in service.schemas")
+
+
 def test_every_request_body_has_an_example_that_is_valid():
+    checked = set()
     for path, operations in served()["paths"].items():
         for method, operation in operations.items():
             if "requestBody" not in operation:
@@ -57,10 +74,23 @@ def test_every_request_body_has_an_example_that_is_valid():
             for media, content in operation["requestBody"]["content"].items():
                 examples = content.get("examples") or {}
                 assert examples, f"{method.upper()} {path} ({media}) has no example"
-                for example in examples.values():
-                    model = BatchRequest if path == "/design/batch" else None
-                    if model is not None:
+                if media == "text/csv":
+                    # a plant-test CSV: it must read as an /identify request, with the tags of its header
+                    for example in examples.values():
+                        tags = example["value"].splitlines()[0].split(",")[1:]
+                        options = IdentifyCsvOptions(sample_time=1.0, inputs=tags[0], outputs=",".join(tags[1:]))
+                        request = identify_request_from_csv(example["value"].encode("utf-8"), options)
+                        assert set(request.data) == set(tags), (path, sorted(request.data))
+                    checked.add(path)
+                    continue
+                model = _request_model(content["schema"])
+                for name, example in examples.items():
+                    try:
                         model.model_validate(example["value"])
+                    except ValidationError as exc:
+                        pytest.fail(f"{method.upper()} {path}: example {name!r} is not a valid {model.__name__}: {exc}")
+                checked.add(path)
+    assert {"/design", "/design/batch", "/design/sweep", "/simulate", "/identify", "/identify/csv"} <= checked
 
 
 def test_the_example_files_are_valid_requests():

@@ -2,24 +2,16 @@
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 
+from service.pipeline.caps import Caps
 from service.pipeline.design import check_design_request
-from service.schemas.common import Caps
 from service.schemas.design import DesignRequest
 from service.solver.design.controller import design_controller
-
-
-def assert_problem(response, status, pointer):
-    assert response.status_code == status, response.text
-    assert response.headers["content-type"].startswith("application/problem+json")
-    body = response.json()
-    assert body["status"] == status and body["type"].startswith("urn:movecast:problem:")
-    assert pointer in [e["pointer"] for e in body["errors"]], body
-    assert all(e["detail"] for e in body["errors"])
-    assert "Traceback" not in response.text and "/site-packages/" not in response.text
-    return body
+from tests.api.conftest import assert_field_problem
 
 
 def test_design_answers_the_contract(client, example):
@@ -89,13 +81,13 @@ def test_readiness_is_false_outside_the_lifespan(example):
 )
 def test_bad_input_is_a_422_naming_the_field(client, example, edit, pointer):
     edit(example)
-    assert_problem(client.post("/design", json=example), 422, pointer)
+    assert_field_problem(client.post("/design", json=example), 422, pointer)
 
 
 def test_singular_hessian_is_a_422_with_the_explanation(client, example):
     example["model"]["c"] = [[1.0, 0.0, 0.0, 0.0]]
     example["weights"] = {"output": [1.0], "move": [0.0, 0.0]}
-    body = assert_problem(client.post("/design", json=example), 422, "/weights/move")
+    body = assert_field_problem(client.post("/design", json=example), 422, "/weights/move")
     assert body["type"] == "urn:movecast:problem:numerical-problem"
     assert "no move penalty" in body["detail"]
 
@@ -113,12 +105,9 @@ def test_a_body_that_is_not_a_request_object_is_a_422(client, body):
 
 
 def test_nan_in_json_is_refused(client, example):
-    text = client.app.openapi  # noqa: F841 (the schema builds)
-    import json
-
     raw = json.dumps(example).replace("0.92", "NaN", 1)
     r = client.post("/design", content=raw.encode(), headers={"content-type": "application/json"})
-    assert_problem(r, 422, "/model/a/0/0")
+    assert_field_problem(r, 422, "/model/a/0/0")
 
 
 def test_unknown_route_and_method_are_problem_details(client):

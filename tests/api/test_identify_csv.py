@@ -9,10 +9,10 @@ import pytest
 
 from service.cli import main
 from service.errors import InvalidRequest
+from service.pipeline.caps import Caps
 from service.pipeline.examples import example_path, load_example
 from service.pipeline.identify import check_identify
 from service.pipeline.identify_csv import identify_request_from_csv
-from service.schemas.common import Caps
 from service.schemas.identify import IdentifyRequest
 from service.schemas.identify_csv import IdentifyCsvOptions
 from tests.api.conftest import assert_problem

@@ -20,11 +20,11 @@ import pytest
 import yaml
 
 from service.api.compute import SolverPool
-from service.errors import InvalidRequest
+from service.errors import ComputeOutOfMemory, InvalidRequest
+from service.pipeline.caps import Caps
 from service.pipeline.design import run_design
 from service.pipeline.estimates import design_memory_bytes
 from service.pipeline.examples import load_example
-from service.schemas.common import Caps
 from service.schemas.design import DesignRequest
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -108,7 +108,7 @@ def test_a_memory_error_in_the_solver_is_a_422_problem(make_client, example, mon
     client = make_client(solver_processes=1)
 
     def out_of_memory(*args, **kwargs):
-        raise compute.SolverOutOfMemory("the solver ran out of memory")
+        raise ComputeOutOfMemory("the solver ran out of memory")
 
     monkeypatch.setattr(compute.SolverPool, "run", out_of_memory)
     body = assert_problem(client.post("/design", json=example), 422, "out-of-memory")

@@ -18,7 +18,8 @@ import time
 import httpx
 import pytest
 
-from service.api.compute import SolverCrashed, SolverDied, SolverOutOfMemory, SolverPool
+from service.api.compute import SolverPool
+from service.errors import ComputeCrashed, ComputeDied, ComputeOutOfMemory
 from service.pipeline.examples import load_example
 from tests.api.conftest import assert_problem
 from tests.api.live import live_server, metric
@@ -59,7 +60,7 @@ def test_a_solver_killed_mid_call_is_solver_died_and_the_next_call_works():
         (solver,) = list(pool._idle.queue)
         killer = threading.Timer(0.5, os.kill, (solver.process.pid, signal.SIGKILL))
         killer.start()
-        with pytest.raises(SolverDied):
+        with pytest.raises(ComputeDied):
             pool.run(time.sleep, (20,), deadline=time.monotonic() + 30, seconds=30)
         killer.join()
         assert pool.run(abs, (-5,), deadline=time.monotonic() + 30, seconds=30)[0] == 5
@@ -70,9 +71,9 @@ def test_a_solver_killed_mid_call_is_solver_died_and_the_next_call_works():
 def test_memory_errors_and_unexpected_errors_come_back_as_their_own_kinds(caplog):
     pool = SolverPool(processes=1)
     try:
-        with pytest.raises(SolverOutOfMemory):
+        with pytest.raises(ComputeOutOfMemory):
             pool.run(_explode, ("memory",), deadline=time.monotonic() + 30, seconds=30)
-        with caplog.at_level("ERROR", logger="movecast.compute"), pytest.raises(SolverCrashed):
+        with caplog.at_level("ERROR", logger="movecast.compute"), pytest.raises(ComputeCrashed):
             pool.run(_explode, ("assert",), deadline=time.monotonic() + 30, seconds=30)
         logged = [r for r in caplog.records if r.name == "movecast.compute"]
         assert logged and "Traceback" in logged[-1].traceback and "AssertionError" in logged[-1].traceback

@@ -6,19 +6,9 @@ import copy
 
 import numpy as np
 import pytest
-import scipy.linalg
 
 from service.pipeline.examples import load_example
-
-
-def lqr_gain(a, b, c, q, r):
-    """Infinite-horizon LQR gain on [x; u(k-1)] (reference: scipy.linalg.solve_discrete_are)."""
-    n, m = b.shape
-    ai = np.block([[a, b], [np.zeros((m, n)), np.eye(m)]])
-    bi = np.vstack([b, np.eye(m)])
-    ci = np.hstack([c, np.zeros((c.shape[0], m))])
-    p = scipy.linalg.solve_discrete_are(ai, bi, ci.T @ q @ ci, r)
-    return np.linalg.solve(r + bi.T @ p @ bi, bi.T @ p @ ai)
+from tests.references import incremental_lqr_gain
 
 
 @pytest.mark.parametrize("horizon", [1, 3])
@@ -29,7 +19,7 @@ def test_riccati_terminal_weight_gives_the_lqr_gain_for_a_short_horizon(client, 
     example["weights"]["terminal"] = "riccati"
     body = client.post("/design", json=example).json()
     a, b, c = (np.array(example["model"][k]) for k in "abc")
-    k = lqr_gain(a, b, c, np.diag(example["weights"]["output"]), np.diag(example["weights"]["move"]))
+    k = incremental_lqr_gain(a, b, c, np.diag(example["weights"]["output"]), np.diag(example["weights"]["move"]))
     np.testing.assert_allclose(np.hstack([body["gain"]["state"], body["gain"]["previous_input"]]), k, atol=1e-9)
     assert body["closed_loop"]["stable"]
 
@@ -196,7 +186,7 @@ def test_a_horizon_sweep_with_a_scenario_fails_only_the_invalid_value(client, ex
 
 
 def test_sweep_runs_together_respect_the_simulation_work_cap(make_client):
-    from service.pipeline.simulate_checks import simulation_work
+    from service.pipeline.caps import simulation_work
 
     # The example: 4 states, 2 inputs, 2 outputs, output disturbances, Hp = 30 (Hw = 1).
     one = simulation_work(
@@ -221,7 +211,7 @@ def test_sweep_runs_together_respect_the_simulation_work_cap(make_client):
 
 
 def test_sweep_analyses_together_respect_the_frequency_work_cap(make_client):
-    from service.pipeline.robustness import frequency_work
+    from service.pipeline.caps import frequency_work
 
     # Controller states with the output-disturbance estimator: n + p + m = 8.
     one = frequency_work(points=60, plant_states=4, controller_states=8, inputs=2, measured=2)

@@ -7,11 +7,11 @@ import copy
 import pytest
 from pydantic import ValidationError
 
-from service.api.problems import validation_problems
 from service.errors import InvalidRequest
+from service.pipeline.caps import Caps
 from service.pipeline.design import check_design_request
 from service.pipeline.fingerprint import fingerprint
-from service.schemas.common import Caps
+from service.pipeline.problems import validation_problems
 from service.schemas.design import DesignRequest
 from service.schemas.model import MODEL_KINDS
 

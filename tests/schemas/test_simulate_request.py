@@ -8,9 +8,9 @@ import dataclasses
 import pytest
 
 from service.errors import InvalidRequest
+from service.pipeline.caps import Caps, simulation_work
 from service.pipeline.examples import load_example
-from service.pipeline.simulate_checks import check_simulate_request, simulation_work
-from service.schemas.common import Caps
+from service.pipeline.simulate_checks import check_simulate_request
 from service.schemas.design import DesignRequest
 from service.schemas.simulate import SimulateRequest
 

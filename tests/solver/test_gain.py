@@ -10,20 +10,7 @@ from service.errors import HessianNotPositiveDefinite
 from service.solver.design.controller import design_controller
 from service.solver.design.gain import optimal_moves
 from tests.conftest import random_plant
-
-
-def incremental_lqr_gain(a, b, c, q, r):
-    """Infinite-horizon LQR gain of the incremental system on xi = [x; u(k-1)].
-
-    xi(k+1) = [[A, B], [0, I]] xi(k) + [B; I] du(k), stage cost |C x|^2_Q + |du|^2_R.
-    Reference: scipy.linalg.solve_discrete_are (the discrete algebraic Riccati equation).
-    """
-    n, m = b.shape
-    ai = np.block([[a, b], [np.zeros((m, n)), np.eye(m)]])
-    bi = np.vstack([b, np.eye(m)])
-    ci = np.hstack([c, np.zeros((c.shape[0], m))])
-    p = scipy.linalg.solve_discrete_are(ai, bi, ci.T @ q @ ci, r)
-    return np.linalg.solve(r + bi.T @ p @ bi, bi.T @ p @ ai)
+from tests.references import incremental_lqr_gain
 
 
 def test_long_horizon_gain_equals_infinite_horizon_lqr(rng):
@@ -122,7 +109,7 @@ def test_zero_move_weight_with_more_inputs_than_outputs_is_rejected(rng):
     assert "u1, u2, u3" in message and "no move penalty" in message
     assert "cannot see" in message and "full column rank" in message
     assert "3 inputs and only 2 controlled output" in message
-    assert caught.value.pointer == "/weights/move"
+    assert caught.value.field == ("weights", "move")
 
 
 def test_zero_move_weight_on_one_blind_input_names_that_input(rng):

@@ -58,14 +58,14 @@ def test_partial_interval_integrals_compose_to_one_sample() -> None:
     np.testing.assert_allclose(phi2 @ gam1 + gam2, gam, rtol=1e-12)
 
 
-def test_overflowing_exponential_is_a_numerical_error_with_the_pointer() -> None:
+def test_overflowing_exponential_is_a_numerical_error_with_the_field() -> None:
     with pytest.raises(NumericalError) as caught:
-        sample_zero_order_hold([[1000.0]], [[1.0]], sample_time=1.0, pointer="/plant/a")
-    assert caught.value.pointer == "/plant/a"
+        sample_zero_order_hold([[1000.0]], [[1.0]], sample_time=1.0, field=("plant", "a"))
+    assert caught.value.field == ("plant", "a")
     assert "not finite" in caught.value.detail
 
 
-def test_default_pointer_is_the_model() -> None:
+def test_default_field_is_the_model() -> None:
     with pytest.raises(NumericalError) as caught:
         sample_zero_order_hold([[2.0, 0.0], [0.0, 900.0]], [[1.0], [1.0]], sample_time=1.0)
-    assert caught.value.pointer == "/model"
+    assert caught.value.field == ("model",)

@@ -11,8 +11,8 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg
 
+from service.pipeline.caps import Caps
 from service.pipeline.simulate import check_simulate_request, compute_simulation
-from service.schemas.common import Caps
 from service.schemas.simulate import SimulateRequest
 from service.solver.estimation.loop import separation_check
 

@@ -10,20 +10,7 @@ from service.errors import NumericalError
 from service.solver.design.controller import design_controller
 from service.solver.design.terminal import incremental_system, terminal_prediction
 from tests.conftest import random_plant
-
-
-def lqr_on_increments(a, b, c, q, r):
-    """Infinite-horizon LQR gain on xi = [x; u(k-1)] with the move as input.
-
-    Reference: scipy.linalg.solve_discrete_are for the Riccati solution, then the textbook
-    gain K = (R + B' P B)^-1 B' P A of discrete linear-quadratic regulation.
-    """
-    n, m = b.shape
-    ai = np.block([[a, b], [np.zeros((m, n)), np.eye(m)]])
-    bi = np.vstack([b, np.eye(m)])
-    ci = np.hstack([c, np.zeros((c.shape[0], m))])
-    p = scipy.linalg.solve_discrete_are(ai, bi, ci.T @ q @ ci, r)
-    return np.linalg.solve(r + bi.T @ p @ bi, bi.T @ p @ ai), ai, bi
+from tests.references import incremental_lqr
 
 
 @pytest.mark.parametrize("horizon", [1, 2, 5])
@@ -33,7 +20,7 @@ def test_terminal_weight_gives_the_lqr_gain_for_any_horizon(rng, horizon):
     # Reference gain from scipy.linalg.solve_discrete_are.  The plant is open-loop unstable.
     a, b, c = random_plant(rng, 4, 2, 2, radius=1.1)
     q, r = np.diag([1.0, 3.0]), np.diag([0.2, 0.05])
-    lqr, ai, bi = lqr_on_increments(a, b, c, q, r)
+    lqr, ai, bi = incremental_lqr(a, b, c, q, r)
     d = design_controller(
         a,
         b,
@@ -57,7 +44,7 @@ def test_terminal_weight_with_full_weight_matrices(rng):
     a, b, c = random_plant(rng, 3, 2, 2, radius=0.97)
     q = np.array([[2.0, 0.5], [0.5, 1.0]])
     r = np.array([[0.3, 0.1], [0.1, 0.2]])
-    lqr, _, _ = lqr_on_increments(a, b, c, q, r)
+    lqr, _, _ = incremental_lqr(a, b, c, q, r)
     d = design_controller(a, b, c, output_weight=q, move_weight=r, prediction=3, control=3, terminal="riccati")
     np.testing.assert_allclose(np.hstack([d.gain.state, d.gain.previous_input]), lqr, atol=1e-10)
 
@@ -127,7 +114,7 @@ def test_more_inputs_than_outputs_has_no_stabilizing_terminal_weight():
             control=3,
             terminal="riccati",
         )
-    assert info.value.pointer == "/weights/terminal"
+    assert info.value.field == ("weights", "terminal")
     assert "z = 1" in info.value.detail
 
 
@@ -144,7 +131,7 @@ def test_uncontrollable_integrator_has_no_stabilizing_terminal_weight():
             control=3,
             terminal="riccati",
         )
-    assert info.value.pointer == "/weights/terminal"
+    assert info.value.field == ("weights", "terminal")
     assert "cannot be moved" in info.value.detail
 
 

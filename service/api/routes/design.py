@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Any
 
 from fastapi import APIRouter, Body
 from fastapi.responses import Response
@@ -20,7 +20,7 @@ __all__ = ["router"]
 
 router = APIRouter(tags=["design"], route_class=CheckedBodyRoute)
 
-PROBLEMS = {
+PROBLEMS: dict[int | str, dict[str, Any]] = {
     400: {"description": "The body is not valid JSON.", "content": {PROBLEM_JSON: {}}},
     422: {
         "description": "A field is invalid, or the design problem cannot be solved; "

@@ -24,10 +24,10 @@ from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
-import scipy.linalg
 from numpy.typing import NDArray
 
 from service.solver.design.marginal import MARGINAL_TOLERANCE, MarginalMode, marginal_mode_warnings
+from service.solver.numerics import eigenvalues_by_modulus
 
 __all__ = [
     "ILL_CONDITIONED",
@@ -121,8 +121,7 @@ def closed_loop(
     Parameters are as for :func:`closed_loop_matrix`.
     """
     matrix = closed_loop_matrix(a, b, state_gain, input_gain)
-    poles = scipy.linalg.eigvals(matrix, check_finite=False)
-    poles = poles[np.argsort(-np.abs(poles), kind="stable")]
+    poles = eigenvalues_by_modulus(matrix)
     radius = float(np.abs(poles).max())
     return ClosedLoop(matrix=matrix, poles=poles, spectral_radius=radius, stable=radius < 1.0 - MARGINAL_TOLERANCE)
 

@@ -95,4 +95,5 @@ def feedforward_gain(horizon_gain: ArrayLike, free_disturbance: ArrayLike) -> ND
     kh = np.asarray(horizon_gain, dtype=float)
     fd = np.asarray(free_disturbance, dtype=float)
     assert kh.shape[1] == fd.shape[0], (kh.shape, fd.shape)
-    return kh @ fd
+    result: NDArray[np.float64] = kh @ fd
+    return result

@@ -69,7 +69,8 @@ class FactoredHessian:
 
     def solve(self, rhs: NDArray[np.float64]) -> NDArray[np.float64]:
         """Return ``H^-1 rhs`` by two triangular solves."""
-        return scipy.linalg.cho_solve(self.factor, rhs, check_finite=False)
+        result: NDArray[np.float64] = scipy.linalg.cho_solve(self.factor, rhs, check_finite=False)
+        return result
 
 
 @dataclass(frozen=True)
@@ -114,7 +115,8 @@ def weighted_moves(prediction: Prediction, output_root: NDArray[np.float64]) -> 
         scale = np.tile(np.diag(output_root), g.shape[0] // p)
         return g * scale[:, None]
     blocks = g.reshape(-1, p, g.shape[1])
-    return np.einsum("ij,kjl->kil", output_root, blocks).reshape(g.shape)
+    result: NDArray[np.float64] = np.einsum("ij,kjl->kil", output_root, blocks).reshape(g.shape)
+    return result
 
 
 def hessian_matrix(
@@ -187,7 +189,10 @@ def toeplitz_hessian(
         """[V_first, V_(first-1), ..., V_(first-Hu+1)] as a p x Hu*m matrix (V_k = 0 for k <= 0)."""
         index = first - np.arange(hu)
         stacked = np.where((index > 0)[:, None, None], steps[np.clip(index, 0, hp)], 0.0)
-        return np.einsum("ij,kjl->ikl", output_root, stacked).reshape(output_root.shape[0], hu * m)
+        result: NDArray[np.float64] = np.einsum("ij,kjl->ikl", output_root, stacked).reshape(
+            output_root.shape[0], hu * m
+        )
+        return result
 
     early, late = blocks(hw - 1), blocks(hp)
     step = early.T @ early - late.T @ late  # increments H0(j+1, k+1) - H0(j, k)
@@ -289,7 +294,7 @@ def factor_hessian(
                 f"The Hessian G'QG + R is not numerically positive definite (eigenvalues from "
                 f"{eigenvalues[0]:.3g} to {eigenvalues[-1]:.3g}). Raise the move weights."
             )
-        raise HessianNotPositiveDefinite(detail, pointer="/weights/move")
+        raise HessianNotPositiveDefinite(detail, field=("weights", "move"))
     return FactoredHessian(
         matrix=hessian,
         factor=factor,

@@ -48,7 +48,7 @@ so ``Kx = Kh Fx + Kt Phi_x``, ``Ku = Kh Fu + Kt Phi_u`` and ``Kr = Kh (1 (x) I) 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Literal
+from typing import Any, Literal
 
 import numpy as np
 import scipy.linalg
@@ -58,9 +58,10 @@ from service.errors import NumericalError
 from service.solver.design.gain import FactoredHessian, PredictiveGain
 from service.solver.design.weights import weight_root
 from service.solver.estimation.target import target_problem
+from service.solver.numerics import format_complex, pbh_matrix, singular_value_rank
 
 __all__ = [
-    "TERMINAL_POINTER",
+    "TERMINAL_FIELD",
     "TerminalKind",
     "TerminalWeight",
     "incremental_system",
@@ -74,8 +75,8 @@ __all__ = [
 
 TerminalKind = Literal["none", "riccati"]
 
-#: The request field a Riccati failure points at.
-TERMINAL_POINTER = "/weights/terminal"
+#: The key of the request field a Riccati failure names.
+TERMINAL_FIELD = ("weights", "terminal")
 #: A closed loop ``A_i - B_i K`` with a pole this close to the unit circle (or outside) is not
 #: the stabilizing solution (common practice for a marginal eigenvalue in double precision).
 _STABILIZING_MARGIN = 1e-8
@@ -145,26 +146,24 @@ def incremental_system(
     return a_i, b_i, c_i
 
 
-def _rank_drop(matrix: NDArray[np.complex128]) -> bool:
+def _rank_drop(matrix: NDArray[Any]) -> bool:
     """Whether a tall or wide PBH matrix has lost rank (relative tolerance 1e-9, common practice)."""
     s = np.linalg.svd(matrix, compute_uv=False)
-    return bool(s.size == 0 or s[-1] <= 1e-9 * max(float(s[0]), np.finfo(float).tiny))
+    return s.size == 0 or singular_value_rank(s, 1e-9) < s.size
 
 
 def _why_no_stabilizing_solution(a_i: NDArray[np.float64], b_i: NDArray[np.float64], seen: NDArray[np.float64]) -> str:
     """Name the mode that spoils the Riccati equation (PBH tests on the unit circle and outside)."""
-    size = a_i.shape[0]
     for z in scipy.linalg.eigvals(a_i, check_finite=False):
         if abs(z) < 1.0 - 1e-9:
             continue
-        shifted = z * np.eye(size) - a_i
-        where = f"z = {z.real:.6g}" if abs(z.imag) < 1e-12 else f"z = {z.real:.6g}{z.imag:+.6g}j"
-        if _rank_drop(np.hstack([shifted, b_i.astype(complex)])):
+        where = f"z = {format_complex(z)}"
+        if _rank_drop(pbh_matrix(a_i, z, inputs=b_i)):
             return (
                 f"the mode of [x; u] at {where} cannot be moved by the inputs (the incremental "
                 f"system is not stabilizable)"
             )
-        if abs(abs(z) - 1.0) <= 1e-9 and _rank_drop(np.vstack([shifted, seen.astype(complex)])):
+        if abs(abs(z) - 1.0) <= 1e-9 and _rank_drop(pbh_matrix(a_i, z, outputs=seen)):
             return (
                 f"the mode of [x; u] at {where}, on the unit circle, changes no weighted "
                 f"controlled output (with more manipulated variables than weighted controlled "
@@ -239,7 +238,7 @@ def riccati_terminal_weight(
         f"system has no stabilizing solution because {reason} ({failure or 'non-finite result'}). "
         f'Use terminal "none", weight an output that sees this mode, or give every move a '
         f"positive move weight.",
-        pointer=TERMINAL_POINTER,
+        field=TERMINAL_FIELD,
     )
 
 

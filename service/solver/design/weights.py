@@ -35,7 +35,8 @@ def weight_matrix(weight: ArrayLike, size: int) -> NDArray[np.float64]:
         assert w.shape == (size,), f"diagonal weight has shape {w.shape}, expected ({size},)"
         return np.diag(w)
     assert w.shape == (size, size), f"weight has shape {w.shape}, expected ({size}, {size})"
-    return 0.5 * (w + w.T)
+    result: NDArray[np.float64] = 0.5 * (w + w.T)
+    return result
 
 
 def weight_root(weight: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -60,4 +61,5 @@ def weight_root(weight: NDArray[np.float64]) -> NDArray[np.float64]:
     if np.count_nonzero(weight - np.diag(np.diag(weight))) == 0:
         return np.diag(np.sqrt(np.clip(np.diag(weight), 0.0, None)))
     eigenvalues, vectors = np.linalg.eigh(weight)
-    return np.sqrt(np.clip(eigenvalues, 0.0, None))[:, None] * vectors.T
+    result: NDArray[np.float64] = np.sqrt(np.clip(eigenvalues, 0.0, None))[:, None] * vectors.T
+    return result

@@ -70,7 +70,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Literal
+from typing import Any, Literal
 
 import numpy as np
 import scipy.linalg
@@ -78,6 +78,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from service.errors import NumericalError
 from service.solver.design.weights import weight_matrix
+from service.solver.numerics import eigenvalues_by_modulus, format_complex, pbh_matrix, singular_value_rank
 
 __all__ = [
     "DEFAULT_DISTURBANCE_NOISE",
@@ -111,10 +112,10 @@ DEFAULT_MEASUREMENT_NOISE = 1.0
 #: directions, which would need enormous estimator gains, are also refused (common practice).
 DETECTABILITY_TOLERANCE = 1e-9
 
-_KIND_POINTER = "/estimator/kind"
-_DISTURBANCES_POINTER = "/estimator/disturbances"
-_MODEL_POINTER = "/model"
-_NOISE_POINTER = "/estimator"
+_KIND_FIELD = ("estimator", "kind")
+_DISTURBANCES_FIELD = ("estimator", "disturbances")
+_MODEL_FIELD = ("model",)
+_NOISE_FIELD = ("estimator",)
 
 
 @dataclass(frozen=True)
@@ -277,7 +278,7 @@ def _rate_directions(
         raise NumericalError(
             f"A bias on the rate of an output needs an integrator of its own: {what}. Use 'output' for "
             f"such an output in estimator.disturbances.",
-            pointer=_DISTURBANCES_POINTER,
+            field=_DISTURBANCES_FIELD,
         )
     return np.asarray(null @ np.linalg.lstsq(seen, np.eye(len(rows)), rcond=None)[0])
 
@@ -342,13 +343,12 @@ def augmented_model(
     return a_aug, b_aug, c_aug, bd, cd
 
 
-def _rank(matrix: NDArray[np.float64]) -> tuple[int, NDArray[np.float64]]:
+def _rank(matrix: NDArray[Any]) -> tuple[int, NDArray[Any]]:
     """Numerical rank with :data:`DETECTABILITY_TOLERANCE`, and the right singular vectors."""
     if matrix.size == 0:
         return 0, np.eye(matrix.shape[1])
     _, s, vt = np.linalg.svd(matrix)
-    tol = DETECTABILITY_TOLERANCE * max(float(s[0]), np.finfo(float).tiny)
-    return int(np.count_nonzero(s > tol)), vt
+    return singular_value_rank(s, DETECTABILITY_TOLERANCE), vt
 
 
 def _format_vector(v: NDArray[np.float64], labels: Sequence[str]) -> str:
@@ -365,10 +365,6 @@ def _format_vector(v: NDArray[np.float64], labels: Sequence[str]) -> str:
         size = "" if abs(abs(x) - 1.0) < 1e-9 else f"{abs(x):.3g} "
         text += ("" if i == 0 else f" {sign} ") + size + name
     return "along " + text
-
-
-def _format_complex(z: complex) -> str:
-    return f"{z.real:.6g}" if abs(z.imag) < 1e-12 else f"{z.real:.6g}{z.imag:+.6g}j"
 
 
 def _check_detectable(
@@ -388,14 +384,14 @@ def _check_detectable(
     for z in scipy.linalg.eigvals(a, check_finite=False):
         if abs(z) < 1.0 - 1e-9:
             continue
-        rank, _ = _rank(np.vstack([z * np.eye(n) - a, c.astype(complex)]))
+        rank, _ = _rank(pbh_matrix(a, z, outputs=c))
         if rank < n:
             raise NumericalError(
                 f"The plant is not detectable from its measured outputs: the mode at "
-                f"z = {_format_complex(z)} (on or outside the unit circle) does not "
+                f"z = {format_complex(z)} (on or outside the unit circle) does not "
                 f"show in any measured output (PBH test), so no estimator can track it. "
                 f"Measure an output that sees this mode.",
-                pointer=_MODEL_POINTER,
+                field=_MODEL_FIELD,
             )
     if nd == 0:
         return
@@ -408,7 +404,7 @@ def _check_detectable(
             f"estimated, so the augmented model is not detectable (rank [[I - A, -Bd], "
             f"[C, Cd]] < n + nd; Pannocchia and Rawlings 2003). Use per_output (the default), "
             f"which puts one disturbance on each output.",
-            pointer=_KIND_POINTER,
+            field=_KIND_FIELD,
         )
     # 3. the rank condition at z = 1.
     matrix = np.block([[np.eye(n) - a, -bd], [c, cd]])
@@ -426,7 +422,7 @@ def _check_detectable(
     direction = _format_vector(hidden, labels) if np.abs(hidden).max() > 1e-9 else "(unnamed)"
     flags = integrating_outputs(a, c)
     integrates = bool(np.any(flags))
-    pointer = _KIND_POINTER
+    where = _KIND_FIELD
     if disturbance == "output" and integrates:
         levels = ", ".join(repr(o) for o, f in zip(output_labels, flags, strict=True) if f)
         why = (
@@ -435,7 +431,7 @@ def _check_detectable(
             f"per_output (the default), which models a bias on the rate of {levels} instead."
         )
     elif disturbance == "per_output":
-        pointer = _DISTURBANCES_POINTER
+        where = _DISTURBANCES_FIELD
         involved = [i for i in range(len(hidden)) if abs(hidden[i]) > 1e-6 * np.abs(hidden).max()]
         named = ", ".join(repr(output_labels[i]) for i in involved)
         wrong = [i for i in involved if (disturbances[i] == "output") == bool(flags[i])]
@@ -463,7 +459,7 @@ def _check_detectable(
         f"The {name} model makes the augmented model undetectable: rank [[I - A, -Bd], "
         f"[C, Cd]] = {rank} < n + nd = {n + nd} (Pannocchia and Rawlings 2003). The "
         f"disturbance direction {direction} cannot be estimated: {why}",
-        pointer=pointer,
+        field=where,
     )
 
 
@@ -517,12 +513,12 @@ def kalman_filter(
             f"The Kalman filter's Riccati equation has no stabilizing solution ({exc}). "
             f"Give every mode on the unit circle some process noise and make the "
             f"measurement noise covariance positive definite.",
-            pointer=_NOISE_POINTER,
+            field=_NOISE_FIELD,
         ) from exc
     if not np.all(np.isfinite(gain)):
         raise NumericalError(
             "The Kalman filter's Riccati equation gave a non-finite gain. Check the noise covariances.",
-            pointer=_NOISE_POINTER,
+            field=_NOISE_FIELD,
         )
     return gain, p, s
 
@@ -657,14 +653,13 @@ def design_estimator(
     rv = _covariance(measurement_noise, p, DEFAULT_MEASUREMENT_NOISE)
     gain, cov, innovation = kalman_filter(a_aug, c_aug, qw, rv)
     error_matrix = (np.eye(n + nd) - gain @ c_aug) @ a_aug
-    poles = scipy.linalg.eigvals(error_matrix, check_finite=False)
-    poles = poles[np.argsort(-np.abs(poles), kind="stable")]
+    poles = eigenvalues_by_modulus(error_matrix)
     if poles.size and np.abs(poles).max() >= 1.0:
         raise NumericalError(
             f"The Kalman filter is not stable (largest estimator pole modulus "
             f"{np.abs(poles).max():.6f}). Give every mode on the unit circle some process "
             f"noise.",
-            pointer=_NOISE_POINTER,
+            field=_NOISE_FIELD,
         )
     return Estimator(
         kind=kind,

@@ -42,6 +42,7 @@ from service.solver.design.marginal import MARGINAL_TOLERANCE
 from service.solver.design.prediction import prediction_matrices
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.target import TargetProblem, target_problem
+from service.solver.numerics import eigenvalues_by_modulus
 
 __all__ = [
     "SEPARATION_TOLERANCE",
@@ -144,10 +145,6 @@ class ControlLoop:
     ) -> NDArray[np.float64]:
         """Return ``Fx_aug x(k|k) + Fu u(k-1)``, shape (Np*p,)."""
         return self.free_state @ estimate + self.free_input @ previous_input
-
-    def reference(self, target_output: NDArray[np.float64]) -> NDArray[np.float64]:
-        """Return the reference trajectory ``(1 (x) I_p) z_s``, shape (Np*p,)."""
-        return np.tile(target_output, self.penalized_steps)
 
 
 def estimator_target(design: ControllerDesign, estimator: Estimator) -> TargetProblem:
@@ -285,10 +282,6 @@ def _whole_loop_matrix(
     return np.vstack([x_row, xp_row, u_row])
 
 
-def _sorted(poles: NDArray[np.complex128]) -> NDArray[np.complex128]:
-    return poles[np.argsort(-np.abs(poles), kind="stable")]
-
-
 @dataclass(frozen=True)
 class TrueLoop:
     """The loop of controller and estimator (designed on the model) running on another plant.
@@ -335,7 +328,7 @@ def true_loop(loop: ControlLoop, a: NDArray[np.float64], b: NDArray[np.float64],
     TrueLoop
     """
     matrix = _whole_loop_matrix(loop, (a, b, c))
-    poles = _sorted(scipy.linalg.eigvals(matrix, check_finite=False))
+    poles = eigenvalues_by_modulus(matrix)
     radius = float(np.abs(poles).max(initial=0.0))
     return TrueLoop(
         matrix=matrix,
@@ -364,7 +357,7 @@ def whole_loop(loop: ControlLoop) -> WholeLoop:
     the largest matched distance).
     """
     matrix = _whole_loop_matrix(loop)
-    poles = _sorted(scipy.linalg.eigvals(matrix, check_finite=False))
+    poles = eigenvalues_by_modulus(matrix)
     controller = loop.design.loop.poles
     estimator = loop.estimator.poles
     union = np.concatenate([controller, estimator])

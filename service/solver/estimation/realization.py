@@ -46,6 +46,7 @@ from service.solver.design.prediction import step_response_coefficients
 from service.solver.design.terminal import terminal_prediction
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.loop import estimator_target
+from service.solver.numerics import by_modulus
 
 __all__ = [
     "StateSpace",
@@ -77,11 +78,11 @@ class StateSpace:
 
     @property
     def inputs(self) -> int:
-        return self.d.shape[1]
+        return int(self.d.shape[1])
 
     @property
     def outputs(self) -> int:
-        return self.d.shape[0]
+        return int(self.d.shape[0])
 
     def evaluate(self, z: NDArray[np.complex128]) -> NDArray[np.complex128]:
         """Return the transfer matrix ``C (z I - A)^-1 B + D`` at each point of ``z``.
@@ -259,5 +260,4 @@ def closed_loop_poles(plant: StateSpace, controller: StateSpace) -> NDArray[np.c
             [controller.b @ plant.c, controller.a],
         ]
     )
-    poles = np.linalg.eigvals(matrix)
-    return poles[np.argsort(-np.abs(poles), kind="stable")]
+    return by_modulus(np.linalg.eigvals(matrix))

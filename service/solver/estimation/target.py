@@ -129,7 +129,7 @@ class TargetProblem:
 
     @property
     def state_size(self) -> int:
-        return self.a.shape[0]
+        return int(self.a.shape[0])
 
     def steady_state_equations(
         self, disturbance: NDArray[np.float64]

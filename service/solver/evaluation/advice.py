@@ -56,6 +56,7 @@ from service.solver.design.closed_loop import ILL_CONDITIONED, UNIT_CIRCLE_MARGI
 from service.solver.design.controller import ControllerDesign, design_controller
 from service.solver.design.spectrum import extreme_eigenvalues
 from service.solver.evaluation.frequency import FrequencyAnalysis
+from service.solver.numerics import by_modulus, format_complex
 
 __all__ = [
     "PEAK_SENSITIVITY_LIMIT",
@@ -80,10 +81,6 @@ _LONGEST_STEP = 5000
 
 def _seconds(samples: float, sample_time: float | None) -> str:
     return "" if sample_time is None else f" ({samples * sample_time:.4g} in the unit of the sample time)"
-
-
-def _fmt(z: complex) -> str:
-    return f"{z.real:.6g}" if abs(z.imag) < 1e-12 else f"{z.real:.6g}{z.imag:+.6g}j"
 
 
 # --- ill-conditioned Hessian ---------------------------------------------------------------
@@ -288,7 +285,7 @@ def slow_pole_advice(
         )
     return Diagnostic(
         "slow_pole",
-        f"The {which} {_fmt(pole)} has a time constant of {tau:.3g} samples"
+        f"The {which} {format_complex(pole)} has a time constant of {tau:.3g} samples"
         f"{_seconds(tau, sample_time)}, longer than the prediction horizon of {hp} samples, so "
         f"the controller plans over a window in which this mode does not settle. {whose}",
     )
@@ -381,7 +378,7 @@ def transmission_zeros(a: ArrayLike, b: ArrayLike, c: ArrayLike) -> NDArray[np.c
         # rounding level, and a zero beyond 1e8 in modulus is taken as infinite.
         finite = (np.abs(beta) > 1e-8 * np.abs(alpha)) & (np.abs(beta) > 1e3 * np.finfo(float).eps)
         zeros = alpha[finite] / beta[finite]
-    return zeros[np.argsort(-np.abs(zeros), kind="stable")]
+    return by_modulus(zeros)
 
 
 #: Largest condition number of ``CB`` for which the zeros come from the reduced matrix.
@@ -521,7 +518,7 @@ def non_minimum_phase_advice(
     _zero, needed = max(timed, key=lambda item: item[1])
     if prediction >= needed:
         return None
-    names = ", ".join(_fmt(z) for z in zeros)
+    names = ", ".join(format_complex(z) for z in zeros)
     return Diagnostic(
         "non_minimum_phase_short_horizon",
         f"The plant is non-minimum-phase (transmission zero(s) outside the unit circle: {names}). "

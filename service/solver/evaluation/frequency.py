@@ -37,7 +37,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Literal
+from typing import Any, Literal
 
 import numpy as np
 import scipy.optimize
@@ -54,7 +54,7 @@ from service.solver.estimation.realization import (
 )
 
 __all__ = [
-    "ANALYSIS_POINTER",
+    "ANALYSIS_FIELD",
     "BANDWIDTH_LEVEL",
     "DEFAULT_DECADES",
     "DEFAULT_POINTS",
@@ -75,8 +75,8 @@ BANDWIDTH_LEVEL = 1.0 / np.sqrt(2.0)
 DEFAULT_POINTS = 200
 #: Default span of the grid below the Nyquist frequency, in decades.
 DEFAULT_DECADES = 4.0
-#: The request field a failure of the analysis points at.
-ANALYSIS_POINTER = "/analysis"
+#: The key of the request field a failure of the analysis names.
+ANALYSIS_FIELD = ("analysis",)
 #: Relative tolerance of the refinements on ``w`` (``brentq`` xtol / ``minimize_scalar`` xatol).
 _FREQUENCY_TOLERANCE = 1e-12
 
@@ -219,12 +219,14 @@ def _loop_function(
 def _sensitivities(loop: NDArray[np.complex128]) -> tuple[NDArray[np.complex128], NDArray[np.complex128]]:
     """``S = (I + L)^-1`` by a linear solve and ``T = L S``."""
     eye = np.eye(loop.shape[-1])
-    s = np.linalg.solve(eye + loop, np.broadcast_to(eye, loop.shape).astype(complex))
-    return s, loop @ s
+    s: NDArray[Any] = np.linalg.solve(eye + loop, np.broadcast_to(eye, loop.shape).astype(complex))
+    t: NDArray[np.complex128] = loop @ s
+    return s, t
 
 
 def _largest(matrices: NDArray[np.complex128]) -> NDArray[np.float64]:
-    return np.linalg.svd(matrices, compute_uv=False)[..., 0]
+    values: NDArray[Any] = np.linalg.svd(matrices, compute_uv=False)[..., 0]
+    return values
 
 
 def _peak(
@@ -336,8 +338,8 @@ def _loop_sensitivity(
 
     loop = loop_fn(grid)
     s, t = _sensitivities(loop)
-    sv_s = np.linalg.svd(s, compute_uv=False)
-    sv_t = np.linalg.svd(t, compute_uv=False)
+    sv_s: NDArray[Any] = np.linalg.svd(s, compute_uv=False)
+    sv_t: NDArray[Any] = np.linalg.svd(t, compute_uv=False)
     peak_s, peak_s_w = _peak(grid, sv_s[:, 0], largest(0))
     peak_t, peak_t_w = _peak(grid, sv_t[:, 0], largest(1))
     return LoopSensitivity(
@@ -405,7 +407,7 @@ def frequency_analysis(
             "The frequency analysis cannot evaluate the loop: a pole of the plant, the "
             "controller or the closed loop lies on the unit circle at a frequency of the grid "
             f"({exc}). Change the number of points, or move that pole off the unit circle.",
-            pointer=ANALYSIS_POINTER,
+            field=ANALYSIS_FIELD,
         ) from exc
     return FrequencyAnalysis(
         frequencies=grid,

@@ -479,7 +479,7 @@ def simulate_loop(
                 break
     reports.extend([None] * (steps - len(reports)))
     return Simulation(
-        time=np.arange(steps) * float(scenario.sample_time),
+        time=np.arange(steps, dtype=np.float64) * float(scenario.sample_time),
         outputs=outputs,
         measured=measured,
         inputs=inputs,

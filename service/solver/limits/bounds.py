@@ -120,15 +120,6 @@ class Limits:
         """Whether any limit is present at all."""
         return self.has_input_limits or self.has_move_limits or self.has_output_limits
 
-    def clamp_input(self, value: ArrayLike) -> NDArray[np.float64]:
-        """Return ``value`` (shape (m,)) clipped into ``[input_min, input_max]``."""
-        return np.clip(np.asarray(value, dtype=float), self.input_min, self.input_max)
-
-    def input_inside(self, value: ArrayLike, *, tolerance: float = 0.0) -> NDArray[np.bool_]:
-        """Return, per input, whether ``value`` (shape (m,)) lies within its limits."""
-        u = np.asarray(value, dtype=float)
-        return (u >= self.input_min - tolerance) & (u <= self.input_max + tolerance)
-
 
 def make_limits(
     inputs: int,

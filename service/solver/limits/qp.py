@@ -231,7 +231,7 @@ class MoveQP:
         self._weighted = weighted
         self._root = output_root
         self._limits = limits
-        self._m, self._p, self._hu, self._first = m, p, hu, prediction.first_penalized
+        self._m, self._p, self._hu = m, p, hu
         self._tolerance = tolerance
         assert warm_start in WARM_STARTS, warm_start
         self._warm = warm_start
@@ -249,7 +249,6 @@ class MoveQP:
         upper_out = np.flatnonzero(np.isfinite(limits.output_max))
         lower_out = np.flatnonzero(np.isfinite(limits.output_min))
         self._upper_out, self._lower_out = upper_out, lower_out
-        self._hard = hard_outputs
         out_up = (np.arange(steps)[:, None] * p + upper_out[None, :]).reshape(-1)
         out_lo = (np.arange(steps)[:, None] * p + lower_out[None, :]).reshape(-1)
         self._out_up, self._out_lo = out_up, out_lo
@@ -367,7 +366,7 @@ class MoveQP:
     @property
     def variables(self) -> int:
         """``Hu*m + ns``: moves plus slacks."""
-        return self._full_hessian.shape[0]
+        return int(self._full_hessian.shape[0])
 
     def _shift_map(self, nv: int, nr: int, steps: int) -> NDArray[np.intp]:
         """For each constraint, the one of the previous step it inherits its state from (-1: none).

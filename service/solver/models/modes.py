@@ -39,6 +39,7 @@ import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.closed_loop import UNIT_CIRCLE_MARGIN, Diagnostic
+from service.solver.numerics import by_modulus, is_real, pbh_matrix, singular_value_rank
 
 __all__ = [
     "LOOP_POLE_MATCH",
@@ -64,18 +65,14 @@ _NAMED_MOST = 3
 LOOP_POLE_MATCH = 1e-6
 
 
-def _is_real(z: complex) -> bool:
-    """``z`` is real up to rounding (a real model's real eigenvalue)."""
-    return abs(z.imag) <= 1e-12 * max(1.0, abs(z))
-
-
 def _scaled_inputs(a: NDArray[np.float64], b: NDArray[np.float64]) -> NDArray[np.float64]:
     """``B`` with each nonzero column scaled to ``||A||_1`` (or 1)."""
     scale = float(np.linalg.norm(a, 1)) if a.size else 0.0
     scale = scale if scale > 0.0 else 1.0
     norms = np.linalg.norm(b, axis=0)
     factors = np.divide(scale, norms, out=np.zeros_like(norms), where=norms > 0.0)
-    return b * factors
+    result: NDArray[np.float64] = b * factors
+    return result
 
 
 def _blind_directions(
@@ -83,10 +80,9 @@ def _blind_directions(
 ) -> NDArray[np.complex128]:
     """Orthonormal ``w`` (columns, shape (n, n - rank)) with ``w^H [A - z I, B] ~ 0``."""
     n = a.shape[0]
-    shift = z.real if _is_real(z) else z  # real arithmetic for a real eigenvalue
-    pbh = np.hstack([a - shift * np.eye(n), b])
+    pbh = pbh_matrix(a, z, inputs=b)  # real arithmetic for a real eigenvalue
     s = np.linalg.svd(pbh, compute_uv=False)  # n values: pbh is n x (n+m), m >= 0
-    rank = int(np.count_nonzero(s > tolerance * max(float(s[0]), np.finfo(float).tiny)))
+    rank = singular_value_rank(s, tolerance)
     if rank == n:
         return np.zeros((n, 0), dtype=complex)
     u = np.linalg.svd(pbh, full_matrices=False)[0]  # only on a rank drop: the costly part
@@ -184,7 +180,7 @@ def uncontrollable_modes(
     assert tolerance > 0.0, tolerance
     modes = [z for z, w in _modes(a_, b_, tolerance, smallest_modulus) for _ in range(w.shape[1])]
     values = np.array(modes, dtype=complex)
-    return values[np.argsort(-np.abs(values), kind="stable")]
+    return by_modulus(values)
 
 
 def _named_states(w: NDArray[np.complex128], labels: Sequence[str]) -> list[str]:
@@ -242,13 +238,13 @@ def uncontrollable_mode_warnings(
     loop = None if loop_poles is None else np.asarray(loop_poles, dtype=complex)
     known = None if poles is None else np.asarray(poles, dtype=complex)
     for z, w in _modes(a_, b_, tolerance, 1.0 - UNIT_CIRCLE_MARGIN, loop, known):
-        if not _is_real(z) and z.imag < 0.0:
+        if not is_real(z) and z.imag < 0.0:
             continue  # the second of a conjugate pair
-        where = f"z = {z.real:.6g}" if _is_real(z) else f"the pair z = {z.real:.6g} +/- {abs(z.imag):.6g}j"
+        where = f"z = {z.real:.6g}" if is_real(z) else f"the pair z = {z.real:.6g} +/- {abs(z.imag):.6g}j"
         count = f" ({w.shape[1]} independent modes)" if w.shape[1] > 1 else ""
         states = ", ".join(repr(s) for s in _named_states(w, names))
         parts.append(f"{where}{count}, carried by {states}")
-        total += w.shape[1] * (1 if _is_real(z) else 2)
+        total += w.shape[1] * (1 if is_real(z) else 2)
     if not parts:
         return []
     one = total == 1

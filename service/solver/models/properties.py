@@ -39,6 +39,7 @@ import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.closed_loop import Diagnostic
+from service.solver.numerics import eigenvalues_by_modulus
 
 __all__ = [
     "INTEGRATING_TOLERANCE",
@@ -265,8 +266,7 @@ def open_loop_poles(a: ArrayLike) -> NDArray[np.complex128]:
 
     Balancing in LAPACK isolates the exact zero poles of shift-register (dead-time) states.
     """
-    poles = scipy.linalg.eigvals(np.asarray(a, dtype=float), check_finite=False)
-    return poles[np.argsort(-np.abs(poles), kind="stable")]
+    return eigenvalues_by_modulus(np.asarray(a, dtype=float))
 
 
 def plant_properties(

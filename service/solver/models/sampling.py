@@ -26,7 +26,7 @@ import numpy as np
 import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
-from service.errors import NumericalError
+from service.errors import FieldKey, NumericalError
 
 __all__ = ["SampledModel", "hold_integrals", "sample_zero_order_hold"]
 
@@ -58,7 +58,7 @@ def hold_integrals(
     b: NDArray[np.float64],
     interval: float,
     *,
-    pointer: str = "/model",
+    field: FieldKey = ("model",),
 ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """Return ``e^(A t)`` and ``integral_0^t e^(A s) ds B`` for ``t = interval``.
 
@@ -70,8 +70,8 @@ def hold_integrals(
         Continuous input matrix (any number of columns, also zero).
     interval : float
         ``t >= 0``, in the time unit of ``a``.
-    pointer : str, keyword-only
-        JSON pointer put on the error, naming the field a user should change.
+    field : tuple of str and int, keyword-only
+        Key of the request field put on the error, naming the field a user should change.
 
     Returns
     -------
@@ -104,7 +104,7 @@ def hold_integrals(
             f"time units is not finite in double precision (the state matrix has eigenvalues "
             f"with real parts from {growth.min():.3g} to {growth.max():.3g} per time unit). "
             f"Check the units of the state matrix and of the sample time.",
-            pointer=pointer,
+            field=field,
         )
     return exponential[:n, :n], exponential[:n, n:]
 
@@ -115,7 +115,7 @@ def sample_zero_order_hold(
     *,
     sample_time: float,
     b_disturbance: ArrayLike | None = None,
-    pointer: str = "/model",
+    field: FieldKey = ("model",),
 ) -> SampledModel:
     """Sample ``dx/dt = A x + B u + Bd d`` exactly under zero-order hold.
 
@@ -129,8 +129,8 @@ def sample_zero_order_hold(
         ``Ts > 0``, in the same time unit as ``a``.
     b_disturbance : array_like, shape (n, md), optional
         Continuous input matrix of the measured disturbances (also held between samples).
-    pointer : str, keyword-only
-        JSON pointer of the model, put on a :class:`~service.errors.NumericalError`.
+    field : tuple of str and int, keyword-only
+        Key of the model field, put on a :class:`~service.errors.NumericalError`.
 
     Returns
     -------
@@ -165,7 +165,7 @@ def sample_zero_order_hold(
         bd_ = np.asarray(b_disturbance, dtype=float)
         assert bd_.shape[0] == n, (bd_.shape, b_.shape)
         inputs = np.hstack([b_, bd_])
-    transition, hold = hold_integrals(a_, inputs, float(sample_time), pointer=pointer)
+    transition, hold = hold_integrals(a_, inputs, float(sample_time), field=field)
     return SampledModel(
         a=transition,
         b=hold[:, :m],

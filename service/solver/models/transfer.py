@@ -81,12 +81,13 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import scipy.optimize
 from numpy.typing import NDArray
 
-from service.errors import NumericalError
+from service.errors import FieldKey, NumericalError
 from service.solver.models.sampling import hold_integrals
 
 __all__ = [
@@ -243,7 +244,7 @@ class SampledTransferModel:
     @property
     def state_count(self) -> int:
         """``n``."""
-        return self.a.shape[0]
+        return int(self.a.shape[0])
 
     @property
     def strictly_proper(self) -> bool:
@@ -323,7 +324,7 @@ def _continuous(element: TransferElement) -> tuple[NDArray[np.float64], ...]:
 
 
 def _sampled(
-    element: TransferElement, sample_time: float, pointer: str
+    element: TransferElement, sample_time: float, field: FieldKey
 ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], float, int]:
     """Sampled dynamics ``(Phi, Gamma, C, D)`` of an element and its whole delay ``h``."""
     ratio = stiffness_ratio(element, sample_time)
@@ -332,22 +333,22 @@ def _sampled(
             f"A time constant of {min(element.time_constants):.3g} is too short to sample "
             f"accurately: the sample time or lead is {ratio:.3g} times longer (at most "
             f"{STIFFNESS_LIMIT:.0e}). A lag this fast settles within one sample; leave it out.",
-            pointer=pointer,
+            field=field,
         )
     ac, bc, cc, dc = _continuous(element)
     whole, fraction = delay_samples(element.dead_time, sample_time)
     if fraction == 0.0:
-        phi, gamma = hold_integrals(ac, bc, sample_time, pointer=pointer)
+        phi, gamma = hold_integrals(ac, bc, sample_time, field=field)
         return phi, gamma, cc, float(dc[0, 0]), whole
-    phi_late, gamma0 = hold_integrals(ac, bc, (1.0 - fraction) * sample_time, pointer=pointer)
-    phi_early, gamma_early = hold_integrals(ac, bc, fraction * sample_time, pointer=pointer)
+    phi_late, gamma0 = hold_integrals(ac, bc, (1.0 - fraction) * sample_time, field=field)
+    phi_early, gamma_early = hold_integrals(ac, bc, fraction * sample_time, field=field)
     phi = phi_late @ phi_early
     gamma1 = phi_late @ gamma_early
     return phi, phi @ gamma0 + gamma1, cc, float((cc @ gamma0 + dc)[0, 0]), whole + 1
 
 
 def sampled_element(
-    element: TransferElement, sample_time: float, *, pointer: str = "/model/elements"
+    element: TransferElement, sample_time: float, *, field: FieldKey = ("model", "elements")
 ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], float, int]:
     """One element sampled exactly: ``(Phi, Gamma, C, D)`` driven by the input ``h`` samples back.
 
@@ -360,7 +361,7 @@ def sampled_element(
     service.errors.NumericalError
         A time constant too short to sample (see :data:`STIFFNESS_LIMIT`).
     """
-    return _sampled(element, sample_time, pointer)
+    return _sampled(element, sample_time, field)
 
 
 Rows = list[list[TransferElement | None]]
@@ -452,8 +453,8 @@ def transfer_matrix_model(
     *,
     sample_time: float,
     disturbance_elements: Grid | None = None,
-    pointer: str = "/model/elements",
-    disturbance_pointer: str = "/model/disturbance_elements",
+    field: FieldKey = ("model", "elements"),
+    disturbance_field: FieldKey = ("model", "disturbance_elements"),
 ) -> SampledTransferModel:
     """Convert a transfer matrix to its exact discrete state-space model under zero-order hold.
 
@@ -465,8 +466,8 @@ def transfer_matrix_model(
         ``Ts > 0``, in the time unit of the time constants and dead times.
     disturbance_elements : sequence of p rows of md ``TransferElement | None``, optional
         How each measured disturbance moves each output (held between samples too).
-    pointer, disturbance_pointer : str, keyword-only
-        JSON pointers of the two grids; an element's error carries ``{pointer}/{i}/{j}``.
+    field, disturbance_field : tuple of str and int, keyword-only
+        Keys of the two grids in the request; an element's error carries ``(*field, i, j)``.
 
     Returns
     -------
@@ -478,7 +479,7 @@ def transfer_matrix_model(
     ------
     service.errors.NumericalError
         When an element's :func:`stiffness_ratio` exceeds :data:`STIFFNESS_LIMIT`, with the
-        element's pointer.
+        element's field key.
 
     Notes
     -----
@@ -493,14 +494,14 @@ def transfer_matrix_model(
     p, columns = len(rows), len(rows[0])
     out, regs = _plan(rows, ts)
 
-    sampled: dict[tuple[int, int], tuple] = {}
+    sampled: dict[tuple[int, int], tuple[Any, ...]] = {}
     roles: list[StateRole] = []
     integrator: dict[int, int] = {}  # row -> index of its shared integrator state
     for i, row in enumerate(rows):
         for j, el in enumerate(row):
             if el is None:
                 continue
-            where = f"{pointer}/{i}/{j}" if j < m else f"{disturbance_pointer}/{i}/{j - m}"
+            where = (*field, i, j) if j < m else (*disturbance_field, i, j - m)
             sampled[i, j] = (len(roles), *_sampled(el, ts, where))
             col = j - m if j >= m else j
             lags = len(el.time_constants)

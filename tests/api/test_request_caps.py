@@ -9,7 +9,7 @@ import time
 import numpy as np
 import pytest
 
-from service.api.compute import SolverCrashed, SolverPool, TimeLimitExceeded
+from service.api.compute import ComputeCrashed, SolverPool, TimeLimitExceeded
 from tests.api.conftest import assert_problem
 from tests.conftest import random_design_request
 
@@ -122,9 +122,9 @@ def test_a_call_past_its_deadline_is_stopped_and_its_solver_replaced():
 def test_a_dead_or_failing_solver_is_reported_and_replaced():
     pool = SolverPool(processes=1)
     try:
-        with pytest.raises(SolverCrashed):
+        with pytest.raises(ComputeCrashed):
             pool.run(os._exit, (3,), deadline=time.monotonic() + 30, seconds=30)
-        with pytest.raises(SolverCrashed, match="ValueError"):
+        with pytest.raises(ComputeCrashed, match="ValueError"):
             pool.run(int, ("not a number",), deadline=time.monotonic() + 30, seconds=30)
         assert pool.run(abs, (-5,), deadline=time.monotonic() + 30, seconds=30)[0] == 5
     finally:

@@ -1,4 +1,4 @@
-"""The loop of one solver process: receive a call, run it, send back the outcome.
+"""The work of one compute process: receive a call, run it, send back the outcome.
 
 Runs in a child process started by :mod:`service.api.compute`.  It ignores SIGINT and SIGTERM
 (the serving process decides when work stops) and exits when its pipe closes, so it never
@@ -32,16 +32,16 @@ def _error_state(exc: MovecastError) -> Outcome:
     if isinstance(exc, InvalidRequest):
         return ("invalid", type(exc), {"problems": exc.problems})
     if isinstance(exc, NumericalError):
-        return ("numerical", type(exc), {"detail": exc.detail, "pointer": exc.pointer})
+        return ("numerical", type(exc), {"detail": exc.detail, "field": exc.field})
     return ("other", type(exc), {"message": str(exc)})
 
 
 def rebuild_error(kind: str, cls: type[MovecastError], state: dict[str, Any]) -> MovecastError:
     """Rebuild the exception described by :func:`_error_state` in the serving process."""
     if kind == "invalid":
-        return cls(state["problems"])  # type: ignore[call-arg]
+        return cls(state["problems"])
     if kind == "numerical":
-        return cls(state["detail"], pointer=state["pointer"])  # type: ignore[call-arg]
+        return cls(state["detail"], field=state["field"])  # type: ignore[call-arg]
     return cls(state["message"])
 
 
