@@ -49,6 +49,7 @@ from service.solver.design.gain import PredictiveGain
 from service.solver.estimation.estimator import Estimator
 from service.solver.evaluation.advice import merge_warnings, tuning_advice
 from service.solver.evaluation.frequency import FrequencyAnalysis, design_frequency_analysis
+from service.solver.evaluation.reach import dead_time_warnings
 from service.solver.models.modes import uncontrollable_mode_warnings
 from service.solver.models.properties import PlantProperties, plant_properties, plant_warnings
 from service.solver.models.scaling import ScaledPlant, scale_plant, unscale_feedforward, unscale_gain
@@ -355,6 +356,14 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
         feedforward=feedforward,
         properties=properties,
         warnings=[
+            *dead_time_warnings(
+                scaled.a,
+                scaled.b,
+                scaled.c,
+                design,
+                input_labels=[sig.name for sig in plant.inputs],
+                output_labels=[sig.name for sig in plant.outputs],
+            ),
             *merge_warnings(design.warnings, advice),
             *plant_warnings(properties),
             *uncontrollable_mode_warnings(scaled.a, scaled.b, labels=plant.state_labels, loop_poles=design.loop.poles),

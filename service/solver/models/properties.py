@@ -41,11 +41,13 @@ from numpy.typing import ArrayLike, NDArray
 from service.solver.design.closed_loop import Diagnostic
 
 __all__ = [
+    "INTEGRATING_SEARCH",
     "INTEGRATING_TOLERANCE",
     "NEAR_SINGULAR_GAIN",
     "PlantProperties",
     "SteadyStateGain",
     "gain_condition_number",
+    "integrating_poles",
     "open_loop_poles",
     "plant_properties",
     "plant_warnings",
@@ -53,9 +55,15 @@ __all__ = [
     "steady_state_gain",
 ]
 
-#: A pole within this distance of ``z = 1`` counts as integrating (a time constant longer
-#: than about 10^5 sample times behaves as an integrator for control).
-INTEGRATING_TOLERANCE = 1e-5
+#: A pole counts as integrating when it is ``z = 1`` up to rounding: a group of the poles
+#: nearest 1 whose mean lies within this distance of 1, i.e. a time constant longer than
+#: ``1e9`` sample times (``1 - z = Ts / tau`` to first order).  The mean of a group of
+#: eigenvalues is well conditioned even when the group is a defective cluster that rounding
+#: splits by ``eps^(1/k)`` (Kato, *Perturbation Theory for Linear Operators*, 1966, II.5), so
+#: a double integrator is found and a 200 s lag sampled at 1 ms (``1 - z = 5e-6``) is a lag.
+INTEGRATING_TOLERANCE = 1e-9
+#: Poles farther than this from 1 are never part of an integrating group.
+INTEGRATING_SEARCH = 1e-3
 #: Condition number of the steady-state gain above which the plant is called near-singular:
 #: some output direction then needs input moves a thousand times larger than another
 #: (common practice; meaningful only on scaled signals).
@@ -115,14 +123,51 @@ class PlantProperties:
     poles: NDArray[np.complex128]
 
 
+def integrating_poles(a: NDArray[np.float64], *, tolerance: float = INTEGRATING_TOLERANCE) -> int:
+    """Return how many poles of ``a`` are at ``z = 1`` (integrators), judged relative to the sample time.
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, n)
+    tolerance : float, keyword-only
+        Largest ``|mean - 1|`` of the group (:data:`INTEGRATING_TOLERANCE`).
+
+    Returns
+    -------
+    int
+        The largest ``k`` such that the ``k`` poles nearest 1 have their mean within
+        ``tolerance / k`` of 1 (so a lag with ``1 - z > tolerance`` never joins) and lie within ``10 (k eps ||A||)^(1/k)`` of it (the spread
+        rounding gives a Jordan block of size ``k``; Wilkinson 1965, ch. 2).
+    """
+    if a.shape[0] == 0:
+        return 0
+    poles = scipy.linalg.eigvals(a, check_finite=False)
+    distance = np.abs(poles - 1.0)
+    order = np.argsort(distance, kind="stable")
+    near = poles[order][distance[order] <= INTEGRATING_SEARCH]
+    size = max(1.0, float(np.linalg.norm(a, 1)))
+    found = 0
+    for k in range(1, near.size + 1):
+        group = near[:k]
+        spread = 10.0 * (k * np.finfo(float).eps * size) ** (1.0 / k)
+        if abs(group.mean() - 1.0) <= tolerance / k and np.abs(group - 1.0).max() <= max(spread, tolerance):
+            found = k
+    return found
+
+
 def _sorted_schur(
     a: NDArray[np.float64], tolerance: float
 ) -> tuple[NDArray[np.complex128], NDArray[np.complex128], int]:
-    """Complex Schur form with the eigenvalues within ``tolerance`` of 1 leading."""
+    """Complex Schur form with the integrating poles (:func:`integrating_poles`) leading."""
+    k = integrating_poles(a, tolerance=tolerance)
+    if k == 0:
+        return np.zeros((0, 0), complex), np.zeros((0, 0), complex), 0
+    distance = np.sort(np.abs(scipy.linalg.eigvals(a, check_finite=False) - 1.0))
+    radius = distance[k - 1] if k == distance.size else 0.5 * (distance[k - 1] + distance[k])
     t, z, count = scipy.linalg.schur(
         a.astype(complex),
         output="complex",
-        sort=lambda v: abs(v - 1.0) <= tolerance,
+        sort=lambda v: abs(v - 1.0) <= radius,
         check_finite=False,
     )
     return t, z, int(count)
@@ -146,7 +191,8 @@ def steady_state_gain(
     d : array_like, shape (p, m), optional
         Feed-through (default zero).
     integrating_tolerance : float, keyword-only
-        Poles with ``|z - 1|`` up to this count as integrating.
+        Passed to :func:`integrating_poles`: how close to 1, relative to the sample time,
+        a group of poles must be to count as integrating.
 
     Returns
     -------
