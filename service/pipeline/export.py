@@ -1,0 +1,353 @@
+"""POST /design/export: the fixed unconstrained law with its estimator, tagged, in engineering units.
+
+Three steps, as for /design: :func:`check_export_request` (the /design checks, then what the
+law needs: an estimator that reads measurements, no terminal weight, measurements equal to
+the controlled outputs), :func:`compute_export` (design, estimator and the law of
+:mod:`service.solver.estimation.fixed_law`, changed to the tags' units) and
+:func:`export_response` (the matrices, difference equations and CSV tables).
+:mod:`service.pipeline.structured_text` writes the same law as a function block.
+
+Units.  The law is formed in the design's scaled signals and changed to engineering units by
+the spans (``law_in_units``): measurements and setpoints by the outputs' spans, measured
+disturbances by theirs, the manipulated variables by theirs; the law's state holds the
+model's states as they are, the disturbance estimates in their signal's units and the
+previous inputs in the inputs' units.  Signals are the model's own: when the model is
+written in deviations from an operating point, so are the law's inputs and outputs.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from service.errors import FieldProblem, InvalidRequest, NumericalError
+from service.pipeline.design import DesignInputs, DesignOutcome, check_design_request, compute_design
+from service.pipeline.estimator import scaled_estimator
+from service.pipeline.fingerprint import fingerprint
+from service.pipeline.plant import DiscretePlant
+from service.pipeline.structured_text import BlockText, structured_text
+from service.schemas.common import Caps, pointer
+from service.schemas.design import DesignRequest, LabelledMatrix, WarningReport
+from service.schemas.export import ExportRequest, ExportResponse, LawLimits, LawSignal, LawTables
+from service.solver.estimation.estimator import Estimator
+from service.solver.estimation.fixed_law import FixedLaw, fixed_law, law_in_units
+
+__all__ = [
+    "ExportInputs",
+    "ExportOutcome",
+    "LawLabels",
+    "block_source",
+    "check_export_request",
+    "compute_export",
+    "design_fingerprint",
+    "difference_equations",
+    "export_response",
+    "law_labels",
+    "run_export",
+]
+
+
+@dataclass(frozen=True)
+class ExportInputs:
+    """An export request after every check."""
+
+    design: DesignInputs
+    format: str
+    block_name: str
+
+
+@dataclass(frozen=True)
+class ExportOutcome:
+    """What :func:`compute_export` computed.
+
+    Attributes
+    ----------
+    design : DesignOutcome
+    estimator : Estimator
+        On the scaled plant.
+    law : FixedLaw
+        In engineering units of the tags (module notes).
+    """
+
+    design: DesignOutcome
+    estimator: Estimator
+    law: FixedLaw
+
+
+@dataclass(frozen=True)
+class LawLabels:
+    """Names of the law's inputs, outputs and states, with the signals they belong to."""
+
+    inputs: list[LawSignal]
+    outputs: list[LawSignal]
+    states: list[str]
+
+
+def design_fingerprint(request: DesignRequest) -> str:
+    """The fingerprint /design gives the design part of ``request`` (a subclass's own fields left out)."""
+    fields = {name: getattr(request, name) for name in DesignRequest.model_fields}
+    return fingerprint(DesignRequest.model_validate(fields))
+
+
+def _law_problems(request: DesignRequest, inputs: DesignInputs) -> list[FieldProblem]:
+    plant = inputs.plant
+    problems: list[FieldProblem] = []
+    assert inputs.estimator is not None
+    if inputs.estimator.kind == "full_state":
+        problems.append(
+            FieldProblem(
+                pointer("estimator", "kind"),
+                "the exported law reads measured outputs, but a full_state estimator reads the plant state, which "
+                "a control system does not measure. Choose an estimator (e.g. output_disturbance)",
+            )
+        )
+    if inputs.terminal != "none":
+        problems.append(
+            FieldProblem(
+                pointer("weights", "terminal"),
+                "the law with a Riccati terminal weight cannot be exported yet (its setpoint path is not part of "
+                "the fixed law). Use terminal 'none'",
+            )
+        )
+    if not np.array_equal(plant.c_measured, plant.c):
+        problems.append(
+            FieldProblem(
+                pointer("model", "c_measured"),
+                "measured outputs other than the controlled ones are not supported by the export yet: the "
+                "estimator reads the controlled outputs. Leave c_measured out",
+            )
+        )
+    if np.any(plant.d_measured):
+        problems.append(
+            FieldProblem(pointer("model", "d_measured"), "a measured feed-through is not supported by the export yet")
+        )
+    return problems
+
+
+def check_export_request(request: ExportRequest, caps: Caps) -> ExportInputs:
+    """Run the /design checks, then those of the law.
+
+    Raises
+    ------
+    InvalidRequest
+        With one FieldProblem per broken rule, each naming its field by JSON pointer.
+    """
+    inputs = check_design_request(request, caps)
+    problems = _law_problems(request, inputs)
+    if problems:
+        raise InvalidRequest(problems)
+    return ExportInputs(design=inputs, format=request.format, block_name=request.block_name)
+
+
+def _disturbance_spans(plant: DiscretePlant, estimator: Estimator) -> NDArray[np.float64]:
+    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
+    return {"output": sz, "input": su, "none": np.ones(0)}[estimator.disturbance]
+
+
+def compute_export(inputs: ExportInputs) -> ExportOutcome:
+    """Design, build the estimator and the fixed law; return the law in engineering units.
+
+    Raises
+    ------
+    service.errors.NumericalError
+        From the design or the estimator, or pointer ``/model`` when the law's matrices are
+        not finite numbers.
+    """
+    plant = inputs.design.plant
+    outcome = compute_design(inputs.design)
+    estimator = outcome.estimator
+    if estimator is None:
+        assert inputs.design.estimator is not None
+        estimator = scaled_estimator(inputs.design.estimator, plant, outcome.scaled)
+    su, sz = plant.spans(plant.inputs), plant.spans(plant.outputs)
+    sd = plant.spans(plant.disturbances) if plant.b_disturbance is not None else np.ones(0)
+    with np.errstate(over="ignore", invalid="ignore"):
+        scaled_law = fixed_law(outcome.design, estimator, b_disturbance=outcome.scaled.b_disturbance)
+        law = law_in_units(
+            scaled_law,
+            state_span=np.concatenate([np.ones(estimator.state_size), _disturbance_spans(plant, estimator), su]),
+            signal_span=np.concatenate([sz, sz, sd]),
+            input_span=su,
+            measured_span=sz,
+        )
+    matrices = (law.input_state, law.input_direct, law.state_update, law.signal_update, law.applied_update)
+    if not all(np.all(np.isfinite(x)) for x in (*matrices, law.prediction)):
+        raise NumericalError(
+            "The exported law's matrices are not finite numbers: the model's numbers are too large or too "
+            "small for double precision. Rescale the model",
+            pointer="/model",
+        )
+    return ExportOutcome(design=outcome, estimator=estimator, law=law)
+
+
+def law_labels(plant: DiscretePlant, estimator: Estimator) -> LawLabels:
+    """Names of the law's inputs (``<tag>.measured``, ``<tag>.setpoint``, ``<tag>``), outputs and states."""
+    inputs = [LawSignal(name=f"{s.name}.measured", role="measured", tag=s.name, unit=s.unit) for s in plant.outputs]
+    inputs += [LawSignal(name=f"{s.name}.setpoint", role="setpoint", tag=s.name, unit=s.unit) for s in plant.outputs]
+    inputs += [
+        LawSignal(name=f"{s.name}.measured_disturbance", role="measured_disturbance", tag=s.name, unit=s.unit)
+        for s in plant.disturbances
+    ]
+    outputs = [LawSignal(name=s.name, role="input", tag=s.name, unit=s.unit) for s in plant.inputs]
+    outputs += [LawSignal(name=f"{s.name}.move", role="move", tag=s.name, unit=s.unit) for s in plant.inputs]
+    source = {"output": plant.outputs, "input": plant.inputs, "none": ()}[estimator.disturbance]
+    states = [f"{label}.estimate" for label in plant.state_labels]
+    states += [f"{s.name}.{estimator.disturbance}_disturbance" for s in source]
+    states += [f"{s.name}.previous" for s in plant.inputs]
+    return LawLabels(inputs=inputs, outputs=outputs, states=states)
+
+
+def _labelled(values: NDArray[np.float64], rows: list[str], columns: list[str]) -> LabelledMatrix:
+    return LabelledMatrix(rows=rows, columns=columns, values=values.tolist())
+
+
+def _table(matrix: LabelledMatrix) -> str:
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\r\n")
+    writer.writerow(["", *matrix.columns])
+    for name, row in zip(matrix.rows, matrix.values, strict=True):
+        writer.writerow([name, *(repr(v) for v in row)])
+    return buffer.getvalue()
+
+
+def _sum(terms: list[tuple[float, str]]) -> str:
+    text = ""
+    for value, name in terms:
+        if value == 0.0:
+            continue
+        sign = "-" if value < 0 else "+"
+        magnitude = f"{abs(value):.10g}"
+        if not text:
+            text = f"{'-' if value < 0 else ''}{magnitude} {name}"
+        else:
+            text += f" {sign} {magnitude} {name}"
+    return text or "0"
+
+
+def difference_equations(law: FixedLaw, labels: LawLabels) -> list[str]:
+    """The split form written out: ``u(k)`` of each input, then ``s(k+1)`` of each state."""
+    state = [f"{name}(k)" for name in labels.states]
+    signal = [f"{s.name}(k)" for s in labels.inputs]
+    applied = [f"{s.name}(k)" for s in labels.outputs[: law.inputs]]
+    out = []
+    for i, name in enumerate(applied):
+        terms = [*zip(law.input_state[i], state, strict=True), *zip(law.input_direct[i], signal, strict=True)]
+        out.append(f"{name} = {_sum(terms)}")
+    previous = labels.states[law.estimates :]
+    for i, name in enumerate(applied):
+        out.append(f"{labels.outputs[law.inputs + i].name}(k) = {name} - {previous[i]}(k)")
+    for i, name in enumerate(labels.states):
+        terms = [
+            *zip(law.state_update[i], state, strict=True),
+            *zip(law.signal_update[i], signal, strict=True),
+            *zip(law.applied_update[i], applied, strict=True),
+        ]
+        out.append(f"{name}(k+1) = {_sum(terms)}")
+    return out
+
+
+def _limits(inputs: DesignInputs) -> LawLimits | None:
+    limits = inputs.limits
+    if limits is None:
+        return None
+
+    def listed(values: NDArray[np.float64]) -> list[float | None]:
+        return [float(v) if np.isfinite(v) else None for v in values]
+
+    return LawLimits(
+        input_min=listed(limits.input_min), input_max=listed(limits.input_max), move_max=listed(limits.move_max)
+    )
+
+
+def export_response(request: ExportRequest, inputs: ExportInputs, outcome: ExportOutcome) -> ExportResponse:
+    """Turn the law into the ``state_space`` answer."""
+    plant = inputs.design.plant
+    law = outcome.law
+    labels = law_labels(plant, outcome.estimator)
+    system = law.system
+    states = labels.states
+    columns = [s.name for s in labels.inputs]
+    rows = [s.name for s in labels.outputs]
+    moves = rows[: law.inputs]
+    matrices = {
+        "a": _labelled(system.a, states, states),
+        "b": _labelled(system.b, states, columns),
+        "c": _labelled(system.c, rows, states),
+        "d": _labelled(system.d, rows, columns),
+        "state_update": _labelled(law.state_update, states, states),
+        "signal_update": _labelled(law.signal_update, states, columns),
+        "applied_update": _labelled(law.applied_update, states, moves),
+        "prediction": _labelled(law.prediction, [s.name for s in labels.inputs[: law.measured]], states),
+    }
+    return ExportResponse(
+        format="state_space",
+        sample_time=plant.sample_time,
+        inputs=labels.inputs,
+        outputs=labels.outputs,
+        states=states,
+        equations=difference_equations(law, labels),
+        tables=LawTables(**{name: _table(matrix) for name, matrix in matrices.items()}),
+        limits=_limits(inputs.design),
+        warnings=[WarningReport(code=w.code, message=w.message) for w in outcome.design.warnings],
+        fingerprint=design_fingerprint(request),
+        a=matrices["a"],
+        b=matrices["b"],
+        c=matrices["c"],
+        d=matrices["d"],
+        state_update=matrices["state_update"],
+        signal_update=matrices["signal_update"],
+        applied_update=matrices["applied_update"],
+        prediction=matrices["prediction"],
+    )
+
+
+def block_source(request: ExportRequest, inputs: ExportInputs, outcome: ExportOutcome, *, generated: str) -> str:
+    """The law as an IEC 61131-3 function block (:mod:`service.pipeline.structured_text`)."""
+    plant = inputs.design.plant
+    labels = law_labels(plant, outcome.estimator)
+    est = outcome.estimator
+    limits = inputs.design.limits
+    return structured_text(
+        outcome.law,
+        inputs=labels.inputs,
+        outputs=labels.outputs,
+        states=labels.states,
+        about=BlockText(
+            block_name=inputs.block_name,
+            fingerprint=design_fingerprint(request),
+            generated=generated,
+            sample_time=plant.sample_time,
+            estimator=f"{est.kind}, disturbance model {est.disturbance}",
+        ),
+        input_min=None if limits is None else limits.input_min,
+        input_max=None if limits is None else limits.input_max,
+        move_max=None if limits is None else limits.move_max,
+    )
+
+
+def run_export(request: ExportRequest, caps: Caps, generated: str) -> ExportResponse | str:
+    """Check, design and export: the whole of POST /design/export without HTTP.
+
+    Parameters
+    ----------
+    generated : str
+        The date written in a Structured Text header (ISO 8601, ``YYYY-MM-DD``).
+
+    Returns
+    -------
+    ExportResponse or str
+        The ``state_space`` answer, or the Structured Text source.
+
+    Raises
+    ------
+    InvalidRequest, NumericalError
+    """
+    inputs = check_export_request(request, caps)
+    outcome = compute_export(inputs)
+    if inputs.format == "structured_text":
+        return block_source(request, inputs, outcome, generated=generated)
+    return export_response(request, inputs, outcome)

@@ -1,0 +1,219 @@
+"""The fixed unconstrained law with its estimator: measurements, setpoints, disturbances to inputs.
+
+Without limits the controller with its estimator is a linear time-invariant system.  One
+step of the loop (:mod:`service.solver.evaluation.simulation`), with ``x(k|k-1)`` the
+prior estimate (plant states and disturbance estimate) and ``u(k-1)`` the last input ::
+
+    x(k|k)   = M x(k|k-1) + L y(k),               M = I - L Cy
+    u(k)     = (I - Ku) u(k-1) - K x(k|k) + Kr r(k) - Kd dm(k)
+    x(k+1|k) = A_a x(k|k) + B_a u(k) + Bd_a dm(k)
+
+``K = Kh (Fx_a - (1 (x) I_p) Z_d S)`` is the feedback on the augmented estimate of
+:func:`service.solver.estimation.realization.estimate_feedback_gain`, ``Kr = Kh (1 (x) Z_r)``
+the setpoint gain through the steady-state target's setpoint map ``Z_r`` (the identity for a
+reachable setpoint), ``Kd = Kh Fd`` the feed-forward gain on the measured disturbances
+(:mod:`service.solver.design.feedforward`).  On the law's state ``s = [x(k|k-1); u(k-1)]``
+and its inputs ``w = [y; r; dm]`` (substitution) ::
+
+    u(k)   = Cu s + Du w,        Cu = [-K M, I - Ku],   Du = [-K L, Kr, -Kd]
+    s(k+1) = Ap s + Bp w + Bu u(k)
+    Ap = [[A_a M, 0], [0, 0]],   Bp = [[A_a L, 0, Bd_a], [0, 0, 0]],   Bu = [B_a; I]
+
+The *split form* ``(Ap, Bp, Bu)`` lets a control system feed back the input it really
+applied (after clamping to limits), so that the estimator and ``u(k-1)`` stay true to the
+plant.  With ``u`` applied unchanged it is the linear system ::
+
+    s(k+1) = (Ap + Bu Cu) s + (Bp + Bu Du) w
+    [u; du] = [Cu; Cu - [0, I]] s + [Du; Du] w
+
+whose outputs are the inputs and the input moves ``du = u(k) - u(k-1)``.  The estimator's
+prediction of the measurements, ``y(k|k-1) = [Cy, 0] s``, replaces a bad measurement: the
+innovation of that output is then zero and the estimate runs on the model for that step.
+
+Everything here is in the design's (scaled) signals; :func:`law_in_units` changes the
+units of every signal and state by diagonal spans (a change of coordinates ``s_e = T s``,
+``w_e = W w``, ``u_e = S u``, common practice).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from service.solver.design.controller import ControllerDesign
+from service.solver.design.feedforward import disturbance_free_response
+from service.solver.estimation.estimator import Estimator
+from service.solver.estimation.loop import estimator_target
+from service.solver.estimation.realization import StateSpace, estimate_feedback_gain
+
+__all__ = ["FixedLaw", "fixed_law", "law_in_units"]
+
+
+@dataclass(frozen=True)
+class FixedLaw:
+    """The unconstrained law with its estimator, in split form and as one LTI system.
+
+    Attributes
+    ----------
+    input_state : ndarray, shape (m, ns)
+        ``Cu``: ``u(k) = Cu s + Du w``; ``ns = na + m``.
+    input_direct : ndarray, shape (m, nw)
+        ``Du``; ``nw = 2 p + md`` (measurements, setpoints, measured disturbances).
+    state_update : ndarray, shape (ns, ns)
+        ``Ap``.
+    signal_update : ndarray, shape (ns, nw)
+        ``Bp``.
+    applied_update : ndarray, shape (ns, m)
+        ``Bu``: how the applied input enters ``s(k+1)``.
+    prediction : ndarray, shape (p, ns)
+        ``[Cy, 0]``: the estimator's prediction ``y(k|k-1)`` of the measurements.
+    measured, setpoints, disturbances, estimates : int
+        ``p``, ``p``, ``md`` inputs; ``na`` estimator states (then ``m`` previous inputs).
+    """
+
+    input_state: NDArray[np.float64]
+    input_direct: NDArray[np.float64]
+    state_update: NDArray[np.float64]
+    signal_update: NDArray[np.float64]
+    applied_update: NDArray[np.float64]
+    prediction: NDArray[np.float64]
+    measured: int
+    setpoints: int
+    disturbances: int
+    estimates: int
+
+    @property
+    def inputs(self) -> int:
+        """``m``, the manipulated variables."""
+        return int(self.input_state.shape[0])
+
+    @property
+    def system(self) -> StateSpace:
+        """The law as one LTI system ``w -> [u; du]`` (module notes), the input applied unchanged."""
+        m, na = self.inputs, self.estimates
+        a = self.state_update + self.applied_update @ self.input_state
+        b = self.signal_update + self.applied_update @ self.input_direct
+        previous = np.zeros((m, na + m))
+        previous[:, na:] = np.eye(m)
+        c = np.vstack([self.input_state, self.input_state - previous])
+        d = np.vstack([self.input_direct, self.input_direct])
+        return StateSpace(a=a, b=b, c=c, d=d)
+
+
+def fixed_law(
+    design: ControllerDesign,
+    estimator: Estimator,
+    *,
+    b_disturbance: NDArray[np.float64] | None = None,
+) -> FixedLaw:
+    """Return the design's unconstrained law with its estimator (module notes).
+
+    Parameters
+    ----------
+    design : ControllerDesign
+        Without a terminal weight (its setpoint path is not part of this law).
+    estimator : Estimator
+        Of the same model, not ``full_state`` (the law reads measured outputs).
+    b_disturbance : ndarray, shape (n, md), optional
+        The model's measured-disturbance matrix ``Bd`` in the design's signals.
+
+    Returns
+    -------
+    FixedLaw
+        Equal, step by step, to :func:`service.solver.evaluation.simulation.simulate_loop`
+        with the unconstrained policy and the linear target maps.
+    """
+    assert not estimator.full_state, "the fixed law reads measured outputs: it needs an estimator"
+    assert design.terminal is None, "the terminal weight's setpoint path is not part of the fixed law"
+    na, m = estimator.b.shape
+    p = estimator.c_measured.shape[0]
+    pred = design.prediction
+    bd = np.zeros((estimator.state_size, 0)) if b_disturbance is None else np.asarray(b_disturbance, dtype=float)
+    md = bd.shape[1]
+    bda = np.vstack([bd, np.zeros((estimator.disturbance_size, md))])
+    kh = design.gain.horizon
+    feedback = estimate_feedback_gain(design, estimator)  # K, (m, na)
+    target = estimator_target(design, estimator)
+    setpoint_gain = kh @ np.tile(target.output_setpoint_map, (pred.penalized_steps, 1))  # Kh (1 (x) Z_r)
+    if md:
+        fd = disturbance_free_response(
+            estimator.a,
+            bda,
+            estimator.c_controlled,
+            prediction=pred.prediction,
+            first_penalized=pred.first_penalized,
+        )
+        feedforward = kh @ fd
+    else:
+        feedforward = np.zeros((m, 0))
+    lg, cy = estimator.gain, estimator.c_measured
+    update = np.eye(na) - lg @ cy  # M
+    cu = np.hstack([-feedback @ update, np.eye(m) - design.gain.previous_input])
+    du = np.hstack([-feedback @ lg, setpoint_gain, -feedforward])
+    ns, nw = na + m, 2 * p + md
+    ap = np.zeros((ns, ns))
+    ap[:na, :na] = estimator.a @ update
+    bp = np.zeros((ns, nw))
+    bp[:na, :p] = estimator.a @ lg
+    bp[:na, 2 * p :] = bda
+    bu = np.vstack([estimator.b, np.eye(m)])
+    prediction = np.hstack([cy, np.zeros((p, m))])
+    return FixedLaw(
+        input_state=cu,
+        input_direct=du,
+        state_update=ap,
+        signal_update=bp,
+        applied_update=bu,
+        prediction=prediction,
+        measured=p,
+        setpoints=p,
+        disturbances=md,
+        estimates=na,
+    )
+
+
+def law_in_units(
+    law: FixedLaw,
+    *,
+    state_span: NDArray[np.float64],
+    signal_span: NDArray[np.float64],
+    input_span: NDArray[np.float64],
+    measured_span: NDArray[np.float64],
+) -> FixedLaw:
+    """Return the same law with every signal and state multiplied by its span.
+
+    Parameters
+    ----------
+    law : FixedLaw
+    state_span : ndarray, shape (ns,)
+        ``T``: the new state is ``T s``.
+    signal_span : ndarray, shape (nw,)
+        ``W``: the new inputs are ``W w``.
+    input_span : ndarray, shape (m,)
+        ``S``: the new manipulated variables are ``S u``.
+    measured_span : ndarray, shape (p,)
+        The spans of the measurements (for the prediction ``y(k|k-1)``).
+
+    Returns
+    -------
+    FixedLaw
+        ``Cu_e = S Cu T^-1``, ``Du_e = S Du W^-1``, ``Ap_e = T Ap T^-1``, ``Bp_e = T Bp W^-1``,
+        ``Bu_e = T Bu S^-1``, prediction ``P Cp T^-1`` (diagonal scalings, no inverse formed).
+    """
+    t, w, s, pm = (np.asarray(v, dtype=float) for v in (state_span, signal_span, input_span, measured_span))
+    assert t.shape == (law.state_update.shape[0],) and w.shape == (law.signal_update.shape[1],), (t.shape, w.shape)
+    assert s.shape == (law.inputs,) and pm.shape == (law.measured,), (s.shape, pm.shape)
+    return FixedLaw(
+        input_state=s[:, None] * law.input_state / t[None, :],
+        input_direct=s[:, None] * law.input_direct / w[None, :],
+        state_update=t[:, None] * law.state_update / t[None, :],
+        signal_update=t[:, None] * law.signal_update / w[None, :],
+        applied_update=t[:, None] * law.applied_update / s[None, :],
+        prediction=pm[:, None] * law.prediction / t[None, :],
+        measured=law.measured,
+        setpoints=law.setpoints,
+        disturbances=law.disturbances,
+        estimates=law.estimates,
+    )
