@@ -1,7 +1,8 @@
 """Prometheus metrics (prometheus-client) and the GET /metrics endpoint.
 
-Requests are labelled by route template (``/design``, never a raw path), method and status,
-so the label sets stay few.  With several worker processes, set ``PROMETHEUS_MULTIPROC_DIR``
+Requests are labelled by route template (``/design``, never a raw path; ``<unmatched>`` for
+every unknown one), method (``other`` for every non-standard one) and status, so the label
+sets are fixed and small whatever callers send.  With several worker processes, set ``PROMETHEUS_MULTIPROC_DIR``
 to an empty writable folder before start-up (``movecast serve`` does it for you when
 ``MOVECAST_WORKERS`` > 1): every process then writes its samples there and /metrics adds
 them up (prometheus-client's multiprocess mode).
@@ -119,6 +120,6 @@ router = APIRouter(tags=["operations"])
 
 
 @router.get("/metrics", include_in_schema=False)
-def metrics() -> Response:
-    """Prometheus metrics in the text exposition format."""
+async def metrics() -> Response:
+    """Prometheus metrics in the text exposition format (on the event loop: no compute pool)."""
     return Response(_exposition(), media_type=CONTENT_TYPE_LATEST)

@@ -32,6 +32,7 @@ __all__ = [
     "BodyLimitMiddleware",
     "RequestContextMiddleware",
     "flat_routes",
+    "method_label",
     "route_template",
     "sane_request_id",
 ]
@@ -41,6 +42,10 @@ REQUEST_ID_HEADER = "X-Request-ID"
 #: trace ids); anything else is replaced by a fresh id, so logs never carry junk.
 _SANE_ID = re.compile(r"[A-Za-z0-9._:-]{1,128}")
 UNMATCHED = "<unmatched>"
+#: Methods kept as metric labels; any other method is counted as :data:`OTHER_METHOD`, so a
+#: caller cannot grow the label set (and /metrics) with made-up methods.
+KNOWN_METHODS = frozenset({"GET", "HEAD", "POST", "PUT", "PATCH", "DELETE", "OPTIONS"})
+OTHER_METHOD = "other"
 #: Largest problem body read back to find its kind for the rejection metric.
 _PEEK_BYTES = 65_536
 
@@ -56,6 +61,11 @@ def sane_request_id(value: str | None) -> str | None:
 def flat_routes(routes: list[BaseRoute]) -> list[Any]:
     """Every route of an app, included routers walked through; each has ``path``, ``matches``."""
     return list(_flatten(routes)) if _flatten is not None else list(routes)
+
+
+def method_label(method: str) -> str:
+    """The metric label of an HTTP method: itself when standard, else ``other``."""
+    return method if method in KNOWN_METHODS else OTHER_METHOD
 
 
 def route_template(scope: Scope) -> str:
@@ -79,7 +89,9 @@ class RequestContextMiddleware:
     - One ``movecast.access`` line per request: method, route, status, duration_ms,
       request_id, client.
     - ``movecast_requests_total`` and ``movecast_request_duration_seconds`` by route
-      template; problem responses also count in ``movecast_rejected_requests_total``.
+      template (``<unmatched>`` for any unknown path), method (``other`` for any non-standard
+      one) and status; problem responses also count in ``movecast_rejected_requests_total``.
+      Every label comes from a fixed set, so no request can add series.
     - An exception escaping the app (a handler, another middleware) is logged with its
       traceback and answered as a 500 problem without one.
     """
@@ -131,7 +143,7 @@ class RequestContextMiddleware:
 
     @staticmethod
     def _record(scope: Scope, route: str, state: dict[str, Any], seconds: float) -> None:
-        method, status = scope.get("method", ""), str(state["status"])
+        method, status = method_label(scope.get("method", "")), str(state["status"])
         REQUESTS.labels(method=method, route=route, status=status).inc()
         REQUEST_SECONDS.labels(method=method, route=route, status=status).observe(seconds)
         if state["problem"]:

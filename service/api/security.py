@@ -3,8 +3,10 @@
 With no key configured (``MOVECAST_API_KEYS`` and ``MOVECAST_API_KEYS_FILE`` both empty) the
 service is open and says so in a warning at start-up.  With keys, every path needs one except
 :data:`OPEN_PATHS`: the health endpoints (probes carry no credentials) and the OpenAPI
-document and its pages (the contract is public; it is committed with the code).  /metrics
-is protected like the API.
+document and its pages (the contract is public; it is committed with the code), and the
+browser workbench (``/`` and :data:`OPEN_PREFIXES`: static files and the bundled examples,
+no data; the page sends a key with every API call it makes).  /metrics is protected like the
+API.  Paths are compared without the ASGI ``root_path`` (a reverse proxy's prefix).
 
 Keys are compared in constant time: the SHA-256 digest of the presented key against the
 digest of every configured key with :func:`hmac.compare_digest`, all keys every time, so the
@@ -23,10 +25,28 @@ from starlette.types import ASGIApp, Receive, Scope, Send
 
 from service.api.problems import problem_response
 
-__all__ = ["OPEN_PATHS", "ApiKeyMiddleware", "KeyRing"]
+__all__ = ["OPEN_PATHS", "OPEN_PREFIXES", "ApiKeyMiddleware", "KeyRing", "is_open_path", "route_path"]
 
-OPEN_PATHS = frozenset({"/healthz", "/readyz", "/openapi.json", "/docs", "/docs/oauth2-redirect", "/redoc"})
+OPEN_PATHS = frozenset({"/healthz", "/readyz", "/openapi.json", "/docs", "/docs/oauth2-redirect", "/redoc", "/"})
+#: Path prefixes open to anyone: the workbench's static files and bundled examples.
+OPEN_PREFIXES = ("/workbench/",)
 REALM = 'Bearer realm="movecast"'
+
+
+def route_path(scope: Scope) -> str:
+    """The request path without the ``root_path`` prefix a server or proxy put in front."""
+    path: str = scope.get("path", "")
+    root: str = scope.get("root_path", "")
+    if not root or not path.startswith(root):
+        return path
+    if path == root:
+        return "/"
+    return path[len(root) :] if path[len(root)] == "/" else path
+
+
+def is_open_path(path: str) -> bool:
+    """Whether ``path`` (without the root path) needs no API key."""
+    return path in OPEN_PATHS or (path.startswith(OPEN_PREFIXES) and ".." not in path)
 
 
 class KeyRing:
@@ -66,7 +86,7 @@ class ApiKeyMiddleware:
         self.keys = keys
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
-        if scope["type"] != "http" or scope.get("path") in OPEN_PATHS:
+        if scope["type"] != "http" or is_open_path(route_path(scope)):
             await self.app(scope, receive, send)
             return
         header = Headers(scope=scope).get("authorization")

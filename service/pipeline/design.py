@@ -422,6 +422,7 @@ def _plant_report(request: DesignRequest, plant: DiscretePlant, outcome: DesignO
         gain_condition_number=None if condition is None else _optional(condition),
         open_loop_poles=_poles(outcome.properties.poles),
         sampled_model=sampled,
+        reduction=plant.reduction,
     )
 
 

@@ -11,7 +11,7 @@ from functools import cache
 from pathlib import Path
 from typing import Any
 
-__all__ = ["example_path", "load_example"]
+__all__ = ["example_path", "list_examples", "load_example"]
 
 
 def _folders() -> list[Path]:
@@ -26,6 +26,14 @@ def example_path(name: str) -> Path:
         if candidate.is_file():
             return candidate
     raise FileNotFoundError(f"bundled example {name!r} is missing from this installation")
+
+
+def list_examples() -> list[str]:
+    """Return the file names of the bundled example requests (``*.json``), sorted."""
+    for folder in _folders():
+        if folder.is_dir():
+            return sorted(p.name for p in folder.glob("*.json") if p.is_file())
+    return []
 
 
 @cache

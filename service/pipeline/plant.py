@@ -12,9 +12,11 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.errors import FieldProblem, InvalidRequest
+from service.pipeline.step_response import step_response_parts
 from service.schemas.common import Caps, check_matrix, pointer
 from service.schemas.model import PlantModel, StateSpaceModel, TransferElementModel, TransferMatrixModel
 from service.schemas.signals import SignalTag
+from service.schemas.step_response import ReductionReport, StepResponseModel
 from service.solver.models.sampling import sample_zero_order_hold
 from service.solver.models.transfer import (
     STIFFNESS_LIMIT,
@@ -57,6 +59,8 @@ class DiscretePlant:
     state_labels : tuple of str
     sampled : bool
         The matrices were sampled from a continuous model here.
+    reduction : ReductionReport or None
+        What the balanced truncation of a step-response model kept, when asked.
     """
 
     a: NDArray[np.float64]
@@ -72,6 +76,7 @@ class DiscretePlant:
     measured: tuple[Signal, ...]
     state_labels: tuple[str, ...]
     sampled: bool
+    reduction: ReductionReport | None = None
 
     @property
     def states(self) -> int:
@@ -417,8 +422,11 @@ def plant_arrays(
     service.errors.NumericalError
         When a continuous model cannot be sampled (its exponential overflows).
     """
+    reduction = None
     if isinstance(model, StateSpaceModel):
         parts, problems = _state_space(model, caps, where)
+    elif isinstance(model, StepResponseModel):
+        parts, reduction, problems = step_response_parts(model, caps, where)
     else:
         parts, problems = _transfer_matrix(model, caps, where)
     if parts is None:
@@ -449,6 +457,7 @@ def plant_arrays(
             outputs=outputs,
             disturbances=disturbances,
             measured=measured,
+            reduction=reduction,
             **parts,  # type: ignore[arg-type]
         ),
         [],

@@ -11,6 +11,7 @@ from service.schemas.estimator import EstimatorRequest
 from service.schemas.limits import LimitCheckReport, LimitsRequest
 from service.schemas.model import PlantModel
 from service.schemas.robustness import RobustnessReport
+from service.schemas.step_response import ReductionReport
 from service.schemas.tuning import Horizons, Weights
 
 __all__ = [
@@ -182,6 +183,9 @@ class PlantReport(ResponseModel):
     )
     open_loop_poles: list[PoleReport]
     sampled_model: SampledModelReport | None = Field(default=None, description="When analysis.sampled_model is true.")
+    reduction: ReductionReport | None = Field(
+        default=None, description="For a step-response model with a reduction: what the balanced truncation kept."
+    )
 
 
 class WarningReport(ResponseModel):

@@ -8,8 +8,16 @@ from pydantic import Field
 
 from service.schemas.common import FiniteFloat, Matrix, RequestModel
 from service.schemas.signals import TagList
+from service.schemas.step_response import StepResponseModel
 
-__all__ = ["MODEL_KINDS", "PlantModel", "StateSpaceModel", "TransferElementModel", "TransferMatrixModel"]
+__all__ = [
+    "MODEL_KINDS",
+    "PlantModel",
+    "StateSpaceModel",
+    "StepResponseModel",
+    "TransferElementModel",
+    "TransferMatrixModel",
+]
 
 Positive = Annotated[FiniteFloat, Field(gt=0)]
 
@@ -88,7 +96,7 @@ class TransferMatrixModel(_Tagged):
     sample_time: Positive = Field(description="Sample time, in the time unit of the elements.")
 
 
-PlantModel = Annotated[StateSpaceModel | TransferMatrixModel, Field(discriminator="kind")]
+PlantModel = Annotated[StateSpaceModel | TransferMatrixModel | StepResponseModel, Field(discriminator="kind")]
 
 #: The values of ``kind``; pydantic puts the chosen one into error locations.
-MODEL_KINDS = frozenset({"state_space", "transfer_matrix"})
+MODEL_KINDS = frozenset({"state_space", "transfer_matrix", "step_response"})

@@ -117,3 +117,31 @@ def test_multiprocess_mode_adds_up_the_samples_of_every_process(tmp_path):
         for s in family.samples:
             found[(s.name, frozenset(s.labels.items()))] = s.value
     assert value(found, "movecast_requests_total", method="GET", route="/healthz", status="200") == 6
+
+
+def test_made_up_methods_and_paths_add_no_series(make_client):
+    """Every label comes from a fixed set: 180 made-up methods and paths (401s and 404s, the
+    unauthenticated case of the report) add at most the few ``other``/``<unmatched>`` series."""
+    client = make_client(api_keys=KEY)
+    auth = {"Authorization": f"Bearer {KEY}"}
+    samples(client, **auth)
+    for i in range(5):  # warm-up: every series these requests can ever create
+        client.request(f"M{i:06d}X", "/healthz")
+        client.request(f"M{i:06d}X", f"/no/such/{i}", headers=auth)
+        client.get(f"/junk-{i}")
+    before = samples(client, **auth)
+    size_before = len(client.get("/metrics", headers=auth).content)
+    for i in range(60):
+        client.request(f"Z{i:06d}Q", "/healthz")
+        client.request(f"W{i:06d}", f"/path/{i}/x", headers=auth)
+        client.get(f"/other-{i}?q={i}")
+    after = samples(client, **auth)
+    size_after = len(client.get("/metrics", headers=auth).content)
+    new = {key for key in set(after) - set(before) if not key[0].endswith(("_bucket", "_created"))}
+    assert not new, sorted(new)
+    assert size_after - size_before < 2_000
+    methods = {dict(labels).get("method") for name, labels in after if name == "movecast_requests_total"}
+    assert methods <= {"GET", "HEAD", "POST", "PUT", "PATCH", "DELETE", "OPTIONS", "other"}, methods
+    routes = {dict(labels).get("route") for name, labels in after if name == "movecast_requests_total"}
+    assert not [r for r in routes if "/path/" in r or "other-" in r or "no/such" in r or "junk" in r], routes
+    assert value(after, "movecast_requests_total", method="other", route="/healthz", status="405") >= 60

@@ -1,9 +1,15 @@
-"""GET /healthz (the process is alive) and GET /readyz (it accepts work)."""
+"""GET /healthz (the process is alive) and GET /readyz (it accepts work).
+
+Both handlers are ``async`` and touch nothing but the app's state: they run on the event
+loop itself, never in the thread pool or the solver processes the compute routes wait in,
+so a probe answers at once however busy the solvers are.  ``HEAD /healthz`` answers the same
+status without a body (load balancers and ``curl -I`` use it).
+"""
 
 from __future__ import annotations
 
 from fastapi import APIRouter, Request
-from fastapi.responses import JSONResponse
+from fastapi.responses import JSONResponse, Response
 
 from service import __version__
 
@@ -13,13 +19,19 @@ router = APIRouter(tags=["health"])
 
 
 @router.get("/healthz")
-def healthz() -> dict[str, str]:
+async def healthz() -> dict[str, str]:
     """Liveness: answers as long as the process serves HTTP."""
     return {"status": "ok", "version": __version__}
 
 
+@router.head("/healthz", include_in_schema=False)
+async def healthz_head() -> Response:
+    """Liveness for ``HEAD``: the status of GET /healthz, no body."""
+    return Response(status_code=200, media_type="application/json")
+
+
 @router.get("/readyz", responses={503: {"description": "Starting or shutting down."}})
-def readyz(request: Request) -> JSONResponse:
+async def readyz(request: Request) -> JSONResponse:
     """Readiness: 200 while the service accepts work, 503 while starting or shutting down."""
     ready = bool(getattr(request.app.state, "ready", False))
     return JSONResponse({"status": "ready" if ready else "not_ready"}, status_code=200 if ready else 503)

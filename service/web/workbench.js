@@ -1,0 +1,431 @@
+// The movecast workbench: edit a request, post it to the service, look at the answer.
+// Every URL is relative to the page, so the page works at the root and under a prefix.
+
+import { Editor, prettyJson, syntaxErrorOffset } from "./editor.js";
+import { drawPoleMap, drawResponses, drawRobustness, drawSweep, saveImage } from "./charts.js";
+import { fmt, matrixTable, recordTable } from "./tables.js";
+
+const KEY_STORE = "movecast.api-key";
+const $ = (id) => document.getElementById(id);
+const state = { request: null, answer: null, endpoint: null, examples: [] };
+const editor = new Editor($("request-text"), $("field-notes"));
+const authRequired = document.querySelector('meta[name="movecast-auth"]')?.content === "required";
+
+function url(path) {
+  return new URL(path, document.baseURI).toString();
+}
+
+function setStatus(text) {
+  $("status").textContent = text;
+}
+
+function apiKey() {
+  return $("api-key").value.trim();
+}
+
+function headers() {
+  const h = { "Content-Type": "application/json", Accept: "application/json" };
+  const key = apiKey();
+  if (key) h.Authorization = `Bearer ${key}`;
+  return h;
+}
+
+// ---- examples and the editor ---------------------------------------------------------
+
+function guessEndpoint(body) {
+  if (body && typeof body === "object") {
+    if (body.parameter !== undefined && body.design !== undefined) return "design/sweep";
+    if (body.scenario !== undefined) return "simulate";
+  }
+  return "design";
+}
+
+async function loadExamples() {
+  const response = await fetch(url("workbench/examples"));
+  state.examples = (await response.json()).filter((e) => [...$("endpoint").options].some((o) => o.value === e.endpoint));
+  const select = $("example");
+  select.replaceChildren();
+  for (const e of state.examples) {
+    const option = document.createElement("option");
+    option.value = e.name;
+    option.textContent = `${e.name} (POST /${e.endpoint})`;
+    select.append(option);
+  }
+  const first = state.examples.find((e) => e.name === "design_request.json") || state.examples[0];
+  if (first) {
+    select.value = first.name;
+    await openExample(first.name);
+  }
+}
+
+async function openExample(name) {
+  const entry = state.examples.find((e) => e.name === name);
+  const response = await fetch(url(`workbench/examples/${encodeURIComponent(name)}`));
+  const body = await response.json();
+  editor.text = prettyJson(body);
+  $("endpoint").value = entry ? entry.endpoint : guessEndpoint(body);
+  clearErrors();
+  setStatus(`Opened ${name}.`);
+}
+
+$("example").addEventListener("change", (event) => openExample(event.target.value));
+
+$("upload").addEventListener("change", async (event) => {
+  const file = event.target.files?.[0];
+  if (!file) return;
+  const text = await file.text();
+  editor.text = text;
+  clearErrors();
+  try {
+    $("endpoint").value = guessEndpoint(JSON.parse(text));
+    setStatus(`Opened ${file.name}.`);
+  } catch (error) {
+    showSyntaxError(text, error);
+  }
+});
+
+$("format").addEventListener("click", () => {
+  try {
+    editor.text = prettyJson(JSON.parse(editor.text));
+    clearErrors();
+  } catch (error) {
+    showSyntaxError(editor.text, error);
+  }
+});
+
+$("request-text").addEventListener("keydown", (event) => {
+  if (event.key === "Enter" && (event.ctrlKey || event.metaKey)) {
+    event.preventDefault();
+    run();
+  }
+});
+
+// ---- problems ------------------------------------------------------------------------
+
+function clearErrors() {
+  editor.clear();
+  $("errors").hidden = true;
+  $("errors-list").replaceChildren();
+  $("errors-detail").textContent = "";
+  $("key-error").textContent = "";
+}
+
+function showProblems(detail, problems) {
+  $("errors").hidden = false;
+  $("errors-detail").textContent = detail;
+  const list = $("errors-list");
+  list.replaceChildren();
+  editor.mark(problems);
+  for (const problem of problems) {
+    const item = document.createElement("li");
+    item.dataset.pointer = problem.pointer;
+    const button = document.createElement("button");
+    button.type = "button";
+    button.className = "pointer";
+    button.textContent = problem.pointer || "(the whole body)";
+    button.setAttribute("aria-label", `Go to ${problem.pointer || "the start of the body"} in the editor`);
+    button.addEventListener("click", () => editor.reveal(problem.pointer));
+    item.append(button, document.createTextNode(` ${problem.detail}`));
+    list.append(item);
+  }
+}
+
+function showSyntaxError(text, error) {
+  const offset = syntaxErrorOffset(text, String(error.message));
+  showProblems("The request is not valid JSON; nothing was sent.", [{ pointer: "", detail: String(error.message), offset }]);
+  setStatus("Not valid JSON.");
+}
+
+// ---- running -------------------------------------------------------------------------
+
+async function run() {
+  clearErrors();
+  const text = editor.text;
+  let body;
+  try {
+    body = JSON.parse(text);
+  } catch (error) {
+    showSyntaxError(text, error);
+    return;
+  }
+  const endpoint = $("endpoint").value;
+  $("run").disabled = true;
+  setStatus(`Running POST /${endpoint}…`);
+  const started = performance.now();
+  try {
+    const response = await fetch(url(endpoint), { method: "POST", headers: headers(), body: text });
+    const answer = await response.json().catch(() => null);
+    if (!response.ok) {
+      handleFailure(response, answer);
+      return;
+    }
+    state.request = body;
+    state.answer = answer;
+    state.endpoint = endpoint;
+    render(endpoint, answer, body);
+    setStatus(`POST /${endpoint} answered in ${Math.round(performance.now() - started)} ms.`);
+  } catch (error) {
+    setStatus(`The service could not be reached: ${error.message}`);
+  } finally {
+    $("run").disabled = false;
+  }
+}
+
+function handleFailure(response, problem) {
+  const detail = problem?.detail || `The service answered ${response.status}.`;
+  if (response.status === 401) {
+    $("key-row").hidden = false;
+    $("key-error").textContent = detail;
+    showProblems(detail, []);
+    $("api-key").focus();
+    setStatus("An API key is needed.");
+    return;
+  }
+  const problems = Array.isArray(problem?.errors) ? problem.errors.map((e) => ({ pointer: e.pointer ?? "", detail: e.detail ?? "" })) : [];
+  showProblems(detail, problems);
+  setStatus(`POST /${$("endpoint").value}: ${response.status} ${problem?.title || ""}`.trim());
+}
+
+$("run").addEventListener("click", run);
+
+// ---- the answer ----------------------------------------------------------------------
+
+function show(id, visible) {
+  $(id).hidden = !visible;
+}
+
+function render(endpoint, answer, request) {
+  for (const id of ["summary", "poles", "responses", "robustness", "gains", "sweep", "downloads"]) show(id, false);
+  if (endpoint === "design/sweep") {
+    renderSweep(answer, request);
+  } else {
+    const design = endpoint === "simulate" ? answer.design : answer;
+    if (design) renderDesign(design, answer);
+    if (endpoint === "simulate") renderResponses(answer, request);
+  }
+  show("downloads", true);
+  $("download-series").hidden = endpoint !== "simulate";
+}
+
+function setFigure(id, value) {
+  const node = $(id);
+  node.textContent = fmt(value);
+  node.dataset.value = value === null || value === undefined ? "" : String(value);
+}
+
+function marginalModes(design) {
+  const listed = design.closed_loop?.marginal_modes ?? design.marginal_modes ?? design.closed_loop?.marginal ?? [];
+  const modes = Array.isArray(listed) ? listed : [];
+  const poles = modes.map((m) => m.pole ?? m).filter((p) => typeof p?.real === "number" && typeof p?.imag === "number");
+  const onCircle = (design.closed_loop?.poles || []).filter((p) => Math.abs(Math.hypot(p.real, p.imag) - 1) <= 1e-9);
+  return { modes, poles: poles.length ? poles : onCircle };
+}
+
+function renderDesign(design, whole) {
+  show("summary", true);
+  setFigure("spectral-radius", design.closed_loop?.spectral_radius);
+  $("stable").textContent = design.closed_loop?.stable ? "stable (all poles inside the unit circle)" : "NOT stable";
+  const h = design.hessian || {};
+  setFigure("condition-number", h.condition_number);
+  $("eigenvalues").textContent = `${fmt(h.smallest_eigenvalue)}, ${fmt(h.largest_eigenvalue)}`;
+  $("hessian-size").textContent = h.size ?? "—";
+  const loop = whole.whole_loop;
+  $("whole-loop").textContent = loop ? `spectral radius ${fmt(loop.spectral_radius)}, ${loop.stable ? "stable" : "NOT stable"}` : "— (no estimator in this answer)";
+  $("conditioning").textContent = conditioningText(h);
+  const warnings = [...(design.warnings || []), ...(whole !== design ? whole.warnings || [] : [])];
+  const list = $("warnings");
+  list.replaceChildren();
+  if (!warnings.length) list.append(Object.assign(document.createElement("li"), { textContent: "None." }));
+  for (const w of warnings) {
+    const item = document.createElement("li");
+    const code = document.createElement("code");
+    code.textContent = w.code;
+    item.append(code, document.createTextNode(`: ${w.message}`));
+    const fix = w.fix ?? w.suggestion ?? w.remedy;
+    if (fix) item.append(document.createTextNode(` Fix: ${typeof fix === "string" ? fix : JSON.stringify(fix)}`));
+    list.append(item);
+  }
+  $("fingerprint").textContent = whole.fingerprint || design.fingerprint || "";
+
+  show("poles", true);
+  const estimator = whole.estimator?.poles || whole.whole_loop?.estimator_poles || design.robustness?.estimator?.poles || [];
+  const marginal = marginalModes(design);
+  const poleDiv = $("pole-map");
+  poleDiv.dataset.filename = "poles";
+  drawPoleMap(poleDiv, { closed: design.closed_loop?.poles || [], open: design.plant?.open_loop_poles || [], estimator, marginal: marginal.poles });
+  $("marginal").textContent = marginalText(marginal);
+  renderPoleTable(design, estimator);
+
+  if (design.robustness?.frequencies) {
+    show("robustness", true);
+    drawRobustness($("robustness-charts"), design.robustness);
+    $("robustness-text").textContent = robustnessText(design.robustness);
+  }
+  renderGains(design);
+}
+
+function conditioningText(h) {
+  if (typeof h.condition_number !== "number") return "";
+  const digits = Math.log10(h.condition_number);
+  return `The Hessian G'QG + R of size ${h.size} has condition number ${fmt(h.condition_number, 4)}: about ${digits.toFixed(1)} of the ~16 decimal digits of double precision are at risk in the optimal moves. `
+    + (digits > 10 ? "That is high: raise the move weights, shorten the control horizon or block the moves." : "That is comfortable for double precision.");
+}
+
+function marginalText({ modes, poles }) {
+  if (modes.length) {
+    return modes.map((m) => [m.cause ?? m.message ?? "", m.fix ? `Fix: ${m.fix}` : ""].filter(Boolean).join(" ")).filter(Boolean).join(" ")
+      || `${modes.length} marginal mode(s), marked with squares.`;
+  }
+  return poles.length ? `${poles.length} closed-loop pole(s) on the unit circle, marked with squares; see the warnings for the cause.` : "No closed-loop pole on the unit circle.";
+}
+
+function renderPoleTable(design, estimator) {
+  const rows = [];
+  const add = (kind, poles) => poles.forEach((p) => rows.push({ kind, ...p }));
+  add("closed loop", design.closed_loop?.poles || []);
+  add("open loop", design.plant?.open_loop_poles || []);
+  add("estimator", estimator);
+  $("pole-table").replaceChildren(recordTable({
+    id: "poles-list", caption: "Poles",
+    columns: [["kind", (r) => r.kind], ["real", (r) => r.real], ["imaginary", (r) => r.imag], ["modulus", (r) => Math.hypot(r.real, r.imag)]],
+    records: rows,
+  }));
+}
+
+function robustnessText(r) {
+  const parts = [];
+  for (const [key, where] of [["plant_output", "plant output"], ["plant_input", "plant input"]]) {
+    const b = r[key];
+    if (!b) continue;
+    parts.push(`At the ${where}: peak |S| ${fmt(b.peak_sensitivity, 4)} (${fmt(b.peak_sensitivity_db, 3)} dB) at ${fmt(b.peak_sensitivity_frequency, 4)} rad per time unit, peak |T| ${fmt(b.peak_complementary, 4)} at ${fmt(b.peak_complementary_frequency, 4)}, bandwidth ${fmt(b.bandwidth, 4)}.`);
+  }
+  if (r.estimator) parts.push(`Estimator (${r.estimator.kind}) spectral radius ${fmt(r.estimator.spectral_radius)}.`);
+  return parts.join(" ");
+}
+
+function renderGains(design) {
+  const g = design.gain;
+  if (!g) return;
+  show("gains", true);
+  const labels = g.labels || {};
+  const rows = labels.rows || [];
+  const box = $("gain-tables");
+  box.replaceChildren();
+  const tables = [
+    ["setpoint", "Kr: setpoint gain", labels.setpoint],
+    ["state", "Kx: state gain", labels.state],
+    ["previous_input", "Ku: previous-input gain", labels.previous_input],
+    ["disturbance", "Kd: measured-disturbance gain", labels.disturbance],
+  ];
+  for (const [key, caption, columns] of tables) {
+    if (!Array.isArray(g[key]) || !g[key].length) continue;
+    box.append(matrixTable({ id: `gain-${key}`, caption, rows, columns: columns || [], values: g[key], corner: "move of" }));
+  }
+  if (Array.isArray(g.horizon) && g.horizon.length) {
+    const details = document.createElement("details");
+    const summary = document.createElement("summary");
+    summary.textContent = `Kh: the horizon gain (${g.horizon.length} × ${g.horizon[0].length})`;
+    details.append(summary, matrixTable({ id: "gain-horizon", caption: "Kh: horizon gain on the free-response error", rows, columns: labels.horizon || [], values: g.horizon, corner: "move of" }));
+    box.append(details);
+  }
+  const plantBox = $("plant-tables");
+  plantBox.replaceChildren();
+  for (const [key, caption] of [["steady_state_gain", "Steady-state gain"], ["relative_gain_array", "Relative gain array"], ["ramp_rate", "Ramp rate (integrating outputs)"]]) {
+    const m = design.plant?.[key];
+    if (m && Array.isArray(m.values)) plantBox.append(matrixTable({ id: `plant-${key}`, caption, rows: m.rows || [], columns: m.columns || [], values: m.values }));
+  }
+}
+
+function renderResponses(answer, request) {
+  show("responses", true);
+  drawResponses($("response-charts"), answer, request);
+  const perf = answer.performance;
+  const box = $("performance");
+  box.replaceChildren();
+  if (perf?.outputs?.length) {
+    box.append(recordTable({
+      id: "performance-outputs", caption: "Outputs after the first setpoint change",
+      columns: [["output", (o) => o.name], ["step", (o) => o.step], ["rise time", (o) => o.rise_time], ["settling time", (o) => o.settling_time],
+        ["overshoot (%)", (o) => o.overshoot_percent], ["IAE", (o) => o.integral_absolute_error], ["final offset", (o) => o.final_offset]],
+      records: perf.outputs,
+    }));
+  }
+  if (perf?.inputs?.length) {
+    box.append(recordTable({
+      id: "performance-inputs", caption: "Inputs", columns: [["input", (o) => o.name], ["total move", (o) => o.total_move], ["largest move", (o) => o.largest_move]],
+      records: perf.inputs,
+    }));
+  }
+  if (answer.diverged_at !== null && answer.diverged_at !== undefined) {
+    box.append(Object.assign(document.createElement("p"), { textContent: `The run diverged at step ${answer.diverged_at}.` }));
+  }
+}
+
+function renderSweep(answer, request) {
+  show("sweep", true);
+  const { chosen, isChosen } = drawSweep($("sweep-charts"), answer, request);
+  $("sweep-text").textContent = `${answer.parameter}${request.signal !== undefined ? ` of signal ${request.signal}` : ""} at ${answer.entries?.length ?? 0} values`
+    + (chosen !== undefined ? `; the base request's value ${chosen} is starred.` : ".");
+  $("sweep-table").replaceChildren(recordTable({
+    id: "sweep-entries", caption: "Sweep entries",
+    columns: [["value", (e) => e.value], ["status", (e) => e.status], ["spectral radius", (e) => e.spectral_radius], ["stable", (e) => (e.stable === undefined || e.stable === null ? null : e.stable ? "yes" : "no")],
+      ["condition number", (e) => e.condition_number], ["peak sensitivity", (e) => e.peak_sensitivity], ["problem", (e) => e.problem?.detail ?? (e.problem ? JSON.stringify(e.problem) : null)]],
+    records: answer.entries || [],
+    highlight: (e) => isChosen(e.value),
+  }));
+}
+
+// ---- downloads -----------------------------------------------------------------------
+
+function download(name, type, text) {
+  const link = document.createElement("a");
+  link.href = URL.createObjectURL(new Blob([text], { type }));
+  link.download = name;
+  document.body.append(link);
+  link.click();
+  setTimeout(() => { URL.revokeObjectURL(link.href); link.remove(); }, 1000);
+}
+
+function csvCell(value) {
+  if (value === null || value === undefined) return "";
+  const text = String(value);
+  return /[",\r\n]/.test(text) ? `"${text.replace(/"/g, '""')}"` : text;
+}
+
+/** The series of a /simulate answer as CSV: time, outputs, setpoints, inputs, measurements. */
+export function seriesCsv(answer) {
+  const c = answer.columns || {};
+  const blocks = [["outputs", c.outputs], ["setpoints", c.setpoints], ["inputs", c.inputs], ["measured", c.measured]].filter(([key, names]) => Array.isArray(answer[key]) && names?.length);
+  const header = ["time", ...blocks.flatMap(([, names]) => names)];
+  const lines = [header.map(csvCell).join(",")];
+  (answer.time || []).forEach((t, k) => {
+    lines.push([t, ...blocks.flatMap(([key]) => answer[key][k])].map(csvCell).join(","));
+  });
+  return `${lines.join("\r\n")}\r\n`;
+}
+
+$("download-request").addEventListener("click", () => download("request.json", "application/json", `${JSON.stringify(state.request, null, 2)}\n`));
+$("download-answer").addEventListener("click", () => download(`answer-${state.endpoint.replace("/", "-")}.json`, "application/json", `${JSON.stringify(state.answer, null, 2)}\n`));
+$("download-series").addEventListener("click", () => download("series.csv", "text/csv", seriesCsv(state.answer)));
+document.addEventListener("click", (event) => {
+  const button = event.target.closest?.("button.save-image");
+  if (button) saveImage($(button.dataset.chart));
+});
+
+// ---- start ---------------------------------------------------------------------------
+
+function start() {
+  if (authRequired) {
+    $("key-row").hidden = false;
+    $("api-key").value = sessionStorage.getItem(KEY_STORE) || "";
+  }
+  $("api-key").addEventListener("input", () => {
+    const key = apiKey();
+    if (key) sessionStorage.setItem(KEY_STORE, key);
+    else sessionStorage.removeItem(KEY_STORE);
+  });
+  loadExamples().then(() => document.body.setAttribute("data-ready", "true"));
+}
+
+if (window.Plotly) start();
+else window.addEventListener("load", start);

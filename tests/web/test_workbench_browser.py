@@ -1,0 +1,341 @@
+"""The workbench in a real browser: the page from a real server, the bundled examples run.
+
+Each test loads the page from a movecast server on 127.0.0.1 in the system's headless
+Chromium.  What the page shows is checked against the service's own answer to the same
+request (fetched with httpx), and the plotted closed-loop poles against numpy's eigenvalues
+of the closed-loop matrix built from the answer's gains (numpy.linalg.eigvals as the
+reference; the closed-loop form [[A - B Kx, B (I - Ku)], [-Kx, I - Ku]] of the incremental
+formulation, see the README).
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import struct
+from typing import Any
+
+import numpy as np
+import pytest
+
+from service.pipeline.examples import list_examples, load_example
+from tests.web.conftest import KEY
+
+pytestmark = pytest.mark.filterwarnings("ignore::ResourceWarning")
+
+ENDPOINTS = {"design_request": "/design", "simulate_request": "/simulate", "sweep_request": "/design/sweep"}
+READY = "body[data-ready=true]"
+
+
+def endpoint_of(name: str) -> str | None:
+    return next((e for prefix, e in ENDPOINTS.items() if name.startswith(prefix)), None)
+
+
+@pytest.fixture(scope="module")
+def server(start_server):
+    return start_server()
+
+
+@pytest.fixture(scope="module")
+def workbench(browser, server):
+    """One page on the default server, loaded once for the tests that share it."""
+    context = browser.new_context(accept_downloads=True, viewport={"width": 1280, "height": 900})
+    page = context.new_page()
+    open_page(page, f"{server.base}/")
+    yield page
+    context.close()
+
+
+def open_page(page: Any, address: str) -> None:
+    page.goto(address)
+    page.wait_for_selector(READY, timeout=60_000)
+
+
+def run_example(page: Any, name: str) -> None:
+    """Pick a bundled example, press run, wait for the answer (or for the problems)."""
+    page.select_option("#example", name)
+    page.wait_for_function(f"document.getElementById('status').textContent.includes({json.dumps(name)})")
+    page.get_by_test_id("run").click()
+    page.wait_for_function(
+        "document.getElementById('status').textContent.includes('answered') || !document.getElementById('errors').hidden",
+        timeout=60_000,
+    )
+
+
+def drawn_points(page: Any, selector: str) -> list[dict[str, Any]]:
+    """Per trace of a plotly chart: its name, how many points plotly placed, and whether its
+    line path has geometry (a blank chart has neither)."""
+    return page.eval_on_selector(
+        selector,
+        """gd => {
+            const groups = new Map();
+            for (const node of gd.querySelectorAll('.scatterlayer .trace, .barlayer .trace')) {
+                const cd = node.__data__;
+                const trace = cd && cd[0] && cd[0].trace;
+                if (trace) groups.set(trace.index, node);
+            }
+            return gd._fullData.map((trace, k) => {
+                const group = groups.get(k);
+                const line = group ? group.querySelector('path.js-line') : null;
+                const d = line ? line.getAttribute('d') || '' : '';
+                const shapes = group ? [...group.querySelectorAll('path.point, .point path')] : [];
+                return {
+                    name: trace.name, type: trace.type,
+                    marks: trace.type === 'scatter' ? shapes.length : 0,
+                    bars: trace.type === 'bar' ? shapes.filter(p => (p.getAttribute('d') || '').length > 4).length : 0,
+                    line: d.length > 10 && !d.includes('NaN'),
+                    x: Array.from(trace.x || []), y: Array.from(trace.y || []),
+                };
+            });
+        }""",
+    )
+
+
+def download(page: Any, testid: str) -> bytes:
+    with page.expect_download() as info:
+        page.get_by_test_id(testid).click()
+    path = info.value.path()
+    with open(path, "rb") as handle:
+        return handle.read()
+
+
+def test_the_example_design_is_shown_as_the_service_answers_it(workbench, server):
+    page = workbench
+    request = load_example("design_request.json")
+    answer = server.post("/design", request).json()
+    # the editor opens holding the bundled example plant
+    assert json.loads(page.input_value("#request-text")) == request
+    assert "Design aid only" in page.get_by_test_id("caution").inner_text()
+    page.get_by_test_id("run").click()
+    page.wait_for_function("document.getElementById('status').textContent.includes('answered')", timeout=60_000)
+
+    shown = page.get_by_test_id("spectral-radius")
+    assert float(shown.get_attribute("data-value")) == answer["closed_loop"]["spectral_radius"]
+    assert float(shown.inner_text()) == pytest.approx(answer["closed_loop"]["spectral_radius"], rel=1e-5)
+    condition = page.get_by_test_id("condition-number")
+    assert float(condition.get_attribute("data-value")) == answer["hessian"]["condition_number"]
+    assert float(condition.inner_text()) == pytest.approx(answer["hessian"]["condition_number"], rel=1e-5)
+    # a gain entry: Kr row steam valve (u1), column the level setpoint (z2), and its labels
+    cell = page.locator("#gain-setpoint td[data-row='0'][data-col='1']")
+    assert float(cell.get_attribute("data-value")) == answer["gain"]["setpoint"][0][1]
+    header = page.locator("#gain-setpoint thead th").all_inner_texts()
+    assert header[1:] == answer["gain"]["labels"]["setpoint"]
+    # the largest Kx entry is the most strongly shaded one
+    kx = np.abs(np.array(answer["gain"]["state"]))
+    i, j = np.unravel_index(np.argmax(kx), kx.shape)
+    assert "big" in (page.locator(f"#gain-state td[data-row='{i}'][data-col='{j}']").get_attribute("class") or "")
+
+    traces = {t["name"].split(" (")[0]: t for t in drawn_points(page, "[data-testid=pole-map]")}
+    closed = traces["closed-loop pole"]
+    assert closed["marks"] == len(answer["closed_loop"]["poles"])
+    assert traces["open-loop pole"]["marks"] == len(answer["plant"]["open_loop_poles"])
+    assert traces["unit circle"]["line"]
+    # the plotted closed-loop poles are the eigenvalues of the closed loop (numpy reference)
+    a, b = np.array(request["model"]["a"]), np.array(request["model"]["b"])
+    kx_, ku = np.array(answer["gain"]["state"]), np.array(answer["gain"]["previous_input"])
+    eye = np.eye(b.shape[1])
+    loop = np.block([[a - b @ kx_, b @ (eye - ku)], [-kx_, eye - ku]])
+    expected = np.sort_complex(np.linalg.eigvals(loop))
+    plotted = np.sort_complex(np.array(closed["x"]) + 1j * np.array(closed["y"]))
+    np.testing.assert_allclose(plotted, expected, rtol=1e-9, atol=1e-12)
+    # modulus on hover: the hover text of the pole trace carries it
+    template = page.eval_on_selector(
+        "[data-testid=pole-map]", "gd => gd._fullData[gd._fullData.length - 1].hovertemplate"
+    )
+    assert "modulus" in template
+
+    assert json.loads(download(page, "download-answer")) == answer
+    assert json.loads(download(page, "download-request")) == request
+    png = _save_png(page, "pole-map")
+    assert _png_size(png)[0] > 100
+
+
+def _save_png(page: Any, chart_id: str) -> bytes:
+    with page.expect_download() as info:
+        page.locator(f"button.save-image[data-chart='{chart_id}']").click()
+    with open(info.value.path(), "rb") as handle:
+        return handle.read()
+
+
+def _png_size(data: bytes) -> tuple[int, int]:
+    """Width and height from a PNG's IHDR chunk (the PNG specification, section 11.2.2)."""
+    assert data[:8] == b"\x89PNG\r\n\x1a\n"
+    assert data[12:16] == b"IHDR"
+    return struct.unpack(">II", data[16:24])
+
+
+def test_every_bundled_example_runs_and_every_chart_is_drawn(workbench, server):
+    page = workbench
+    names = [n for n in list_examples() if endpoint_of(n)]
+    assert len(names) >= 5
+    for name in names:
+        run_example(page, name)
+        assert page.get_by_test_id("errors").is_hidden(), f"{name}: {page.get_by_test_id('errors').inner_text()}"
+        for chart in page.locator(".chart").all():
+            if not chart.is_visible():
+                continue
+            traces = drawn_points(page, f"#{chart.get_attribute('id')}")
+            assert any(t["marks"] or t["line"] or t["bars"] for t in traces), (
+                f"{name}: blank chart {chart.get_attribute('id')}"
+            )
+        if name.startswith("simulate_request"):
+            answer = server.post("/simulate", load_example(name)).json()
+            charts = page.get_by_test_id("response-chart")
+            assert charts.count() == len(answer["columns"]["outputs"]) + len(answer["columns"]["inputs"])
+        if name.startswith("sweep_request"):
+            request = load_example(name)
+            answer = server.post("/design/sweep", request).json()
+            first = drawn_points(page, "#sweep-0")
+            assert first[0]["y"] == [e["spectral_radius"] for e in answer["entries"]]
+            chosen = request["design"]["weights"]["move"][request["signal"]]
+            assert first[1]["name"] == "chosen value" and first[1]["x"] == [chosen]
+            assert page.locator("#sweep-entries tr.chosen td").first.inner_text() == str(chosen)
+        if name == "design_request_robustness.json":
+            answer = server.post("/design", load_example(name)).json()
+            block = answer["robustness"]["plant_output"]
+            traces = drawn_points(page, "#robustness-plant_output")
+            assert traces[0]["y"] == block["sensitivity"]["largest"]
+            peak = next(t for t in traces if t["name"].startswith("peak of S"))
+            assert peak["x"] == [block["peak_sensitivity_frequency"]] and peak["y"] == [block["peak_sensitivity"]]
+
+
+def test_a_run_under_limits_shows_limits_and_moves_and_downloads_its_series(workbench, server):
+    page = workbench
+    name = "simulate_request_limits.json"
+    request = load_example(name)
+    answer = server.post("/simulate", request).json()
+    run_example(page, name)
+    temperature = {t["name"]: t for t in drawn_points(page, "#response-output-0")}
+    assert temperature["vessel_temperature"]["y"] == [row[0] for row in answer["outputs"]]
+    assert temperature["setpoint"]["y"] == [row[0] for row in answer["setpoints"]]
+    assert temperature["upper limit"]["y"][0] == request["limits"]["output_max"][0]
+    steam = {t["name"]: t for t in drawn_points(page, "#response-input-0")}
+    u = [row[0] for row in answer["inputs"]]
+    moves = steam["move"]["y"]
+    assert moves[1:] == pytest.approx(np.diff(u).tolist(), abs=1e-12)
+    assert max(abs(m) for m in moves) <= request["limits"]["move_max"][0] + 1e-9
+    levels = {t["y"][0] for t in drawn_points(page, "#response-input-0") if t["name"] == "move limit"}
+    assert levels == {request["limits"]["move_max"][0], -request["limits"]["move_max"][0]}
+    assert page.locator("#response-output-0 .g-ytitle").text_content() == "vessel_temperature [degC]"
+
+    rows = list(csv.reader(io.StringIO(download(page, "download-series").decode("utf-8"))))
+    header, body = rows[0], rows[1:]
+    columns = answer["columns"]
+    assert header == ["time", *columns["outputs"], *columns["setpoints"], *columns["inputs"], *columns["measured"]]
+    assert len(body) == len(answer["time"])
+    for k in (0, 17, len(body) - 1):
+        expected = [
+            answer["time"][k],
+            *answer["outputs"][k],
+            *answer["setpoints"][k],
+            *answer["inputs"][k],
+            *answer["measured"][k],
+        ]
+        assert [float(v) for v in body[k]] == expected  # every value reads back exactly
+    assert json.loads(download(page, "download-answer")) == answer
+
+
+def test_an_invalid_field_shows_its_message_beside_that_field(workbench, server):
+    page = workbench
+    request = load_example("design_request.json")
+    request["weights"]["move"] = [0.1, -2.0]
+    problem = server.post("/design", request).json()
+    pointer = "/weights/move/1"
+    assert any(e["pointer"] == pointer for e in problem["errors"])
+    text = "{\n" + ",\n".join(f'  "{k}": {json.dumps(v)}' for k, v in request.items()) + "\n}"
+    page.fill("#request-text", text)
+    page.select_option("#endpoint", "design")
+    page.get_by_test_id("run").click()
+    errors = page.get_by_test_id("errors")
+    errors.wait_for(state="visible")
+    message = next(e["detail"] for e in problem["errors"] if e["pointer"] == pointer)
+    assert message in errors.inner_text() and pointer in errors.inner_text()
+    note = page.locator(f".note[data-pointer='{pointer}']")
+    assert message in note.inner_text()
+    line = next(k for k, row in enumerate(text.split("\n")) if '"weights"' in row)
+    assert note.get_attribute("data-line") == str(line + 1)
+    # beside the field: level with its line and right of the text
+    box = page.locator("#request-text").bounding_box()
+    lines = page.eval_on_selector(
+        "#request-text",
+        "t => [parseFloat(getComputedStyle(t).lineHeight), parseFloat(getComputedStyle(t).paddingTop), t.scrollTop]",
+    )
+    where = note.bounding_box()
+    assert where["x"] >= box["x"] + box["width"] - 1
+    assert where["y"] == pytest.approx(box["y"] + lines[1] + line * lines[0] - lines[2], abs=2)
+    # the pointer in the list moves the caret to the field
+    errors.get_by_role("button", name=pointer).click()
+    start = page.eval_on_selector("#request-text", "t => t.selectionStart")
+    assert text[start:].startswith("-2.0")
+
+
+def test_with_api_keys_the_page_is_open_asks_for_a_key_and_keeps_it_for_the_session_only(browser, start_server):
+    server = start_server(api_keys=KEY)
+    assert server.post("/design", load_example("design_request.json")).status_code == 401
+    context = browser.new_context(accept_downloads=True)
+    page = context.new_page()
+    try:
+        open_page(page, f"{server.base}/")
+        key = page.get_by_label("API key")
+        assert key.is_visible()
+        page.get_by_test_id("run").click()
+        page.locator("#key-error").wait_for(state="visible")
+        page.wait_for_function("document.getElementById('key-error').textContent.length > 0")
+        assert "API key" in page.locator("#key-error").inner_text()
+        key.fill(KEY)
+        seen: list[str | None] = []
+        page.on("request", lambda r: seen.append(r.headers.get("authorization")) if r.method == "POST" else None)
+        page.get_by_test_id("run").click()
+        page.wait_for_function("document.getElementById('status').textContent.includes('answered')", timeout=60_000)
+        assert seen == [f"Bearer {KEY}"]
+        assert page.evaluate("sessionStorage.getItem('movecast.api-key')") == KEY
+        assert page.evaluate("localStorage.length") == 0
+        page.reload()
+        page.wait_for_selector(READY)
+        assert page.get_by_label("API key").input_value() == KEY  # same tab: same session
+    finally:
+        context.close()
+    fresh = browser.new_context()
+    try:
+        other = fresh.new_page()
+        open_page(other, f"{server.base}/")
+        assert other.get_by_label("API key").input_value() == ""  # a new session has no key
+    finally:
+        fresh.close()
+
+
+def test_behind_a_path_prefix_every_url_is_relative(page, server, start_prefix_proxy):
+    proxied = start_prefix_proxy(server, "/plant/movecast")
+    server = proxied
+    requested: list[str] = []
+    page.on("request", lambda r: requested.append(r.url))
+    open_page(page, f"{server.base}/")
+    page.get_by_test_id("run").click()
+    page.wait_for_function("document.getElementById('status').textContent.includes('answered')", timeout=60_000)
+    assert requested and all(
+        u.startswith(f"{server.base}/") or u.startswith("data:") or u.startswith("blob:") for u in requested
+    )
+    assert f"{server.base}/design" in requested
+    assert page.get_by_test_id("spectral-radius").inner_text() != ""
+
+
+def test_a_narrow_window_keeps_every_control_labelled_and_reachable_by_keyboard(workbench):
+    page = workbench
+    page.set_viewport_size({"width": 400, "height": 800})
+    try:
+        run_example(page, "design_request.json")
+        page.wait_for_timeout(300)  # the charts follow the new width
+        assert page.evaluate("document.documentElement.scrollWidth") <= 400  # no sideways scrolling
+        for control in page.locator("select, input, textarea").all():
+            ident = control.get_attribute("id")
+            assert page.locator(f"label[for='{ident}']").count() == 1, f"{ident} has no label"
+        for button in page.locator("button").all():
+            assert (button.get_attribute("aria-label") or button.text_content() or "").strip()
+        page.focus("#request-text")
+        page.evaluate("document.getElementById('spectral-radius').textContent = ''")
+        page.keyboard.press("Control+Enter")
+        page.wait_for_function("document.getElementById('spectral-radius').textContent !== ''", timeout=60_000)
+        assert page.get_by_test_id("pole-map").bounding_box()["width"] <= 400
+    finally:
+        page.set_viewport_size({"width": 1280, "height": 900})
