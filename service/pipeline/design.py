@@ -365,7 +365,8 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
                 output_labels=[sig.name for sig in plant.outputs],
             ),
             *merge_warnings(design.warnings, advice),
-            *plant_warnings(properties),
+            # on the span-scaled signals when both lists have spans, else unit-free
+            *plant_warnings(properties, balanced=not (bool(np.any(su != 1.0)) and bool(np.any(sz != 1.0)))),
             *uncontrollable_mode_warnings(scaled.a, scaled.b, labels=plant.state_labels, loop_poles=design.loop.poles),
             *([] if limit_check is None else limit_check_warnings(limit_check, plant)),
         ],

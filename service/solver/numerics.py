@@ -3,7 +3,12 @@
 - :func:`feedback_poles`: the eigenvalues of a state-feedback loop ``A - B K`` computed so
   that a long delay chain stays exactly nilpotent (see below);
 - :func:`observable_basis`: the part of the state a gain ``K`` ever sees, ``(A, K)``
-  observability by an orthogonal staircase with a relative rank tolerance.
+  observability by an orthogonal staircase with a relative rank tolerance;
+- :func:`equilibrate` and :func:`equilibrated_rank`: rank decisions that do not depend on
+  the units of the rows and columns (Ruiz scaling, then singular values above a relative
+  tolerance);
+- :func:`jacobi_scaled`: a symmetric positive-semidefinite matrix with unit diagonal, for
+  definiteness and conditioning verdicts that do not depend on the units of the variables.
 
 Pure functions on arrays; nothing here knows a request.
 
@@ -35,7 +40,8 @@ triangular up to a permutation (LAPACK's balancing isolates them, ``gebal``).  T
 Accuracy: the poles returned are the exact eigenvalues of a loop within ``RANK_TOLERANCE``
 (relative to ``||A||`` and ``||K||`` after diagonal balancing) of the given one, plus the
 eigenvalue solver's own rounding on the small block; ``pairing_error`` reports how far the
-pairing had to reach.  The tests hold the spectral radius against the closed loop's
+pairing had to reach.  As a safety net the hidden part must be invariant to rounding
+(:data:`CROSS_CHECK`), else the plain eigenvalues are returned.  The tests hold the spectral radius against the closed loop's
 characteristic polynomial in 80-digit arithmetic for dead times up to 300 samples.
 """
 
@@ -49,9 +55,14 @@ import scipy.optimize
 from numpy.typing import NDArray
 
 __all__ = [
+    "CROSS_CHECK",
     "RANK_TOLERANCE",
     "FeedbackPoles",
+    "balance_states",
+    "equilibrate",
+    "equilibrated_rank",
     "feedback_poles",
+    "jacobi_scaled",
     "observable_basis",
 ]
 
@@ -60,6 +71,10 @@ __all__ = [
 #: coupling that moves a pole visibly (common practice for rank decisions, a few orders
 #: of magnitude above rounding).
 RANK_TOLERANCE = 1e-10
+#: Largest coupling ``||V' (A - B K) W||`` from the hidden part to the seen part, relative to
+#: ``||A - B K||`` (Frobenius, balanced), for the decomposition to be used; it is zero in
+#: exact arithmetic, so anything above rounding means a wrong rank decision.
+CROSS_CHECK = 1e-9
 
 
 def _sorted(poles: NDArray[np.complex128]) -> NDArray[np.complex128]:
@@ -175,6 +190,13 @@ def feedback_poles(a: NDArray[np.float64], b: NDArray[np.float64], k: NDArray[np
     b_s = b * (1.0 / scale)[:, None]
     closed_s = a_s - b_s @ k_s
     moved = scipy.linalg.eigvals(basis.T @ closed_s @ basis, check_finite=False) if seen else np.zeros(0, complex)
+    complement = scipy.linalg.qr(basis, mode="full")[0][:, seen:] if seen else np.eye(n)
+    coupling = float(np.linalg.norm(basis.T @ closed_s @ complement)) if seen else 0.0
+    if coupling > CROSS_CHECK * max(float(np.linalg.norm(closed_s)), np.finfo(float).tiny):
+        # the hidden part is not invariant after all (a rank decision the balancing could not
+        # make safely): the plain eigenvalue problem of the whole matrix
+        plain = scipy.linalg.eigvals(closed, check_finite=False)
+        return FeedbackPoles(_sorted(plain), float(np.abs(plain).max()), n, 0.0)
     open_loop = scipy.linalg.eigvals(a, check_finite=False)
     error = 0.0
     if seen:
@@ -185,3 +207,137 @@ def feedback_poles(a: NDArray[np.float64], b: NDArray[np.float64], k: NDArray[np
         open_loop = np.delete(open_loop, cols)
     poles = _sorted(np.concatenate([moved, open_loop]))
     return FeedbackPoles(poles, float(np.abs(poles).max(initial=0.0)), seen, error)
+
+
+def equilibrate(
+    matrix: NDArray[np.float64] | NDArray[np.complex128], *, sweeps: int = 20
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Return row and column scalings that give every nonzero row and column unit max-norm.
+
+    Parameters
+    ----------
+    matrix : ndarray, shape (r, c)
+    sweeps : int, keyword-only
+        Ruiz iterations (each takes the square root of the remaining imbalance).
+
+    Returns
+    -------
+    rows : ndarray, shape (r,)
+    columns : ndarray, shape (c,)
+        ``diag(rows) @ matrix @ diag(columns)`` is equilibrated; zero rows and columns keep
+        scale 1.  Both are powers of two, so the scaling is exact.
+
+    Notes
+    -----
+    D. Ruiz, "A scaling algorithm to equilibrate both rows and columns norms in matrices",
+    Rutherford Appleton Laboratory report RAL-TR-2001-034 (2001).  A change of units of the
+    rows or columns (``D1 M D2``) gives the same equilibrated matrix up to the iteration's
+    convergence, so a rank counted on it does not depend on units.
+    """
+    r, c = matrix.shape
+    rows, columns = np.ones(r), np.ones(c)
+    work = np.abs(matrix).astype(float)
+    for _ in range(sweeps):
+        rn = work.max(axis=1, initial=0.0)
+        cn = work.max(axis=0, initial=0.0)
+        fr = np.where(rn > 0.0, np.exp2(np.round(-0.5 * np.log2(np.where(rn > 0.0, rn, 1.0)))), 1.0)
+        fc = np.where(cn > 0.0, np.exp2(np.round(-0.5 * np.log2(np.where(cn > 0.0, cn, 1.0)))), 1.0)
+        if np.all(fr == 1.0) and np.all(fc == 1.0):
+            break
+        rows *= fr
+        columns *= fc
+        work = work * fr[:, None] * fc[None, :]
+    return rows, columns
+
+
+def equilibrated_rank(
+    matrix: NDArray[np.float64] | NDArray[np.complex128], tolerance: float
+) -> tuple[int, NDArray[np.float64] | NDArray[np.complex128]]:
+    """Numerical rank of the equilibrated matrix, and a null vector in the original coordinates.
+
+    Parameters
+    ----------
+    matrix : ndarray, shape (r, c)
+    tolerance : float
+        Relative threshold: singular values of the equilibrated matrix above ``tolerance``
+        times the largest count.
+
+    Returns
+    -------
+    rank : int
+    null : ndarray, shape (c,)
+        A unit vector ``v`` with ``matrix @ v`` as small as the rank test allows (the last
+        right singular vector, mapped back through the column scaling).
+    """
+    if matrix.size == 0:
+        return 0, np.zeros(matrix.shape[1])
+    rows, columns = equilibrate(matrix)
+    scaled = matrix * rows[:, None] * columns[None, :]
+    _, s, vh = np.linalg.svd(scaled)
+    rank = int(np.count_nonzero(s > tolerance * max(float(s[0]), np.finfo(float).tiny)))
+    null = columns * vh[-1].conj()
+    return rank, null / np.linalg.norm(null)
+
+
+def jacobi_scaled(matrix: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Return ``D^-1/2 M D^-1/2`` with ``D = diag(M)`` (zero diagonal entries left unscaled).
+
+    Parameters
+    ----------
+    matrix : ndarray, shape (k, k)
+        Symmetric positive semidefinite.
+
+    Notes
+    -----
+    Of all diagonal scalings this one brings the condition number within a factor ``k`` of
+    the smallest possible (van der Sluis, "Condition numbers and equilibration of matrices",
+    Numer. Math. 14, 1969), and it is the same matrix whatever the units of the variables.
+    """
+    d = np.diag(matrix).copy()
+    root = np.sqrt(np.where(d > 0.0, d, 1.0))
+    return matrix / root[:, None] / root[None, :]
+
+
+def balance_states(
+    a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64], *, sweeps: int = 30
+) -> NDArray[np.float64]:
+    """Return state scales ``d`` (powers of two) balancing ``(D^-1 A D, D^-1 B, C D)``.
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, n)
+    b : ndarray, shape (n, m)
+    c : ndarray, shape (p, n)
+
+    Returns
+    -------
+    ndarray, shape (n,)
+
+    Notes
+    -----
+    The balancing of Parlett and Reinsch ("Balancing a matrix for calculation of eigenvalues
+    and eigenvectors", Numer. Math. 13, 1969) on the system matrix ``[[A, B], [C, 0]]`` with
+    the state rows and columns tied: each state's scale makes the max-norm of what it feeds
+    (its column of ``A`` without the diagonal, and of ``C``) equal that of what feeds it (its
+    row of ``A`` and of ``B``).  Unlike balancing ``A`` alone it also balances a state that
+    only an input reaches or only an output sees, so rank decisions on the result do not
+    depend on the states' units.
+    """
+    n = a.shape[0]
+    d = np.ones(n)
+    off = np.abs(a) * (1.0 - np.eye(n))
+    bb, cc = np.abs(b), np.abs(c)
+    for _ in range(sweeps):
+        changed = False
+        for i in range(n):
+            col = max(float((off[:, i] * (1.0 / d) * d[i]).max(initial=0.0)), float((cc[:, i] * d[i]).max(initial=0.0)))
+            row = max(float((off[i, :] * d / d[i]).max(initial=0.0)), float((bb[i, :] / d[i]).max(initial=0.0)))
+            if col == 0.0 or row == 0.0:
+                continue
+            f = float(np.exp2(np.round(0.5 * np.log2(row / col))))
+            if f != 1.0:
+                d[i] *= f
+                changed = True
+        if not changed:
+            break
+    return d

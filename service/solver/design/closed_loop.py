@@ -124,7 +124,8 @@ def design_warnings(*, condition_number: float, loop: ClosedLoop) -> list[Diagno
     Parameters
     ----------
     condition_number : float
-        Exact 2-norm condition number of the Hessian.
+        Exact 2-norm condition number of the Jacobi-scaled Hessian (unit diagonal), which
+        does not depend on the units of the inputs.
     loop : ClosedLoop
 
     Returns
@@ -138,7 +139,8 @@ def design_warnings(*, condition_number: float, loop: ClosedLoop) -> list[Diagno
         found.append(
             Diagnostic(
                 "ill_conditioned_hessian",
-                f"The Hessian is near-singular (condition number {condition_number:.3g} above "
+                f"The Hessian is near-singular (condition number {condition_number:.3g} with every "
+                f"move scaled to unit diagonal, above "
                 f"{ILL_CONDITIONED:.0e}): the gains keep only about "
                 f"{max(0, 16 - int(np.log10(condition_number)))} significant digits. Raise the move "
                 f"weights or shorten the control horizon.",

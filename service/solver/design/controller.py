@@ -189,7 +189,7 @@ def design_controller(
         kt = terminal_first_move_gain(hessian, term, inputs=m)
         gain = with_terminal_gain(gain, term, kt)
     loop = closed_loop(a_, b_, gain.state, gain.previous_input)
-    warnings = design_warnings(condition_number=hessian.condition_number, loop=loop)
+    warnings = design_warnings(condition_number=hessian.scaled_condition_number, loop=loop)
     return ControllerDesign(
         prediction=pred,
         output_weight=q,

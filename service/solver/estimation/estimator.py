@@ -72,6 +72,8 @@ from numpy.typing import ArrayLike, NDArray
 
 from service.errors import NumericalError
 from service.solver.design.weights import weight_matrix
+from service.solver.models.properties import integrating_poles
+from service.solver.numerics import equilibrated_rank
 
 __all__ = [
     "DEFAULT_DISTURBANCE_NOISE",
@@ -247,13 +249,14 @@ def augmented_model(
     return a_aug, b_aug, c_aug, bd, cd
 
 
-def _rank(matrix: NDArray[np.float64]) -> tuple[int, NDArray[np.float64]]:
-    """Numerical rank with :data:`DETECTABILITY_TOLERANCE`, and the right singular vectors."""
-    if matrix.size == 0:
-        return 0, np.eye(matrix.shape[1])
-    _, s, vt = np.linalg.svd(matrix)
-    tol = DETECTABILITY_TOLERANCE * max(float(s[0]), np.finfo(float).tiny)
-    return int(np.count_nonzero(s > tol)), vt
+def _rank(matrix: NDArray[np.float64] | NDArray[np.complex128]) -> tuple[int, NDArray[np.float64]]:
+    """Numerical rank with :data:`DETECTABILITY_TOLERANCE` on the equilibrated matrix, and a null vector.
+
+    Rows and columns are scaled first (:func:`service.solver.numerics.equilibrate`), so the
+    verdict does not depend on the units of states, outputs, inputs or disturbances.
+    """
+    rank, null = equilibrated_rank(matrix, DETECTABILITY_TOLERANCE)
+    return rank, np.real(null)
 
 
 def _format_vector(v: NDArray[np.float64], labels: Sequence[str]) -> str:
@@ -318,10 +321,10 @@ def _check_detectable(
     rank, vt = _rank(matrix)
     if rank == n + nd:
         return
-    hidden = vt[-1, n:]  # disturbance part of a null vector
+    hidden = vt[n:]  # disturbance part of a null vector
     labels = output_labels if disturbance == "output" else input_labels
     direction = _format_vector(hidden, labels) if np.abs(hidden).max() > 1e-9 else "(unnamed)"
-    integrates = bool(np.any(np.abs(scipy.linalg.eigvals(a, check_finite=False) - 1.0) < 1e-6))
+    integrates = integrating_poles(a) > 0
     if disturbance == "output" and integrates:
         why = (
             "the plant integrates (it has a pole at z = 1), and a constant disturbance on "

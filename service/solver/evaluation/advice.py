@@ -56,6 +56,7 @@ from service.solver.design.controller import ControllerDesign, design_controller
 from service.solver.design.prediction import step_response_coefficients
 from service.solver.design.spectrum import extreme_eigenvalues
 from service.solver.evaluation.frequency import FrequencyAnalysis
+from service.solver.numerics import jacobi_scaled
 
 __all__ = [
     "PEAK_SENSITIVITY_LIMIT",
@@ -110,7 +111,7 @@ def _condition_number(
         h = design.hessian.matrix
         if move_scale != 1.0:
             h = h + (move_scale - 1.0) * np.kron(np.eye(h.shape[0] // m), design.move_weight)
-        h = h[: control * m, : control * m]
+        h = jacobi_scaled(h[: control * m, : control * m])
         low, high = extreme_eigenvalues(h)
         return None if low <= h.shape[0] * np.finfo(float).eps * high else high / low
     pred = design.prediction
@@ -130,7 +131,7 @@ def _condition_number(
         )
     except NumericalError:
         return None
-    return other.hessian.condition_number
+    return other.hessian.scaled_condition_number
 
 
 def hessian_advice(a: ArrayLike, b: ArrayLike, c: ArrayLike, design: ControllerDesign) -> Diagnostic | None:
@@ -147,9 +148,10 @@ def hessian_advice(a: ArrayLike, b: ArrayLike, c: ArrayLike, design: ControllerD
     Returns
     -------
     Diagnostic or None
-        ``ill_conditioned_hessian`` when the condition number exceeds ``ILL_CONDITIONED``.
+        ``ill_conditioned_hessian`` when the condition number of the Jacobi-scaled Hessian
+        (unit diagonal; the same in any units of the inputs) exceeds ``ILL_CONDITIONED``.
     """
-    cond = design.hessian.condition_number
+    cond = design.hessian.scaled_condition_number
     if cond <= ILL_CONDITIONED:
         return None
     a_, b_, c_ = (np.asarray(x, dtype=float) for x in (a, b, c))

@@ -39,6 +39,7 @@ import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.closed_loop import UNIT_CIRCLE_MARGIN, Diagnostic
+from service.solver.numerics import equilibrate
 
 __all__ = [
     "LOOP_POLE_MATCH",
@@ -85,12 +86,16 @@ def _blind_directions(
     n = a.shape[0]
     shift = z.real if _is_real(z) else z  # real arithmetic for a real eigenvalue
     pbh = np.hstack([a - shift * np.eye(n), b])
+    # rows and columns equilibrated: the rank does not depend on the units of states or inputs
+    rows, columns = equilibrate(pbh)
+    pbh = pbh * rows[:, None] * columns[None, :]
     s = np.linalg.svd(pbh, compute_uv=False)  # n values: pbh is n x (n+m), m >= 0
     rank = int(np.count_nonzero(s > tolerance * max(float(s[0]), np.finfo(float).tiny)))
     if rank == n:
         return np.zeros((n, 0), dtype=complex)
     u = np.linalg.svd(pbh, full_matrices=False)[0]  # only on a rank drop: the costly part
-    return u[:, rank:].astype(complex)
+    w = u[:, rank:] * rows[:, None]  # w_s' Dr pbh Dc = 0: w = Dr w_s
+    return np.linalg.qr(w)[0].astype(complex)
 
 
 def _clusters(eigenvalues: NDArray[np.complex128]) -> list[list[complex]]:

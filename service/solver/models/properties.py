@@ -39,6 +39,7 @@ import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.closed_loop import Diagnostic
+from service.solver.numerics import balance_states, equilibrate
 
 __all__ = [
     "INTEGRATING_SEARCH",
@@ -46,6 +47,7 @@ __all__ = [
     "NEAR_SINGULAR_GAIN",
     "PlantProperties",
     "SteadyStateGain",
+    "balanced_condition_number",
     "gain_condition_number",
     "integrating_poles",
     "open_loop_poles",
@@ -115,12 +117,17 @@ class PlantProperties:
         integrates.
     poles : ndarray of complex, shape (n,)
         Eigenvalues of ``A``, by descending modulus.
+    balanced_condition_number : float or None
+        Condition number of the gain with its rows and columns equilibrated
+        (:func:`balanced_condition_number`): the same in any units, and the one the
+        ``near_singular_gain`` verdict uses.
     """
 
     steady_state: SteadyStateGain
     relative_gain: NDArray[np.float64] | None
     condition_number: float | None
     poles: NDArray[np.complex128]
+    balanced_condition_number: float | None = None
 
 
 def integrating_poles(a: NDArray[np.float64], *, tolerance: float = INTEGRATING_TOLERANCE) -> int:
@@ -141,6 +148,7 @@ def integrating_poles(a: NDArray[np.float64], *, tolerance: float = INTEGRATING_
     """
     if a.shape[0] == 0:
         return 0
+    a = _balanced(a)[0]
     poles = scipy.linalg.eigvals(a, check_finite=False)
     distance = np.abs(poles - 1.0)
     order = np.argsort(distance, kind="stable")
@@ -153,6 +161,12 @@ def integrating_poles(a: NDArray[np.float64], *, tolerance: float = INTEGRATING_
         if abs(group.mean() - 1.0) <= tolerance / k and np.abs(group - 1.0).max() <= max(spread, tolerance):
             found = k
     return found
+
+
+def _balanced(a: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """``D^-1 A D`` balanced by LAPACK's ``gebal`` (no permutation), and ``D`` as a vector."""
+    _, (scale, _) = scipy.linalg.matrix_balance(a, permute=False, separate=True)
+    return a / scale[:, None] * scale[None, :], scale
 
 
 def _sorted_schur(
@@ -214,6 +228,11 @@ def steady_state_gain(
     ramp = np.zeros((p, m))
     if n == 0:
         return SteadyStateGain(gain=d_.copy(), integration_order=order, ramp_rate=ramp)
+    # state units: a diagonal similarity changes neither the gain nor the poles; balanced with
+    # B and C so that a state only inputs and outputs reach is balanced too
+    scale = balance_states(a_, b_, c_)
+    a_ = a_ / scale[:, None] * scale[None, :]
+    b_, c_ = b_ / scale[:, None], c_ * scale[None, :]
     t, z, k = _sorted_schur(a_, integrating_tolerance)
     if k == 0:
         gain = c_ @ np.linalg.solve(np.eye(n) - a_, b_) + d_
@@ -229,8 +248,14 @@ def steady_state_gain(
     c2 = cz[:, k:] + c1 @ x
     nil = np.triu(t[:k, :k], 1)  # T11 - I with its eigenvalues taken as exactly 1
     # Rounding in the Schur form is of order eps |A|, in N^l of order eps |A|^l.
-    b_size = max(np.linalg.norm(b_, 2), np.linalg.norm(b1, 2))
-    scale = np.sqrt(np.finfo(float).eps) * np.linalg.norm(c_, 2) * b_size
+    # per pair (row i of C, column j of B), so that a change of units of one signal scales the
+    # term and its threshold alike: sqrt(eps) of the term's own factors on the integrating
+    # block, and never below 1000 eps of the rounding the Schur form leaves from the whole row
+    # and column
+    eps = np.finfo(float).eps
+    own = np.sqrt(eps) * np.outer(np.linalg.norm(c1, axis=1), np.linalg.norm(b1, axis=0))
+    rounding = 1e3 * eps * np.outer(np.linalg.norm(c_, axis=1), np.linalg.norm(b_, axis=0))
+    scale = np.maximum(own, rounding)
     growth = max(1.0, float(np.linalg.norm(a_, 2)))
     power = np.eye(k, dtype=complex)
     markov0 = c1 @ b1
@@ -279,6 +304,26 @@ def relative_gain_array(gain: ArrayLike) -> NDArray[np.float64]:
     return g * np.linalg.solve(g.T, np.eye(g.shape[0]))
 
 
+def balanced_condition_number(gain: ArrayLike) -> float:
+    """Return the condition number of a gain after equilibrating its rows and columns.
+
+    Parameters
+    ----------
+    gain : array_like, shape (p, m)
+
+    Notes
+    -----
+    Rows and columns scaled to unit max-norm (:func:`service.solver.numerics.equilibrate`):
+    a change of units of any input or output leaves it unchanged, and it approximates the
+    minimized condition number over all diagonal scalings, the unit-free measure of how hard
+    a plant is to control (Skogestad and Postlethwaite, *Multivariable Feedback Control*,
+    2nd ed., 2005, sec. 3.3.4).
+    """
+    g = np.asarray(gain, dtype=float)
+    rows, columns = equilibrate(g)
+    return gain_condition_number(g * rows[:, None] * columns[None, :])
+
+
 def gain_condition_number(gain: ArrayLike) -> float:
     """Return the 2-norm condition number ``s_max / s_min`` of a gain (``inf`` if singular).
 
@@ -319,14 +364,23 @@ def plant_properties(
     """
     steady = steady_state_gain(a, b, c, d, integrating_tolerance=integrating_tolerance)
     condition = gain_condition_number(steady.gain) if steady.finite else None
+    balanced = balanced_condition_number(steady.gain) if steady.finite else None
     square = steady.gain.shape[0] == steady.gain.shape[1]
     rga = None
-    if square and condition is not None and condition < 1.0 / np.finfo(float).eps:
+    if square and balanced is not None and balanced < 1.0 / np.finfo(float).eps:
         rga = relative_gain_array(steady.gain)
-    return PlantProperties(steady_state=steady, relative_gain=rga, condition_number=condition, poles=open_loop_poles(a))
+    return PlantProperties(
+        steady_state=steady,
+        relative_gain=rga,
+        condition_number=condition,
+        poles=open_loop_poles(a),
+        balanced_condition_number=balanced,
+    )
 
 
-def plant_warnings(properties: PlantProperties, *, near_singular: float = NEAR_SINGULAR_GAIN) -> list[Diagnostic]:
+def plant_warnings(
+    properties: PlantProperties, *, near_singular: float = NEAR_SINGULAR_GAIN, balanced: bool = False
+) -> list[Diagnostic]:
     """Return the warnings about a plant: ``near_singular_gain`` when its condition is high.
 
     Parameters
@@ -334,19 +388,24 @@ def plant_warnings(properties: PlantProperties, *, near_singular: float = NEAR_S
     properties : PlantProperties
     near_singular : float, keyword-only
         Condition-number threshold (default :data:`NEAR_SINGULAR_GAIN`).
+    balanced : bool, keyword-only
+        Judge the equilibrated gain (:func:`balanced_condition_number`), for signals in
+        arbitrary units; default ``False``: the gain as given, meaningful on signals scaled
+        by their spans.
 
     Returns
     -------
     list of Diagnostic
     """
     found: list[Diagnostic] = []
-    cond = properties.condition_number
+    cond = properties.balanced_condition_number if balanced else properties.condition_number
     if cond is not None and cond > near_singular:
         found.append(
             Diagnostic(
                 "near_singular_gain",
                 f"The steady-state gain matrix is near-singular (condition number {cond:.3g} above "
-                f"{near_singular:g}, on the signals as scaled): some combinations of outputs need "
+                f"{near_singular:g}, {'with its rows and columns equilibrated' if balanced else 'on the signals as scaled'}): "
+                f"some combinations of outputs need "
                 f"far larger input moves than others, and the controller will be sensitive to "
                 f"model error there. Check the gains, the scaling, or control fewer outputs.",
             )
