@@ -11,7 +11,7 @@ from service import __version__
 from service.api.deps import get_settings
 from service.api.operations import install_operations
 from service.api.problems import install_problem_handlers
-from service.api.routes import batch, design, export, health, simulate, sweep, workbench
+from service.api.routes import batch, compare, design, export, health, simulate, sweep, workbench
 from service.api.settings import Settings
 from service.schemas.design import ADVISORY
 
@@ -50,6 +50,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.include_router(design.router)
     app.include_router(sweep.router)
     app.include_router(export.router)
+    app.include_router(compare.router)
     app.include_router(health.router)
     app.include_router(batch.router)
     app.include_router(simulate.router)
