@@ -57,6 +57,7 @@ from service.solver.design.marginal import MarginalMode, describe_signals
 from service.solver.estimation.estimator import Estimator
 from service.solver.evaluation.advice import merge_warnings, tuning_advice
 from service.solver.evaluation.frequency import FrequencyAnalysis, design_frequency_analysis
+from service.solver.evaluation.reach import dead_time_warnings
 from service.solver.models.modes import uncontrollable_mode_warnings
 from service.solver.models.properties import PlantProperties, plant_properties, plant_warnings
 from service.solver.models.scaling import ScaledPlant, scale_plant, unscale_feedforward, unscale_gain
@@ -404,8 +405,17 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
         feedforward=feedforward,
         properties=properties,
         warnings=[
+            *dead_time_warnings(
+                scaled.a,
+                scaled.b,
+                scaled.c,
+                design,
+                input_labels=[sig.name for sig in plant.inputs],
+                output_labels=[sig.name for sig in plant.outputs],
+            ),
             *merge_warnings(design.warnings, advice),
-            *plant_warnings(properties),
+            # on the span-scaled signals when both lists have spans, else unit-free
+            *plant_warnings(properties, balanced=not (bool(np.any(su != 1.0)) and bool(np.any(sz != 1.0)))),
             *uncontrollable_mode_warnings(
                 scaled.a, scaled.b, labels=plant.state_labels, loop_poles=design.loop.poles, poles=properties.poles
             ),
