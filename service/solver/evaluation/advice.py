@@ -30,8 +30,8 @@ sentence a control engineer can act on) or nothing.  The checks and their defini
 ``non_minimum_phase_short_horizon``
     The plant has a transmission zero outside the unit circle and the prediction horizon
     is shorter than the inverse response.  Transmission zeros of a square plant are the
-    finite generalized eigenvalues of the Rosenbrock system matrix pencil
-    ``([[A, B], [C, 0]], [[I, 0], [0, 0]])`` (``scipy.linalg.eig``); non-square plants
+    invariant zeros of a minimal realization (:mod:`service.solver.models.zeros`: a Kalman
+    decomposition by staircases, then the reduced or the Rosenbrock pencil); non-square plants
     generically have none and are not checked.  The inverse-response time of a zero ``z0``
     (our definition) is read off the step response along the zero's directions
     (``y0' S_k u0`` with ``u0`` and ``y0`` the input and output null directions of the
@@ -40,6 +40,12 @@ sentence a control engineer can act on) or nothing.  The checks and their defini
     more than the last step at which it is still on the wrong side.  Where that channel has
     no wrong-way part (complex zeros, zeros on the negative real axis that show as ringing)
     the zero's time constant ``ceil(1 / ln|z0|)`` samples is used instead.
+
+``decoupling_zeros``
+    A square plant's realization has decoupling zeros on or outside the unit circle: modes no
+    input moves (input-decoupling) or no controlled output sees (output-decoupling), where the
+    system matrix loses rank as at a zero although the transfer matrix has no zero.  They are
+    named as such (Rosenbrock's terms), never as non-minimum-phase zeros.
 """
 
 from __future__ import annotations
@@ -56,10 +62,12 @@ from service.solver.design.closed_loop import ILL_CONDITIONED, UNIT_CIRCLE_MARGI
 from service.solver.design.controller import ControllerDesign, design_controller
 from service.solver.design.spectrum import extreme_eigenvalues
 from service.solver.evaluation.frequency import FrequencyAnalysis
-from service.solver.numerics import by_modulus, format_complex, jacobi_scaled
+from service.solver.models.zeros import PlantZeros, plant_zeros
+from service.solver.numerics import format_complex, jacobi_scaled
 
 __all__ = [
     "PEAK_SENSITIVITY_LIMIT",
+    "decoupling_zero_advice",
     "hessian_advice",
     "inverse_response_time",
     "merge_warnings",
@@ -352,60 +360,11 @@ def transmission_zeros(a: ArrayLike, b: ArrayLike, c: ArrayLike) -> NDArray[np.c
 
     Notes
     -----
-    When ``CB`` is well conditioned (:data:`_REDUCED_CB_CONDITION`) the zeros are the
-    eigenvalues of the ``(n-m)``-square matrix ``N' (I - B (CB)^-1 C) A N``, ``N`` an
-    orthonormal basis of the null space of ``C``: a zero needs ``(A - z I) x + B u = 0``
-    with ``C x = 0``, so ``x = N xi``, ``u = -(CB)^-1 C A N xi`` and
-    ``N' (I - B (CB)^-1 C) A N xi = z xi`` (the reduced pencil of Emami-Naeini and
-    Van Dooren, "Computation of zeros of linear multivariable systems", Automatica 18(4),
-    1982, doi:10.1016/0005-1098(82)90070-X, after one step; common practice).  There are
-    then exactly ``n - m`` finite zeros.  Otherwise: the generalized eigenvalues
-    ``alpha / beta`` of the Rosenbrock pencil ``([[A, B], [C, 0]], [[I, 0], [0, 0]])``
-    from ``scipy.linalg.eig`` in homogeneous form; pairs with ``|beta|`` at rounding level
-    are the infinite zeros and are dropped.  Either way a zero beyond ``1e8`` in modulus is
-    taken as infinite (common practice).
+    The invariant zeros of a minimal realization
+    (:func:`service.solver.models.zeros.plant_zeros`): an uncontrollable or unobservable mode
+    of a non-minimal model is a decoupling zero, never returned here.
     """
-    a_, b_, c_ = (np.asarray(x, dtype=float) for x in (a, b, c))
-    n, m = b_.shape
-    if c_.shape[0] != m:
-        return np.zeros(0, dtype=complex)
-    zeros = _reduced_zeros(a_, b_, c_)
-    if zeros is None:
-        system = np.block([[a_, b_], [c_, np.zeros((m, m))]])
-        mass = scipy.linalg.block_diag(np.eye(n), np.zeros((m, m)))
-        pairs = scipy.linalg.eig(system, mass, right=False, homogeneous_eigvals=True)
-        alpha, beta = pairs[0], pairs[1]
-        # QZ returns |beta| of order one for a finite zero; an infinite zero has |beta| at
-        # rounding level, and a zero beyond 1e8 in modulus is taken as infinite.
-        finite = (np.abs(beta) > 1e-8 * np.abs(alpha)) & (np.abs(beta) > 1e3 * np.finfo(float).eps)
-        zeros = alpha[finite] / beta[finite]
-    return by_modulus(zeros)
-
-
-#: Largest condition number of ``CB`` for which the zeros come from the reduced matrix.
-_REDUCED_CB_CONDITION = 1e6
-
-
-def _reduced_zeros(
-    a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64]
-) -> NDArray[np.complex128] | None:
-    """The zeros from ``N' (I - B (CB)^-1 C) A N`` (see :func:`transmission_zeros`); ``None`` if ``CB`` is ill-conditioned."""
-    n, m = b.shape
-    if m == 0 or m > n:
-        return None
-    cb = c @ b
-    singular = scipy.linalg.svdvals(cb, check_finite=False)
-    if singular[-1] <= singular[0] / _REDUCED_CB_CONDITION or singular[0] == 0.0:
-        return None
-    if m == n:
-        return np.zeros(0, dtype=complex)
-    q, _ = scipy.linalg.qr(c.T, check_finite=False)  # C' = Q R: the last n - m columns span null(C)
-    null = q[:, m:]
-    an = a @ null
-    coupling = scipy.linalg.solve(cb, c @ an, check_finite=False)  # (CB)^-1 C A N
-    reduced = null.T @ an - (null.T @ b) @ coupling
-    zeros: NDArray[np.complex128] = scipy.linalg.eigvals(reduced, check_finite=False)
-    return zeros[np.abs(zeros) < 1e8]
+    return plant_zeros(a, b, c).transmission
 
 
 def _null_directions(
@@ -491,6 +450,7 @@ def non_minimum_phase_advice(
     prediction: int,
     sample_time: float | None = None,
     poles: ArrayLike | None = None,
+    computed: PlantZeros | None = None,
 ) -> Diagnostic | None:
     """Advise when a non-minimum-phase plant meets a prediction horizon shorter than its inverse response.
 
@@ -504,6 +464,8 @@ def non_minimum_phase_advice(
         To state times in time units as well.
     poles : array_like of complex, optional
         The eigenvalues of ``A`` when the caller has them (they are computed otherwise).
+    computed : PlantZeros, optional
+        The plant's zeros when the caller has them.
 
     Returns
     -------
@@ -511,7 +473,8 @@ def non_minimum_phase_advice(
         ``non_minimum_phase_short_horizon``.
     """
     a_, b_, c_ = (np.asarray(x, dtype=float) for x in (a, b, c))
-    zeros = [complex(z) for z in transmission_zeros(a_, b_, c_) if abs(z) > 1.0 + 1e-9]
+    found = plant_zeros(a_, b_, c_) if computed is None else computed
+    zeros = [complex(z) for z in found.transmission if abs(z) > 1.0 + 1e-9]
     if not zeros:
         return None
     known = None if poles is None else np.asarray(poles, dtype=complex)
@@ -528,6 +491,63 @@ def non_minimum_phase_advice(
         f"prediction horizon is {prediction} samples: the controller sees mostly the wrong-way "
         f"part of its moves and may push the wrong way. Lengthen the prediction horizon to at "
         f"least {needed} samples (well beyond is better), or raise the move weights.",
+    )
+
+
+def _decoupling_names(zeros: Sequence[complex], kind: str) -> list[str]:
+    return [f"{format_complex(z)} ({kind})" for z in zeros]
+
+
+def decoupling_zero_advice(
+    a: ArrayLike, b: ArrayLike, c: ArrayLike, *, computed: PlantZeros | None = None
+) -> Diagnostic | None:
+    """Name the decoupling zeros of a square plant's realization that lie on or outside the unit circle.
+
+    Parameters
+    ----------
+    a, b, c : array_like
+        The plant (controlled outputs).
+    computed : PlantZeros, optional
+        The plant's zeros when the caller has them.
+
+    Returns
+    -------
+    Diagnostic or None
+        ``decoupling_zeros``: each such zero with its kind, input-decoupling (a mode no input
+        moves) or output-decoupling (a mode no controlled output sees); the system matrix loses
+        rank there as at a zero, but the transfer matrix has no zero there and no inverse
+        response follows.  ``None`` for a non-square plant or when every decoupling zero lies
+        inside the unit circle (a mode that decays by itself).
+    """
+    a_, b_, c_ = (np.asarray(x, dtype=float) for x in (a, b, c))
+    if b_.shape[1] != c_.shape[0]:
+        return None
+    found = plant_zeros(a_, b_, c_) if computed is None else computed
+    edge = 1.0 - UNIT_CIRCLE_MARGIN
+    inputs = [complex(z) for z in found.input_decoupling if abs(z) >= edge]
+    outputs = [complex(z) for z in found.output_decoupling if abs(z) >= edge]
+    if not inputs and not outputs:
+        return None
+    names = ", ".join(
+        _decoupling_names(inputs, "input-decoupling: a mode no input moves")
+        + _decoupling_names(outputs, "output-decoupling: a mode no controlled output sees")
+    )
+    count = len(inputs) + len(outputs)
+    after = []
+    if inputs:
+        after.append("A mode no input moves is reported as uncontrollable_mode as well.")
+    if outputs:
+        after.append(
+            "A mode no controlled output sees grows unseen: remove it from the model if it is an artefact of "
+            "the realization, or measure it."
+        )
+    return Diagnostic(
+        "decoupling_zeros",
+        f"The state-space model is not minimal: {names} {'is a decoupling zero' if count == 1 else 'are decoupling zeros'} "
+        f"of the realization, not a transmission zero: the system matrix loses rank there as at a zero, but the "
+        f"transfer matrix from the inputs to the controlled outputs has no zero there (it needs only "
+        f"{found.minimal_states} of the model's {a_.shape[0]} states), so there is no inverse response and no "
+        f"limit on the prediction horizon from it. " + " ".join(after),
     )
 
 
@@ -563,8 +583,11 @@ def tuning_advice(
     -------
     list of Diagnostic
         ``ill_conditioned_hessian``, ``slow_pole``, ``high_peak_sensitivity``,
-        ``non_minimum_phase_short_horizon``, each at most once.
+        ``non_minimum_phase_short_horizon``, ``decoupling_zeros`` (square plants), each at most
+        once.
     """
+    square = np.shape(b)[1] == np.shape(c)[0]
+    zeros = plant_zeros(a, b, c) if square else None
     hessian = hessian_advice(a, b, c, design)
     found = [
         hessian,
@@ -578,8 +601,9 @@ def tuning_advice(
         ),
         None if analysis is None else sensitivity_advice(analysis),
         non_minimum_phase_advice(
-            a, b, c, prediction=design.prediction.prediction, sample_time=sample_time, poles=poles
+            a, b, c, prediction=design.prediction.prediction, sample_time=sample_time, poles=poles, computed=zeros
         ),
+        None if zeros is None else decoupling_zero_advice(a, b, c, computed=zeros),
     ]
     return [d for d in found if d is not None]
 
