@@ -66,6 +66,16 @@ class Settings(BaseSettings):
         ge=1,
         description="Most estimated floating-point work of one frequency analysis (points x cost of a point).",
     )
+    max_model_error_cases: int = Field(
+        default=DEFAULT_CAPS.max_model_error_cases,
+        ge=1,
+        description="Most loops of one analysis.model_error of /design (gain factors x extra dead times).",
+    )
+    max_model_error_work: int = Field(
+        default=DEFAULT_CAPS.max_model_error_work,
+        ge=1,
+        description="Most estimated floating-point work of one analysis.model_error (cases x eigenvalues of a loop).",
+    )
     max_identify_samples: int = Field(
         default=DEFAULT_CAPS.max_identify_samples,
         ge=20,

@@ -11,7 +11,8 @@ before any computation:
 - design: :func:`hessian_size`, :func:`prediction_entries`, :func:`horizon_gain_entries`;
 - simulation: :func:`simulation_work` (one run), :func:`run_entries` (the series it returns),
   :func:`qp_step_work` and :func:`limit_report_entries` (a run under limits);
-- robustness: :func:`frequency_work` (one frequency analysis);
+- robustness: :func:`frequency_work` (one frequency analysis), :func:`model_error_work` (the
+  loops of ``analysis.model_error``);
 - sweep: the sum of the above over its values (``service.pipeline.sweep``);
 - scheduling: :func:`request_work` of a whole request, from its sizes alone, chooses its
   compute lane (``service.api.compute``): above ``MOVECAST_HEAVY_WORK`` operations it runs in
@@ -23,6 +24,7 @@ before any computation:
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
@@ -52,6 +54,7 @@ __all__ = [
     "horizon_gain_entries",
     "limit_report_entries",
     "loop_frequency_work",
+    "model_error_work",
     "model_sizes",
     "plant_run_entries",
     "plant_run_work",
@@ -100,6 +103,10 @@ class Caps:
     #: Estimated work of one frequency analysis (``analysis.frequency`` of /design;
     #: :func:`frequency_work`); the same rough 5 s.
     max_frequency_work: int = 5_000_000_000
+    #: Loops one ``analysis.model_error`` of /design analyses (gain factors times extra dead times).
+    max_model_error_cases: int = 100
+    #: Estimated work of one ``analysis.model_error`` (:func:`model_error_work`); the same rough 5 s.
+    max_model_error_work: int = 5_000_000_000
     #: Most samples per column of one POST /identify (after resampling).
     max_identify_samples: int = 100_000
     #: Estimated work of one POST /identify: samples times fitted parameters times
@@ -278,6 +285,27 @@ def _disturbance_states(plant: DiscretePlant, disturbance: str) -> int:
     ]
 
 
+def model_error_work(
+    plant: DiscretePlant, estimator: EstimatorInputs, *, gain_factors: int, extra_dead_times: Sequence[int]
+) -> int:
+    """Estimated operations of ``analysis.model_error`` (the quantity capped by ``max_model_error_work``).
+
+    Per factor and extra dead time ``d``: the loop of controller, estimator and perturbed plant
+    has ``N = n + d r + na + m`` states (``r = min(m, p)`` per sample of the register,
+    ``na = n + nd`` estimator states, none for ``full_state``); its eigenvalues by the
+    Hessenberg QR algorithm cost about ``10 N^3`` (Golub and Van Loan, *Matrix Computations*,
+    4th ed., section 7.5.6, eigenvalues only), forming it about ``2 N^2 (n + m)``.
+    """
+    n, m, p = plant.states, plant.input_count, plant.output_count
+    full_state = estimator.kind == "full_state"
+    na = 0 if full_state else n + _disturbance_states(plant, estimator.disturbance)
+    work = 0
+    for d in extra_dead_times:
+        size = n + d * min(m, p) + na + m
+        work += gain_factors * (10 * size**3 + 2 * size * size * (n + m))
+    return work
+
+
 def _measured_disturbances(plant: DiscretePlant) -> int:
     return 0 if plant.b_disturbance is None else plant.b_disturbance.shape[1]
 
@@ -373,6 +401,11 @@ def _design_request_work(request: DesignRequest) -> int:
     work = design_work(states=n, inputs=m, outputs=p, prediction=h.prediction, control=control)
     if request.analysis.frequency:
         work += 2 * request.analysis.points * (n + p) ** 3
+    study = request.analysis.model_error
+    if study is not None:
+        for d in study.extra_dead_time:
+            size = 2 * n + 2 * p + m + d * min(m, p)
+            work += len(study.gain_factors) * 10 * size**3
     return work
 
 

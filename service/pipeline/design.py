@@ -29,6 +29,7 @@ from service.pipeline.limits import (
     limit_check_warnings,
 )
 from service.pipeline.limits_checks import LimitInputs, check_limits
+from service.pipeline.model_error import ModelErrorInputs, check_model_error, compute_model_error, model_error_report
 from service.pipeline.operating_point import check_operating_point, design_to_absolute, explain_failure, to_deviations
 from service.pipeline.plant import DiscretePlant, Signal, plant_arrays
 from service.pipeline.problems import pointer
@@ -57,6 +58,7 @@ from service.solver.design.marginal import MarginalMode, describe_signals
 from service.solver.estimation.estimator import Estimator
 from service.solver.evaluation.advice import merge_warnings, tuning_advice
 from service.solver.evaluation.frequency import FrequencyAnalysis, design_frequency_analysis
+from service.solver.evaluation.model_error import ModelErrorStudy
 from service.solver.evaluation.reach import dead_time_warnings
 from service.solver.models.modes import uncontrollable_mode_warnings
 from service.solver.models.properties import PlantProperties, plant_properties, plant_warnings
@@ -93,6 +95,8 @@ class DesignInputs:
     frequency_points: int | None = None
     #: The checked limits; ``None``: the request has none.
     limits: LimitInputs | None = None
+    #: The checked ``analysis.model_error``; ``None``: not asked.
+    model_error: ModelErrorInputs | None = None
     #: Whether the answer shows the sampled model (``analysis.sampled_model``).
     sampled_model: bool = False
     #: The fingerprint of the design request (its design fields alone).
@@ -127,6 +131,8 @@ class DesignOutcome:
         Of the design with that estimator, in scaled signals.
     limit_check : DesignLimitCheck or None
         The unconstrained law against the request's limits, when it has limits.
+    model_error : ModelErrorStudy or None
+        The loop on the perturbed models, when ``analysis.model_error`` was given.
     """
 
     scaled: ScaledPlant
@@ -138,6 +144,7 @@ class DesignOutcome:
     estimator: Estimator | None = None
     analysis: FrequencyAnalysis | None = None
     limit_check: DesignLimitCheck | None = None
+    model_error: ModelErrorStudy | None = None
 
 
 def _horizon_problems(request: DesignRequest, caps: Caps) -> list[FieldProblem]:
@@ -293,6 +300,8 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
     problems += found
     if request.analysis.frequency and not found:
         problems += frequency_problems(plant, estimator, points=request.analysis.points, caps=caps)
+    model_error, found = check_model_error(request.analysis.model_error, plant, estimator, caps)
+    problems += found
     if request.weights.terminal == "riccati" and plant.b_disturbance is not None:
         problems.append(
             FieldProblem(
@@ -319,6 +328,7 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         estimator=estimator,
         frequency_points=request.analysis.points if request.analysis.frequency else None,
         limits=limits,
+        model_error=model_error,
         sampled_model=request.analysis.sampled_model,
         fingerprint=design_fingerprint(request),
     )
@@ -377,13 +387,18 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
             first_penalized=inputs.first_penalized,
         )
         feedforward = unscale_feedforward(feedforward_gain(design.gain.horizon, fd), input_span=su, disturbance_span=sd)
-    estimator, analysis = None, None
-    if inputs.frequency_points is not None:
+    estimator, analysis, model_error = None, None, None
+    if inputs.frequency_points is not None or inputs.model_error is not None:
         assert inputs.estimator is not None
         estimator = scaled_estimator(inputs.estimator, plant, scaled)
+    if inputs.frequency_points is not None:
+        assert estimator is not None
         analysis = design_frequency_analysis(
             design, estimator, sample_time=plant.sample_time, points=inputs.frequency_points
         )
+    if inputs.model_error is not None:
+        assert estimator is not None
+        model_error = compute_model_error(inputs.model_error, design, estimator, scaled)
     properties = plant_properties(scaled.a, scaled.b, scaled.c)
     advice = tuning_advice(
         scaled.a,
@@ -424,6 +439,7 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
         estimator=estimator,
         analysis=analysis,
         limit_check=limit_check,
+        model_error=model_error,
     )
 
 
@@ -512,6 +528,8 @@ def _diagnostics(inputs: DesignInputs, outcome: DesignOutcome) -> DiagnosticsRep
         computed.append("frequency_analysis")
     if outcome.limit_check is not None:
         computed.append("limit_check")
+    if outcome.model_error is not None:
+        computed.append("model_error")
     return DiagnosticsReport(
         computed=computed, hessian_eigenvalue_method=outcome.design.hessian.eigenvalue_method, skipped=[]
     )
@@ -559,6 +577,9 @@ def design_response(inputs: DesignInputs, outcome: DesignOutcome) -> DesignRespo
         if outcome.analysis is None or outcome.estimator is None
         else robustness_report(outcome.analysis, outcome.estimator),
         limit_check=None if outcome.limit_check is None else limit_check_report(outcome.limit_check, plant),
+        model_error=None
+        if outcome.model_error is None or outcome.estimator is None
+        else model_error_report(outcome.model_error, outcome.estimator),
         diagnostics=_diagnostics(inputs, outcome),
         fingerprint=inputs.fingerprint,
     )

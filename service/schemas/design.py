@@ -10,6 +10,7 @@ from service.schemas.common import FiniteFloat, MatrixOut, RequestModel, Respons
 from service.schemas.estimator import EstimatorRequest
 from service.schemas.limits import LimitCheckReport, LimitsRequest
 from service.schemas.model import PlantModel
+from service.schemas.model_error import ModelErrorReport, ModelErrorRequest
 from service.schemas.robustness import RobustnessReport
 from service.schemas.step_response import ReductionReport
 from service.schemas.tuning import Horizons, Weights
@@ -60,6 +61,12 @@ class DesignAnalysis(RequestModel):
         description=f"Frequencies of the grid of the robustness block, {MIN_FREQUENCY_POINTS} to "
         f"{MAX_FREQUENCY_POINTS} (and within the service's work cap for the loop's size).",
     )
+    model_error: ModelErrorRequest | None = Field(
+        default=None,
+        description="Return model_error: the spectral radius of the loop (controller and the request's estimator "
+        "designed on the model) on the model with every gain multiplied by each factor and every dead time "
+        "lengthened by each number of samples, with a verdict per case and the range of factors found stable.",
+    )
 
 
 class DesignRequest(RequestModel):
@@ -71,8 +78,8 @@ class DesignRequest(RequestModel):
     analysis: DesignAnalysis = Field(default_factory=DesignAnalysis)
     estimator: EstimatorRequest = Field(
         default_factory=EstimatorRequest,
-        description="The estimator that closes the loop: /design uses it for analysis.frequency only, "
-        "/simulate for the run.",
+        description="The estimator that closes the loop: /design uses it for analysis.frequency and "
+        "analysis.model_error only, /simulate for the run.",
     )
     limits: LimitsRequest | None = Field(
         default=None,
@@ -246,7 +253,8 @@ class DiagnosticsReport(ResponseModel):
         description="Names of the diagnostics computed for this answer: hessian_eigenvalues, closed_loop_poles, "
         "open_loop_poles, steady_state_gain, relative_gain_array, hessian_what_if (the advice's condition "
         "numbers with heavier move weights and a shorter control horizon, when the Hessian is ill-conditioned), "
-        "slow_pole, transmission_zeros (square plants), uncontrollable_modes, frequency_analysis, limit_check."
+        "slow_pole, transmission_zeros (square plants), uncontrollable_modes, frequency_analysis, limit_check, "
+        "model_error."
     )
     hessian_eigenvalue_method: Literal["dense", "lanczos"] = Field(
         description="How the Hessian's extreme eigenvalues were found: LAPACK's dense symmetric eigensolver, or "
@@ -272,6 +280,11 @@ class DesignResponse(ResponseModel):
     )
     limit_check: LimitCheckReport | None = Field(
         default=None, description="When the request has limits: does the unconstrained law alone break them?"
+    )
+    model_error: ModelErrorReport | None = Field(
+        default=None,
+        description="When analysis.model_error is given: how much uniform gain error and extra dead time the "
+        "tuning tolerates (scaled signals; a design aid, not a guarantee for other kinds of model error).",
     )
     diagnostics: DiagnosticsReport | None = Field(
         default=None, description="Which diagnostics this answer holds and which a work budget left out."

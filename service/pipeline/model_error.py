@@ -1,0 +1,170 @@
+"""``analysis.model_error`` of /design: its checks, its work estimate and its report.
+
+:func:`check_model_error` refuses what the study cannot do or what would cost too much (before
+anything is computed); :func:`compute_model_error` runs
+:func:`service.solver.evaluation.model_error.model_error_study` on the scaled model;
+:func:`model_error_report` turns the study into the response block
+(:mod:`service.schemas.model_error`).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from service.errors import FieldProblem, NumericalError
+from service.pipeline.caps import Caps, model_error_work
+from service.pipeline.estimator import EstimatorInputs
+from service.pipeline.plant import DiscretePlant
+from service.pipeline.problems import pointer
+from service.schemas.model_error import (
+    ModelErrorCaseReport,
+    ModelErrorRangeReport,
+    ModelErrorReport,
+    ModelErrorRequest,
+)
+from service.solver.design.controller import ControllerDesign
+from service.solver.design.marginal import MARGINAL_TOLERANCE
+from service.solver.estimation.estimator import Estimator
+from service.solver.estimation.loop import control_loop
+from service.solver.evaluation.model_error import ModelErrorStudy, model_error_study
+from service.solver.models.scaling import ScaledPlant
+
+__all__ = ["ModelErrorInputs", "check_model_error", "compute_model_error", "model_error_report"]
+
+_WHERE = ("analysis", "model_error")
+
+
+@dataclass(frozen=True)
+class ModelErrorInputs:
+    """The checked ``analysis.model_error``: factors and extra dead times as given."""
+
+    gain_factors: tuple[float, ...]
+    extra_dead_times: tuple[int, ...]
+
+
+def check_model_error(
+    request: ModelErrorRequest | None, plant: DiscretePlant, estimator: EstimatorInputs, caps: Caps
+) -> tuple[ModelErrorInputs | None, list[FieldProblem]]:
+    """Check the study against the plant, the estimator and the caps.
+
+    Parameters
+    ----------
+    request : ModelErrorRequest or None
+    plant : DiscretePlant
+    estimator : EstimatorInputs
+        As checked.
+    caps : Caps
+
+    Returns
+    -------
+    inputs : ModelErrorInputs or None
+        ``None`` when not asked or refused.
+    problems : list of FieldProblem
+    """
+    if request is None:
+        return None, []
+    problems: list[FieldProblem] = []
+    factors, delays = tuple(request.gain_factors), tuple(request.extra_dead_time)
+    full_state = estimator.kind == "full_state"
+    cases = len(factors) * len(delays)
+    if cases > caps.max_model_error_cases:
+        problems.append(
+            FieldProblem(
+                pointer(*_WHERE, "gain_factors"),
+                f"{len(factors)} gain factors times {len(delays)} extra dead times make {cases} loops to analyse; "
+                f"this service analyses at most {caps.max_model_error_cases}. Give fewer factors or dead times",
+            )
+        )
+    register = min(plant.input_count, plant.output_count)
+    for i, d in enumerate(delays):
+        if d and full_state:
+            problems.append(
+                FieldProblem(
+                    pointer(*_WHERE, "extra_dead_time", i),
+                    "a full_state estimator reads the model's own states, which a longer dead time changes; "
+                    "give an estimator that reads the outputs (the default per_output), or leave 0 only",
+                )
+            )
+        elif plant.states + d * register > caps.max_states:
+            problems.append(
+                FieldProblem(
+                    pointer(*_WHERE, "extra_dead_time", i),
+                    f"{d} extra samples of dead time make a plant of {plant.states + d * register} states "
+                    f"({register} per sample); this service accepts at most {caps.max_states}",
+                )
+            )
+    if not full_state and (not np.array_equal(plant.c_measured, plant.c) or np.any(plant.d_measured)):
+        problems.append(
+            FieldProblem(
+                pointer(*_WHERE),
+                "the model-error study, like /simulate, has the estimator read the controlled outputs; measured "
+                "outputs other than those (c_measured, d_measured) are not supported yet. Leave them out, or use "
+                "a full_state estimator",
+            )
+        )
+    if not problems:
+        work = model_error_work(plant, estimator, gain_factors=len(factors), extra_dead_times=delays)
+        if work > caps.max_model_error_work:
+            problems.append(
+                FieldProblem(
+                    pointer(*_WHERE, "gain_factors"),
+                    f"the model-error study of this loop would take about {work:.2e} floating-point operations; "
+                    f"this service accepts at most {caps.max_model_error_work:.2e}. Give fewer factors or "
+                    "shorter extra dead times",
+                )
+            )
+    if problems:
+        return None, problems
+    return ModelErrorInputs(gain_factors=factors, extra_dead_times=delays), []
+
+
+def compute_model_error(
+    inputs: ModelErrorInputs, design: ControllerDesign, estimator: Estimator, scaled: ScaledPlant
+) -> ModelErrorStudy:
+    """The study on the scaled model with the design and estimator of that model.
+
+    Raises
+    ------
+    service.errors.NumericalError
+        Pointer ``/analysis/model_error`` when a spectral radius is not a finite number.
+    """
+    loop = control_loop(design, estimator)
+    study = model_error_study(
+        loop,
+        scaled.a,
+        scaled.b,
+        scaled.c,
+        gain_factors=inputs.gain_factors,
+        extra_dead_times=inputs.extra_dead_times,
+    )
+    if not all(math.isfinite(case.spectral_radius) for case in study.cases):
+        raise NumericalError(
+            "The poles of a perturbed loop are not finite numbers: the model's numbers or the factors are too "
+            "large for the loop's eigenvalues in double precision. Rescale the model or give smaller factors",
+            field=_WHERE,
+        )
+    return study
+
+
+def model_error_report(study: ModelErrorStudy, estimator: Estimator) -> ModelErrorReport:
+    """Turn the study into the response block."""
+    return ModelErrorReport(
+        cases=[
+            ModelErrorCaseReport(
+                gain_factor=case.gain_factor,
+                extra_dead_time=case.extra_dead_time,
+                spectral_radius=case.spectral_radius,
+                verdict=case.verdict,
+            )
+            for case in study.cases
+        ],
+        stable_ranges=[
+            ModelErrorRangeReport(extra_dead_time=d, lowest_stable_factor=low, highest_stable_factor=high)
+            for d, low, high in study.stable_ranges
+        ],
+        tolerance=MARGINAL_TOLERANCE,
+        estimator=estimator.kind,
+    )

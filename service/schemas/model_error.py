@@ -1,0 +1,88 @@
+"""``analysis.model_error`` of POST /design: the loop on the model with scaled gains and longer dead times.
+
+The controller and its estimator (the request's ``estimator``) are designed on the model; the
+plant they run on is the model with every element's gain multiplied by one factor and every dead
+time lengthened by a number of samples (``f z^-d P(z)``).  Computed by
+:func:`service.solver.evaluation.model_error.model_error_study`; no scenario is needed.
+"""
+
+from __future__ import annotations
+
+from typing import Annotated, Literal
+
+from pydantic import Field
+
+from service.schemas.common import RequestModel, ResponseModel
+
+__all__ = [
+    "MAX_GAIN_FACTOR",
+    "MIN_GAIN_FACTOR",
+    "ModelErrorCaseReport",
+    "ModelErrorRangeReport",
+    "ModelErrorReport",
+    "ModelErrorRequest",
+]
+
+#: Bounds of one gain factor.
+MIN_GAIN_FACTOR = 1e-6
+MAX_GAIN_FACTOR = 1e6
+#: Longest list the schema parses (the service's cap on the cases is lower; see the caps).
+_LONGEST_LIST = 1000
+
+GainFactor = Annotated[float, Field(strict=True, allow_inf_nan=False, ge=MIN_GAIN_FACTOR, le=MAX_GAIN_FACTOR)]
+ExtraDeadTime = Annotated[int, Field(strict=True, ge=0)]
+
+
+class ModelErrorRequest(RequestModel):
+    """Which model errors to try: every gain factor with every extra dead time."""
+
+    gain_factors: list[GainFactor] = Field(
+        default_factory=lambda: [0.5, 0.67, 0.8, 1.0, 1.25, 1.5, 2.0],
+        min_length=1,
+        max_length=_LONGEST_LIST,
+        description=f"Factors multiplying every element's gain of the plant ({MIN_GAIN_FACTOR:g} to "
+        f"{MAX_GAIN_FACTOR:g}; 1 is the model itself). The number of factors times the number of extra "
+        "dead times is capped by the service.",
+    )
+    extra_dead_time: list[ExtraDeadTime] = Field(
+        default_factory=lambda: [0],
+        min_length=1,
+        max_length=_LONGEST_LIST,
+        description="Samples added to every dead time of the plant (0: none). Each sample adds one state per "
+        "input or per output, whichever are fewer, within the service's state cap. Needs an estimator other "
+        "than full_state for values above 0 (full_state reads the model's own states).",
+    )
+
+
+class ModelErrorCaseReport(ResponseModel):
+    """The loop on one perturbed plant."""
+
+    gain_factor: float
+    extra_dead_time: int = Field(description="Samples.")
+    spectral_radius: float = Field(
+        description="Largest modulus of the poles of plant, controller and estimator together, the plant perturbed."
+    )
+    verdict: Literal["stable", "marginal", "unstable"] = Field(
+        description="stable: radius below 1 - tolerance; unstable: above 1 + tolerance; marginal: in between."
+    )
+
+
+class ModelErrorRangeReport(ResponseModel):
+    """The range of gain factors found stable at one extra dead time."""
+
+    extra_dead_time: int
+    lowest_stable_factor: float | None = Field(
+        description="Smallest factor of the run of consecutive stable factors (sorted) that holds the factor "
+        "nearest 1; null when that factor itself is not stable. Only the factors asked are tried: the true "
+        "limit lies between this factor and the next one asked."
+    )
+    highest_stable_factor: float | None = Field(description="Largest factor of that run; null as above.")
+
+
+class ModelErrorReport(ResponseModel):
+    """How much uniform gain error and extra dead time the tuning tolerates (design aid)."""
+
+    cases: list[ModelErrorCaseReport] = Field(description="Every factor for every extra dead time, as asked.")
+    stable_ranges: list[ModelErrorRangeReport] = Field(description="One per extra dead time, as asked.")
+    tolerance: float = Field(description="The tolerance of the verdicts around the unit circle.")
+    estimator: str = Field(description="The estimator kind in the loop (the request's estimator.kind).")

@@ -1,0 +1,204 @@
+"""How much model error a tuning tolerates: the loop on plants with scaled gains and longer dead times.
+
+The controller and its estimator are designed on the model ``(A, B, C)``.  The plant they run on
+is taken to be the model with every element's gain multiplied by one factor ``f`` and every dead
+time lengthened by ``d`` samples, i.e. the transfer matrix ::
+
+    P_true(z) = f z^-d P(z),        P(z) = C (zI - A)^-1 B
+
+(a uniform gain error and a uniform extra delay, the usual first questions of robustness to
+model error, common practice).  It is realized with ``B`` scaled by ``f`` and a shift register of
+``d`` samples on the inputs (``d m`` states) or on the outputs (``d p`` states), whichever is
+shorter; both realize the same ``P_true`` because a scalar delay commutes with ``P``.  The loop
+of controller, estimator and that plant is
+:func:`service.solver.estimation.loop.true_loop`, the same matrix /simulate analyses for a
+``true_plant``; its spectral radius decides the verdict with the tolerance of every
+stable/unstable verdict (:data:`service.solver.design.marginal.MARGINAL_TOLERANCE`).
+
+Accuracy: the eigenvalues come from LAPACK's nonsymmetric solver on the whole loop matrix,
+backward stable; a dead time's register makes a defective eigenvalue at zero whose copies
+scatter by about ``(eps ||M||)^(1/k)`` for a block of size ``k`` (Wilkinson), which moves the
+spectral radius only when the loop's slowest pole is that close to zero.
+
+Pure functions on arrays.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Literal
+
+import numpy as np
+from numpy.typing import NDArray
+
+from service.solver.design.marginal import MARGINAL_TOLERANCE
+from service.solver.estimation.loop import ControlLoop, true_loop
+
+__all__ = ["ModelErrorCase", "ModelErrorStudy", "model_error_study", "perturbed_plant", "stable_factor_range"]
+
+Verdict = Literal["stable", "marginal", "unstable"]
+
+
+@dataclass(frozen=True)
+class ModelErrorCase:
+    """The loop on one perturbed plant.
+
+    Attributes
+    ----------
+    gain_factor : float
+        ``f``.
+    extra_dead_time : int
+        ``d``, samples.
+    spectral_radius : float
+    verdict : {"stable", "marginal", "unstable"}
+        Radius below ``1 - MARGINAL_TOLERANCE``, within it of 1, or above ``1 + MARGINAL_TOLERANCE``.
+    """
+
+    gain_factor: float
+    extra_dead_time: int
+    spectral_radius: float
+    verdict: Verdict
+
+
+@dataclass(frozen=True)
+class ModelErrorStudy:
+    """Every case, in the order factors within dead times, and the stable range per dead time.
+
+    Attributes
+    ----------
+    cases : list of ModelErrorCase
+    stable_ranges : list of tuple
+        Per extra dead time (in the order given): ``(d, lowest, highest)``, the smallest and
+        largest factor of the run of consecutive stable factors (sorted) that holds the factor
+        nearest 1 (by ``|log f|``); ``lowest`` and ``highest`` are ``None`` when that factor is
+        not stable.
+    """
+
+    cases: list[ModelErrorCase]
+    stable_ranges: list[tuple[int, float | None, float | None]]
+
+
+def perturbed_plant(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    *,
+    gain_factor: float,
+    extra_dead_time: int,
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+    """Return a realization of ``f z^-d C (zI - A)^-1 B``.
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, n)
+    b : ndarray, shape (n, m)
+    c : ndarray, shape (p, n)
+    gain_factor : float, keyword-only
+        ``f``.
+    extra_dead_time : int, keyword-only
+        ``d >= 0`` samples.
+
+    Returns
+    -------
+    a_t, b_t, c_t : ndarray
+        With ``n + d min(m, p)`` states: the model's states first, then the register (oldest
+        sample last).
+    """
+    n, m = b.shape
+    p = c.shape[0]
+    d = int(extra_dead_time)
+    scaled_b = gain_factor * b
+    if d == 0:
+        return a.copy(), scaled_b, c.copy()
+    if m <= p:  # u(k) enters the register; x(k+1) = A x(k) + f B w_d(k)
+        r = d * m
+        a_t = np.zeros((n + r, n + r))
+        a_t[:n, :n] = a
+        a_t[:n, n + r - m :] = scaled_b
+        a_t[n + m :, n : n + r - m] = np.eye(r - m)
+        b_t = np.zeros((n + r, m))
+        b_t[n : n + m] = np.eye(m)
+        c_t = np.hstack([c, np.zeros((p, r))])
+        return a_t, b_t, c_t
+    r = d * p  # C x(k) enters the register; y(k) = w_d(k)
+    a_t = np.zeros((n + r, n + r))
+    a_t[:n, :n] = a
+    a_t[n : n + p, :n] = c
+    a_t[n + p :, n : n + r - p] = np.eye(r - p)
+    b_t = np.vstack([scaled_b, np.zeros((r, m))])
+    c_t = np.hstack([np.zeros((p, n + r - p)), np.eye(p)])
+    return a_t, b_t, c_t
+
+
+def _verdict(radius: float) -> Verdict:
+    if radius < 1.0 - MARGINAL_TOLERANCE:
+        return "stable"
+    if radius > 1.0 + MARGINAL_TOLERANCE:
+        return "unstable"
+    return "marginal"
+
+
+def stable_factor_range(cases: Sequence[ModelErrorCase]) -> tuple[float | None, float | None]:
+    """Lowest and highest factor of the stable run around the factor nearest 1 (see :class:`ModelErrorStudy`).
+
+    Parameters
+    ----------
+    cases : sequence of ModelErrorCase
+        Of one extra dead time.
+    """
+    ordered = sorted(cases, key=lambda case: case.gain_factor)
+    if not ordered:
+        return None, None
+    centre = min(range(len(ordered)), key=lambda i: abs(np.log(ordered[i].gain_factor)))
+    if ordered[centre].verdict != "stable":
+        return None, None
+    low = high = centre
+    while low > 0 and ordered[low - 1].verdict == "stable":
+        low -= 1
+    while high < len(ordered) - 1 and ordered[high + 1].verdict == "stable":
+        high += 1
+    return ordered[low].gain_factor, ordered[high].gain_factor
+
+
+def model_error_study(
+    loop: ControlLoop,
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    *,
+    gain_factors: Sequence[float],
+    extra_dead_times: Sequence[int],
+) -> ModelErrorStudy:
+    """Return the loop's spectral radius on the model perturbed by every factor and extra dead time.
+
+    Parameters
+    ----------
+    loop : ControlLoop
+        Controller and estimator designed on ``(A, B, C)``.
+    a : ndarray, shape (n, n)
+    b : ndarray, shape (n, m)
+    c : ndarray, shape (p, n)
+        The model, in the loop's signals (scaled like the design), measured outputs equal to
+        the controlled ones.
+    gain_factors : sequence of float, keyword-only
+        Positive factors ``f``.
+    extra_dead_times : sequence of int, keyword-only
+        Samples ``d >= 0`` (``0`` only for a ``full_state`` estimator, which reads the model's
+        states).
+
+    Returns
+    -------
+    ModelErrorStudy
+    """
+    cases: list[ModelErrorCase] = []
+    ranges: list[tuple[int, float | None, float | None]] = []
+    for d in extra_dead_times:
+        row = []
+        for f in gain_factors:
+            a_t, b_t, c_t = perturbed_plant(a, b, c, gain_factor=float(f), extra_dead_time=int(d))
+            radius = true_loop(loop, a_t, b_t, c_t).spectral_radius
+            row.append(ModelErrorCase(float(f), int(d), radius, _verdict(radius)))
+        cases += row
+        ranges.append((int(d), *stable_factor_range(row)))
+    return ModelErrorStudy(cases=cases, stable_ranges=ranges)
