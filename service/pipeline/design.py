@@ -72,6 +72,7 @@ __all__ = [
     "compute_design",
     "design_response",
     "marginal_mode_reports",
+    "retuned_inputs",
     "run_design",
     "run_design_json",
 ]
@@ -248,6 +249,35 @@ def _size_problems(request: DesignRequest, plant: DiscretePlant, caps: Caps) -> 
     return []
 
 
+def _checked_weights(
+    request: DesignRequest, plant: DiscretePlant
+) -> tuple[NDArray[np.float64] | None, NDArray[np.float64] | None, list[FieldProblem]]:
+    """The output and move weights as arrays, and what is wrong with them."""
+    q, problems = check_weight(
+        request.weights.output,
+        ("weights", "output"),
+        size=plant.output_count,
+        what="output weight",
+        names=[sig.name for sig in plant.outputs],
+    )
+    r, found = check_weight(
+        request.weights.move,
+        ("weights", "move"),
+        size=plant.input_count,
+        what="move weight",
+        names=[sig.name for sig in plant.inputs],
+    )
+    problems += found
+    if q is not None and not np.any(q):
+        problems.append(
+            FieldProblem(
+                pointer("weights", "output"),
+                "every output weight is zero, so no output is controlled; give at least one a positive weight",
+            )
+        )
+    return q, r, problems
+
+
 def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
     """Check everything the field types alone cannot: sizes that must agree, tags, and the caps.
 
@@ -271,29 +301,8 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
     problems += found
     if plant is None:
         raise InvalidRequest(problems)
-    q, found = check_weight(
-        request.weights.output,
-        ("weights", "output"),
-        size=plant.output_count,
-        what="output weight",
-        names=[sig.name for sig in plant.outputs],
-    )
+    q, r, found = _checked_weights(request, plant)
     problems += found
-    r, found = check_weight(
-        request.weights.move,
-        ("weights", "move"),
-        size=plant.input_count,
-        what="move weight",
-        names=[sig.name for sig in plant.inputs],
-    )
-    problems += found
-    if q is not None and not np.any(q):
-        problems.append(
-            FieldProblem(
-                pointer("weights", "output"),
-                "every output weight is zero, so no output is controlled; give at least one a positive weight",
-            )
-        )
     estimator, found = check_estimator(request.estimator, plant)
     problems += found
     limits, found = check_limits(request.limits, plant)
@@ -331,6 +340,39 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         model_error=model_error,
         sampled_model=request.analysis.sampled_model,
         fingerprint=design_fingerprint(request),
+    )
+
+
+def retuned_inputs(inputs: DesignInputs, request: DesignRequest, caps: Caps, *, fingerprint: str) -> DesignInputs:
+    """The checked inputs of ``request``, which differs from the request of ``inputs`` in its tuning only.
+
+    Only the tuning is checked again (horizons, weights, and the sizes they set) against the
+    plant and blocks of ``inputs``, which were checked once: the model is neither converted
+    nor sampled again.  A sweep calls this once per value.
+
+    Raises
+    ------
+    InvalidRequest
+    """
+    plant = inputs.plant
+    problems = _horizon_problems(request, caps)
+    q, r, found = _checked_weights(request, plant)
+    problems += found
+    if not problems:
+        problems += _size_problems(request, plant, caps)
+    if problems:
+        raise InvalidRequest(problems)
+    assert q is not None and r is not None
+    h = request.horizons
+    return replace(
+        inputs,
+        output_weight=q,
+        move_weight=r,
+        prediction=h.prediction,
+        control=h.control,
+        first_penalized=h.first_penalized,
+        move_steps=None if h.move_steps is None else tuple(h.move_steps),
+        fingerprint=fingerprint,
     )
 
 
