@@ -165,3 +165,20 @@ def test_a_minimal_model_keeps_all_its_states_and_its_zeros():
     assert zeros.minimal_states == 6
     assert zeros.input_decoupling.size == 0 and zeros.output_decoupling.size == 0
     assert _matched(zeros.transmission, system_zeros(a, b, c)) < 1e-9
+
+
+@pytest.mark.parametrize("exponents", [(0, 0, -9), (0, 0, 9), (-12, 0, 12), (12, -6, -12)])
+def test_state_units_change_no_decoupling_verdict(exponents):
+    """A level seen by one output and moved by both valves, its state in units from 1e-12 to 1e12:
+    still minimal, the same zero (the zeros of ``(S^-1 A S, S^-1 B, C S)`` are those of
+    ``(A, B, C)``, a similarity)."""
+    a = np.array([[0.9, 0.0, 0.0], [0.05, 0.8, 0.0], [0.0, 0.0, 1.0]])
+    b = np.array([[0.1, 0.0], [0.0, 0.3], [0.05, -0.04]])
+    c = np.array([[1.0, 1.0, 0.0], [0.0, 0.0, 1.0]])
+    base = plant_zeros(a, b, c)
+    s = 10.0 ** np.array(exponents, dtype=float)
+    found = plant_zeros(a * s[:, None] / s[None, :], b * s[:, None], c / s[None, :])
+    assert found.minimal_states == base.minimal_states == 3
+    assert found.input_decoupling.size == 0 and found.output_decoupling.size == 0
+    assert _matched(found.transmission, base.transmission) < 1e-5
+    assert _matched(base.transmission, _slycot_invariant_zeros(a, b, c)) < 1e-10

@@ -122,11 +122,11 @@ def _balanced(
     c = c / sy[:, None]
     size = n + m + p
     padded = np.zeros((size, size))
-    padded[:n, :n] = a
+    padded[:n, :n] = a - np.diag(np.diag(a))  # the diagonal is invariant; newer gebal would count it
     padded[:n, n : n + m] = b
     padded[n + m :, :n] = c
     # The input rows and output columns are zero, so gebal leaves their scales at one and
-    # balances each state's row (A and B) against its column (A and C).
+    # balances each state's row (A and B) against its column (A and C), off the diagonal.
     _, (scale, _) = scipy.linalg.matrix_balance(padded, permute=False, separate=True)
     d = scale[:n]
     return a * (1.0 / d)[:, None] * d[None, :], b * (1.0 / d)[:, None], c * d[None, :], su, sy
