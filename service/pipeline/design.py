@@ -86,6 +86,8 @@ class DesignInputs:
     first_penalized: int
     terminal: Literal["none", "riccati"] = "none"
     move_steps: tuple[int, ...] | None = None
+    #: ``S`` of the input targets (``weights.input``), as given; ``None``: none (or all zero).
+    input_weight: NDArray[np.float64] | None = None
     #: The checked estimator (of every request: /simulate runs with it).
     estimator: EstimatorInputs | None = None
     #: Grid size of the frequency analysis; ``None``: not asked.
@@ -279,6 +281,27 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         names=[sig.name for sig in plant.inputs],
     )
     problems += found
+    s_in = None
+    if request.weights.input is not None:
+        s_in, found = check_weight(
+            request.weights.input,
+            ("weights", "input"),
+            size=plant.input_count,
+            what="input weight",
+            names=[sig.name for sig in plant.inputs],
+        )
+        problems += found
+        if s_in is not None and not np.any(s_in):
+            s_in = None  # all zero: no input targets
+        if s_in is not None and request.weights.terminal == "riccati":
+            problems.append(
+                FieldProblem(
+                    pointer("weights", "input"),
+                    "input targets together with a Riccati terminal weight are not supported: the terminal "
+                    "weight would pull the inputs towards another steady state than the input targets. Leave "
+                    "out weights.input or use terminal 'none'",
+                )
+            )
     if q is not None and not np.any(q):
         problems.append(
             FieldProblem(
@@ -315,6 +338,7 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         first_penalized=h.first_penalized,
         terminal=request.weights.terminal,
         move_steps=None if h.move_steps is None else tuple(h.move_steps),
+        input_weight=s_in,
         estimator=estimator,
         frequency_points=request.analysis.points if request.analysis.frequency else None,
         limits=limits,
@@ -365,6 +389,7 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
         state_labels=list(plant.state_labels),
         terminal=inputs.terminal,
         blocking=inputs.move_steps,
+        input_weight=inputs.input_weight,
     )
     feedforward = None
     if scaled.b_disturbance is not None and sd is not None:
@@ -521,6 +546,7 @@ def design_response(inputs: DesignInputs, outcome: DesignOutcome) -> DesignRespo
         previous_input=names,
         setpoint=outputs,
         disturbance=[s.name for s in plant.disturbances],
+        input_target=[f"{name}.target" for name in names] if gain.input_target is not None else [],
     )
     return DesignResponse(
         gain=GainReport(
@@ -529,6 +555,7 @@ def design_response(inputs: DesignInputs, outcome: DesignOutcome) -> DesignRespo
             previous_input=gain.previous_input.tolist(),
             setpoint=gain.setpoint.tolist(),
             disturbance=None if outcome.feedforward is None else outcome.feedforward.tolist(),
+            input_target=None if gain.input_target is None else gain.input_target.tolist(),
             labels=labels,
         ),
         hessian=HessianReport(
