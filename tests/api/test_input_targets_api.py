@@ -151,8 +151,14 @@ def test_bad_input_weights_and_targets_are_422_naming_the_field(client):
     assert "/scenario/input_target_changes/0/step" in found
 
 
-def test_export_refuses_input_targets_naming_the_field(client):
+def test_export_takes_the_input_targets_as_inputs_of_the_law(client):
+    # The law run against /simulate is in tests/api/test_export_api.py ("three valves with
+    # input targets"); here the labels and the gain on the targets.
     request = copy.deepcopy(COLUMN)
     request["format"] = "state_space"
-    found = _problems(client.post("/design/export", json=request))
-    assert "input targets" in found["/weights/input"]
+    law = client.post("/design/export", json=request).json()
+    names = [s["name"] for s in law["inputs"]]
+    assert names[-3:] == ["reflux.target", "boilup.target", "feed_preheat.target"]
+    assert [s["role"] for s in law["inputs"][-3:]] == ["input_target"] * 3
+    d = np.array(law["d"]["values"])
+    assert np.any(d[:3, -3:])  # the targets move the inputs
