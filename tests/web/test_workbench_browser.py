@@ -388,8 +388,9 @@ def test_a_plant_test_csv_is_fitted_and_its_model_opens_as_a_design(workbench, s
     )
     assert page.get_by_test_id("errors").is_hidden(), page.get_by_test_id("errors").inner_text()
     designed = server.post("/design", request).json()
-    assert float(page.get_by_test_id("spectral-radius").get_attribute("data-value")) == (
-        designed["closed_loop"]["spectral_radius"]
+    assert (
+        float(page.get_by_test_id("spectral-radius").get_attribute("data-value"))
+        == (designed["closed_loop"]["spectral_radius"])
     )
 
 
@@ -399,9 +400,10 @@ def test_the_law_downloads_for_the_control_system(workbench, server):
     run_example(page, "design_request.json")
     request = load_example("design_request.json")
     text = download(page, "download-law-st").decode("utf-8")
-    assert text == httpx.post(
-        f"{server.base}/design/export", json={**request, "format": "structured_text"}, timeout=60
-    ).text
+    assert (
+        text
+        == httpx.post(f"{server.base}/design/export", json={**request, "format": "structured_text"}, timeout=60).text
+    )
     assert "FUNCTION_BLOCK" in text
     law = json.loads(download(page, "download-law-ss"))
     assert law == server.post("/design/export", {**request, "format": "state_space"}).json()
