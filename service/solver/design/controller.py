@@ -102,6 +102,7 @@ def design_controller(
     state_labels: Sequence[str] | None = None,
     terminal: TerminalKind = "none",
     blocking: Sequence[int] | None = None,
+    zone_outputs: Sequence[int] = (),
 ) -> ControllerDesign:
     """Design the unconstrained predictive controller of the design notes.
 
@@ -131,6 +132,10 @@ def design_controller(
         Steps (0-based, first 0, increasing, below ``Hu``) at which moves are allowed; the
         moves in between are zero, so the input is held (:mod:`service.solver.design.blocking`).
         Default: every step free.
+    zone_outputs : sequence of int, optional
+        Outputs held in a zone by the move QP (their weight in ``Q`` is 0): the closed-loop
+        poles they leave on the unit circle are named ``zone_output``
+        (:mod:`service.solver.design.marginal`).
 
     Returns
     -------
@@ -194,7 +199,9 @@ def design_controller(
         kt = terminal_first_move_gain(hessian, term, inputs=m)
         gain = with_terminal_gain(gain, term, kt)
     loop = closed_loop(a_, b_, gain.state, gain.previous_input)
-    marginal = tuple(marginal_modes(a_, b_, c_, output_root=root, weighted=rows, poles=loop.poles))
+    marginal = tuple(
+        marginal_modes(a_, b_, c_, output_root=root, weighted=rows, poles=loop.poles, zone_outputs=zone_outputs)
+    )
     loop = dataclasses.replace(loop, marginal=marginal, stable=loop.stable and not marginal)
     warnings = design_warnings(
         condition_number=hessian.condition_number,
