@@ -33,6 +33,7 @@ from service.pipeline.operating_point import check_operating_point, design_to_ab
 from service.pipeline.plant import DiscretePlant, Signal, plant_arrays
 from service.pipeline.problems import pointer
 from service.pipeline.robustness import frequency_problems, robustness_report
+from service.pipeline.zones import ZoneInputs, check_zones, zone_reports, zone_warnings
 from service.schemas.design import (
     ClosedLoopReport,
     DesignRequest,
@@ -92,6 +93,8 @@ class DesignInputs:
     frequency_points: int | None = None
     #: The checked limits; ``None``: the request has none.
     limits: LimitInputs | None = None
+    #: The checked zones; ``None``: every output has a setpoint.
+    zones: ZoneInputs | None = None
     #: Whether the answer shows the sampled model (``analysis.sampled_model``).
     sampled_model: bool = False
     #: The fingerprint of the design request (its design fields alone).
@@ -279,7 +282,9 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         names=[sig.name for sig in plant.inputs],
     )
     problems += found
-    if q is not None and not np.any(q):
+    zones, found = check_zones(request.zones, plant, q)
+    problems += found
+    if q is not None and not np.any(q) and zones is None and not found:
         problems.append(
             FieldProblem(
                 pointer("weights", "output"),
@@ -318,6 +323,7 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         estimator=estimator,
         frequency_points=request.analysis.points if request.analysis.frequency else None,
         limits=limits,
+        zones=zones,
         sampled_model=request.analysis.sampled_model,
         fingerprint=design_fingerprint(request),
     )
@@ -365,6 +371,7 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
         state_labels=list(plant.state_labels),
         terminal=inputs.terminal,
         blocking=inputs.move_steps,
+        zone_outputs=() if inputs.zones is None else inputs.zones.outputs,
     )
     feedforward = None
     if scaled.b_disturbance is not None and sd is not None:
@@ -410,6 +417,7 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
                 scaled.a, scaled.b, labels=plant.state_labels, loop_poles=design.loop.poles, poles=properties.poles
             ),
             *([] if limit_check is None else limit_check_warnings(limit_check, plant)),
+            *([] if inputs.zones is None else zone_warnings(inputs.zones, plant)),
         ],
         estimator=estimator,
         analysis=analysis,
@@ -549,6 +557,7 @@ def design_response(inputs: DesignInputs, outcome: DesignOutcome) -> DesignRespo
         if outcome.analysis is None or outcome.estimator is None
         else robustness_report(outcome.analysis, outcome.estimator),
         limit_check=None if outcome.limit_check is None else limit_check_report(outcome.limit_check, plant),
+        zones=None if inputs.zones is None else zone_reports(inputs.zones, plant),
         diagnostics=_diagnostics(inputs, outcome),
         fingerprint=inputs.fingerprint,
     )

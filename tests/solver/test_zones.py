@@ -186,7 +186,7 @@ def test_an_integrating_zone_level_is_named_zone_not_unstable_or_unweighted():
     # The level has weight 0 (a zone output): its integrator stays a closed-loop pole at z = 1
     # (the marginal-mode eigenvector argument of service.solver.design.marginal, by hand:
     # W C v = 0 for the level's mode v, so Kx v = 0).
-    kwargs = dict(output_weight=[1.0, 0.0], move_weight=[0.1, 0.1], prediction=15, control=3)
+    kwargs = {"output_weight": [1.0, 0.0], "move_weight": [0.1, 0.1], "prediction": 15, "control": 3}
     plain = design_controller(SUMP_A, SUMP_B, SUMP_C, **kwargs)
     zoned = design_controller(SUMP_A, SUMP_B, SUMP_C, **kwargs, zone_outputs=[1])
     # Unzoned, the level's integrator is an unweighted output, and the input direction that

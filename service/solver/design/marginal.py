@@ -537,7 +537,7 @@ def marginal_mode_warnings(
                 f"The plant mode(s) at {_pole_text(unweighted)} on the unit circle show only in "
                 f"{names}, which carry no output weight: the controller leaves them where they are "
                 f"(an integrating level with weight 0 drifts). Give one of these outputs a weight "
-                f"(or hold it in a range with limits).",
+                f"(or hold it in a range: zones).",
             )
         )
     unseen = by_cause.get("unobservable_mode", [])
