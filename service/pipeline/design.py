@@ -58,6 +58,7 @@ from service.solver.design.marginal import MarginalMode, describe_signals
 from service.solver.estimation.estimator import Estimator
 from service.solver.evaluation.advice import merge_warnings, tuning_advice
 from service.solver.evaluation.frequency import FrequencyAnalysis, design_frequency_analysis
+from service.solver.evaluation.reach import dead_time_warnings
 from service.solver.models.modes import uncontrollable_mode_warnings
 from service.solver.models.properties import PlantProperties, plant_properties, plant_warnings
 from service.solver.models.scaling import ScaledPlant, scale_plant, unscale_feedforward, unscale_gain
@@ -70,6 +71,7 @@ __all__ = [
     "compute_design",
     "design_response",
     "marginal_mode_reports",
+    "retuned_inputs",
     "run_design",
     "run_design_json",
 ]
@@ -243,6 +245,37 @@ def _size_problems(request: DesignRequest, plant: DiscretePlant, caps: Caps) -> 
     return []
 
 
+def _checked_weights(
+    request: DesignRequest, plant: DiscretePlant
+) -> tuple[NDArray[np.float64] | None, NDArray[np.float64] | None, ZoneInputs | None, list[FieldProblem]]:
+    """The output and move weights as arrays, the zones (which need no output weight), and what is wrong."""
+    q, problems = check_weight(
+        request.weights.output,
+        ("weights", "output"),
+        size=plant.output_count,
+        what="output weight",
+        names=[sig.name for sig in plant.outputs],
+    )
+    r, found = check_weight(
+        request.weights.move,
+        ("weights", "move"),
+        size=plant.input_count,
+        what="move weight",
+        names=[sig.name for sig in plant.inputs],
+    )
+    problems += found
+    zones, found = check_zones(request.zones, plant, q)
+    problems += found
+    if q is not None and not np.any(q) and zones is None and not found:
+        problems.append(
+            FieldProblem(
+                pointer("weights", "output"),
+                "every output weight is zero, so no output is controlled; give at least one a positive weight",
+            )
+        )
+    return q, r, zones, problems
+
+
 def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
     """Check everything the field types alone cannot: sizes that must agree, tags, and the caps.
 
@@ -266,31 +299,8 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
     problems += found
     if plant is None:
         raise InvalidRequest(problems)
-    q, found = check_weight(
-        request.weights.output,
-        ("weights", "output"),
-        size=plant.output_count,
-        what="output weight",
-        names=[sig.name for sig in plant.outputs],
-    )
+    q, r, zones, found = _checked_weights(request, plant)
     problems += found
-    r, found = check_weight(
-        request.weights.move,
-        ("weights", "move"),
-        size=plant.input_count,
-        what="move weight",
-        names=[sig.name for sig in plant.inputs],
-    )
-    problems += found
-    zones, found = check_zones(request.zones, plant, q)
-    problems += found
-    if q is not None and not np.any(q) and zones is None and not found:
-        problems.append(
-            FieldProblem(
-                pointer("weights", "output"),
-                "every output weight is zero, so no output is controlled; give at least one a positive weight",
-            )
-        )
     estimator, found = check_estimator(request.estimator, plant)
     problems += found
     limits, found = check_limits(request.limits, plant)
@@ -326,6 +336,40 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         zones=zones,
         sampled_model=request.analysis.sampled_model,
         fingerprint=design_fingerprint(request),
+    )
+
+
+def retuned_inputs(inputs: DesignInputs, request: DesignRequest, caps: Caps, *, fingerprint: str) -> DesignInputs:
+    """The checked inputs of ``request``, which differs from the request of ``inputs`` in its tuning only.
+
+    Only the tuning is checked again (horizons, weights, and the sizes they set) against the
+    plant and blocks of ``inputs``, which were checked once: the model is neither converted
+    nor sampled again.  A sweep calls this once per value.
+
+    Raises
+    ------
+    InvalidRequest
+    """
+    plant = inputs.plant
+    problems = _horizon_problems(request, caps)
+    q, r, zones, found = _checked_weights(request, plant)
+    problems += found
+    if not problems:
+        problems += _size_problems(request, plant, caps)
+    if problems:
+        raise InvalidRequest(problems)
+    assert q is not None and r is not None
+    h = request.horizons
+    return replace(
+        inputs,
+        output_weight=q,
+        move_weight=r,
+        prediction=h.prediction,
+        control=h.control,
+        first_penalized=h.first_penalized,
+        move_steps=None if h.move_steps is None else tuple(h.move_steps),
+        zones=zones,
+        fingerprint=fingerprint,
     )
 
 
@@ -411,8 +455,17 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
         feedforward=feedforward,
         properties=properties,
         warnings=[
+            *dead_time_warnings(
+                scaled.a,
+                scaled.b,
+                scaled.c,
+                design,
+                input_labels=[sig.name for sig in plant.inputs],
+                output_labels=[sig.name for sig in plant.outputs],
+            ),
             *merge_warnings(design.warnings, advice),
-            *plant_warnings(properties),
+            # on the span-scaled signals when both lists have spans, else unit-free
+            *plant_warnings(properties, balanced=not (bool(np.any(su != 1.0)) and bool(np.any(sz != 1.0)))),
             *uncontrollable_mode_warnings(
                 scaled.a, scaled.b, labels=plant.state_labels, loop_poles=design.loop.poles, poles=properties.poles
             ),

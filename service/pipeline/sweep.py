@@ -1,21 +1,27 @@
-"""Run a tuning sweep through the /design (and /simulate) pipeline, one substituted request per value.
+"""Run a tuning sweep through the /design (and /simulate) pipeline, one retuning per value.
 
 Each entry is what a separate call gives: the base design request with the value put in,
-checked and designed by the same functions as POST /design, or, with a ``scenario``, checked,
-designed and simulated by those of POST /simulate (the base design's estimator closing the
-loop).  The work caps hold for the sweep as a whole: the values' frequency analyses together
+designed by the same functions as POST /design, or, with a ``scenario``, designed and
+simulated by those of POST /simulate (the base design's estimator closing the loop).  The
+base request is checked once (its model converted and sampled once, its true plant too);
+each value only retunes those checked inputs (:func:`service.pipeline.design.retuned_inputs`:
+horizons, weights and the sizes they set are checked again).  The work caps hold for the sweep as a whole: the values' frequency analyses together
 within ``max_frequency_work``, their runs together within ``max_simulation_work``.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable
+from dataclasses import replace
 from typing import TypeVar
+
+import numpy as np
 
 from service.errors import FieldKey, FieldProblem, InvalidRequest, NumericalError
 from service.pipeline.caps import Caps, loop_frequency_work, plant_run_work
-from service.pipeline.design import DesignInputs, DesignOutcome, check_design_request, compute_design
+from service.pipeline.design import DesignInputs, DesignOutcome, check_design_request, compute_design, retuned_inputs
 from service.pipeline.fingerprint import fingerprint
+from service.pipeline.limits_checks import limit_work_problems
 from service.pipeline.problems import pointer, problem_of
 from service.pipeline.robustness import robustness_report
 from service.pipeline.simulate import compute_simulation, performance_report
@@ -23,6 +29,8 @@ from service.pipeline.simulate_checks import SimulationInputs, check_simulate_re
 from service.schemas.design import DesignRequest, WarningReport
 from service.schemas.simulate import PerformanceReport, ScenarioRequest, SimulateRequest
 from service.schemas.sweep import HORIZON_PARAMETERS, SweepEntryReport, SweepProblem, SweepRequest, SweepResponse
+from service.solver.estimation.estimator import Estimator
+from service.solver.evaluation.frequency import FrequencyAnalysis
 
 __all__ = ["run_sweep", "simulate_request", "substituted_request"]
 
@@ -128,23 +136,49 @@ def _failed(request: SweepRequest, value: float, mark: str, exc: InvalidRequest 
     return SweepEntryReport(value=value, status="failed", fingerprint=mark, problem=SweepProblem(**problem.brief()))
 
 
-def _entry(request: SweepRequest, value: float, caps: Caps) -> SweepEntryReport:
+def _peak_sensitivity(analysis: FrequencyAnalysis, estimator: Estimator) -> float:
+    """The larger peak of S at the plant input and output, without building the whole report.
+
+    Numbers that are not finite fail the entry as the report would (its own NumericalError).
+    """
+    loops = (analysis.plant_input, analysis.plant_output)
+    for loop in loops:
+        arrays = (loop.sensitivity_singular_values, loop.complementary_singular_values)
+        figures = (loop.peak_sensitivity, loop.peak_complementary)
+        if not (all(np.all(np.isfinite(x)) for x in arrays) and np.all(np.isfinite(figures))):
+            robustness_report(analysis, estimator)  # raises the report's NumericalError
+    return float(max(loop.peak_sensitivity for loop in loops))
+
+
+def _entry(
+    request: SweepRequest, value: float, base: DesignInputs, run: SimulationInputs | None, caps: Caps
+) -> SweepEntryReport:
+    """One value: the base's checked inputs retuned (the model is not converted again), designed, run."""
     design_request = substituted_request(request, value)
     mark = fingerprint(design_request)
     performance: PerformanceReport | None = None
     peak: float | None = None
     try:
+        inputs = retuned_inputs(base, design_request, caps, fingerprint=mark)
         outcome: DesignOutcome
-        if request.scenario is None:
-            outcome = compute_design(check_design_request(design_request, caps))
+        if run is None:
+            outcome = compute_design(inputs)
         else:
-            inputs = check_simulate_request(simulate_request(design_request, request.scenario), caps)
-            run = compute_simulation(inputs)
-            outcome = run.design
-            performance = performance_report(inputs.design.plant, run)
+            work = limit_work_problems(
+                inputs.limits,
+                steps=run.steps,
+                free_moves=inputs.free_moves,
+                penalized_steps=max(inputs.prediction - inputs.first_penalized + 1, 1),
+                caps=caps,
+            )
+            if work:
+                raise InvalidRequest(work)
+            retuned_run = replace(run, design=inputs)
+            simulation = compute_simulation(retuned_run)
+            outcome = simulation.design
+            performance = performance_report(inputs.plant, simulation)
         if outcome.analysis is not None and outcome.estimator is not None:
-            robustness = robustness_report(outcome.analysis, outcome.estimator)
-            peak = max(robustness.plant_input.peak_sensitivity, robustness.plant_output.peak_sensitivity)
+            peak = _peak_sensitivity(outcome.analysis, outcome.estimator)
     except (InvalidRequest, NumericalError) as exc:
         return _failed(request, value, mark, exc)
     loop = outcome.design.loop
@@ -256,5 +290,5 @@ def run_sweep(request: SweepRequest, caps: Caps) -> SweepResponse:
     return SweepResponse(
         parameter=request.parameter,
         signal=request.signal,
-        entries=[_entry(request, value, caps) for value in request.values],
+        entries=[_entry(request, value, base, base_run, caps) for value in request.values],
     )

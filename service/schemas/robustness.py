@@ -6,7 +6,9 @@ Asked for by ``analysis: {"frequency": true, "points": N}``; computed by
 
 Units.  Frequencies are in rad per time unit of the model's sample time (rad/min for a
 sample time in minutes), on a log-spaced grid of ``points`` frequencies that ends at the
-Nyquist frequency ``pi / sample_time`` and starts four decades below it.  The loop is the
+Nyquist frequency ``pi / sample_time`` and starts four decades below it, or lower: a decade
+below the slowest pole of the plant, the controller and the closed loop (at most twelve
+decades), so a slow loop's crossovers are on it.  The loop is the
 design's, in scaled signals (``u / span``, ``z / span``): for a multivariable loop the
 singular values of S and T, and so their peaks and the bandwidth, are those of the scaled
 signals and change with the spans (a diagonal change of units changes singular values); for
@@ -39,7 +41,10 @@ class MarginsReport(ResponseModel):
         description="Factor by which the loop gain may change before the loop becomes unstable (below 1: a decrease)."
     )
     gain_margin_db: float | None = Field(description="20 log10 of the gain margin.")
-    phase_crossover_frequency: float | None = Field(description="Where L is real and negative, rad per time unit.")
+    phase_crossover_frequency: float | None = Field(
+        description="Where L is real and negative, rad per time unit; 0 when that is at zero frequency "
+        "(a loop without integral action whose phase starts at -180 degrees)."
+    )
     phase_margin: float | None = Field(description="Degrees, in (-180, 180].")
     gain_crossover_frequency: float | None = Field(description="Where |L| = 1, rad per time unit.")
 

@@ -19,7 +19,9 @@ class Horizons(RequestModel):
     prediction: Horizon = Field(description="Prediction horizon Hp (samples), 1 <= Hp.")
     control: Horizon = Field(description="Control horizon Hu (moves), 1 <= Hu <= Hp.")
     first_penalized: Horizon = Field(
-        default=1, description="First penalized prediction step Hw, 1 <= Hw <= Hp (default 1)."
+        default=1,
+        description="First penalized prediction step Hw, 1 <= Hw <= Hp (default 1). The Riccati "
+        "terminal weight gives the infinite-horizon gain only with Hw = 1.",
     )
     move_steps: Annotated[list[Annotated[int, Field(strict=True, ge=0)]], Field(min_length=1)] | None = Field(
         default=None,
@@ -43,5 +45,7 @@ class Weights(RequestModel):
         default="none",
         description="'riccati' puts the solution of the discrete Riccati equation of the incremental "
         "system on the last predicted [x; u] in place of the last step's output weight; with Hu = Hp "
-        "the gain is then the infinite-horizon LQR gain for any horizon.",
+        "and first_penalized = 1 the gain is then the infinite-horizon LQR gain for any horizon, and "
+        "the loop is stable. With a later first penalized step the outputs before it carry no cost, so "
+        "the gain is not the LQR gain and stability is not guaranteed: read it from closed_loop.",
     )

@@ -245,3 +245,28 @@ def test_bad_analysis_estimator_or_scenario_of_a_sweep_name_the_field(client, ed
     edit(sweep)
     r = client.post("/design/sweep", json=sweep)
     assert r.status_code == 422 and pointer in [e["pointer"] for e in r.json()["errors"]], r.text
+
+
+@pytest.mark.parametrize("scenario", [None, SCENARIO])
+def test_a_sweep_converts_its_model_once(monkeypatch, scenario):
+    # The base request is checked once and each value only retunes its checked inputs: the
+    # model is converted to a discrete plant once, however many values (common practice of the
+    # pipeline, see service/pipeline/sweep.py); the entries still equal separate calls (above).
+    import service.pipeline.design as design_module
+    from service.pipeline.caps import Caps
+    from service.pipeline.sweep import run_sweep
+    from service.schemas.sweep import SweepRequest
+
+    calls = []
+    convert = design_module.plant_arrays
+
+    def counted(*args, **kwargs):
+        calls.append(1)
+        return convert(*args, **kwargs)
+
+    monkeypatch.setattr(design_module, "plant_arrays", counted)
+    sweep = analysed_sweep(scenario=scenario)
+    response = run_sweep(SweepRequest.model_validate(sweep), Caps())
+    assert len(response.entries) == len(sweep["values"]) > 1
+    assert all(e.status == "designed" for e in response.entries)
+    assert len(calls) == 1

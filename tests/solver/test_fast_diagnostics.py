@@ -97,9 +97,10 @@ def test_a_clustered_end_falls_back_to_the_dense_solver(rng):
 
 @pytest.mark.parametrize("move", [[0.1] * 8, [0.1, 0.2, 0.3, 0.4, 0.1, 0.2, 0.3, 0.4]])
 def test_updated_what_if_condition_numbers_equal_full_redesigns(rng, move):
-    # Reference: design_controller run again with the heavier weights and the shorter horizon
-    # (its condition number from the dense eigensolver, forced by a large threshold).  R = r I
-    # takes the exact shift of the spectrum, any other R one more Cholesky factorization.
+    # Reference: design_controller run again with the heavier weights and the shorter horizon,
+    # its Hessian scaled to unit diagonal (the verdicts are unit-free) and its condition number
+    # from scipy's dense symmetric eigensolver.  The update reuses the leading block of the
+    # design's Cholesky factor for the shorter horizon and factors once more for heavier moves.
     a, b, c = random_plant(rng, 40, 8, 8, radius=0.95)
     base = {"output_weight": np.ones(8), "prediction": 80}
     d = design_controller(a, b, c, move_weight=np.array(move), control=60, **base)
@@ -107,7 +108,8 @@ def test_updated_what_if_condition_numbers_equal_full_redesigns(rng, move):
     shorter = design_controller(a, b, c, move_weight=np.array(move), control=30, **base)
 
     def dense_condition(h):
-        values = scipy.linalg.eigvalsh(h)
+        root = np.sqrt(np.diag(h))
+        values = scipy.linalg.eigvalsh(h / root[:, None] / root[None, :])
         return values[-1] / values[0]
 
     assert _condition_number(a, b, c, d, move_scale=10.0, control=60) == pytest.approx(

@@ -51,11 +51,12 @@ def test_ill_conditioned_hessian_states_both_fixes_with_their_numbers():
     advice = hessian_advice(*TWIN, d)
     assert advice is not None and advice.code == "ill_conditioned_hessian"
     # The figures quoted are those of the same design redone with R x 10 and with Hu / 2.
-    heavier = twin_design(1e-5, 8).hessian.condition_number
-    shorter = twin_design(1e-6, 4).hessian.condition_number
+    # (condition numbers of the Hessian scaled to unit diagonal, which do not depend on units)
+    heavier = twin_design(1e-5, 8).hessian.scaled_condition_number
+    shorter = twin_design(1e-6, 4).hessian.scaled_condition_number
     assert f"{heavier:.3g}" in advice.message and f"{shorter:.3g}" in advice.message
     assert "from 8 to 4" in advice.message
-    assert heavier < d.hessian.condition_number
+    assert heavier < d.hessian.scaled_condition_number
 
 
 def test_well_conditioned_hessian_gets_no_advice():
@@ -244,8 +245,8 @@ def test_shortcut_condition_numbers_equal_full_redesigns(rng):
     heavier = design_controller(a, b, c, control=6, **{**base, "move_weight": [1.0, 3.0]})
     shorter = design_controller(a, b, c, control=3, **base)
     assert _condition_number(a, b, c, d, move_scale=10.0, control=6) == pytest.approx(
-        heavier.hessian.condition_number, rel=1e-9
+        heavier.hessian.scaled_condition_number, rel=1e-9
     )
     assert _condition_number(a, b, c, d, move_scale=1.0, control=3) == pytest.approx(
-        shorter.hessian.condition_number, rel=1e-9
+        shorter.hessian.scaled_condition_number, rel=1e-9
     )

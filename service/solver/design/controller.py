@@ -204,7 +204,7 @@ def design_controller(
     )
     loop = dataclasses.replace(loop, marginal=marginal, stable=loop.stable and not marginal)
     warnings = design_warnings(
-        condition_number=hessian.condition_number,
+        condition_number=hessian.scaled_condition_number,
         loop=loop,
         input_labels=input_labels,
         output_labels=output_labels,

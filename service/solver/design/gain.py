@@ -28,6 +28,7 @@ from numpy.typing import NDArray
 from service.errors import HessianNotPositiveDefinite
 from service.solver.design.prediction import Prediction
 from service.solver.design.spectrum import spectrum_ends
+from service.solver.numerics import equilibrated_rank, jacobi_scaled
 
 __all__ = [
     "FactoredHessian",
@@ -54,6 +55,10 @@ class FactoredHessian:
         From :func:`service.solver.design.spectrum.spectrum_ends`.
     eigenvalue_method : {"dense", "lanczos"}
         The route that found them.
+    scaled_condition_number : float
+        Condition number of the Jacobi-scaled Hessian (unit diagonal,
+        :func:`service.solver.numerics.jacobi_scaled`): the same in any units of the inputs,
+        and the one the ``ill_conditioned_hessian`` verdict uses.  ``nan`` when not computed.
     """
 
     matrix: NDArray[np.float64]
@@ -61,6 +66,7 @@ class FactoredHessian:
     smallest_eigenvalue: float
     largest_eigenvalue: float
     eigenvalue_method: Literal["dense", "lanczos"] = "dense"
+    scaled_condition_number: float = float("nan")
 
     @property
     def condition_number(self) -> float:
@@ -209,16 +215,26 @@ def toeplitz_hessian(
 def _unseen_free_moves(
     weighted: NDArray[np.float64], move_weight: NDArray[np.float64], control: int
 ) -> tuple[list[int], int, int]:
-    """Inputs with an unpenalized move direction, and the rank G shows over those directions."""
+    """Inputs with an unpenalized move direction, and the rank G shows over those directions.
+
+    Judged in the units where every input's first move has the same size in ``H``: a move
+    weight counts as zero when it is at rounding level next to what the outputs see of that
+    input (``eps * m`` relative to the diagonal of ``G' Q G + R``), and the rank of ``G``
+    over the free directions is counted on its equilibrated form.
+    """
     m = move_weight.shape[0]
-    values, vectors = np.linalg.eigh(move_weight)
+    seen_first = np.einsum("ij,ij->j", weighted[:, :m], weighted[:, :m])  # diag of G'QG, first move
+    scale = np.sqrt(np.maximum(seen_first + np.diag(move_weight), np.finfo(float).tiny))
+    unit = move_weight / scale[:, None] / scale[None, :]
+    values, vectors = np.linalg.eigh(unit)
     free = vectors[:, values <= max(values.max(initial=0.0), 1.0) * m * np.finfo(float).eps]
     if free.shape[1] == 0:
         return [], 0, 0
-    inputs = sorted({int(i) for i in np.nonzero(np.abs(free).max(axis=1) > 1e-12)[0]})
+    free = free / scale[:, None]  # back to the request's units
+    inputs = sorted({int(i) for i in np.nonzero(np.abs(free * scale[:, None]).max(axis=1) > 1e-12)[0]})
     directions = np.kron(np.eye(control), free)  # free move directions over the horizon
     seen = weighted @ directions
-    rank = int(np.linalg.matrix_rank(seen)) if seen.size else 0
+    rank = equilibrated_rank(seen, seen.shape[1] * np.finfo(float).eps)[0] if seen.size else 0
     return inputs, rank, directions.shape[1]
 
 
@@ -253,8 +269,10 @@ def factor_hessian(
     Raises
     ------
     HessianNotPositiveDefinite
-        When Cholesky fails, or the smallest eigenvalue is not above ``size * eps * l_max``
-        (the rank tolerance of ``numpy.linalg.matrix_rank``).  ``H`` is singular exactly when
+        When Cholesky fails, or the smallest eigenvalue of the Jacobi-scaled Hessian
+        (:func:`service.solver.numerics.jacobi_scaled`, unit diagonal) is not above
+        ``size * eps * l_max`` of it (the rank tolerance of ``numpy.linalg.matrix_rank``):
+        a verdict that does not depend on the units of the inputs.  ``H`` is singular exactly when
         a move direction has zero move weight and ``G`` maps it to zero, i.e. ``G`` lacks full
         column rank over the unpenalized moves.
     """
@@ -263,11 +281,25 @@ def factor_hessian(
         factor = scipy.linalg.cho_factor(hessian, lower=True, check_finite=False)
     except np.linalg.LinAlgError:
         factor = None
+    scaled_condition = float("inf")
     if factor is not None:
         ends = spectrum_ends(hessian, factor=factor)
         low, high = ends.low, ends.high
-        if low <= hessian.shape[0] * np.finfo(float).eps * max(abs(high), np.finfo(float).tiny):
+        # The scaled Hessian D^-1/2 H D^-1/2 has the Cholesky factor D^-1/2 L: its ends come
+        # by the same route without a second factorization.
+        root = np.sqrt(np.diag(hessian))
+        scaled_ends = spectrum_ends(jacobi_scaled(hessian), factor=(factor[0] / root[:, None], True))
+        s_low, s_high = scaled_ends.low, scaled_ends.high
+        if s_low <= hessian.shape[0] * np.finfo(float).eps * max(abs(s_high), np.finfo(float).tiny):
             factor = None
+        else:
+            scaled_condition = s_high / s_low
+            if low <= hessian.shape[0] * np.finfo(float).eps * abs(high):
+                # badly scaled units: the eigenvalue solver cannot resolve l_min next to l_max,
+                # but the factor can: l_min = 1 / ||L^-1||^2 (largest singular value, accurate)
+                assert factor is not None
+                inverse = scipy.linalg.solve_triangular(factor[0], np.eye(hessian.shape[0]), lower=True)
+                low = 1.0 / float(np.linalg.norm(inverse, 2)) ** 2
     if factor is None:
         eigenvalues = scipy.linalg.eigvalsh(hessian, check_finite=False)  # for the message only
         m = move_weight.shape[0]
@@ -301,6 +333,7 @@ def factor_hessian(
         smallest_eigenvalue=low,
         largest_eigenvalue=high,
         eigenvalue_method=ends.method,
+        scaled_condition_number=scaled_condition,
     )
 
 

@@ -20,6 +20,9 @@ infinite-horizon LQR move ``du = -K xi``, ``K = (R + B_i' P B_i)^-1 B_i' P A_i``
 horizon, ``Hp = 1`` included, and the loop is stable whenever the stabilizing solution
 exists (standard results of linear-quadratic regulation; common practice).  The stage cost
 at ``i = 0`` the horizon cost omits is a constant and does not change the minimiser.
+With ``Hw > 1`` the stage costs of steps ``1 .. Hw-1`` are missing as well; they depend on
+the moves, so the first move is no longer the LQR move and the Lyapunov argument for
+stability does not apply (the closed loop's poles say whether it is stable).
 
 Steady-state target.  For a constant setpoint ``r`` the terminal deviation is taken from
 the steady state ``xi_s = [x_s; u_s] = S_r r`` of :mod:`service.solver.estimation.target` (exact when

@@ -70,7 +70,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any, Literal
+from typing import Literal
 
 import numpy as np
 import scipy.linalg
@@ -78,7 +78,12 @@ from numpy.typing import ArrayLike, NDArray
 
 from service.errors import NumericalError
 from service.solver.design.weights import weight_matrix
-from service.solver.numerics import eigenvalues_by_modulus, format_complex, pbh_matrix, singular_value_rank
+from service.solver.numerics import (
+    eigenvalues_by_modulus,
+    equilibrated_rank,
+    format_complex,
+    pbh_matrix,
+)
 
 __all__ = [
     "DEFAULT_DISTURBANCE_NOISE",
@@ -343,12 +348,14 @@ def augmented_model(
     return a_aug, b_aug, c_aug, bd, cd
 
 
-def _rank(matrix: NDArray[Any]) -> tuple[int, NDArray[Any]]:
-    """Numerical rank with :data:`DETECTABILITY_TOLERANCE`, and the right singular vectors."""
-    if matrix.size == 0:
-        return 0, np.eye(matrix.shape[1])
-    _, s, vt = np.linalg.svd(matrix)
-    return singular_value_rank(s, DETECTABILITY_TOLERANCE), vt
+def _rank(matrix: NDArray[np.float64] | NDArray[np.complex128]) -> tuple[int, NDArray[np.float64]]:
+    """Numerical rank with :data:`DETECTABILITY_TOLERANCE` on the equilibrated matrix, and a null vector.
+
+    Rows and columns are scaled first (:func:`service.solver.numerics.equilibrate`), so the
+    verdict does not depend on the units of states, outputs, inputs or disturbances.
+    """
+    rank, null = equilibrated_rank(matrix, DETECTABILITY_TOLERANCE)
+    return rank, np.real(null)
 
 
 def _format_vector(v: NDArray[np.float64], labels: Sequence[str]) -> str:
@@ -411,7 +418,7 @@ def _check_detectable(
     rank, vt = _rank(matrix)
     if rank == n + nd:
         return
-    hidden = vt[-1, n:]  # disturbance part of a null vector
+    hidden = vt[n:]  # disturbance part of a null vector
     if disturbance == "per_output":
         labels = [
             f"{o} ({'rate' if k == 'rate' else 'output'} bias)"

@@ -56,7 +56,7 @@ from service.solver.design.closed_loop import ILL_CONDITIONED, UNIT_CIRCLE_MARGI
 from service.solver.design.controller import ControllerDesign, design_controller
 from service.solver.design.spectrum import extreme_eigenvalues
 from service.solver.evaluation.frequency import FrequencyAnalysis
-from service.solver.numerics import by_modulus, format_complex
+from service.solver.numerics import by_modulus, format_complex, jacobi_scaled
 
 __all__ = [
     "PEAK_SENSITIVITY_LIMIT",
@@ -122,39 +122,39 @@ def _condition_number(
         )
     except NumericalError:
         return None
-    return other.hessian.condition_number
+    return other.hessian.scaled_condition_number
 
 
 def _updated_condition_number(design: ControllerDesign, *, move_scale: float, control: int) -> float | None:
-    """The condition number of a "what if" Hessian, updated from the design's own.
+    """The condition number of a "what if" Hessian, Jacobi-scaled, from the design's own factor.
 
     The leading ``Hu' m`` block of ``H`` has the leading block of ``H``'s Cholesky factor
     as its own (``L11 L11' = H11``, Golub and Van Loan, *Matrix Computations*, 4th ed.,
-    section 4.2), so a shorter control horizon needs no new factorization.  Scaling every
-    move weight by ``s`` adds ``(s - 1) blockdiag(R)``; when ``R = r I`` that shifts every
-    eigenvalue by ``(s - 1) r`` exactly, otherwise the sum is factored once more.
+    section 4.2), so a shorter control horizon needs no new factorization; scaling every move
+    weight by ``s`` adds ``(s - 1) blockdiag(R)``, and the sum is factored once more.  The
+    verdict is taken on the matrix with unit diagonal ``D^-1/2 H D^-1/2``
+    (:func:`service.solver.numerics.jacobi_scaled`, the same in any units of the inputs),
+    whose Cholesky factor is ``D^-1/2 L``.
     """
     m = design.move_weight.shape[0]
     size = control * m
+    if size == design.hessian.matrix.shape[0] and move_scale == 1.0:
+        scaled_condition = design.hessian.scaled_condition_number
+        return None if not math.isfinite(scaled_condition) else scaled_condition
     h = design.hessian.matrix[:size, :size]
     triangle, lower = design.hessian.factor
-    factor: tuple[NDArray[np.float64], bool] | None = (triangle[:size, :size], lower)
-    shift = 0.0
+    assert lower, "factor_hessian factors with lower=True"
+    factor: tuple[NDArray[np.float64], bool] | None = (triangle[:size, :size], True)
     if move_scale != 1.0:
-        r = design.move_weight
-        if np.array_equal(r, r[0, 0] * np.eye(m)):
-            shift = (move_scale - 1.0) * float(r[0, 0])
-        else:
-            h = h + (move_scale - 1.0) * np.kron(np.eye(control), r)
-            try:
-                factor = scipy.linalg.cho_factor(h, lower=True, check_finite=False)
-            except np.linalg.LinAlgError:
-                factor = None
-    if size == design.hessian.matrix.shape[0] and (move_scale == 1.0 or shift):
-        low, high = design.hessian.smallest_eigenvalue, design.hessian.largest_eigenvalue
-    else:
-        low, high = extreme_eigenvalues(h, factor=factor)
-    low, high = low + shift, high + shift
+        h = h + (move_scale - 1.0) * np.kron(np.eye(control), design.move_weight)
+        try:
+            factor = scipy.linalg.cho_factor(h, lower=True, check_finite=False)
+        except np.linalg.LinAlgError:
+            factor = None
+    root = np.sqrt(np.abs(np.diag(h)))
+    root[root == 0.0] = 1.0
+    scaled_factor = None if factor is None else (factor[0] / root[:, None], True)
+    low, high = extreme_eigenvalues(jacobi_scaled(h), factor=scaled_factor)
     return None if low <= size * np.finfo(float).eps * high else high / low
 
 
@@ -172,9 +172,10 @@ def hessian_advice(a: ArrayLike, b: ArrayLike, c: ArrayLike, design: ControllerD
     Returns
     -------
     Diagnostic or None
-        ``ill_conditioned_hessian`` when the condition number exceeds ``ILL_CONDITIONED``.
+        ``ill_conditioned_hessian`` when the condition number of the Jacobi-scaled Hessian
+        (unit diagonal; the same in any units of the inputs) exceeds ``ILL_CONDITIONED``.
     """
-    cond = design.hessian.condition_number
+    cond = design.hessian.scaled_condition_number
     if cond <= ILL_CONDITIONED:
         return None
     a_, b_, c_ = (np.asarray(x, dtype=float) for x in (a, b, c))

@@ -25,8 +25,13 @@ Reported per break point:
 - for a single loop (``L`` scalar) the classical margins: the gain margin ``1/|L|`` at a phase
   crossover (``L`` real and negative) and the phase margin ``180 deg + arg L`` at a gain
   crossover (``|L| = 1``), each at the crossover nearest to instability (smallest
-  ``|log GM|``, smallest ``|PM|``), crossovers refined by ``scipy.optimize.brentq``.  The
+  ``|log GM|``, smallest ``|PM|``), crossovers refined by ``scipy.optimize.brentq``.  Zero
+  frequency (``z = 1``, where ``L`` is real) is a phase crossover when ``L(1) < 0``.  The
   margins speak about robustness only when the closed loop is stable; check ``stable``.
+
+The grid reaches a decade below the slowest pole of the plant, the controller and the
+closed loop (:func:`loop_decades`, the corner frequency ``|ln z| / Ts`` of the continuous
+equivalent), at least four and at most twelve decades below Nyquist.
 
 A peak sensitivity ``Ms`` bounds the classical margins from below (the Nyquist curve stays
 ``1/Ms`` away from -1): ``GM >= Ms/(Ms - 1)`` and ``PM >= 2 arcsin(1/(2 Ms))`` (common
@@ -40,6 +45,7 @@ from dataclasses import dataclass
 from typing import Any, Literal
 
 import numpy as np
+import scipy.linalg
 import scipy.optimize
 from numpy.typing import NDArray
 
@@ -64,6 +70,7 @@ __all__ = [
     "design_frequency_analysis",
     "frequency_analysis",
     "frequency_grid",
+    "loop_decades",
     "loop_margins",
 ]
 
@@ -203,6 +210,41 @@ def frequency_grid(
     return grid
 
 
+#: Most decades below the Nyquist frequency the grid reaches for slow poles.
+MAX_DECADES = 12.0
+
+
+def loop_decades(poles: NDArray[np.complex128], *, sample_time: float, decades: float = DEFAULT_DECADES) -> float:
+    """Return the grid span, in decades below Nyquist, that reaches a decade below the slowest pole.
+
+    Parameters
+    ----------
+    poles : ndarray of complex
+        Poles of the plant, the controller and the closed loop (``z``).
+    sample_time : float
+    decades : float, keyword-only
+        The least span (default :data:`DEFAULT_DECADES`).
+
+    Returns
+    -------
+    float
+        ``max(decades, log10(pi/Ts / (w_slow / 10)))`` capped at :data:`MAX_DECADES`, with
+        ``w_slow = min |ln z| / Ts`` over the poles that are neither at ``z = 0`` nor at
+        ``z = 1`` (the continuous-time equivalent ``s = ln(z) / Ts``; a mode's corner
+        frequency is ``|s|``).  Crossovers and peaks sit near the corners of the loop's own
+        poles, so the grid then covers them however slow the loop is.
+    """
+    z = np.asarray(poles, dtype=complex)
+    z = z[(np.abs(z) > 1e-300) & (np.abs(z - 1.0) > 1e-12)]
+    if z.size == 0:
+        return float(decades)
+    corner = float(np.abs(np.log(z)).min()) / sample_time
+    if corner <= 0.0:
+        return float(decades)
+    needed = float(np.log10((np.pi / sample_time) / (corner / 10.0)))
+    return float(min(max(decades, needed), MAX_DECADES))
+
+
 def _loop_function(
     plant: StateSpace, controller: StateSpace, location: Location, sample_time: float
 ) -> Callable[[NDArray[np.float64]], NDArray[np.complex128]]:
@@ -291,6 +333,15 @@ def loop_margins(
     scale = max(1.0, float(np.abs(values[-1])))
     if abs(values[-1].imag) <= 1e-9 * scale:
         phase.append((float(grid[-1]), complex(values[-1].real, 0.0)))
+    # z = 1 (zero frequency): L is real there, a crossover when it is negative (a loop without
+    # integral action whose phase starts at -180 degrees)
+    with np.errstate(all="ignore"):
+        try:
+            dc = complex(loop(np.array([0.0]))[0, 0, 0])
+        except np.linalg.LinAlgError:  # a pole at z = 1: |L| is infinite there
+            dc = complex("nan")
+    if np.isfinite(dc.real) and abs(dc.imag) <= 1e-9 * max(1.0, abs(dc)):
+        phase.append((0.0, complex(dc.real, 0.0)))
     phase = [(w, v) for w, v in phase if v.real < 0 and np.isfinite(abs(v)) and abs(v) > 0]
     gm, gm_w = float("inf"), None
     if phase:
@@ -396,8 +447,13 @@ def frequency_analysis(
         plant.d.shape,
         controller.d.shape,
     )
-    grid = frequency_grid(sample_time, points=points, decades=decades)
     poles = closed_loop_poles(plant, controller)
+    decades = loop_decades(
+        np.concatenate([scipy.linalg.eigvals(plant.a), scipy.linalg.eigvals(controller.a), poles]),
+        sample_time=sample_time,
+        decades=decades,
+    )
+    grid = frequency_grid(sample_time, points=points, decades=decades)
     try:
         with np.errstate(all="ignore"):
             at_input = _loop_sensitivity(plant, controller, "input", grid, sample_time)

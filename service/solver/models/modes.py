@@ -39,7 +39,7 @@ import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.closed_loop import UNIT_CIRCLE_MARGIN, Diagnostic
-from service.solver.numerics import by_modulus, is_real, pbh_matrix, singular_value_rank
+from service.solver.numerics import by_modulus, equilibrate, is_real, pbh_matrix, singular_value_rank
 
 __all__ = [
     "LOOP_POLE_MATCH",
@@ -81,12 +81,16 @@ def _blind_directions(
     """Orthonormal ``w`` (columns, shape (n, n - rank)) with ``w^H [A - z I, B] ~ 0``."""
     n = a.shape[0]
     pbh = pbh_matrix(a, z, inputs=b)  # real arithmetic for a real eigenvalue
+    # rows and columns equilibrated: the rank does not depend on the units of states or inputs
+    rows, columns = equilibrate(pbh)
+    pbh = pbh * rows[:, None] * columns[None, :]
     s = np.linalg.svd(pbh, compute_uv=False)  # n values: pbh is n x (n+m), m >= 0
     rank = singular_value_rank(s, tolerance)
     if rank == n:
         return np.zeros((n, 0), dtype=complex)
     u = np.linalg.svd(pbh, full_matrices=False)[0]  # only on a rank drop: the costly part
-    return u[:, rank:].astype(complex)
+    w = u[:, rank:] * rows[:, None]  # w_s' Dr pbh Dc = 0: w = Dr w_s
+    return np.linalg.qr(w)[0].astype(complex)
 
 
 def _clusters(eigenvalues: NDArray[np.complex128]) -> list[list[complex]]:

@@ -39,14 +39,17 @@ import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.closed_loop import Diagnostic
-from service.solver.numerics import eigenvalues_by_modulus
+from service.solver.numerics import balance_states, eigenvalues_by_modulus, equilibrate
 
 __all__ = [
+    "INTEGRATING_SEARCH",
     "INTEGRATING_TOLERANCE",
     "NEAR_SINGULAR_GAIN",
     "PlantProperties",
     "SteadyStateGain",
+    "balanced_condition_number",
     "gain_condition_number",
+    "integrating_poles",
     "open_loop_poles",
     "plant_properties",
     "plant_warnings",
@@ -54,9 +57,15 @@ __all__ = [
     "steady_state_gain",
 ]
 
-#: A pole within this distance of ``z = 1`` counts as integrating (a time constant longer
-#: than about 10^5 sample times behaves as an integrator for control).
-INTEGRATING_TOLERANCE = 1e-5
+#: A pole counts as integrating when it is ``z = 1`` up to rounding: a group of the poles
+#: nearest 1 whose mean lies within this distance of 1, i.e. a time constant longer than
+#: ``1e9`` sample times (``1 - z = Ts / tau`` to first order).  The mean of a group of
+#: eigenvalues is well conditioned even when the group is a defective cluster that rounding
+#: splits by ``eps^(1/k)`` (Kato, *Perturbation Theory for Linear Operators*, 1966, II.5), so
+#: a double integrator is found and a 200 s lag sampled at 1 ms (``1 - z = 5e-6``) is a lag.
+INTEGRATING_TOLERANCE = 1e-9
+#: Poles farther than this from 1 are never part of an integrating group.
+INTEGRATING_SEARCH = 1e-3
 #: Condition number of the steady-state gain above which the plant is called near-singular:
 #: some output direction then needs input moves a thousand times larger than another
 #: (common practice; meaningful only on scaled signals).
@@ -108,22 +117,71 @@ class PlantProperties:
         integrates.
     poles : ndarray of complex, shape (n,)
         Eigenvalues of ``A``, by descending modulus.
+    balanced_condition_number : float or None
+        Condition number of the gain with its rows and columns equilibrated
+        (:func:`balanced_condition_number`): the same in any units, and the one the
+        ``near_singular_gain`` verdict uses.
     """
 
     steady_state: SteadyStateGain
     relative_gain: NDArray[np.float64] | None
     condition_number: float | None
     poles: NDArray[np.complex128]
+    balanced_condition_number: float | None = None
+
+
+def integrating_poles(a: NDArray[np.float64], *, tolerance: float = INTEGRATING_TOLERANCE) -> int:
+    """Return how many poles of ``a`` are at ``z = 1`` (integrators), judged relative to the sample time.
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, n)
+    tolerance : float, keyword-only
+        Largest ``|mean - 1|`` of the group (:data:`INTEGRATING_TOLERANCE`).
+
+    Returns
+    -------
+    int
+        The largest ``k`` such that the ``k`` poles nearest 1 have their mean within
+        ``tolerance / k`` of 1 (so a lag with ``1 - z > tolerance`` never joins) and lie within ``10 (k eps ||A||)^(1/k)`` of it (the spread
+        rounding gives a Jordan block of size ``k``; Wilkinson 1965, ch. 2).
+    """
+    if a.shape[0] == 0:
+        return 0
+    a = _balanced(a)[0]
+    poles = scipy.linalg.eigvals(a, check_finite=False)
+    distance = np.abs(poles - 1.0)
+    order = np.argsort(distance, kind="stable")
+    near = poles[order][distance[order] <= INTEGRATING_SEARCH]
+    size = max(1.0, float(np.linalg.norm(a, 1)))
+    found = 0
+    for k in range(1, near.size + 1):
+        group = near[:k]
+        spread = 10.0 * (k * np.finfo(float).eps * size) ** (1.0 / k)
+        if abs(group.mean() - 1.0) <= tolerance / k and np.abs(group - 1.0).max() <= max(spread, tolerance):
+            found = k
+    return found
+
+
+def _balanced(a: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """``D^-1 A D`` balanced by LAPACK's ``gebal`` (no permutation), and ``D`` as a vector."""
+    _, (scale, _) = scipy.linalg.matrix_balance(a, permute=False, separate=True)
+    return a / scale[:, None] * scale[None, :], scale
 
 
 def _sorted_schur(
     a: NDArray[np.float64], tolerance: float
 ) -> tuple[NDArray[np.complex128], NDArray[np.complex128], int]:
-    """Complex Schur form with the eigenvalues within ``tolerance`` of 1 leading."""
+    """Complex Schur form with the integrating poles (:func:`integrating_poles`) leading."""
+    k = integrating_poles(a, tolerance=tolerance)
+    if k == 0:
+        return np.zeros((0, 0), complex), np.zeros((0, 0), complex), 0
+    distance = np.sort(np.abs(scipy.linalg.eigvals(a, check_finite=False) - 1.0))
+    radius = distance[k - 1] if k == distance.size else 0.5 * (distance[k - 1] + distance[k])
     t, z, count = scipy.linalg.schur(
         a.astype(complex),
         output="complex",
-        sort=lambda v: abs(v - 1.0) <= tolerance,
+        sort=lambda v: abs(v - 1.0) <= radius,
         check_finite=False,
     )
     return t, z, int(count)
@@ -148,12 +206,12 @@ def steady_state_gain(
     d : array_like, shape (p, m), optional
         Feed-through (default zero).
     integrating_tolerance : float, keyword-only
-        Poles with ``|z - 1|`` up to this count as integrating.
+        Passed to :func:`integrating_poles`: how close to 1, relative to the sample time,
+        a group of poles must be to count as integrating.
     poles : array_like of complex, optional
         The eigenvalues of ``A`` (``scipy.linalg.eigvals``), when the caller has them.  When
-        none lies within ``2 * integrating_tolerance + sqrt(eps) |A|`` of 1 the sorted
-        Schur form is skipped: it would find no integrating pole, and the answer is the
-        same one solve.
+        none lies within :data:`INTEGRATING_SEARCH` (plus rounding) of 1, no group of poles
+        can be integrating and the answer is one solve, without another eigenvalue problem.
 
     Returns
     -------
@@ -175,10 +233,15 @@ def steady_state_gain(
     ramp = np.zeros((p, m))
     if n == 0:
         return SteadyStateGain(gain=d_.copy(), integration_order=order, ramp_rate=ramp)
+    # state units: a diagonal similarity changes neither the gain nor the poles; balanced with
+    # B and C so that a state only inputs and outputs reach is balanced too
+    scale = balance_states(a_, b_, c_)
+    a_ = a_ / scale[:, None] * scale[None, :]
+    b_, c_ = b_ / scale[:, None], c_ * scale[None, :]
     if poles is not None:
-        # The Schur form's eigenvalues and LAPACK's balanced ones differ by rounding only;
-        # the margin keeps any pole the Schur form could count as integrating.
-        margin = 2.0 * integrating_tolerance + np.sqrt(np.finfo(float).eps) * float(np.linalg.norm(a_, 1))
+        # The caller's eigenvalues and those of the balanced A differ by rounding only; the
+        # margin keeps any pole that integrating_poles could look at.
+        margin = INTEGRATING_SEARCH + np.sqrt(np.finfo(float).eps) * float(np.linalg.norm(a_, 1))
         if np.all(np.abs(np.asarray(poles, dtype=complex) - 1.0) > margin):
             gain = c_ @ np.linalg.solve(np.eye(n) - a_, b_) + d_
             return SteadyStateGain(gain=gain, integration_order=order, ramp_rate=ramp)
@@ -197,8 +260,14 @@ def steady_state_gain(
     c2 = cz[:, k:] + c1 @ x
     nil = np.triu(t[:k, :k], 1)  # T11 - I with its eigenvalues taken as exactly 1
     # Rounding in the Schur form is of order eps |A|, in N^l of order eps |A|^l.
-    b_size = max(np.linalg.norm(b_, 2), np.linalg.norm(b1, 2))
-    scale = np.sqrt(np.finfo(float).eps) * np.linalg.norm(c_, 2) * b_size
+    # per pair (row i of C, column j of B), so that a change of units of one signal scales the
+    # term and its threshold alike: sqrt(eps) of the term's own factors on the integrating
+    # block, and never below 1000 eps of the rounding the Schur form leaves from the whole row
+    # and column
+    eps = np.finfo(float).eps
+    own = np.sqrt(eps) * np.outer(np.linalg.norm(c1, axis=1), np.linalg.norm(b1, axis=0))
+    rounding = 1e3 * eps * np.outer(np.linalg.norm(c_, axis=1), np.linalg.norm(b_, axis=0))
+    scale = np.maximum(own, rounding)
     growth = max(1.0, float(np.linalg.norm(a_, 2)))
     power = np.eye(k, dtype=complex)
     markov0 = c1 @ b1
@@ -247,6 +316,26 @@ def relative_gain_array(gain: ArrayLike) -> NDArray[np.float64]:
     return g * np.linalg.solve(g.T, np.eye(g.shape[0]))
 
 
+def balanced_condition_number(gain: ArrayLike) -> float:
+    """Return the condition number of a gain after equilibrating its rows and columns.
+
+    Parameters
+    ----------
+    gain : array_like, shape (p, m)
+
+    Notes
+    -----
+    Rows and columns scaled to unit max-norm (:func:`service.solver.numerics.equilibrate`):
+    a change of units of any input or output leaves it unchanged, and it approximates the
+    minimized condition number over all diagonal scalings, the unit-free measure of how hard
+    a plant is to control (Skogestad and Postlethwaite, *Multivariable Feedback Control*,
+    2nd ed., 2005, sec. 3.3.4).
+    """
+    g = np.asarray(gain, dtype=float)
+    rows, columns = equilibrate(g)
+    return gain_condition_number(g * rows[:, None] * columns[None, :])
+
+
 def gain_condition_number(gain: ArrayLike) -> float:
     """Return the 2-norm condition number ``s_max / s_min`` of a gain (``inf`` if singular).
 
@@ -287,14 +376,23 @@ def plant_properties(
     poles = open_loop_poles(a)
     steady = steady_state_gain(a, b, c, d, integrating_tolerance=integrating_tolerance, poles=poles)
     condition = gain_condition_number(steady.gain) if steady.finite else None
+    balanced = balanced_condition_number(steady.gain) if steady.finite else None
     square = steady.gain.shape[0] == steady.gain.shape[1]
     rga = None
-    if square and condition is not None and condition < 1.0 / np.finfo(float).eps:
+    if square and balanced is not None and balanced < 1.0 / np.finfo(float).eps:
         rga = relative_gain_array(steady.gain)
-    return PlantProperties(steady_state=steady, relative_gain=rga, condition_number=condition, poles=poles)
+    return PlantProperties(
+        steady_state=steady,
+        relative_gain=rga,
+        condition_number=condition,
+        poles=poles,
+        balanced_condition_number=balanced,
+    )
 
 
-def plant_warnings(properties: PlantProperties, *, near_singular: float = NEAR_SINGULAR_GAIN) -> list[Diagnostic]:
+def plant_warnings(
+    properties: PlantProperties, *, near_singular: float = NEAR_SINGULAR_GAIN, balanced: bool = False
+) -> list[Diagnostic]:
     """Return the warnings about a plant: ``near_singular_gain`` when its condition is high.
 
     Parameters
@@ -302,19 +400,24 @@ def plant_warnings(properties: PlantProperties, *, near_singular: float = NEAR_S
     properties : PlantProperties
     near_singular : float, keyword-only
         Condition-number threshold (default :data:`NEAR_SINGULAR_GAIN`).
+    balanced : bool, keyword-only
+        Judge the equilibrated gain (:func:`balanced_condition_number`), for signals in
+        arbitrary units; default ``False``: the gain as given, meaningful on signals scaled
+        by their spans.
 
     Returns
     -------
     list of Diagnostic
     """
     found: list[Diagnostic] = []
-    cond = properties.condition_number
+    cond = properties.balanced_condition_number if balanced else properties.condition_number
     if cond is not None and cond > near_singular:
         found.append(
             Diagnostic(
                 "near_singular_gain",
                 f"The steady-state gain matrix is near-singular (condition number {cond:.3g} above "
-                f"{near_singular:g}, on the signals as scaled): some combinations of outputs need "
+                f"{near_singular:g}, {'with its rows and columns equilibrated' if balanced else 'on the signals as scaled'}): "
+                f"some combinations of outputs need "
                 f"far larger input moves than others, and the controller will be sensitive to "
                 f"model error there. Check the gains, the scaling, or control fewer outputs.",
             )

@@ -1,0 +1,143 @@
+"""Verdicts that do not depend on units (issue 13, item 4).
+
+A change of units multiplies a signal's numbers by a power of ten.  The same controller
+written in the new units has ``B``, ``C`` and the weights transformed accordingly
+(``u' = s u``: ``B' = B / s``, ``R' = R / s^2``; ``z' = t z``: ``C' = t C``, ``Q' = Q / t^2``;
+states ``x' = d x``: ``A' = D A D^-1``), or, with spans, the same weights and spans scaled
+with the signal.  Either way the controller is the same, so every verdict (accepted or which
+error), every warning code, the closed-loop poles and the gains brought back to the first
+units must agree to rounding.  Reference: that transformation rule (change of variables in
+the design notes' cost; textbook), applied to a layout with two lags, an integrating level and
+two valves (invented numbers).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from service.errors import MovecastError
+from service.pipeline.caps import Caps
+from service.pipeline.design import run_design
+from service.schemas.design import DesignRequest
+from service.solver.design.controller import design_controller
+from service.solver.estimation.estimator import design_estimator
+from service.solver.models.modes import uncontrollable_modes
+
+A = np.array([[0.9, 0.0, 0.0], [0.05, 0.8, 0.0], [0.0, 0.0, 1.0]])  # two lags and a level
+B = np.array([[0.1, 0.0], [0.0, 0.3], [0.05, -0.04]])  # two valves
+C = np.array([[1.0, 1.0, 0.0], [0.0, 0.0, 1.0]])  # two outputs
+Q = np.array([1.0, 2.0])
+R = np.array([0.1, 0.2])
+INPUT_SPANS = np.array([100.0, 50.0])
+OUTPUT_SPANS = np.array([10.0, 80.0])
+
+
+def _request(eu, ey, ex, *, spans: bool, move=R):
+    su, sy, sx = 10.0 ** np.asarray(eu, float), 10.0 ** np.asarray(ey, float), 10.0 ** np.asarray(ex, float)
+    a = A * sx[:, None] / sx[None, :]
+    b = B * sx[:, None] / su[None, :]
+    c = C * sy[:, None] / sx[None, :]
+    if spans:
+        q, r = Q, np.asarray(move)
+        inputs = [{"name": f"u{j + 1}", "span": float(INPUT_SPANS[j] * su[j])} for j in range(2)]
+        outputs = [{"name": f"y{i + 1}", "span": float(OUTPUT_SPANS[i] * sy[i])} for i in range(2)]
+    else:
+        q, r = Q / sy**2, np.asarray(move) / su**2
+        inputs = [{"name": f"u{j + 1}"} for j in range(2)]
+        outputs = [{"name": f"y{i + 1}"} for i in range(2)]
+    body = {
+        "model": {
+            "kind": "state_space",
+            "a": a.tolist(),
+            "b": b.tolist(),
+            "c": c.tolist(),
+            "time_domain": "discrete",
+            "sample_time": 1.0,
+            "inputs": inputs,
+            "outputs": outputs,
+        },
+        "horizons": {"prediction": 20, "control": 4},
+        "weights": {"output": q.tolist(), "move": r.tolist()},
+    }
+    return DesignRequest.model_validate(body), (su, sy, sx)
+
+
+def _outcome(request):
+    try:
+        answer = run_design(request, Caps())
+    except MovecastError as error:  # a verdict too: which error, on which field
+        return ("rejected", type(error).__name__)
+    return answer
+
+
+def _back(answer, su, sy, sx):
+    """The gains in the first units: du = s du0, x = d x0, z = t z0."""
+    g = answer.gain
+    state = np.asarray(g.state) / su[:, None] * sx[None, :]
+    previous = np.asarray(g.previous_input) / su[:, None] * su[None, :]
+    setpoint = np.asarray(g.setpoint) / su[:, None] * sy[None, :]
+    return state, previous, setpoint
+
+
+def _same(found, reference):
+    assert found.shape == reference.shape
+    np.testing.assert_allclose(found, reference, rtol=0, atol=1e-8 * max(1.0, np.abs(reference).max()))
+
+
+exponents = st.integers(min_value=-12, max_value=12)
+
+
+@settings(max_examples=25, deadline=None, derandomize=True, database=None)
+@given(
+    eu=st.lists(exponents, min_size=2, max_size=2),
+    ey=st.lists(exponents, min_size=2, max_size=2),
+    ex=st.lists(exponents, min_size=3, max_size=3),
+    spans=st.booleans(),
+)
+def test_rescaling_signals_changes_no_verdict_and_no_gain(eu, ey, ex, spans):
+    base_request, base_scale = _request([0, 0], [0, 0], [0, 0, 0], spans=spans)
+    base = _outcome(base_request)
+    request, scale = _request(eu, ey, ex, spans=spans)
+    found = _outcome(request)
+    assert not isinstance(base, tuple)
+    assert not isinstance(found, tuple), found
+    assert sorted(w.code for w in found.warnings) == sorted(w.code for w in base.warnings)
+    assert found.closed_loop.stable == base.closed_loop.stable
+    assert found.closed_loop.spectral_radius == pytest.approx(base.closed_loop.spectral_radius, abs=1e-9)
+    for mine, theirs in zip(_back(found, *scale), _back(base, *base_scale), strict=True):
+        _same(mine, theirs)
+
+
+def test_tiny_input_with_tiny_move_weight_is_the_same_controller():
+    """Issue 13's case: b = diag(1e-8, 0.1), move weights [1e-17, 0.1] is the controller of b = diag(1, 0.1)."""
+    a, c = np.diag([0.9, 0.8]), np.eye(2)
+    tiny = design_controller(
+        a, np.diag([1e-8, 0.1]), c, output_weight=[1, 1], move_weight=[1e-17, 0.1], prediction=10, control=3
+    )
+    unit = design_controller(
+        a, np.diag([1.0, 0.1]), c, output_weight=[1, 1], move_weight=[0.1, 0.1], prediction=10, control=3
+    )
+    # u_tiny = 1e8 u_unit: the same law in other units (change of variables)
+    _same(tiny.gain.state / np.array([[1e8], [1.0]]), unit.gain.state)
+    assert tiny.hessian.scaled_condition_number == pytest.approx(unit.hessian.scaled_condition_number, rel=1e-9)
+    assert [w.code for w in tiny.warnings] == [w.code for w in unit.warnings]
+
+
+def test_tiny_input_disturbance_is_detectable():
+    """Issue 13's case: a = 0.8, b = 1e-10 with an input disturbance has no zero at z = 1 (PBH on the scaled problem)."""
+    estimator = design_estimator([[0.8]], [[1e-10]], [[1.0]], kind="input_disturbance")
+    assert estimator.disturbance_size == 1
+
+
+@pytest.mark.parametrize("exponent", [-12, -6, 6, 12])
+def test_uncontrollable_modes_do_not_depend_on_state_or_input_units(exponent):
+    """PBH test (Hautus 1969) on a model with one mode no input reaches, in any units."""
+    a = np.diag([0.5, 0.9, 0.7])
+    b = np.array([[1.0], [0.0], [0.3]])
+    d = 10.0 ** np.array([0.0, exponent, -exponent])
+    s = 10.0**exponent
+    found = uncontrollable_modes(a * d[:, None] / d[None, :], b * d[:, None] / s)
+    assert [round(complex(z).real, 12) for z in found] == [0.9]
