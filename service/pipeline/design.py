@@ -266,6 +266,15 @@ def _checked_weights(
     problems += found
     zones, found = check_zones(request.zones, plant, q)
     problems += found
+    if zones is not None and request.weights.terminal == "riccati":
+        problems.append(
+            FieldProblem(
+                pointer("weights", "terminal"),
+                "a Riccati terminal weight together with zones is not supported yet: the terminal weight "
+                "would leave the zone outputs unweighted after the horizon, while the QP weights them "
+                "outside their zones. Use terminal 'none' with zones",
+            )
+        )
     if q is not None and not np.any(q) and zones is None and not found:
         problems.append(
             FieldProblem(

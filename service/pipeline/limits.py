@@ -17,9 +17,8 @@ units).
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -52,7 +51,7 @@ from service.solver.limits.limited_run import (
     limit_excursions,
     nominal_setpoint_run,
 )
-from service.solver.limits.policy import ConstrainedPolicy
+from service.solver.limits.policy import ConstrainedPolicy, StepReport
 from service.solver.limits.qp import MoveQP
 
 __all__ = [
@@ -220,13 +219,13 @@ def limited_run(
     )
 
 
-def _shown(report: Mapping[str, Any], first_penalized: int) -> list[tuple[str, str, int]]:
+def _shown(report: StepReport, first_penalized: int) -> list[tuple[str, str, int]]:
     """The active limits a step row shows: inputs and moves now, outputs at the first penalized step."""
     out = []
-    for a in report["active_limits"]:
-        now = a["step"] == (first_penalized if a["kind"] == "output" else 0)
+    for a in report.active_limits:
+        now = a.step == (first_penalized if a.kind == "output" else 0)
         if now:
-            out.append((a["kind"], a["side"], int(a["index"])))
+            out.append((a.kind, a.side, int(a.index)))
     return out
 
 
@@ -265,11 +264,11 @@ def limit_run_reports(
         report = sim.reports[k]
         if report is None:
             continue
+        assert isinstance(report, StepReport)
         shown = _shown(report, run.first_penalized)
         for key in shown:
             counts[key] = counts.get(key, 0) + 1
-        upper = np.asarray(report["output_max_slack"], dtype=float)
-        lower = np.asarray(report["output_min_slack"], dtype=float)
+        upper, lower = report.output_max_slack, report.output_min_slack
         for j in range(lim.outputs):
             largest["output", "max", j] = max(largest["output", "max", j], float(upper[j]))
             largest["output", "min", j] = max(largest["output", "min", j], float(lower[j]))
@@ -279,21 +278,21 @@ def limit_run_reports(
             failed_targets.setdefault(status, []).append(k)
         if moved:
             corrected.append(k)
-        if report["fallback"]:
-            fallbacks.setdefault(str(report["status"]), []).append(k)
-        iterations += int(report["iterations"])
-        most = max(most, int(report["iterations"]))
-        busy = report["method"] != "unconstrained" or report["active_limits"] or report["fallback"]
+        if report.fallback:
+            fallbacks.setdefault(report.status, []).append(k)
+        iterations += report.iterations
+        most = max(most, report.iterations)
+        busy = report.method != "unconstrained" or bool(report.active_limits) or report.fallback
         if not (busy or upper.any() or lower.any() or moved):
             continue
         steps.append(
             LimitStepReport(
                 step=k,
-                status=str(report["status"]),
-                iterations=int(report["iterations"]),
-                fallback=bool(report["fallback"]),
+                status=report.status,
+                iterations=report.iterations,
+                fallback=report.fallback,
                 active=[ActiveLimitReport(kind=kind, side=side, signal=names[kind][j]) for kind, side, j in shown],
-                active_in_horizon=len(report["active_limits"]),
+                active_in_horizon=len(report.active_limits),
                 output_max_slack=(upper * sz).tolist() if upper.any() else None,
                 output_min_slack=(lower * sz).tolist() if lower.any() else None,
                 target=(sim.targets[k] * sz).tolist() if moved else None,

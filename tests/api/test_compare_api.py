@@ -160,7 +160,18 @@ def test_markdown_for_the_change_request(client):
 
 
 @pytest.mark.parametrize(
-    "accept,markdown", [("text/markdown", True), ("application/json", False), (None, False), ("*/*", False)]
+    "accept,markdown",
+    [
+        ("text/markdown", True),
+        ("application/json", False),
+        (None, False),
+        ("*/*", False),
+        # RFC 9110 section 12.5.1: the most specific matching range gives the quality; JSON on a tie
+        ("text/*", True),
+        ("text/markdown;q=0.5, application/json", False),
+        ("text/markdown, application/json;q=0.5", True),
+        ("text/markdown, application/json", False),
+    ],
 )
 def test_json_unless_markdown_is_asked(client, accept, markdown):
     headers = {} if accept is None else {"Accept": accept}

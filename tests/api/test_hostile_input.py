@@ -457,7 +457,7 @@ RAW_CASES = [
 ]
 
 
-def assert_problem(response: httpx.Response, case: Case) -> None:
+def assert_case_refused(response: httpx.Response, case: Case) -> None:
     assert response.status_code == case.status, (case.name, response.status_code, response.text[:300])
     assert response.headers.get("content-type", "").startswith("application/problem+json"), (
         case.name,
@@ -505,7 +505,7 @@ def test_every_hostile_request_gets_a_problem_with_its_status_and_pointer(tmp_pa
             for case in CASES:
                 response = client.request(case.method, case.path, content=case.body, headers=case.headers)
                 try:
-                    assert_problem(response, case)
+                    assert_case_refused(response, case)
                 except AssertionError as exc:
                     failures.append(str(exc)[:400])
             for name, request in RAW_CASES:

@@ -138,6 +138,15 @@ def test_bad_zones_are_422_naming_the_field(client, zones, weights, where, words
     assert any(e["pointer"] == where and words in e["detail"] for e in errors), errors
 
 
+def test_zones_with_a_riccati_terminal_weight_are_refused_naming_it(client):
+    request = copy.deepcopy(SUMP)
+    request["weights"]["terminal"] = "riccati"
+    response = client.post("/design", json=request)
+    assert response.status_code == 422
+    (error,) = response.json()["errors"]
+    assert error["pointer"] == "/weights/terminal" and "zones" in error["detail"]
+
+
 def test_a_zone_weight_must_be_positive(client):
     request = copy.deepcopy(SUMP)
     request["zones"] = [None, {"low": 30.0, "high": 70.0, "weight": 0.0}]

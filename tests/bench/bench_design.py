@@ -400,10 +400,25 @@ def wait_until_healthy(base: str, server: subprocess.Popen[bytes], *, timeout: f
 
 
 def load(
-    base: str, method: str, path: str, body: dict[str, Any] | None, *, seconds: float, concurrency: int
+    base: str,
+    method: str,
+    path: str,
+    body: dict[str, Any] | None,
+    *,
+    seconds: float,
+    concurrency: int,
+    payload: bytes | None = None,
+    timeout: float = 30.0,
 ) -> dict[str, Any]:
-    """Send requests from ``concurrency`` threads for ``seconds``; count and time them."""
+    """Send requests from ``concurrency`` threads for ``seconds``; count and time them.
+
+    The request carries ``body`` as JSON, or ``payload`` as it is (already encoded JSON).
+    """
     import httpx
+
+    send: dict[str, Any] = (
+        {"json": body} if payload is None else {"content": payload, "headers": {"content-type": "application/json"}}
+    )
 
     latencies: list[list[float]] = [[] for _ in range(concurrency)]
     errors = [0] * concurrency
@@ -411,14 +426,14 @@ def load(
     deadline_box: list[float] = []
 
     def worker(slot: int) -> None:
-        with httpx.Client(base_url=base, timeout=30.0) as client:
-            client.request(method, path, json=body)  # connect and warm up, not counted
+        with httpx.Client(base_url=base, timeout=timeout) as client:
+            client.request(method, path, **send)  # connect and warm up, not counted
             start_gate.wait()
             deadline = deadline_box[0]
             while time.perf_counter() < deadline:
                 began = time.perf_counter()
                 try:
-                    ok = client.request(method, path, json=body).status_code == 200
+                    ok = client.request(method, path, **send).status_code == 200
                 except httpx.HTTPError:
                     ok = False
                 if ok:
@@ -433,7 +448,7 @@ def load(
     deadline_box.append(began + seconds)
     start_gate.wait()
     for thread in threads:
-        thread.join(timeout=seconds + 60.0)
+        thread.join(timeout=seconds + 2 * timeout)
     elapsed = time.perf_counter() - began
     done = np.array([t for slot in latencies for t in slot])
     return {

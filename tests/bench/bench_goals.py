@@ -33,8 +33,6 @@ import time
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-
 ROOT = Path(__file__).resolve().parents[2]
 for path in (ROOT, ROOT / "tests" / "bench"):
     if str(path) not in sys.path:
@@ -47,6 +45,7 @@ from bench_design import (  # noqa: E402
     floor_inputs,
     format_time,
     free_port,
+    load,
     load_average,
     random_plant_for,
     wait_until_healthy,
@@ -105,45 +104,9 @@ def goal_one_solver(rounds: int) -> tuple[float, dict[str, Any]]:
 def latencies(
     base: str, method: str, path: str, payload: bytes | None, *, seconds: float, clients: int
 ) -> dict[str, float]:
-    import httpx
-
-    found: list[list[float]] = [[] for _ in range(clients)]
-    errors = [0] * clients
-    gate = threading.Barrier(clients + 1)
-    end: list[float] = []
-    headers = {"content-type": "application/json"}
-
-    def worker(slot: int) -> None:
-        with httpx.Client(base_url=base, timeout=60.0) as client:
-            client.request(method, path, content=payload, headers=headers)
-            gate.wait()
-            while time.perf_counter() < end[0]:
-                start = time.perf_counter()
-                try:
-                    ok = client.request(method, path, content=payload, headers=headers).status_code == 200
-                except httpx.HTTPError:
-                    ok = False
-                if ok:
-                    found[slot].append(time.perf_counter() - start)
-                else:
-                    errors[slot] += 1
-
-    threads = [threading.Thread(target=worker, args=(i,), daemon=True) for i in range(clients)]
-    for thread in threads:
-        thread.start()
-    began = time.perf_counter()
-    end.append(began + seconds)
-    gate.wait()
-    for thread in threads:
-        thread.join(timeout=seconds + 120.0)
-    done = np.array([t for slot in found for t in slot])
-    return {
-        "ok": float(done.size),
-        "errors": float(sum(errors)),
-        "rate": done.size / (time.perf_counter() - began),
-        "p50": float(np.percentile(done, 50)) if done.size else float("nan"),
-        "p99": float(np.percentile(done, 99)) if done.size else float("nan"),
-    }
+    """:func:`bench_design.load` with an encoded body, a 60 s client timeout, and float counts."""
+    got = load(base, method, path, None, seconds=seconds, concurrency=clients, payload=payload, timeout=60.0)
+    return {key: float(value) for key, value in got.items()}
 
 
 def row(label: str, got: dict[str, float]) -> None:

@@ -107,7 +107,7 @@ def test_busy_steps_keep_the_qp_s_move(rng):
         scenario,
         policy=GainWhenFreePolicy(ConstrainedPolicy.from_design(design, limits), design.gain.horizon),
     )
-    busy = [k for k, r in enumerate(plain.reports) if r["method"] == "active_set"]
+    busy = [k for k, r in enumerate(plain.reports) if r.method == "active_set"]
     assert busy and busy[0] == 0
     np.testing.assert_array_equal(wrapped.moves[busy[0]], plain.moves[busy[0]])
     np.testing.assert_allclose(wrapped.inputs, plain.inputs, atol=1e-9)

@@ -166,8 +166,8 @@ def test_first_move_is_the_gain_move_whenever_no_limit_is_active(rng):
     # the solver's path and the shortcut.
     limits = make_limits(M, P, input_min=-1.5, input_max=1.5, move_max=0.6)
     design, sim, policy = saturating_run(rng, limits, steps=60, back_at=25)
-    free_steps = [k for k, r in enumerate(policy.reports) if not r["active_limits"]]
-    busy_steps = [k for k, r in enumerate(policy.reports) if r["active_limits"]]
+    free_steps = [k for k, r in enumerate(policy.reports) if not r.active_limits]
+    busy_steps = [k for k, r in enumerate(policy.reports) if r.active_limits]
     assert free_steps and busy_steps
     for k in free_steps:
         np.testing.assert_allclose(policy.moves[k], design.gain.horizon @ policy.errors[k], atol=1e-9)
@@ -184,13 +184,13 @@ def test_limits_hold_at_every_step(rng):
     design, sim, policy = saturating_run(rng, limits, steps=50)
     violation = limit_violations(limits, inputs=sim.inputs, previous_input=sim.initial_input)
     assert violation.input.max() <= 1e-9 and violation.move.max() <= 1e-9
-    assert all(r["solved"] for r in sim.reports)
+    assert all(r.solved for r in sim.reports)
     for k in range(sim.outputs.shape[0] - 1):
-        slack = np.asarray(sim.reports[k]["output_max_slack"])
+        slack = sim.reports[k].output_max_slack
         assert np.all(sim.outputs[k + 1] <= limits.output_max + slack + 1e-9)
-    seen = {(a["kind"], a["side"]) for r in sim.reports for a in r["active_limits"]}
+    seen = {(a.kind, a.side) for r in sim.reports for a in r.active_limits}
     assert ("move", "max") in seen or ("move", "min") in seen
-    assert any(r["inputs_at_max"] or r["inputs_at_min"] for r in sim.reports)
+    assert any(r.inputs_at_max or r.inputs_at_min for r in sim.reports)
 
 
 def test_wide_limits_give_the_unconstrained_trajectory(rng):
@@ -210,7 +210,7 @@ def test_wide_limits_give_the_unconstrained_trajectory(rng):
     limited = simulate_loop(design, estimator, scenario, policy=ConstrainedPolicy.from_design(design, wide))
     np.testing.assert_allclose(limited.inputs, free.inputs, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(limited.outputs, free.outputs, rtol=1e-12, atol=1e-12)
-    assert all(not r["active_limits"] and r["method"] == "unconstrained" for r in limited.reports)
+    assert all(not r.active_limits and r.method == "unconstrained" for r in limited.reports)
 
 
 def test_exact_penalty_gives_the_hard_solution_above_the_multiplier_sum(rng):
@@ -251,13 +251,13 @@ def test_unreachable_input_limits_fall_back_to_holding_the_input(rng):
     error, free, _ = random_step(rng, design)
     step = policy(error=error, free_prediction=free, previous_input=np.array([2.0, 0.0]), step=0)
     np.testing.assert_array_equal(step.move, np.zeros(M))
-    assert step.report["fallback"] and step.report["status"] == "infeasible"
+    assert step.report.fallback and step.report.status == "infeasible"
     estimator = design_estimator(a, b, c, kind="full_state")
     scenario = Scenario(steps=30, initial_input=np.array([1.5, 0.0]), setpoint_changes=[Event(0, np.zeros(P))])
     sim = simulate_loop(design, estimator, scenario, policy=ConstrainedPolicy.from_design(design, limits))
     # Held outside its limit, the input stays there: every step is a flagged fallback, and the
     # run goes to its end.
-    assert sim.diverged_at is None and all(r["fallback"] for r in sim.reports)
+    assert sim.diverged_at is None and all(r.fallback for r in sim.reports)
     np.testing.assert_array_equal(sim.inputs, np.tile([1.5, 0.0], (30, 1)))
 
 
@@ -268,7 +268,7 @@ def test_non_finite_data_is_a_flagged_fallback(rng):
     error[3] = np.nan
     step = policy(error=error, free_prediction=free, previous_input=u, step=0)
     np.testing.assert_array_equal(step.move, np.zeros(M))
-    assert step.report["fallback"] and step.report["status"] == "failed"
+    assert step.report.fallback and step.report.status == "failed"
 
 
 def test_infeasible_hard_output_limits_fall_back(rng):

@@ -141,8 +141,8 @@ def test_saturating_step_settles_on_the_reachable_target_without_windup(rng):
     corrected = run(target.output)
     np.testing.assert_allclose(corrected.outputs[-1], target.output, atol=1e-6)
     np.testing.assert_allclose(corrected.inputs[-1], target.input, atol=1e-6)
-    assert all(not r["active_limits"] for r in corrected.reports[-10:])
+    assert all(not r.active_limits for r in corrected.reports[-10:])
     assert np.all(corrected.inputs <= 1.0 + 1e-9) and np.all(corrected.inputs >= -1.0 - 1e-9)
 
     chased = run(raw)
-    assert all(any(x["kind"] == "input" for x in r["active_limits"]) for r in chased.reports[-10:])
+    assert all(any(x.kind == "input" for x in r.active_limits) for r in chased.reports[-10:])

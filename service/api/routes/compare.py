@@ -10,6 +10,7 @@ from fastapi.responses import Response
 from service.api.bodies import CheckedBodyRoute
 from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
+from service.api.negotiation import prefers
 from service.api.problems import PROBLEM_JSON
 from service.pipeline.compare import run_compare
 from service.pipeline.compare_text import compare_markdown
@@ -39,26 +40,8 @@ RESPONSES: dict[int | str, dict[str, Any]] = {
 
 
 def prefers_markdown(accept: str | None) -> bool:
-    """Whether an ``Accept`` header names Markdown with a quality above that of JSON (JSON by default)."""
-    if not accept:
-        return False
-    best = {"markdown": 0.0, "json": 0.0}
-    for part in accept.split(","):
-        media, *params = (item.strip() for item in part.split(";"))
-        quality = 1.0
-        for param in params:
-            key, _, value = param.partition("=")
-            if key.strip().lower() == "q":
-                try:
-                    quality = float(value)
-                except ValueError:
-                    quality = 0.0
-        media = media.lower()
-        if media == MARKDOWN:
-            best["markdown"] = max(best["markdown"], quality)
-        elif media in ("application/json", "application/*", "*/*"):
-            best["json"] = max(best["json"], quality)
-    return best["markdown"] > 0.0 and best["markdown"] >= best["json"]
+    """Whether an ``Accept`` header asks for Markdown rather than JSON (:func:`service.api.negotiation.prefers`)."""
+    return prefers(accept, MARKDOWN)
 
 
 @router.post("/design/compare", response_model=CompareResponse, responses=RESPONSES)

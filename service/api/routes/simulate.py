@@ -10,6 +10,7 @@ from fastapi.responses import Response
 from service.api.bodies import CheckedBodyRoute
 from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
+from service.api.negotiation import prefers
 from service.api.problems import PROBLEM_JSON
 from service.pipeline.examples import load_example
 from service.pipeline.simulate import run_simulation, simulation_csv
@@ -35,37 +36,10 @@ RESPONSES: dict[int | str, dict[str, Any]] = {
     },
 }
 
-_RANGES = {"csv": ("text/csv", "text/*"), "json": ("application/json", "application/*")}
-
 
 def prefers_csv(accept: str | None) -> bool:
-    """Whether an ``Accept`` header asks for CSV rather than JSON (JSON on a tie or by default).
-
-    Each type takes the quality of the most specific range that matches it (RFC 9110,
-    section 12.5.1); on equal quality the more specific match wins.
-    """
-    if not accept:
-        return False
-    best = {"csv": (0.0, -1), "json": (0.0, -1)}
-    for part in accept.split(","):
-        media, *params = (item.strip() for item in part.split(";"))
-        media = media.lower()
-        quality = 1.0
-        for param in params:
-            key, _, value = param.partition("=")
-            if key.strip().lower() == "q":
-                try:
-                    quality = float(value)
-                except ValueError:
-                    quality = 0.0
-                if not 0.0 <= quality <= 1.0:
-                    quality = 0.0
-        for kind, (full, group) in _RANGES.items():
-            specific = 2 if media == full else 1 if media == group else 0 if media == "*/*" else -1
-            if specific > best[kind][1]:
-                best[kind] = (quality, specific)
-    (q_csv, s_csv), (q_json, s_json) = best["csv"], best["json"]
-    return q_csv > 0.0 and (q_csv > q_json or (q_csv == q_json and s_csv > s_json))
+    """Whether an ``Accept`` header asks for CSV rather than JSON (:func:`service.api.negotiation.prefers`)."""
+    return prefers(accept, CSV)
 
 
 @router.post("/simulate", response_model=SimulateResponse, responses=RESPONSES)

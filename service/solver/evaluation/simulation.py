@@ -40,9 +40,9 @@ reachable inside input limits (:mod:`service.solver.limits.limited_run`).
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any, Protocol
+from typing import Protocol
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -78,14 +78,15 @@ class PolicyStep:
     ----------
     move : ndarray, shape (m,)
         ``du(k)``, applied as ``u(k) = u(k-1) + du(k)``.
-    report : mapping or None
-        Anything the policy wants recorded for this step (e.g. active limits, solver
-        iterations); stored as-is in :attr:`Simulation.reports`.  ``None`` when there is
-        nothing to say.
+    report : object or None
+        Anything the policy wants recorded for this step, stored as-is in
+        :attr:`Simulation.reports` (the constrained policy records a typed
+        :class:`service.solver.limits.policy.StepReport`).  ``None`` when there is nothing
+        to say.
     """
 
     move: NDArray[np.float64]
-    report: Mapping[str, Any] | None = None
+    report: object | None = None
 
 
 class MovePolicy(Protocol):
@@ -300,7 +301,7 @@ class Simulation:
     estimates: NDArray[np.float64]
     disturbance_estimates: NDArray[np.float64]
     states: NDArray[np.float64]
-    reports: list[Mapping[str, Any] | None] = field(repr=False)
+    reports: list[object | None] = field(repr=False)
     diverged_at: int | None
     initial_input: NDArray[np.float64]
     initial_setpoint: NDArray[np.float64]
@@ -432,7 +433,7 @@ def simulate_loop(
     target_inputs = np.full((steps, m), np.nan)
     estimates = np.full((steps, na), np.nan)
     states = np.full((steps, nt), np.nan)
-    reports: list[Mapping[str, Any] | None] = []
+    reports: list[object | None] = []
     diverged_at: int | None = None
 
     x, u = xt0, u0

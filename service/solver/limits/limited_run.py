@@ -32,7 +32,7 @@ from service.solver.estimation.loop import ControlLoop
 from service.solver.estimation.target import TargetProblem
 from service.solver.evaluation.simulation import PolicyStep
 from service.solver.limits.bounds import Limits, limit_violations
-from service.solver.limits.policy import ConstrainedPolicy
+from service.solver.limits.policy import ConstrainedPolicy, StepReport
 from service.solver.limits.qp import PRIMAL_TOLERANCE
 from service.solver.limits.reachable_target import ReachableTargetProblem
 
@@ -86,7 +86,7 @@ class GainWhenFreePolicy:
     ) -> PolicyStep:
         result = self.policy(error=error, free_prediction=free_prediction, previous_input=previous_input, step=step)
         report = result.report
-        if report is None or report.get("method") != "unconstrained" or not report.get("solved"):
+        if not isinstance(report, StepReport) or report.method != "unconstrained" or not report.solved:
             return result
         move = self.horizon_gain @ error
         lim = self.policy.limits

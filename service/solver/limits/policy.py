@@ -10,7 +10,7 @@ the report flags a fallback.  Without any active limit the move is the unconstra
 
 from __future__ import annotations
 
-from typing import Any
+from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
@@ -18,14 +18,49 @@ from numpy.typing import NDArray
 from service.solver.design.controller import ControllerDesign
 from service.solver.evaluation.simulation import PolicyStep
 from service.solver.limits.bounds import Limits
-from service.solver.limits.qp import PRIMAL_TOLERANCE, MoveQP, MoveSolution
+from service.solver.limits.qp import PRIMAL_TOLERANCE, ActiveLimit, MoveQP, MoveSolution
 from service.solver.limits.zones import Zones
 
-__all__ = ["ConstrainedPolicy", "step_report"]
+__all__ = ["ConstrainedPolicy", "StepReport", "step_report"]
 
 
-def step_report(solution: MoveSolution, *, applied_input: NDArray[np.float64], limits: Limits) -> dict[str, Any]:
-    """Return the report of one step as plain Python values (lists, numbers, strings).
+@dataclass(frozen=True)
+class StepReport:
+    """The report of one step of a run under limits (in scaled signals).
+
+    Attributes
+    ----------
+    status : str
+        The QP solver's status of the step.
+    solved : bool
+    fallback : bool
+        The step held the last input (``du = 0``) because the QP was not solved.
+    method : {"unconstrained", "active_set"}
+        ``"unconstrained"`` when the unconstrained optimum kept every limit.
+    iterations : int
+    active_limits : tuple of ActiveLimit
+        Every limit the solution holds at its bound, over the whole horizon.
+    output_max_slack, output_min_slack : ndarray, shape (p,)
+        Slack used on each soft output bound.
+    inputs_at_min, inputs_at_max, moves_at_limit : tuple of int
+        Inputs whose applied value (or move) sits on its limit this step.
+    """
+
+    status: str
+    solved: bool
+    fallback: bool
+    method: str
+    iterations: int
+    active_limits: tuple[ActiveLimit, ...]
+    output_max_slack: NDArray[np.float64]
+    output_min_slack: NDArray[np.float64]
+    inputs_at_min: tuple[int, ...]
+    inputs_at_max: tuple[int, ...]
+    moves_at_limit: tuple[int, ...]
+
+
+def step_report(solution: MoveSolution, *, applied_input: NDArray[np.float64], limits: Limits) -> StepReport:
+    """Return the report of one step.
 
     Parameters
     ----------
@@ -36,30 +71,27 @@ def step_report(solution: MoveSolution, *, applied_input: NDArray[np.float64], l
 
     Returns
     -------
-    dict
-        ``status`` (str), ``solved`` (bool), ``fallback`` (bool: the step held the last
-        input), ``method`` (``"unconstrained"`` or ``"active_set"``), ``iterations`` (int),
-        ``active_limits`` (list of ``{"kind", "side", "index", "step"}``, see
-        :class:`service.solver.limits.qp.ActiveLimit`), ``output_max_slack`` and
-        ``output_min_slack`` (p floats each: slack used on each soft output bound),
-        ``inputs_at_min``, ``inputs_at_max`` and ``moves_at_limit`` (indices of the inputs
-        whose applied value or move sits on its limit this step).
+    StepReport
     """
     tolerance = 10.0 * PRIMAL_TOLERANCE * np.maximum(1.0, np.abs(applied_input))
     first = solution.moves[: limits.inputs] if solution.solved else np.zeros(limits.inputs)
-    return {
-        "status": solution.status,
-        "solved": solution.solved,
-        "fallback": not solution.solved,
-        "method": solution.method,
-        "iterations": solution.iterations,
-        "active_limits": [{"kind": a.kind, "side": a.side, "index": a.index, "step": a.step} for a in solution.active],
-        "output_max_slack": [float(v) for v in solution.output_max_slack],
-        "output_min_slack": [float(v) for v in solution.output_min_slack],
-        "inputs_at_min": [int(i) for i in np.flatnonzero(applied_input <= limits.input_min + tolerance)],
-        "inputs_at_max": [int(i) for i in np.flatnonzero(applied_input >= limits.input_max - tolerance)],
-        "moves_at_limit": [int(i) for i in np.flatnonzero(np.abs(first) >= limits.move_max - tolerance)],
-    }
+
+    def indices(flags: NDArray[np.bool_]) -> tuple[int, ...]:
+        return tuple(int(i) for i in np.flatnonzero(flags))
+
+    return StepReport(
+        status=solution.status,
+        solved=solution.solved,
+        fallback=not solution.solved,
+        method=solution.method,
+        iterations=solution.iterations,
+        active_limits=tuple(solution.active),
+        output_max_slack=np.array(solution.output_max_slack, dtype=float),
+        output_min_slack=np.array(solution.output_min_slack, dtype=float),
+        inputs_at_min=indices(applied_input <= limits.input_min + tolerance),
+        inputs_at_max=indices(applied_input >= limits.input_max - tolerance),
+        moves_at_limit=indices(np.abs(first) >= limits.move_max - tolerance),
+    )
 
 
 class ConstrainedPolicy:
