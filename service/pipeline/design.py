@@ -89,6 +89,8 @@ class DesignInputs:
     first_penalized: int
     terminal: Literal["none", "riccati"] = "none"
     move_steps: tuple[int, ...] | None = None
+    #: ``S`` of the input targets (``weights.input``), as given; ``None``: none (or all zero).
+    input_weight: NDArray[np.float64] | None = None
     #: The checked estimator (of every request: /simulate runs with it).
     estimator: EstimatorInputs | None = None
     #: Grid size of the frequency analysis; ``None``: not asked.
@@ -285,6 +287,33 @@ def _checked_weights(
     return q, r, zones, problems
 
 
+def _checked_input_weight(
+    request: DesignRequest, plant: DiscretePlant
+) -> tuple[NDArray[np.float64] | None, list[FieldProblem]]:
+    """``weights.input`` checked like the move weight; ``None`` when absent or all zero."""
+    if request.weights.input is None:
+        return None, []
+    s_in, problems = check_weight(
+        request.weights.input,
+        ("weights", "input"),
+        size=plant.input_count,
+        what="input weight",
+        names=[sig.name for sig in plant.inputs],
+    )
+    if s_in is not None and not np.any(s_in):
+        s_in = None  # all zero: no input targets
+    if s_in is not None and request.weights.terminal == "riccati":
+        problems.append(
+            FieldProblem(
+                pointer("weights", "input"),
+                "input targets together with a Riccati terminal weight are not supported: the terminal "
+                "weight would pull the inputs towards another steady state than the input targets. Leave "
+                "out weights.input or use terminal 'none'",
+            )
+        )
+    return s_in, problems
+
+
 def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
     """Check everything the field types alone cannot: sizes that must agree, tags, and the caps.
 
@@ -309,6 +338,8 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
     if plant is None:
         raise InvalidRequest(problems)
     q, r, zones, found = _checked_weights(request, plant)
+    problems += found
+    s_in, found = _checked_input_weight(request, plant)
     problems += found
     estimator, found = check_estimator(request.estimator, plant)
     problems += found
@@ -339,6 +370,7 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         first_penalized=h.first_penalized,
         terminal=request.weights.terminal,
         move_steps=None if h.move_steps is None else tuple(h.move_steps),
+        input_weight=s_in,
         estimator=estimator,
         frequency_points=request.analysis.points if request.analysis.frequency else None,
         limits=limits,
@@ -363,6 +395,8 @@ def retuned_inputs(inputs: DesignInputs, request: DesignRequest, caps: Caps, *, 
     problems = _horizon_problems(request, caps)
     q, r, zones, found = _checked_weights(request, plant)
     problems += found
+    s_in, found = _checked_input_weight(request, plant)
+    problems += found
     if not problems:
         problems += _size_problems(request, plant, caps)
     if problems:
@@ -373,6 +407,7 @@ def retuned_inputs(inputs: DesignInputs, request: DesignRequest, caps: Caps, *, 
         inputs,
         output_weight=q,
         move_weight=r,
+        input_weight=s_in,
         prediction=h.prediction,
         control=h.control,
         first_penalized=h.first_penalized,
@@ -425,6 +460,7 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
         terminal=inputs.terminal,
         blocking=inputs.move_steps,
         zone_outputs=() if inputs.zones is None else inputs.zones.outputs,
+        input_weight=inputs.input_weight,
     )
     feedforward = None
     if scaled.b_disturbance is not None and sd is not None:
@@ -591,6 +627,7 @@ def design_response(inputs: DesignInputs, outcome: DesignOutcome) -> DesignRespo
         previous_input=names,
         setpoint=outputs,
         disturbance=[s.name for s in plant.disturbances],
+        input_target=[f"{name}.target" for name in names] if gain.input_target is not None else [],
     )
     return DesignResponse(
         gain=GainReport(
@@ -599,6 +636,7 @@ def design_response(inputs: DesignInputs, outcome: DesignOutcome) -> DesignRespo
             previous_input=gain.previous_input.tolist(),
             setpoint=gain.setpoint.tolist(),
             disturbance=None if outcome.feedforward is None else outcome.feedforward.tolist(),
+            input_target=None if gain.input_target is None else gain.input_target.tolist(),
             labels=labels,
         ),
         hessian=HessianReport(

@@ -108,6 +108,15 @@ def _law_problems(request: DesignRequest, inputs: DesignInputs) -> list[FieldPro
                 "the fixed law). Use terminal 'none'",
             )
         )
+    if inputs.input_weight is not None:
+        problems.append(
+            FieldProblem(
+                pointer("weights", "input"),
+                "the law with input targets cannot be exported yet (the exported law has no input-target "
+                "inputs). Leave out weights.input to export; POST /design reports the law with its input-target "
+                "gain (gain.input_target)",
+            )
+        )
     if not np.array_equal(plant.c_measured, plant.c):
         problems.append(
             FieldProblem(

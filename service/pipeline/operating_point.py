@@ -2,9 +2,10 @@
 
 A linear model holds around a steady state ``(u0, z0, d0)``, ``model.operating_point``.  With
 it, a request's values are absolute: :func:`to_deviations` subtracts the operating point from
-each (input limits and the initial input by ``u0``; output limits, zone edges, setpoints and the
-initial setpoint by ``z0``; measured disturbance values by ``d0``) and drops the block, so the rest of
-the pipeline sees the deviation request it always saw; :func:`design_to_absolute` and
+each (input limits, the initial input and the input targets by ``u0``; output limits, zone
+edges, setpoints and the initial setpoint by ``z0``; measured disturbance values by ``d0``)
+and drops the block, so the rest of the pipeline sees the deviation request it always saw;
+:func:`design_to_absolute` and
 :func:`simulation_to_absolute` add it back to every absolute value of the answer.  Moves,
 additive disturbances, offsets and figures of merit are differences and stay as they are.
 Each shift is one IEEE subtraction or addition per value, so the absolute run is the
@@ -110,6 +111,10 @@ def to_deviations(request: DesignRequest) -> tuple[DesignRequest, OperatingPoint
                 "measured_disturbances": [
                     e.model_copy(update={"value": _minus(e.value, point.disturbances)})
                     for e in sc.measured_disturbances
+                ],
+                "input_targets": _minus(sc.input_targets, point.inputs),
+                "input_target_changes": [
+                    e.model_copy(update={"value": _minus(e.value, point.inputs)}) for e in sc.input_target_changes
                 ],
                 "initial": initial,
             }

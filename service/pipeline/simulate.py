@@ -192,6 +192,8 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
         initial_state=inputs.initial_state,
         initial_input=None if inputs.initial_input is None else inputs.initial_input / su,
         initial_setpoint=None if inputs.initial_setpoint is None else inputs.initial_setpoint / sz,
+        input_targets=None if inputs.input_targets is None else inputs.input_targets / su,
+        input_target_changes=_scaled_events(list(inputs.input_target_changes), su),
         sample_time=plant.sample_time,
     )
     limits, zones = inputs.design.limits, inputs.design.zones

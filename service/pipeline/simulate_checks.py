@@ -52,7 +52,11 @@ class SimulationInputs:
         ``initial_input`` is clipped into the input limits when ``limits.clamp_initial_input``
         asked for it.
     limit_warnings : tuple of Diagnostic
-        What the limit checks changed (a clipped initial input).
+        What the limit checks changed (a clipped initial input), input targets outside the
+        input limits, input targets without an input weight.
+    input_targets : ndarray, shape (m,), or None
+        ``u_t`` before the first change (``None``: zeros, the operating point).
+    input_target_changes : list of Event
     """
 
     design: DesignInputs
@@ -73,6 +77,8 @@ class SimulationInputs:
     initial_input: NDArray[np.float64] | None
     initial_setpoint: NDArray[np.float64] | None
     limit_warnings: tuple[Diagnostic, ...] = ()
+    input_targets: NDArray[np.float64] | None = None
+    input_target_changes: tuple[Event, ...] = ()
 
 
 def _length(value: list[float] | None, size: int, where: Where, what: str) -> list[FieldProblem]:
@@ -99,6 +105,45 @@ def _events(
         problems += _length(value, size, (*where, value_field), what)
         events.append(Event(change.step, np.asarray(value, dtype=float)))
     return events, problems
+
+
+def _input_target_warnings(
+    design: DesignInputs, plant: DiscretePlant, targets: list[NDArray[np.float64]]
+) -> list[Diagnostic]:
+    """Input targets the run cannot honour as given: outside the input limits, or without a weight."""
+    if not targets:
+        return []
+    if design.input_weight is None:
+        return [
+            Diagnostic(
+                "input_targets_unused",
+                "scenario.input_targets (or input_target_changes) are given but weights.input is absent or all "
+                "zero, so nothing pulls the inputs towards them: give weights.input a positive weight for the "
+                "inputs that should settle on their targets.",
+            )
+        ]
+    limits = design.limits
+    if limits is None:
+        return []
+    names = [s.name for s in plant.inputs]
+    outside = sorted(
+        {
+            j
+            for value in targets
+            for j in range(min(value.size, len(names)))
+            if value[j] < limits.input_min[j] or value[j] > limits.input_max[j]
+        }
+    )
+    if not outside:
+        return []
+    tags = ", ".join(repr(names[j]) for j in outside)
+    return [
+        Diagnostic(
+            "input_target_outside_limits",
+            f"The input target of {tags} lies outside its input limits: the steady-state target keeps the "
+            f"input inside them, as near its target as the limits allow (the outputs still come first).",
+        )
+    ]
 
 
 def _true_plant_problems(
@@ -291,6 +336,11 @@ def check_simulate_request(request: SimulateRequest, caps: Caps) -> SimulationIn
             what="measured disturbance",
         )
         problems += found
+    problems += _length(sc.input_targets, m, ("scenario", "input_targets"), "the input targets")
+    target_changes, found = _events(
+        sc.input_target_changes, "input_target_changes", "value", steps=steps, size=m, what="input target"
+    )
+    problems += found
     noise = sc.measurement_noise
     if noise is not None:
         problems += _length(noise.std, p, ("scenario", "measurement_noise", "std"), "the noise spread")
@@ -320,6 +370,11 @@ def check_simulate_request(request: SimulateRequest, caps: Caps) -> SimulationIn
     def vector(value: list[float] | None) -> NDArray[np.float64] | None:
         return None if value is None else np.asarray(value, dtype=float)
 
+    given = [e.value for e in target_changes]
+    if sc.input_targets is not None:
+        given.insert(0, np.asarray(sc.input_targets, dtype=float))
+    limit_warnings = [*limit_warnings, *_input_target_warnings(design, plant, given)]
+
     return SimulationInputs(
         design=design,
         kind=est.kind,
@@ -339,4 +394,6 @@ def check_simulate_request(request: SimulateRequest, caps: Caps) -> SimulationIn
         initial_input=vector(init.input) if clamped is None else clamped,
         initial_setpoint=vector(init.setpoint),
         limit_warnings=tuple(limit_warnings),
+        input_targets=vector(sc.input_targets),
+        input_target_changes=tuple(target_changes),
     )

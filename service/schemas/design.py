@@ -97,6 +97,9 @@ class GainLabels(ResponseModel):
     previous_input: list[str] = Field(description="Columns of Ku: the manipulated variables.")
     setpoint: list[str] = Field(description="Columns of Kr: the controlled outputs.")
     disturbance: list[str] = Field(description="Columns of Kd: the measured disturbances.")
+    input_target: list[str] = Field(
+        default_factory=list, description="Columns of Kt: the input targets of the manipulated variables."
+    )
 
 
 class GainReport(ResponseModel):
@@ -113,11 +116,17 @@ class GainReport(ResponseModel):
     disturbance: MatrixOut | None = Field(
         default=None, description="Kd, m x md: feed-forward gain on the measured disturbances d(k); null without any."
     )
+    input_target: MatrixOut | None = Field(
+        default=None,
+        description="Kt, m x m: gain on the input targets u_target in du = Kr r + Kt u_target - Kx x - Ku u(k-1) "
+        "(with weights.input; null without). Kr and Ku then include the input-target term, and Kt is zero "
+        "where the setpoints leave the inputs no spare direction.",
+    )
     labels: GainLabels
 
 
 class HessianReport(ResponseModel):
-    """Conditioning of the Hessian H = G'QG + R."""
+    """Conditioning of the Hessian H = G'QG + R (+ L'SL with input targets, weights.input)."""
 
     condition_number: FiniteFloat = Field(description="Exact 2-norm condition number.")
     smallest_eigenvalue: FiniteFloat
@@ -146,7 +155,8 @@ class MarginalModeReport(ResponseModel):
         "tuning",
     ] = Field(
         description="'free_input_direction': a direction of the inputs that changes no weighted output "
-        "at steady state (more inputs than outputs; fix: input targets, weights.input); "
+        "at steady state (more inputs than outputs; fix: input targets, weights.input with "
+        "scenario.input_targets); "
         "'input_reaches_no_output': an input no weighted output responds to within the prediction "
         "horizon; 'unweighted_output': a plant mode on the circle (an integrating level) seen only by "
         "outputs with weight 0; 'zone_output': a mode or input direction that only zone outputs see (by "

@@ -31,6 +31,7 @@ __all__ = [
     "EstimatorRequest",
     "InitialConditions",
     "InputFigures",
+    "InputTargetChange",
     "MeasurementNoise",
     "OutputFigures",
     "PerformanceReport",
@@ -61,6 +62,13 @@ class DisturbanceChange(RequestModel):
         description="One value per controlled output (output disturbances), per manipulated variable "
         "(input disturbances) or per measured disturbance, engineering units."
     )
+
+
+class InputTargetChange(RequestModel):
+    """New input targets for every manipulated variable, held from ``step`` on."""
+
+    step: StepIndex = Field(description="Step of the change, 0 <= step < scenario.steps.")
+    value: Vector = Field(description="One target per manipulated variable, engineering units.")
 
 
 class MeasurementNoise(RequestModel):
@@ -101,6 +109,16 @@ class ScenarioRequest(RequestModel):
         default_factory=list,
         description="Levels of the model's measured disturbances (b_disturbance or disturbance_elements), "
         "applied to the plant and fed forward through the design's Kd.",
+    )
+    input_targets: Vector | None = Field(
+        default=None,
+        description="u_target: one target per manipulated variable (engineering units; absolute with "
+        "model.operating_point) that weights.input pulls the inputs towards, in the spare directions only "
+        "(the outputs settle on their setpoints first). Default: the operating point's inputs (0 without "
+        "one). Used only with weights.input; a target outside the input limits is allowed and reported.",
+    )
+    input_target_changes: list[InputTargetChange] = Field(
+        default_factory=list, description="New input targets, held from their step on."
     )
     measurement_noise: MeasurementNoise | None = Field(default=None, description="Default: no noise.")
     true_plant: PlantModel | None = Field(

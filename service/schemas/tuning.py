@@ -31,7 +31,7 @@ class Horizons(RequestModel):
 
 
 class Weights(RequestModel):
-    """Output (controlled-variable) weights Q and move-suppression weights R."""
+    """Output (controlled-variable) weights Q, move-suppression weights R and input-target weights S."""
 
     output: Vector | Matrix = Field(
         description="Q: one non-negative number per controlled output, or a full symmetric "
@@ -40,6 +40,17 @@ class Weights(RequestModel):
     move: Vector | Matrix = Field(
         description="R (move suppression): one non-negative number per manipulated variable, or a "
         "full symmetric positive-semidefinite m x m matrix."
+    )
+    input: Vector | Matrix | None = Field(
+        default=None,
+        description="S (input targets): one non-negative number per manipulated variable, or a full "
+        "symmetric positive-semidefinite m x m matrix, on u - u_target over the control horizon's "
+        "predicted inputs. The law becomes du = Kr r + Kt u_target - Kx x - Ku u(k-1) (gain.input_target). "
+        "Input targets act only in the spare directions: the steady-state target settles the outputs "
+        "first, then puts the inputs nearest their targets, so reachable setpoints are still met "
+        "exactly. With more inputs than outputs they fix the otherwise free input direction. The target "
+        "values are scenario.input_targets of /simulate (default: the operating point's inputs, or 0 "
+        "without one). Default: none (all zero is none). Not with terminal 'riccati'.",
     )
     terminal: Literal["none", "riccati"] = Field(
         default="none",

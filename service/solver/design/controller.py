@@ -27,6 +27,7 @@ from service.solver.design.gain import (
     toeplitz_hessian,
     weighted_moves,
 )
+from service.solver.design.input_target import InputPenalty, input_penalty, input_target_gain, with_input_target
 from service.solver.design.marginal import marginal_modes
 from service.solver.design.prediction import Prediction, prediction_matrices
 from service.solver.design.terminal import (
@@ -37,6 +38,7 @@ from service.solver.design.terminal import (
     with_terminal_gain,
 )
 from service.solver.design.weights import weight_matrix, weight_root
+from service.solver.estimation.target import target_problem
 
 __all__ = ["ControllerDesign", "design_controller"]
 
@@ -71,6 +73,12 @@ class ControllerDesign:
         ``Kt`` of the terminal weight.
     blocking : tuple of int or None
         The free move steps, when the moves are blocked.
+    input_penalty : InputPenalty or None
+        The input-target term (``S``, its Hessian block and pull ``P``), with an input weight.
+    input_target_gain : ndarray, shape (m, m), or None
+        ``Kt0``: the first move is ``Kh E + Kt0 (u_s - u(k-1))`` with ``u_s`` the steady-state
+        target's input (:mod:`service.solver.design.input_target`).  ``gain`` holds the law on
+        the raw setpoint and input targets.
     """
 
     prediction: Prediction
@@ -85,6 +93,13 @@ class ControllerDesign:
     terminal: TerminalWeight | None = None
     terminal_gain: NDArray[np.float64] | None = None
     blocking: tuple[int, ...] | None = None
+    input_penalty: InputPenalty | None = None
+    input_target_gain: NDArray[np.float64] | None = None
+
+    @property
+    def input_weight(self) -> NDArray[np.float64] | None:
+        """``S`` of the input targets, or ``None``."""
+        return None if self.input_penalty is None else self.input_penalty.weight
 
 
 def design_controller(
@@ -103,6 +118,7 @@ def design_controller(
     terminal: TerminalKind = "none",
     blocking: Sequence[int] | None = None,
     zone_outputs: Sequence[int] = (),
+    input_weight: ArrayLike | None = None,
 ) -> ControllerDesign:
     """Design the unconstrained predictive controller of the design notes.
 
@@ -136,6 +152,10 @@ def design_controller(
         Outputs held in a zone by the move QP (their weight in ``Q`` is 0): the closed-loop
         poles they leave on the unit circle are named ``zone_output``
         (:mod:`service.solver.design.marginal`).
+    input_weight : array_like, shape (m,) or (m, m), optional
+        ``S`` on ``u - u_target`` over the control horizon's inputs
+        (:mod:`service.solver.design.input_target`).  Default none; an all-zero weight is none.
+        Not with the Riccati terminal weight.
 
     Returns
     -------
@@ -181,10 +201,17 @@ def design_controller(
         rows = np.vstack([weighted, term.weighted_moves])
     else:
         assert terminal == "none", f"unknown terminal weight {terminal!r}"
+    s = None if input_weight is None else weight_matrix(input_weight, m)
+    penalty = None
+    if s is not None and np.any(s):
+        assert term is None, "input targets with the Riccati terminal weight are not supported"
+        penalty = input_penalty(s, control=control, free=free)
     if term is None and (free is None or free == tuple(range(control))):
         matrix = toeplitz_hessian(pred, weighted, root, r)  # G keeps its block-Toeplitz form
     else:
         matrix = hessian_matrix(rows, r, control=moves)
+    if penalty is not None:
+        matrix = matrix + penalty.hessian
     hessian = factor_hessian(
         matrix,
         weighted=rows,
@@ -198,9 +225,26 @@ def design_controller(
     if term is not None:
         kt = terminal_first_move_gain(hessian, term, inputs=m)
         gain = with_terminal_gain(gain, term, kt)
+    kt0 = None
+    if penalty is not None:
+        kt0 = input_target_gain(hessian, penalty)
+        target = target_problem(a_, b_, c_, output_weight=q, input_weight=penalty.weight)
+        n = a_.shape[0]
+        gain = with_input_target(
+            gain, kt0, setpoint_input=target.setpoint_map[n:], target_input=target.input_target_map[n:]
+        )
     loop = closed_loop(a_, b_, gain.state, gain.previous_input)
     marginal = tuple(
-        marginal_modes(a_, b_, c_, output_root=root, weighted=rows, poles=loop.poles, zone_outputs=zone_outputs)
+        marginal_modes(
+            a_,
+            b_,
+            c_,
+            output_root=root,
+            weighted=rows,
+            poles=loop.poles,
+            input_weight_root=None if penalty is None else weight_root(penalty.weight),
+            zone_outputs=zone_outputs,
+        )
     )
     loop = dataclasses.replace(loop, marginal=marginal, stable=loop.stable and not marginal)
     warnings = design_warnings(
@@ -223,4 +267,6 @@ def design_controller(
         terminal=term,
         terminal_gain=kt,
         blocking=free,
+        input_penalty=penalty,
+        input_target_gain=kt0,
     )

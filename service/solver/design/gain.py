@@ -93,12 +93,16 @@ class PredictiveGain:
         ``Ku``.
     setpoint : ndarray, shape (m, p)
         ``Kr``: ``du(k) = Kr r - Kx x(k) - Ku u(k-1)`` for a constant setpoint ``r``.
+    input_target : ndarray, shape (m, m), or None
+        ``Kt`` of ``du(k) = Kr r + Kt u_t - Kx x(k) - Ku u(k-1)`` with input targets ``u_t``
+        (:mod:`service.solver.design.input_target`); ``None`` without an input weight.
     """
 
     horizon: NDArray[np.float64]
     state: NDArray[np.float64]
     previous_input: NDArray[np.float64]
     setpoint: NDArray[np.float64]
+    input_target: NDArray[np.float64] | None = None
 
 
 def weighted_moves(prediction: Prediction, output_root: NDArray[np.float64]) -> NDArray[np.float64]:

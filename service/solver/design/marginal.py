@@ -512,8 +512,9 @@ def marginal_mode_warnings(
                 f"of the inputs that changes no weighted output at steady state ({'; '.join(parts)}): "
                 f"the controller has no reason to move the inputs along it, so they may drift there. "
                 f"This is not instability and no move weight or horizon removes it. Give those inputs "
-                f"targets (weights.input with input target values), or a weight on an output that "
-                f"this direction moves.",
+                f"targets: a positive weights.input for them (the target values are "
+                f"scenario.input_targets of /simulate, by default the operating point), or a weight "
+                f"on an output that this direction moves.",
             )
         )
     dead = by_cause.get("input_reaches_no_output", [])

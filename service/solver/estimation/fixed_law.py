@@ -113,7 +113,8 @@ def fixed_law(
     Parameters
     ----------
     design : ControllerDesign
-        Without a terminal weight (its setpoint path is not part of this law).
+        Without a terminal weight (its setpoint path is not part of this law).  With an input
+        weight the input targets are held at the model's origin (``u_t = 0``).
     estimator : Estimator
         Of the same model, not ``full_state`` (the law reads measured outputs).
     b_disturbance : ndarray, shape (n, md), optional
@@ -137,6 +138,8 @@ def fixed_law(
     feedback = estimate_feedback_gain(design, estimator)  # K, (m, na)
     target = estimator_target(design, estimator)
     setpoint_gain = kh @ np.tile(target.output_setpoint_map, (pred.penalized_steps, 1))  # Kh (1 (x) Z_r)
+    if design.input_target_gain is not None:  # input targets held at the origin: u_s = U_r r + U_d d
+        setpoint_gain = setpoint_gain + design.input_target_gain @ target.setpoint_map[estimator.state_size :]
     if md:
         fd = disturbance_free_response(
             estimator.a,

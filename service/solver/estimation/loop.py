@@ -16,11 +16,12 @@ design's (the disturbance states do not respond to ``u``).
 The whole loop, with the plant equal to the model, on ``[x(k); x(k|k-1); u(k-1)]`` ::
 
     x(k|k)   = L C x(k) + (I - L Cy) x(k|k-1)              =: Mx x + Mp x(k|k-1)
-    u(k)     = -K x(k|k) + (I - Ku) u(k-1),    K = Kh (Fx_aug - (1 (x) I_p) Z_d S_d)
+    u(k)     = -K x(k|k) + (I - Ku) u(k-1),    K = Kh (Fx_aug - (1 (x) I_p) Z_d S_d) [- Kt0 U_d S_d]
     x(k+1)   = A x(k) + B u(k)
     x(k+1|k) = A_aug x(k|k) + B_aug u(k)
 
-(``S_d`` picks the disturbance estimate; setpoint at zero).  In the coordinates ``[x; e; u]``
+(``S_d`` picks the disturbance estimate; setpoint at zero; the bracket with input targets,
+``Ku`` then including ``Kt0``, :mod:`service.solver.design.input_target`).  In the coordinates ``[x; e; u]``
 with ``e = [x; 0] - x(k|k-1)`` the matrix is block triangular, so its eigenvalues are those of
 the controller loop and of ``(I - L Cy) A_aug`` together: the separation principle (common
 practice).  :func:`whole_loop` forms the matrix in the original coordinates and checks the
@@ -156,6 +157,7 @@ def estimator_target(design: ControllerDesign, estimator: Estimator) -> TargetPr
         disturbance_input=estimator.disturbance_input,
         disturbance_output=estimator.disturbance_controlled,
         output_weight=design.output_weight,
+        input_weight=design.input_weight,
     )
 
 
@@ -274,6 +276,8 @@ def _whole_loop_matrix(
     select[:, est.disturbance_slice] = np.eye(est.disturbance_size)
     corrected = np.tile(loop.target.output_disturbance_map @ select, (loop.penalized_steps, 1))
     k = loop.horizon_gain @ (loop.free_state - corrected)  # (m, na)
+    if design.input_target_gain is not None:  # u_s = ... + U_d d: the input penalty's part
+        k = k - design.input_target_gain @ loop.target.disturbance_map[est.state_size :] @ select
     hold = np.eye(m) - design.gain.previous_input
     u_row = np.hstack([-k @ mx, -k @ mp, hold])  # u(k) in terms of [x; x(k|k-1); u(k-1)]
     xf_row = np.hstack([mx, mp, np.zeros((na, m))])  # x(k|k)

@@ -207,6 +207,8 @@ def estimate_feedback_gain(design: ControllerDesign, estimator: Estimator) -> ND
     target = estimator_target(design, estimator)
     corrected = np.tile(target.output_disturbance_map @ select, (pred.penalized_steps, 1))
     gain = design.gain.horizon @ (free_state - corrected)
+    if design.input_target_gain is not None:  # the input penalty pulls towards u_s = ... + U_d d
+        gain = gain - design.input_target_gain @ target.disturbance_map[n:] @ select
     if design.terminal is not None and design.terminal_gain is not None:
         phi, _ = terminal_prediction(estimator.a, estimator.b, prediction=hp, control=pred.control, states=n)
         gain = gain + design.terminal_gain @ (phi[:, :na] - target.disturbance_map @ select)

@@ -17,7 +17,14 @@ the same function covers every shape:
 - fewer inputs, or a singular steady-state gain: the reachable steady state nearest the
   setpoint in the ``Q``-weighted norm (least norm among ties).
 
-The solution is linear in ``(r, d)``: ``[x_s; u_s] = S_r r + S_d d``.  Both maps are formed
+With an input weight ``S`` (``weights.input``) and input targets ``u_t``, the ties of the
+output fit are broken by the inputs first: among the steady states that fit the outputs best,
+the one whose inputs are nearest their targets in the ``S``-weighted norm
+``|S^(1/2) (u_s - u_t)|``, and least norm among what ties remain (a lexicographic target
+calculation, common practice).  Input targets act in the spare directions only: the output
+fit is settled before they are looked at, so a reachable setpoint is still met exactly.
+
+The solution is linear in ``(r, d, u_t)``: ``[x_s; u_s] = S_r r + S_d d + S_t u_t``.  Both maps are formed
 once (:func:`target_problem`), so a target costs two matrix-vector products.  A constrained
 target (input limits, a nearest reachable steady state under limits) starts from the same
 pieces: the equality block :meth:`TargetProblem.steady_state_equations`, the objective block
@@ -111,6 +118,10 @@ class TargetProblem:
         reachable.
     every_setpoint_reachable : bool
         Whether ``[[I - A, -B], [Cz, 0]]`` has full row rank ``n + pz``.
+    input_weight : ndarray, shape (m, m)
+        ``S`` of the input targets (zeros: no input targets; ``S_t = 0``).
+    input_target_map : ndarray, shape (n+m, m)
+        ``S_t``: the part of ``[x_s; u_s]`` that follows the input targets ``u_t``.
     """
 
     a: NDArray[np.float64]
@@ -126,6 +137,8 @@ class TargetProblem:
     output_setpoint_map: NDArray[np.float64]
     output_disturbance_map: NDArray[np.float64]
     every_setpoint_reachable: bool
+    input_weight: NDArray[np.float64]
+    input_target_map: NDArray[np.float64]
 
     @property
     def state_size(self) -> int:
@@ -163,6 +176,7 @@ def target_problem(
     disturbance_input: ArrayLike | None = None,
     disturbance_output: ArrayLike | None = None,
     output_weight: ArrayLike | None = None,
+    input_weight: ArrayLike | None = None,
 ) -> TargetProblem:
     """Form the target equations and their least-squares solution maps.
 
@@ -179,6 +193,9 @@ def target_problem(
     output_weight : array_like, shape (pz,) or (pz, pz), optional
         ``Q`` of the fit for unreachable setpoints (default identity).  Use the controller's
         output weight so that the target agrees with the controller's own compromise.
+    input_weight : array_like, shape (m,) or (m, m), optional
+        ``S``, the weight of the input targets (default none).  Use the controller's input
+        weight, so that the target's inputs are those its input penalty pulls towards.
 
     Returns
     -------
@@ -191,6 +208,13 @@ def target_problem(
     ``min |W (F N c - (r - Dz d - F P0 d))|`` has the least-norm solution
     ``c = (W F N)^+ W (r - Dz d - F P0 d)``.  ``P0 d`` lies in the row space of ``E``,
     orthogonal to ``N c``, so ``[x_s; u_s]`` is of least norm among the best fits.
+
+    With an input weight, the best fits are ``c = c0 + N2 w`` with ``N2`` an orthonormal basis of
+    the null space of ``W F N`` (directions that no weighted output sees at steady state).  The
+    inputs' fit ``min |V (J (xi0 + N N2 w) - u_t)|`` (``V' V = S``, ``J`` picks ``u_s`` out of
+    ``[x_s; u_s]``, ``xi0`` the target without input targets) has the least-norm solution
+    ``w = (V J N N2)^+ V (u_t - J xi0)``; ``N N2 w`` is orthogonal to ``xi0``, so the result is
+    again of least norm among its ties.  With ``S = 0`` it is ``xi0``.
     """
     a_ = np.asarray(a, dtype=float)
     b_ = np.asarray(b, dtype=float)
@@ -201,6 +225,7 @@ def target_problem(
     dz = np.zeros((pz, nd)) if disturbance_output is None else np.asarray(disturbance_output, dtype=float)
     assert bd.shape == (n, nd) and dz.shape == (pz, nd), (bd.shape, dz.shape)
     q = np.eye(pz) if output_weight is None else weight_matrix(output_weight, pz)
+    s_in = np.zeros((m, m)) if input_weight is None else weight_matrix(input_weight, m)
     w = weight_root(q)
     steady = np.hstack([np.eye(n) - a_, -b_])
     fit = np.hstack([c_, np.zeros((pz, m))])
@@ -209,6 +234,15 @@ def target_problem(
     solve = scipy.linalg.pinv(w @ fit @ null)  # (k, pz)
     setpoint_map = null @ solve @ w
     disturbance_map = particular - setpoint_map @ (dz + fit @ particular)
+    target_map = np.zeros((n + m, m))
+    if np.any(s_in):
+        spare = null @ scipy.linalg.null_space(w @ fit @ null)  # N N2: (n+m, k2), orthonormal columns
+        if spare.shape[1]:
+            v = weight_root(s_in)
+            pull = spare @ scipy.linalg.pinv(v @ spare[n:]) @ v  # N N2 (V J N N2)^+ V, (n+m, m)
+            target_map = pull
+            setpoint_map = setpoint_map - pull @ setpoint_map[n:]
+            disturbance_map = disturbance_map - pull @ disturbance_map[n:]
     output_setpoint_map = fit @ setpoint_map
     output_disturbance_map = fit @ disturbance_map + dz
     full = np.vstack([steady, fit])
@@ -231,11 +265,16 @@ def target_problem(
         output_setpoint_map=output_setpoint_map,
         output_disturbance_map=output_disturbance_map,
         every_setpoint_reachable=reach,
+        input_weight=s_in,
+        input_target_map=target_map,
     )
 
 
 def steady_state_target(
-    problem: TargetProblem, setpoint: ArrayLike, disturbance: ArrayLike | None = None
+    problem: TargetProblem,
+    setpoint: ArrayLike,
+    disturbance: ArrayLike | None = None,
+    input_target: ArrayLike | None = None,
 ) -> SteadyStateTarget:
     """Return the target for a setpoint and a disturbance estimate.
 
@@ -246,6 +285,9 @@ def steady_state_target(
         ``r``.
     disturbance : array_like, shape (nd,), optional
         ``d``, the disturbance estimate (default zero).
+    input_target : array_like, shape (m,), optional
+        ``u_t``, the input targets (default zero: the model's origin); they matter only with
+        the problem's input weight.
 
     Returns
     -------
@@ -266,6 +308,8 @@ def steady_state_target(
     d = np.zeros(nd) if disturbance is None else np.asarray(disturbance, dtype=float)
     n = problem.state_size
     xu = problem.setpoint_map @ r + problem.disturbance_map @ d
+    if input_target is not None:
+        xu = xu + problem.input_target_map @ np.asarray(input_target, dtype=float)
     output = problem.c @ xu[:n] + problem.disturbance_output @ d
     offset = output - r
     scale = max(1.0, float(np.abs(r).max(initial=0.0)), float(np.abs(d).max(initial=0.0)))

@@ -9,6 +9,7 @@ One step ``k = 0 .. steps-1`` of :func:`simulate_loop` (the plant may differ fro
     free     = Fx_aug x(k|k) + Fu u(k-1) [+ Fd d_m(k)]     free prediction (loop.py)
     E        = (1 (x) I_p) z_s(k) - free
     du(k)    = policy(error=E, free_prediction=free, previous_input=u(k-1), step=k).move
+               [+ target_input=u_s(k) with an input weight]
     u(k)     = u(k-1) + du(k)
     x(k+1)   = A_true x(k) + B_true (u(k) + d_in(k)) [+ Bd_true d_m(k)]
     x(k+1|k) = A_aug x(k|k) + B_aug u(k) [+ [Bd; 0] d_m(k)]
@@ -19,6 +20,13 @@ A^l Bd`` at steps ``Hw..Hp``, :func:`service.solver.design.feedforward.disturban
 the free prediction, so the unconstrained law is ``du = Kr r - Kx x - Ku u(k-1) - Kd d_m`` with
 ``Kd = Kh Fd``.  The steady-state target does not use ``d_m``: with a reachable setpoint its
 outputs are the setpoint whatever ``d_m`` is.
+
+With an input weight (``weights.input``) the target also takes the input targets ``u_t``
+(``Scenario.input_targets``, held over the run, or changed by ``input_target_changes``):
+``u_s(k) = U_r r(k) + U_d d(k|k) + U_t u_t(k)``, and the policy receives ``target_input=u_s(k)``,
+which its input penalty pulls towards (:mod:`service.solver.design.input_target`); the
+unconstrained move is ``du = Kh E + Kt0 (u_s - u(k-1))``.  Without an input weight the policy
+is called as before and the input targets play no part.
 
 Events hold from their step on: a setpoint change sets ``r``, an output (input) disturbance
 event sets the level of ``d_out`` (``d_in``) — each event replaces the previous level, it does
@@ -110,6 +118,8 @@ class MovePolicy(Protocol):
     - ``previous_input``, shape (m,): ``u(k-1)`` — what input-level and move limits need
       (``u(k+j) = u(k-1) + du(k) + ... + du(k+j)``).
     - ``step``: ``k``, the index of the simulated step (for logging or time-varying limits).
+    - ``target_input``, shape (m,), only when the design has an input weight: ``u_s(k)``, the
+      steady-state target's input that the input penalty pulls towards.
 
     A policy with state (a warm start) keeps it on itself; the loop builds no copy.
     Return a :class:`PolicyStep` with ``move`` of shape (m,) and finite values.
@@ -122,6 +132,7 @@ class MovePolicy(Protocol):
         free_prediction: NDArray[np.float64],
         previous_input: NDArray[np.float64],
         step: int,
+        target_input: NDArray[np.float64] | None = None,
     ) -> PolicyStep: ...
 
 
@@ -132,6 +143,8 @@ class TargetRule(Protocol):
 
         rule(setpoint=r, disturbance=d) -> (z_s, u_s)
 
+    With an input weight the loop also passes ``input_target=u_t(k)`` (shape (m,)).
+
     ``setpoint`` has shape (p,) (``r(k)``), ``disturbance`` shape (nd,) (the disturbance part
     of ``x(k|k)``; empty without a disturbance model), both in the design's signals; the rule
     returns the target outputs ``z_s`` (p,), which the controller tracks, and the target
@@ -140,21 +153,28 @@ class TargetRule(Protocol):
     """
 
     def __call__(
-        self, *, setpoint: NDArray[np.float64], disturbance: NDArray[np.float64]
+        self,
+        *,
+        setpoint: NDArray[np.float64],
+        disturbance: NDArray[np.float64],
+        input_target: NDArray[np.float64] | None = None,
     ) -> tuple[NDArray[np.float64], NDArray[np.float64]]: ...
 
 
 @dataclass(frozen=True)
 class UnconstrainedPolicy:
-    """The design's fixed law ``du(k) = Kh E`` (no limits); reports nothing.
+    """The design's fixed law ``du(k) = Kh E [+ Kt0 (u_s - u(k-1))]`` (no limits); reports nothing.
 
     Attributes
     ----------
     horizon_gain : ndarray, shape (m, Np*p)
         ``Kh`` (``ControllerDesign.gain.horizon``).
+    target_gain : ndarray, shape (m, m), optional
+        ``Kt0`` (``ControllerDesign.input_target_gain``) with an input weight.
     """
 
     horizon_gain: NDArray[np.float64]
+    target_gain: NDArray[np.float64] | None = None
 
     def __call__(
         self,
@@ -163,8 +183,13 @@ class UnconstrainedPolicy:
         free_prediction: NDArray[np.float64],
         previous_input: NDArray[np.float64],
         step: int,
+        target_input: NDArray[np.float64] | None = None,
     ) -> PolicyStep:
-        return PolicyStep(self.horizon_gain @ error)
+        move = self.horizon_gain @ error
+        if self.target_gain is not None:
+            assert target_input is not None, "a design with input targets needs target_input"
+            move = move + self.target_gain @ (target_input - previous_input)
+        return PolicyStep(move)
 
 
 @dataclass(frozen=True)
@@ -231,6 +256,10 @@ class Scenario:
         ``u(-1)`` (default zeros).
     initial_setpoint : ndarray, shape (p,), optional
         Setpoint before the first change (default ``C_true x(0)``).
+    input_targets : ndarray, shape (m,), optional
+        ``u_t`` before the first change (default zeros); used only with an input weight.
+    input_target_changes : sequence of Event
+        New input targets (m,), held from their step on.
     sample_time : float
         Time between steps (default 1); sets the ``time`` axis only.
     """
@@ -245,6 +274,8 @@ class Scenario:
     initial_state: NDArray[np.float64] | None = None
     initial_input: NDArray[np.float64] | None = None
     initial_setpoint: NDArray[np.float64] | None = None
+    input_targets: NDArray[np.float64] | None = None
+    input_target_changes: Sequence[Event] = ()
     sample_time: float = 1.0
 
 
@@ -388,7 +419,8 @@ def simulate_loop(
     assert bd.shape == (n, md) and bdt.shape == (nt, md), (bd.shape, bdt.shape)
     steps = int(scenario.steps)
     assert steps >= 1, steps
-    policy = UnconstrainedPolicy(loop.horizon_gain) if policy is None else policy
+    pulled = loop.design.input_target_gain is not None
+    policy = UnconstrainedPolicy(loop.horizon_gain, loop.design.input_target_gain) if policy is None else policy
 
     x0 = _vector(scenario.initial_state, n)
     xt0 = x0 if nt == n else np.zeros(nt)
@@ -398,6 +430,7 @@ def simulate_loop(
     d_out = _held(scenario.output_disturbances, steps, np.zeros(p))
     d_in = _held(scenario.input_disturbances, steps, np.zeros(m))
     d_meas = _held(scenario.measured_disturbances, steps, np.zeros(md))
+    u_targets = _held(scenario.input_target_changes, steps, _vector(scenario.input_targets, m))
     if md:
         pred = loop.design.prediction
         fd = disturbance_free_response(
@@ -417,6 +450,8 @@ def simulate_loop(
     target = loop.target
     targets_r = setpoints @ target.output_setpoint_map.T  # Z_r r(k), all steps at once
     target_inputs_r = setpoints @ target.setpoint_map[n:].T
+    if pulled:
+        target_inputs_r = target_inputs_r + u_targets @ target.input_target_map[n:].T  # + U_t u_t(k)
     z_d = target.output_disturbance_map
     u_d = target.disturbance_map[n:]
     use_d = nd > 0 and bool(np.any(z_d) or np.any(u_d))
@@ -443,7 +478,9 @@ def simulate_loop(
             y = ct @ x
             ym = y + offset[k]
             xf = x if full else xp + gain @ (ym - cy @ xp)
-            if target_rule is not None:
+            if target_rule is not None and pulled:
+                zs, us = target_rule(setpoint=setpoints[k], disturbance=xf[dsl], input_target=u_targets[k])
+            elif target_rule is not None:
                 zs, us = target_rule(setpoint=setpoints[k], disturbance=xf[dsl])
             else:
                 zs = targets_r[k]
@@ -456,7 +493,10 @@ def simulate_loop(
             if md:
                 free = free + fd @ d_meas[k]
             error = (zs - free.reshape(np_, p)).reshape(-1)  # (1 (x) I_p) z_s - free
-            result = policy(error=error, free_prediction=free, previous_input=u, step=k)
+            if pulled:
+                result = policy(error=error, free_prediction=free, previous_input=u, step=k, target_input=us)
+            else:
+                result = policy(error=error, free_prediction=free, previous_input=u, step=k)
             du = np.asarray(result.move, dtype=float)
             assert du.shape == (m,), du.shape
             u = u + du

@@ -63,6 +63,9 @@ class GainWhenFreePolicy:
     policy : ConstrainedPolicy
     horizon_gain : ndarray, shape (m, Np*p)
         ``Kh`` of the same design.
+    target_gain : ndarray, shape (m, m), optional
+        ``Kt0`` of the same design with an input weight: the move is then
+        ``Kh E + Kt0 (u_s - u(k-1))``.
 
     Notes
     -----
@@ -72,9 +75,15 @@ class GainWhenFreePolicy:
     the QP's own first move met.  The step's report is the QP's.
     """
 
-    def __init__(self, policy: ConstrainedPolicy, horizon_gain: NDArray[np.float64]) -> None:
+    def __init__(
+        self,
+        policy: ConstrainedPolicy,
+        horizon_gain: NDArray[np.float64],
+        target_gain: NDArray[np.float64] | None = None,
+    ) -> None:
         self.policy = policy
         self.horizon_gain = horizon_gain
+        self.target_gain = target_gain
 
     def __call__(
         self,
@@ -83,12 +92,22 @@ class GainWhenFreePolicy:
         free_prediction: NDArray[np.float64],
         previous_input: NDArray[np.float64],
         step: int,
+        target_input: NDArray[np.float64] | None = None,
     ) -> PolicyStep:
-        result = self.policy(error=error, free_prediction=free_prediction, previous_input=previous_input, step=step)
+        result = self.policy(
+            error=error,
+            free_prediction=free_prediction,
+            previous_input=previous_input,
+            step=step,
+            target_input=target_input,
+        )
         report = result.report
         if not isinstance(report, StepReport) or report.method != "unconstrained" or not report.solved:
             return result
         move = self.horizon_gain @ error
+        if self.target_gain is not None:
+            assert target_input is not None
+            move = move + self.target_gain @ (target_input - previous_input)
         lim = self.policy.limits
         u = previous_input + move
         slack = 10.0 * PRIMAL_TOLERANCE
@@ -144,10 +163,14 @@ class ReachableTargetRule:
         )
 
     def __call__(
-        self, *, setpoint: NDArray[np.float64], disturbance: NDArray[np.float64]
+        self,
+        *,
+        setpoint: NDArray[np.float64],
+        disturbance: NDArray[np.float64],
+        input_target: NDArray[np.float64] | None = None,
     ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-        """Return ``(z_s, u_s)`` of the nearest reachable steady state for ``r`` and ``d``."""
-        target = self.problem.solve(setpoint, disturbance if disturbance.size else None)
+        """Return ``(z_s, u_s)`` of the nearest reachable steady state for ``r``, ``d`` (and ``u_t``)."""
+        target = self.problem.solve(setpoint, disturbance if disturbance.size else None, input_target)
         self.statuses.append(target.status)
         self.reachable.append(target.reachable)
         if target.status != "unconstrained":
@@ -158,6 +181,8 @@ class ReachableTargetRule:
         if disturbance.size:
             output = output + maps.output_disturbance_map @ disturbance
             inputs = inputs + maps.disturbance_map[n:] @ disturbance
+        if input_target is not None:
+            inputs = inputs + maps.input_target_map[n:] @ input_target
         return output, inputs
 
 

@@ -134,9 +134,12 @@ class ConstrainedPolicy:
         free_prediction: NDArray[np.float64],
         previous_input: NDArray[np.float64],
         step: int,
+        target_input: NDArray[np.float64] | None = None,
     ) -> PolicyStep:
         """Return ``du(k)`` (the QP's first move, or zeros on a fallback) and the step's report."""
-        solution = self.qp.solve(error=error, free_prediction=free_prediction, previous_input=previous_input)
+        solution = self.qp.solve(
+            error=error, free_prediction=free_prediction, previous_input=previous_input, target_input=target_input
+        )
         m = self.limits.inputs
         move = solution.moves[:m].copy() if solution.solved else np.zeros(m)
         report = step_report(solution, applied_input=previous_input + move, limits=self.limits)

@@ -16,6 +16,8 @@ that is present, ::
 with the zone cost ``1/2 sum_ji w_j t_ji^2`` added to the objective (zones, below).
 
 ``H = G'QG + R`` and ``E`` are those of the unconstrained design (:mod:`service.solver.design.gain`);
+with an input weight ``H`` also holds the input-target term and the linear term gains
+``-P (u_s - u(k-1))`` (:mod:`service.solver.design.input_target`), ``u_s`` the step's target input;
 ``Zfree = Fx x(k) + Fu u(k-1)`` is the free prediction over the penalized steps ``Hw..Hp``.
 Without the slacks the cost is ``V`` of the design notes less a constant, so when no limit is
 active the solution is ``H^-1 G'QE`` and its first move is ``Kh E``.
@@ -206,6 +208,9 @@ class MoveQP:
     output_root : ndarray, shape (p, p)
         ``W`` with ``W'W = Q``.
     limits : Limits
+    input_pull : ndarray, shape (Hu*m, m), optional
+        ``P`` of the design's input-target term (``design.input_penalty.pull``); each step then
+        takes its ``target_input``.
     hard_outputs : bool, optional
         Treat the output limits as hard (no slacks; the step fails when they cannot hold).
         Default false: soft, exact-penalty outputs.
@@ -236,6 +241,7 @@ class MoveQP:
         weighted: NDArray[np.float64],
         output_root: NDArray[np.float64],
         limits: Limits,
+        input_pull: NDArray[np.float64] | None = None,
         hard_outputs: bool = False,
         zones: Zones | None = None,
         tolerance: float = PRIMAL_TOLERANCE,
@@ -250,6 +256,7 @@ class MoveQP:
         self._weighted = weighted
         self._root = output_root
         self._limits = limits
+        self._pull = input_pull
         self._m, self._p, self._hu = m, p, hu
         self._tolerance = tolerance
         assert warm_start in WARM_STARTS, warm_start
@@ -380,6 +387,7 @@ class MoveQP:
             weighted=design.weighted,
             output_root=design.output_root,
             limits=limits,
+            input_pull=None if design.input_penalty is None else design.input_penalty.pull,
             hard_outputs=hard_outputs,
             zones=zones,
             tolerance=tolerance,
@@ -472,6 +480,7 @@ class MoveQP:
         error: NDArray[np.float64],
         free_prediction: NDArray[np.float64],
         previous_input: NDArray[np.float64],
+        target_input: NDArray[np.float64] | None = None,
     ) -> MoveProblem:
         """Return one step's QP as plain arrays (for checking with another solver).
 
@@ -483,9 +492,15 @@ class MoveQP:
             ``Zfree = Fx x(k) + Fu u(k-1)``.
         previous_input : ndarray, shape (m,)
             ``u(k-1)``.
+        target_input : ndarray, shape (m,), optional
+            ``u_s``, the step's target input; required with ``input_pull``.
         """
         scaled = (error.reshape(-1, self._p) @ self._root.T).reshape(-1)  # Wbar E
-        linear = np.concatenate([-(self._weighted.T @ scaled), self._slack_weight])
+        gradient = self._weighted.T @ scaled
+        if self._pull is not None:
+            assert target_input is not None, "a QP with input targets needs target_input"
+            gradient = gradient + self._pull @ (target_input - previous_input)
+        linear = np.concatenate([-gradient, self._slack_weight])
         lower, upper = self._bounds(previous_input, free_prediction)
         return MoveProblem(self._full_hessian, linear, self._rows, lower, upper)
 
@@ -495,6 +510,7 @@ class MoveQP:
         error: NDArray[np.float64],
         free_prediction: NDArray[np.float64],
         previous_input: NDArray[np.float64],
+        target_input: NDArray[np.float64] | None = None,
     ) -> MoveSolution:
         """Solve one step's QP; never raises on a failed or infeasible solve.
 
@@ -511,7 +527,13 @@ class MoveQP:
         previous_input = np.asarray(previous_input, dtype=float)
         if not (np.isfinite(error).all() and np.isfinite(free_prediction).all() and np.isfinite(previous_input).all()):
             return self._failure("failed", 0)
-        qp = self.problem(error=error, free_prediction=free_prediction, previous_input=previous_input)
+        if target_input is not None:
+            target_input = np.asarray(target_input, dtype=float)
+            if not np.isfinite(target_input).all():
+                return self._failure("failed", 0)
+        qp = self.problem(
+            error=error, free_prediction=free_prediction, previous_input=previous_input, target_input=target_input
+        )
         nu = self._hu * self._m
         # The unconstrained optimum, by the design's factor: the answer whenever it is feasible.
         moves = self._hessian.solve(-qp.linear[:nu])

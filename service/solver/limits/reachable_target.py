@@ -22,7 +22,13 @@ taken in order (a lexicographic target calculation, common practice):
    the optimum because the fit is strictly convex in ``W F N c``).  Skipped when there is no
    such freedom.
 
-Only the limits' row bounds change with ``(r, d)``: both workspaces are set up once.
+With an input weight ``S`` (the target problem's, ``weights.input``) a stage comes between
+the two: the inputs nearest their targets, ``min |V (u_s - u_t)|^2`` (``V'V = S``) on the set
+where the fit is optimal, again a positive-semidefinite QP with the fit's level as equality
+rows; the least norm then holds both levels (the rows of an orthonormal basis of the row space
+of ``[V1'; V J N]``, ``J`` picking ``u_s``).  Input targets so act in the spare directions only.
+
+Only the limits' row bounds change with ``(r, d, u_t)``: every workspace is set up once.
 """
 
 from __future__ import annotations
@@ -134,16 +140,45 @@ class ReachableTargetProblem:
         self._fit_model = daqp.Model()
         self._fit_model.setup(self._seen.T @ self._seen, np.zeros(k), self._rows, *bounds)
         self._fit_model.settings = {"primal_tol": tolerance, "eta_prox": 1e-12, "iter_limit": 2000}
-        if rank < k:
+        self._input_model: daqp.Model | None = None
+        self._levels = self._visible  # the rows whose level the least norm keeps, (k, rank)
+        if np.any(problem.input_weight) and rank < k:
+            v = weight_root(problem.input_weight)
+            self._input_root = v
+            self._input_seen = v @ null[n:]  # V J N, (m, k)
             rows = np.ascontiguousarray(np.vstack([self._visible.T, self._rows]))
-            self._norm_sense = np.concatenate([np.full(rank, _EQUALITY), np.zeros(self._limited.size)]).astype(np.int32)
-            upper = np.concatenate([np.zeros(rank), bounds[0]])
-            lower = np.concatenate([np.zeros(rank), bounds[1]])
+            self._input_sense = np.concatenate([np.full(rank, _EQUALITY), np.zeros(self._limited.size)]).astype(
+                np.int32
+            )
+            self._input_model = daqp.Model()
+            self._input_model.setup(
+                self._input_seen.T @ self._input_seen,
+                np.zeros(k),
+                rows,
+                np.concatenate([np.zeros(rank), bounds[0]]),
+                np.concatenate([np.zeros(rank), bounds[1]]),
+                self._input_sense,
+            )
+            self._input_model.settings = {"primal_tol": tolerance, "eta_prox": 1e-12, "iter_limit": 2000}
+            stacked = np.vstack([self._visible.T, self._input_seen])
+            _, sv2, vt2 = scipy.linalg.svd(stacked, full_matrices=True)
+            both = int(np.count_nonzero(sv2 > max(stacked.shape) * np.finfo(float).eps * sv2.max(initial=0.0)))
+            self._levels = vt2[:both].T
+        levels = self._levels.shape[1]
+        if levels < k:
+            rows = np.ascontiguousarray(np.vstack([self._levels.T, self._rows]))
+            self._norm_sense = np.concatenate([np.full(levels, _EQUALITY), np.zeros(self._limited.size)]).astype(
+                np.int32
+            )
+            upper = np.concatenate([np.zeros(levels), bounds[0]])
+            lower = np.concatenate([np.zeros(levels), bounds[1]])
             self._norm_model = daqp.Model()
             self._norm_model.setup(np.eye(k), np.zeros(k), rows, upper, lower, self._norm_sense)
             self._norm_model.settings = {"primal_tol": tolerance, "eps_prox": 0.0, "iter_limit": 2000}
 
-    def solve(self, setpoint: ArrayLike, disturbance: ArrayLike | None = None) -> ReachableTarget:
+    def solve(
+        self, setpoint: ArrayLike, disturbance: ArrayLike | None = None, input_target: ArrayLike | None = None
+    ) -> ReachableTarget:
         """Return the nearest reachable steady state for a setpoint and disturbance estimate.
 
         Parameters
@@ -152,6 +187,8 @@ class ReachableTargetProblem:
             ``r``.
         disturbance : array_like, shape (nd,), optional
             ``d`` (default zero).
+        input_target : array_like, shape (m,), optional
+            ``u_t`` (default zero); used with the target problem's input weight.
 
         Returns
         -------
@@ -162,7 +199,8 @@ class ReachableTargetProblem:
         r = np.asarray(setpoint, dtype=float)
         nd = problem.disturbance_input.shape[1]
         d = np.zeros(nd) if disturbance is None else np.asarray(disturbance, dtype=float)
-        free = steady_state_target(problem, r, d)
+        ut = np.zeros(self._m) if input_target is None else np.asarray(input_target, dtype=float)
+        free = steady_state_target(problem, r, d, ut)
         if self._fit_model is None or self._inside(free.input):
             return self._target(np.concatenate([free.state, free.input]), r, d, True, "unconstrained")
 
@@ -172,8 +210,19 @@ class ReachableTargetProblem:
         upper = self._high[self._limited] - base[n:][self._limited]
         lower = self._low[self._limited] - base[n:][self._limited]
         c, status = _run(self._fit_model, -(self._seen.T @ residual), upper, lower, None)
-        if c is not None and self._norm_model is not None:
+        if c is not None and self._input_model is not None:
             level = self._visible.T @ c
+            pull = self._input_root @ (ut - base[n:])  # V (u_t - J P0 d)
+            c3, _ = _run(
+                self._input_model,
+                -(self._input_seen.T @ pull),
+                np.concatenate([level, upper]),
+                np.concatenate([level, lower]),
+                self._input_sense,
+            )
+            c = c3 if c3 is not None else c  # the fit's minimizer stays optimal for the outputs
+        if c is not None and self._norm_model is not None:
+            level = self._levels.T @ c
             c2, _ = _run(
                 self._norm_model,
                 np.zeros(self._k),

@@ -99,7 +99,8 @@ def unscale_gain(
     Returns
     -------
     PredictiveGain
-        ``Kh`` (m, Np*p), ``Kx`` (m, n), ``Ku`` (m, m), ``Kr`` (m, p) in engineering units.
+        ``Kh`` (m, Np*p), ``Kx`` (m, n), ``Ku`` (m, m), ``Kr`` (m, p) and ``Kt`` (m, m) in
+        engineering units.
     """
     su, sz = input_span[:, None], output_span[None, :]
     steps = gain.horizon.shape[1] // output_span.size
@@ -108,6 +109,7 @@ def unscale_gain(
         state=su * gain.state,
         previous_input=su * gain.previous_input / input_span[None, :],
         setpoint=su * gain.setpoint / sz,
+        input_target=None if gain.input_target is None else su * gain.input_target / input_span[None, :],
     )
 
 
