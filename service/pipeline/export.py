@@ -9,7 +9,8 @@ the controlled outputs), :func:`compute_export` (design, estimator and the law o
 
 Units.  The law is formed in the design's scaled signals and changed to engineering units by
 the spans (``law_in_units``): measurements and setpoints by the outputs' spans, measured
-disturbances by theirs, the manipulated variables by theirs; the law's state holds the
+disturbances by theirs, the manipulated variables and their input targets (with
+``weights.input``) by theirs; the law's state holds the
 model's states as they are, the disturbance estimates in their signal's units and the
 previous inputs in the inputs' units.  Signals are the model's own: when the model is
 written in deviations from an operating point, so are the law's inputs and outputs.
@@ -108,15 +109,6 @@ def _law_problems(request: DesignRequest, inputs: DesignInputs) -> list[FieldPro
                 "the fixed law). Use terminal 'none'",
             )
         )
-    if inputs.input_weight is not None:
-        problems.append(
-            FieldProblem(
-                pointer("weights", "input"),
-                "the law with input targets cannot be exported yet (the exported law has no input-target "
-                "inputs). Leave out weights.input to export; POST /design reports the law with its input-target "
-                "gain (gain.input_target)",
-            )
-        )
     if not np.array_equal(plant.c_measured, plant.c):
         problems.append(
             FieldProblem(
@@ -174,7 +166,7 @@ def compute_export(inputs: ExportInputs) -> ExportOutcome:
         law = law_in_units(
             scaled_law,
             state_span=np.concatenate([np.ones(estimator.state_size), _disturbance_spans(plant, estimator), su]),
-            signal_span=np.concatenate([sz, sz, sd]),
+            signal_span=np.concatenate([sz, sz, sd, su if scaled_law.targets else np.ones(0)]),
             input_span=su,
             measured_span=sz,
         )
@@ -188,14 +180,19 @@ def compute_export(inputs: ExportInputs) -> ExportOutcome:
     return ExportOutcome(design=outcome, estimator=estimator, law=law)
 
 
-def law_labels(plant: DiscretePlant, estimator: Estimator) -> LawLabels:
-    """Names of the law's inputs (``<tag>.measured``, ``<tag>.setpoint``, ``<tag>``), outputs and states."""
+def law_labels(plant: DiscretePlant, estimator: Estimator, *, targets: bool = False) -> LawLabels:
+    """Names of the law's inputs (``<tag>.measured``, ``<tag>.setpoint``, ``<tag>.measured_disturbance``,
+    ``<tag>.target`` with input targets), outputs and states."""
     inputs = [LawSignal(name=f"{s.name}.measured", role="measured", tag=s.name, unit=s.unit) for s in plant.outputs]
     inputs += [LawSignal(name=f"{s.name}.setpoint", role="setpoint", tag=s.name, unit=s.unit) for s in plant.outputs]
     inputs += [
         LawSignal(name=f"{s.name}.measured_disturbance", role="measured_disturbance", tag=s.name, unit=s.unit)
         for s in plant.disturbances
     ]
+    if targets:
+        inputs += [
+            LawSignal(name=f"{s.name}.target", role="input_target", tag=s.name, unit=s.unit) for s in plant.inputs
+        ]
     outputs = [LawSignal(name=s.name, role="input", tag=s.name, unit=s.unit) for s in plant.inputs]
     outputs += [LawSignal(name=f"{s.name}.move", role="move", tag=s.name, unit=s.unit) for s in plant.inputs]
     states = [f"{label}.estimate" for label in plant.state_labels]
@@ -274,7 +271,7 @@ def export_response(request: ExportRequest, inputs: ExportInputs, outcome: Expor
     """Turn the law into the ``state_space`` answer."""
     plant = inputs.design.plant
     law = outcome.law
-    labels = law_labels(plant, outcome.estimator)
+    labels = law_labels(plant, outcome.estimator, targets=outcome.law.targets > 0)
     system = law.system
     states = labels.states
     columns = [s.name for s in labels.inputs]
@@ -315,7 +312,7 @@ def export_response(request: ExportRequest, inputs: ExportInputs, outcome: Expor
 def block_source(request: ExportRequest, inputs: ExportInputs, outcome: ExportOutcome, *, generated: str) -> str:
     """The law as an IEC 61131-3 function block (:mod:`service.pipeline.structured_text`)."""
     plant = inputs.design.plant
-    labels = law_labels(plant, outcome.estimator)
+    labels = law_labels(plant, outcome.estimator, targets=outcome.law.targets > 0)
     est = outcome.estimator
     limits = inputs.design.limits
     return structured_text(

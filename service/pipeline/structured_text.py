@@ -173,13 +173,15 @@ def structured_text(
     measured = [names.take(st_identifier(sig.tag)) for sig in inputs[:p]]
     quality = [names.take(f"{name}_ok") for name in measured]
     setpoint = [names.take(f"{st_identifier(sig.tag)}_sp") for sig in inputs[p : 2 * p]]
-    disturbance = [names.take(st_identifier(sig.tag)) for sig in inputs[2 * p :]]
+    md = law.disturbances
+    disturbance = [names.take(st_identifier(sig.tag)) for sig in inputs[2 * p : 2 * p + md]]
+    target = [names.take(f"{st_identifier(sig.tag)}_target") for sig in inputs[2 * p + md :]]
     manipulated = [names.take(st_identifier(sig.tag)) for sig in outputs[:m]]
     move = [names.take(f"{name}_move") for name in manipulated]
     low = {j: names.take(f"{manipulated[j]}_min") for j in range(m) if np.isfinite(lo[j])}
     high = {j: names.take(f"{manipulated[j]}_max") for j in range(m) if np.isfinite(hi[j])}
     step = {j: names.take(f"{manipulated[j]}_move_max") for j in range(m) if np.isfinite(dmax[j])}
-    signal = [*y, *setpoint, *disturbance]
+    signal = [*y, *setpoint, *disturbance, *target]
 
     def unit(sig: LawSignal) -> str:
         return f" [{sig.unit}]" if sig.unit else ""
@@ -206,8 +208,10 @@ def structured_text(
         head.append(f"     {name} = measured {_comment(sig.tag)}{_comment(unit(sig))}")
     for name, sig in zip(setpoint, inputs[p : 2 * p], strict=True):
         head.append(f"     {name} = setpoint of {_comment(sig.tag)}{_comment(unit(sig))}")
-    for name, sig in zip(disturbance, inputs[2 * p :], strict=True):
+    for name, sig in zip(disturbance, inputs[2 * p : 2 * p + md], strict=True):
         head.append(f"     {name} = measured disturbance {_comment(sig.tag)}{_comment(unit(sig))}")
+    for name, sig in zip(target, inputs[2 * p + md :], strict=True):
+        head.append(f"     {name} = input target of {_comment(sig.tag)}{_comment(unit(sig))}")
     for name, sig in zip(manipulated, outputs[:m], strict=True):
         head.append(f"     {name} = manipulated variable {_comment(sig.tag)}{_comment(unit(sig))}")
     head += [
@@ -234,8 +238,10 @@ def structured_text(
         decl.append(f"    {ok} : BOOL := TRUE; (* FALSE while {name} is bad *)")
     for name, sig in zip(setpoint, inputs[p : 2 * p], strict=True):
         decl.append(f"    {name} : LREAL; (* setpoint of {_comment(sig.tag)}{_comment(unit(sig))} *)")
-    for name, sig in zip(disturbance, inputs[2 * p :], strict=True):
+    for name, sig in zip(disturbance, inputs[2 * p : 2 * p + md], strict=True):
         decl.append(f"    {name} : LREAL; (* measured disturbance {_comment(sig.tag)}{_comment(unit(sig))} *)")
+    for name, sig in zip(target, inputs[2 * p + md :], strict=True):
+        decl.append(f"    {name} : LREAL; (* input target of {_comment(sig.tag)}{_comment(unit(sig))} *)")
     decl += ["    reset : BOOL := FALSE; (* TRUE: every state back to zero before this call *)", "END_VAR"]
     decl.append("VAR_OUTPUT")
     for name, mv, sig in zip(manipulated, move, outputs[:m], strict=True):

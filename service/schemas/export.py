@@ -44,7 +44,8 @@ class LawSignal(ResponseModel):
 
     name: str = Field(description="Its column (row) name in the matrices.")
     role: str = Field(
-        description="Inputs: 'measured' (a measured output), 'setpoint' or 'measured_disturbance'; outputs: "
+        description="Inputs: 'measured' (a measured output), 'setpoint', 'measured_disturbance' or "
+        "'input_target' (the target of a manipulated variable, with weights.input); outputs: "
         "'input' (a manipulated variable) or 'move' (its change since the last sample)."
     )
     tag: str = Field(description="The model's tag it belongs to.")

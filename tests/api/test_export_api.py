@@ -74,10 +74,19 @@ def _three_valves():
     return body
 
 
+def _three_valves_with_targets():
+    body = _three_valves()
+    body["weights"]["input"] = [0.01, 0.02, 0.05]
+    body["scenario"]["input_targets"] = [0.0, 0.0, 1.0]
+    body["scenario"]["input_target_changes"] = [{"step": 90, "value": [0.2, -0.1, -0.5]}]
+    return body
+
+
 CASES = {
     "vessel, 20 % gain error, noise": _vessel,
     "transfer matrix: dead times, integrating level, measured flow, spans": _transfer_matrix,
     "three valves for two outputs": _three_valves,
+    "three valves with input targets": _three_valves_with_targets,
 }
 
 
@@ -94,8 +103,23 @@ def _run(client, body):
     return sim.json(), law.json()
 
 
-def _signals(sim):
-    return np.hstack([np.array(sim["measured"]), np.array(sim["setpoints"]), np.array(sim["measured_disturbances"])])
+def _input_targets(body, steps):
+    """The scenario's input targets held step by step (none without weights.input)."""
+    sc = body.get("scenario", {})
+    if not body["weights"].get("input"):
+        return np.zeros((steps, 0))
+    m = len(body["model"]["inputs"])
+    out = np.tile(np.asarray(sc.get("input_targets") or np.zeros(m), dtype=float), (steps, 1))
+    for change in sorted(sc.get("input_target_changes", []), key=lambda e: e["step"]):
+        out[change["step"] :] = change["value"]
+    return out
+
+
+def _signals(sim, body=None):
+    w = [np.array(sim["measured"]), np.array(sim["setpoints"]), np.array(sim["measured_disturbances"])]
+    if body is not None:
+        w.append(_input_targets(body, len(w[0])))
+    return np.hstack(w)
 
 
 def _matrix(law, name):
@@ -104,8 +128,9 @@ def _matrix(law, name):
 
 @pytest.mark.parametrize("case", CASES)
 def test_the_exported_law_run_by_scipy_gives_simulate_s_inputs(client, case):
-    sim, law = _run(client, CASES[case]())
-    w = _signals(sim)
+    body = CASES[case]()
+    sim, law = _run(client, body)
+    w = _signals(sim, body)
     assert [s["name"] for s in law["inputs"]] == [*law["d"]["columns"]]
     assert w.shape[1] == len(law["inputs"])
     system = tuple(_matrix(law, k) for k in "abcd")
@@ -186,6 +211,9 @@ def _call_inputs(body, w, k, good=None):
         args[_identifier(tag) + "_OK"] = True if good is None else bool(good[i])
     for i, tag in enumerate(disturbances):
         args[_identifier(tag)] = float(w[k, 2 * p + i])
+    if body["weights"].get("input"):
+        for j, sig in enumerate(model["inputs"]):
+            args[_identifier(sig["name"]) + "_TARGET"] = float(w[k, 2 * p + len(disturbances) + j])
     return args
 
 
@@ -195,7 +223,7 @@ def test_the_structured_text_interpreted_call_by_call_gives_simulate_s_inputs(cl
     sim = client.post("/simulate", json=body).json()
     text = _block(client, body)
     block = FunctionBlock(text)  # parses and checks, or raises
-    w = _signals(sim)
+    w = _signals(sim, body)
     tags = [s["name"] for s in body["model"]["inputs"]]
     u = np.array(sim["inputs"])
     got = np.array(

@@ -151,8 +151,33 @@ def test_bad_input_weights_and_targets_are_422_naming_the_field(client):
     assert "/scenario/input_target_changes/0/step" in found
 
 
-def test_export_refuses_input_targets_naming_the_field(client):
+def test_export_takes_the_input_targets_as_inputs_of_the_law(client):
+    # The law run against /simulate is in tests/api/test_export_api.py ("three valves with
+    # input targets"); here the labels and the gain on the targets.
     request = copy.deepcopy(COLUMN)
     request["format"] = "state_space"
-    found = _problems(client.post("/design/export", json=request))
-    assert "input targets" in found["/weights/input"]
+    law = client.post("/design/export", json=request).json()
+    names = [s["name"] for s in law["inputs"]]
+    assert names[-3:] == ["reflux.target", "boilup.target", "feed_preheat.target"]
+    assert [s["role"] for s in law["inputs"][-3:]] == ["input_target"] * 3
+    d = np.array(law["d"]["values"])
+    assert np.any(d[:3, -3:])  # the targets move the inputs
+
+
+def test_loose_limits_with_blocked_moves_leave_the_run_as_it_is(client):
+    # The move QP with the input pull (blocked moves take their own QP set-up): with limits that
+    # never bind it answers the unconstrained optimum, so the run equals the run without limits
+    # (the same cost; common practice).
+    request = copy.deepcopy(COLUMN)
+    request["horizons"] = {"prediction": 20, "control": 4, "move_steps": [0, 2]}
+    request["scenario"] = {
+        "steps": 120,
+        "setpoint_changes": [{"step": 5, "setpoint": [1.0, -0.5]}],
+        "input_targets": [0.5, -0.2, 1.0],
+    }
+    free = client.post("/simulate", json=request).json()
+    request["limits"] = {"input_min": [-100.0] * 3, "input_max": [100.0] * 3, "move_max": [50.0] * 3}
+    limited = client.post("/simulate", json=request)
+    assert limited.status_code == 200, limited.text
+    np.testing.assert_allclose(np.array(limited.json()["inputs"]), np.array(free["inputs"]), rtol=0, atol=1e-9)
+    assert np.abs(np.array(free["outputs"])[-1] - [1.0, -0.5]).max() < 1e-6

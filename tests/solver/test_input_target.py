@@ -241,8 +241,8 @@ def test_qp_with_inactive_limits_is_the_unconstrained_law_and_target_keeps_limit
 
 @pytest.mark.parametrize("kind", ["per_output", "output_disturbance"])
 def test_fixed_law_with_input_weight_gives_the_run_s_inputs(kind):
-    # Reference: scipy.signal.dlsim of the fixed law (input targets at the origin) driven by the
-    # run's measurements and setpoints must give the run's inputs (20 % gain error, noise).
+    # Reference: scipy.signal.dlsim of the fixed law driven by the run's measurements, setpoints
+    # and input targets must give the run's inputs (20 % gain error, noise).
     import scipy.signal
 
     from service.solver.estimation.fixed_law import fixed_law
@@ -255,8 +255,15 @@ def test_fixed_law_with_input_weight_gives_the_run_s_inputs(kind):
         output_disturbances=[Event(60, np.array([0.2, 0.1]))],
         noise_std=np.array([0.01, 0.02]),
         seed=4,
+        input_targets=np.array([0.5, -0.2, 1.0]),
+        input_target_changes=[Event(80, np.array([0.0, 0.3, -0.4]))],
     )
     run = simulate_loop(d, est, scenario, plant=TruePlant(A, 1.2 * B, C))
-    sys = fixed_law(d, est).system
-    _, v, _ = scipy.signal.dlsim((sys.a, sys.b, sys.c, sys.d, 1.0), np.hstack([run.measured, run.setpoints]))
+    law = fixed_law(d, est)
+    assert law.targets == 3
+    targets = np.tile([0.5, -0.2, 1.0], (120, 1))
+    targets[80:] = [0.0, 0.3, -0.4]
+    sys = law.system
+    w = np.hstack([run.measured, run.setpoints, targets])
+    _, v, _ = scipy.signal.dlsim((sys.a, sys.b, sys.c, sys.d, 1.0), w)
     np.testing.assert_allclose(v[:, :3], run.inputs, rtol=0, atol=1e-10 * np.abs(run.inputs).max())

@@ -5,19 +5,22 @@ step of the loop (:mod:`service.solver.evaluation.simulation`), with ``x(k|k-1)`
 prior estimate (plant states and disturbance estimate) and ``u(k-1)`` the last input ::
 
     x(k|k)   = M x(k|k-1) + L y(k),               M = I - L Cy
-    u(k)     = (I - Ku) u(k-1) - K x(k|k) + Kr r(k) - Kd dm(k)
+    u(k)     = (I - Ku) u(k-1) - K x(k|k) + Kr r(k) - Kd dm(k) [+ Kt u_t(k)]
     x(k+1|k) = A_a x(k|k) + B_a u(k) + Bd_a dm(k)
 
 ``K = Kh (Fx_a - (1 (x) I_p) Z_d S)`` is the feedback on the augmented estimate of
 :func:`service.solver.estimation.realization.estimate_feedback_gain`, ``Kr = Kh (1 (x) Z_r)``
 the setpoint gain through the steady-state target's setpoint map ``Z_r`` (the identity for a
 reachable setpoint), ``Kd = Kh Fd`` the feed-forward gain on the measured disturbances
-(:mod:`service.solver.design.feedforward`).  On the law's state ``s = [x(k|k-1); u(k-1)]``
-and its inputs ``w = [y; r; dm]`` (substitution) ::
+(:mod:`service.solver.design.feedforward`).  With an input weight (input targets,
+:mod:`service.solver.design.input_target`) ``Ku`` includes ``Kt0``, ``K`` and ``Kr`` the
+target's input maps (``- Kt0 U_d S`` and ``+ Kt0 U_r``), and the input targets ``u_t`` are
+inputs of the law through ``Kt = Kt0 U_t``.  On the law's state ``s = [x(k|k-1); u(k-1)]``
+and its inputs ``w = [y; r; dm; u_t]`` (``u_t`` only with an input weight; substitution) ::
 
-    u(k)   = Cu s + Du w,        Cu = [-K M, I - Ku],   Du = [-K L, Kr, -Kd]
+    u(k)   = Cu s + Du w,        Cu = [-K M, I - Ku],   Du = [-K L, Kr, -Kd, Kt]
     s(k+1) = Ap s + Bp w + Bu u(k)
-    Ap = [[A_a M, 0], [0, 0]],   Bp = [[A_a L, 0, Bd_a], [0, 0, 0]],   Bu = [B_a; I]
+    Ap = [[A_a M, 0], [0, 0]],   Bp = [[A_a L, 0, Bd_a, 0], [0, 0, 0, 0]],   Bu = [B_a; I]
 
 The *split form* ``(Ap, Bp, Bu)`` lets a control system feed back the input it really
 applied (after clamping to limits), so that the estimator and ``u(k-1)`` stay true to the
@@ -60,7 +63,8 @@ class FixedLaw:
     input_state : ndarray, shape (m, ns)
         ``Cu``: ``u(k) = Cu s + Du w``; ``ns = na + m``.
     input_direct : ndarray, shape (m, nw)
-        ``Du``; ``nw = 2 p + md`` (measurements, setpoints, measured disturbances).
+        ``Du``; ``nw = 2 p + md + mt`` (measurements, setpoints, measured disturbances, input
+        targets).
     state_update : ndarray, shape (ns, ns)
         ``Ap``.
     signal_update : ndarray, shape (ns, nw)
@@ -71,6 +75,8 @@ class FixedLaw:
         ``[Cy, 0]``: the estimator's prediction ``y(k|k-1)`` of the measurements.
     measured, setpoints, disturbances, estimates : int
         ``p``, ``p``, ``md`` inputs; ``na`` estimator states (then ``m`` previous inputs).
+    targets : int
+        ``mt``: ``m`` input-target inputs with an input weight, else 0.
     """
 
     input_state: NDArray[np.float64]
@@ -83,6 +89,7 @@ class FixedLaw:
     setpoints: int
     disturbances: int
     estimates: int
+    targets: int = 0
 
     @property
     def inputs(self) -> int:
@@ -116,7 +123,8 @@ def fixed_law(
         Without a terminal weight (its setpoint path is not part of this law).  With an input
         weight the input targets are held at the model's origin (``u_t = 0``).
     estimator : Estimator
-        Of the same model, not ``full_state`` (the law reads measured outputs).
+        Of the same model, not ``full_state`` (the law reads measured outputs).  With an
+        input weight the law also takes the input targets ``u_t`` (its last ``m`` inputs).
     b_disturbance : ndarray, shape (n, md), optional
         The model's measured-disturbance matrix ``Bd`` in the design's signals.
 
@@ -138,8 +146,13 @@ def fixed_law(
     feedback = estimate_feedback_gain(design, estimator)  # K, (m, na)
     target = estimator_target(design, estimator)
     setpoint_gain = kh @ np.tile(target.output_setpoint_map, (pred.penalized_steps, 1))  # Kh (1 (x) Z_r)
-    if design.input_target_gain is not None:  # input targets held at the origin: u_s = U_r r + U_d d
-        setpoint_gain = setpoint_gain + design.input_target_gain @ target.setpoint_map[estimator.state_size :]
+    kt0 = design.input_target_gain
+    n = estimator.state_size
+    target_gain = np.zeros((m, 0))
+    if kt0 is not None:  # u_s = U_r r + U_d d + U_t u_t; U_d is in K already
+        setpoint_gain = setpoint_gain + kt0 @ target.setpoint_map[n:]
+        target_gain = kt0 @ target.input_target_map[n:]
+    mt = target_gain.shape[1]
     if md:
         fd = disturbance_free_response(
             estimator.a,
@@ -154,13 +167,13 @@ def fixed_law(
     lg, cy = estimator.gain, estimator.c_measured
     update = np.eye(na) - lg @ cy  # M
     cu = np.hstack([-feedback @ update, np.eye(m) - design.gain.previous_input])
-    du = np.hstack([-feedback @ lg, setpoint_gain, -feedforward])
-    ns, nw = na + m, 2 * p + md
+    du = np.hstack([-feedback @ lg, setpoint_gain, -feedforward, target_gain])
+    ns, nw = na + m, 2 * p + md + mt
     ap = np.zeros((ns, ns))
     ap[:na, :na] = estimator.a @ update
     bp = np.zeros((ns, nw))
     bp[:na, :p] = estimator.a @ lg
-    bp[:na, 2 * p :] = bda
+    bp[:na, 2 * p : 2 * p + md] = bda
     bu = np.vstack([estimator.b, np.eye(m)])
     prediction = np.hstack([cy, np.zeros((p, m))])
     return FixedLaw(
@@ -174,6 +187,7 @@ def fixed_law(
         setpoints=p,
         disturbances=md,
         estimates=na,
+        targets=mt,
     )
 
 
@@ -219,4 +233,5 @@ def law_in_units(
         setpoints=law.setpoints,
         disturbances=law.disturbances,
         estimates=law.estimates,
+        targets=law.targets,
     )
