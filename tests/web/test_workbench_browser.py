@@ -198,6 +198,15 @@ def test_every_bundled_example_runs_and_every_chart_is_drawn(workbench, server):
             chosen = request["design"]["weights"]["move"][request["signal"]]
             assert first[1]["name"] == "chosen value" and first[1]["x"] == [chosen]
             assert page.locator("#sweep-entries tr.chosen td").first.inner_text() == str(chosen)
+        if name == "simulate_request_column.json":
+            # the sump level's chart draws its zone band at the edges the answer reports
+            answer = server.post("/simulate", load_example(name)).json()
+            zone = answer["zones"][0]
+            j = answer["columns"]["outputs"].index(zone["output"])
+            traces = {t["name"]: t for t in drawn_points(page, f"#response-output-{j}")}
+            low, high = traces["zone low"], traces["zone high"]
+            assert low["line"] and high["line"]
+            assert set(low["y"]) == {zone["low"]} and set(high["y"]) == {zone["high"]}
         if name == "design_request_robustness.json":
             answer = server.post("/design", load_example(name)).json()
             block = answer["robustness"]["plant_output"]
@@ -407,3 +416,36 @@ def test_the_law_downloads_for_the_control_system(workbench, server):
     assert "FUNCTION_BLOCK" in text
     law = json.loads(download(page, "download-law-ss"))
     assert law == server.post("/design/export", {**request, "format": "state_space"}).json()
+
+
+def test_marginal_modes_are_marked_on_the_pole_map_and_named_in_words(workbench, server):
+    # Two outputs, three inputs and no input weight: the spare input direction leaves a
+    # closed-loop pole at z = 1 (the marginal mode of cause free_input_direction, as the
+    # service's own answer lists it).  The pole map marks exactly those poles.
+    page = workbench
+    request = {
+        "model": {
+            "kind": "state_space",
+            "sample_time": 1.0,
+            "a": [[0.8, 0.0], [0.0, 0.7]],
+            "b": [[1.0, 0.5, 0.2], [0.3, 1.0, 0.4]],
+            "c": [[1.0, 0.0], [0.0, 1.0]],
+        },
+        "horizons": {"prediction": 20, "control": 3},
+        "weights": {"output": [1.0, 1.0], "move": [0.1, 0.1, 0.1]},
+    }
+    answer = server.post("/design", request).json()
+    modes = answer["closed_loop"]["marginal_modes"]
+    assert modes and {m["cause"] for m in modes} == {"free_input_direction"}
+    page.fill("#request-text", json.dumps(request))
+    page.select_option("#endpoint", "design")
+    page.get_by_test_id("run").click()
+    page.wait_for_function(
+        "document.getElementById('status').textContent.includes('answered') || !document.getElementById('errors').hidden",
+        timeout=60_000,
+    )
+    traces = {t["name"].split(" (")[0]: t for t in drawn_points(page, "[data-testid=pole-map]")}
+    marked = traces["marginal mode"]
+    assert marked["marks"] == len(modes)
+    assert marked["x"] == [m["pole"]["real"] for m in modes] and marked["y"] == [m["pole"]["imag"] for m in modes]
+    assert "free_input_direction" in page.locator("#marginal").inner_text()
