@@ -315,3 +315,28 @@ export function drawSweep(container, answer, request) {
   });
   return { drawn, chosen, isChosen };
 }
+
+/** The fitted unit-step responses of /identify: one chart per output, one line per input. */
+export function drawStepResponses(container, steps) {
+  container.replaceChildren();
+  const palette = [COLOURS.blue, COLOURS.orange, COLOURS.green, COLOURS.vermillion, COLOURS.purple, COLOURS.sky];
+  const dashes = ["solid", "dash", "dot", "dashdot", "longdash", "longdashdot"];
+  const outputs = [...new Set(steps.map((s) => s.output))];
+  const drawn = [];
+  outputs.forEach((output, i) => {
+    const div = chartBox(container, {
+      id: `step-${i}`, testid: "step-chart", label: `Fitted step responses of ${output}`, filename: `step-${output}`,
+    });
+    const traces = steps.filter((s) => s.output === output).map((s, j) => ({
+      type: "scatter", mode: "lines", name: `step of ${s.input}`, x: s.time, y: s.value,
+      line: { color: palette[j % palette.length], dash: dashes[j % dashes.length], width: 2 },
+      hovertemplate: `${output} per unit ${s.input}<br>t %{x:.4g}<br>%{y:.5g}<extra></extra>`,
+    }));
+    window.Plotly.react(div, traces, baseLayout(`${output}: fitted unit-step responses`, {
+      xaxis: { title: { text: "time after the step" } },
+      yaxis: { title: { text: `${output} per unit input` } },
+    }), config(div.dataset.filename));
+    drawn.push(div);
+  });
+  return drawn;
+}

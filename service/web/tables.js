@@ -69,7 +69,7 @@ export function recordTable({ id, caption, columns, records, highlight = () => f
     if (highlight(record)) tr.classList.add("chosen");
     for (const [, get] of columns) {
       const v = get(record);
-      const td = element("td", {}, typeof v === "number" ? fmt(v) : v ?? "—");
+      const td = element("td", typeof v === "number" ? { "data-value": String(v) } : {}, typeof v === "number" ? fmt(v) : v ?? "—");
       if (typeof v !== "number") td.style.textAlign = "left";
       tr.append(td);
     }

@@ -2,12 +2,12 @@
 // Every URL is relative to the page, so the page works at the root and under a prefix.
 
 import { Editor, prettyJson, syntaxErrorOffset } from "./editor.js";
-import { drawPoleMap, drawResponses, drawRobustness, drawSweep, saveImage } from "./charts.js";
+import { drawPoleMap, drawResponses, drawRobustness, drawStepResponses, drawSweep, saveImage } from "./charts.js";
 import { fmt, matrixTable, recordTable } from "./tables.js";
 
 const KEY_STORE = "movecast.api-key";
 const $ = (id) => document.getElementById(id);
-const state = { request: null, answer: null, endpoint: null, examples: [] };
+const state = { request: null, answer: null, endpoint: null, examples: [], csv: null };
 const editor = new Editor($("request-text"), $("field-notes"));
 const authRequired = document.querySelector('meta[name="movecast-auth"]')?.content === "required";
 
@@ -36,6 +36,7 @@ function guessEndpoint(body) {
   if (body && typeof body === "object") {
     if (body.parameter !== undefined && body.design !== undefined) return "design/sweep";
     if (body.scenario !== undefined) return "simulate";
+    if (body.data !== undefined && body.inputs !== undefined && body.outputs !== undefined) return "identify";
   }
   return "design";
 }
@@ -83,6 +84,63 @@ $("upload").addEventListener("change", async (event) => {
     showSyntaxError(text, error);
   }
 });
+
+// ---- a plant test as CSV -------------------------------------------------------------
+
+/** The tags of a CSV's header row (the first column is the time). */
+export function csvTags(text) {
+  const header = (text.split(/\r?\n/, 1)[0] || "").replace(/^\uFEFF/, "");
+  return header.split(",").map((t) => t.trim().replace(/^"|"$/g, "")).filter(Boolean).slice(1);
+}
+
+$("upload-csv").addEventListener("change", async (event) => {
+  const file = event.target.files?.[0];
+  if (!file) return;
+  state.csv = await file.text();
+  const tags = csvTags(state.csv);
+  $("csv-name").textContent = file.name;
+  $("csv-columns").textContent = `Columns after the time: ${tags.join(", ") || "none"}. Name which are inputs and which are outputs.`;
+  if (!$("csv-inputs").value && tags.length > 1) $("csv-inputs").value = tags.slice(0, -1).join(",");
+  if (!$("csv-outputs").value && tags.length) $("csv-outputs").value = tags[tags.length - 1];
+  $("csv-options").hidden = false;
+  clearErrors();
+  setStatus(`Opened ${file.name}: ${tags.length} tags.`);
+});
+
+async function identifyCsv() {
+  if (!state.csv) return;
+  clearErrors();
+  const query = new URLSearchParams({
+    sample_time: $("csv-sample-time").value,
+    inputs: $("csv-inputs").value.trim(),
+    outputs: $("csv-outputs").value.trim(),
+    structure: $("csv-structure").value,
+  });
+  const h = headers();
+  h["Content-Type"] = "text/csv";
+  $("identify-csv").disabled = true;
+  setStatus("Running POST /identify/csv…");
+  const started = performance.now();
+  try {
+    const response = await fetch(url(`identify/csv?${query}`), { method: "POST", headers: h, body: state.csv });
+    const answer = await response.json().catch(() => null);
+    if (!response.ok) {
+      handleFailure(response, answer, "identify/csv");
+      return;
+    }
+    state.request = Object.fromEntries(query);
+    state.answer = answer;
+    state.endpoint = "identify/csv";
+    render("identify", answer, state.request);
+    setStatus(`POST /identify/csv answered in ${Math.round(performance.now() - started)} ms.`);
+  } catch (error) {
+    setStatus(`The service could not be reached: ${error.message}`);
+  } finally {
+    $("identify-csv").disabled = false;
+  }
+}
+
+$("identify-csv").addEventListener("click", identifyCsv);
 
 $("format").addEventListener("click", () => {
   try {
@@ -171,7 +229,7 @@ async function run() {
   }
 }
 
-function handleFailure(response, problem) {
+function handleFailure(response, problem, endpoint = $("endpoint").value) {
   const detail = problem?.detail || `The service answered ${response.status}.`;
   if (response.status === 401) {
     $("key-row").hidden = false;
@@ -183,7 +241,7 @@ function handleFailure(response, problem) {
   }
   const problems = Array.isArray(problem?.errors) ? problem.errors.map((e) => ({ pointer: e.pointer ?? "", detail: e.detail ?? "" })) : [];
   showProblems(detail, problems);
-  setStatus(`POST /${$("endpoint").value}: ${response.status} ${problem?.title || ""}`.trim());
+  setStatus(`POST /${endpoint}: ${response.status} ${problem?.title || ""}`.trim());
 }
 
 $("run").addEventListener("click", run);
@@ -195,9 +253,11 @@ function show(id, visible) {
 }
 
 function render(endpoint, answer, request) {
-  for (const id of ["summary", "poles", "responses", "robustness", "gains", "sweep", "downloads"]) show(id, false);
+  for (const id of ["summary", "poles", "responses", "robustness", "gains", "sweep", "identify", "downloads"]) show(id, false);
   if (endpoint === "design/sweep") {
     renderSweep(answer, request);
+  } else if (endpoint === "identify") {
+    renderIdentify(answer);
   } else {
     const design = endpoint === "simulate" ? answer.design : answer;
     if (design) renderDesign(design, answer);
@@ -205,6 +265,9 @@ function render(endpoint, answer, request) {
   }
   show("downloads", true);
   $("download-series").hidden = endpoint !== "simulate";
+  const law = endpoint === "design";
+  $("download-law-st").hidden = !law;
+  $("download-law-ss").hidden = !law;
 }
 
 function setFigure(id, value) {
@@ -375,6 +438,54 @@ function renderSweep(answer, request) {
   }));
 }
 
+function renderIdentify(answer) {
+  show("identify", true);
+  const fits = answer.fits || [];
+  const worst = Math.min(...fits.map((f) => f.estimation?.nrmse_fit_percent ?? 100));
+  $("identify-text").textContent = `${(answer.pairs || []).length} pair(s) fitted`
+    + (fits.length ? `; the poorest output fit is ${fmt(worst, 3)} % (NRMSE).` : ".")
+    + " Review the fit, the residuals and the warnings before designing with this model.";
+  const box = $("identify-tables");
+  box.replaceChildren();
+  const value = (pair, name) => pair.parameters.find((q) => q.name === name)?.estimate ?? null;
+  box.append(recordTable({
+    id: "identify-pairs", caption: "Fitted pairs",
+    columns: [["output", (r) => r.output], ["input", (r) => r.input], ["structure", (r) => r.structure], ["gain", (r) => value(r, "gain")],
+      ["time constant", (r) => value(r, "time_constant") ?? value(r, "time_constant_1")], ["dead time", (r) => value(r, "dead_time")]],
+    records: answer.pairs || [],
+  }));
+  box.append(recordTable({
+    id: "identify-fits", caption: "Fit per output",
+    columns: [["output", (f) => f.output], ["fit (NRMSE %)", (f) => f.estimation?.nrmse_fit_percent], ["R²", (f) => f.estimation?.r_squared],
+      ["validation fit (%)", (f) => f.validation?.nrmse_fit_percent ?? null], ["residual std", (f) => f.residual_std]],
+    records: fits,
+  }));
+  drawStepResponses($("step-charts"), answer.step_responses || []);
+  const list = $("warnings");
+  list.replaceChildren();
+  for (const w of answer.warnings || []) list.append(Object.assign(document.createElement("li"), { textContent: `${w.code}: ${w.message}` }));
+}
+
+/** A first /design request around a fitted model: unit weights, moderate horizons, to be tuned. */
+export function designRequestFor(model) {
+  const outputs = (model.outputs || []).length || (model.c || model.elements || []).length;
+  const inputs = (model.inputs || []).length || (model.b?.[0] || model.elements?.[0] || []).length;
+  return {
+    model,
+    horizons: { prediction: 60, control: 5 },
+    weights: { output: Array(outputs).fill(1.0), move: Array(inputs).fill(0.1) },
+  };
+}
+
+$("use-model").addEventListener("click", () => {
+  if (!state.answer?.model) return;
+  editor.text = prettyJson(designRequestFor(state.answer.model));
+  $("endpoint").value = "design";
+  clearErrors();
+  setStatus("The fitted model is in the editor as a design request (unit weights, horizons 60 and 5): tune it, then run.");
+  $("request-text").focus();
+});
+
 // ---- downloads -----------------------------------------------------------------------
 
 function download(name, type, text) {
@@ -407,6 +518,21 @@ export function seriesCsv(answer) {
 $("download-request").addEventListener("click", () => download("request.json", "application/json", `${JSON.stringify(state.request, null, 2)}\n`));
 $("download-answer").addEventListener("click", () => download(`answer-${state.endpoint.replace("/", "-")}.json`, "application/json", `${JSON.stringify(state.answer, null, 2)}\n`));
 $("download-series").addEventListener("click", () => download("series.csv", "text/csv", seriesCsv(state.answer)));
+
+async function exportLaw(format, name, type) {
+  const body = JSON.stringify({ ...state.request, format });
+  setStatus("Running POST /design/export…");
+  const response = await fetch(url("design/export"), { method: "POST", headers: { ...headers(), Accept: `${type}, application/problem+json` }, body });
+  if (!response.ok) {
+    handleFailure(response, await response.json().catch(() => null), "design/export");
+    return;
+  }
+  download(name, type, await response.text());
+  setStatus(`POST /design/export answered: ${name}.`);
+}
+
+$("download-law-st").addEventListener("click", () => exportLaw("structured_text", "law.st", "text/plain"));
+$("download-law-ss").addEventListener("click", () => exportLaw("state_space", "law.json", "application/json"));
 document.addEventListener("click", (event) => {
   const button = event.target.closest?.("button.save-image");
   if (button) saveImage($(button.dataset.chart));

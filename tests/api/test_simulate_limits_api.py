@@ -120,10 +120,11 @@ def test_limits_hold_at_every_step_and_soft_outputs_stay_within_the_reported_sla
     assert len(summary["signals"]) == 4 + 4 + 2  # input min/max, both move sides, two output bounds
 
 
-def test_wide_limits_give_exactly_the_unconstrained_trajectory(client):
+def test_wide_limits_give_the_unconstrained_trajectory(client):
     # The fixed gain is the special case of the QP (the design notes: without an active limit
     # the QP's minimizer is H^-1 G'QE, whose first move is Kh E): limits that never bind
-    # reproduce the run without limits bit for bit (the move is Kh E itself on such steps).
+    # reproduce the run without limits (the move is Kh E itself on such steps).  The run
+    # without limits is the fixed law's single linear recursion, so the two agree to rounding.
     scenario = {
         "setpoint_changes": [{"step": 5, "setpoint": [1.0, -0.5]}],
         "input_disturbances": [{"step": 60, "value": [0.1, -0.05]}],
@@ -140,7 +141,7 @@ def test_wide_limits_give_exactly_the_unconstrained_trajectory(client):
     free = post(client, request(steps=200, kind="output_disturbance", **scenario)).json()
     limited = post(client, request(steps=200, kind="output_disturbance", limits=wide, **scenario)).json()
     for key in ("inputs", "outputs", "measured", "estimates"):
-        assert limited[key] == free[key], key
+        np.testing.assert_allclose(limited[key], free[key], rtol=1e-11, atol=1e-13, err_msg=key)
     assert free["limits"] is None and free["limit_summary"] is None
     assert limited["limits"]["steps"] == []
     assert all(s["steps_at_limit"] == 0 for s in limited["limit_summary"]["signals"])

@@ -72,16 +72,18 @@ def test_the_target_rule_is_called_once_per_step_with_setpoint_and_disturbance_e
     assert len(rule.calls) == SCENARIO.steps
     for k, (setpoint, disturbance) in enumerate(rule.calls):
         np.testing.assert_array_equal(setpoint, default.setpoints[k])
-        np.testing.assert_array_equal(disturbance, default.disturbance_estimates[k])
+        # the default run is the fixed law's linear recursion, equal to the step loop to rounding
+        np.testing.assert_allclose(disturbance, default.disturbance_estimates[k], rtol=1e-12, atol=1e-14)
     np.testing.assert_allclose(ruled.inputs, default.inputs, rtol=1e-12, atol=1e-14)
     np.testing.assert_allclose(ruled.targets, default.targets, rtol=1e-12, atol=1e-14)
 
 
 @pytest.mark.parametrize("kind", ["full_state", "output_disturbance"])
-def test_limits_out_of_the_way_give_the_fixed_gain_run_bit_for_bit(rng, kind):
+def test_limits_out_of_the_way_give_the_fixed_gain_run(rng, kind):
     # The fixed gain is the special case of the constrained controller: with limits that
     # never bind, the policy applies Kh E itself and the target rule the loop's own maps, so
-    # the run is UnconstrainedPolicy's to the last bit.
+    # the run is UnconstrainedPolicy's.  That one runs as a single linear recursion (the
+    # products grouped once for all steps), so the two agree to rounding, not to the last bit.
     _, _, _, design, estimator = setup(rng, kind)
     loop = control_loop(design, estimator)
     wide = make_limits(M, P, input_min=-1e6, input_max=1e6, move_max=1e6, output_min=-1e6, output_max=1e6)
@@ -89,9 +91,12 @@ def test_limits_out_of_the_way_give_the_fixed_gain_run_bit_for_bit(rng, kind):
     policy = GainWhenFreePolicy(ConstrainedPolicy.from_design(design, wide), design.gain.horizon)
     rule = ReachableTargetRule.from_loop(loop, wide)
     limited = simulate_loop(design, estimator, SCENARIO, loop=loop, policy=policy, target_rule=rule)
-    np.testing.assert_array_equal(limited.inputs, free.inputs)
-    np.testing.assert_array_equal(limited.outputs, free.outputs)
-    np.testing.assert_array_equal(limited.estimates, free.estimates)
+    for got, want in (
+        (limited.inputs, free.inputs),
+        (limited.outputs, free.outputs),
+        (limited.estimates, free.estimates),
+    ):
+        np.testing.assert_allclose(got, want, rtol=1e-11, atol=1e-13)
     assert rule.statuses == ["unconstrained"] * SCENARIO.steps
 
 

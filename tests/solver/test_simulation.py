@@ -307,3 +307,61 @@ def test_with_fewer_inputs_than_outputs_the_loop_settles_on_the_nearest_reachabl
     np.testing.assert_allclose(sim.outputs[-1], g0 @ u_star + dist, atol=1e-8)
     np.testing.assert_allclose(sim.targets[-1], sim.outputs[-1], atol=1e-8)
     assert np.abs(sim.outputs[-1] - r).max() > 0.1
+
+
+class _StepByStep:
+    """``du = Kh E`` like UnconstrainedPolicy, but another type: the loop runs step by step."""
+
+    def __init__(self, horizon_gain):
+        self.horizon_gain = horizon_gain
+
+    def __call__(self, *, error, free_prediction, previous_input, step):
+        return PolicyStep(self.horizon_gain @ error)
+
+
+@pytest.mark.parametrize("kind", ["full_state", "output_disturbance", "input_disturbance"])
+@pytest.mark.parametrize("measured", [False, True])
+def test_the_fixed_law_recursion_equals_the_step_by_step_loop(rng, kind, measured):
+    # Reference: the module's step-by-step loop (the equations of one step, in order) with the
+    # same law Kh E; the fixed law's single linear recursion must give the same run to rounding,
+    # with noise, every kind of event, a true plant with 20 % gain error and measured disturbances.
+    n, m, p = 4, 2, 2
+    a, b, c = random_plant(rng, n, m, p, radius=0.9)
+    bd = rng.normal(size=(n, 1)) if measured else None
+    design = design_controller(a, b, c, output_weight=[1.0, 2.0], move_weight=[0.2, 0.1], prediction=20, control=3)
+    estimator = design_estimator(a, b, c, kind=kind)
+    scenario = Scenario(
+        steps=80,
+        setpoint_changes=[Event(2, np.array([1.0, -0.5]))],
+        output_disturbances=[Event(30, np.array([0.2, 0.1]))],
+        input_disturbances=[Event(45, np.array([-0.1, 0.05]))],
+        measured_disturbances=[Event(60, np.array([0.5]))] if measured else [],
+        noise_std=None if kind == "full_state" else np.array([0.01, 0.02]),
+        seed=3,
+        initial_input=np.array([0.1, -0.2]),
+    )
+    true = TruePlant(a, 1.2 * b, c, bd)
+    fast = simulate_loop(design, estimator, scenario, plant=true, b_disturbance=bd)
+    slow = simulate_loop(
+        design, estimator, scenario, plant=true, b_disturbance=bd, policy=_StepByStep(design.gain.horizon)
+    )
+    for name in ("outputs", "measured", "inputs", "moves", "targets", "target_inputs", "estimates", "states"):
+        np.testing.assert_allclose(getattr(fast, name), getattr(slow, name), rtol=1e-11, atol=1e-12, err_msg=name)
+    assert fast.diverged_at is None and slow.diverged_at is None
+
+
+def test_the_fixed_law_recursion_stops_where_the_step_loop_does(rng):
+    # A plant whose true gain has the wrong sign makes the loop grow without bound: both routes
+    # stop at the same step (the divergence limit on |x|^2, |x(k+1|k)|^2 and |u|^2) and leave
+    # the rows after it empty (NaN).
+    a, b, c = np.array([[1.1]]), np.array([[1.0]]), np.array([[1.0]])
+    design = design_controller(a, b, c, output_weight=[1.0], move_weight=[0.1], prediction=10, control=2)
+    estimator = design_estimator(a, b, c, kind="output_disturbance")
+    scenario = Scenario(steps=5000, setpoint_changes=[Event(1, np.array([1.0]))])
+    true = TruePlant(a, -b, c, None)
+    fast = simulate_loop(design, estimator, scenario, plant=true)
+    slow = simulate_loop(design, estimator, scenario, plant=true, policy=_StepByStep(design.gain.horizon))
+    assert slow.diverged_at is not None and fast.diverged_at == slow.diverged_at
+    rows = slow.diverged_at
+    assert np.isnan(fast.inputs[rows:]).all() and np.isfinite(fast.inputs[: rows - 1]).all()
+    np.testing.assert_allclose(fast.inputs[: rows - 20], slow.inputs[: rows - 20], rtol=1e-9)

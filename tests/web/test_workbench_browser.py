@@ -16,16 +16,23 @@ import json
 import struct
 from typing import Any
 
+import httpx
 import numpy as np
 import pytest
 
-from service.pipeline.examples import list_examples, load_example
+from service.pipeline.examples import example_path, list_examples, load_example
 from tests.web.conftest import KEY
 
 pytestmark = pytest.mark.filterwarnings("ignore::ResourceWarning")
 
-ENDPOINTS = {"design_request": "/design", "simulate_request": "/simulate", "sweep_request": "/design/sweep"}
+ENDPOINTS = {
+    "design_request": "/design",
+    "simulate_request": "/simulate",
+    "sweep_request": "/design/sweep",
+    "identify_request": "/identify",
+}
 READY = "body[data-ready=true]"
+EXAMPLES = example_path("plant_test.csv").parent
 
 
 def endpoint_of(name: str) -> str | None:
@@ -339,3 +346,64 @@ def test_a_narrow_window_keeps_every_control_labelled_and_reachable_by_keyboard(
         assert page.get_by_test_id("pole-map").bounding_box()["width"] <= 400
     finally:
         page.set_viewport_size({"width": 1280, "height": 900})
+
+
+def test_a_plant_test_csv_is_fitted_and_its_model_opens_as_a_design(workbench, server):
+    # The page posts the CSV to /identify/csv with the options of its form; what it shows is the
+    # service's own answer to the same call (httpx), and the fitted model opens as a design.
+    page = workbench
+    path = EXAMPLES / "plant_test.csv"
+    options = {"sample_time": "1", "inputs": "steam_valve", "outputs": "vessel_temperature"}
+    page.get_by_test_id("upload-csv").set_input_files(str(path))
+    assert page.get_by_test_id("csv-options").is_visible()
+    page.fill("#csv-inputs", options["inputs"])
+    page.fill("#csv-outputs", options["outputs"])
+    page.get_by_test_id("identify-csv").click()
+    page.wait_for_function(
+        "document.getElementById('status').textContent.includes('answered') || !document.getElementById('errors').hidden",
+        timeout=120_000,
+    )
+    assert page.get_by_test_id("errors").is_hidden(), page.get_by_test_id("errors").inner_text()
+    answer = httpx.post(
+        f"{server.base}/identify/csv",
+        params={**options, "structure": "first_order_dead_time"},
+        content=path.read_bytes(),
+        headers={"content-type": "text/csv"},
+        timeout=120,
+    ).json()
+    gain = next(p["estimate"] for p in answer["pairs"][0]["parameters"] if p["name"] == "gain")
+    shown = page.locator("#identify-pairs tbody tr").first.locator("td").nth(3)
+    assert float(shown.get_attribute("data-value")) == gain
+    traces = drawn_points(page, "#step-0")
+    assert traces[0]["y"] == answer["step_responses"][0]["value"]
+    assert json.loads(download(page, "download-answer")) == answer
+
+    page.get_by_test_id("use-model").click()
+    request = json.loads(page.input_value("#request-text"))
+    assert request["model"] == answer["model"] and page.input_value("#endpoint") == "design"
+    page.get_by_test_id("run").click()
+    page.wait_for_function(
+        "document.getElementById('status').textContent.includes('answered') || !document.getElementById('errors').hidden",
+        timeout=60_000,
+    )
+    assert page.get_by_test_id("errors").is_hidden(), page.get_by_test_id("errors").inner_text()
+    designed = server.post("/design", request).json()
+    assert (
+        float(page.get_by_test_id("spectral-radius").get_attribute("data-value"))
+        == (designed["closed_loop"]["spectral_radius"])
+    )
+
+
+def test_the_law_downloads_for_the_control_system(workbench, server):
+    # Both exports of the design on the page are POST /design/export's own answers (httpx).
+    page = workbench
+    run_example(page, "design_request.json")
+    request = load_example("design_request.json")
+    text = download(page, "download-law-st").decode("utf-8")
+    assert (
+        text
+        == httpx.post(f"{server.base}/design/export", json={**request, "format": "structured_text"}, timeout=60).text
+    )
+    assert "FUNCTION_BLOCK" in text
+    law = json.loads(download(page, "download-law-ss"))
+    assert law == server.post("/design/export", {**request, "format": "state_space"}).json()

@@ -40,7 +40,12 @@ ASSETS = {
 }
 PLOTLY_ASSET = "vendor/plotly.min.js"
 #: Which endpoint each bundled example is posted to, by file-name prefix.
-_ENDPOINTS = (("sweep_request", "design/sweep"), ("simulate_request", "simulate"), ("design_request", "design"))
+_ENDPOINTS = (
+    ("sweep_request", "design/sweep"),
+    ("simulate_request", "simulate"),
+    ("design_request", "design"),
+    ("identify_request", "identify"),
+)
 
 
 @cache

@@ -361,6 +361,150 @@ def _vector(value: ArrayLike | None, size: int) -> NDArray[np.float64]:
     return out
 
 
+@dataclass(frozen=True)
+class _FixedLaw:
+    """The fixed law ``du = Kh E`` folded into the few numbers that change at each step.
+
+    With ``E = (1 (x) I_p) z_s - Fx x(k|k) - Fu u(k-1) - Fd d_m(k)`` and ``z_s = Z_r r +
+    Z_d d(k|k)`` the move is ``du(k) = reference[k] - state x(k|k) - previous_input u(k-1)``:
+    the products with the prediction matrices (``Np p`` rows) are formed once.
+    """
+
+    reference: NDArray[np.float64]  # (steps, m): Kh (1 (x) I_p) Z_r r(k) - Kh Fd d_m(k) [+ Kt0 u_s part]
+    state: NDArray[np.float64]  # (m, na): Kh Fx, less Kh (1 (x) I_p) Z_d on the disturbance states
+    previous_input: NDArray[np.float64]  # (m, m): Kh Fu [+ Kt0]
+
+
+def _fixed_law(
+    horizon_gain: NDArray[np.float64],
+    *,
+    targets_r: NDArray[np.float64],
+    z_d: NDArray[np.float64] | None,
+    dsl: slice,
+    fx: NDArray[np.float64],
+    fu: NDArray[np.float64],
+    fd: NDArray[np.float64] | None,
+    d_meas: NDArray[np.float64],
+    penalized_steps: int,
+    target_gain: NDArray[np.float64] | None = None,
+    target_inputs_r: NDArray[np.float64] | None = None,
+    u_d: NDArray[np.float64] | None = None,
+) -> _FixedLaw:
+    """Fold :class:`UnconstrainedPolicy`'s ``Kh`` (and ``Kt0``) into the pieces of :class:`_FixedLaw`.
+
+    With an input weight the policy adds ``Kt0 (u_s(k) - u(k-1))``, ``u_s(k) = U_r r(k) +
+    U_t u_t(k) + U_d d(k|k)`` (``target_inputs_r`` holds the first two terms): linear too.
+    """
+    p = targets_r.shape[1]
+    kz = horizon_gain @ np.tile(np.eye(p), (penalized_steps, 1))  # (m, p)
+    state = horizon_gain @ fx
+    if z_d is not None:
+        state[:, dsl] -= kz @ z_d
+    reference = targets_r @ kz.T
+    if fd is not None:
+        reference -= d_meas @ (horizon_gain @ fd).T
+    previous_input = horizon_gain @ fu
+    if target_gain is not None:
+        assert target_inputs_r is not None
+        reference += target_inputs_r @ target_gain.T
+        previous_input = previous_input + target_gain
+        if u_d is not None:
+            state[:, dsl] -= target_gain @ u_d
+    return _FixedLaw(reference=reference, state=state, previous_input=previous_input)
+
+
+@dataclass(frozen=True)
+class _LinearRun:
+    """The rows of a fixed-law run up to (and including) the step it diverged at, if any."""
+
+    rows: int
+    states: NDArray[np.float64]  # (rows, nt): x(k)
+    estimates: NDArray[np.float64]  # (rows, na): x(k|k)
+    inputs: NDArray[np.float64]  # (rows, m): u(k)
+    moves: NDArray[np.float64]  # (rows, m): du(k)
+
+
+def _linear_run(
+    law: _FixedLaw,
+    *,
+    true: tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]],
+    model: tuple[
+        NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]
+    ],
+    full: bool,
+    start: tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]],
+    offset: NDArray[np.float64],
+    d_in: NDArray[np.float64],
+    d_meas: NDArray[np.float64],
+) -> _LinearRun:
+    """The loop with the fixed law as one linear recursion ``s(k+1) = M s(k) + w(k)``.
+
+    ``s(k) = [x(k); x(k|k-1); u(k-1)]`` (true plant state, predicted estimate, last input).
+    With the fixed law every equation of a step (module notes) is linear in ``s(k)`` and the
+    step's exogenous signals (setpoint, measurement offset and noise, input and measured
+    disturbances): ``x(k|k) = Ex s(k) + L o(k)`` with ``Ex = [L C_t, I - L Cy, 0]`` (``[I, 0,
+    0]`` for ``full_state``), ``u(k) = U s(k) + c(k)``, ``x(k+1) = A_t x + B_t (u(k) + d_u(k))
+    + B_dt d_m(k)``, ``x(k+1|k) = A x(k|k) + B u(k) + B_d d_m(k)``.  So each step is one
+    matrix-vector product; everything else is formed for all steps at once.  The numbers equal
+    the step-by-step loop's to rounding (the products are grouped differently).
+
+    Divergence is judged as in the step-by-step loop (:data:`DIVERGENCE_LIMIT` on
+    ``|x(k+1)|^2``, ``|x(k+1|k)|^2`` and ``|u(k)|^2``); the run stops at the first step that
+    breaks it.
+    """
+    at, bt, ct, bdt = true
+    aa, ba, bda, gain, cy = model
+    x0, xp0, u0 = start
+    nt, na, m = at.shape[0], aa.shape[0], ba.shape[1]
+    steps = offset.shape[0]
+    # x(k|k) = ex @ s + el @ o(k)
+    ex = np.zeros((na, nt + na + m))
+    if full:
+        ex[:, :nt] = np.eye(na, nt)
+        el = np.zeros((na, offset.shape[1]))
+    else:
+        ex[:, :nt] = gain @ ct
+        ex[:, nt : nt + na] = np.eye(na) - gain @ cy
+        el = gain
+    # u(k) = ux @ s + c(k), c(k) = reference(k) - S L o(k)
+    ux = -law.state @ ex
+    ux[:, nt + na :] += np.eye(m) - law.previous_input
+    c = law.reference - offset @ (law.state @ el).T
+    into = np.vstack([bt, ba, np.eye(m)])  # how u(k) enters s(k+1)
+    transition = into @ ux
+    transition[:nt, :nt] += at
+    transition[nt : nt + na] += aa @ ex
+    forcing = c @ into.T
+    forcing[:, :nt] += d_in @ bt.T + d_meas @ bdt.T
+    forcing[:, nt : nt + na] += offset @ (aa @ el).T + d_meas @ bda.T
+    trajectory = np.empty((steps + 1, nt + na + m))
+    trajectory[0] = np.concatenate([x0, xp0, u0])
+    with np.errstate(over="ignore", invalid="ignore"):
+        s = trajectory[0]
+        for k in range(steps):
+            s = transition @ s + forcing[k]
+            trajectory[k + 1] = s
+        after = trajectory[1:]
+        sizes = np.stack(
+            [
+                np.einsum("ij,ij->i", after[:, :nt], after[:, :nt]),
+                np.einsum("ij,ij->i", after[:, nt : nt + na], after[:, nt : nt + na]),
+                np.einsum("ij,ij->i", after[:, nt + na :], after[:, nt + na :]),
+            ]
+        )
+        broken = np.flatnonzero(~np.all(sizes < DIVERGENCE_LIMIT, axis=0))
+        rows = int(broken[0]) + 1 if broken.size else steps
+        now = trajectory[:rows]
+        inputs = trajectory[1 : rows + 1, nt + na :]
+        return _LinearRun(
+            rows=rows,
+            states=now[:, :nt].copy(),
+            estimates=now @ ex.T + offset[:rows] @ el.T,
+            inputs=inputs.copy(),
+            moves=inputs - now[:, nt + na :],
+        )
+
+
 def simulate_loop(
     design: ControllerDesign,
     estimator: Estimator,
@@ -402,7 +546,10 @@ def simulate_loop(
     -----
     Everything constant is formed before the loop (noise, event levels, target maps); a
     step is a handful of small matrix-vector products, so 10^5 steps of a small plant take
-    seconds (``tests/bench/bench_simulation.py``).
+    seconds (``tests/bench/bench_simulation.py``).  With the fixed law (the default
+    :class:`UnconstrainedPolicy` and no target rule) the whole step is linear in the state
+    and runs as one recursion ``s(k+1) = M s(k) + w(k)`` (one product per step), equal to
+    the step-by-step loop to rounding.
     """
     loop = control_loop(design, estimator) if loop is None else loop
     est = loop.estimator
@@ -473,51 +620,88 @@ def simulate_loop(
 
     x, u = xt0, u0
     xp = np.concatenate([x0, np.zeros(nd)])
-    with np.errstate(over="ignore", invalid="ignore"):
-        for k in range(steps):
-            y = ct @ x
-            ym = y + offset[k]
-            xf = x if full else xp + gain @ (ym - cy @ xp)
-            if target_rule is not None and pulled:
-                zs, us = target_rule(setpoint=setpoints[k], disturbance=xf[dsl], input_target=u_targets[k])
-            elif target_rule is not None:
-                zs, us = target_rule(setpoint=setpoints[k], disturbance=xf[dsl])
-            else:
-                zs = targets_r[k]
-                us = target_inputs_r[k]
-                if use_d:
-                    d = xf[dsl]
-                    zs = zs + z_d @ d
-                    us = us + u_d @ d
-            free = fx @ xf + fu @ u
-            if md:
-                free = free + fd @ d_meas[k]
-            error = (zs - free.reshape(np_, p)).reshape(-1)  # (1 (x) I_p) z_s - free
-            if pulled:
-                result = policy(error=error, free_prediction=free, previous_input=u, step=k, target_input=us)
-            else:
-                result = policy(error=error, free_prediction=free, previous_input=u, step=k)
-            du = np.asarray(result.move, dtype=float)
-            assert du.shape == (m,), du.shape
-            u = u + du
-            outputs[k] = y + d_out[k]
-            measured[k] = ym
-            inputs[k] = u
-            moves[k] = du
-            targets[k] = zs
-            target_inputs[k] = us
-            estimates[k] = xf
-            states[k] = x
-            reports.append(result.report)
-            x = at @ x + bt @ (u + d_in[k])
-            xp = aa @ xf + ba @ u
-            if md:
-                x = x + bdt @ d_meas[k]
-                xp = xp + bda @ d_meas[k]
-            if not (x @ x < DIVERGENCE_LIMIT and xp @ xp < DIVERGENCE_LIMIT and u @ u < DIVERGENCE_LIMIT):
-                if k + 1 < steps:
-                    diverged_at = k + 1
-                break
+    if type(policy) is UnconstrainedPolicy and target_rule is None:
+        law = _fixed_law(
+            policy.horizon_gain,
+            targets_r=targets_r,
+            z_d=z_d if use_d else None,
+            dsl=dsl,
+            fx=fx,
+            fu=fu,
+            fd=fd if md else None,
+            d_meas=d_meas,
+            penalized_steps=np_,
+            target_gain=policy.target_gain,
+            target_inputs_r=target_inputs_r,
+            u_d=u_d if use_d else None,
+        )
+        run = _linear_run(
+            law,
+            true=(at, bt, ct, bdt),
+            model=(aa, ba, bda if md else np.zeros((na, 0)), gain, cy),
+            full=full,
+            start=(x, xp, u),
+            offset=offset,
+            d_in=d_in,
+            d_meas=d_meas,
+        )
+        rows = run.rows
+        diverged_at = rows if rows < steps else None
+        states[:rows], estimates[:rows], inputs[:rows], moves[:rows] = run.states, run.estimates, run.inputs, run.moves
+        measured[:rows] = run.states @ ct.T + offset[:rows]
+        outputs[:rows] = run.states @ ct.T + d_out[:rows]
+        targets[:rows] = targets_r[:rows]
+        target_inputs[:rows] = target_inputs_r[:rows]
+        if use_d:
+            d = estimates[:rows, dsl]
+            targets[:rows] += d @ z_d.T
+            target_inputs[:rows] += d @ u_d.T
+    else:
+        with np.errstate(over="ignore", invalid="ignore"):
+            for k in range(steps):
+                y = ct @ x
+                ym = y + offset[k]
+                xf = x if full else xp + gain @ (ym - cy @ xp)
+                if target_rule is not None and pulled:
+                    zs, us = target_rule(setpoint=setpoints[k], disturbance=xf[dsl], input_target=u_targets[k])
+                elif target_rule is not None:
+                    zs, us = target_rule(setpoint=setpoints[k], disturbance=xf[dsl])
+                else:
+                    zs = targets_r[k]
+                    us = target_inputs_r[k]
+                    if use_d:
+                        d = xf[dsl]
+                        zs = zs + z_d @ d
+                        us = us + u_d @ d
+                free = fx @ xf + fu @ u
+                if md:
+                    free = free + fd @ d_meas[k]
+                error = (zs - free.reshape(np_, p)).reshape(-1)  # (1 (x) I_p) z_s - free
+                if pulled:
+                    result = policy(error=error, free_prediction=free, previous_input=u, step=k, target_input=us)
+                else:
+                    result = policy(error=error, free_prediction=free, previous_input=u, step=k)
+                du = np.asarray(result.move, dtype=float)
+                assert du.shape == (m,), du.shape
+                u = u + du
+                outputs[k] = y + d_out[k]
+                measured[k] = ym
+                inputs[k] = u
+                moves[k] = du
+                targets[k] = zs
+                target_inputs[k] = us
+                estimates[k] = xf
+                states[k] = x
+                reports.append(result.report)
+                x = at @ x + bt @ (u + d_in[k])
+                xp = aa @ xf + ba @ u
+                if md:
+                    x = x + bdt @ d_meas[k]
+                    xp = xp + bda @ d_meas[k]
+                if not (x @ x < DIVERGENCE_LIMIT and xp @ xp < DIVERGENCE_LIMIT and u @ u < DIVERGENCE_LIMIT):
+                    if k + 1 < steps:
+                        diverged_at = k + 1
+                    break
     reports.extend([None] * (steps - len(reports)))
     return Simulation(
         time=np.arange(steps, dtype=np.float64) * float(scenario.sample_time),

@@ -6,8 +6,9 @@ QP as the loop's move policy):
 - :class:`GainWhenFreePolicy` wraps the constrained policy so that a step whose unconstrained
   optimum meets every limit applies the design's own ``du = Kh E``, the very product of
   :class:`service.solver.evaluation.simulation.UnconstrainedPolicy`: limits that never bind then give the
-  fixed-gain run bit for bit, not only to the rounding of a second solve
-  (``H^-1 G'Q E`` by the Cholesky factor differs from ``Kh E`` by about ``cond(H) eps``).
+  fixed-gain run to the rounding of the products (the fixed-gain run groups them once for all
+  steps), not only to the rounding of a second solve (``H^-1 G'Q E`` by the Cholesky factor
+  differs from ``Kh E`` by about ``cond(H) eps``).
 - :class:`ReachableTargetRule`, a :class:`service.solver.evaluation.simulation.TargetRule`: at every
   step the nearest steady state reachable inside the input limits
   (:class:`service.solver.limits.reachable_target.ReachableTargetProblem`), so that a setpoint the
