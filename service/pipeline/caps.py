@@ -208,16 +208,23 @@ def run_entries(
 
 
 def qp_step_work(
-    *, free_moves: int, inputs: int, limited_inputs: int, penalized_steps: int, output_bounds: int, soft: bool
+    *,
+    free_moves: int,
+    inputs: int,
+    limited_inputs: int,
+    penalized_steps: int,
+    output_bounds: int,
+    soft: bool,
+    zone_slacks: int = 0,
 ) -> int:
     """Estimated floating-point operations of one QP step (and its target) of a run under limits.
 
-    ``nv = free_moves * inputs (+ output_bounds when soft)`` variables and ``nr = free_moves *
-    limited_inputs + penalized_steps * output_bounds`` rows: :data:`QP_WORK_FACTOR` ``x nv x
-    (nv + nr)`` plus :data:`QP_STEP_OVERHEAD`.
+    ``nv = free_moves * inputs (+ output_bounds when soft) + zone_slacks`` variables and ``nr =
+    free_moves * limited_inputs + penalized_steps * output_bounds + 2 zone_slacks`` rows:
+    :data:`QP_WORK_FACTOR` ``x nv x (nv + nr)`` plus :data:`QP_STEP_OVERHEAD`.
     """
-    nv = free_moves * inputs + (output_bounds if soft else 0)
-    nr = free_moves * limited_inputs + penalized_steps * output_bounds
+    nv = free_moves * inputs + (output_bounds if soft else 0) + zone_slacks
+    nr = free_moves * limited_inputs + penalized_steps * output_bounds + 2 * zone_slacks
     return QP_STEP_OVERHEAD + QP_WORK_FACTOR * nv * (nv + nr)
 
 

@@ -33,6 +33,7 @@ from service.pipeline.operating_point import check_operating_point, design_to_ab
 from service.pipeline.plant import DiscretePlant, Signal, plant_arrays
 from service.pipeline.problems import pointer
 from service.pipeline.robustness import frequency_problems, robustness_report
+from service.pipeline.zones import ZoneInputs, check_zones, zone_reports, zone_warnings
 from service.schemas.design import (
     ClosedLoopReport,
     DesignRequest,
@@ -96,6 +97,8 @@ class DesignInputs:
     frequency_points: int | None = None
     #: The checked limits; ``None``: the request has none.
     limits: LimitInputs | None = None
+    #: The checked zones; ``None``: every output has a setpoint.
+    zones: ZoneInputs | None = None
     #: Whether the answer shows the sampled model (``analysis.sampled_model``).
     sampled_model: bool = False
     #: The fingerprint of the design request (its design fields alone).
@@ -246,8 +249,8 @@ def _size_problems(request: DesignRequest, plant: DiscretePlant, caps: Caps) -> 
 
 def _checked_weights(
     request: DesignRequest, plant: DiscretePlant
-) -> tuple[NDArray[np.float64] | None, NDArray[np.float64] | None, list[FieldProblem]]:
-    """The output and move weights as arrays, and what is wrong with them."""
+) -> tuple[NDArray[np.float64] | None, NDArray[np.float64] | None, ZoneInputs | None, list[FieldProblem]]:
+    """The output and move weights as arrays, the zones (which need no output weight), and what is wrong."""
     q, problems = check_weight(
         request.weights.output,
         ("weights", "output"),
@@ -263,14 +266,25 @@ def _checked_weights(
         names=[sig.name for sig in plant.inputs],
     )
     problems += found
-    if q is not None and not np.any(q):
+    zones, found = check_zones(request.zones, plant, q)
+    problems += found
+    if zones is not None and request.weights.terminal == "riccati":
+        problems.append(
+            FieldProblem(
+                pointer("weights", "terminal"),
+                "a Riccati terminal weight together with zones is not supported yet: the terminal weight "
+                "would leave the zone outputs unweighted after the horizon, while the QP weights them "
+                "outside their zones. Use terminal 'none' with zones",
+            )
+        )
+    if q is not None and not np.any(q) and zones is None and not found:
         problems.append(
             FieldProblem(
                 pointer("weights", "output"),
                 "every output weight is zero, so no output is controlled; give at least one a positive weight",
             )
         )
-    return q, r, problems
+    return q, r, zones, problems
 
 
 def _checked_input_weight(
@@ -323,7 +337,7 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
     problems += found
     if plant is None:
         raise InvalidRequest(problems)
-    q, r, found = _checked_weights(request, plant)
+    q, r, zones, found = _checked_weights(request, plant)
     problems += found
     s_in, found = _checked_input_weight(request, plant)
     problems += found
@@ -360,6 +374,7 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         estimator=estimator,
         frequency_points=request.analysis.points if request.analysis.frequency else None,
         limits=limits,
+        zones=zones,
         sampled_model=request.analysis.sampled_model,
         fingerprint=design_fingerprint(request),
     )
@@ -378,7 +393,7 @@ def retuned_inputs(inputs: DesignInputs, request: DesignRequest, caps: Caps, *, 
     """
     plant = inputs.plant
     problems = _horizon_problems(request, caps)
-    q, r, found = _checked_weights(request, plant)
+    q, r, zones, found = _checked_weights(request, plant)
     problems += found
     s_in, found = _checked_input_weight(request, plant)
     problems += found
@@ -397,6 +412,7 @@ def retuned_inputs(inputs: DesignInputs, request: DesignRequest, caps: Caps, *, 
         control=h.control,
         first_penalized=h.first_penalized,
         move_steps=None if h.move_steps is None else tuple(h.move_steps),
+        zones=zones,
         fingerprint=fingerprint,
     )
 
@@ -443,6 +459,7 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
         state_labels=list(plant.state_labels),
         terminal=inputs.terminal,
         blocking=inputs.move_steps,
+        zone_outputs=() if inputs.zones is None else inputs.zones.outputs,
         input_weight=inputs.input_weight,
     )
     feedforward = None
@@ -498,6 +515,7 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
                 scaled.a, scaled.b, labels=plant.state_labels, loop_poles=design.loop.poles, poles=properties.poles
             ),
             *([] if limit_check is None else limit_check_warnings(limit_check, plant)),
+            *([] if inputs.zones is None else zone_warnings(inputs.zones, plant)),
         ],
         estimator=estimator,
         analysis=analysis,
@@ -639,6 +657,7 @@ def design_response(inputs: DesignInputs, outcome: DesignOutcome) -> DesignRespo
         if outcome.analysis is None or outcome.estimator is None
         else robustness_report(outcome.analysis, outcome.estimator),
         limit_check=None if outcome.limit_check is None else limit_check_report(outcome.limit_check, plant),
+        zones=None if inputs.zones is None else zone_reports(inputs.zones, plant),
         diagnostics=_diagnostics(inputs, outcome),
         fingerprint=inputs.fingerprint,
     )

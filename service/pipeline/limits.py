@@ -26,6 +26,7 @@ from numpy.typing import NDArray
 from service.errors import NumericalError
 from service.pipeline.limits_checks import LimitInputs
 from service.pipeline.plant import DiscretePlant
+from service.pipeline.zones import ZoneInputs
 from service.schemas.design import WarningReport
 from service.schemas.limits import (
     ActiveLimitReport,
@@ -167,8 +168,18 @@ class LimitedRun:
     first_penalized: int
 
 
-def limited_run(limits: LimitInputs, plant: DiscretePlant, design: ControllerDesign, loop: ControlLoop) -> LimitedRun:
+def limited_run(
+    limits: LimitInputs,
+    plant: DiscretePlant,
+    design: ControllerDesign,
+    loop: ControlLoop,
+    *,
+    zones: ZoneInputs | None = None,
+) -> LimitedRun:
     """Set up the move QP and the reachable target of a run under ``limits`` (scaled by the model's spans).
+
+    ``zones`` adds the zone outputs' slacks to the QP (``service.solver.limits.zones``); a run
+    with zones and no limits passes :func:`service.pipeline.limits_checks.no_limits`.
 
     With move blocking the QP's moves are the free (blocked) moves: the input is held between
     them, so its limits are met at each block's start and each free move is one move.
@@ -179,9 +190,10 @@ def limited_run(limits: LimitInputs, plant: DiscretePlant, design: ControllerDes
         When the QP or the target calculation cannot be set up (pointer ``/limits``).
     """
     scaled = limits.limits(plant.input_spans, plant.output_spans)
+    held = None if zones is None else zones.zones(plant.output_spans)
     try:
         if design.blocking is None:
-            policy = ConstrainedPolicy.from_design(design, scaled, hard_outputs=limits.hard_outputs)
+            policy = ConstrainedPolicy.from_design(design, scaled, hard_outputs=limits.hard_outputs, zones=held)
         else:
             prediction = dataclasses.replace(design.prediction, control=len(design.blocking))
             qp = MoveQP(
@@ -192,6 +204,7 @@ def limited_run(limits: LimitInputs, plant: DiscretePlant, design: ControllerDes
                 limits=scaled,
                 input_pull=None if design.input_penalty is None else design.input_penalty.pull,
                 hard_outputs=limits.hard_outputs,
+                zones=held,
             )
             policy = ConstrainedPolicy(qp, scaled)
         target = ReachableTargetRule.from_loop(loop, scaled)

@@ -20,7 +20,7 @@ from service.errors import FieldProblem
 from service.pipeline.caps import Caps, limit_report_entries, qp_step_work
 from service.pipeline.plant import DiscretePlant, Signal
 from service.pipeline.problems import pointer
-from service.schemas.limits import LimitsRequest
+from service.schemas.limits import DEFAULT_OUTPUT_SOFTNESS, LimitsRequest
 from service.solver.design.closed_loop import Diagnostic
 from service.solver.limits.bounds import Limits, make_limits
 
@@ -29,6 +29,7 @@ __all__ = [
     "check_initial_input",
     "check_limits",
     "limit_work_problems",
+    "no_limits",
 ]
 
 
@@ -76,6 +77,22 @@ class LimitInputs:
             output_max=self.output_max / sz,
             output_softness=self.output_softness,
         )
+
+
+def no_limits(plant: DiscretePlant) -> LimitInputs:
+    """Limits of a run with none (every bound absent): the move QP of a run with zones alone."""
+    m, p = plant.input_count, plant.output_count
+    return LimitInputs(
+        input_min=np.full(m, -np.inf),
+        input_max=np.full(m, np.inf),
+        move_max=np.full(m, np.inf),
+        output_min=np.full(p, -np.inf),
+        output_max=np.full(p, np.inf),
+        output_softness=DEFAULT_OUTPUT_SOFTNESS,
+        hard_outputs=False,
+        clamp_initial_input=False,
+        nominal_step=np.ones(p),
+    )
 
 
 def _vector(
@@ -238,9 +255,18 @@ def check_initial_input(
 
 
 def limit_work_problems(
-    limits: LimitInputs | None, *, steps: int, free_moves: int, penalized_steps: int, caps: Caps
+    limits: LimitInputs | None,
+    *,
+    steps: int,
+    free_moves: int,
+    penalized_steps: int,
+    caps: Caps,
+    zone_outputs: int = 0,
 ) -> list[FieldProblem]:
-    """The run's QP work and its limit report must fit the service's caps (pointer ``/scenario/steps``)."""
+    """The run's QP work and its limit report must fit the service's caps (pointer ``/scenario/steps``).
+
+    ``zone_outputs`` zone outputs add one slack and two rows per penalized step each.
+    """
     if limits is None:
         return []
     m, p = limits.input_min.size, limits.output_min.size
@@ -253,6 +279,7 @@ def limit_work_problems(
         penalized_steps=penalized_steps,
         output_bounds=bounds,
         soft=not limits.hard_outputs,
+        zone_slacks=zone_outputs * penalized_steps,
     )
     where = pointer("scenario", "steps")
     if steps * per_step > caps.max_simulation_work:

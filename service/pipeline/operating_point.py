@@ -2,9 +2,10 @@
 
 A linear model holds around a steady state ``(u0, z0, d0)``, ``model.operating_point``.  With
 it, a request's values are absolute: :func:`to_deviations` subtracts the operating point from
-each (input limits, the initial input and the input targets by ``u0``; output limits, setpoints and the initial
-setpoint by ``z0``; measured disturbance values by ``d0``) and drops the block, so the rest of
-the pipeline sees the deviation request it always saw; :func:`design_to_absolute` and
+each (input limits, the initial input and the input targets by ``u0``; output limits, zone
+edges, setpoints and the initial setpoint by ``z0``; measured disturbance values by ``d0``)
+and drops the block, so the rest of the pipeline sees the deviation request it always saw;
+:func:`design_to_absolute` and
 :func:`simulation_to_absolute` add it back to every absolute value of the answer.  Moves,
 additive disturbances, offsets and figures of merit are differences and stay as they are.
 Each shift is one IEEE subtraction or addition per value, so the absolute run is the
@@ -72,6 +73,18 @@ def to_deviations(request: DesignRequest) -> tuple[DesignRequest, OperatingPoint
         disturbances=None if op.disturbances is None else tuple(op.disturbances),
     )
     update: dict[str, object] = {"model": request.model.model_copy(update={"operating_point": None})}
+    if request.zones is not None and point.outputs is not None and len(request.zones) == len(point.outputs):
+        update["zones"] = [
+            None
+            if zone is None
+            else zone.model_copy(
+                update={
+                    "low": None if zone.low is None else zone.low - z0,
+                    "high": None if zone.high is None else zone.high - z0,
+                }
+            )
+            for zone, z0 in zip(request.zones, point.outputs, strict=True)
+        ]
     limits = request.limits
     if limits is not None:
         update["limits"] = limits.model_copy(
@@ -193,6 +206,11 @@ def _shift(kind: str, signal: str, value: float, point: OperatingPointValues, pl
 
 def design_to_absolute(response: DesignResponse, point: OperatingPointValues, plant: DiscretePlant) -> None:
     """Add the operating point to the absolute values of a /design answer (in place)."""
+    names = [s.name for s in plant.outputs]
+    for zone in response.zones or []:
+        z0 = point.output(names.index(zone.output))
+        zone.low = None if zone.low is None else zone.low + z0
+        zone.high = None if zone.high is None else zone.high + z0
     check = response.limit_check
     if check is not None:
         for v in check.violations:
@@ -212,6 +230,11 @@ def simulation_to_absolute(response: SimulateResponse, point: OperatingPointValu
     response.inputs = [[v + u0[j] for j, v in enumerate(row)] for row in response.inputs]
     response.measured_disturbances = [[v + d0[k] for k, v in enumerate(row)] for row in response.measured_disturbances]
     design_to_absolute(response.design, point, plant)
+    names = [s.name for s in plant.outputs]
+    for zone in response.zones or []:
+        shift = z0[names.index(zone.output)]
+        zone.low = None if zone.low is None else zone.low + shift
+        zone.high = None if zone.high is None else zone.high + shift
     if response.limits is not None:
         for step in response.limits.steps:
             if step.target is not None:

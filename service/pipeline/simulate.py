@@ -37,6 +37,7 @@ from service.pipeline.design import DesignOutcome, compute_design, design_respon
 from service.pipeline.estimator import scaled_estimator
 from service.pipeline.fingerprint import design_fingerprint, fingerprint
 from service.pipeline.limits import LimitedRun, limit_run_reports, limited_run
+from service.pipeline.limits_checks import no_limits
 from service.pipeline.operating_point import (
     check_operating_point,
     explain_failure,
@@ -45,6 +46,7 @@ from service.pipeline.operating_point import (
 )
 from service.pipeline.plant import DiscretePlant
 from service.pipeline.simulate_checks import SimulationInputs, check_simulate_request
+from service.pipeline.zones import zone_run_reports
 from service.schemas.design import ADVISORY, LabelledMatrix, PoleReport, WarningReport
 from service.schemas.simulate import (
     EstimatorReport,
@@ -95,7 +97,7 @@ class SimulationOutcome:
     performance : Performance or None
         ``None`` when the run blew up.
     limited : LimitedRun or None
-        The move QP and target rule of a run under limits (``None`` without limits).
+        The move QP and target rule of a run under limits (``None`` without limits or zones).
     """
 
     design: DesignOutcome
@@ -194,8 +196,10 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
         input_target_changes=_scaled_events(list(inputs.input_target_changes), su),
         sample_time=plant.sample_time,
     )
-    limits = inputs.design.limits
-    limited = None if limits is None else limited_run(limits, plant, outcome.design, loop)
+    limits, zones = inputs.design.limits, inputs.design.zones
+    limited = None
+    if limits is not None or zones is not None:  # zones alone also need the QP: it holds them
+        limited = limited_run(limits or no_limits(plant), plant, outcome.design, loop, zones=zones)
     with np.errstate(over="ignore", invalid="ignore"):  # absurd levels overflow: the series are cut below
         sim = simulate_loop(
             outcome.design,
@@ -397,6 +401,7 @@ def simulate_response(
         )
     whole = outcome.whole
     warnings = _warnings(inputs, outcome)
+    zones = inputs.design.zones
     limits, limit_summary = None, None
     if outcome.limited is not None:
         limits, limit_summary, found = limit_run_reports(outcome.limited, outcome.simulation, outcome.rows, plant)
@@ -444,6 +449,7 @@ def simulate_response(
         design=design_response(inputs.design, outcome.design),
         limits=limits,
         limit_summary=limit_summary,
+        zones=None if zones is None else zone_run_reports(zones, plant, outcome.outputs),
         warnings=warnings,
         fingerprint=fingerprint(request),
         advisory=ADVISORY,
@@ -480,7 +486,9 @@ def simulation_csv(response: SimulateResponse) -> str:
     Columns: ``time``, the controlled outputs, their setpoints (``<output>.setpoint``), then
     the manipulated variables, named as in ``response.columns``; one row per step kept.  A
     run under limits adds ``limits.fallback`` (1 where the step's QP failed and held the last
-    input, else 0) and ``limits.active`` (the number of active limits the step lists).
+    input, else 0) and ``limits.active`` (the number of active limits the step lists); a run with
+    zones adds ``<output>.zone_low`` and ``<output>.zone_high`` per zone output (empty where the
+    zone is open on that side), the same on every row.
     Numbers are written in Python's shortest round-trip form, so the same response always
     gives the same bytes and every value reads back exactly; header cells a spreadsheet
     could run as a formula get a leading ``'`` (:func:`~service.pipeline.csv_cells.text_cell`).
@@ -495,6 +503,10 @@ def simulation_csv(response: SimulateResponse) -> str:
         extra = [["0", "0"] for _ in response.time]
         for row in response.limits.steps:
             extra[row.step] = [str(int(row.fallback)), str(len(row.active))]
+    for zone in response.zones or []:
+        header = _unique([*header, f"{zone.output}.zone_low", f"{zone.output}.zone_high"])
+        edges = ["" if v is None else repr(v) for v in (zone.low, zone.high)]
+        extra = [[*row, *edges] for row in extra]
     writer.writerow([text_cell(name) for name in header])
     for t, y, r, u, more in zip(
         response.time, response.outputs, response.setpoints, response.inputs, extra, strict=True

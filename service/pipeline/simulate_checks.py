@@ -19,7 +19,7 @@ from numpy.typing import NDArray
 from service.errors import FieldProblem, InvalidRequest
 from service.pipeline.caps import Caps, plant_run_entries, plant_run_work
 from service.pipeline.design import DesignInputs, check_design_request
-from service.pipeline.limits_checks import check_initial_input, limit_work_problems
+from service.pipeline.limits_checks import check_initial_input, limit_work_problems, no_limits
 from service.pipeline.plant import DiscretePlant, plant_arrays
 from service.pipeline.problems import pointer
 from service.schemas.simulate import SimulateRequest
@@ -355,11 +355,12 @@ def check_simulate_request(request: SimulateRequest, caps: Caps) -> SimulationIn
         problems += _run_size_problems(request, plant, true, design.estimator.disturbance, caps)
         if not problems:
             problems += limit_work_problems(
-                design.limits,
+                design.limits if design.limits is not None or design.zones is None else no_limits(plant),
                 steps=steps,
                 free_moves=design.free_moves,
                 penalized_steps=max(design.prediction - design.first_penalized + 1, 1),
                 caps=caps,
+                zone_outputs=0 if design.zones is None else len(design.zones.outputs),
             )
     if problems or design is None:
         raise InvalidRequest(problems)

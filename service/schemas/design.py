@@ -8,7 +8,7 @@ from pydantic import Field
 
 from service.schemas.common import FiniteFloat, MatrixOut, RequestModel, ResponseModel
 from service.schemas.estimator import EstimatorRequest
-from service.schemas.limits import LimitCheckReport, LimitsRequest
+from service.schemas.limits import LimitCheckReport, LimitsRequest, OutputZone, ZoneReport
 from service.schemas.model import PlantModel
 from service.schemas.robustness import RobustnessReport
 from service.schemas.step_response import ReductionReport
@@ -79,6 +79,13 @@ class DesignRequest(RequestModel):
         description="Limits on inputs, moves and outputs: /simulate solves a QP under them at every step; "
         "/design checks the unconstrained law against them for a nominal setpoint step (limit_check).",
     )
+    zones: list[OutputZone | None] | None = Field(
+        default=None,
+        description="Per controlled output, a range to hold it in instead of a setpoint (null: a setpoint "
+        "output). A zone output has no setpoint weight (weights.output 0 for it), so the unconstrained gains "
+        "of /design do not act on it; the move QP of /simulate weights it only outside its zone, with or "
+        "without limits.",
+    )
 
 
 class GainLabels(ResponseModel):
@@ -142,6 +149,7 @@ class MarginalModeReport(ResponseModel):
         "free_input_direction",
         "input_reaches_no_output",
         "unweighted_output",
+        "zone_output",
         "unobservable_mode",
         "uncontrollable_mode",
         "tuning",
@@ -151,7 +159,9 @@ class MarginalModeReport(ResponseModel):
         "scenario.input_targets); "
         "'input_reaches_no_output': an input no weighted output responds to within the prediction "
         "horizon; 'unweighted_output': a plant mode on the circle (an integrating level) seen only by "
-        "outputs with weight 0; 'unobservable_mode': a plant mode no output shows; "
+        "outputs with weight 0; 'zone_output': a mode or input direction that only zone outputs see (by "
+        "design: inside its zone an output has no weight; the move QP holds it there, the gains do not); "
+        "'unobservable_mode': a plant mode no output shows; "
         "'uncontrollable_mode': a plant mode no input moves; 'tuning': none of these."
     )
     signals: list[str] = Field(
@@ -282,6 +292,10 @@ class DesignResponse(ResponseModel):
     )
     limit_check: LimitCheckReport | None = Field(
         default=None, description="When the request has limits: does the unconstrained law alone break them?"
+    )
+    zones: list[ZoneReport] | None = Field(
+        default=None,
+        description="When the request has zones: each zone output, held only by the move QP (not by the gains).",
     )
     diagnostics: DiagnosticsReport | None = Field(
         default=None, description="Which diagnostics this answer holds and which a work budget left out."

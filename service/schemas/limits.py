@@ -27,6 +27,9 @@ __all__ = [
     "LimitStepReport",
     "LimitSummary",
     "LimitsRequest",
+    "OutputZone",
+    "ZoneReport",
+    "ZoneRunReport",
 ]
 
 #: Default ``output_softness`` of the contract: the solver's own default
@@ -35,6 +38,9 @@ DEFAULT_OUTPUT_SOFTNESS = 1.0e5
 
 #: Largest accepted ``output_softness``: beyond it the penalty only worsens the QP's numbers.
 MAX_OUTPUT_SOFTNESS = 1e12
+
+#: Largest accepted zone weight (as large as any QP slack weight may be).
+MAX_ZONE_WEIGHT = 1e12
 
 OptionalVector = list[FiniteFloat | None]
 
@@ -189,3 +195,48 @@ class LimitSummary(ResponseModel):
         description="The largest slack used on any soft output limit, in scaled units (slack divided by the "
         "output's span, comparable across outputs); null without soft output limits."
     )
+
+
+class OutputZone(RequestModel):
+    """A range for one controlled output instead of a setpoint (for example a level between 30 and 70 %).
+
+    Inside its zone the output floats freely: it has no setpoint weight (its entry of
+    weights.output must be 0, so the unconstrained gains do not act on it). Outside, the move QP
+    of /simulate weights its distance to the nearest edge by ``weight`` at every penalized step,
+    as an output of that weight tracking the edge; the output's setpoint has no effect.
+    """
+
+    low: FiniteFloat | None = Field(
+        default=None,
+        description="Lower edge, engineering units (absolute with model.operating_point); null: open below.",
+    )
+    high: FiniteFloat | None = Field(
+        default=None,
+        description="Upper edge, engineering units (absolute with model.operating_point); null: open above.",
+    )
+    weight: Annotated[FiniteFloat, Field(gt=0, le=MAX_ZONE_WEIGHT)] = Field(
+        default=1.0,
+        description="Weight of the distance outside the zone, in the units of weights.output (per scaled "
+        "output squared); default 1.",
+    )
+
+
+class ZoneReport(ResponseModel):
+    """One zone output as the design treats it."""
+
+    output: str = Field(description="Tag of the controlled output.")
+    low: float | None = Field(description="Lower edge, engineering units; null: open below.")
+    high: float | None = Field(description="Upper edge, engineering units; null: open above.")
+    weight: float = Field(description="Weight outside the zone (the move QP's).")
+    weight_in_gains: float = Field(
+        description="The output's weight in the unconstrained gains: always 0, so gain.* do not act on it."
+    )
+
+
+class ZoneRunReport(ZoneReport):
+    """How one zone output did over the run."""
+
+    ended_inside: bool = Field(description="The last sample lies inside the zone (to 1e-6 relative).")
+    fraction_inside: float = Field(description="Share of the samples inside the zone.")
+    largest_excursion: float = Field(description="Largest distance outside the zone, engineering units.")
+    first_outside: int | None = Field(description="First step outside the zone; null: never.")

@@ -22,7 +22,7 @@ from service.schemas.design import (
     WarningReport,
 )
 from service.schemas.estimator import EstimatorRequest
-from service.schemas.limits import LimitRunReport, LimitSummary
+from service.schemas.limits import LimitRunReport, LimitSummary, ZoneRunReport
 from service.schemas.model import PlantModel
 
 __all__ = [
@@ -261,6 +261,11 @@ class SimulateResponse(ResponseModel):
     design: DesignResponse = Field(description="The design the run used, as POST /design answers it.")
     limits: LimitRunReport | None = Field(
         default=None, description="With limits: the move QP at the steps where the limits mattered."
+    )
+    zones: list[ZoneRunReport] | None = Field(
+        default=None,
+        description="With zones: per zone output its zone (engineering units) and whether the run kept it "
+        "there, ended inside, and its largest excursion.",
     )
     limit_summary: LimitSummary | None = Field(
         default=None, description="With limits: time at each limit, fallbacks, corrected setpoints, largest slack."

@@ -130,6 +130,25 @@ function level(name, time, value, colour, dash, group) {
   };
 }
 
+/**
+ * The zone edges [low, high] of output j (null where absent): from the answer's zones (absolute,
+ * named by tag), else from the request's zones (one entry per output, or vectors of edges).
+ */
+function zoneEdges(answer, request, name, j) {
+  const edge = (v) => (typeof v === "number" && Number.isFinite(v) ? v : null);
+  if (Array.isArray(answer?.zones)) {
+    const reported = answer.zones.find((z) => z && z.output === name);
+    return reported ? [edge(reported.low), edge(reported.high)] : [null, null];
+  }
+  const given = request?.zones;
+  if (Array.isArray(given)) {
+    const zone = given[j];
+    return zone && typeof zone === "object" ? [edge(zone.low), edge(zone.high)] : [null, null];
+  }
+  const zones = given || {};
+  return [at(pick(zones, "low", "min", "lower"), j), at(pick(zones, "high", "max", "upper"), j)];
+}
+
 function axisTitle(signal, fallback) {
   const name = signal?.name ?? fallback;
   return signal?.unit ? `${name} [${signal.unit}]` : name;
@@ -146,7 +165,6 @@ export function drawResponses(container, answer, request) {
   const plant = answer.design?.plant || {};
   const columns = answer.columns || {};
   const limits = request?.limits || {};
-  const zones = request?.zones || answer?.zones || {};
   const timeTitle = "time (model time unit)";
   const outputs = columns.outputs || [];
   outputs.forEach((name, j) => {
@@ -166,11 +184,14 @@ export function drawResponses(container, answer, request) {
       type: "scatter", mode: "lines", name: "setpoint", x: time, y: column(answer.setpoints, j),
       line: { color: COLOURS.black, width: 1.5, dash: "dash", shape: "hv" },
     });
-    const low = at(pick(zones, "low", "min", "lower"), j);
-    const high = at(pick(zones, "high", "max", "upper"), j);
+    const [low, high] = zoneEdges(answer, request, signal.name ?? name, j);
     if (low !== null && high !== null) {
       traces.push(level("zone low", time, low, COLOURS.green, "longdash", "zone"));
       traces.push({ ...level("zone high", time, high, COLOURS.green, "longdash", "zone"), fill: "tonexty", fillcolor: "rgba(0,158,115,0.10)" });
+    } else if (low !== null) {
+      traces.push(level("zone low", time, low, COLOURS.green, "longdash", "zone"));
+    } else if (high !== null) {
+      traces.push(level("zone high", time, high, COLOURS.green, "longdash", "zone"));
     }
     const ymin = at(limits.output_min, j);
     const ymax = at(limits.output_max, j);

@@ -407,3 +407,36 @@ def test_the_law_downloads_for_the_control_system(workbench, server):
     assert "FUNCTION_BLOCK" in text
     law = json.loads(download(page, "download-law-ss"))
     assert law == server.post("/design/export", {**request, "format": "state_space"}).json()
+
+
+def test_marginal_modes_are_marked_on_the_pole_map_and_named_in_words(workbench, server):
+    # Two outputs, three inputs and no input weight: the spare input direction leaves a
+    # closed-loop pole at z = 1 (the marginal mode of cause free_input_direction, as the
+    # service's own answer lists it).  The pole map marks exactly those poles.
+    page = workbench
+    request = {
+        "model": {
+            "kind": "state_space",
+            "sample_time": 1.0,
+            "a": [[0.8, 0.0], [0.0, 0.7]],
+            "b": [[1.0, 0.5, 0.2], [0.3, 1.0, 0.4]],
+            "c": [[1.0, 0.0], [0.0, 1.0]],
+        },
+        "horizons": {"prediction": 20, "control": 3},
+        "weights": {"output": [1.0, 1.0], "move": [0.1, 0.1, 0.1]},
+    }
+    answer = server.post("/design", request).json()
+    modes = answer["closed_loop"]["marginal_modes"]
+    assert modes and {m["cause"] for m in modes} == {"free_input_direction"}
+    page.fill("#request-text", json.dumps(request))
+    page.select_option("#endpoint", "design")
+    page.get_by_test_id("run").click()
+    page.wait_for_function(
+        "document.getElementById('status').textContent.includes('answered') || !document.getElementById('errors').hidden",
+        timeout=60_000,
+    )
+    traces = {t["name"].split(" (")[0]: t for t in drawn_points(page, "[data-testid=pole-map]")}
+    marked = traces["marginal mode"]
+    assert marked["marks"] == len(modes)
+    assert marked["x"] == [m["pole"]["real"] for m in modes] and marked["y"] == [m["pole"]["imag"] for m in modes]
+    assert "free_input_direction" in page.locator("#marginal").inner_text()

@@ -117,6 +117,7 @@ def design_controller(
     state_labels: Sequence[str] | None = None,
     terminal: TerminalKind = "none",
     blocking: Sequence[int] | None = None,
+    zone_outputs: Sequence[int] = (),
     input_weight: ArrayLike | None = None,
 ) -> ControllerDesign:
     """Design the unconstrained predictive controller of the design notes.
@@ -147,6 +148,10 @@ def design_controller(
         Steps (0-based, first 0, increasing, below ``Hu``) at which moves are allowed; the
         moves in between are zero, so the input is held (:mod:`service.solver.design.blocking`).
         Default: every step free.
+    zone_outputs : sequence of int, optional
+        Outputs held in a zone by the move QP (their weight in ``Q`` is 0): the closed-loop
+        poles they leave on the unit circle are named ``zone_output``
+        (:mod:`service.solver.design.marginal`).
     input_weight : array_like, shape (m,) or (m, m), optional
         ``S`` on ``u - u_target`` over the control horizon's inputs
         (:mod:`service.solver.design.input_target`).  Default none; an all-zero weight is none.
@@ -238,6 +243,7 @@ def design_controller(
             weighted=rows,
             poles=loop.poles,
             input_weight_root=None if penalty is None else weight_root(penalty.weight),
+            zone_outputs=zone_outputs,
         )
     )
     loop = dataclasses.replace(loop, marginal=marginal, stable=loop.stable and not marginal)

@@ -24,6 +24,13 @@ of the plant and the weights, and each gives an exact eigenvector of the closed-
 ``uncontrollable_mode``
     A left eigenvector ``w' A = lambda w'`` with ``w' B = 0`` gives the left eigenvector
     ``[w; 0]`` of ``M`` (PBH test, :mod:`service.solver.models.modes`).  Fix: the model.
+``zone_output``
+    Any of the first three whose outputs are zone outputs (``zone_outputs``: held in a range by
+    the move QP, weight 0 in ``Q`` by design): an unweighted mode seen only by zone outputs, an
+    input that reaches only zone outputs, or a free input direction that moves a zone output
+    at steady state (the free directions that remain when the zone outputs are weighted stay
+    ``free_input_direction``).  Inside its zone the unconstrained law leaves the output alone
+    on purpose; the move QP holds it in its zone.  No fix is needed.
 ``tuning``
     A pole within :data:`MARGINAL_TOLERANCE` of the circle that none of the above explains.
 
@@ -38,6 +45,7 @@ unweighted, for example) and is left out.
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -89,7 +97,7 @@ class MarginalMode:
         The computed closed-loop pole.
     cause : str
         ``"free_input_direction"``, ``"input_reaches_no_output"``, ``"unweighted_output"``,
-        ``"unobservable_mode"``, ``"uncontrollable_mode"`` or ``"tuning"``.
+        ``"zone_output"``, ``"unobservable_mode"``, ``"uncontrollable_mode"`` or ``"tuning"``.
     inputs, outputs, states : tuple of int
         Indices of the signals the mode concerns: the inputs along a free direction or the
         input no output sees; the outputs with zero weight that see the mode; the states
@@ -298,6 +306,74 @@ def _pair(mode: MarginalMode) -> list[MarginalMode]:
     return [mode, MarginalMode(mode.pole.conjugate(), mode.cause, mode.inputs, mode.outputs, mode.states)]
 
 
+def _zone_modes(
+    structural: list[MarginalMode],
+    zones: tuple[int, ...],
+    *,
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    output_root: NDArray[np.float64],
+    weighted: NDArray[np.float64],
+    input_weight_root: NDArray[np.float64] | None,
+    poles: NDArray[np.complex128],
+) -> list[MarginalMode]:
+    """Relabel the structural modes that the zone outputs cause as ``zone_output``."""
+    zone_set = set(zones)
+    n, m = a.shape[0], b.shape[1]
+    # Which inputs move a zone output at all (Markov parameters C_zone A^k B, k < n + 1).
+    reach = np.zeros((len(zones), m), dtype=bool)
+    if zones and m:
+        block, current = c[list(zones)], b
+        floor = RANK_TOLERANCE * _scale(c) * _scale(b)
+        for _ in range(n + 1):
+            reach |= np.abs(block @ current) > floor
+            current = a @ current
+    out: list[MarginalMode] = []
+    free = [mode for mode in structural if mode.cause == "free_input_direction"]
+    for mode in structural:
+        if mode.cause == "unweighted_output" and mode.outputs and set(mode.outputs) <= zone_set:
+            out.append(dataclasses.replace(mode, cause="zone_output"))
+        elif mode.cause == "input_reaches_no_output" and all(reach[:, j].any() for j in mode.inputs):
+            seen = tuple(i for k, i in enumerate(zones) if reach[k, list(mode.inputs)].any())
+            out.append(dataclasses.replace(mode, cause="zone_output", outputs=seen))
+        elif mode.cause != "free_input_direction":
+            out.append(mode)
+    if not free:
+        return out
+    # The free directions that remain with the zone outputs weighted are truly free; the rest of
+    # their span moves a zone output at steady state.
+    extra = np.zeros((len(zones), output_root.shape[1]))
+    extra[np.arange(len(zones)), list(zones)] = 1.0
+    root = np.vstack([output_root, extra])
+    kept = [
+        mode
+        for mode in _structural_modes(a, b, c, root, weighted, input_weight_root, poles)
+        if mode.cause == "free_input_direction"
+    ]
+    every = np.array([mode.direction for mode in free if mode.direction is not None], dtype=float).T.reshape(m, -1)
+    truly = np.array([mode.direction for mode in kept if mode.direction is not None], dtype=float).T.reshape(m, -1)
+    basis = np.linalg.qr(truly)[0] if truly.size else np.zeros((m, 0))
+    rest = every - basis @ (basis.T @ every)
+    u = np.linalg.svd(rest, full_matrices=False)[0] if rest.size else np.zeros((m, 0))
+    zone_dirs = u[:, : max(len(free) - basis.shape[1], 0)]
+    out += kept[: len(free)]
+    for v in zone_dirs.T:
+        real = v / v[np.argmax(np.abs(v))]
+        moved = np.linalg.lstsq(np.eye(n) - a, b @ real, rcond=None)[0] if n else np.zeros(0)
+        touched = tuple(
+            i
+            for i in zones
+            if abs(float(c[i] @ moved)) > PART_TOLERANCE * max(1.0, float(np.abs(c @ moved).max(initial=0.0)))
+        )
+        out.append(
+            MarginalMode(
+                pole=1.0 + 0.0j, cause="zone_output", inputs=_named(real), outputs=touched or zones, direction=real
+            )
+        )
+    return out
+
+
 def marginal_modes(
     a: NDArray[np.float64],
     b: NDArray[np.float64],
@@ -307,6 +383,7 @@ def marginal_modes(
     weighted: NDArray[np.float64],
     poles: NDArray[np.complex128],
     input_weight_root: NDArray[np.float64] | None = None,
+    zone_outputs: Sequence[int] = (),
 ) -> list[MarginalMode]:
     """Return every closed-loop pole on the unit circle with its cause.
 
@@ -324,6 +401,9 @@ def marginal_modes(
         The computed closed-loop poles.
     input_weight_root : ndarray, shape (m, m), optional
         ``S^(1/2)`` of a weight on ``u - u_target``; ``None`` when there is none.
+    zone_outputs : sequence of int, optional
+        Outputs held in a zone by the move QP (weight 0 in ``Q``): the modes they cause are
+        named ``zone_output``.
 
     Returns
     -------
@@ -344,6 +424,18 @@ def marginal_modes(
     used = np.zeros(computed.size, dtype=bool)
     found: list[MarginalMode] = []
     structural = _structural_modes(a_, b_, c_, output_root, weighted, input_weight_root, computed)
+    if zone_outputs:
+        structural = _zone_modes(
+            structural,
+            tuple(sorted(int(i) for i in zone_outputs)),
+            a=a_,
+            b=b_,
+            c=c_,
+            output_root=output_root,
+            weighted=weighted,
+            input_weight_root=input_weight_root,
+            poles=computed,
+        )
     for mode in structural:
         gap = np.where(used, np.inf, np.abs(computed - mode.pole))
         if not gap.size:
@@ -446,7 +538,7 @@ def marginal_mode_warnings(
                 f"The plant mode(s) at {_pole_text(unweighted)} on the unit circle show only in "
                 f"{names}, which carry no output weight: the controller leaves them where they are "
                 f"(an integrating level with weight 0 drifts). Give one of these outputs a weight "
-                f"(or hold it in a range with limits).",
+                f"(or hold it in a range: zones).",
             )
         )
     unseen = by_cause.get("unobservable_mode", [])
@@ -459,6 +551,20 @@ def marginal_mode_warnings(
                 f"shows (carried by {names}): they stay among the closed-loop poles whatever the "
                 f"tuning. Check the model: remove the states that no output sees (a minimal "
                 f"realization).",
+            )
+        )
+    zoned = by_cause.get("zone_output", [])
+    if zoned:
+        names = _tags(sorted({i for m in zoned for i in m.outputs}), outputs)
+        found.append(
+            (
+                "zone_output",
+                f"{len(zoned)} closed-loop pole(s) at {_pole_text(zoned)} belong to the zone output(s) "
+                f"{names}: inside its zone an output has no weight, so the unconstrained gains leave it "
+                f"(and the input directions that move only it) where it is, by design. This is not "
+                f"instability and needs no change of weights or horizons: the move QP (/simulate) holds "
+                f"the output inside its zone. The fixed gains alone do not: deployed without the QP, "
+                f"an integrating zone output drifts.",
             )
         )
     other = by_cause.get("tuning", [])

@@ -19,6 +19,7 @@ from service.solver.design.controller import ControllerDesign
 from service.solver.evaluation.simulation import PolicyStep
 from service.solver.limits.bounds import Limits
 from service.solver.limits.qp import PRIMAL_TOLERANCE, ActiveLimit, MoveQP, MoveSolution
+from service.solver.limits.zones import Zones
 
 __all__ = ["ConstrainedPolicy", "StepReport", "step_report"]
 
@@ -114,10 +115,17 @@ class ConstrainedPolicy:
 
     @classmethod
     def from_design(
-        cls, design: ControllerDesign, limits: Limits, *, hard_outputs: bool = False, warm_start: str = "previous"
+        cls,
+        design: ControllerDesign,
+        limits: Limits,
+        *,
+        hard_outputs: bool = False,
+        zones: Zones | None = None,
+        warm_start: str = "previous",
     ) -> ConstrainedPolicy:
-        """Set up the move QP of ``design`` under ``limits`` and wrap it."""
-        return cls(MoveQP.from_design(design, limits, hard_outputs=hard_outputs, warm_start=warm_start), limits)
+        """Set up the move QP of ``design`` under ``limits`` (and ``zones``) and wrap it."""
+        qp = MoveQP.from_design(design, limits, hard_outputs=hard_outputs, zones=zones, warm_start=warm_start)
+        return cls(qp, limits)
 
     def __call__(
         self,

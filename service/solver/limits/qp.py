@@ -10,6 +10,10 @@ that is present, ::
                Zfree_i + (G dU)_i <= output_max + s_b    for every penalized step i (soft)
                Zfree_i + (G dU)_i >= output_min - s_b
                s_b >= 0
+               low_j - t_ji <= Zfree_i + (G dU)_i <= high_j + t_ji    for every zone output j
+               t_ji >= 0                                               and penalized step i
+
+with the zone cost ``1/2 sum_ji w_j t_ji^2`` added to the objective (zones, below).
 
 ``H = G'QG + R`` and ``E`` are those of the unconstrained design (:mod:`service.solver.design.gain`);
 with an input weight ``H`` also holds the input-target term and the linear term gains
@@ -30,6 +34,15 @@ the hard problem's multipliers on bound ``b`` (a shared slack's stationarity con
 The small quadratic term ``c = lambda_min(H)`` keeps the QP's Hessian positive definite (the
 solver needs it) without raising its condition number; it does not change an exact solution
 (its gradient vanishes at ``s = 0``).
+
+Zones (:mod:`service.solver.limits.zones`): an output with a zone has no weight in ``Q``
+(the design gives it none) and one slack ``t_ji`` per penalized step, weighted quadratically
+by the zone's ``w_j``.  At the optimum ``t_ji = max(0, z - high_j, low_j - z)``, so inside
+the zone the output floats freely and outside it costs what an output of weight ``w_j``
+tracking the nearest edge would.  The slacks are per step, not shared, because the cost is a
+sum over the horizon; the QP grows by ``Np`` variables and ``2 Np`` rows per zone output.
+When every predicted zone output is inside its zone the unconstrained optimum (with
+``t = 0``) is the QP's solution, as without zones.
 
 Solver: DAQP (the ``daqp`` package), a dual active-set method written for the small dense
 QPs of predictive control, with recursive LDL' updates of the working set.  Its answer is exact
@@ -56,6 +69,7 @@ from service.solver.design.controller import ControllerDesign
 from service.solver.design.gain import FactoredHessian
 from service.solver.design.prediction import Prediction
 from service.solver.limits.bounds import Limits
+from service.solver.limits.zones import Zones
 
 __all__ = [
     "PRIMAL_TOLERANCE",
@@ -132,9 +146,9 @@ class MoveSolution:
         ``"unconstrained"`` (the design's Cholesky solve sufficed) or ``"active_set"``.
     active : tuple of ActiveLimit
         The limits in the solution's active set.
-    variables : ndarray, shape (Hu*m + ns,)
-        ``[dU; s]``, the QP's full solution.
-    multipliers : ndarray, shape (Hu*m + ns + rows,)
+    variables : ndarray, shape (Hu*m + ns + nz,)
+        ``[dU; s; t]``, the QP's full solution (``t``: the zone slacks).
+    multipliers : ndarray, shape (Hu*m + ns + nz + rows,)
         Lagrange multipliers in DAQP's convention: for the bounds on the variables first, then
         the rows of :attr:`MoveProblem.rows`; positive at an upper bound, negative at a lower.
     """
@@ -162,11 +176,13 @@ class MoveProblem:
     Attributes
     ----------
     hessian : ndarray, shape (nv, nv)
-        ``blockdiag(H, c I)`` with ``nv = Hu*m + ns``.
+        ``blockdiag(H, c I, diag(w))`` with ``nv = Hu*m + ns + nz`` (``nz`` zone slacks, step
+        by step over the zone outputs).
     linear : ndarray, shape (nv,)
-        ``f = [-G'QE; rho]``.
+        ``f = [-G'QE; rho; 0]``.
     rows : ndarray, shape (nr, nv)
-        The general constraints (input sums, then output upper rows, then output lower rows).
+        The general constraints (input sums, output upper rows, output lower rows, zone upper
+        rows, zone lower rows).
     lower, upper : ndarray, shape (nv + nr,)
         Bounds on the variables first, then on the rows; ``+-inf`` where absent.
     """
@@ -198,6 +214,8 @@ class MoveQP:
     hard_outputs : bool, optional
         Treat the output limits as hard (no slacks; the step fails when they cannot hold).
         Default false: soft, exact-penalty outputs.
+    zones : Zones, optional
+        Outputs held in a range (see the module notes); their weight in ``Q`` must be zero.
     tolerance : float, optional
         Absolute primal tolerance on every limit (default :data:`PRIMAL_TOLERANCE`).
     iteration_limit : int, optional
@@ -225,6 +243,7 @@ class MoveQP:
         limits: Limits,
         input_pull: NDArray[np.float64] | None = None,
         hard_outputs: bool = False,
+        zones: Zones | None = None,
         tolerance: float = PRIMAL_TOLERANCE,
         iteration_limit: int = 10000,
         warm_start: str = "previous",
@@ -261,29 +280,45 @@ class MoveQP:
         self._out_up, self._out_lo = out_up, out_lo
         ns = 0 if hard_outputs else upper_out.size + lower_out.size
         self._ns = ns
-        nv = nu + ns
-        blocks = [np.hstack([self._in_rows, np.zeros((self._in_rows.shape[0], ns))])]
-        up_block = np.hstack([g[out_up], np.zeros((out_up.size, ns))])
-        lo_block = np.hstack([g[out_lo], np.zeros((out_lo.size, ns))])
+        # Zone outputs: one slack per zone output and penalized step, after the limits' slacks.
+        zoned = np.zeros(0, dtype=np.intp) if zones is None else zones.zoned
+        assert zones is None or zones.outputs == p, (zones.outputs, p)
+        self._zoned = zoned
+        out_zone = (np.arange(steps)[:, None] * p + zoned[None, :]).reshape(-1)
+        self._out_zone = out_zone
+        nz = out_zone.size
+        self._nz = nz
+        nv = nu + ns + nz
+        blocks = [np.hstack([self._in_rows, np.zeros((self._in_rows.shape[0], ns + nz))])]
+        up_block = np.hstack([g[out_up], np.zeros((out_up.size, ns + nz))])
+        lo_block = np.hstack([g[out_lo], np.zeros((out_lo.size, ns + nz))])
         if ns:
             # Row (step t, bound b) carries -s_b (upper) or +s_b (lower).
             up_block[np.arange(out_up.size), nu + np.tile(np.arange(upper_out.size), steps)] = -1.0
             lo_block[np.arange(out_lo.size), nu + upper_out.size + np.tile(np.arange(lower_out.size), steps)] = 1.0
-        self._rows = np.ascontiguousarray(np.vstack([*blocks, up_block, lo_block]))
+        # Zone rows (step t, zone output j): z - t_jt <= high_j and z + t_jt >= low_j.
+        zone_slack = np.hstack([np.zeros((nz, nu + ns)), np.eye(nz)])
+        zone_up = np.hstack([g[out_zone], np.zeros((nz, ns + nz))]) - zone_slack
+        zone_lo = np.hstack([g[out_zone], np.zeros((nz, ns + nz))]) + zone_slack
+        self._rows = np.ascontiguousarray(np.vstack([*blocks, up_block, lo_block, zone_up, zone_lo]))
         nr = self._rows.shape[0]
+        first_out = nv + self._in_rows.shape[0]
         self._ranges = {
-            "input": (nv, nv + self._in_rows.shape[0]),
-            "upper": (nv + self._in_rows.shape[0], nv + self._in_rows.shape[0] + out_up.size),
-            "lower": (nv + self._in_rows.shape[0] + out_up.size, nv + nr),
+            "input": (nv, first_out),
+            "upper": (first_out, first_out + out_up.size),
+            "lower": (first_out + out_up.size, first_out + out_up.size + out_lo.size),
+            "zone_upper": (nv + nr - 2 * nz, nv + nr - nz),
+            "zone_lower": (nv + nr - nz, nv + nr),
         }
 
         curvature = max(hessian.smallest_eigenvalue, np.finfo(float).tiny)
-        self._full_hessian = scipy.linalg.block_diag(hessian.matrix, curvature * np.eye(ns))
+        zone_weight = np.tile(zones.weight[zoned], steps) if zones is not None else np.zeros(0)
+        self._full_hessian = scipy.linalg.block_diag(hessian.matrix, curvature * np.eye(ns), np.diag(zone_weight))
         softness = np.concatenate([limits.output_softness[upper_out], limits.output_softness[lower_out]])
-        self._slack_weight = softness if ns else np.zeros(0)
+        self._slack_weight = np.concatenate([softness if ns else np.zeros(0), np.zeros(nz)])
         # Constant bounds: moves, slacks.
-        self._var_lower = np.concatenate([-np.tile(limits.move_max, hu), np.zeros(ns)])
-        self._var_upper = np.concatenate([np.tile(limits.move_max, hu), np.full(ns, np.inf)])
+        self._var_lower = np.concatenate([-np.tile(limits.move_max, hu), np.zeros(ns + nz)])
+        self._var_upper = np.concatenate([np.tile(limits.move_max, hu), np.full(ns + nz, np.inf)])
         self._shift = self._shift_map(nv, nr, steps)
         lim = limits
         self._lower_template = np.concatenate(
@@ -292,6 +327,8 @@ class MoveQP:
                 np.tile(lim.input_min[limited_in], hu),
                 np.full(out_up.size, -np.inf),
                 np.tile(lim.output_min[lower_out], steps),
+                np.full(nz, -np.inf),
+                np.tile(zones.low[zoned], steps) if zones is not None else np.zeros(0),
             ]
         )
         self._upper_template = np.concatenate(
@@ -300,10 +337,12 @@ class MoveQP:
                 np.tile(lim.input_max[limited_in], hu),
                 np.tile(lim.output_max[upper_out], steps),
                 np.full(out_lo.size, np.inf),
+                np.tile(zones.high[zoned], steps) if zones is not None else np.zeros(0),
+                np.full(nz, np.inf),
             ]
         )
         # What each constraint is, for the report: kind (0 move, 1 input, 2 output; -1 slack
-        # bound), signal index and step.
+        # bound or zone row: a zone is no limit), signal index and step.
         kinds = np.full(nv + nr, -1)
         index = np.zeros(nv + nr, dtype=int)
         step = np.zeros(nv + nr, dtype=int)
@@ -336,6 +375,7 @@ class MoveQP:
         limits: Limits,
         *,
         hard_outputs: bool = False,
+        zones: Zones | None = None,
         tolerance: float = PRIMAL_TOLERANCE,
         iteration_limit: int = 10000,
         warm_start: str = "previous",
@@ -349,6 +389,7 @@ class MoveQP:
             limits=limits,
             input_pull=None if design.input_penalty is None else design.input_penalty.pull,
             hard_outputs=hard_outputs,
+            zones=zones,
             tolerance=tolerance,
             iteration_limit=iteration_limit,
             warm_start=warm_start,
@@ -359,21 +400,26 @@ class MoveQP:
         """Where each kind of constraint sits in :attr:`MoveSolution.multipliers`.
 
         Keys ``"moves"`` (the move bounds, ordered step by step), ``"slacks"`` (``s >= 0``),
-        ``"input"`` (input rows, step by step over the limited inputs), ``"output_max"`` and
-        ``"output_min"`` (output rows, prediction step by step over the bounded outputs).
+        ``"zone_slacks"`` (``t >= 0``), ``"input"`` (input rows, step by step over the limited
+        inputs), ``"output_max"`` and ``"output_min"`` (output rows, prediction step by step over
+        the bounded outputs), ``"zone_max"`` and ``"zone_min"`` (zone rows, step by step over the
+        zone outputs).
         """
         nu = self._hu * self._m
         return {
             "moves": slice(0, nu),
-            "slacks": slice(nu, self.variables),
+            "slacks": slice(nu, nu + self._ns),
+            "zone_slacks": slice(nu + self._ns, self.variables),
             "input": slice(*self._ranges["input"]),
             "output_max": slice(*self._ranges["upper"]),
             "output_min": slice(*self._ranges["lower"]),
+            "zone_max": slice(*self._ranges["zone_upper"]),
+            "zone_min": slice(*self._ranges["zone_lower"]),
         }
 
     @property
     def variables(self) -> int:
-        """``Hu*m + ns``: moves plus slacks."""
+        """``Hu*m + ns + nz``: moves plus slacks (limits' and zones')."""
         return int(self._full_hessian.shape[0])
 
     def _shift_map(self, nv: int, nr: int, steps: int) -> NDArray[np.intp]:
@@ -386,13 +432,21 @@ class MoveQP:
         source = np.full(nv + nr, -1, dtype=np.intp)
         moves = np.arange(hu * m)
         source[moves[: (hu - 1) * m]] = moves[m:]  # du(k+j) <- du(k+j+1)
-        source[hu * m : nv] = np.arange(hu * m, nv)  # slack bounds keep their state
+        ns, nz = self._ns, self._nz
+        source[hu * m : hu * m + ns] = np.arange(hu * m, hu * m + ns)  # shared slacks keep their state
+        width = self._zoned.size  # zone slacks move one step earlier, the last keeps its state
+        zones = np.arange(hu * m + ns, nv)
+        if nz:
+            source[zones[: nz - width]] = zones[width:]
+            source[zones[nz - width :]] = zones[nz - width :]
         # Input and output rows move one block earlier; the last block keeps the last block's
         # state, since the shifted plan ends with a zero move (inputs and outputs level off).
         blocks = (
             ("input", self._in_index.size, hu),
             ("upper", self._upper_out.size, steps),
             ("lower", self._lower_out.size, steps),
+            ("zone_upper", self._zoned.size, steps),
+            ("zone_lower", self._zoned.size, steps),
         )
         for key, width, count in blocks:
             start, _ = self._ranges[key]
@@ -414,6 +468,10 @@ class MoveQP:
         upper[start:stop] -= free_prediction[self._out_up]
         start, stop = self._ranges["lower"]
         lower[start:stop] -= free_prediction[self._out_lo]
+        start, stop = self._ranges["zone_upper"]
+        upper[start:stop] -= free_prediction[self._out_zone]
+        start, stop = self._ranges["zone_lower"]
+        lower[start:stop] -= free_prediction[self._out_zone]
         return lower, upper
 
     def problem(
@@ -479,7 +537,7 @@ class MoveQP:
         nu = self._hu * self._m
         # The unconstrained optimum, by the design's factor: the answer whenever it is feasible.
         moves = self._hessian.solve(-qp.linear[:nu])
-        trial = np.concatenate([moves, np.zeros(self._ns)])
+        trial = np.concatenate([moves, np.zeros(self._ns + self._nz)])
         if self._violation(trial, qp) <= self._tolerance:
             multipliers = np.zeros(qp.lower.size)
             multipliers[nu : self.variables] = -self._slack_weight  # s >= 0 holds its bound
@@ -533,7 +591,7 @@ class MoveQP:
         self, x: NDArray[np.float64], multipliers: NDArray[np.float64], status: str, iterations: int, method: str
     ) -> MoveSolution:
         nu = self._hu * self._m
-        slack = x[nu:]
+        slack = x[nu : nu + self._ns]
         upper = np.zeros(self._p)
         lower = np.zeros(self._p)
         if self._ns:
