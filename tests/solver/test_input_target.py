@@ -267,3 +267,20 @@ def test_fixed_law_with_input_weight_gives_the_run_s_inputs(kind):
     w = np.hstack([run.measured, run.setpoints, targets])
     _, v, _ = scipy.signal.dlsim((sys.a, sys.b, sys.c, sys.d, 1.0), w)
     np.testing.assert_allclose(v[:, :3], run.inputs, rtol=0, atol=1e-10 * np.abs(run.inputs).max())
+
+
+def test_what_if_condition_numbers_with_input_weights_are_those_of_new_designs():
+    # Reference: the Jacobi-scaled condition number of the Hessian of a design made anew with the
+    # shorter control horizon or the scaled move weights (numpy.linalg.eigvalsh of D^-1/2 H D^-1/2).
+    from service.solver.evaluation.advice import _condition_number
+
+    d = design_controller(A, B, C, output_weight=Q, move_weight=R, prediction=12, control=5, input_weight=S_FULL)
+    for scale, control in ((1.0, 3), (10.0, 5), (10.0, 2)):
+        new = design_controller(
+            A, B, C, output_weight=Q, move_weight=scale * R, prediction=12, control=control, input_weight=S_FULL
+        )
+        h = new.hessian.matrix
+        root = np.sqrt(np.diag(h))
+        eig = np.linalg.eigvalsh(h / root[:, None] / root[None, :])
+        got = _condition_number(A, B, C, d, move_scale=scale, control=control)
+        assert got == pytest.approx(eig[-1] / eig[0], rel=1e-8)

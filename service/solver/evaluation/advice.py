@@ -111,7 +111,9 @@ def _condition_number(
     ``Hu``), so its Hessian is the leading ``Hu' m`` block of ``H``
     (:func:`_updated_condition_number`).
     """
-    if design.terminal is None and design.blocking is None:
+    same_horizon = control == design.prediction.control
+    if design.terminal is None and design.blocking is None and (design.input_penalty is None or same_horizon):
+        # (the input-target term's blocks depend on Hu, so a shorter Hu with it is designed anew)
         return _updated_condition_number(design, move_scale=move_scale, control=control)
     pred = design.prediction
     blocking = None if design.blocking is None else [j for j in design.blocking if j < control]
@@ -127,6 +129,7 @@ def _condition_number(
             first_penalized=pred.first_penalized,
             terminal="none" if design.terminal is None else "riccati",
             blocking=blocking,
+            input_weight=design.input_weight,
         )
     except NumericalError:
         return None
