@@ -250,3 +250,27 @@ def test_shortcut_condition_numbers_equal_full_redesigns(rng):
     assert _condition_number(a, b, c, d, move_scale=1.0, control=3) == pytest.approx(
         shorter.hessian.scaled_condition_number, rel=1e-9
     )
+
+
+def test_an_unstable_mode_no_input_moves_is_not_blamed_on_the_tuning():
+    # a = diag(0.5, 1.2), b = [1; 0]: the PBH test (standard linear systems theory) gives
+    # rank [A - 1.2 I, B] = 1 < 2 (numpy.linalg.matrix_rank), so 1.2 stays a closed-loop pole
+    # whatever the horizon or weights; the advice must say so instead of "raise the move weights".
+    a, b, c = np.diag([0.5, 1.2]), np.array([[1.0], [0.0]]), np.array([[1.0, 1.0]])
+    assert np.linalg.matrix_rank(np.hstack([a - 1.2 * np.eye(2), b])) == 1
+    for move in (0.01, 1.0, 100.0):
+        d = design_controller(a, b, c, output_weight=[1.0], move_weight=[move], prediction=40, control=5)
+        assert d.loop.unstable
+        message = next(w.message for w in d.warnings if w.code == "unstable_closed_loop")
+        assert "no tuning can stabilize" in message and "raise the move weights" not in message
+
+
+def test_an_unstable_loop_of_a_controllable_plant_keeps_the_tuning_advice():
+    # The controllable inverse-response loop with a very short horizon and heavy moves is
+    # unstable through its tuning: the advice names the horizon and the move weights.
+    ts = 0.1
+    a, b, c = inverse_response_plant(ts)
+    d = design_controller(a, b, c, output_weight=[1.0], move_weight=[1e4], prediction=5, control=2)
+    assert d.loop.unstable
+    message = next(w.message for w in d.warnings if w.code == "unstable_closed_loop")
+    assert "Lengthen the prediction horizon" in message and "no tuning" not in message

@@ -145,6 +145,7 @@ def design_warnings(
     input_labels: Sequence[str] | None = None,
     output_labels: Sequence[str] | None = None,
     state_labels: Sequence[str] | None = None,
+    fixed_poles: Sequence[complex] = (),
 ) -> list[Diagnostic]:
     """Return the warnings of a design that solved but may not behave.
 
@@ -156,6 +157,11 @@ def design_warnings(
     loop : ClosedLoop
     input_labels, output_labels, state_labels : sequence of str, optional
         Signal tags for the messages (default ``u1..``, ``z1..``, ``x1..``).
+    fixed_poles : sequence of complex, optional
+        Plant modes outside the unit circle that no input can move (PBH test,
+        :func:`service.solver.models.modes.uncontrollable_modes`): they stay closed-loop
+        poles whatever the tuning, so ``unstable_closed_loop`` then says that no tuning
+        fixes them instead of advising a longer horizon or heavier move weights.
 
     Returns
     -------
@@ -202,13 +208,40 @@ def design_warnings(
             )
         )
     if loop.unstable:
-        outside = int(np.count_nonzero(moduli > 1.0 + MARGINAL_TOLERANCE))
+        poles_outside = loop.poles[moduli > 1.0 + MARGINAL_TOLERANCE]
+        fixed = _matched(poles_outside, np.asarray(fixed_poles, dtype=complex))
+        tuned = poles_outside.size - fixed
+        if tuned == 0:
+            advice = (
+                "Every one is a plant mode that no input can move (see uncontrollable_mode), so no "
+                "tuning can stabilize the loop: change the model (its realization, or what the inputs "
+                "reach) or stabilize that mode outside this controller."
+            )
+        elif fixed:
+            advice = (
+                f"{fixed} of them are plant modes that no input can move (see uncontrollable_mode; no "
+                f"tuning moves them); for the other {tuned}, lengthen the prediction horizon or raise the "
+                f"move weights."
+            )
+        else:
+            advice = "Lengthen the prediction horizon, raise the move weights, or check the model."
         found.append(
             Diagnostic(
                 "unstable_closed_loop",
-                f"The closed loop is unstable: {outside} pole(s) lie outside the unit circle "
-                f"(spectral radius {loop.spectral_radius:.6f}). Lengthen the prediction horizon, "
-                f"raise the move weights, or check the model.",
+                f"The closed loop is unstable: {poles_outside.size} pole(s) lie outside the unit circle "
+                f"(spectral radius {loop.spectral_radius:.6f}). {advice}",
             )
         )
     return found
+
+
+def _matched(poles: NDArray[np.complex128], fixed: NDArray[np.complex128]) -> int:
+    """How many of ``poles`` equal one of ``fixed`` (each used once), to ``1e-6`` relative."""
+    left = list(fixed)
+    count = 0
+    for pole in poles:
+        gaps = [abs(pole - f) for f in left]
+        if gaps and min(gaps) <= 1e-6 * max(1.0, abs(pole)):
+            left.pop(int(np.argmin(gaps)))
+            count += 1
+    return count

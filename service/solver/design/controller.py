@@ -28,7 +28,7 @@ from service.solver.design.gain import (
     weighted_moves,
 )
 from service.solver.design.input_target import InputPenalty, input_penalty, input_target_gain, with_input_target
-from service.solver.design.marginal import marginal_modes
+from service.solver.design.marginal import MARGINAL_TOLERANCE, marginal_modes
 from service.solver.design.prediction import Prediction, prediction_matrices
 from service.solver.design.terminal import (
     TerminalKind,
@@ -39,6 +39,7 @@ from service.solver.design.terminal import (
 )
 from service.solver.design.weights import weight_matrix, weight_root
 from service.solver.estimation.target import target_problem
+from service.solver.models.modes import uncontrollable_modes
 
 __all__ = ["ControllerDesign", "design_controller"]
 
@@ -247,12 +248,15 @@ def design_controller(
         )
     )
     loop = dataclasses.replace(loop, marginal=marginal, stable=loop.stable and not marginal)
+    # the plant modes outside the circle no input moves: unstable whatever the tuning
+    fixed = uncontrollable_modes(a_, b_, smallest_modulus=1.0 + MARGINAL_TOLERANCE) if loop.unstable else ()
     warnings = design_warnings(
         condition_number=hessian.scaled_condition_number,
         loop=loop,
         input_labels=input_labels,
         output_labels=output_labels,
         state_labels=state_labels,
+        fixed_poles=tuple(complex(z) for z in fixed),
     )
     return ControllerDesign(
         prediction=pred,
