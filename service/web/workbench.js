@@ -287,13 +287,13 @@ function marginalModes(design) {
 function renderDesign(design, whole) {
   show("summary", true);
   setFigure("spectral-radius", design.closed_loop?.spectral_radius);
-  $("stable").textContent = design.closed_loop?.stable ? "stable (all poles inside the unit circle)" : "NOT stable";
+  $("stable").textContent = loopVerdict(design.closed_loop);
   const h = design.hessian || {};
   setFigure("condition-number", h.condition_number);
   $("eigenvalues").textContent = `${fmt(h.smallest_eigenvalue)}, ${fmt(h.largest_eigenvalue)}`;
   $("hessian-size").textContent = h.size ?? "—";
   const loop = whole.whole_loop;
-  $("whole-loop").textContent = loop ? `spectral radius ${fmt(loop.spectral_radius)}, ${loop.stable ? "stable" : "NOT stable"}` : "— (no estimator in this answer)";
+  $("whole-loop").textContent = loop ? `spectral radius ${fmt(loop.spectral_radius)}, ${loopVerdict(loop)}` : "— (no estimator in this answer)";
   $("conditioning").textContent = conditioningText(h);
   const warnings = [...(design.warnings || []), ...(whole !== design ? whole.warnings || [] : [])];
   const list = $("warnings");
@@ -325,6 +325,19 @@ function renderDesign(design, whole) {
     $("robustness-text").textContent = robustnessText(design.robustness);
   }
   renderGains(design);
+}
+
+/** A loop's verdict in words: a pole on the unit circle by a named structural cause is marginal, not unstable. */
+export function loopVerdict(loop) {
+  if (!loop) return "—";
+  if (loop.stable) return "stable (all poles inside the unit circle)";
+  const modes = Array.isArray(loop.marginal_modes) ? loop.marginal_modes : [];
+  const outside = (loop.poles || []).some((p) => Math.hypot(p.real, p.imag) > 1 + 1e-6);
+  if (modes.length && !outside) {
+    const causes = [...new Set(modes.map((m) => m.cause))].join(", ");
+    return `marginal: ${modes.length} pole(s) on the unit circle (${causes}; see the warnings), none outside`;
+  }
+  return "NOT stable";
 }
 
 function conditioningText(h) {
