@@ -1,8 +1,8 @@
 """POST /design/export: the fixed unconstrained law with its estimator, tagged, in engineering units.
 
 Three steps, as for /design: :func:`check_export_request` (the /design checks, then what the
-law needs: an estimator that reads measurements, no terminal weight, measurements equal to
-the controlled outputs), :func:`compute_export` (design, estimator and the law of
+law needs: an estimator that reads measurements, measurements equal to the controlled
+outputs), :func:`compute_export` (design, estimator and the law of
 :mod:`service.solver.estimation.fixed_law`, changed to the tags' units) and
 :func:`export_response` (the matrices, difference equations and CSV tables).
 :mod:`service.pipeline.structured_text` writes the same law as a function block.
@@ -99,14 +99,6 @@ def _law_problems(request: DesignRequest, inputs: DesignInputs) -> list[FieldPro
                 pointer("estimator", "kind"),
                 "the exported law reads measured outputs, but a full_state estimator reads the plant state, which "
                 "a control system does not measure. Choose an estimator (e.g. per_output, the default)",
-            )
-        )
-    if inputs.terminal != "none":
-        problems.append(
-            FieldProblem(
-                pointer("weights", "terminal"),
-                "the law with a Riccati terminal weight cannot be exported yet (its setpoint path is not part of "
-                "the fixed law). Use terminal 'none'",
             )
         )
     if not np.array_equal(plant.c_measured, plant.c):
