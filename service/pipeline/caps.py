@@ -18,7 +18,10 @@ before any computation:
   compute lane (``service.api.compute``): above ``MOVECAST_HEAVY_WORK`` operations it runs in
   the heavy lane, so that small requests never wait behind large ones (the leading terms of
   the textbook operation counts, Golub and Van Loan, *Matrix Computations*, 4th ed., table
-  1.1.2 and sections 4.2, 7.5, 8.3; a scheduling figure, not a bound).
+  1.1.2 and sections 4.2, 7.5, 8.3; a scheduling figure, not a bound);
+- memory: ``service.pipeline.memory.request_memory``, the peak bytes of any whole request
+  (capped by ``max_request_memory_bytes``), also sends a request that holds much to the heavy
+  lane, whatever its work.
 """
 
 from __future__ import annotations
@@ -89,6 +92,10 @@ class Caps:
     #: the 1 GiB memory limit of ``deploy/``, for the serving process, the fork server and the
     #: compute process's own interpreter and libraries (about 475 MB together, measured).
     max_design_memory_bytes: int = 384 * 1024 * 1024
+    #: Peak bytes of a whole request in the compute process, its answer included
+    #: (``service.pipeline.memory.request_memory``: runs, sweeps, batches, comparisons,
+    #: identifications); the same room inside the pod as the design cap.
+    max_request_memory_bytes: int = 384 * 1024 * 1024
     #: Entries of the horizon gain ``Kh`` returned in a response, and of any other series
     #: a response returns (:func:`horizon_gain_entries`, :func:`run_entries`).
     max_response_entries: int = 2_000_000
