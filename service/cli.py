@@ -151,12 +151,13 @@ def _positive_env(name: str, default: int) -> int:
 def _prepare_process_environment(workers: int) -> None:
     """Set what numpy and prometheus-client read once, at import: before importing them.
 
-    BLAS/OpenMP threads per solver process: the CPUs this process may use divided by the
-    solver processes of all workers (at least 1), unless the variables are already set.
+    BLAS/OpenMP threads of the heavy lane's solver processes: the CPUs this process may use
+    divided by the heavy solver processes of all workers (at least 1), unless the variables
+    are already set.  The light lane always runs one BLAS thread (``service.api.compute``).
     With several workers, a fresh prometheus-client multiprocess folder (or the given one,
     emptied of old samples) so that /metrics adds up every worker.
     """
-    solvers = workers * _positive_env("MOVECAST_SOLVER_PROCESSES", 1)
+    solvers = workers * _positive_env("MOVECAST_HEAVY_SOLVER_PROCESSES", 1)
     cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
     threads = str(max(1, cpus // solvers))
     for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
