@@ -342,7 +342,7 @@ def solver_pool(
 
 
 def _blas_threads_from_env() -> int:
-    """Threads per solver: ``OMP_NUM_THREADS`` when set (``movecast serve`` sets it), else 1."""
+    """Threads per heavy-lane solver: ``OMP_NUM_THREADS`` when set (``movecast serve`` sets 1 unless given), else 1."""
     try:
         return max(1, int(os.environ.get("OMP_NUM_THREADS", "1")))
     except ValueError:
