@@ -145,6 +145,16 @@ def check_operating_point(request: DesignRequest, point: OperatingPointValues, p
                     f"needs one value per {what[:-1]} ({len(signals)}), got {len(values)}",
                 )
             )
+    if isinstance(request, SimulateRequest) and plant.measured_own:
+        problems.append(
+            FieldProblem(
+                pointer("model", "operating_point"),
+                "the run would report the measured outputs (c_measured, d_measured) around an operating point the "
+                "request does not give them (operating_point holds the controlled outputs' values only), so their "
+                "series could only be deviations beside absolute ones. Simulate this model in deviations (leave "
+                "operating_point out), or measure the controlled outputs",
+            )
+        )
     if isinstance(request, SimulateRequest) and request.scenario.true_plant is not None:
         if request.scenario.true_plant.operating_point is not None:
             problems.append(
