@@ -30,7 +30,7 @@ from service.schemas.identify import (
     TagDataReport,
 )
 from service.schemas.model import TransferElementModel, TransferMatrixModel
-from service.schemas.signals import SignalTag
+from service.schemas.signals import OperatingPoint, SignalTag
 from service.solver.identification.data import hold_missing, resample_held, resample_interpolated, sample_grid
 from service.solver.identification.diagnostics import find_outliers, fit_measures, residual_correlations
 from service.solver.identification.least_squares import OutputFit, PairSpec, fit_output
@@ -44,6 +44,7 @@ __all__ = [
     "IdentifyOutcome",
     "check_identify",
     "compute_identify",
+    "fitted_operating_point",
     "identify_response",
     "identify_work",
     "run_identify",
@@ -509,7 +510,7 @@ def _step_steps(structure: str, theta: NDArray[np.float64], sample_time: float, 
 
 
 def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> IdentifyResponse:
-    """The answer: the model for /design, the operating point, parameters, fits and checks."""
+    """The answer: the model for /design (with its operating point), parameters, fits and checks."""
     if outcome.subspace is not None:
         from service.pipeline.identify_subspace import subspace_response
 
@@ -525,7 +526,7 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
     pair_reports: list[PairFitReport] = []
     fit_reports: list[OutputFitReport] = []
     steps: list[StepSeriesReport] = []
-    operating_point = {tag: float(v) for tag, v in zip(column_tags, inputs.operating_point, strict=True)}
+    offsets: list[float] = []
     estimation = np.zeros(n, dtype=bool)
     estimation[: inputs.estimation] = True
     for i, (tag, pairs, fit) in enumerate(zip(inputs.outputs, inputs.pairs, outcome.fits, strict=True)):
@@ -595,7 +596,7 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
         validation = None
         if inputs.estimation < n:
             validation = _segment(y, fit.fitted, ~estimation & present)
-        operating_point[tag] = fit.offset
+        offsets.append(fit.offset)
         fit_reports.append(
             OutputFitReport(
                 output=tag,
@@ -629,16 +630,32 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
         inputs=[SignalTag(name=t) for t in inputs.inputs],
         outputs=[SignalTag(name=t) for t in inputs.outputs],
         disturbances=[SignalTag(name=t) for t in inputs.disturbances] if inputs.disturbances else None,
+        operating_point=fitted_operating_point(inputs, offsets),
     )
     data = data_report(inputs)
     return IdentifyResponse(
         model=model,
-        operating_point=operating_point,
         pairs=pair_reports,
         fits=fit_reports,
         step_responses=steps,
         data=data,
         warnings=warnings,
+    )
+
+
+def fitted_operating_point(inputs: IdentifyInputs, offsets: list[float]) -> OperatingPoint:
+    """The fitted model's ``operating_point``: the model holds for deviations from it.
+
+    The inputs' and measured disturbances' values at the first sample (the deviations the fit
+    used, ``inputs.operating_point``) and each output's fitted offset (``offsets``, one per
+    output, in the order of ``inputs.outputs``).
+    """
+    m = len(inputs.inputs)
+    start = [float(v) for v in inputs.operating_point]
+    return OperatingPoint(
+        inputs=start[:m],
+        outputs=[float(v) for v in offsets],
+        disturbances=start[m:] if inputs.disturbances else None,
     )
 
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.signal
 
-from service.pipeline.identify import IdentifyInputs
+from service.pipeline.identify import IdentifyInputs, fitted_operating_point
 from service.schemas.design import WarningReport
 from service.schemas.identify import (
     CorrelationReport,
@@ -50,14 +50,12 @@ def subspace_response(inputs: IdentifyInputs, model: SubspaceModel, data: DataRe
     estimation = np.zeros(count, dtype=bool)
     estimation[: inputs.estimation] = True
     fits = []
-    operating_point = {tag: float(v) for tag, v in zip(column_tags, inputs.operating_point, strict=True)}
     for i, tag in enumerate(inputs.outputs):
         y = inputs.outputs_data[:, i]
         present = np.isfinite(y)
         residuals = np.where(present, y - fitted[:, i], 0.0)
         used = estimation & present
         auto, cross = residual_correlations(residuals, used, deviations, lags=inputs.lags)
-        operating_point[tag] = float(model.offset[i])
         fits.append(
             OutputFitReport(
                 output=tag,
@@ -112,13 +110,13 @@ def subspace_response(inputs: IdentifyInputs, model: SubspaceModel, data: DataRe
         inputs=[SignalTag(name=t) for t in inputs.inputs],
         outputs=[SignalTag(name=t) for t in inputs.outputs],
         disturbances=[SignalTag(name=t) for t in inputs.disturbances] if inputs.disturbances else None,
+        operating_point=fitted_operating_point(inputs, [float(v) for v in model.offset]),
     )
     return IdentifyResponse(
         model=state_space,
         subspace=SubspaceReport(
             method=METHOD, order=n, block_rows=model.block_rows, singular_values=model.singular_values.tolist()
         ),
-        operating_point=operating_point,
         pairs=[],
         fits=fits,
         step_responses=steps,

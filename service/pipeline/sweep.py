@@ -5,8 +5,11 @@ designed by the same functions as POST /design, or, with a ``scenario``, designe
 simulated by those of POST /simulate (the base design's estimator closing the loop).  The
 base request is checked once (its model converted and sampled once, its true plant too);
 each value only retunes those checked inputs (:func:`service.pipeline.design.retuned_inputs`:
-horizons, weights and the sizes they set are checked again).  The work caps hold for the sweep as a whole: the values' frequency analyses together
-within ``max_frequency_work``, their runs together within ``max_simulation_work``.
+horizons, weights and the sizes they set are checked again).  Whether the values fit the
+parameter (horizons whole numbers >= 1, weights >= 0, ``signal`` for weights only) is the
+schema's own rule (``service.schemas.sweep``).  The work caps hold for the sweep as a whole:
+the values' frequency analyses together within ``max_frequency_work``, their runs together
+within ``max_simulation_work``.
 """
 
 from __future__ import annotations
@@ -69,22 +72,6 @@ def substituted_request(request: SweepRequest, value: float) -> DesignRequest:
     weight = getattr(base.weights, field)
     updated = _weight(weight, request.signal, float(value), len(weight))
     return base.model_copy(update={"weights": base.weights.model_copy(update={field: updated})})
-
-
-def _value_problems(request: SweepRequest) -> list[FieldProblem]:
-    """The values (and ``signal``) must fit the parameter: the sweep request's own cross-field rule.
-
-    Named at the request's root, as the schema's validator named it before it moved here.
-    """
-    if request.parameter in HORIZON_PARAMETERS:
-        if request.signal is not None:
-            return [FieldProblem("", "'signal' applies to weights only; leave it out when sweeping a horizon")]
-        bad = [v for v in request.values if v != int(v) or v < 1]
-        if bad:
-            return [FieldProblem("", f"horizon values must be whole numbers >= 1; got {bad[0]:g}")]
-    elif any(v < 0 for v in request.values):
-        return [FieldProblem("", "weight values must not be negative")]
-    return []
 
 
 def _signal_problem(request: SweepRequest) -> list[FieldProblem]:
@@ -264,9 +251,6 @@ def run_sweep(request: SweepRequest, caps: Caps) -> SweepResponse:
     NumericalError
         When the base model cannot be sampled.
     """
-    found = _value_problems(request)
-    if found:
-        raise InvalidRequest(found)
     scenario = request.scenario
     base_run: SimulationInputs | None = None
     if scenario is None:

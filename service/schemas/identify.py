@@ -205,13 +205,11 @@ class IdentifyResponse(ResponseModel):
 
     model: Annotated[TransferMatrixModel | StateSpaceModel, Field(discriminator="kind")] = Field(
         description="Post it unchanged as a /design model: a transfer matrix, or a discrete state-space model "
-        "from the subspace fit."
+        "from the subspace fit. Its operating_point holds the inputs' (and measured disturbances') values at "
+        "the start of the test and the outputs' fitted offsets: the model holds for deviations from them, and "
+        "a /design or /simulate request with it reads and answers absolute engineering units."
     )
     subspace: SubspaceReport | None = Field(default=None, description="For structure 'subspace'.")
-    operating_point: dict[str, float] = Field(
-        description="Per tag: the inputs' values at the start of the test and the outputs' fitted offsets; "
-        "the model holds for deviations from them."
-    )
     pairs: list[PairFitReport]
     fits: list[OutputFitReport]
     step_responses: list[StepSeriesReport]

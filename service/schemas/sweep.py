@@ -9,7 +9,8 @@ from __future__ import annotations
 
 from typing import Annotated, Literal
 
-from pydantic import Field
+from pydantic import Field, ValidationInfo, field_validator
+from pydantic_core import PydanticCustomError
 
 from service.schemas.common import FiniteFloat, RequestModel, ResponseModel
 from service.schemas.design import ADVISORY, DesignRequest, WarningReport
@@ -32,10 +33,11 @@ class SweepRequest(RequestModel):
     signal: Annotated[int, Field(strict=True, ge=0)] | None = Field(
         default=None,
         description="For a weight: the 0-based index of the signal whose (diagonal) weight is swept; "
-        "null sets every signal's weight to the value.",
+        "null sets every signal's weight to the value. Not allowed when sweeping a horizon.",
     )
     values: Annotated[list[FiniteFloat], Field(min_length=1)] = Field(
-        description="The values to try, in order: weights >= 0, horizons whole numbers >= 1."
+        description="The values to try, in order: weights >= 0, horizons whole numbers >= 1 (a 422 at "
+        "/values names the first value that does not fit the parameter)."
     )
     scenario: ScenarioRequest | None = Field(
         default=None,
@@ -43,6 +45,46 @@ class SweepRequest(RequestModel):
         "(the base design's estimator closes the loop); the runs together stay within the service's "
         "simulation work cap.",
     )
+
+    @field_validator("signal")
+    @classmethod
+    def _signal_fits_the_parameter(cls, signal: int | None, info: ValidationInfo) -> int | None:
+        """A signal index applies to a weight sweep only (named at ``/signal``)."""
+        if signal is not None and info.data.get("parameter") in HORIZON_PARAMETERS:
+            raise PydanticCustomError(
+                "sweep_signal", "'signal' applies to weights only; leave it out when sweeping a horizon"
+            )
+        return signal
+
+    @field_validator("values")
+    @classmethod
+    def _values_fit_the_parameter(cls, values: list[float], info: ValidationInfo) -> list[float]:
+        """Horizon values are whole numbers >= 1, weight values >= 0 (named at ``/values``).
+
+        Skipped when ``parameter`` itself is invalid (its own error names it).
+        """
+        parameter = info.data.get("parameter")
+        if parameter is None:
+            return values
+        if parameter in HORIZON_PARAMETERS:
+            bad = [(i, v) for i, v in enumerate(values) if v != int(v) or v < 1]
+            if bad:
+                i, v = bad[0]
+                raise PydanticCustomError(
+                    "sweep_values",
+                    "horizon values must be whole numbers >= 1; value {index} is {value}",
+                    {"index": i, "value": f"{v:g}"},
+                )
+        else:
+            bad = [(i, v) for i, v in enumerate(values) if v < 0]
+            if bad:
+                i, v = bad[0]
+                raise PydanticCustomError(
+                    "sweep_values",
+                    "weight values must not be negative; value {index} is {value}",
+                    {"index": i, "value": f"{v:g}"},
+                )
+        return values
 
 
 class SweepProblem(ResponseModel):

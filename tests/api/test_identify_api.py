@@ -53,8 +53,10 @@ def test_example_plant_test_recovers_the_plant_and_designs(identified, client_mo
                 estimate = values[name]
                 assert abs(estimate["estimate"] - truth) < 4 * estimate["standard_error"], (key, name, estimate)
         assert values["gain"]["estimate"] == pytest.approx(gain, rel=0.05)
-    assert body["operating_point"]["steam_valve"] == 40.0
-    assert body["operating_point"]["vessel_temperature"] == pytest.approx(82.0, abs=0.05)
+    point = model["operating_point"]  # the test's start (make_plant_test.py) and the fitted offsets
+    assert point["inputs"][0] == 40.0 and len(point["disturbances"]) == 1
+    assert point["outputs"][0] == pytest.approx(82.0, abs=0.05)
+    assert "operating_point" not in body  # only inside the model, where /design reads it
     for fit in body["fits"]:
         assert fit["estimation"]["nrmse_fit_percent"] > 90 and fit["validation"]["samples"] == 180
         assert fit["autocorrelation"]["bound"] == pytest.approx(2.576 / fit["estimation"]["samples"] ** 0.5)
@@ -68,6 +70,34 @@ def test_example_plant_test_recovers_the_plant_and_designs(identified, client_mo
     r = client_module.post("/design", json=design)
     assert r.status_code == 200, r.text
     assert r.json()["closed_loop"]["stable"]
+
+
+def test_the_answers_model_with_its_operating_point_designs_in_absolute_units(identified, client_module) -> None:
+    """The model goes back unchanged, operating point included, and limits are read as absolute values."""
+    model = identified["model"]
+    point = model["operating_point"]
+    design = load_example("design_request_transfer_matrix.json")
+    design["model"] = copy.deepcopy(model)
+    top = point["outputs"][0] + 1.0  # one degree above the fitted operating temperature
+    design["limits"] = {
+        "input_min": [0.0, 0.0],
+        "input_max": [100.0, 100.0],
+        "output_max": [top, None],
+        "nominal_step": [5.0, 0.0],
+    }
+    r = client_module.post("/design", json=design)
+    assert r.status_code == 200, r.text
+    check = r.json()["limit_check"]
+    # A 5 degC step from about 82 degC passes the absolute limit of about 83 degC; read as deviations
+    # from the model's origin (a step to 5 against a limit of 83) it would not.
+    (over,) = [v for v in check["violations"] if v["signal"] == "vessel_temperature"]
+    assert over["limit"] == pytest.approx(top) and over["value"] > top > point["outputs"][0]
+    assert design["model"] == model  # posted as answered
+    # The operating point is in force: a lower steam limit above the test's start is refused.
+    design["limits"]["input_min"] = [point["inputs"][0] + 10.0, 0.0]
+    r = client_module.post("/design", json=design)
+    assert r.status_code == 422 and r.json()["errors"][0]["pointer"] == "/limits/input_min/0"
+    assert "excludes the operating point" in r.json()["errors"][0]["detail"]
 
 
 def test_inputs_that_did_not_move_and_weak_ones_are_warned(client_module) -> None:

@@ -35,6 +35,7 @@ def test_subspace_model_designs_and_matches_the_plant(client) -> None:
     )
     np.testing.assert_allclose(series["value"][:41], truth[:, 0], atol=0.05 * 0.8)
     assert body["fits"][0]["validation"]["nrmse_fit_percent"] > 80
+    assert body["model"]["operating_point"]["inputs"][0] == 40.0 and "operating_point" not in body
     design = load_example("design_request_transfer_matrix.json")
     design["model"] = body["model"]
     design["estimator"] = {"kind": "input_disturbance"}

@@ -109,8 +109,10 @@ def test_a_failing_value_does_not_fail_the_others(client, example):
     [
         (lambda s: s.update(signal=7), "/signal"),
         (lambda s: s.update(values=[]), "/values"),
-        (lambda s: s.update(values=[-1.0]), ""),
-        (lambda s: s.update(parameter="prediction", values=[2.5]), ""),
+        (lambda s: s.update(values=[-1.0]), "/values"),
+        (lambda s: s.update(parameter="prediction", values=[2.5]), "/values"),
+        (lambda s: s.update(parameter="prediction", values=[0]), "/values"),
+        (lambda s: s.update(parameter="control", signal=0, values=[2]), "/signal"),
         (lambda s: s.update(parameter="gain"), "/parameter"),
         (lambda s: s.update(values=[0.1] * 51), "/values"),
     ],

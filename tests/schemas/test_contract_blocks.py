@@ -115,3 +115,18 @@ def test_the_bundled_batch_and_sweep_examples_are_valid_and_unknown_fields_are_r
     assert ("values",) in _refused(SweepRequest, {**sweep, "values": []})
     assert ("values", 0) in _refused(SweepRequest, {**sweep, "values": [math.nan]})
     assert ("sweep",) in _refused(SweepRequest, {**sweep, "sweep": 1})
+
+
+def test_the_sweep_schema_fits_its_values_and_signal_to_the_parameter():
+    """The horizon rule is the schema's own: pydantic names /values or /signal, no pipeline check."""
+    sweep = load_example("sweep_request.json")
+    weights = {**sweep, "parameter": "move_weight", "signal": None}
+    assert ("values",) in _refused(SweepRequest, {**weights, "values": [0.5, -1.0]})
+    horizons = {**sweep, "parameter": "prediction", "signal": None}
+    for bad in ([2.5], [0.0], [3.0, -2.0]):
+        assert ("values",) in _refused(SweepRequest, {**horizons, "values": bad})
+    assert ("signal",) in _refused(SweepRequest, {**horizons, "values": [3.0], "signal": 0})
+    assert SweepRequest.model_validate({**horizons, "values": [3.0, 12.0]}).values == [3.0, 12.0]
+    with pytest.raises(ValidationError) as caught:
+        SweepRequest.model_validate({**horizons, "values": [4.0, 2.5]})
+    assert "value 1 is 2.5" in caught.value.errors()[0]["msg"]

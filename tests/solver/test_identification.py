@@ -165,6 +165,71 @@ def test_second_order_fit_reproduces_the_step_response() -> None:
     )
 
 
+def lsim_second_order_dead_time(
+    truth: tuple[float, float, float, float], u: np.ndarray, *, fine: int = 20
+) -> np.ndarray:
+    """Reference: ``K e^(-theta s)/((tau1 s + 1)(tau2 s + 1))`` at the samples (sample time 1), simulated
+    by scipy.signal.lsim on the continuous transfer function, independently of the service.
+
+    The held input is delayed by ``theta`` on a grid ``fine`` times finer than the samples (the
+    dead times used are whole multiples of its step) and run with ``interp=False``, which holds
+    the input between grid points: exact for a held input delayed by a multiple of the grid step.
+    """
+    gain, tau1, tau2, theta = truth
+    system = scipy.signal.lti([gain], np.polymul([tau1, 1.0], [tau2, 1.0]))
+    dt = 1.0 / fine
+    t = dt * np.arange(u.size * fine)
+    sample = np.floor(np.round((t - theta) / dt, 9) / fine).astype(int)
+    held = np.where(sample >= 0, u[np.clip(sample, 0, None)], 0.0)
+    _, y, _ = scipy.signal.lsim(system, held, t, interp=False)
+    return y[::fine]
+
+
+#: Second-order-plus-dead-time plants (gain, both time constants, dead time; invented): well
+#: separated lags with a fractional dead time, and a negative gain with lags closer together.
+SECOND_ORDER_PLANTS = [(1.2, 9.0, 4.0, 2.5), (-0.7, 6.0, 2.5, 4.35)]
+
+
+def _second_order_fit(truth: tuple[float, float, float, float], seed: int, noise: float):
+    rng = np.random.default_rng(seed)
+    n = 800
+    u = binary_signal(rng, n, 15)
+    y = 5.0 + lsim_second_order_dead_time(truth, u)
+    if noise:
+        y = y + rng.normal(scale=noise, size=n)
+    fit = fit_output(
+        y, u[:, None], [PairSpec(0, SO)], sample_time=1.0, used=np.ones(n, bool), max_dead_time=20, settling_samples=60
+    )
+    order = [0, *sorted((1, 2), key=lambda i: -fit.parameters[0][i]), 3]  # longer time constant first
+    return fit.parameters[0][order], fit.standard_errors[0][order]
+
+
+@pytest.mark.parametrize("truth", SECOND_ORDER_PLANTS)
+def test_second_order_fit_recovers_every_parameter_of_noise_free_data(truth) -> None:
+    # Noise-free data from the plant simulated by scipy.signal.lsim: the least-squares optimum is the
+    # truth itself, so every parameter comes back to the optimizer's tolerance. Stated tolerance:
+    # 1e-6 relative for the gain and both time constants, 1e-6 samples for the dead time.
+    got, _ = _second_order_fit(truth, seed=2, noise=0.0)
+    gain, tau1, tau2, theta = truth
+    assert got[0] == pytest.approx(gain, rel=1e-6)
+    assert got[1] == pytest.approx(tau1, rel=1e-6)
+    assert got[2] == pytest.approx(tau2, rel=1e-6)
+    assert got[3] == pytest.approx(theta, abs=1e-6)
+
+
+@pytest.mark.parametrize("truth", SECOND_ORDER_PLANTS)
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_second_order_standard_errors_cover_the_truth_with_noise(truth, seed) -> None:
+    # The same plant with white noise (standard deviation 2 % of the gain): each true value lies within
+    # 3 reported standard errors (a 99.7 % interval of a normal estimate, common practice), and the
+    # standard errors are small enough to mean something (each below 5 % of its parameter).
+    got, se = _second_order_fit(truth, seed=seed, noise=0.02 * abs(truth[0]))
+    want = np.array(truth)
+    assert np.all(np.isfinite(se)) and np.all(se > 0)
+    assert np.all(np.abs(got - want) <= 3.0 * se), (got, se, (got - want) / se)
+    assert np.all(se < 0.05 * np.abs(want))
+
+
 def test_outliers_found_and_steps_kept() -> None:
     rng = np.random.default_rng(4)
     y = np.concatenate((np.zeros(100), 5.0 * np.ones(100))) + rng.normal(scale=0.1, size=200)
