@@ -248,7 +248,7 @@ def scaled_estimator(inputs: EstimatorInputs, plant: DiscretePlant, scaled: Scal
         model, a Riccati equation without a stabilizing solution), or pointer ``/estimator``
         when the gain or poles come out as numbers that are not finite.
     """
-    su, sy = plant.input_spans, plant.measured_spans
+    sy = plant.measured_spans
     s_dist = disturbance_spans(plant, inputs.disturbance)
     cm, dm = scaled_measured(plant) if plant.measured_own else (None, None)
     estimator = design_estimator(
