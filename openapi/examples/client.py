@@ -24,6 +24,7 @@ __all__ = [
     "BatchItem",
     "BatchItemResult",
     "DesignResponse",
+    "IdentifyResponse",
     "MovecastClient",
     "ProblemError",
 ]
@@ -70,6 +71,15 @@ class DesignResponse(TypedDict):
     warnings: list[Warning_]
     fingerprint: str
     advisory: str
+
+
+class IdentifyResponse(TypedDict):
+    """The fields of the /identify answer this client reads; ``model`` posts back to /design unchanged."""
+
+    model: dict[str, Any]
+    pairs: list[dict[str, Any]]
+    fits: list[dict[str, Any]]
+    warnings: list[Warning_]
 
 
 class FieldError(TypedDict):
@@ -156,12 +166,24 @@ class MovecastClient:
     def __exit__(self, *exc: object) -> None:
         self.close()
 
-    def _send(self, method: str, path: str, body: Any = None) -> Any:
+    def _send(
+        self,
+        method: str,
+        path: str,
+        body: Any = None,
+        *,
+        csv: bytes | None = None,
+        params: dict[str, str | float | bool] | None = None,
+    ) -> Any:
         assert self.http is not None
         headers = {"X-Request-ID": uuid.uuid4().hex}
         if self.api_key:
             headers["Authorization"] = f"Bearer {self.api_key}"
-        response = self.http.request(method, path, json=body, headers=headers)
+        if csv is not None:
+            headers["Content-Type"] = "text/csv"
+            response = self.http.request(method, path, content=csv, params=params, headers=headers)
+        else:
+            response = self.http.request(method, path, json=body, headers=headers)
         if response.is_error:
             try:
                 problem = response.json()
@@ -185,6 +207,20 @@ class MovecastClient:
     def design_batch(self, items: list[BatchItem]) -> list[BatchItemResult]:
         """POST /design/batch: one result per item, in order."""
         answer: list[BatchItemResult] = self._send("POST", "/design/batch", {"items": items})["items"]
+        return answer
+
+    def identify(self, request: dict[str, Any]) -> IdentifyResponse:
+        """POST /identify with the plant test as JSON columns."""
+        answer: IdentifyResponse = self._send("POST", "/identify", request)
+        return answer
+
+    def identify_csv(self, csv: bytes, **choices: str | float | bool) -> IdentifyResponse:
+        """POST /identify with a historian's CSV export (text/csv) and the choices as query parameters.
+
+        ``choices`` are the query parameters: ``sample_time``, ``inputs`` and ``outputs`` (tags
+        comma-separated) at least.
+        """
+        answer: IdentifyResponse = self._send("POST", "/identify", csv=csv, params=dict(choices))
         return answer
 
     def healthy(self) -> bool:

@@ -10,6 +10,12 @@ Before FastAPI sees the request it
    it strictly (:func:`parse_json`) and validates it with the route's request model;
 3. hands FastAPI the validated model, which it accepts as it is.
 
+A route class made by :func:`csv_body_route` also takes a ``text/csv`` body (charset UTF-8
+when given): its reader turns the CSV and the query parameters into the same request model,
+in the same worker pool, and the handler receives it as if it had come as JSON.  A JSON body
+on such a route takes no query parameters (422 naming each one), so a choice is never
+silently ignored.
+
 Problems come back as :class:`~service.errors.MalformedBody` (400),
 :class:`~service.errors.UnsupportedMediaType` (415) or
 :class:`~service.errors.InvalidRequest` (422, one entry per field, pointers into the body).
@@ -21,8 +27,8 @@ A huge list of bad entries costs little: matrices and vectors stop at their firs
 from __future__ import annotations
 
 import json
-from collections.abc import Callable, Coroutine
-from typing import Any
+from collections.abc import Callable, Coroutine, Mapping
+from typing import Any, ClassVar
 
 import anyio
 from fastapi import Request, Response
@@ -32,7 +38,11 @@ from pydantic import BaseModel, ValidationError
 from service.errors import FieldProblem, InvalidRequest, MalformedBody, UnsupportedMediaType
 from service.pipeline.problems import pointer, validation_problems
 
-__all__ = ["CheckedBodyRoute", "parse_and_validate", "parse_json"]
+__all__ = ["CheckedBodyRoute", "CsvReader", "csv_body_route", "csv_content_type", "parse_and_validate", "parse_json"]
+
+#: Reads a ``text/csv`` body and its query parameters (each given once) into the route's request
+#: model; raises ``InvalidRequest`` naming the cell or the parameter.  Runs in a worker thread.
+CsvReader = Callable[[bytes, Mapping[str, str]], BaseModel]
 
 #: Digits beyond which a JSON integer is read as a float (no field takes so large an integer;
 #: Python refuses to convert integers of more than 4300 digits at all).
@@ -142,19 +152,29 @@ def parse_and_validate(body: bytes, model: type[BaseModel]) -> BaseModel:
         raise MalformedBody("The request body is nested too deeply to be a request.") from None
 
 
-def json_content_type(value: str | None) -> bool:
-    """Whether a ``Content-Type`` names JSON in UTF-8 (``application/json``, ``application/*+json``)."""
+def _utf8_media(value: str | None) -> str | None:
+    """The media type of a ``Content-Type`` (lower case), or None when absent or not in UTF-8."""
     if not value:
-        return False
+        return None
     media, *params = (part.strip() for part in value.split(";"))
-    media = media.lower()
-    if not (media == "application/json" or (media.startswith("application/") and media.endswith("+json"))):
-        return False
     for param in params:
         key, _, given = param.partition("=")
         if key.strip().lower() == "charset" and given.strip().strip('"').lower() not in {"utf-8", "utf8"}:
-            return False
-    return True
+            return None
+    return media.lower()
+
+
+def json_content_type(value: str | None) -> bool:
+    """Whether a ``Content-Type`` names JSON in UTF-8 (``application/json``, ``application/*+json``)."""
+    media = _utf8_media(value)
+    return media is not None and (
+        media == "application/json" or (media.startswith("application/") and media.endswith("+json"))
+    )
+
+
+def csv_content_type(value: str | None) -> bool:
+    """Whether a ``Content-Type`` names CSV (``text/csv``, RFC 4180) in UTF-8."""
+    return _utf8_media(value) == "text/csv"
 
 
 def _limiter() -> anyio.CapacityLimiter:
@@ -164,8 +184,36 @@ def _limiter() -> anyio.CapacityLimiter:
     return _parse_limiter
 
 
+def _once(query: Any) -> dict[str, str]:
+    """The query parameters as a mapping; one given more than once is a 422 naming it."""
+    items = list(query.multi_items())
+    names = [name for name, _ in items]
+    repeated = sorted({name for name in names if names.count(name) > 1})
+    if repeated:
+        raise InvalidRequest(
+            [FieldProblem(pointer(name), "this query parameter is given more than once") for name in repeated]
+        )
+    return dict(items)
+
+
+def _as_json(request: Request, body: bytes, model: BaseModel) -> Request:
+    """The same request as FastAPI reads a JSON one: content type JSON, its validated model as the JSON."""
+    scope = dict(request.scope)
+    scope["headers"] = [
+        *((k, v) for k, v in request.scope["headers"] if k.lower() != b"content-type"),
+        (b"content-type", b"application/json"),
+    ]
+    forwarded = Request(scope, request.receive)
+    forwarded._body = body
+    forwarded._json = model
+    return forwarded
+
+
 class CheckedBodyRoute(APIRoute):
     """A route whose JSON body is checked by :func:`parse_and_validate` in a worker thread."""
+
+    #: The reader of ``text/csv`` bodies (:func:`csv_body_route`); None: JSON only.
+    csv_reader: ClassVar[CsvReader | None] = None
 
     def get_route_handler(self) -> Callable[[Request], Coroutine[Any, Any, Response]]:
         handler = super().get_route_handler()
@@ -176,9 +224,30 @@ class CheckedBodyRoute(APIRoute):
         if not (isinstance(model, type) and issubclass(model, BaseModel)):
             return handler
 
+        reader = type(self).csv_reader
+
         async def checked(request: Request) -> Response:
-            if not json_content_type(request.headers.get("content-type")):
-                raise UnsupportedMediaType("Send the request body as JSON with 'Content-Type: application/json'.")
+            content_type = request.headers.get("content-type")
+            if reader is not None and csv_content_type(content_type):
+                query = _once(request.query_params)
+                body = await request.body()
+                read = await anyio.to_thread.run_sync(reader, body, query, limiter=_limiter())
+                return await handler(_as_json(request, body, read))
+            if not json_content_type(content_type):
+                also = " or as CSV with 'Content-Type: text/csv'" if reader is not None else ""
+                raise UnsupportedMediaType(
+                    f"Send the request body as JSON with 'Content-Type: application/json'{also}."
+                )
+            if reader is not None and request.query_params:
+                raise InvalidRequest(
+                    [
+                        FieldProblem(
+                            pointer(name),
+                            "query parameters go with a text/csv body only; with JSON, give the choice in the body",
+                        )
+                        for name in sorted(set(request.query_params.keys()))
+                    ]
+                )
             body = await request.body()
             if not body.strip():
                 raise InvalidRequest([FieldProblem("", "the request body is required: a JSON object")])
@@ -186,3 +255,8 @@ class CheckedBodyRoute(APIRoute):
             return await handler(request)
 
         return checked
+
+
+def csv_body_route(reader: CsvReader) -> type[CheckedBodyRoute]:
+    """A :class:`CheckedBodyRoute` that also takes ``text/csv`` bodies, read by ``reader``."""
+    return type("CsvOrJsonBodyRoute", (CheckedBodyRoute,), {"csv_reader": staticmethod(reader)})

@@ -1,7 +1,7 @@
 """POST /design/export: the fixed unconstrained law with its estimator, tagged, in engineering units.
 
 Three steps, as for /design: :func:`check_export_request` (the /design checks, then what the
-law needs: no terminal weight, no measured feed-through), :func:`compute_export` (design, estimator and the law of
+law needs: no measured feed-through), :func:`compute_export` (design, estimator and the law of
 :mod:`service.solver.estimation.fixed_law`, changed to the tags' units) and
 :func:`export_response` (the matrices, difference equations and CSV tables).
 :mod:`service.pipeline.structured_text` writes the same law as a function block.
@@ -94,14 +94,6 @@ def _law_problems(request: DesignRequest, inputs: DesignInputs) -> list[FieldPro
     plant = inputs.plant
     problems: list[FieldProblem] = []
     assert inputs.estimator is not None
-    if inputs.terminal != "none":
-        problems.append(
-            FieldProblem(
-                pointer("weights", "terminal"),
-                "the law with a Riccati terminal weight cannot be exported yet (its setpoint path is not part of "
-                "the fixed law). Use terminal 'none'",
-            )
-        )
     if np.any(plant.d_measured) and inputs.estimator.kind != "full_state":
         i, j = (int(k) for k in np.argwhere(plant.d_measured)[0])
         problems.append(

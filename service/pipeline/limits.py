@@ -203,12 +203,17 @@ def limited_run(
                 output_root=design.output_root,
                 limits=scaled,
                 input_pull=None if design.input_penalty is None else design.input_penalty.pull,
+                terminal_rows=None
+                if design.terminal is None
+                else (design.terminal.weighted_moves, design.terminal.root),
                 hard_outputs=limits.hard_outputs,
                 zones=held,
             )
             policy = ConstrainedPolicy(qp, scaled)
         target = ReachableTargetRule.from_loop(loop, scaled)
-        exact = GainWhenFreePolicy(policy, loop.horizon_gain, design.input_target_gain)
+        exact = GainWhenFreePolicy(
+            policy, loop.horizon_gain, design.input_target_gain, None if loop.terminal is None else loop.terminal.gain
+        )
     except (ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:  # pragma: no cover - defensive
         raise NumericalError(f"The limits' QP could not be set up: {exc}", field=("limits",)) from exc
     return LimitedRun(

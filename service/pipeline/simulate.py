@@ -59,7 +59,7 @@ from service.schemas.simulate import (
     TrueLoopReport,
     WholeLoopReport,
 )
-from service.solver.estimation.estimator import Estimator
+from service.solver.estimation.estimator import Estimator, unmeasured_outputs
 from service.solver.estimation.loop import TrueLoop, WholeLoop, control_loop, true_loop, whole_loop
 from service.solver.evaluation.divergence import DIVERGENCE_LEVEL, divergence_onset
 from service.solver.evaluation.performance import Performance, loop_performance
@@ -392,6 +392,20 @@ def _warnings(inputs: SimulationInputs, outcome: SimulationOutcome) -> list[Warn
                 f"figures of merit are null. Check the true plant against the model, or detune the controller.",
             )
         )
+    plant = inputs.design.plant
+    if plant.measured_own and not outcome.estimator.full_state:
+        hidden = unmeasured_outputs(plant.c, plant.c_measured)
+        if np.any(hidden):
+            names = ", ".join(repr(s.name) for s, h in zip(plant.outputs, hidden, strict=True) if h)
+            out.append(
+                WarningReport(
+                    code="unmeasured_controlled_output",
+                    message=f"{names} is no combination of the measured outputs: the estimator infers it from the "
+                    f"model, so it is held offset-free only against model error that the disturbance model "
+                    f"explains through the state (an input gain error with input_disturbance), not against a bias "
+                    f"on the output itself. Check it on a true_plant, or measure it.",
+                )
+            )
     out += [WarningReport(code=d.code, message=d.message) for d in inputs.limit_warnings]
     return out
 

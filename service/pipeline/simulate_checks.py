@@ -302,14 +302,6 @@ def check_simulate_request(request: SimulateRequest, caps: Caps) -> SimulationIn
         plant, _ = plant_arrays(request.model, caps)
     if plant is None:
         raise InvalidRequest(problems)
-    if request.weights.terminal != "none":
-        problems.append(
-            FieldProblem(
-                pointer("weights", "terminal"),
-                "/simulate does not simulate the Riccati terminal weight yet: the simulated law would leave out "
-                "its terminal term and differ from the design's gains. Use terminal 'none' to preview the loop",
-            )
-        )
     true, found = _true_plant_problems(request, plant, caps)
     problems += found
 

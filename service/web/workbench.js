@@ -119,20 +119,20 @@ async function identifyCsv() {
   const h = headers();
   h["Content-Type"] = "text/csv";
   $("identify-csv").disabled = true;
-  setStatus("Running POST /identify/csv…");
+  setStatus("Running POST /identify (text/csv)…");
   const started = performance.now();
   try {
-    const response = await fetch(url(`identify/csv?${query}`), { method: "POST", headers: h, body: state.csv });
+    const response = await fetch(url(`identify?${query}`), { method: "POST", headers: h, body: state.csv });
     const answer = await response.json().catch(() => null);
     if (!response.ok) {
-      handleFailure(response, answer, "identify/csv");
+      handleFailure(response, answer, "identify");
       return;
     }
     state.request = Object.fromEntries(query);
     state.answer = answer;
-    state.endpoint = "identify/csv";
+    state.endpoint = "identify";
     render("identify", answer, state.request);
-    setStatus(`POST /identify/csv answered in ${Math.round(performance.now() - started)} ms.`);
+    setStatus(`POST /identify (text/csv) answered in ${Math.round(performance.now() - started)} ms.`);
   } catch (error) {
     setStatus(`The service could not be reached: ${error.message}`);
   } finally {

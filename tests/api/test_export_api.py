@@ -82,8 +82,16 @@ def _three_valves_with_targets():
     return body
 
 
+def _vessel_riccati():
+    body = _vessel()
+    body["weights"]["terminal"] = "riccati"
+    body["horizons"] = {"prediction": 10, "control": 4, "first_penalized": 1}
+    return body
+
+
 CASES = {
     "vessel, 20 % gain error, noise": _vessel,
+    "vessel with the Riccati terminal weight": _vessel_riccati,
     "transfer matrix: dead times, integrating level, measured flow, spans": _transfer_matrix,
     "three valves for two outputs": _three_valves,
     "three valves with input targets": _three_valves_with_targets,
@@ -354,7 +362,6 @@ def test_reset_restarts_from_rest(client):
             lambda b: b["model"].update(c_measured=b["model"]["c"], d_measured=[[0.1, 0.0], [0.0, 0.0]]),
             "/model/d_measured/0",
         ),
-        (lambda b: b["weights"].update(terminal="riccati"), "/weights/terminal"),
         (lambda b: b.update(format="ladder"), "/format"),
         (lambda b: b.update(block_name="2nd law"), "/block_name"),
         (lambda b: b.update(block_name="a__b"), "/block_name"),

@@ -1,4 +1,5 @@
-"""Plant-test CSV to a model: POST /identify/csv, resampling, caps, and `movecast identify`."""
+"""Plant-test CSV to a model: POST /identify with text/csv (and its deprecated alias /identify/csv),
+resampling, caps, and `movecast identify`."""
 
 from __future__ import annotations
 
@@ -44,7 +45,7 @@ def test_the_csv_is_the_json_example() -> None:
 
 def test_csv_to_identify_to_design_in_two_requests(make_client) -> None:
     client = make_client()
-    r = client.post("/identify/csv", params=QUERY, content=csv_body(), headers={"Content-Type": "text/csv"})
+    r = client.post("/identify", params=QUERY, content=csv_body(), headers={"Content-Type": "text/csv"})
     assert r.status_code == 200, r.text
     design = load_example("design_request_transfer_matrix.json")
     design["model"] = r.json()["model"]
@@ -83,16 +84,71 @@ def test_bad_csv_names_the_cell(make_client) -> None:
     client = make_client()
     text = csv_body().decode().splitlines()
     text[6] = text[6].replace("55.0", "open", 1)
-    r = client.post(
-        "/identify/csv", params=QUERY, content="\n".join(text).encode(), headers={"Content-Type": "text/csv"}
-    )
-    body = assert_problem(r, 422, "invalid-request")
-    assert body["errors"][0]["pointer"] == "/data/outlet_valve/5"
-    r = client.post("/identify/csv", params=QUERY, content=b"\xff\xfe\x00", headers={"Content-Type": "text/csv"})
-    assert assert_problem(r, 422, "invalid-request")["errors"][0]["pointer"] == "/body"
+    for path in ("/identify", "/identify/csv"):
+        r = client.post(path, params=QUERY, content="\n".join(text).encode(), headers={"Content-Type": "text/csv"})
+        body = assert_problem(r, 422, "invalid-request")
+        assert body["errors"][0]["pointer"] == "/data/outlet_valve/5"
+        r = client.post(path, params=QUERY, content=b"\xff\xfe\x00", headers={"Content-Type": "text/csv"})
+        assert assert_problem(r, 422, "invalid-request")["errors"][0]["pointer"] == "/body"
     with pytest.raises(InvalidRequest) as caught:
         identify_request_from_csv(csv_body(), IdentifyCsvOptions.model_validate({**QUERY, "inputs": "steam"}))
     assert caught.value.problems[0].pointer == "/inputs"
+
+
+def test_identify_takes_json_or_csv_and_the_deprecated_path_answers_the_same(make_client) -> None:
+    client = make_client()
+    csv_headers = {"Content-Type": "text/csv; charset=utf-8"}
+    from_csv = client.post("/identify", params=QUERY, content=csv_body(), headers=csv_headers)
+    assert from_csv.status_code == 200, from_csv.text
+    from_json = client.post("/identify", json=load_example("identify_request.json"))
+    assert from_json.status_code == 200, from_json.text
+    # The CSV carries a time column the JSON example leaves out (samples one sample time apart):
+    # the same data, so the same model.
+    assert from_csv.json()["model"] == from_json.json()["model"]
+    alias = client.post("/identify/csv", params=QUERY, content=csv_body(), headers=csv_headers)
+    assert alias.status_code == 200 and alias.json() == from_csv.json()
+
+
+@pytest.mark.parametrize(
+    "content_type", ["text/plain", "application/xml", "application/x-www-form-urlencoded", "text/csv; charset=latin-1"]
+)
+def test_identify_refuses_other_content_types_with_415(make_client, content_type) -> None:
+    r = make_client().post("/identify", params=QUERY, content=csv_body(), headers={"Content-Type": content_type})
+    body = assert_problem(r, 415, "unsupported-media-type")
+    assert "text/csv" in body["detail"] and "application/json" in body["detail"]
+
+
+def test_identify_query_parameters_go_with_csv_only_and_are_checked(make_client) -> None:
+    client = make_client()
+    r = client.post("/identify", params={"sample_time": 2.0}, json=load_example("identify_request.json"))
+    body = assert_problem(r, 422, "invalid-request")
+    assert [e["pointer"] for e in body["errors"]] == ["/sample_time"] and "text/csv" in body["errors"][0]["detail"]
+    csv_headers = {"Content-Type": "text/csv"}
+    cases = [
+        ({**QUERY, "sample_time": "-1"}, "/sample_time"),
+        ({k: v for k, v in QUERY.items() if k != "outputs"}, "/outputs"),
+        ({**QUERY, "window": "3"}, "/window"),
+        ({**QUERY, "structure": "third_order"}, "/structure"),
+    ]
+    for params, where in cases:
+        r = client.post("/identify", params=params, content=csv_body(), headers=csv_headers)
+        assert where in [e["pointer"] for e in assert_problem(r, 422, "invalid-request")["errors"]], (params, r.text)
+    repeated = client.post(
+        "/identify", params=[*QUERY.items(), ("sample_time", 2.0)], content=csv_body(), headers=csv_headers
+    )
+    body = assert_problem(repeated, 422, "invalid-request")
+    assert body["errors"][0]["pointer"] == "/sample_time" and "more than once" in body["errors"][0]["detail"]
+
+
+def test_the_openapi_document_offers_csv_on_identify_and_marks_the_old_path_deprecated(make_client) -> None:
+    document = make_client().get("/openapi.json").json()
+    operation = document["paths"]["/identify"]["post"]
+    assert set(operation["requestBody"]["content"]) == {"application/json", "text/csv"}
+    query = {p["name"]: p for p in operation["parameters"] if p["in"] == "query"}
+    assert set(query) == set(IdentifyCsvOptions.model_fields)
+    assert not any(p["required"] for p in query.values())  # a JSON body takes none of them
+    assert document["paths"]["/identify/csv"]["post"]["deprecated"] is True
+    assert not operation.get("deprecated", False)
 
 
 def test_data_length_cap_from_settings(make_client) -> None:

@@ -172,6 +172,24 @@ def test_an_unmeasured_controlled_output_is_offset_free_under_gain_error(client)
     assert sim["columns"]["measured"] == ["outlet_temp"] and sim["columns"]["measured_own"]
     assert sim["estimator"]["gain"]["columns"] == ["outlet_temp"]
     assert sim["true_loop"]["stable"] and sim["whole_loop"]["separation_holds"]
+    warned = [w for w in sim["warnings"] if w["code"] == "unmeasured_controlled_output"]
+    assert len(warned) == 1 and "'inlet_temp'" in warned[0]["message"]
+
+
+def test_an_output_bias_cannot_hold_an_unmeasured_output_and_the_answer_says_so(client):
+    body = _body(noise=False, steps=140)
+    body["estimator"] = {"kind": "per_output"}  # a bias on the measured outlet temperature
+    sim = _simulate(client, body).json()
+    ym, z = np.array(sim["measured"])[:, 0], np.array(sim["outputs"])[:, 0]
+    # the steady state of the true plant (x2 = x1 at rest, its gain 20 % high): the model's inferred
+    # inlet temperature is held at 1, the true one settles 1.2 times higher, as does the outlet
+    assert abs(z[49] - 1.2) < 1e-3 and abs(ym[49] - 1.2) < 1e-3
+    assert "unmeasured_controlled_output" in [w["code"] for w in sim["warnings"]]
+    measured = copy.deepcopy(body)
+    measured["model"]["c_measured"] = measured["scenario"]["true_plant"]["c_measured"] = [[1.0, 0.0]]
+    plain = _simulate(client, measured).json()  # measuring the controlled output itself: no warning
+    assert "unmeasured_controlled_output" not in [w["code"] for w in plain["warnings"]]
+    assert abs(plain["outputs"][-1][0] - 1.0) < 1e-6
 
 
 @pytest.mark.parametrize("d_measured", [None, [[0.2]]], ids=["c_measured", "c_measured and d_measured"])

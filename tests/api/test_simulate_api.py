@@ -477,7 +477,6 @@ def _edit(path, value):
             "/estimator/measurement_noise",
         ),
         (_edit(("horizons", "control"), 50), "/horizons/control"),
-        (_edit(("weights", "terminal"), "riccati"), "/weights/terminal"),
     ],
 )
 def test_bad_input_is_a_422_naming_the_field(client, request_body, edit, pointer):

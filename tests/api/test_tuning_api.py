@@ -236,10 +236,6 @@ def test_sweep_analyses_together_respect_the_frequency_work_cap(make_client):
             lambda s: s.update(scenario={"steps": 10, "setpoint_changes": [{"step": 20, "setpoint": [1.0, 0.0]}]}),
             "/scenario/setpoint_changes/0/step",
         ),
-        (
-            lambda s: s.update(scenario={"steps": 10}) or s["design"]["weights"].update(terminal="riccati"),
-            "/design/weights/terminal",
-        ),
     ],
 )
 def test_bad_analysis_estimator_or_scenario_of_a_sweep_name_the_field(client, edit, pointer):

@@ -361,8 +361,9 @@ def test_a_narrow_window_keeps_every_control_labelled_and_reachable_by_keyboard(
 
 
 def test_a_plant_test_csv_is_fitted_and_its_model_opens_as_a_design(workbench, server):
-    # The page posts the CSV to /identify/csv with the options of its form; what it shows is the
-    # service's own answer to the same call (httpx), and the fitted model opens as a design.
+    # The page posts the CSV to /identify (Content-Type text/csv) with the options of its form as query
+    # parameters; what it shows is the service's own answer to the same call (httpx), and the fitted
+    # model opens as a design.
     page = workbench
     path = EXAMPLES / "plant_test.csv"
     options = {"sample_time": "1", "inputs": "steam_valve", "outputs": "vessel_temperature"}
@@ -371,14 +372,17 @@ def test_a_plant_test_csv_is_fitted_and_its_model_opens_as_a_design(workbench, s
     page.wait_for_selector("[data-testid=csv-options]", state="visible", timeout=10_000)
     page.fill("#csv-inputs", options["inputs"])
     page.fill("#csv-outputs", options["outputs"])
-    page.get_by_test_id("identify-csv").click()
+    with page.expect_request(lambda r: r.method == "POST" and "/identify" in r.url) as sent:
+        page.get_by_test_id("identify-csv").click()
+    assert sent.value.url.split("?")[0] == f"{server.base}/identify"  # not the deprecated /identify/csv
+    assert sent.value.headers["content-type"] == "text/csv"
     page.wait_for_function(
         "document.getElementById('status').textContent.includes('answered') || !document.getElementById('errors').hidden",
         timeout=120_000,
     )
     assert page.get_by_test_id("errors").is_hidden(), page.get_by_test_id("errors").inner_text()
     answer = httpx.post(
-        f"{server.base}/identify/csv",
+        f"{server.base}/identify",
         params={**options, "structure": "first_order_dead_time"},
         content=path.read_bytes(),
         headers={"content-type": "text/csv"},

@@ -1,23 +1,43 @@
-"""POST /identify: plant-test data to a fitted model that /design takes unchanged."""
+"""POST /identify: plant-test data to a fitted model that /design takes unchanged.
+
+The data come as JSON columns (``application/json``) or as a historian's CSV export
+(``text/csv``) with the choices as query parameters (``service.schemas.identify_csv``);
+anything else is a 415.  ``POST /identify/csv`` is the older, deprecated path of the CSV form.
+"""
 
 from __future__ import annotations
 
-from typing import Annotated
+from collections.abc import Mapping
+from typing import Annotated, Any
 
 from fastapi import APIRouter, Body, Query
+from pydantic import ValidationError
 
+from service.api.bodies import csv_body_route
 from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
 from service.api.routes.design import PROBLEMS
+from service.errors import InvalidRequest
 from service.pipeline.examples import example_path, load_example
 from service.pipeline.identify import run_identify
 from service.pipeline.identify_csv import identify_request_from_csv
+from service.pipeline.problems import validation_problems
 from service.schemas.identify import IdentifyRequest, IdentifyResponse
 from service.schemas.identify_csv import IdentifyCsvOptions
 
 __all__ = ["router"]
 
-router = APIRouter(tags=["identify"])
+
+def read_csv_request(body: bytes, query: Mapping[str, str]) -> IdentifyRequest:
+    """The /identify request of a CSV body and its query parameters (pointers name the parameter or cell)."""
+    try:
+        options = IdentifyCsvOptions.model_validate(query)
+    except ValidationError as exc:
+        raise InvalidRequest(validation_problems(exc.errors(include_url=False, include_input=False))) from None
+    return identify_request_from_csv(body, options)
+
+
+router = APIRouter(tags=["identify"], route_class=csv_body_route(read_csv_request))
 
 #: The OpenAPI examples carry two hours of the steam valve and the temperature from the
 #: example plant test (the whole test, every tag, is in openapi/examples/), so that trying
@@ -46,7 +66,65 @@ def _csv_example() -> str:
     return "\n".join(rows) + "\n"
 
 
-@router.post("/identify", response_model=IdentifyResponse, responses=PROBLEMS)
+#: Query parameters of POST /identify with a CSV body, from IdentifyCsvOptions.
+REQUIRED_WITH_CSV = ("sample_time", "inputs", "outputs")
+CSV_DESCRIPTION = (
+    "A historian export: a header row of tags, then one row per sample; a time column (numbers in the time "
+    "unit, or ISO 8601 date-times) is the first column unless time_column says. The choices come as query "
+    "parameters (sample_time, inputs and outputs required)."
+)
+
+
+def _query_schema(schema: dict[str, Any]) -> dict[str, Any]:
+    """A property's JSON schema without the null of an optional field (a query parameter is left out instead)."""
+    kept = {k: v for k, v in schema.items() if k not in {"anyOf", "default", "title", "description"}}
+    if schema.get("default") not in (None, ""):
+        kept["default"] = schema["default"]
+    choices = [c for c in schema.get("anyOf", []) if c.get("type") != "null"]
+    if len(choices) == 1:
+        kept.update(choices[0])
+    elif choices:
+        kept["anyOf"] = choices
+    return kept
+
+
+def _csv_parameters() -> list[dict[str, Any]]:
+    properties = IdentifyCsvOptions.model_json_schema()["properties"]
+    parameters = []
+    for name, schema in properties.items():
+        rule = "required with a text/csv body" if name in REQUIRED_WITH_CSV else "optional"
+        described = schema.get("description", "").rstrip(".")
+        parameters.append(
+            {
+                "name": name,
+                "in": "query",
+                "required": False,
+                "description": f"text/csv bodies only ({rule}; a JSON body takes none){': ' + described if described else ''}.",
+                "schema": _query_schema(schema),
+            }
+        )
+    return parameters
+
+
+IDENTIFY_OPENAPI: dict[str, Any] = {
+    "parameters": _csv_parameters(),
+    "requestBody": {
+        "content": {
+            "text/csv": {
+                "schema": {"type": "string", "description": CSV_DESCRIPTION},
+                "examples": {
+                    "plant_test": {
+                        "summary": "Two hours of the plant test of the example vessel (invented numbers)",
+                        "value": _csv_example(),
+                    }
+                },
+            }
+        }
+    },
+}
+
+
+@router.post("/identify", response_model=IdentifyResponse, responses=PROBLEMS, openapi_extra=IDENTIFY_OPENAPI)
 def identify(
     request: Annotated[
         IdentifyRequest,
@@ -62,15 +140,12 @@ def identify(
     caps: CapsDep,
     budget: BudgetDep,
 ) -> IdentifyResponse:
-    """Fit a dead-time model per output/input pair to plant-test data. Design aid only: review the fit."""
+    """Fit a model to plant-test data, sent as JSON columns or as CSV (text/csv) with the choices as query
+    parameters. Design aid only: review the fit."""
     return budget.run(run_identify, request, caps, operation="identify")
 
 
-@router.post(
-    "/identify/csv",
-    response_model=IdentifyResponse,
-    responses=PROBLEMS,
-)
+@router.post("/identify/csv", response_model=IdentifyResponse, responses=PROBLEMS, deprecated=True)
 def identify_csv(
     body: Annotated[
         bytes,
@@ -90,6 +165,8 @@ def identify_csv(
     caps: CapsDep,
     budget: BudgetDep,
 ) -> IdentifyResponse:
-    """POST /identify with the data as CSV and the choices as query parameters. Design aid only: review the fit."""
+    """Deprecated: send the CSV to POST /identify with 'Content-Type: text/csv' and the same query parameters.
+
+    Kept for existing clients; it answers as POST /identify does. Design aid only: review the fit."""
     request = identify_request_from_csv(body, options)
     return budget.run(run_identify, request, caps, operation="identify")

@@ -110,6 +110,7 @@ __all__ = [
     "design_estimator",
     "integrating_outputs",
     "kalman_filter",
+    "unmeasured_outputs",
 ]
 
 EstimatorKind = Literal["full_state", "per_output", "output_disturbance", "input_disturbance", "kalman"]
@@ -402,12 +403,32 @@ def controlled_disturbance(
     dz = np.zeros((pz, nd))
     if nd == 0 or c_measured.shape[0] == 0:
         return dz
+    h, combined = _measured_combinations(c_controlled, c_measured)
+    dz[combined] = h[combined] @ cd
+    return dz
+
+
+def _measured_combinations(
+    c_controlled: NDArray[np.float64], c_measured: NDArray[np.float64]
+) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
+    """``H`` (pz, py) by least squares with ``H Cy ~ Cz``, and which rows hold exactly (``1e-9 |Cz_i|``)."""
     h = np.linalg.lstsq(c_measured.T, c_controlled.T, rcond=None)[0].T  # (pz, py)
     residual = np.linalg.norm(h @ c_measured - c_controlled, axis=1)
     size = np.linalg.norm(c_controlled, axis=1)
-    combined = residual <= 1e-9 * np.maximum(size, np.finfo(float).tiny)
-    dz[combined] = h[combined] @ cd
-    return dz
+    return h, np.asarray(residual <= 1e-9 * np.maximum(size, np.finfo(float).tiny), dtype=bool)
+
+
+def unmeasured_outputs(c_controlled: ArrayLike, c_measured: ArrayLike) -> NDArray[np.bool_]:
+    """Which controlled outputs are no combination of the measured outputs, shape (pz,).
+
+    Such an output is inferred from the model alone (its ``Dz`` row is zero,
+    :func:`controlled_disturbance`): offset-free only for model error that the disturbance
+    model explains through the state.
+    """
+    cz, cm = np.asarray(c_controlled, dtype=float), np.asarray(c_measured, dtype=float)
+    if cm.shape[0] == 0:
+        return np.ones(cz.shape[0], dtype=bool)
+    return ~_measured_combinations(cz, cm)[1]
 
 
 def _rank(matrix: NDArray[np.float64] | NDArray[np.complex128]) -> tuple[int, NDArray[np.float64]]:

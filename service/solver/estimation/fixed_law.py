@@ -12,7 +12,19 @@ prior estimate (plant states and disturbance estimate) and ``u(k-1)`` the last i
 :func:`service.solver.estimation.realization.estimate_feedback_gain`, ``Kr = Kh (1 (x) Z_r)``
 the setpoint gain through the steady-state target's setpoint map ``Z_r`` (the identity for a
 reachable setpoint), ``Kd = Kh Fd`` the feed-forward gain on the measured disturbances
-(:mod:`service.solver.design.feedforward`).  With an input weight (input targets,
+(:mod:`service.solver.design.feedforward`).
+
+With the Riccati terminal weight the cost also holds ``|xi(k+Hp) - xi_s|^2_P`` on ``xi = [x;
+u]``, whose gradient adds ``Kt e_t`` to the first move with the terminal error ::
+
+    e_t = xi_s - xi_free(k+Hp) = X_r r + X_d d(k|k) - Phi_a x(k|k) - Phi_u u(k-1)
+
+(:class:`service.solver.estimation.loop.TerminalTerm`: ``xi_s = X_r r + X_d d`` the estimator's
+steady-state target, ``Phi = [Phi_a, Phi_u]`` the free prediction to the horizon's end).
+Every term is linear in the estimate, the last input and the setpoint, so the law keeps its
+form with ``K += Kt (Phi_a - X_d S)`` (in ``estimate_feedback_gain``), ``Ku += Kt Phi_u`` (in
+the design's previous-input gain) and ``Kr += Kt X_r``.  Measured disturbances are not
+combined with the terminal weight (the design refuses them together).  With an input weight (input targets,
 :mod:`service.solver.design.input_target`) ``Ku`` includes ``Kt0``, ``K`` and ``Kr`` the
 target's input maps (``- Kt0 U_d S`` and ``+ Kt0 U_r``), and the input targets ``u_t`` are
 inputs of the law through ``Kt = Kt0 U_t``.  On the law's state ``s = [x(k|k-1); u(k-1)]``
@@ -58,7 +70,7 @@ from numpy.typing import NDArray
 from service.solver.design.controller import ControllerDesign
 from service.solver.design.feedforward import disturbance_free_response
 from service.solver.estimation.estimator import Estimator
-from service.solver.estimation.loop import estimator_target
+from service.solver.estimation.loop import estimator_target, terminal_term
 from service.solver.estimation.realization import StateSpace, estimate_feedback_gain
 
 __all__ = ["FixedLaw", "fixed_law", "law_in_units"]
@@ -130,8 +142,9 @@ def fixed_law(
     Parameters
     ----------
     design : ControllerDesign
-        Without a terminal weight (its setpoint path is not part of this law).  With an input
-        weight the input targets are held at the model's origin (``u_t = 0``).
+        With the Riccati terminal weight the law holds its terminal term (module notes); not
+        with measured disturbances then.  With an input weight the law also takes the input
+        targets (its last ``m`` inputs).
     estimator : Estimator
         Of the same model, without a measured feed-through (module notes).  ``full_state``
         gives the law on the measured plant states (``L = I``, ``Cy = I``).  With an input
@@ -146,7 +159,7 @@ def fixed_law(
         with the unconstrained policy and the linear target maps.
     """
     assert estimator.measured_feedthrough is None, "a measured feed-through makes the law implicit (module notes)"
-    assert design.terminal is None, "the terminal weight's setpoint path is not part of the fixed law"
+    assert design.terminal is None or b_disturbance is None, "no feed-forward with the terminal weight"
     na, m = estimator.b.shape
     p = estimator.c_measured.shape[0]  # measured outputs (the plant states for full_state)
     pz = estimator.c_controlled.shape[0]  # controlled outputs: the setpoints
@@ -164,6 +177,9 @@ def fixed_law(
     if kt0 is not None:  # u_s = U_r r + U_d d + U_t u_t; U_d is in K already
         setpoint_gain = setpoint_gain + kt0 @ target.setpoint_map[n:]
         target_gain = kt0 @ target.input_target_map[n:]
+    terminal = terminal_term(design, estimator, target)
+    if terminal is not None:  # Kt X_r: the setpoint's way through the terminal target
+        setpoint_gain = setpoint_gain + terminal.gain @ terminal.setpoint_map
     mt = target_gain.shape[1]
     if md:
         fd = disturbance_free_response(

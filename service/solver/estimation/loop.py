@@ -21,7 +21,9 @@ The whole loop, with the plant equal to the model, on ``[x(k); x(k|k-1); u(k-1)]
     x(k+1|k) = A_aug x(k|k) + B_aug u(k)
 
 (``S_d`` picks the disturbance estimate; setpoint at zero; the bracket with input targets,
-``Ku`` then including ``Kt0``, :mod:`service.solver.design.input_target`).  In the coordinates ``[x; e; u]``
+``Ku`` then including ``Kt0``, :mod:`service.solver.design.input_target`).  With the Riccati
+terminal weight ``K`` also holds ``Kt (Phi_a - X_d S_d)`` and ``Ku`` the design's ``Kt Phi_u``
+(:class:`TerminalTerm`).  In the coordinates ``[x; e; u]``
 with ``e = [x; 0] - x(k|k-1)`` the matrix is block triangular, so its eigenvalues are those of
 the controller loop and of ``(I - L Cy) A_aug`` together: the separation principle (common
 practice).  :func:`whole_loop` forms the matrix in the original coordinates and checks the
@@ -41,6 +43,7 @@ from service.solver.design.closed_loop import closed_loop_matrix
 from service.solver.design.controller import ControllerDesign
 from service.solver.design.marginal import MARGINAL_TOLERANCE
 from service.solver.design.prediction import prediction_matrices
+from service.solver.design.terminal import terminal_prediction
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.target import TargetProblem, target_problem
 from service.solver.numerics import eigenvalues_by_modulus
@@ -48,11 +51,13 @@ from service.solver.numerics import eigenvalues_by_modulus
 __all__ = [
     "SEPARATION_TOLERANCE",
     "ControlLoop",
+    "TerminalTerm",
     "TrueLoop",
     "WholeLoop",
     "control_loop",
     "estimator_target",
     "separation_check",
+    "terminal_term",
     "true_loop",
     "whole_loop",
 ]
@@ -114,6 +119,87 @@ def separation_check(
 
 
 @dataclass(frozen=True)
+class TerminalTerm:
+    """The Riccati terminal term of the move law on the estimate (:mod:`service.solver.design.terminal`).
+
+    The design penalizes ``|xi(k+Hp) - xi_s|^2_P`` with ``xi = [x; u(k-1)]`` (plant states and
+    last input).  On the estimate the free terminal prediction (no moves) is ::
+
+        xi_free(k+Hp) = Phi_a x(k|k) + Phi_u u(k-1)
+
+    (the kept rows of ``A_aug,i^Hp``: the disturbance estimate is carried forward as a constant,
+    as in ``Fx_aug``), and the steady-state target of the same step is ``xi_s = [x_s; u_s] =
+    X_r r + X_d d(k|k)``, the offset-free target of :mod:`service.solver.estimation.target`
+    (``X_r``, ``X_d`` its ``setpoint_map`` and ``disturbance_map``, plant states and inputs).
+    Minimizing ``|G dU - E|^2_Q + |dU|^2_R + |Gamma dU - (xi_s - xi_free)|^2_P`` gives the
+    gradient ``G'Q E + Gamma' P e_t`` with the *terminal error* ``e_t = xi_s - xi_free(k+Hp)``,
+    so the first move is ::
+
+        du(k) = Kh E + Kt e_t,        Kt = first m rows of H^-1 Gamma' P
+
+    (the design's ``terminal_gain``).  Both ``E`` and ``e_t`` are linear in ``(x(k|k), u(k-1),
+    r)``, so the law stays a fixed linear law: ``K += Kt (Phi_a - X_d S_d)``, ``Ku += Kt Phi_u``,
+    ``Kr += Kt X_r``.
+
+    Attributes
+    ----------
+    gain : ndarray, shape (m, n+m)
+        ``Kt``.
+    free_state : ndarray, shape (n+m, na)
+        ``Phi_a``.
+    free_input : ndarray, shape (n+m, m)
+        ``Phi_u``.
+    setpoint_map : ndarray, shape (n+m, p)
+        ``X_r``.
+    disturbance_map : ndarray, shape (n+m, nd)
+        ``X_d``.
+    """
+
+    gain: NDArray[np.float64]
+    free_state: NDArray[np.float64]
+    free_input: NDArray[np.float64]
+    setpoint_map: NDArray[np.float64]
+    disturbance_map: NDArray[np.float64]
+
+    def free_prediction(
+        self, estimate: NDArray[np.float64], previous_input: NDArray[np.float64]
+    ) -> NDArray[np.float64]:
+        """Return ``xi_free(k+Hp) = Phi_a x(k|k) + Phi_u u(k-1)``, shape (n+m,)."""
+        return self.free_state @ estimate + self.free_input @ previous_input
+
+
+def terminal_term(design: ControllerDesign, estimator: Estimator, target: TargetProblem) -> TerminalTerm | None:
+    """Return the terminal term of a design with the Riccati terminal weight (else ``None``).
+
+    Parameters
+    ----------
+    design : ControllerDesign
+    estimator : Estimator
+        Of the same model.
+    target : TargetProblem
+        :func:`estimator_target` of both.
+
+    Returns
+    -------
+    TerminalTerm or None
+    """
+    if design.terminal is None or design.terminal_gain is None:
+        return None
+    pred = design.prediction
+    n, na = estimator.state_size, estimator.augmented_size
+    phi, _ = terminal_prediction(
+        estimator.a, estimator.b, prediction=pred.prediction, control=pred.control, states=n
+    )  # (n+m, na+m)
+    return TerminalTerm(
+        gain=design.terminal_gain,
+        free_state=phi[:, :na],
+        free_input=phi[:, na:],
+        setpoint_map=target.setpoint_map,
+        disturbance_map=target.disturbance_map,
+    )
+
+
+@dataclass(frozen=True)
 class ControlLoop:
     """Everything the running controller needs, formed once.
 
@@ -131,6 +217,9 @@ class ControlLoop:
         ``Kh``.
     penalized_steps : int
         ``Np``.
+    terminal : TerminalTerm or None
+        The Riccati terminal term, when the design has one: the move is then
+        ``Kh E + Kt e_t``.
     """
 
     design: ControllerDesign
@@ -140,6 +229,7 @@ class ControlLoop:
     free_input: NDArray[np.float64]
     horizon_gain: NDArray[np.float64]
     penalized_steps: int
+    terminal: TerminalTerm | None = None
 
     def free_prediction(
         self, estimate: NDArray[np.float64], previous_input: NDArray[np.float64]
@@ -207,6 +297,7 @@ def control_loop(design: ControllerDesign, estimator: Estimator) -> ControlLoop:
         free_input=pred.free_input,
         horizon_gain=design.gain.horizon,
         penalized_steps=pred.penalized_steps,
+        terminal=terminal_term(design, estimator, target),
     )
 
 
@@ -278,6 +369,8 @@ def _whole_loop_matrix(
     k = loop.horizon_gain @ (loop.free_state - corrected)  # (m, na)
     if design.input_target_gain is not None:  # u_s = ... + U_d d: the input penalty's part
         k = k - design.input_target_gain @ loop.target.disturbance_map[est.state_size :] @ select
+    if loop.terminal is not None:  # Kt (xi_s - Phi xi): Kt (Phi_a - X_d S_d); Kt Phi_u is in Ku
+        k = k + loop.terminal.gain @ (loop.terminal.free_state - loop.terminal.disturbance_map @ select)
     hold = np.eye(m) - design.gain.previous_input
     u_row = np.hstack([-k @ mx, -k @ mp, hold])  # u(k) in terms of [x; x(k|k-1); u(k-1)]
     xf_row = np.hstack([mx, mp, np.zeros((na, m))])  # x(k|k)

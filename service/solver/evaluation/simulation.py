@@ -40,6 +40,17 @@ which its input penalty pulls towards (:mod:`service.solver.design.input_target`
 unconstrained move is ``du = Kh E + Kt0 (u_s - u(k-1))``.  Without an input weight the policy
 is called as before and the input targets play no part.
 
+With the Riccati terminal weight (``weights.terminal = "riccati"``) the cost also holds
+``|xi(k+Hp) - xi_s(k)|^2_P`` on the last predicted ``xi = [x; u]``, with ``xi_s(k) = [x_s; u_s]``
+the step's steady-state target (the linear maps ``X_r r(k) + X_d d(k|k)``, or the target
+rule's steady state).  Its gradient adds ``Gamma' P e_t`` to ``G'Q E``, with the terminal
+error ::
+
+    e_t(k) = xi_s(k) - (Phi_a x(k|k) + Phi_u u(k-1))        (n+m,)
+
+(:class:`service.solver.estimation.loop.TerminalTerm`), and the policy receives
+``terminal_error=e_t(k)``; the unconstrained move is ``du = Kh E + Kt e_t``.
+
 Events hold from their step on: a setpoint change sets ``r``, an output (input) disturbance
 event sets the level of ``d_out`` (``d_in``) — each event replaces the previous level, it does
 not add to it.  Before the first setpoint change the setpoint is ``initial_setpoint`` (default:
@@ -70,7 +81,7 @@ from numpy.typing import ArrayLike, NDArray
 from service.solver.design.controller import ControllerDesign
 from service.solver.design.feedforward import disturbance_free_response
 from service.solver.estimation.estimator import Estimator
-from service.solver.estimation.loop import ControlLoop, control_loop
+from service.solver.estimation.loop import ControlLoop, TerminalTerm, control_loop
 
 __all__ = [
     "DIVERGENCE_LIMIT",
@@ -133,6 +144,9 @@ class MovePolicy(Protocol):
     - ``step``: ``k``, the index of the simulated step (for logging or time-varying limits).
     - ``target_input``, shape (m,), only when the design has an input weight: ``u_s(k)``, the
       steady-state target's input that the input penalty pulls towards.
+    - ``terminal_error``, shape (n+m,), only when the design has the Riccati terminal weight:
+      ``e_t = xi_s - Phi xi(k)``, the free terminal prediction's distance to the steady-state
+      target (module notes); the cost's gradient gains ``Gamma' P e_t``.
 
     A policy with state (a warm start) keeps it on itself; the loop builds no copy.
     Return a :class:`PolicyStep` with ``move`` of shape (m,) and finite values.
@@ -146,6 +160,7 @@ class MovePolicy(Protocol):
         previous_input: NDArray[np.float64],
         step: int,
         target_input: NDArray[np.float64] | None = None,
+        terminal_error: NDArray[np.float64] | None = None,
     ) -> PolicyStep: ...
 
 
@@ -156,7 +171,9 @@ class TargetRule(Protocol):
 
         rule(setpoint=r, disturbance=d) -> (z_s, u_s)
 
-    With an input weight the loop also passes ``input_target=u_t(k)`` (shape (m,)).
+    With an input weight the loop also passes ``input_target=u_t(k)`` (shape (m,)).  With the
+    Riccati terminal weight it passes ``with_state=True`` and the rule returns ``(z_s, u_s,
+    x_s)``: the terminal target needs the steady state's plant states ``x_s`` (n,) as well.
 
     ``setpoint`` has shape (p,) (``r(k)``), ``disturbance`` shape (nd,) (the disturbance part
     of ``x(k|k)``; empty without a disturbance model), both in the design's signals; the rule
@@ -171,12 +188,13 @@ class TargetRule(Protocol):
         setpoint: NDArray[np.float64],
         disturbance: NDArray[np.float64],
         input_target: NDArray[np.float64] | None = None,
-    ) -> tuple[NDArray[np.float64], NDArray[np.float64]]: ...
+        with_state: bool = False,
+    ) -> tuple[NDArray[np.float64], ...]: ...
 
 
 @dataclass(frozen=True)
 class UnconstrainedPolicy:
-    """The design's fixed law ``du(k) = Kh E [+ Kt0 (u_s - u(k-1))]`` (no limits); reports nothing.
+    """The design's fixed law ``du(k) = Kh E [+ Kt0 (u_s - u(k-1))] [+ Kt e_t]`` (no limits); reports nothing.
 
     Attributes
     ----------
@@ -184,10 +202,13 @@ class UnconstrainedPolicy:
         ``Kh`` (``ControllerDesign.gain.horizon``).
     target_gain : ndarray, shape (m, m), optional
         ``Kt0`` (``ControllerDesign.input_target_gain``) with an input weight.
+    terminal_gain : ndarray, shape (m, n+m), optional
+        ``Kt`` (``ControllerDesign.terminal_gain``) with the Riccati terminal weight.
     """
 
     horizon_gain: NDArray[np.float64]
     target_gain: NDArray[np.float64] | None = None
+    terminal_gain: NDArray[np.float64] | None = None
 
     def __call__(
         self,
@@ -197,11 +218,15 @@ class UnconstrainedPolicy:
         previous_input: NDArray[np.float64],
         step: int,
         target_input: NDArray[np.float64] | None = None,
+        terminal_error: NDArray[np.float64] | None = None,
     ) -> PolicyStep:
         move = self.horizon_gain @ error
         if self.target_gain is not None:
             assert target_input is not None, "a design with input targets needs target_input"
             move = move + self.target_gain @ (target_input - previous_input)
+        if self.terminal_gain is not None:
+            assert terminal_error is not None, "a design with a terminal weight needs terminal_error"
+            move = move + self.terminal_gain @ terminal_error
         return PolicyStep(move)
 
 
@@ -444,11 +469,17 @@ def _fixed_law(
     target_gain: NDArray[np.float64] | None = None,
     target_inputs_r: NDArray[np.float64] | None = None,
     u_d: NDArray[np.float64] | None = None,
+    terminal: TerminalTerm | None = None,
+    setpoints: NDArray[np.float64] | None = None,
 ) -> _FixedLaw:
-    """Fold :class:`UnconstrainedPolicy`'s ``Kh`` (and ``Kt0``) into the pieces of :class:`_FixedLaw`.
+    """Fold :class:`UnconstrainedPolicy`'s ``Kh`` (and ``Kt0``, ``Kt``) into the pieces of :class:`_FixedLaw`.
 
     With an input weight the policy adds ``Kt0 (u_s(k) - u(k-1))``, ``u_s(k) = U_r r(k) +
     U_t u_t(k) + U_d d(k|k)`` (``target_inputs_r`` holds the first two terms): linear too.
+    With the terminal weight it adds ``Kt e_t``, ``e_t = X_r r(k) + X_d d(k|k) - Phi_a x(k|k) -
+    Phi_u u(k-1)`` (:class:`service.solver.estimation.loop.TerminalTerm`; ``setpoints`` holds
+    ``r(k)``): the reference gains ``Kt X_r r(k)``, the state gain ``Kt Phi_a`` less ``Kt X_d``
+    on the disturbance states, the previous-input gain ``Kt Phi_u``.
     """
     p = targets_r.shape[1]
     kz = horizon_gain @ np.tile(np.eye(p), (penalized_steps, 1))  # (m, p)
@@ -465,6 +496,14 @@ def _fixed_law(
         previous_input = previous_input + target_gain
         if u_d is not None:
             state[:, dsl] -= target_gain @ u_d
+    if terminal is not None:
+        assert setpoints is not None
+        kt = terminal.gain
+        reference += setpoints @ (kt @ terminal.setpoint_map).T
+        state = state + kt @ terminal.free_state
+        if terminal.disturbance_map.shape[1]:
+            state[:, dsl] -= kt @ terminal.disturbance_map
+        previous_input = previous_input + kt @ terminal.free_input
     return _FixedLaw(reference=reference, state=state, previous_input=previous_input)
 
 
@@ -640,7 +679,11 @@ def simulate_loop(
     steps = int(scenario.steps)
     assert steps >= 1, steps
     pulled = loop.design.input_target_gain is not None
-    policy = UnconstrainedPolicy(loop.horizon_gain, loop.design.input_target_gain) if policy is None else policy
+    term = loop.terminal
+    if policy is None:
+        policy = UnconstrainedPolicy(
+            loop.horizon_gain, loop.design.input_target_gain, None if term is None else term.gain
+        )
 
     x0 = _vector(scenario.initial_state, n)
     xt0 = x0 if nt == n else np.zeros(nt)
@@ -707,6 +750,8 @@ def simulate_loop(
             target_gain=policy.target_gain,
             target_inputs_r=target_inputs_r,
             u_d=u_d if use_d else None,
+            terminal=term,
+            setpoints=setpoints,
         )
         run = _linear_run(
             law,
@@ -735,25 +780,44 @@ def simulate_loop(
                 y = ct @ x
                 ym = cmt @ x + offset[k]  # y_m(k) - Dy u(k): what the filter reads
                 xf = x if full else xp + gain @ (ym - cy @ xp)
-                if target_rule is not None and pulled:
-                    zs, us = target_rule(setpoint=setpoints[k], disturbance=xf[dsl], input_target=u_targets[k])
-                elif target_rule is not None:
-                    zs, us = target_rule(setpoint=setpoints[k], disturbance=xf[dsl])
+                xs = None
+                if target_rule is not None:
+                    if term is not None:
+                        ruled = target_rule(
+                            setpoint=setpoints[k],
+                            disturbance=xf[dsl],
+                            input_target=u_targets[k] if pulled else None,
+                            with_state=True,
+                        )
+                    elif pulled:
+                        ruled = target_rule(setpoint=setpoints[k], disturbance=xf[dsl], input_target=u_targets[k])
+                    else:
+                        ruled = target_rule(setpoint=setpoints[k], disturbance=xf[dsl])
+                    zs, us = ruled[0], ruled[1]
+                    if term is not None:
+                        xs = np.concatenate([ruled[2], us])
                 else:
                     zs = targets_r[k]
                     us = target_inputs_r[k]
+                    if term is not None:
+                        xs = term.setpoint_map @ setpoints[k]
                     if use_d:
                         d = xf[dsl]
                         zs = zs + z_d @ d
                         us = us + u_d @ d
+                    if term is not None and nd:
+                        xs = xs + term.disturbance_map @ xf[dsl]
                 free = fx @ xf + fu @ u
                 if md:
                     free = free + fd @ d_meas[k]
                 error = (zs - free.reshape(np_, p)).reshape(-1)  # (1 (x) I_p) z_s - free
+                asked: dict[str, NDArray[np.float64]] = {}
                 if pulled:
-                    result = policy(error=error, free_prediction=free, previous_input=u, step=k, target_input=us)
-                else:
-                    result = policy(error=error, free_prediction=free, previous_input=u, step=k)
+                    asked["target_input"] = us
+                if term is not None:
+                    assert xs is not None
+                    asked["terminal_error"] = xs - term.free_prediction(xf, u)
+                result = policy(error=error, free_prediction=free, previous_input=u, step=k, **asked)
                 du = np.asarray(result.move, dtype=float)
                 assert du.shape == (m,), du.shape
                 u = u + du

@@ -67,6 +67,8 @@ class GainWhenFreePolicy:
     target_gain : ndarray, shape (m, m), optional
         ``Kt0`` of the same design with an input weight: the move is then
         ``Kh E + Kt0 (u_s - u(k-1))``.
+    terminal_gain : ndarray, shape (m, n+m), optional
+        ``Kt`` of the same design with the Riccati terminal weight: the move gains ``Kt e_t``.
 
     Notes
     -----
@@ -81,10 +83,12 @@ class GainWhenFreePolicy:
         policy: ConstrainedPolicy,
         horizon_gain: NDArray[np.float64],
         target_gain: NDArray[np.float64] | None = None,
+        terminal_gain: NDArray[np.float64] | None = None,
     ) -> None:
         self.policy = policy
         self.horizon_gain = horizon_gain
         self.target_gain = target_gain
+        self.terminal_gain = terminal_gain
 
     def __call__(
         self,
@@ -94,6 +98,7 @@ class GainWhenFreePolicy:
         previous_input: NDArray[np.float64],
         step: int,
         target_input: NDArray[np.float64] | None = None,
+        terminal_error: NDArray[np.float64] | None = None,
     ) -> PolicyStep:
         result = self.policy(
             error=error,
@@ -101,6 +106,7 @@ class GainWhenFreePolicy:
             previous_input=previous_input,
             step=step,
             target_input=target_input,
+            terminal_error=terminal_error,
         )
         report = result.report
         if not isinstance(report, StepReport) or report.method != "unconstrained" or not report.solved:
@@ -109,6 +115,9 @@ class GainWhenFreePolicy:
         if self.target_gain is not None:
             assert target_input is not None
             move = move + self.target_gain @ (target_input - previous_input)
+        if self.terminal_gain is not None:
+            assert terminal_error is not None
+            move = move + self.terminal_gain @ terminal_error
         lim = self.policy.limits
         u = previous_input + move
         slack = 10.0 * PRIMAL_TOLERANCE
@@ -169,22 +178,27 @@ class ReachableTargetRule:
         setpoint: NDArray[np.float64],
         disturbance: NDArray[np.float64],
         input_target: NDArray[np.float64] | None = None,
-    ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-        """Return ``(z_s, u_s)`` of the nearest reachable steady state for ``r``, ``d`` (and ``u_t``)."""
+        with_state: bool = False,
+    ) -> tuple[NDArray[np.float64], ...]:
+        """Return ``(z_s, u_s)`` of the nearest reachable steady state for ``r``, ``d`` (and ``u_t``).
+
+        With ``with_state`` also its plant states ``x_s`` (the terminal weight's target).
+        """
         target = self.problem.solve(setpoint, disturbance if disturbance.size else None, input_target)
         self.statuses.append(target.status)
         self.reachable.append(target.reachable)
         if target.status != "unconstrained":
-            return target.output, target.input
-        maps, n = self.target, self.target.state_size
+            return (target.output, target.input, target.state) if with_state else (target.output, target.input)
+        maps = self.target
         output = maps.output_setpoint_map @ setpoint
-        inputs = maps.setpoint_map[n:] @ setpoint
+        steady = maps.setpoint_map @ setpoint
         if disturbance.size:
             output = output + maps.output_disturbance_map @ disturbance
-            inputs = inputs + maps.disturbance_map[n:] @ disturbance
+            steady = steady + maps.disturbance_map @ disturbance
         if input_target is not None:
-            inputs = inputs + maps.input_target_map[n:] @ input_target
-        return output, inputs
+            steady = steady + maps.input_target_map @ input_target
+        n = maps.state_size
+        return (output, steady[n:], steady[:n]) if with_state else (output, steady[n:])
 
 
 @dataclass(frozen=True)

@@ -135,10 +135,15 @@ class ConstrainedPolicy:
         previous_input: NDArray[np.float64],
         step: int,
         target_input: NDArray[np.float64] | None = None,
+        terminal_error: NDArray[np.float64] | None = None,
     ) -> PolicyStep:
         """Return ``du(k)`` (the QP's first move, or zeros on a fallback) and the step's report."""
         solution = self.qp.solve(
-            error=error, free_prediction=free_prediction, previous_input=previous_input, target_input=target_input
+            error=error,
+            free_prediction=free_prediction,
+            previous_input=previous_input,
+            target_input=target_input,
+            terminal_error=terminal_error,
         )
         m = self.limits.inputs
         move = solution.moves[:m].copy() if solution.solved else np.zeros(m)

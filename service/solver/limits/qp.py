@@ -19,6 +19,11 @@ with the zone cost ``1/2 sum_ji w_j t_ji^2`` added to the objective (zones, belo
 with an input weight ``H`` also holds the input-target term and the linear term gains
 ``-P (u_s - u(k-1))`` (:mod:`service.solver.design.input_target`), ``u_s`` the step's target input;
 ``Zfree = Fx x(k) + Fu u(k-1)`` is the free prediction over the penalized steps ``Hw..Hp``.
+With the Riccati terminal weight ``H`` holds ``Gamma' P Gamma`` (the design's) and the linear
+term gains ``-Gamma' P e_t`` with ``e_t = xi_s - Phi xi(k)`` the step's terminal error
+(:class:`service.solver.estimation.loop.TerminalTerm`): the cost is then the design's whole
+cost ``V + |Gamma dU - e_t|^2_P`` less a constant, so the unconstrained solution is still
+the design's law.
 Without the slacks the cost is ``V`` of the design notes less a constant, so when no limit is
 active the solution is ``H^-1 G'QE`` and its first move is ``Kh E``.
 
@@ -211,6 +216,10 @@ class MoveQP:
     input_pull : ndarray, shape (Hu*m, m), optional
         ``P`` of the design's input-target term (``design.input_penalty.pull``); each step then
         takes its ``target_input``.
+    terminal_rows : tuple of ndarray, optional
+        ``(W_P Gamma, W_P)`` of the design's Riccati terminal weight
+        (``design.terminal.weighted_moves`` and ``design.terminal.root``), shapes (n+m, Hu*m)
+        and (n+m, n+m); each step then takes its ``terminal_error``.
     hard_outputs : bool, optional
         Treat the output limits as hard (no slacks; the step fails when they cannot hold).
         Default false: soft, exact-penalty outputs.
@@ -242,6 +251,7 @@ class MoveQP:
         output_root: NDArray[np.float64],
         limits: Limits,
         input_pull: NDArray[np.float64] | None = None,
+        terminal_rows: tuple[NDArray[np.float64], NDArray[np.float64]] | None = None,
         hard_outputs: bool = False,
         zones: Zones | None = None,
         tolerance: float = PRIMAL_TOLERANCE,
@@ -257,6 +267,7 @@ class MoveQP:
         self._root = output_root
         self._limits = limits
         self._pull = input_pull
+        self._terminal = terminal_rows
         self._m, self._p, self._hu = m, p, hu
         self._tolerance = tolerance
         assert warm_start in WARM_STARTS, warm_start
@@ -388,6 +399,7 @@ class MoveQP:
             output_root=design.output_root,
             limits=limits,
             input_pull=None if design.input_penalty is None else design.input_penalty.pull,
+            terminal_rows=None if design.terminal is None else (design.terminal.weighted_moves, design.terminal.root),
             hard_outputs=hard_outputs,
             zones=zones,
             tolerance=tolerance,
@@ -481,6 +493,7 @@ class MoveQP:
         free_prediction: NDArray[np.float64],
         previous_input: NDArray[np.float64],
         target_input: NDArray[np.float64] | None = None,
+        terminal_error: NDArray[np.float64] | None = None,
     ) -> MoveProblem:
         """Return one step's QP as plain arrays (for checking with another solver).
 
@@ -494,12 +507,18 @@ class MoveQP:
             ``u(k-1)``.
         target_input : ndarray, shape (m,), optional
             ``u_s``, the step's target input; required with ``input_pull``.
+        terminal_error : ndarray, shape (n+m,), optional
+            ``e_t = xi_s - Phi xi(k)``; required with ``terminal_rows``.
         """
         scaled = (error.reshape(-1, self._p) @ self._root.T).reshape(-1)  # Wbar E
         gradient = self._weighted.T @ scaled
         if self._pull is not None:
             assert target_input is not None, "a QP with input targets needs target_input"
             gradient = gradient + self._pull @ (target_input - previous_input)
+        if self._terminal is not None:
+            assert terminal_error is not None, "a QP with a terminal weight needs terminal_error"
+            rows, root = self._terminal
+            gradient = gradient + rows.T @ (root @ terminal_error)  # Gamma' P e_t
         linear = np.concatenate([-gradient, self._slack_weight])
         lower, upper = self._bounds(previous_input, free_prediction)
         return MoveProblem(self._full_hessian, linear, self._rows, lower, upper)
@@ -511,6 +530,7 @@ class MoveQP:
         free_prediction: NDArray[np.float64],
         previous_input: NDArray[np.float64],
         target_input: NDArray[np.float64] | None = None,
+        terminal_error: NDArray[np.float64] | None = None,
     ) -> MoveSolution:
         """Solve one step's QP; never raises on a failed or infeasible solve.
 
@@ -531,8 +551,16 @@ class MoveQP:
             target_input = np.asarray(target_input, dtype=float)
             if not np.isfinite(target_input).all():
                 return self._failure("failed", 0)
+        if terminal_error is not None:
+            terminal_error = np.asarray(terminal_error, dtype=float)
+            if not np.isfinite(terminal_error).all():
+                return self._failure("failed", 0)
         qp = self.problem(
-            error=error, free_prediction=free_prediction, previous_input=previous_input, target_input=target_input
+            error=error,
+            free_prediction=free_prediction,
+            previous_input=previous_input,
+            target_input=target_input,
+            terminal_error=terminal_error,
         )
         nu = self._hu * self._m
         # The unconstrained optimum, by the design's factor: the answer whenever it is feasible.

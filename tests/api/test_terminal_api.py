@@ -1,0 +1,85 @@
+"""POST /simulate with the Riccati terminal weight, through the HTTP layer.
+
+References: the infinite-horizon LQR gain of the incremental system from
+``scipy.linalg.solve_discrete_are`` (``tests.references.incremental_lqr``); the standard result
+of dynamic programming that with the Riccati cost to go and ``Hu = Hp`` the first move is the
+LQR move ``du = -K (xi - xi_s)`` on the deviation from the steady-state target ``xi_s``, here
+solved by hand from the target equations ``(I - A) x_s = B u_s``, ``C x_s = r`` (Muske and
+Badgwell 2002) with ``numpy.linalg.solve``.
+"""
+
+from __future__ import annotations
+
+import copy
+
+import numpy as np
+import pytest
+
+from service.pipeline.examples import load_example
+from tests.references import incremental_lqr
+
+EXAMPLE = load_example("simulate_request.json")
+A, B, C = (np.array(EXAMPLE["model"][k], dtype=float) for k in "abc")
+Q, R = np.diag(EXAMPLE["weights"]["output"]), np.diag(EXAMPLE["weights"]["move"])
+SETPOINT = np.array([1.0, -0.5])
+
+
+def _body(horizon=6, steps=150, kind="full_state"):
+    body = copy.deepcopy(EXAMPLE)
+    body["weights"]["terminal"] = "riccati"
+    body["horizons"] = {"prediction": horizon, "control": horizon, "first_penalized": 1}
+    body["estimator"] = {"kind": kind}
+    body["scenario"] = {"steps": steps, "setpoint_changes": [{"step": 5, "setpoint": SETPOINT.tolist()}]}
+    return body
+
+
+def _post(client, body):
+    r = client.post("/simulate", json=body)
+    assert r.status_code == 200, r.text
+    return r.json()
+
+
+@pytest.mark.parametrize("horizon", [1, 6])
+def test_simulate_with_the_riccati_terminal_weight_and_hu_equal_to_hp_is_the_lqr_loop(client, horizon):
+    run = _post(client, _body(horizon))
+    lqr, _, _ = incremental_lqr(A, B, C, Q, R)  # scipy.linalg.solve_discrete_are
+    target = np.linalg.solve(np.block([[np.eye(4) - A, -B], [C, np.zeros((2, 2))]]), np.r_[np.zeros(4), SETPOINT])
+    x, u, inputs = np.zeros(4), np.zeros(2), []
+    for k in range(150):
+        xi_s = target if k >= 5 else np.zeros(6)
+        u = u - lqr @ (np.concatenate([x, u]) - xi_s)  # the LQR law on the target deviation
+        inputs.append(u)
+        x = A @ x + B @ u
+    np.testing.assert_allclose(np.array(run["inputs"]), np.array(inputs), rtol=0, atol=1e-9)
+    # offset-free: the outputs settle on the setpoint, the inputs on the target's inputs
+    np.testing.assert_allclose(run["outputs"][-1], SETPOINT, atol=1e-8)
+    np.testing.assert_allclose(run["inputs"][-1], target[4:], atol=1e-8)
+    assert run["design"]["closed_loop"]["stable"]
+
+
+def test_simulate_riccati_under_wide_limits_is_the_unconstrained_run(client):
+    body = _body(8, kind="output_disturbance", steps=300)
+    body["horizons"]["control"] = 3
+    body["scenario"]["output_disturbances"] = [{"step": 60, "value": [0.3, 0.2]}]
+    free = _post(client, body)
+    body["limits"] = {
+        "input_min": [-1e4, -1e4],
+        "input_max": [1e4, 1e4],
+        "move_max": [1e4, 1e4],
+        "output_min": [-1e4, -1e4],
+        "output_max": [1e4, 1e4],
+    }
+    limited = _post(client, body)
+    np.testing.assert_allclose(np.array(limited["inputs"]), np.array(free["inputs"]), rtol=0, atol=1e-12)
+    np.testing.assert_allclose(free["outputs"][-1], SETPOINT, atol=1e-6)  # offset-free after the bias
+
+
+def test_simulate_riccati_under_a_binding_move_limit_moves_no_faster_than_the_limit(client):
+    body = _body(8, kind="output_disturbance", steps=200)
+    body["horizons"]["control"] = 3
+    body["limits"] = {"move_max": [0.05, 0.05]}
+    run = _post(client, body)
+    moves = np.diff(np.vstack([np.zeros(2), np.array(run["inputs"])]), axis=0)
+    assert np.abs(moves).max() <= 0.05 + 1e-9
+    assert np.abs(moves).max() > 0.05 - 1e-6  # the limit did bind
+    np.testing.assert_allclose(run["outputs"][-1], SETPOINT, atol=1e-6)
