@@ -412,10 +412,11 @@ def _measured_combinations(
     c_controlled: NDArray[np.float64], c_measured: NDArray[np.float64]
 ) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
     """``H`` (pz, py) by least squares with ``H Cy ~ Cz``, and which rows hold exactly (``1e-9 |Cz_i|``)."""
-    h = np.linalg.lstsq(c_measured.T, c_controlled.T, rcond=None)[0].T  # (pz, py)
+    h = np.asarray(np.linalg.lstsq(c_measured.T, c_controlled.T, rcond=None)[0].T, dtype=np.float64)  # (pz, py)
     residual = np.linalg.norm(h @ c_measured - c_controlled, axis=1)
     size = np.linalg.norm(c_controlled, axis=1)
-    return h, np.asarray(residual <= 1e-9 * np.maximum(size, np.finfo(float).tiny), dtype=bool)
+    combined: NDArray[np.bool_] = np.asarray(residual <= 1e-9 * np.maximum(size, np.finfo(float).tiny), dtype=bool)
+    return h, combined
 
 
 def unmeasured_outputs(c_controlled: ArrayLike, c_measured: ArrayLike) -> NDArray[np.bool_]:
