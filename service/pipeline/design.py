@@ -337,7 +337,7 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
             FieldProblem(
                 pointer("model", "operating_point"),
                 "this endpoint works in deviations only for now; give the values as deviations from the "
-                "operating point and leave it out (POST /design, /design/batch and /simulate take it)",
+                "operating point and leave it out (POST /design, /design/batch, /simulate and /design/export take it)",
             )
         )
     plant, found = plant_arrays(request.model, caps)

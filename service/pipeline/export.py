@@ -13,8 +13,23 @@ for ``full_state``), setpoints by the controlled outputs' spans, measured
 disturbances by theirs, the manipulated variables and their input targets (with
 ``weights.input``) by theirs; the law's state holds the
 model's states as they are, the disturbance estimates in their signal's units and the
-previous inputs in the inputs' units.  Signals are the model's own: when the model is
-written in deviations from an operating point, so are the law's inputs and outputs.
+previous inputs in the inputs' units.
+
+Operating point.  With ``model.operating_point`` (:mod:`service.pipeline.operating_point`) the
+request is checked and designed in deviations, as /design does, and the law's signals are
+absolute: the law is the deviation law with constant offsets, ``w_dev = w - w0`` on its inputs
+(``w0`` per input: the output's ``z0`` for measurements and setpoints, ``d0`` for measured
+disturbances, ``u0`` for input targets) and ``v = v_dev + v0`` on its outputs (``u0`` for the
+inputs, 0 for the moves).  Written out, the split form is affine ::
+
+    u        = Cu s + Du w + (u0 - Du w0)
+    s(k+1)   = Ap s + Bp w + Bu u_applied - (Bp w0 + Bu u0)
+    y(k|k-1) = P s + z0
+
+with the state ``s`` in deviations (zero at rest at the operating point).  The answer carries
+``w0`` and ``v0`` (``input_offset``, ``output_offset``), the difference equations carry the
+constants, and the limits (``limits``, the Structured Text clamp) are absolute like the
+request's.  Without an operating point both offsets are zero and the law is linear.
 """
 
 from __future__ import annotations
@@ -32,6 +47,12 @@ from service.pipeline.csv_cells import text_cell
 from service.pipeline.design import DesignInputs, DesignOutcome, check_design_request, compute_design
 from service.pipeline.estimator import disturbance_spans, scaled_estimator
 from service.pipeline.fingerprint import design_fingerprint
+from service.pipeline.operating_point import (
+    OperatingPointValues,
+    check_operating_point,
+    explain_failure,
+    to_deviations,
+)
 from service.pipeline.plant import DiscretePlant
 from service.pipeline.problems import pointer
 from service.pipeline.structured_text import BlockText, structured_text
@@ -50,6 +71,7 @@ __all__ = [
     "difference_equations",
     "export_response",
     "law_labels",
+    "law_offsets",
     "run_export",
 ]
 
@@ -61,6 +83,7 @@ class ExportInputs:
     design: DesignInputs
     format: str
     block_name: str
+    point: OperatingPointValues | None = None
 
 
 @dataclass(frozen=True)
@@ -111,18 +134,49 @@ def _law_problems(request: DesignRequest, inputs: DesignInputs) -> list[FieldPro
 
 
 def check_export_request(request: ExportRequest, caps: Caps) -> ExportInputs:
-    """Run the /design checks, then those of the law.
+    """Run the /design checks, then those of the law, on the request in deviations.
+
+    With ``model.operating_point`` the request is first turned into deviations
+    (:func:`service.pipeline.operating_point.to_deviations`) and the operating point checked
+    against the plant's sizes and the limits.
 
     Raises
     ------
     InvalidRequest
         With one FieldProblem per broken rule, each naming its field by JSON pointer.
     """
-    inputs = check_design_request(request, caps)
-    problems = _law_problems(request, inputs)
+    deviations, point = to_deviations(request)
+    assert isinstance(deviations, ExportRequest)
+    try:
+        inputs = check_design_request(deviations, caps)
+    except InvalidRequest:
+        explain_failure(deviations, point, caps)
+        raise
+    problems = _law_problems(deviations, inputs)
     if problems:
         raise InvalidRequest(problems)
-    return ExportInputs(design=inputs, format=request.format, block_name=request.block_name)
+    if point is not None:
+        check_operating_point(deviations, point, inputs.plant)
+    return ExportInputs(design=inputs, format=request.format, block_name=request.block_name, point=point)
+
+
+def law_offsets(
+    plant: DiscretePlant, point: OperatingPointValues | None, law: FixedLaw
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Return ``w0`` (nw,) and ``u0`` (m,): the operating point of each law input and manipulated variable.
+
+    ``w0`` is ``[z0; z0; d0; u0]`` (measurements, setpoints, measured disturbances, input
+    targets when the law takes them), in engineering units; zeros without an operating point.
+    """
+    p, m, md = law.measured, law.inputs, law.disturbances
+    if point is None:
+        return np.zeros(p + law.setpoints + md + law.targets), np.zeros(m)
+    # the measurements are the controlled outputs here (check_operating_point refuses the others)
+    assert p == law.setpoints and not plant.measured_own, (p, law.setpoints)
+    z0 = np.array([point.output(i) for i in range(p)], dtype=float)
+    d0 = np.array([point.disturbance(k) for k in range(md)], dtype=float)
+    u0 = np.array([point.input(j) for j in range(m)], dtype=float)
+    return np.concatenate([z0, z0, d0, u0 if law.targets else np.zeros(0)]), u0
 
 
 def compute_export(inputs: ExportInputs) -> ExportOutcome:
@@ -232,39 +286,73 @@ def _sum(terms: list[tuple[float, str]]) -> str:
     return text or "0"
 
 
-def difference_equations(law: FixedLaw, labels: LawLabels) -> list[str]:
-    """The split form written out: ``u(k)`` of each input, then ``s(k+1)`` of each state."""
+def _constant(text: str, value: float) -> str:
+    """``text`` with a constant term added (nothing when it is zero)."""
+    if value == 0.0:
+        return text
+    if text == "0":
+        return f"{value:.10g}"
+    return f"{text} {'-' if value < 0 else '+'} {abs(value):.10g}"
+
+
+def difference_equations(
+    law: FixedLaw,
+    labels: LawLabels,
+    *,
+    input_offset: NDArray[np.float64] | None = None,
+    output_offset: NDArray[np.float64] | None = None,
+) -> list[str]:
+    """The split form written out: ``u(k)`` of each input, then ``s(k+1)`` of each state.
+
+    With the offsets ``w0`` (nw,) and ``u0`` (m,) of an operating point the equations are in
+    absolute signals, with the constants ``u0 - Du w0`` and ``-(Bp w0 + Bu u0)`` (module notes).
+    """
+    w0 = np.zeros(law.signal_update.shape[1]) if input_offset is None else input_offset
+    u0 = np.zeros(law.inputs) if output_offset is None else output_offset
+    input_constant = u0 - law.input_direct @ w0
+    state_constant = -(law.signal_update @ w0 + law.applied_update @ u0)
     state = [f"{name}(k)" for name in labels.states]
     signal = [f"{s.name}(k)" for s in labels.inputs]
     applied = [f"{s.name}(k)" for s in labels.outputs[: law.inputs]]
     out = []
     for i, name in enumerate(applied):
         terms = [*zip(law.input_state[i], state, strict=True), *zip(law.input_direct[i], signal, strict=True)]
-        out.append(f"{name} = {_sum(terms)}")
+        out.append(f"{name} = {_constant(_sum(terms), float(input_constant[i]))}")
     previous = labels.states[law.estimates :]
     for i, name in enumerate(applied):
-        out.append(f"{labels.outputs[law.inputs + i].name}(k) = {name} - {previous[i]}(k)")
+        out.append(
+            f"{labels.outputs[law.inputs + i].name}(k) = {_constant(f'{name} - {previous[i]}(k)', -float(u0[i]))}"
+        )
     for i, name in enumerate(labels.states):
         terms = [
             *zip(law.state_update[i], state, strict=True),
             *zip(law.signal_update[i], signal, strict=True),
             *zip(law.applied_update[i], applied, strict=True),
         ]
-        out.append(f"{name}(k+1) = {_sum(terms)}")
+        out.append(f"{name}(k+1) = {_constant(_sum(terms), float(state_constant[i]))}")
     return out
 
 
-def _limits(inputs: DesignInputs) -> LawLimits | None:
-    limits = inputs.limits
+def _input_limits(
+    inputs: ExportInputs, u0: NDArray[np.float64]
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]] | None:
+    """``input_min``, ``input_max`` (absolute: the deviations plus ``u0``) and ``move_max``; ``None`` without limits."""
+    limits = inputs.design.limits
     if limits is None:
+        return None
+    return limits.input_min + u0, limits.input_max + u0, limits.move_max
+
+
+def _limits(inputs: ExportInputs, u0: NDArray[np.float64]) -> LawLimits | None:
+    found = _input_limits(inputs, u0)
+    if found is None:
         return None
 
     def listed(values: NDArray[np.float64]) -> list[float | None]:
         return [float(v) if np.isfinite(v) else None for v in values]
 
-    return LawLimits(
-        input_min=listed(limits.input_min), input_max=listed(limits.input_max), move_max=listed(limits.move_max)
-    )
+    low, high, step = found
+    return LawLimits(input_min=listed(low), input_max=listed(high), move_max=listed(step))
 
 
 def export_response(request: ExportRequest, inputs: ExportInputs, outcome: ExportOutcome) -> ExportResponse:
@@ -272,6 +360,7 @@ def export_response(request: ExportRequest, inputs: ExportInputs, outcome: Expor
     plant = inputs.design.plant
     law = outcome.law
     labels = law_labels(plant, outcome.estimator, targets=outcome.law.targets > 0)
+    w0, u0 = law_offsets(plant, inputs.point, law)
     system = law.system
     states = labels.states
     columns = [s.name for s in labels.inputs]
@@ -286,6 +375,8 @@ def export_response(request: ExportRequest, inputs: ExportInputs, outcome: Expor
         "signal_update": _labelled(law.signal_update, states, columns),
         "applied_update": _labelled(law.applied_update, states, moves),
         "prediction": _labelled(law.prediction, [s.name for s in labels.inputs[: law.measured]], states),
+        "input_offset": _labelled(w0[:, None], columns, ["offset"]),
+        "output_offset": _labelled(np.concatenate([u0, np.zeros(law.inputs)])[:, None], rows, ["offset"]),
     }
     return ExportResponse(
         format="state_space",
@@ -293,9 +384,9 @@ def export_response(request: ExportRequest, inputs: ExportInputs, outcome: Expor
         inputs=labels.inputs,
         outputs=labels.outputs,
         states=states,
-        equations=difference_equations(law, labels),
+        equations=difference_equations(law, labels, input_offset=w0, output_offset=u0),
         tables=LawTables(**{name: _table(matrix) for name, matrix in matrices.items()}),
-        limits=_limits(inputs.design),
+        limits=_limits(inputs, u0),
         warnings=[WarningReport(code=w.code, message=w.message) for w in outcome.design.warnings],
         fingerprint=design_fingerprint(request),
         a=matrices["a"],
@@ -306,6 +397,8 @@ def export_response(request: ExportRequest, inputs: ExportInputs, outcome: Expor
         signal_update=matrices["signal_update"],
         applied_update=matrices["applied_update"],
         prediction=matrices["prediction"],
+        input_offset=w0.tolist(),
+        output_offset=[*u0.tolist(), *([0.0] * law.inputs)],
     )
 
 
@@ -314,7 +407,8 @@ def block_source(request: ExportRequest, inputs: ExportInputs, outcome: ExportOu
     plant = inputs.design.plant
     labels = law_labels(plant, outcome.estimator, targets=outcome.law.targets > 0)
     est = outcome.estimator
-    limits = inputs.design.limits
+    w0, u0 = law_offsets(plant, inputs.point, outcome.law)
+    limits = _input_limits(inputs, u0)
     return structured_text(
         outcome.law,
         inputs=labels.inputs,
@@ -327,9 +421,11 @@ def block_source(request: ExportRequest, inputs: ExportInputs, outcome: ExportOu
             sample_time=plant.sample_time,
             estimator=f"{est.kind}, disturbance model {est.disturbance}",
         ),
-        input_min=None if limits is None else limits.input_min,
-        input_max=None if limits is None else limits.input_max,
-        move_max=None if limits is None else limits.move_max,
+        input_min=None if limits is None else limits[0],
+        input_max=None if limits is None else limits[1],
+        move_max=None if limits is None else limits[2],
+        input_offset=w0 if inputs.point is not None else None,
+        output_offset=u0 if inputs.point is not None else None,
     )
 
 

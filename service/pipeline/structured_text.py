@@ -13,6 +13,14 @@ sample time:
 4. the outputs are the clamped inputs and their moves;
 5. the state is updated with the applied inputs: ``s := Ap s + Bp w + Bu u``.
 
+With an operating point the block's signals are absolute (engineering units) and its state
+stays in deviations: the operating point is declared as constants (``<tag>_op``), each
+measurement, setpoint, measured disturbance and input target has its operating point
+subtracted before the law, the law's inputs have theirs added (``u = u_dev + u0``), the clamp
+works on the absolute inputs against absolute limits (the previous input is ``s_prev + u0``),
+and the state takes the applied input's deviation ``u - u0``
+(:mod:`service.pipeline.export`, the affine law).
+
 Numbers are written with 17 significant digits (``LREAL``, IEEE double), so the block
 reproduces the law to rounding.  Tags become identifiers (letters, digits and single
 underscores, case-insensitive and unique, no keyword); the header lists each identifier
@@ -138,6 +146,8 @@ def structured_text(
     input_min: NDArray[np.float64] | None = None,
     input_max: NDArray[np.float64] | None = None,
     move_max: NDArray[np.float64] | None = None,
+    input_offset: NDArray[np.float64] | None = None,
+    output_offset: NDArray[np.float64] | None = None,
 ) -> str:
     """Write the law as a FUNCTION_BLOCK (module notes).
 
@@ -149,7 +159,13 @@ def structured_text(
         The law's labels (:func:`service.pipeline.export.law_labels`).
     about : BlockText
     input_min, input_max, move_max : ndarray, shape (m,), optional
-        The clamp of each manipulated variable (infinite where absent).
+        The clamp of each manipulated variable (infinite where absent), absolute with an
+        operating point.
+    input_offset : ndarray, shape (nw,), optional
+        ``w0``, the operating point of each law input (:func:`service.pipeline.export.law_offsets`);
+        with ``output_offset`` the block works in absolute signals (module notes).
+    output_offset : ndarray, shape (m,), optional
+        ``u0``, the operating point of each manipulated variable.
 
     Returns
     -------
@@ -181,7 +197,22 @@ def structured_text(
     low = {j: names.take(f"{manipulated[j]}_min") for j in range(m) if np.isfinite(lo[j])}
     high = {j: names.take(f"{manipulated[j]}_max") for j in range(m) if np.isfinite(hi[j])}
     step = {j: names.take(f"{manipulated[j]}_move_max") for j in range(m) if np.isfinite(dmax[j])}
-    signal = [*y, *setpoint, *disturbance, *target]
+    absolute = input_offset is not None and output_offset is not None
+    w0 = np.zeros(2 * p + md + len(target)) if input_offset is None else np.asarray(input_offset, dtype=float)
+    u0 = np.zeros(m) if output_offset is None else np.asarray(output_offset, dtype=float)
+    if absolute:  # operating-point constants and the deviations the law reads
+        op_out = [names.take(f"{name}_op") for name in measured]
+        op_dist = [names.take(f"{name}_op") for name in disturbance]
+        op_in = [names.take(f"{name}_op") for name in manipulated]
+        r_dev = [names.take(f"r_{i + 1}") for i in range(p)]
+        d_dev = [names.take(f"d_{i + 1}") for i in range(md)]
+        t_dev = [names.take(f"t_{j + 1}") for j in range(len(target))]
+        last = [names.take(f"p_{j + 1}") for j in range(m)]
+        applied = [names.take(f"v_{j + 1}") for j in range(m)]
+        signal = [*y, *r_dev, *d_dev, *t_dev]
+    else:
+        op_out, op_dist, op_in, r_dev, d_dev, t_dev, last, applied = [], [], [], [], [], [], [], []
+        signal = [*y, *setpoint, *disturbance, *target]
 
     def unit(sig: LawSignal) -> str:
         return f" [{sig.unit}]" if sig.unit else ""
@@ -201,6 +232,15 @@ def structured_text(
         f"   {ns} states kept between calls. The state starts at zero: the plant at rest where the model's",
         "   signals are zero (signals are the model's own: deviations when the model is written in",
         "   deviations). reset := TRUE restarts from there.",
+        *(
+            [
+                "   Operating point: the signals are absolute (engineering units). The constants <name>_op are",
+                "   the operating point; the block subtracts them from its inputs, adds them to the manipulated",
+                "   variables and keeps its state in deviations (zero: at rest at the operating point).",
+            ]
+            if absolute
+            else []
+        ),
         "",
         "   Signals (identifier = tag [unit]):",
     ]
@@ -255,10 +295,17 @@ def structured_text(
     ]
     for i in range(ns):
         decl.append(f"    {s[i]} : LREAL := 0.0; (* {_comment(states[i])} *)")
-    decl += [f"    {name} : LREAL;" for name in (*nxt, *y, *u)]
+    decl += [f"    {name} : LREAL;" for name in (*nxt, *y, *u, *r_dev, *d_dev, *t_dev, *last, *applied)]
     decl.append("END_VAR")
-    if low or high or step:
+    if low or high or step or absolute:
         decl.append("VAR CONSTANT")
+        for i, name in enumerate(op_out):
+            decl.append(f"    {name} : LREAL := {_literal(float(w0[i]))}; (* operating point of {measured[i]} *)")
+        for k, name in enumerate(op_dist):
+            value = float(w0[2 * p + k])
+            decl.append(f"    {name} : LREAL := {_literal(value)}; (* operating point of {disturbance[k]} *)")
+        for j, name in enumerate(op_in):
+            decl.append(f"    {name} : LREAL := {_literal(float(u0[j]))}; (* operating point of {manipulated[j]} *)")
         for j, name in step.items():
             decl.append(f"    {name} : LREAL := {_literal(float(dmax[j]))};")
         for j, name in low.items():
@@ -273,18 +320,24 @@ def structured_text(
     for i in range(p):
         body += [
             f"IF {quality[i]} THEN",
-            f"    {y[i]} := {measured[i]};",
+            f"    {y[i]} := {measured[i]} - {op_out[i]};" if absolute else f"    {y[i]} := {measured[i]};",
             "ELSE",
             f"    {y[i]} := {_sum(list(zip(law.prediction[i], s, strict=True)))};",
             "    held := TRUE;",
             "END_IF;",
         ]
+    if absolute:
+        body.append("(* deviations from the operating point *)")
+        body += [f"{r_dev[i]} := {setpoint[i]} - {op_out[i]};" for i in range(p)]
+        body += [f"{d_dev[k]} := {disturbance[k]} - {op_dist[k]};" for k in range(md)]
+        body += [f"{t_dev[j]} := {target[j]} - {op_in[j]};" for j in range(len(target))]
+        body += [f"{last[j]} := {s[na + j]} + {op_in[j]};" for j in range(m)]
     body.append("(* 2. the law *)")
     for j in range(m):
         terms = [*zip(law.input_state[j], s, strict=True), *zip(law.input_direct[j], signal, strict=True)]
-        body.append(f"{u[j]} := {_sum(terms)};")
+        body.append(f"{u[j]} := {_sum(terms)} + {op_in[j]};" if absolute else f"{u[j]} := {_sum(terms)};")
     body.append("(* 3. clamping: the move, then the level *)")
-    previous = s[na:]
+    previous = last if absolute else s[na:]
     for j in range(m):
         if j in step:
             body += [
@@ -304,11 +357,13 @@ def structured_text(
     for j in range(m):
         body += [f"{manipulated[j]} := {u[j]};", f"{move[j]} := {u[j]} - {previous[j]};"]
     body.append("(* 5. the state, with the inputs applied *)")
+    if absolute:
+        body += [f"{applied[j]} := {u[j]} - {op_in[j]};" for j in range(m)]
     for i in range(ns):
         terms = [
             *zip(law.state_update[i], s, strict=True),
             *zip(law.signal_update[i], signal, strict=True),
-            *zip(law.applied_update[i], u, strict=True),
+            *zip(law.applied_update[i], applied if absolute else u, strict=True),
         ]
         body.append(f"{nxt[i]} := {_sum(terms)};")
     body += [f"{s[i]} := {nxt[i]};" for i in range(ns)]

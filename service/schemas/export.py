@@ -73,12 +73,18 @@ class LawTables(ResponseModel):
     signal_update: str
     applied_update: str
     prediction: str
+    input_offset: str = Field(description="input_offset as a table: one row per law input, one column 'offset'.")
+    output_offset: str = Field(description="output_offset as a table: one row per law output, one column 'offset'.")
 
 
 class ExportResponse(ResponseModel):
     """The fixed law ``s(k+1) = A s + B w``, ``v = C s + D w`` from measurements, setpoints and measured
     disturbances ``w`` to inputs and moves ``v``, in engineering units of the tags, plus its split form for
     clamped inputs: ``u = Cu s + Du w`` (the first m rows of C and D), ``s(k+1) = Ap s + Bp w + Bu u_applied``.
+    With ``model.operating_point`` the signals are absolute and the matrices act on their deviations:
+    ``s(k+1) = A s + B (w - w0)``, ``v = C s + D (w - w0) + v0`` and ``u = Cu s + Du (w - w0) + u0``,
+    ``s(k+1) = Ap s + Bp (w - w0) + Bu (u_applied - u0)``, with ``w0 = input_offset``, ``v0 =
+    output_offset`` (``u0`` for the inputs, 0 for the moves); both offsets are zeros without one.
     """
 
     format: ExportFormat
@@ -87,8 +93,9 @@ class ExportResponse(ResponseModel):
     outputs: list[LawSignal] = Field(description="The law's outputs v: every manipulated variable, then its move.")
     states: list[str] = Field(
         description="The law's state s: the estimator's prior estimate x(k|k-1) (model states, then disturbance "
-        "estimates in their signal's units), then the previous inputs u(k-1). It starts at zero: the plant at "
-        "rest where the model's signals are zero."
+        "estimates in their signal's units), then the previous inputs u(k-1), all in deviations from the "
+        "operating point when there is one. It starts at zero: the plant at rest where the model's signals are "
+        "zero, i.e. at the operating point."
     )
     a: LabelledMatrix = Field(description="A = Ap + Bu Cu: the state matrix with the law's input applied unchanged.")
     b: LabelledMatrix = Field(description="B = Bp + Bu Du.")
@@ -98,14 +105,29 @@ class ExportResponse(ResponseModel):
     signal_update: LabelledMatrix = Field(description="Bp of the split form.")
     applied_update: LabelledMatrix = Field(description="Bu: how the applied (clamped) input enters s(k+1).")
     prediction: LabelledMatrix = Field(
-        description="The estimator's prediction y(k|k-1) = P s of each measurement: what replaces a bad one."
+        description="The estimator's prediction y(k|k-1) = P s of each measurement: what replaces a bad one "
+        "(plus the measurement's input_offset with an operating point)."
+    )
+    input_offset: list[float] = Field(
+        description="w0, per law input in the order of inputs: the operating point (model.operating_point) of "
+        "the output a measurement or setpoint belongs to, of the measured disturbance, of the manipulated "
+        "variable an input target belongs to. The matrices act on w - w0. Zeros without an operating point."
+    )
+    output_offset: list[float] = Field(
+        description="v0, per law output in the order of outputs: the operating point of each manipulated "
+        "variable, then 0 for each move (a difference). Added to C s + D (w - w0). Zeros without an operating "
+        "point."
     )
     equations: list[str] = Field(
-        description="The split form's difference equations written out (10 significant digits; the matrices "
-        "carry full precision)."
+        description="The split form's difference equations written out in the signals as sent (absolute with an "
+        "operating point: the offsets appear as constant terms; 10 significant digits, the matrices carry full "
+        "precision)."
     )
     tables: LawTables
-    limits: LawLimits | None = Field(description="From the request's limits block; null without one.")
+    limits: LawLimits | None = Field(
+        description="From the request's limits block (absolute with an operating point, like the request's); "
+        "null without one."
+    )
     warnings: list[WarningReport] = Field(description="The design's warnings.")
     fingerprint: str = Field(description="The fingerprint of the design: equal to /design's for the same design.")
     advisory: str = Field(default=ADVISORY)

@@ -14,14 +14,14 @@ import subprocess
 import sys
 import time
 from collections.abc import Iterator
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from pathlib import Path
 
 import httpx
 
 ROOT = Path(__file__).resolve().parents[2]
 
-__all__ = ["LiveServer", "free_port", "live_server", "metric"]
+__all__ = ["LiveServer", "descendants", "free_port", "live_server", "metric", "paused"]
 
 
 def free_port() -> int:
@@ -50,6 +50,45 @@ def metric(text: str, name: str, **labels: str) -> float:
     pattern = rf"^{re.escape(name)}" + (rf"\{{{re.escape(inner)}\}}" if labels else "") + r" ([0-9.e+-]+)$"
     found = re.search(pattern, text, flags=re.M)
     return float(found.group(1)) if found else 0.0
+
+
+def descendants(pid: int) -> list[int]:
+    """The processes below ``pid`` (children, their children, ...), read from Linux's ``/proc``."""
+    parents: dict[int, int] = {}
+    for entry in Path("/proc").iterdir():
+        if not entry.name.isdigit():
+            continue
+        try:
+            stat = (entry / "stat").read_text()
+        except OSError:
+            continue  # gone meanwhile
+        # pid (comm) state ppid ...: the name may hold spaces, so split after its closing parenthesis
+        parents[int(entry.name)] = int(stat.rsplit(")", 1)[1].split()[1])
+    found: list[int] = []
+    frontier = [pid]
+    while frontier:
+        here = frontier.pop()
+        children = [child for child, parent in parents.items() if parent == here]
+        found.extend(children)
+        frontier.extend(children)
+    return found
+
+
+@contextmanager
+def paused(server: LiveServer) -> Iterator[list[int]]:
+    """Stop (SIGSTOP) every process the server started, its compute processes among them, until the
+    block ends (SIGCONT).  The server process itself runs on: whatever it sends to compute waits, for
+    as long as the test needs, whatever the machine's load, and costs no CPU meanwhile."""
+    stopped = descendants(server.process.pid)
+    assert stopped, "the server has no compute processes to pause"
+    for pid in stopped:
+        os.kill(pid, signal.SIGSTOP)
+    try:
+        yield stopped
+    finally:
+        for pid in stopped:
+            with suppress(ProcessLookupError):
+                os.kill(pid, signal.SIGCONT)
 
 
 @contextmanager

@@ -188,6 +188,11 @@ def test_the_csv_tables_read_back_to_the_matrices(client):
     for name, text in law["tables"].items():
         rows = list(csv.reader(io.StringIO(text)))  # RFC 4180
         assert text.endswith("\r\n")
+        if name.endswith("_offset"):  # a vector: one row per law input (output), one column
+            signals = law["inputs" if name == "input_offset" else "outputs"]
+            assert rows[0] == ["", "offset"] and [r[0] for r in rows[1:]] == [s["name"] for s in signals]
+            assert [float(r[1]) for r in rows[1:]] == law[name]
+            continue
         assert rows[0] == ["", *law[name]["columns"]]
         assert [r[0] for r in rows[1:]] == law[name]["rows"]
         np.testing.assert_array_equal(np.array([[float(x) for x in r[1:]] for r in rows[1:]]), _matrix(law, name))
@@ -375,3 +380,146 @@ def test_bad_input_is_a_422_naming_the_field(client, edit, pointer):
     assert r.status_code == 422, r.text
     assert r.headers["content-type"].startswith("application/problem+json")
     assert pointer in [e["pointer"] for e in r.json()["errors"]]
+
+
+# --------------------------------------------------------------------------- operating point
+
+OPERATING_POINT = {"inputs": [45.0, 60.0], "outputs": [80.0, 50.0], "disturbances": [12.0]}
+
+
+def _absolute(body):
+    """The same request in absolute units: the operating point added to every absolute value.
+
+    A linear model holds in deviations from its operating point (common practice), so the
+    absolute request is the deviation request with each value shifted.
+    """
+    out = copy.deepcopy(body)
+    m, p = len(out["model"]["inputs"]), len(out["model"]["outputs"])
+    u0 = (OPERATING_POINT["inputs"] + [30.0])[:m]
+    z0 = OPERATING_POINT["outputs"][:p]
+    d0 = OPERATING_POINT["disturbances"][: len(out["model"].get("disturbances", []))]
+    out["model"]["operating_point"] = {"inputs": u0, "outputs": z0, **({"disturbances": d0} if d0 else {})}
+    sc = out["scenario"]
+    sc.pop("true_plant", None)  # a true plant in deviations: compared on the model itself here
+    for e in sc.get("setpoint_changes", []):
+        e["setpoint"] = [v + z for v, z in zip(e["setpoint"], z0, strict=True)]
+    for e in sc.get("measured_disturbances", []):
+        e["value"] = [v + d for v, d in zip(e["value"], d0, strict=True)]
+    if "input_targets" in sc:
+        sc["input_targets"] = [v + u for v, u in zip(sc["input_targets"], u0, strict=True)]
+    for e in sc.get("input_target_changes", []):
+        e["value"] = [v + u for v, u in zip(e["value"], u0, strict=True)]
+    lim = out.get("limits")
+    if lim:
+        for key, shift in (("input_min", u0), ("input_max", u0)):
+            if key in lim:
+                lim[key] = [None if v is None else v + s for v, s in zip(lim[key], shift, strict=True)]
+    return out, np.array(u0), np.array(z0), np.array(d0)
+
+
+OP_CASES = {
+    "vessel": _vessel,
+    "vessel with the Riccati terminal weight": _vessel_riccati,
+    "transfer matrix with a measured disturbance": _transfer_matrix,
+    "three valves with input targets": _three_valves_with_targets,
+}
+
+
+@pytest.mark.parametrize("case", OP_CASES)
+def test_the_exported_law_with_an_operating_point_runs_in_absolute_units(client, case):
+    body, u0, z0, d0 = _absolute(OP_CASES[case]())
+    deviation = copy.deepcopy(body)
+    deviation["model"].pop("operating_point")
+    deviation["scenario"] = OP_CASES[case]()["scenario"]
+    deviation["scenario"].pop("true_plant", None)
+    sim, law = _run(client, body)
+    dev = client.post("/simulate", json=deviation).json()
+    # /simulate's absolute run is its deviation run shifted by the operating point
+    np.testing.assert_allclose(np.array(sim["inputs"]), np.array(dev["inputs"]) + u0, rtol=0, atol=1e-9)
+    w = _signals(sim, body)  # absolute measurements, setpoints, disturbances, input targets
+    w0 = np.array(law["input_offset"])
+    targets = u0 if body["weights"].get("input") else np.zeros(0)
+    np.testing.assert_array_equal(w0, np.concatenate([z0, z0, d0, targets]))
+    m = len(u0)
+    np.testing.assert_array_equal(law["output_offset"], [*u0, *np.zeros(m)])
+    # the documented affine law: s(k+1) = A s + B (w - w0), v = C s + D (w - w0) + v0 (scipy.signal.dlsim)
+    system = tuple(_matrix(law, k) for k in "abcd")
+    _, v, _ = scipy.signal.dlsim((*system, law["sample_time"]), w - w0)
+    v = v + np.array(law["output_offset"])
+    u = np.array(sim["inputs"])
+    scale = np.abs(u).max()
+    np.testing.assert_allclose(v[:, :m], u, rtol=0, atol=1e-9 * scale)
+    assert u.min() > 20.0  # absolute valve positions, not deviations
+    # the first difference equation ends in the constant u0 - Du w0 (10 significant digits)
+    equation = law["equations"][0]
+    found = re.search(r" ([+-]) ([0-9.eE+-]+)$", equation)
+    assert found, equation
+    constant = float(found.group(2)) * (-1.0 if found.group(1) == "-" else 1.0)
+    expected = u0[0] - system[3][0] @ w0
+    assert abs(constant - expected) <= 1e-9 * abs(expected), (constant, expected)
+    # ... and the offsets' CSV tables read back
+    rows = list(csv.reader(io.StringIO(law["tables"]["input_offset"])))
+    assert rows[0] == ["", "offset"] and [float(r[1]) for r in rows[1:]] == list(w0)
+
+
+@pytest.mark.parametrize("case", OP_CASES)
+def test_the_structured_text_with_an_operating_point_reproduces_the_absolute_run(client, case):
+    body, u0, _, _ = _absolute(OP_CASES[case]())
+    sim = client.post("/simulate", json=body)
+    assert sim.status_code == 200, sim.text
+    sim = sim.json()
+    text = _block(client, body)
+    block = FunctionBlock(text)  # the test interpreter of IEC 61131-3 (tests/api/iec_st.py)
+    assert "Operating point: the signals are absolute" in text
+    tags = [s["name"] for s in body["model"]["inputs"]]
+    wanted = {_identifier(t) + "_OP" for t in tags}
+    assert [_identifier(t) + "_OP" for t in tags] == [n for n in block.names("constant") if n in wanted]
+    w = _signals(sim, body)
+    u = np.array(sim["inputs"])
+    got = np.array(
+        [[out[_identifier(t)] for t in tags] for out in (block.call(**_call_inputs(body, w, k)) for k in range(len(w)))]
+    )
+    np.testing.assert_allclose(got, u, rtol=0, atol=1e-9 * np.abs(u).max())
+
+
+def test_the_structured_text_clamps_to_absolute_limits_with_an_operating_point(client):
+    body, u0, z0, _ = _absolute(_vessel())
+    body["limits"] = {"input_min": [42.0, 40.0], "input_max": [48.0, 80.0], "move_max": [0.5, None]}
+    text = _block(client, body)
+    law = client.post("/design/export", json=_export_body(body)).json()
+    assert law["limits"] == {"input_min": [42.0, 40.0], "input_max": [48.0, 80.0], "move_max": [0.5, None]}
+    block = FunctionBlock(text)
+    a, b, c = (np.array(body["model"][k]) for k in "abc")
+    lo, hi, dmax = np.array([42.0, 40.0]), np.array([48.0, 80.0]), np.array([0.5, np.inf])
+    w0, v0 = np.array(law["input_offset"]), np.array(law["output_offset"])[:2]
+    x, s = np.zeros(4), np.zeros(len(law["states"]))  # the plant in deviations, at rest at the point
+    r = z0 + np.array([2.0, -1.0])
+    clamped = 0
+    for _ in range(150):
+        y = z0 + c @ x
+        out = block.call(**_call_inputs(body, np.concatenate([y, r])[None, :], 0))
+        # the documented affine split form: u = Cu s + Du (w - w0) + u0, clamped in absolute units,
+        # s(k+1) = Ap s + Bp (w - w0) + Bu (u - u0)
+        m = 2
+        cu, du = _matrix(law, "c")[:m], _matrix(law, "d")[:m]
+        ap, bp, bu = (_matrix(law, k) for k in ("state_update", "signal_update", "applied_update"))
+        wd = np.concatenate([y, r]) - w0
+        previous = s[-m:] + v0
+        u = np.clip(np.clip(cu @ s + du @ wd + v0, previous - dmax, previous + dmax), lo, hi)
+        s = ap @ s + bp @ wd + bu @ (u - v0)
+        got = np.array([out["STEAM_VALVE"], out["OUTLET_VALVE"]])
+        np.testing.assert_allclose(got, u, rtol=0, atol=1e-9)
+        assert np.all(got >= lo - 1e-12) and np.all(got <= hi + 1e-12)
+        clamped += out["CLAMPED"]
+        x = a @ x + b @ (got - u0)
+    assert clamped >= 5  # the absolute limits did act
+    np.testing.assert_allclose(z0 + c @ x, r, atol=1e-3)
+
+
+def test_an_export_limit_that_excludes_the_operating_point_is_a_422_saying_so(client):
+    body, _, _, _ = _absolute(_vessel())
+    body["limits"] = {"input_min": [50.0, 10.0]}  # the steam valve's operating point is 45 %
+    r = client.post("/design/export", json=_export_body(body))
+    assert r.status_code == 422, r.text
+    error = r.json()["errors"][0]
+    assert error["pointer"] == "/limits/input_min/0" and "operating point" in error["detail"]

@@ -354,6 +354,19 @@ def test_the_export_refuses_a_measured_feed_through_and_says_why(client):
     assert "algebraic loop" in found["/model/d_measured/0"]
 
 
+@pytest.mark.parametrize("kind", ["kalman", "full_state"])
+def test_the_export_refuses_an_operating_point_it_has_no_values_for(client, kind):
+    body = _body()
+    fields = {k: body[k] for k in ("model", "horizons", "weights", "estimator")}
+    fields["model"]["operating_point"] = {"inputs": [1.0], "outputs": [20.0]}
+    if kind == "full_state":  # the states have no operating values even when the outputs are measured
+        fields["model"].pop("c_measured")
+        fields["model"].pop("measured")
+        fields["estimator"] = {"kind": "full_state"}
+    found = _pointers(client, "/design/export", {**fields, "format": "state_space"})
+    assert "gives no values" in found["/model/operating_point"]
+
+
 @pytest.mark.parametrize(
     "edit,pointer",
     [
