@@ -92,8 +92,13 @@ def paused(server: LiveServer) -> Iterator[list[int]]:
 
 
 @contextmanager
-def live_server(tmp_path: Path, *, ready_seconds: float = 90, **settings: str) -> Iterator[LiveServer]:
-    """Start ``python -m service.cli serve`` with ``MOVECAST_<NAME>`` settings; kill it afterwards."""
+def live_server(
+    tmp_path: Path, *, ready_seconds: float = 90, command: list[str] | None = None, **settings: str
+) -> Iterator[LiveServer]:
+    """Start ``python -m service.cli serve`` with ``MOVECAST_<NAME>`` settings; kill it afterwards.
+
+    ``command`` serves another way instead (its arguments after the interpreter, ``{port}`` put in).
+    """
     port = free_port()
     env = {
         **os.environ,
@@ -105,7 +110,7 @@ def live_server(tmp_path: Path, *, ready_seconds: float = 90, **settings: str) -
     log_path = tmp_path / f"server-{port}.log"
     with log_path.open("w", encoding="utf-8") as log:
         process = subprocess.Popen(
-            [sys.executable, "-m", "service.cli", "serve"],
+            [sys.executable, *(part.format(port=port) for part in command or ["-m", "service.cli", "serve"])],
             env=env,
             stdout=log,
             stderr=subprocess.STDOUT,
