@@ -172,7 +172,7 @@ def structured_text(
     str
         The block's source text, LF line ends.
     """
-    m, p, na = law.inputs, law.measured, law.estimates
+    m, p, pz, na = law.inputs, law.measured, law.setpoints, law.estimates
     ns = na + m
     inf = np.full(m, np.inf)
     lo = -inf if input_min is None else np.asarray(input_min, dtype=float)
@@ -188,10 +188,10 @@ def structured_text(
     u = [names.take(f"u_{j + 1}") for j in range(m)]
     measured = [names.take(st_identifier(sig.tag)) for sig in inputs[:p]]
     quality = [names.take(f"{name}_ok") for name in measured]
-    setpoint = [names.take(f"{st_identifier(sig.tag)}_sp") for sig in inputs[p : 2 * p]]
+    setpoint = [names.take(f"{st_identifier(sig.tag)}_sp") for sig in inputs[p : p + pz]]
     md = law.disturbances
-    disturbance = [names.take(st_identifier(sig.tag)) for sig in inputs[2 * p : 2 * p + md]]
-    target = [names.take(f"{st_identifier(sig.tag)}_target") for sig in inputs[2 * p + md :]]
+    disturbance = [names.take(st_identifier(sig.tag)) for sig in inputs[p + pz : p + pz + md]]
+    target = [names.take(f"{st_identifier(sig.tag)}_target") for sig in inputs[p + pz + md :]]
     manipulated = [names.take(st_identifier(sig.tag)) for sig in outputs[:m]]
     move = [names.take(f"{name}_move") for name in manipulated]
     low = {j: names.take(f"{manipulated[j]}_min") for j in range(m) if np.isfinite(lo[j])}
@@ -246,11 +246,11 @@ def structured_text(
     ]
     for name, sig in zip(measured, inputs[:p], strict=True):
         head.append(f"     {name} = measured {_comment(sig.tag)}{_comment(unit(sig))}")
-    for name, sig in zip(setpoint, inputs[p : 2 * p], strict=True):
+    for name, sig in zip(setpoint, inputs[p : p + pz], strict=True):
         head.append(f"     {name} = setpoint of {_comment(sig.tag)}{_comment(unit(sig))}")
-    for name, sig in zip(disturbance, inputs[2 * p : 2 * p + md], strict=True):
+    for name, sig in zip(disturbance, inputs[p + pz : p + pz + md], strict=True):
         head.append(f"     {name} = measured disturbance {_comment(sig.tag)}{_comment(unit(sig))}")
-    for name, sig in zip(target, inputs[2 * p + md :], strict=True):
+    for name, sig in zip(target, inputs[p + pz + md :], strict=True):
         head.append(f"     {name} = input target of {_comment(sig.tag)}{_comment(unit(sig))}")
     for name, sig in zip(manipulated, outputs[:m], strict=True):
         head.append(f"     {name} = manipulated variable {_comment(sig.tag)}{_comment(unit(sig))}")
@@ -276,11 +276,11 @@ def structured_text(
     for name, ok, sig in zip(measured, quality, inputs[:p], strict=True):
         decl.append(f"    {name} : LREAL; (* measured {_comment(sig.tag)}{_comment(unit(sig))} *)")
         decl.append(f"    {ok} : BOOL := TRUE; (* FALSE while {name} is bad *)")
-    for name, sig in zip(setpoint, inputs[p : 2 * p], strict=True):
+    for name, sig in zip(setpoint, inputs[p : p + pz], strict=True):
         decl.append(f"    {name} : LREAL; (* setpoint of {_comment(sig.tag)}{_comment(unit(sig))} *)")
-    for name, sig in zip(disturbance, inputs[2 * p : 2 * p + md], strict=True):
+    for name, sig in zip(disturbance, inputs[p + pz : p + pz + md], strict=True):
         decl.append(f"    {name} : LREAL; (* measured disturbance {_comment(sig.tag)}{_comment(unit(sig))} *)")
-    for name, sig in zip(target, inputs[2 * p + md :], strict=True):
+    for name, sig in zip(target, inputs[p + pz + md :], strict=True):
         decl.append(f"    {name} : LREAL; (* input target of {_comment(sig.tag)}{_comment(unit(sig))} *)")
     decl += ["    reset : BOOL := FALSE; (* TRUE: every state back to zero before this call *)", "END_VAR"]
     decl.append("VAR_OUTPUT")
