@@ -83,3 +83,26 @@ def test_simulate_riccati_under_a_binding_move_limit_moves_no_faster_than_the_li
     assert np.abs(moves).max() <= 0.05 + 1e-9
     assert np.abs(moves).max() > 0.05 - 1e-6  # the limit did bind
     np.testing.assert_allclose(run["outputs"][-1], SETPOINT, atol=1e-6)
+
+
+BD = [[0.05], [0.0], [0.02], [0.0]]  # a measured feed disturbance (invented)
+
+
+@pytest.mark.parametrize("horizon", [2, 6])
+def test_design_feedforward_gain_with_the_riccati_terminal_weight_is_minus_k_s_m(client, horizon):
+    # With Hu = Hp the law is the LQR law on the deviation from the steady state under the
+    # held disturbance, du = -K (xi - xi_s(r, d)) (dynamic programming; K from
+    # scipy.linalg.solve_discrete_are), so its feed-forward gain (du = ... - Kd d) is
+    # Kd = -K S_m with S_m from the target equations (I - A) x = B u + Bd d, C x = 0, solved by hand.
+    body = _body(horizon)
+    body["model"]["b_disturbance"] = BD
+    body["model"]["disturbances"] = [{"name": "feed_flow", "unit": "t/h"}]
+    design = {k: body[k] for k in ("model", "horizons", "weights")}
+    r = client.post("/design", json=design)
+    assert r.status_code == 200, r.text
+    gain = r.json()["gain"]
+    lqr, _, _ = incremental_lqr(A, B, C, Q, R)
+    target = np.block([[np.eye(4) - A, -B], [C, np.zeros((2, 2))]])
+    s_m = np.linalg.solve(target, np.vstack([np.array(BD), np.zeros((2, 1))]))
+    np.testing.assert_allclose(np.array(gain["disturbance"]), -lqr @ s_m, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(np.hstack([gain["state"], gain["previous_input"]]), lqr, rtol=0, atol=1e-9)
