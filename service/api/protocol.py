@@ -13,7 +13,12 @@
   new one is answered 503 with ``Retry-After`` and closed at once.
 
 The limits are read from the settings of the environment (:func:`service.api.deps.get_settings`),
-the same ones the app of the worker process uses.
+the same ones the app of the worker process uses.  ``movecast serve`` installs the class
+(:mod:`service.api.serving`); under uvicorn's own command it is named by its import string,
+``uvicorn service.api.app:create_app --factory --http service.api.protocol:GuardedH11Protocol``
+(uvicorn imports a protocol class named that way).  An ASGI server picks its protocol before it
+loads the app, so no app can install it by itself: served any other way, there is no read
+deadline and no connection cap (the README says so).
 """
 
 from __future__ import annotations

@@ -14,14 +14,14 @@ import subprocess
 import sys
 import time
 from collections.abc import Iterator
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from pathlib import Path
 
 import httpx
 
 ROOT = Path(__file__).resolve().parents[2]
 
-__all__ = ["LiveServer", "free_port", "live_server", "metric"]
+__all__ = ["LiveServer", "descendants", "free_port", "live_server", "metric", "paused"]
 
 
 def free_port() -> int:
@@ -52,9 +52,53 @@ def metric(text: str, name: str, **labels: str) -> float:
     return float(found.group(1)) if found else 0.0
 
 
+def descendants(pid: int) -> list[int]:
+    """The processes below ``pid`` (children, their children, ...), read from Linux's ``/proc``."""
+    parents: dict[int, int] = {}
+    for entry in Path("/proc").iterdir():
+        if not entry.name.isdigit():
+            continue
+        try:
+            stat = (entry / "stat").read_text()
+        except OSError:
+            continue  # gone meanwhile
+        # pid (comm) state ppid ...: the name may hold spaces, so split after its closing parenthesis
+        parents[int(entry.name)] = int(stat.rsplit(")", 1)[1].split()[1])
+    found: list[int] = []
+    frontier = [pid]
+    while frontier:
+        here = frontier.pop()
+        children = [child for child, parent in parents.items() if parent == here]
+        found.extend(children)
+        frontier.extend(children)
+    return found
+
+
 @contextmanager
-def live_server(tmp_path: Path, *, ready_seconds: float = 90, **settings: str) -> Iterator[LiveServer]:
-    """Start ``python -m service.cli serve`` with ``MOVECAST_<NAME>`` settings; kill it afterwards."""
+def paused(server: LiveServer) -> Iterator[list[int]]:
+    """Stop (SIGSTOP) every process the server started, its compute processes among them, until the
+    block ends (SIGCONT).  The server process itself runs on: whatever it sends to compute waits, for
+    as long as the test needs, whatever the machine's load, and costs no CPU meanwhile."""
+    stopped = descendants(server.process.pid)
+    assert stopped, "the server has no compute processes to pause"
+    for pid in stopped:
+        os.kill(pid, signal.SIGSTOP)
+    try:
+        yield stopped
+    finally:
+        for pid in stopped:
+            with suppress(ProcessLookupError):
+                os.kill(pid, signal.SIGCONT)
+
+
+@contextmanager
+def live_server(
+    tmp_path: Path, *, ready_seconds: float = 90, command: list[str] | None = None, **settings: str
+) -> Iterator[LiveServer]:
+    """Start ``python -m service.cli serve`` with ``MOVECAST_<NAME>`` settings; kill it afterwards.
+
+    ``command`` serves another way instead (its arguments after the interpreter, ``{port}`` put in).
+    """
     port = free_port()
     env = {
         **os.environ,
@@ -66,7 +110,7 @@ def live_server(tmp_path: Path, *, ready_seconds: float = 90, **settings: str) -
     log_path = tmp_path / f"server-{port}.log"
     with log_path.open("w", encoding="utf-8") as log:
         process = subprocess.Popen(
-            [sys.executable, "-m", "service.cli", "serve"],
+            [sys.executable, *(part.format(port=port) for part in command or ["-m", "service.cli", "serve"])],
             env=env,
             stdout=log,
             stderr=subprocess.STDOUT,

@@ -3,6 +3,11 @@
 ``MOVECAST_READ_TIMEOUT_SECONDS`` bounds how long a request may take to arrive whole (headers
 trickled a byte at a time, or a body that never comes); ``MOVECAST_MAX_CONNECTIONS`` caps open
 connections.  Both answers are problem details, and the server goes on serving.
+
+They hold under ``movecast serve`` and under plain uvicorn given the guarded protocol class
+(``--http service.api.protocol:GuardedH11Protocol``, the way the README gives for serving the
+app factory with uvicorn's own command): the protocol reads the same settings from the
+environment either way.
 """
 
 from __future__ import annotations
@@ -11,6 +16,7 @@ import json
 import os
 import socket
 import time
+from pathlib import Path
 
 import httpx
 import pytest
@@ -39,8 +45,26 @@ def problem_of(answer: bytes) -> tuple[int, dict]:
     return int(head.split(b" ", 2)[1]), json.loads(body)
 
 
-def test_trickled_headers_and_missing_bodies_are_cut_off_and_excess_connections_refused(tmp_path):
-    with live_server(tmp_path, read_timeout_seconds="1", max_connections="8", solver_processes="1") as server:
+#: uvicorn's own command line serving the app factory with the guarded protocol (README, "Serving").
+UVICORN = [
+    "-m",
+    "uvicorn",
+    "service.api.app:create_app",
+    "--factory",
+    "--http",
+    "service.api.protocol:GuardedH11Protocol",
+    "--host",
+    "127.0.0.1",
+    "--port",
+    "{port}",
+]
+
+
+@pytest.mark.parametrize("command", [None, UVICORN], ids=["movecast-serve", "uvicorn-factory"])
+def test_trickled_headers_and_missing_bodies_are_cut_off_and_excess_connections_refused(tmp_path, command):
+    with live_server(
+        tmp_path, command=command, read_timeout_seconds="1", max_connections="8", solver_processes="1"
+    ) as server:
         address = (server.host, server.port)
         # Headers a byte at a time, slower than the deadline allows in total: 408, closed.
         with socket.create_connection(address, timeout=20) as sock:
@@ -84,3 +108,10 @@ def test_trickled_headers_and_missing_bodies_are_cut_off_and_excess_connections_
                 pass
             time.sleep(0.05)
         assert httpx.get(f"{server.base}/healthz", timeout=5).json()["status"] == "ok"
+
+
+def test_the_readme_gives_the_uvicorn_command_these_tests_run():
+    """The README's way of serving with uvicorn's own command is the one checked above."""
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text(encoding="utf-8")
+    assert "uvicorn service.api.app:create_app --factory" in readme
+    assert "--http service.api.protocol:GuardedH11Protocol" in readme

@@ -1,9 +1,12 @@
 """Graceful shutdown of a real server process (``python -m service.cli serve``) on loopback.
 
-Several slow designs are sent at once to a server with one solver process, so that some are
-being solved and others wait for the solver when SIGTERM arrives. All of them must be
-answered 200 with a full design; a new connection after SIGTERM must be refused or told
-503 by /readyz; the process must exit with status 0, well within its grace period.
+Several designs are sent at once to a server with one solver process whose compute processes
+are paused (SIGSTOP, :func:`tests.api.live.paused`), so that one has been handed to the solver
+and the others wait for it when SIGTERM arrives, however loaded the machine is.  While they are
+held, a new connection must be refused or told 503 by /readyz; then the compute processes run
+again, all of the designs must be answered 200 with a full design, and the process must exit
+with status 0 within its grace period.  Every wait is bounded by a limit far above what an idle
+machine needs (the time limit and grace period are set long to match); none is a pass criterion.
 """
 
 from __future__ import annotations
@@ -23,10 +26,19 @@ import httpx
 import numpy as np
 import pytest
 
+from tests.api.live import LiveServer, paused
 from tests.conftest import random_design_request
 
 ROOT = Path(__file__).resolve().parents[2]
-pytestmark = pytest.mark.skipif(not hasattr(signal, "SIGTERM") or os.name != "posix", reason="POSIX signals")
+pytestmark = pytest.mark.skipif(
+    not hasattr(signal, "SIGTERM") or os.name != "posix" or not Path("/proc/self/stat").is_file(),
+    reason="POSIX signals and Linux's /proc",
+)
+
+#: The compute time limit of the server under test; its grace period is this plus 5 s.
+TIME_LIMIT = 600
+#: Bound of every wait in the test (start-up, the gauge, the answers, the exit): above the grace period.
+WAIT_SECONDS = TIME_LIMIT + 60
 
 
 def free_port() -> int:
@@ -40,7 +52,7 @@ def medium_request(seed: int) -> dict:
     return random_design_request(np.random.default_rng(seed), states=10, signals=10, prediction=150, control=100)
 
 
-def wait_ready(base: str, process: subprocess.Popen, *, seconds: float = 90) -> None:
+def wait_ready(base: str, process: subprocess.Popen, *, seconds: float = WAIT_SECONDS) -> None:
     give_up = time.monotonic() + seconds
     while time.monotonic() < give_up:
         assert process.poll() is None, "the server exited during start-up"
@@ -53,16 +65,28 @@ def wait_ready(base: str, process: subprocess.Popen, *, seconds: float = 90) -> 
     raise AssertionError("the server did not become ready")
 
 
-def wait_in_progress(base: str, count: int, *, seconds: float = 60) -> None:
+def wait_in_progress(base: str, count: int, *, seconds: float = WAIT_SECONDS) -> None:
     """Wait until the server has ``count`` POST /design requests in hand (its own gauge)."""
     give_up = time.monotonic() + seconds
     while time.monotonic() < give_up:
-        text = httpx.get(f"{base}/metrics", timeout=5).text
+        text = httpx.get(f"{base}/metrics", timeout=seconds).text
         found = re.search(r'^movecast_requests_in_progress\{route="/design"\} ([0-9.]+)$', text, flags=re.M)
         if found and float(found.group(1)) >= count:
             return
         time.sleep(0.05)
     raise AssertionError(f"the server never had {count} designs in progress")
+
+
+def refused_or_not_ready(base: str) -> bool:
+    """Whether a new connection is refused, or /readyz says 503 not_ready."""
+    try:
+        late = httpx.get(f"{base}/readyz", timeout=WAIT_SECONDS)
+    except httpx.TransportError:
+        return True  # refused: the listening socket is closed
+    if late.status_code == 200:
+        return False
+    assert late.status_code == 503 and late.json()["status"] == "not_ready", late.text
+    return True
 
 
 def test_sigterm_finishes_in_flight_requests_refuses_new_ones_and_exits_cleanly(tmp_path):
@@ -72,7 +96,7 @@ def test_sigterm_finishes_in_flight_requests_refuses_new_ones_and_exits_cleanly(
         **os.environ,
         "MOVECAST_HOST": "127.0.0.1",
         "MOVECAST_SOLVER_PROCESSES": "1",
-        "MOVECAST_REQUEST_TIMEOUT_SECONDS": "60",
+        "MOVECAST_REQUEST_TIMEOUT_SECONDS": str(TIME_LIMIT),
         "PYTHONPATH": str(ROOT),
     }
     log_path = tmp_path / "server.log"
@@ -90,27 +114,28 @@ def test_sigterm_finishes_in_flight_requests_refuses_new_ones_and_exits_cleanly(
 
         def post(i: int) -> None:
             try:
-                answers[i] = httpx.post(f"{base}/design", json=medium_request(i), timeout=120)
+                answers[i] = httpx.post(f"{base}/design", json=medium_request(i), timeout=WAIT_SECONDS)
             except Exception as exc:
                 answers[i] = exc
 
         threads = [threading.Thread(target=post, args=(i,)) for i in range(4)]
+        with paused(LiveServer(process, port, log_path)):
+            for thread in threads:
+                thread.start()
+            wait_in_progress(base, 4)  # all four are in the server, none can finish: one handed over, three queued
+            process.send_signal(signal.SIGTERM)
+            # The signal is handled asynchronously: poll (bounded) until new work is turned away,
+            # while the four are still held in flight.
+            for _ in range(int(WAIT_SECONDS / 0.1)):
+                if refused_or_not_ready(base):
+                    break
+                time.sleep(0.1)
+            else:
+                raise AssertionError("new connections were still served long after SIGTERM")
+            assert not answers, "a design was answered while compute was paused"
         for thread in threads:
-            thread.start()
-        wait_in_progress(base, 4)  # all four are in the server: one solving, the others queued
-        process.send_signal(signal.SIGTERM)
-        time.sleep(0.5)
-
-        try:
-            late = httpx.get(f"{base}/readyz", timeout=5)
-        except httpx.TransportError:
-            pass  # refused: the listening socket is closed
-        else:
-            assert late.status_code == 503 and late.json()["status"] == "not_ready"
-
-        for thread in threads:
-            thread.join(timeout=120)
-        assert process.wait(timeout=90) == 0
+            thread.join(timeout=WAIT_SECONDS)
+        assert process.wait(timeout=WAIT_SECONDS) == 0
     finally:
         if process.poll() is None:
             process.kill()
@@ -152,17 +177,16 @@ def test_serve_sizes_thread_pools_and_the_metrics_folder_before_numpy(monkeypatc
     environment = dict(os.environ)
     for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "PROMETHEUS_MULTIPROC_DIR"):
         environment.pop(name, None)
-    environment["MOVECAST_SOLVER_PROCESSES"] = "1"
     monkeypatch.setattr(os, "environ", environment)
     monkeypatch.setattr(cli.os, "sched_getaffinity", lambda pid: set(range(8)), raising=False)
     cli._prepare_process_environment(2)
-    # 8 CPUs shared by 2 workers x 1 solver process each: 4 BLAS threads per solver.
-    assert os.environ["OMP_NUM_THREADS"] == os.environ["OPENBLAS_NUM_THREADS"] == "4"
+    # One BLAS thread per process whatever the CPUs: the service scales by processes.
+    assert os.environ["OMP_NUM_THREADS"] == os.environ["OPENBLAS_NUM_THREADS"] == os.environ["MKL_NUM_THREADS"] == "1"
     folder = Path(os.environ["PROMETHEUS_MULTIPROC_DIR"])
     assert folder.is_dir() and not list(folder.iterdir())
     # Variables the operator set are kept (the image sets one thread per worker).
-    environment["OMP_NUM_THREADS"] = "1"
+    environment["OMP_NUM_THREADS"] = "3"
     (folder / "counter_1.db").write_bytes(b"old")
     cli._prepare_process_environment(2)
-    assert os.environ["OMP_NUM_THREADS"] == "1"
+    assert os.environ["OMP_NUM_THREADS"] == "3"
     assert not list(folder.glob("*.db")), "old samples are wiped at start-up"
