@@ -176,7 +176,7 @@ export function drawResponses(container, answer, request) {
     const traces = [
       { type: "scatter", mode: "lines", name: `${name}`, x: time, y: column(answer.outputs, j), line: { color: COLOURS.blue, width: 2 } },
     ];
-    if (answer.measured) traces.push({
+    if (answer.measured && !columns.measured_own) traces.push({
       type: "scatter", mode: "lines", name: "measured", x: time, y: column(answer.measured, j),
       line: { color: COLOURS.sky, width: 1, dash: "dot" }, opacity: 0.9,
     });

@@ -387,3 +387,38 @@ def test_simulate_names_what_does_not_fit_the_measured_outputs(client, edit, poi
     body = _body()
     edit(body)
     assert pointer in _pointers(client, "/simulate", body)
+
+
+def test_the_run_size_cap_counts_the_measured_outputs(client):
+    from service.pipeline.caps import Caps, plant_run_entries
+    from service.pipeline.plant import require_plant
+    from service.schemas.model import StateSpaceModel
+
+    body = _body()
+    for model in (body["model"], body["scenario"]["true_plant"]):  # three sensors, one controlled output
+        model["c_measured"] = [[0.0, 1.0], [1.0, 1.0], [0.5, 0.0]]
+        model.pop("measured")
+    body["estimator"] = {"kind": "input_disturbance"}
+    body["scenario"]["measurement_noise"]["std"] = [0.01, 0.01, 0.01]
+    sim = _simulate(client, body).json()
+    assert np.array(sim["measured"]).shape == (body["scenario"]["steps"], 3)
+    assert sim["columns"]["measured"] == ["y1", "y2", "y3"]
+    plant = require_plant(StateSpaceModel.model_validate(body["model"]), Caps())
+    kept = sum(np.array(sim[k]).size for k in ("outputs", "setpoints", "measured", "inputs", "estimates"))
+    true_states = 2 * body["scenario"]["steps"]  # the true plant's states, kept but not answered
+    # the cap's count is what the run keeps: every series answered plus the true states (its docstring)
+    assert plant_run_entries(plant, true_plant=plant, disturbance="input", steps=body["scenario"]["steps"]) == (
+        kept + true_states
+    )
+
+
+def test_the_bundled_example_with_a_sensor_of_its_own(client):
+    from service.pipeline.examples import load_example
+
+    body = load_example("simulate_request_measured.json")
+    sim = _simulate(client, body).json()
+    assert sim["columns"]["measured"] == ["outlet_temp"] and sim["columns"]["outputs"] == ["inlet_temp"]
+    z = np.array(sim["outputs"])[-30:, 0]
+    # noise of std 0.01 on the sensor only; the unmeasured inlet temperature still settles on 1
+    # to within a few noise spreads (common practice: the filter averages the noise down)
+    assert abs(z.mean() - 1.0) < 0.02
