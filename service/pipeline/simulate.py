@@ -33,7 +33,7 @@ from numpy.typing import NDArray
 from service.errors import InvalidRequest, NumericalError
 from service.pipeline.caps import Caps
 from service.pipeline.csv_cells import text_cell
-from service.pipeline.design import DesignOutcome, compute_design, design_response, marginal_mode_reports
+from service.pipeline.design import DesignInputs, DesignOutcome, compute_design, design_response, marginal_mode_reports
 from service.pipeline.estimator import disturbance_spans, scaled_estimator, scaled_measured
 from service.pipeline.fingerprint import design_fingerprint, fingerprint
 from service.pipeline.limits import LimitedRun, limit_run_reports, limited_run
@@ -316,15 +316,22 @@ def _optional(value: float | None) -> float | None:
     return None if value is None or not np.isfinite(value) else float(value)
 
 
-def performance_report(plant: DiscretePlant, outcome: SimulationOutcome) -> PerformanceReport:
-    """The figures of merit of a run, named by the plant's tags (null where the run blew up)."""
+def performance_report(design: DesignInputs, outcome: SimulationOutcome) -> PerformanceReport:
+    """The figures of merit of a run, named by the plant's tags (null where the run blew up).
+
+    A zone output is held in its range, not at a setpoint: its setpoint figures are null and
+    ``zone`` is true (the answer's ``zones`` says how it kept to its range).
+    """
+    plant = design.plant
+    zone_outputs = () if design.zones is None else design.zones.outputs
     figures = outcome.performance
     outputs, inputs = [], []
     for i, signal in enumerate(plant.outputs):
-        f = figures.outputs[i] if figures is not None else None
+        f = figures.outputs[i] if figures is not None and i not in zone_outputs else None
         outputs.append(
             OutputFigures(
                 name=signal.name,
+                zone=i in zone_outputs,
                 step=None if f is None else f.step,
                 rise_time=None if f is None else _optional(f.rise_time),
                 settling_time=None if f is None else _optional(f.settling_time),
@@ -450,7 +457,7 @@ def simulate_response(
             spectral_radius=outcome.true.spectral_radius,
             stable=outcome.true.stable,
         ),
-        performance=performance_report(plant, outcome),
+        performance=performance_report(inputs.design, outcome),
         estimator=EstimatorReport(
             kind=est.kind,
             disturbance=est.disturbance,

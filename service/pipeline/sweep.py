@@ -163,7 +163,7 @@ def _entry(
             retuned_run = replace(run, design=inputs)
             simulation = compute_simulation(retuned_run)
             outcome = simulation.design
-            performance = performance_report(inputs.plant, simulation)
+            performance = performance_report(inputs, simulation)
         if outcome.analysis is not None and outcome.estimator is not None:
             peak = _peak_sensitivity(outcome.analysis, outcome.estimator)
     except (InvalidRequest, NumericalError) as exc:

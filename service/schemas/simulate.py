@@ -170,6 +170,11 @@ class OutputFigures(ResponseModel):
     """
 
     name: str
+    zone: bool = Field(
+        default=False,
+        description="A zone output, held in its range rather than at a setpoint: every figure here is null; "
+        "the answer's zones entry for it says how it kept to its range.",
+    )
     step: int | None = Field(description="Step of the last setpoint change of this output.")
     rise_time: float | None = Field(description="From 10 % to 90 % of the setpoint step.")
     settling_time: float | None = Field(description="Until the output stays within 2 % of the setpoint step.")
