@@ -198,13 +198,15 @@ def structured_text(
     high = {j: names.take(f"{manipulated[j]}_max") for j in range(m) if np.isfinite(hi[j])}
     step = {j: names.take(f"{manipulated[j]}_move_max") for j in range(m) if np.isfinite(dmax[j])}
     absolute = input_offset is not None and output_offset is not None
-    w0 = np.zeros(2 * p + md + len(target)) if input_offset is None else np.asarray(input_offset, dtype=float)
+    w0 = np.zeros(p + pz + md + len(target)) if input_offset is None else np.asarray(input_offset, dtype=float)
     u0 = np.zeros(m) if output_offset is None else np.asarray(output_offset, dtype=float)
     if absolute:  # operating-point constants and the deviations the law reads
+        # the measurements are the controlled outputs (the export refuses an operating point otherwise)
+        assert p == pz, (p, pz)
         op_out = [names.take(f"{name}_op") for name in measured]
         op_dist = [names.take(f"{name}_op") for name in disturbance]
         op_in = [names.take(f"{name}_op") for name in manipulated]
-        r_dev = [names.take(f"r_{i + 1}") for i in range(p)]
+        r_dev = [names.take(f"r_{i + 1}") for i in range(pz)]
         d_dev = [names.take(f"d_{i + 1}") for i in range(md)]
         t_dev = [names.take(f"t_{j + 1}") for j in range(len(target))]
         last = [names.take(f"p_{j + 1}") for j in range(m)]
@@ -302,7 +304,7 @@ def structured_text(
         for i, name in enumerate(op_out):
             decl.append(f"    {name} : LREAL := {_literal(float(w0[i]))}; (* operating point of {measured[i]} *)")
         for k, name in enumerate(op_dist):
-            value = float(w0[2 * p + k])
+            value = float(w0[p + pz + k])
             decl.append(f"    {name} : LREAL := {_literal(value)}; (* operating point of {disturbance[k]} *)")
         for j, name in enumerate(op_in):
             decl.append(f"    {name} : LREAL := {_literal(float(u0[j]))}; (* operating point of {manipulated[j]} *)")
@@ -328,7 +330,7 @@ def structured_text(
         ]
     if absolute:
         body.append("(* deviations from the operating point *)")
-        body += [f"{r_dev[i]} := {setpoint[i]} - {op_out[i]};" for i in range(p)]
+        body += [f"{r_dev[i]} := {setpoint[i]} - {op_out[i]};" for i in range(pz)]
         body += [f"{d_dev[k]} := {disturbance[k]} - {op_dist[k]};" for k in range(md)]
         body += [f"{t_dev[j]} := {target[j]} - {op_in[j]};" for j in range(len(target))]
         body += [f"{last[j]} := {s[na + j]} + {op_in[j]};" for j in range(m)]

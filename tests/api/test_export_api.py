@@ -89,9 +89,17 @@ def _vessel_riccati():
     return body
 
 
+def _transfer_matrix_riccati():
+    body = _transfer_matrix()
+    body["weights"]["terminal"] = "riccati"
+    body["horizons"] = {"prediction": 12, "control": 4}
+    return body
+
+
 CASES = {
     "vessel, 20 % gain error, noise": _vessel,
     "vessel with the Riccati terminal weight": _vessel_riccati,
+    "transfer matrix with the Riccati terminal weight": _transfer_matrix_riccati,
     "transfer matrix: dead times, integrating level, measured flow, spans": _transfer_matrix,
     "three valves for two outputs": _three_valves,
     "three valves with input targets": _three_valves_with_targets,
@@ -421,6 +429,7 @@ OP_CASES = {
     "vessel": _vessel,
     "vessel with the Riccati terminal weight": _vessel_riccati,
     "transfer matrix with a measured disturbance": _transfer_matrix,
+    "transfer matrix with the Riccati terminal weight": _transfer_matrix_riccati,
     "three valves with input targets": _three_valves_with_targets,
 }
 

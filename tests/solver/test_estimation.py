@@ -78,6 +78,13 @@ def test_kalman_covariance_is_the_limit_of_the_covariance_recursion(rng):
     np.testing.assert_allclose(est.covariance, pk, rtol=1e-8, atol=1e-10)
 
 
+def _step_rms_noise(a, b, c):
+    """1 / mean square of each input's unit-step response over the outputs and n samples, written out."""
+    n = a.shape[0]
+    steps = [c @ sum((np.linalg.matrix_power(a, i) for i in range(k)), np.zeros_like(a)) @ b for k in range(1, n + 1)]
+    return [1.0 / np.mean([s[:, j] ** 2 for s in steps]) for j in range(b.shape[1])]
+
+
 def test_disturbance_kinds_are_kalman_filters_with_the_documented_default_covariances(rng):
     a, b, c = random_plant(rng, 3, 2, 2)
     for kind, disturbance, nd in [("output_disturbance", "output", 2), ("input_disturbance", "input", 2)]:
@@ -89,7 +96,9 @@ def test_disturbance_kinds_are_kalman_filters_with_the_documented_default_covari
             kind="kalman",
             disturbance=disturbance,
             process_noise=[DEFAULT_STATE_NOISE] * 3,
-            disturbance_noise=[DEFAULT_DISTURBANCE_NOISE] * nd,
+            # the documented defaults: 1 per output disturbance, and per input disturbance 1
+            # over the mean square of that input's step response (input_disturbance_noise)
+            disturbance_noise=[DEFAULT_DISTURBANCE_NOISE] * nd if disturbance == "output" else _step_rms_noise(a, b, c),
             measurement_noise=[DEFAULT_MEASUREMENT_NOISE] * 2,
         )
         assert est.disturbance == disturbance and est.kind == kind

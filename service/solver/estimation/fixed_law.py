@@ -23,8 +23,9 @@ u]``, whose gradient adds ``Kt e_t`` to the first move with the terminal error :
 steady-state target, ``Phi = [Phi_a, Phi_u]`` the free prediction to the horizon's end).
 Every term is linear in the estimate, the last input and the setpoint, so the law keeps its
 form with ``K += Kt (Phi_a - X_d S)`` (in ``estimate_feedback_gain``), ``Ku += Kt Phi_u`` (in
-the design's previous-input gain) and ``Kr += Kt X_r``.  Measured disturbances are not
-combined with the terminal weight (the design refuses them together).  With an input weight (input targets,
+the design's previous-input gain) and ``Kr += Kt X_r``; with measured disturbances ``e_t``
+gains ``(X_m - Phi_m) d_m`` (:func:`service.solver.design.terminal.terminal_disturbance_maps`),
+so ``Kd += Kt (Phi_m - X_m)``.  With an input weight (input targets,
 :mod:`service.solver.design.input_target`) ``Ku`` includes ``Kt0``, ``K`` and ``Kr`` the
 target's input maps (``- Kt0 U_d S`` and ``+ Kt0 U_r``), and the input targets ``u_t`` are
 inputs of the law through ``Kt = Kt0 U_t``.  On the law's state ``s = [x(k|k-1); u(k-1)]``
@@ -142,8 +143,8 @@ def fixed_law(
     Parameters
     ----------
     design : ControllerDesign
-        With the Riccati terminal weight the law holds its terminal term (module notes); not
-        with measured disturbances then.  With an input weight the law also takes the input
+        With the Riccati terminal weight the law holds its terminal term (module notes).
+        With an input weight the law also takes the input
         targets (its last ``m`` inputs).
     estimator : Estimator
         Of the same model, without a measured feed-through (module notes).  ``full_state``
@@ -159,7 +160,6 @@ def fixed_law(
         with the unconstrained policy and the linear target maps.
     """
     assert estimator.measured_feedthrough is None, "a measured feed-through makes the law implicit (module notes)"
-    assert design.terminal is None or b_disturbance is None, "no feed-forward with the terminal weight"
     na, m = estimator.b.shape
     p = estimator.c_measured.shape[0]  # measured outputs (the plant states for full_state)
     pz = estimator.c_controlled.shape[0]  # controlled outputs: the setpoints
@@ -177,7 +177,7 @@ def fixed_law(
     if kt0 is not None:  # u_s = U_r r + U_d d + U_t u_t; U_d is in K already
         setpoint_gain = setpoint_gain + kt0 @ target.setpoint_map[n:]
         target_gain = kt0 @ target.input_target_map[n:]
-    terminal = terminal_term(design, estimator, target)
+    terminal = terminal_term(design, estimator, target, b_disturbance=bd if md else None)
     if terminal is not None:  # Kt X_r: the setpoint's way through the terminal target
         setpoint_gain = setpoint_gain + terminal.gain @ terminal.setpoint_map
     mt = target_gain.shape[1]
@@ -190,6 +190,8 @@ def fixed_law(
             first_penalized=pred.first_penalized,
         )
         feedforward = kh @ fd
+        if terminal is not None:  # Kt (Phi_m - X_m): the disturbance on both sides of the terminal deviation
+            feedforward = feedforward + terminal.feedforward
     else:
         feedforward = np.zeros((m, 0))
     lg, cy = estimator.gain, estimator.c_measured

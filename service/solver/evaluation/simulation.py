@@ -49,7 +49,11 @@ error ::
     e_t(k) = xi_s(k) - (Phi_a x(k|k) + Phi_u u(k-1))        (n+m,)
 
 (:class:`service.solver.estimation.loop.TerminalTerm`), and the policy receives
-``terminal_error=e_t(k)``; the unconstrained move is ``du = Kh E + Kt e_t``.
+``terminal_error=e_t(k)``; the unconstrained move is ``du = Kh E + Kt e_t``.  With measured
+disturbances both sides move with the held ``d_m(k)``: ``e_t`` gains ``(X_m - Phi_m) d_m(k)``
+(the steady state under ``d_m`` and its free response to the horizon's end,
+:func:`service.solver.design.terminal.terminal_disturbance_maps`); under a target rule the
+rule's steady state is shifted by ``X_m d_m(k)`` likewise.
 
 Events hold from their step on: a setpoint change sets ``r``, an output (input) disturbance
 event sets the level of ``d_out`` (``d_in``) — each event replaces the previous level, it does
@@ -81,7 +85,7 @@ from numpy.typing import ArrayLike, NDArray
 from service.solver.design.controller import ControllerDesign
 from service.solver.design.feedforward import disturbance_free_response
 from service.solver.estimation.estimator import Estimator
-from service.solver.estimation.loop import ControlLoop, TerminalTerm, control_loop
+from service.solver.estimation.loop import ControlLoop, TerminalTerm, control_loop, terminal_term
 
 __all__ = [
     "DIVERGENCE_LIMIT",
@@ -500,6 +504,8 @@ def _fixed_law(
         assert setpoints is not None
         kt = terminal.gain
         reference += setpoints @ (kt @ terminal.setpoint_map).T
+        if fd is not None:  # - Kt (Phi_m - X_m) d_m(k)
+            reference -= d_meas @ terminal.feedforward.T
         state = state + kt @ terminal.free_state
         if terminal.disturbance_map.shape[1]:
             state[:, dsl] -= kt @ terminal.disturbance_map
@@ -680,6 +686,8 @@ def simulate_loop(
     assert steps >= 1, steps
     pulled = loop.design.input_target_gain is not None
     term = loop.terminal
+    if term is not None and md:
+        term = terminal_term(loop.design, est, loop.target, b_disturbance=bd)
     if policy is None:
         policy = UnconstrainedPolicy(
             loop.horizon_gain, loop.design.input_target_gain, None if term is None else term.gain
@@ -816,7 +824,10 @@ def simulate_loop(
                     asked["target_input"] = us
                 if term is not None:
                     assert xs is not None
-                    asked["terminal_error"] = xs - term.free_prediction(xf, u)
+                    terminal_error = xs - term.free_prediction(xf, u)
+                    if md:
+                        terminal_error = terminal_error + term.feedforward_shift @ d_meas[k]
+                    asked["terminal_error"] = terminal_error
                 result = policy(error=error, free_prediction=free, previous_input=u, step=k, **asked)
                 du = np.asarray(result.move, dtype=float)
                 assert du.shape == (m,), du.shape
