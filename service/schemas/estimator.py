@@ -52,8 +52,10 @@ class EstimatorRequest(RequestModel):
     disturbance_noise: Covariance | None = Field(
         default=None,
         description="Covariance of the per-sample change of each estimated disturbance (output units "
-        "squared for output disturbances, input units squared for input ones; default 1 per "
-        "disturbance, in units of the span when spans are given).",
+        "squared for output disturbances, input units squared for input ones). Default: 1 per output "
+        "disturbance (in units of the span when spans are given); for an input disturbance, 1 over the "
+        "mean square of that input's unit-step response on the outputs, so that the default does not "
+        "depend on the input's units.",
     )
     measurement_noise: Covariance | None = Field(
         default=None,

@@ -108,6 +108,7 @@ __all__ = [
     "controlled_disturbance",
     "default_disturbances",
     "design_estimator",
+    "input_disturbance_noise",
     "integrating_outputs",
     "kalman_filter",
     "unmeasured_outputs",
@@ -620,6 +621,48 @@ def _covariance(value: ArrayLike | None, size: int, default: float) -> NDArray[n
     return weight_matrix(value, size)
 
 
+def input_disturbance_noise(
+    a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64]
+) -> NDArray[np.float64]:
+    """Default variances of the input disturbances' random-walk steps, free of the inputs' units.
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, n)
+    b : ndarray, shape (n, m)
+    c : ndarray, shape (p, n)
+
+    Returns
+    -------
+    ndarray, shape (m,)
+        ``DEFAULT_DISTURBANCE_NOISE / g_j**2`` with ``g_j`` the root mean square of input
+        ``j``'s unit-step response ``C sum_{i<k} A^i B e_j`` over all outputs and the first
+        ``n`` samples; ``DEFAULT_DISTURBANCE_NOISE`` for an input that reaches no output.
+
+    Notes
+    -----
+    A disturbance step of that variance moves the outputs about as much as an output
+    disturbance of the default variance moves its output.  The step response is a property of
+    the input-output map (the same for every realization of the plant), and ``g_j`` scales
+    as ``1 / k`` when input ``j``'s unit shrinks by ``k`` while the variance, in the input's
+    units, grows by ``k**2``: the filter, and its poles, are the same in any input units.  A
+    fixed default in input units would make an input's disturbance look ``k**2`` times
+    smaller in a unit ``k`` times smaller (common practice: express default covariances in
+    the signals' own sizes).
+    """
+    n, m = b.shape
+    response = np.zeros((c.shape[0], m))
+    step = b.copy()
+    total = np.zeros(m)
+    for _ in range(max(n, 1)):
+        response = response + c @ step
+        total += np.sum(response**2, axis=0)
+        step = a @ step
+    rms_squared = total / (max(n, 1) * max(c.shape[0], 1))
+    reached = rms_squared > 0.0
+    return np.where(reached, DEFAULT_DISTURBANCE_NOISE / np.where(reached, rms_squared, 1.0), DEFAULT_DISTURBANCE_NOISE)
+
+
 def design_estimator(
     a: ArrayLike,
     b: ArrayLike,
@@ -658,7 +701,8 @@ def design_estimator(
         ``DEFAULT_STATE_NOISE * I``.
     disturbance_noise : array_like, shape (nd,) or (nd, nd), optional
         Covariance of the disturbances' random-walk steps; default
-        ``DEFAULT_DISTURBANCE_NOISE * I``.
+        ``DEFAULT_DISTURBANCE_NOISE * I``, and for input disturbances
+        :func:`input_disturbance_noise` (free of the inputs' units).
     measurement_noise : array_like, shape (p,) or (p, p), optional
         Measurement-noise covariance ``Rv`` (positive definite); default
         ``DEFAULT_MEASUREMENT_NOISE * I``.
@@ -764,7 +808,11 @@ def design_estimator(
     _check_detectable(a_, c_, bd, cd, disturbance=model, output_labels=outputs, input_labels=inputs, disturbances=kinds)
     qw = scipy.linalg.block_diag(
         _covariance(process_noise, n, DEFAULT_STATE_NOISE),
-        _covariance(disturbance_noise, nd, DEFAULT_DISTURBANCE_NOISE),
+        (
+            np.diag(input_disturbance_noise(a_, b_, c_))
+            if disturbance_noise is None and model == "input"
+            else _covariance(disturbance_noise, nd, DEFAULT_DISTURBANCE_NOISE)
+        ),
     )
     rv = _covariance(measurement_noise, p, DEFAULT_MEASUREMENT_NOISE)
     gain, cov, innovation = kalman_filter(a_aug, c_aug, qw, rv)
