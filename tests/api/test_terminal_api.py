@@ -57,9 +57,12 @@ def test_simulate_with_the_riccati_terminal_weight_and_hu_equal_to_hp_is_the_lqr
     assert run["design"]["closed_loop"]["stable"]
 
 
-def test_simulate_riccati_under_wide_limits_is_the_unconstrained_run(client):
+@pytest.mark.parametrize("move_steps", [None, [0, 2, 4]], ids=["every move", "move blocking"])
+def test_simulate_riccati_under_wide_limits_is_the_unconstrained_run(client, move_steps):
     body = _body(8, kind="output_disturbance", steps=300)
-    body["horizons"]["control"] = 3
+    body["horizons"]["control"] = 3 if move_steps is None else 6
+    if move_steps is not None:
+        body["horizons"]["move_steps"] = move_steps
     body["scenario"]["output_disturbances"] = [{"step": 60, "value": [0.3, 0.2]}]
     free = _post(client, body)
     body["limits"] = {
