@@ -287,8 +287,10 @@ def _dlsim(law, w):
     return v
 
 
-def test_the_exported_law_reads_the_measured_outputs_and_gives_simulate_s_inputs(client):
+@pytest.mark.parametrize("terminal", ["none", "riccati"])
+def test_the_exported_law_reads_the_measured_outputs_and_gives_simulate_s_inputs(client, terminal):
     body = _body()
+    body["weights"]["terminal"] = terminal
     sim = _simulate(client, body).json()
     law = _export(client, body).json()
     assert [(s["name"], s["role"]) for s in law["inputs"]] == [
@@ -304,7 +306,7 @@ def test_the_exported_law_reads_the_measured_outputs_and_gives_simulate_s_inputs
 
 
 def test_the_full_state_law_reads_the_plant_states(client):
-    body = _body(noise=False)
+    body = _body(noise=False, d_measured=[[0.2]])  # full_state reads the state: a feed-through plays no part
     body["estimator"] = {"kind": "full_state"}
     sim = _simulate(client, body).json()
     law = _export(client, body).json()

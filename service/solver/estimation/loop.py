@@ -15,12 +15,14 @@ design's (the disturbance states do not respond to ``u``).
 
 The whole loop, with the plant equal to the model, on ``[x(k); x(k|k-1); u(k-1)]`` ::
 
-    x(k|k)   = L C x(k) + (I - L Cy) x(k|k-1)              =: Mx x + Mp x(k|k-1)
+    x(k|k)   = L Cy x(k) + (I - L Cy_a) x(k|k-1)           =: Mx x + Mp x(k|k-1)
     u(k)     = -K x(k|k) + (I - Ku) u(k-1),    K = Kh (Fx_aug - (1 (x) I_p) Z_d S_d) [- Kt0 U_d S_d]
     x(k+1)   = A x(k) + B u(k)
     x(k+1|k) = A_aug x(k|k) + B_aug u(k)
 
-(``S_d`` picks the disturbance estimate; setpoint at zero; the bracket with input targets,
+(``Cy`` the measured outputs the estimator reads, ``Cy_a = [Cy, Cd]``; a measured feed-through
+``Dy u(k)`` is subtracted before the filter reads them, so it leaves the loop alone; ``S_d``
+picks the disturbance estimate; setpoint at zero; the bracket with input targets,
 ``Ku`` then including ``Kt0``, :mod:`service.solver.design.input_target`).  With the Riccati
 terminal weight ``K`` also holds ``Kt (Phi_a - X_d S_d)`` and ``Ku`` the design's ``Kt Phi_u``
 (:class:`TerminalTerm`).  In the coordinates ``[x; e; u]``
@@ -459,9 +461,10 @@ def true_loop(loop: ControlLoop, a: NDArray[np.float64], b: NDArray[np.float64],
     loop : ControlLoop
     a : ndarray, shape (nt, nt)
     b : ndarray, shape (nt, m)
-    c : ndarray, shape (p, nt)
-        The true plant in the signals of the loop (scaled like the model); ``nt = n`` for
-        ``full_state``.
+    c : ndarray, shape (py, nt)
+        The true plant's measured outputs, what the estimator reads (its controlled outputs
+        when the model has no measured outputs of its own), in the signals of the loop (scaled
+        like the model); ``nt = n`` for ``full_state``.
 
     Returns
     -------
