@@ -151,16 +151,17 @@ def _positive_env(name: str, default: int) -> int:
 def _prepare_process_environment(workers: int) -> None:
     """Set what numpy and prometheus-client read once, at import: before importing them.
 
-    BLAS/OpenMP threads per solver process: the CPUs this process may use divided by the
-    solver processes of all workers (at least 1), unless the variables are already set.
+    BLAS/OpenMP threads: one, unless the variables are already set.  The service scales by
+    solver processes, workers and replicas; a BLAS pool of several threads only adds
+    contention on a busy host (the large benchmark design over HTTP: 0.19 s with one thread
+    against 0.9-3 s with two on 2 loaded cores, measured side by side).  The heavy lane's
+    solvers take the operator's value (``service.api.compute``); the light lane always runs
+    one thread.
     With several workers, a fresh prometheus-client multiprocess folder (or the given one,
     emptied of old samples) so that /metrics adds up every worker.
     """
-    solvers = workers * _positive_env("MOVECAST_SOLVER_PROCESSES", 1)
-    cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
-    threads = str(max(1, cpus // solvers))
     for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
-        os.environ.setdefault(name, threads)
+        os.environ.setdefault(name, "1")
     folder = os.environ.get("PROMETHEUS_MULTIPROC_DIR")
     if folder:
         for old in Path(folder).glob("*.db"):

@@ -48,7 +48,6 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     )
     app.state.settings = chosen
     app.state.ready = False
-    app.dependency_overrides[get_settings] = lambda: chosen
     install_problem_handlers(app)
     install_docs(app)
     app.include_router(design.router)

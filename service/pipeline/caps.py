@@ -174,14 +174,17 @@ def simulation_work(
     disturbances: int,
     measured_disturbances: int,
     penalized_steps: int,
+    measured: int | None = None,
 ) -> int:
     """Estimated floating-point operations of a run (the quantity capped by ``max_simulation_work``).
 
     Per step, ``2 x`` the entries of every matrix applied to a vector (see
     ``service.solver.evaluation.simulation``): the free prediction ``Fx_aug`` (Np*p x na), ``Fu`` and
     ``Fd``; the move ``Kh`` (m x Np*p); the true plant ``[A B Bd]`` and ``C``; the estimator's
-    ``L``, ``Cy`` and ``[A_aug B_aug]``; plus :data:`STEP_OVERHEAD`.  ``na = n + nd``.
+    ``L``, ``Cy`` and ``[A_aug B_aug]``; plus :data:`STEP_OVERHEAD`.  ``na = n + nd``; ``measured``
+    outputs ``py`` (default ``p``).
     """
+    py = outputs if measured is None else measured
     n, nt, m, p, nd, md, np_ = (
         states,
         true_states,
@@ -197,9 +200,9 @@ def simulation_work(
         2 * rows * (na + m + md)  # free prediction
         + 2 * m * rows  # du = Kh E
         + 2 * nt * (nt + m + md)
-        + 2 * p * nt  # true plant and its outputs
+        + 2 * (p + py) * nt  # true plant and its outputs
         + 2 * na * (na + m + md)
-        + 4 * p * na  # estimator update and prediction
+        + 4 * py * na  # estimator update and prediction
         + STEP_OVERHEAD
     )
     return steps * per_step
@@ -214,11 +217,14 @@ def run_entries(
     outputs: int,
     disturbances: int,
     measured_disturbances: int,
+    measured: int | None = None,
 ) -> int:
     """Numbers a run keeps: the series returned (outputs, measured, setpoints, inputs,
-    estimates, measured disturbances) and the true plant's states."""
+    estimates, measured disturbances) and the true plant's states; ``measured`` outputs ``py``
+    (default ``p``)."""
     p, m, n, nd, md, nt = outputs, inputs, states, disturbances, measured_disturbances, true_states
-    return steps * (3 * p + m + n + nd + md + nt)
+    py = p if measured is None else measured
+    return steps * (2 * p + py + m + n + nd + md + nt)
 
 
 def qp_step_work(
@@ -294,9 +300,8 @@ def loop_frequency_work(plant: DiscretePlant, estimator: EstimatorInputs, *, poi
 
 
 def _disturbance_states(plant: DiscretePlant, disturbance: str) -> int:
-    return {"per_output": plant.output_count, "output": plant.output_count, "input": plant.input_count, "none": 0}[
-        disturbance
-    ]
+    py = int(plant.c_measured.shape[0])  # the disturbances belong to the measured outputs
+    return {"per_output": py, "output": py, "input": plant.input_count, "none": 0}[disturbance]
 
 
 def model_error_work(
@@ -334,6 +339,7 @@ def plant_run_entries(plant: DiscretePlant, *, true_plant: DiscretePlant | None,
         outputs=plant.output_count,
         disturbances=_disturbance_states(plant, disturbance),
         measured_disturbances=_measured_disturbances(plant),
+        measured=int(plant.c_measured.shape[0]),
     )
 
 
@@ -350,6 +356,7 @@ def plant_run_work(
         disturbances=_disturbance_states(plant, disturbance),
         measured_disturbances=_measured_disturbances(plant),
         penalized_steps=penalized_steps,
+        measured=int(plant.c_measured.shape[0]),
     )
 
 

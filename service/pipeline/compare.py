@@ -267,7 +267,7 @@ def _run(side: str, request: DesignRequest, scenario: ScenarioRequest, caps: Cap
     def run() -> tuple[PerformanceReport, bool]:
         inputs = check_simulate_request(simulate_request(request, scenario), caps)
         outcome = compute_simulation(inputs)
-        return performance_report(inputs.design.plant, outcome), outcome.rows < inputs.steps
+        return performance_report(inputs.design, outcome), outcome.rows < inputs.steps
 
     return _on_side(side, run)
 

@@ -56,6 +56,7 @@ from service.solver.design.controller import ControllerDesign, design_controller
 from service.solver.design.feedforward import disturbance_free_response, feedforward_gain
 from service.solver.design.gain import PredictiveGain
 from service.solver.design.marginal import MarginalMode, describe_signals
+from service.solver.design.terminal import terminal_disturbance_maps
 from service.solver.estimation.estimator import Estimator
 from service.solver.evaluation.advice import merge_warnings, tuning_advice
 from service.solver.evaluation.frequency import FrequencyAnalysis, design_frequency_analysis
@@ -279,9 +280,11 @@ def _checked_weights(
         problems.append(
             FieldProblem(
                 pointer("weights", "terminal"),
-                "a Riccati terminal weight together with zones is not supported yet: the terminal weight "
-                "would leave the zone outputs unweighted after the horizon, while the QP weights them "
-                "outside their zones. Use terminal 'none' with zones",
+                "a Riccati terminal weight together with zones is not supported: the terminal weight "
+                "penalizes the last predicted state's distance from one steady state, which would pull the "
+                "zone outputs to that steady state's values instead of letting them float inside their "
+                "zones, and the zone outputs carry no output weight for the Riccati equation to see. Use "
+                "terminal 'none' with zones",
             )
         )
     if q is not None and not np.any(q) and zones is None and not found:
@@ -313,9 +316,12 @@ def _checked_input_weight(
         problems.append(
             FieldProblem(
                 pointer("weights", "input"),
-                "input targets together with a Riccati terminal weight are not supported: the terminal "
-                "weight would pull the inputs towards another steady state than the input targets. Leave "
-                "out weights.input or use terminal 'none'",
+                "input targets together with a Riccati terminal weight are not supported: input targets "
+                "steer the spare input directions (more manipulated variables than controlled outputs), "
+                "where the Riccati equation of the incremental system has no stabilizing solution (a steady "
+                "input combination that no weighted output sees), and the terminal weight would pull the "
+                "inputs towards another steady state than the input targets. Leave out weights.input or use "
+                "terminal 'none'",
             )
         )
     return s_in, problems
@@ -356,14 +362,6 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         problems += frequency_problems(plant, estimator, points=request.analysis.points, caps=caps)
     model_error, found = check_model_error(request.analysis.model_error, plant, estimator, caps)
     problems += found
-    if request.weights.terminal == "riccati" and plant.b_disturbance is not None:
-        problems.append(
-            FieldProblem(
-                pointer("weights", "terminal"),
-                "a Riccati terminal weight together with measured disturbances is not supported yet: the "
-                "feed-forward gain would miss the terminal term. Leave out one of them",
-            )
-        )
     if not problems:
         problems += _size_problems(request, plant, caps)
     if problems:
@@ -481,7 +479,19 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
             prediction=inputs.prediction,
             first_penalized=inputs.first_penalized,
         )
-        feedforward = unscale_feedforward(feedforward_gain(design.gain.horizon, fd), input_span=su, disturbance_span=sd)
+        kd = feedforward_gain(design.gain.horizon, fd)
+        if design.terminal is not None and design.terminal_gain is not None:  # + Kt (Phi_m - S_m)
+            free, steady = terminal_disturbance_maps(
+                scaled.a,
+                scaled.b,
+                scaled.c,
+                scaled.b_disturbance,
+                output_weight=design.output_weight,
+                prediction=inputs.prediction,
+                input_weight=design.input_weight,
+            )
+            kd = kd + design.terminal_gain @ (free - steady)
+        feedforward = unscale_feedforward(kd, input_span=su, disturbance_span=sd)
     estimator, analysis, model_error = None, None, None
     if inputs.frequency_points is not None or inputs.model_error is not None:
         assert inputs.estimator is not None

@@ -7,7 +7,9 @@ one FieldProblem per broken rule) and :func:`scaled_estimator` designs it on the
 scaled signals, the plant the design uses (``service.solver.models.scaling``).
 
 Units.  Covariances are given in engineering units squared; those of the disturbances and
-of the measurement noise are scaled with the model's spans (``S^-1 V S^-1``).  The state is
+of the measurement noise are scaled with the model's spans (``S^-1 V S^-1``; the measured
+outputs' spans for the measurement noise and the output disturbances, which belong to the
+measured outputs when the model has measured outputs of its own).  The state is
 never scaled, so the process-noise covariance goes in as given.
 """
 
@@ -31,7 +33,14 @@ from service.solver.estimation.estimator import (
 )
 from service.solver.models.scaling import ScaledPlant
 
-__all__ = ["EstimatorInputs", "check_estimator", "scaled_covariance", "scaled_estimator"]
+__all__ = [
+    "EstimatorInputs",
+    "check_estimator",
+    "disturbance_spans",
+    "scaled_covariance",
+    "scaled_estimator",
+    "scaled_measured",
+]
 
 #: The disturbance model each kind but kalman implies.
 _IMPLIED = {
@@ -80,15 +89,16 @@ def _disturbance_problems(
                 "disturbance 'per_output'",
             )
         ]
-    flags = integrating_outputs(plant.a, plant.c)
+    flags = integrating_outputs(plant.a, plant.c_measured)
     if given is None:
-        return default_disturbances(plant.a, plant.c), []
-    names = [s.name for s in plant.outputs]
+        return default_disturbances(plant.a, plant.c_measured), []
+    names = [s.name for s in plant.measured]
     if len(given) != len(names):
+        which = "measured output" if plant.measured_own else "controlled output"
         return None, [
             FieldProblem(
                 pointer("estimator", "disturbances"),
-                f"needs one entry per controlled output ({len(names)}: {', '.join(names)}), got {len(given)}",
+                f"needs one entry per {which} ({len(names)}: {', '.join(names)}), got {len(given)}",
             )
         ]
     problems = [
@@ -147,13 +157,12 @@ def check_estimator(request: EstimatorRequest, plant: DiscretePlant) -> tuple[Es
                     )
                 )
         return EstimatorInputs(kind=est.kind, disturbance=disturbance), problems
-    nd = {"per_output": plant.output_count, "output": plant.output_count, "input": plant.input_count, "none": 0}[
-        disturbance
-    ]
+    py = plant.c_measured.shape[0]
+    nd = {"per_output": py, "output": py, "input": plant.input_count, "none": 0}[disturbance]
     sizes = {
         "process_noise": (plant.states, "process-noise covariance", "model states"),
         "disturbance_noise": (nd, "disturbance-noise covariance", f"{disturbance} disturbances"),
-        "measurement_noise": (plant.output_count, "measurement-noise covariance", "measured outputs"),
+        "measurement_noise": (py, "measurement-noise covariance", "measured outputs"),
     }
     for name, (size, what, of) in sizes.items():
         value = getattr(est, name)
@@ -182,6 +191,29 @@ def check_estimator(request: EstimatorRequest, plant: DiscretePlant) -> tuple[Es
                 )
         covariances[name] = w
     return EstimatorInputs(kind=est.kind, disturbance=disturbance, disturbances=disturbances, **covariances), problems
+
+
+def disturbance_spans(plant: DiscretePlant, disturbance: str) -> NDArray[np.float64]:
+    """Spans of the estimated disturbances: the measured outputs' (output and per-output models) or the inputs'."""
+    return {"per_output": plant.measured_spans, "output": plant.measured_spans, "input": plant.input_spans}.get(
+        disturbance, np.ones(0)
+    )
+
+
+def scaled_measured(
+    plant: DiscretePlant,
+    c_measured: NDArray[np.float64] | None = None,
+    d_measured: NDArray[np.float64] | None = None,
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """``(Cy / sy, Dy su / sy)``: the measured outputs in scaled signals, by the model's spans.
+
+    ``c_measured`` and ``d_measured`` default to the model's own; a true plant's are scaled
+    with the model's spans like the rest of it.
+    """
+    su, sy = plant.input_spans, plant.measured_spans
+    cm = plant.c_measured if c_measured is None else c_measured
+    dm = plant.d_measured if d_measured is None else d_measured
+    return cm / sy[:, None], dm * su[None, :] / sy[:, None]
 
 
 def scaled_covariance(value: NDArray[np.float64] | None, span: NDArray[np.float64]) -> NDArray[np.float64] | None:
@@ -216,8 +248,9 @@ def scaled_estimator(inputs: EstimatorInputs, plant: DiscretePlant, scaled: Scal
         model, a Riccati equation without a stabilizing solution), or pointer ``/estimator``
         when the gain or poles come out as numbers that are not finite.
     """
-    su, sz = plant.input_spans, plant.output_spans
-    s_dist = {"per_output": sz, "output": sz, "input": su, "none": np.ones(0)}[inputs.disturbance]
+    sy = plant.measured_spans
+    s_dist = disturbance_spans(plant, inputs.disturbance)
+    cm, dm = scaled_measured(plant) if plant.measured_own else (None, None)
     estimator = design_estimator(
         scaled.a,
         scaled.b,
@@ -227,9 +260,12 @@ def scaled_estimator(inputs: EstimatorInputs, plant: DiscretePlant, scaled: Scal
         disturbances=inputs.disturbances,  # type: ignore[arg-type]
         process_noise=inputs.process_noise,
         disturbance_noise=scaled_covariance(inputs.disturbance_noise, s_dist),
-        measurement_noise=scaled_covariance(inputs.measurement_noise, sz),
+        measurement_noise=scaled_covariance(inputs.measurement_noise, sy),
         output_labels=[s.name for s in plant.outputs],
         input_labels=[s.name for s in plant.inputs],
+        c_measured=cm,
+        d_measured=dm,
+        measured_labels=[s.name for s in plant.measured],
     )
     if not (np.all(np.isfinite(estimator.gain)) and np.all(np.isfinite(estimator.poles))):
         raise NumericalError(

@@ -1,14 +1,15 @@
 """POST /design/export: the fixed unconstrained law with its estimator, tagged, in engineering units.
 
 Three steps, as for /design: :func:`check_export_request` (the /design checks, then what the
-law needs: an estimator that reads measurements, measurements equal to the controlled
-outputs), :func:`compute_export` (design, estimator and the law of
+law needs: no measured feed-through), :func:`compute_export` (design, estimator and the law of
 :mod:`service.solver.estimation.fixed_law`, changed to the tags' units) and
 :func:`export_response` (the matrices, difference equations and CSV tables).
 :mod:`service.pipeline.structured_text` writes the same law as a function block.
 
 Units.  The law is formed in the design's scaled signals and changed to engineering units by
-the spans (``law_in_units``): measurements and setpoints by the outputs' spans, measured
+the spans (``law_in_units``): measurements by the measured outputs' spans (the controlled
+outputs' unless the model has measured outputs of its own; the plant states, never scaled,
+for ``full_state``), setpoints by the controlled outputs' spans, measured
 disturbances by theirs, the manipulated variables and their input targets (with
 ``weights.input``) by theirs; the law's state holds the
 model's states as they are, the disturbance estimates in their signal's units and the
@@ -44,7 +45,7 @@ from service.errors import FieldProblem, InvalidRequest, NumericalError
 from service.pipeline.caps import Caps
 from service.pipeline.csv_cells import text_cell
 from service.pipeline.design import DesignInputs, DesignOutcome, check_design_request, compute_design
-from service.pipeline.estimator import scaled_estimator
+from service.pipeline.estimator import disturbance_spans, scaled_estimator
 from service.pipeline.fingerprint import design_fingerprint
 from service.pipeline.operating_point import (
     OperatingPointValues,
@@ -116,25 +117,18 @@ def _law_problems(request: DesignRequest, inputs: DesignInputs) -> list[FieldPro
     plant = inputs.plant
     problems: list[FieldProblem] = []
     assert inputs.estimator is not None
-    if inputs.estimator.kind == "full_state":
+    if np.any(plant.d_measured) and inputs.estimator.kind != "full_state":
+        i, j = (int(k) for k in np.argwhere(plant.d_measured)[0])
         problems.append(
             FieldProblem(
-                pointer("estimator", "kind"),
-                "the exported law reads measured outputs, but a full_state estimator reads the plant state, which "
-                "a control system does not measure. Choose an estimator (e.g. per_output, the default)",
+                pointer("model", "d_measured", i),
+                f"the law cannot be exported with a measured feed-through (d_measured[{i}][{j}] = "
+                f"{plant.d_measured[i, j]:g}): its estimator subtracts d_measured times the input of the same "
+                f"sample, so the input the law computes would depend on a measurement that depends on that very "
+                f"input (an algebraic loop). A control system reads its measurements before it writes its outputs "
+                f"and cannot close that loop. Model the path with a state (the measurement then sees the input "
+                f"one sample later) and leave d_measured out",
             )
-        )
-    if not np.array_equal(plant.c_measured, plant.c):
-        problems.append(
-            FieldProblem(
-                pointer("model", "c_measured"),
-                "measured outputs other than the controlled ones are not supported by the export yet: the "
-                "estimator reads the controlled outputs. Leave c_measured out",
-            )
-        )
-    if np.any(plant.d_measured):
-        problems.append(
-            FieldProblem(pointer("model", "d_measured"), "a measured feed-through is not supported by the export yet")
         )
     return problems
 
@@ -176,16 +170,13 @@ def law_offsets(
     """
     p, m, md = law.measured, law.inputs, law.disturbances
     if point is None:
-        return np.zeros(2 * p + md + law.targets), np.zeros(m)
+        return np.zeros(p + law.setpoints + md + law.targets), np.zeros(m)
+    # the measurements are the controlled outputs here (check_operating_point refuses the others)
+    assert p == law.setpoints and not plant.measured_own, (p, law.setpoints)
     z0 = np.array([point.output(i) for i in range(p)], dtype=float)
     d0 = np.array([point.disturbance(k) for k in range(md)], dtype=float)
     u0 = np.array([point.input(j) for j in range(m)], dtype=float)
     return np.concatenate([z0, z0, d0, u0 if law.targets else np.zeros(0)]), u0
-
-
-def _disturbance_spans(plant: DiscretePlant, estimator: Estimator) -> NDArray[np.float64]:
-    su, sz = plant.input_spans, plant.output_spans
-    return {"per_output": sz, "output": sz, "input": su, "none": np.ones(0)}[estimator.disturbance]
 
 
 def compute_export(inputs: ExportInputs) -> ExportOutcome:
@@ -204,15 +195,19 @@ def compute_export(inputs: ExportInputs) -> ExportOutcome:
         assert inputs.design.estimator is not None
         estimator = scaled_estimator(inputs.design.estimator, plant, outcome.scaled)
     su, sz = plant.input_spans, plant.output_spans
+    # what the law reads: the measured outputs, or the plant states (never scaled) for full_state
+    sy = np.ones(estimator.state_size) if estimator.full_state else plant.measured_spans
     sd = plant.disturbance_spans if plant.b_disturbance is not None else np.ones(0)
     with np.errstate(over="ignore", invalid="ignore"):
         scaled_law = fixed_law(outcome.design, estimator, b_disturbance=outcome.scaled.b_disturbance)
         law = law_in_units(
             scaled_law,
-            state_span=np.concatenate([np.ones(estimator.state_size), _disturbance_spans(plant, estimator), su]),
-            signal_span=np.concatenate([sz, sz, sd, su if scaled_law.targets else np.ones(0)]),
+            state_span=np.concatenate(
+                [np.ones(estimator.state_size), disturbance_spans(plant, estimator.disturbance), su]
+            ),
+            signal_span=np.concatenate([sy, sz, sd, su if scaled_law.targets else np.ones(0)]),
             input_span=su,
-            measured_span=sz,
+            measured_span=sy,
         )
     matrices = (law.input_state, law.input_direct, law.state_update, law.signal_update, law.applied_update)
     if not all(np.all(np.isfinite(x)) for x in (*matrices, law.prediction)):
@@ -226,8 +221,21 @@ def compute_export(inputs: ExportInputs) -> ExportOutcome:
 
 def law_labels(plant: DiscretePlant, estimator: Estimator, *, targets: bool = False) -> LawLabels:
     """Names of the law's inputs (``<tag>.measured``, ``<tag>.setpoint``, ``<tag>.measured_disturbance``,
-    ``<tag>.target`` with input targets), outputs and states."""
-    inputs = [LawSignal(name=f"{s.name}.measured", role="measured", tag=s.name, unit=s.unit) for s in plant.outputs]
+    ``<tag>.target`` with input targets), outputs and states.
+
+    The measurements are the measured outputs (their own tags with ``c_measured``), or the plant
+    states (``<state>.measured``, role ``measured_state``) for ``full_state``; the setpoints
+    belong to the controlled outputs.
+    """
+    if estimator.full_state:
+        inputs = [
+            LawSignal(name=f"{label}.measured", role="measured_state", tag=label, unit=None)
+            for label in plant.state_labels
+        ]
+    else:
+        inputs = [
+            LawSignal(name=f"{s.name}.measured", role="measured", tag=s.name, unit=s.unit) for s in plant.measured
+        ]
     inputs += [LawSignal(name=f"{s.name}.setpoint", role="setpoint", tag=s.name, unit=s.unit) for s in plant.outputs]
     inputs += [
         LawSignal(name=f"{s.name}.measured_disturbance", role="measured_disturbance", tag=s.name, unit=s.unit)
@@ -239,11 +247,13 @@ def law_labels(plant: DiscretePlant, estimator: Estimator, *, targets: bool = Fa
         ]
     outputs = [LawSignal(name=s.name, role="input", tag=s.name, unit=s.unit) for s in plant.inputs]
     outputs += [LawSignal(name=f"{s.name}.move", role="move", tag=s.name, unit=s.unit) for s in plant.inputs]
-    states = [f"{label}.estimate" for label in plant.state_labels]
+    # full_state: the law's plant-state entries hold the prediction x(k|k-1) (fixed_law's notes)
+    kind = "predicted" if estimator.full_state else "estimate"
+    states = [f"{label}.{kind}" for label in plant.state_labels]
     if estimator.disturbance == "per_output":
-        states += [f"{s.name}.{k}_disturbance" for s, k in zip(plant.outputs, estimator.disturbances, strict=True)]
+        states += [f"{s.name}.{k}_disturbance" for s, k in zip(plant.measured, estimator.disturbances, strict=True)]
     else:
-        source = {"output": plant.outputs, "input": plant.inputs, "none": ()}[estimator.disturbance]
+        source = {"output": plant.measured, "input": plant.inputs, "none": ()}[estimator.disturbance]
         states += [f"{s.name}.{estimator.disturbance}_disturbance" for s in source]
     states += [f"{s.name}.previous" for s in plant.inputs]
     return LawLabels(inputs=inputs, outputs=outputs, states=states)

@@ -22,6 +22,7 @@ from service.pipeline.caps import Caps
 from service.pipeline.plant import DiscretePlant, plant_arrays
 from service.pipeline.problems import pointer
 from service.schemas.design import DesignRequest, DesignResponse
+from service.schemas.export import ExportRequest
 from service.schemas.simulate import SimulateRequest, SimulateResponse
 
 __all__ = [
@@ -145,6 +146,30 @@ def check_operating_point(request: DesignRequest, point: OperatingPointValues, p
                     f"needs one value per {what[:-1]} ({len(signals)}), got {len(values)}",
                 )
             )
+    if isinstance(request, SimulateRequest) and plant.measured_own:
+        problems.append(
+            FieldProblem(
+                pointer("model", "operating_point"),
+                "the run would report the measured outputs (c_measured, d_measured) around an operating point the "
+                "request does not give them (operating_point holds the controlled outputs' values only), so their "
+                "series could only be deviations beside absolute ones. Simulate this model in deviations (leave "
+                "operating_point out), or measure the controlled outputs",
+            )
+        )
+    if isinstance(request, ExportRequest) and (plant.measured_own or request.estimator.kind == "full_state"):
+        what = (
+            "the plant states a full_state law reads"
+            if request.estimator.kind == "full_state"
+            else ("the measured outputs (c_measured, d_measured) the law reads")
+        )
+        problems.append(
+            FieldProblem(
+                pointer("model", "operating_point"),
+                f"the law would read {what} in absolute units, but operating_point gives no values for them "
+                f"(it holds the controlled outputs', inputs' and measured disturbances' only). Export this law in "
+                f"deviations (leave operating_point out)",
+            )
+        )
     if isinstance(request, SimulateRequest) and request.scenario.true_plant is not None:
         if request.scenario.true_plant.operating_point is not None:
             problems.append(

@@ -114,6 +114,18 @@ class DiscretePlant:
         return _read_only(self.spans(self.outputs))
 
     @cached_property
+    def measured_spans(self) -> NDArray[np.float64]:
+        """Spans of the measured outputs, shape (py,) (the controlled outputs' by default); read-only."""
+        return _read_only(self.spans(self.measured))
+
+    @property
+    def measured_own(self) -> bool:
+        """The measured outputs are signals of their own: ``c_measured`` other than ``c``, or a feed-through."""
+        return not (self.c_measured.shape == self.c.shape and np.array_equal(self.c_measured, self.c)) or bool(
+            np.any(self.d_measured)
+        )
+
+    @cached_property
     def disturbance_spans(self) -> NDArray[np.float64]:
         """Spans of the measured disturbances, shape (md,) (empty without any); computed once, read-only."""
         return _read_only(self.spans(self.disturbances))

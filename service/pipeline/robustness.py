@@ -84,14 +84,19 @@ def _finite(value: float) -> float | None:
     return float(value) if math.isfinite(value) else None
 
 
+def not_finite_analysis() -> NumericalError:
+    """The problem of a frequency analysis whose numbers are not all finite (JSON has neither)."""
+    return NumericalError(
+        "The frequency analysis produced numbers that are not finite: a pole of the loop lies on or next to "
+        "the unit circle at a frequency of the grid. Change the number of points, or move that pole off "
+        "the unit circle",
+        field=ANALYSIS_FIELD,
+    )
+
+
 def _values(values: np.ndarray) -> list[float]:
     if not np.all(np.isfinite(values)):
-        raise NumericalError(
-            "The frequency analysis produced numbers that are not finite: a pole of the loop lies on or next to "
-            "the unit circle at a frequency of the grid. Change the number of points, or move that pole off "
-            "the unit circle",
-            field=ANALYSIS_FIELD,
-        )
+        raise not_finite_analysis()
     return [float(v) for v in values]
 
 

@@ -33,8 +33,8 @@ from numpy.typing import NDArray
 from service.errors import InvalidRequest, NumericalError
 from service.pipeline.caps import Caps
 from service.pipeline.csv_cells import text_cell
-from service.pipeline.design import DesignOutcome, compute_design, design_response, marginal_mode_reports
-from service.pipeline.estimator import scaled_estimator
+from service.pipeline.design import DesignInputs, DesignOutcome, compute_design, design_response, marginal_mode_reports
+from service.pipeline.estimator import disturbance_spans, scaled_estimator, scaled_measured
 from service.pipeline.fingerprint import design_fingerprint, fingerprint
 from service.pipeline.limits import LimitedRun, limit_run_reports, limited_run
 from service.pipeline.limits_checks import no_limits
@@ -59,7 +59,7 @@ from service.schemas.simulate import (
     TrueLoopReport,
     WholeLoopReport,
 )
-from service.solver.estimation.estimator import Estimator
+from service.solver.estimation.estimator import Estimator, unmeasured_outputs
 from service.solver.estimation.loop import TrueLoop, WholeLoop, control_loop, true_loop, whole_loop
 from service.solver.evaluation.divergence import DIVERGENCE_LEVEL, divergence_onset
 from service.solver.evaluation.performance import Performance, loop_performance
@@ -151,9 +151,9 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
     plant = inputs.design.plant
     outcome = compute_design(inputs.design)
     scaled = outcome.scaled
-    su, sz = plant.input_spans, plant.output_spans
+    su, sz, sy = plant.input_spans, plant.output_spans, plant.measured_spans
     sd = plant.disturbance_spans if plant.b_disturbance is not None else np.ones(0)
-    s_dist = {"per_output": sz, "output": sz, "input": su, "none": np.ones(0)}[inputs.disturbance]
+    s_dist = disturbance_spans(plant, inputs.disturbance)
     estimator = outcome.estimator  # already built when the design's frequency analysis was asked
     if estimator is None:
         assert inputs.design.estimator is not None
@@ -179,15 +179,19 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
             b_disturbance=t.b_disturbance,
             disturbance_span=sd if sd.size else None,
         )
-        true_plant = TruePlant(ts.a, ts.b, ts.c, ts.b_disturbance)
-        true = true_loop(loop, ts.a, ts.b, ts.c)
+        cm, dm = scaled_measured(plant, t.c_measured, t.d_measured)
+        true_plant = TruePlant(ts.a, ts.b, ts.c, ts.b_disturbance, c_measured=cm, d_measured=dm)
+        true = true_loop(loop, ts.a, ts.b, cm)  # the estimator reads the true plant's measured outputs
+    elif plant.measured_own:  # the model itself, with its own measured outputs (full_state records them)
+        cm, dm = scaled_measured(plant)
+        true_plant = TruePlant(scaled.a, scaled.b, scaled.c, scaled.b_disturbance, c_measured=cm, d_measured=dm)
     scenario = Scenario(
         steps=inputs.steps,
         setpoint_changes=_scaled_events(inputs.setpoints, sz),
         output_disturbances=_scaled_events(inputs.output_disturbances, sz),
         input_disturbances=_scaled_events(inputs.input_disturbances, su),
         measured_disturbances=_scaled_events(inputs.measured_disturbances, sd),
-        noise_std=None if inputs.noise_std is None else inputs.noise_std / sz,
+        noise_std=None if inputs.noise_std is None else inputs.noise_std / sy,
         seed=inputs.seed,
         initial_state=inputs.initial_state,
         initial_input=None if inputs.initial_input is None else inputs.initial_input / su,
@@ -215,7 +219,7 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
     n = estimator.state_size
     estimate_span = np.concatenate([np.ones(n), s_dist if estimator.disturbance_size else np.ones(0)])
     with np.errstate(over="ignore", invalid="ignore"):  # an overflow here is cut off just below
-        outputs, measured, setpoints = sim.outputs * sz, sim.measured * sz, sim.setpoints * sz
+        outputs, measured, setpoints = sim.outputs * sz, sim.measured * sy, sim.setpoints * sz
         inputs_eng, estimates = sim.inputs * su, sim.estimates * estimate_span
         dm = sim.measured_disturbances * sd if sd.size else np.zeros((inputs.steps, 0))
     rows = _first_bad_row(sim.time[:, None], outputs, measured, setpoints, inputs_eng, estimates, dm)
@@ -237,7 +241,7 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
         )
     gain = None
     if not estimator.full_state:
-        gain = estimate_span[:, None] * estimator.gain / sz[None, :]
+        gain = estimate_span[:, None] * estimator.gain / sy[None, :]
     return SimulationOutcome(
         design=outcome,
         estimator=estimator,
@@ -277,17 +281,21 @@ def _columns(plant: DiscretePlant, estimator: Estimator) -> SeriesColumns:
     outputs = [s.name for s in plant.outputs]
     inputs = [s.name for s in plant.inputs]
     setpoints = [f"{name}.setpoint" for name in outputs]
-    measured = [f"{name}.measured" for name in outputs]
+    if plant.measured_own:  # measured outputs of their own: their tags (suffixed where a name is taken)
+        own = [s.name for s in plant.measured]
+        taken = set(outputs) | set(setpoints) | set(inputs)
+        measured = [f"{name}.measured" if name in taken else name for name in own]
+    else:
+        own = outputs
+        measured = [f"{name}.measured" for name in outputs]
     clash = set(outputs) | set(setpoints) | set(measured)
     inputs = [f"{name}.input" if name in clash else name for name in inputs]
     named = _unique([*outputs, *setpoints, *inputs, *measured])
     p, m = len(outputs), len(inputs)
     if estimator.disturbance == "per_output":
-        disturbances = [
-            f"{name}.{kind}_disturbance" for name, kind in zip(outputs, estimator.disturbances, strict=True)
-        ]
+        disturbances = [f"{name}.{kind}_disturbance" for name, kind in zip(own, estimator.disturbances, strict=True)]
     else:
-        source = {"output": outputs, "input": [s.name for s in plant.inputs], "none": []}[estimator.disturbance]
+        source = {"output": own, "input": [s.name for s in plant.inputs], "none": []}[estimator.disturbance]
         disturbances = [f"{name}.{estimator.disturbance}_disturbance" for name in source]
     return SeriesColumns(
         outputs=named[:p],
@@ -296,6 +304,7 @@ def _columns(plant: DiscretePlant, estimator: Estimator) -> SeriesColumns:
         measured=named[2 * p + m :],
         estimates=[*plant.state_labels, *disturbances],
         measured_disturbances=[s.name for s in plant.disturbances],
+        measured_own=plant.measured_own,
     )
 
 
@@ -307,15 +316,22 @@ def _optional(value: float | None) -> float | None:
     return None if value is None or not np.isfinite(value) else float(value)
 
 
-def performance_report(plant: DiscretePlant, outcome: SimulationOutcome) -> PerformanceReport:
-    """The figures of merit of a run, named by the plant's tags (null where the run blew up)."""
+def performance_report(design: DesignInputs, outcome: SimulationOutcome) -> PerformanceReport:
+    """The figures of merit of a run, named by the plant's tags (null where the run blew up).
+
+    A zone output is held in its range, not at a setpoint: its setpoint figures are null and
+    ``zone`` is true (the answer's ``zones`` says how it kept to its range).
+    """
+    plant = design.plant
+    zone_outputs = () if design.zones is None else design.zones.outputs
     figures = outcome.performance
     outputs, inputs = [], []
     for i, signal in enumerate(plant.outputs):
-        f = figures.outputs[i] if figures is not None else None
+        f = figures.outputs[i] if figures is not None and i not in zone_outputs else None
         outputs.append(
             OutputFigures(
                 name=signal.name,
+                zone=i in zone_outputs,
                 step=None if f is None else f.step,
                 rise_time=None if f is None else _optional(f.rise_time),
                 settling_time=None if f is None else _optional(f.settling_time),
@@ -383,6 +399,20 @@ def _warnings(inputs: SimulationInputs, outcome: SimulationOutcome) -> list[Warn
                 f"figures of merit are null. Check the true plant against the model, or detune the controller.",
             )
         )
+    plant = inputs.design.plant
+    if plant.measured_own and not outcome.estimator.full_state:
+        hidden = unmeasured_outputs(plant.c, plant.c_measured)
+        if np.any(hidden):
+            names = ", ".join(repr(s.name) for s, h in zip(plant.outputs, hidden, strict=True) if h)
+            out.append(
+                WarningReport(
+                    code="unmeasured_controlled_output",
+                    message=f"{names} is no combination of the measured outputs: the estimator infers it from the "
+                    f"model, so it is held offset-free only against model error that the disturbance model "
+                    f"explains through the state (an input gain error with input_disturbance), not against a bias "
+                    f"on the output itself. Check it on a true_plant, or measure it.",
+                )
+            )
     out += [WarningReport(code=d.code, message=d.message) for d in inputs.limit_warnings]
     return out
 
@@ -397,7 +427,7 @@ def simulate_response(
     gain = None
     if outcome.estimator_gain is not None:
         gain = LabelledMatrix(
-            rows=columns.estimates, columns=[s.name for s in plant.outputs], values=outcome.estimator_gain.tolist()
+            rows=columns.estimates, columns=[s.name for s in plant.measured], values=outcome.estimator_gain.tolist()
         )
     whole = outcome.whole
     warnings = _warnings(inputs, outcome)
@@ -427,7 +457,7 @@ def simulate_response(
             spectral_radius=outcome.true.spectral_radius,
             stable=outcome.true.stable,
         ),
-        performance=performance_report(plant, outcome),
+        performance=performance_report(inputs.design, outcome),
         estimator=EstimatorReport(
             kind=est.kind,
             disturbance=est.disturbance,
@@ -484,7 +514,9 @@ def simulation_csv(response: SimulateResponse) -> str:
     """The time series of a response as CSV (RFC 4180: CRLF line ends, quoted where needed).
 
     Columns: ``time``, the controlled outputs, their setpoints (``<output>.setpoint``), then
-    the manipulated variables, named as in ``response.columns``; one row per step kept.  A
+    the manipulated variables, named as in ``response.columns``, then, when the model has
+    measured outputs of their own (``columns.measured_own``), the measured outputs; one row per
+    step kept.  A
     run under limits adds ``limits.fallback`` (1 where the step's QP failed and held the last
     input, else 0) and ``limits.active`` (the number of active limits the step lists); a run with
     zones adds ``<output>.zone_low`` and ``<output>.zone_high`` per zone output (empty where the
@@ -498,11 +530,15 @@ def simulation_csv(response: SimulateResponse) -> str:
     c = response.columns
     extra: list[list[str]] = [[] for _ in response.time]
     header = ["time", *c.outputs, *c.setpoints, *c.inputs]
+    if c.measured_own:
+        header += c.measured
+        extra = [[repr(v) for v in row] for row in response.measured]
     if response.limits is not None:
         header = _unique([*header, "limits.fallback", "limits.active"])
-        extra = [["0", "0"] for _ in response.time]
+        flags = [["0", "0"] for _ in response.time]
         for row in response.limits.steps:
-            extra[row.step] = [str(int(row.fallback)), str(len(row.active))]
+            flags[row.step] = [str(int(row.fallback)), str(len(row.active))]
+        extra = [[*row, *more] for row, more in zip(extra, flags, strict=True)]
     for zone in response.zones or []:
         header = _unique([*header, f"{zone.output}.zone_low", f"{zone.output}.zone_high"])
         edges = ["" if v is None else repr(v) for v in (zone.low, zone.high)]

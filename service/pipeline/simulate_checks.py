@@ -46,7 +46,8 @@ class SimulationInputs:
         ``None``: the loop runs on the model.
     steps : int
     setpoints, output_disturbances, input_disturbances, measured_disturbances : list of Event
-    noise_std : ndarray, shape (p,), or None
+    noise_std : ndarray, shape (py,), or None
+        Per measured output.
     seed : int
     initial_state, initial_input, initial_setpoint : ndarray or None
         ``initial_input`` is clipped into the input limits when ``limits.clamp_initial_input``
@@ -186,8 +187,13 @@ def _true_plant_problems(
                 f"the true plant's sample time {true.sample_time:g} differs from the model's {plant.sample_time:g}",
             )
         )
-    for tags, mine, theirs in (("inputs", plant.inputs, true.inputs), ("outputs", plant.outputs, true.outputs)):
-        if getattr(model, tags) is None or len(mine) != len(theirs):
+    problems += _true_measured_problems(model, plant, true, where)
+    for tags, mine, theirs in (
+        ("inputs", plant.inputs, true.inputs),
+        ("outputs", plant.outputs, true.outputs),
+        ("measured", plant.measured, true.measured),
+    ):
+        if getattr(model, tags, None) is None or len(mine) != len(theirs):
             continue
         for i, (a, b) in enumerate(zip(mine, theirs, strict=True)):
             if a.name != b.name:
@@ -197,7 +203,6 @@ def _true_plant_problems(
                         f"the true plant's {tags} must be the model's, in the same order: expected {a.name!r}, got {b.name!r}",
                     )
                 )
-    problems += _measured_output_problems(true, where)
     if true.states != plant.states:
         if request.scenario.initial.state is not None:
             problems.append(
@@ -218,23 +223,30 @@ def _true_plant_problems(
     return true, problems
 
 
-def _measured_output_problems(plant: DiscretePlant, where: Where) -> list[FieldProblem]:
-    problems: list[FieldProblem] = []
-    if not np.array_equal(plant.c_measured, plant.c):
-        problems.append(
+def _true_measured_problems(model: Any, plant: DiscretePlant, true: DiscretePlant, where: Where) -> list[FieldProblem]:
+    """The true plant's measured outputs: as many as the model's, and the model's feed-through."""
+    py, py_true = plant.c_measured.shape[0], true.c_measured.shape[0]
+    if py_true != py:
+        field = "c_measured" if getattr(model, "c_measured", None) is not None else "c"
+        return [
             FieldProblem(
-                pointer(*where, "c_measured"),
-                "measured outputs other than the controlled ones are not yet supported by /simulate: the "
-                "estimator reads the controlled outputs. Leave c_measured out to simulate this model",
+                pointer(*where, field),
+                f"the true plant has {py_true} measured outputs; the model has {py} (the estimator reads the "
+                f"model's measured outputs{': ' + ', '.join(s.name for s in plant.measured) if py <= 8 else ''}; "
+                f"give the true plant the same ones in c_measured)",
             )
-        )
-    if np.any(plant.d_measured):
-        problems.append(
+        ]
+    if not np.array_equal(true.d_measured, plant.d_measured):
+        return [
             FieldProblem(
-                pointer(*where, "d_measured"), "a measured feed-through is not yet supported by /simulate; leave it out"
+                pointer(*where, "d_measured"),
+                "the true plant's measured feed-through must be the model's: the estimator subtracts the model's "
+                "d_measured times the input applied at the same sample, and any other feed-through would make that "
+                "input depend on itself through the measurement (an algebraic loop). Give the model's d_measured "
+                "(or leave both out), and put the model error in a, b or c_measured",
             )
-        )
-    return problems
+        ]
+    return []
 
 
 def _run_size_problems(
@@ -290,7 +302,6 @@ def check_simulate_request(request: SimulateRequest, caps: Caps) -> SimulationIn
         plant, _ = plant_arrays(request.model, caps)
     if plant is None:
         raise InvalidRequest(problems)
-    problems += _measured_output_problems(plant, ("model",))
     true, found = _true_plant_problems(request, plant, caps)
     problems += found
 
@@ -335,7 +346,9 @@ def check_simulate_request(request: SimulateRequest, caps: Caps) -> SimulationIn
     problems += found
     noise = sc.measurement_noise
     if noise is not None:
-        problems += _length(noise.std, p, ("scenario", "measurement_noise", "std"), "the noise spread")
+        py = plant.c_measured.shape[0]
+        what = "the noise spread (one per measured output)" if plant.measured_own else "the noise spread"
+        problems += _length(noise.std, py, ("scenario", "measurement_noise", "std"), what)
     init = sc.initial
     problems += _length(init.state, n, ("scenario", "initial", "state"), "the initial state")
     problems += _length(init.input, m, ("scenario", "initial", "input"), "the initial input")

@@ -172,7 +172,7 @@ def structured_text(
     str
         The block's source text, LF line ends.
     """
-    m, p, na = law.inputs, law.measured, law.estimates
+    m, p, pz, na = law.inputs, law.measured, law.setpoints, law.estimates
     ns = na + m
     inf = np.full(m, np.inf)
     lo = -inf if input_min is None else np.asarray(input_min, dtype=float)
@@ -188,23 +188,25 @@ def structured_text(
     u = [names.take(f"u_{j + 1}") for j in range(m)]
     measured = [names.take(st_identifier(sig.tag)) for sig in inputs[:p]]
     quality = [names.take(f"{name}_ok") for name in measured]
-    setpoint = [names.take(f"{st_identifier(sig.tag)}_sp") for sig in inputs[p : 2 * p]]
+    setpoint = [names.take(f"{st_identifier(sig.tag)}_sp") for sig in inputs[p : p + pz]]
     md = law.disturbances
-    disturbance = [names.take(st_identifier(sig.tag)) for sig in inputs[2 * p : 2 * p + md]]
-    target = [names.take(f"{st_identifier(sig.tag)}_target") for sig in inputs[2 * p + md :]]
+    disturbance = [names.take(st_identifier(sig.tag)) for sig in inputs[p + pz : p + pz + md]]
+    target = [names.take(f"{st_identifier(sig.tag)}_target") for sig in inputs[p + pz + md :]]
     manipulated = [names.take(st_identifier(sig.tag)) for sig in outputs[:m]]
     move = [names.take(f"{name}_move") for name in manipulated]
     low = {j: names.take(f"{manipulated[j]}_min") for j in range(m) if np.isfinite(lo[j])}
     high = {j: names.take(f"{manipulated[j]}_max") for j in range(m) if np.isfinite(hi[j])}
     step = {j: names.take(f"{manipulated[j]}_move_max") for j in range(m) if np.isfinite(dmax[j])}
     absolute = input_offset is not None and output_offset is not None
-    w0 = np.zeros(2 * p + md + len(target)) if input_offset is None else np.asarray(input_offset, dtype=float)
+    w0 = np.zeros(p + pz + md + len(target)) if input_offset is None else np.asarray(input_offset, dtype=float)
     u0 = np.zeros(m) if output_offset is None else np.asarray(output_offset, dtype=float)
     if absolute:  # operating-point constants and the deviations the law reads
+        # the measurements are the controlled outputs (the export refuses an operating point otherwise)
+        assert p == pz, (p, pz)
         op_out = [names.take(f"{name}_op") for name in measured]
         op_dist = [names.take(f"{name}_op") for name in disturbance]
         op_in = [names.take(f"{name}_op") for name in manipulated]
-        r_dev = [names.take(f"r_{i + 1}") for i in range(p)]
+        r_dev = [names.take(f"r_{i + 1}") for i in range(pz)]
         d_dev = [names.take(f"d_{i + 1}") for i in range(md)]
         t_dev = [names.take(f"t_{j + 1}") for j in range(len(target))]
         last = [names.take(f"p_{j + 1}") for j in range(m)]
@@ -246,11 +248,11 @@ def structured_text(
     ]
     for name, sig in zip(measured, inputs[:p], strict=True):
         head.append(f"     {name} = measured {_comment(sig.tag)}{_comment(unit(sig))}")
-    for name, sig in zip(setpoint, inputs[p : 2 * p], strict=True):
+    for name, sig in zip(setpoint, inputs[p : p + pz], strict=True):
         head.append(f"     {name} = setpoint of {_comment(sig.tag)}{_comment(unit(sig))}")
-    for name, sig in zip(disturbance, inputs[2 * p : 2 * p + md], strict=True):
+    for name, sig in zip(disturbance, inputs[p + pz : p + pz + md], strict=True):
         head.append(f"     {name} = measured disturbance {_comment(sig.tag)}{_comment(unit(sig))}")
-    for name, sig in zip(target, inputs[2 * p + md :], strict=True):
+    for name, sig in zip(target, inputs[p + pz + md :], strict=True):
         head.append(f"     {name} = input target of {_comment(sig.tag)}{_comment(unit(sig))}")
     for name, sig in zip(manipulated, outputs[:m], strict=True):
         head.append(f"     {name} = manipulated variable {_comment(sig.tag)}{_comment(unit(sig))}")
@@ -276,11 +278,11 @@ def structured_text(
     for name, ok, sig in zip(measured, quality, inputs[:p], strict=True):
         decl.append(f"    {name} : LREAL; (* measured {_comment(sig.tag)}{_comment(unit(sig))} *)")
         decl.append(f"    {ok} : BOOL := TRUE; (* FALSE while {name} is bad *)")
-    for name, sig in zip(setpoint, inputs[p : 2 * p], strict=True):
+    for name, sig in zip(setpoint, inputs[p : p + pz], strict=True):
         decl.append(f"    {name} : LREAL; (* setpoint of {_comment(sig.tag)}{_comment(unit(sig))} *)")
-    for name, sig in zip(disturbance, inputs[2 * p : 2 * p + md], strict=True):
+    for name, sig in zip(disturbance, inputs[p + pz : p + pz + md], strict=True):
         decl.append(f"    {name} : LREAL; (* measured disturbance {_comment(sig.tag)}{_comment(unit(sig))} *)")
-    for name, sig in zip(target, inputs[2 * p + md :], strict=True):
+    for name, sig in zip(target, inputs[p + pz + md :], strict=True):
         decl.append(f"    {name} : LREAL; (* input target of {_comment(sig.tag)}{_comment(unit(sig))} *)")
     decl += ["    reset : BOOL := FALSE; (* TRUE: every state back to zero before this call *)", "END_VAR"]
     decl.append("VAR_OUTPUT")
@@ -302,7 +304,7 @@ def structured_text(
         for i, name in enumerate(op_out):
             decl.append(f"    {name} : LREAL := {_literal(float(w0[i]))}; (* operating point of {measured[i]} *)")
         for k, name in enumerate(op_dist):
-            value = float(w0[2 * p + k])
+            value = float(w0[p + pz + k])
             decl.append(f"    {name} : LREAL := {_literal(value)}; (* operating point of {disturbance[k]} *)")
         for j, name in enumerate(op_in):
             decl.append(f"    {name} : LREAL := {_literal(float(u0[j]))}; (* operating point of {manipulated[j]} *)")
@@ -328,7 +330,7 @@ def structured_text(
         ]
     if absolute:
         body.append("(* deviations from the operating point *)")
-        body += [f"{r_dev[i]} := {setpoint[i]} - {op_out[i]};" for i in range(p)]
+        body += [f"{r_dev[i]} := {setpoint[i]} - {op_out[i]};" for i in range(pz)]
         body += [f"{d_dev[k]} := {disturbance[k]} - {op_dist[k]};" for k in range(md)]
         body += [f"{t_dev[j]} := {target[j]} - {op_in[j]};" for j in range(len(target))]
         body += [f"{last[j]} := {s[na + j]} + {op_in[j]};" for j in range(m)]

@@ -26,13 +26,12 @@ from service.pipeline.design import DesignInputs, DesignOutcome, check_design_re
 from service.pipeline.fingerprint import fingerprint
 from service.pipeline.limits_checks import limit_work_problems
 from service.pipeline.problems import pointer, problem_of
-from service.pipeline.robustness import robustness_report
+from service.pipeline.robustness import not_finite_analysis
 from service.pipeline.simulate import compute_simulation, performance_report
 from service.pipeline.simulate_checks import SimulationInputs, check_simulate_request
 from service.schemas.design import DesignRequest, WarningReport
 from service.schemas.simulate import PerformanceReport, ScenarioRequest, SimulateRequest
 from service.schemas.sweep import HORIZON_PARAMETERS, SweepEntryReport, SweepProblem, SweepRequest, SweepResponse
-from service.solver.estimation.estimator import Estimator
 from service.solver.evaluation.frequency import FrequencyAnalysis
 
 __all__ = ["run_sweep", "simulate_request", "substituted_request"]
@@ -123,17 +122,17 @@ def _failed(request: SweepRequest, value: float, mark: str, exc: InvalidRequest 
     return SweepEntryReport(value=value, status="failed", fingerprint=mark, problem=SweepProblem(**problem.brief()))
 
 
-def _peak_sensitivity(analysis: FrequencyAnalysis, estimator: Estimator) -> float:
+def _peak_sensitivity(analysis: FrequencyAnalysis) -> float:
     """The larger peak of S at the plant input and output, without building the whole report.
 
-    Numbers that are not finite fail the entry as the report would (its own NumericalError).
+    Numbers that are not finite fail the entry with the report's own problem.
     """
     loops = (analysis.plant_input, analysis.plant_output)
     for loop in loops:
         arrays = (loop.sensitivity_singular_values, loop.complementary_singular_values)
         figures = (loop.peak_sensitivity, loop.peak_complementary)
         if not (all(np.all(np.isfinite(x)) for x in arrays) and np.all(np.isfinite(figures))):
-            robustness_report(analysis, estimator)  # raises the report's NumericalError
+            raise not_finite_analysis()
     return float(max(loop.peak_sensitivity for loop in loops))
 
 
@@ -163,9 +162,9 @@ def _entry(
             retuned_run = replace(run, design=inputs)
             simulation = compute_simulation(retuned_run)
             outcome = simulation.design
-            performance = performance_report(inputs.plant, simulation)
-        if outcome.analysis is not None and outcome.estimator is not None:
-            peak = _peak_sensitivity(outcome.analysis, outcome.estimator)
+            performance = performance_report(inputs, simulation)
+        if outcome.analysis is not None:
+            peak = _peak_sensitivity(outcome.analysis)
     except (InvalidRequest, NumericalError) as exc:
         return _failed(request, value, mark, exc)
     loop = outcome.design.loop

@@ -22,7 +22,8 @@ class EstimatorRequest(RequestModel):
 
     kind: Literal["full_state", "per_output", "output_disturbance", "input_disturbance", "kalman"] = Field(
         default="per_output",
-        description="'per_output' (default): one step disturbance per controlled output, for offset-free "
+        description="'per_output' (default): one step disturbance per measured output (the controlled "
+        "outputs unless model.c_measured is given), for offset-free "
         "control: a bias on the output for a self-regulating output, a bias on its rate for an "
         "integrating output (a level), chosen from the model's structure or per output by "
         "'disturbances'; 'full_state': the state is read as measured (analysis only); 'output_disturbance': "
@@ -36,7 +37,8 @@ class EstimatorRequest(RequestModel):
     )
     disturbances: list[Literal["output", "rate"]] | None = Field(
         default=None,
-        description="The per-output disturbance model, one entry per controlled output in model order: "
+        description="The per-output disturbance model, one entry per measured output in model order (the "
+        "controlled outputs unless model.c_measured is given): "
         "'output' (a step bias on the output, for self-regulating outputs) or 'rate' (a step bias on its "
         "rate, for integrating outputs such as a level with an unmeasured inflow). Default: 'rate' for "
         "each output that sees a mode of the model at z = 1, 'output' for the others. Only with kind "
@@ -50,11 +52,13 @@ class EstimatorRequest(RequestModel):
     disturbance_noise: Covariance | None = Field(
         default=None,
         description="Covariance of the per-sample change of each estimated disturbance (output units "
-        "squared for output disturbances, input units squared for input ones; default 1 per "
-        "disturbance, in units of the span when spans are given).",
+        "squared for output disturbances, input units squared for input ones). Default: 1 per output "
+        "disturbance (in units of the span when spans are given); for an input disturbance, 1 over the "
+        "mean square of that input's unit-step response on the outputs, so that the default does not "
+        "depend on the input's units.",
     )
     measurement_noise: Covariance | None = Field(
         default=None,
-        description="Covariance of the noise on each measured output: p variances or a p x p symmetric "
+        description="Covariance of the noise on each measured output: py variances or a py x py symmetric "
         "positive-definite matrix (default 1 per output, in units of the span when spans are given).",
     )

@@ -44,7 +44,9 @@ class LawSignal(ResponseModel):
 
     name: str = Field(description="Its column (row) name in the matrices.")
     role: str = Field(
-        description="Inputs: 'measured' (a measured output), 'setpoint', 'measured_disturbance' or "
+        description="Inputs: 'measured' (a measured output: model.c_measured's when given, else a "
+        "controlled output), 'measured_state' (a plant state, for a full_state estimator), 'setpoint' (of a "
+        "controlled output), 'measured_disturbance' or "
         "'input_target' (the target of a manipulated variable, with weights.input); outputs: "
         "'input' (a manipulated variable) or 'move' (its change since the last sample)."
     )

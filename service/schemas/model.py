@@ -54,10 +54,15 @@ class StateSpaceModel(_Tagged):
         default=None, description="Measured-disturbance matrix Bd, n x md (feed-forward)."
     )
     c_measured: Matrix | None = Field(
-        default=None, description="Measured-output matrix, py x n; default: the controlled outputs."
+        default=None,
+        description="Measured-output matrix C_m, py x n: what the estimator reads (y_m = C_m x + D_m u); "
+        "default: the controlled outputs.",
     )
     d_measured: Matrix | None = Field(
-        default=None, description="Feed-through of the measured outputs, py x m; default zero."
+        default=None,
+        description="Feed-through D_m of the measured outputs, py x m; default zero. The measurement at sample "
+        "k sees the input applied at k, and the estimator subtracts D_m u(k). /design/export refuses it (the "
+        "law would depend on its own output through the measurement).",
     )
     measured: TagList | None = Field(default=None, description="One tag per measured output.")
     time_domain: Literal["discrete", "continuous"] = Field(

@@ -74,7 +74,10 @@ class InputTargetChange(RequestModel):
 class MeasurementNoise(RequestModel):
     """White Gaussian noise on the measured outputs, seeded so that a run repeats exactly."""
 
-    std: list[Spread] = Field(description="Standard deviation per controlled output, engineering units.")
+    std: list[Spread] = Field(
+        description="Standard deviation per measured output, engineering units (per controlled output when "
+        "the model has no measured outputs of its own)."
+    )
     seed: Annotated[int, Field(strict=True, ge=0, le=2**63 - 1)] = Field(
         default=0, description="Seed of the noise generator: the same seed gives the same noise."
     )
@@ -100,7 +103,10 @@ class ScenarioRequest(RequestModel):
     )
     setpoint_changes: list[SetpointChange] = Field(default_factory=list)
     output_disturbances: list[DisturbanceChange] = Field(
-        default_factory=list, description="Unmeasured steps added to the controlled outputs."
+        default_factory=list,
+        description="Unmeasured steps added to the controlled outputs. With measured outputs of their own "
+        "(model.c_measured), a measured output sees such a step only when it is that output's own signal "
+        "(the same row of c, no d_measured).",
     )
     input_disturbances: list[DisturbanceChange] = Field(
         default_factory=list, description="Unmeasured steps added to the manipulated variables at the plant."
@@ -125,7 +131,8 @@ class ScenarioRequest(RequestModel):
         default=None,
         description="The plant the loop runs on, in any model form (default: the model itself). Same "
         "inputs, outputs and sample time as the model; its state count may differ when "
-        "initial.state is not given and the estimator is not full_state.",
+        "initial.state is not given and the estimator is not full_state. With measured outputs of their "
+        "own it has as many (its own c_measured, the model's tags) and the model's d_measured.",
     )
     initial: InitialConditions = Field(default_factory=InitialConditions)
 
@@ -140,11 +147,19 @@ class SeriesColumns(ResponseModel):
     """Names of the columns of each time series (also the CSV header)."""
 
     outputs: list[str] = Field(description="Controlled outputs (their tags).")
-    measured: list[str] = Field(description="What the estimator read: the outputs with noise.")
+    measured: list[str] = Field(
+        description="The measured outputs: '<output>.measured' per controlled output, or the measured outputs' "
+        "own tags when the model has them (model.c_measured, d_measured)."
+    )
     setpoints: list[str]
     inputs: list[str] = Field(description="Manipulated variables (their tags).")
     estimates: list[str] = Field(description="Estimated states, then the estimated disturbances.")
     measured_disturbances: list[str]
+    measured_own: bool = Field(
+        default=False,
+        description="True when the measured outputs are signals of their own (model.c_measured other than c, "
+        "or d_measured): the CSV answer then has their columns too.",
+    )
 
 
 class OutputFigures(ResponseModel):
@@ -155,6 +170,11 @@ class OutputFigures(ResponseModel):
     """
 
     name: str
+    zone: bool = Field(
+        default=False,
+        description="A zone output, held in its range rather than at a setpoint: every figure here is null; "
+        "the answer's zones entry for it says how it kept to its range.",
+    )
     step: int | None = Field(description="Step of the last setpoint change of this output.")
     rise_time: float | None = Field(description="From 10 % to 90 % of the setpoint step.")
     settling_time: float | None = Field(description="Until the output stays within 2 % of the setpoint step.")
@@ -187,12 +207,12 @@ class EstimatorReport(ResponseModel):
     disturbance: str = Field(description="Disturbance model in use: 'per_output', 'output', 'input' or 'none'.")
     disturbances: list[str] | None = Field(
         default=None,
-        description="For 'per_output': per output, 'output' (a step bias on the output) or 'rate' (a step "
-        "bias on its rate, for an integrating output).",
+        description="For 'per_output': per measured output, 'output' (a step bias on the output) or 'rate' (a "
+        "step bias on its rate, for an integrating output).",
     )
     gain: LabelledMatrix | None = Field(
-        description="Filter gain L of x(k|k) = x(k|k-1) + L (y(k) - C x(k|k-1)), engineering units: rows "
-        "the estimates, columns the measured outputs. Null for full_state."
+        description="Filter gain L of x(k|k) = x(k|k-1) + L (y(k) - D_m u(k) - C_m x(k|k-1)), engineering "
+        "units: rows the estimates, columns the measured outputs. Null for full_state."
     )
     poles: list[PoleReport] = Field(description="Eigenvalues of (I - L C) A, by descending modulus.")
     spectral_radius: float
@@ -238,7 +258,11 @@ class SimulateResponse(ResponseModel):
     sample_time: float
     time: list[float]
     outputs: list[list[float]] = Field(description="True controlled outputs (noise-free), engineering units.")
-    measured: list[list[float]]
+    measured: list[list[float]] = Field(
+        description="The measured outputs y_m(k) = C_m x(k) + D_m u(k), with noise and the output disturbances "
+        "they see (the controlled outputs with noise when the model has no measured outputs of its own). "
+        "The estimator reads y_m(k) - D_m u(k), u(k) the input applied at step k."
+    )
     setpoints: list[list[float]]
     inputs: list[list[float]] = Field(description="u(k), applied from step k to k+1.")
     estimates: list[list[float]] = Field(description="x(k|k): states, then disturbance estimates.")

@@ -58,5 +58,8 @@ class Weights(RequestModel):
         "system on the last predicted [x; u] in place of the last step's output weight; with Hu = Hp "
         "and first_penalized = 1 the gain is then the infinite-horizon LQR gain for any horizon, and "
         "the loop is stable. With a later first penalized step the outputs before it carry no cost, so "
-        "the gain is not the LQR gain and stability is not guaranteed: read it from closed_loop.",
+        "the gain is not the LQR gain and stability is not guaranteed: read it from closed_loop. The "
+        "terminal penalty is on the distance from the steady-state target of the setpoint (and of the "
+        "disturbance estimate and measured disturbances), so /simulate and /design/export run it "
+        "offset-free; not with zones or weights.input.",
     )

@@ -39,6 +39,16 @@ function config(filename) {
   };
 }
 
+/**
+ * Fit every chart of a grid to its cell once the grid holds them all: a chart is drawn when
+ * its box is added, while the grid still has fewer items (the first one alone spans the whole
+ * row), and plotly keeps that width until the window itself is resized.
+ */
+function fitToCells(drawn) {
+  for (const div of drawn) window.Plotly.Plots.resize(div);
+  return drawn;
+}
+
 /** A chart in a figure with its caption and a save-as-PNG button; returns the chart div. */
 export function chartBox(container, { id, testid, label, filename, square = false }) {
   const figure = document.createElement("figure");
@@ -176,7 +186,7 @@ export function drawResponses(container, answer, request) {
     const traces = [
       { type: "scatter", mode: "lines", name: `${name}`, x: time, y: column(answer.outputs, j), line: { color: COLOURS.blue, width: 2 } },
     ];
-    if (answer.measured) traces.push({
+    if (answer.measured && !columns.measured_own) traces.push({
       type: "scatter", mode: "lines", name: "measured", x: time, y: column(answer.measured, j),
       line: { color: COLOURS.sky, width: 1, dash: "dot" }, opacity: 0.9,
     });
@@ -234,7 +244,7 @@ export function drawResponses(container, answer, request) {
     }), config(div.dataset.filename));
     drawn.push(div);
   });
-  return drawn;
+  return fitToCells(drawn);
 }
 
 /** Singular values of S and T over frequency at the plant output and input, peaks marked. */
@@ -274,7 +284,7 @@ export function drawRobustness(container, robustness) {
     }), config(div.dataset.filename));
     drawn.push(div);
   }
-  return drawn;
+  return fitToCells(drawn);
 }
 
 /** The chosen (base request's) value of a sweep's parameter, when the base request says it. */
@@ -334,7 +344,7 @@ export function drawSweep(container, answer, request) {
     }), config(div.dataset.filename));
     drawn.push(div);
   });
-  return { drawn, chosen, isChosen };
+  return { drawn: fitToCells(drawn), chosen, isChosen };
 }
 
 /** The fitted unit-step responses of /identify: one chart per output, one line per input. */
@@ -359,5 +369,5 @@ export function drawStepResponses(container, steps) {
     }), config(div.dataset.filename));
     drawn.push(div);
   });
-  return drawn;
+  return fitToCells(drawn);
 }

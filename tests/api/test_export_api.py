@@ -89,9 +89,17 @@ def _vessel_riccati():
     return body
 
 
+def _transfer_matrix_riccati():
+    body = _transfer_matrix()
+    body["weights"]["terminal"] = "riccati"
+    body["horizons"] = {"prediction": 12, "control": 4}
+    return body
+
+
 CASES = {
     "vessel, 20 % gain error, noise": _vessel,
     "vessel with the Riccati terminal weight": _vessel_riccati,
+    "transfer matrix with the Riccati terminal weight": _transfer_matrix_riccati,
     "transfer matrix: dead times, integrating level, measured flow, spans": _transfer_matrix,
     "three valves for two outputs": _three_valves,
     "three valves with input targets": _three_valves_with_targets,
@@ -362,7 +370,11 @@ def test_reset_restarts_from_rest(client):
 @pytest.mark.parametrize(
     "edit,pointer",
     [
-        (lambda b: b["estimator"].update(kind="full_state"), "/estimator/kind"),
+        # a measured feed-through would make the law's input depend on itself (an algebraic loop)
+        (
+            lambda b: b["model"].update(c_measured=b["model"]["c"], d_measured=[[0.1, 0.0], [0.0, 0.0]]),
+            "/model/d_measured/0",
+        ),
         (lambda b: b.update(format="ladder"), "/format"),
         (lambda b: b.update(block_name="2nd law"), "/block_name"),
         (lambda b: b.update(block_name="a__b"), "/block_name"),
@@ -417,6 +429,7 @@ OP_CASES = {
     "vessel": _vessel,
     "vessel with the Riccati terminal weight": _vessel_riccati,
     "transfer matrix with a measured disturbance": _transfer_matrix,
+    "transfer matrix with the Riccati terminal weight": _transfer_matrix_riccati,
     "three valves with input targets": _three_valves_with_targets,
 }
 

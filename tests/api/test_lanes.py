@@ -41,6 +41,26 @@ def test_default_light_lane_has_one_process_per_core():
     assert default_solver_processes() == len(os.sched_getaffinity(0))
 
 
+def _blas_threads() -> int:
+    from threadpoolctl import threadpool_info
+
+    return max(pool["num_threads"] for pool in threadpool_info())
+
+
+def test_the_light_lane_runs_one_blas_thread_whatever_the_environment(monkeypatch):
+    # The heavy lane takes the operator's OMP_NUM_THREADS; the light lane always one thread,
+    # read back inside the solver process with threadpoolctl.
+    from service.api.compute import solver_lanes
+    from service.api.settings import Settings
+
+    monkeypatch.setenv("OMP_NUM_THREADS", "2")
+    lanes = solver_lanes(Settings(solver_processes=1, heavy_solver_processes=1, heavy_queue=7))
+    light, _ = lanes.light.run(_blas_threads, (), deadline=time.monotonic() + 60, seconds=60)
+    heavy, _ = lanes.heavy.run(_blas_threads, (), deadline=time.monotonic() + 60, seconds=60)
+    assert light == 1
+    assert heavy == 2
+
+
 @pytest.mark.parametrize("request_name", ["design_request.json", "design_request_robustness.json"])
 def test_both_lanes_give_the_same_answer(make_client, request_name):
     # Every request heavy, then every request light: byte-identical bodies.

@@ -175,12 +175,6 @@ def test_bad_state_space_parts_name_the_field(client, example, edit, pointer):
     assert pointer in problem_pointers(client.post("/design", json=example))
 
 
-def test_terminal_weight_with_measured_disturbances_is_refused(client, example):
-    example["model"]["b_disturbance"] = [[0.05], [0.0], [0.02], [0.0]]
-    example["weights"]["terminal"] = "riccati"
-    assert "/weights/terminal" in problem_pointers(client.post("/design", json=example))
-
-
 @pytest.mark.parametrize(
     "edit",
     [

@@ -177,17 +177,16 @@ def test_serve_sizes_thread_pools_and_the_metrics_folder_before_numpy(monkeypatc
     environment = dict(os.environ)
     for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "PROMETHEUS_MULTIPROC_DIR"):
         environment.pop(name, None)
-    environment["MOVECAST_SOLVER_PROCESSES"] = "1"
     monkeypatch.setattr(os, "environ", environment)
     monkeypatch.setattr(cli.os, "sched_getaffinity", lambda pid: set(range(8)), raising=False)
     cli._prepare_process_environment(2)
-    # 8 CPUs shared by 2 workers x 1 solver process each: 4 BLAS threads per solver.
-    assert os.environ["OMP_NUM_THREADS"] == os.environ["OPENBLAS_NUM_THREADS"] == "4"
+    # One BLAS thread per process whatever the CPUs: the service scales by processes.
+    assert os.environ["OMP_NUM_THREADS"] == os.environ["OPENBLAS_NUM_THREADS"] == os.environ["MKL_NUM_THREADS"] == "1"
     folder = Path(os.environ["PROMETHEUS_MULTIPROC_DIR"])
     assert folder.is_dir() and not list(folder.iterdir())
     # Variables the operator set are kept (the image sets one thread per worker).
-    environment["OMP_NUM_THREADS"] = "1"
+    environment["OMP_NUM_THREADS"] = "3"
     (folder / "counter_1.db").write_bytes(b"old")
     cli._prepare_process_environment(2)
-    assert os.environ["OMP_NUM_THREADS"] == "1"
+    assert os.environ["OMP_NUM_THREADS"] == "3"
     assert not list(folder.glob("*.db")), "old samples are wiped at start-up"

@@ -448,8 +448,9 @@ def _edit(path, value):
         ),
         (_edit(("scenario", "true_plant", "c_measured"), [[1.0, 0.0, 0.0, 0.0]]), "/scenario/true_plant/c_measured"),
         (_edit(("scenario", "true_plant", "kind"), "mystery"), "/scenario/true_plant/kind"),
-        (_edit(("model", "c_measured"), [[1.0, 0.0, 0.0, 0.0]]), "/model/c_measured"),
-        (_edit(("model", "d_measured"), [[0.0, 1.0], [0.0, 0.0]]), "/model/d_measured"),
+        # measured outputs of their own: the true plant must measure as many, with the model's feed-through
+        (_edit(("model", "c_measured"), [[1.0, 0.0, 0.0, 0.0]]), "/scenario/true_plant/c"),
+        (_edit(("model", "d_measured"), [[0.0, 1.0], [0.0, 0.0]]), "/scenario/true_plant/d_measured"),
         (_edit(("estimator",), {"kind": "output_disturbance", "disturbance": "input"}), "/estimator/disturbance"),
         (_edit(("estimator",), {"kind": "kalman", "disturbance": "sideways"}), "/estimator/disturbance"),
         (_edit(("estimator",), {"kind": "observer"}), "/estimator/kind"),

@@ -57,9 +57,12 @@ def test_simulate_with_the_riccati_terminal_weight_and_hu_equal_to_hp_is_the_lqr
     assert run["design"]["closed_loop"]["stable"]
 
 
-def test_simulate_riccati_under_wide_limits_is_the_unconstrained_run(client):
+@pytest.mark.parametrize("move_steps", [None, [0, 2, 4]], ids=["every move", "move blocking"])
+def test_simulate_riccati_under_wide_limits_is_the_unconstrained_run(client, move_steps):
     body = _body(8, kind="output_disturbance", steps=300)
-    body["horizons"]["control"] = 3
+    body["horizons"]["control"] = 3 if move_steps is None else 6
+    if move_steps is not None:
+        body["horizons"]["move_steps"] = move_steps
     body["scenario"]["output_disturbances"] = [{"step": 60, "value": [0.3, 0.2]}]
     free = _post(client, body)
     body["limits"] = {
@@ -83,3 +86,54 @@ def test_simulate_riccati_under_a_binding_move_limit_moves_no_faster_than_the_li
     assert np.abs(moves).max() <= 0.05 + 1e-9
     assert np.abs(moves).max() > 0.05 - 1e-6  # the limit did bind
     np.testing.assert_allclose(run["outputs"][-1], SETPOINT, atol=1e-6)
+
+
+BD = [[0.05], [0.0], [0.02], [0.0]]  # a measured feed disturbance (invented)
+
+
+@pytest.mark.parametrize("horizon", [2, 6])
+def test_design_feedforward_gain_with_the_riccati_terminal_weight_is_minus_k_s_m(client, horizon):
+    # With Hu = Hp the law is the LQR law on the deviation from the steady state under the
+    # held disturbance, du = -K (xi - xi_s(r, d)) (dynamic programming; K from
+    # scipy.linalg.solve_discrete_are), so its feed-forward gain (du = ... - Kd d) is
+    # Kd = -K S_m with S_m from the target equations (I - A) x = B u + Bd d, C x = 0, solved by hand.
+    body = _body(horizon)
+    body["model"]["b_disturbance"] = BD
+    body["model"]["disturbances"] = [{"name": "feed_flow", "unit": "t/h"}]
+    design = {k: body[k] for k in ("model", "horizons", "weights")}
+    r = client.post("/design", json=design)
+    assert r.status_code == 200, r.text
+    gain = r.json()["gain"]
+    lqr, _, _ = incremental_lqr(A, B, C, Q, R)
+    target = np.block([[np.eye(4) - A, -B], [C, np.zeros((2, 2))]])
+    s_m = np.linalg.solve(target, np.vstack([np.array(BD), np.zeros((2, 1))]))
+    np.testing.assert_allclose(np.array(gain["disturbance"]), -lqr @ s_m, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(np.hstack([gain["state"], gain["previous_input"]]), lqr, rtol=0, atol=1e-9)
+
+
+@pytest.mark.parametrize("kind", ["kalman", "full_state"])
+def test_riccati_with_measured_outputs_of_their_own_exports_simulate_s_law(client, kind):
+    # The plant of tests/api/test_measured_outputs.py (an unmeasured controlled output, invented
+    # numbers): the exported law run by scipy.signal.dlsim on /simulate's measurements (or
+    # states, for full_state) and setpoints gives /simulate's inputs with the terminal term.
+    import scipy.signal
+
+    from tests.api.test_measured_outputs import _body as measured_body
+
+    body = measured_body(noise=False)
+    body["weights"]["terminal"] = "riccati"
+    if kind == "full_state":
+        body["estimator"] = {"kind": "full_state"}
+    sim = _post(client, body)
+    fields = {k: copy.deepcopy(body[k]) for k in ("model", "horizons", "weights", "estimator")}
+    r = client.post("/design/export", json={**fields, "format": "state_space"})
+    assert r.status_code == 200, r.text
+    law = r.json()
+    read = np.array(sim["estimates"] if kind == "full_state" else sim["measured"])
+    w = np.hstack([read, np.array(sim["setpoints"])])
+    system = tuple(np.array(law[k]["values"], dtype=float) for k in "abcd")
+    _, v, _ = scipy.signal.dlsim((*system, law["sample_time"]), w)
+    u = np.array(sim["inputs"])
+    np.testing.assert_allclose(v[:, :1], u, rtol=0, atol=1e-9 * np.abs(u).max())
+    if kind == "kalman":  # offset-free through the input-disturbance model (full_state has none)
+        assert abs(sim["outputs"][-1][0] - 1.0) < 1e-3  # the unmeasured output held on its setpoint

@@ -268,3 +268,25 @@ def test_a_sweep_converts_its_model_once(monkeypatch, scenario):
     assert len(response.entries) == len(sweep["values"]) > 1
     assert all(e.status == "designed" for e in response.entries)
     assert len(calls) == 1
+
+
+def test_a_sweep_entry_whose_analysis_is_not_finite_fails_with_the_reports_problem():
+    # The sweep reads the peak without building the whole robustness report, but a loop with a
+    # number JSON cannot carry must fail as /design's report would: the same detail and field.
+    from types import SimpleNamespace
+
+    from service.errors import NumericalError
+    from service.pipeline.robustness import ANALYSIS_FIELD
+    from service.pipeline.sweep import _peak_sensitivity
+
+    good = SimpleNamespace(
+        sensitivity_singular_values=np.ones((3, 2)),
+        complementary_singular_values=np.ones((3, 2)),
+        peak_sensitivity=1.5,
+        peak_complementary=1.1,
+    )
+    assert _peak_sensitivity(SimpleNamespace(plant_input=good, plant_output=good)) == 1.5
+    bad = SimpleNamespace(**{**vars(good), "sensitivity_singular_values": np.array([[1.0, np.inf]])})
+    with pytest.raises(NumericalError) as caught:
+        _peak_sensitivity(SimpleNamespace(plant_input=good, plant_output=bad))
+    assert caught.value.field == ANALYSIS_FIELD and "not finite" in caught.value.detail

@@ -83,6 +83,25 @@ def test_the_level_floats_inside_its_zone_and_stays_in_it_after_an_upset(client)
     assert body["diverged_at"] is None
 
 
+def test_a_zone_output_gets_no_setpoint_figures_and_a_setpoint_output_keeps_them(client):
+    # The level's setpoint (50 %) is not what the loop holds it to: rise time, offset and the
+    # integral error against it would rate the zone output by a target it does not have.
+    body = client.post("/simulate", json=sump_run()).json()
+    composition, level = body["performance"]["outputs"]
+    assert level["name"] == "sump_level" and level["zone"] is True
+    for figure in (
+        "step",
+        "rise_time",
+        "settling_time",
+        "overshoot_percent",
+        "integral_absolute_error",
+        "final_offset",
+    ):
+        assert level[figure] is None, figure
+    assert composition["zone"] is False and composition["step"] == 10
+    assert abs(composition["final_offset"]) < 1e-6 and composition["rise_time"] is not None
+
+
 def test_without_the_zone_the_unweighted_level_runs_out_of_the_range(client):
     # The same tuning without the zone is the fixed law alone, which does not act on the
     # level (weight 0): the upset carries the level past 70 % (the zone is what holds it).

@@ -366,13 +366,18 @@ def free_port() -> int:
         return int(sock.getsockname()[1])
 
 
-def design_body(plant: Plant) -> dict[str, Any]:
-    """The POST /design request for a plant (format of openapi/examples/design_request.json)."""
+def design_body(plant: Plant, *, variant: int = 0) -> dict[str, Any]:
+    """The POST /design request for a plant (format of openapi/examples/design_request.json).
+
+    ``variant`` > 0 scales ``A`` by ``1 - 1e-9 variant``: the same design to the eye, another
+    plant to the solvers' plant cache (``service.solver.memo``), so that every request of a
+    run over many variants is computed afresh.
+    """
     case = plant.case
     return {
         "model": {
             "kind": "state_space",
-            "a": plant.a.tolist(),
+            "a": (plant.a * (1.0 - 1e-9 * variant)).tolist(),
             "b": plant.b.tolist(),
             "c": plant.c.tolist(),
             "time_domain": "discrete",
@@ -409,10 +414,12 @@ def load(
     concurrency: int,
     payload: bytes | None = None,
     timeout: float = 30.0,
+    payloads: list[bytes] | None = None,
 ) -> dict[str, Any]:
     """Send requests from ``concurrency`` threads for ``seconds``; count and time them.
 
-    The request carries ``body`` as JSON, or ``payload`` as it is (already encoded JSON).
+    The request carries ``body`` as JSON, or ``payload`` as it is (already encoded JSON), or
+    each thread cycles through ``payloads`` (starting at its own offset).
     """
     import httpx
 
@@ -426,14 +433,23 @@ def load(
     deadline_box: list[float] = []
 
     def worker(slot: int) -> None:
+        turn = slot * 7
+
+        def next_send() -> dict[str, Any]:
+            nonlocal turn
+            if not payloads:
+                return send
+            turn += 1
+            return {"content": payloads[turn % len(payloads)], "headers": {"content-type": "application/json"}}
+
         with httpx.Client(base_url=base, timeout=timeout) as client:
-            client.request(method, path, **send)  # connect and warm up, not counted
+            client.request(method, path, **next_send())  # connect and warm up, not counted
             start_gate.wait()
             deadline = deadline_box[0]
             while time.perf_counter() < deadline:
                 began = time.perf_counter()
                 try:
-                    ok = client.request(method, path, **send).status_code == 200
+                    ok = client.request(method, path, **next_send()).status_code == 200
                 except httpx.HTTPError:
                     ok = False
                 if ok:

@@ -21,7 +21,9 @@ from service.solver.estimation.estimator import (
     DEFAULT_STATE_NOISE,
     augmented_model,
     design_estimator,
+    unmeasured_outputs,
 )
+from service.solver.evaluation.simulation import measured_output_map
 from tests.conftest import random_plant
 
 
@@ -76,6 +78,13 @@ def test_kalman_covariance_is_the_limit_of_the_covariance_recursion(rng):
     np.testing.assert_allclose(est.covariance, pk, rtol=1e-8, atol=1e-10)
 
 
+def _step_rms_noise(a, b, c):
+    """1 / mean square of each input's unit-step response over the outputs and n samples, written out."""
+    n = a.shape[0]
+    steps = [c @ sum((np.linalg.matrix_power(a, i) for i in range(k)), np.zeros_like(a)) @ b for k in range(1, n + 1)]
+    return [1.0 / np.mean([s[:, j] ** 2 for s in steps]) for j in range(b.shape[1])]
+
+
 def test_disturbance_kinds_are_kalman_filters_with_the_documented_default_covariances(rng):
     a, b, c = random_plant(rng, 3, 2, 2)
     for kind, disturbance, nd in [("output_disturbance", "output", 2), ("input_disturbance", "input", 2)]:
@@ -87,7 +96,9 @@ def test_disturbance_kinds_are_kalman_filters_with_the_documented_default_covari
             kind="kalman",
             disturbance=disturbance,
             process_noise=[DEFAULT_STATE_NOISE] * 3,
-            disturbance_noise=[DEFAULT_DISTURBANCE_NOISE] * nd,
+            # the documented defaults: 1 per output disturbance, and per input disturbance 1
+            # over the mean square of that input's step response (input_disturbance_noise)
+            disturbance_noise=[DEFAULT_DISTURBANCE_NOISE] * nd if disturbance == "output" else _step_rms_noise(a, b, c),
             measurement_noise=[DEFAULT_MEASUREMENT_NOISE] * 2,
         )
         assert est.disturbance == disturbance and est.kind == kind
@@ -224,3 +235,71 @@ def test_a_unit_circle_mode_without_process_noise_is_refused():
     with pytest.raises(NumericalError) as caught:
         design_estimator([[1.0]], [[1.0]], [[1.0]], kind="kalman", disturbance="none", process_noise=[0.0])
     assert caught.value.field == ("estimator",)
+
+
+# --------------------------------------------------------------------------- measured outputs of their own
+
+
+@pytest.mark.parametrize("disturbance", ["output", "input", "per_output"])
+def test_the_filter_reads_measured_outputs_of_their_own(rng, disturbance):
+    # three sensors for two controlled outputs: the filter is the Kalman filter of (A_a, [Cy, Cd])
+    n, m, p, py = 4, 2, 2, 3
+    a, b, c = random_plant(rng, n, m, p, radius=0.9)
+    cy = rng.normal(size=(py, n))
+    nd = {"output": py, "input": m, "per_output": py}[disturbance]
+    qx, qd, rv = _random_covariance(rng, n), _random_covariance(rng, nd), _random_covariance(rng, py)
+    est = design_estimator(
+        a,
+        b,
+        c,
+        kind="kalman",
+        disturbance=disturbance,
+        process_noise=qx,
+        disturbance_noise=qd,
+        measurement_noise=rv,
+        c_measured=cy,
+    )
+    aa, ca = est.a, est.c_measured
+    assert ca.shape == (py, n + nd) and est.c_controlled.shape == (p, n + nd)
+    np.testing.assert_array_equal(ca[:, :n], cy)
+    np.testing.assert_array_equal(est.c_controlled[:, :n], c)
+    # Reference: scipy.linalg.solve_discrete_are on the dual pair, the measured rows (Kalman 1960)
+    qw = scipy.linalg.block_diag(qx, qd)
+    p_ref = scipy.linalg.solve_discrete_are(aa.T, ca.T, qw, rv)
+    np.testing.assert_allclose(est.covariance, p_ref, rtol=1e-9, atol=1e-10)
+    s = ca @ p_ref @ ca.T + rv
+    np.testing.assert_allclose(est.gain, p_ref @ ca.T @ np.linalg.inv(s), rtol=1e-8, atol=1e-10)
+    # random controlled rows are no combination of three random sensors of four states: Dz = 0
+    # unless the disturbance enters the state (input disturbances: Cd = 0 anyway)
+    np.testing.assert_array_equal(est.disturbance_controlled, np.zeros((p, nd)))
+
+
+def test_a_controlled_output_that_is_a_combination_of_sensors_sees_their_bias(rng):
+    # z1 = y1 + 2 y2 (a sum of two sensors), z2 measured by no sensor
+    n, m = 3, 2
+    a, b, _ = random_plant(rng, n, m, 1, radius=0.9)
+    cy = rng.normal(size=(2, n))
+    c = np.vstack([cy[0] + 2.0 * cy[1], rng.normal(size=n)])
+    est = design_estimator(a, b, c, kind="output_disturbance", c_measured=cy)
+    # an output bias d on the sensors (Cd = I) shows in z1 as d1 + 2 d2 (z1 = y1 + 2 y2), and not in z2
+    np.testing.assert_allclose(est.disturbance_controlled, [[1.0, 2.0], [0.0, 0.0]], atol=1e-12)
+    np.testing.assert_array_equal(unmeasured_outputs(c, cy), [False, True])
+
+
+def test_the_measured_feedthrough_is_kept_and_leaves_the_filter_alone(rng):
+    a, b, c = random_plant(rng, 3, 1, 1, radius=0.9)
+    cy = rng.normal(size=(1, 3))
+    plain = design_estimator(a, b, c, c_measured=cy)
+    fed = design_estimator(a, b, c, c_measured=cy, d_measured=[[0.4]])
+    np.testing.assert_array_equal(fed.gain, plain.gain)  # the filter reads y - Dy u: the same filter
+    np.testing.assert_array_equal(fed.feedthrough, [[0.4]])
+    assert plain.measured_feedthrough is None and not np.any(plain.feedthrough)
+
+
+def test_the_output_disturbance_reaches_a_sensor_only_on_its_own_signal():
+    c = np.array([[1.0, 0.0, 0.0], [0.0, 1.0, 0.0]])
+    cm = np.array([[0.0, 1.0, 0.0], [0.0, 0.0, 1.0], [1.0, 0.0, 0.0]])
+    np.testing.assert_array_equal(measured_output_map(c, cm), [[0, 1], [0, 0], [1, 0]])
+    # a sensor with a feed-through is another signal than the output it reads
+    np.testing.assert_array_equal(measured_output_map(c, cm, np.array([[0.0], [0.0], [0.5]])), [[0, 1], [0, 0], [0, 0]])
+    np.testing.assert_array_equal(measured_output_map(c, c), np.eye(2))

@@ -245,3 +245,66 @@ def test_terminal_run_under_a_binding_input_limit_keeps_the_limit_and_settles_in
     assert np.all(np.abs(run.inputs[:, 0]) <= 0.4 + 1e-9)
     assert abs(abs(run.inputs[-1, 0]) - 0.4) < 1e-9  # held on its limit at the end
     np.testing.assert_allclose(run.moves[-1], 0.0, atol=1e-8)
+
+
+BD = np.array([[0.05], [0.0], [0.02], [0.0]])  # a measured feed disturbance (invented)
+
+
+def _steady_state_with(r, dm):
+    """``[x_s; u_s]`` of ``(I - A) x = B u + Bd d_m``, ``C x = r`` (the target equations, solved)."""
+    target = np.block([[np.eye(4) - A, -B], [C, np.zeros((2, 2))]])
+    return np.linalg.solve(target, np.concatenate([BD @ dm, r]))
+
+
+def test_terminal_run_with_a_measured_disturbance_is_the_lqr_loop_on_the_shifted_target():
+    # With d_m held, xi_s(r, d_m) is a fixed point of the incremental system, and in deviations
+    # from it the horizon problem with the Riccati cost to go is the LQR problem (dynamic
+    # programming): du = -K (xi - xi_s(r, d_m)), K from scipy.linalg.solve_discrete_are.
+    design = _design(6, 6)
+    estimator = design_estimator(A, B, C, kind="full_state")
+    scenario = Scenario(
+        steps=120, setpoint_changes=[Event(5, SETPOINT)], measured_disturbances=[Event(40, np.array([2.0]))]
+    )
+    run = simulate_loop(design, estimator, scenario, b_disturbance=BD)
+    lqr, _, _ = incremental_lqr(A, B, C, np.diag(Q), np.diag(R))
+    x, u, inputs = np.zeros(4), np.zeros(2), []
+    for k in range(120):
+        r = SETPOINT if k >= 5 else np.zeros(2)
+        dm = np.array([2.0]) if k >= 40 else np.zeros(1)
+        u = u - lqr @ (np.concatenate([x, u]) - _steady_state_with(r, dm))
+        inputs.append(u)
+        x = A @ x + B @ u + BD @ dm
+    np.testing.assert_allclose(run.inputs, np.array(inputs), rtol=0, atol=1e-12)
+    np.testing.assert_allclose(run.outputs[-1], SETPOINT, atol=1e-9)  # the disturbance fed forward, no offset
+    # the step-by-step loop gives the same run
+    policy = UnconstrainedPolicy(design.gain.horizon, None, design.terminal_gain)
+    stepped = simulate_loop(design, estimator, scenario, b_disturbance=BD, policy=lambda **kw: policy(**kw))
+    np.testing.assert_allclose(stepped.inputs, run.inputs, rtol=0, atol=1e-12)
+
+
+def test_terminal_fixed_law_with_a_measured_disturbance_is_the_run():
+    # The fixed law as an LTI system (scipy.signal.dlsim) on the run's measurements, setpoints
+    # and measured disturbances gives the run's inputs, on a true plant with gain error.
+    design = _design(8, 3)
+    estimator = design_estimator(A, B, C, kind="output_disturbance")
+    scenario = Scenario(
+        steps=120,
+        setpoint_changes=[Event(5, SETPOINT)],
+        measured_disturbances=[Event(30, np.array([2.0]))],
+        output_disturbances=[Event(70, np.array([0.2, 0.1]))],
+    )
+    run = simulate_loop(design, estimator, scenario, plant=TruePlant(A, B * 1.1, C, BD * 0.8), b_disturbance=BD)
+    sys = fixed_law(design, estimator, b_disturbance=BD).system
+    w = np.hstack([run.measured, run.setpoints, run.measured_disturbances])
+    _, v, _ = scipy.signal.dlsim((sys.a, sys.b, sys.c, sys.d, 1.0), w)
+    np.testing.assert_allclose(v[:, :2], run.inputs, rtol=0, atol=1e-10)
+    policy = UnconstrainedPolicy(design.gain.horizon, None, design.terminal_gain)
+    stepped = simulate_loop(
+        design,
+        estimator,
+        scenario,
+        plant=TruePlant(A, B * 1.1, C, BD * 0.8),
+        b_disturbance=BD,
+        policy=lambda **kw: policy(**kw),
+    )
+    np.testing.assert_allclose(stepped.inputs, run.inputs, rtol=0, atol=1e-12)

@@ -141,3 +141,21 @@ def test_uncontrollable_modes_do_not_depend_on_state_or_input_units(exponent):
     s = 10.0**exponent
     found = uncontrollable_modes(a * d[:, None] / d[None, :], b * d[:, None] / s)
     assert [round(complex(z).real, 12) for z in found] == [0.9]
+
+
+@pytest.mark.parametrize("kind", ["input_disturbance", "kalman"])
+@pytest.mark.parametrize("exponent", [-6, -3, 3, 6])
+def test_default_input_disturbance_noise_gives_the_same_estimator_in_any_input_units(kind, exponent):
+    """An input's unit changed by 10**e (``B' = B / s``): the augmented filter in the new units
+    is the old one under the similarity ``d' = s d`` of the disturbance state, so with unit-free
+    default covariances its poles are the same and its gain on the plant states too (exact
+    argument: a change of variables of the Kalman filter, textbook)."""
+    s = np.array([10.0**exponent, 1.0])
+    extra = {"disturbance": "input"} if kind == "kalman" else {}
+    base = design_estimator(A, B, C, kind=kind, **extra)  # type: ignore[arg-type]
+    moved = design_estimator(A, B / s[None, :], C, kind=kind, **extra)  # type: ignore[arg-type]
+    np.testing.assert_allclose(np.sort_complex(moved.poles), np.sort_complex(base.poles), rtol=1e-7, atol=1e-9)
+    n = A.shape[0]
+    np.testing.assert_allclose(moved.gain[:n], base.gain[:n], rtol=1e-6, atol=1e-9)
+    # the disturbance estimate is in the new units: s times the old one
+    np.testing.assert_allclose(moved.gain[n:], s[:, None] * base.gain[n:], rtol=1e-6, atol=1e-9 * s.max())

@@ -457,3 +457,27 @@ def test_marginal_modes_are_marked_on_the_pole_map_and_named_in_words(workbench,
     assert marked["marks"] == len(modes)
     assert marked["x"] == [m["pole"]["real"] for m in modes] and marked["y"] == [m["pole"]["imag"] for m in modes]
     assert "free_input_direction" in page.locator("#marginal").inner_text()
+
+
+@pytest.mark.parametrize("width", [1300, 1600, 1000])
+def test_every_chart_stays_inside_its_grid_cell(browser, server, width):
+    # A chart wider than its cell spills over the next one and cuts its axis (seen at 1300 px).
+    context = browser.new_context(viewport={"width": width, "height": 900})
+    page = context.new_page()
+    try:
+        open_page(page, f"{server.base}/")
+        for name in ("simulate_request_column.json", "design_request_robustness.json"):
+            run_example(page, name)
+            page.wait_for_timeout(300)  # plotly's resize on the next frame
+            spills = page.evaluate(
+                """() => [...document.querySelectorAll('.chart')].filter(c => c.offsetParent).map(c => {
+                    const own = c.getBoundingClientRect(), cell = c.parentElement.getBoundingClientRect();
+                    const svg = c.querySelector('svg.main-svg');
+                    const drawn = svg ? svg.getBoundingClientRect() : own;
+                    return {id: c.id, right: Math.max(own.right, drawn.right) - cell.right,
+                            page: Math.max(own.right, drawn.right) - document.documentElement.clientWidth};
+                }).filter(s => s.right > 1 || s.page > 1)"""
+            )
+            assert spills == [], f"{name} at {width} px: {spills}"
+    finally:
+        context.close()

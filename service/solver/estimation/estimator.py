@@ -6,7 +6,17 @@ disturbance, is estimated from the measured outputs with the augmented model ::
     [x(k+1)]   [A  Bd] [x(k)]   [B]               y(k) = [C  Cd] [x(k); d(k)]
     [d(k+1)] = [0  I ] [d(k)] + [0] u(k)          z(k) = [C  Dz] [x(k); d(k)]
 
-(``y`` measured, ``z`` controlled; in movecast every output is both, so ``Dz = Cd``).  The
+(``y`` measured, ``z`` controlled).  By default every output is both (``Cy = Cz``), so
+``Dz = Cd``.  With measured outputs of their own (``c_measured``, ``py`` rows) the disturbances
+belong to the measured outputs, and a controlled output sees a disturbance only where it *is*
+a combination of measured outputs: ``Dz_i = h_i Cd`` when ``Cz_i = h_i Cy`` exactly, else
+``Dz_i = 0`` (the controlled output then follows the model from the estimated state; offset-free
+tracking of an unmeasured output holds only for mismatch the disturbance model explains, such
+as an input gain error with input disturbances; Pannocchia and Rawlings 2003 state
+offset-freedom for controlled outputs that are functions of the measured ones).  A measured
+feed-through ``y = Cy x + Dy u`` is subtracted before the filter reads the measurement:
+the innovation is ``y(k) - Dy u(k) - Cy x(k|k-1)`` with ``u(k)`` the input applied at sample
+``k`` (the model's definition), so ``Dy`` leaves the filter's gain and poles alone.  The
 disturbance models are
 
 - ``"per_output"`` (the default): one disturbance per output, chosen per output — a step
@@ -95,10 +105,13 @@ __all__ = [
     "EstimatorKind",
     "OutputDisturbance",
     "augmented_model",
+    "controlled_disturbance",
     "default_disturbances",
     "design_estimator",
+    "input_disturbance_noise",
     "integrating_outputs",
     "kalman_filter",
+    "unmeasured_outputs",
 ]
 
 EstimatorKind = Literal["full_state", "per_output", "output_disturbance", "input_disturbance", "kalman"]
@@ -138,9 +151,9 @@ class Estimator:
     b : ndarray, shape (na, m)
         ``[B; 0]``.
     c_measured : ndarray, shape (py, na)
-        ``[C, Cd]``.  For ``full_state`` the identity ``I_n`` (the state is the measurement).
+        ``[Cy, Cd]``.  For ``full_state`` the identity ``I_n`` (the state is the measurement).
     c_controlled : ndarray, shape (pz, na)
-        ``[C, Dz]``: what the controller predicts, disturbance estimate included.
+        ``[Cz, Dz]``: what the controller predicts, disturbance estimate included.
     gain : ndarray, shape (na, py)
         ``L`` of the current-estimator form ``x(k|k) = x(k|k-1) + L (y(k) - Cy x(k|k-1))``.
         For ``full_state`` the identity, so that ``x(k|k) = x(k)``.
@@ -153,10 +166,11 @@ class Estimator:
         ``nd``: ``p`` for output, ``m`` for input disturbances, 0 for none.
     disturbance_input : ndarray, shape (n, nd)
         ``Bd``.
-    disturbance_output : ndarray, shape (p, nd)
+    disturbance_output : ndarray, shape (py, nd)
         ``Cd`` (measured outputs).
-    disturbance_controlled : ndarray, shape (p, nd)
-        ``Dz`` (controlled outputs; equal to ``Cd`` here).
+    disturbance_controlled : ndarray, shape (pz, nd)
+        ``Dz`` (controlled outputs; equal to ``Cd`` when the measured outputs are the controlled
+        ones, see the module notes).
     process_noise : ndarray, shape (na, na) or None
         ``Qw`` used for the filter (``None`` for ``full_state``).
     measurement_noise : ndarray, shape (py, py) or None
@@ -184,8 +198,18 @@ class Estimator:
     measurement_noise: NDArray[np.float64] | None
     covariance: NDArray[np.float64] | None
     innovation_covariance: NDArray[np.float64] | None
-    #: Per output, ``"output"`` or ``"rate"``, for the per-output model; empty otherwise.
+    #: Per measured output, ``"output"`` or ``"rate"``, for the per-output model; empty otherwise.
     disturbances: tuple[str, ...] = ()
+    #: ``Dy`` (py, m), the measured outputs' feed-through, subtracted before the filter reads them
+    #: (``None``: zero; always zero for ``full_state``).
+    measured_feedthrough: NDArray[np.float64] | None = None
+
+    @property
+    def feedthrough(self) -> NDArray[np.float64]:
+        """``Dy`` (py, m): zeros when there is none."""
+        if self.measured_feedthrough is None:
+            return np.zeros((self.c_measured.shape[0], self.b.shape[1]))
+        return self.measured_feedthrough
 
     @property
     def full_state(self) -> bool:
@@ -217,6 +241,11 @@ class Estimator:
     def model_c(self) -> NDArray[np.float64]:
         """The plant's output matrix ``C`` (p, n) (controlled outputs)."""
         return self.c_controlled[:, : self.state_size]
+
+    @property
+    def model_c_measured(self) -> NDArray[np.float64]:
+        """The plant's measured-output matrix ``Cy`` (py, n) (``I_n`` for ``full_state``)."""
+        return self.c_measured[:, : self.state_size]
 
     @property
     def spectral_radius(self) -> float:
@@ -346,6 +375,62 @@ def augmented_model(
     b_aug = np.vstack([b, np.zeros((nd, m))])
     c_aug = np.hstack([c, cd])
     return a_aug, b_aug, c_aug, bd, cd
+
+
+def controlled_disturbance(
+    c_controlled: NDArray[np.float64], c_measured: NDArray[np.float64], cd: NDArray[np.float64]
+) -> NDArray[np.float64]:
+    """``Dz`` (pz, nd): how the measured outputs' disturbances show in the controlled outputs.
+
+    Parameters
+    ----------
+    c_controlled : ndarray, shape (pz, n)
+        ``Cz``.
+    c_measured : ndarray, shape (py, n)
+        ``Cy``.
+    cd : ndarray, shape (py, nd)
+        ``Cd``, the disturbances' entry into the measured outputs.
+
+    Returns
+    -------
+    ndarray, shape (pz, nd)
+        ``Cd`` itself when ``Cz = Cy``; otherwise per controlled output ``h_i Cd`` where
+        ``Cz_i = h_i Cy`` holds (least squares, residual within ``1e-9 |Cz_i|``: the output is a
+        combination of measured ones) and zero where it does not (module notes).
+    """
+    if c_controlled.shape == c_measured.shape and np.array_equal(c_controlled, c_measured):
+        return cd.copy()
+    pz, nd = c_controlled.shape[0], cd.shape[1]
+    dz = np.zeros((pz, nd))
+    if nd == 0 or c_measured.shape[0] == 0:
+        return dz
+    h, combined = _measured_combinations(c_controlled, c_measured)
+    dz[combined] = h[combined] @ cd
+    return dz
+
+
+def _measured_combinations(
+    c_controlled: NDArray[np.float64], c_measured: NDArray[np.float64]
+) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
+    """``H`` (pz, py) by least squares with ``H Cy ~ Cz``, and which rows hold exactly (``1e-9 |Cz_i|``)."""
+    h = np.asarray(np.linalg.lstsq(c_measured.T, c_controlled.T, rcond=None)[0].T, dtype=np.float64)  # (pz, py)
+    residual = np.linalg.norm(h @ c_measured - c_controlled, axis=1)
+    size = np.linalg.norm(c_controlled, axis=1)
+    combined: NDArray[np.bool_] = np.asarray(residual <= 1e-9 * np.maximum(size, np.finfo(float).tiny), dtype=bool)
+    return h, combined
+
+
+def unmeasured_outputs(c_controlled: ArrayLike, c_measured: ArrayLike) -> NDArray[np.bool_]:
+    """Which controlled outputs are no combination of the measured outputs, shape (pz,).
+
+    Such an output is inferred from the model alone (its ``Dz`` row is zero,
+    :func:`controlled_disturbance`): offset-free only for model error that the disturbance
+    model explains through the state.
+    """
+    cz, cm = np.asarray(c_controlled, dtype=float), np.asarray(c_measured, dtype=float)
+    if cm.shape[0] == 0:
+        return np.ones(cz.shape[0], dtype=bool)
+    return ~_measured_combinations(cz, cm)[1]
 
 
 def _rank(matrix: NDArray[np.float64] | NDArray[np.complex128]) -> tuple[int, NDArray[np.float64]]:
@@ -536,6 +621,48 @@ def _covariance(value: ArrayLike | None, size: int, default: float) -> NDArray[n
     return weight_matrix(value, size)
 
 
+def input_disturbance_noise(
+    a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64]
+) -> NDArray[np.float64]:
+    """Default variances of the input disturbances' random-walk steps, free of the inputs' units.
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, n)
+    b : ndarray, shape (n, m)
+    c : ndarray, shape (p, n)
+
+    Returns
+    -------
+    ndarray, shape (m,)
+        ``DEFAULT_DISTURBANCE_NOISE / g_j**2`` with ``g_j`` the root mean square of input
+        ``j``'s unit-step response ``C sum_{i<k} A^i B e_j`` over all outputs and the first
+        ``n`` samples; ``DEFAULT_DISTURBANCE_NOISE`` for an input that reaches no output.
+
+    Notes
+    -----
+    A disturbance step of that variance moves the outputs about as much as an output
+    disturbance of the default variance moves its output.  The step response is a property of
+    the input-output map (the same for every realization of the plant), and ``g_j`` scales
+    as ``1 / k`` when input ``j``'s unit shrinks by ``k`` while the variance, in the input's
+    units, grows by ``k**2``: the filter, and its poles, are the same in any input units.  A
+    fixed default in input units would make an input's disturbance look ``k**2`` times
+    smaller in a unit ``k`` times smaller (common practice: express default covariances in
+    the signals' own sizes).
+    """
+    n, m = b.shape
+    response = np.zeros((c.shape[0], m))
+    step = b.copy()
+    total = np.zeros(m)
+    for _ in range(max(n, 1)):
+        response = response + c @ step
+        total += np.sum(response**2, axis=0)
+        step = a @ step
+    rms_squared = total / (max(n, 1) * max(c.shape[0], 1))
+    reached = rms_squared > 0.0
+    return np.where(reached, DEFAULT_DISTURBANCE_NOISE / np.where(reached, rms_squared, 1.0), DEFAULT_DISTURBANCE_NOISE)
+
+
 def design_estimator(
     a: ArrayLike,
     b: ArrayLike,
@@ -549,6 +676,9 @@ def design_estimator(
     measurement_noise: ArrayLike | None = None,
     output_labels: Sequence[str] | None = None,
     input_labels: Sequence[str] | None = None,
+    c_measured: ArrayLike | None = None,
+    d_measured: ArrayLike | None = None,
+    measured_labels: Sequence[str] | None = None,
 ) -> Estimator:
     """Design the estimator of the given kind for the plant ``(A, B, C)``.
 
@@ -557,7 +687,8 @@ def design_estimator(
     a : array_like, shape (n, n)
     b : array_like, shape (n, m)
     c : array_like, shape (p, n)
-        Outputs, each both measured and controlled (the design's output matrix).
+        Controlled outputs (the design's output matrix); also the measured ones unless
+        ``c_measured`` is given.
     kind : {"full_state", "per_output", "output_disturbance", "input_disturbance", "kalman"}
         Default ``"per_output"``.
     disturbance : {"per_output", "output", "input", "none"}, optional
@@ -570,12 +701,24 @@ def design_estimator(
         ``DEFAULT_STATE_NOISE * I``.
     disturbance_noise : array_like, shape (nd,) or (nd, nd), optional
         Covariance of the disturbances' random-walk steps; default
-        ``DEFAULT_DISTURBANCE_NOISE * I``.
+        ``DEFAULT_DISTURBANCE_NOISE * I``, and for input disturbances
+        :func:`input_disturbance_noise` (free of the inputs' units).
     measurement_noise : array_like, shape (p,) or (p, p), optional
         Measurement-noise covariance ``Rv`` (positive definite); default
         ``DEFAULT_MEASUREMENT_NOISE * I``.
     output_labels, input_labels : sequence of str, optional
         Names for error messages (default ``y1..yp``, ``u1..um``).
+    c_measured : array_like, shape (py, n), optional
+        ``Cy``, the measured outputs the filter reads (default ``C``).  The disturbance models
+        then belong to the measured outputs (``disturbances``, ``measurement_noise`` and the
+        output disturbances have ``py`` entries) and ``Dz`` follows from
+        :func:`controlled_disturbance`.
+    d_measured : array_like, shape (py, m), optional
+        ``Dy``, the measured feed-through (default zero); kept as
+        ``Estimator.measured_feedthrough`` for whoever feeds the filter (module notes).
+    measured_labels : sequence of str, optional
+        Names of the measured outputs for error messages (default ``output_labels`` when
+        ``c_measured`` is absent, else ``y1..ypy``).
 
     Returns
     -------
@@ -600,9 +743,16 @@ def design_estimator(
     """
     a_ = np.asarray(a, dtype=float)
     b_ = np.asarray(b, dtype=float)
-    c_ = np.asarray(c, dtype=float)
-    n, m, p = a_.shape[0], b_.shape[1], c_.shape[0]
-    assert a_.shape == (n, n) and b_.shape == (n, m) and c_.shape == (p, n), (a_.shape, b_.shape, c_.shape)
+    cz = np.asarray(c, dtype=float)
+    n, m, pz = a_.shape[0], b_.shape[1], cz.shape[0]
+    assert a_.shape == (n, n) and b_.shape == (n, m) and cz.shape == (pz, n), (a_.shape, b_.shape, cz.shape)
+    c_ = cz if c_measured is None else np.asarray(c_measured, dtype=float)
+    p = c_.shape[0]
+    assert c_.shape == (p, n), c_.shape
+    dy = None if d_measured is None else np.asarray(d_measured, dtype=float)
+    assert dy is None or dy.shape == (p, m), None if dy is None else dy.shape
+    if dy is not None and not np.any(dy):
+        dy = None
     implied: dict[str, DisturbanceModel] = {
         "full_state": "none",
         "per_output": "per_output",
@@ -624,21 +774,24 @@ def design_estimator(
             a=a_.copy(),
             b=b_.copy(),
             c_measured=np.eye(n),
-            c_controlled=c_.copy(),
+            c_controlled=cz.copy(),
             gain=np.eye(n),
             poles=np.zeros(0, dtype=complex),
             state_size=n,
             disturbance_size=0,
             disturbance_input=empty,
-            disturbance_output=np.zeros((p, 0)),
-            disturbance_controlled=np.zeros((p, 0)),
+            disturbance_output=np.zeros((n, 0)),
+            disturbance_controlled=np.zeros((pz, 0)),
             process_noise=None,
             measurement_noise=None,
             covariance=None,
             innovation_covariance=None,
         )
 
-    outputs = list(output_labels) if output_labels else [f"y{i + 1}" for i in range(p)]
+    if c_measured is None:
+        outputs = list(output_labels) if output_labels else [f"y{i + 1}" for i in range(p)]
+    else:
+        outputs = list(measured_labels) if measured_labels else [f"y{i + 1}" for i in range(p)]
     inputs = list(input_labels) if input_labels else [f"u{j + 1}" for j in range(m)]
     kinds: tuple[OutputDisturbance, ...] = ()
     if model == "per_output":
@@ -655,7 +808,11 @@ def design_estimator(
     _check_detectable(a_, c_, bd, cd, disturbance=model, output_labels=outputs, input_labels=inputs, disturbances=kinds)
     qw = scipy.linalg.block_diag(
         _covariance(process_noise, n, DEFAULT_STATE_NOISE),
-        _covariance(disturbance_noise, nd, DEFAULT_DISTURBANCE_NOISE),
+        (
+            np.diag(input_disturbance_noise(a_, b_, c_))
+            if disturbance_noise is None and model == "input"
+            else _covariance(disturbance_noise, nd, DEFAULT_DISTURBANCE_NOISE)
+        ),
     )
     rv = _covariance(measurement_noise, p, DEFAULT_MEASUREMENT_NOISE)
     gain, cov, innovation = kalman_filter(a_aug, c_aug, qw, rv)
@@ -668,23 +825,25 @@ def design_estimator(
             f"noise.",
             field=_NOISE_FIELD,
         )
+    dz = controlled_disturbance(cz, c_, cd)
     return Estimator(
         kind=kind,
         disturbance=model,
         a=a_aug,
         b=b_aug,
         c_measured=c_aug,
-        c_controlled=c_aug.copy(),
+        c_controlled=np.hstack([cz, dz]),
         gain=gain,
         poles=poles,
         state_size=n,
         disturbance_size=nd,
         disturbance_input=bd,
         disturbance_output=cd,
-        disturbance_controlled=cd.copy(),
+        disturbance_controlled=dz,
         process_noise=qw,
         measurement_noise=rv,
         covariance=cov,
         innovation_covariance=innovation,
         disturbances=kinds,
+        measured_feedthrough=dy,
     )

@@ -23,8 +23,9 @@ u]``, whose gradient adds ``Kt e_t`` to the first move with the terminal error :
 steady-state target, ``Phi = [Phi_a, Phi_u]`` the free prediction to the horizon's end).
 Every term is linear in the estimate, the last input and the setpoint, so the law keeps its
 form with ``K += Kt (Phi_a - X_d S)`` (in ``estimate_feedback_gain``), ``Ku += Kt Phi_u`` (in
-the design's previous-input gain) and ``Kr += Kt X_r``.  Measured disturbances are not
-combined with the terminal weight (the design refuses them together).  With an input weight (input targets,
+the design's previous-input gain) and ``Kr += Kt X_r``; with measured disturbances ``e_t``
+gains ``(X_m - Phi_m) d_m`` (:func:`service.solver.design.terminal.terminal_disturbance_maps`),
+so ``Kd += Kt (Phi_m - X_m)``.  With an input weight (input targets,
 :mod:`service.solver.design.input_target`) ``Ku`` includes ``Kt0``, ``K`` and ``Kr`` the
 target's input maps (``- Kt0 U_d S`` and ``+ Kt0 U_r``), and the input targets ``u_t`` are
 inputs of the law through ``Kt = Kt0 U_t``.  On the law's state ``s = [x(k|k-1); u(k-1)]``
@@ -41,7 +42,17 @@ plant.  With ``u`` applied unchanged it is the linear system ::
     s(k+1) = (Ap + Bu Cu) s + (Bp + Bu Du) w
     [u; du] = [Cu; Cu - [0, I]] s + [Du; Du] w
 
-whose outputs are the inputs and the input moves ``du = u(k) - u(k-1)``.  The estimator's
+whose outputs are the inputs and the input moves ``du = u(k) - u(k-1)``.
+
+Measurements.  ``y`` are the measured outputs the estimator reads (``Cy``, ``py`` of them;
+the controlled outputs unless the model has measured outputs of its own), the setpoints
+``r`` belong to the ``pz`` controlled outputs.  For ``full_state`` the measurements are the
+plant states themselves: ``L = I`` and ``Cy = I`` make ``M = 0``, so ``x(k|k) = y(k)`` and the
+law's estimator states only hold the prediction ``x(k|k-1) = A x(k-1) + B u(k-1) + Bd dm(k-1)``
+(what replaces a bad measurement).  A measured feed-through ``y = Cy x + Dy u(k)`` has no law
+here: the estimator would subtract ``Dy u(k)`` of the input it is computing, so ``u(k)`` would
+depend on a measurement that depends on ``u(k)`` (an algebraic loop a control system, which
+reads its measurements before it writes its outputs, cannot close).  The estimator's
 prediction of the measurements, ``y(k|k-1) = [Cy, 0] s``, replaces a bad measurement: the
 innovation of that output is then zero and the estimate runs on the model for that step.
 
@@ -75,18 +86,18 @@ class FixedLaw:
     input_state : ndarray, shape (m, ns)
         ``Cu``: ``u(k) = Cu s + Du w``; ``ns = na + m``.
     input_direct : ndarray, shape (m, nw)
-        ``Du``; ``nw = 2 p + md + mt`` (measurements, setpoints, measured disturbances, input
-        targets).
+        ``Du``; ``nw = py + pz + md + mt`` (measurements, setpoints of the controlled outputs,
+        measured disturbances, input targets).
     state_update : ndarray, shape (ns, ns)
         ``Ap``.
     signal_update : ndarray, shape (ns, nw)
         ``Bp``.
     applied_update : ndarray, shape (ns, m)
         ``Bu``: how the applied input enters ``s(k+1)``.
-    prediction : ndarray, shape (p, ns)
+    prediction : ndarray, shape (py, ns)
         ``[Cy, 0]``: the estimator's prediction ``y(k|k-1)`` of the measurements.
     measured, setpoints, disturbances, estimates : int
-        ``p``, ``p``, ``md`` inputs; ``na`` estimator states (then ``m`` previous inputs).
+        ``py``, ``pz``, ``md`` inputs; ``na`` estimator states (then ``m`` previous inputs).
     targets : int
         ``mt``: ``m`` input-target inputs with an input weight, else 0.
     """
@@ -132,12 +143,13 @@ def fixed_law(
     Parameters
     ----------
     design : ControllerDesign
-        With the Riccati terminal weight the law holds its terminal term (module notes); not
-        with measured disturbances then.  With an input weight the law also takes the input
+        With the Riccati terminal weight the law holds its terminal term (module notes).
+        With an input weight the law also takes the input
         targets (its last ``m`` inputs).
     estimator : Estimator
-        Of the same model, not ``full_state`` (the law reads measured outputs).  With an
-        input weight the law also takes the input targets ``u_t`` (its last ``m`` inputs).
+        Of the same model, without a measured feed-through (module notes).  ``full_state``
+        gives the law on the measured plant states (``L = I``, ``Cy = I``).  With an input
+        weight the law also takes the input targets ``u_t`` (its last ``m`` inputs).
     b_disturbance : ndarray, shape (n, md), optional
         The model's measured-disturbance matrix ``Bd`` in the design's signals.
 
@@ -147,10 +159,10 @@ def fixed_law(
         Equal, step by step, to :func:`service.solver.evaluation.simulation.simulate_loop`
         with the unconstrained policy and the linear target maps.
     """
-    assert not estimator.full_state, "the fixed law reads measured outputs: it needs an estimator"
-    assert design.terminal is None or b_disturbance is None, "no feed-forward with the terminal weight"
+    assert estimator.measured_feedthrough is None, "a measured feed-through makes the law implicit (module notes)"
     na, m = estimator.b.shape
-    p = estimator.c_measured.shape[0]
+    p = estimator.c_measured.shape[0]  # measured outputs (the plant states for full_state)
+    pz = estimator.c_controlled.shape[0]  # controlled outputs: the setpoints
     pred = design.prediction
     bd = np.zeros((estimator.state_size, 0)) if b_disturbance is None else np.asarray(b_disturbance, dtype=float)
     md = bd.shape[1]
@@ -165,7 +177,7 @@ def fixed_law(
     if kt0 is not None:  # u_s = U_r r + U_d d + U_t u_t; U_d is in K already
         setpoint_gain = setpoint_gain + kt0 @ target.setpoint_map[n:]
         target_gain = kt0 @ target.input_target_map[n:]
-    terminal = terminal_term(design, estimator, target)
+    terminal = terminal_term(design, estimator, target, b_disturbance=bd if md else None)
     if terminal is not None:  # Kt X_r: the setpoint's way through the terminal target
         setpoint_gain = setpoint_gain + terminal.gain @ terminal.setpoint_map
     mt = target_gain.shape[1]
@@ -178,18 +190,20 @@ def fixed_law(
             first_penalized=pred.first_penalized,
         )
         feedforward = kh @ fd
+        if terminal is not None:  # Kt (Phi_m - X_m): the disturbance on both sides of the terminal deviation
+            feedforward = feedforward + terminal.feedforward
     else:
         feedforward = np.zeros((m, 0))
     lg, cy = estimator.gain, estimator.c_measured
     update = np.eye(na) - lg @ cy  # M
     cu = np.hstack([-feedback @ update, np.eye(m) - design.gain.previous_input])
     du = np.hstack([-feedback @ lg, setpoint_gain, -feedforward, target_gain])
-    ns, nw = na + m, 2 * p + md + mt
+    ns, nw = na + m, p + pz + md + mt
     ap = np.zeros((ns, ns))
     ap[:na, :na] = estimator.a @ update
     bp = np.zeros((ns, nw))
     bp[:na, :p] = estimator.a @ lg
-    bp[:na, 2 * p : 2 * p + md] = bda
+    bp[:na, p + pz : p + pz + md] = bda
     bu = np.vstack([estimator.b, np.eye(m)])
     prediction = np.hstack([cy, np.zeros((p, m))])
     return FixedLaw(
@@ -200,7 +214,7 @@ def fixed_law(
         applied_update=bu,
         prediction=prediction,
         measured=p,
-        setpoints=p,
+        setpoints=pz,
         disturbances=md,
         estimates=na,
         targets=mt,

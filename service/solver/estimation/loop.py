@@ -15,12 +15,14 @@ design's (the disturbance states do not respond to ``u``).
 
 The whole loop, with the plant equal to the model, on ``[x(k); x(k|k-1); u(k-1)]`` ::
 
-    x(k|k)   = L C x(k) + (I - L Cy) x(k|k-1)              =: Mx x + Mp x(k|k-1)
+    x(k|k)   = L Cy x(k) + (I - L Cy_a) x(k|k-1)           =: Mx x + Mp x(k|k-1)
     u(k)     = -K x(k|k) + (I - Ku) u(k-1),    K = Kh (Fx_aug - (1 (x) I_p) Z_d S_d) [- Kt0 U_d S_d]
     x(k+1)   = A x(k) + B u(k)
     x(k+1|k) = A_aug x(k|k) + B_aug u(k)
 
-(``S_d`` picks the disturbance estimate; setpoint at zero; the bracket with input targets,
+(``Cy`` the measured outputs the estimator reads, ``Cy_a = [Cy, Cd]``; a measured feed-through
+``Dy u(k)`` is subtracted before the filter reads them, so it leaves the loop alone; ``S_d``
+picks the disturbance estimate; setpoint at zero; the bracket with input targets,
 ``Ku`` then including ``Kt0``, :mod:`service.solver.design.input_target`).  With the Riccati
 terminal weight ``K`` also holds ``Kt (Phi_a - X_d S_d)`` and ``Ku`` the design's ``Kt Phi_u``
 (:class:`TerminalTerm`).  In the coordinates ``[x; e; u]``
@@ -43,7 +45,7 @@ from service.solver.design.closed_loop import closed_loop_matrix
 from service.solver.design.controller import ControllerDesign
 from service.solver.design.marginal import MARGINAL_TOLERANCE
 from service.solver.design.prediction import prediction_matrices
-from service.solver.design.terminal import terminal_prediction
+from service.solver.design.terminal import terminal_disturbance_maps, terminal_prediction
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.target import TargetProblem, target_problem
 from service.solver.numerics import eigenvalues_by_modulus
@@ -153,6 +155,11 @@ class TerminalTerm:
         ``X_r``.
     disturbance_map : ndarray, shape (n+m, nd)
         ``X_d``.
+    free_measured : ndarray, shape (n+m, md)
+        ``Phi_m``: how held measured disturbances move ``xi_free(k+Hp)`` (no columns without).
+    measured_map : ndarray, shape (n+m, md)
+        ``X_m``: how they move ``xi_s`` (:func:`service.solver.design.terminal.terminal_disturbance_maps`).
+        With measured disturbances ``e_t`` gains ``(X_m - Phi_m) d_m``.
     """
 
     gain: NDArray[np.float64]
@@ -160,6 +167,22 @@ class TerminalTerm:
     free_input: NDArray[np.float64]
     setpoint_map: NDArray[np.float64]
     disturbance_map: NDArray[np.float64]
+    free_measured: NDArray[np.float64] | None = None
+    measured_map: NDArray[np.float64] | None = None
+
+    @property
+    def feedforward_shift(self) -> NDArray[np.float64]:
+        """``X_m - Phi_m``, shape (n+m, md): what held measured disturbances add to ``e_t``."""
+        if self.free_measured is None or self.measured_map is None:
+            return np.zeros((self.free_state.shape[0], 0))
+        return self.measured_map - self.free_measured
+
+    @property
+    def feedforward(self) -> NDArray[np.float64]:
+        """``Kt (Phi_m - X_m)``, shape (m, md): the terminal part of the feed-forward gain ``Kd``."""
+        if self.free_measured is None or self.measured_map is None:
+            return np.zeros((self.gain.shape[0], 0))
+        return self.gain @ (self.free_measured - self.measured_map)
 
     def free_prediction(
         self, estimate: NDArray[np.float64], previous_input: NDArray[np.float64]
@@ -168,7 +191,13 @@ class TerminalTerm:
         return self.free_state @ estimate + self.free_input @ previous_input
 
 
-def terminal_term(design: ControllerDesign, estimator: Estimator, target: TargetProblem) -> TerminalTerm | None:
+def terminal_term(
+    design: ControllerDesign,
+    estimator: Estimator,
+    target: TargetProblem,
+    *,
+    b_disturbance: NDArray[np.float64] | None = None,
+) -> TerminalTerm | None:
     """Return the terminal term of a design with the Riccati terminal weight (else ``None``).
 
     Parameters
@@ -178,6 +207,9 @@ def terminal_term(design: ControllerDesign, estimator: Estimator, target: Target
         Of the same model.
     target : TargetProblem
         :func:`estimator_target` of both.
+    b_disturbance : ndarray, shape (n, md), optional
+        ``Bd`` of the measured disturbances (design signals): fills ``free_measured`` and
+        ``measured_map``.
 
     Returns
     -------
@@ -190,12 +222,25 @@ def terminal_term(design: ControllerDesign, estimator: Estimator, target: Target
     phi, _ = terminal_prediction(
         estimator.a, estimator.b, prediction=pred.prediction, control=pred.control, states=n
     )  # (n+m, na+m)
+    free_measured = measured_map = None
+    if b_disturbance is not None and b_disturbance.shape[1]:
+        free_measured, measured_map = terminal_disturbance_maps(
+            estimator.model_a,
+            estimator.model_b,
+            estimator.model_c,
+            b_disturbance,
+            output_weight=design.output_weight,
+            prediction=pred.prediction,
+            input_weight=design.input_weight,
+        )
     return TerminalTerm(
         gain=design.terminal_gain,
         free_state=phi[:, :na],
         free_input=phi[:, na:],
         setpoint_map=target.setpoint_map,
         disturbance_map=target.disturbance_map,
+        free_measured=free_measured,
+        measured_map=measured_map,
     )
 
 
@@ -416,9 +461,10 @@ def true_loop(loop: ControlLoop, a: NDArray[np.float64], b: NDArray[np.float64],
     loop : ControlLoop
     a : ndarray, shape (nt, nt)
     b : ndarray, shape (nt, m)
-    c : ndarray, shape (p, nt)
-        The true plant in the signals of the loop (scaled like the model); ``nt = n`` for
-        ``full_state``.
+    c : ndarray, shape (py, nt)
+        The true plant's measured outputs, what the estimator reads (its controlled outputs
+        when the model has no measured outputs of its own), in the signals of the loop (scaled
+        like the model); ``nt = n`` for ``full_state``.
 
     Returns
     -------

@@ -2,9 +2,9 @@
 
 One step ``k = 0 .. steps-1`` of :func:`simulate_loop` (the plant may differ from the model)::
 
-    y(k)     = C_true x(k) + d_out(k)                      true outputs (controlled)
-    y_m(k)   = y(k) + v(k)                                 measured, v ~ N(0, diag(std^2))
-    x(k|k)   = x(k|k-1) + L (y_m(k) - Cy x(k|k-1))         estimate (full_state: x(k|k) = x(k))
+    z(k)     = C_true x(k) + d_out(k)                      true outputs (controlled)
+    y_m(k)   = Cy_true x(k) + Dy u(k) + H d_out(k) + v(k)  measured, v ~ N(0, diag(std^2))
+    x(k|k)   = x(k|k-1) + L (y_m(k) - Dy u(k) - Cy x(k|k-1))   estimate (full_state: x(k|k) = x(k))
     z_s(k)   = Z_r r(k) + Z_d d(k|k)                       target outputs (target.py)
     free     = Fx_aug x(k|k) + Fu u(k-1) [+ Fd d_m(k)]     free prediction (loop.py)
     E        = (1 (x) I_p) z_s(k) - free
@@ -13,6 +13,18 @@ One step ``k = 0 .. steps-1`` of :func:`simulate_loop` (the plant may differ fro
     u(k)     = u(k-1) + du(k)
     x(k+1)   = A_true x(k) + B_true (u(k) + d_in(k)) [+ Bd_true d_m(k)]
     x(k+1|k) = A_aug x(k|k) + B_aug u(k) [+ [Bd; 0] d_m(k)]
+
+Measured outputs.  By default they are the controlled outputs (``Cy_true = C_true``, ``Dy = 0``,
+``H = I``).  With measured outputs of their own (``TruePlant.c_measured``, ``d_measured``; the
+estimator designed on the model's) an output disturbance is a step on a controlled output's
+signal: it shows in a measured output only when that is the same signal (the same row of
+``C_true``, no feed-through; ``H`` of :func:`measured_output_map`), and the noise is on the
+measured outputs.  The feed-through ``Dy`` follows the model's definition ``y_m(k) = Cy x(k) +
+Dy u(k)``: the measurement at sample ``k`` sees the input applied at ``k``, and the estimator
+subtracts ``Dy u(k)`` of that same input.  The true plant's ``Dy`` must be the model's, so what
+the filter reads, ``Cy_true x(k) + H d_out(k) + v(k)``, does not depend on ``u(k)``, and ``u(k)``
+follows from it explicitly (a different ``Dy`` would make ``u(k)`` depend on itself through the
+measurement: an algebraic loop).
 
 The bracketed terms are there with measured disturbances ``d_m`` (``b_disturbance``): the
 model's ``Bd`` enters the estimator's prediction, and its free response ``Fd`` (``Cz sum_{l<i}
@@ -37,7 +49,11 @@ error ::
     e_t(k) = xi_s(k) - (Phi_a x(k|k) + Phi_u u(k-1))        (n+m,)
 
 (:class:`service.solver.estimation.loop.TerminalTerm`), and the policy receives
-``terminal_error=e_t(k)``; the unconstrained move is ``du = Kh E + Kt e_t``.
+``terminal_error=e_t(k)``; the unconstrained move is ``du = Kh E + Kt e_t``.  With measured
+disturbances both sides move with the held ``d_m(k)``: ``e_t`` gains ``(X_m - Phi_m) d_m(k)``
+(the steady state under ``d_m`` and its free response to the horizon's end,
+:func:`service.solver.design.terminal.terminal_disturbance_maps`); under a target rule the
+rule's steady state is shifted by ``X_m d_m(k)`` likewise.
 
 Events hold from their step on: a setpoint change sets ``r``, an output (input) disturbance
 event sets the level of ``d_out`` (``d_in``) — each event replaces the previous level, it does
@@ -69,7 +85,7 @@ from numpy.typing import ArrayLike, NDArray
 from service.solver.design.controller import ControllerDesign
 from service.solver.design.feedforward import disturbance_free_response
 from service.solver.estimation.estimator import Estimator
-from service.solver.estimation.loop import ControlLoop, TerminalTerm, control_loop
+from service.solver.estimation.loop import ControlLoop, TerminalTerm, control_loop, terminal_term
 
 __all__ = [
     "DIVERGENCE_LIMIT",
@@ -81,6 +97,7 @@ __all__ = [
     "TargetRule",
     "TruePlant",
     "UnconstrainedPolicy",
+    "measured_output_map",
     "simulate_loop",
 ]
 
@@ -250,12 +267,18 @@ class TruePlant:
     b_disturbance : ndarray, shape (nt, md), optional
         How the measured disturbances enter the true plant; required when the loop has
         measured disturbances (``simulate_loop(..., b_disturbance=...)``).
+    c_measured : ndarray, shape (py, nt), optional
+        The true plant's measured outputs (default ``c``); as many as the estimator reads.
+    d_measured : ndarray, shape (py, m), optional
+        Their feed-through (default zero); it must equal the estimator's (module notes).
     """
 
     a: NDArray[np.float64]
     b: NDArray[np.float64]
     c: NDArray[np.float64]
     b_disturbance: NDArray[np.float64] | None = None
+    c_measured: NDArray[np.float64] | None = None
+    d_measured: NDArray[np.float64] | None = None
 
 
 @dataclass(frozen=True)
@@ -271,8 +294,8 @@ class Scenario:
     measured_disturbances : sequence of Event
         Levels of the measured disturbances ``d_m`` (start at zero); only with
         ``simulate_loop(..., b_disturbance=...)``.
-    noise_std : ndarray, shape (p,), optional
-        Standard deviation of the measurement noise per output (default: none).
+    noise_std : ndarray, shape (py,), optional
+        Standard deviation of the measurement noise per measured output (default: none).
     seed : int
         Seed of ``numpy.random.default_rng`` (default 0).
     initial_state : ndarray, shape (n,), optional
@@ -314,8 +337,9 @@ class Simulation:
         ``k * sample_time``.
     outputs : ndarray, shape (steps, p)
         True controlled outputs ``y(k) = C_true x(k) + d_out(k)`` (noise-free).
-    measured : ndarray, shape (steps, p)
-        ``y(k) + v(k)``, what the estimator read.
+    measured : ndarray, shape (steps, py)
+        ``y_m(k)``, the measured outputs with noise (their feed-through included); the estimator
+        read ``y_m(k) - Dy u(k)``.
     inputs : ndarray, shape (steps, m)
         ``u(k)``, applied from step ``k`` to ``k+1``.
     moves : ndarray, shape (steps, m)
@@ -362,6 +386,41 @@ class Simulation:
     initial_input: NDArray[np.float64]
     initial_setpoint: NDArray[np.float64]
     measured_disturbances: NDArray[np.float64] = field(default_factory=lambda: np.zeros((0, 0)))
+
+
+def measured_output_map(
+    c: NDArray[np.float64], c_measured: NDArray[np.float64], d_measured: NDArray[np.float64] | None = None
+) -> NDArray[np.float64]:
+    """``H`` (py, p): 1 where measured output ``i`` is controlled output ``j``'s own signal.
+
+    Parameters
+    ----------
+    c : ndarray, shape (p, n)
+        Controlled outputs.
+    c_measured : ndarray, shape (py, n)
+    d_measured : ndarray, shape (py, m), optional
+
+    Returns
+    -------
+    ndarray, shape (py, p)
+        ``H[i, j] = 1`` when row ``i`` of ``c_measured`` equals row ``j`` of ``c`` (within
+        ``1e-12`` of its size) and measured output ``i`` has no feed-through; an output
+        disturbance ``d_out`` then adds ``H d_out`` to the measurements.  The identity when the
+        measured outputs are the controlled ones.
+    """
+    py, p = c_measured.shape[0], c.shape[0]
+    if c_measured.shape == c.shape and np.array_equal(c_measured, c) and (d_measured is None or not np.any(d_measured)):
+        return np.eye(p)
+    h = np.zeros((py, p))
+    for i in range(py):
+        if d_measured is not None and np.any(d_measured[i]):
+            continue
+        for j in range(p):
+            size = max(float(np.abs(c[j]).max(initial=0.0)), float(np.abs(c_measured[i]).max(initial=0.0)))
+            if size > 0 and float(np.abs(c_measured[i] - c[j]).max()) <= 1e-12 * size:
+                h[i, j] = 1.0
+                break
+    return h
 
 
 def _held(events: Sequence[Event], steps: int, initial: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -445,6 +504,8 @@ def _fixed_law(
         assert setpoints is not None
         kt = terminal.gain
         reference += setpoints @ (kt @ terminal.setpoint_map).T
+        if fd is not None:  # - Kt (Phi_m - X_m) d_m(k)
+            reference -= d_meas @ terminal.feedforward.T
         state = state + kt @ terminal.free_state
         if terminal.disturbance_map.shape[1]:
             state[:, dsl] -= kt @ terminal.disturbance_map
@@ -482,7 +543,8 @@ def _linear_run(
     With the fixed law every equation of a step (module notes) is linear in ``s(k)`` and the
     step's exogenous signals (setpoint, measurement offset and noise, input and measured
     disturbances): ``x(k|k) = Ex s(k) + L o(k)`` with ``Ex = [L C_t, I - L Cy, 0]`` (``[I, 0,
-    0]`` for ``full_state``), ``u(k) = U s(k) + c(k)``, ``x(k+1) = A_t x + B_t (u(k) + d_u(k))
+    0]`` for ``full_state``; ``C_t`` the true measured outputs, whose feed-through the filter has
+    subtracted), ``u(k) = U s(k) + c(k)``, ``x(k+1) = A_t x + B_t (u(k) + d_u(k))
     + B_dt d_m(k)``, ``x(k+1|k) = A x(k|k) + B u(k) + B_d d_m(k)``.  So each step is one
     matrix-vector product; everything else is formed for all steps at once.  The numbers equal
     the step-by-step loop's to rounding (the products are grouped differently).
@@ -491,7 +553,7 @@ def _linear_run(
     ``|x(k+1)|^2``, ``|x(k+1|k)|^2`` and ``|u(k)|^2``); the run stops at the first step that
     breaks it.
     """
-    at, bt, ct, bdt = true
+    at, bt, cmt, bdt = true  # cmt: the true plant's measured outputs
     aa, ba, bda, gain, cy = model
     x0, xp0, u0 = start
     nt, na, m = at.shape[0], aa.shape[0], ba.shape[1]
@@ -502,7 +564,7 @@ def _linear_run(
         ex[:, :nt] = np.eye(na, nt)
         el = np.zeros((na, offset.shape[1]))
     else:
-        ex[:, :nt] = gain @ ct
+        ex[:, :nt] = gain @ cmt
         ex[:, nt : nt + na] = np.eye(na) - gain @ cy
         el = gain
     # u(k) = ux @ s + c(k), c(k) = reference(k) - S L o(k)
@@ -596,10 +658,27 @@ def simulate_loop(
     m, p = est.b.shape[1], est.c_controlled.shape[0]
     bd = np.zeros((n, 0)) if b_disturbance is None else np.asarray(b_disturbance, dtype=float)
     md = bd.shape[1]
-    true = plant or TruePlant(est.model_a, est.model_b, est.model_c, bd)
+    if plant is None:
+        own = not est.full_state
+        plant = TruePlant(
+            est.model_a,
+            est.model_b,
+            est.model_c,
+            bd,
+            c_measured=est.model_c_measured if own else None,
+            d_measured=est.measured_feedthrough if own else None,
+        )
+    true = plant
     at, bt, ct = (np.asarray(v, dtype=float) for v in (true.a, true.b, true.c))
     nt = at.shape[0]
     assert at.shape == (nt, nt) and bt.shape == (nt, m) and ct.shape == (p, nt), (at.shape, bt.shape, ct.shape)
+    cmt = ct if true.c_measured is None else np.asarray(true.c_measured, dtype=float)
+    py = cmt.shape[0]
+    dmt = np.zeros((py, m)) if true.d_measured is None else np.asarray(true.d_measured, dtype=float)
+    assert cmt.shape == (py, nt) and dmt.shape == (py, m), (cmt.shape, dmt.shape)
+    # the filter reads y_m - Dy u(k): explicit only when the true feed-through is the model's (module notes)
+    assert est.full_state or (py == est.c_measured.shape[0] and np.array_equal(dmt, est.feedthrough)), (py, dmt)
+    seen = measured_output_map(ct, cmt, dmt)  # H: the output disturbances the measurements see
     assert nt == n or (scenario.initial_state is None and not est.full_state), (nt, n)
     bdt = np.zeros((nt, 0)) if true.b_disturbance is None else np.asarray(true.b_disturbance, dtype=float)
     assert bd.shape == (n, md) and bdt.shape == (nt, md), (bd.shape, bdt.shape)
@@ -607,6 +686,8 @@ def simulate_loop(
     assert steps >= 1, steps
     pulled = loop.design.input_target_gain is not None
     term = loop.terminal
+    if term is not None and md:
+        term = terminal_term(loop.design, est, loop.target, b_disturbance=bd)
     if policy is None:
         policy = UnconstrainedPolicy(
             loop.horizon_gain, loop.design.input_target_gain, None if term is None else term.gain
@@ -632,10 +713,10 @@ def simulate_loop(
         )
         bda = np.vstack([bd, np.zeros((nd, md))])
     rng = np.random.default_rng(scenario.seed)
-    noise = np.zeros((steps, p))
+    noise = np.zeros((steps, py))
     if scenario.noise_std is not None:
-        noise = rng.standard_normal((steps, p)) * _vector(scenario.noise_std, p)
-    offset = d_out + noise  # what adds to C_true x in the measurement
+        noise = rng.standard_normal((steps, py)) * _vector(scenario.noise_std, py)
+    offset = d_out @ seen.T + noise  # what adds to Cy_true x in what the filter reads
 
     target = loop.target
     targets_r = setpoints @ target.output_setpoint_map.T  # Z_r r(k), all steps at once
@@ -651,7 +732,7 @@ def simulate_loop(
     full = est.full_state
 
     outputs = np.full((steps, p), np.nan)
-    measured = np.full((steps, p), np.nan)
+    measured = np.full((steps, py), np.nan)
     inputs = np.full((steps, m), np.nan)
     moves = np.full((steps, m), np.nan)
     targets = np.full((steps, p), np.nan)
@@ -682,7 +763,7 @@ def simulate_loop(
         )
         run = _linear_run(
             law,
-            true=(at, bt, ct, bdt),
+            true=(at, bt, cmt, bdt),
             model=(aa, ba, bda if md else np.zeros((na, 0)), gain, cy),
             full=full,
             start=(x, xp, u),
@@ -693,7 +774,7 @@ def simulate_loop(
         rows = run.rows
         diverged_at = rows if rows < steps else None
         states[:rows], estimates[:rows], inputs[:rows], moves[:rows] = run.states, run.estimates, run.inputs, run.moves
-        measured[:rows] = run.states @ ct.T + offset[:rows]
+        measured[:rows] = run.states @ cmt.T + run.inputs @ dmt.T + offset[:rows]
         outputs[:rows] = run.states @ ct.T + d_out[:rows]
         targets[:rows] = targets_r[:rows]
         target_inputs[:rows] = target_inputs_r[:rows]
@@ -705,7 +786,7 @@ def simulate_loop(
         with np.errstate(over="ignore", invalid="ignore"):
             for k in range(steps):
                 y = ct @ x
-                ym = y + offset[k]
+                ym = cmt @ x + offset[k]  # y_m(k) - Dy u(k): what the filter reads
                 xf = x if full else xp + gain @ (ym - cy @ xp)
                 xs = None
                 if target_rule is not None:
@@ -743,13 +824,16 @@ def simulate_loop(
                     asked["target_input"] = us
                 if term is not None:
                     assert xs is not None
-                    asked["terminal_error"] = xs - term.free_prediction(xf, u)
+                    terminal_error = xs - term.free_prediction(xf, u)
+                    if md:
+                        terminal_error = terminal_error + term.feedforward_shift @ d_meas[k]
+                    asked["terminal_error"] = terminal_error
                 result = policy(error=error, free_prediction=free, previous_input=u, step=k, **asked)
                 du = np.asarray(result.move, dtype=float)
                 assert du.shape == (m,), du.shape
                 u = u + du
                 outputs[k] = y + d_out[k]
-                measured[k] = ym
+                measured[k] = ym + dmt @ u
                 inputs[k] = u
                 moves[k] = du
                 targets[k] = zs

@@ -39,6 +39,7 @@ import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.closed_loop import Diagnostic
+from service.solver.memo import plant_cache
 from service.solver.numerics import balance_states, eigenvalues_by_modulus, equilibrate
 
 __all__ = [
@@ -358,6 +359,7 @@ def open_loop_poles(a: ArrayLike) -> NDArray[np.complex128]:
     return eigenvalues_by_modulus(np.asarray(a, dtype=float))
 
 
+@plant_cache
 def plant_properties(
     a: ArrayLike,
     b: ArrayLike,

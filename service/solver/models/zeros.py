@@ -45,6 +45,7 @@ import numpy as np
 import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
+from service.solver.memo import plant_cache
 from service.solver.numerics import RANK_TOLERANCE, by_modulus, observable_basis
 
 __all__ = ["MinimalRealization", "PlantZeros", "minimal_realization", "plant_zeros", "system_zeros"]
@@ -256,6 +257,7 @@ def _reduced_zeros(
     return zeros[np.abs(zeros) < _INFINITE]
 
 
+@plant_cache
 def plant_zeros(a: ArrayLike, b: ArrayLike, c: ArrayLike) -> PlantZeros:
     """Return the transmission zeros of a square plant and the decoupling zeros of its realization.
 
