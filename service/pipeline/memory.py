@@ -78,7 +78,7 @@ def _design(request: DesignRequest) -> tuple[int, int]:
     n, m, p = model_sizes(request.model)
     h = request.horizons
     penalized = max(h.prediction - h.first_penalized + 1, 1)
-    nd = _disturbance_states(request, m, p)
+    nd = _disturbance_states(request, m, max(p, _measured_outputs(request, p)))
     md = _measured_disturbances(request)
     # Kh, Kx, Ku, Kr, Kd, labels, poles of the loop with its estimator, the plant's diagnostics
     numbers = m * (penalized * p + n + m + p + md) + 4 * (n + nd + m) + 2 * (n + m + p) ** 2
@@ -94,12 +94,20 @@ def _design(request: DesignRequest) -> tuple[int, int]:
     return peak, answer
 
 
+def _measured_outputs(request: DesignRequest, outputs: int) -> int:
+    model = request.model
+    if isinstance(model, StateSpaceModel) and model.c_measured:
+        return len(model.c_measured)
+    return outputs
+
+
 def _run(request: DesignRequest, scenario: ScenarioRequest, design_peak: int) -> int:
     n, m, p = model_sizes(request.model)
+    py = _measured_outputs(request, p)
     nt = model_sizes(scenario.true_plant)[0] if scenario.true_plant is not None else n
-    nd = _disturbance_states(request, m, p)
+    nd = _disturbance_states(request, m, max(p, py))
     md = _measured_disturbances(request)
-    per_step = 4 * p + 3 * m + n + nd + md + nt + 2  # the series kept, the noise, the time
+    per_step = 3 * p + 2 * py + 3 * m + n + nd + md + nt + 2  # the series kept, the noise, the time
     qp_entries = report = 0
     if request.limits is not None or request.zones is not None:
         h = request.horizons
