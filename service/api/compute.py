@@ -57,7 +57,8 @@ from service.errors import (
     HeavyLaneFull,
     TimeLimitExceeded,
 )
-from service.pipeline.caps import request_work
+from service.pipeline.caps import Caps, request_work
+from service.pipeline.memory import HEAVY_MEMORY_BYTES, check_request_memory
 
 __all__ = [
     "HEAVY_NICENESS",
@@ -356,10 +357,16 @@ class Lanes:
     light: SolverPool
     heavy: SolverPool
     heavy_work: float
+    heavy_memory: float = HEAVY_MEMORY_BYTES
 
-    def pick(self, work: float) -> tuple[SolverPool, str]:
-        """The pool for a request of ``work`` operations, and the lane's name."""
-        return (self.heavy, "heavy") if work > self.heavy_work else (self.light, "light")
+    def pick(self, work: float, memory: float = 0.0) -> tuple[SolverPool, str]:
+        """The pool for a request of ``work`` operations and ``memory`` bytes at its peak, and the lane's name.
+
+        Heavy when either passes its threshold: a request that holds much runs beside the other
+        large ones, so the light lane's processes stay small (``service.pipeline.memory``).
+        """
+        heavy = work > self.heavy_work or memory > self.heavy_memory
+        return (self.heavy, "heavy") if heavy else (self.light, "light")
 
     def start(self) -> None:
         """Start both pools' processes now (idempotent)."""
@@ -411,12 +418,21 @@ class Budget:
     def run(self, call: Callable[..., T], *args: Any, operation: str, work: float | None = None) -> T:
         """Run ``call(*args)`` in a solver process of its lane within the budget; record its time.
 
-        ``work`` (operations) chooses the lane; by default it is estimated from the first
-        argument when that is a request model (:func:`service.pipeline.caps.request_work`).
+        ``work`` (operations) and the request's peak memory choose the lane; by default the work
+        is estimated from the first argument when that is a request model
+        (:func:`service.pipeline.caps.request_work`).  With the caps among the arguments, a request
+        whose memory estimate (:func:`service.pipeline.memory.check_request_memory`) exceeds
+        ``max_request_memory_bytes`` is refused with a 422 naming its fields before it runs.
         """
+        request = args[0] if args and isinstance(args[0], BaseModel) else None
         if work is None:
-            work = request_work(args[0]) if args and isinstance(args[0], BaseModel) else 0.0
-        pool, lane = self.lanes.pick(work)
+            work = request_work(request) if request is not None else 0.0
+        memory = 0.0
+        caps = next((a for a in args if isinstance(a, Caps)), None)
+        if request is not None and caps is not None:
+            estimate = check_request_memory(request, caps)  # a 422 before any process is taken
+            memory = estimate.bytes if estimate is not None else 0.0
+        pool, lane = self.lanes.pick(work, memory)
         value, spent = pool.run(call, args, deadline=self.deadline, seconds=self.seconds, cancel=self.cancel)
         SOLVER_SECONDS.labels(operation=operation).observe(spent)
         LANE_REQUESTS.labels(lane=lane).inc()

@@ -47,6 +47,12 @@ class Settings(BaseSettings):
         ge=1024 * 1024,
         description="Most estimated memory of one design in the solver, in bytes (fits the 1 GiB pod of deploy/).",
     )
+    max_request_memory_bytes: int = Field(
+        default=DEFAULT_CAPS.max_request_memory_bytes,
+        ge=1024 * 1024,
+        description="Most estimated peak memory of one request in the compute process, its answer included, in "
+        "bytes (runs, sweeps, batches, comparisons, identifications; fits the 1 GiB pod of deploy/).",
+    )
     max_response_entries: int = Field(
         default=DEFAULT_CAPS.max_response_entries, ge=1, description="Most entries of the horizon gain in a response."
     )

@@ -18,7 +18,10 @@ before any computation:
   compute lane (``service.api.compute``): above ``MOVECAST_HEAVY_WORK`` operations it runs in
   the heavy lane, so that small requests never wait behind large ones (the leading terms of
   the textbook operation counts, Golub and Van Loan, *Matrix Computations*, 4th ed., table
-  1.1.2 and sections 4.2, 7.5, 8.3; a scheduling figure, not a bound).
+  1.1.2 and sections 4.2, 7.5, 8.3; a scheduling figure, not a bound);
+- memory: ``service.pipeline.memory.request_memory``, the peak bytes of any whole request
+  (capped by ``max_request_memory_bytes``), also sends a request that holds much to the heavy
+  lane, whatever its work.
 """
 
 from __future__ import annotations
@@ -30,7 +33,9 @@ from typing import TYPE_CHECKING
 
 from pydantic import BaseModel
 
+from service.schemas.compare import CompareRequest
 from service.schemas.design import DesignRequest
+from service.schemas.identify import IdentifyRequest
 from service.schemas.model import StateSpaceModel, TransferMatrixModel
 from service.schemas.simulate import SimulateRequest
 from service.schemas.step_response import StepResponseModel
@@ -43,6 +48,7 @@ if TYPE_CHECKING:
 __all__ = [
     "DEFAULT_CAPS",
     "HEAVY_WORK",
+    "IDENTIFY_WORK_PER_PARAMETER",
     "QP_STEP_OVERHEAD",
     "QP_WORK_FACTOR",
     "REFINEMENT_EVALUATIONS",
@@ -89,6 +95,10 @@ class Caps:
     #: the 1 GiB memory limit of ``deploy/``, for the serving process, the fork server and the
     #: compute process's own interpreter and libraries (about 475 MB together, measured).
     max_design_memory_bytes: int = 384 * 1024 * 1024
+    #: Peak bytes of a whole request in the compute process, its answer included
+    #: (``service.pipeline.memory.request_memory``: runs, sweeps, batches, comparisons,
+    #: identifications); the same room inside the pod as the design cap.
+    max_request_memory_bytes: int = 384 * 1024 * 1024
     #: Entries of the horizon gain ``Kh`` returned in a response, and of any other series
     #: a response returns (:func:`horizon_gain_entries`, :func:`run_entries`).
     max_response_entries: int = 2_000_000
@@ -425,8 +435,31 @@ def _design_request_work(request: DesignRequest) -> int:
     return work
 
 
+#: Simulated samples per fitted parameter of an identification (over its starts, iterations and
+#: Jacobians), as ``service.pipeline.identify.WORK_PER_PARAMETER`` counts them; a test keeps the two equal.
+IDENTIFY_WORK_PER_PARAMETER = 2_000
+
+
+def _run_work(request: DesignRequest, steps: int) -> int:
+    n, m, p = model_sizes(request.model)
+    rows = request.horizons.prediction * p
+    return steps * (2 * rows * (n + m) + 2 * m * rows + 4 * n * (n + m))
+
+
+def _identify_request_work(request: IdentifyRequest) -> int:
+    samples = max((len(column) for column in request.data.values()), default=0)
+    columns = len(request.inputs) + len(request.disturbances)
+    outputs = len(request.outputs)
+    if request.structure == "subspace":
+        rows = 2 * (request.block_rows or 20) * (columns + outputs)
+        return 4 * samples * rows * rows  # QR of the block Hankel matrix and its projections
+    parameters = outputs * (4 * columns + 2)  # at most four per pair, offset and drift per output
+    return samples * parameters * IDENTIFY_WORK_PER_PARAMETER
+
+
 def request_work(request: BaseModel) -> float:
-    """Estimated operations of a /design (or a batch item), /design/sweep or /simulate request.
+    """Estimated operations of a /design (or a batch item), /design/sweep, /design/compare, /simulate
+    or /identify request.
 
     Parameters
     ----------
@@ -439,19 +472,26 @@ def request_work(request: BaseModel) -> float:
         ``inf`` when the sizes are beyond any cap (the request is then refused by the caps in
         its solver process, in the heavy lane).  For /simulate the design plus ``steps`` times the per-step products (the free
         prediction, the move and the plant: ``2 Hp p (n + m) + 2 m Hp p + 4 n (n + m)``);
-        a sweep adds up its designs.  Requests that extend the /design request (an export)
-        count as their design.
+        a sweep adds up its designs, a comparison its two designs and runs; an identification
+        counts samples x fitted parameters x :data:`IDENTIFY_WORK_PER_PARAMETER` (the subspace
+        method: the QR factorization of its block Hankel matrix).  Requests that extend the
+        /design request (an export) count as their design.
     """
     try:
         if isinstance(request, SimulateRequest):
-            n, m, p = model_sizes(request.model)
-            rows = request.horizons.prediction * p
-            per_step = 2 * rows * (n + m) + 2 * m * rows + 4 * n * (n + m)
-            return float(_design_request_work(request) + request.scenario.steps * per_step)
+            return float(_design_request_work(request) + _run_work(request, request.scenario.steps))
         if isinstance(request, DesignRequest):
             return float(_design_request_work(request))
         if isinstance(request, SweepRequest):
             return float(len(request.values) * _design_request_work(request.design))
+        if isinstance(request, CompareRequest):
+            sides = (request.in_service, request.proposed)
+            work = sum(_design_request_work(side) for side in sides)
+            if request.scenario is not None:
+                work += sum(_run_work(side, request.scenario.steps) for side in sides)
+            return float(work)
+        if isinstance(request, IdentifyRequest):
+            return float(_identify_request_work(request))
     except OverflowError:
         return math.inf
     return 0.0

@@ -342,8 +342,8 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         problems.append(
             FieldProblem(
                 pointer("model", "operating_point"),
-                "this endpoint works in deviations only for now; give the values as deviations from the "
-                "operating point and leave it out (POST /design, /design/batch, /simulate and /design/export take it)",
+                "the design checks take deviations: the operating point must be taken out first "
+                "(service.pipeline.operating_point.to_deviations), as every endpoint does",
             )
         )
     plant, found = plant_arrays(request.model, caps)

@@ -1,4 +1,4 @@
-"""Memory and work of a design, estimated from the request's sizes before anything is computed.
+"""Memory and work of a request, estimated from its sizes before anything is computed.
 
 Pure functions of integers, so that a request is refused up front (422 naming the fields that
 drive the estimate) instead of exhausting the solver process's memory, and so that a scheduler
@@ -16,11 +16,44 @@ checked against a measurement: the example plant (n = 4, m = p = 2) with Hp = Hu
 900 MB for it.  Work: ``G'QG`` costs ``2 rows (Hu m)^2``, the factor ``(Hu m)^3 / 3`` and the
 symmetric eigenvalues about ``9 (Hu m)^3`` (Golub and Van Loan, Matrix Computations, 4th ed.,
 section 8.3, tridiagonal reduction plus QR iteration, rounded up).
+
+Beyond the design's arrays, a request holds what it returns and the series it computes:
+
+- a number of an answer (a gain entry, a sample of a series) costs its float64 entry, the
+  Python float in the answer's lists and its JSON text: :data:`ANSWER_NUMBER_BYTES` and
+  :data:`RUN_NUMBER_BYTES` (measured with ``tracemalloc``: about 63 bytes per number counted of a
+  /simulate run of the example plant from 240 to 50 000 steps; about doubled, so that the
+  example runs its longest default run, 100 000 steps, inside the default cap);
+- a run under limits holds the move QP's matrices (:data:`QP_COPIES` copies of ``H`` and the
+  constraint rows: the model, its factor and the solver's workspace);
+- a frequency analysis holds the complex responses of its grid (16 bytes a number);
+- an identification holds its columns, the fits' simulations and Jacobians, the residual
+  checks and the step responses: :data:`IDENTIFY_SAMPLE_BYTES` per sample of each column
+  (measured: about 760 bytes on the example plant test; doubled), and with the subspace method
+  its block Hankel matrices ``2 k (m + p)`` rows by the samples, with the copies its QR
+  factorization and singular value decomposition make.
+
+``tests/api/test_memory_estimates.py`` checks that each estimate bounds the peak ``tracemalloc``
+reports for the whole request in one process, for a few sizes.
 """
 
 from __future__ import annotations
 
-__all__ = ["BASE_BYTES", "G_COPIES", "H_COPIES", "design_memory_bytes", "design_work"]
+__all__ = [
+    "ANSWER_NUMBER_BYTES",
+    "BASE_BYTES",
+    "G_COPIES",
+    "H_COPIES",
+    "IDENTIFY_SAMPLE_BYTES",
+    "QP_COPIES",
+    "RUN_NUMBER_BYTES",
+    "answer_memory_bytes",
+    "design_memory_bytes",
+    "design_work",
+    "frequency_memory_bytes",
+    "identify_memory_bytes",
+    "simulation_memory_bytes",
+]
 
 #: Arrays the size of G alive at the peak (G, its weighted copy, the product's transpose).
 G_COPIES = 3
@@ -62,3 +95,76 @@ def design_work(*, states: int, inputs: int, outputs: int, penalized_steps: int,
     """
     rows, cols = penalized_steps * outputs, control * inputs
     return 2 * rows * cols * cols + cols**3 // 3 + 9 * cols**3 + 2 * rows * cols * max(states, 1)
+
+
+#: Bytes of one number of a design's answer at its peak (see the module notes).
+ANSWER_NUMBER_BYTES = 160
+#: Bytes of one number of a run's series at its peak (see the module notes).
+RUN_NUMBER_BYTES = 120
+#: Copies of the move QP's matrices alive in a run under limits.
+QP_COPIES = 4
+#: Bytes per sample of each column of an identification (see the module notes).
+IDENTIFY_SAMPLE_BYTES = 1600
+
+
+def answer_memory_bytes(numbers: int) -> int:
+    """Bytes of an answer of ``numbers`` numbers (gains, poles, series) at its peak."""
+    return ANSWER_NUMBER_BYTES * numbers
+
+
+def simulation_memory_bytes(
+    *, design_bytes: int, steps: int, numbers_per_step: int, qp_entries: int = 0, report_numbers: int = 0
+) -> int:
+    """Peak bytes of one run on top of its design.
+
+    Parameters
+    ----------
+    design_bytes : int
+        :func:`design_memory_bytes` of the loop's design (with its answer).
+    steps, numbers_per_step : int
+        The run's length and the numbers it keeps a step (outputs, measured outputs, setpoints,
+        inputs, moves, estimates, disturbances, the true plant's states, the noise).
+    qp_entries : int
+        Entries of the move QP's ``H`` and constraint rows (0 without limits).
+    report_numbers : int
+        Numbers the limit report can hold.
+
+    Returns
+    -------
+    int
+        ``design_bytes + RUN_NUMBER_BYTES (steps numbers_per_step + report_numbers) + 8 QP_COPIES qp_entries``.
+    """
+    return design_bytes + RUN_NUMBER_BYTES * (steps * numbers_per_step + report_numbers) + 8 * QP_COPIES * qp_entries
+
+
+def frequency_memory_bytes(*, points: int, states: int, loops: int) -> int:
+    """Peak bytes of a frequency analysis: the loop's ``states x states`` complex pencil and the
+    ``loops x loops`` responses at each point of the grid (16 bytes a number), and the answer's
+    series (:data:`ANSWER_NUMBER_BYTES` a number, a dozen curves)."""
+    return 16 * (4 * states * states + 8 * loops * loops * points) + ANSWER_NUMBER_BYTES * 12 * points * loops
+
+
+def identify_memory_bytes(*, samples: int, columns: int, outputs: int, block_rows: int = 0) -> int:
+    """Peak bytes of one identification.
+
+    Parameters
+    ----------
+    samples : int
+        Samples per column after resampling (at most the longest column, or the time span over
+        the sample time, whichever is more).
+    columns : int
+        Inputs, measured disturbances and outputs.
+    outputs : int
+        Controlled outputs.
+    block_rows : int
+        ``k`` of the subspace method's block Hankel matrices (0 for the dead-time fits).
+
+    Returns
+    -------
+    int
+        ``IDENTIFY_SAMPLE_BYTES samples columns`` plus, for the subspace method, eight copies of the
+        ``2 k columns x samples`` block Hankel matrix (the data matrix, its QR factors and the
+        projections), plus :data:`BASE_BYTES`.
+    """
+    subspace = 8 * 8 * (2 * block_rows * columns) * samples if block_rows else 0
+    return IDENTIFY_SAMPLE_BYTES * samples * (columns + outputs) + subspace + BASE_BYTES

@@ -30,6 +30,29 @@ def test_the_example_is_light_and_the_large_benchmark_case_heavy(example, rng):
     assert request_work(DesignRequest.model_validate(large)) > HEAVY_WORK
 
 
+def test_comparisons_and_identifications_have_a_work_estimate_that_grows_with_their_sizes():
+    from service.pipeline import identify
+    from service.pipeline.caps import IDENTIFY_WORK_PER_PARAMETER
+    from service.pipeline.examples import load_example
+    from service.schemas.compare import CompareRequest
+    from service.schemas.identify import IdentifyRequest
+
+    assert IDENTIFY_WORK_PER_PARAMETER == identify.WORK_PER_PARAMETER
+    compare = load_example("compare_request.json")
+    work = request_work(CompareRequest.model_validate(compare))
+    assert 0 < work < HEAVY_WORK  # the bundled comparison stays light
+    scenario = {**load_example("simulate_request.json")["scenario"], "true_plant": None}
+    run = request_work(CompareRequest.model_validate({**compare, "scenario": {**scenario, "steps": 100}}))
+    longer = request_work(CompareRequest.model_validate({**compare, "scenario": {**scenario, "steps": 10_000}}))
+    assert work < run < longer
+    test = load_example("identify_request.json")
+    work = request_work(IdentifyRequest.model_validate(test))
+    twice = {**test, "data": {tag: values * 2 for tag, values in test["data"].items()}}
+    assert 0 < work < request_work(IdentifyRequest.model_validate(twice))
+    subspace = {**test, "structure": "subspace", "pairs": [], "integrating": []}
+    assert request_work(IdentifyRequest.model_validate(subspace)) > 0
+
+
 def test_design_work_grows_with_every_size():
     base = {"states": 10, "inputs": 3, "outputs": 3, "prediction": 40, "control": 8}
     work = design_work(**base)

@@ -20,11 +20,13 @@ import pytest
 import yaml
 
 from service.api.compute import SolverPool
+from service.api.settings import Settings
 from service.errors import ComputeOutOfMemory, InvalidRequest
 from service.pipeline.caps import Caps
 from service.pipeline.design import run_design
 from service.pipeline.estimates import design_memory_bytes
 from service.pipeline.examples import load_example
+from service.pipeline.memory import HEAVY_MEMORY_BYTES
 from service.schemas.design import DesignRequest
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -94,6 +96,14 @@ def test_the_default_cap_fits_the_pod_memory_limit_of_deploy():
     assert limit.endswith("Gi")
     pod = int(limit[:-2]) * 1024**3
     assert Caps().max_design_memory_bytes + OVERHEAD + SLACK <= pod
+    # Every compute process at its largest at once: the heavy lane's processes up to the request
+    # cap, each light-lane process up to the memory that sends a request to the heavy lane
+    # (service/pipeline/memory.py), with the process counts the ConfigMap sets.
+    settings = yaml.safe_load((ROOT / "deploy" / "kubernetes" / "configmap.yaml").read_text())["data"]
+    light = int(settings["MOVECAST_SOLVER_PROCESSES"])
+    heavy = int(settings.get("MOVECAST_HEAVY_SOLVER_PROCESSES", Settings().heavy_solver_processes))
+    busy = heavy * Caps().max_request_memory_bytes + light * HEAVY_MEMORY_BYTES
+    assert busy + OVERHEAD + SLACK <= pod
     # The design of issue 15 (the example plant, Hp = Hu = 2000) is refused by the default cap.
     assert (
         design_memory_bytes(states=4, inputs=2, outputs=2, penalized_steps=2000, control=2000)

@@ -26,6 +26,7 @@ from service.pipeline.caps import Caps
 from service.pipeline.design import run_design
 from service.pipeline.examples import load_example
 from service.pipeline.fingerprint import fingerprint
+from service.pipeline.memory import check_request_memory
 from service.schemas.batch import BatchItem, BatchItemResult, BatchRequest, BatchResponse
 from service.schemas.design import DesignRequest
 
@@ -93,4 +94,5 @@ def design_batch(
     """Design many controllers in one call; each item gets its own result or problem, in order."""
     check_batch(batch, max_items=settings.max_batch_items)
     caps = settings.caps()
+    check_request_memory(batch, caps)  # the answers kept together, and the largest item's design
     return BatchResponse(items=[_answer(i, item, caps, budget) for i, item in enumerate(batch.items)])
