@@ -290,15 +290,16 @@ def frequency_work(*, points: int, plant_states: int, controller_states: int, in
 def loop_frequency_work(plant: DiscretePlant, estimator: EstimatorInputs, *, points: int) -> int:
     """:func:`frequency_work` of the loop of this plant with this estimator (its disturbance model
     sets the controller's state count)."""
-    n, m, p = plant.states, plant.input_count, plant.output_count
+    n, m = plant.states, plant.input_count
+    py = int(plant.c_measured.shape[0])  # the loop is broken at the measured outputs
     full_state = estimator.kind == "full_state"
-    nd = {"per_output": p, "output": p, "input": m, "none": 0}[estimator.disturbance]
+    nd = _disturbance_states(plant, estimator.disturbance)
     return frequency_work(
         points=points,
         plant_states=n,
         controller_states=m if full_state else n + nd + m,
         inputs=m,
-        measured=n if full_state else p,
+        measured=n if full_state else py,
     )
 
 
@@ -313,17 +314,18 @@ def model_error_work(
     """Estimated operations of ``analysis.model_error`` (the quantity capped by ``max_model_error_work``).
 
     Per factor and extra dead time ``d``: the loop of controller, estimator and perturbed plant
-    has ``N = n + d r + na + m`` states (``r = min(m, p)`` per sample of the register,
+    has ``N = n + d r + na + m`` states (``r = min(m, py)`` per sample of the register, ``py``
+    the measured outputs the estimator reads,
     ``na = n + nd`` estimator states, none for ``full_state``); its eigenvalues by the
     Hessenberg QR algorithm cost about ``10 N^3`` (Golub and Van Loan, *Matrix Computations*,
     4th ed., section 7.5.6, eigenvalues only), forming it about ``2 N^2 (n + m)``.
     """
-    n, m, p = plant.states, plant.input_count, plant.output_count
+    n, m, py = plant.states, plant.input_count, int(plant.c_measured.shape[0])
     full_state = estimator.kind == "full_state"
     na = 0 if full_state else n + _disturbance_states(plant, estimator.disturbance)
     work = 0
     for d in extra_dead_times:
-        size = n + d * min(m, p) + na + m
+        size = n + d * min(m, py) + na + m
         work += gain_factors * (10 * size**3 + 2 * size * size * (n + m))
     return work
 

@@ -6,10 +6,13 @@ this module only runs those pipelines (:mod:`service.pipeline.design`,
 :mod:`service.pipeline.simulate`) and sets their answers side by side.  Problems of either
 request point into the compare request (``/in_service/...``, ``/proposed/...``; the
 scenario's stay under ``/scenario``).  :mod:`service.pipeline.compare_text` writes the
-summary sentences and the Markdown for the change record.
+summary sentences and the Markdown for the change record.  Each side may carry its own
+``model.operating_point`` (a plant moved to a new operating point): it is checked and
+designed in deviations from it, and answered in absolute units, as /design does.
 
 The default scenario steps every controlled output at once by its span (1 without spans),
-from rest on each design's own model, and runs for ten time constants of the slower
+from rest on each design's own model (from the design in service's operating point, in
+absolute units, when it has one), and runs for ten time constants of the slower
 dominant closed-loop pole after the step (at least 50 and at most 2000 samples; 200 when a
 loop does not settle), so that both designs can settle.
 """
@@ -18,7 +21,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import TypeVar
 
 from service.errors import FieldProblem, InvalidRequest, NumericalError
@@ -26,6 +29,13 @@ from service.pipeline.caps import Caps
 from service.pipeline.compare_text import summary
 from service.pipeline.design import DesignInputs, check_design_request, compute_design, design_response
 from service.pipeline.fingerprint import design_fingerprint
+from service.pipeline.operating_point import (
+    OperatingPointValues,
+    check_operating_point,
+    checked_at_point,
+    design_to_absolute,
+    to_deviations,
+)
 from service.pipeline.problems import pointer
 from service.pipeline.simulate import compute_simulation, performance_report
 from service.pipeline.simulate_checks import check_simulate_request
@@ -43,7 +53,7 @@ from service.schemas.compare import (
 )
 from service.schemas.design import DesignRequest, DesignResponse
 from service.schemas.robustness import LoopRobustnessReport
-from service.schemas.simulate import PerformanceReport, ScenarioRequest
+from service.schemas.simulate import PerformanceReport, ScenarioRequest, SimulateRequest
 
 __all__ = [
     "DEFAULT_SEGMENT",
@@ -75,6 +85,10 @@ class CompareInputs:
     proposed: DesignRequest
     in_service_inputs: DesignInputs
     proposed_inputs: DesignInputs
+    #: Each side's ``model.operating_point`` (None without one): the inputs are in deviations
+    #: from it, the answers in absolute units, as /design's.
+    in_service_point: OperatingPointValues | None = None
+    proposed_point: OperatingPointValues | None = None
 
 
 def _moved(where: str, side: str) -> str:
@@ -113,10 +127,11 @@ def check_compare_request(request: CompareRequest, caps: Caps) -> CompareInputs:
         "proposed": _with_robustness(request.proposed, request.robustness),
     }
     checked: dict[str, DesignInputs] = {}
+    points: dict[str, OperatingPointValues | None] = {}
     problems: list[FieldProblem] = []
     for side, design in sides.items():
         try:
-            checked[side] = _on_side(side, lambda design=design: check_design_request(design, caps))  # type: ignore[misc]
+            checked[side], points[side] = _on_side(side, lambda design=design: _checked_side(design, caps))  # type: ignore[misc]
         except InvalidRequest as exc:
             problems += exc.problems
     if problems:
@@ -155,7 +170,27 @@ def check_compare_request(request: CompareRequest, caps: Caps) -> CompareInputs:
         proposed=sides["proposed"],
         in_service_inputs=checked["in_service"],
         proposed_inputs=checked["proposed"],
+        in_service_point=points["in_service"],
+        proposed_point=points["proposed"],
     )
+
+
+def _checked_side(request: DesignRequest, caps: Caps) -> tuple[DesignInputs, OperatingPointValues | None]:
+    """One side checked as /design checks it: in deviations from its operating point, if it has one."""
+    deviations, point = to_deviations(request)
+    inputs = checked_at_point(lambda: check_design_request(deviations, caps), deviations, point, caps)
+    if point is None:
+        return inputs, None
+    check_operating_point(deviations, point, inputs.plant)
+    # the fingerprint names the request as sent, in absolute units (as /design's)
+    return replace(inputs, fingerprint=design_fingerprint(request)), point
+
+
+def _designed(inputs: DesignInputs, point: OperatingPointValues | None) -> DesignResponse:
+    response = design_response(inputs, compute_design(inputs))
+    if point is not None:
+        design_to_absolute(response, point, inputs.plant)
+    return response
 
 
 def _dominant(response: DesignResponse, sample_time: float) -> DominantPoleReport:
@@ -165,8 +200,14 @@ def _dominant(response: DesignResponse, sample_time: float) -> DominantPoleRepor
     return DominantPoleReport(pole=pole, modulus=modulus, time_constant=tau)
 
 
-def default_scenario(responses: list[DesignResponse], inputs: DesignInputs) -> ScenarioRequest:
-    """A setpoint step of one span on every controlled output at once (module notes)."""
+def default_scenario(
+    responses: list[DesignResponse], inputs: DesignInputs, *, point: OperatingPointValues | None = None
+) -> ScenarioRequest:
+    """A setpoint step of one span on every controlled output at once (module notes).
+
+    With the design in service's operating point the step goes from it to one span above it,
+    in absolute units, the same scenario for both designs.
+    """
     plant = inputs.plant
     taus = [_dominant(r, 1.0).time_constant for r in responses]
     if any(t is None for t in taus):
@@ -175,6 +216,8 @@ def default_scenario(responses: list[DesignResponse], inputs: DesignInputs) -> S
         slowest = max(t for t in taus if t is not None)
         segment = min(max(math.ceil(SETTLING_TIME_CONSTANTS * slowest), MIN_SEGMENT), MAX_SEGMENT)
     setpoint = [s.span for s in plant.outputs]
+    if point is not None and point.outputs is not None:
+        setpoint = [z0 + step for z0, step in zip(point.outputs, setpoint, strict=True)]
     return ScenarioRequest.model_validate(
         {"steps": LEAD_IN + segment, "setpoint_changes": [{"step": LEAD_IN, "setpoint": setpoint}]}
     )
@@ -265,7 +308,9 @@ def _figures(before: PerformanceReport, after: PerformanceReport) -> list[Figure
 
 def _run(side: str, request: DesignRequest, scenario: ScenarioRequest, caps: Caps) -> tuple[PerformanceReport, bool]:
     def run() -> tuple[PerformanceReport, bool]:
-        inputs = check_simulate_request(simulate_request(request, scenario), caps)
+        shifted, point = to_deviations(simulate_request(request, scenario))
+        assert isinstance(shifted, SimulateRequest)
+        inputs = checked_at_point(lambda: check_simulate_request(shifted, caps), shifted, point, caps)
         outcome = compute_simulation(inputs)
         return performance_report(inputs.design, outcome), outcome.rows < inputs.steps
 
@@ -280,16 +325,12 @@ def compare_response(request: CompareRequest, inputs: CompareInputs, caps: Caps)
     InvalidRequest, NumericalError
         Pointers into the compare request.
     """
-    before = _on_side(
-        "in_service",
-        lambda: design_response(inputs.in_service_inputs, compute_design(inputs.in_service_inputs)),
-    )
-    after = _on_side(
-        "proposed",
-        lambda: design_response(inputs.proposed_inputs, compute_design(inputs.proposed_inputs)),
-    )
+    before = _on_side("in_service", lambda: _designed(inputs.in_service_inputs, inputs.in_service_point))
+    after = _on_side("proposed", lambda: _designed(inputs.proposed_inputs, inputs.proposed_point))
     sample_time = inputs.in_service_inputs.plant.sample_time
-    scenario = request.scenario or default_scenario([before, after], inputs.in_service_inputs)
+    scenario = request.scenario or default_scenario(
+        [before, after], inputs.in_service_inputs, point=inputs.in_service_point
+    )
     run_before, diverged_before = _run("in_service", inputs.in_service, scenario, caps)
     run_after, diverged_after = _run("proposed", inputs.proposed, scenario, caps)
     robustness = None

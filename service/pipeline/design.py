@@ -342,8 +342,8 @@ def check_design_request(request: DesignRequest, caps: Caps) -> DesignInputs:
         problems.append(
             FieldProblem(
                 pointer("model", "operating_point"),
-                "this endpoint works in deviations only for now; give the values as deviations from the "
-                "operating point and leave it out (POST /design, /design/batch, /simulate and /design/export take it)",
+                "the design checks take deviations: the operating point must be taken out first "
+                "(service.pipeline.operating_point.to_deviations), as every endpoint does",
             )
         )
     plant, found = plant_arrays(request.model, caps)
@@ -503,7 +503,7 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
         )
     if inputs.model_error is not None:
         assert estimator is not None
-        model_error = compute_model_error(inputs.model_error, design, estimator, scaled)
+        model_error = compute_model_error(inputs.model_error, design, estimator, plant, scaled)
     properties = plant_properties(scaled.a, scaled.b, scaled.c)
     advice = tuning_advice(
         scaled.a,
@@ -683,7 +683,7 @@ def design_response(inputs: DesignInputs, outcome: DesignOutcome) -> DesignRespo
         warnings=[WarningReport(code=w.code, message=w.message) for w in outcome.warnings],
         robustness=None
         if outcome.analysis is None or outcome.estimator is None
-        else robustness_report(outcome.analysis, outcome.estimator),
+        else robustness_report(outcome.analysis, outcome.estimator, plant),
         limit_check=None if outcome.limit_check is None else limit_check_report(outcome.limit_check, plant),
         model_error=None
         if outcome.model_error is None or outcome.estimator is None

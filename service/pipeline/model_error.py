@@ -16,7 +16,7 @@ import numpy as np
 
 from service.errors import FieldProblem, NumericalError
 from service.pipeline.caps import Caps, model_error_work
-from service.pipeline.estimator import EstimatorInputs
+from service.pipeline.estimator import EstimatorInputs, scaled_measured
 from service.pipeline.plant import DiscretePlant
 from service.pipeline.problems import pointer
 from service.schemas.model_error import (
@@ -78,7 +78,7 @@ def check_model_error(
                 f"this service analyses at most {caps.max_model_error_cases}. Give fewer factors or dead times",
             )
         )
-    register = min(plant.input_count, plant.output_count)
+    register = min(plant.input_count, int(plant.c_measured.shape[0]))  # on the inputs or the measured outputs
     for i, d in enumerate(delays):
         if d and full_state:
             problems.append(
@@ -96,13 +96,14 @@ def check_model_error(
                     f"({register} per sample); this service accepts at most {caps.max_states}",
                 )
             )
-    if not full_state and (not np.array_equal(plant.c_measured, plant.c) or np.any(plant.d_measured)):
+    if not full_state and np.any(plant.d_measured):
         problems.append(
             FieldProblem(
-                pointer(*_WHERE),
-                "the model-error study, like /simulate, has the estimator read the controlled outputs; measured "
-                "outputs other than those (c_measured, d_measured) are not supported yet. Leave them out, or use "
-                "a full_state estimator",
+                pointer("model", "d_measured"),
+                "the model-error study scales every gain of the plant, the measured feed-through's too, while the "
+                "estimator subtracts the model's D_m u(k): the controller would then read its own command back "
+                "through the gain error at the same sample (an algebraic loop the study does not model). Leave "
+                "d_measured out (or zero) for the study, or use a full_state estimator",
             )
         )
     if not problems:
@@ -122,9 +123,12 @@ def check_model_error(
 
 
 def compute_model_error(
-    inputs: ModelErrorInputs, design: ControllerDesign, estimator: Estimator, scaled: ScaledPlant
+    inputs: ModelErrorInputs, design: ControllerDesign, estimator: Estimator, plant: DiscretePlant, scaled: ScaledPlant
 ) -> ModelErrorStudy:
     """The study on the scaled model with the design and estimator of that model.
+
+    The perturbed plant is that of what the estimator reads: the measured outputs (scaled by
+    their spans; the controlled outputs unless the model has measured outputs of its own).
 
     Raises
     ------
@@ -132,11 +136,12 @@ def compute_model_error(
         Pointer ``/analysis/model_error`` when a spectral radius is not a finite number.
     """
     loop = control_loop(design, estimator)
+    measured = scaled_measured(plant)[0] if plant.measured_own else scaled.c
     study = model_error_study(
         loop,
         scaled.a,
         scaled.b,
-        scaled.c,
+        measured,
         gain_factors=inputs.gain_factors,
         extra_dead_times=inputs.extra_dead_times,
     )

@@ -14,8 +14,9 @@ deviation run shifted by the operating point, bit for bit.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import TypeVar
 
 from service.errors import FieldProblem, InvalidRequest
 from service.pipeline.caps import Caps
@@ -25,9 +26,12 @@ from service.schemas.design import DesignRequest, DesignResponse
 from service.schemas.export import ExportRequest
 from service.schemas.simulate import SimulateRequest, SimulateResponse
 
+T = TypeVar("T")
+
 __all__ = [
     "OperatingPointValues",
     "check_operating_point",
+    "checked_at_point",
     "design_to_absolute",
     "explain_failure",
     "simulation_to_absolute",
@@ -219,6 +223,20 @@ def explain_failure(request: DesignRequest, point: OperatingPointValues | None, 
     plant, _ = plant_arrays(request.model, caps)
     if plant is not None:
         check_operating_point(request, point, plant)
+
+
+def checked_at_point(
+    check: Callable[[], T], request: DesignRequest, point: OperatingPointValues | None, caps: Caps
+) -> T:
+    """Return ``check()``; when it fails and ``point`` is given, say first if the point is the cause.
+
+    ``request`` is the request in deviations that ``check`` checks (:func:`explain_failure`).
+    """
+    try:
+        return check()
+    except InvalidRequest:
+        explain_failure(request, point, caps)
+        raise
 
 
 def _shift(kind: str, signal: str, value: float, point: OperatingPointValues, plant: DiscretePlant) -> float:

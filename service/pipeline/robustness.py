@@ -33,7 +33,7 @@ __all__ = ["frequency_problems", "robustness_report"]
 def frequency_problems(
     plant: DiscretePlant, estimator: EstimatorInputs, *, points: int, caps: Caps
 ) -> list[FieldProblem]:
-    """What stops the analysis of this request: measured outputs it cannot read, or too much work.
+    """What stops the analysis of this request: a measured feed-through, or too much work.
 
     Parameters
     ----------
@@ -49,20 +49,16 @@ def frequency_problems(
     """
     problems: list[FieldProblem] = []
     full_state = estimator.kind == "full_state"
-    if not full_state and not np.array_equal(plant.c_measured, plant.c):
-        problems.append(
-            FieldProblem(
-                pointer("model", "c_measured"),
-                "the robustness analysis, like /simulate, has the estimator read the controlled outputs; measured "
-                "outputs other than those are not supported yet. Leave c_measured out, use a full_state "
-                "estimator, or leave analysis.frequency false",
-            )
-        )
     if not full_state and np.any(plant.d_measured):
         problems.append(
             FieldProblem(
                 pointer("model", "d_measured"),
-                "a measured feed-through is not supported by the robustness analysis yet; leave it out",
+                "the robustness analysis takes a strictly proper path from the inputs to the measured "
+                "outputs; with a measured feed-through the controller reads its own command back through D_m "
+                "(the estimator subtracts D_m u(k)), an algebraic loop inside the controller the analysis does "
+                "not model. Leave "
+                "d_measured out (or zero) for the analysis, use a full_state estimator, or leave "
+                "analysis.frequency false",
             )
         )
     work = loop_frequency_work(plant, estimator, points=points)
@@ -135,8 +131,12 @@ def _loop(loop: LoopSensitivity) -> LoopRobustnessReport:
     )
 
 
-def robustness_report(analysis: FrequencyAnalysis, estimator: Estimator) -> RobustnessReport:
+def robustness_report(analysis: FrequencyAnalysis, estimator: Estimator, plant: DiscretePlant) -> RobustnessReport:
     """Turn the solver's frequency analysis into the response block.
+
+    ``plant`` gives the tags of the output-side break point: the measured outputs' (the
+    controlled outputs' unless the model has measured outputs of its own), or the state
+    labels for ``full_state``.
 
     Raises
     ------
@@ -150,6 +150,7 @@ def robustness_report(analysis: FrequencyAnalysis, estimator: Estimator) -> Robu
         nyquist_frequency=analysis.nyquist_frequency,
         plant_input=_loop(analysis.plant_input),
         plant_output=_loop(analysis.plant_output),
+        plant_output_signals=list(plant.state_labels) if estimator.full_state else [s.name for s in plant.measured],
         estimator=RobustnessEstimatorReport(
             kind=estimator.kind,
             disturbance=estimator.disturbance,

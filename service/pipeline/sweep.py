@@ -25,6 +25,7 @@ from service.pipeline.caps import Caps, loop_frequency_work, plant_run_work
 from service.pipeline.design import DesignInputs, DesignOutcome, check_design_request, compute_design, retuned_inputs
 from service.pipeline.fingerprint import fingerprint
 from service.pipeline.limits_checks import limit_work_problems
+from service.pipeline.operating_point import check_operating_point, checked_at_point, to_deviations
 from service.pipeline.problems import pointer, problem_of
 from service.pipeline.robustness import not_finite_analysis
 from service.pipeline.simulate import compute_simulation, performance_report
@@ -137,15 +138,24 @@ def _peak_sensitivity(analysis: FrequencyAnalysis) -> float:
 
 
 def _entry(
-    request: SweepRequest, value: float, base: DesignInputs, run: SimulationInputs | None, caps: Caps
+    request: SweepRequest,
+    value: float,
+    base: DesignInputs,
+    run: SimulationInputs | None,
+    caps: Caps,
+    *,
+    deviations: SweepRequest,
 ) -> SweepEntryReport:
-    """One value: the base's checked inputs retuned (the model is not converted again), designed, run."""
-    design_request = substituted_request(request, value)
-    mark = fingerprint(design_request)
+    """One value: the base's checked inputs retuned (the model is not converted again), designed, run.
+
+    ``deviations`` is ``request`` with its operating point taken out (the same request without
+    one); the fingerprint names the design as sent, as a separate /design call's would.
+    """
+    mark = fingerprint(substituted_request(request, value))
     performance: PerformanceReport | None = None
     peak: float | None = None
     try:
-        inputs = retuned_inputs(base, design_request, caps, fingerprint=mark)
+        inputs = retuned_inputs(base, substituted_request(deviations, value), caps, fingerprint=mark)
         outcome: DesignOutcome
         if run is None:
             outcome = compute_design(inputs)
@@ -252,11 +262,23 @@ def run_sweep(request: SweepRequest, caps: Caps) -> SweepResponse:
     """
     scenario = request.scenario
     base_run: SimulationInputs | None = None
+    # With model.operating_point the base is checked and run in deviations from it, as /design
+    # and /simulate do; every figure a sweep answers is a difference, free of the point.
     if scenario is None:
-        base = _in_sweep(lambda: check_design_request(request.design, caps))
+        design, point = to_deviations(request.design)
+        base = _in_sweep(lambda: checked_at_point(lambda: check_design_request(design, caps), design, point, caps))
     else:
-        base_run = _in_sweep(lambda: check_simulate_request(simulate_request(request.design, scenario), caps))
+        shifted, point = to_deviations(simulate_request(request.design, scenario))
+        assert isinstance(shifted, SimulateRequest)
+        run_request = shifted
+        design = DesignRequest.model_validate({name: getattr(run_request, name) for name in DesignRequest.model_fields})
+        base_run = _in_sweep(
+            lambda: checked_at_point(lambda: check_simulate_request(run_request, caps), run_request, point, caps)
+        )
         base = base_run.design
+    if point is not None:
+        _in_sweep(lambda: check_operating_point(design, point, base.plant))
+    deviations = request.model_copy(update={"design": design})
     problems = _signal_problem(request)
     if len(request.values) > caps.max_sweep_values:
         problems.append(
@@ -273,5 +295,5 @@ def run_sweep(request: SweepRequest, caps: Caps) -> SweepResponse:
     return SweepResponse(
         parameter=request.parameter,
         signal=request.signal,
-        entries=[_entry(request, value, base, base_run, caps) for value in request.values],
+        entries=[_entry(request, value, base, base_run, caps, deviations=deviations) for value in request.values],
     )

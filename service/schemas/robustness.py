@@ -13,6 +13,12 @@ design's, in scaled signals (``u / span``, ``z / span``): for a multivariable lo
 singular values of S and T, and so their peaks and the bandwidth, are those of the scaled
 signals and change with the spans (a diagonal change of units changes singular values); for
 a single loop S, T and the classical margins do not depend on the spans.
+
+Break points.  At the plant input the controller is a system from what it reads to the
+inputs, so the loop is well defined whatever it reads.  At the plant output the loop is
+broken where the controller reads the plant: with measured outputs of their own
+(``model.c_measured``) that is at those measured outputs (the sensors), not at the
+controlled outputs, which are only inferred; ``plant_output_signals`` names the signals.
 """
 
 from __future__ import annotations
@@ -92,8 +98,20 @@ class RobustnessReport(ResponseModel):
 
     frequencies: list[float] = Field(description="The grid, rad per time unit of the sample time, ascending.")
     nyquist_frequency: float = Field(description="pi / sample_time, the last grid frequency.")
-    plant_input: LoopRobustnessReport
-    plant_output: LoopRobustnessReport
+    plant_input: LoopRobustnessReport = Field(
+        description="The loop broken at the plant input (the manipulated variables): L = -K P, m x m."
+    )
+    plant_output: LoopRobustnessReport = Field(
+        description="The loop broken where the controller reads the plant, L = -P K: at the controlled outputs "
+        "when the estimator reads them; with measured outputs of their own (model.c_measured) at those measured "
+        "outputs, the sensors, which is where the loop exists physically (the controlled outputs are then "
+        "inferred, not fed back); at the plant states for a full_state estimator. plant_output_signals names "
+        "them."
+    )
+    plant_output_signals: list[str] = Field(
+        description="The tags of the signals the plant_output loop is broken at, in order: the controlled "
+        "outputs', the measured outputs' own (model.measured) or the state labels (full_state)."
+    )
     estimator: RobustnessEstimatorReport
     spectral_radius: float = Field(
         description="Largest modulus of the poles of plant, controller and estimator together."

@@ -231,3 +231,52 @@ def test_gain_changes_match_entries_by_tag_when_the_state_count_differs(client):
     unmatched = [c for c in answer["gain_changes"] if c["change"] is None]
     assert {(c["column"], c["in_service"]) for c in unmatched} == {("x5", None)}
     assert len(unmatched) == 2 and answer["gain_changes"][-2:] == unmatched
+
+
+def _column():
+    body = copy.deepcopy(load_example("simulate_request_column.json"))
+    body.pop("scenario")
+    return body
+
+
+@pytest.mark.parametrize("scenario", [False, True])
+def test_designs_in_absolute_units_each_at_its_own_operating_point(client, scenario):
+    # The column in absolute units, then the same column moved to a new operating point (feed
+    # preheat up 20 units, tray temperature 1 K higher) with a re-identified 20 % stronger
+    # steam gain (invented): each side is what /design and /simulate answer for its request.
+    old = _column()
+    new = copy.deepcopy(old)
+    new["model"]["operating_point"]["inputs"][3] += 20.0
+    new["model"]["operating_point"]["outputs"][0] += 1.0
+    for row in new["model"]["elements"]:
+        if row[0] is not None:
+            row[0]["gain"] *= 1.2
+    body = {"in_service": old, "proposed": new}
+    if scenario:
+        body["scenario"] = load_example("simulate_request_column.json")["scenario"]
+    answer = _compare(client, body).json()
+    used = answer["scenario"]["scenario"]
+    if not scenario:
+        # the default step: one span above the design in service's operating point
+        spans = [o.get("span", 1.0) for o in old["model"]["outputs"]]
+        expected = [z0 + s for z0, s in zip(old["model"]["operating_point"]["outputs"], spans, strict=True)]
+        assert used["setpoint_changes"][0]["setpoint"] == pytest.approx(expected)
+    for side in ("in_service", "proposed"):
+        alone = client.post("/design", json=body[side]).json()
+        assert answer[f"{side}_design"] == alone  # limit check and all in absolute units
+        run = client.post("/simulate", json={**body[side], "scenario": used})
+        assert run.status_code == 200, run.text
+        assert answer["scenario"][side] == run.json()["performance"]
+    assert answer["gain_changes"], "a 20 % stronger steam gain changes the gains"
+
+
+def test_an_operating_point_outside_a_limit_points_into_its_side(client):
+    old = _column()
+    new = copy.deepcopy(old)
+    new["limits"]["input_max"][0] = 20.0  # below the operating point's 25
+    r = client.post("/design/compare", json={"in_service": old, "proposed": new})
+    assert r.status_code == 422, r.text
+    assert any(
+        p["pointer"].startswith("/proposed/limits/input_max") and "operating point" in p["detail"]
+        for p in r.json()["errors"]
+    )

@@ -189,12 +189,16 @@ def test_a_bad_estimator_is_refused_on_design(client, example):
     assert r.status_code == 422 and "/estimator/measurement_noise" in [e["pointer"] for e in r.json()["errors"]]
 
 
-def test_other_measured_outputs_are_refused_for_the_analysis(client, example):
+def test_other_measured_outputs_break_the_output_loop_at_the_sensors(client, example):
+    # python-control checks of this loop: tests/api/test_measured_analysis.py
+    plain = design(client, with_frequency(example))["robustness"]
+    assert plain["plant_output_signals"] == ["z1", "z2"]  # the default tags of the controlled outputs
     example["model"]["c_measured"] = [[1.0, 0.0, 0.0, 0.0], [0.0, 1.0, 0.0, 0.0], [0.0, 0.0, 1.0, 0.0]]
-    assert client.post("/design", json=example).status_code == 200
-    r = client.post("/design", json=with_frequency(example))
-    assert r.status_code == 422 and [e["pointer"] for e in r.json()["errors"]] == ["/model/c_measured"]
-    assert design(client, with_frequency(example, kind="full_state"))["robustness"] is not None
+    rb = design(client, with_frequency(example))["robustness"]
+    assert rb["plant_output_signals"] == ["y1", "y2", "y3"]
+    assert rb["plant_input"]["peak_sensitivity"] != plain["plant_input"]["peak_sensitivity"]
+    full = design(client, with_frequency(example, kind="full_state"))["robustness"]
+    assert full["plant_output_signals"] == ["x1", "x2", "x3", "x4"]
 
 
 def test_high_peak_sensitivity_warns_for_an_aggressive_tuning_only(client, example):

@@ -290,3 +290,39 @@ def test_a_sweep_entry_whose_analysis_is_not_finite_fails_with_the_reports_probl
     with pytest.raises(NumericalError) as caught:
         _peak_sensitivity(SimpleNamespace(plant_input=good, plant_output=bad))
     assert caught.value.field == ANALYSIS_FIELD and "not finite" in caught.value.detail
+
+
+@pytest.mark.parametrize("with_scenario", [False, True])
+def test_a_sweep_in_absolute_units_equals_separate_calls_with_the_operating_point(client, with_scenario):
+    # The bundled column (absolute units: model.operating_point, absolute limits and a zone in
+    # % of level): each entry equals the /design (and /simulate) call of its value, fingerprint
+    # included, as for a sweep in deviations.
+    column = load_example("simulate_request_column.json")
+    scenario = column.pop("scenario")
+    sweep = {"design": column, "parameter": "move_weight", "signal": 3, "values": [0.05, 0.1, 1.0]}
+    if with_scenario:
+        sweep["scenario"] = scenario
+    r = client.post("/design/sweep", json=sweep)
+    assert r.status_code == 200, r.text
+    for entry, value in zip(r.json()["entries"], sweep["values"], strict=True):
+        single = copy.deepcopy(column)
+        single["weights"]["move"][3] = value
+        design = client.post("/design", json=single).json()
+        assert entry["status"] == "designed" and entry["fingerprint"] == design["fingerprint"]
+        assert entry["spectral_radius"] == design["closed_loop"]["spectral_radius"]
+        assert entry["warnings"] == design["warnings"]
+        if with_scenario:
+            run = client.post("/simulate", json={**single, "scenario": scenario}).json()
+            assert entry["performance"] == run["performance"]
+
+
+def test_a_sweep_whose_limit_excludes_the_operating_point_says_so(client):
+    column = load_example("simulate_request_column.json")
+    column.pop("scenario")
+    column["limits"]["input_max"][0] = 20.0  # below the operating point's 25
+    r = client.post("/design/sweep", json={"design": column, "parameter": "move_weight", "signal": 0, "values": [0.1]})
+    assert r.status_code == 422, r.text
+    problems = r.json()["errors"]
+    assert any(
+        p["pointer"].startswith("/design/limits/input_max") and "operating point" in p["detail"] for p in problems
+    ), problems

@@ -7,8 +7,10 @@ time lengthened by ``d`` samples, i.e. the transfer matrix ::
     P_true(z) = f z^-d P(z),        P(z) = C (zI - A)^-1 B
 
 (a uniform gain error and a uniform extra delay, the usual first questions of robustness to
-model error, common practice).  It is realized with ``B`` scaled by ``f`` and a shift register of
-``d`` samples on the inputs (``d m`` states) or on the outputs (``d p`` states), whichever is
+model error, common practice), with ``C`` the measured outputs the estimator reads (the
+sensors, when the model has measured outputs of its own: the true plant's sensors see the
+true plant).  It is realized with ``B`` scaled by ``f`` and a shift register of
+``d`` samples on the inputs (``d m`` states) or on the measured outputs (``d py`` states), whichever is
 shorter; both realize the same ``P_true`` because a scalar delay commutes with ``P``.  The loop
 of controller, estimator and that plant is
 :func:`service.solver.estimation.loop.true_loop`, the same matrix /simulate analyses for a
@@ -178,9 +180,10 @@ def model_error_study(
         Controller and estimator designed on ``(A, B, C)``.
     a : ndarray, shape (n, n)
     b : ndarray, shape (n, m)
-    c : ndarray, shape (p, n)
-        The model, in the loop's signals (scaled like the design), measured outputs equal to
-        the controlled ones.
+    c : ndarray, shape (py, n)
+        The model's measured outputs, what the estimator reads (the controlled outputs unless
+        the model has measured outputs of its own, which must then have no feed-through), in
+        the loop's signals (scaled like the design).
     gain_factors : sequence of float, keyword-only
         Positive factors ``f``.
     extra_dead_times : sequence of int, keyword-only
