@@ -10,7 +10,10 @@ Units.  Covariances are given in engineering units squared; those of the disturb
 of the measurement noise are scaled with the model's spans (``S^-1 V S^-1``; the measured
 outputs' spans for the measurement noise and the output disturbances, which belong to the
 measured outputs when the model has measured outputs of its own).  The state is
-never scaled, so the process-noise covariance goes in as given.
+never scaled, so the process-noise covariance goes in as given.  Default covariances are 1
+(0.01 for the states) in each signal's size: its span when it has one, else the natural size
+the model gives it (:mod:`service.solver.estimation.sizes`), so that no unit, with or
+without spans, moves the default filter.
 """
 
 from __future__ import annotations
@@ -266,6 +269,9 @@ def scaled_estimator(inputs: EstimatorInputs, plant: DiscretePlant, scaled: Scal
         c_measured=cm,
         d_measured=dm,
         measured_labels=[s.name for s in plant.measured],
+        # signals with spans have size 1 in the scaled plant; the others get natural sizes
+        fixed_outputs=[s.span is not None for s in plant.measured],
+        fixed_inputs=[s.span is not None for s in plant.inputs],
     )
     if not (np.all(np.isfinite(estimator.gain)) and np.all(np.isfinite(estimator.poles))):
         raise NumericalError(

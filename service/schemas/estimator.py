@@ -47,18 +47,21 @@ class EstimatorRequest(RequestModel):
     process_noise: Covariance | None = Field(
         default=None,
         description="Covariance of the noise on each model state per sample: n variances or an n x n "
-        "symmetric positive-semidefinite matrix (default 0.01 per state).",
+        "symmetric positive-semidefinite matrix (default 0.01 per state, in units of the state's natural "
+        "size: how large it is when the outputs it reaches are of their size; so that no unit moves the "
+        "default filter).",
     )
     disturbance_noise: Covariance | None = Field(
         default=None,
         description="Covariance of the per-sample change of each estimated disturbance (output units "
-        "squared for output disturbances, input units squared for input ones). Default: 1 per output "
-        "disturbance (in units of the span when spans are given); for an input disturbance, 1 over the "
-        "mean square of that input's unit-step response on the outputs, so that the default does not "
-        "depend on the input's units.",
+        "squared for output disturbances, input units squared for input ones). Default: 1 per "
+        "disturbance in units of its signal's size: the span when the signal has one, else the natural "
+        "size the model gives it (the outputs' and inputs' sizes fitted to the magnitudes of the step "
+        "responses), so that no unit moves the default filter.",
     )
     measurement_noise: Covariance | None = Field(
         default=None,
         description="Covariance of the noise on each measured output: py variances or a py x py symmetric "
-        "positive-definite matrix (default 1 per output, in units of the span when spans are given).",
+        "positive-definite matrix (default 1 per output in units of its size: its span when it has one, "
+        "else its natural size, as for disturbance_noise).",
     )

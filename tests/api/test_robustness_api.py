@@ -89,11 +89,13 @@ def test_single_loop_block_equals_the_solver_on_the_scaled_model(client):
 
 
 def test_single_loop_margins_do_not_depend_on_the_spans(client):
-    # Change of units: the spanned design with weights q, r and the default estimator (unit
-    # noises in span units) is the unspanned design with q / SZ^2, r / SU^2 and noises SZ^2,
-    # so the loop L = -K P is the same and so are its margins and |S|.
+    # Change of units: the spanned design with weights q, r is the unspanned design with
+    # q / SZ^2, r / SU^2. The default estimator is the same filter either way: its covariances
+    # are in the signals' sizes (spans, or natural sizes without them), and for one loop only
+    # their ratios count, which are the same in both. So the loop L = -K P is the same, and so
+    # are its margins and |S|.
     spanned = design(client, siso_request())["robustness"]
-    plain_body = siso_request(spans=False, estimator={"measurement_noise": [SZ**2], "disturbance_noise": [SZ**2]})
+    plain_body = siso_request(spans=False)
     plain_body["weights"] = {"output": [Q / SZ**2], "move": [R / SU**2]}
     plain = design(client, plain_body)["robustness"]
     for name in ("plant_input", "plant_output"):

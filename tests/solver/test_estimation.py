@@ -23,6 +23,7 @@ from service.solver.estimation.estimator import (
     design_estimator,
     unmeasured_outputs,
 )
+from service.solver.estimation.sizes import natural_sizes
 from service.solver.evaluation.simulation import measured_output_map
 from tests.conftest import random_plant
 
@@ -78,15 +79,9 @@ def test_kalman_covariance_is_the_limit_of_the_covariance_recursion(rng):
     np.testing.assert_allclose(est.covariance, pk, rtol=1e-8, atol=1e-10)
 
 
-def _step_rms_noise(a, b, c):
-    """1 / mean square of each input's unit-step response over the outputs and n samples, written out."""
-    n = a.shape[0]
-    steps = [c @ sum((np.linalg.matrix_power(a, i) for i in range(k)), np.zeros_like(a)) @ b for k in range(1, n + 1)]
-    return [1.0 / np.mean([s[:, j] ** 2 for s in steps]) for j in range(b.shape[1])]
-
-
 def test_disturbance_kinds_are_kalman_filters_with_the_documented_default_covariances(rng):
     a, b, c = random_plant(rng, 3, 2, 2)
+    sizes = natural_sizes(a, b, c)
     for kind, disturbance, nd in [("output_disturbance", "output", 2), ("input_disturbance", "input", 2)]:
         est = design_estimator(a, b, c, kind=kind)
         same = design_estimator(
@@ -95,11 +90,11 @@ def test_disturbance_kinds_are_kalman_filters_with_the_documented_default_covari
             c,
             kind="kalman",
             disturbance=disturbance,
-            process_noise=[DEFAULT_STATE_NOISE] * 3,
-            # the documented defaults: 1 per output disturbance, and per input disturbance 1
-            # over the mean square of that input's step response (input_disturbance_noise)
-            disturbance_noise=[DEFAULT_DISTURBANCE_NOISE] * nd if disturbance == "output" else _step_rms_noise(a, b, c),
-            measurement_noise=[DEFAULT_MEASUREMENT_NOISE] * 2,
+            # the documented defaults, each per signal in its natural size (sizes.py)
+            process_noise=DEFAULT_STATE_NOISE * sizes.states**2,
+            disturbance_noise=DEFAULT_DISTURBANCE_NOISE
+            * (sizes.outputs if disturbance == "output" else sizes.inputs) ** 2,
+            measurement_noise=DEFAULT_MEASUREMENT_NOISE * sizes.outputs**2,
         )
         assert est.disturbance == disturbance and est.kind == kind
         np.testing.assert_allclose(est.gain, same.gain, atol=1e-12)

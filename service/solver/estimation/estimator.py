@@ -88,6 +88,8 @@ from numpy.typing import ArrayLike, NDArray
 
 from service.errors import NumericalError
 from service.solver.design.weights import weight_matrix
+from service.solver.estimation.sizes import natural_sizes
+from service.solver.models.properties import integrating_poles
 from service.solver.numerics import (
     eigenvalues_by_modulus,
     equilibrated_rank,
@@ -108,7 +110,6 @@ __all__ = [
     "controlled_disturbance",
     "default_disturbances",
     "design_estimator",
-    "input_disturbance_noise",
     "integrating_outputs",
     "kalman_filter",
     "unmeasured_outputs",
@@ -253,15 +254,24 @@ class Estimator:
         return float(np.abs(self.poles).max(initial=0.0))
 
 
-def _integrator_space(a: NDArray[np.float64]) -> NDArray[np.float64]:
-    """Orthonormal basis of the null space of ``I - A`` (the modes at ``z = 1``), shape (n, k)."""
+def _integrator_space(a: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """The modes at ``z = 1``: a basis ``N`` (n, k) of the null space of ``I - A``, and the state scales.
+
+    Decided on ``A`` balanced by LAPACK's ``gebal`` (``A_b = D^-1 A D``, powers of two), so that
+    the states' units do not move the rank decision: ``N = D N_b`` with ``N_b`` orthonormal,
+    and the count of integrators is the one of
+    :func:`service.solver.models.properties.integrating_poles` (poles at 1 relative to the
+    sample time).  Returns ``(N, d)``; ``N`` has no columns when no pole is at 1.
+    """
     n = a.shape[0]
-    if n == 0:
-        return np.zeros((0, 0))
-    _, s, vt = np.linalg.svd(np.eye(n) - a)
-    scale = max(float(np.linalg.norm(a, 1)), 1.0)
-    rank = int(np.count_nonzero(s > DETECTABILITY_TOLERANCE * scale))
-    return np.asarray(vt[rank:].T)
+    if n == 0 or integrating_poles(a) == 0:
+        return np.zeros((n, 0)), np.ones(n)
+    _, (scale, _) = scipy.linalg.matrix_balance(a, permute=False, separate=True)
+    balanced = a / scale[:, None] * scale[None, :]
+    _, s, vt = np.linalg.svd(np.eye(n) - balanced)
+    limit = DETECTABILITY_TOLERANCE * max(float(np.linalg.norm(balanced, 1)), 1.0)
+    rank = min(int(np.count_nonzero(s > limit)), n - 1)  # at least one mode: a pole is at 1
+    return scale[:, None] * vt[rank:].T, scale
 
 
 def integrating_outputs(a: ArrayLike, c: ArrayLike) -> NDArray[np.bool_]:
@@ -275,17 +285,18 @@ def integrating_outputs(a: ArrayLike, c: ArrayLike) -> NDArray[np.bool_]:
     Returns
     -------
     ndarray of bool, shape (p,)
-        ``|C_i N| > DETECTABILITY_TOLERANCE |C_i|`` with ``N`` an orthonormal basis of the
-        null space of ``I - A`` (the right eigenvectors at 1; a relative test per row, so a
-        change of output units changes nothing).
+        ``|C_i N| > 1e-6 |C_i D|`` with ``N = D N_b`` the modes at 1 of
+        :func:`_integrator_space` (``N_b`` orthonormal in the balanced states): a relative
+        test per row on the balanced states, so a change of output or state units changes
+        nothing.
     """
     a_ = np.asarray(a, dtype=float)
     c_ = np.asarray(c, dtype=float)
-    null = _integrator_space(a_)
+    null, scale = _integrator_space(a_)
     if null.shape[1] == 0:
         return np.zeros(c_.shape[0], dtype=bool)
     seen = np.linalg.norm(c_ @ null, axis=1)
-    size = np.linalg.norm(c_, axis=1)
+    size = np.linalg.norm(c_ * scale[None, :], axis=1)
     return np.asarray(seen > 1e-6 * size, dtype=bool)
 
 
@@ -298,7 +309,7 @@ def _rate_directions(
     a: NDArray[np.float64], c: NDArray[np.float64], rows: Sequence[int], output_labels: Sequence[str]
 ) -> NDArray[np.float64]:
     """``V`` (n, r) in the null space of ``I - A`` with ``C[rows] V = I``: a unit rate per output."""
-    null = _integrator_space(a)
+    null, _ = _integrator_space(a)
     seen = c[list(rows)] @ null
     if null.shape[1] == 0 or np.linalg.matrix_rank(seen, tol=1e-6 * max(float(np.abs(seen).max()), 1e-300)) < len(rows):
         flags = integrating_outputs(a, c)
@@ -615,52 +626,14 @@ def kalman_filter(
     return gain, p, s
 
 
-def _covariance(value: ArrayLike | None, size: int, default: float) -> NDArray[np.float64]:
-    if value is None:
-        return default * np.eye(size)
-    return weight_matrix(value, size)
-
-
-def input_disturbance_noise(
-    a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64]
+def _covariance(
+    value: ArrayLike | None, size: int, default: float, *, sizes: NDArray[np.float64]
 ) -> NDArray[np.float64]:
-    """Default variances of the input disturbances' random-walk steps, free of the inputs' units.
-
-    Parameters
-    ----------
-    a : ndarray, shape (n, n)
-    b : ndarray, shape (n, m)
-    c : ndarray, shape (p, n)
-
-    Returns
-    -------
-    ndarray, shape (m,)
-        ``DEFAULT_DISTURBANCE_NOISE / g_j**2`` with ``g_j`` the root mean square of input
-        ``j``'s unit-step response ``C sum_{i<k} A^i B e_j`` over all outputs and the first
-        ``n`` samples; ``DEFAULT_DISTURBANCE_NOISE`` for an input that reaches no output.
-
-    Notes
-    -----
-    A disturbance step of that variance moves the outputs about as much as an output
-    disturbance of the default variance moves its output.  The step response is a property of
-    the input-output map (the same for every realization of the plant), and ``g_j`` scales
-    as ``1 / k`` when input ``j``'s unit shrinks by ``k`` while the variance, in the input's
-    units, grows by ``k**2``: the filter, and its poles, are the same in any input units.  A
-    fixed default in input units would make an input's disturbance look ``k**2`` times
-    smaller in a unit ``k`` times smaller (common practice: express default covariances in
-    the signals' own sizes).
-    """
-    n, m = b.shape
-    response = np.zeros((c.shape[0], m))
-    step = b.copy()
-    total = np.zeros(m)
-    for _ in range(max(n, 1)):
-        response = response + c @ step
-        total += np.sum(response**2, axis=0)
-        step = a @ step
-    rms_squared = total / (max(n, 1) * max(c.shape[0], 1))
-    reached = rms_squared > 0.0
-    return np.where(reached, DEFAULT_DISTURBANCE_NOISE / np.where(reached, rms_squared, 1.0), DEFAULT_DISTURBANCE_NOISE)
+    """The given covariance, or ``default`` per signal in units of its natural size (``default * diag(sizes**2)``)."""
+    if value is None:
+        assert sizes.shape == (size,), (sizes.shape, size)
+        return default * np.diag(sizes**2)
+    return weight_matrix(value, size)
 
 
 def design_estimator(
@@ -679,6 +652,8 @@ def design_estimator(
     c_measured: ArrayLike | None = None,
     d_measured: ArrayLike | None = None,
     measured_labels: Sequence[str] | None = None,
+    fixed_outputs: ArrayLike | None = None,
+    fixed_inputs: ArrayLike | None = None,
 ) -> Estimator:
     """Design the estimator of the given kind for the plant ``(A, B, C)``.
 
@@ -698,14 +673,16 @@ def design_estimator(
         The per-output model's choice per output (default :func:`default_disturbances`).
     process_noise : array_like, shape (n,) or (n, n), optional
         Process-noise covariance of the plant states (a diagonal or a full matrix); default
-        ``DEFAULT_STATE_NOISE * I``.
+        ``DEFAULT_STATE_NOISE`` per state in units of its natural size
+        (:func:`service.solver.estimation.sizes.natural_sizes`).
     disturbance_noise : array_like, shape (nd,) or (nd, nd), optional
         Covariance of the disturbances' random-walk steps; default
-        ``DEFAULT_DISTURBANCE_NOISE * I``, and for input disturbances
-        :func:`input_disturbance_noise` (free of the inputs' units).
+        ``DEFAULT_DISTURBANCE_NOISE`` per disturbance in units of its output's (or, for input
+        disturbances, its input's) natural size.
     measurement_noise : array_like, shape (p,) or (p, p), optional
         Measurement-noise covariance ``Rv`` (positive definite); default
-        ``DEFAULT_MEASUREMENT_NOISE * I``.
+        ``DEFAULT_MEASUREMENT_NOISE`` per measured output in units of its natural size.
+        With these defaults, rescaling any input, output or state leaves the filter the same.
     output_labels, input_labels : sequence of str, optional
         Names for error messages (default ``y1..yp``, ``u1..um``).
     c_measured : array_like, shape (py, n), optional
@@ -719,6 +696,9 @@ def design_estimator(
     measured_labels : sequence of str, optional
         Names of the measured outputs for error messages (default ``output_labels`` when
         ``c_measured`` is absent, else ``y1..ypy``).
+    fixed_outputs, fixed_inputs : array_like of bool, shape (py,) and (m,), optional
+        Measured outputs and inputs whose natural size is 1 as given (the signals with spans:
+        the plant is then in span units).
 
     Returns
     -------
@@ -806,15 +786,14 @@ def design_estimator(
     )
     nd = bd.shape[1]
     _check_detectable(a_, c_, bd, cd, disturbance=model, output_labels=outputs, input_labels=inputs, disturbances=kinds)
+    # Defaults in the signals' natural sizes (service.solver.estimation.sizes): free of units.
+    sizes = natural_sizes(a_, b_, c_, fixed_outputs=fixed_outputs, fixed_inputs=fixed_inputs)
+    disturbance_sizes = sizes.inputs if model == "input" else sizes.outputs
     qw = scipy.linalg.block_diag(
-        _covariance(process_noise, n, DEFAULT_STATE_NOISE),
-        (
-            np.diag(input_disturbance_noise(a_, b_, c_))
-            if disturbance_noise is None and model == "input"
-            else _covariance(disturbance_noise, nd, DEFAULT_DISTURBANCE_NOISE)
-        ),
+        _covariance(process_noise, n, DEFAULT_STATE_NOISE, sizes=sizes.states),
+        _covariance(disturbance_noise, nd, DEFAULT_DISTURBANCE_NOISE, sizes=disturbance_sizes[:nd]),
     )
-    rv = _covariance(measurement_noise, p, DEFAULT_MEASUREMENT_NOISE)
+    rv = _covariance(measurement_noise, p, DEFAULT_MEASUREMENT_NOISE, sizes=sizes.outputs)
     gain, cov, innovation = kalman_filter(a_aug, c_aug, qw, rv)
     error_matrix = (np.eye(n + nd) - gain @ c_aug) @ a_aug
     poles = eigenvalues_by_modulus(error_matrix)
