@@ -213,7 +213,7 @@ export function drawResponses(container, answer, request) {
     drawn.push(div);
   });
   const inputs = columns.inputs || [];
-  const initial = request?.scenario?.initial?.input ?? request?.model?.operating_point?.input ?? null;
+  const initial = request?.scenario?.initial?.input ?? request?.model?.operating_point?.inputs ?? null;
   inputs.forEach((name, j) => {
     const signal = plant.inputs?.[j] ?? { name };
     const title = axisTitle(signal, name);

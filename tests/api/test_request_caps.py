@@ -77,6 +77,9 @@ def test_the_batch_cap_is_a_422_naming_items(make_client, example):
 
 
 def test_a_design_beyond_the_time_limit_is_a_503_and_the_service_recovers(make_client, example, rng):
+    # Load cannot change the first answer: the call is handed to an idle solver at once, and a
+    # design of seconds cannot finish within 0.2 s on any machine, so the limit runs out while
+    # solving however slow the machine is; the recovery is checked under the default limit.
     client = make_client(request_timeout_seconds=0.2)
     body = assert_problem(client.post("/design", json=slow_request(rng)), 503, "time-limit")
     assert "0.2 s" in body["detail"] and "while solving" in body["detail"]

@@ -11,6 +11,8 @@ solver uses) and steady-state targets by ``numpy.linalg.solve`` of the target eq
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pytest
 import scipy.signal
@@ -308,3 +310,74 @@ def test_terminal_fixed_law_with_a_measured_disturbance_is_the_run():
         policy=lambda **kw: policy(**kw),
     )
     np.testing.assert_allclose(stepped.inputs, run.inputs, rtol=0, atol=1e-12)
+
+
+def test_terminal_qp_with_move_blocking_solves_the_blocked_cost():
+    # Moves only at steps 0, 2 and 5 of Hp = 8: the blocked design's G and Gamma hold one
+    # column block per free move (design.prediction.moves, design.terminal.moves). The QP's
+    # linear term is minus the gradient of the whole blocked cost at dU = 0, formed by hand,
+    # and with an input limit that binds its solution is the minimizer of that cost under
+    # the limit found by scipy.optimize.minimize (SLSQP, an independent general-purpose solver).
+    from scipy.optimize import minimize
+
+    design = design_controller(
+        A, B, C, output_weight=Q, move_weight=R, prediction=8, control=6, terminal="riccati", blocking=(0, 2, 5)
+    )
+    g, gamma, p_t = design.prediction.moves, design.terminal.moves, design.terminal.matrix
+    free_moves = g.shape[1]
+    assert free_moves == 3 * 2
+    rng = np.random.default_rng(11)
+    error, free, u = rng.normal(size=16), rng.normal(size=16), np.array([0.1, -0.2])
+    e_t = rng.normal(size=6)
+    weights = np.kron(np.eye(8), np.diag(Q))
+    weights[-2:, -2:] = 0.0  # the last step's output weight gives way to P
+
+    def blocked_qp(limits):
+        # as service.pipeline.limits builds it: the QP's moves are the free (blocked) moves
+        return MoveQP(
+            prediction=dataclasses.replace(design.prediction, control=3),
+            hessian=design.hessian,
+            weighted=design.weighted,
+            output_root=design.output_root,
+            limits=limits,
+            terminal_rows=(design.terminal.weighted_moves, design.terminal.root),
+        )
+
+    problem = blocked_qp(_wide()).problem(error=error, free_prediction=free, previous_input=u, terminal_error=e_t)
+    expected = g.T @ weights @ error + gamma.T @ p_t @ e_t
+    np.testing.assert_allclose(-problem.linear[:free_moves], expected, rtol=1e-12, atol=1e-12)
+
+    limit = 0.15
+    limits = Limits(
+        input_min=np.full(2, -limit) + u,
+        input_max=np.full(2, limit) + u,
+        move_max=np.full(2, np.inf),
+        output_min=np.full(2, -np.inf),
+        output_max=np.full(2, np.inf),
+        output_softness=np.full(2, 1e3),
+    )
+    solution = blocked_qp(limits).solve(error=error, free_prediction=free, previous_input=u, terminal_error=e_t)
+    # the cost written out: 0.5 dU' H dU - (G' W E + Gamma' P e_t)' dU with the Hessian formed
+    # by hand, H = G' W G + R (one move weight per free move) + Gamma' P Gamma
+    hessian = g.T @ weights @ g + np.kron(np.eye(3), np.diag(R)) + gamma.T @ p_t @ gamma
+
+    def cost(du):
+        return 0.5 * du @ hessian @ du - expected @ du
+
+    # |u + cumulative moves| within the limit around u at every free move
+    steps = np.kron(np.tril(np.ones((3, 3))), np.eye(2))
+    bounds = [
+        {"type": "ineq", "fun": lambda du: limit - steps @ du},
+        {"type": "ineq", "fun": lambda du: limit + steps @ du},
+    ]
+    best = minimize(
+        cost,
+        np.zeros(free_moves),
+        jac=lambda du: hessian @ du - expected,
+        constraints=bounds,
+        method="SLSQP",
+        options={"ftol": 1e-14, "maxiter": 500},
+    )
+    assert best.success
+    np.testing.assert_allclose(solution.moves[:free_moves], best.x, atol=1e-6)
+    assert np.abs(steps @ solution.moves[:free_moves]).max() <= limit + 1e-9

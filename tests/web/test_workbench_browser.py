@@ -219,6 +219,22 @@ def test_every_bundled_example_runs_and_every_chart_is_drawn(workbench, server):
             assert peak["x"] == [block["peak_sensitivity_frequency"]] and peak["y"] == [block["peak_sensitivity"]]
 
 
+def test_the_first_move_of_a_run_in_absolute_units_starts_from_the_operating_point(workbench, server):
+    # With model.operating_point and no scenario.initial.input, u(-1) is the operating point's input
+    # (the request's deviations start at zero), so the first move is u(0) minus it, not u(0).
+    page = workbench
+    name = "simulate_request_column.json"
+    request = load_example(name)
+    assert "initial" not in request["scenario"]
+    answer = server.post("/simulate", request).json()
+    run_example(page, name)
+    for j, start in enumerate(request["model"]["operating_point"]["inputs"]):
+        drawn = {t["name"]: t for t in drawn_points(page, f"#response-input-{j}")}
+        u = [row[j] for row in answer["inputs"]]
+        assert drawn["move"]["y"][0] == pytest.approx(u[0] - start, abs=1e-9)
+        assert drawn["move"]["y"][1:] == pytest.approx(np.diff(u).tolist(), abs=1e-9)
+
+
 def test_a_run_under_limits_shows_limits_and_moves_and_downloads_its_series(workbench, server):
     page = workbench
     name = "simulate_request_limits.json"
