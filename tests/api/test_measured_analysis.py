@@ -131,14 +131,37 @@ def test_robustness_with_two_sensors_breaks_the_output_loop_at_the_sensors(clien
     assert rb["plant_output"]["sensitivity"]["smallest"] != rb["plant_output"]["sensitivity"]["largest"]
 
 
-def test_robustness_refuses_a_measured_feed_through_and_says_why(client):
-    body = _body(d_measured=[[0.2]])
-    fields = _design_fields(body)
-    fields["analysis"] = {"frequency": True, "points": POINTS}
-    r = client.post("/design", json=fields)
-    assert r.status_code == 422, r.text
-    found = {e["pointer"]: e["detail"] for e in r.json()["errors"]}
-    assert "algebraic loop" in found["/model/d_measured"] and "not supported yet" not in found["/model/d_measured"]
+def test_robustness_with_a_measured_feed_through_equals_python_control(client):
+    # The law reads y - D_m u of its own command u.  Neither the filter nor the design depends on
+    # D_m (tests/solver/test_estimation.py), so the law on the corrected measurement is the one
+    # exported for the model without it, K0, and the controller from the sensor is
+    # u = K0 (y - D_m u): python-control's feedback(K0, D_m) = K0 (I + D_m K0)^-1.
+    dm = np.array([[0.2]])
+    body = _body(d_measured=dm.tolist())
+    rb, grid = _robustness(client, body)
+    k0_plant, k0, ts = _systems(client, _body())
+    controller = control.feedback(k0, control.ss([], [], [], dm, ts))
+    plant = control.ss(A, B, CM, dm, ts)
+    at_input, at_output = -controller * plant, -plant * controller
+    _check_loop(rb["plant_input"], at_input, 1, ts, grid)
+    _check_loop(rb["plant_output"], at_output, 1, ts, grid)
+    gm, pm, _, wpc, wgc, _ = control.stability_margins(at_input)  # python-control's margins
+    margins = rb["plant_input"]["margins"]
+    assert margins["gain_margin"] == pytest.approx(gm, rel=1e-6)
+    assert margins["phase_margin"] == pytest.approx(pm, rel=1e-6)
+    assert margins["gain_crossover_frequency"] == pytest.approx(wgc, rel=1e-6)
+    # the feed-through changes the loop broken at the plant input (the law's correction uses its
+    # own command, the plant's feed-through the injected one)
+    plain = control.stability_margins(-k0 * k0_plant)
+    assert abs(plain[0] - gm) > 1e-3 * gm
+    # closed again, the correction cancels the feed-through: the loop's poles are those of the
+    # loop without it, and of /simulate's whole loop (the separation principle, common practice)
+    closed = control.feedback(plant, controller, sign=1)
+    assert rb["spectral_radius"] == pytest.approx(np.abs(closed.poles()).max(), rel=1e-9)
+    run = copy.deepcopy(body)
+    run["scenario"] = {"steps": 5}
+    whole = _post(client, "/simulate", run)["whole_loop"]
+    assert rb["spectral_radius"] == pytest.approx(whole["spectral_radius"], rel=1e-8)
 
 
 # --------------------------------------------------------------------------- model error
