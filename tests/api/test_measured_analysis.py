@@ -10,6 +10,10 @@ References, each independent of the service's own frequency and model-error code
   ``control.stability_margins`` and its frequency responses evaluated by python-control; the
   loop broken at the plant input ``L_i = -K P`` and at the sensors ``L_o = -P K`` with
   ``S = (I + L)^-1``, ``T = I - S`` (common practice);
+- with a measured feed-through ``D_m``: the controller from the sensor ``u = K0 (y - D_m u)``
+  as python-control's ``feedback(K0, D_m)``, K0 the law exported for the model without it
+  (neither filter nor design depends on ``D_m``), and the true sensor
+  ``f z^-d (C_m (zI - A)^-1 B + D_m)`` built from ``control.tf`` and ``control.ss``;
 - /simulate's ``true_loop`` on a true plant written out by hand: the model's gain times the
   factor and the extra dead time as a shift register on the heater (its own realization), the
   true plant's sensor reading the true states.
@@ -226,10 +230,38 @@ def test_each_model_error_case_equals_simulates_true_loop_through_the_sensor(cli
     assert nominal["spectral_radius"] == pytest.approx(whole["spectral_radius"], rel=1e-6)
 
 
-def test_the_model_error_study_refuses_a_measured_feed_through_and_says_why(client):
-    fields = _design_fields(_body(d_measured=[[0.2]]))
-    fields["analysis"] = {"model_error": {}}
-    r = client.post("/design", json=fields)
-    assert r.status_code == 422, r.text
-    found = {e["pointer"]: e["detail"] for e in r.json()["errors"]}
-    assert "algebraic loop" in found["/model/d_measured"]
+def test_the_model_error_study_with_a_measured_feed_through_equals_python_control(client):
+    # /simulate takes a true plant with the model's own d_measured only, so the reference here is
+    # python-control: the true sensor f z^-d (C_m (zI - A)^-1 B + D_m), its feed-through scaled and
+    # delayed with the rest, closed with the controller from the sensor u = K0 (y - D_m u) of the
+    # model (feedback(K0, D_m), as in the robustness test above) by control.feedback.
+    dm = np.array([[0.2]])
+    body = _body(d_measured=dm.tolist(), noise=False)
+    factors, extra = [0.5, 1.0, 1.5, 3.0, 6.0], [0, 2]
+    fields = _design_fields(body)
+    fields["analysis"] = {"model_error": {"gain_factors": factors, "extra_dead_time": extra}}
+    report = _post(client, "/design", fields)["model_error"]
+    _, k0, ts = _systems(client, _body())
+    controller = control.feedback(k0, control.ss([], [], [], dm, ts))
+    sensor = control.ss(A, B, CM, dm, ts)
+    verdicts = set()
+    for case in report["cases"]:
+        delay = control.ss(control.tf([1.0], [1.0] + [0.0] * case["extra_dead_time"], ts))
+        true = case["gain_factor"] * (sensor * delay)
+        closed = control.feedback(true, controller, sign=1)
+        radius = np.abs(closed.poles()).max()
+        assert case["spectral_radius"] == pytest.approx(radius, rel=1e-6), case
+        verdicts.add(case["verdict"])
+    assert "stable" in verdicts and "unstable" in verdicts
+    # the nominal case is /simulate's whole loop (the estimator cancels the model's own D_m)
+    nominal = next(c for c in report["cases"] if c["gain_factor"] == 1.0 and c["extra_dead_time"] == 0)
+    run = copy.deepcopy(body)
+    run["scenario"] = {"steps": 5}
+    whole = _post(client, "/simulate", run)["whole_loop"]
+    assert nominal["spectral_radius"] == pytest.approx(whole["spectral_radius"], rel=1e-6)
+    # the feed-through's gain error counts: without D_m the perturbed loops differ
+    plain = _design_fields(_body(noise=False))
+    plain["analysis"] = fields["analysis"]
+    other = _post(client, "/design", plain)["model_error"]["cases"]
+    moved = [abs(a["spectral_radius"] - b["spectral_radius"]) for a, b in zip(report["cases"], other, strict=True)]
+    assert max(moved) > 1e-3
