@@ -165,18 +165,19 @@ def law_offsets(
 ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """Return ``w0`` (nw,) and ``u0`` (m,): the operating point of each law input and manipulated variable.
 
-    ``w0`` is ``[z0; z0; d0; u0]`` (measurements, setpoints, measured disturbances, input
+    ``w0`` is ``[y0; z0; d0; u0]`` (measurements, setpoints, measured disturbances, input
     targets when the law takes them), in engineering units; zeros without an operating point.
+    ``y0`` is ``operating_point.measured`` for measured outputs of their own, else ``z0``.
     """
     p, m, md = law.measured, law.inputs, law.disturbances
     if point is None:
         return np.zeros(p + law.setpoints + md + law.targets), np.zeros(m)
-    # the measurements are the controlled outputs here (check_operating_point refuses the others)
-    assert p == law.setpoints and not plant.measured_own, (p, law.setpoints)
-    z0 = np.array([point.output(i) for i in range(p)], dtype=float)
+    y0 = np.array(point.measured_values(plant), dtype=float)  # check_operating_point refuses full_state
+    assert y0.size == p, (y0.size, p)
+    z0 = np.array([point.output(i) for i in range(law.setpoints)], dtype=float)
     d0 = np.array([point.disturbance(k) for k in range(md)], dtype=float)
     u0 = np.array([point.input(j) for j in range(m)], dtype=float)
-    return np.concatenate([z0, z0, d0, u0 if law.targets else np.zeros(0)]), u0
+    return np.concatenate([y0, z0, d0, u0 if law.targets else np.zeros(0)]), u0
 
 
 def compute_export(inputs: ExportInputs) -> ExportOutcome:

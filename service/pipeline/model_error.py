@@ -96,16 +96,6 @@ def check_model_error(
                     f"({register} per sample); this service accepts at most {caps.max_states}",
                 )
             )
-    if not full_state and np.any(plant.d_measured):
-        problems.append(
-            FieldProblem(
-                pointer("model", "d_measured"),
-                "the model-error study scales every gain of the plant, the measured feed-through's too, while the "
-                "estimator subtracts the model's D_m u(k): the controller would then read its own command back "
-                "through the gain error at the same sample (an algebraic loop the study does not model). Leave "
-                "d_measured out (or zero) for the study, or use a full_state estimator",
-            )
-        )
     if not problems:
         work = model_error_work(plant, estimator, gain_factors=len(factors), extra_dead_times=delays)
         if work > caps.max_model_error_work:
@@ -127,8 +117,9 @@ def compute_model_error(
 ) -> ModelErrorStudy:
     """The study on the scaled model with the design and estimator of that model.
 
-    The perturbed plant is that of what the estimator reads: the measured outputs (scaled by
-    their spans; the controlled outputs unless the model has measured outputs of its own).
+    The perturbed plant is that of what the estimator reads: the measured outputs with their
+    feed-through (scaled by their spans; the controlled outputs unless the model has measured
+    outputs of its own).
 
     Raises
     ------
@@ -136,15 +127,26 @@ def compute_model_error(
         Pointer ``/analysis/model_error`` when a spectral radius is not a finite number.
     """
     loop = control_loop(design, estimator)
-    measured = scaled_measured(plant)[0] if plant.measured_own else scaled.c
-    study = model_error_study(
-        loop,
-        scaled.a,
-        scaled.b,
-        measured,
-        gain_factors=inputs.gain_factors,
-        extra_dead_times=inputs.extra_dead_times,
-    )
+    measured, feedthrough = scaled_measured(plant) if plant.measured_own else (scaled.c, None)
+    if feedthrough is not None and not np.any(feedthrough):
+        feedthrough = None
+    try:
+        study = model_error_study(
+            loop,
+            scaled.a,
+            scaled.b,
+            measured,
+            feedthrough=None if estimator.full_state else feedthrough,
+            gain_factors=inputs.gain_factors,
+            extra_dead_times=inputs.extra_dead_times,
+        )
+    except np.linalg.LinAlgError as exc:  # I + K L (f - 1) D_m singular
+        raise NumericalError(
+            "With a gain factor the true sensors' feed-through differs from the d_measured the estimator "
+            "subtracts, and for one factor the command is not determined by the measurements (the loop through "
+            "that difference cancels the command). Give other gain factors, or change d_measured",
+            field=_WHERE,
+        ) from exc
     if not all(math.isfinite(case.spectral_radius) for case in study.cases):
         raise NumericalError(
             "The poles of a perturbed loop are not finite numbers: the model's numbers or the factors are too "

@@ -1,12 +1,17 @@
 """The operating point: absolute engineering units at the edge, deviations in the solver.
 
-A linear model holds around a steady state ``(u0, z0, d0)``, ``model.operating_point``.  With
+A linear model holds around a steady state ``(u0, z0, d0)``, ``model.operating_point``, with
+``y0`` (``measured``) the steady values of measured outputs of their own (``c_measured``): the
+deviation model maps deviations to deviations, so it cannot give the sensors' absolute values
+and a request that reports or reads them must give them (without measured outputs of their own
+they are ``z0``).  With
 it, a request's values are absolute: :func:`to_deviations` subtracts the operating point from
 each (input limits, the initial input and the input targets by ``u0``; output limits, zone
-edges, setpoints and the initial setpoint by ``z0``; measured disturbance values by ``d0``)
-and drops the block, so the rest of the pipeline sees the deviation request it always saw;
+edges, setpoints and the initial setpoint by ``z0``; measured disturbance values by ``d0``;
+no request value is in the measured outputs' units: noise is a difference) and drops the block, so the rest of the pipeline sees the deviation request it always saw;
 :func:`design_to_absolute` and
-:func:`simulation_to_absolute` add it back to every absolute value of the answer.  Moves,
+:func:`simulation_to_absolute` add it back to every absolute value of the answer (the measured
+series by ``y0``).  Moves,
 additive disturbances, offsets and figures of merit are differences and stay as they are.
 Each shift is one IEEE subtraction or addition per value, so the absolute run is the
 deviation run shifted by the operating point, bit for bit.
@@ -41,11 +46,16 @@ __all__ = [
 
 @dataclass(frozen=True)
 class OperatingPointValues:
-    """``u0``, ``z0`` and ``d0`` as given (a missing list is zeros of the right length later)."""
+    """``u0``, ``z0``, ``d0`` and ``y0`` as given (a missing list is zeros of the right length later).
+
+    ``measured`` (``y0``) holds the steady values of measured outputs of their own; without
+    them the measured outputs are the controlled ones and their values are ``z0``.
+    """
 
     inputs: tuple[float, ...] | None
     outputs: tuple[float, ...] | None
     disturbances: tuple[float, ...] | None
+    measured: tuple[float, ...] | None = None
 
     def input(self, j: int) -> float:
         return 0.0 if self.inputs is None else self.inputs[j]
@@ -55,6 +65,16 @@ class OperatingPointValues:
 
     def disturbance(self, k: int) -> float:
         return 0.0 if self.disturbances is None else self.disturbances[k]
+
+    def measured_values(self, plant: DiscretePlant) -> list[float]:
+        """``y0`` of each measured output: ``measured`` for measured outputs of their own, else ``z0``.
+
+        Only for a plant whose operating point :func:`check_operating_point` accepted.
+        """
+        if plant.measured_own:
+            assert self.measured is not None and len(self.measured) == plant.c_measured.shape[0]
+            return list(self.measured)
+        return [self.output(i) for i in range(len(plant.outputs))]
 
 
 def _minus(values: Sequence[float | None] | None, point: tuple[float, ...] | None) -> list[float | None] | None:
@@ -76,6 +96,7 @@ def to_deviations(request: DesignRequest) -> tuple[DesignRequest, OperatingPoint
         inputs=None if op.inputs is None else tuple(op.inputs),
         outputs=None if op.outputs is None else tuple(op.outputs),
         disturbances=None if op.disturbances is None else tuple(op.disturbances),
+        measured=None if op.measured is None else tuple(op.measured),
     )
     update: dict[str, object] = {"model": request.model.model_copy(update={"operating_point": None})}
     if request.zones is not None and point.outputs is not None and len(request.zones) == len(point.outputs):
@@ -150,28 +171,46 @@ def check_operating_point(request: DesignRequest, point: OperatingPointValues, p
                     f"needs one value per {what[:-1]} ({len(signals)}), got {len(values)}",
                 )
             )
-    if isinstance(request, SimulateRequest) and plant.measured_own:
+    py = int(plant.c_measured.shape[0])
+    full_state = isinstance(request, ExportRequest) and request.estimator.kind == "full_state"
+    if point.measured is not None and not plant.measured_own:
         problems.append(
             FieldProblem(
-                pointer("model", "operating_point"),
-                "the run would report the measured outputs (c_measured, d_measured) around an operating point the "
-                "request does not give them (operating_point holds the controlled outputs' values only), so their "
-                "series could only be deviations beside absolute ones. Simulate this model in deviations (leave "
-                "operating_point out), or measure the controlled outputs",
+                pointer("model", "operating_point", "measured"),
+                "this model measures its controlled outputs (it has no c_measured or d_measured of its own), whose "
+                "operating values are operating_point.outputs; leave measured out",
             )
         )
-    if isinstance(request, ExportRequest) and (plant.measured_own or request.estimator.kind == "full_state"):
-        what = (
-            "the plant states a full_state law reads"
-            if request.estimator.kind == "full_state"
-            else ("the measured outputs (c_measured, d_measured) the law reads")
+    elif point.measured is not None and len(point.measured) != py:
+        problems.append(
+            FieldProblem(
+                pointer("model", "operating_point", "measured"),
+                f"needs one value per measured output ({py}, the rows of c_measured), got {len(point.measured)}",
+            )
         )
+    elif (
+        point.measured is None
+        and plant.measured_own
+        and (isinstance(request, SimulateRequest) or (isinstance(request, ExportRequest) and not full_state))
+    ):
+        what = "the run would report" if isinstance(request, SimulateRequest) else "the law would read"
+        problems.append(
+            FieldProblem(
+                pointer("model", "operating_point", "measured"),
+                f"{what} the measured outputs (c_measured, d_measured) in absolute units, but their operating "
+                f"values cannot be derived: the model maps deviations to deviations, so at the operating point "
+                f"every measured deviation is zero whatever the sensors read. Give operating_point.measured, the "
+                f"{py} sensor value(s) at the operating point (engineering units), or leave operating_point out",
+            )
+        )
+    if full_state:
         problems.append(
             FieldProblem(
                 pointer("model", "operating_point"),
-                f"the law would read {what} in absolute units, but operating_point gives no values for them "
-                f"(it holds the controlled outputs', inputs' and measured disturbances' only). Export this law in "
-                f"deviations (leave operating_point out)",
+                "the law would read the plant states a full_state law reads in absolute units, but "
+                "operating_point gives no values for them (it holds the inputs', controlled outputs', measured "
+                "disturbances' and measured outputs' only). Export this law in deviations (leave operating_point "
+                "out)",
             )
         )
     if isinstance(request, SimulateRequest) and request.scenario.true_plant is not None:
@@ -268,7 +307,8 @@ def simulation_to_absolute(response: SimulateResponse, point: OperatingPointValu
     u0 = [point.input(j) for j in range(m)]
     d0 = [point.disturbance(k) for k in range(md)]
     response.outputs = [[v + z0[i] for i, v in enumerate(row)] for row in response.outputs]
-    response.measured = [[v + z0[i] for i, v in enumerate(row)] for row in response.measured]
+    y0 = point.measured_values(plant)  # the sensors' own values, or the controlled outputs'
+    response.measured = [[v + y0[i] for i, v in enumerate(row)] for row in response.measured]
     response.setpoints = [[v + z0[i] for i, v in enumerate(row)] for row in response.setpoints]
     response.inputs = [[v + u0[j] for j, v in enumerate(row)] for row in response.inputs]
     response.measured_disturbances = [[v + d0[k] for k, v in enumerate(row)] for row in response.measured_disturbances]

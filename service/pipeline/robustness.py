@@ -33,7 +33,7 @@ __all__ = ["frequency_problems", "robustness_report"]
 def frequency_problems(
     plant: DiscretePlant, estimator: EstimatorInputs, *, points: int, caps: Caps
 ) -> list[FieldProblem]:
-    """What stops the analysis of this request: a measured feed-through, or too much work.
+    """What stops the analysis of this request: too much work.
 
     Parameters
     ----------
@@ -48,19 +48,6 @@ def frequency_problems(
     list of FieldProblem
     """
     problems: list[FieldProblem] = []
-    full_state = estimator.kind == "full_state"
-    if not full_state and np.any(plant.d_measured):
-        problems.append(
-            FieldProblem(
-                pointer("model", "d_measured"),
-                "the robustness analysis takes a strictly proper path from the inputs to the measured "
-                "outputs; with a measured feed-through the controller reads its own command back through D_m "
-                "(the estimator subtracts D_m u(k)), an algebraic loop inside the controller the analysis does "
-                "not model. Leave "
-                "d_measured out (or zero) for the analysis, use a full_state estimator, or leave "
-                "analysis.frequency false",
-            )
-        )
     work = loop_frequency_work(plant, estimator, points=points)
     if work > caps.max_frequency_work:
         per_point = work / (points + REFINEMENT_EVALUATIONS)

@@ -14,8 +14,9 @@ sample time:
 5. the state is updated with the applied inputs: ``s := Ap s + Bp w + Bu u``.
 
 With an operating point the block's signals are absolute (engineering units) and its state
-stays in deviations: the operating point is declared as constants (``<tag>_op``), each
-measurement, setpoint, measured disturbance and input target has its operating point
+stays in deviations: the operating point is declared as constants (``<tag>_op``; a sensor of
+its own has its own constant, ``operating_point.measured``, beside the controlled output's
+for its setpoint), each measurement, setpoint, measured disturbance and input target has its operating point
 subtracted before the law, the law's inputs have theirs added (``u = u_dev + u0``), the clamp
 works on the absolute inputs against absolute limits (the previous input is ``s_prev + u0``),
 and the state takes the applied input's deviation ``u - u0``
@@ -201,9 +202,15 @@ def structured_text(
     w0 = np.zeros(p + pz + md + len(target)) if input_offset is None else np.asarray(input_offset, dtype=float)
     u0 = np.zeros(m) if output_offset is None else np.asarray(output_offset, dtype=float)
     if absolute:  # operating-point constants and the deviations the law reads
-        # the measurements are the controlled outputs (the export refuses an operating point otherwise)
-        assert p == pz, (p, pz)
+        # the measurements' operating points (w0[:p]), then the setpoints' (w0[p:p+pz]): the same
+        # constants when the measured outputs are the controlled ones
         op_out = [names.take(f"{name}_op") for name in measured]
+        shared = (
+            p == pz
+            and np.array_equal(w0[:p], w0[p : p + pz])
+            and [sig.tag for sig in inputs[:p]] == [sig.tag for sig in inputs[p : p + pz]]
+        )
+        op_sp = op_out if shared else [names.take(f"{st_identifier(sig.tag)}_op") for sig in inputs[p : p + pz]]
         op_dist = [names.take(f"{name}_op") for name in disturbance]
         op_in = [names.take(f"{name}_op") for name in manipulated]
         r_dev = [names.take(f"r_{i + 1}") for i in range(pz)]
@@ -213,7 +220,7 @@ def structured_text(
         applied = [names.take(f"v_{j + 1}") for j in range(m)]
         signal = [*y, *r_dev, *d_dev, *t_dev]
     else:
-        op_out, op_dist, op_in, r_dev, d_dev, t_dev, last, applied = [], [], [], [], [], [], [], []
+        op_out, op_sp, op_dist, op_in, r_dev, d_dev, t_dev, last, applied = [], [], [], [], [], [], [], [], []
         signal = [*y, *setpoint, *disturbance, *target]
 
     def unit(sig: LawSignal) -> str:
@@ -303,6 +310,10 @@ def structured_text(
         decl.append("VAR CONSTANT")
         for i, name in enumerate(op_out):
             decl.append(f"    {name} : LREAL := {_literal(float(w0[i]))}; (* operating point of {measured[i]} *)")
+        if op_sp is not op_out:
+            for i, name in enumerate(op_sp):
+                value = float(w0[p + i])
+                decl.append(f"    {name} : LREAL := {_literal(value)}; (* operating point of {setpoint[i]} *)")
         for k, name in enumerate(op_dist):
             value = float(w0[p + pz + k])
             decl.append(f"    {name} : LREAL := {_literal(value)}; (* operating point of {disturbance[k]} *)")
@@ -330,7 +341,7 @@ def structured_text(
         ]
     if absolute:
         body.append("(* deviations from the operating point *)")
-        body += [f"{r_dev[i]} := {setpoint[i]} - {op_out[i]};" for i in range(pz)]
+        body += [f"{r_dev[i]} := {setpoint[i]} - {op_sp[i]};" for i in range(pz)]
         body += [f"{d_dev[k]} := {disturbance[k]} - {op_dist[k]};" for k in range(md)]
         body += [f"{t_dev[j]} := {target[j]} - {op_in[j]};" for j in range(len(target))]
         body += [f"{last[j]} := {s[na + j]} + {op_in[j]};" for j in range(m)]

@@ -110,7 +110,8 @@ class ExportResponse(ResponseModel):
     )
     input_offset: list[float] = Field(
         description="w0, per law input in the order of inputs: the operating point (model.operating_point) of "
-        "the output a measurement or setpoint belongs to, of the measured disturbance, of the manipulated "
+        "each measurement (operating_point.measured for measured outputs of their own, else the controlled "
+        "output's value), of the output a setpoint belongs to, of the measured disturbance, of the manipulated "
         "variable an input target belongs to. The matrices act on w - w0. Zeros without an operating point."
     )
     output_offset: list[float] = Field(

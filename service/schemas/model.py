@@ -33,8 +33,9 @@ class _Tagged(RequestModel):
         description="The steady values at which this linear model holds (engineering units). With it, "
         "limits, setpoints, initial input and setpoint, measured disturbance values, every series, CSV "
         "column and limit report are absolute; the solver works in deviations from it, and the gains "
-        "act on deviations (du = Kr (r - z0) - Kx x - Ku (u(k-1) - u0)). Without it, all those values are "
-        "deviations from the model's origin.",
+        "act on deviations (du = Kr (r - z0) - Kx x - Ku (u(k-1) - u0)). Measured outputs of their own "
+        "(c_measured) need their operating values in operating_point.measured for /simulate and "
+        "/design/export. Without it, all those values are deviations from the model's origin.",
     )
 
 

@@ -42,3 +42,11 @@ class OperatingPoint(RequestModel):
     inputs: list[FiniteFloat] | None = Field(default=None, description="One value per manipulated variable.")
     outputs: list[FiniteFloat] | None = Field(default=None, description="One value per controlled output.")
     disturbances: list[FiniteFloat] | None = Field(default=None, description="One value per measured disturbance.")
+    measured: list[FiniteFloat] | None = Field(
+        default=None,
+        description="One value per measured output of its own (model.c_measured's rows): the sensors' steady "
+        "values at the operating point, engineering units. The deviation model cannot give them (it maps "
+        "deviations to deviations), so /simulate and /design/export need them for a model with measured outputs "
+        "of their own; the measured series, CSV columns and the exported law's sensor inputs are then absolute. "
+        "Leave it out when the measured outputs are the controlled ones (their values are 'outputs').",
+    )

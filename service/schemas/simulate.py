@@ -261,7 +261,8 @@ class SimulateResponse(ResponseModel):
     measured: list[list[float]] = Field(
         description="The measured outputs y_m(k) = C_m x(k) + D_m u(k), with noise and the output disturbances "
         "they see (the controlled outputs with noise when the model has no measured outputs of its own). "
-        "The estimator reads y_m(k) - D_m u(k), u(k) the input applied at step k."
+        "The estimator reads y_m(k) - D_m u(k), u(k) the input applied at step k. Absolute with "
+        "model.operating_point: around operating_point.measured for measured outputs of their own."
     )
     setpoints: list[list[float]]
     inputs: list[list[float]] = Field(description="u(k), applied from step k to k+1.")

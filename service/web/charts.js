@@ -247,12 +247,19 @@ export function drawResponses(container, answer, request) {
   return fitToCells(drawn);
 }
 
+/** " (tag, tag)": the signals the output-side loop is broken at (the sensors' with measured outputs of their own). */
+export function outputSignals(robustness) {
+  const names = robustness.plant_output_signals;
+  if (!Array.isArray(names) || !names.length) return "";
+  return names.length <= 4 ? ` (${names.join(", ")})` : ` (${names.slice(0, 3).join(", ")}, … ${names.length} signals)`;
+}
+
 /** Singular values of S and T over frequency at the plant output and input, peaks marked. */
 export function drawRobustness(container, robustness) {
   container.replaceChildren();
   const drawn = [];
   const frequencies = robustness.frequencies || [];
-  for (const [key, where] of [["plant_output", "at the plant output"], ["plant_input", "at the plant input"]]) {
+  for (const [key, where] of [["plant_output", `at the plant output${outputSignals(robustness)}`], ["plant_input", "at the plant input"]]) {
     const block = robustness[key];
     if (!block || !block.sensitivity) continue;
     const div = chartBox(container, {

@@ -2,7 +2,7 @@
 // Every URL is relative to the page, so the page works at the root and under a prefix.
 
 import { Editor, prettyJson, syntaxErrorOffset } from "./editor.js";
-import { drawPoleMap, drawResponses, drawRobustness, drawStepResponses, drawSweep, saveImage } from "./charts.js";
+import { drawPoleMap, drawResponses, drawRobustness, drawStepResponses, drawSweep, outputSignals, saveImage } from "./charts.js";
 import { fmt, matrixTable, recordTable } from "./tables.js";
 
 const KEY_STORE = "movecast.api-key";
@@ -370,7 +370,7 @@ function renderPoleTable(design, estimator) {
 
 function robustnessText(r) {
   const parts = [];
-  for (const [key, where] of [["plant_output", "plant output"], ["plant_input", "plant input"]]) {
+  for (const [key, where] of [["plant_output", `plant output${outputSignals(r)}`], ["plant_input", "plant input"]]) {
     const b = r[key];
     if (!b) continue;
     parts.push(`At the ${where}: peak |S| ${fmt(b.peak_sensitivity, 4)} (${fmt(b.peak_sensitivity_db, 3)} dB) at ${fmt(b.peak_sensitivity_frequency, 4)} rad per time unit, peak |T| ${fmt(b.peak_complementary, 4)} at ${fmt(b.peak_complementary_frequency, 4)}, bandwidth ${fmt(b.bandwidth, 4)}.`);

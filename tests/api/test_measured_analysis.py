@@ -10,6 +10,10 @@ References, each independent of the service's own frequency and model-error code
   ``control.stability_margins`` and its frequency responses evaluated by python-control; the
   loop broken at the plant input ``L_i = -K P`` and at the sensors ``L_o = -P K`` with
   ``S = (I + L)^-1``, ``T = I - S`` (common practice);
+- with a measured feed-through ``D_m``: the controller from the sensor ``u = K0 (y - D_m u)``
+  as python-control's ``feedback(K0, D_m)``, K0 the law exported for the model without it
+  (neither filter nor design depends on ``D_m``), and the true sensor
+  ``f z^-d (C_m (zI - A)^-1 B + D_m)`` built from ``control.tf`` and ``control.ss``;
 - /simulate's ``true_loop`` on a true plant written out by hand: the model's gain times the
   factor and the extra dead time as a shift register on the heater (its own realization), the
   true plant's sensor reading the true states.
@@ -131,14 +135,37 @@ def test_robustness_with_two_sensors_breaks_the_output_loop_at_the_sensors(clien
     assert rb["plant_output"]["sensitivity"]["smallest"] != rb["plant_output"]["sensitivity"]["largest"]
 
 
-def test_robustness_refuses_a_measured_feed_through_and_says_why(client):
-    body = _body(d_measured=[[0.2]])
-    fields = _design_fields(body)
-    fields["analysis"] = {"frequency": True, "points": POINTS}
-    r = client.post("/design", json=fields)
-    assert r.status_code == 422, r.text
-    found = {e["pointer"]: e["detail"] for e in r.json()["errors"]}
-    assert "algebraic loop" in found["/model/d_measured"] and "not supported yet" not in found["/model/d_measured"]
+def test_robustness_with_a_measured_feed_through_equals_python_control(client):
+    # The law reads y - D_m u of its own command u.  Neither the filter nor the design depends on
+    # D_m (tests/solver/test_estimation.py), so the law on the corrected measurement is the one
+    # exported for the model without it, K0, and the controller from the sensor is
+    # u = K0 (y - D_m u): python-control's feedback(K0, D_m) = K0 (I + D_m K0)^-1.
+    dm = np.array([[0.2]])
+    body = _body(d_measured=dm.tolist())
+    rb, grid = _robustness(client, body)
+    k0_plant, k0, ts = _systems(client, _body())
+    controller = control.feedback(k0, control.ss([], [], [], dm, ts))
+    plant = control.ss(A, B, CM, dm, ts)
+    at_input, at_output = -controller * plant, -plant * controller
+    _check_loop(rb["plant_input"], at_input, 1, ts, grid)
+    _check_loop(rb["plant_output"], at_output, 1, ts, grid)
+    gm, pm, _, wpc, wgc, _ = control.stability_margins(at_input)  # python-control's margins
+    margins = rb["plant_input"]["margins"]
+    assert margins["gain_margin"] == pytest.approx(gm, rel=1e-6)
+    assert margins["phase_margin"] == pytest.approx(pm, rel=1e-6)
+    assert margins["gain_crossover_frequency"] == pytest.approx(wgc, rel=1e-6)
+    # the feed-through changes the loop broken at the plant input (the law's correction uses its
+    # own command, the plant's feed-through the injected one)
+    plain = control.stability_margins(-k0 * k0_plant)
+    assert abs(plain[0] - gm) > 1e-3 * gm
+    # closed again, the correction cancels the feed-through: the loop's poles are those of the
+    # loop without it, and of /simulate's whole loop (the separation principle, common practice)
+    closed = control.feedback(plant, controller, sign=1)
+    assert rb["spectral_radius"] == pytest.approx(np.abs(closed.poles()).max(), rel=1e-9)
+    run = copy.deepcopy(body)
+    run["scenario"] = {"steps": 5}
+    whole = _post(client, "/simulate", run)["whole_loop"]
+    assert rb["spectral_radius"] == pytest.approx(whole["spectral_radius"], rel=1e-8)
 
 
 # --------------------------------------------------------------------------- model error
@@ -203,10 +230,38 @@ def test_each_model_error_case_equals_simulates_true_loop_through_the_sensor(cli
     assert nominal["spectral_radius"] == pytest.approx(whole["spectral_radius"], rel=1e-6)
 
 
-def test_the_model_error_study_refuses_a_measured_feed_through_and_says_why(client):
-    fields = _design_fields(_body(d_measured=[[0.2]]))
-    fields["analysis"] = {"model_error": {}}
-    r = client.post("/design", json=fields)
-    assert r.status_code == 422, r.text
-    found = {e["pointer"]: e["detail"] for e in r.json()["errors"]}
-    assert "algebraic loop" in found["/model/d_measured"]
+def test_the_model_error_study_with_a_measured_feed_through_equals_python_control(client):
+    # /simulate takes a true plant with the model's own d_measured only, so the reference here is
+    # python-control: the true sensor f z^-d (C_m (zI - A)^-1 B + D_m), its feed-through scaled and
+    # delayed with the rest, closed with the controller from the sensor u = K0 (y - D_m u) of the
+    # model (feedback(K0, D_m), as in the robustness test above) by control.feedback.
+    dm = np.array([[0.2]])
+    body = _body(d_measured=dm.tolist(), noise=False)
+    factors, extra = [0.5, 1.0, 1.5, 3.0, 6.0], [0, 2]
+    fields = _design_fields(body)
+    fields["analysis"] = {"model_error": {"gain_factors": factors, "extra_dead_time": extra}}
+    report = _post(client, "/design", fields)["model_error"]
+    _, k0, ts = _systems(client, _body())
+    controller = control.feedback(k0, control.ss([], [], [], dm, ts))
+    sensor = control.ss(A, B, CM, dm, ts)
+    verdicts = set()
+    for case in report["cases"]:
+        delay = control.ss(control.tf([1.0], [1.0] + [0.0] * case["extra_dead_time"], ts))
+        true = case["gain_factor"] * (sensor * delay)
+        closed = control.feedback(true, controller, sign=1)
+        radius = np.abs(closed.poles()).max()
+        assert case["spectral_radius"] == pytest.approx(radius, rel=1e-6), case
+        verdicts.add(case["verdict"])
+    assert "stable" in verdicts and "unstable" in verdicts
+    # the nominal case is /simulate's whole loop (the estimator cancels the model's own D_m)
+    nominal = next(c for c in report["cases"] if c["gain_factor"] == 1.0 and c["extra_dead_time"] == 0)
+    run = copy.deepcopy(body)
+    run["scenario"] = {"steps": 5}
+    whole = _post(client, "/simulate", run)["whole_loop"]
+    assert nominal["spectral_radius"] == pytest.approx(whole["spectral_radius"], rel=1e-6)
+    # the feed-through's gain error counts: without D_m the perturbed loops differ
+    plain = _design_fields(_body(noise=False))
+    plain["analysis"] = fields["analysis"]
+    other = _post(client, "/design", plain)["model_error"]["cases"]
+    moved = [abs(a["spectral_radius"] - b["spectral_radius"]) for a, b in zip(report["cases"], other, strict=True)]
+    assert max(moved) > 1e-3

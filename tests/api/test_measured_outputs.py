@@ -358,6 +358,7 @@ def test_the_export_refuses_a_measured_feed_through_and_says_why(client):
 
 @pytest.mark.parametrize("kind", ["kalman", "full_state"])
 def test_the_export_refuses_an_operating_point_it_has_no_values_for(client, kind):
+    # with operating_point.measured the sensors' law is exported: tests/api/test_measured_operating_point.py
     body = _body()
     fields = {k: body[k] for k in ("model", "horizons", "weights", "estimator")}
     fields["model"]["operating_point"] = {"inputs": [1.0], "outputs": [20.0]}
@@ -366,7 +367,10 @@ def test_the_export_refuses_an_operating_point_it_has_no_values_for(client, kind
         fields["model"].pop("measured")
         fields["estimator"] = {"kind": "full_state"}
     found = _pointers(client, "/design/export", {**fields, "format": "state_space"})
-    assert "gives no values" in found["/model/operating_point"]
+    if kind == "full_state":
+        assert "gives no values" in found["/model/operating_point"]
+    else:
+        assert "operating_point.measured" in found["/model/operating_point/measured"]
 
 
 @pytest.mark.parametrize(
@@ -381,7 +385,7 @@ def test_the_export_refuses_an_operating_point_it_has_no_values_for(client, kind
         (lambda b: b["estimator"].update(measurement_noise=[0.1, 0.1]), "/estimator/measurement_noise"),
         (
             lambda b: b["model"].update(operating_point={"inputs": [1.0], "outputs": [20.0]}),
-            "/model/operating_point",
+            "/model/operating_point/measured",
         ),
     ],
 )

@@ -217,6 +217,9 @@ def test_every_bundled_example_runs_and_every_chart_is_drawn(workbench, server):
             assert traces[0]["y"] == block["sensitivity"]["largest"]
             peak = next(t for t in traces if t["name"].startswith("peak of S"))
             assert peak["x"] == [block["peak_sensitivity_frequency"]] and peak["y"] == [block["peak_sensitivity"]]
+            # the output-side chart names the signals its loop is broken at
+            label = page.locator("#robustness-plant_output").get_attribute("aria-label")
+            assert label == f"S and T at the plant output ({', '.join(answer['robustness']['plant_output_signals'])})"
 
 
 def test_the_first_move_of_a_run_in_absolute_units_starts_from_the_operating_point(workbench, server):

@@ -391,6 +391,7 @@ class WholeLoop:
 def _whole_loop_matrix(
     loop: ControlLoop,
     plant: tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]] | None = None,
+    feedthrough: NDArray[np.float64] | None = None,
 ) -> NDArray[np.float64]:
     est = loop.estimator
     design = loop.design
@@ -419,6 +420,13 @@ def _whole_loop_matrix(
     hold = np.eye(m) - design.gain.previous_input
     u_row = np.hstack([-k @ mx, -k @ mp, hold])  # u(k) in terms of [x; x(k|k-1); u(k-1)]
     xf_row = np.hstack([mx, mp, np.zeros((na, m))])  # x(k|k)
+    if feedthrough is not None and plant is not None:
+        # the true sensors' feed-through D_t u(k) less the D_m u(k) the estimator subtracts:
+        # x(k|k) gains L (D_t - D_m) u(k), so (I + K L (D_t - D_m)) u(k) = the row above
+        excess = est.gain @ (np.asarray(feedthrough, dtype=float) - est.feedthrough)  # (na, m)
+        if np.any(excess):
+            u_row = np.asarray(np.linalg.solve(np.eye(m) + k @ excess, u_row), dtype=np.float64)
+            xf_row = xf_row + excess @ u_row
     x_row = np.hstack([a, np.zeros((n, na)), np.zeros((n, m))]) + b @ u_row
     xp_row = est.a @ xf_row + est.b @ u_row
     return np.vstack([x_row, xp_row, u_row])
@@ -448,8 +456,14 @@ class TrueLoop:
     unstable: bool
 
 
-def true_loop(loop: ControlLoop, a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64]) -> TrueLoop:
-    """Return the poles of the loop on a true plant ``(A_t, B_t, C_t)`` (setpoint at zero).
+def true_loop(
+    loop: ControlLoop,
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    d: NDArray[np.float64] | None = None,
+) -> TrueLoop:
+    """Return the poles of the loop on a true plant ``(A_t, B_t, C_t, D_t)`` (setpoint at zero).
 
     The same equations as :func:`whole_loop` with the true plant in place of the model:
     ``x(k|k) = L C_t x_t(k) + (I - L Cy) x(k|k-1)``, ``u(k) = -K x(k|k) + (I - Ku) u(k-1)``,
@@ -465,12 +479,18 @@ def true_loop(loop: ControlLoop, a: NDArray[np.float64], b: NDArray[np.float64],
         The true plant's measured outputs, what the estimator reads (its controlled outputs
         when the model has no measured outputs of its own), in the signals of the loop (scaled
         like the model); ``nt = n`` for ``full_state``.
+    d : ndarray, shape (py, m), optional
+        The true sensors' feed-through ``D_t``; default: the model's ``D_m``, which the
+        estimator's subtraction of ``D_m u(k)`` cancels.  Another one leaves
+        ``(D_t - D_m) u(k)`` in what the estimator reads, and the command solves
+        ``(I + K L (D_t - D_m)) u(k) = ...`` (substitution; ``numpy.linalg.LinAlgError`` when
+        that matrix is singular).  Ignored for ``full_state``.
 
     Returns
     -------
     TrueLoop
     """
-    matrix = _whole_loop_matrix(loop, (a, b, c))
+    matrix = _whole_loop_matrix(loop, (a, b, c), d)
     poles = eigenvalues_by_modulus(matrix)
     radius = float(np.abs(poles).max(initial=0.0))
     return TrueLoop(

@@ -56,6 +56,7 @@ __all__ = [
     "estimator_controller",
     "full_state_controller",
     "plant_system",
+    "with_feedthrough_correction",
 ]
 
 
@@ -106,8 +107,13 @@ class StateSpace:
         return value
 
 
-def plant_system(a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64]) -> StateSpace:
-    """Return the strictly proper plant ``x(k+1) = A x + B u``, ``y = C x`` as a :class:`StateSpace`.
+def plant_system(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    d: NDArray[np.float64] | None = None,
+) -> StateSpace:
+    """Return the plant ``x(k+1) = A x + B u``, ``y = C x + D u`` as a :class:`StateSpace`.
 
     Parameters
     ----------
@@ -115,9 +121,12 @@ def plant_system(a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.f
     b : ndarray, shape (n, m)
     c : ndarray, shape (py, n)
         Measured outputs (the identity for ``y = x``).
+    d : ndarray, shape (py, m), optional
+        The measured feed-through ``D_m`` (default zero: strictly proper).
     """
     a_, b_, c_ = (np.asarray(x, dtype=float) for x in (a, b, c))
-    return StateSpace(a=a_, b=b_, c=c_, d=np.zeros((c_.shape[0], b_.shape[1])))
+    d_ = np.zeros((c_.shape[0], b_.shape[1])) if d is None else np.asarray(d, dtype=float)
+    return StateSpace(a=a_, b=b_, c=c_, d=d_.copy())
 
 
 def full_state_controller(state_gain: NDArray[np.float64], previous_input: NDArray[np.float64]) -> StateSpace:
@@ -215,8 +224,50 @@ def estimate_feedback_gain(design: ControllerDesign, estimator: Estimator) -> ND
     return gain
 
 
+def with_feedthrough_correction(controller: StateSpace, feedthrough: NDArray[np.float64]) -> StateSpace:
+    """Return the controller ``y -> u`` that reads ``e = y - D_m u`` with its own command ``u``.
+
+    ``controller`` maps the corrected measurement ``e`` to ``u``: ``s+ = Ac s + Bc e``,
+    ``u = Cc s + Dc e``.  With ``e = y - D_m u`` the command solves ``(I + Dc D_m) u = Cc s +
+    Dc y`` (substitution), so with ``M = (I + Dc D_m)^-1`` ::
+
+        u  = M Cc s + M Dc y
+        s+ = (Ac - Bc D_m M Cc) s + Bc (I - D_m M Dc) y
+
+    Parameters
+    ----------
+    controller : StateSpace
+        ``e -> u`` (py inputs, m outputs).
+    feedthrough : ndarray, shape (py, m)
+        ``D_m``.
+
+    Returns
+    -------
+    StateSpace
+        ``y -> u``, the same states.
+
+    Raises
+    ------
+    numpy.linalg.LinAlgError
+        When ``I + Dc D_m`` is singular (the command is not determined by the measurement).
+    """
+    dm = np.asarray(feedthrough, dtype=float)
+    m = controller.outputs
+    solve = np.linalg.solve(np.eye(m) + controller.d @ dm, np.hstack([controller.c, controller.d]))
+    mc, md = solve[:, : controller.c.shape[1]], solve[:, controller.c.shape[1] :]  # M Cc, M Dc
+    return StateSpace(
+        a=controller.a - controller.b @ dm @ mc,
+        b=controller.b @ (np.eye(dm.shape[0]) - dm @ md),
+        c=mc,
+        d=md,
+    )
+
+
 def controller_system(design: ControllerDesign, estimator: Estimator | None = None) -> StateSpace:
     """Return the controller ``y -> u`` of a design, with its estimator or on the full state.
+
+    With a measured feed-through (``estimator.feedthrough``, ``D_m``) the estimator reads
+    ``y - D_m u(k)`` of its own command: :func:`with_feedthrough_correction`.
 
     Parameters
     ----------
@@ -230,7 +281,7 @@ def controller_system(design: ControllerDesign, estimator: Estimator | None = No
     """
     if estimator is None or estimator.full_state:
         return full_state_controller(design.gain.state, design.gain.previous_input)
-    return estimator_controller(
+    controller = estimator_controller(
         estimate_feedback_gain(design, estimator),
         design.gain.previous_input,
         a=estimator.a,
@@ -238,28 +289,46 @@ def controller_system(design: ControllerDesign, estimator: Estimator | None = No
         c_measured=estimator.c_measured,
         filter_gain=estimator.gain,
     )
+    if np.any(estimator.feedthrough):
+        return with_feedthrough_correction(controller, estimator.feedthrough)
+    return controller
 
 
 def closed_loop_poles(plant: StateSpace, controller: StateSpace) -> NDArray[np.complex128]:
-    """Return the poles of the loop ``u = K y`` around a strictly proper plant, by descending modulus.
+    """Return the poles of the loop ``u = K y`` around the plant, by descending modulus.
 
     Parameters
     ----------
     plant : StateSpace
-        ``D = 0``.
+        ``y = C x + D u``.
     controller : StateSpace
         From the plant's outputs to its inputs.
 
     Returns
     -------
     ndarray of complex, shape (n + ns,)
-        Eigenvalues of ``[[A + B Dc C, B Cc], [Bc C, Ac]]`` (substitution of ``u`` and ``y``).
+        Eigenvalues of ``[[A + B N Dc C, B N Cc], [Bc (C + D N Dc C), Ac + Bc D N Cc]]`` with
+        ``N = (I - Dc D)^-1`` (substitution of ``u`` and ``y``); for a strictly proper plant
+        ``N = I`` and this is ``[[A + B Dc C, B Cc], [Bc C, Ac]]``.
     """
-    assert not np.any(plant.d), "the plant must be strictly proper"
-    matrix = np.block(
-        [
-            [plant.a + plant.b @ controller.d @ plant.c, plant.b @ controller.c],
-            [controller.b @ plant.c, controller.a],
-        ]
-    )
+    if np.any(plant.d):
+        m = plant.inputs
+        n_cc, n_dc = np.split(
+            np.linalg.solve(np.eye(m) - controller.d @ plant.d, np.hstack([controller.c, controller.d @ plant.c])),
+            [controller.c.shape[1]],
+            axis=1,
+        )
+        matrix = np.block(
+            [
+                [plant.a + plant.b @ n_dc, plant.b @ n_cc],
+                [controller.b @ (plant.c + plant.d @ n_dc), controller.a + controller.b @ plant.d @ n_cc],
+            ]
+        )
+    else:
+        matrix = np.block(
+            [
+                [plant.a + plant.b @ controller.d @ plant.c, plant.b @ controller.c],
+                [controller.b @ plant.c, controller.a],
+            ]
+        )
     return by_modulus(np.linalg.eigvals(matrix))

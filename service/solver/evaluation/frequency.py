@@ -7,6 +7,8 @@ of the classical tools, are ::
     at the plant input:   L_i = -K P      (m x m)
     at the plant output:  L_o = -P K      (py x py)
 
+(with a measured feed-through ``D_m`` the plant is ``C_m (zI - A)^-1 B + D_m`` and ``K``
+reads ``y - D_m u`` of its own command, :func:`service.solver.estimation.realization.with_feedthrough_correction`),
 and at each point ``S = (I + L)^-1`` (sensitivity) and ``T = L (I + L)^-1`` (complementary
 sensitivity), so ``S + T = I`` (common practice).  They are evaluated on the unit circle
 ``z = e^(j w Ts)`` over a log-spaced grid of ``points`` frequencies ending at the Nyquist
@@ -422,7 +424,7 @@ def frequency_analysis(
     Parameters
     ----------
     plant : StateSpace
-        Strictly proper, m inputs, py outputs.
+        m inputs, py outputs; strictly proper but for a measured feed-through ``D_m``.
     controller : StateSpace
         py inputs, m outputs (:mod:`service.solver.estimation.realization`).
     sample_time : float
@@ -499,7 +501,15 @@ def design_frequency_analysis(
     FrequencyAnalysis
     """
     n = estimator.state_size
-    plant = plant_system(estimator.model_a, estimator.model_b, estimator.c_measured[:, :n])
-    return frequency_analysis(
-        plant, controller_system(design, estimator), sample_time=sample_time, points=points, decades=decades
-    )
+    feedthrough = None if estimator.full_state else estimator.feedthrough  # y = x for full_state
+    plant = plant_system(estimator.model_a, estimator.model_b, estimator.c_measured[:, :n], feedthrough)
+    try:
+        controller = controller_system(design, estimator)
+    except np.linalg.LinAlgError as exc:  # I + Dc D_m singular: the command is not determined
+        raise NumericalError(
+            "The controller's command is not determined by the measurements: through the measured feed-through "
+            "d_measured the estimator reads back a command that cancels its own effect (I + Dc D_m is singular). "
+            "Change d_measured or the estimator's tuning",
+            field=("model", "d_measured"),
+        ) from exc
+    return frequency_analysis(plant, controller, sample_time=sample_time, points=points, decades=decades)

@@ -4,12 +4,14 @@ The controller and its estimator are designed on the model ``(A, B, C)``.  The p
 is taken to be the model with every element's gain multiplied by one factor ``f`` and every dead
 time lengthened by ``d`` samples, i.e. the transfer matrix ::
 
-    P_true(z) = f z^-d P(z),        P(z) = C (zI - A)^-1 B
+    P_true(z) = f z^-d P(z),        P(z) = C (zI - A)^-1 B  [+ D_m]
 
 (a uniform gain error and a uniform extra delay, the usual first questions of robustness to
 model error, common practice), with ``C`` the measured outputs the estimator reads (the
 sensors, when the model has measured outputs of its own: the true plant's sensors see the
-true plant).  It is realized with ``B`` scaled by ``f`` and a shift register of
+true plant; a measured feed-through ``D_m`` is scaled and delayed with the rest, while the
+estimator still subtracts the model's ``D_m u(k)``).  It is realized with ``B`` (and ``D_m``)
+scaled by ``f`` and a shift register of
 ``d`` samples on the inputs (``d m`` states) or on the measured outputs (``d py`` states), whichever is
 shorter; both realize the same ``P_true`` because a scalar delay commutes with ``P``.  The loop
 of controller, estimator and that plant is
@@ -37,7 +39,14 @@ from numpy.typing import NDArray
 from service.solver.design.marginal import MARGINAL_TOLERANCE
 from service.solver.estimation.loop import ControlLoop, true_loop
 
-__all__ = ["ModelErrorCase", "ModelErrorStudy", "model_error_study", "perturbed_plant", "stable_factor_range"]
+__all__ = [
+    "ModelErrorCase",
+    "ModelErrorStudy",
+    "model_error_study",
+    "perturbed_plant",
+    "perturbed_plant_with_feedthrough",
+    "stable_factor_range",
+]
 
 Verdict = Literal["stable", "marginal", "unstable"]
 
@@ -89,13 +98,31 @@ def perturbed_plant(
     gain_factor: float,
     extra_dead_time: int,
 ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
-    """Return a realization of ``f z^-d C (zI - A)^-1 B``.
+    """Return a realization of ``f z^-d C (zI - A)^-1 B`` (:func:`perturbed_plant_with_feedthrough`, ``D = 0``)."""
+    a_t, b_t, c_t, _ = perturbed_plant_with_feedthrough(
+        a, b, c, None, gain_factor=gain_factor, extra_dead_time=extra_dead_time
+    )
+    return a_t, b_t, c_t
+
+
+def perturbed_plant_with_feedthrough(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    d: NDArray[np.float64] | None,
+    *,
+    gain_factor: float,
+    extra_dead_time: int,
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+    """Return a realization of ``f z^-d (C (zI - A)^-1 B + D)``.
 
     Parameters
     ----------
     a : ndarray, shape (n, n)
     b : ndarray, shape (n, m)
     c : ndarray, shape (p, n)
+    d : ndarray, shape (p, m), or None
+        The feed-through (a measured output's ``D_m``); ``None``: zero.
     gain_factor : float, keyword-only
         ``f``.
     extra_dead_time : int, keyword-only
@@ -103,18 +130,20 @@ def perturbed_plant(
 
     Returns
     -------
-    a_t, b_t, c_t : ndarray
+    a_t, b_t, c_t, d_t : ndarray
         With ``n + d min(m, p)`` states: the model's states first, then the register (oldest
-        sample last).
+        sample last).  ``d_t = f D`` without extra dead time, zero with it (the delayed
+        feed-through comes out of the register).
     """
     n, m = b.shape
     p = c.shape[0]
-    d = int(extra_dead_time)
-    scaled_b = gain_factor * b
-    if d == 0:
-        return a.copy(), scaled_b, c.copy()
-    if m <= p:  # u(k) enters the register; x(k+1) = A x(k) + f B w_d(k)
-        r = d * m
+    delay = int(extra_dead_time)
+    feed = np.zeros((p, m)) if d is None else np.asarray(d, dtype=float)
+    scaled_b, scaled_d = gain_factor * b, gain_factor * feed
+    if delay == 0:
+        return a.copy(), scaled_b, c.copy(), scaled_d
+    if m <= p:  # u(k) enters the register; x(k+1) = A x(k) + f B w_d(k), y = C x + f D w_d
+        r = delay * m
         a_t = np.zeros((n + r, n + r))
         a_t[:n, :n] = a
         a_t[:n, n + r - m :] = scaled_b
@@ -122,15 +151,17 @@ def perturbed_plant(
         b_t = np.zeros((n + r, m))
         b_t[n : n + m] = np.eye(m)
         c_t = np.hstack([c, np.zeros((p, r))])
-        return a_t, b_t, c_t
-    r = d * p  # C x(k) enters the register; y(k) = w_d(k)
+        c_t[:, n + r - m :] = scaled_d
+        return a_t, b_t, c_t, np.zeros((p, m))
+    r = delay * p  # C x(k) + f D u(k) enters the register; y(k) = w_d(k)
     a_t = np.zeros((n + r, n + r))
     a_t[:n, :n] = a
     a_t[n : n + p, :n] = c
     a_t[n + p :, n : n + r - p] = np.eye(r - p)
     b_t = np.vstack([scaled_b, np.zeros((r, m))])
+    b_t[n : n + p] = scaled_d
     c_t = np.hstack([np.zeros((p, n + r - p)), np.eye(p)])
-    return a_t, b_t, c_t
+    return a_t, b_t, c_t, np.zeros((p, m))
 
 
 def _verdict(radius: float) -> Verdict:
@@ -169,6 +200,7 @@ def model_error_study(
     b: NDArray[np.float64],
     c: NDArray[np.float64],
     *,
+    feedthrough: NDArray[np.float64] | None = None,
     gain_factors: Sequence[float],
     extra_dead_times: Sequence[int],
 ) -> ModelErrorStudy:
@@ -182,8 +214,11 @@ def model_error_study(
     b : ndarray, shape (n, m)
     c : ndarray, shape (py, n)
         The model's measured outputs, what the estimator reads (the controlled outputs unless
-        the model has measured outputs of its own, which must then have no feed-through), in
-        the loop's signals (scaled like the design).
+        the model has measured outputs of its own), in the loop's signals (scaled like the design).
+    feedthrough : ndarray, shape (py, m), optional, keyword-only
+        Their feed-through ``D_m`` (scaled like ``c``), scaled by each factor and delayed with
+        the rest of the plant (:func:`service.solver.estimation.loop.true_loop` takes the
+        difference to the ``D_m`` the estimator subtracts).
     gain_factors : sequence of float, keyword-only
         Positive factors ``f``.
     extra_dead_times : sequence of int, keyword-only
@@ -199,8 +234,10 @@ def model_error_study(
     for d in extra_dead_times:
         row = []
         for f in gain_factors:
-            a_t, b_t, c_t = perturbed_plant(a, b, c, gain_factor=float(f), extra_dead_time=int(d))
-            radius = true_loop(loop, a_t, b_t, c_t).spectral_radius
+            a_t, b_t, c_t, d_t = perturbed_plant_with_feedthrough(
+                a, b, c, feedthrough, gain_factor=float(f), extra_dead_time=int(d)
+            )
+            radius = true_loop(loop, a_t, b_t, c_t, d_t if feedthrough is not None else None).spectral_radius
             row.append(ModelErrorCase(float(f), int(d), radius, _verdict(radius)))
         cases += row
         ranges.append((int(d), *stable_factor_range(row)))
