@@ -82,7 +82,7 @@ def test_kalman_covariance_is_the_limit_of_the_covariance_recursion(rng):
 def test_disturbance_kinds_are_kalman_filters_with_the_documented_default_covariances(rng):
     a, b, c = random_plant(rng, 3, 2, 2)
     sizes = natural_sizes(a, b, c)
-    for kind, disturbance, nd in [("output_disturbance", "output", 2), ("input_disturbance", "input", 2)]:
+    for kind, disturbance in [("output_disturbance", "output"), ("input_disturbance", "input")]:
         est = design_estimator(a, b, c, kind=kind)
         same = design_estimator(
             a,
