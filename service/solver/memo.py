@@ -24,13 +24,21 @@ from typing import Any, ParamSpec, TypeVar
 
 import numpy as np
 
-__all__ = ["array_key", "plant_cache"]
+__all__ = ["array_key", "clear_plant_caches", "plant_cache"]
 
 P = ParamSpec("P")
 R = TypeVar("R")
 
 #: Plants each cached function keeps (least recently used dropped first).
 PLANT_CACHE_SIZE = 16
+#: The cache_clear of every cached function, for :func:`clear_plant_caches`.
+_CLEARS: list[Callable[[], None]] = []
+
+
+def clear_plant_caches() -> None:
+    """Forget every plant of every cached function (benchmarks of fresh plants, tests)."""
+    for clear in _CLEARS:
+        clear()
 
 
 def array_key(value: Any) -> Hashable:
@@ -96,6 +104,7 @@ def plant_cache(function: Callable[P, R]) -> Callable[P, R]:
         with lock:
             return {**counts, "size": len(entries)}
 
+    _CLEARS.append(cache_clear)
     cached.cache_clear = cache_clear  # type: ignore[attr-defined]
     cached.cache_info = cache_info  # type: ignore[attr-defined]
     return cached

@@ -55,8 +55,7 @@ from threadpoolctl import threadpool_limits  # noqa: E402
 from service.api.settings import Settings  # noqa: E402
 from service.pipeline.design import run_design  # noqa: E402
 from service.schemas.design import DesignRequest  # noqa: E402
-from service.solver.models.properties import plant_properties  # noqa: E402
-from service.solver.models.zeros import plant_zeros  # noqa: E402
+from service.solver.memo import clear_plant_caches  # noqa: E402
 
 __all__ = ["main"]
 
@@ -85,8 +84,7 @@ def goal_one_solver(rounds: int) -> tuple[float, dict[str, Any]]:
     g, diagonal = floor_inputs(plant)
 
     def fresh() -> None:
-        plant_properties.cache_clear()  # type: ignore[attr-defined]
-        plant_zeros.cache_clear()  # type: ignore[attr-defined]
+        clear_plant_caches()
         run_design(request, caps)
 
     with threadpool_limits(limits=1):

@@ -274,3 +274,26 @@ def test_an_unstable_loop_of_a_controllable_plant_keeps_the_tuning_advice():
     assert d.loop.unstable
     message = next(w.message for w in d.warnings if w.code == "unstable_closed_loop")
     assert "Lengthen the prediction horizon" in message and "no tuning" not in message
+
+
+def test_zero_directions_by_inverse_iteration_equal_the_svds():
+    # The null directions of the system matrix at a real zero, by inverse iteration, against
+    # the last singular vectors of numpy's SVD (the textbook definition), up to sign.
+    from service.solver.evaluation.advice import _null_directions
+    from service.solver.models.zeros import plant_zeros
+
+    rng = np.random.default_rng(7)
+    checked = 0
+    for _ in range(5):
+        a = np.diag(rng.uniform(0.2, 0.9, 5))
+        b, c = rng.normal(size=(5, 2)), rng.normal(size=(2, 5))
+        real = [z.real for z in plant_zeros(a, b, c).transmission if abs(z.imag) < 1e-12]
+        for z0 in real:
+            u0, y0 = _null_directions(a, b, c, z0)
+            system = np.block([[a - z0 * np.eye(5), b], [c, np.zeros((2, 2))]])
+            left, _, right = np.linalg.svd(system)
+            assert abs(abs(u0 @ right[-1, 5:]) - np.linalg.norm(right[-1, 5:]) * np.linalg.norm(u0)) < 1e-8
+            assert abs(abs(y0 @ left[5:, -1]) - np.linalg.norm(left[5:, -1]) * np.linalg.norm(y0)) < 1e-8
+            np.testing.assert_allclose(np.linalg.norm(u0), np.linalg.norm(right[-1, 5:]), rtol=1e-6)
+            checked += 1
+    assert checked >= 5

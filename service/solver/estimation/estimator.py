@@ -89,6 +89,7 @@ from numpy.typing import ArrayLike, NDArray
 from service.errors import NumericalError
 from service.solver.design.weights import weight_matrix
 from service.solver.estimation.sizes import natural_sizes
+from service.solver.memo import plant_cache
 from service.solver.models.properties import integrating_poles
 from service.solver.numerics import (
     eigenvalues_by_modulus,
@@ -254,6 +255,7 @@ class Estimator:
         return float(np.abs(self.poles).max(initial=0.0))
 
 
+@plant_cache
 def _integrator_space(a: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """The modes at ``z = 1``: a basis ``N`` (n, k) of the null space of ``I - A``, and the state scales.
 
