@@ -44,6 +44,12 @@ def assert_problem(response: Any, status: int, kind: str) -> dict[str, Any]:
     return body
 
 
+def invalid_fields(client: Any, path: str, body: Any) -> dict[str, str]:
+    """POST ``body``; the answer must be a 422 problem: its fields' sentences by JSON pointer."""
+    found = assert_problem(client.post(path, json=body), 422, "invalid-request")
+    return {e["pointer"]: e["detail"] for e in found["errors"]}
+
+
 def assert_field_problem(response: Any, status: int, pointer: str) -> dict[str, Any]:
     """The response is a problem of that status naming the field at ``pointer``, each field with a sentence."""
     assert response.status_code == status, response.text

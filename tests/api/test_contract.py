@@ -152,21 +152,12 @@ def test_the_client_example_identifies_from_json_and_csv(make_client):
     with client_module.MovecastClient(http=make_client()) as client:
         from_json = client.identify(load_example("identify_request.json"))
         csv = (EXAMPLES / "plant_test.csv").read_bytes()
-        choices = {
-            "sample_time": 1.0,
-            "inputs": "steam_valve,outlet_valve",
-            "outputs": "vessel_temperature,vessel_level",
-            "disturbances": "inlet_flow",
-            "integrating": "vessel_level",
-            "pairs": "vessel_level:steam_valve:none,vessel_temperature:inlet_flow:second_order_dead_time",
-            "max_dead_time": 20.0,
-            "settling_time": 60.0,
-            "validation_fraction": 0.25,
-        }
-        from_csv = client.identify_csv(csv, **choices)
+        from tests.api.test_identify_csv import QUERY  # the choices that fit the bundled CSV
+
+        from_csv = client.identify_csv(csv, **QUERY)
         assert from_csv["model"] == from_json["model"] and from_json["model"]["operating_point"]
         with pytest.raises(client_module.ProblemError) as caught:
-            client.identify_csv(csv, **{**choices, "inputs": "no_such_tag"})
+            client.identify_csv(csv, **{**QUERY, "inputs": "no_such_tag"})
         assert caught.value.status == 422 and caught.value.errors[0]["pointer"] == "/inputs"
 
 

@@ -26,6 +26,7 @@ import numpy as np
 import pytest
 import scipy.signal
 
+from tests.api.conftest import invalid_fields
 from tests.api.iec_st import FunctionBlock
 from tests.api.test_measured_outputs import _body
 
@@ -105,13 +106,6 @@ def test_the_structured_text_reads_the_absolute_sensor(client):
     np.testing.assert_allclose(got, u, rtol=0, atol=1e-9 * np.abs(u).max())
 
 
-def _problems(client, path, body):
-    r = client.post(path, json=body)
-    assert r.status_code == 422, r.text
-    assert r.headers["content-type"].startswith("application/problem+json")
-    return {e["pointer"]: e["detail"] for e in r.json()["errors"]}
-
-
 def _export_body(body):
     fields = {k: copy.deepcopy(body[k]) for k in ("model", "horizons", "weights", "estimator")}
     return {**fields, "format": "state_space"}
@@ -121,7 +115,7 @@ def _export_body(body):
 def test_without_the_sensors_operating_values_the_answer_names_the_field(client, path):
     body = _absolute()
     del body["model"]["operating_point"]["measured"]
-    found = _problems(client, path, body if path == "/simulate" else _export_body(body))
+    found = invalid_fields(client, path, body if path == "/simulate" else _export_body(body))
     detail = found["/model/operating_point/measured"]
     assert "operating_point.measured" in detail and "cannot be derived" in detail
 
@@ -130,7 +124,7 @@ def test_without_the_sensors_operating_values_the_answer_names_the_field(client,
 def test_a_wrong_count_of_sensor_values_is_refused_naming_the_field(client, path):
     body = _absolute()
     body["model"]["operating_point"]["measured"] = [55.0, 54.0]
-    found = _problems(client, path, body if path == "/simulate" else _export_body(body))
+    found = invalid_fields(client, path, body if path == "/simulate" else _export_body(body))
     assert "one value per measured output (1" in found["/model/operating_point/measured"]
 
 
@@ -139,7 +133,7 @@ def test_sensor_values_for_a_model_that_measures_its_controlled_outputs_are_refu
     for model in (body["model"], body["scenario"]["true_plant"]):
         model.pop("c_measured")
         model.pop("measured")
-    found = _problems(client, "/simulate", body)
+    found = invalid_fields(client, "/simulate", body)
     assert "operating_point.outputs" in found["/model/operating_point/measured"]
     del body["model"]["operating_point"]["measured"]
     del body["scenario"]["measurement_noise"]

@@ -31,6 +31,7 @@ import scipy.linalg
 import scipy.optimize
 import scipy.signal
 
+from tests.api.conftest import invalid_fields
 from tests.api.iec_st import FunctionBlock
 
 A = np.array([[0.8, 0.0], [0.3, 0.7]])
@@ -342,17 +343,10 @@ def test_the_structured_text_reads_the_measured_outputs(client):
 # --------------------------------------------------------------------------- what is refused
 
 
-def _pointers(client, path, body):
-    r = client.post(path, json=body)
-    assert r.status_code == 422, r.text
-    assert r.headers["content-type"].startswith("application/problem+json")
-    return {e["pointer"]: e["detail"] for e in r.json()["errors"]}
-
-
 def test_the_export_refuses_a_measured_feed_through_and_says_why(client):
     body = _body(d_measured=[[0.2]])
     fields = {k: body[k] for k in ("model", "horizons", "weights", "estimator")}
-    found = _pointers(client, "/design/export", {**fields, "format": "state_space"})
+    found = invalid_fields(client, "/design/export", {**fields, "format": "state_space"})
     assert "algebraic loop" in found["/model/d_measured/0"]
 
 
@@ -366,7 +360,7 @@ def test_the_export_refuses_an_operating_point_it_has_no_values_for(client, kind
         fields["model"].pop("c_measured")
         fields["model"].pop("measured")
         fields["estimator"] = {"kind": "full_state"}
-    found = _pointers(client, "/design/export", {**fields, "format": "state_space"})
+    found = invalid_fields(client, "/design/export", {**fields, "format": "state_space"})
     if kind == "full_state":
         assert "gives no values" in found["/model/operating_point"]
     else:
@@ -392,7 +386,7 @@ def test_the_export_refuses_an_operating_point_it_has_no_values_for(client, kind
 def test_simulate_names_what_does_not_fit_the_measured_outputs(client, edit, pointer):
     body = _body()
     edit(body)
-    assert pointer in _pointers(client, "/simulate", body)
+    assert pointer in invalid_fields(client, "/simulate", body)
 
 
 def test_the_run_size_cap_counts_the_measured_outputs(client):
