@@ -338,6 +338,7 @@ def compare_response(request: CompareRequest, inputs: CompareInputs, caps: Caps)
         robustness = RobustnessChange(
             plant_input=_loop_change(before.robustness.plant_input, after.robustness.plant_input),
             plant_output=_loop_change(before.robustness.plant_output, after.robustness.plant_output),
+            plant_output_signals=[before.robustness.plant_output_signals, after.robustness.plant_output_signals],
         )
     answer = CompareResponse(
         summary=[],

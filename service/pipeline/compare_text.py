@@ -50,13 +50,25 @@ def _speed_sentences(answer: CompareResponse) -> list[str]:
     return out
 
 
+def _output_side(answer: CompareResponse) -> str:
+    """Where the output loop is broken: "plant output", named by its tags when those are sensors."""
+    assert answer.robustness is not None
+    sides = answer.robustness.plant_output_signals
+    outputs = [s.name for s in answer.in_service_design.plant.outputs]
+    if all(side == outputs for side in sides):
+        return "plant output"
+    if sides[0] == sides[1]:
+        return f"plant output (at {', '.join(sides[0])})"
+    return f"plant output (at {', '.join(sides[0])} in service, {', '.join(sides[1])} proposed)"
+
+
 def _robustness_sentences(answer: CompareResponse) -> list[str]:
     if answer.robustness is None:
         return []
     out = []
     loops: list[tuple[str, LoopRobustnessChange]] = [
         ("plant input", answer.robustness.plant_input),
-        ("plant output", answer.robustness.plant_output),
+        (_output_side(answer), answer.robustness.plant_output),
     ]
     for where, loop in loops:
         a, b = loop.peak_sensitivity
@@ -147,7 +159,7 @@ def compare_markdown(answer: CompareResponse, *, largest: int = 20) -> str:
         ]
         for where, loop in (
             ("plant input", answer.robustness.plant_input),
-            ("plant output", answer.robustness.plant_output),
+            (_output_side(answer), answer.robustness.plant_output),
         ):
             lines.append(_row(f"peak sensitivity at the {where}", *map(_g, loop.peak_sensitivity)))
             lines.append(_row(f"peak complementary sensitivity at the {where}", *map(_g, loop.peak_complementary)))

@@ -91,6 +91,11 @@ class RobustnessChange(ResponseModel):
 
     plant_input: LoopRobustnessChange
     plant_output: LoopRobustnessChange
+    plant_output_signals: list[list[str]] = Field(
+        description="Per design (in service, proposed): the tags the plant_output loop is broken at, as "
+        "/design's robustness.plant_output_signals (the measured outputs' own tags for a model with sensors "
+        "of its own)."
+    )
 
 
 class FigureChange(ResponseModel):

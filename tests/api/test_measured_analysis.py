@@ -265,3 +265,18 @@ def test_the_model_error_study_with_a_measured_feed_through_equals_python_contro
     other = _post(client, "/design", plain)["model_error"]["cases"]
     moved = [abs(a["spectral_radius"] - b["spectral_radius"]) for a, b in zip(report["cases"], other, strict=True)]
     assert max(moved) > 1e-3
+
+
+def test_the_comparison_names_the_sensors_its_output_loop_is_broken_at(client):
+    # A comparison of two tunings of the plant with a sensor of its own: its robustness block and
+    # its summary name the loop at the plant output by the sensor's tag, as /design does.
+    old = _design_fields(_body())
+    new = copy.deepcopy(old)
+    new["weights"]["move"] = [2.0 * w for w in new["weights"]["move"]]
+    answer = _post(client, "/design/compare", {"in_service": old, "proposed": new, "robustness": True})
+    alone = _post(client, "/design", {**old, "analysis": {"frequency": True}})
+    signals = alone["robustness"]["plant_output_signals"]
+    assert signals != [s["name"] for s in alone["plant"]["outputs"]]  # the sensor, not the controlled output
+    assert answer["robustness"]["plant_output_signals"] == [signals, signals]
+    where = f"plant output (at {', '.join(signals)})"
+    assert any(where in line for line in answer["summary"]), answer["summary"]
