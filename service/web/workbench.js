@@ -420,8 +420,8 @@ function renderResponses(answer, request) {
   box.replaceChildren();
   if (perf?.outputs?.length) {
     box.append(recordTable({
-      id: "performance-outputs", caption: "Outputs after the first setpoint change",
-      columns: [["output", (o) => o.name], ["step", (o) => o.step], ["rise time", (o) => o.rise_time], ["settling time", (o) => o.settling_time],
+      id: "performance-outputs", caption: "Outputs after their last setpoint change (a zone output has none: it is held in its range)",
+      columns: [["output", (o) => (o.zone ? `${o.name} (zone)` : o.name)], ["step", (o) => o.step], ["rise time", (o) => o.rise_time], ["settling time", (o) => o.settling_time],
         ["overshoot (%)", (o) => o.overshoot_percent], ["IAE", (o) => o.integral_absolute_error], ["final offset", (o) => o.final_offset]],
       records: perf.outputs,
     }));

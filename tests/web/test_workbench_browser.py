@@ -500,3 +500,18 @@ def test_every_chart_stays_inside_its_grid_cell(browser, server, width):
             assert spills == [], f"{name} at {width} px: {spills}"
     finally:
         context.close()
+
+
+def test_the_figures_of_merit_mark_a_zone_output_and_say_which_step_they_follow(workbench, server):
+    # The service's figures follow each output's last setpoint change, and a zone output has
+    # none (performance.outputs[].zone); the page's table says both.
+    page = workbench
+    run_example(page, "simulate_request_column.json")
+    answer = server.post("/simulate", load_example("simulate_request_column.json")).json()
+    table = page.locator("#performance-outputs")
+    assert "last setpoint change" in table.locator("caption").inner_text()
+    rows = table.locator("tbody tr").all()
+    for row, figures in zip(rows, answer["performance"]["outputs"], strict=True):
+        name = row.locator("td").first.inner_text()
+        assert name == (f"{figures['name']} (zone)" if figures["zone"] else figures["name"])
+    assert any(f["zone"] for f in answer["performance"]["outputs"])
