@@ -71,6 +71,7 @@ __all__ = [
     "compute_simulation",
     "performance_report",
     "run_simulation",
+    "run_simulation_answer",
     "simulate_response",
     "simulation_csv",
 ]
@@ -508,6 +509,36 @@ def run_simulation(request: SimulateRequest, caps: Caps) -> SimulateResponse:
     response.fingerprint = fingerprint(request)
     response.design.fingerprint = design_fingerprint(request)
     return response
+
+
+@dataclass(frozen=True)
+class SimulationAnswer:
+    """A /simulate answer already written out, with its media type.
+
+    Attributes
+    ----------
+    body : bytes
+        ``SimulateResponse.model_dump_json()`` or :func:`simulation_csv`, in UTF-8: written in
+        the compute process, so the serving process neither unpickles the response model (a
+        long run holds many numbers) nor validates and serializes it again.
+    media_type : {"application/json", "text/csv"}
+    """
+
+    body: bytes
+    media_type: str
+
+
+def run_simulation_answer(request: SimulateRequest, caps: Caps, csv: bool = False) -> SimulationAnswer:
+    """:func:`run_simulation`, answered as JSON bytes, or as the CSV of its series when ``csv``.
+
+    Raises
+    ------
+    InvalidRequest, NumericalError
+    """
+    response = run_simulation(request, caps)
+    if csv:
+        return SimulationAnswer(simulation_csv(response).encode("utf-8"), "text/csv")
+    return SimulationAnswer(response.model_dump_json().encode("utf-8"), "application/json")
 
 
 def simulation_csv(response: SimulateResponse) -> str:

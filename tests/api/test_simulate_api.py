@@ -587,3 +587,20 @@ def test_move_blocking_is_simulated_with_the_design_s_gains(client):
         inputs.append(u)
         x = A @ x + B @ u
     np.testing.assert_allclose(answer["inputs"], inputs, rtol=1e-9, atol=1e-12)
+
+
+def test_the_answer_is_written_in_the_compute_process_as_the_pipeline_writes_it(client):
+    # The serving process sends the bytes the compute process wrote (JSON or CSV), so the
+    # answer is exactly the pipeline's response model serialized, and its CSV.
+    from service.pipeline.caps import Caps
+    from service.pipeline.simulate import run_simulation, simulation_csv
+    from service.schemas.simulate import SimulateRequest
+
+    body = load_example("simulate_request.json")
+    expected = run_simulation(SimulateRequest.model_validate(body), Caps())
+    r = client.post("/simulate", json=body)
+    assert r.status_code == 200 and r.headers["content-type"] == "application/json"
+    assert r.content == expected.model_dump_json().encode()
+    csv_answer = client.post("/simulate", json=body, headers={"Accept": "text/csv"})
+    assert csv_answer.headers["content-type"].startswith("text/csv")
+    assert csv_answer.text == simulation_csv(expected)

@@ -13,7 +13,7 @@ from service.api.deps import CapsDep
 from service.api.negotiation import prefers
 from service.api.problems import PROBLEM_JSON
 from service.pipeline.examples import load_example
-from service.pipeline.simulate import run_simulation, simulation_csv
+from service.pipeline.simulate import run_simulation_answer
 from service.schemas.simulate import SimulateRequest, SimulateResponse
 
 __all__ = ["CSV", "prefers_csv", "router"]
@@ -64,7 +64,6 @@ def simulate(
     http: Request,
 ) -> Any:
     """Simulate the loop of design, estimator and (true) plant through a scenario. Design aid only."""
-    response = budget.run(run_simulation, request, caps, operation="simulate")
-    if prefers_csv(http.headers.get("accept")):
-        return Response(simulation_csv(response), media_type=CSV)
-    return response
+    csv = prefers_csv(http.headers.get("accept"))
+    answer = budget.run(run_simulation_answer, request, caps, csv, operation="simulate")
+    return Response(answer.body, media_type=answer.media_type)
