@@ -100,6 +100,16 @@ def _robustness(client, body):
     return rb, np.array(rb["frequencies"])
 
 
+def _check_margins(margins, loop):
+    """The service's single-loop margins against python-control's ``stability_margins``; the gain margin."""
+    gm, pm, _, wpc, wgc, _ = control.stability_margins(loop)
+    assert margins["gain_margin"] == pytest.approx(gm, rel=1e-6)
+    assert margins["phase_margin"] == pytest.approx(pm, rel=1e-6)
+    assert margins["gain_crossover_frequency"] == pytest.approx(wgc, rel=1e-6)
+    assert margins["phase_crossover_frequency"] == pytest.approx(wpc, rel=1e-6)
+    return gm
+
+
 def test_robustness_with_one_sensor_equals_python_control(client):
     body = _body()
     rb, grid = _robustness(client, body)
@@ -109,12 +119,7 @@ def test_robustness_with_one_sensor_equals_python_control(client):
     at_input, at_output = -controller * plant, -plant * controller
     _check_loop(rb["plant_input"], at_input, 1, ts, grid)
     _check_loop(rb["plant_output"], at_output, 1, ts, grid)
-    gm, pm, _, wpc, wgc, _ = control.stability_margins(at_input)  # python-control's margins
-    margins = rb["plant_input"]["margins"]
-    assert margins["gain_margin"] == pytest.approx(gm, rel=1e-6)
-    assert margins["phase_margin"] == pytest.approx(pm, rel=1e-6)
-    assert margins["gain_crossover_frequency"] == pytest.approx(wgc, rel=1e-6)
-    assert margins["phase_crossover_frequency"] == pytest.approx(wpc, rel=1e-6)
+    _check_margins(rb["plant_input"]["margins"], at_input)
     # the closed loop of plant and law (positive feedback: the law carries its own sign)
     closed = control.feedback(plant, controller, sign=1)
     assert rb["spectral_radius"] == pytest.approx(np.abs(closed.poles()).max(), rel=1e-9)
@@ -149,11 +154,7 @@ def test_robustness_with_a_measured_feed_through_equals_python_control(client):
     at_input, at_output = -controller * plant, -plant * controller
     _check_loop(rb["plant_input"], at_input, 1, ts, grid)
     _check_loop(rb["plant_output"], at_output, 1, ts, grid)
-    gm, pm, _, wpc, wgc, _ = control.stability_margins(at_input)  # python-control's margins
-    margins = rb["plant_input"]["margins"]
-    assert margins["gain_margin"] == pytest.approx(gm, rel=1e-6)
-    assert margins["phase_margin"] == pytest.approx(pm, rel=1e-6)
-    assert margins["gain_crossover_frequency"] == pytest.approx(wgc, rel=1e-6)
+    gm = _check_margins(rb["plant_input"]["margins"], at_input)
     # the feed-through changes the loop broken at the plant input (the law's correction uses its
     # own command, the plant's feed-through the injected one)
     plain = control.stability_margins(-k0 * k0_plant)
