@@ -30,7 +30,7 @@ from service.pipeline.limits import (
 )
 from service.pipeline.limits_checks import LimitInputs, check_limits
 from service.pipeline.model_error import ModelErrorInputs, check_model_error, compute_model_error, model_error_report
-from service.pipeline.operating_point import check_operating_point, design_to_absolute, explain_failure, to_deviations
+from service.pipeline.operating_point import check_operating_point, checked_at_point, design_to_absolute, to_deviations
 from service.pipeline.plant import DiscretePlant, Signal, plant_arrays
 from service.pipeline.problems import pointer
 from service.pipeline.robustness import frequency_problems, robustness_report
@@ -702,11 +702,7 @@ def run_design(request: DesignRequest, caps: Caps) -> DesignResponse:
     InvalidRequest, NumericalError
     """
     deviations, point = to_deviations(request)
-    try:
-        inputs = check_design_request(deviations, caps)
-    except InvalidRequest:
-        explain_failure(deviations, point, caps)
-        raise
+    inputs = checked_at_point(lambda: check_design_request(deviations, caps), deviations, point, caps)
     if point is None:
         return design_response(inputs, compute_design(inputs))
     check_operating_point(deviations, point, inputs.plant)

@@ -50,7 +50,7 @@ from service.pipeline.fingerprint import design_fingerprint
 from service.pipeline.operating_point import (
     OperatingPointValues,
     check_operating_point,
-    explain_failure,
+    checked_at_point,
     to_deviations,
 )
 from service.pipeline.plant import DiscretePlant
@@ -147,11 +147,7 @@ def check_export_request(request: ExportRequest, caps: Caps) -> ExportInputs:
     """
     deviations, point = to_deviations(request)
     assert isinstance(deviations, ExportRequest)
-    try:
-        inputs = check_design_request(deviations, caps)
-    except InvalidRequest:
-        explain_failure(deviations, point, caps)
-        raise
+    inputs = checked_at_point(lambda: check_design_request(deviations, caps), deviations, point, caps)
     problems = _law_problems(deviations, inputs)
     if problems:
         raise InvalidRequest(problems)

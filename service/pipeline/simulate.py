@@ -30,7 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from service.errors import InvalidRequest, NumericalError
+from service.errors import NumericalError
 from service.pipeline.caps import Caps
 from service.pipeline.csv_cells import text_cell
 from service.pipeline.design import DesignInputs, DesignOutcome, compute_design, design_response, marginal_mode_reports
@@ -40,7 +40,7 @@ from service.pipeline.limits import LimitedRun, limit_run_reports, limited_run
 from service.pipeline.limits_checks import no_limits
 from service.pipeline.operating_point import (
     check_operating_point,
-    explain_failure,
+    checked_at_point,
     simulation_to_absolute,
     to_deviations,
 )
@@ -496,11 +496,7 @@ def run_simulation(request: SimulateRequest, caps: Caps) -> SimulateResponse:
     """
     deviations, point = to_deviations(request)
     assert isinstance(deviations, SimulateRequest)
-    try:
-        inputs = check_simulate_request(deviations, caps)
-    except InvalidRequest:
-        explain_failure(deviations, point, caps)
-        raise
+    inputs = checked_at_point(lambda: check_simulate_request(deviations, caps), deviations, point, caps)
     if point is None:
         return simulate_response(request, inputs, compute_simulation(inputs))
     check_operating_point(deviations, point, inputs.design.plant)
