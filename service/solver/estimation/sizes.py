@@ -25,6 +25,10 @@ The state sizes follow from the outputs they reach: ``x_k = 1 / r_k`` with ``r_k
 mean square of column ``k`` of ``diag(1/y) C A^i`` over ``i = 0..N-1`` (zero, meaning no
 default noise, for a state no output sees).  A state rescaled by ``d`` has its column divided
 by ``d``, so its size grows by ``d``: equivariant as well.
+
+The sizes depend on the plant alone, and cost about ``n`` products with ``A``: they are kept
+per plant (:func:`service.solver.memo.plant_cache`) for the sweeps and runs that design many
+filters of one plant.
 """
 
 from __future__ import annotations
@@ -33,6 +37,8 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
+
+from service.solver.memo import plant_cache
 
 __all__ = ["NaturalSizes", "natural_sizes"]
 
@@ -54,6 +60,7 @@ class NaturalSizes:
     states: NDArray[np.float64]
 
 
+@plant_cache
 def natural_sizes(
     a: NDArray[np.float64],
     b: NDArray[np.float64],
