@@ -8,6 +8,7 @@ from contextlib import asynccontextmanager
 from fastapi import FastAPI
 
 from service import __version__
+from service.api.answer_cache import AnswerCache
 from service.api.deps import get_settings
 from service.api.docs import install_docs
 from service.api.operations import install_operations
@@ -21,6 +22,12 @@ __all__ = ["create_app"]
 DESCRIPTION = f"""movecast designs and checks predictive controllers (MPC) for process plants:
 post a linear plant model with weights and horizons, get the controller's gains, the Hessian's
 conditioning and the closed-loop poles.
+
+Every answer is a pure function of the request as sent. A request repeated byte for byte (same
+route, body, query, `Accept` and `Content-Type`) is answered from the serving process's answer
+cache with the same bytes; the `Cache-Status` response header (RFC 9211) says `movecast; hit`
+or `movecast; fwd=miss; stored`. Send `Cache-Control: no-cache` to have it computed again,
+`no-store` to have it computed and not kept. `/design/batch` is always computed.
 
 **{ADVISORY}**
 """
@@ -47,6 +54,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         redoc_url=None,
     )
     app.state.settings = chosen
+    app.state.answer_cache = AnswerCache(chosen.answer_cache_bytes)
     app.state.ready = False
     install_problem_handlers(app)
     install_docs(app)

@@ -12,6 +12,10 @@ Before FastAPI sees the request it
    (never the compute threads), so that a big body never blocks the event loop;
 3. hands FastAPI the validated model, which it accepts as it is.
 
+On the routes of :data:`service.api.answer_cache.CACHED_ROUTES` a request that repeats an
+earlier one byte for byte is answered from the serving process's answer cache before any of
+this (:mod:`service.api.answer_cache`).
+
 A route class made by :func:`csv_body_route` also takes a ``text/csv`` body (charset UTF-8
 when given): its reader turns the CSV and the query parameters into the same request model,
 in the same worker pool, and the handler receives it as if it had come as JSON.  A JSON body
@@ -37,6 +41,15 @@ from fastapi import Request, Response
 from fastapi.routing import APIRoute
 from pydantic import BaseModel, ValidationError
 
+from service.api.answer_cache import (
+    CACHED_ROUTES,
+    AnswerCache,
+    keep,
+    request_directives,
+    request_key,
+    stored_response,
+)
+from service.api.metrics import ANSWER_CACHE
 from service.errors import FieldProblem, InvalidRequest, MalformedBody, UnsupportedMediaType
 from service.pipeline.problems import pointer, validation_problems
 
@@ -230,8 +243,29 @@ class CheckedBodyRoute(APIRoute):
             return handler
 
         reader = type(self).csv_reader
+        route = self.path if self.path in CACHED_ROUTES else None
 
         async def checked(request: Request) -> Response:
+            cache: AnswerCache | None = getattr(request.app.state, "answer_cache", None)
+            if route is None or cache is None or not cache.enabled:
+                return await unchecked(request)
+            directives = request_directives(request)
+            if "no-store" in directives:  # computed, and kept nowhere
+                ANSWER_CACHE.labels(route=route, outcome="miss").inc()
+                return keep(cache, b"", await unchecked(request), store=False, asked=True)
+            body = await request.body()
+            if len(body) <= INLINE_BODY_BYTES:
+                key = request_key(request, route, body)
+            else:  # hashing a megabyte takes a millisecond or two: not on the event loop
+                key = await anyio.to_thread.run_sync(request_key, request, route, body, limiter=_limiter())
+            asked = "no-cache" in directives
+            answer = None if asked else cache.get(key)
+            ANSWER_CACHE.labels(route=route, outcome="miss" if answer is None else "hit").inc()
+            if answer is not None:
+                return stored_response(answer)
+            return keep(cache, key, await unchecked(request), asked=asked)
+
+        async def unchecked(request: Request) -> Response:
             content_type = request.headers.get("content-type")
             if reader is not None and csv_content_type(content_type):
                 query = _once(request.query_params)

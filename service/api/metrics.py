@@ -31,6 +31,7 @@ from prometheus_client import (
 from service.schemas.design import DesignResponse
 
 __all__ = [
+    "ANSWER_CACHE",
     "DESIGN_SIZE",
     "IN_PROGRESS",
     "LANE_REQUESTS",
@@ -72,9 +73,15 @@ LANE_REQUESTS = Counter(
     "Solver calls per lane (light or heavy, by the work estimated from the request's sizes).",
     ["lane"],
 )
+ANSWER_CACHE = Counter(
+    "movecast_answer_cache_lookups",
+    "Requests of the cached routes, by outcome: hit (answered from the answer cache) or miss (computed).",
+    ["route", "outcome"],
+)
 DESIGN_SIZE = Histogram(
     "movecast_design_size",
-    "Sizes of the designs answered: states n, inputs m, outputs p, Hessian dimension Hu*m.",
+    "Sizes of the designs computed (a repeat answered from the answer cache is not counted again): "
+    "states n, inputs m, outputs p, Hessian dimension Hu*m.",
     ["dimension"],
     buckets=_SIZE_BUCKETS,
 )

@@ -98,6 +98,12 @@ class Settings(BaseSettings):
         default=1_048_576, ge=1024, description="Largest request body in bytes; larger ones get 413."
     )
     max_batch_items: int = Field(default=100, ge=1, le=10_000, description="Most items in one batch.")
+    answer_cache_bytes: int = Field(
+        default=32 * 1024 * 1024,
+        ge=0,
+        description="Bytes of 200 answers each serving process keeps for requests repeated byte for byte "
+        "(answered again without computing; 0 keeps none).",
+    )
     request_timeout_seconds: float = Field(
         default=30.0, gt=0, le=3600, description="Compute time limit of one request, queueing included."
     )

@@ -415,16 +415,21 @@ def load(
     payload: bytes | None = None,
     timeout: float = 30.0,
     payloads: list[bytes] | None = None,
+    headers: dict[str, str] | None = None,
 ) -> dict[str, Any]:
     """Send requests from ``concurrency`` threads for ``seconds``; count and time them.
 
     The request carries ``body`` as JSON, or ``payload`` as it is (already encoded JSON), or
-    each thread cycles through ``payloads`` (starting at its own offset).
+    each thread cycles through ``payloads`` (starting at its own offset); ``headers`` go with
+    every request (``{"cache-control": "no-store"}``: computed each time, never from the
+    server's answer cache).
     """
     import httpx
 
+    extra = dict(headers or {})
+    json_headers = {"content-type": "application/json", **extra}
     send: dict[str, Any] = (
-        {"json": body} if payload is None else {"content": payload, "headers": {"content-type": "application/json"}}
+        {"json": body, "headers": extra} if payload is None else {"content": payload, "headers": json_headers}
     )
 
     latencies: list[list[float]] = [[] for _ in range(concurrency)]
@@ -440,7 +445,7 @@ def load(
             if not payloads:
                 return send
             turn += 1
-            return {"content": payloads[turn % len(payloads)], "headers": {"content-type": "application/json"}}
+            return {"content": payloads[turn % len(payloads)], "headers": json_headers}
 
         with httpx.Client(base_url=base, timeout=timeout) as client:
             client.request(method, path, **next_send())  # connect and warm up, not counted
@@ -505,11 +510,13 @@ def run_http_benchmark(*, seconds: float, concurrency: int) -> None:
         head = f"{'endpoint':<14} {'requests':>9} {'errors':>7} {'requests/s':>11} {'p50':>10} {'p99':>10}"
         print(head)
         print("-" * len(head))
-        for label, method, path, payload in (
-            ("GET /healthz", "GET", "/healthz", None),
-            ("POST /design", "POST", "/design", body),
+        for label, method, path, payload, headers in (
+            ("GET /healthz", "GET", "/healthz", None, None),
+            # no-store: the same body designed each time, not answered from the answer cache
+            ("POST /design", "POST", "/design", body, {"cache-control": "no-store"}),
+            ("  repeated", "POST", "/design", body, None),
         ):
-            got = load(base, method, path, payload, seconds=seconds, concurrency=concurrency)
+            got = load(base, method, path, payload, seconds=seconds, concurrency=concurrency, headers=headers)
             print(
                 f"{label:<14} {got['ok']:>9} {got['errors']:>7} {got['rate']:>11.1f} "
                 f"{format_time(got['p50']):>10} {format_time(got['p99']):>10}",

@@ -16,6 +16,10 @@ it at the end; every load loop is bounded in time)::
 4. ``POST /simulate`` of the bundled example and of the limits example: simulated steps per
    second, one client (goal of the issue: 2x the figure before it; printed for the record).
 
+Every request is sent with ``Cache-Control: no-store``, so the server computes it (never
+from its answer cache), except the rows marked "answer cache" of goal 3: the same small body
+again, answered from the serving process's cache (``service/api/answer_cache.py``).
+
 This is a script, not a test: it prints figures and asserts nothing.  The machine's load
 average is printed before and after: other work inflates every figure, ratios less so.
 """
@@ -118,10 +122,20 @@ def latencies(
     seconds: float,
     clients: int,
     payloads: list[bytes] | None = None,
+    headers: dict[str, str] | None = None,
 ) -> dict[str, float]:
     """:func:`bench_design.load` with an encoded body (or bodies), a 60 s client timeout, float counts."""
     got = load(
-        base, method, path, None, seconds=seconds, concurrency=clients, payload=payload, timeout=60.0, payloads=payloads
+        base,
+        method,
+        path,
+        None,
+        seconds=seconds,
+        concurrency=clients,
+        payload=payload,
+        timeout=60.0,
+        payloads=payloads,
+        headers=headers,
     )
     return {key: float(value) for key, value in got.items()}
 
@@ -148,7 +162,10 @@ def http_goals(floor: float, large: dict[str, Any], *, seconds: float, rounds: i
             return
         large_body = json.dumps(large).encode()
         small_body = json.dumps(design_body(random_plant_for(CASES["small"]))).encode()
-        headers = {"content-type": "application/json"}
+        # no-store: every request is computed, never answered from the server's answer cache
+        # (a repeat of a body the server has answered is measured apart, in goal 3).
+        fresh_only = {"cache-control": "no-store"}
+        headers = {"content-type": "application/json", **fresh_only}
         with httpx.Client(base_url=base, timeout=120.0) as client:
             first = client.post("/design", content=large_body, headers=headers)
             print(
@@ -172,13 +189,14 @@ def http_goals(floor: float, large: dict[str, Any], *, seconds: float, rounds: i
         heavy: dict[str, dict[str, float]] = {}
         hold = threading.Thread(
             target=lambda: heavy.setdefault(
-                "got", latencies(base, "POST", "/design", large_body, seconds=seconds + 4.0, clients=2)
+                "got",
+                latencies(base, "POST", "/design", large_body, seconds=seconds + 4.0, clients=2, headers=fresh_only),
             ),
             daemon=True,
         )
         hold.start()
         time.sleep(2.0)  # let the heavy requests occupy their lane
-        light = latencies(base, "POST", "/design", small_body, seconds=seconds, clients=4)
+        light = latencies(base, "POST", "/design", small_body, seconds=seconds, clients=4, headers=fresh_only)
         hold.join(timeout=seconds + 180.0)
         row("small POST /design, 4 clients", light)
         if "got" in heavy:
@@ -191,28 +209,42 @@ def http_goals(floor: float, large: dict[str, Any], *, seconds: float, rounds: i
         # request is designed afresh; the same body again shows a plant seen before.
         small = random_plant_for(CASES["small"])
         fresh = [json.dumps(design_body(small, variant=k + 1)).encode() for k in range(200)]
-        design16 = latencies(base, "POST", "/design", None, seconds=seconds, clients=16, payloads=fresh)
-        design4 = latencies(base, "POST", "/design", None, seconds=seconds, clients=4, payloads=fresh)
-        seen16 = latencies(base, "POST", "/design", small_body, seconds=seconds, clients=16)
-        seen4 = latencies(base, "POST", "/design", small_body, seconds=seconds, clients=4)
+        design16 = latencies(
+            base, "POST", "/design", None, seconds=seconds, clients=16, payloads=fresh, headers=fresh_only
+        )
+        design4 = latencies(
+            base, "POST", "/design", None, seconds=seconds, clients=4, payloads=fresh, headers=fresh_only
+        )
+        seen16 = latencies(base, "POST", "/design", small_body, seconds=seconds, clients=16, headers=fresh_only)
+        seen4 = latencies(base, "POST", "/design", small_body, seconds=seconds, clients=4, headers=fresh_only)
+        # The same body again without no-store: answered from the answer cache.
+        repeat16 = latencies(base, "POST", "/design", small_body, seconds=seconds, clients=16)
+        repeat4 = latencies(base, "POST", "/design", small_body, seconds=seconds, clients=4)
         row("GET /healthz, 16 clients", health)
         row("small POST /design, 16 clients", design16)
         row("small POST /design, 4 clients", design4)
         row("  the same plant each time, 16 clients", seen16)
         row("  the same plant each time, 4 clients", seen4)
+        row("  the same body again (answer cache), 16", repeat16)
+        row("  the same body again (answer cache), 4", repeat4)
         ratio = design16["rate"] / health["rate"] if health["rate"] else float("nan")
         seen_ratio = seen16["rate"] / health["rate"] if health["rate"] else float("nan")
         print(f"  rate ratio at 16 clients {ratio:.2f}x (goal >= 0.6x: {verdict(ratio >= 0.6)})")
         print(f"  p99 at 4 clients {format_time(design4['p99'])} (goal < 50 ms: {verdict(design4['p99'] < 0.05)})")
+        repeat_ratio = repeat16["rate"] / health["rate"] if health["rate"] else float("nan")
         print(
             f"  a plant seen before: {seen_ratio:.2f}x the /healthz rate, p99 at 4 clients {format_time(seen4['p99'])}"
+        )
+        print(
+            f"  a body answered before (answer cache): {repeat_ratio:.2f}x the /healthz rate, "
+            f"p99 at 4 clients {format_time(repeat4['p99'])}"
         )
 
         print("\n4. POST /simulate, one client:")
         for name in ("simulate_request.json", "simulate_request_limits.json"):
             body = (EXAMPLES / name).read_bytes()
             steps = json.loads(body)["scenario"]["steps"]
-            got = latencies(base, "POST", "/simulate", body, seconds=seconds, clients=1)
+            got = latencies(base, "POST", "/simulate", body, seconds=seconds, clients=1, headers=fresh_only)
             row(f"{name} ({steps} steps)", got)
             print(f"  {'':<44} {got['rate'] * steps:,.0f} simulated steps per second")
     finally:
