@@ -19,18 +19,20 @@ def get_settings() -> Settings:
     return Settings()
 
 
-def app_settings(request: Request) -> Settings:
+async def app_settings(request: Request) -> Settings:
     """The settings of the app serving this request (``app.state.settings``, set by create_app).
 
     Read from the app's state rather than through ``dependency_overrides``: with any override
-    in place FastAPI analyses every dependency's signature again on each request.
+    in place FastAPI analyses every dependency's signature again on each request.  A coroutine,
+    like :func:`get_caps`, because FastAPI runs every plain function dependency in a worker
+    thread: a trip there and back per dependency for an attribute read.
     """
     settings: Settings = request.app.state.settings
     return settings
 
 
-def get_caps(settings: Annotated[Settings, Depends(app_settings)]) -> Caps:
-    """The size caps from the settings."""
+async def get_caps(settings: Annotated[Settings, Depends(app_settings)]) -> Caps:
+    """The size caps from the settings (a few microseconds: on the event loop)."""
     return settings.caps()
 
 
