@@ -8,6 +8,7 @@ against the plain route it replaces, computed here with scipy directly.
 
 from __future__ import annotations
 
+import control
 import numpy as np
 import pytest
 import scipy.linalg
@@ -20,7 +21,8 @@ from service.solver.evaluation.advice import (
     _inverse_response_times,
     transmission_zeros,
 )
-from service.solver.models.properties import open_loop_poles, steady_state_gain
+from service.solver.models.properties import integrating_poles, open_loop_poles, steady_state_gain
+from service.solver.models.sampling import sample_zero_order_hold
 from tests.conftest import random_plant
 
 EPS = np.finfo(float).eps
@@ -194,3 +196,41 @@ def test_steady_state_gain_of_an_integrating_plant_still_takes_the_schur_route()
     assert fast.integration_order.tolist() == [[1, 0], [0, 0]]
     assert fast.ramp_rate[0, 0] == pytest.approx(1.0)
     assert fast.gain[1, 1] == pytest.approx(2.0)
+
+
+@pytest.mark.parametrize("sample_time", [1e-3, 1.0, 100.0])
+def test_integrating_poles_with_known_poles_counts_the_same(sample_time):
+    # A level, a double integrator and a lag of 10^5 s sampled exactly (scipy's expm through
+    # the service), and the same plant with every pole pulled inside: the count with the
+    # poles passed equals the count the function makes on its own, and python-control's poles
+    # (a general-purpose reference) put the integrators at 1.
+    a = np.array([[0.0, 1.0, 0.0, 0.0], [0.0, 0.0, 0.0, 0.0], [0.0, 0.0, 0.0, 0.0], [0.0, 0.0, 0.0, -1e-5]])
+    b = np.array([[0.0, 0.0], [1.0, 0.0], [0.0, 1.0], [0.0, 1e-5]])
+    ad = sample_zero_order_hold(a, b, sample_time=sample_time).a
+    assert integrating_poles(ad, poles=open_loop_poles(ad)) == integrating_poles(ad) == 3
+    assert sum(abs(z - 1) < 1e-6 for z in control.ss(ad, np.zeros((4, 1)), np.eye(4), 0, sample_time).poles()) >= 3
+    inside = 0.5 * ad
+    assert integrating_poles(inside, poles=open_loop_poles(inside)) == integrating_poles(inside) == 0
+
+
+def test_the_estimators_integrator_test_reuses_the_plants_poles(rng, monkeypatch):
+    # One eigenvalue problem of A per plant: the integrator test of the estimator reads the
+    # open-loop poles the plant's properties computed (service.solver.memo.plant_cache).
+    from service.solver.estimation import estimator
+    from service.solver.memo import clear_plant_caches
+    from service.solver.models import properties
+
+    a, b, c = random_plant(rng, 12, 3, 2, radius=0.9)
+    clear_plant_caches()
+    calls = []
+    real = properties.scipy.linalg.eigvals
+
+    def counted(matrix, *args, **kwargs):
+        calls.append(np.shape(matrix))
+        return real(matrix, *args, **kwargs)
+
+    monkeypatch.setattr(properties.scipy.linalg, "eigvals", counted)
+    properties.plant_properties(a, b, c)
+    estimator.integrating_outputs(a, c)
+    assert calls == [(12, 12)]
+    clear_plant_caches()

@@ -90,7 +90,7 @@ from service.errors import NumericalError
 from service.solver.design.weights import weight_matrix
 from service.solver.estimation.sizes import natural_sizes
 from service.solver.memo import plant_cache
-from service.solver.models.properties import integrating_poles
+from service.solver.models.properties import integrating_poles, open_loop_poles
 from service.solver.numerics import (
     eigenvalues_by_modulus,
     equilibrated_rank,
@@ -266,7 +266,7 @@ def _integrator_space(a: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDAr
     sample time).  Returns ``(N, d)``; ``N`` has no columns when no pole is at 1.
     """
     n = a.shape[0]
-    if n == 0 or integrating_poles(a) == 0:
+    if n == 0 or integrating_poles(a, poles=open_loop_poles(a)) == 0:
         return np.zeros((n, 0)), np.ones(n)
     _, (scale, _) = scipy.linalg.matrix_balance(a, permute=False, separate=True)
     balanced = a / scale[:, None] * scale[None, :]

@@ -131,7 +131,9 @@ class PlantProperties:
     balanced_condition_number: float | None = None
 
 
-def integrating_poles(a: NDArray[np.float64], *, tolerance: float = INTEGRATING_TOLERANCE) -> int:
+def integrating_poles(
+    a: NDArray[np.float64], *, tolerance: float = INTEGRATING_TOLERANCE, poles: ArrayLike | None = None
+) -> int:
     """Return how many poles of ``a`` are at ``z = 1`` (integrators), judged relative to the sample time.
 
     Parameters
@@ -139,6 +141,11 @@ def integrating_poles(a: NDArray[np.float64], *, tolerance: float = INTEGRATING_
     a : ndarray, shape (n, n)
     tolerance : float, keyword-only
         Largest ``|mean - 1|`` of the group (:data:`INTEGRATING_TOLERANCE`).
+    poles : array_like of complex, optional
+        The eigenvalues of ``a`` (:func:`open_loop_poles`), when the caller has them.  When
+        none lies within :data:`INTEGRATING_SEARCH` of 1 plus the rounding between them and
+        the eigenvalues of the balanced ``a``, the answer is 0 without another eigenvalue
+        problem (the same test as :func:`steady_state_gain` makes).
 
     Returns
     -------
@@ -150,10 +157,12 @@ def integrating_poles(a: NDArray[np.float64], *, tolerance: float = INTEGRATING_
     if a.shape[0] == 0:
         return 0
     a = _balanced(a)[0]
-    poles = scipy.linalg.eigvals(a, check_finite=False)
-    distance = np.abs(poles - 1.0)
+    if poles is not None and _none_near_one(poles, a):
+        return 0
+    values = scipy.linalg.eigvals(a, check_finite=False)
+    distance = np.abs(values - 1.0)
     order = np.argsort(distance, kind="stable")
-    near = poles[order][distance[order] <= INTEGRATING_SEARCH]
+    near = values[order][distance[order] <= INTEGRATING_SEARCH]
     size = max(1.0, float(np.linalg.norm(a, 1)))
     found = 0
     for k in range(1, near.size + 1):
@@ -162,6 +171,18 @@ def integrating_poles(a: NDArray[np.float64], *, tolerance: float = INTEGRATING_
         if abs(group.mean() - 1.0) <= tolerance / k and np.abs(group - 1.0).max() <= max(spread, tolerance):
             found = k
     return found
+
+
+def _none_near_one(poles: ArrayLike, balanced: NDArray[np.float64]) -> bool:
+    """Whether no pole lies within :data:`INTEGRATING_SEARCH` of 1, with a margin for rounding.
+
+    ``poles`` are the eigenvalues of a matrix similar to ``balanced``; the two computed sets
+    differ by rounding: of order ``eps |A|`` for simple poles, ``(eps |A|)^(1/k)`` for a
+    Jordan block of size ``k`` (Wilkinson 1965, ch. 2), well inside ``INTEGRATING_SEARCH``
+    plus ``sqrt(eps) |A_b|_1`` for blocks up to size 3 at any scale of ``|A|``.
+    """
+    margin = INTEGRATING_SEARCH + np.sqrt(np.finfo(float).eps) * float(np.linalg.norm(balanced, 1))
+    return bool(np.all(np.abs(np.asarray(poles, dtype=complex) - 1.0) > margin))
 
 
 def _balanced(a: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
@@ -239,13 +260,11 @@ def steady_state_gain(
     scale = balance_states(a_, b_, c_)
     a_ = a_ / scale[:, None] * scale[None, :]
     b_, c_ = b_ / scale[:, None], c_ * scale[None, :]
-    if poles is not None:
+    if poles is not None and _none_near_one(poles, a_):
         # The caller's eigenvalues and those of the balanced A differ by rounding only; the
         # margin keeps any pole that integrating_poles could look at.
-        margin = INTEGRATING_SEARCH + np.sqrt(np.finfo(float).eps) * float(np.linalg.norm(a_, 1))
-        if np.all(np.abs(np.asarray(poles, dtype=complex) - 1.0) > margin):
-            gain = c_ @ np.linalg.solve(np.eye(n) - a_, b_) + d_
-            return SteadyStateGain(gain=gain, integration_order=order, ramp_rate=ramp)
+        gain = c_ @ np.linalg.solve(np.eye(n) - a_, b_) + d_
+        return SteadyStateGain(gain=gain, integration_order=order, ramp_rate=ramp)
     t, z, k = _sorted_schur(a_, integrating_tolerance)
     if k == 0:
         gain = c_ @ np.linalg.solve(np.eye(n) - a_, b_) + d_
@@ -351,10 +370,13 @@ def gain_condition_number(gain: ArrayLike) -> float:
     return float(s[0] / s[-1])
 
 
+@plant_cache
 def open_loop_poles(a: ArrayLike) -> NDArray[np.complex128]:
-    """Return the eigenvalues of ``A`` by descending modulus (``scipy.linalg.eigvals``).
+    """Return the eigenvalues of ``A`` by descending modulus (``scipy.linalg.eigvals``), read-only.
 
     Balancing in LAPACK isolates the exact zero poles of shift-register (dead-time) states.
+    Kept per plant (:func:`service.solver.memo.plant_cache`): the plant's properties and the
+    estimator's integrator test both read them.
     """
     return eigenvalues_by_modulus(np.asarray(a, dtype=float))
 
