@@ -389,6 +389,7 @@ def solver_lanes(settings: Any) -> Lanes:
             max_waiting=settings.heavy_queue,
         ),
         heavy_work=float(settings.heavy_work),
+        heavy_memory=float(settings.heavy_memory_bytes),
     )
 
 

@@ -15,6 +15,7 @@ from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
 from service.api import settings_checks as checks
 from service.pipeline.caps import DEFAULT_CAPS, HEAVY_WORK, Caps
+from service.pipeline.memory import HEAVY_MEMORY_BYTES
 
 __all__ = ["Settings"]
 
@@ -133,6 +134,12 @@ class Settings(BaseSettings):
         default=HEAVY_WORK,
         gt=0,
         description="Estimated operations above which a request runs in the heavy lane.",
+    )
+    heavy_memory_bytes: int = Field(
+        default=HEAVY_MEMORY_BYTES,
+        ge=1024 * 1024,
+        description="Estimated peak memory (bytes) above which a request runs in the heavy lane, so that the "
+        "light lane's processes stay small.",
     )
     heavy_niceness: int = Field(
         default=0,

@@ -26,7 +26,6 @@ from service.pipeline.caps import Caps
 from service.pipeline.design import run_design
 from service.pipeline.estimates import design_memory_bytes
 from service.pipeline.examples import load_example
-from service.pipeline.memory import HEAVY_MEMORY_BYTES
 from service.schemas.design import DesignRequest
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -102,7 +101,8 @@ def test_the_default_cap_fits_the_pod_memory_limit_of_deploy():
     settings = yaml.safe_load((ROOT / "deploy" / "kubernetes" / "configmap.yaml").read_text())["data"]
     light = int(settings["MOVECAST_SOLVER_PROCESSES"])
     heavy = int(settings.get("MOVECAST_HEAVY_SOLVER_PROCESSES", Settings().heavy_solver_processes))
-    busy = heavy * Caps().max_request_memory_bytes + light * HEAVY_MEMORY_BYTES
+    heavy_memory = int(settings.get("MOVECAST_HEAVY_MEMORY_BYTES", Settings().heavy_memory_bytes))
+    busy = heavy * Caps().max_request_memory_bytes + light * heavy_memory
     # The serving process's answer cache, full (service/api/answer_cache.py), comes on top.
     cache = int(settings.get("MOVECAST_ANSWER_CACHE_BYTES", Settings().answer_cache_bytes))
     assert busy + cache + OVERHEAD + SLACK <= pod

@@ -18,8 +18,10 @@ from typing import Any
 
 import numpy as np
 import pytest
+from pydantic import ValidationError
 
-from service.api.compute import Lanes, SolverPool
+from service.api.compute import Lanes, SolverPool, solver_lanes
+from service.api.settings import Settings
 from service.pipeline.caps import Caps
 from service.pipeline.compare import run_compare
 from service.pipeline.design import run_design, run_design_json
@@ -217,6 +219,16 @@ def test_a_request_that_holds_much_runs_in_the_heavy_lane():
     assert request_memory(long_run).bytes > HEAVY_MEMORY_BYTES > request_memory(_simulate(240)).bytes
     light.close()
     heavy.close()
+
+
+def test_the_heavy_lanes_memory_threshold_is_a_setting():
+    assert solver_lanes(Settings()).heavy_memory == HEAVY_MEMORY_BYTES
+    lanes = solver_lanes(Settings(heavy_memory_bytes=8 * 1024 * 1024))
+    assert lanes.heavy_memory == 8 * 1024 * 1024
+    assert lanes.pick(10.0, 8 * 1024 * 1024 + 1)[1] == "heavy"
+    assert lanes.pick(10.0, 8 * 1024 * 1024)[1] == "light"
+    with pytest.raises(ValidationError):
+        Settings(heavy_memory_bytes=1000)  # below a mebibyte: a typo, refused at start-up
 
 
 def test_the_bundled_examples_fit_the_default_cap_and_the_defaults_refuse_issue_15s_design():
