@@ -425,6 +425,7 @@ def load(
     server's answer cache).
     """
     import httpx
+    from raw_load import run_clients
 
     extra = dict(headers or {})
     json_headers = {"content-type": "application/json", **extra}
@@ -462,23 +463,7 @@ def load(
                 else:
                     errors[slot] += 1
 
-    threads = [threading.Thread(target=worker, args=(slot,), daemon=True) for slot in range(concurrency)]
-    for thread in threads:
-        thread.start()
-    began = time.perf_counter()
-    deadline_box.append(began + seconds)
-    start_gate.wait()
-    for thread in threads:
-        thread.join(timeout=seconds + 2 * timeout)
-    elapsed = time.perf_counter() - began
-    done = np.array([t for slot in latencies for t in slot])
-    return {
-        "ok": int(done.size),
-        "errors": int(sum(errors)),
-        "rate": done.size / elapsed,
-        "p50": float(np.percentile(done, 50)) if done.size else float("nan"),
-        "p99": float(np.percentile(done, 99)) if done.size else float("nan"),
-    }
+    return run_clients(worker, latencies, errors, start_gate, deadline_box, seconds=seconds, timeout=timeout)
 
 
 def run_http_benchmark(*, seconds: float, concurrency: int) -> None:

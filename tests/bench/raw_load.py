@@ -16,11 +16,51 @@ import os
 import socket
 import threading
 import time
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
 
-__all__ = ["encode_request", "raw_load"]
+__all__ = ["encode_request", "raw_load", "run_clients"]
+
+
+def run_clients(
+    worker: Callable[[int], None],
+    latencies: list[list[float]],
+    errors: list[int],
+    gate: threading.Barrier,
+    deadline: list[float],
+    *,
+    seconds: float,
+    timeout: float,
+) -> dict[str, Any]:
+    """Run ``worker(slot)`` on one thread per slot of ``latencies`` for ``seconds``; tally what they recorded.
+
+    The workers wait at ``gate`` and stop at ``deadline[0]`` (set here just before the gate
+    opens); each appends the seconds of its 200 answers to ``latencies[slot]`` and counts
+    the rest in ``errors[slot]``.  Returns ``ok``, ``errors``, ``rate`` (200s per second),
+    ``p50`` and ``p99`` (seconds) and ``client_cpu`` (this process's CPU seconds per request).
+    """
+    threads = [threading.Thread(target=worker, args=(slot,), daemon=True) for slot in range(len(latencies))]
+    for thread in threads:
+        thread.start()
+    cpu = os.times()
+    began = time.perf_counter()
+    deadline.append(began + seconds)
+    gate.wait()
+    for thread in threads:
+        thread.join(timeout=seconds + 2 * timeout)
+    elapsed = time.perf_counter() - began
+    spent = os.times()
+    done = np.array([t for slot in latencies for t in slot])
+    return {
+        "ok": int(done.size),
+        "errors": int(sum(errors)),
+        "rate": done.size / elapsed,
+        "p50": float(np.percentile(done, 50)) if done.size else float("nan"),
+        "p99": float(np.percentile(done, 99)) if done.size else float("nan"),
+        "client_cpu": (spent.user + spent.system - cpu.user - cpu.system) / max(1, done.size + sum(errors)),
+    }
 
 
 def encode_request(method: str, path: str, body: bytes | None, headers: dict[str, str] | None = None) -> bytes:
@@ -63,11 +103,10 @@ def _answer(sock: socket.socket, pending: bytearray) -> tuple[int, bool]:
 
 def raw_load(
     port: int, requests: list[bytes], *, seconds: float, clients: int, timeout: float = 60.0
-) -> dict[str, float]:
+) -> dict[str, Any]:
     """Send ``requests`` (each thread cycles through them from its own offset) to 127.0.0.1:``port``.
 
-    Returns ``ok`` (200 answers), ``errors``, ``rate`` (200s per second), ``p50`` and ``p99``
-    (seconds) and ``client_cpu`` (this process's CPU seconds per request, all threads).
+    Returns the tally of :func:`run_clients`.
     """
     latencies: list[list[float]] = [[] for _ in range(clients)]
     errors = [0] * clients
@@ -106,25 +145,4 @@ def raw_load(
                 sock, pending = connect(), bytearray()
         sock.close()
 
-    threads = [threading.Thread(target=worker, args=(slot,), daemon=True) for slot in range(clients)]
-    for thread in threads:
-        thread.start()
-    cpu = os.times()
-    began = time.perf_counter()
-    deadline.append(began + seconds)
-    gate.wait()
-    for thread in threads:
-        thread.join(timeout=seconds + 2 * timeout)
-    elapsed = time.perf_counter() - began
-    spent = os.times()
-    done = np.array([t for slot in latencies for t in slot])
-    count = max(1, done.size + sum(errors))
-    got: dict[str, Any] = {
-        "ok": float(done.size),
-        "errors": float(sum(errors)),
-        "rate": done.size / elapsed,
-        "p50": float(np.percentile(done, 50)) if done.size else float("nan"),
-        "p99": float(np.percentile(done, 99)) if done.size else float("nan"),
-        "client_cpu": (spent.user + spent.system - cpu.user - cpu.system) / count,
-    }
-    return got
+    return run_clients(worker, latencies, errors, gate, deadline, seconds=seconds, timeout=timeout)
