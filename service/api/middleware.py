@@ -12,6 +12,7 @@ import logging
 import re
 import time
 import uuid
+from collections import OrderedDict
 from typing import Any
 
 from starlette.datastructures import Headers, MutableHeaders
@@ -51,6 +52,10 @@ UNMATCHED = "<unmatched>"
 #: caller cannot grow the label set (and /metrics) with made-up methods.
 KNOWN_METHODS = frozenset({"GET", "HEAD", "POST", "PUT", "PATCH", "DELETE", "OPTIONS"})
 OTHER_METHOD = "other"
+#: Route templates kept per middleware, by request line: a request's template is found by
+#: matching its path against every route (tens of microseconds), the same answer each time
+#: for the same method and path.  Least recently used out, so made-up paths cannot grow it.
+TEMPLATE_MEMO_SIZE = 1024
 #: Largest problem body read back to find its kind for the rejection metric.
 _PEEK_BYTES = 65_536
 
@@ -103,6 +108,19 @@ class RequestContextMiddleware:
 
     def __init__(self, app: ASGIApp) -> None:
         self.app = app
+        self._templates: OrderedDict[tuple[str, str, str, str], str] = OrderedDict()
+
+    def _template(self, scope: Scope) -> str:
+        """:func:`route_template` of the request, remembered by method, path and root path."""
+        key = (scope["type"], scope.get("method", ""), scope.get("path", ""), scope.get("root_path", ""))
+        template = self._templates.get(key)
+        if template is None:
+            template = self._templates[key] = route_template(scope)
+            if len(self._templates) > TEMPLATE_MEMO_SIZE:
+                self._templates.popitem(last=False)
+        else:
+            self._templates.move_to_end(key)
+        return template
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
@@ -111,7 +129,7 @@ class RequestContextMiddleware:
         start = time.perf_counter()
         request_id = sane_request_id(Headers(scope=scope).get(REQUEST_ID_HEADER)) or uuid.uuid4().hex
         token = request_id_var.set(request_id)
-        route = route_template(scope)
+        route = self._template(scope)
         state: dict[str, Any] = {"status": 500, "started": False, "problem": None}
 
         async def send_with_id(message: Message) -> None:

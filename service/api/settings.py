@@ -160,6 +160,7 @@ class Settings(BaseSettings):
     api_keys_file: Path | None = Field(default=None, description="File of API keys, one per line.")
 
     _file_keys: tuple[str, ...] = PrivateAttr(default=())
+    _caps: tuple[int, Caps | None] = PrivateAttr(default=(0, None))
 
     @field_validator("cors_origins", "api_keys", mode="before")
     @classmethod
@@ -194,5 +195,14 @@ class Settings(BaseSettings):
         return tuple(dict.fromkeys(keys))
 
     def caps(self) -> Caps:
-        """The size caps handed to the pipeline (the settings' fields of the same names)."""
-        return Caps(**{cap.name: getattr(self, cap.name) for cap in fields(Caps)})
+        """The size caps handed to the pipeline (the settings' fields of the same names).
+
+        Built once per settings object (they are frozen, and so is :class:`Caps`): every
+        request asks for them.  The object's id goes with them, so a ``model_copy`` (which
+        copies private attributes) builds its own.
+        """
+        owner, caps = self._caps
+        if owner != id(self) or caps is None:
+            caps = Caps(**{cap.name: getattr(self, cap.name) for cap in fields(Caps)})
+            self._caps = (id(self), caps)
+        return caps

@@ -220,3 +220,14 @@ def test_sizes_beyond_every_cap_are_heavy_not_an_error(example):
 def test_a_request_beyond_the_caps_is_still_a_422(client, example):
     example["horizons"] = {"prediction": 10**200, "control": 10**200}
     assert client.post("/design", json=example).status_code == 422
+
+
+def test_the_caps_are_built_once_per_settings_and_a_copy_builds_its_own():
+    from service.api.settings import Settings
+
+    settings = Settings(max_states=40)
+    caps = settings.caps()
+    assert caps.max_states == 40 and settings.caps() is caps
+    smaller = settings.model_copy(update={"max_states": 7})  # copies private attributes too
+    assert smaller.caps().max_states == 7
+    assert settings.caps() is caps and caps.max_states == 40

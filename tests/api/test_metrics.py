@@ -145,3 +145,48 @@ def test_made_up_methods_and_paths_add_no_series(make_client):
     routes = {dict(labels).get("route") for name, labels in after if name == "movecast_requests_total"}
     assert not [r for r in routes if "/path/" in r or "other-" in r or "no/such" in r or "junk" in r], routes
     assert value(after, "movecast_requests_total", method="other", route="/healthz", status="405") >= 60
+
+
+def _context_middleware(client):
+    """The app's RequestContextMiddleware instance (the stack is built on the first request)."""
+    from service.api.middleware import RequestContextMiddleware
+
+    layer = client.app.middleware_stack
+    while layer is not None and not isinstance(layer, RequestContextMiddleware):
+        layer = getattr(layer, "app", None)
+    assert layer is not None
+    return layer
+
+
+def test_route_templates_are_remembered_per_request_line_within_a_bound(make_client, monkeypatch):
+    import service.api.middleware as middleware
+
+    monkeypatch.setattr(middleware, "TEMPLATE_MEMO_SIZE", 8)
+    client = make_client()
+    before = samples(client)
+    # A path with a parameter counts under its template, first time and remembered alike.
+    for _ in range(2):
+        client.get("/workbench/examples/no-such-example")
+    # Made-up paths: each "<unmatched>", and the memo never holds more than its bound.
+    for k in range(20):
+        client.get(f"/made-up/{k}")
+    after = samples(client)
+    memo = _context_middleware(client)._templates
+    assert 0 < len(memo) <= 8
+    template = "/workbench/examples/{name}"
+    counted = sum(
+        v - before.get(key, 0.0)
+        for key, v in after.items()
+        if key[0] == "movecast_requests_total" and dict(key[1]).get("route") == template
+    )
+    assert counted == 2
+    unmatched = sum(
+        v - before.get(key, 0.0)
+        for key, v in after.items()
+        if key[0] == "movecast_requests_total" and dict(key[1]).get("route") == "<unmatched>"
+    )
+    assert unmatched >= 20
+    # The memo's answer is the full scan's, for a path it holds.
+    for (kind, method, path, root), template in memo.items():
+        scope = {"type": kind, "method": method, "path": path, "root_path": root, "app": client.app, "headers": []}
+        assert middleware.route_template(scope) == template
