@@ -14,7 +14,8 @@ it at the end; every load loop is bounded in time)::
 3. Small design against ``GET /healthz`` on the same server at 16 clients (goal: at least
    0.6x the rate), and its p99 at 4 clients (goal: under 50 ms), from raw keep-alive sockets
    (``raw_load.py``): 16 httpx threads cost the client as much CPU per request as the server
-   spends, so with httpx the client would set both rates.
+   spends, so with httpx the client would set both rates.  On Linux it also prints the
+   serving process's own CPU per answer (``/proc``), the figure the ratio's arithmetic rests on.
 4. ``POST /simulate`` of the bundled example and of the limits example: simulated steps per
    second, one client (goal of the issue: 2x the figure before it; printed for the record).
 
@@ -151,8 +152,34 @@ def row(label: str, got: dict[str, float]) -> None:
     )
 
 
-def goal_three(port: int, small_body: bytes, *, seconds: float) -> None:
-    """Small designs against /healthz from a client light enough that the server sets the rate."""
+def process_cpu_seconds(pid: int) -> float | None:
+    """User plus system CPU seconds of one process, all its threads (``/proc``; None elsewhere).
+
+    Not its children: the solver processes are children of the fork server, not of the
+    serving process, so this is the serving process's own share.
+    """
+    try:
+        fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    except OSError:
+        return None
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
+def serving_cpu(pid: int | None, run: Any) -> dict[str, Any]:
+    """``run()``'s result with ``serving_cpu``: the serving process's CPU seconds per answer (None: unknown)."""
+    before = process_cpu_seconds(pid) if pid is not None else None
+    got = dict(run())
+    after = process_cpu_seconds(pid) if pid is not None else None
+    spent = None if before is None or after is None or not got["ok"] else (after - before) / got["ok"]
+    return {**got, "serving_cpu": spent}
+
+
+def goal_three(port: int, small_body: bytes, *, seconds: float, server_pid: int | None = None) -> None:
+    """Small designs against /healthz from a client light enough that the server sets the rate.
+
+    With ``server_pid`` (Linux), also the serving process's own CPU per answer, from ``/proc``
+    (clock ticks, so a few percent): the figure the rate ratio's arithmetic rests on.
+    """
     fresh_only = {"Cache-Control": "no-store"}
     # 200 variants of the small plant: more than every solver's plant cache holds, so each
     # request is designed afresh; the same body again shows a plant seen before.
@@ -163,12 +190,14 @@ def goal_three(port: int, small_body: bytes, *, seconds: float) -> None:
     ]
     same = [encode_request("POST", "/design", small_body, fresh_only)]
     repeated = [encode_request("POST", "/design", small_body)]  # no no-store: from the answer cache
-    health = raw_load(port, [encode_request("GET", "/healthz", None)], seconds=seconds, clients=16)
-    design16 = raw_load(port, fresh, seconds=seconds, clients=16)
+    health = serving_cpu(
+        server_pid, lambda: raw_load(port, [encode_request("GET", "/healthz", None)], seconds=seconds, clients=16)
+    )
+    design16 = serving_cpu(server_pid, lambda: raw_load(port, fresh, seconds=seconds, clients=16))
     design4 = raw_load(port, fresh, seconds=seconds, clients=4)
     seen16 = raw_load(port, same, seconds=seconds, clients=16)
     seen4 = raw_load(port, same, seconds=seconds, clients=4)
-    repeat16 = raw_load(port, repeated, seconds=seconds, clients=16)
+    repeat16 = serving_cpu(server_pid, lambda: raw_load(port, repeated, seconds=seconds, clients=16))
     repeat4 = raw_load(port, repeated, seconds=seconds, clients=4)
     row("GET /healthz, 16 clients", health)
     row("small POST /design, 16 clients", design16)
@@ -179,6 +208,15 @@ def goal_three(port: int, small_body: bytes, *, seconds: float) -> None:
     row("  the same body again (answer cache), 4", repeat4)
     cpu = max(got["client_cpu"] for got in (health, design16, repeat16))
     print(f"  the client's own CPU: at most {format_time(cpu)} per request")
+    spent = [
+        (label, got["serving_cpu"])
+        for label, got in (("/healthz", health), ("a small design", design16), ("an answer from the cache", repeat16))
+    ]
+    if all(value is not None for _, value in spent):
+        print(
+            "  the serving process's own CPU per answer at 16 clients: "
+            + ", ".join(f"{label} {format_time(value)}" for label, value in spent)
+        )
 
     def against_health(got: dict[str, float]) -> float:
         return got["rate"] / health["rate"] if health["rate"] else float("nan")
@@ -252,7 +290,7 @@ def http_goals(floor: float, large: dict[str, Any], *, seconds: float, rounds: i
         print(f"  small p99 {format_time(light['p99'])} (goal < 100 ms: {verdict(light['p99'] < 0.1)})")
 
         print("\n3. Small design against /healthz on the same server (raw keep-alive sockets, raw_load.py):")
-        goal_three(port, small_body, seconds=seconds)
+        goal_three(port, small_body, seconds=seconds, server_pid=server.pid)
 
         print("\n4. POST /simulate, one client:")
         for name in ("simulate_request.json", "simulate_request_limits.json"):
