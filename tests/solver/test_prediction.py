@@ -54,3 +54,18 @@ def test_moves_matrix_is_block_lower_triangular_toeplitz(rng):
         for j in range(3):
             expected = pred.step_response[i + 1 - j] if j <= i else np.zeros((2, 2))
             np.testing.assert_array_equal(g[i, :, j, :], expected)
+
+
+@pytest.mark.parametrize(("n", "m", "p", "steps"), [(1, 1, 1, 1), (6, 3, 2, 30), (3, 1, 4, 2)])
+def test_step_responses_match_scipy_dstep(rng, n, m, p, steps):
+    # Reference: scipy.signal.dstep (the unit step response of (A, B, C, 0), one input at a
+    # time, sampled at k = 0..steps): S_k of each input is its column of the output at k.
+    import scipy.signal
+
+    from service.solver.design.prediction import step_response_coefficients
+
+    a, b, c = random_plant(rng, n, m, p)
+    _, step = step_response_coefficients(a, b, c, steps)
+    _, responses = scipy.signal.dstep((a, b, c, np.zeros((p, m)), 1.0), n=steps + 1)
+    for j in range(m):
+        np.testing.assert_allclose(step[:, :, j], responses[j], rtol=1e-12, atol=1e-12)

@@ -83,11 +83,13 @@ def step_response_coefficients(
     n = a.shape[0]
     p, m = c.shape[0], b.shape[1]
     c_powers = np.empty((steps + 1, p, n))
-    step = np.zeros((steps + 1, p, m))
     c_powers[0] = c
     for i in range(1, steps + 1):
-        step[i] = step[i - 1] + c_powers[i - 1] @ b
         c_powers[i] = c_powers[i - 1] @ a
+    # S_i = S_{i-1} + C A^{i-1} B: one stacked product, then the running sum in step order
+    # (the same additions in the same order as a loop, so the same numbers)
+    step = np.zeros((steps + 1, p, m))
+    np.cumsum(c_powers[:-1] @ b, axis=0, out=step[1:])
     return c_powers, step
 
 
