@@ -1,8 +1,9 @@
-"""ASGI middleware: request ids, access log, request metrics, the last-resort 500, body limit.
+"""ASGI middleware: request ids, access log, request metrics, the last-resort 500, body limit,
+large response bodies in pieces.
 
-Both classes are plain ASGI middleware (no ``BaseHTTPMiddleware``), so they stream and add
+Each class is plain ASGI middleware (no ``BaseHTTPMiddleware``), so they stream and add
 nothing per request but a few dictionary look-ups.  The order, outermost first, is set in
-:mod:`service.api.operations`: request context, CORS, API key, body limit, the app.
+:mod:`service.api.operations`: body pieces, request context, CORS, API key, body limit, the app.
 """
 
 from __future__ import annotations
@@ -34,6 +35,7 @@ except ImportError:  # pragma: no cover - older FastAPI lists every route in app
 
 __all__ = [
     "REQUEST_ID_HEADER",
+    "BodyChunkMiddleware",
     "BodyLimitMiddleware",
     "ProblemCORSMiddleware",
     "RequestContextMiddleware",
@@ -271,3 +273,49 @@ class ProblemCORSMiddleware(CORSMiddleware):
             "The allowed origins are set by MOVECAST_CORS_ORIGINS."
         )
         return problem_response(Problem("forbidden-origin", 403, detail), "", headers=headers)
+
+
+#: Largest piece of a response body handed to the server at once (:class:`BodyChunkMiddleware`).
+BODY_CHUNK_BYTES = 1024 * 1024
+
+
+class BodyChunkMiddleware:
+    """Hand a large response body to the server in pieces of :data:`BODY_CHUNK_BYTES`.
+
+    A body sent in one message that the socket cannot take at once is copied whole into the
+    transport's write buffer, so the serving process holds it twice while a client reads it
+    (a design answer of 28 MiB raised the process's peak by about three answers,
+    ``tests/bench/bench_answer_memory.py``).  In pieces, the server's flow control waits for
+    the socket to drain between them and holds at most about one piece beyond the body.  The
+    bytes, their order and the headers (``Content-Length`` included) are unchanged; the
+    outermost middleware, so every other one sees the body as the app sent it.
+    """
+
+    def __init__(self, app: ASGIApp, *, chunk_bytes: int = BODY_CHUNK_BYTES) -> None:
+        self.app = app
+        self.chunk_bytes = chunk_bytes
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        size = self.chunk_bytes
+
+        async def send_in_pieces(message: Message) -> None:
+            body = message.get("body", b"")
+            if message["type"] != "http.response.body" or len(body) <= size:
+                await send(message)
+                return
+            more = bool(message.get("more_body", False))
+            view = memoryview(body)
+            for start in range(0, len(view), size):
+                last = start + size >= len(view)
+                await send(
+                    {
+                        "type": "http.response.body",
+                        "body": bytes(view[start : start + size]),
+                        "more_body": more or not last,
+                    }
+                )
+
+        await self.app(scope, receive, send_in_pieces)

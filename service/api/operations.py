@@ -30,6 +30,7 @@ from service.api import metrics
 from service.api.compute import solver_lanes
 from service.api.middleware import (
     REQUEST_ID_HEADER,
+    BodyChunkMiddleware,
     BodyLimitMiddleware,
     ProblemCORSMiddleware,
     RequestContextMiddleware,
@@ -151,3 +152,4 @@ def install_operations(app: FastAPI, settings: Settings) -> None:
             max_age=600,
         )
     app.add_middleware(RequestContextMiddleware)
+    app.add_middleware(BodyChunkMiddleware)
