@@ -110,11 +110,11 @@ class RequestContextMiddleware:
 
     def __init__(self, app: ASGIApp) -> None:
         self.app = app
-        self._templates: OrderedDict[tuple[str, str, str, str], str] = OrderedDict()
+        self._templates: OrderedDict[tuple[str, str, str], str] = OrderedDict()
 
     def _template(self, scope: Scope) -> str:
         """:func:`route_template` of the request, remembered by method, path and root path."""
-        key = (scope["type"], scope.get("method", ""), scope.get("path", ""), scope.get("root_path", ""))
+        key = (scope.get("method", ""), scope.get("path", ""), scope.get("root_path", ""))
         template = self._templates.get(key)
         if template is None:
             template = self._templates[key] = route_template(scope)

@@ -187,6 +187,6 @@ def test_route_templates_are_remembered_per_request_line_within_a_bound(make_cli
     )
     assert unmatched >= 20
     # The memo's answer is the full scan's, for a path it holds.
-    for (kind, method, path, root), template in memo.items():
-        scope = {"type": kind, "method": method, "path": path, "root_path": root, "app": client.app, "headers": []}
+    for (method, path, root), template in memo.items():
+        scope = {"type": "http", "method": method, "path": path, "root_path": root, "app": client.app, "headers": []}
         assert middleware.route_template(scope) == template
