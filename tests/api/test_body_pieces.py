@@ -4,9 +4,11 @@ from __future__ import annotations
 
 import asyncio
 
+import numpy as np
 import pytest
 
 from service.api.middleware import BODY_CHUNK_BYTES, BodyChunkMiddleware
+from tests.conftest import random_design_request
 
 
 def sent_messages(messages: list[dict], *, chunk_bytes: int) -> list[dict]:
@@ -59,24 +61,8 @@ def test_a_streamed_body_keeps_its_more_body_flags():
 def test_a_large_answer_arrives_whole_over_http(make_client):
     # A real app: a /design answer larger than one piece (a plant with many outputs over a long
     # horizon) arrives byte for byte, with its Content-Length, whether computed or from the cache.
-    import numpy as np
-
-    rng = np.random.default_rng(11)
-    n, signals, hp = 6, 40, 200
-    a = rng.normal(size=(n, n))
-    a *= 0.9 / max(abs(np.linalg.eigvals(a)))
-    body = {
-        "model": {
-            "kind": "state_space",
-            "a": a.tolist(),
-            "b": rng.normal(size=(n, signals)).tolist(),
-            "c": rng.normal(size=(signals, n)).tolist(),
-            "time_domain": "discrete",
-            "sample_time": 1.0,
-        },
-        "horizons": {"prediction": hp, "control": 1},
-        "weights": {"output": [1.0] * signals, "move": [0.1] * signals},
-    }
+    signals = 40
+    body = random_design_request(np.random.default_rng(11), states=6, signals=signals, prediction=200, control=1)
     client = make_client(answer_cache_bytes=256 * 1024 * 1024)  # room for an answer this size
     first = client.post("/design", json=body)
     assert first.status_code == 200, first.text

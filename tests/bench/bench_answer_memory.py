@@ -19,19 +19,20 @@ reads ``/proc``).  A script, not a test: it prints figures and asserts nothing.
 from __future__ import annotations
 
 import argparse
-import os
-import subprocess
 import sys
 import threading
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 
 ROOT = Path(__file__).resolve().parents[2]
-sys.path.insert(0, str(ROOT / "tests" / "bench"))
+for path in (ROOT, ROOT / "tests" / "bench"):
+    if str(path) not in sys.path:
+        sys.path.insert(0, str(path))
 
-from bench_design import free_port, load_average, wait_until_healthy  # noqa: E402
+from bench_design import load_average, local_server  # noqa: E402
+
+from tests.conftest import random_design_request  # noqa: E402
 
 MIB = 1024 * 1024
 
@@ -45,26 +46,6 @@ def memory_mib(pid: int) -> tuple[float, float]:
     return int(fields["VmRSS"][0]) / 1024, int(fields["VmHWM"][0]) / 1024
 
 
-def large_answer_body(signals: int, prediction: int, *, seed: int = 5) -> dict[str, Any]:
-    """A /design request of a random stable plant (10 states, signals x signals), Hu 1."""
-    rng = np.random.default_rng(seed)
-    states = 10
-    a = rng.normal(size=(states, states))
-    a *= 0.9 / max(abs(np.linalg.eigvals(a)))
-    return {
-        "model": {
-            "kind": "state_space",
-            "a": a.tolist(),
-            "b": rng.normal(size=(states, signals)).tolist(),
-            "c": rng.normal(size=(signals, states)).tolist(),
-            "time_domain": "discrete",
-            "sample_time": 1.0,
-        },
-        "horizons": {"prediction": prediction, "control": 1},
-        "weights": {"output": [1.0] * signals, "move": [0.1] * signals},
-    }
-
-
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--signals", type=int, default=80)
@@ -73,17 +54,13 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     import httpx
 
-    port = free_port()
-    base = f"http://127.0.0.1:{port}"
-    env = dict(os.environ, MOVECAST_LOG_LEVEL="warning")
-    command = [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port", str(port)]
-    server = subprocess.Popen(command, cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     print(f"load average {load_average()}; {args.signals} x {args.signals}, Hp {args.prediction}, Hu 1")
-    try:
-        if not wait_until_healthy(base, server, timeout=180.0):
-            print(f"the server did not answer GET /healthz within 180 s (exit status {server.poll()})")
+    with local_server(timeout=180.0) as served_by:
+        if served_by is None:
             return 1
-        body = large_answer_body(args.signals, args.prediction)
+        base, server = served_by
+        rng = np.random.default_rng(5)
+        body = random_design_request(rng, states=10, signals=args.signals, prediction=args.prediction, control=1)
         headers = {"Cache-Control": "no-store"}  # computed each time, kept nowhere
         for clients in args.clients:
             rss, peak = memory_mib(server.pid)
@@ -109,12 +86,6 @@ def main(argv: list[str] | None = None) -> int:
                 f"(rise {rise:.0f} MiB, {copies})",
                 flush=True,
             )
-    finally:
-        server.terminate()
-        try:
-            server.wait(timeout=60)
-        except subprocess.TimeoutExpired:
-            server.kill()
     return 0
 
 

@@ -28,6 +28,7 @@ This is a script, not a test: it prints figures and asserts nothing.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import cProfile
 import io
 import os
@@ -38,7 +39,7 @@ import subprocess
 import sys
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -404,6 +405,33 @@ def wait_until_healthy(base: str, server: subprocess.Popen[bytes], *, timeout: f
     return False
 
 
+@contextlib.contextmanager
+def local_server(*, timeout: float) -> Iterator[tuple[str, subprocess.Popen[bytes]] | None]:
+    """``movecast serve`` on a free loopback port (log level warning), stopped on leaving.
+
+    Yields the base URL and the process, or None (after printing why) when it did not answer
+    ``GET /healthz`` within ``timeout`` seconds.
+    """
+    port = free_port()
+    base = f"http://127.0.0.1:{port}"
+    env = dict(os.environ, MOVECAST_LOG_LEVEL="warning")  # no access log line per request
+    command = [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port", str(port)]
+    server = subprocess.Popen(command, cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    try:
+        if wait_until_healthy(base, server, timeout=timeout):
+            yield base, server
+        else:
+            print(f"  the server did not answer GET /healthz within {timeout:g} s (exit status {server.poll()})")
+            yield None
+    finally:
+        server.terminate()
+        try:
+            server.wait(timeout=20.0)
+        except subprocess.TimeoutExpired:
+            server.kill()
+            server.wait(timeout=10.0)
+
+
 def load(
     base: str,
     method: str,
@@ -463,7 +491,10 @@ def load(
                 else:
                     errors[slot] += 1
 
-    return run_clients(worker, latencies, errors, start_gate, deadline_box, seconds=seconds, timeout=timeout)
+    tally: dict[str, Any] = run_clients(
+        worker, latencies, errors, start_gate, deadline_box, seconds=seconds, timeout=timeout
+    )
+    return tally
 
 
 def run_http_benchmark(*, seconds: float, concurrency: int) -> None:
@@ -471,15 +502,11 @@ def run_http_benchmark(*, seconds: float, concurrency: int) -> None:
 
     plant = random_plant_for(CASES["small"])
     body = design_body(plant)
-    port = free_port()
-    base = f"http://127.0.0.1:{port}"
-    env = dict(os.environ, MOVECAST_LOG_LEVEL="warning")  # no access log line per request
-    command = [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port", str(port)]
-    server = subprocess.Popen(command, cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    try:
-        if not wait_until_healthy(base, server, timeout=30.0):
-            print(f"the server did not answer GET /healthz within 30 s (exit status {server.poll()})")
+    with local_server(timeout=30.0) as served_by:
+        if served_by is None:
             return
+        base, _ = served_by
+        port = base.rsplit(":", 1)[1]
         answer = httpx.post(f"{base}/design", json=body, timeout=30.0)
         if answer.status_code != 200:
             print(f"POST /design answered {answer.status_code}: {answer.text[:500]}")
@@ -507,13 +534,6 @@ def run_http_benchmark(*, seconds: float, concurrency: int) -> None:
                 f"{format_time(got['p50']):>10} {format_time(got['p99']):>10}",
                 flush=True,
             )
-    finally:
-        server.terminate()
-        try:
-            server.wait(timeout=10.0)
-        except subprocess.TimeoutExpired:
-            server.kill()
-            server.wait(timeout=10.0)
 
 
 # --------------------------------------------------------------------------- main

@@ -33,7 +33,6 @@ import argparse
 import json
 import os
 import platform
-import subprocess
 import sys
 import threading
 import time
@@ -51,11 +50,10 @@ from bench_design import (  # noqa: E402
     design_body,
     floor_inputs,
     format_time,
-    free_port,
     load,
     load_average,
+    local_server,
     random_plant_for,
-    wait_until_healthy,
 )
 from raw_load import encode_request, raw_load  # noqa: E402
 from threadpoolctl import threadpool_limits  # noqa: E402
@@ -237,15 +235,11 @@ def goal_three(port: int, small_body: bytes, *, seconds: float, server_pid: int 
 def http_goals(floor: float, large: dict[str, Any], *, seconds: float, rounds: int) -> None:
     import httpx
 
-    port = free_port()
-    base = f"http://127.0.0.1:{port}"
-    env = dict(os.environ, MOVECAST_LOG_LEVEL="warning")
-    command = [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port", str(port)]
-    server = subprocess.Popen(command, cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    try:
-        if not wait_until_healthy(base, server, timeout=180.0):
-            print(f"  the server did not answer GET /healthz within 180 s (exit status {server.poll()})")
+    with local_server(timeout=180.0) as served_by:
+        if served_by is None:
             return
+        base, server = served_by
+        port = int(base.rsplit(":", 1)[1])
         large_body = json.dumps(large).encode()
         small_body = json.dumps(design_body(random_plant_for(CASES["small"]))).encode()
         # no-store: every request is computed, never answered from the server's answer cache
@@ -299,13 +293,6 @@ def http_goals(floor: float, large: dict[str, Any], *, seconds: float, rounds: i
             got = latencies(base, "POST", "/simulate", body, seconds=seconds, clients=1, headers=fresh_only)
             row(f"{name} ({steps} steps)", got)
             print(f"  {'':<44} {got['rate'] * steps:,.0f} simulated steps per second")
-    finally:
-        server.terminate()
-        try:
-            server.wait(timeout=20.0)
-        except subprocess.TimeoutExpired:
-            server.kill()
-            server.wait(timeout=10.0)
 
 
 def main(argv: list[str] | None = None) -> int:
