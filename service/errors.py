@@ -122,6 +122,18 @@ class HeavyLaneFull(MovecastError):
         super().__init__(f"{waiting} heavy requests are already waiting")
 
 
+class AnswerMemoryFull(MovecastError):
+    """The time limit passed while the request waited for room beside the answers in flight."""
+
+    def __init__(self, seconds: float, held: int, limit: int) -> None:
+        self.seconds = seconds
+        self.held = held
+        self.limit = limit
+        super().__init__(
+            f"time limit of {seconds:g} s exceeded waiting for answer memory ({held} of {limit} bytes held)"
+        )
+
+
 class TimeLimitExceeded(MovecastError):
     """The request's compute time limit passed, waiting for a compute process (``queued``) or in one."""
 

@@ -46,6 +46,7 @@ from fastapi import Depends, Request
 from pydantic import BaseModel
 from starlette.types import Receive
 
+from service.api.answer_memory import HOLD_KEY, AnswerHold
 from service.api.compute_worker import rebuild_error, serve_calls
 from service.api.deps import SettingsDep
 from service.api.metrics import LANE_REQUESTS, SOLVER_SECONDS
@@ -58,7 +59,7 @@ from service.errors import (
     TimeLimitExceeded,
 )
 from service.pipeline.caps import Caps, request_work
-from service.pipeline.memory import HEAVY_MEMORY_BYTES, check_request_memory
+from service.pipeline.memory import HEAVY_MEMORY_BYTES, MemoryEstimate, check_request_memory
 
 __all__ = [
     "HEAVY_NICENESS",
@@ -406,15 +407,30 @@ class Budget:
     """The compute time left to one request; every solver call of the request draws on it.
 
     ``cancel`` is set when the request's client goes away: the call running then is stopped
-    (its solver killed and replaced) and no further call starts.
+    (its solver killed and replaced) and no further call starts.  With ``hold`` (the request's
+    :class:`service.api.answer_memory.AnswerHold`), the bytes its answer will take in this
+    process are reserved before its first call, waiting for room within the same deadline.
     """
 
-    def __init__(self, lanes: Lanes | SolverPool, *, seconds: float, cancel: threading.Event | None = None) -> None:
+    def __init__(
+        self,
+        lanes: Lanes | SolverPool,
+        *,
+        seconds: float,
+        cancel: threading.Event | None = None,
+        hold: AnswerHold | None = None,
+    ) -> None:
         self.lanes = lanes if isinstance(lanes, Lanes) else Lanes(light=lanes, heavy=lanes, heavy_work=float("inf"))
         self.pool = self.lanes.light
         self.seconds = seconds
         self.deadline = time.monotonic() + seconds
         self.cancel = cancel
+        self.hold = hold
+
+    def hold_answer(self, estimate: MemoryEstimate | None) -> None:
+        """Reserve the serving-process bytes of the answer ``estimate`` describes (no hold: nothing)."""
+        if self.hold is not None and estimate is not None:
+            self.hold.take(estimate.served, deadline=self.deadline, seconds=self.seconds, cancel=self.cancel)
 
     def run(self, call: Callable[..., T], *args: Any, operation: str, work: float | None = None) -> T:
         """Run ``call(*args)`` in a solver process of its lane within the budget; record its time.
@@ -423,7 +439,8 @@ class Budget:
         is estimated from the first argument when that is a request model
         (:func:`service.pipeline.caps.request_work`).  With the caps among the arguments, a request
         whose memory estimate (:func:`service.pipeline.memory.check_request_memory`) exceeds
-        ``max_request_memory_bytes`` is refused with a 422 naming its fields before it runs.
+        ``max_request_memory_bytes`` is refused with a 422 naming its fields before it runs, and
+        the bytes of its answer in this process are held (:meth:`hold_answer`).
         """
         request = args[0] if args and isinstance(args[0], BaseModel) else None
         if work is None:
@@ -433,6 +450,7 @@ class Budget:
         if request is not None and caps is not None:
             estimate = check_request_memory(request, caps)  # a 422 before any process is taken
             memory = estimate.bytes if estimate is not None else 0.0
+            self.hold_answer(estimate)
         pool, lane = self.lanes.pick(work, memory)
         value, spent = pool.run(call, args, deadline=self.deadline, seconds=self.seconds, cancel=self.cancel)
         SOLVER_SECONDS.labels(operation=operation).observe(spent)
@@ -448,8 +466,9 @@ async def get_budget(settings: SettingsDep, request: Request) -> AsyncIterator[B
     """
     cancel = threading.Event()
     watcher = asyncio.ensure_future(_watch_disconnect(request.receive, cancel))
+    hold = request.scope.get(HOLD_KEY)  # released once the response is sent (AnswerMemoryMiddleware)
     try:
-        yield Budget(solver_lanes(settings), seconds=settings.request_timeout_seconds, cancel=cancel)
+        yield Budget(solver_lanes(settings), seconds=settings.request_timeout_seconds, cancel=cancel, hold=hold)
     finally:
         watcher.cancel()
 

@@ -32,6 +32,7 @@ from service.schemas.design import DesignResponse
 
 __all__ = [
     "ANSWER_CACHE",
+    "ANSWER_MEMORY",
     "DESIGN_SIZE",
     "IN_PROGRESS",
     "LANE_REQUESTS",
@@ -60,6 +61,12 @@ IN_PROGRESS = Gauge(
     "movecast_requests_in_progress",
     "Requests received and not yet answered.",
     ["route"],
+    multiprocess_mode="livesum",
+)
+ANSWER_MEMORY = Gauge(
+    "movecast_answer_memory_bytes",
+    "Bytes of answers the serving process holds for requests in flight (estimated from their sizes, "
+    "from the solver's reply to the last byte sent; at most MOVECAST_MAX_ANSWER_MEMORY_BYTES).",
     multiprocess_mode="livesum",
 )
 SOLVER_SECONDS = Histogram(

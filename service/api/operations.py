@@ -4,7 +4,8 @@
 
 - the middleware stack, outermost first: request context (request id, access log, request
   metrics, last-resort 500), CORS (only with ``MOVECAST_CORS_ORIGINS``), API key (only with
-  keys), body limit (``MOVECAST_MAX_BODY_BYTES``);
+  keys), body limit (``MOVECAST_MAX_BODY_BYTES``), answer memory (each request's hold on the
+  bytes of answers in flight, ``service.api.answer_memory``);
 - GET /metrics;
 - the shared error responses (401, 413, 503, 500) in the OpenAPI document of every route
   they can come from;
@@ -27,6 +28,7 @@ from typing import Any
 from fastapi import FastAPI
 
 from service.api import metrics
+from service.api.answer_memory import AnswerMemory, AnswerMemoryMiddleware
 from service.api.compute import solver_lanes
 from service.api.middleware import (
     REQUEST_ID_HEADER,
@@ -138,6 +140,8 @@ def install_operations(app: FastAPI, settings: Settings) -> None:
     _document_common_responses(app)
     _wrap_lifespan(app, settings)
     # add_middleware puts each new one outside the previous: add innermost first.
+    app.state.answer_memory = AnswerMemory(settings.max_answer_memory_bytes)
+    app.add_middleware(AnswerMemoryMiddleware, memory=app.state.answer_memory)
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes)
     keys = KeyRing(settings.api_key_values())
     if keys:

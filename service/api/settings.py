@@ -46,13 +46,20 @@ class Settings(BaseSettings):
     max_design_memory_bytes: int = Field(
         default=DEFAULT_CAPS.max_design_memory_bytes,
         ge=1024 * 1024,
-        description="Most estimated memory of one design in the solver, in bytes (fits the 1 GiB pod of deploy/).",
+        description="Most estimated memory of one design in the solver, in bytes (fits the pod of deploy/).",
     )
     max_request_memory_bytes: int = Field(
         default=DEFAULT_CAPS.max_request_memory_bytes,
         ge=1024 * 1024,
         description="Most estimated peak memory of one request in the compute process, its answer included, in "
-        "bytes (runs, sweeps, batches, comparisons, identifications; fits the 1 GiB pod of deploy/).",
+        "bytes (runs, sweeps, batches, comparisons, identifications; fits the pod of deploy/).",
+    )
+    max_answer_memory_bytes: int = Field(
+        default=DEFAULT_CAPS.max_answer_memory_bytes,
+        ge=1024 * 1024,
+        description="Most bytes of answers the serving process holds at once, each estimated from the request's "
+        "sizes and held from the solver's reply to its last byte sent; one answer past it is a 422, answers that "
+        "do not fit beside the others wait for room within the time limit.",
     )
     max_response_entries: int = Field(
         default=DEFAULT_CAPS.max_response_entries, ge=1, description="Most entries of the horizon gain in a response."

@@ -92,13 +92,17 @@ class Caps:
     max_prediction_entries: int = 25_000_000
     #: Peak bytes of one design in the compute process
     #: (``service.pipeline.estimates.design_memory_bytes``).  The default leaves room, inside
-    #: the 1 GiB memory limit of ``deploy/``, for the serving process, the fork server and the
+    #: the 1280 MiB memory limit of ``deploy/``, for the serving process, the fork server and the
     #: compute process's own interpreter and libraries (about 475 MB together, measured).
     max_design_memory_bytes: int = 384 * 1024 * 1024
     #: Peak bytes of a whole request in the compute process, its answer included
     #: (``service.pipeline.memory.request_memory``: runs, sweeps, batches, comparisons,
     #: identifications); the same room inside the pod as the design cap.
     max_request_memory_bytes: int = 384 * 1024 * 1024
+    #: Bytes of answers the serving process holds at once, each from its solver's reply to its
+    #: last byte sent (``MemoryEstimate.served``; ``service.api.answer_memory``).  The default
+    #: holds the largest /design answer :attr:`max_response_entries` allows, alone.
+    max_answer_memory_bytes: int = 128 * 1024 * 1024
     #: Entries of the horizon gain ``Kh`` returned in a response, and of any other series
     #: a response returns (:func:`horizon_gain_entries`, :func:`run_entries`).
     max_response_entries: int = 2_000_000

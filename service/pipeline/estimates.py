@@ -33,6 +33,16 @@ Beyond the design's arrays, a request holds what it returns and the series it co
   its block Hankel matrices ``2 k (m + p)`` rows by the samples, with the copies its QR
   factorization and singular value decomposition make.
 
+The serving process holds an answer too, from the solver's reply until its last byte is sent
+(``service.api.answer_memory`` bounds those bytes): :data:`SERVED_JSON_NUMBER_BYTES` a number
+where the solver writes the JSON (or CSV) itself (/design, /design/export, /simulate: the
+pickled reply and the body, about two copies of 25 bytes of text a number), and
+:data:`SERVED_MODEL_NUMBER_BYTES` where the serving process rebuilds the response model and
+writes it (/design/batch, /design/sweep, /design/compare, /identify), plus
+:data:`SERVED_ANSWER_BASE_BYTES` an answer for its keys, labels and headers.  Measured with
+``tracemalloc`` around whole requests of random plants (40 x 40, Hp 100 and 20 x 20, Hp 200):
+53 and 69-76 bytes a number, a copy of the client's included; rounded up.
+
 ``tests/api/test_memory_estimates.py`` checks that each estimate bounds the peak ``tracemalloc``
 reports for the whole request in one process, for a few sizes.
 """
@@ -47,11 +57,15 @@ __all__ = [
     "IDENTIFY_SAMPLE_BYTES",
     "QP_COPIES",
     "RUN_NUMBER_BYTES",
+    "SERVED_ANSWER_BASE_BYTES",
+    "SERVED_JSON_NUMBER_BYTES",
+    "SERVED_MODEL_NUMBER_BYTES",
     "answer_memory_bytes",
     "design_memory_bytes",
     "design_work",
     "frequency_memory_bytes",
     "identify_memory_bytes",
+    "served_answer_bytes",
     "simulation_memory_bytes",
 ]
 
@@ -107,9 +121,27 @@ QP_COPIES = 4
 IDENTIFY_SAMPLE_BYTES = 1600
 
 
+#: Bytes of one number of an answer the solver writes as JSON or CSV, in the serving process.
+SERVED_JSON_NUMBER_BYTES = 64
+#: Bytes of one number of an answer the serving process writes from its response model.
+SERVED_MODEL_NUMBER_BYTES = 96
+#: Bytes of one answer in the serving process beside its numbers (keys, labels, headers).
+SERVED_ANSWER_BASE_BYTES = 256 * 1024
+
+
 def answer_memory_bytes(numbers: int) -> int:
     """Bytes of an answer of ``numbers`` numbers (gains, poles, series) at its peak."""
     return ANSWER_NUMBER_BYTES * numbers
+
+
+def served_answer_bytes(numbers: int, *, written_by_solver: bool, answers: int = 1) -> int:
+    """Bytes the serving process holds for ``answers`` answers of ``numbers`` numbers in all.
+
+    ``written_by_solver``: the solver sends the answer's bytes (JSON or CSV), not its model.
+    From the solver's reply to the last byte sent (see the module notes).
+    """
+    per_number = SERVED_JSON_NUMBER_BYTES if written_by_solver else SERVED_MODEL_NUMBER_BYTES
+    return per_number * numbers + SERVED_ANSWER_BASE_BYTES * answers
 
 
 def simulation_memory_bytes(

@@ -13,6 +13,11 @@ peak, plus every answer that is kept until the end.
 ``/horizons/prediction``, ``/values``, ``/items``, ``/data`` ...).  The compute lanes also read
 the estimate (``service.api.compute``): a request above :data:`HEAVY_MEMORY_BYTES` runs in the
 heavy lane whatever its work, so the light lane's processes stay small.
+
+Each estimate also says what the request's answer holds in the serving process while it is
+sent (``MemoryEstimate.served``); an answer past ``Caps.max_answer_memory_bytes`` alone is a 422
+naming the same fields, and ``service.api.answer_memory`` makes the answers in flight share
+that many bytes.
 """
 
 from __future__ import annotations
@@ -29,11 +34,13 @@ from service.pipeline.estimates import (
     design_memory_bytes,
     frequency_memory_bytes,
     identify_memory_bytes,
+    served_answer_bytes,
     simulation_memory_bytes,
 )
 from service.schemas.batch import BatchRequest
 from service.schemas.compare import CompareRequest
 from service.schemas.design import DesignRequest
+from service.schemas.export import ExportRequest
 from service.schemas.identify import IdentifyRequest
 from service.schemas.model import StateSpaceModel
 from service.schemas.simulate import ScenarioRequest, SimulateRequest
@@ -47,14 +54,24 @@ HEAVY_MEMORY_BYTES = 32 * 1024 * 1024
 
 _MIB = 1024 * 1024
 
+#: Longest step response an identification returns per pair, in samples (the cap of
+#: ``service.pipeline.identify`` and ``service.pipeline.identify_subspace``).
+IDENTIFY_STEP_SAMPLES = 2000
+
 
 @dataclass(frozen=True)
 class MemoryEstimate:
-    """Peak bytes of a request and the JSON pointers of the fields that drive them (largest first)."""
+    """Peak bytes of a request and the JSON pointers of the fields that drive them (largest first).
+
+    ``bytes`` is the peak in the compute process; ``served`` the bytes the serving process holds
+    for the answer, from the solver's reply to its last byte sent
+    (:func:`service.pipeline.estimates.served_answer_bytes`).
+    """
 
     bytes: float
     fields: tuple[str, ...]
     what: str
+    served: float = 0.0
 
 
 def _disturbance_states(request: DesignRequest, inputs: int, outputs: int) -> int:
@@ -74,7 +91,7 @@ def _measured_disturbances(request: DesignRequest) -> int:
 
 
 def _design(request: DesignRequest) -> tuple[int, int]:
-    """Peak bytes of one design with its answer, and the answer's bytes alone."""
+    """Peak bytes of one design with its answer, and the answer's numbers."""
     n, m, p = model_sizes(request.model)
     h = request.horizons
     penalized = max(h.prediction - h.first_penalized + 1, 1)
@@ -91,7 +108,7 @@ def _design(request: DesignRequest) -> tuple[int, int]:
         longest = max(study.extra_dead_time, default=0)
         size = 2 * n + nd + 2 * m + longest * min(m, p)
         peak += 8 * 4 * size * size + answer_memory_bytes(8 * len(study.gain_factors) * len(study.extra_dead_time))
-    return peak, answer
+    return peak, numbers
 
 
 def _measured_outputs(request: DesignRequest, outputs: int) -> int:
@@ -101,13 +118,15 @@ def _measured_outputs(request: DesignRequest, outputs: int) -> int:
     return outputs
 
 
-def _run(request: DesignRequest, scenario: ScenarioRequest, design_peak: int) -> int:
+def _run(request: DesignRequest, scenario: ScenarioRequest, design_peak: int) -> tuple[int, int]:
+    """Peak bytes of one run on top of its design, and the numbers of its series and report."""
     n, m, p = model_sizes(request.model)
     py = _measured_outputs(request, p)
     nt = model_sizes(scenario.true_plant)[0] if scenario.true_plant is not None else n
     nd = _disturbance_states(request, m, max(p, py))
     md = _measured_disturbances(request)
     per_step = 3 * p + 2 * py + 3 * m + n + nd + md + nt + 2  # the series kept, the noise, the time
+    answered = 1 + 2 * p + py + m + n + nd + md  # a step's time, outputs, measured, setpoints, inputs, estimates
     qp_entries = report = 0
     if request.limits is not None or request.zones is not None:
         h = request.horizons
@@ -115,24 +134,40 @@ def _run(request: DesignRequest, scenario: ScenarioRequest, design_peak: int) ->
         rows = 4 * h.control * m + 2 * h.prediction * p + 2 * p * (h.prediction + 1)
         qp_entries = variables * (variables + rows)
         report = scenario.steps * (8 + 3 * m + 4 * p)
-    return simulation_memory_bytes(
+    peak = simulation_memory_bytes(
         design_bytes=design_peak,
         steps=scenario.steps,
         numbers_per_step=per_step,
         qp_entries=qp_entries,
         report_numbers=report,
     )
+    return peak, scenario.steps * answered + report
+
+
+def _law_numbers(request: DesignRequest) -> int:
+    """Numbers of an exported law: the controller with its estimator as one state-space system."""
+    n, m, p = model_sizes(request.model)
+    size = n + _disturbance_states(request, m, max(p, _measured_outputs(request, p))) + m + p
+    size += _measured_disturbances(request)
+    return 4 * size * size
 
 
 def _design_request(request: DesignRequest, where: str = "") -> MemoryEstimate:
-    peak, _ = _design(request)
-    return MemoryEstimate(peak, (f"{where}/horizons/control", f"{where}/horizons/prediction"), "this design")
+    peak, numbers = _design(request)
+    if isinstance(request, ExportRequest):  # the law's matrices or its source, from the model
+        served = served_answer_bytes(_law_numbers(request), written_by_solver=False)
+    else:  # /design: the solver writes the JSON
+        served = served_answer_bytes(numbers, written_by_solver=True)
+    fields = (f"{where}/horizons/control", f"{where}/horizons/prediction")
+    return MemoryEstimate(peak, fields, "this design", served)
 
 
 def _simulate_request(request: SimulateRequest) -> MemoryEstimate:
-    peak, _ = _design(request)
-    total = _run(request, request.scenario, peak)
-    return MemoryEstimate(total, ("/scenario/steps", "/horizons/prediction", "/horizons/control"), "this run")
+    peak, numbers = _design(request)
+    total, series = _run(request, request.scenario, peak)
+    served = served_answer_bytes(numbers + series, written_by_solver=True)  # JSON or CSV, written by the solver
+    fields = ("/scenario/steps", "/horizons/prediction", "/horizons/control")
+    return MemoryEstimate(total, fields, "this run", served)
 
 
 def _sweep_request(request: SweepRequest) -> MemoryEstimate:
@@ -143,13 +178,14 @@ def _sweep_request(request: SweepRequest) -> MemoryEstimate:
         design = design.model_copy(update={"horizons": horizons})
     peak, _ = _design(design)
     if request.scenario is not None:
-        peak = _run(design, request.scenario, peak)
+        peak, _ = _run(design, request.scenario, peak)
     # one value at a time; every entry keeps a few dozen numbers
     total = peak + answer_memory_bytes(64 * len(request.values))
     fields = ("/values", "/design/horizons/prediction", "/design/horizons/control")
     if request.scenario is not None:
         fields = ("/values", "/scenario/steps", "/design/horizons/prediction")
-    return MemoryEstimate(total, fields, "this sweep")
+    served = served_answer_bytes(64 * len(request.values), written_by_solver=False)
+    return MemoryEstimate(total, fields, "this sweep", served)
 
 
 def _batch_request(request: BatchRequest) -> MemoryEstimate:
@@ -159,20 +195,24 @@ def _batch_request(request: BatchRequest) -> MemoryEstimate:
             design = DesignRequest.model_validate(item.request)
         except ValidationError:
             continue  # answered as that item's own problem
-        peak, answer = _design(design)
+        peak, numbers = _design(design)
         largest = max(largest, peak)
-        kept += answer  # every designed item's answer stays until the batch is answered
-    return MemoryEstimate(largest + kept, ("/items",), "this batch")
+        kept += numbers  # every designed item's answer stays until the batch is answered
+    served = served_answer_bytes(kept, written_by_solver=False, answers=len(request.items))
+    return MemoryEstimate(largest + answer_memory_bytes(kept), ("/items",), "this batch", served)
 
 
 def _compare_request(request: CompareRequest) -> MemoryEstimate:
     sides = [_design(request.in_service), _design(request.proposed)]
-    peak = max(p for p, _ in sides) + sum(a for _, a in sides)
+    peak = max(p for p, _ in sides) + sum(answer_memory_bytes(a) for _, a in sides)
+    numbers = sum(a for _, a in sides)
     if request.scenario is not None:
         runs = [_run(side, request.scenario, 0) for side in (request.in_service, request.proposed)]
-        peak += sum(runs)  # both runs are compared at the end
+        peak += sum(p for p, _ in runs)  # both runs are compared at the end
+        numbers += sum(s for _, s in runs)
     fields = ("/scenario/steps", "/proposed/horizons/prediction", "/in_service/horizons/prediction")
-    return MemoryEstimate(peak, fields if request.scenario is not None else fields[1:], "this comparison")
+    served = served_answer_bytes(numbers, written_by_solver=False, answers=2)
+    return MemoryEstimate(peak, fields if request.scenario is not None else fields[1:], "this comparison", served)
 
 
 def _identify_request(request: IdentifyRequest) -> MemoryEstimate:
@@ -189,7 +229,12 @@ def _identify_request(request: IdentifyRequest) -> MemoryEstimate:
     fields = ("/data", "/block_rows") if block_rows else ("/data",)
     if request.time is not None:
         fields = (*fields, "/time", "/sample_time")
-    return MemoryEstimate(total, fields, "this identification")
+    # per pair a step response (at most IDENTIFY_STEP_SAMPLES times and values) and its
+    # residual correlations; the model's matrices
+    pairs = (len(request.inputs) + len(request.disturbances)) * len(request.outputs)
+    numbers = pairs * (2 * IDENTIFY_STEP_SAMPLES + 3 * (request.correlation_lags + 1)) + 4 * columns * columns
+    served = served_answer_bytes(numbers, written_by_solver=False)
+    return MemoryEstimate(total, fields, "this identification", served)
 
 
 def request_memory(request: BaseModel) -> MemoryEstimate | None:
@@ -258,7 +303,8 @@ def _past_size_caps(request: BaseModel, caps: Caps) -> bool:
 
 
 def check_request_memory(request: BaseModel, caps: Caps) -> MemoryEstimate | None:
-    """Refuse a request whose estimated peak memory exceeds ``caps.max_request_memory_bytes``.
+    """Refuse a request whose estimated peak memory exceeds ``caps.max_request_memory_bytes``,
+    or whose answer alone would exceed ``caps.max_answer_memory_bytes`` in the serving process.
 
     A request past one of the size caps (states, signals, prediction horizon, steps, samples,
     values) is left to the check that names that field: its estimate only sends it to the
@@ -270,11 +316,21 @@ def check_request_memory(request: BaseModel, caps: Caps) -> MemoryEstimate | Non
         422, one entry per field that drives the estimate, each saying the estimate and the cap.
     """
     estimate = request_memory(request)
-    if estimate is None or estimate.bytes <= caps.max_request_memory_bytes or _past_size_caps(request, caps):
+    if estimate is None or _past_size_caps(request, caps):
         return estimate
-    detail = (
-        f"{estimate.what} would need about {estimate.bytes / _MIB:,.0f} MiB in the compute process, estimated "
-        f"from its sizes; this service allows {caps.max_request_memory_bytes / _MIB:,.0f} MiB. Make this field "
-        "smaller (steps, horizons, values, items or samples, whichever drives it)"
-    )
+    if estimate.bytes > caps.max_request_memory_bytes:
+        detail = (
+            f"{estimate.what} would need about {estimate.bytes / _MIB:,.0f} MiB in the compute process, estimated "
+            f"from its sizes; this service allows {caps.max_request_memory_bytes / _MIB:,.0f} MiB. Make this field "
+            "smaller (steps, horizons, values, items or samples, whichever drives it)"
+        )
+    elif estimate.served > caps.max_answer_memory_bytes:
+        detail = (
+            f"the answer of {estimate.what} would take about {estimate.served / _MIB:,.0f} MiB in the serving "
+            f"process while it is sent, estimated from its sizes; this service holds at most "
+            f"{caps.max_answer_memory_bytes / _MIB:,.0f} MiB of answers at once. Make this field smaller "
+            "(steps, horizons, values, items or signals, whichever drives it), or split the request"
+        )
+    else:
+        return estimate
     raise InvalidRequest([FieldProblem(where, detail) for where in estimate.fields or ("",)])

@@ -19,6 +19,7 @@ from typing import Any, Literal
 from pydantic import ValidationError
 
 from service.errors import (
+    AnswerMemoryFull,
     Cancelled,
     ComputeDied,
     ComputeOutOfMemory,
@@ -207,6 +208,13 @@ def problem_of(exc: BaseException, *, base: str = "", scope: Scope = "request") 
             "already waiting). Retry later, or make the request smaller."
         )
         return Problem("busy", 503, detail, headers={"Retry-After": "5"})
+    if isinstance(exc, AnswerMemoryFull):
+        detail = (
+            f"The compute time limit of {exc.seconds:g} s ran out while this request waited for room beside the "
+            f"large answers the service is sending ({exc.held / 2**20:,.0f} of {exc.limit / 2**20:,.0f} MiB held). "
+            "Retry after the time given in Retry-After, or ask for a smaller answer."
+        )
+        return Problem("busy", 503, detail, headers={"Retry-After": str(RETRY_AFTER_SECONDS)})
     if isinstance(exc, TimeLimitExceeded):
         if scope == "item":
             detail = f"The batch's compute time limit of {exc.seconds:g} s ran out before this item was designed."

@@ -16,6 +16,7 @@ import re
 import time
 from pathlib import Path
 
+import numpy as np
 import pytest
 import yaml
 
@@ -26,7 +27,9 @@ from service.pipeline.caps import Caps
 from service.pipeline.design import run_design
 from service.pipeline.estimates import design_memory_bytes
 from service.pipeline.examples import load_example
+from service.pipeline.memory import request_memory
 from service.schemas.design import DesignRequest
+from tests.conftest import random_design_request
 
 ROOT = Path(__file__).resolve().parents[2]
 resource = pytest.importorskip("resource")
@@ -92,8 +95,7 @@ def test_the_default_cap_fits_the_pod_memory_limit_of_deploy():
     manifest = yaml.safe_load((ROOT / "deploy" / "kubernetes" / "deployment.yaml").read_text())
     (container,) = manifest["spec"]["template"]["spec"]["containers"]
     limit = container["resources"]["limits"]["memory"]
-    assert limit.endswith("Gi")
-    pod = int(limit[:-2]) * 1024**3
+    pod = int(limit[:-2]) * {"Mi": 1024**2, "Gi": 1024**3}[limit[-2:]]
     assert Caps().max_design_memory_bytes + OVERHEAD + SLACK <= pod
     # Every compute process at its largest at once: the heavy lane's processes up to the request
     # cap, each light-lane process up to the memory that sends a request to the heavy lane
@@ -103,9 +105,17 @@ def test_the_default_cap_fits_the_pod_memory_limit_of_deploy():
     heavy = int(settings.get("MOVECAST_HEAVY_SOLVER_PROCESSES", Settings().heavy_solver_processes))
     heavy_memory = int(settings.get("MOVECAST_HEAVY_MEMORY_BYTES", Settings().heavy_memory_bytes))
     busy = heavy * Caps().max_request_memory_bytes + light * heavy_memory
-    # The serving process's answer cache, full (service/api/answer_cache.py), comes on top.
+    # The serving process's answer cache, full (service/api/answer_cache.py), and the answers it
+    # holds while it sends them (service/api/answer_memory.py) come on top.
     cache = int(settings.get("MOVECAST_ANSWER_CACHE_BYTES", Settings().answer_cache_bytes))
-    assert busy + cache + OVERHEAD + SLACK <= pod
+    answers = int(settings.get("MOVECAST_MAX_ANSWER_MEMORY_BYTES", Settings().max_answer_memory_bytes))
+    assert busy + cache + answers + OVERHEAD + SLACK <= pod
+    # The answer bound holds the largest /design answer the response cap allows, alone.
+    # (a square plant of 31 inputs and outputs at the longest horizon: 31 * 31 * 2000 gain entries)
+    hp, signals = Caps().max_prediction_horizon, 31
+    assert signals * signals * hp <= Caps().max_response_entries < (signals + 1) ** 2 * hp
+    body = random_design_request(np.random.default_rng(1), states=10, signals=signals, prediction=hp, control=1)
+    assert request_memory(DesignRequest.model_validate(body)).served <= answers
     # The design of issue 15 (the example plant, Hp = Hu = 2000) is refused by the default cap.
     assert (
         design_memory_bytes(states=4, inputs=2, outputs=2, penalized_steps=2000, control=2000)

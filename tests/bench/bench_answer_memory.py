@@ -11,9 +11,10 @@ the horizon gain holds ``signals^2 * Hp`` numbers.  For each count of simultaneo
 prints the answer's size and the serving process's resident memory (``VmRSS``) and its peak
 (``VmHWM``) from ``/proc`` before and after, and the peak's rise in copies of one answer.
 
-The pod budget of ``tests/api/test_memory_bound.py`` does not count these bytes yet (see the
-README's deployment section); this script is the instrument for that work.  Linux only (it
-reads ``/proc``).  A script, not a test: it prints figures and asserts nothing.
+The serving process holds each answer's estimated bytes until its last byte is sent, at most
+``MOVECAST_MAX_ANSWER_MEMORY_BYTES`` in all (``service/api/answer_memory.py``; the pod budget of
+``tests/api/test_memory_bound.py`` counts that bound): with the defaults, one of these answers
+fits at a time, and the others wait for room.  Linux only (it reads ``/proc``).  A script, not a test: it prints figures and asserts nothing.
 """
 
 from __future__ import annotations

@@ -94,5 +94,6 @@ def design_batch(
     """Design many controllers in one call; each item gets its own result or problem, in order."""
     check_batch(batch, max_items=settings.max_batch_items)
     caps = settings.caps()
-    check_request_memory(batch, caps)  # the answers kept together, and the largest item's design
+    # the answers kept together, and the largest item's design; then the answers' room here
+    budget.hold_answer(check_request_memory(batch, caps))
     return BatchResponse(items=[_answer(i, item, caps, budget) for i, item in enumerate(batch.items)])
