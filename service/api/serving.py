@@ -16,6 +16,7 @@ process exits with status 0.
 
 from __future__ import annotations
 
+import ctypes
 import math
 import signal
 from types import FrameType
@@ -23,10 +24,43 @@ from types import FrameType
 from service.api.logs import logging_config
 from service.api.settings import Settings
 
-__all__ = ["GRACE_MARGIN_SECONDS", "graceful_shutdown_seconds", "run_server"]
+__all__ = [
+    "GRACE_MARGIN_SECONDS",
+    "MMAP_THRESHOLD_BYTES",
+    "graceful_shutdown_seconds",
+    "return_large_blocks",
+    "run_server",
+]
 
 #: Seconds added to the compute time limit for answering the last requests.
 GRACE_MARGIN_SECONDS = 5
+
+#: Blocks above this size are mapped on their own, so that memory freed goes back to the system.
+MMAP_THRESHOLD_BYTES = 1024 * 1024
+#: ``M_MMAP_THRESHOLD`` of glibc's ``mallopt`` (malloc.h).
+_M_MMAP_THRESHOLD = -3
+
+
+def return_large_blocks(threshold: int = MMAP_THRESHOLD_BYTES) -> bool:
+    """Have glibc map every block above ``threshold`` bytes on its own (``mallopt(M_MMAP_THRESHOLD)``).
+
+    By default glibc raises that threshold each time a large block is freed, so the next answers
+    of tens of MiB come from the heap of whichever thread built them and stay there after they
+    are sent: three answers one after another, each built in another worker thread, kept the
+    serving process about three answers above its rest although only one was ever held at a
+    time (``tests/bench/bench_answer_memory.py``; with the threshold fixed it comes back to
+    rest).  A fixed threshold also turns that adjustment off.  ``MALLOC_MMAP_THRESHOLD_`` does
+    the same for processes started later (``movecast serve`` sets it for its children).
+
+    Returns whether the C library took it (False off glibc, where this does nothing).
+    """
+    try:
+        mallopt = ctypes.CDLL(None).mallopt
+    except (OSError, AttributeError):
+        return False
+    mallopt.argtypes = [ctypes.c_int, ctypes.c_int]
+    mallopt.restype = ctypes.c_int
+    return bool(mallopt(_M_MMAP_THRESHOLD, threshold))
 
 
 def graceful_shutdown_seconds(settings: Settings) -> int:
@@ -46,6 +80,7 @@ def run_server(settings: Settings, *, host: str, port: int, workers: int) -> int
     from service.api.protocol import GuardedH11Protocol
 
     log_warnings()
+    return_large_blocks()
 
     # uvicorn restores the handlers it found and raises the stopping signal again after a
     # graceful shutdown; with these in place that ends in a clean exit, not a kill.

@@ -15,6 +15,9 @@ from __future__ import annotations
 import asyncio
 import copy
 import json
+import os
+import subprocess
+import sys
 import threading
 import time
 import tracemalloc
@@ -26,6 +29,7 @@ from fastapi.testclient import TestClient
 
 from service.api.answer_memory import AnswerHold, AnswerMemory
 from service.api.app import create_app
+from service.api.serving import MMAP_THRESHOLD_BYTES, return_large_blocks
 from service.api.settings import Settings
 from service.errors import AnswerMemoryFull, Cancelled, InvalidRequest
 from service.pipeline.caps import Caps
@@ -246,3 +250,51 @@ def test_the_estimate_bounds_what_the_serving_process_holds():
             assert size > MIB  # large enough for the per-number figures to matter
             assert peak <= estimate.served, (path, peak, estimate.served)
 
+
+#: Run in a fresh interpreter: build an answer-sized block in three worker threads one after
+#: another, free each, and print the resident memory before and after (kB, /proc).
+_THREADED_BLOCKS = """
+import sys, threading
+from pathlib import Path
+from service.api.serving import return_large_blocks
+def rss():
+    line = [l for l in Path("/proc/self/status").read_text().splitlines() if l.startswith("VmRSS")][0]
+    return int(line.split()[1])
+if sys.argv[1] == "fixed":
+    assert return_large_blocks()
+def build():
+    for size in (24, 28, 32):
+        block = b"x" * (size * 1024 * 1024)
+        del block
+before = rss()
+for _ in range(3):
+    worker = threading.Thread(target=build)
+    worker.start()
+    worker.join()
+print(before, rss())
+"""
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="glibc's mallopt and /proc")
+def test_with_the_threshold_fixed_large_answers_freed_go_back_to_the_system():
+    """glibc's own rule (malloc(3), M_MMAP_THRESHOLD): a block above the threshold is mapped alone."""
+    if not return_large_blocks(MMAP_THRESHOLD_BYTES):
+        pytest.skip("not glibc")
+    env = {k: v for k, v in os.environ.items() if k != "MALLOC_MMAP_THRESHOLD_"}
+    done = subprocess.run(
+        [sys.executable, "-c", _THREADED_BLOCKS, "fixed"], capture_output=True, text=True, timeout=60, env=env
+    )
+    before, after = map(int, done.stdout.split())
+    assert after - before < 8 * 1024, done.stdout  # kB: back near rest, not 24-32 MiB above it
+
+
+def test_serve_fixes_the_threshold_for_the_processes_it_starts(monkeypatch):
+    from service import cli
+
+    environment = {k: v for k, v in os.environ.items() if k != "MALLOC_MMAP_THRESHOLD_"}
+    monkeypatch.setattr(os, "environ", environment)
+    cli._prepare_process_environment(1)
+    assert os.environ["MALLOC_MMAP_THRESHOLD_"] == str(MMAP_THRESHOLD_BYTES)
+    environment["MALLOC_MMAP_THRESHOLD_"] = "4194304"  # the operator's own value is kept
+    cli._prepare_process_environment(1)
+    assert os.environ["MALLOC_MMAP_THRESHOLD_"] == "4194304"
