@@ -1,6 +1,6 @@
 """The HTTP/1.1 connection handling of ``movecast serve``: uvicorn's h11 protocol, guarded.
 
-:class:`GuardedH11Protocol` is uvicorn's own ``H11Protocol`` with three changes:
+:class:`GuardedH11Protocol` is uvicorn's own ``H11Protocol`` with four changes:
 
 - **problem details from the server itself.**  What uvicorn answers before the app sees a
   request (a request line or header h11 refuses, e.g. ``Content-Length: abc``) is a 400
@@ -9,6 +9,11 @@
   ``MOVECAST_READ_TIMEOUT_SECONDS`` of its first byte (of the connection, for the first
   request).  A connection that trickles is answered 408 and closed; an idle keep-alive
   connection is closed after ``MOVECAST_KEEP_ALIVE_SECONDS`` (uvicorn's own timer);
+- **a stall deadline for responses.**  When the client takes none of a response for
+  ``MOVECAST_SEND_STALL_SECONDS`` (the socket's buffer stays full: asyncio paused the writing
+  and has not resumed it), the connection is dropped.  A client that reads, however slowly,
+  resets it with every drain; one that stops reading cannot keep its answer's bytes in the
+  serving process (``service.api.answer_memory``) for longer than that;
 - **a connection cap.**  Past ``MOVECAST_MAX_CONNECTIONS`` open connections per worker, a
   new one is answered 503 with ``Retry-After`` and closed at once.
 
@@ -62,8 +67,10 @@ class GuardedH11Protocol(H11Protocol):
         super().__init__(*args, **kwargs)
         settings = get_settings()
         self.read_timeout = settings.read_timeout_seconds
+        self.send_stall = settings.send_stall_seconds
         self.max_connections = settings.max_connections
         self._read_deadline: asyncio.TimerHandle | None = None
+        self._send_deadline: asyncio.TimerHandle | None = None
 
     # -- the connection cap and the deadline of the first request
     def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
@@ -83,7 +90,30 @@ class GuardedH11Protocol(H11Protocol):
 
     def connection_lost(self, exc: Exception | None) -> None:
         self._disarm()
+        self._resumed()
         super().connection_lost(exc)
+
+    # -- the stall deadline of responses
+    def pause_writing(self) -> None:
+        super().pause_writing()
+        if self._send_deadline is None:
+            self._send_deadline = self.loop.call_later(self.send_stall, self._send_stalled)
+
+    def resume_writing(self) -> None:
+        self._resumed()
+        super().resume_writing()
+
+    def _resumed(self) -> None:
+        if self._send_deadline is not None:
+            self._send_deadline.cancel()
+            self._send_deadline = None
+
+    def _send_stalled(self) -> None:
+        self._send_deadline = None
+        if self.transport.is_closing():
+            return
+        log.warning("the client took none of the response for %g s; connection dropped", self.send_stall)
+        self.transport.abort()  # the buffered bytes go at once; uvicorn sees the connection lost
 
     # -- the read deadline of every request
     def data_received(self, data: bytes) -> None:

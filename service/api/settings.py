@@ -121,6 +121,13 @@ class Settings(BaseSettings):
         le=600,
         description="A request must arrive whole (line, headers, body) within this time of its first byte; else 408.",
     )
+    send_stall_seconds: float = Field(
+        default=30.0,
+        gt=0,
+        le=3600,
+        description="A client that takes none of a response for this long is dropped (the socket's buffer stays "
+        "full), so that it cannot hold its answer in memory.",
+    )
     keep_alive_seconds: int = Field(
         default=5, ge=1, le=600, description="An idle kept-alive connection is closed after this time."
     )

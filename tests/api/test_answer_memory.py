@@ -298,3 +298,52 @@ def test_serve_fixes_the_threshold_for_the_processes_it_starts(monkeypatch):
     environment["MALLOC_MMAP_THRESHOLD_"] = "4194304"  # the operator's own value is kept
     cli._prepare_process_environment(1)
     assert os.environ["MALLOC_MMAP_THRESHOLD_"] == "4194304"
+
+
+def test_a_client_that_stops_reading_is_dropped_and_its_answer_memory_comes_back(tmp_path):
+    """The stall deadline (service/api/protocol.py): no byte taken for send_stall_seconds, dropped."""
+    import socket
+
+    import httpx
+
+    from tests.api.live import live_server, metric
+
+    body = random_design_request(np.random.default_rng(7), states=10, signals=50, prediction=200, control=1)
+    payload = json.dumps(body).encode()
+    request = (
+        b"POST /design HTTP/1.1\r\nHost: 127.0.0.1\r\nContent-Type: application/json\r\nCache-Control: no-store\r\n"
+        + f"Content-Length: {len(payload)}\r\n\r\n".encode()
+        + payload
+    )
+    with live_server(tmp_path, send_stall_seconds="1", solver_processes="1") as server:
+        with socket.socket() as sock:
+            sock.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 4096)  # a reader that takes little
+            sock.settimeout(60)
+            sock.connect((server.host, server.port))
+            sock.sendall(request)
+            head = sock.recv(1024)  # the status line arrives; then the client reads no more
+            assert head.startswith(b"HTTP/1.1 200"), head[:200]
+            length = int(head.split(b"content-length: ", 1)[1].split(b"\r\n", 1)[0])
+            assert length > 10 * MIB  # far more than the sockets' buffers hold
+            held = most = 0.0
+            for _ in range(300):  # bounded: until the server has dropped the connection
+                text = httpx.get(f"{server.base}/metrics", timeout=10).text
+                held = metric(text, "movecast_answer_memory_bytes")
+                most = max(most, held)
+                if "connection dropped" in server.log_text() and held == 0:
+                    break
+                time.sleep(0.05)
+            assert "the client took none of the response for 1 s; connection dropped" in server.log_text()
+            assert most > 10 * MIB and held == 0  # held while the client did not read, back with the drop
+            received = len(head)
+            try:
+                while chunk := sock.recv(1 << 20):
+                    received += len(chunk)
+            except ConnectionResetError:
+                pass
+            assert received < length  # the answer was cut off, not sent whole
+        # A client that reads gets the same large answer whole, and nothing stays held.
+        answer = httpx.post(f"{server.base}/design", json=body, headers={"Cache-Control": "no-store"}, timeout=120)
+        assert answer.status_code == 200 and len(answer.content) == int(answer.headers["content-length"])
+        text = httpx.get(f"{server.base}/metrics", timeout=10).text
+        assert metric(text, "movecast_answer_memory_bytes") == 0
