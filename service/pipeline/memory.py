@@ -23,7 +23,7 @@ that many bytes.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 from pydantic import BaseModel, ValidationError
 
@@ -308,7 +308,8 @@ def check_request_memory(request: BaseModel, caps: Caps) -> MemoryEstimate | Non
 
     A request past one of the size caps (states, signals, prediction horizon, steps, samples,
     values) is left to the check that names that field: its estimate only sends it to the
-    heavy lane, where the pipeline refuses it before computing anything.
+    heavy lane, where the pipeline refuses it before computing anything (so it holds no
+    answer memory: ``served`` is 0).
 
     Raises
     ------
@@ -316,8 +317,10 @@ def check_request_memory(request: BaseModel, caps: Caps) -> MemoryEstimate | Non
         422, one entry per field that drives the estimate, each saying the estimate and the cap.
     """
     estimate = request_memory(request)
-    if estimate is None or _past_size_caps(request, caps):
-        return estimate
+    if estimate is None:
+        return None
+    if _past_size_caps(request, caps):  # refused before it computes anything: it holds no answer
+        return replace(estimate, served=0.0)
     if estimate.bytes > caps.max_request_memory_bytes:
         detail = (
             f"{estimate.what} would need about {estimate.bytes / _MIB:,.0f} MiB in the compute process, estimated "

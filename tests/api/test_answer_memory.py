@@ -104,6 +104,25 @@ def test_an_answer_larger_than_the_whole_bound_is_a_422_naming_its_horizons():
     assert check_request_memory(request, Caps()) is not None  # the default holds it
 
 
+def test_a_request_past_a_size_cap_holds_no_answer_memory_and_gets_its_own_422(make_client, example):
+    """Its answer is never computed: it must not wait for room (it would get a 503, not its 422)."""
+    caps = Caps(max_answer_memory_bytes=MIB, max_prediction_horizon=100)
+    past = copy.deepcopy(example)
+    past["horizons"]["prediction"] = 101
+    estimate = check_request_memory(DesignRequest.model_validate(past), caps)
+    assert estimate is not None and estimate.served == 0 and estimate.bytes > 0
+    client = make_client(max_answer_memory_bytes=MIB, max_prediction_horizon=100, request_timeout_seconds=1.0)
+    memory = client.app.state.answer_memory
+    memory.reserve(MIB, deadline=time.monotonic() + 5, seconds=5)  # every byte held by others
+    try:
+        body = assert_problem(client.post("/design", json=past), 422, "invalid-request")
+        assert [e["pointer"] for e in body["errors"]] == ["/horizons/prediction"]
+        assert_problem(client.post("/design", json=example), 503, "busy")  # a request that computes waits
+    finally:
+        memory.release(MIB)
+    assert client.post("/design", json=example).status_code == 200
+
+
 def test_over_http_the_422_names_the_fields_and_a_small_design_is_answered(make_client, example):
     client = make_client(max_answer_memory_bytes=MIB, answer_cache_bytes=0)
     big = random_design_request(np.random.default_rng(3), states=10, signals=20, prediction=100, control=1)
