@@ -46,8 +46,8 @@ def _large_design(rng: np.random.Generator, *, move: float = 0.1, control: int =
 def test_lanczos_ends_of_a_known_spectrum_equal_dense_eigvalsh(rng, separated):
     # Reference: the eigenvalues the matrix was built from, and scipy.linalg.eigvalsh.  With
     # both ends apart from the rest (as in a design Hessian) Lanczos answers; with a
-    # geometric spectrum (relative gaps of 1 %) it does not converge in one basis and the
-    # dense route answers; the numbers agree either way.
+    # geometric spectrum (relative gaps of 1 %) it does not converge within its restarts and
+    # the dense route answers; the numbers agree either way.
     size = 450
     q, _ = np.linalg.qr(rng.normal(size=(size, size)))
     values = np.geomspace(2.0, 1e3, size)
@@ -85,8 +85,8 @@ def test_lanczos_ends_are_the_same_on_every_call(rng):
 
 def test_a_clustered_end_falls_back_to_the_dense_solver(rng):
     # Slow first-order lags with a control horizon as long as the plant's settling put
-    # hundreds of eigenvalues within 1e-6 of the move weight: Lanczos cannot resolve them in
-    # one basis, and the dense answer (scipy.linalg.eigvalsh) is returned exactly.
+    # hundreds of eigenvalues within 1e-6 of the move weight: Lanczos cannot resolve them
+    # within its restarts, and the dense answer (scipy.linalg.eigvalsh) is returned exactly.
     n = 5
     a = np.diag(np.exp(-1.0 / np.linspace(20.0, 80.0, n)))
     b = np.eye(n) * (1.0 - np.diag(a))
