@@ -157,16 +157,11 @@ def _prepare_process_environment(workers: int) -> None:
     against 0.9-3 s with two on 2 loaded cores, measured side by side).  The heavy lane's
     solvers take the operator's value (``service.api.compute``); the light lane always runs
     one thread.
-    glibc's allocator: blocks above 1 MiB mapped on their own in every process started from
-    here, so large answers freed go back to the system (``MALLOC_MMAP_THRESHOLD_``).
     With several workers, a fresh prometheus-client multiprocess folder (or the given one,
     emptied of old samples) so that /metrics adds up every worker.
     """
     for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
         os.environ.setdefault(name, "1")
-    # glibc: blocks above 1 MiB mapped on their own in the processes started from here (the
-    # workers, the fork server and its solvers; service.api.serving.return_large_blocks)
-    os.environ.setdefault("MALLOC_MMAP_THRESHOLD_", "1048576")
     folder = os.environ.get("PROMETHEUS_MULTIPROC_DIR")
     if folder:
         for old in Path(folder).glob("*.db"):

@@ -9,7 +9,8 @@
 - GET /metrics;
 - the shared error responses (401, 413, 503, 500) in the OpenAPI document of every route
   they can come from;
-- at start-up: a warning when no API key is configured, the solver processes started, and
+- at start-up: a warning when no API key is configured, glibc's threshold for mapping large
+  blocks fixed (``service.api.serving.return_large_blocks``), the solver processes started, and
   a SIGTERM hook that turns /readyz to 503 at the *start* of shutdown (the server goes on
   answering in-flight requests; readiness must not wait for them).
 """
@@ -39,6 +40,7 @@ from service.api.middleware import (
 )
 from service.api.problems import PROBLEM_JSON
 from service.api.security import OPEN_PATHS, ApiKeyMiddleware, KeyRing
+from service.api.serving import return_large_blocks
 from service.api.settings import Settings
 
 __all__ = ["COMMON_RESPONSES", "install_operations"]
@@ -123,6 +125,7 @@ def _wrap_lifespan(app: FastAPI, settings: Settings) -> None:
                 "no API key configured (MOVECAST_API_KEYS, MOVECAST_API_KEYS_FILE): "
                 "every endpoint is open to anyone who can reach this port"
             )
+        return_large_blocks()  # this serving process only (the solvers keep glibc's default)
         solver_lanes(settings).start()
         async with inner(app_) as state:
             undo = _sigterm_hook(app_)

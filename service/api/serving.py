@@ -49,8 +49,10 @@ def return_large_blocks(threshold: int = MMAP_THRESHOLD_BYTES) -> bool:
     are sent: three answers one after another, each built in another worker thread, kept the
     serving process about three answers above its rest although only one was ever held at a
     time (``tests/bench/bench_answer_memory.py``; with the threshold fixed it comes back to
-    rest).  A fixed threshold also turns that adjustment off.  ``MALLOC_MMAP_THRESHOLD_`` does
-    the same for processes started later (``movecast serve`` sets it for its children).
+    rest).  A fixed threshold also turns that adjustment off.  Called at each serving
+    process's start-up (``service.api.operations``), not in the solver processes: there every
+    large temporary would be mapped afresh, which cost the large benchmark design about 20 ms
+    over HTTP, and their memory is bounded by the caps anyway.
 
     Returns whether the C library took it (False off glibc, where this does nothing).
     """
@@ -80,7 +82,6 @@ def run_server(settings: Settings, *, host: str, port: int, workers: int) -> int
     from service.api.protocol import GuardedH11Protocol
 
     log_warnings()
-    return_large_blocks()
 
     # uvicorn restores the handlers it found and raises the stopping signal again after a
     # graceful shutdown; with these in place that ends in a clean exit, not a kill.

@@ -307,16 +307,14 @@ def test_with_the_threshold_fixed_large_answers_freed_go_back_to_the_system():
     assert after - before < 8 * 1024, done.stdout  # kB: back near rest, not 24-32 MiB above it
 
 
-def test_serve_fixes_the_threshold_for_the_processes_it_starts(monkeypatch):
-    from service import cli
+def test_each_serving_process_fixes_the_threshold_at_start_up(monkeypatch):
+    from service.api import operations
 
-    environment = {k: v for k, v in os.environ.items() if k != "MALLOC_MMAP_THRESHOLD_"}
-    monkeypatch.setattr(os, "environ", environment)
-    cli._prepare_process_environment(1)
-    assert os.environ["MALLOC_MMAP_THRESHOLD_"] == str(MMAP_THRESHOLD_BYTES)
-    environment["MALLOC_MMAP_THRESHOLD_"] = "4194304"  # the operator's own value is kept
-    cli._prepare_process_environment(1)
-    assert os.environ["MALLOC_MMAP_THRESHOLD_"] == "4194304"
+    calls: list[int] = []
+    monkeypatch.setattr(operations, "return_large_blocks", lambda: calls.append(1) or True)
+    with TestClient(create_app(Settings())) as client:
+        assert client.get("/healthz").status_code == 200
+    assert calls == [1]
 
 
 def test_a_client_that_stops_reading_is_dropped_and_its_answer_memory_comes_back(tmp_path):
