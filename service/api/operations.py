@@ -2,8 +2,8 @@
 
 :func:`install_operations` adds, around the routers already included:
 
-- the middleware stack, outermost first: request context (request id, access log, request
-  metrics, last-resort 500), CORS (only with ``MOVECAST_CORS_ORIGINS``), API key (only with
+- the middleware stack, outermost first: body pieces (large response bodies handed on in
+  1 MiB pieces), request context (request id, access log, request metrics, last-resort 500), CORS (only with ``MOVECAST_CORS_ORIGINS``), API key (only with
   keys), body limit (``MOVECAST_MAX_BODY_BYTES``), answer memory (each request's hold on the
   bytes of answers in flight, ``service.api.answer_memory``);
 - GET /metrics;
