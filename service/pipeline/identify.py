@@ -39,6 +39,7 @@ from service.solver.identification.subspace import SubspaceModel, moesp
 
 __all__ = [
     "MIN_SAMPLES",
+    "STEP_RESPONSE_SAMPLES",
     "WORK_PER_PARAMETER",
     "IdentifyInputs",
     "IdentifyOutcome",
@@ -52,6 +53,8 @@ __all__ = [
 
 #: Fewest samples a fit takes (after the held-out segment).
 MIN_SAMPLES = 20
+#: Longest step response an identification returns per pair, in samples.
+STEP_RESPONSE_SAMPLES = 2000
 #: Simulated samples per fitted parameter and data sample, over the three starts, their
 #: iterations and Jacobians (a rough count; the work cap multiplies by it).
 WORK_PER_PARAMETER = 2_000
@@ -568,7 +571,7 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
                             f"({inputs.max_dead_time:g}); raise max_dead_time or check the data",
                         )
                     )
-            count = _step_steps(spec.structure, theta, ts, 2000)
+            count = _step_steps(spec.structure, theta, ts, STEP_RESPONSE_SAMPLES)
             steps.append(
                 StepSeriesReport(
                     output=tag,

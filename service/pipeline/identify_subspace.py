@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.signal
 
-from service.pipeline.identify import IdentifyInputs, fitted_operating_point
+from service.pipeline.identify import STEP_RESPONSE_SAMPLES, IdentifyInputs, fitted_operating_point
 from service.schemas.design import WarningReport
 from service.schemas.identify import (
     CorrelationReport,
@@ -77,7 +77,10 @@ def subspace_response(inputs: IdentifyInputs, model: SubspaceModel, data: DataRe
             )
         )
     radius = float(np.max(np.abs(np.linalg.eigvals(model.a)))) if n else 0.0
-    settle = 2000 if radius >= 1.0 else int(min(2000, max(20, np.ceil(5.0 / max(-np.log(max(radius, 1e-12)), 1e-9)))))
+    longest = STEP_RESPONSE_SAMPLES
+    settle = (
+        longest if radius >= 1.0 else int(min(longest, max(20, np.ceil(5.0 / max(-np.log(max(radius, 1e-12)), 1e-9)))))
+    )
     steps = []
     for j, column in enumerate(column_tags):
         u = np.zeros((settle + 1, model.b.shape[1]))

@@ -37,6 +37,7 @@ from service.pipeline.estimates import (
     served_answer_bytes,
     simulation_memory_bytes,
 )
+from service.pipeline.identify import STEP_RESPONSE_SAMPLES
 from service.schemas.batch import BatchRequest
 from service.schemas.compare import CompareRequest
 from service.schemas.design import DesignRequest
@@ -53,10 +54,6 @@ __all__ = ["HEAVY_MEMORY_BYTES", "MemoryEstimate", "check_request_memory", "requ
 HEAVY_MEMORY_BYTES = 32 * 1024 * 1024
 
 _MIB = 1024 * 1024
-
-#: Longest step response an identification returns per pair, in samples (the cap of
-#: ``service.pipeline.identify`` and ``service.pipeline.identify_subspace``).
-IDENTIFY_STEP_SAMPLES = 2000
 
 
 @dataclass(frozen=True)
@@ -229,10 +226,10 @@ def _identify_request(request: IdentifyRequest) -> MemoryEstimate:
     fields = ("/data", "/block_rows") if block_rows else ("/data",)
     if request.time is not None:
         fields = (*fields, "/time", "/sample_time")
-    # per pair a step response (at most IDENTIFY_STEP_SAMPLES times and values) and its
+    # per pair a step response (at most STEP_RESPONSE_SAMPLES times and values) and its
     # residual correlations; the model's matrices
     pairs = (len(request.inputs) + len(request.disturbances)) * len(request.outputs)
-    numbers = pairs * (2 * IDENTIFY_STEP_SAMPLES + 3 * (request.correlation_lags + 1)) + 4 * columns * columns
+    numbers = pairs * (2 * STEP_RESPONSE_SAMPLES + 3 * (request.correlation_lags + 1)) + 4 * columns * columns
     served = served_answer_bytes(numbers, written_by_solver=False)
     return MemoryEstimate(total, fields, "this identification", served)
 

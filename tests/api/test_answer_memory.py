@@ -193,43 +193,31 @@ def test_an_answer_is_held_until_its_last_byte_is_sent_and_a_slow_reader_keeps_o
         reader_free = asyncio.Event()
         held_while_sending: list[int] = []
 
-        async def slow_request() -> int:
+        async def post_design(gate: asyncio.Event | None = None) -> int:
+            """One /design through the app; with ``gate``, a reader that takes no body until it is set."""
             scope, raw = _post("/design", body)
             status = 0
-            receive = _receiver(raw)
 
             async def send(message: dict[str, Any]) -> None:
                 nonlocal status
                 if message["type"] == "http.response.start":
                     status = message["status"]
-                    sent_head.set()
-                elif message["type"] == "http.response.body":
+                    if gate is not None:
+                        sent_head.set()
+                elif message["type"] == "http.response.body" and gate is not None:
                     held_while_sending.append(memory.held)
-                    await reader_free.wait()  # a reader that does not read yet
+                    await gate.wait()
 
-            await app(scope, receive, send)
+            await app(scope, _receiver(raw), send)
             return status
 
-        async def quick_request() -> int:
-            scope, raw = _post("/design", body)
-            status = 0
-            receive = _receiver(raw)
-
-            async def send(message: dict[str, Any]) -> None:
-                nonlocal status
-                if message["type"] == "http.response.start":
-                    status = message["status"]
-
-            await app(scope, receive, send)
-            return status
-
-        slow = asyncio.ensure_future(slow_request())
+        slow = asyncio.ensure_future(post_design(reader_free))
         await asyncio.wait_for(sent_head.wait(), timeout=60)
-        second = await asyncio.wait_for(quick_request(), timeout=60)  # waits 1 s for room, then 503
+        second = await asyncio.wait_for(post_design(), timeout=60)  # waits 1 s for room, then 503
         reader_free.set()
         first = await asyncio.wait_for(slow, timeout=60)
         after = memory.held
-        third = await asyncio.wait_for(quick_request(), timeout=60)
+        third = await asyncio.wait_for(post_design(), timeout=60)
         return [first, second, third], held_while_sending[0], after
 
     statuses, held, after = asyncio.run(run())
