@@ -14,8 +14,9 @@ import pytest
 import scipy.linalg
 
 from service.solver.design.controller import design_controller
+from service.solver.design.gain import mirror_upper
 from service.solver.design.prediction import step_response_coefficients
-from service.solver.design.spectrum import spectrum_ends
+from service.solver.design.spectrum import jacobi_scaled_ends, spectrum_ends
 from service.solver.evaluation.advice import (
     _condition_number,
     _inverse_response_times,
@@ -23,6 +24,7 @@ from service.solver.evaluation.advice import (
 )
 from service.solver.models.properties import integrating_poles, open_loop_poles, steady_state_gain
 from service.solver.models.sampling import sample_zero_order_hold
+from service.solver.numerics import jacobi_scaled
 from tests.conftest import random_plant
 
 EPS = np.finfo(float).eps
@@ -81,6 +83,45 @@ def test_lanczos_ends_are_the_same_on_every_call(rng):
     *_, d = _large_design(rng)
     again = spectrum_ends(d.hessian.matrix, factor=d.hessian.factor)
     assert (again.low, again.high) == (d.hessian.smallest_eigenvalue, d.hessian.largest_eigenvalue)
+
+
+@pytest.mark.parametrize("separated", [True, False])
+def test_jacobi_scaled_ends_equal_dense_eigvalsh_of_the_scaled_matrix(rng, separated):
+    # Reference: scipy.linalg.eigvalsh of D^-1/2 H D^-1/2 formed explicitly.  The inputs are in
+    # badly scaled units (diagonal from 1e-4 to 1e4), which the scaling removes; the Lanczos
+    # route applies the scaling inside its products and uses the factor of H itself, and a
+    # spectrum without separated ends falls back to the dense route on the scaled matrix.
+    size = 450
+    q, _ = np.linalg.qr(rng.normal(size=(size, size)))
+    values = np.geomspace(2.0, 1e3, size)
+    if separated:
+        values[0], values[-1] = 1.0, 3e3
+    unit = (q * values) @ q.T
+    units = np.geomspace(1e-2, 1e2, size)
+    rng.shuffle(units)
+    h = unit * units[:, None] * units[None, :]
+    h = 0.5 * (h + h.T)
+    ends = jacobi_scaled_ends(h, factor=scipy.linalg.cho_factor(h, lower=True))
+    root = np.sqrt(np.diag(h))
+    dense = scipy.linalg.eigvalsh(h / root[:, None] / root[None, :])
+    assert ends.method == ("lanczos" if separated else "dense")
+    assert ends.low == pytest.approx(dense[0], rel=1e-10)
+    assert ends.high == pytest.approx(dense[-1], rel=1e-10)
+    small = h[:40, :40]
+    below = jacobi_scaled_ends(small, factor=scipy.linalg.cho_factor(small, lower=True))
+    reference = scipy.linalg.eigvalsh(jacobi_scaled(small))
+    assert below.method == "dense"
+    assert (below.low, below.high) == (reference[0], reference[-1])
+
+
+@pytest.mark.parametrize("size, block", [(7, 3), (60, 4), (61, 1)])
+def test_mirror_upper_gives_the_numbers_of_triu_plus_its_transpose(rng, size, block):
+    # Reference: numpy's np.triu(h) + np.triu(h, 1).T, which mirror_upper replaces; the lower
+    # triangle it is given holds garbage (as the Toeplitz recurrence leaves it), never read.
+    upper = rng.normal(size=(size, size))
+    garbage = np.where(np.tri(size, k=-1, dtype=bool), np.nan, upper)
+    mirrored = mirror_upper(garbage.copy(), block)
+    np.testing.assert_array_equal(mirrored, np.triu(upper) + np.triu(upper, 1).T)
 
 
 def test_a_clustered_end_falls_back_to_the_dense_solver(rng):

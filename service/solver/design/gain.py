@@ -27,8 +27,8 @@ from numpy.typing import NDArray
 
 from service.errors import HessianNotPositiveDefinite
 from service.solver.design.prediction import Prediction
-from service.solver.design.spectrum import spectrum_ends
-from service.solver.numerics import equilibrated_rank, jacobi_scaled
+from service.solver.design.spectrum import jacobi_scaled_ends, spectrum_ends
+from service.solver.numerics import equilibrated_rank
 
 __all__ = [
     "FactoredHessian",
@@ -36,6 +36,7 @@ __all__ = [
     "factor_hessian",
     "first_move_gain",
     "hessian_matrix",
+    "mirror_upper",
     "optimal_moves",
     "toeplitz_hessian",
     "weighted_moves",
@@ -129,6 +130,32 @@ def weighted_moves(prediction: Prediction, output_root: NDArray[np.float64]) -> 
     return result
 
 
+def mirror_upper(matrix: NDArray[np.float64], block: int) -> NDArray[np.float64]:
+    """Copy the upper triangle of a square matrix onto its lower one, in place, and return it.
+
+    Parameters
+    ----------
+    matrix : ndarray, shape (k, k)
+        Only the upper triangle (diagonal included) is read; the lower one may hold anything.
+    block : int
+        Width of the block columns copied at a time (``m`` for a Hessian over moves).
+
+    Returns
+    -------
+    ndarray, shape (k, k)
+        ``matrix`` itself, now exactly symmetric: the same numbers as
+        ``np.triu(matrix) + np.triu(matrix, 1).T``, without that expression's three
+        temporaries of the full size (which cost more than the copy for ``k`` near 1000).
+    """
+    size = matrix.shape[0]
+    for start in range(0, size, block):
+        end = min(start + block, size)
+        diagonal = matrix[start:end, start:end]
+        diagonal[...] = np.triu(diagonal) + np.triu(diagonal, 1).T
+        matrix[end:, start:end] = matrix[start:end, end:].T
+    return matrix
+
+
 def hessian_matrix(
     weighted: NDArray[np.float64], move_weight: NDArray[np.float64], *, control: int
 ) -> NDArray[np.float64]:
@@ -152,7 +179,7 @@ def hessian_matrix(
     h = weighted.T @ weighted
     for j in range(control):
         h[j * m : (j + 1) * m, j * m : (j + 1) * m] += move_weight
-    return np.triu(h) + np.triu(h, 1).T
+    return mirror_upper(h, m)
 
 
 def toeplitz_hessian(
@@ -213,7 +240,7 @@ def toeplitz_hessian(
         h[rows, j * m :] = h[prev, (j - 1) * m : -m] + step[prev, (j - 1) * m : -m]
     for j in range(hu):
         h[j * m : (j + 1) * m, j * m : (j + 1) * m] += move_weight
-    return np.triu(h) + np.triu(h, 1).T
+    return mirror_upper(h, m)
 
 
 def _unseen_free_moves(
@@ -290,9 +317,8 @@ def factor_hessian(
         ends = spectrum_ends(hessian, factor=factor)
         low, high = ends.low, ends.high
         # The scaled Hessian D^-1/2 H D^-1/2 has the Cholesky factor D^-1/2 L: its ends come
-        # by the same route without a second factorization.
-        root = np.sqrt(np.diag(hessian))
-        scaled_ends = spectrum_ends(jacobi_scaled(hessian), factor=(factor[0] / root[:, None], True))
+        # by the same route from H's own factor, without forming either.
+        scaled_ends = jacobi_scaled_ends(hessian, factor=factor)
         s_low, s_high = scaled_ends.low, scaled_ends.high
         if s_low <= hessian.shape[0] * np.finfo(float).eps * max(abs(s_high), np.finfo(float).tiny):
             factor = None

@@ -61,10 +61,10 @@ from numpy.typing import ArrayLike, NDArray
 from service.errors import NumericalError
 from service.solver.design.closed_loop import ILL_CONDITIONED, UNIT_CIRCLE_MARGIN, Diagnostic
 from service.solver.design.controller import ControllerDesign, design_controller
-from service.solver.design.spectrum import extreme_eigenvalues
+from service.solver.design.spectrum import jacobi_scaled_ends
 from service.solver.evaluation.frequency import FrequencyAnalysis
 from service.solver.models.zeros import PlantZeros, plant_zeros
-from service.solver.numerics import format_complex, jacobi_scaled
+from service.solver.numerics import format_complex
 
 __all__ = [
     "PEAK_SENSITIVITY_LIMIT",
@@ -158,15 +158,16 @@ def _updated_condition_number(design: ControllerDesign, *, move_scale: float, co
     assert lower, "factor_hessian factors with lower=True"
     factor: tuple[NDArray[np.float64], bool] | None = (triangle[:size, :size], True)
     if move_scale != 1.0:
-        h = h + (move_scale - 1.0) * np.kron(np.eye(control), design.move_weight)
+        h = h.copy()
+        added = (move_scale - 1.0) * design.move_weight
+        for j in range(control):  # + (s - 1) blockdiag(R), block by block
+            h[j * m : (j + 1) * m, j * m : (j + 1) * m] += added
         try:
-            factor = scipy.linalg.cho_factor(h, lower=True, check_finite=False)
+            factor = scipy.linalg.cho_factor(h, lower=True, check_finite=False, overwrite_a=False)
         except np.linalg.LinAlgError:
             factor = None
-    root = np.sqrt(np.abs(np.diag(h)))
-    root[root == 0.0] = 1.0
-    scaled_factor = None if factor is None else (factor[0] / root[:, None], True)
-    low, high = extreme_eigenvalues(jacobi_scaled(h), factor=scaled_factor)
+    ends = jacobi_scaled_ends(h, factor=factor)
+    low, high = ends.low, ends.high
     return None if low <= size * np.finfo(float).eps * high else high / low
 
 
