@@ -14,8 +14,8 @@ import pytest
 import scipy.linalg
 
 from service.solver.design.controller import design_controller
-from service.solver.design.gain import mirror_upper
-from service.solver.design.prediction import step_response_coefficients
+from service.solver.design.gain import mirror_upper, weighted_moves
+from service.solver.design.prediction import prediction_matrices, step_response_coefficients
 from service.solver.design.spectrum import jacobi_scaled_ends, spectrum_ends
 from service.solver.evaluation.advice import (
     _condition_number,
@@ -122,6 +122,23 @@ def test_mirror_upper_gives_the_numbers_of_triu_plus_its_transpose(rng, size, bl
     garbage = np.where(np.tri(size, k=-1, dtype=bool), np.nan, upper)
     mirrored = mirror_upper(garbage.copy(), block)
     np.testing.assert_array_equal(mirrored, np.triu(upper) + np.triu(upper, 1).T)
+
+
+@pytest.mark.parametrize("first_penalized", [1, 4])
+def test_prediction_and_weighted_moves_equal_the_definition(rng, first_penalized):
+    # Reference: the definition G_ij = S_(i-j) (zero for i - j <= 0), with S_k summed here
+    # from C A^l B by numpy; Wbar G as the product with blockdiag(W, ..., W) (scipy's
+    # block_diag), for a diagonal and a full W.  The Toeplitz windows copy exactly.
+    a, b, c = random_plant(rng, 6, 3, 2, radius=0.9)
+    hp, hu, hw = 12, 5, first_penalized
+    pred = prediction_matrices(a, b, c, prediction=hp, control=hu, first_penalized=hw)
+    markov = [c @ np.linalg.matrix_power(a, k) @ b for k in range(hp)]
+    step = [np.zeros((2, 3))] + [sum(markov[:k]) for k in range(1, hp + 1)]
+    g = np.block([[step[i - j] if i - j > 0 else np.zeros((2, 3)) for j in range(hu)] for i in range(hw, hp + 1)])
+    np.testing.assert_allclose(pred.moves, g, rtol=1e-12, atol=1e-14)
+    for root in (np.diag([1.5, 0.5]), np.array([[1.0, 0.3], [0.0, 2.0]])):
+        wbar = scipy.linalg.block_diag(*([root] * (hp - hw + 1)))
+        np.testing.assert_allclose(weighted_moves(pred, root), wbar @ pred.moves, rtol=1e-12, atol=1e-14)
 
 
 def test_a_clustered_end_falls_back_to_the_dense_solver(rng):
