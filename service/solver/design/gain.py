@@ -145,6 +145,10 @@ def weighted_moves(prediction: Prediction, output_root: NDArray[np.float64]) -> 
     return result
 
 
+#: Largest size mirrored by one ``triu`` expression rather than block by block.
+_MIRROR_WHOLE_UP_TO = 256
+
+
 def mirror_upper(matrix: NDArray[np.float64], block: int) -> NDArray[np.float64]:
     """Copy the upper triangle of a square matrix onto its lower one, in place, and return it.
 
@@ -161,8 +165,13 @@ def mirror_upper(matrix: NDArray[np.float64], block: int) -> NDArray[np.float64]
         ``matrix`` itself, now exactly symmetric: the same numbers as
         ``np.triu(matrix) + np.triu(matrix, 1).T``, without that expression's three
         temporaries of the full size (which cost more than the copy for ``k`` near 1000).
+        Up to :data:`_MIRROR_WHOLE_UP_TO` rows the expression itself is used: there the
+        loop's calls cost more than the temporaries.
     """
     size = matrix.shape[0]
+    if size <= _MIRROR_WHOLE_UP_TO:
+        matrix[...] = np.triu(matrix) + np.triu(matrix, 1).T
+        return matrix
     for start in range(0, size, block):
         end = min(start + block, size)
         diagonal = matrix[start:end, start:end]
