@@ -189,7 +189,7 @@ def _batch_request(request: BatchRequest) -> MemoryEstimate:
     largest = kept = 0
     for item in request.items:
         try:
-            design = DesignRequest.model_validate(item.request)
+            design = item.design_request()
         except ValidationError:
             continue  # answered as that item's own problem
         peak, numbers = _design(design)

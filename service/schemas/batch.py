@@ -10,10 +10,10 @@ from __future__ import annotations
 
 from typing import Any, Literal
 
-from pydantic import Field
+from pydantic import Field, PrivateAttr, ValidationError
 
 from service.schemas.common import RequestModel, ResponseModel
-from service.schemas.design import DesignResponse
+from service.schemas.design import DesignRequest, DesignResponse
 
 __all__ = [
     "BatchItem",
@@ -42,6 +42,27 @@ class BatchItem(RequestModel):
         description="The fingerprint of the caller's current design for this item. When the "
         "request's fingerprint equals it, the item is answered 'unchanged' without solving.",
     )
+    _validated: DesignRequest | ValidationError | None = PrivateAttr(default=None)
+
+    def design_request(self) -> DesignRequest:
+        """The item's ``request`` validated as a :class:`DesignRequest`, once per item.
+
+        The memory estimate of the batch and the item's design both read it, so a batch of
+        large items is validated once, not twice.
+
+        Raises
+        ------
+        pydantic.ValidationError
+            The same error on every call, when the item is not a valid design request.
+        """
+        if self._validated is None:
+            try:
+                self._validated = DesignRequest.model_validate(self.request)
+            except ValidationError as exc:
+                self._validated = exc
+        if isinstance(self._validated, ValidationError):
+            raise self._validated
+        return self._validated
 
 
 class BatchRequest(RequestModel):

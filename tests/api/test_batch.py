@@ -109,3 +109,26 @@ def test_items_past_the_batch_time_limit_fail_with_time_limit_others_keep_result
     for answer in (slow, late):
         assert answer["status"] == "failed"
         assert answer["problem"]["type"] == "urn:movecast:problem:time-limit" and answer["problem"]["status"] == 503
+
+
+def test_each_item_is_validated_once(client, example, monkeypatch):
+    # The batch's memory estimate and the item's design read the same validated request: a
+    # counting wrapper around pydantic's DesignRequest.model_validate sees each item once
+    # (a bad item too: its error is kept and answered as its problem).
+    from service.schemas.design import DesignRequest
+
+    calls = []
+    validate = DesignRequest.model_validate.__func__
+
+    def counted(cls, obj, *args, **kwargs):
+        calls.append(obj)
+        return validate(cls, obj, *args, **kwargs)
+
+    monkeypatch.setattr(DesignRequest, "model_validate", classmethod(counted))
+    other = copy.deepcopy(example)
+    other["horizons"]["prediction"] = 40
+    items = [_item("a", example), _item("b", other), _item("bad", {"model": 3})]
+    r = client.post("/design/batch", json={"items": items})
+    assert r.status_code == 200
+    assert [i["status"] for i in r.json()["items"]] == ["designed", "designed", "failed"]
+    assert len(calls) == 3

@@ -28,7 +28,6 @@ from service.pipeline.examples import load_example
 from service.pipeline.fingerprint import fingerprint
 from service.pipeline.memory import check_request_memory
 from service.schemas.batch import BatchItem, BatchItemResult, BatchRequest, BatchResponse
-from service.schemas.design import DesignRequest
 
 __all__ = ["router"]
 
@@ -59,7 +58,7 @@ def _failed(item: BatchItem, index: int, exc: BaseException, fp: str | None = No
 def _answer(index: int, item: BatchItem, caps: Caps, budget: Budget) -> BatchItemResult:
     """Validate, fingerprint and design one item; every failure stays inside the item."""
     try:
-        request = DesignRequest.model_validate(item.request)
+        request = item.design_request()  # validated once: the memory estimate read it first
     except ValidationError as exc:
         return _failed(item, index, exc)
     fp = fingerprint(request)
