@@ -156,8 +156,12 @@ def _updated_condition_number(design: ControllerDesign, *, move_scale: float, co
     h = design.hessian.matrix[:size, :size]
     triangle, lower = design.hessian.factor
     assert lower, "factor_hessian factors with lower=True"
-    factor: tuple[NDArray[np.float64], bool] | None = (triangle[:size, :size], True)
-    if move_scale != 1.0:
+    factor: tuple[NDArray[np.float64], bool] | None
+    if move_scale == 1.0:
+        # one contiguous copy of the leading block: a strided view would be copied by every
+        # triangular solve of the Lanczos products
+        factor = (np.asfortranarray(triangle[:size, :size]), True)
+    else:
         h = h.copy()
         added = (move_scale - 1.0) * design.move_weight
         for j in range(control):  # + (s - 1) blockdiag(R), block by block
