@@ -129,7 +129,7 @@ def _parsed_plainly(body: bytes) -> Any | None:
 
     Returns ``None`` whenever the strict route (``json.loads`` with its hooks) must decide:
     the parser refused the text (so the strict route words the 400), the value is not an
-    object or array, an integer reaches :data:`MAX_INTEGER_DIGITS` digits (the strict route
+    object or array, an integer has more than :data:`MAX_INTEGER_DIGITS` digits (the strict route
     reads it as a float), a string holds a colon, or an object repeated a member name.
 
     Notes

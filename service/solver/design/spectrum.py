@@ -163,8 +163,8 @@ def jacobi_scaled_ends(
     The Lanczos route never forms the scaled matrix: its products are
     ``s * (M @ (s * x))`` with ``s = D^-1/2``, and those with its inverse
     ``D^1/2 M^-1 D^1/2 x`` use the factor of ``M`` (two passes over ``M`` or its factor per
-    product, as for ``M`` itself).  The dense route, and every fallback to it, factors the
-    scaled matrix as :func:`spectrum_ends` does.
+    product, as for ``M`` itself).  The dense route, and every fallback to it, forms the
+    scaled matrix and solves it as :func:`spectrum_ends` does.
     """
     size = matrix.shape[0]
     if factor is None or size <= dense_up_to:
@@ -193,7 +193,8 @@ def _lanczos_ends(
 
     def forward(x: NDArray[np.float64]) -> NDArray[np.float64]:
         """``S M S x``."""
-        product: NDArray[np.float64] = scale * (matrix @ (scale * x))  # type: ignore[operator]
+        assert scale is not None
+        product: NDArray[np.float64] = scale * (matrix @ (scale * x))
         return product
 
     inverse_operator = scipy.sparse.linalg.LinearOperator((size, size), matvec=inverse, dtype=np.float64)
