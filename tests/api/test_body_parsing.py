@@ -112,3 +112,51 @@ def test_a_malformed_body_keeps_the_strict_message():
     with pytest.raises(MalformedBody) as caught:
         parse_json(b'{"a": [1, 2,]}')
     assert "not valid JSON" in str(caught.value) and "line 1" in str(caught.value)
+
+
+def _text(node) -> str:
+    """JSON text of a tree whose objects are lists of (name, value) pairs, repeats allowed."""
+    kind, content = node
+    if kind == "object":
+        return "{" + ", ".join(f"{json.dumps(k)}: {_text(v)}" for k, v in content) + "}"
+    if kind == "array":
+        return "[" + ",".join(_text(v) for v in content) + "]"
+    return json.dumps(content)
+
+
+names = st.sampled_from(["a", "b", "model", "x:y", "\u00e9"])
+trees = st.recursive(
+    st.tuples(st.just("scalar"), scalars),
+    lambda inner: (
+        st.tuples(st.just("array"), st.lists(inner, max_size=5))
+        | st.tuples(st.just("object"), st.lists(st.tuples(names, inner), max_size=5))
+    ),
+    max_leaves=30,
+)
+
+
+@settings(max_examples=300, deadline=None)
+@given(tree=trees.filter(lambda t: t[0] != "scalar"))
+def test_repeated_members_get_the_strict_routes_verdict(tree):
+    # Reference: the strict route alone (the standard json module with the strict hooks), on
+    # texts whose objects repeat names at random: the same value, or the same 422 naming the
+    # same pointers.
+    import service.api.bodies as bodies
+
+    body = _text(tree).encode()
+
+    def verdict(parse):
+        try:
+            return "value", parse(body)
+        except InvalidRequest as exc:
+            return "repeated", sorted(p.pointer for p in exc.problems)
+
+    kind, got = verdict(parse_json)
+    original = bodies._parsed_plainly
+    bodies._parsed_plainly = lambda _body: None
+    try:
+        strict_kind, strict = verdict(parse_json)
+    finally:
+        bodies._parsed_plainly = original
+    assert kind == strict_kind
+    assert got == strict if kind == "repeated" else _same(got, strict)
