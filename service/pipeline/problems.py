@@ -149,12 +149,23 @@ def _location(error: Mapping[str, Any]) -> tuple[str | int, ...]:
     return kept
 
 
+def _is_model_kind(error: Mapping[str, Any]) -> bool:
+    """Whether a union-tag error is about a plant model's ``kind`` (the requests' only tagged union)."""
+    return str((error.get("ctx") or {}).get("discriminator", "")).strip("'\"") == "kind"
+
+
 def _sentence(error: Mapping[str, Any]) -> str:
     kind = error.get("type", "")
     if kind == "extra_forbidden":
         return "unknown field; check its spelling against the schema"
     if kind == "missing":
         return "this field is required"
+    if kind in {"union_tag_not_found", "union_tag_invalid"} and _is_model_kind(error):
+        forms = ", ".join(f"'{k}'" for k in sorted(MODEL_KINDS))
+        if kind == "union_tag_not_found":
+            return f"this field is required: it names the form of the model, one of {forms}"
+        tag = (error.get("ctx") or {}).get("tag", "")
+        return f"'{tag}' is not a form of model; use one of {forms}"
     message = str(error.get("msg", "invalid value"))
     return message[0].lower() + message[1:] if message else "invalid value"
 

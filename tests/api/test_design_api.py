@@ -84,6 +84,20 @@ def test_bad_input_is_a_422_naming_the_field(client, example, edit, pointer):
     assert_field_problem(client.post("/design", json=example), 422, pointer)
 
 
+@pytest.mark.parametrize(("kind", "says"), [(None, "this field is required"), ("mystery", "'mystery' is not a form")])
+def test_a_missing_or_unknown_model_kind_lists_the_forms(client, example, kind, says):
+    # The sentence names the field's purpose and the forms it takes, not the parser's words.
+    if kind is None:
+        del example["model"]["kind"]
+    else:
+        example["model"]["kind"] = kind
+    body = client.post("/design", json=example).json()
+    detail = next(e["detail"] for e in body["errors"] if e["pointer"] == "/model/kind")
+    assert detail.startswith(says), detail
+    assert all(f"'{form}'" in detail for form in ("state_space", "transfer_matrix", "step_response"))
+    assert "discriminator" not in detail and "tag" not in detail
+
+
 def test_singular_hessian_is_a_422_with_the_explanation(client, example):
     example["model"]["c"] = [[1.0, 0.0, 0.0, 0.0]]
     example["weights"] = {"output": [1.0], "move": [0.0, 0.0]}
