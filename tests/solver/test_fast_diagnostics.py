@@ -16,7 +16,7 @@ import scipy.linalg
 from service.solver.design.controller import design_controller
 from service.solver.design.gain import mirror_upper, weighted_moves
 from service.solver.design.prediction import prediction_matrices, step_response_coefficients
-from service.solver.design.spectrum import jacobi_scaled_ends, spectrum_ends
+from service.solver.design.spectrum import spectrum_ends
 from service.solver.evaluation.advice import (
     _condition_number,
     _inverse_response_times,
@@ -44,19 +44,27 @@ def _large_design(rng: np.random.Generator, *, move: float = 0.1, control: int =
     )
 
 
+def _known_spectrum(rng: np.random.Generator, *, separated: bool, size: int = 450):
+    """A symmetric matrix ``Q diag(values) Q'`` (random orthogonal ``Q``), and its values.
+
+    The values run geometrically from 2 to 1e3 (relative gaps of about 1 %); ``separated``
+    moves the two ends apart from the rest, to 1 and 3e3, as in a design Hessian.
+    """
+    q, _ = np.linalg.qr(rng.normal(size=(size, size)))
+    values = np.geomspace(2.0, 1e3, size)
+    if separated:
+        values[0], values[-1] = 1.0, 3e3
+    h = (q * values) @ q.T
+    return 0.5 * (h + h.T), values
+
+
 @pytest.mark.parametrize("separated", [True, False])
 def test_lanczos_ends_of_a_known_spectrum_equal_dense_eigvalsh(rng, separated):
     # Reference: the eigenvalues the matrix was built from, and scipy.linalg.eigvalsh.  With
     # both ends apart from the rest (as in a design Hessian) Lanczos answers; with a
     # geometric spectrum (relative gaps of 1 %) it does not converge within its restarts and
     # the dense route answers; the numbers agree either way.
-    size = 450
-    q, _ = np.linalg.qr(rng.normal(size=(size, size)))
-    values = np.geomspace(2.0, 1e3, size)
-    if separated:
-        values[0], values[-1] = 1.0, 3e3
-    h = (q * values) @ q.T
-    h = 0.5 * (h + h.T)
+    h, values = _known_spectrum(rng, separated=separated)
     ends = spectrum_ends(h, factor=scipy.linalg.cho_factor(h, lower=True))
     assert ends.method == ("lanczos" if separated else "dense")
     dense = scipy.linalg.eigvalsh(h)
@@ -86,29 +94,25 @@ def test_lanczos_ends_are_the_same_on_every_call(rng):
 
 
 @pytest.mark.parametrize("separated", [True, False])
-def test_jacobi_scaled_ends_equal_dense_eigvalsh_of_the_scaled_matrix(rng, separated):
+def test_scaled_ends_equal_dense_eigvalsh_of_the_scaled_matrix(rng, separated):
     # Reference: scipy.linalg.eigvalsh of D^-1/2 H D^-1/2 formed explicitly.  The inputs are in
     # badly scaled units (diagonal from 1e-4 to 1e4), which the scaling removes; the Lanczos
     # route applies the scaling inside its products and uses the factor of H itself, and a
     # spectrum without separated ends falls back to the dense route on the scaled matrix.
-    size = 450
-    q, _ = np.linalg.qr(rng.normal(size=(size, size)))
-    values = np.geomspace(2.0, 1e3, size)
-    if separated:
-        values[0], values[-1] = 1.0, 3e3
-    unit = (q * values) @ q.T
+    unit, _ = _known_spectrum(rng, separated=separated)
+    size = unit.shape[0]
     units = np.geomspace(1e-2, 1e2, size)
     rng.shuffle(units)
     h = unit * units[:, None] * units[None, :]
     h = 0.5 * (h + h.T)
-    ends = jacobi_scaled_ends(h, factor=scipy.linalg.cho_factor(h, lower=True))
+    ends = spectrum_ends(h, factor=scipy.linalg.cho_factor(h, lower=True), scaled=True)
     root = np.sqrt(np.diag(h))
     dense = scipy.linalg.eigvalsh(h / root[:, None] / root[None, :])
     assert ends.method == ("lanczos" if separated else "dense")
     assert ends.low == pytest.approx(dense[0], rel=1e-10)
     assert ends.high == pytest.approx(dense[-1], rel=1e-10)
     small = h[:40, :40]
-    below = jacobi_scaled_ends(small, factor=scipy.linalg.cho_factor(small, lower=True))
+    below = spectrum_ends(small, factor=scipy.linalg.cho_factor(small, lower=True), scaled=True)
     reference = scipy.linalg.eigvalsh(jacobi_scaled(small))
     assert below.method == "dense"
     assert (below.low, below.high) == (reference[0], reference[-1])

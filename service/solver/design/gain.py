@@ -27,7 +27,7 @@ from numpy.typing import NDArray
 
 from service.errors import HessianNotPositiveDefinite
 from service.solver.design.prediction import Prediction, block_toeplitz
-from service.solver.design.spectrum import jacobi_scaled_ends, spectrum_ends
+from service.solver.design.spectrum import spectrum_ends
 from service.solver.numerics import equilibrated_rank
 
 __all__ = [
@@ -342,7 +342,7 @@ def factor_hessian(
         low, high = ends.low, ends.high
         # The scaled Hessian D^-1/2 H D^-1/2 has the Cholesky factor D^-1/2 L: its ends come
         # by the same route from H's own factor, without forming either.
-        scaled_ends = jacobi_scaled_ends(hessian, factor=factor)
+        scaled_ends = spectrum_ends(hessian, factor=factor, scaled=True)
         s_low, s_high = scaled_ends.low, scaled_ends.high
         if s_low <= hessian.shape[0] * np.finfo(float).eps * max(abs(s_high), np.finfo(float).tiny):
             factor = None

@@ -22,7 +22,7 @@ LAPACK's 1-norm estimate).  Two routes give it:
   always gives the same numbers.
 
 The unit-free verdicts are taken on the Jacobi-scaled matrix ``D^-1/2 H D^-1/2``
-(:func:`jacobi_scaled_ends`): its Lanczos products scale vectors around products with ``H``
+(:func:`spectrum_ends` with ``scaled=True``): its Lanczos products scale vectors around products with ``H``
 and its factor, so neither the scaled matrix nor its factor is formed (each would be one more
 pass over a 1000 x 1000 matrix, several milliseconds where memory bandwidth is scarce).
 
@@ -44,7 +44,7 @@ from numpy.typing import NDArray
 
 from service.solver.numerics import jacobi_scaled
 
-__all__ = ["DENSE_UP_TO", "SpectrumEnds", "extreme_eigenvalues", "jacobi_scaled_ends", "spectrum_ends"]
+__all__ = ["DENSE_UP_TO", "SpectrumEnds", "extreme_eigenvalues", "spectrum_ends"]
 
 #: Largest size solved by the dense eigensolver; larger matrices use Lanczos.
 DENSE_UP_TO = 400
@@ -110,6 +110,7 @@ def spectrum_ends(
     *,
     factor: tuple[NDArray[np.float64], bool] | None = None,
     dense_up_to: int = DENSE_UP_TO,
+    scaled: bool = False,
 ) -> SpectrumEnds:
     """Return the smallest and largest eigenvalue of a symmetric matrix, and the route taken.
 
@@ -120,8 +121,12 @@ def spectrum_ends(
     factor : tuple (ndarray, bool), optional
         ``scipy.linalg.cho_factor(matrix)``; without it (or with ``k <= dense_up_to``) the
         dense eigensolver answers, which also serves matrices that are not positive definite.
+        With ``scaled`` it is still the factor of ``matrix`` itself.
     dense_up_to : int, keyword-only
         Largest size solved densely (default :data:`DENSE_UP_TO`).
+    scaled : bool, keyword-only
+        The ends of the Jacobi-scaled matrix ``D^-1/2 M D^-1/2`` (``D = diag(M)``,
+        :func:`service.solver.numerics.jacobi_scaled`) instead of ``M``'s.
 
     Returns
     -------
@@ -129,47 +134,21 @@ def spectrum_ends(
 
     Notes
     -----
-    See the module docstring for the two routes and their accuracy.
+    See the module docstring for the two routes and their accuracy.  With ``scaled`` the
+    Lanczos route never forms the scaled matrix: its products are ``s * (M @ (s * x))``
+    with ``s = D^-1/2``, and those with its inverse ``D^1/2 M^-1 D^1/2 x`` use the factor
+    of ``M`` (two passes over ``M`` or its factor per product, as for ``M`` itself).  The
+    dense route, and every fallback to it, forms the scaled matrix.
     """
     size = matrix.shape[0]
+
+    def dense_matrix() -> NDArray[np.float64]:
+        return jacobi_scaled(matrix) if scaled else matrix
+
     if factor is None or size <= dense_up_to:
-        return _dense(matrix)
-    return _lanczos_ends(matrix, factor, None, lambda: matrix)
-
-
-def jacobi_scaled_ends(
-    matrix: NDArray[np.float64],
-    *,
-    factor: tuple[NDArray[np.float64], bool] | None = None,
-    dense_up_to: int = DENSE_UP_TO,
-) -> SpectrumEnds:
-    """Return the ends of the Jacobi-scaled matrix ``D^-1/2 M D^-1/2`` (``D = diag(M)``).
-
-    Parameters
-    ----------
-    matrix : ndarray, shape (k, k)
-        Symmetric, with a positive diagonal where ``factor`` is given.
-    factor : tuple (ndarray, bool), optional
-        ``scipy.linalg.cho_factor(matrix)``, of ``M`` itself (not of the scaled matrix).
-    dense_up_to : int, keyword-only
-
-    Returns
-    -------
-    SpectrumEnds
-        As :func:`spectrum_ends` of :func:`service.solver.numerics.jacobi_scaled` ``(matrix)``.
-
-    Notes
-    -----
-    The Lanczos route never forms the scaled matrix: its products are
-    ``s * (M @ (s * x))`` with ``s = D^-1/2``, and those with its inverse
-    ``D^1/2 M^-1 D^1/2 x`` use the factor of ``M`` (two passes over ``M`` or its factor per
-    product, as for ``M`` itself).  The dense route, and every fallback to it, forms the
-    scaled matrix and solves it as :func:`spectrum_ends` does.
-    """
-    size = matrix.shape[0]
-    if factor is None or size <= dense_up_to:
-        return _dense(jacobi_scaled(matrix))
-    return _lanczos_ends(matrix, factor, 1.0 / np.sqrt(np.diag(matrix)), lambda: jacobi_scaled(matrix))
+        return _dense(dense_matrix())
+    scale = 1.0 / np.sqrt(np.diag(matrix)) if scaled else None
+    return _lanczos_ends(matrix, factor, scale, dense_matrix)
 
 
 def _lanczos_ends(

@@ -61,7 +61,7 @@ from numpy.typing import ArrayLike, NDArray
 from service.errors import NumericalError
 from service.solver.design.closed_loop import ILL_CONDITIONED, UNIT_CIRCLE_MARGIN, Diagnostic
 from service.solver.design.controller import ControllerDesign, design_controller
-from service.solver.design.spectrum import jacobi_scaled_ends
+from service.solver.design.spectrum import spectrum_ends
 from service.solver.evaluation.frequency import FrequencyAnalysis
 from service.solver.models.zeros import PlantZeros, plant_zeros
 from service.solver.numerics import format_complex
@@ -170,7 +170,7 @@ def _updated_condition_number(design: ControllerDesign, *, move_scale: float, co
             factor = scipy.linalg.cho_factor(h, lower=True, check_finite=False, overwrite_a=False)
         except np.linalg.LinAlgError:
             factor = None
-    ends = jacobi_scaled_ends(h, factor=factor)
+    ends = spectrum_ends(h, factor=factor, scaled=True)
     low, high = ends.low, ends.high
     return None if low <= size * np.finfo(float).eps * high else high / low
 
