@@ -16,11 +16,12 @@ Two lanes.  Before a request runs, its work is estimated from its sizes
 (:func:`service.pipeline.caps.request_work`).  Work above ``MOVECAST_HEAVY_WORK`` goes to
 the heavy lane (``MOVECAST_HEAVY_SOLVER_PROCESSES``, one by default), everything else to
 the light lane (``MOVECAST_SOLVER_PROCESSES``, one per core by default).  A small request
-therefore never queues behind a large one.  With ``MOVECAST_HEAVY_NICENESS`` (for example
-10, on a host of its own) the operating system also gives the light lane's processes the
-CPU first while the heavy lane is busy.  At most ``MOVECAST_HEAVY_QUEUE`` heavy requests wait for the heavy lane; more are
-answered 503 at once with ``Retry-After``, so that waiting heavy requests cannot hold every
-thread of the serving process.
+therefore never queues behind a large one.  The heavy lane's processes also run at a higher
+niceness (``MOVECAST_HEAVY_NICENESS``, 10 by default), so that the operating system gives
+the light lane's processes the CPU first while the heavy lane is busy.  At most
+``MOVECAST_HEAVY_QUEUE`` heavy requests wait for the heavy lane; more are answered 503 at
+once with ``Retry-After``, so that waiting heavy requests cannot hold every thread of the
+serving process.
 
     budget = Budget(lanes, seconds=30.0)
     response = budget.run(run_design, request, caps, operation="design")
@@ -62,7 +63,6 @@ from service.pipeline.caps import Caps, request_work
 from service.pipeline.memory import HEAVY_MEMORY_BYTES, MemoryEstimate, check_request_memory
 
 __all__ = [
-    "HEAVY_NICENESS",
     "Budget",
     "BudgetDep",
     "Lanes",
@@ -310,10 +310,6 @@ class SolverPool:
 _pools: dict[tuple[int, str, int, int, int | None], SolverPool] = {}
 _pools_lock = threading.Lock()
 
-#: Niceness to add to the heavy lane's solver processes on a dedicated host
-#: (``MOVECAST_HEAVY_NICENESS``; 0 by default, since on a shared host it would also yield to
-#: every other tenant).
-HEAVY_NICENESS = 10
 
 
 def _close_all() -> None:

@@ -10,13 +10,14 @@ import numpy as np
 import pytest
 
 from service.api.compute import (
-    HEAVY_NICENESS,
     HeavyLaneFull,
     Lanes,
     SolverPool,
     default_solver_processes,
+    solver_lanes,
     solver_pool,
 )
+from service.api.settings import HEAVY_NICENESS, Settings
 from service.pipeline.caps import HEAVY_WORK, design_work, request_work
 from service.schemas.design import DesignRequest
 from tests.api.conftest import assert_problem
@@ -96,6 +97,24 @@ def test_both_lanes_give_the_same_answer(make_client, request_name):
     assert heavy.content == light.content
 
 
+@pytest.mark.skipif(not hasattr(os, "nice"), reason="niceness is a POSIX notion")
+def test_by_default_the_heavy_lane_runs_at_a_higher_niceness_than_the_light_one():
+    # os.nice(0) reads a process's niceness without changing it (POSIX nice()).
+    settings = Settings()
+    lanes = solver_lanes(settings)
+    here = os.nice(0)
+    if here + 1 > 19:
+        pytest.skip("the tests already run at the highest niceness")
+    deadline = time.monotonic() + 30
+    light, _ = lanes.light.run(os.nice, (0,), deadline=deadline, seconds=30)
+    heavy, _ = lanes.heavy.run(os.nice, (0,), deadline=deadline, seconds=30)
+    assert settings.heavy_niceness > 0
+    assert light == here
+    assert heavy == min(19, here + settings.heavy_niceness)
+    zero = solver_lanes(Settings(heavy_niceness=0))
+    assert zero.heavy.run(os.nice, (0,), deadline=deadline, seconds=30)[0] == here
+
+
 def test_a_light_call_is_answered_while_the_heavy_lane_is_busy():
     heavy = SolverPool(processes=1, niceness=HEAVY_NICENESS)
     lanes = Lanes(light=SolverPool(processes=1), heavy=heavy, heavy_work=100.0)
@@ -147,7 +166,8 @@ def test_a_full_heavy_lane_is_a_503_problem(make_client, example):
     # Every request heavy, room for one to wait; the heavy solver and the waiting place are
     # taken by calls made here on the app's own heavy pool.
     client = make_client(heavy_work=1.0, heavy_queue=1)
-    pool = solver_pool(processes=1, lane="heavy", niceness=0, max_waiting=1)
+    settings = client.app.state.settings
+    pool = solver_pool(processes=1, lane="heavy", niceness=settings.heavy_niceness, max_waiting=1)
     held = [
         threading.Thread(
             target=pool.run, args=(time.sleep, (2.0,)), kwargs={"deadline": time.monotonic() + 60, "seconds": 60}
