@@ -311,7 +311,6 @@ _pools: dict[tuple[int, str, int, int, int | None], SolverPool] = {}
 _pools_lock = threading.Lock()
 
 
-
 def _close_all() -> None:
     for pool in list(_pools.values()):
         pool.close()

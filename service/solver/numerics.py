@@ -402,18 +402,26 @@ def balance_states(
     """
     n = a.shape[0]
     d = np.ones(n)
+    inverse = np.ones(n)  # 1 / d, kept beside d
     off = np.abs(a) * (1.0 - np.eye(n))
-    bb, cc = np.abs(b), np.abs(c)
+    columns = np.ascontiguousarray(off.T)  # columns[i] = off[:, i]
+    # The largest entry of |B|'s row i and of |C|'s column i, then scaled by d[i]: rounding
+    # is monotonic, so scaling after the maximum gives the maximum of the scaled entries,
+    # to the bit (and likewise for off[:, i] / d[j] * d[i] and off[i, :] * d[j] / d[i]).
+    b_rows = np.abs(b).max(axis=1, initial=0.0) if b.shape[1] else np.zeros(n)
+    c_columns = np.abs(c).max(axis=0, initial=0.0) if c.shape[0] else np.zeros(n)
     for _ in range(sweeps):
         changed = False
         for i in range(n):
-            col = max(float((off[:, i] * (1.0 / d) * d[i]).max(initial=0.0)), float((cc[:, i] * d[i]).max(initial=0.0)))
-            row = max(float((off[i, :] * d / d[i]).max(initial=0.0)), float((bb[i, :] / d[i]).max(initial=0.0)))
+            di = float(d[i])
+            col = max(float((columns[i] * inverse).max(initial=0.0)) * di, float(c_columns[i]) * di)
+            row = max(float((off[i] * d).max(initial=0.0)) / di, float(b_rows[i]) / di)
             if col == 0.0 or row == 0.0:
                 continue
             f = float(np.exp2(np.round(0.5 * np.log2(row / col))))
             if f != 1.0:
                 d[i] *= f
+                inverse[i] = 1.0 / d[i]
                 changed = True
         if not changed:
             break

@@ -24,7 +24,7 @@ from service.solver.evaluation.advice import (
 )
 from service.solver.models.properties import integrating_poles, open_loop_poles, steady_state_gain
 from service.solver.models.sampling import sample_zero_order_hold
-from service.solver.numerics import jacobi_scaled
+from service.solver.numerics import balance_states, jacobi_scaled
 from tests.conftest import random_plant
 
 EPS = np.finfo(float).eps
@@ -296,3 +296,53 @@ def test_the_estimators_integrator_test_reuses_the_plants_poles(rng, monkeypatch
     estimator.integrating_outputs(a, c)
     assert calls == [(12, 12)]
     clear_plant_caches()
+
+
+def _balance_by_definition(a, b, c, *, sweeps=30):
+    # Parlett and Reinsch's balancing ("Balancing a matrix for calculation of eigenvalues and
+    # eigenvectors", Numer. Math. 13, 1969) of [[A, B], [C, 0]] with state rows and columns
+    # tied, written out entry by entry: state i's scale is the power of two nearest
+    # sqrt(row / col), each state in turn, until a sweep changes nothing.
+    n = a.shape[0]
+    d = [1.0] * n
+    for _ in range(sweeps):
+        changed = False
+        for i in range(n):
+            col = max(
+                [abs(a[j, i]) / d[j] * d[i] for j in range(n) if j != i] + [abs(v) * d[i] for v in c[:, i]] + [0.0]
+            )
+            row = max(
+                [abs(a[i, j]) * d[j] / d[i] for j in range(n) if j != i] + [abs(v) / d[i] for v in b[i, :]] + [0.0]
+            )
+            if col == 0.0 or row == 0.0:
+                continue
+            f = float(np.exp2(np.round(0.5 * np.log2(row / col))))
+            if f != 1.0:
+                d[i] *= f
+                changed = True
+        if not changed:
+            break
+    return np.array(d)
+
+
+@pytest.mark.parametrize("case", ["random", "badly_scaled", "delay_chain", "integers", "no_outputs"])
+def test_state_balancing_gives_the_scales_of_its_definition_to_the_bit(rng, case):
+    for trial in range(20):
+        n, m, p = int(rng.integers(1, 14)), int(rng.integers(1, 4)), int(rng.integers(1, 4))
+        a, b, c = rng.normal(size=(n, n)), rng.normal(size=(n, m)), rng.normal(size=(p, n))
+        if case == "badly_scaled":  # states in units from 1e-6 to 1e6 of one another
+            t = 10.0 ** rng.uniform(-6, 6, size=n)
+            a, b, c = a * (1 / t)[:, None] * t[None, :], b / t[:, None], c * t[None, :]
+        elif case == "delay_chain":  # a shift register: most entries zero
+            a = np.diag(np.ones(n - 1), -1) if n > 1 else np.zeros((1, 1))
+            b = np.zeros((n, m))
+            b[0] = rng.normal(size=m)
+            c = np.zeros((p, n))
+            c[:, -1] = rng.normal(size=p)
+        elif case == "integers":  # exact powers of two in the ratios: ties in the rounding
+            a, b, c = (np.round(4 * x) for x in (a, b, c))
+        elif case == "no_outputs":
+            c = np.zeros((0, n))
+        got = balance_states(a, b, c)
+        assert np.array_equal(got, _balance_by_definition(a, b, c)), (case, trial)
+        assert np.all(np.log2(got) == np.round(np.log2(got)))  # powers of two: the scaling is exact
