@@ -69,6 +69,16 @@ class AnswerMemory:
             self.held += nbytes
             ANSWER_MEMORY.set(self.held)
 
+    def try_reserve(self, nbytes: int) -> bool:
+        """Take ``nbytes`` (at most ``limit``) if they are free now, without waiting; whether it did."""
+        nbytes = min(nbytes, self.limit)
+        with self._room:
+            if self.held + nbytes > self.limit:
+                return False
+            self.held += nbytes
+            ANSWER_MEMORY.set(self.held)
+            return True
+
     def release(self, nbytes: int) -> None:
         """Give ``nbytes`` back and wake the requests waiting for room."""
         with self._room:
@@ -90,6 +100,16 @@ class AnswerHold:
         if extra > 0:
             self.memory.reserve(extra, deadline=deadline, seconds=seconds, cancel=cancel)
             self.held += extra
+
+    def try_take(self, nbytes: float) -> bool:
+        """:meth:`take` if the bytes are free now (true also when they are held already); never waits."""
+        extra = min(int(nbytes), self.memory.limit) - self.held
+        if extra <= 0:
+            return True
+        if not self.memory.try_reserve(extra):
+            return False
+        self.held += extra
+        return True
 
     def release(self) -> None:
         """Give back everything this request holds (idempotent)."""

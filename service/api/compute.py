@@ -43,20 +43,21 @@ from multiprocessing.connection import Connection
 from multiprocessing.process import BaseProcess
 from typing import Annotated, Any, TypeVar
 
+import anyio
 from fastapi import Depends, Request
 from pydantic import BaseModel
 from starlette.types import Receive
 
 from service.api.answer_memory import HOLD_KEY, AnswerHold
-from service.api.compute_worker import rebuild_error, serve_calls
+from service.api.compute_worker import Outcome, rebuild_error, serve_calls
 from service.api.deps import SettingsDep
+from service.api.idle_solvers import IdleSolvers
 from service.api.metrics import LANE_REQUESTS, SOLVER_SECONDS
 from service.errors import (
     Cancelled,
     ComputeCrashed,
     ComputeDied,
     ComputeOutOfMemory,
-    HeavyLaneFull,
     TimeLimitExceeded,
 )
 from service.pipeline.caps import Caps, request_work
@@ -81,6 +82,9 @@ PRELOAD = ["numpy", "scipy.linalg", "service.pipeline.design", "service.api.comp
 
 #: Seconds between two looks at a request's cancellation while it waits or runs.
 _POLL_SECONDS = 0.05
+#: Largest answer (bytes, as estimated) that :meth:`Budget.arun` reads on the event loop; a
+#: larger one is read in a worker thread, so the loop never copies megabytes for one request.
+LOOP_ANSWER_BYTES = 1024 * 1024
 log = logging.getLogger("movecast.compute")
 #: Warnings raised inside compute calls (numpy overflow and the like), one JSON line each.
 solver_log = logging.getLogger("movecast.solver")
@@ -132,8 +136,7 @@ class SolverPool:
         self.blas_threads = blas_threads
         self.niceness = niceness
         self.max_waiting = max_waiting
-        self._waiting = 0
-        self._idle: queue.Queue[_Solver] = queue.Queue()
+        self._idle: IdleSolvers[_Solver] = IdleSolvers(max_waiting)
         self._lock = threading.Lock()
         self._started = False
         self._closed = False
@@ -166,52 +169,39 @@ class SolverPool:
             solver.process.kill()
         solver.process.join(timeout=5)
 
+    @property
+    def _waiting(self) -> int:
+        """How many calls wait for a free solver of this pool."""
+        return self._idle.waiting
+
+    @staticmethod
+    def _usable(solver: _Solver) -> bool:
+        """Whether an idle solver is alive and has nothing unread on its pipe."""
+        if solver.process.is_alive() and not solver.conn.poll(0):
+            return True
+        log.warning("an idle solver process had died (exit code %s); replaced", solver.process.exitcode)
+        return False
+
     def _take(self, deadline: float, seconds: float, cancel: threading.Event | None) -> _Solver:
         """An idle, living solver (a dead one found idle is replaced first).
 
         Raises :class:`HeavyLaneFull` when ``max_waiting`` calls already wait for this pool.
         """
-        try:
-            solver = self._idle.get_nowait()
-        except queue.Empty:
-            return self._wait_for_solver(deadline, seconds, cancel)
-        if solver.process.is_alive() and not solver.conn.poll(0):
-            return solver
-        log.warning("an idle solver process had died (exit code %s); replaced", solver.process.exitcode)
-        self._replace(solver)
-        return self._wait_for_solver(deadline, seconds, cancel)
-
-    def _wait_for_solver(self, deadline: float, seconds: float, cancel: threading.Event | None) -> _Solver:
-        with self._lock:
-            if self.max_waiting is not None and self._waiting >= self.max_waiting:
-                raise HeavyLaneFull(self._waiting)
-            self._waiting += 1
-        try:
-            return self._poll_idle(deadline, seconds, cancel)
-        finally:
-            with self._lock:
-                self._waiting -= 1
-
-    def _poll_idle(self, deadline: float, seconds: float, cancel: threading.Event | None) -> _Solver:
         while True:
-            if cancel is not None and cancel.is_set():
-                raise Cancelled
-            left = deadline - time.monotonic()
-            if left <= 0:
-                raise TimeLimitExceeded(seconds, queued=True)
-            try:
-                solver = self._idle.get(timeout=min(left, _POLL_SECONDS) if cancel is not None else left)
-            except queue.Empty:
-                continue
-            if solver.process.is_alive() and not solver.conn.poll(0):
+            solver = self._idle.take(deadline, seconds, cancel)
+            if self._usable(solver):
                 return solver
-            log.warning("an idle solver process had died (exit code %s); replaced", solver.process.exitcode)
             self._replace(solver)
 
     def _replace(self, solver: _Solver) -> None:
         self._retire(solver)
         if not self._closed:
             self._idle.put(self._spawn())
+
+    def _replace_later(self, loop: asyncio.AbstractEventLoop, solver: _Solver) -> None:
+        """:meth:`_replace` in a worker thread (it kills, waits and starts a process), not on the loop."""
+        done = loop.run_in_executor(None, self._replace, solver)
+        done.add_done_callback(_log_failure)
 
     def _wait(self, solver: _Solver, deadline: float, seconds: float, cancel: threading.Event | None) -> Any:
         while True:
@@ -284,17 +274,94 @@ class SolverPool:
                 self._idle.put(solver)
             else:
                 self._replace(solver)
-        *result, caught = outcome
-        for category, message in caught:
-            solver_log.warning("%s: %s", category, message, extra={"category": category})
-        if result[0] == "ok":
-            return result[1], result[2]
-        if result[0] == "memory":
-            raise ComputeOutOfMemory("the solver ran out of memory")
-        if result[0] == "crash":
-            log.error("the solver raised %s", result[1], extra={"exception_type": result[1], "traceback": result[2]})
-            raise ComputeCrashed(f"the solver raised {result[1]}")
-        raise rebuild_error(result[1], result[2], result[3])
+        return _value(outcome)
+
+    async def arun(
+        self,
+        call: Callable[..., T],
+        args: tuple[Any, ...],
+        *,
+        deadline: float,
+        seconds: float,
+        cancel: threading.Event | None = None,
+    ) -> tuple[T, float]:
+        """:meth:`run` from a task on the event loop, which waits for its solver and its answer without a thread.
+
+        The call is pickled and sent, and its answer read, on the loop: meant for small
+        requests and answers (the light lane's designs).  Replacing a solver (after a time
+        limit, a cancellation or a death) runs in a worker thread.  Raises as :meth:`run`.
+        """
+        loop = asyncio.get_running_loop()
+        if not self._started:
+            await loop.run_in_executor(None, self.start)
+        for attempt in (1, 2):
+            solver = await self._atake(loop, deadline, seconds, cancel)
+            try:
+                solver.conn.send((call, args))
+            except (OSError, EOFError):
+                log.warning(
+                    "a solver process died before its call was sent; %s", "retrying" if attempt == 1 else "giving up"
+                )
+                self._replace_later(loop, solver)
+                if attempt == 2:
+                    raise ComputeDied("the solver process stopped before the call") from None
+                continue
+            break
+        healthy = False
+        try:
+            outcome = await self._answer(loop, solver, deadline, seconds, cancel)
+            healthy = True
+        finally:
+            if healthy:
+                self._idle.put(solver)
+            else:
+                self._replace_later(loop, solver)
+        return _value(outcome)
+
+    async def _atake(
+        self, loop: asyncio.AbstractEventLoop, deadline: float, seconds: float, cancel: threading.Event | None
+    ) -> _Solver:
+        """:meth:`_take` on the loop: a dead solver found idle is replaced in a worker thread."""
+        while True:
+            solver = await self._idle.atake(deadline, seconds, cancel)
+            if self._usable(solver):
+                return solver
+            self._replace_later(loop, solver)
+
+    async def _answer(
+        self,
+        loop: asyncio.AbstractEventLoop,
+        solver: _Solver,
+        deadline: float,
+        seconds: float,
+        cancel: threading.Event | None,
+    ) -> Outcome:
+        """The outcome on ``solver``'s pipe, awaited by the loop's reader callback (readable: an answer or EOF)."""
+        readable: asyncio.Future[None] = loop.create_future()
+        fd = solver.conn.fileno()
+
+        def ready() -> None:
+            if not readable.done():
+                readable.set_result(None)
+
+        loop.add_reader(fd, ready)
+        try:
+            while True:
+                left = deadline - time.monotonic()
+                if left <= 0:
+                    raise TimeLimitExceeded(seconds, queued=False)
+                done, _ = await asyncio.wait({readable}, timeout=min(left, _POLL_SECONDS) if cancel else left)
+                if done:
+                    break
+                if cancel is not None and cancel.is_set():
+                    raise Cancelled
+        finally:
+            loop.remove_reader(fd)
+        try:
+            outcome: Outcome = solver.conn.recv()
+        except (EOFError, OSError) as exc:
+            raise ComputeDied(f"the solver process stopped (exit code {solver.process.exitcode})") from exc
+        return outcome
 
     def close(self) -> None:
         """Stop every idle solver; busy ones stop when their pipe closes."""
@@ -305,6 +372,27 @@ class SolverPool:
                 self._retire(self._idle.get_nowait())
             except queue.Empty:
                 return
+
+
+def _log_failure(done: asyncio.Future[None]) -> None:
+    """Log the error of a replacement that ran in a worker thread (nobody awaits it)."""
+    if not done.cancelled() and done.exception() is not None:
+        log.error("replacing a solver process failed: %r", done.exception())
+
+
+def _value(outcome: Outcome) -> tuple[Any, float]:
+    """The value and solver seconds of an outcome (:mod:`service.api.compute_worker`), or its error raised."""
+    *result, caught = outcome
+    for category, message in caught:
+        solver_log.warning("%s: %s", category, message, extra={"category": category})
+    if result[0] == "ok":
+        return result[1], result[2]
+    if result[0] == "memory":
+        raise ComputeOutOfMemory("the solver ran out of memory")
+    if result[0] == "crash":
+        log.error("the solver raised %s", result[1], extra={"exception_type": result[1], "traceback": result[2]})
+        raise ComputeCrashed(f"the solver raised {result[1]}")
+    raise rebuild_error(result[1], result[2], result[3])
 
 
 _pools: dict[tuple[int, str, int, int, int | None], SolverPool] = {}
@@ -427,6 +515,23 @@ class Budget:
         if self.hold is not None and estimate is not None:
             self.hold.take(estimate.served, deadline=self.deadline, seconds=self.seconds, cancel=self.cancel)
 
+    def _route(self, args: tuple[Any, ...], work: float | None) -> tuple[SolverPool, str, MemoryEstimate | None]:
+        """The pool and lane of a call, and its memory estimate (a 422 when it exceeds the cap)."""
+        request = args[0] if args and isinstance(args[0], BaseModel) else None
+        if work is None:
+            work = request_work(request) if request is not None else 0.0
+        estimate = None
+        caps = next((a for a in args if isinstance(a, Caps)), None)
+        if request is not None and caps is not None:
+            estimate = check_request_memory(request, caps)  # a 422 before any process is taken
+        pool, lane = self.lanes.pick(work, estimate.bytes if estimate is not None else 0.0)
+        return pool, lane, estimate
+
+    @staticmethod
+    def _record(operation: str, lane: str, spent: float) -> None:
+        SOLVER_SECONDS.labels(operation=operation).observe(spent)
+        LANE_REQUESTS.labels(lane=lane).inc()
+
     def run(self, call: Callable[..., T], *args: Any, operation: str, work: float | None = None) -> T:
         """Run ``call(*args)`` in a solver process of its lane within the budget; record its time.
 
@@ -437,19 +542,30 @@ class Budget:
         ``max_request_memory_bytes`` is refused with a 422 naming its fields before it runs, and
         the bytes of its answer in this process are held (:meth:`hold_answer`).
         """
-        request = args[0] if args and isinstance(args[0], BaseModel) else None
-        if work is None:
-            work = request_work(request) if request is not None else 0.0
-        memory = 0.0
-        caps = next((a for a in args if isinstance(a, Caps)), None)
-        if request is not None and caps is not None:
-            estimate = check_request_memory(request, caps)  # a 422 before any process is taken
-            memory = estimate.bytes if estimate is not None else 0.0
-            self.hold_answer(estimate)
-        pool, lane = self.lanes.pick(work, memory)
+        pool, lane, estimate = self._route(args, work)
+        self.hold_answer(estimate)
         value, spent = pool.run(call, args, deadline=self.deadline, seconds=self.seconds, cancel=self.cancel)
-        SOLVER_SECONDS.labels(operation=operation).observe(spent)
-        LANE_REQUESTS.labels(lane=lane).inc()
+        self._record(operation, lane, spent)
+        return value
+
+    async def arun(self, call: Callable[..., T], *args: Any, operation: str, work: float | None = None) -> T:
+        """:meth:`run` from the event loop.
+
+        A light call whose answer is at most :data:`LOOP_ANSWER_BYTES` waits for its solver and
+        its answer on the loop (:meth:`SolverPool.arun`): no worker thread, no thread switch on
+        the way.  Any other call (the heavy lane, a large answer, an answer that must wait for
+        room in the answer memory) runs :meth:`run` in a worker thread, as the synchronous
+        routes do.  Raises as :meth:`run`.
+        """
+        pool, lane, estimate = self._route(args, work)
+        served = estimate.served if estimate is not None else 0.0
+        on_loop = lane == "light" and served <= LOOP_ANSWER_BYTES
+        if on_loop and self.hold is not None and estimate is not None:
+            on_loop = self.hold.try_take(estimate.served)
+        if not on_loop:
+            return await anyio.to_thread.run_sync(lambda: self.run(call, *args, operation=operation, work=work))
+        value, spent = await pool.arun(call, args, deadline=self.deadline, seconds=self.seconds, cancel=self.cancel)
+        self._record(operation, lane, spent)
         return value
 
 
@@ -457,7 +573,8 @@ async def get_budget(settings: SettingsDep, request: Request) -> AsyncIterator[B
     """A fresh budget of ``request_timeout_seconds`` over the two lanes, cancelled if the client leaves.
 
     The watch runs on the event loop (it only awaits the ASGI ``http.disconnect`` message);
-    the handler, in its worker thread, finds the budget cancelled.
+    the handler finds the budget cancelled, in its worker thread or, for a call awaited with
+    :meth:`Budget.arun`, on the loop.
     """
     cancel = threading.Event()
     watcher = asyncio.ensure_future(_watch_disconnect(request.receive, cancel))

@@ -10,7 +10,6 @@ import numpy as np
 import pytest
 
 from service.api.compute import (
-    HeavyLaneFull,
     Lanes,
     SolverPool,
     default_solver_processes,
@@ -18,6 +17,7 @@ from service.api.compute import (
     solver_pool,
 )
 from service.api.settings import HEAVY_NICENESS, Settings
+from service.errors import HeavyLaneFull
 from service.pipeline.caps import HEAVY_WORK, design_work, request_work
 from service.schemas.design import DesignRequest
 from tests.api.conftest import assert_problem

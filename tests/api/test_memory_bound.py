@@ -132,7 +132,11 @@ def test_a_memory_error_in_the_solver_is_a_422_problem(make_client, example, mon
     def out_of_memory(*args, **kwargs):
         raise ComputeOutOfMemory("the solver ran out of memory")
 
+    async def out_of_memory_on_the_loop(*args, **kwargs):
+        out_of_memory()
+
     monkeypatch.setattr(compute.SolverPool, "run", out_of_memory)
+    monkeypatch.setattr(compute.SolverPool, "arun", out_of_memory_on_the_loop)  # a light design
     body = assert_problem(client.post("/design", json=example), 422, "out-of-memory")
     assert "memory" in body["detail"]
     assert os.getpid()  # the serving process itself is untouched

@@ -91,17 +91,17 @@ def test_a_solver_that_dies_mid_request_is_a_503_with_retry_after(make_client, e
 
     pool = compute.solver_pool(processes=1)
     pool.start()
-    original = pool._wait
+    original = pool._answer  # a light design waits for its answer on the event loop
 
-    def wait_then_kill(solver, *args, **kwargs):
+    async def answer_after_a_kill(loop, solver, *args, **kwargs):
         os.kill(solver.process.pid, signal.SIGKILL)
-        return original(solver, *args, **kwargs)
+        return await original(loop, solver, *args, **kwargs)
 
-    monkeypatch.setattr(pool, "_wait", wait_then_kill)
+    monkeypatch.setattr(pool, "_answer", answer_after_a_kill)
     response = client.post("/design", json=example)
     body = assert_problem(response, 503, "solver-failed")
     assert response.headers["retry-after"] == "1" and "retry" in body["detail"].lower()
-    monkeypatch.setattr(pool, "_wait", original)
+    monkeypatch.setattr(pool, "_answer", original)
     assert client.post("/design", json=example).status_code == 200
 
 

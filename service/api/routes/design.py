@@ -31,7 +31,7 @@ PROBLEMS: dict[int | str, dict[str, Any]] = {
 
 
 @router.post("/design", response_model=DesignResponse, responses=PROBLEMS)
-def design(
+async def design(
     request: Annotated[
         DesignRequest,
         Body(
@@ -52,7 +52,8 @@ def design(
 ) -> Response:
     """Design the predictive controller: gains, Hessian conditioning, closed-loop poles. Design aid only."""
     # The solver process writes the JSON (the response model's own serializer), so this
-    # process neither unpickles the model nor validates and serializes it again.
-    answer = budget.run(run_design_json, request, caps, operation="design")
+    # process neither unpickles the model nor validates and serializes it again.  A coroutine:
+    # a light design waits for its solver on the event loop, without a worker thread.
+    answer = await budget.arun(run_design_json, request, caps, operation="design")
     observe_design_sizes(answer.sizes)
     return Response(answer.body, media_type="application/json")
