@@ -52,6 +52,7 @@ from service.api.answer_cache import (
     request_key,
     stored_response,
 )
+from service.api.direct import direct_call
 from service.api.metrics import ANSWER_CACHE
 from service.errors import FieldProblem, InvalidRequest, MalformedBody, UnsupportedMediaType
 from service.pipeline.problems import pointer, validation_problems
@@ -306,6 +307,7 @@ class CheckedBodyRoute(APIRoute):
 
         reader = type(self).csv_reader
         route = self.path if self.path in CACHED_ROUTES else None
+        direct = direct_call(self)  # None: FastAPI resolves the dependencies
 
         async def checked(request: Request) -> Response:
             cache: AnswerCache | None = getattr(request.app.state, "answer_cache", None)
@@ -356,6 +358,8 @@ class CheckedBodyRoute(APIRoute):
                 request._json = parse_and_validate(body, model)
             else:
                 request._json = await anyio.to_thread.run_sync(parse_and_validate, body, model, limiter=_limiter())
+            if direct is not None and not request.app.dependency_overrides:
+                return await direct(request, request._json)
             return await handler(request)
 
         return checked
