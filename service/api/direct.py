@@ -4,9 +4,10 @@ FastAPI resolves an endpoint's dependencies on each request by walking its depen
 for ``POST /design`` (the body, the caps, the settings behind them and the budget) that walk
 took about as long as parsing and validating the small design's body.  A route whose
 endpoint is a coroutine returning a :class:`~starlette.responses.Response`, and whose only
-parameters are its JSON body (validated already by :class:`service.api.bodies.CheckedBodyRoute`)
-and the dependencies of :data:`PROVIDED`, is called here directly: the app's settings, their
-caps and a fresh budget are what FastAPI would have given it.
+parameters are its JSON body (validated already by :class:`service.api.bodies.CheckedBodyRoute`),
+the dependencies of :data:`PROVIDED` and perhaps the request itself, is called here
+directly: the app's settings, their caps and a fresh budget are what FastAPI would have
+given it.
 
 Any other route (a header, a query parameter, another dependency) keeps FastAPI's resolver,
 and so does every route while ``app.dependency_overrides`` holds anything.
@@ -93,7 +94,6 @@ def direct_call(route: APIRoute) -> DirectCall | None:
         or dependant.header_params
         or dependant.cookie_params
         or len(dependant.body_params) != 1
-        or dependant.request_param_name
         or dependant.websocket_param_name
         or dependant.http_connection_param_name
         or dependant.response_param_name
@@ -110,12 +110,15 @@ def direct_call(route: APIRoute) -> DirectCall | None:
             return None
         providers.append((dependency.name, provide))
     body = dependant.body_params[0].name
+    request_name = dependant.request_param_name  # the endpoint's own Request parameter, if any
     endpoint = route.endpoint
 
     async def call(request: Request, model: BaseModel) -> Response:
         settings: Settings = request.app.state.settings
         async with AsyncExitStack() as stack:
             values: dict[str, Any] = {body: model}
+            if request_name is not None:
+                values[request_name] = request
             for name, provide in providers:
                 values[name] = await provide(request, settings, stack)
             answer: Response = await endpoint(**values)

@@ -13,14 +13,18 @@ from fastapi.testclient import TestClient
 
 from service.api import deps
 from service.api.direct import direct_call
-from service.api.routes import design, simulate
+from service.api.routes import design, simulate, sweep
 
 
-def test_the_design_route_is_called_directly_and_a_route_with_a_header_is_not():
-    (design_route,) = [r for r in design.router.routes if getattr(r, "path", None) == "/design"]
-    (simulate_route,) = [r for r in simulate.router.routes if getattr(r, "path", None) == "/simulate"]
-    assert direct_call(design_route) is not None
-    assert direct_call(simulate_route) is None  # it reads the Accept header: FastAPI resolves it
+def test_design_and_simulate_are_called_directly_and_a_plain_function_route_is_not():
+    def route(router, path):
+        (found,) = [r for r in router.routes if getattr(r, "path", None) == path]
+        return found
+
+    assert direct_call(route(design.router, "/design")) is not None
+    assert direct_call(route(simulate.router, "/simulate")) is not None  # its Request is passed on
+    # a plain function whose answer FastAPI serializes: the resolver serves it
+    assert direct_call(route(sweep.router, "/design/sweep")) is None
 
 
 def test_direct_answers_are_the_resolvers_byte_for_byte(make_client, example, monkeypatch):
@@ -34,16 +38,27 @@ def test_direct_answers_are_the_resolvers_byte_for_byte(make_client, example, mo
         return await resolve(*args, **kwargs)
 
     monkeypatch.setattr(fastapi.routing, "solve_dependencies", counted)
+    from service.pipeline.examples import load_example
+
     client = make_client()
-    direct = client.post("/design", json=example, headers={"cache-control": "no-store"})
+    calls = [
+        ("/design", example, {}),
+        ("/simulate", load_example("simulate_request.json"), {}),
+        ("/simulate", load_example("simulate_request.json"), {"accept": "text/csv"}),
+    ]
+    fresh = {"cache-control": "no-store"}
+    direct = [client.post(path, json=body, headers={**fresh, **headers}) for path, body, headers in calls]
     assert resolved_calls == []  # FastAPI's resolver did not run
-    # Any override turns the direct call off for the app: the same request through FastAPI's resolver.
+    # Any override turns the direct call off for the app: the same requests through FastAPI's resolver.
     client.app.dependency_overrides[deps.get_settings] = deps.get_settings
-    resolved = client.post("/design", json=example, headers={"cache-control": "no-store"})
+    resolved = [client.post(path, json=body, headers={**fresh, **headers}) for path, body, headers in calls]
     client.app.dependency_overrides.clear()
-    assert resolved_calls
-    assert direct.status_code == resolved.status_code == 200
-    assert direct.content == resolved.content
+    assert len(resolved_calls) == len(calls)
+    for a, b in zip(direct, resolved, strict=True):
+        assert a.status_code == b.status_code == 200
+        assert a.headers["content-type"] == b.headers["content-type"]
+        assert a.content == b.content
+    assert direct[2].headers["content-type"].startswith("text/csv")
 
 
 def test_a_dependency_of_the_inclusion_still_runs(make_client, example):

@@ -43,7 +43,7 @@ def prefers_csv(accept: str | None) -> bool:
 
 
 @router.post("/simulate", response_model=SimulateResponse, responses=RESPONSES)
-def simulate(
+async def simulate(
     request: Annotated[
         SimulateRequest,
         Body(
@@ -62,8 +62,9 @@ def simulate(
     caps: CapsDep,
     budget: BudgetDep,
     http: Request,
-) -> Any:
+) -> Response:
     """Simulate the loop of design, estimator and (true) plant through a scenario. Design aid only."""
     csv = prefers_csv(http.headers.get("accept"))
-    answer = budget.run(run_simulation_answer, request, caps, csv, operation="simulate")
+    # a coroutine: a light run waits for its solver on the event loop (Budget.arun)
+    answer = await budget.arun(run_simulation_answer, request, caps, csv, operation="simulate")
     return Response(answer.body, media_type=answer.media_type)
