@@ -41,6 +41,7 @@ from collections.abc import AsyncIterator, Callable
 from dataclasses import dataclass
 from multiprocessing.connection import Connection
 from multiprocessing.process import BaseProcess
+from multiprocessing.reduction import ForkingPickler
 from typing import Annotated, Any, TypeVar
 
 import anyio
@@ -249,10 +250,11 @@ class SolverPool:
             Whatever the call raised on purpose (InvalidRequest, NumericalError).
         """
         self.start()
+        payload = _pickled(call, args)  # before a solver is taken: a call that cannot be pickled costs none
         for attempt in (1, 2):
             solver = self._take(deadline, seconds, cancel)
             try:
-                solver.conn.send((call, args))
+                solver.conn.send_bytes(payload)
             except (OSError, EOFError):
                 log.warning(
                     "a solver process died before its call was sent; %s", "retrying" if attempt == 1 else "giving up"
@@ -294,10 +296,11 @@ class SolverPool:
         loop = asyncio.get_running_loop()
         if not self._started:
             await loop.run_in_executor(None, self.start)
+        payload = _pickled(call, args)
         for attempt in (1, 2):
             solver = await self._atake(loop, deadline, seconds, cancel)
             try:
-                solver.conn.send((call, args))
+                solver.conn.send_bytes(payload)
             except (OSError, EOFError):
                 log.warning(
                     "a solver process died before its call was sent; %s", "retrying" if attempt == 1 else "giving up"
@@ -372,6 +375,15 @@ class SolverPool:
                 self._retire(self._idle.get_nowait())
             except queue.Empty:
                 return
+
+
+def _pickled(call: Callable[..., Any], args: tuple[Any, ...]) -> memoryview:
+    """The message of a call to a solver, as ``Connection.send`` would write it (``ForkingPickler``).
+
+    Pickled before a solver is taken: when the call cannot be pickled, the error reaches the
+    caller and no solver is left holding half a message (or lost to the pool).
+    """
+    return ForkingPickler.dumps((call, args))
 
 
 def _log_failure(done: asyncio.Future[None]) -> None:

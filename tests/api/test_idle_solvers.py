@@ -155,3 +155,23 @@ def test_an_answer_hold_takes_room_only_when_it_is_free_now():
     assert not second.try_take(500) and memory.held == 600 and second.held == 0
     first.release()
     assert second.try_take(500) and memory.held == 500
+
+
+def test_a_call_that_cannot_be_pickled_fails_alone_and_keeps_the_solver():
+    # A lambda does not pickle (the standard library's pickle); the pool's one solver must
+    # stay with the pool, so the next call is answered at once rather than at its time limit.
+    pool = SolverPool(processes=1)
+
+    async def on_the_loop() -> int:
+        with pytest.raises(Exception, match="pickle"):
+            await pool.arun(abs, (lambda: 1,), deadline=time.monotonic() + 30, seconds=30)
+        return (await pool.arun(abs, (-8,), deadline=time.monotonic() + 30, seconds=30))[0]
+
+    try:
+        with pytest.raises(Exception, match="pickle"):
+            pool.run(abs, (lambda: 1,), deadline=time.monotonic() + 30, seconds=30)
+        assert pool.run(abs, (-7,), deadline=time.monotonic() + 30, seconds=30)[0] == 7
+        assert asyncio.run(on_the_loop()) == 8
+        assert pool._idle.qsize() == 1
+    finally:
+        pool.close()
