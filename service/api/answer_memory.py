@@ -39,7 +39,8 @@ _POLL_SECONDS = 0.05
 class AnswerMemory:
     """Bytes of answers held by this serving process, at most ``limit`` at once.
 
-    Thread-safe: requests reserve from their worker threads and release from the event loop.
+    Thread-safe: requests reserve from their worker threads, or from the event loop without
+    waiting (:meth:`try_reserve`), and release from the event loop.
     """
 
     def __init__(self, limit: int) -> None:

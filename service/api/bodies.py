@@ -291,7 +291,12 @@ def _as_json(request: Request, body: bytes, model: BaseModel) -> Request:
 
 
 class CheckedBodyRoute(APIRoute):
-    """A route whose JSON body is checked by :func:`parse_and_validate` in a worker thread."""
+    """A route whose JSON body is checked by :func:`parse_and_validate` before FastAPI sees it.
+
+    Small bodies are checked on the event loop, larger ones in a worker thread.  When
+    :func:`service.api.direct.direct_call` can provide the endpoint's dependencies, the
+    endpoint is then called directly; otherwise FastAPI's handler resolves them.
+    """
 
     #: The reader of ``text/csv`` bodies (:func:`csv_body_route`); None: JSON only.
     csv_reader: ClassVar[CsvReader | None] = None
