@@ -67,10 +67,11 @@ def _returns_response(endpoint: Callable[..., Any]) -> bool:
 def _dependant(route: APIRoute) -> Any:
     """The dependencies FastAPI resolves for ``route`` where it is being included.
 
-    Since FastAPI 0.12x an included route keeps its own ``dependant`` and builds its handler
-    once per inclusion, with the inclusion's dependencies added, while a context variable
-    names that inclusion (read here as FastAPI's own ``get_route_handler`` reads it).  Before
-    that, ``include_router`` made a new route with every dependency in its ``dependant``.
+    In the FastAPI this project runs on (0.165) an included route keeps its own ``dependant``
+    and builds its handler once per inclusion, with the inclusion's dependencies added, while
+    a context variable names that inclusion (read here as FastAPI's own ``get_route_handler``
+    reads it).  Where that variable does not exist, ``include_router`` is taken to have made a
+    new route with every dependency in its ``dependant``, as older releases did.
     ``tests/api/test_direct_call.py`` checks that a dependency of the inclusion still runs.
     """
     context_var = getattr(fastapi_routing, "_effective_route_context_var", None)
@@ -88,17 +89,20 @@ def direct_call(route: APIRoute) -> DirectCall | None:
     dependant = _dependant(route)
     if dependant is None:
         return None
+    special = (
+        "websocket_param_name",
+        "http_connection_param_name",
+        "response_param_name",
+        "background_tasks_param_name",
+        "security_scopes_param_name",
+    )
     if (
         dependant.path_params
         or dependant.query_params
         or dependant.header_params
         or dependant.cookie_params
         or len(dependant.body_params) != 1
-        or dependant.websocket_param_name
-        or dependant.http_connection_param_name
-        or dependant.response_param_name
-        or dependant.background_tasks_param_name
-        or dependant.security_scopes_param_name
+        or any(getattr(dependant, name, None) for name in special)  # a name older releases lack is absent
         or not asyncio.iscoroutinefunction(route.endpoint)
         or not _returns_response(route.endpoint)
     ):

@@ -8,12 +8,16 @@ access), and an override in ``app.dependency_overrides`` is honoured.
 
 from __future__ import annotations
 
-from fastapi import Depends, FastAPI, HTTPException
+from fastapi import APIRouter, BackgroundTasks, Depends, FastAPI, Header, HTTPException
+from fastapi.responses import Response
 from fastapi.testclient import TestClient
 
 from service.api import deps
+from service.api.bodies import CheckedBodyRoute
+from service.api.deps import CapsDep
 from service.api.direct import direct_call
 from service.api.routes import design, simulate, sweep
+from service.schemas.design import DesignRequest
 
 
 def test_design_and_simulate_are_called_directly_and_a_plain_function_route_is_not():
@@ -88,3 +92,36 @@ def test_an_override_of_a_provided_dependency_is_honoured(make_client, example):
     finally:
         client.app.dependency_overrides.clear()
     assert answer.status_code == 422 and "/model" in answer.text
+
+
+def test_an_endpoint_with_any_other_parameter_keeps_the_resolver():
+    router = APIRouter(route_class=CheckedBodyRoute)
+
+    @router.post("/only-known")
+    async def only_known(request: DesignRequest, caps: CapsDep) -> Response:
+        return Response(b"")
+
+    @router.post("/with-background")
+    async def with_background(request: DesignRequest, caps: CapsDep, later: BackgroundTasks) -> Response:
+        return Response(b"")
+
+    @router.post("/with-header")
+    async def with_header(request: DesignRequest, accept: str | None = Header(default=None)) -> Response:
+        return Response(b"")
+
+    @router.post("/plain-function")
+    def plain_function(request: DesignRequest, caps: CapsDep) -> Response:
+        return Response(b"")
+
+    @router.post("/returns-a-model")
+    async def returns_a_model(request: DesignRequest) -> DesignRequest:
+        return request
+
+    direct = {route.path: direct_call(route) is not None for route in router.routes}
+    assert direct == {
+        "/only-known": True,
+        "/with-background": False,
+        "/with-header": False,
+        "/plain-function": False,
+        "/returns-a-model": False,
+    }
