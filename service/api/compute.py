@@ -52,10 +52,9 @@ from starlette.types import Receive
 from service.api.answer_memory import HOLD_KEY, AnswerHold
 from service.api.compute_worker import Outcome, rebuild_error, serve_calls
 from service.api.deps import SettingsDep
-from service.api.idle_solvers import IdleSolvers
+from service.api.idle_solvers import IdleSolvers, wait_slice
 from service.api.metrics import LANE_REQUESTS, SOLVER_SECONDS
 from service.errors import (
-    Cancelled,
     ComputeCrashed,
     ComputeDied,
     ComputeOutOfMemory,
@@ -81,8 +80,6 @@ T = TypeVar("T")
 #: Modules the fork server imports once, so each solver process starts ready.
 PRELOAD = ["numpy", "scipy.linalg", "service.pipeline.design", "service.api.compute_worker"]
 
-#: Seconds between two looks at a request's cancellation while it waits or runs.
-_POLL_SECONDS = 0.05
 #: Largest answer (bytes, as estimated) that :meth:`Budget.arun` reads on the event loop; a
 #: larger one is read in a worker thread, so the loop never copies megabytes for one request.
 LOOP_ANSWER_BYTES = 1024 * 1024
@@ -204,15 +201,28 @@ class SolverPool:
         done = loop.run_in_executor(None, self._replace, solver)
         done.add_done_callback(_log_failure)
 
+    @staticmethod
+    def _sent(solver: _Solver, payload: memoryview, attempt: int, replace: Callable[[_Solver], None]) -> bool:
+        """Send a pickled call; False when the solver had died (it is replaced, and the call goes to another).
+
+        Raises :class:`ComputeDied` when that happens on the second attempt.
+        """
+        try:
+            solver.conn.send_bytes(payload)
+        except (OSError, EOFError):
+            log.warning(
+                "a solver process died before its call was sent; %s", "retrying" if attempt == 1 else "giving up"
+            )
+            replace(solver)
+            if attempt == 2:
+                raise ComputeDied("the solver process stopped before the call") from None
+            return False
+        return True
+
     def _wait(self, solver: _Solver, deadline: float, seconds: float, cancel: threading.Event | None) -> Any:
-        while True:
-            left = deadline - time.monotonic()
-            if left <= 0:
-                raise TimeLimitExceeded(seconds, queued=False)
-            if solver.conn.poll(min(left, _POLL_SECONDS) if cancel is not None else left):
-                return solver.conn.recv()
-            if cancel is not None and cancel.is_set():
-                raise Cancelled
+        while not solver.conn.poll(wait_slice(deadline, seconds, cancel, queued=False)):
+            pass
+        return solver.conn.recv()
 
     def run(
         self,
@@ -253,17 +263,8 @@ class SolverPool:
         payload = _pickled(call, args)  # before a solver is taken: a call that cannot be pickled costs none
         for attempt in (1, 2):
             solver = self._take(deadline, seconds, cancel)
-            try:
-                solver.conn.send_bytes(payload)
-            except (OSError, EOFError):
-                log.warning(
-                    "a solver process died before its call was sent; %s", "retrying" if attempt == 1 else "giving up"
-                )
-                self._replace(solver)
-                if attempt == 2:
-                    raise ComputeDied("the solver process stopped before the call") from None
-                continue
-            break
+            if self._sent(solver, payload, attempt, self._replace):
+                break
         healthy = False
         try:
             try:
@@ -299,17 +300,8 @@ class SolverPool:
         payload = _pickled(call, args)
         for attempt in (1, 2):
             solver = await self._atake(loop, deadline, seconds, cancel)
-            try:
-                solver.conn.send_bytes(payload)
-            except (OSError, EOFError):
-                log.warning(
-                    "a solver process died before its call was sent; %s", "retrying" if attempt == 1 else "giving up"
-                )
-                self._replace_later(loop, solver)
-                if attempt == 2:
-                    raise ComputeDied("the solver process stopped before the call") from None
-                continue
-            break
+            if self._sent(solver, payload, attempt, lambda dead: self._replace_later(loop, dead)):
+                break
         healthy = False
         try:
             outcome = await self._answer(loop, solver, deadline, seconds, cancel)
@@ -350,14 +342,9 @@ class SolverPool:
         loop.add_reader(fd, ready)
         try:
             while True:
-                left = deadline - time.monotonic()
-                if left <= 0:
-                    raise TimeLimitExceeded(seconds, queued=False)
-                done, _ = await asyncio.wait({readable}, timeout=min(left, _POLL_SECONDS) if cancel else left)
+                done, _ = await asyncio.wait({readable}, timeout=wait_slice(deadline, seconds, cancel, queued=False))
                 if done:
                     break
-                if cancel is not None and cancel.is_set():
-                    raise Cancelled
         finally:
             loop.remove_reader(fd)
         try:
@@ -554,7 +541,18 @@ class Budget:
         ``max_request_memory_bytes`` is refused with a 422 naming its fields before it runs, and
         the bytes of its answer in this process are held (:meth:`hold_answer`).
         """
-        pool, lane, estimate = self._route(args, work)
+        return self._run_routed(*self._route(args, work), call, args, operation)
+
+    def _run_routed(
+        self,
+        pool: SolverPool,
+        lane: str,
+        estimate: MemoryEstimate | None,
+        call: Callable[..., T],
+        args: tuple[Any, ...],
+        operation: str,
+    ) -> T:
+        """:meth:`run` once the lane is chosen: hold the answer's bytes, run, record."""
         self.hold_answer(estimate)
         value, spent = pool.run(call, args, deadline=self.deadline, seconds=self.seconds, cancel=self.cancel)
         self._record(operation, lane, spent)
@@ -575,7 +573,7 @@ class Budget:
         if on_loop and self.hold is not None and estimate is not None:
             on_loop = self.hold.try_take(estimate.served)
         if not on_loop:
-            return await anyio.to_thread.run_sync(lambda: self.run(call, *args, operation=operation, work=work))
+            return await anyio.to_thread.run_sync(self._run_routed, pool, lane, estimate, call, args, operation)
         value, spent = await pool.arun(call, args, deadline=self.deadline, seconds=self.seconds, cancel=self.cancel)
         self._record(operation, lane, spent)
         return value

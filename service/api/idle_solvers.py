@@ -19,16 +19,33 @@ import queue
 import threading
 import time
 from collections import deque
+from collections.abc import Callable
 from typing import Generic, TypeVar
 
 from service.errors import Cancelled, HeavyLaneFull, TimeLimitExceeded
 
-__all__ = ["IdleSolvers"]
+__all__ = ["POLL_SECONDS", "IdleSolvers", "wait_slice"]
 
 S = TypeVar("S")
 
 #: Seconds between two looks at a caller's cancellation while it waits.
 POLL_SECONDS = 0.05
+
+
+def wait_slice(deadline: float, seconds: float, cancel: threading.Event | None, *, queued: bool) -> float:
+    """Seconds to wait before looking again, for a caller waiting until ``deadline`` (``time.monotonic``).
+
+    At most :data:`POLL_SECONDS` when ``cancel`` may be set, so that a client that left is
+    noticed.  Raises :class:`Cancelled` when ``cancel`` is set, and
+    :class:`TimeLimitExceeded` (``seconds``: the request's time limit; ``queued``: whether it
+    was still waiting for a solver) when the deadline has passed.
+    """
+    if cancel is not None and cancel.is_set():
+        raise Cancelled
+    left = deadline - time.monotonic()
+    if left <= 0:
+        raise TimeLimitExceeded(seconds, queued=queued)
+    return min(left, POLL_SECONDS) if cancel is not None else left
 
 
 class _ThreadWaiter(Generic[S]):
@@ -40,7 +57,7 @@ class _ThreadWaiter(Generic[S]):
         self.ready = threading.Event()
         self.solver: S | None = None
 
-    def hand(self, solver: S, give_back: object) -> None:
+    def hand(self, solver: S, give_back: Callable[[S], None]) -> None:
         self.solver = solver
         self.ready.set()
 
@@ -54,15 +71,15 @@ class _TaskWaiter(Generic[S]):
         self.loop = loop
         self.future: asyncio.Future[S] = loop.create_future()
 
-    def hand(self, solver: S, give_back: object) -> None:
+    def hand(self, solver: S, give_back: Callable[[S], None]) -> None:
         try:
             self.loop.call_soon_threadsafe(self._resolve, solver, give_back)
         except RuntimeError:  # the loop is closed (shutdown): nobody will take it there
-            give_back(solver)  # type: ignore[operator]
+            give_back(solver)
 
-    def _resolve(self, solver: S, give_back: object) -> None:
+    def _resolve(self, solver: S, give_back: Callable[[S], None]) -> None:
         if self.future.done():  # the task stopped waiting meanwhile
-            give_back(solver)  # type: ignore[operator]
+            give_back(solver)
         else:
             self.future.set_result(solver)
 
@@ -143,15 +160,10 @@ class IdleSolvers(Generic[S]):
         if solver is not None:
             return solver
         try:
-            while True:
-                if cancel is not None and cancel.is_set():
-                    raise Cancelled
-                left = deadline - time.monotonic()
-                if left <= 0:
-                    raise TimeLimitExceeded(seconds, queued=True)
-                if waiter.ready.wait(min(left, POLL_SECONDS) if cancel is not None else left):
-                    assert waiter.solver is not None
-                    return waiter.solver
+            while not waiter.ready.wait(wait_slice(deadline, seconds, cancel, queued=True)):
+                pass
+            assert waiter.solver is not None
+            return waiter.solver
         except BaseException:
             if not self._leave(waiter):  # handed over meanwhile: give it back
                 waiter.ready.wait()
@@ -167,12 +179,9 @@ class IdleSolvers(Generic[S]):
             return solver
         try:
             while True:
-                if cancel is not None and cancel.is_set():
-                    raise Cancelled
-                left = deadline - time.monotonic()
-                if left <= 0:
-                    raise TimeLimitExceeded(seconds, queued=True)
-                done, _ = await asyncio.wait({waiter.future}, timeout=min(left, POLL_SECONDS) if cancel else left)
+                done, _ = await asyncio.wait(
+                    {waiter.future}, timeout=wait_slice(deadline, seconds, cancel, queued=True)
+                )
                 if done:
                     return waiter.future.result()
         except BaseException:
