@@ -52,7 +52,7 @@ from starlette.types import Receive
 from service.api.answer_memory import HOLD_KEY, AnswerHold
 from service.api.compute_worker import Outcome, rebuild_error, serve_calls
 from service.api.deps import SettingsDep
-from service.api.idle_solvers import IdleSolvers, wait_slice
+from service.api.idle_solvers import IdleSolvers, await_within, wait_slice
 from service.api.metrics import LANE_REQUESTS, SOLVER_SECONDS
 from service.errors import (
     ComputeCrashed,
@@ -287,24 +287,28 @@ class SolverPool:
         deadline: float,
         seconds: float,
         cancel: threading.Event | None = None,
+        gone: asyncio.Future[None] | None = None,
     ) -> tuple[T, float]:
         """:meth:`run` from a task on the event loop, which waits for its solver and its answer without a thread.
 
         The call is pickled and sent, and its answer read, on the loop: meant for small
         requests and answers (the light lane's designs).  Replacing a solver (after a time
-        limit, a cancellation or a death) runs in a worker thread.  Raises as :meth:`run`.
+        limit, a cancellation or a death) runs in a worker thread.  ``gone``, a future on
+        the loop resolved when the client leaves (with ``cancel`` set), wakes either wait at
+        once (:func:`service.api.idle_solvers.await_within`); without it ``cancel`` is looked
+        at every :data:`service.api.idle_solvers.POLL_SECONDS`.  Raises as :meth:`run`.
         """
         loop = asyncio.get_running_loop()
         if not self._started:
             await loop.run_in_executor(None, self.start)
         payload = _pickled(call, args)
         for attempt in (1, 2):
-            solver = await self._atake(loop, deadline, seconds, cancel)
+            solver = await self._atake(loop, deadline, seconds, cancel, gone)
             if self._sent(solver, payload, attempt, lambda dead: self._replace_later(loop, dead)):
                 break
         healthy = False
         try:
-            outcome = await self._answer(loop, solver, deadline, seconds, cancel)
+            outcome = await self._answer(loop, solver, deadline, seconds, cancel, gone)
             healthy = True
         finally:
             if healthy:
@@ -314,11 +318,16 @@ class SolverPool:
         return _value(outcome)
 
     async def _atake(
-        self, loop: asyncio.AbstractEventLoop, deadline: float, seconds: float, cancel: threading.Event | None
+        self,
+        loop: asyncio.AbstractEventLoop,
+        deadline: float,
+        seconds: float,
+        cancel: threading.Event | None,
+        gone: asyncio.Future[None] | None,
     ) -> _Solver:
         """:meth:`_take` on the loop: a dead solver found idle is replaced in a worker thread."""
         while True:
-            solver = await self._idle.atake(deadline, seconds, cancel)
+            solver = await self._idle.atake(deadline, seconds, cancel, gone)
             if self._usable(solver):
                 return solver
             self._replace_later(loop, solver)
@@ -330,6 +339,7 @@ class SolverPool:
         deadline: float,
         seconds: float,
         cancel: threading.Event | None,
+        gone: asyncio.Future[None] | None,
     ) -> Outcome:
         """The outcome on ``solver``'s pipe, awaited by the loop's reader callback (readable: an answer or EOF)."""
         readable: asyncio.Future[None] = loop.create_future()
@@ -341,10 +351,7 @@ class SolverPool:
 
         loop.add_reader(fd, ready)
         try:
-            while True:
-                done, _ = await asyncio.wait({readable}, timeout=wait_slice(deadline, seconds, cancel, queued=False))
-                if done:
-                    break
+            await await_within(readable, deadline, seconds, cancel, gone, queued=False)
         finally:
             loop.remove_reader(fd)
         try:
@@ -476,12 +483,14 @@ def solver_lanes(settings: Any) -> Lanes:
     )
 
 
-async def _watch_disconnect(receive: Receive, cancel: threading.Event) -> None:
-    """Set ``cancel`` when the client goes away (the ASGI server says ``http.disconnect``)."""
+async def _watch_disconnect(receive: Receive, cancel: threading.Event, gone: asyncio.Future[None]) -> None:
+    """Set ``cancel`` and resolve ``gone`` when the client goes away (the ASGI server says ``http.disconnect``)."""
     while True:
         message = await receive()
         if message["type"] == "http.disconnect":
             cancel.set()
+            if not gone.done():
+                gone.set_result(None)
             return
 
 
@@ -489,7 +498,10 @@ class Budget:
     """The compute time left to one request; every solver call of the request draws on it.
 
     ``cancel`` is set when the request's client goes away: the call running then is stopped
-    (its solver killed and replaced) and no further call starts.  With ``hold`` (the request's
+    (its solver killed and replaced) and no further call starts.  ``gone``, a future on the
+    request's loop resolved at the same moment, lets a call awaited on the loop
+    (:meth:`arun`) notice at once instead of looking at ``cancel`` every
+    :data:`service.api.idle_solvers.POLL_SECONDS`.  With ``hold`` (the request's
     :class:`service.api.answer_memory.AnswerHold`), the bytes its answer will take in this
     process are reserved before its first call, waiting for room within the same deadline.
     """
@@ -500,6 +512,7 @@ class Budget:
         *,
         seconds: float,
         cancel: threading.Event | None = None,
+        gone: asyncio.Future[None] | None = None,
         hold: AnswerHold | None = None,
     ) -> None:
         self.lanes = lanes if isinstance(lanes, Lanes) else Lanes(light=lanes, heavy=lanes, heavy_work=float("inf"))
@@ -507,6 +520,7 @@ class Budget:
         self.seconds = seconds
         self.deadline = time.monotonic() + seconds
         self.cancel = cancel
+        self.gone = gone
         self.hold = hold
 
     def hold_answer(self, estimate: MemoryEstimate | None) -> None:
@@ -574,7 +588,9 @@ class Budget:
             on_loop = self.hold.try_take(estimate.served)
         if not on_loop:
             return await anyio.to_thread.run_sync(self._run_routed, pool, lane, estimate, call, args, operation)
-        value, spent = await pool.arun(call, args, deadline=self.deadline, seconds=self.seconds, cancel=self.cancel)
+        value, spent = await pool.arun(
+            call, args, deadline=self.deadline, seconds=self.seconds, cancel=self.cancel, gone=self.gone
+        )
         self._record(operation, lane, spent)
         return value
 
@@ -583,14 +599,18 @@ async def get_budget(settings: SettingsDep, request: Request) -> AsyncIterator[B
     """A fresh budget of ``request_timeout_seconds`` over the two lanes, cancelled if the client leaves.
 
     The watch runs on the event loop (it only awaits the ASGI ``http.disconnect`` message);
-    the handler finds the budget cancelled, in its worker thread or, for a call awaited with
-    :meth:`Budget.arun`, on the loop.
+    the handler finds the budget cancelled: a worker thread looks at ``cancel`` every
+    :data:`service.api.idle_solvers.POLL_SECONDS`, and a call awaited on the loop
+    (:meth:`Budget.arun`) is woken at once by the ``gone`` future.
     """
     cancel = threading.Event()
-    watcher = asyncio.ensure_future(_watch_disconnect(request.receive, cancel))
+    gone: asyncio.Future[None] = asyncio.get_running_loop().create_future()
+    watcher = asyncio.ensure_future(_watch_disconnect(request.receive, cancel, gone))
     hold = request.scope.get(HOLD_KEY)  # released once the response is sent (AnswerMemoryMiddleware)
     try:
-        yield Budget(solver_lanes(settings), seconds=settings.request_timeout_seconds, cancel=cancel, hold=hold)
+        yield Budget(
+            solver_lanes(settings), seconds=settings.request_timeout_seconds, cancel=cancel, gone=gone, hold=hold
+        )
     finally:
         watcher.cancel()
 

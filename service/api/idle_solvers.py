@@ -20,11 +20,11 @@ import threading
 import time
 from collections import deque
 from collections.abc import Callable
-from typing import Generic, TypeVar
+from typing import Any, Generic, TypeVar
 
 from service.errors import Cancelled, HeavyLaneFull, TimeLimitExceeded
 
-__all__ = ["POLL_SECONDS", "IdleSolvers", "wait_slice"]
+__all__ = ["POLL_SECONDS", "IdleSolvers", "await_within", "wait_slice"]
 
 S = TypeVar("S")
 
@@ -32,20 +32,50 @@ S = TypeVar("S")
 POLL_SECONDS = 0.05
 
 
-def wait_slice(deadline: float, seconds: float, cancel: threading.Event | None, *, queued: bool) -> float:
+def wait_slice(
+    deadline: float, seconds: float, cancel: threading.Event | None, *, queued: bool, poll: bool = True
+) -> float:
     """Seconds to wait before looking again, for a caller waiting until ``deadline`` (``time.monotonic``).
 
-    At most :data:`POLL_SECONDS` when ``cancel`` may be set, so that a client that left is
-    noticed.  Raises :class:`Cancelled` when ``cancel`` is set, and
-    :class:`TimeLimitExceeded` (``seconds``: the request's time limit; ``queued``: whether it
-    was still waiting for a solver) when the deadline has passed.
+    At most :data:`POLL_SECONDS` when ``cancel`` may be set and ``poll`` is true, so that a
+    client that left is noticed (``poll=False``: the caller is woken some other way).  Raises
+    :class:`Cancelled` when ``cancel`` is set, and :class:`TimeLimitExceeded` (``seconds``:
+    the request's time limit; ``queued``: whether it was still waiting for a solver) when the
+    deadline has passed.
     """
     if cancel is not None and cancel.is_set():
         raise Cancelled
     left = deadline - time.monotonic()
     if left <= 0:
         raise TimeLimitExceeded(seconds, queued=queued)
-    return min(left, POLL_SECONDS) if cancel is not None else left
+    return min(left, POLL_SECONDS) if cancel is not None and poll else left
+
+
+async def await_within(
+    future: asyncio.Future[Any],
+    deadline: float,
+    seconds: float,
+    cancel: threading.Event | None,
+    gone: asyncio.Future[None] | None,
+    *,
+    queued: bool,
+) -> None:
+    """Wait on the loop until ``future`` is done, within ``deadline`` and while the client stays.
+
+    ``gone`` (a future on the same loop, resolved when the client leaves, at the moment
+    ``cancel`` is set) wakes the wait at once, so the wait needs no look every
+    :data:`POLL_SECONDS`; without it ``cancel`` is looked at each slice, as a thread does.
+    Raises as :func:`wait_slice`; ``future`` itself is neither awaited for its result nor
+    cancelled here.
+    """
+    waits: set[asyncio.Future[Any]] = {future} if gone is None else {future, gone}
+    while True:
+        slice_ = wait_slice(deadline, seconds, cancel, queued=queued, poll=gone is None)
+        await asyncio.wait(waits, timeout=slice_, return_when=asyncio.FIRST_COMPLETED)
+        if future.done():
+            return
+        if gone is not None and gone.done():
+            raise Cancelled
 
 
 class _ThreadWaiter(Generic[S]):
@@ -171,19 +201,24 @@ class IdleSolvers(Generic[S]):
                 self.put(waiter.solver)
             raise
 
-    async def atake(self, deadline: float, seconds: float, cancel: threading.Event | None = None) -> S:
-        """:meth:`take` for a task on the running event loop: it waits without a thread."""
+    async def atake(
+        self,
+        deadline: float,
+        seconds: float,
+        cancel: threading.Event | None = None,
+        gone: asyncio.Future[None] | None = None,
+    ) -> S:
+        """:meth:`take` for a task on the running event loop: it waits without a thread.
+
+        ``gone``: a future resolved when the client leaves (see :func:`await_within`).
+        """
         waiter: _TaskWaiter[S] = _TaskWaiter(asyncio.get_running_loop())
         solver = self._claim(waiter)
         if solver is not None:
             return solver
         try:
-            while True:
-                done, _ = await asyncio.wait(
-                    {waiter.future}, timeout=wait_slice(deadline, seconds, cancel, queued=True)
-                )
-                if done:
-                    return waiter.future.result()
+            await await_within(waiter.future, deadline, seconds, cancel, gone, queued=True)
+            return waiter.future.result()
         except BaseException:
             if not self._leave(waiter):  # handed over, or on its way (the loop resolves it)
                 if waiter.future.done() and not waiter.future.cancelled():

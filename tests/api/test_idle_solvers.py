@@ -14,8 +14,9 @@ import time
 
 import pytest
 
+from service.api import idle_solvers
 from service.api.answer_memory import AnswerHold, AnswerMemory
-from service.api.compute import SolverPool
+from service.api.compute import SolverPool, _watch_disconnect
 from service.api.idle_solvers import IdleSolvers
 from service.errors import Cancelled, ComputeDied, HeavyLaneFull, TimeLimitExceeded
 
@@ -175,3 +176,62 @@ def test_a_call_that_cannot_be_pickled_fails_alone_and_keeps_the_solver():
         assert pool._idle.qsize() == 1
     finally:
         pool.close()
+
+
+def test_a_client_that_leaves_wakes_a_wait_on_the_loop_without_polling(monkeypatch):
+    # With the look at ``cancel`` pushed out to an hour and ``cancel`` itself left unset, a wait
+    # that ignored ``gone`` would only end at its deadline; ``gone`` must end it in Cancelled
+    # before then, while waiting for a solver and while waiting for an answer.  (What is
+    # checked is the order of two events, the end of the wait and its deadline, not a speed.)
+    monkeypatch.setattr(idle_solvers, "POLL_SECONDS", 3600.0)
+    idle: IdleSolvers[str] = IdleSolvers()
+    pool = SolverPool(processes=1)
+
+    async def leave_when(gone: asyncio.Future[None], ready) -> None:
+        await _until(ready)
+        gone.set_result(None)
+
+    async def scenario() -> None:
+        loop = asyncio.get_running_loop()
+        cancel = threading.Event()
+        # waiting for a solver
+        gone = loop.create_future()
+        leaving = asyncio.ensure_future(leave_when(gone, lambda: idle.waiting == 1))
+        deadline = time.monotonic() + 10
+        with pytest.raises(Cancelled):
+            await idle.atake(deadline, 10, cancel, gone)
+        assert time.monotonic() < deadline
+        await leaving
+        assert idle.waiting == 0
+        # waiting for the answer of a call already running: stopped, its solver replaced
+        gone = loop.create_future()
+        leaving = asyncio.ensure_future(leave_when(gone, lambda: pool._idle.qsize() == 0))
+        deadline = time.monotonic() + 10
+        with pytest.raises(Cancelled):
+            await pool.arun(time.sleep, (60.0,), deadline=deadline, seconds=10, cancel=cancel, gone=gone)
+        assert time.monotonic() < deadline
+        await leaving
+        assert (await pool.arun(abs, (-9,), deadline=time.monotonic() + 30, seconds=30))[0] == 9
+        # an unresolved ``gone`` changes nothing for a call that answers
+        assert (await pool.arun(abs, (-10,), deadline=time.monotonic() + 30, seconds=30, gone=loop.create_future()))[
+            0
+        ] == 10
+
+    try:
+        asyncio.run(scenario())
+    finally:
+        pool.close()
+
+
+def test_the_disconnect_watch_sets_the_event_and_resolves_the_future():
+    messages = [{"type": "http.request", "body": b"", "more_body": False}, {"type": "http.disconnect"}]
+
+    async def receive() -> dict[str, object]:
+        return messages.pop(0)
+
+    async def scenario() -> tuple[bool, bool]:
+        cancel, gone = threading.Event(), asyncio.get_running_loop().create_future()
+        await _watch_disconnect(receive, cancel, gone)
+        return cancel.is_set(), gone.done()
+
+    assert asyncio.run(scenario()) == (True, True)
