@@ -92,9 +92,9 @@ def _disturbance_problems(
                 "disturbance 'per_output'",
             )
         ]
-    flags = integrating_outputs(plant.a, plant.c_measured)
     if given is None:
         return default_disturbances(plant.a, plant.c_measured), []
+    flags = integrating_outputs(plant.a, plant.c_measured)
     names = [s.name for s in plant.measured]
     if len(given) != len(names):
         which = "measured output" if plant.measured_own else "controlled output"

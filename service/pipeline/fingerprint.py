@@ -36,5 +36,7 @@ def design_fingerprint(request: BaseModel) -> str:
     """
     from service.schemas.design import DesignRequest
 
+    if type(request) is DesignRequest:  # already the design fields alone: nothing to rebuild
+        return fingerprint(request)
     fields = {name: getattr(request, name) for name in DesignRequest.model_fields}
     return fingerprint(DesignRequest.model_validate(fields))

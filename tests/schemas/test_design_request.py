@@ -10,10 +10,11 @@ from pydantic import ValidationError
 from service.errors import InvalidRequest
 from service.pipeline.caps import Caps
 from service.pipeline.design import check_design_request
-from service.pipeline.fingerprint import fingerprint
+from service.pipeline.fingerprint import design_fingerprint, fingerprint
 from service.pipeline.problems import validation_problems
 from service.schemas.design import DesignRequest
 from service.schemas.model import MODEL_KINDS
+from service.schemas.simulate import SimulateRequest
 
 
 def problems_of(body, caps=Caps()):
@@ -132,3 +133,13 @@ def test_fingerprint_is_canonical_and_sensitive(example):
     changed["model"]["a"][0][0] = 0.9200000000000001
     assert fingerprint(DesignRequest.model_validate(changed)) != base
     assert base.startswith("sha256:") and len(base) == len("sha256:") + 64
+
+
+def test_the_design_part_of_a_simulation_hashes_as_the_design_itself(example):
+    # A design request is hashed as it stands; a /simulate request by its design fields,
+    # rebuilt as a design request: both routes give one fingerprint for the same fields.
+    design = DesignRequest.model_validate(example)
+    run = SimulateRequest.model_validate({**copy.deepcopy(example), "scenario": {"steps": 5}})
+    assert design_fingerprint(design) == fingerprint(design)
+    assert design_fingerprint(run) == design_fingerprint(design)
+    assert fingerprint(run) != fingerprint(design)  # the scenario counts in the whole request's hash
