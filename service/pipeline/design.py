@@ -469,6 +469,7 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
         blocking=inputs.move_steps,
         zone_outputs=() if inputs.zones is None else inputs.zones.outputs,
         input_weight=inputs.input_weight,
+        input_span=su,
     )
     feedforward = None
     if scaled.b_disturbance is not None and sd is not None:

@@ -176,7 +176,9 @@ class MarginalModeReport(ResponseModel):
     )
     direction: list[FiniteFloat] | None = Field(
         default=None,
-        description="For 'free_input_direction': the direction, one entry per input in model order (largest entry 1).",
+        description="The input direction of a 'free_input_direction' mode (held along it, the inputs change no "
+        "weighted output at steady state) or of a 'zone_output' one (it moves only zone outputs): one entry per "
+        "input in model order, in the inputs' own units, largest entry 1.",
     )
 
 

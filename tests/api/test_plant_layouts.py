@@ -10,6 +10,7 @@ from __future__ import annotations
 import copy
 
 import numpy as np
+import scipy.linalg
 
 # Two compositions, three inputs (reflux, boil-up, feed preheat): one spare direction.
 COLUMN = {
@@ -39,6 +40,39 @@ def test_a_spare_input_is_a_named_marginal_mode_not_an_unstable_loop(client):
     assert "unstable_closed_loop" not in codes and codes.count("free_input_direction") == 1
     advice = next(w for w in body["warnings"] if w["code"] == "free_input_direction")["message"]
     assert "weights.input" in advice and "raise the move weights" not in advice
+
+
+def test_the_spare_direction_is_in_the_inputs_own_units_whatever_their_spans(client):
+    # The same column in engineering units with spans (reflux in t/h, boil-up in MW, preheat in
+    # kW, invented), and written without spans with the weights divided by the spans squared:
+    # one controller, so one spare direction.  Reference: the null space of the engineering
+    # steady-state gain C (I - A)^-1 B (numpy, scipy.linalg.null_space), largest entry 1.
+    spans_in, spans_out = np.array([2.0, 20.0, 50.0]), np.array([0.05, 0.02])
+    with_spans = copy.deepcopy(COLUMN)
+    for signal, span in zip(with_spans["model"]["inputs"], spans_in, strict=True):
+        signal["span"] = float(span)
+    for signal, span in zip(with_spans["model"]["outputs"], spans_out, strict=True):
+        signal["span"] = float(span)
+    without = copy.deepcopy(COLUMN)
+    without["weights"] = {
+        "output": (np.array(COLUMN["weights"]["output"]) / spans_out**2).tolist(),
+        "move": (np.array(COLUMN["weights"]["move"]) / spans_in**2).tolist(),
+    }
+    a, b, c = (np.array(COLUMN["model"][k]) for k in ("a", "b", "c"))
+    null = scipy.linalg.null_space(c @ np.linalg.solve(np.eye(2) - a, b))[:, 0]
+    null = null / null[np.argmax(np.abs(null))]
+    directions = []
+    for body in (with_spans, without):
+        answer = client.post("/design", json=body).json()
+        (mode,) = answer["closed_loop"]["marginal_modes"]
+        assert mode["cause"] == "free_input_direction"
+        directions.append(np.array(mode["direction"]))
+        gain = np.array(answer["plant"]["steady_state_gain"]["values"])
+        assert np.abs(gain @ directions[-1]).max() < 1e-9 * np.abs(gain).max()
+        advice = next(w for w in answer["warnings"] if w["code"] == "free_input_direction")["message"]
+        assert f"{null[0]:+.3g} reflux" in advice
+    assert np.allclose(directions[0], null, rtol=1e-9, atol=1e-12)
+    assert np.allclose(directions[1], null, rtol=1e-9, atol=1e-12)
 
 
 def test_a_spare_input_run_stays_bounded_and_is_not_called_unstable(client):

@@ -28,7 +28,7 @@ from service.solver.design.gain import (
     weighted_moves,
 )
 from service.solver.design.input_target import InputPenalty, input_penalty, input_target_gain, with_input_target
-from service.solver.design.marginal import MARGINAL_TOLERANCE, marginal_modes
+from service.solver.design.marginal import MARGINAL_TOLERANCE, in_input_units, marginal_modes
 from service.solver.design.prediction import Prediction, prediction_matrices
 from service.solver.design.terminal import (
     TerminalKind,
@@ -120,6 +120,7 @@ def design_controller(
     blocking: Sequence[int] | None = None,
     zone_outputs: Sequence[int] = (),
     input_weight: ArrayLike | None = None,
+    input_span: ArrayLike | None = None,
 ) -> ControllerDesign:
     """Design the unconstrained predictive controller of the design notes.
 
@@ -157,6 +158,11 @@ def design_controller(
         ``S`` on ``u - u_target`` over the control horizon's inputs
         (:mod:`service.solver.design.input_target`).  Default none; an all-zero weight is none.
         Not with the Riccati terminal weight.
+    input_span : array_like, shape (m,), optional
+        When ``b`` is of span-scaled inputs (``u / span``): the spans, so that the input
+        directions of the marginal modes, and the warnings that quote them, are in the inputs'
+        own units (:func:`service.solver.design.marginal.in_input_units`).  Everything else
+        stays in the scaled units given.  Default: the units given.
 
     Returns
     -------
@@ -247,6 +253,8 @@ def design_controller(
             zone_outputs=zone_outputs,
         )
     )
+    if input_span is not None:
+        marginal = in_input_units(marginal, np.asarray(input_span, dtype=float))
     loop = dataclasses.replace(loop, marginal=marginal, stable=loop.stable and not marginal)
     # the plant modes outside the circle no input moves: unstable whatever the tuning
     fixed = uncontrollable_modes(a_, b_, smallest_modulus=1.0 + MARGINAL_TOLERANCE) if loop.unstable else ()

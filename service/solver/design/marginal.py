@@ -60,6 +60,7 @@ __all__ = [
     "RANK_TOLERANCE",
     "MarginalMode",
     "describe_signals",
+    "in_input_units",
     "marginal_mode_warnings",
     "marginal_modes",
     "on_unit_circle",
@@ -103,7 +104,9 @@ class MarginalMode:
         input no output sees; the outputs with zero weight that see the mode; the states
         that carry a plant mode.
     direction : ndarray, shape (m,), or None
-        For ``free_input_direction``: the input direction, largest entry 1.
+        For ``free_input_direction`` (and a ``zone_output`` input direction): the input
+        direction, largest entry 1, in the units of the inputs the design was given (see
+        :func:`in_input_units` for a design on span-scaled inputs).
     """
 
     pole: complex
@@ -112,6 +115,34 @@ class MarginalMode:
     outputs: tuple[int, ...] = ()
     states: tuple[int, ...] = ()
     direction: NDArray[np.float64] | None = None
+
+
+def in_input_units(modes: Sequence[MarginalMode], input_span: NDArray[np.float64]) -> tuple[MarginalMode, ...]:
+    """The modes with each input direction taken from span-scaled inputs to the inputs' own units.
+
+    Parameters
+    ----------
+    modes : sequence of MarginalMode
+        Found on a plant whose inputs are scaled, ``u_s = u / span`` (``B_s = B diag(span)``).
+    input_span : ndarray, shape (m,)
+        The inputs' spans (engineering units per scaled unit), positive.
+
+    Returns
+    -------
+    tuple of MarginalMode
+        A direction ``v_s`` of the scaled inputs is ``v = diag(span) v_s`` of the inputs
+        themselves (``B v = B_s v_s``), divided again by its entry of largest modulus so that
+        entry is 1.  The inputs a mode names stay those decided on ``v_s``, where the spans
+        make the entries comparable whatever the units.  Modes without a direction are kept.
+    """
+    out = []
+    for mode in modes:
+        if mode.direction is None:
+            out.append(mode)
+            continue
+        own = input_span * mode.direction
+        out.append(dataclasses.replace(mode, direction=own / own[np.argmax(np.abs(own))]))
+    return tuple(out)
 
 
 def on_unit_circle(pole: complex, *, tolerance: float = MARGINAL_TOLERANCE) -> bool:
