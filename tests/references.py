@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg
 
-__all__ = ["incremental_lqr", "incremental_lqr_gain", "incremental_system"]
+__all__ = ["incremental_lqr", "incremental_lqr_gain", "incremental_system", "receding_horizon_radius"]
 
 
 def incremental_system(a, b, c):
@@ -51,3 +51,39 @@ def incremental_lqr(a, b, c, q, r):
 def incremental_lqr_gain(a, b, c, q, r):
     """The gain of :func:`incremental_lqr` alone."""
     return incremental_lqr(a, b, c, q, r)[0]
+
+
+def receding_horizon_radius(a, b, c, q, r, *, prediction, control):
+    """Spectral radius of the unconstrained receding-horizon loop, built from scratch.
+
+    The finite-horizon least-squares problem on the incremental system
+    (:func:`incremental_system`): ``min sum_{i=1..Hp} |z(k+i)|^2_Q + sum_{j<Hu} |du(k+j)|^2_R``
+    with ``du`` zero after ``Hu`` moves, predictions by plain recursion of the state
+    equation, solved by ``numpy.linalg.lstsq`` on the stacked weighted residuals (the textbook
+    least-squares form of finite-horizon linear-quadratic control, common practice); the
+    first move ``du = -K xi`` closes the loop ``xi(k+1) = (Ai - Bi K) xi``, whose largest
+    eigenvalue modulus (``numpy.linalg.eigvals``) is returned.
+    """
+    ai, bi, ci = incremental_system(a, b, c)
+    size, m = bi.shape
+    wq, wr = _psd_root(q), _psd_root(r)
+    after = [bi]  # after[s]: the state s + 1 steps after a unit move
+    for _ in range(prediction - 1):
+        after.append(ai @ after[-1])
+    free, forced, power = [], [], np.eye(size)
+    for i in range(1, prediction + 1):  # z(k+i); the move du(k+j) acts from step j + 1 on
+        power = ai @ power
+        free.append(wq @ ci @ power)
+        row = [wq @ ci @ after[i - j - 1] if i > j else np.zeros((ci.shape[0], m)) for j in range(control)]
+        forced.append(np.hstack(row))
+    g = np.vstack([*forced, np.kron(np.eye(control), wr)])
+    f = np.vstack([*free, np.zeros((control * m, size))])
+    moves = np.linalg.lstsq(g, -f, rcond=None)[0]  # du over the horizon = moves @ xi
+    gain = -moves[:m]
+    return float(np.abs(np.linalg.eigvals(ai - bi @ gain)).max())
+
+
+def _psd_root(weight):
+    """The symmetric square root of a positive-semidefinite weight, by ``numpy.linalg.eigh``."""
+    values, vectors = np.linalg.eigh(np.atleast_2d(weight))
+    return vectors @ np.diag(np.sqrt(np.clip(values, 0.0, None))) @ vectors.T

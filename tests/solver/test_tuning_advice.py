@@ -23,6 +23,7 @@ from service.solver.evaluation.advice import (
 )
 from service.solver.evaluation.frequency import design_frequency_analysis, frequency_analysis
 from service.solver.models.sampling import sample_zero_order_hold
+from tests.references import receding_horizon_radius
 
 # Two inputs acting almost alike on two outputs: G'QG is nearly singular, so with tiny move
 # weights the Hessian is ill-conditioned (invented example).
@@ -274,6 +275,59 @@ def test_an_unstable_loop_of_a_controllable_plant_keeps_the_tuning_advice():
     assert d.loop.unstable
     message = next(w.message for w in d.warnings if w.code == "unstable_closed_loop")
     assert "Lengthen the prediction horizon" in message and "no tuning" not in message
+
+
+def _unstable_message(a, b, c, q, r, *, prediction, control, **more):
+    d = design_controller(a, b, c, output_weight=q, move_weight=r, prediction=prediction, control=control, **more)
+    assert d.loop.unstable
+    return next(w.message for w in d.warnings if w.code == "unstable_closed_loop")
+
+
+def test_an_unstable_plant_is_not_advised_heavier_move_weights():
+    # An invented exothermic reactor: temperature pole 1.04 per sample (open-loop unstable) and
+    # a stable jacket, one coolant input.  With short horizons the loop is unstable; heavier move
+    # weights bring a finite-horizon law nearer to doing nothing, so they must not be advised.
+    # Each claim of the advice is checked on the loop built from scratch
+    # (tests/references.py: receding_horizon_radius, least squares and numpy's eigenvalues).
+    a = np.array([[1.04, 0.1], [0.0, 0.8]])
+    b, c = np.array([[0.0], [0.5]]), np.array([[1.0, 0.0]])
+    q, r = np.eye(1), np.array([[50.0]])
+    assert receding_horizon_radius(a, b, c, q, r, prediction=3, control=1) > 1.0
+    message = _unstable_message(a, b, c, [1.0], [50.0], prediction=3, control=1)
+    assert "raise the move weights" not in message and "no tuning" not in message
+    assert "lengthen the prediction and control horizons" in message and "riccati" in message
+    radii = [receding_horizon_radius(a, b, c, q, r * k, prediction=3, control=1) for k in (1.0, 10.0, 100.0)]
+    assert radii[0] < radii[1] < radii[2] and radii[2] > 1.0  # heavier moves: nearer the open loop
+    assert receding_horizon_radius(a, b, c, q, r, prediction=40, control=5) < 1.0  # longer horizons help
+    riccati = design_controller(
+        a, b, c, output_weight=[1.0], move_weight=[50.0], prediction=3, control=3, terminal="riccati"
+    )
+    assert riccati.loop.stable
+    # an open-loop stable plant unstable through its tuning keeps the advice of heavier moves
+    # (test_an_unstable_loop_of_a_controllable_plant_keeps_the_tuning_advice)
+
+
+def test_an_unstable_mode_no_weighted_output_sees_is_not_blamed_on_horizons_or_move_weights():
+    # A mode at 1.03 that no controlled output shows (C has no column on it): the free response
+    # of the weighted outputs from it is zero, so the law never acts on it and it stays a
+    # closed-loop pole for every horizon and move weight (the loop built from scratch agrees).
+    a = np.diag([0.9, 0.7, 1.03])
+    b = np.array([[1.0, 0.2], [0.1, 1.0], [0.5, 0.5]])
+    c = np.array([[1.0, 0.0, 0.0], [0.0, 1.0, 0.0]])
+    for prediction, control, move in ((4, 2, 0.1), (100, 10, 0.1), (40, 5, 1000.0)):
+        radius = receding_horizon_radius(a, b, c, np.eye(2), move * np.eye(2), prediction=prediction, control=control)
+        assert radius == pytest.approx(1.03, rel=1e-12)
+        message = _unstable_message(a, b, c, [1.0, 1.0], [move, move], prediction=prediction, control=control)
+        assert "no controlled output shows" in message and "no tuning can stabilize" in message
+        assert "raise the move weights" not in message and "Lengthen" not in message
+    # Shown only by an output of weight 0: giving that output a weight is the fix, and it works.
+    c2 = np.array([[1.0, 0.0, 0.0], [0.0, 1.0, 1.0]])
+    message = _unstable_message(a, b, c2, [1.0, 0.0], [0.1, 0.1], prediction=40, control=5)
+    assert "only outputs with weight 0 see" in message and "no tuning" not in message
+    assert receding_horizon_radius(a, b, c2, np.diag([1.0, 0.0]), 0.1 * np.eye(2), prediction=40, control=5) == (
+        pytest.approx(1.03, rel=1e-12)
+    )
+    assert receding_horizon_radius(a, b, c2, np.eye(2), 0.1 * np.eye(2), prediction=40, control=5) < 1.0
 
 
 def test_zero_directions_by_inverse_iteration_equal_the_svds():

@@ -146,6 +146,10 @@ def design_warnings(
     output_labels: Sequence[str] | None = None,
     state_labels: Sequence[str] | None = None,
     fixed_poles: Sequence[complex] = (),
+    hidden_poles: Sequence[complex] = (),
+    unweighted_poles: Sequence[complex] = (),
+    plant_unstable: int = 0,
+    terminal_possible: bool = False,
 ) -> list[Diagnostic]:
     """Return the warnings of a design that solved but may not behave.
 
@@ -162,6 +166,18 @@ def design_warnings(
         :func:`service.solver.models.modes.uncontrollable_modes`): they stay closed-loop
         poles whatever the tuning, so ``unstable_closed_loop`` then says that no tuning
         fixes them instead of advising a longer horizon or heavier move weights.
+    hidden_poles, unweighted_poles : sequence of complex, optional
+        Plant modes outside the unit circle that no controlled output shows, and that no
+        weighted output sees (the hidden ones among them): the law never acts on them, so
+        they too stay closed-loop poles whatever the horizons and move weights.
+    plant_unstable : int, optional
+        How many open-loop poles lie outside the unit circle.  When some of them are neither
+        fixed, hidden nor unweighted, heavier move weights are not advised: without a
+        terminal weight they bring a finite-horizon law nearer to doing nothing, that is to
+        the unstable open loop.
+    terminal_possible : bool, optional
+        The design could take the Riccati terminal weight (none yet, no input targets), so the
+        advice for an unstable plant may suggest it.
 
     Returns
     -------
@@ -209,22 +225,17 @@ def design_warnings(
         )
     if loop.unstable:
         poles_outside = loop.poles[moduli > 1.0 + MARGINAL_TOLERANCE]
-        fixed = _matched(poles_outside, np.asarray(fixed_poles, dtype=complex))
-        tuned = poles_outside.size - fixed
-        if tuned == 0:
-            advice = (
-                "Every one is a plant mode that no input can move (see uncontrollable_mode), so no "
-                "tuning can stabilize the loop: change the model (its realization, or what the inputs "
-                "reach) or stabilize that mode outside this controller."
-            )
-        elif fixed:
-            advice = (
-                f"{fixed} of them are plant modes that no input can move (see uncontrollable_mode; no "
-                f"tuning moves them); for the other {tuned}, lengthen the prediction horizon or raise the "
-                f"move weights."
-            )
-        else:
-            advice = "Lengthen the prediction horizon, raise the move weights, or check the model."
+        fixed, left = _matched(poles_outside, np.asarray(fixed_poles, dtype=complex))
+        hidden, left = _matched(left, np.asarray(hidden_poles, dtype=complex))
+        unweighted, left = _matched(left, np.asarray(unweighted_poles, dtype=complex))
+        advice = _unstable_advice(
+            fixed=fixed,
+            hidden=hidden,
+            unweighted=unweighted,
+            tuned=left.size,
+            plant_moved=plant_unstable - fixed - hidden - unweighted,
+            terminal_possible=terminal_possible,
+        )
         found.append(
             Diagnostic(
                 "unstable_closed_loop",
@@ -235,13 +246,72 @@ def design_warnings(
     return found
 
 
-def _matched(poles: NDArray[np.complex128], fixed: NDArray[np.complex128]) -> int:
-    """How many of ``poles`` equal one of ``fixed`` (each used once), to ``1e-6`` relative."""
+def _matched(poles: NDArray[np.complex128], fixed: NDArray[np.complex128]) -> tuple[int, NDArray[np.complex128]]:
+    """How many of ``poles`` equal one of ``fixed`` (each used once), to ``1e-6`` relative, and the others."""
     left = list(fixed)
     count = 0
+    others = []
     for pole in poles:
         gaps = [abs(pole - f) for f in left]
         if gaps and min(gaps) <= 1e-6 * max(1.0, abs(pole)):
             left.pop(int(np.argmin(gaps)))
             count += 1
-    return count
+        else:
+            others.append(pole)
+    return count, np.asarray(others, dtype=complex)
+
+
+def _unstable_advice(
+    *, fixed: int, hidden: int, unweighted: int, tuned: int, plant_moved: int, terminal_possible: bool
+) -> str:
+    """What to do about the poles outside the circle, by kind (see :func:`design_warnings`)."""
+    total = fixed + hidden + unweighted + tuned
+
+    def which(count: int) -> str:
+        if count == total:
+            return "it is a plant mode" if count == 1 else f"all {count} are plant modes"
+        return f"{count} of them {'is a plant mode' if count == 1 else 'are plant modes'}"
+
+    def them(count: int) -> str:
+        return "it" if count == 1 else "them"
+
+    parts = []
+    if fixed:
+        parts.append(
+            f"{which(fixed)} that no input can move (see uncontrollable_mode): change the model (its "
+            f"realization, or what the inputs reach) or stabilize {them(fixed)} outside this controller"
+        )
+    if hidden:
+        parts.append(
+            f"{which(hidden)} that no controlled output shows, so the controller never acts on {them(hidden)}: "
+            f"change the model, or control {them(hidden)} through an output that shows {them(hidden)}"
+        )
+    if unweighted:
+        parts.append(
+            f"{which(unweighted)} that only outputs with weight 0 see, so the controller never acts on "
+            f"{them(unweighted)}: give a weight to an output that sees {them(unweighted)}"
+        )
+    if tuned:
+        if plant_moved > 0:
+            terminal = (
+                ", or put the Riccati terminal weight on the last predicted step (weights.terminal "
+                "'riccati'; with the control horizon equal to the prediction horizon it gives the "
+                "infinite-horizon law)"
+                if terminal_possible
+                else ""
+            )
+            fix = (
+                f"the plant itself is unstable, so lengthen the prediction and control horizons{terminal}; "
+                f"raising the move weights is no remedy here, since it brings the loop nearer to the "
+                f"unstable open loop"
+            )
+        else:
+            fix = "lengthen the prediction horizon, raise the move weights, or check the model"
+        parts.append(fix if not parts else f"for the other {tuned}, {fix}")
+    text = "; ".join(parts)
+    text = text[0].upper() + text[1:] + "."
+    if tuned:
+        return text
+    if unweighted:
+        return f"No horizon or move weight moves {'this pole' if total == 1 else 'these poles'}. {text}"
+    return f"No horizon or move weight moves {'this pole' if total == 1 else 'these poles'}, so no tuning can stabilize the loop. {text}"

@@ -12,8 +12,10 @@ from __future__ import annotations
 import dataclasses
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
+import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.blocking import blocked_prediction, check_blocking, select_moves
@@ -256,15 +258,15 @@ def design_controller(
     if input_span is not None:
         marginal = in_input_units(marginal, np.asarray(input_span, dtype=float))
     loop = dataclasses.replace(loop, marginal=marginal, stable=loop.stable and not marginal)
-    # the plant modes outside the circle no input moves: unstable whatever the tuning
-    fixed = uncontrollable_modes(a_, b_, smallest_modulus=1.0 + MARGINAL_TOLERANCE) if loop.unstable else ()
+    outside = _unstable_plant_modes(a_, b_, c_, root) if loop.unstable else {}
     warnings = design_warnings(
         condition_number=hessian.scaled_condition_number,
         loop=loop,
         input_labels=input_labels,
         output_labels=output_labels,
         state_labels=state_labels,
-        fixed_poles=tuple(complex(z) for z in fixed),
+        terminal_possible=term is None and penalty is None,
+        **outside,
     )
     return ControllerDesign(
         prediction=pred,
@@ -282,3 +284,29 @@ def design_controller(
         input_penalty=penalty,
         input_target_gain=kt0,
     )
+
+
+def _unstable_plant_modes(
+    a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64], output_root: NDArray[np.float64]
+) -> dict[str, Any]:
+    """The plant's modes outside the unit circle, by what a tuning can do about them.
+
+    Returns the keywords of :func:`service.solver.design.closed_loop.design_warnings`:
+    ``plant_unstable`` (how many eigenvalues of ``A`` lie outside ``1 + MARGINAL_TOLERANCE``),
+    ``fixed_poles`` (those no input moves: PBH test on ``(A, B)``), ``hidden_poles`` (those
+    no controlled output shows: the dual test on ``(A', C')``) and ``unweighted_poles``
+    (those no weighted output sees: on ``(A', (W C)')``, ``W' W = Q``; the hidden ones
+    among them).  A right eigenvector ``v`` with ``W C v = 0`` has a zero weighted free
+    response, so ``Kx v = 0`` and ``[v; 0]`` is an eigenvector of the closed loop: no horizon
+    or weight moves it (the argument of :mod:`service.solver.design.marginal`, off the circle).
+    """
+    smallest = 1.0 + MARGINAL_TOLERANCE
+    values = scipy.linalg.eigvals(a, check_finite=False) if a.size else np.zeros(0, dtype=complex)
+    return {
+        "plant_unstable": int(np.count_nonzero(np.abs(values) > smallest)),
+        "fixed_poles": tuple(complex(z) for z in uncontrollable_modes(a, b, smallest_modulus=smallest)),
+        "hidden_poles": tuple(complex(z) for z in uncontrollable_modes(a.T, c.T, smallest_modulus=smallest)),
+        "unweighted_poles": tuple(
+            complex(z) for z in uncontrollable_modes(a.T, (output_root @ c).T, smallest_modulus=smallest)
+        ),
+    }
