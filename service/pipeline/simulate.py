@@ -59,6 +59,7 @@ from service.schemas.simulate import (
     TrueLoopReport,
     WholeLoopReport,
 )
+from service.solver.design.marginal import MARGINAL_TOLERANCE
 from service.solver.estimation.estimator import Estimator, unmeasured_outputs
 from service.solver.estimation.loop import TrueLoop, WholeLoop, control_loop, true_loop, whole_loop
 from service.solver.evaluation.divergence import DIVERGENCE_LEVEL, divergence_onset
@@ -373,13 +374,23 @@ def _warnings(inputs: SimulationInputs, outcome: SimulationOutcome) -> list[Warn
             )
         )
     if outcome.true is not None and outcome.true.unstable:
+        # Detuning robustifies a loop around a stable plant; around an unstable one, heavier move
+        # weights bring a finite-horizon law nearer to the unstable open loop (see
+        # service.solver.design.closed_loop.design_warnings).
+        plant_unstable = bool(np.any(np.abs(outcome.design.properties.poles) > 1.0 + MARGINAL_TOLERANCE))
+        remedy = (
+            "or, the model being open-loop unstable, lengthen the horizons (raising the move weights would "
+            "bring the loop nearer to the unstable open loop)"
+            if plant_unstable
+            else "or detune (raise the move weights)"
+        )
         out.append(
             WarningReport(
                 code="true_loop_unstable",
                 message=f"On the true plant the loop of this controller and estimator is unstable (spectral "
                 f"radius {outcome.true.spectral_radius:.6g}), although they were designed on the model: the "
                 f"tuning does not tolerate this model error. Check the model against the true plant (gain "
-                f"signs, dead times), or detune (raise the move weights) and check analysis.model_error.",
+                f"signs, dead times), {remedy}, and check analysis.model_error.",
             )
         )
     if outcome.diverging is not None and outcome.rows == inputs.steps:

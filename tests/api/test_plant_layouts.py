@@ -164,6 +164,35 @@ def test_a_true_plant_with_a_flipped_gain_sign_is_flagged_as_diverging(client):
     assert outputs[-1].max() > 1e3 or np.abs(np.array(body["inputs"][body["diverged_at"]])).max() > 1e3
 
 
+def test_the_true_loop_advice_detunes_only_around_a_stable_model(client):
+    # Detuning (heavier move weights) is the usual remedy for model error around a stable plant
+    # (common practice); around an open-loop unstable one it brings a finite-horizon law nearer
+    # to the unstable open loop, so it is not advised there.  An invented exothermic reactor
+    # (temperature pole 1.04 per sample) with its coolant's sign flipped on the true plant.
+    stable = client.post("/simulate", json=_vessel([[-1.0, 1.0]] * 4)).json()
+    advice = next(w["message"] for w in stable["warnings"] if w["code"] == "true_loop_unstable")
+    assert "raise the move weights" in advice
+    reactor = {
+        "model": {
+            "kind": "state_space",
+            "a": [[1.04, 0.1], [0.0, 0.8]],
+            "b": [[0.0], [0.5]],
+            "c": [[1.0, 0.0]],
+            "sample_time": 1.0,
+        },
+        "horizons": {"prediction": 40, "control": 5},
+        "weights": {"output": [1.0], "move": [1.0]},
+    }
+    run = copy.deepcopy(reactor)
+    true = copy.deepcopy(reactor["model"])
+    true["b"] = [[0.0], [-0.5]]
+    run["scenario"] = {"steps": 60, "true_plant": true}
+    body = client.post("/simulate", json=run).json()
+    assert body["whole_loop"]["stable"] is True and body["true_loop"]["stable"] is False
+    advice = next(w["message"] for w in body["warnings"] if w["code"] == "true_loop_unstable")
+    assert "raise the move weights" not in advice and "lengthen the horizons" in advice
+
+
 def test_the_true_loop_equals_the_whole_loop_on_the_model_and_is_stable_with_20_percent_gain_error(client):
     same = client.post("/simulate", json=_vessel([[1.0, 1.0]] * 4)).json()
     poles = np.sort_complex(np.array([complex(p["real"], p["imag"]) for p in same["true_loop"]["poles"]]))
