@@ -248,6 +248,16 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
         raise InvalidRequest(
             [FieldProblem(pointer("data"), f"{estimation} samples to fit; at least {MIN_SAMPLES} are needed")]
         )
+    if request.correlation_lags >= estimation:
+        raise InvalidRequest(
+            [
+                FieldProblem(
+                    pointer("correlation_lags"),
+                    f"{request.correlation_lags} lags for {estimation} samples to fit: the residual checks need "
+                    f"fewer lags than samples (a quarter of the samples or fewer is common practice)",
+                )
+            ]
+        )
     notes: list[ColumnNote] = []
     warnings: list[WarningReport] = []
     columns = np.zeros((n, len(column_tags)))

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import copy
 
+import numpy as np
 import pytest
 
 from service.pipeline.examples import load_example
@@ -132,3 +133,36 @@ def test_bad_data_names_the_field(client_module) -> None:
     text = copy.deepcopy(request)
     text["data"]["steam_valve"][3] = "open"
     assert_problem(client_module.post("/identify", json=text), 422, "invalid-request")
+
+
+def test_more_correlation_lags_than_samples_to_fit_is_a_422_not_a_500(client_module) -> None:
+    # A residual correlation at lag L needs more than L samples: with 60 samples to fit, 60
+    # lags and more are refused naming the field and 59 are answered, for a process model and a
+    # subspace fit alike (found in an independent audit: more lags than samples was a 500).
+    # Invented data: a first-order heater, y(k+1) = 0.8 y(k) + 0.5 u(k), from rest, a seeded random
+    # binary input, small noise.
+    rng = np.random.default_rng(5)
+    u = np.repeat(rng.choice([-1.0, 1.0], size=12), 5)
+    u[:5] = 0.0  # the record starts at rest
+    y = np.zeros(60)
+    for k in range(59):
+        y[k + 1] = 0.8 * y[k] + 0.5 * u[k]
+    y = y + 0.01 * rng.standard_normal(60)
+    request = {
+        "sample_time": 1.0,
+        "inputs": ["heater"],
+        "outputs": ["outlet_temperature"],
+        "max_dead_time": 5.0,
+        "settling_time": 20.0,
+        "data": {"heater": (50.0 + u).tolist(), "outlet_temperature": (80.0 + y).tolist()},
+    }
+    for structure in ("first_order_dead_time", "subspace"):
+        body = {**copy.deepcopy(request), "structure": structure}
+        for lags in (60, 200):
+            body["correlation_lags"] = lags
+            found = assert_problem(client_module.post("/identify", json=body), 422, "invalid-request")
+            assert [e["pointer"] for e in found["errors"]] == ["/correlation_lags"]
+            assert "60 samples to fit" in found["errors"][0]["detail"]
+        body["correlation_lags"] = 59
+        answer = client_module.post("/identify", json=body)
+        assert answer.status_code == 200, answer.text
