@@ -7,7 +7,7 @@ the JSON carries them in full.
 
 from __future__ import annotations
 
-from service.schemas.compare import CompareResponse, LoopRobustnessChange
+from service.schemas.compare import CompareResponse, LoopRobustnessChange, SideReport
 from service.schemas.design import ADVISORY
 
 __all__ = ["HIGH_PEAK_SENSITIVITY", "compare_markdown", "summary"]
@@ -79,16 +79,38 @@ def _robustness_sentences(answer: CompareResponse) -> list[str]:
     return out
 
 
+_STABLE_CELL = {"stable": "yes", "marginal": "no (marginal)", "unstable": "NO (unstable)"}
+
+
+def _verdict(side: SideReport) -> str:
+    """``"stable"``, ``"marginal"`` (not stable, no pole outside the circle) or ``"unstable"``, as /design says it.
+
+    /design's ``closed_loop.stable`` is false for both of the last two; only a pole outside the
+    circle (beyond its tolerance) brings the ``unstable_closed_loop`` warning.
+    """
+    if side.stable:
+        return "stable"
+    return "unstable" if "unstable_closed_loop" in side.warnings else "marginal"
+
+
 def summary(answer: CompareResponse, *, same_model: bool) -> list[str]:
     """Plain-language sentences for the change record, most important first."""
     before, after = answer.in_service, answer.proposed
     out: list[str] = []
     if before.fingerprint == after.fingerprint:
         out.append("The two requests are the same design (equal fingerprints): nothing changes.")
-    if not after.stable:
+    verdicts = _verdict(before), _verdict(after)
+    if verdicts[1] == "unstable":
         out.append("The proposed design's closed loop is UNSTABLE: do not put it in service.")
-    elif not before.stable:
-        out.append("The proposed design's closed loop is stable; the one in service is not.")
+    elif verdicts[1] == "marginal":
+        out.append(
+            "The proposed design's closed loop is marginal, not unstable: a pole sits on the unit circle "
+            "(its warnings name the cause and the fix; /design lists it under closed_loop.marginal_modes), "
+            "so the loop does not settle along that mode"
+            + (" (the one in service is stable)." if verdicts[0] == "stable" else ".")
+        )
+    elif verdicts[0] != "stable":
+        out.append(f"The proposed design's closed loop is stable; the one in service is {verdicts[0]}.")
     if any(answer.scenario.diverged):
         which = " and ".join(n for n, d in zip(("in service", "proposed"), answer.scenario.diverged, strict=True) if d)
         out.append(f"The scenario run blew up with the design {which}.")
@@ -143,7 +165,7 @@ def compare_markdown(answer: CompareResponse, *, largest: int = 20) -> str:
         "",
         _row("", "in service", "proposed"),
         _row("---", "---", "---"),
-        _row("stable", "yes" if b.stable else "NO", "yes" if a.stable else "NO"),
+        _row("stable", *(_STABLE_CELL[_verdict(side)] for side in (b, a))),
         _row("dominant pole modulus", f"{b.dominant_pole.modulus:.4g}", f"{a.dominant_pole.modulus:.4g}"),
         _row("dominant time constant", _g(b.dominant_pole.time_constant), _g(a.dominant_pole.time_constant)),
         _row("Hessian condition number", f"{b.hessian_condition_number:.3g}", f"{a.hessian_condition_number:.3g}"),
