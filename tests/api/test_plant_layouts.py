@@ -75,6 +75,52 @@ def test_the_spare_direction_is_in_the_inputs_own_units_whatever_their_spans(cli
     assert np.allclose(directions[1], null, rtol=1e-9, atol=1e-12)
 
 
+def test_a_spare_input_with_dead_times_and_wide_spans_is_still_a_free_direction(client):
+    # An invented reactor: two outputs, three inputs of very different sizes (coolant in m3/h,
+    # feed in kg/h, catalyst as a fraction), first-order elements with 5-10 samples of dead
+    # time.  Whether the pole at z = 1 is a free input direction must not depend on the spans
+    # (it was called a tuning pole with them; found in an independent audit).  Reference: the
+    # null space of the element gains, the steady-state gain of a transfer matrix
+    # (scipy.linalg.null_space), largest entry 1.
+    def element(gain, tau, delay):
+        return {"gain": gain, "time_constants": [tau], "dead_time": delay}
+
+    gains = [[-0.9, 0.004, 900.0], [-0.35, -0.0015, 1500.0]]
+    shapes = [[(14.0, 6.0), (20.0, 8.0), (10.0, 5.0)], [(25.0, 9.0), (18.0, 7.5), (12.0, 10.0)]]
+    body = {
+        "model": {
+            "kind": "transfer_matrix",
+            "sample_time": 1.0,
+            "elements": [
+                [element(g, *shape) for g, shape in zip(*row, strict=True)] for row in zip(gains, shapes, strict=True)
+            ],
+            "inputs": [
+                {"name": "coolant_flow", "unit": "m3/h", "span": 20.0},
+                {"name": "feed_rate", "unit": "kg/h", "span": 4000.0},
+                {"name": "catalyst_fraction", "unit": "1", "span": 0.01},
+            ],
+            "outputs": [
+                {"name": "reactor_temperature", "unit": "degC", "span": 10.0},
+                {"name": "conversion", "unit": "%", "span": 5.0},
+            ],
+        },
+        "horizons": {"prediction": 60, "control": 8},
+        "weights": {"output": [1.0, 1.0], "move": [0.1, 0.2, 0.1]},
+    }
+    plain = copy.deepcopy(body)
+    for signal in plain["model"]["inputs"] + plain["model"]["outputs"]:
+        signal.pop("span")
+    null = scipy.linalg.null_space(np.array(gains))[:, 0]
+    null = null / null[np.argmax(np.abs(null))]
+    for request in (body, plain):
+        answer = client.post("/design", json=request).json()
+        (mode,) = answer["closed_loop"]["marginal_modes"]
+        assert mode["cause"] == "free_input_direction", mode
+        codes = [w["code"] for w in answer["warnings"]]
+        assert "free_input_direction" in codes and "marginal_pole" not in codes
+        np.testing.assert_allclose(mode["direction"], null, rtol=1e-6, atol=1e-9)
+
+
 def test_a_spare_input_run_stays_bounded_and_is_not_called_unstable(client):
     request = copy.deepcopy(COLUMN)
     request["scenario"] = {"steps": 200, "setpoint_changes": [{"step": 5, "setpoint": [1.0, -0.5]}]}

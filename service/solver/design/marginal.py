@@ -290,11 +290,15 @@ def _structural_modes(
         count = space.shape[1]
         moved = space[n:, :]
         if abs(z - 1.0) <= POLE_MATCH:
-            inputs_part = moved * d[:, None]
-            if dead:
-                inputs_part = inputs_part.copy()
-                inputs_part[dead, :] = 0.0  # the dead inputs are named on their own
-            for v in _range(inputs_part, PART_TOLERANCE * max(float(d.max()), 1.0)).T:
+            balanced = moved.copy()
+            balanced[dead, :] = 0.0  # the dead inputs are named on their own
+            # How many free directions: decided on the inputs as balanced here (each input
+            # scaled by d, so that its column of B has the size of A), whatever their units or
+            # spans; the directions themselves are read in the plant's own inputs (times d).
+            free = _range(balanced).shape[1]
+            inputs_part = balanced * d[:, None]
+            directions = np.linalg.svd(inputs_part, full_matrices=False)[0][:, :free] if free else inputs_part[:, :0]
+            for v in directions.T:
                 real = np.real(v * np.exp(-1j * np.angle(v[np.argmax(np.abs(v))])))
                 real = real / real[np.argmax(np.abs(real))]
                 modes.append(
