@@ -32,7 +32,7 @@ from service.schemas.identify import (
 from service.schemas.model import TransferElementModel, TransferMatrixModel
 from service.schemas.signals import OperatingPoint, SignalTag
 from service.solver.identification.data import hold_missing, resample_held, resample_interpolated, sample_grid
-from service.solver.identification.diagnostics import find_outliers, fit_measures, residual_correlations
+from service.solver.identification.diagnostics import Correlation, find_outliers, fit_measures, residual_correlations
 from service.solver.identification.least_squares import OutputFit, PairSpec, fit_output
 from service.solver.identification.process_models import STRUCTURES, element_of, step_values
 from service.solver.identification.subspace import SubspaceModel, moesp
@@ -597,15 +597,7 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
         residuals = np.where(present, y - fit.fitted, 0.0)
         used = estimation & present
         auto, cross = residual_correlations(residuals, used, deviations, lags=inputs.lags)
-        if auto.outside > max(1, inputs.lags // 10):
-            warnings.append(
-                WarningReport(
-                    code="residuals_correlated",
-                    message=f"the residuals of {tag} are correlated ({auto.outside} of {inputs.lags} lags outside "
-                    f"the 99 % bound): the model leaves dynamics unexplained (try second_order_dead_time, "
-                    f"detrend, or look for unmeasured disturbances)",
-                )
-            )
+        warnings += correlated_residuals(tag, auto, remedy="try second_order_dead_time")
         validation = None
         if inputs.estimation < n:
             validation = _segment(y, fit.fitted, ~estimation & present)
@@ -654,6 +646,22 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
         data=data,
         warnings=warnings,
     )
+
+
+def correlated_residuals(tag: str, auto: Correlation, *, remedy: str) -> list[WarningReport]:
+    """``residuals_correlated`` for output ``tag`` when more than a tenth of the lags (at least one) of
+    its residuals' autocorrelation fall outside the 99 % bound; ``remedy`` names the first thing to try."""
+    lags = int(auto.lags.size)
+    if auto.outside <= max(1, lags // 10):
+        return []
+    return [
+        WarningReport(
+            code="residuals_correlated",
+            message=f"the residuals of {tag} are correlated ({auto.outside} of {lags} lags outside the 99 % "
+            f"bound): the model leaves dynamics unexplained ({remedy}, detrend, or look for unmeasured "
+            f"disturbances)",
+        )
+    ]
 
 
 def fitted_operating_point(inputs: IdentifyInputs, offsets: list[float]) -> OperatingPoint:

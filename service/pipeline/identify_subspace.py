@@ -5,7 +5,12 @@ from __future__ import annotations
 import numpy as np
 import scipy.signal
 
-from service.pipeline.identify import STEP_RESPONSE_SAMPLES, IdentifyInputs, fitted_operating_point
+from service.pipeline.identify import (
+    STEP_RESPONSE_SAMPLES,
+    IdentifyInputs,
+    correlated_residuals,
+    fitted_operating_point,
+)
 from service.schemas.design import WarningReport
 from service.schemas.identify import (
     CorrelationReport,
@@ -50,12 +55,16 @@ def subspace_response(inputs: IdentifyInputs, model: SubspaceModel, data: DataRe
     estimation = np.zeros(count, dtype=bool)
     estimation[: inputs.estimation] = True
     fits = []
+    correlated: list[WarningReport] = []
     for i, tag in enumerate(inputs.outputs):
         y = inputs.outputs_data[:, i]
         present = np.isfinite(y)
         residuals = np.where(present, y - fitted[:, i], 0.0)
         used = estimation & present
         auto, cross = residual_correlations(residuals, used, deviations, lags=inputs.lags)
+        correlated += correlated_residuals(
+            tag, auto, remedy=f"try a higher order than {n}: give order, guided by subspace.singular_values"
+        )
         fits.append(
             OutputFitReport(
                 output=tag,
@@ -93,7 +102,7 @@ def subspace_response(inputs: IdentifyInputs, model: SubspaceModel, data: DataRe
                     output=tag, input=column, time=(ts * np.arange(settle + 1)).tolist(), value=response[:, i].tolist()
                 )
             )
-    warnings = list(inputs.warnings)
+    warnings = list(inputs.warnings) + correlated
     if radius >= 1.0:
         warnings.append(
             WarningReport(
