@@ -76,6 +76,46 @@ def test_first_order_recovery_from_a_binary_test_with_noise() -> None:
         assert np.all(np.abs(got - want) < 4 * se)
 
 
+@pytest.mark.parametrize("output_factor", [1e-9, 1.0, 1e9])
+@pytest.mark.parametrize("input_factor", [1e-12, 1e4, 1e12])
+def test_the_fit_is_the_same_in_any_units(output_factor, input_factor) -> None:
+    # The same invented plant test written in other units (the output as a fraction or in ppb,
+    # the second input in kg/h or as a fraction): a linear model's gain scales by
+    # output_factor / input_factor and its time constants and dead times do not change
+    # (dimensional analysis, common practice), nor does the fit's quality; the standard errors
+    # scale as their parameters.  Before the data were scaled inside, small output units
+    # stopped the solver early and tiny input units lost the gain's standard error.
+    rng = np.random.default_rng(11)
+    n = 900
+    u = np.column_stack([binary_signal(rng, n, 12), 3.0 * binary_signal(rng, n, 8)])
+    # dead times off the sample grid: the fit's sensitivity to a dead time changes at whole samples
+    truth = [np.array([2.5, 10.0, 3.4]), np.array([-0.4, 6.0, 6.6])]
+    clean = sum(pair_response(FO, t, u[:, j], sample_time=1.0) for j, t in enumerate(truth))
+    y = 120.0 + clean + rng.normal(scale=0.05 * np.std(clean), size=n)
+
+    def fit(y_data, u_data):
+        return fit_output(
+            y_data,
+            u_data,
+            [PairSpec(0, FO), PairSpec(1, FO)],
+            sample_time=1.0,
+            used=np.ones(n, dtype=bool),
+            max_dead_time=30.0,
+            settling_samples=60,
+        )
+
+    base = fit(y, u)
+    other = fit(output_factor * y, u * np.array([1.0, input_factor]))
+    for k, (got, se, want, want_se) in enumerate(
+        zip(other.parameters, other.standard_errors, base.parameters, base.standard_errors, strict=True)
+    ):
+        gain = output_factor / (input_factor if k == 1 else 1.0)
+        np.testing.assert_allclose(got, want * np.array([gain, 1.0, 1.0]), rtol=1e-6)
+        np.testing.assert_allclose(se, want_se * np.array([abs(gain), 1.0, 1.0]), rtol=1e-4)
+    assert other.residual_std == pytest.approx(output_factor * base.residual_std, rel=1e-6)
+    assert other.offset == pytest.approx(output_factor * base.offset, rel=1e-9)
+
+
 def test_least_squares_agrees_with_curve_fit_on_the_same_residual() -> None:
     # Independent general-purpose fit: scipy.optimize.curve_fit on the same model function,
     # started where ours started (its covariance is the same first-order formula, computed by scipy).

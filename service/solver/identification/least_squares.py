@@ -27,6 +27,7 @@ from the singular value decomposition of ``J`` (no explicit inverse).
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
@@ -238,7 +239,73 @@ def _best_start(
     return best, shifts
 
 
+def _spread(values: Array) -> float:
+    """The standard deviation of ``values`` (1 when it is zero or not finite): the size a signal is fitted at."""
+    size = float(np.std(values)) if values.size else 0.0
+    return size if np.isfinite(size) and size > 0.0 else 1.0
+
+
 def fit_output(
+    y: Array,
+    u: Array,
+    pairs: Sequence[PairSpec],
+    *,
+    sample_time: float,
+    used: NDArray[np.bool_],
+    max_dead_time: float,
+    settling_samples: int,
+    integrating: bool = False,
+    detrend: bool = False,
+) -> OutputFit:
+    """Fit the pairs of one output by nonlinear least squares from several dead-time starts.
+
+    The fit runs on the output and each used column divided by its standard deviation over
+    the fitted samples, so that the data the solver sees, and so its stopping rules and
+    difference steps, are the same to rounding whatever the units (a fraction or a flow in
+    kg/h); the gains, offset, drift, their standard errors, the residual size and the fitted
+    series are multiplied back (a gain by ``y_scale / u_scale``), the time constants and dead
+    times being free of units.  Parameters and returns as :func:`_fit_scaled`.
+    """
+    rows = used & np.isfinite(y)
+    y_scale = _spread(y[rows])
+    u_scale = np.ones(u.shape[1])
+    for column in {pair.column for pair in pairs}:
+        u_scale[column] = _spread(u[rows, column])
+    fit = _fit_scaled(
+        y / y_scale,
+        u / u_scale[None, :],
+        pairs,
+        sample_time=sample_time,
+        used=used,
+        max_dead_time=max_dead_time,
+        settling_samples=settling_samples,
+        integrating=integrating,
+        detrend=detrend,
+    )
+    gains = [y_scale / u_scale[pair.column] for pair in pairs]
+    parameters, errors = [], []
+    for pair, gain, theta, error in zip(pairs, gains, fit.parameters, fit.standard_errors, strict=True):
+        at = STRUCTURES[pair.structure].index("gain")
+        theta, error = theta.copy(), error.copy()
+        theta[at] *= gain
+        error[at] *= gain
+        parameters.append(theta)
+        errors.append(error)
+    return dataclasses.replace(
+        fit,
+        parameters=parameters,
+        standard_errors=errors,
+        offset=fit.offset * y_scale,
+        offset_error=fit.offset_error * y_scale,
+        drift=None if fit.drift is None else fit.drift * y_scale,
+        drift_error=None if fit.drift_error is None else fit.drift_error * y_scale,
+        fitted=fit.fitted * y_scale,
+        contributions=fit.contributions * y_scale,
+        residual_std=fit.residual_std * y_scale,
+    )
+
+
+def _fit_scaled(
     y: Array,
     u: Array,
     pairs: Sequence[PairSpec],
