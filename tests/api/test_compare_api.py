@@ -18,6 +18,7 @@ import pytest
 
 from service.pipeline.examples import load_example
 from service.schemas.design import ADVISORY
+from tests.api.test_plant_layouts import COLUMN  # a column with a spare input (invented)
 
 
 def _vessel():
@@ -139,26 +140,11 @@ def test_a_re_identified_model_under_the_caller_s_scenario(client):
     assert "The models differ" in " ".join(answer["summary"])
 
 
-# Two compositions and three inputs (the column of tests/api/test_plant_layouts.py, invented):
-# without input targets the spare input direction leaves a closed-loop pole at z = 1.
-_COLUMN = {
-    "model": {
-        "kind": "state_space",
-        "a": [[0.9, 0.0], [0.0, 0.8]],
-        "b": [[1.0, 0.5, 0.2], [0.0, 1.0, 0.3]],
-        "c": [[1.0, 0.0], [0.0, 1.0]],
-        "sample_time": 1.0,
-    },
-    "horizons": {"prediction": 20, "control": 3},
-    "weights": {"output": [1.0, 1.0], "move": [0.1, 0.1, 0.1]},
-}
-
-
 def test_a_marginal_design_is_called_marginal_not_unstable(client):
     # /design's verdict: not stable (a pole on the circle) but no unstable_closed_loop warning;
     # the change review must say the same, for either side (found in an independent audit).
-    marginal = copy.deepcopy(_COLUMN)
-    targeted = copy.deepcopy(_COLUMN)
+    marginal = copy.deepcopy(COLUMN)
+    targeted = copy.deepcopy(COLUMN)
     targeted["weights"]["input"] = [0.01, 0.01, 0.01]
     alone = client.post("/design", json=marginal).json()
     assert alone["closed_loop"]["stable"] is False and alone["closed_loop"]["marginal_modes"]
@@ -172,7 +158,7 @@ def test_a_marginal_design_is_called_marginal_not_unstable(client):
     text = _compare(client, {"in_service": targeted, "proposed": marginal}, Accept="text/markdown").text
     assert "| stable | yes | no (marginal) |" in text
     # a loop with a pole outside the circle is still called unstable
-    unstable = copy.deepcopy(_COLUMN)
+    unstable = copy.deepcopy(COLUMN)
     unstable["model"]["a"] = [[1.05, 0.0], [0.0, 0.8]]
     unstable["horizons"] = {"prediction": 2, "control": 1}
     unstable["weights"]["move"] = [1e6, 1e6, 1e6]  # hardly moves: the open loop's pole 1.05 stays

@@ -29,6 +29,18 @@ def binary_signal(rng: np.random.Generator, count: int, shortest: int) -> np.nda
     return out
 
 
+def two_input_test(truth: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """An invented two-input test of one output: binary inputs (seeded), first-order pairs of
+    parameters ``truth``, an offset of 120 and noise at 5 % of the output's spread (a
+    signal-to-noise ratio of about 20 in amplitude: a realistic plant test, common practice).
+    Returns ``(y, u)``."""
+    rng = np.random.default_rng(11)
+    n = 900
+    u = np.column_stack([binary_signal(rng, n, 12), 3.0 * binary_signal(rng, n, 8)])
+    clean = sum(pair_response(FO, t, u[:, j], sample_time=1.0) for j, t in enumerate(truth))
+    return 120.0 + clean + rng.normal(scale=0.05 * np.std(clean), size=n), u
+
+
 def dlsim_response(element: TransferElement, u: np.ndarray) -> np.ndarray:
     """Reference: the element's exact sampled state-space model (service transfer module) run by scipy.signal.dlsim."""
     sampled = transfer_matrix_model([[element]], sample_time=1.0)
@@ -51,12 +63,9 @@ def test_pair_response_equals_the_sampled_state_space_model() -> None:
 def test_first_order_recovery_from_a_binary_test_with_noise() -> None:
     # Two inputs on one output, fractional dead times, noise at 5 % of the output's spread
     # (signal-to-noise ratio about 20 in amplitude: a realistic plant test, common practice).
-    rng = np.random.default_rng(11)
-    n = 900
-    u = np.column_stack([binary_signal(rng, n, 12), 3.0 * binary_signal(rng, n, 8)])
     truth = [np.array([2.5, 10.0, 3.4]), np.array([-0.4, 6.0, 7.0])]
-    clean = sum(pair_response(FO, t, u[:, j], sample_time=1.0) for j, t in enumerate(truth))
-    y = 120.0 + clean + rng.normal(scale=0.05 * np.std(clean), size=n)
+    y, u = two_input_test(truth)
+    n = y.size
     fit = fit_output(
         y,
         u,
@@ -85,13 +94,9 @@ def test_the_fit_is_the_same_in_any_units(output_factor, input_factor) -> None:
     # (dimensional analysis, common practice), nor does the fit's quality; the standard errors
     # scale as their parameters.  Before the data were scaled inside, small output units
     # stopped the solver early and tiny input units lost the gain's standard error.
-    rng = np.random.default_rng(11)
-    n = 900
-    u = np.column_stack([binary_signal(rng, n, 12), 3.0 * binary_signal(rng, n, 8)])
     # dead times off the sample grid: the fit's sensitivity to a dead time changes at whole samples
-    truth = [np.array([2.5, 10.0, 3.4]), np.array([-0.4, 6.0, 6.6])]
-    clean = sum(pair_response(FO, t, u[:, j], sample_time=1.0) for j, t in enumerate(truth))
-    y = 120.0 + clean + rng.normal(scale=0.05 * np.std(clean), size=n)
+    y, u = two_input_test([np.array([2.5, 10.0, 3.4]), np.array([-0.4, 6.0, 6.6])])
+    n = y.size
 
     def fit(y_data, u_data):
         return fit_output(

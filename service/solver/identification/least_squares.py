@@ -27,7 +27,6 @@ from the singular value decomposition of ``J`` (no explicit inverse).
 
 from __future__ import annotations
 
-import dataclasses
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
@@ -259,66 +258,6 @@ def fit_output(
 ) -> OutputFit:
     """Fit the pairs of one output by nonlinear least squares from several dead-time starts.
 
-    The fit runs on the output and each used column divided by its standard deviation over
-    the fitted samples, so that the data the solver sees, and so its stopping rules and
-    difference steps, are the same to rounding whatever the units (a fraction or a flow in
-    kg/h); the gains, offset, drift, their standard errors, the residual size and the fitted
-    series are multiplied back (a gain by ``y_scale / u_scale``), the time constants and dead
-    times being free of units.  Parameters and returns as :func:`_fit_scaled`.
-    """
-    rows = used & np.isfinite(y)
-    y_scale = _spread(y[rows])
-    u_scale = np.ones(u.shape[1])
-    for column in {pair.column for pair in pairs}:
-        u_scale[column] = _spread(u[rows, column])
-    fit = _fit_scaled(
-        y / y_scale,
-        u / u_scale[None, :],
-        pairs,
-        sample_time=sample_time,
-        used=used,
-        max_dead_time=max_dead_time,
-        settling_samples=settling_samples,
-        integrating=integrating,
-        detrend=detrend,
-    )
-    gains = [y_scale / u_scale[pair.column] for pair in pairs]
-    parameters, errors = [], []
-    for pair, gain, theta, error in zip(pairs, gains, fit.parameters, fit.standard_errors, strict=True):
-        at = STRUCTURES[pair.structure].index("gain")
-        theta, error = theta.copy(), error.copy()
-        theta[at] *= gain
-        error[at] *= gain
-        parameters.append(theta)
-        errors.append(error)
-    return dataclasses.replace(
-        fit,
-        parameters=parameters,
-        standard_errors=errors,
-        offset=fit.offset * y_scale,
-        offset_error=fit.offset_error * y_scale,
-        drift=None if fit.drift is None else fit.drift * y_scale,
-        drift_error=None if fit.drift_error is None else fit.drift_error * y_scale,
-        fitted=fit.fitted * y_scale,
-        contributions=fit.contributions * y_scale,
-        residual_std=fit.residual_std * y_scale,
-    )
-
-
-def _fit_scaled(
-    y: Array,
-    u: Array,
-    pairs: Sequence[PairSpec],
-    *,
-    sample_time: float,
-    used: NDArray[np.bool_],
-    max_dead_time: float,
-    settling_samples: int,
-    integrating: bool = False,
-    detrend: bool = False,
-) -> OutputFit:
-    """Fit the pairs of one output by nonlinear least squares from several dead-time starts.
-
     Parameters
     ----------
     y : ndarray, shape (N,)
@@ -343,10 +282,24 @@ def _fit_scaled(
     Returns
     -------
     OutputFit
+
+    Notes
+    -----
+    The fit runs on the output and each used column divided by its standard deviation over
+    the fitted samples, so that the data the solver sees, and so its stopping rules and
+    difference steps, are the same to rounding whatever the units (a fraction or a flow in
+    kg/h); the gains, offset, drift, their standard errors, the residual size and the fitted
+    series are multiplied back (a gain by ``y_scale / u_scale``), the time constants and dead
+    times being free of units.
     """
     n = y.shape[0]
     rows = used & np.isfinite(y)
     count = int(rows.sum())
+    y_scale = _spread(y[rows])
+    u_scale = np.ones(u.shape[1])
+    for pair in pairs:
+        u_scale[pair.column] = _spread(u[rows, pair.column])
+    y, u = y / y_scale, u / u_scale[None, :]
     record = n * sample_time
     columns = [p.column for p in pairs]
     length = int(max(2, min(settling_samples, count // (2 * max(len(columns), 1)) - 1)))
@@ -409,6 +362,14 @@ def _fit_scaled(
     span = np.where(np.isfinite(hi_a - lo_a), hi_a - lo_a, 1.0)
     bound = (np.abs(x - lo_a) <= 1e-6 * span) | (np.abs(hi_a - x) <= 1e-6 * span)
     fitted, parts = _simulate(x, u, pairs, sample_time, detrend)
+    # back to the data's units: a gain by y_scale / u_scale, the offset and drift by y_scale
+    units = np.ones(q)
+    at = 0
+    for pair in pairs:
+        units[at + STRUCTURES[pair.structure].index("gain")] = y_scale / u_scale[pair.column]
+        at += len(STRUCTURES[pair.structure])
+    units[at:] = y_scale
+    x, se = x * units, se * units
     parameters, errors, flags = [], [], []
     at = 0
     for pair in pairs:
@@ -425,9 +386,9 @@ def _fit_scaled(
         offset_error=float(se[at]),
         drift=float(x[at + 1]) if detrend else None,
         drift_error=float(se[at + 1]) if detrend else None,
-        fitted=fitted,
-        contributions=parts,
-        residual_std=float(np.sqrt(sigma2)),
+        fitted=fitted * y_scale,
+        contributions=parts * y_scale,
+        residual_std=float(np.sqrt(sigma2)) * y_scale,
         samples=count,
         starts=len(shifts),
     )
