@@ -298,8 +298,14 @@ export function drawRobustness(container, robustness) {
 export function chosenValue(request) {
   const design = request?.design || {};
   const parameter = request?.parameter;
-  const signal = request?.signal ?? 0;
-  const weight = (w) => (typeof w === "number" ? w : Array.isArray(w) && typeof w[signal] === "number" ? w[signal] : undefined);
+  const signal = request?.signal;
+  // one signal's weight; with no signal every weight takes the value, so the base has one only when all agree
+  const weight = (w) => {
+    if (typeof w === "number") return w;
+    if (!Array.isArray(w) || !w.length || !w.every((x) => typeof x === "number")) return undefined;
+    if (signal === null || signal === undefined) return w.every((x) => x === w[0]) ? w[0] : undefined;
+    return w[signal];
+  };
   if (parameter === "move_weight") return weight(design.weights?.move);
   if (parameter === "output_weight") return weight(design.weights?.output);
   if (parameter) return design.horizons?.[parameter];

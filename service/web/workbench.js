@@ -169,6 +169,8 @@ function clearErrors() {
 }
 
 function showProblems(detail, problems) {
+  // the answer on screen belonged to an earlier request: it goes, so that it is never read as this one's
+  clearResults();
   $("errors").hidden = false;
   $("errors-detail").textContent = detail;
   const list = $("errors-list");
@@ -252,15 +254,22 @@ function show(id, visible) {
   $(id).hidden = !visible;
 }
 
+const RESULT_SECTIONS = ["summary", "poles", "responses", "robustness", "gains", "sweep", "identify", "downloads"];
+
+function clearResults() {
+  for (const id of RESULT_SECTIONS) show(id, false);
+  state.answer = null;
+}
+
 function render(endpoint, answer, request) {
-  for (const id of ["summary", "poles", "responses", "robustness", "gains", "sweep", "identify", "downloads"]) show(id, false);
+  for (const id of RESULT_SECTIONS) show(id, false);
   if (endpoint === "design/sweep") {
     renderSweep(answer, request);
   } else if (endpoint === "identify") {
     renderIdentify(answer);
   } else {
     const design = endpoint === "simulate" ? answer.design : answer;
-    if (design) renderDesign(design, answer);
+    if (design) renderDesign(design, answer, request);
     if (endpoint === "simulate") renderResponses(answer, request);
   }
   show("downloads", true);
@@ -284,7 +293,7 @@ function marginalModes(design) {
   return { modes, poles: poles.length ? poles : onCircle };
 }
 
-function renderDesign(design, whole) {
+function renderDesign(design, whole, request) {
   show("summary", true);
   setFigure("spectral-radius", design.closed_loop?.spectral_radius);
   $("stable").textContent = loopVerdict(design.closed_loop);
@@ -324,7 +333,7 @@ function renderDesign(design, whole) {
     drawRobustness($("robustness-charts"), design.robustness);
     $("robustness-text").textContent = robustnessText(design.robustness);
   }
-  renderGains(design);
+  renderGains(design, request);
 }
 
 /** A loop's verdict in words: a pole on the unit circle by a named structural cause is marginal, not unstable. */
@@ -379,10 +388,23 @@ function robustnessText(r) {
   return parts.join(" ");
 }
 
-function renderGains(design) {
+/** The law the gain tables make up, in words: the terms this design has, around its operating point. */
+export function lawText(gain, point) {
+  const has = (key) => Array.isArray(gain?.[key]) && gain[key].length > 0;
+  const around = Boolean(point);
+  const terms = [around ? "Kr (r − z0)" : "Kr r"];
+  if (has("input_target")) terms.push(around ? "+ Kt (u_target − u0)" : "+ Kt u_target");
+  terms.push("− Kx x(k)", around ? "− Ku (u(k−1) − u0)" : "− Ku u(k−1)");
+  if (has("disturbance")) terms.push(around ? "− Kd (d(k) − d0)" : "− Kd d(k)");
+  const text = `du(k) = ${terms.join(" ")}.`;
+  return around ? `${text} z0, u0, d0: the operating point (absolute values, as shown everywhere on this page); x: the model's state.` : text;
+}
+
+function renderGains(design, request) {
   const g = design.gain;
   if (!g) return;
   show("gains", true);
+  $("gain-law").textContent = lawText(g, request?.model?.operating_point);
   const labels = g.labels || {};
   const rows = labels.rows || [];
   const box = $("gain-tables");
@@ -392,6 +414,7 @@ function renderGains(design) {
     ["state", "Kx: state gain", labels.state],
     ["previous_input", "Ku: previous-input gain", labels.previous_input],
     ["disturbance", "Kd: measured-disturbance gain", labels.disturbance],
+    ["input_target", "Kt: input-target gain", labels.input_target],
   ];
   for (const [key, caption, columns] of tables) {
     if (!Array.isArray(g[key]) || !g[key].length) continue;
@@ -440,15 +463,33 @@ function renderResponses(answer, request) {
 function renderSweep(answer, request) {
   show("sweep", true);
   const { chosen, isChosen } = drawSweep($("sweep-charts"), answer, request);
-  $("sweep-text").textContent = `${answer.parameter}${request.signal !== undefined ? ` of signal ${request.signal}` : ""} at ${answer.entries?.length ?? 0} values`
+  const weight = answer.parameter === "move_weight" || answer.parameter === "output_weight";
+  const which = !weight ? "" : request.signal === null || request.signal === undefined ? " of every signal" : ` of signal ${request.signal}`;
+  $("sweep-text").textContent = `${answer.parameter}${which} at ${answer.entries?.length ?? 0} values`
     + (chosen !== undefined ? `; the base request's value ${chosen} is starred.` : ".");
   $("sweep-table").replaceChildren(recordTable({
     id: "sweep-entries", caption: "Sweep entries",
-    columns: [["value", (e) => e.value], ["status", (e) => e.status], ["spectral radius", (e) => e.spectral_radius], ["stable", (e) => (e.stable === undefined || e.stable === null ? null : e.stable ? "yes" : "no")],
-      ["condition number", (e) => e.condition_number], ["peak sensitivity", (e) => e.peak_sensitivity], ["problem", (e) => e.problem?.detail ?? (e.problem ? JSON.stringify(e.problem) : null)]],
+    columns: [["value", (e) => e.value], ["status", (e) => e.status], ["spectral radius", (e) => e.spectral_radius], ["closed loop", sweepVerdict],
+      ["condition number", (e) => e.condition_number], ["peak sensitivity", (e) => e.peak_sensitivity],
+      ["warnings", (e) => (e.status === "designed" ? (e.warnings || []).map((w) => w.code).join(", ") || "none" : null)], ["problem", sweepProblem]],
     records: answer.entries || [],
     highlight: (e) => isChosen(e.value),
   }));
+}
+
+/** A sweep entry's verdict in /design's words: stable, marginal (a pole on the circle, none outside) or unstable. */
+export function sweepVerdict(entry) {
+  if (entry.stable === undefined || entry.stable === null) return null;
+  if (entry.stable) return "stable";
+  return (entry.warnings || []).some((w) => w.code === "unstable_closed_loop") ? "UNSTABLE" : "marginal";
+}
+
+/** Why a sweep entry failed: the problem's sentence and each field's, by pointer. */
+function sweepProblem(entry) {
+  const problem = entry.problem;
+  if (!problem) return null;
+  const fields = (problem.errors || []).map((e) => `${e.pointer}: ${e.detail}`);
+  return [problem.detail, ...fields].filter(Boolean).join(" ") || JSON.stringify(problem);
 }
 
 function renderIdentify(answer) {
@@ -460,11 +501,20 @@ function renderIdentify(answer) {
     + " Review the fit, the residuals and the warnings before designing with this model.";
   const box = $("identify-tables");
   box.replaceChildren();
-  const value = (pair, name) => pair.parameters.find((q) => q.name === name)?.estimate ?? null;
+  const parameter = (pair, name) => pair.parameters.find((q) => q.name === name);
+  const value = (pair, name) => parameter(pair, name)?.estimate ?? null;
+  // a standard error the API gives as null is not determined by the data: shown as "∞"
+  const error = (pair, name) => {
+    const q = parameter(pair, name);
+    return q === undefined ? null : q.standard_error ?? Infinity;
+  };
+  const lag = (pair) => (parameter(pair, "time_constant") ? "time_constant" : "time_constant_1");
   box.append(recordTable({
-    id: "identify-pairs", caption: "Fitted pairs",
-    columns: [["output", (r) => r.output], ["input", (r) => r.input], ["structure", (r) => r.structure], ["gain", (r) => value(r, "gain")],
-      ["time constant", (r) => value(r, "time_constant") ?? value(r, "time_constant_1")], ["dead time", (r) => value(r, "dead_time")]],
+    id: "identify-pairs", caption: "Fitted pairs (each estimate with its standard error)",
+    columns: [["output", (r) => r.output], ["input", (r) => r.input], ["structure", (r) => r.structure],
+      ["gain", (r) => value(r, "gain")], ["± gain", (r) => error(r, "gain")],
+      ["time constant", (r) => value(r, lag(r))], ["± time constant", (r) => error(r, lag(r))],
+      ["dead time", (r) => value(r, "dead_time")], ["± dead time", (r) => error(r, "dead_time")]],
     records: answer.pairs || [],
   }));
   box.append(recordTable({
@@ -474,8 +524,9 @@ function renderIdentify(answer) {
     records: fits,
   }));
   drawStepResponses($("step-charts"), answer.step_responses || []);
-  const list = $("warnings");
+  const list = $("identify-warnings");
   list.replaceChildren();
+  if (!(answer.warnings || []).length) list.append(Object.assign(document.createElement("li"), { textContent: "None." }));
   for (const w of answer.warnings || []) list.append(Object.assign(document.createElement("li"), { textContent: `${w.code}: ${w.message}` }));
 }
 
