@@ -397,7 +397,8 @@ export function lawText(gain, point) {
   terms.push("− Kx x(k)", around ? "− Ku (u(k−1) − u0)" : "− Ku u(k−1)");
   if (has("disturbance")) terms.push(around ? "− Kd (d(k) − d0)" : "− Kd d(k)");
   const text = `du(k) = ${terms.join(" ")}.`;
-  return around ? `${text} z0, u0, d0: the operating point (absolute values, as shown everywhere on this page); x: the model's state.` : text;
+  const symbols = has("disturbance") ? "z0, u0, d0" : "z0, u0";
+  return around ? `${text} ${symbols}: the operating point (absolute values, as shown everywhere on this page); x: the model's state.` : text;
 }
 
 function renderGains(design, request) {
