@@ -111,7 +111,35 @@ export function syntaxErrorOffset(text, message) {
     for (let k = 0; k < Number(lineColumn[1]) - 1 && k < lines.length; k += 1) offset += lines[k].length + 1;
     return offset + Number(lineColumn[2]) - 1;
   }
-  return text.length;
+  return firstBadOffset(text);
+}
+
+/** Where JSON text first goes wrong, for a parser message that gives no position.
+ *
+ * A prefix of valid JSON fails only for ending early; once a prefix holds the error, every
+ * longer one fails for it too.  So the shortest prefix that fails for another reason ends
+ * just after the error, found by bisection (about log2 of the length parses). */
+function firstBadOffset(text) {
+  const early = (prefix) => {
+    try {
+      JSON.parse(prefix);
+      return true;
+    } catch (error) {
+      const message = String(error.message);
+      const at = /position (\d+)/.exec(message);
+      // ending early: said in words, or placed at the very end of the prefix
+      return /end of (json )?(input|data)|unterminated|unexpected end/i.test(message) || (at !== null && Number(at[1]) >= prefix.length);
+    }
+  };
+  if (early(text)) return text.length;
+  let good = 0;
+  let bad = text.length;
+  while (bad - good > 1) {
+    const middle = Math.floor((good + bad) / 2);
+    if (early(text.slice(0, middle))) good = middle;
+    else bad = middle;
+  }
+  return bad - 1;
 }
 
 export class Editor {

@@ -591,3 +591,28 @@ def test_what_an_audit_of_the_page_found_missing_is_shown(workbench, server):
     verdicts = [row.locator("td").nth(3).inner_text() for row in page.locator("#sweep-entries tbody tr").all()]
     assert verdicts == ["marginal", "marginal"]
     assert "of every signal" in page.locator("#sweep-text").inner_text()
+
+
+@pytest.mark.parametrize("bad", ["nan", "trailing comma"])
+def test_a_json_syntax_error_is_noted_on_its_own_line(workbench, bad):
+    # A parser message without a position (a NaN, a trailing comma in this Chromium) was noted
+    # on the last line (found in an independent audit of the page); the note must sit on the
+    # line of the error.
+    page = workbench
+    lines = json.dumps(load_example("design_request.json"), indent=2).split("\n")
+    numbers = [k for k, line in enumerate(lines) if line.strip().rstrip(",").replace(".", "", 1).isdigit()]
+    if bad == "nan":
+        where = numbers[3]
+        lines[where] = lines[where].replace(lines[where].strip().rstrip(","), "NaN")
+    else:  # the last entry of an array, followed by a comma
+        where = next(k for k in numbers if lines[k + 1].strip().startswith("]"))
+        lines[where] += ","
+    text = "\n".join(lines)
+    page.fill("#request-text", text)
+    page.select_option("#endpoint", "design")
+    page.get_by_test_id("run").click()
+    page.get_by_test_id("errors").wait_for(state="visible")
+    assert "not valid JSON" in page.get_by_test_id("errors").inner_text()
+    # the error is at the NaN itself, or at the bracket the comma leaves without a value
+    expected = where + 1 if bad == "nan" else where + 2
+    assert page.locator(".note").first.get_attribute("data-line") == str(expected)
