@@ -190,11 +190,12 @@ export function drawResponses(container, answer, request) {
       type: "scatter", mode: "lines", name: "measured", x: time, y: column(answer.measured, j),
       line: { color: COLOURS.sky, width: 1, dash: "dot" }, opacity: 0.9,
     });
-    if (answer.setpoints) traces.push({
+    const [low, high] = zoneEdges(answer, request, signal.name ?? name, j);
+    // a zone output has no setpoint (its weight is zero inside the zone): its zone is drawn instead
+    if (answer.setpoints && low === null && high === null) traces.push({
       type: "scatter", mode: "lines", name: "setpoint", x: time, y: column(answer.setpoints, j),
       line: { color: COLOURS.black, width: 1.5, dash: "dash", shape: "hv" },
     });
-    const [low, high] = zoneEdges(answer, request, signal.name ?? name, j);
     if (low !== null && high !== null) {
       traces.push(level("zone low", time, low, COLOURS.green, "longdash", "zone"));
       traces.push({ ...level("zone high", time, high, COLOURS.green, "longdash", "zone"), fill: "tonexty", fillcolor: "rgba(0,158,115,0.10)" });

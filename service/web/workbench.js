@@ -325,7 +325,7 @@ function renderDesign(design, whole, request) {
   const poleDiv = $("pole-map");
   poleDiv.dataset.filename = "poles";
   drawPoleMap(poleDiv, { closed: design.closed_loop?.poles || [], open: design.plant?.open_loop_poles || [], estimator, marginal: marginal.poles });
-  $("marginal").textContent = marginalText(marginal);
+  $("marginal").textContent = marginalText(marginal, (design.plant?.inputs || []).map((s) => s.name));
   renderPoleTable(design, estimator);
 
   if (design.robustness?.frequencies) {
@@ -356,10 +356,19 @@ function conditioningText(h) {
     + (digits > 10 ? "That is high: raise the move weights, shorten the control horizon or block the moves." : "That is comfortable for double precision.");
 }
 
-function marginalText({ modes, poles }) {
+/** One marginal mode in words: its cause and pole, the signals it concerns, its input direction (inputs' own units). */
+function modeText(mode, inputs) {
+  const pole = mode.pole ? ` at z = ${fmt(mode.pole.real)}${mode.pole.imag ? ` ${mode.pole.imag < 0 ? "−" : "+"} ${fmt(Math.abs(mode.pole.imag))}j` : ""}` : "";
+  const signals = mode.signals?.length ? ` (${mode.signals.join(", ")})` : "";
+  const direction = Array.isArray(mode.direction)
+    ? `; input direction ${mode.direction.map((v, j) => `${v < 0 ? "−" : "+"}${fmt(Math.abs(v))} ${inputs[j] ?? `u${j + 1}`}`).join(" ")}`
+    : "";
+  return `${mode.cause ?? mode.message ?? "marginal"}${pole}${signals}${direction}.`;
+}
+
+function marginalText({ modes, poles }, inputs = []) {
   if (modes.length) {
-    return modes.map((m) => [m.cause ?? m.message ?? "", m.fix ? `Fix: ${m.fix}` : ""].filter(Boolean).join(" ")).filter(Boolean).join(" ")
-      || `${modes.length} marginal mode(s), marked with squares.`;
+    return `${modes.length} closed-loop pole(s) on the unit circle, marked with squares: ${modes.map((m) => modeText(m, inputs)).join(" ")} The warnings give each cause's fix.`;
   }
   return poles.length ? `${poles.length} closed-loop pole(s) on the unit circle, marked with squares; see the warnings for the cause.` : "No closed-loop pole on the unit circle.";
 }

@@ -207,6 +207,9 @@ def test_every_bundled_example_runs_and_every_chart_is_drawn(workbench, server):
             low, high = traces["zone low"], traces["zone high"]
             assert low["line"] and high["line"]
             assert set(low["y"]) == {zone["low"]} and set(high["y"]) == {zone["high"]}
+            assert "setpoint" not in traces  # a zone output has no setpoint to draw
+            others = {t["name"] for t in drawn_points(page, f"#response-output-{0 if j else 1}")}
+            assert "setpoint" in others
             # the design is marginal by its zone, not unstable, and the page says so in words
             verdict = page.locator("#stable").inner_text()
             assert verdict.startswith("marginal") and "zone_output" in verdict
@@ -475,7 +478,13 @@ def test_marginal_modes_are_marked_on_the_pole_map_and_named_in_words(workbench,
     marked = traces["marginal mode"]
     assert marked["marks"] == len(modes)
     assert marked["x"] == [m["pole"]["real"] for m in modes] and marked["y"] == [m["pole"]["imag"] for m in modes]
-    assert "free_input_direction" in page.locator("#marginal").inner_text()
+    words = page.locator("#marginal").inner_text()
+    assert "free_input_direction" in words
+    # its input direction, as the answer gives it (in the inputs' own units; the page's 6 digits)
+    (mode,) = modes
+    for j, value in enumerate(mode["direction"]):
+        sign = "−" if value < 0 else "+"
+        assert f"{sign}{float(f'{abs(value):.6g}'):g} u{j + 1}" in words, words
 
 
 @pytest.mark.parametrize("width", [1300, 1600, 1000])
