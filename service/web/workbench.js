@@ -168,9 +168,10 @@ function clearErrors() {
   $("key-error").textContent = "";
 }
 
-function showProblems(detail, problems) {
-  // the answer on screen belonged to an earlier request: it goes, so that it is never read as this one's
-  clearResults();
+function showProblems(detail, problems, { keepAnswer = false } = {}) {
+  // the answer on screen belonged to an earlier request: it goes, so that it is never read as this
+  // one's (a download of the answer on screen that fails keeps it)
+  if (!keepAnswer) clearResults();
   $("errors").hidden = false;
   $("errors-detail").textContent = detail;
   const list = $("errors-list");
@@ -231,18 +232,18 @@ async function run() {
   }
 }
 
-function handleFailure(response, problem, endpoint = $("endpoint").value) {
+function handleFailure(response, problem, endpoint = $("endpoint").value, { keepAnswer = false } = {}) {
   const detail = problem?.detail || `The service answered ${response.status}.`;
   if (response.status === 401) {
     $("key-row").hidden = false;
     $("key-error").textContent = detail;
-    showProblems(detail, []);
+    showProblems(detail, [], { keepAnswer });
     $("api-key").focus();
     setStatus("An API key is needed.");
     return;
   }
   const problems = Array.isArray(problem?.errors) ? problem.errors.map((e) => ({ pointer: e.pointer ?? "", detail: e.detail ?? "" })) : [];
-  showProblems(detail, problems);
+  showProblems(detail, problems, { keepAnswer });
   setStatus(`POST /${endpoint}: ${response.status} ${problem?.title || ""}`.trim());
 }
 
@@ -571,34 +572,30 @@ function download(name, type, text) {
   setTimeout(() => { URL.revokeObjectURL(link.href); link.remove(); }, 1000);
 }
 
-function csvCell(value) {
-  if (value === null || value === undefined) return "";
-  const text = String(value);
-  return /[",\r\n]/.test(text) ? `"${text.replace(/"/g, '""')}"` : text;
-}
-
-/** The series of a /simulate answer as CSV: time, outputs, setpoints, inputs, measurements. */
-export function seriesCsv(answer) {
-  const c = answer.columns || {};
-  const blocks = [["outputs", c.outputs], ["setpoints", c.setpoints], ["inputs", c.inputs], ["measured", c.measured]].filter(([key, names]) => Array.isArray(answer[key]) && names?.length);
-  const header = ["time", ...blocks.flatMap(([, names]) => names)];
-  const lines = [header.map(csvCell).join(",")];
-  (answer.time || []).forEach((t, k) => {
-    lines.push([t, ...blocks.flatMap(([key]) => answer[key][k])].map(csvCell).join(","));
-  });
-  return `${lines.join("\r\n")}\r\n`;
-}
-
 $("download-request").addEventListener("click", () => download("request.json", "application/json", `${JSON.stringify(state.request, null, 2)}\n`));
 $("download-answer").addEventListener("click", () => download(`answer-${state.endpoint.replace("/", "-")}.json`, "application/json", `${JSON.stringify(state.answer, null, 2)}\n`));
-$("download-series").addEventListener("click", () => download("series.csv", "text/csv", seriesCsv(state.answer)));
+/** The run's series as the service writes them (POST /simulate with Accept: text/csv), one format everywhere. */
+async function downloadSeries() {
+  setStatus("Running POST /simulate (text/csv)…");
+  const response = await fetch(url("simulate"), {
+    method: "POST", headers: { ...headers(), Accept: "text/csv, application/problem+json" }, body: JSON.stringify(state.request),
+  });
+  if (!response.ok) {
+    handleFailure(response, await response.json().catch(() => null), "simulate", { keepAnswer: true });
+    return;
+  }
+  download("series.csv", "text/csv", await response.text());
+  setStatus("POST /simulate (text/csv) answered: series.csv.");
+}
+
+$("download-series").addEventListener("click", downloadSeries);
 
 async function exportLaw(format, name, type) {
   const body = JSON.stringify({ ...state.request, format });
   setStatus("Running POST /design/export…");
   const response = await fetch(url("design/export"), { method: "POST", headers: { ...headers(), Accept: `${type}, application/problem+json` }, body });
   if (!response.ok) {
-    handleFailure(response, await response.json().catch(() => null), "design/export");
+    handleFailure(response, await response.json().catch(() => null), "design/export", { keepAnswer: true });
     return;
   }
   download(name, type, await response.text());
