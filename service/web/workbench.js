@@ -125,7 +125,7 @@ async function identifyCsv() {
     const response = await fetch(url(`identify?${query}`), { method: "POST", headers: h, body: state.csv });
     const answer = await response.json().catch(() => null);
     if (!response.ok) {
-      handleFailure(response, answer, "identify");
+      handleFailure(response, answer, "identify", { inEditor: false });
       return;
     }
     state.request = Object.fromEntries(query);
@@ -168,7 +168,7 @@ function clearErrors() {
   $("key-error").textContent = "";
 }
 
-function showProblems(detail, problems, { keepAnswer = false } = {}) {
+function showProblems(detail, problems, { keepAnswer = false, inEditor = true } = {}) {
   // the answer on screen belonged to an earlier request: it goes, so that it is never read as this
   // one's (a download of the answer on screen that fails keeps it)
   if (!keepAnswer) clearResults();
@@ -176,17 +176,22 @@ function showProblems(detail, problems, { keepAnswer = false } = {}) {
   $("errors-detail").textContent = detail;
   const list = $("errors-list");
   list.replaceChildren();
-  editor.mark(problems);
+  editor.mark(inEditor ? problems : []);  // a CSV form's fields are not in the editor's text
   for (const problem of problems) {
     const item = document.createElement("li");
     item.dataset.pointer = problem.pointer;
-    const button = document.createElement("button");
-    button.type = "button";
-    button.className = "pointer";
-    button.textContent = problem.pointer || "(the whole body)";
-    button.setAttribute("aria-label", `Go to ${problem.pointer || "the start of the body"} in the editor`);
-    button.addEventListener("click", () => editor.reveal(problem.pointer));
-    item.append(button, document.createTextNode(` ${problem.detail}`));
+    let where;
+    if (inEditor) {
+      where = document.createElement("button");
+      where.type = "button";
+      where.className = "pointer";
+      where.setAttribute("aria-label", `Go to ${problem.pointer || "the start of the body"} in the editor`);
+      where.addEventListener("click", () => editor.reveal(problem.pointer));
+    } else {
+      where = document.createElement("code");  // a field of the CSV form's query, not of the editor's text
+    }
+    where.textContent = problem.pointer || "(the whole body)";
+    item.append(where, document.createTextNode(` ${problem.detail}`));
     list.append(item);
   }
 }
@@ -232,18 +237,18 @@ async function run() {
   }
 }
 
-function handleFailure(response, problem, endpoint = $("endpoint").value, { keepAnswer = false } = {}) {
+function handleFailure(response, problem, endpoint = $("endpoint").value, { keepAnswer = false, inEditor = true } = {}) {
   const detail = problem?.detail || `The service answered ${response.status}.`;
   if (response.status === 401) {
     $("key-row").hidden = false;
     $("key-error").textContent = detail;
-    showProblems(detail, [], { keepAnswer });
+    showProblems(detail, [], { keepAnswer, inEditor });
     $("api-key").focus();
     setStatus("An API key is needed.");
     return;
   }
   const problems = Array.isArray(problem?.errors) ? problem.errors.map((e) => ({ pointer: e.pointer ?? "", detail: e.detail ?? "" })) : [];
-  showProblems(detail, problems, { keepAnswer });
+  showProblems(detail, problems, { keepAnswer, inEditor });
   setStatus(`POST /${endpoint}: ${response.status} ${problem?.title || ""}`.trim());
 }
 

@@ -618,3 +618,20 @@ def test_a_json_syntax_error_is_noted_on_its_own_line(workbench, bad):
     # the error is at the NaN itself, or at the bracket the comma leaves without a value
     expected = where + 1 if bad == "nan" else where + 2
     assert page.locator(".note").first.get_attribute("data-line") == str(expected)
+
+
+def test_a_csv_form_problem_is_listed_without_a_note_in_the_unrelated_editor(workbench, server):
+    # The CSV form's fields are query parameters, not lines of the JSON editor: a problem with
+    # them is listed, and no note is pinned to the editor's first line (found in an independent
+    # audit of the page).
+    page = workbench
+    page.get_by_test_id("upload-csv").set_input_files(str(EXAMPLES / "plant_test.csv"))
+    page.wait_for_selector("[data-testid=csv-options]", state="visible", timeout=10_000)
+    page.fill("#csv-inputs", "steam_valve")
+    page.fill("#csv-outputs", "no_such_tag")
+    page.get_by_test_id("identify-csv").click()
+    errors = page.get_by_test_id("errors")
+    errors.wait_for(state="visible")
+    assert "no_such_tag" in errors.inner_text()
+    assert page.locator(".note").count() == 0
+    assert errors.locator("button.pointer").count() == 0
