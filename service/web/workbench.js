@@ -471,6 +471,14 @@ function renderResponses(answer, request) {
       records: perf.inputs,
     }));
   }
+  if (Array.isArray(answer.zones) && answer.zones.length) {
+    box.append(recordTable({
+      id: "performance-zones", caption: "Zone outputs in the run",
+      columns: [["output", (z) => z.output], ["low", (z) => z.low], ["high", (z) => z.high], ["fraction inside", (z) => z.fraction_inside],
+        ["largest excursion", (z) => z.largest_excursion], ["first step outside", (z) => z.first_outside], ["ended inside", (z) => (z.ended_inside ? "yes" : "no")]],
+      records: answer.zones,
+    }));
+  }
   if (answer.diverged_at !== null && answer.diverged_at !== undefined) {
     box.append(Object.assign(document.createElement("p"), { textContent: `The run diverged at step ${answer.diverged_at}.` }));
   }

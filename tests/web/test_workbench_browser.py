@@ -208,6 +208,10 @@ def test_every_bundled_example_runs_and_every_chart_is_drawn(workbench, server):
             assert low["line"] and high["line"]
             assert set(low["y"]) == {zone["low"]} and set(high["y"]) == {zone["high"]}
             assert "setpoint" not in traces  # a zone output has no setpoint to draw
+            cells = page.locator("#performance-zones tbody tr").first.locator("td")
+            assert cells.nth(0).inner_text() == zone["output"]
+            assert float(cells.nth(3).get_attribute("data-value")) == zone["fraction_inside"]
+            assert float(cells.nth(4).get_attribute("data-value")) == zone["largest_excursion"]
             others = {t["name"] for t in drawn_points(page, f"#response-output-{0 if j else 1}")}
             assert "setpoint" in others
             # the design is marginal by its zone, not unstable, and the page says so in words
