@@ -118,7 +118,9 @@ export function drawPoleMap(div, { closed = [], open = [], estimator = [], margi
     yaxis: { title: { text: "imaginary part" }, range: [-reach, reach], scaleanchor: "x", scaleratio: 1, zeroline: true, zerolinecolor: "#d0d0d0" },
     margin: { l: 56, r: 16, t: 40, b: 96 },
   });
-  return window.Plotly.react(div, traces, layout, config(div.dataset.filename || "poles"));
+  // Fitted to its box once drawn: a window resize while its section was hidden (after a failed
+  // request) leaves plotly's width stale, and react alone keeps it.
+  return window.Plotly.react(div, traces, layout, config(div.dataset.filename || "poles")).then(() => window.Plotly.Plots.resize(div));
 }
 
 function pick(object, ...names) {
