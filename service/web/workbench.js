@@ -527,7 +527,7 @@ function renderIdentify(answer) {
   box.replaceChildren();
   const parameter = (pair, name) => pair.parameters.find((q) => q.name === name);
   const value = (pair, name) => parameter(pair, name)?.estimate ?? null;
-  // a standard error the API gives as null is not determined by the data: shown as "∞"
+  // a standard error the API gives as null is not determined by the data: shown as "Infinity"
   const error = (pair, name) => {
     const q = parameter(pair, name);
     return q === undefined ? null : q.standard_error ?? Infinity;
