@@ -219,10 +219,10 @@ class SolverPool:
             return False
         return True
 
-    def _wait(self, solver: _Solver, deadline: float, seconds: float, cancel: threading.Event | None) -> Any:
+    def _wait(self, solver: _Solver, deadline: float, seconds: float, cancel: threading.Event | None) -> Outcome:
         while not solver.conn.poll(wait_slice(deadline, seconds, cancel, queued=False)):
             pass
-        return solver.conn.recv()
+        return _received(solver)
 
     def run(
         self,
@@ -267,10 +267,7 @@ class SolverPool:
                 break
         healthy = False
         try:
-            try:
-                outcome = self._wait(solver, deadline, seconds, cancel)
-            except (EOFError, OSError) as exc:
-                raise ComputeDied(f"the solver process stopped (exit code {solver.process.exitcode})") from exc
+            outcome = self._wait(solver, deadline, seconds, cancel)
             healthy = True
         finally:
             if healthy:
@@ -354,11 +351,7 @@ class SolverPool:
             await await_within(readable, deadline, seconds, cancel, gone, queued=False)
         finally:
             loop.remove_reader(fd)
-        try:
-            outcome: Outcome = solver.conn.recv()
-        except (EOFError, OSError) as exc:
-            raise ComputeDied(f"the solver process stopped (exit code {solver.process.exitcode})") from exc
-        return outcome
+        return _received(solver)
 
     def close(self) -> None:
         """Stop every idle solver; busy ones stop when their pipe closes."""
@@ -369,6 +362,15 @@ class SolverPool:
                 self._retire(self._idle.get_nowait())
             except queue.Empty:
                 return
+
+
+def _received(solver: _Solver) -> Outcome:
+    """The outcome waiting on ``solver``'s pipe; :class:`ComputeDied` when the pipe ended instead."""
+    try:
+        outcome: Outcome = solver.conn.recv()
+    except (EOFError, OSError) as exc:
+        raise ComputeDied(f"the solver process stopped (exit code {solver.process.exitcode})") from exc
+    return outcome
 
 
 def _pickled(call: Callable[..., Any], args: tuple[Any, ...]) -> memoryview:
