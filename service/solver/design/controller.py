@@ -304,9 +304,14 @@ def _unstable_plant_modes(
     values = scipy.linalg.eigvals(a, check_finite=False) if a.size else np.zeros(0, dtype=complex)
     return {
         "plant_unstable": int(np.count_nonzero(np.abs(values) > smallest)),
-        "fixed_poles": tuple(complex(z) for z in uncontrollable_modes(a, b, smallest_modulus=smallest)),
-        "hidden_poles": tuple(complex(z) for z in uncontrollable_modes(a.T, c.T, smallest_modulus=smallest)),
-        "unweighted_poles": tuple(
-            complex(z) for z in uncontrollable_modes(a.T, (output_root @ c).T, smallest_modulus=smallest)
+        # one eigenvalue problem for the three tests (A' has the eigenvalues of A)
+        "fixed_poles": _complexes(uncontrollable_modes(a, b, smallest_modulus=smallest, poles=values)),
+        "hidden_poles": _complexes(uncontrollable_modes(a.T, c.T, smallest_modulus=smallest, poles=values)),
+        "unweighted_poles": _complexes(
+            uncontrollable_modes(a.T, (output_root @ c).T, smallest_modulus=smallest, poles=values)
         ),
     }
+
+
+def _complexes(values: NDArray[np.complex128]) -> tuple[complex, ...]:
+    return tuple(complex(z) for z in values)

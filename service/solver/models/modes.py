@@ -146,7 +146,12 @@ def _modes(
 
 
 def uncontrollable_modes(
-    a: ArrayLike, b: ArrayLike, *, tolerance: float = RANK_TOLERANCE, smallest_modulus: float = 0.0
+    a: ArrayLike,
+    b: ArrayLike,
+    *,
+    tolerance: float = RANK_TOLERANCE,
+    smallest_modulus: float = 0.0,
+    poles: NDArray[np.complex128] | None = None,
 ) -> NDArray[np.complex128]:
     """Return the eigenvalues of ``A`` that no input reaches (PBH test).
 
@@ -163,6 +168,8 @@ def uncontrollable_modes(
         Test only the eigenvalues of at least this modulus (default 0: all).  Each test is
         one SVD of an ``n x (n+m)`` matrix, so on a large model (long dead-time registers)
         testing only the modes near or outside the unit circle is much cheaper.
+    poles : ndarray of complex, optional
+        The eigenvalues of ``a`` when the caller has them (those of ``a'`` are the same).
 
     Returns
     -------
@@ -182,7 +189,7 @@ def uncontrollable_modes(
     n = a_.shape[0]
     assert a_.shape == (n, n) and b_.ndim == 2 and b_.shape[0] == n, (a_.shape, b_.shape)
     assert tolerance > 0.0, tolerance
-    modes = [z for z, w in _modes(a_, b_, tolerance, smallest_modulus) for _ in range(w.shape[1])]
+    modes = [z for z, w in _modes(a_, b_, tolerance, smallest_modulus, poles=poles) for _ in range(w.shape[1])]
     values = np.array(modes, dtype=complex)
     return by_modulus(values)
 
