@@ -239,15 +239,41 @@ def _gain_entries(response: DesignResponse) -> dict[tuple[str, str, str], float]
     return out
 
 
+#: Which signal list names the columns of each gain (Kx's columns are states: no span).
+_COLUMN_SIGNALS = {"setpoint": "outputs", "previous_input": "inputs", "disturbance": "disturbances"}
+
+
+def _span_of(responses: tuple[DesignResponse, ...], signals: str, name: str) -> float:
+    """The span of tag ``name`` in list ``signals`` of the first design that gives one; 1 without."""
+    for response in responses:
+        for signal in getattr(response.plant, signals):
+            if signal.name == name and signal.span is not None:
+                return float(signal.span)
+    return 1.0
+
+
 def gain_changes(before: DesignResponse, after: DesignResponse) -> list[GainChange]:
-    """Every entry of Kr, Kx, Ku and Kd of either design, largest absolute change first (unmatched last)."""
+    """Every entry of Kr, Kx, Ku and Kd of either design, largest scaled change first (unmatched last).
+
+    The scaled change is ``change * span(column) / span(row)``: the change of the gain between
+    the signals divided by their spans (the in-service design's spans, the proposed one's
+    where it has none; 1 for a tag without a span and for a state), so that gains in different
+    engineering units rank by what they do to the signals in their typical ranges.  Without
+    any span it is the change itself.
+    """
     old, new = _gain_entries(before), _gain_entries(after)
     keys = list(old) + [k for k in new if k not in old]
+    both = (before, after)
     changes = []
     for key in keys:
         a, b = old.get(key), new.get(key)
         change = None if a is None or b is None else b - a
         relative = None if change is None or a is None or a == 0.0 else change / abs(a)
+        scaled = None
+        if change is not None:
+            column = _COLUMN_SIGNALS.get(key[0])
+            column_span = 1.0 if column is None else _span_of(both, column, key[2])
+            scaled = change * column_span / _span_of(both, "inputs", key[1])
         changes.append(
             GainChange(
                 gain=key[0],
@@ -257,9 +283,10 @@ def gain_changes(before: DesignResponse, after: DesignResponse) -> list[GainChan
                 proposed=b,
                 change=change,
                 relative_change=relative,
+                scaled_change=scaled,
             )
         )
-    changes.sort(key=lambda c: (c.change is None, -abs(c.change or 0.0)))
+    changes.sort(key=lambda c: (c.scaled_change is None, -abs(c.scaled_change or 0.0)))
     return changes
 
 

@@ -127,9 +127,11 @@ def summary(answer: CompareResponse, *, same_model: bool) -> list[str]:
     if matched and matched[0].change:
         c = matched[0]
         relative = "" if c.relative_change is None else f" ({100 * c.relative_change:+.0f} %)"
+        # ranked by the change between span-scaled signals; say so when a span made a difference
+        scaled = any(g.scaled_change != g.change for g in matched)
         out.append(
-            f"The largest gain change is {_GAIN_SYMBOL[c.gain]}[{c.row}, {c.column}]: "
-            f"{_g(c.in_service)} -> {_g(c.proposed)}{relative}."
+            f"The largest gain change{' (signals divided by their spans)' if scaled else ''} is "
+            f"{_GAIN_SYMBOL[c.gain]}[{c.row}, {c.column}]: {_g(c.in_service)} -> {_g(c.proposed)}{relative}."
         )
     if not same_model:
         out.append(
@@ -213,13 +215,25 @@ def compare_markdown(answer: CompareResponse, *, largest: int = 20) -> str:
         "",
         f"## Largest gain changes ({len(shown)} of {len(answer.gain_changes)}; all in the JSON answer)",
         "",
-        _row("gain", "manipulated", "column", "in service", "proposed", "change", "relative"),
-        _row("---", "---", "---", "---", "---", "---", "---"),
+        "Ranked by the scaled change: the change between the signals divided by their spans (span 1 for a",
+        "tag without one and for a state).",
+        "",
+        _row("gain", "manipulated", "column", "in service", "proposed", "change", "relative", "scaled change"),
+        _row("---", "---", "---", "---", "---", "---", "---", "---"),
     ]
     for c in shown:
         relative = "" if c.relative_change is None else f"{100 * c.relative_change:+.1f} %"
         lines.append(
-            _row(_GAIN_SYMBOL[c.gain], c.row, c.column, _g(c.in_service), _g(c.proposed), _g(c.change), relative)
+            _row(
+                _GAIN_SYMBOL[c.gain],
+                c.row,
+                c.column,
+                _g(c.in_service),
+                _g(c.proposed),
+                _g(c.change),
+                relative,
+                _g(c.scaled_change),
+            )
         )
     lines += [
         "",

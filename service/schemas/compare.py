@@ -52,6 +52,12 @@ class GainChange(ResponseModel):
     proposed: float | None = Field(description="Null where the proposed design has no such entry.")
     change: float | None = Field(description="proposed - in_service.")
     relative_change: float | None = Field(description="change / |in_service|; null where in_service is 0 or absent.")
+    scaled_change: float | None = Field(
+        description="change * span(column) / span(row): the change between the signals divided by their spans "
+        "(the in-service design's tags, the proposed one's where it gives none; span 1 for a tag without one and "
+        "for a state), unit-free where both tags have spans; the list is ranked by it. Null where either design "
+        "has no such entry."
+    )
 
 
 class DominantPoleReport(ResponseModel):
@@ -126,7 +132,9 @@ class CompareResponse(ResponseModel):
     """The change from the design in service to the proposed one."""
 
     summary: list[str] = Field(description="Plain-language sentences for the change record.")
-    gain_changes: list[GainChange] = Field(description="Every entry of Kr, Kx, Ku and Kd, largest change first.")
+    gain_changes: list[GainChange] = Field(
+        description="Every entry of Kr, Kx, Ku and Kd, largest |scaled_change| first, unmatched entries last."
+    )
     in_service: SideReport
     proposed: SideReport
     robustness: RobustnessChange | None = Field(description="When asked (robustness, or analysis.frequency on both).")

@@ -84,6 +84,38 @@ def test_every_gain_entry_changes_by_the_difference_of_the_designs_largest_first
     assert sizes[0] > 0
 
 
+def test_gain_changes_rank_by_the_change_between_span_scaled_signals(client):
+    # Badly scaled units (invented spans): a temperature whose span is 0.5 degC beside a level
+    # in % of 100.  Entries are ranked by change * span(column) / span(row), the gain between
+    # signals divided by their spans (common practice for comparing gains in mixed units),
+    # with span 1 for states; computed here from the two /design answers and the tags.
+    body = _faster_level()
+    for side in ("in_service", "proposed"):
+        model = body[side]["model"]
+        for tag, span in zip(model["inputs"], (100.0, 100.0), strict=True):
+            tag["span"] = span
+        for tag, span in zip(model["outputs"], (0.5, 100.0), strict=True):
+            tag["span"] = span
+    answer = _compare(client, body).json()
+    old, new = (client.post("/design", json=body[s]).json()["gain"] for s in ("in_service", "proposed"))
+    model = body["in_service"]["model"]
+    spans = {t["name"]: t["span"] for t in model["inputs"] + model["outputs"]}
+    for c in answer["gain_changes"]:
+        i = old["labels"]["rows"].index(c["row"])
+        j = old["labels"][c["gain"]].index(c["column"])
+        change = new[c["gain"]][i][j] - old[c["gain"]][i][j]
+        column = 1.0 if c["gain"] == "state" else spans[c["column"]]
+        assert c["scaled_change"] == pytest.approx(change * column / spans[c["row"]], rel=1e-12, abs=1e-300)
+    scaled = [abs(c["scaled_change"]) for c in answer["gain_changes"]]
+    assert scaled == sorted(scaled, reverse=True)
+    absolute = max(answer["gain_changes"], key=lambda c: abs(c["change"]))
+    top = answer["gain_changes"][0]
+    assert (top["gain"], top["column"]) != (absolute["gain"], absolute["column"]), "the spans change the ranking"
+    text = " ".join(answer["summary"])
+    assert "The largest gain change (signals divided by their spans) is" in text
+    assert f"[{top['row']}, {top['column']}]" in text
+
+
 def test_the_summary_says_which_loop_got_faster_and_how_robustness_moved(client):
     answer = _compare(client, _faster_level()).json()
     level = next(f for f in answer["scenario"]["outputs"] if f["name"] == "vessel_level")
