@@ -376,6 +376,11 @@ class MoveQP:
             "primal_tol": tolerance,
             "eps_prox": 0.0,  # H is positive definite: no proximal regularization
             "iter_limit": int(iteration_limit),
+            # DAQP gives up as 'cycling' after this many iterations without progress (10 by
+            # default).  The output rows inside a dead time and the zone rows tie at degenerate
+            # vertices, and a soft QP (always feasible) then ended 'cycling' and held the input;
+            # one pass over every constraint is allowed before giving up.
+            "cycle_tol": min(int(iteration_limit), nv + nr),
         }
         self._last_sense = np.zeros(nv + nr, dtype=np.int32)
 
