@@ -136,3 +136,20 @@ def test_a_run_with_a_zone_and_input_targets_settles_on_its_setpoints_with_the_l
     expected = np.array(POINT["inputs"]) + u_r @ (np.array(setpoint) - POINT["outputs"])
     assert np.all(np.abs(inputs[-1] - expected) <= 1e-4 * INPUT_SPAN), (inputs[-1], expected)
     assert answer["zones"][0]["ended_inside"]
+
+
+def test_the_robustness_verdict_of_a_zone_design_is_marginal_as_its_closed_loop_is(client):
+    # The zone output's integrator is not in the gains, so the loop keeps a pole at z = 1
+    # (README: zone outputs); a pole within 1e-6 of the circle is marginal, never stable
+    # (README: "closed_loop.stable is true when every pole has modulus below 1 - 1e-6 ...
+    # so rounding never flips a verdict"). The robustness block had used |z| < 1 exactly,
+    # so rounding put this pole inside (0.9999999999999982) and called the loop stable.
+    request = _request()
+    request["analysis"] = {"frequency": True, "points": 60}
+    response = client.post("/design", json=request)
+    assert response.status_code == 200, response.text
+    answer = response.json()
+    robustness = answer["robustness"]
+    assert abs(robustness["spectral_radius"] - 1.0) < 1e-9
+    assert robustness["stable"] is False and answer["closed_loop"]["stable"] is False
+    assert {m["cause"] for m in answer["closed_loop"]["marginal_modes"]} == {"zone_output"}
