@@ -270,8 +270,8 @@ def scaled_estimator(inputs: EstimatorInputs, plant: DiscretePlant, scaled: Scal
         d_measured=dm,
         measured_labels=[s.name for s in plant.measured],
         # signals with spans have size 1 in the scaled plant; the others get natural sizes
-        fixed_outputs=[s.span is not None for s in plant.measured],
-        fixed_inputs=[s.span is not None for s in plant.inputs],
+        fixed_outputs=[s.spanned for s in plant.measured],
+        fixed_inputs=[s.spanned for s in plant.inputs],
     )
     if not (np.all(np.isfinite(estimator.gain)) and np.all(np.isfinite(estimator.poles))):
         raise NumericalError(

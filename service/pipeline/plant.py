@@ -37,11 +37,16 @@ Where = tuple[str | int, ...]
 
 @dataclass(frozen=True)
 class Signal:
-    """A signal's resolved tag: name (default ``u1``, ``z1``, ``d1``, ``y1``), unit, span."""
+    """A signal's resolved tag: name (default ``u1``, ``z1``, ``d1``, ``y1``), unit, span.
+
+    ``span`` is 1 when the request gave none; ``spanned`` says whether it gave one (a signal
+    without a span has its natural size where a size is needed, not 1 in its unit).
+    """
 
     name: str
     unit: str | None
     span: float
+    spanned: bool = False
 
 
 @dataclass(frozen=True)
@@ -164,7 +169,7 @@ def _signals(
                 f"give a span for every one of the {what} or for none (scaling applies to the whole list)",
             )
         )
-    signals = tuple(Signal(t.name, t.unit, t.span if t.span is not None else 1.0) for t in tags)
+    signals = tuple(Signal(t.name, t.unit, t.span if t.span is not None else 1.0, t.span is not None) for t in tags)
     return signals, problems
 
 

@@ -62,6 +62,7 @@ from service.schemas.simulate import (
 from service.solver.design.marginal import MARGINAL_TOLERANCE
 from service.solver.estimation.estimator import Estimator, unmeasured_outputs
 from service.solver.estimation.loop import TrueLoop, WholeLoop, control_loop, true_loop, whole_loop
+from service.solver.estimation.sizes import natural_sizes
 from service.solver.evaluation.divergence import DIVERGENCE_LEVEL, divergence_onset
 from service.solver.evaluation.performance import Performance, loop_performance
 from service.solver.evaluation.simulation import Event, Scenario, Simulation, TruePlant, simulate_loop
@@ -225,12 +226,26 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
         inputs_eng, estimates = sim.inputs * su, sim.estimates * estimate_span
         dm = sim.measured_disturbances * sd if sd.size else np.zeros((inputs.steps, 0))
     rows = _first_bad_row(sim.time[:, None], outputs, measured, setpoints, inputs_eng, estimates, dm)
-    sizes = [np.abs(e.value).max(initial=0.0) for e in (*scenario.setpoint_changes, *scenario.output_disturbances)]
-    sizes += [np.abs(e.value).max(initial=0.0) for e in (*scenario.input_disturbances, *scenario.measured_disturbances)]
-    for start in (scenario.initial_input, scenario.initial_setpoint):
+    # Divergence is judged in spans, and a signal without a span in its natural size (the
+    # step-response equilibration of the estimator's defaults): in engineering units a flow in
+    # kg/h moving 8000 for a setpoint step of 1 degC is no sign of growth without bound.
+    natural = natural_sizes(
+        scaled.a,
+        scaled.b,
+        scaled.c,
+        fixed_outputs=[s.spanned for s in plant.outputs],
+        fixed_inputs=[s.spanned for s in plant.inputs],
+    )
+    ny, nu = natural.outputs, natural.inputs
+    sizes = [np.abs(e.value / ny).max(initial=0.0) for e in (*scenario.setpoint_changes, *scenario.output_disturbances)]
+    sizes += [np.abs(e.value / nu).max(initial=0.0) for e in scenario.input_disturbances]
+    sizes += [np.abs(e.value).max(initial=0.0) for e in scenario.measured_disturbances]
+    for start, size in ((scenario.initial_input, nu), (scenario.initial_setpoint, ny)):
         if start is not None:
-            sizes.append(float(np.abs(start).max(initial=0.0)))
-    diverging = divergence_onset(np.hstack([sim.outputs[:rows], sim.inputs[:rows]]), reference=max([1.0, *sizes]))
+            sizes.append(float(np.abs(start / size).max(initial=0.0)))
+    diverging = divergence_onset(
+        np.hstack([sim.outputs[:rows] / ny, sim.inputs[:rows] / nu]), reference=max([1.0, *sizes])
+    )
     performance = None
     if rows == inputs.steps:
         performance = loop_performance(

@@ -117,6 +117,7 @@ class RobustnessReport(ResponseModel):
         description="Largest modulus of the poles of plant, controller and estimator together."
     )
     stable: bool = Field(
-        description="That loop's poles all lie strictly inside the unit circle; margins and peaks speak about "
-        "robustness only when it is stable."
+        description="Every pole of that loop below 1 - 1e-6 in modulus, as closed_loop.stable (a pole within "
+        "1e-6 of the circle, such as a zone output's, is marginal: not stable); margins and peaks speak about "
+        "robustness only when no pole lies outside the circle."
     )

@@ -277,7 +277,8 @@ class SimulateResponse(ResponseModel):
     diverged_at: int | None = Field(
         description="The step from which the run grows without bound: the first step not computed because "
         "the numbers overflowed (the series stop there), or the first step at which the outputs and inputs "
-        "exceed 1000 times the scenario's own size (in spans) while still growing by more than 0.1 % per "
+        "exceed 1000 times the scenario's own size (in spans; a signal without a span in its natural size) "
+        "while still growing by more than 0.1 % per "
         "sample (the series run to the end; warning run_diverging). Null for a bounded run."
     )
     performance: PerformanceReport

@@ -55,11 +55,26 @@ from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.weights import weight_matrix, weight_root
 
-__all__ = ["REACHABLE_TOLERANCE", "SteadyStateTarget", "TargetProblem", "steady_state_target", "target_problem"]
+__all__ = [
+    "REACHABLE_TOLERANCE",
+    "SPARE_INPUT_TOLERANCE",
+    "SteadyStateTarget",
+    "TargetProblem",
+    "steady_state_target",
+    "target_problem",
+]
 
 #: A target counts as exact when its output misses the setpoint by at most this much, relative
 #: to ``max(1, |r|, |d|)`` (infinity norms; common practice for a least-squares residual).
 REACHABLE_TOLERANCE = 1e-9
+
+#: A direction of the spare steady states counts as moving no input when its weighted input
+#: part is below this, relative to ``||V|| ||J N||`` (the weighted input part of the whole
+#: orthonormal steady-state basis ``N``): far above its rounding (about ``1e-14`` of it for
+#: the state of an integrator no weighted output sees, in a test of 57 states), far below
+#: a direction that moves an input (common practice for rank decisions, a few orders of
+#: magnitude above rounding).
+SPARE_INPUT_TOLERANCE = 1e-10
 
 
 @dataclass(frozen=True)
@@ -214,7 +229,11 @@ def target_problem(
     inputs' fit ``min |V (J (xi0 + N N2 w) - u_t)|`` (``V' V = S``, ``J`` picks ``u_s`` out of
     ``[x_s; u_s]``, ``xi0`` the target without input targets) has the least-norm solution
     ``w = (V J N N2)^+ V (u_t - J xi0)``; ``N N2 w`` is orthogonal to ``xi0``, so the result is
-    again of least norm among its ties.  With ``S = 0`` it is ``xi0``.
+    again of least norm among its ties.  With ``S = 0`` it is ``xi0``.  The pseudo-inverse
+    drops the directions whose weighted input part is below :data:`SPARE_INPUT_TOLERANCE`:
+    they move no input (such as the state of an integrating output of weight 0, a level in a
+    zone), so the least-norm solution leaves them at zero; inverting their rounding would move
+    ``u_s`` off the setpoints' steady state.
     """
     a_ = np.asarray(a, dtype=float)
     b_ = np.asarray(b, dtype=float)
@@ -239,7 +258,11 @@ def target_problem(
         spare = null @ scipy.linalg.null_space(w @ fit @ null)  # N N2: (n+m, k2), orthonormal columns
         if spare.shape[1]:
             v = weight_root(s_in)
-            pull = spare @ scipy.linalg.pinv(v @ spare[n:]) @ v  # N N2 (V J N N2)^+ V, (n+m, m)
+            # A spare direction that moves no input (the state of an integrator no weighted
+            # output sees: a level in a zone) has an input part of rounding size; it must not
+            # be inverted, or the target's inputs leave the setpoints' steady state.
+            floor = SPARE_INPUT_TOLERANCE * float(np.linalg.norm(v, 2)) * float(np.linalg.norm(null[n:], 2))
+            pull = spare @ scipy.linalg.pinv(v @ spare[n:], atol=floor, rtol=0.0) @ v  # N N2 (V J N N2)^+ V
             target_map = pull
             setpoint_map = setpoint_map - pull @ setpoint_map[n:]
             disturbance_map = disturbance_map - pull @ disturbance_map[n:]

@@ -323,9 +323,11 @@ def sensitivity_advice(analysis: FrequencyAnalysis) -> Diagnostic | None:
     -------
     Diagnostic or None
         ``high_peak_sensitivity``; nothing for an unstable loop (its peaks mean nothing and
-        the design warnings already say it is unstable).
+        the design warnings already say it is unstable).  A marginal loop (a pole on the
+        circle that the loop's signals do not see, such as a zone output's integrator) keeps
+        its advice, whichever side of 1 rounding puts that pole.
     """
-    if not analysis.stable:
+    if analysis.unstable:
         return None
     high = [
         loop for loop in (analysis.plant_input, analysis.plant_output) if loop.peak_sensitivity > PEAK_SENSITIVITY_LIMIT

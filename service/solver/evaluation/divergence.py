@@ -3,8 +3,10 @@
 A linear loop with a pole outside the unit circle grows like ``rho^k`` once that mode is
 excited; long before double precision overflows (near 1e308) its numbers are meaningless for
 a plant.  With the envelope ``E(k) = max_i |s_i(k)|`` of the run's signals in spans (outputs
-and inputs scaled by their spans) and the scenario's own size ``ref`` (the largest setpoint,
-disturbance or initial value in spans, at least 1), the run is called diverging at the first
+and inputs scaled by their spans; the caller divides a signal without a span by its natural
+size, :mod:`service.solver.estimation.sizes`, so that no unit decides) and the scenario's own
+size ``ref`` (the largest setpoint, disturbance or initial value in the same sizes, at least
+1), the run is called diverging at the first
 step ``k`` with
 
     E(k) > DIVERGENCE_LEVEL * ref      and      (E(k) / E(k - w))^(1/w) > 1 + GROWTH_RATE

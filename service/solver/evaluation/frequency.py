@@ -53,6 +53,7 @@ from numpy.typing import NDArray
 
 from service.errors import NumericalError
 from service.solver.design.controller import ControllerDesign
+from service.solver.design.marginal import MARGINAL_TOLERANCE
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.realization import (
     StateSpace,
@@ -171,7 +172,10 @@ class FrequencyAnalysis:
     closed_loop_poles : ndarray of complex
         Poles of plant and controller together, by descending modulus.
     stable : bool
-        All closed-loop poles strictly inside the unit circle.
+        Every closed-loop pole below ``1 - MARGINAL_TOLERANCE`` in modulus, the verdict of
+        ``closed_loop.stable`` and of the other loops (:mod:`service.solver.design.marginal`): a
+        pole on the circle to rounding (a zone output's integrator) is marginal, whichever
+        side of 1 rounding puts it.
     """
 
     frequencies: NDArray[np.float64]
@@ -184,6 +188,11 @@ class FrequencyAnalysis:
     @property
     def nyquist_frequency(self) -> float:
         return float(np.pi / self.sample_time)
+
+    @property
+    def unstable(self) -> bool:
+        """A closed-loop pole above ``1 + MARGINAL_TOLERANCE`` in modulus."""
+        return bool(np.abs(self.closed_loop_poles).max(initial=0.0) > 1.0 + MARGINAL_TOLERANCE)
 
 
 def frequency_grid(
@@ -473,7 +482,7 @@ def frequency_analysis(
         plant_input=at_input,
         plant_output=at_output,
         closed_loop_poles=poles,
-        stable=bool(np.abs(poles).max(initial=0.0) < 1.0),
+        stable=bool(np.abs(poles).max(initial=0.0) < 1.0 - MARGINAL_TOLERANCE),
     )
 
 

@@ -369,13 +369,23 @@ class MoveQP:
             step[start:stop] = first + np.repeat(np.arange(count), signals.size)
         self._kind_of, self._index_of, self._step_of = kinds, index, step
 
-        lower, upper = self._bounds(np.zeros(m), np.zeros(steps * p))
+        # DAQP solves in the variables z = dU / d (Jacobi scaling, d_i = H_ii^(-1/2)): in
+        # engineering units without spans a move of one input can weigh 1e16 times another's,
+        # and DAQP then answered 'optimal' with a move far from the optimum.
+        self._scale = 1.0 / np.sqrt(np.diag(self._full_hessian))
+        scaled_hessian = self._full_hessian * np.outer(self._scale, self._scale)
+        lower, upper = self._scaled_bounds(*self._bounds(np.zeros(m), np.zeros(steps * p)))
         self._model = daqp.Model()
-        self._model.setup(self._full_hessian, np.zeros(nv), self._rows, upper, lower)
+        self._model.setup(scaled_hessian, np.zeros(nv), np.ascontiguousarray(self._rows * self._scale), upper, lower)
         self._model.settings = {
             "primal_tol": tolerance,
             "eps_prox": 0.0,  # H is positive definite: no proximal regularization
             "iter_limit": int(iteration_limit),
+            # DAQP gives up as 'cycling' after this many iterations without progress (10 by
+            # default).  The output rows inside a dead time and the zone rows tie at degenerate
+            # vertices, and a soft QP (always feasible) then ended 'cycling' and held the input;
+            # one pass over every constraint is allowed before giving up.
+            "cycle_tol": min(int(iteration_limit), nv + nr),
         }
         self._last_sense = np.zeros(nv + nr, dtype=np.int32)
 
@@ -582,18 +592,21 @@ class MoveQP:
         starts.append(np.zeros_like(self._last_sense))
         for sense in starts:
             try:
+                lower, upper = self._scaled_bounds(qp.lower, qp.upper)
+                linear = qp.linear * self._scale
                 if sense is None:
-                    self._model.update(f=qp.linear, bupper=qp.upper, blower=qp.lower)
+                    self._model.update(f=linear, bupper=upper, blower=lower)
                 else:
-                    self._model.update(f=qp.linear, bupper=qp.upper, blower=qp.lower, sense=sense)
+                    self._model.update(f=linear, bupper=upper, blower=lower, sense=sense)
                 x, _, flag, info = self._model.solve()
             except Exception:  # the solver must never end the run
                 flag, info, x = -99, {"iterations": 0}, None
             iterations += int(info.get("iterations", 0))
             if flag > 0 and x is not None:
-                x = np.asarray(x, dtype=float)
+                x = np.asarray(x, dtype=float) * self._scale
                 if np.isfinite(x).all() and self._violation(x, qp) <= 10.0 * self._tolerance:
                     multipliers = np.asarray(info["lam"], dtype=float).copy()
+                    multipliers[: self.variables] /= self._scale  # bounds on z to bounds on dU
                     self._last_sense = _sense_of(multipliers)
                     self._kept = True
                     return self._result(x, multipliers, "optimal", iterations, "active_set")
@@ -610,9 +623,21 @@ class MoveQP:
         sense[has] = self._last_sense[self._shift[has]]
         return sense
 
+    def _scaled_bounds(
+        self, lower: NDArray[np.float64], upper: NDArray[np.float64]
+    ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """The bounds on ``[z; rows x]`` for DAQP: the variables' own divided by their scale."""
+        nv = self.variables
+        return (
+            np.concatenate([lower[:nv] / self._scale, lower[nv:]]),
+            np.concatenate([upper[:nv] / self._scale, upper[nv:]]),
+        )
+
     def _violation(self, x: NDArray[np.float64], qp: MoveProblem) -> float:
-        values = np.concatenate([x, self._rows @ x])
-        excess = np.maximum(values - qp.upper, qp.lower - values)
+        """Largest excess over a bound: the variables' in their scaled units ``z``, the rows' in theirs."""
+        lower, upper = self._scaled_bounds(qp.lower, qp.upper)
+        values = np.concatenate([x / self._scale, self._rows @ x])
+        excess = np.maximum(values - upper, lower - values)
         return float(excess.max(initial=0.0))
 
     def _result(
