@@ -165,6 +165,9 @@ def model_error_report(study: ModelErrorStudy, estimator: Estimator) -> ModelErr
                 extra_dead_time=case.extra_dead_time,
                 spectral_radius=case.spectral_radius,
                 verdict=case.verdict,
+                nominal_circle_poles=case.nominal_circle_poles,
+                rest_spectral_radius=case.rest_spectral_radius,
+                rest_verdict=case.rest_verdict,
             )
             for case in study.cases
         ],

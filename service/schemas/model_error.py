@@ -65,6 +65,17 @@ class ModelErrorCaseReport(ResponseModel):
     verdict: Literal["stable", "marginal", "unstable"] = Field(
         description="stable: radius below 1 - tolerance; unstable: above 1 + tolerance; marginal: in between."
     )
+    nominal_circle_poles: int = Field(
+        description="Poles of this loop set aside because they stay (within the tolerance) at poles that the "
+        "model's own loop has on the unit circle by construction: a zone output's integrator, a direction of "
+        "the inputs that moves no weighted output (closed_loop and the design's warnings say which). 0 when "
+        "that loop has none."
+    )
+    rest_spectral_radius: float = Field(description="Largest modulus of the other poles (0 when none is left).")
+    rest_verdict: Literal["stable", "marginal", "unstable"] = Field(
+        description="The verdict on the other poles, with the same tolerance: whether the model error moves a "
+        "pole beyond those the design leaves on the circle. Equal to verdict when nominal_circle_poles is 0."
+    )
 
 
 class ModelErrorRangeReport(ResponseModel):
@@ -72,8 +83,8 @@ class ModelErrorRangeReport(ResponseModel):
 
     extra_dead_time: int
     lowest_stable_factor: float | None = Field(
-        description="Smallest factor of the run of consecutive stable factors (sorted) that holds the factor "
-        "nearest 1; null when that factor itself is not stable. Only the factors asked are tried: the true "
+        description="Smallest factor of the run of consecutive factors (sorted) whose rest_verdict is stable that "
+        "holds the factor nearest 1; null when that factor's is not. Only the factors asked are tried: the true "
         "limit lies between this factor and the next one asked."
     )
     highest_stable_factor: float | None = Field(description="Largest factor of that run; null as above.")

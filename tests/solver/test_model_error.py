@@ -119,7 +119,7 @@ def test_full_state_loop_matches_the_closed_loop_written_out():
 
 
 def _cases(verdicts):
-    return [ModelErrorCase(f, 0, 0.0, v) for f, v in verdicts]
+    return [ModelErrorCase(f, 0, 0.0, v, 0, 0.0, v) for f, v in verdicts]
 
 
 def test_the_stable_range_is_the_run_around_the_factor_nearest_one():
@@ -129,3 +129,57 @@ def test_the_stable_range_is_the_run_around_the_factor_nearest_one():
     cases = _cases([(0.5, "stable"), (1.0, "stable"), (2.0, "unstable"), (3.0, "stable")])
     assert stable_factor_range(cases) == (0.5, 1.0)
     assert stable_factor_range(_cases([(0.9, "unstable"), (2.0, "stable")])) == (None, None)
+
+
+def _python_control_poles(design, estimator, f, d, ts=1.0):
+    k = controller_system(design, estimator)
+    controller = control.ss(k.a, k.b, k.c, k.d, ts)
+    m, p = B.shape[1], C.shape[0]
+    plant = control.ss(A, f * B, C, np.zeros((p, m)), ts)
+    if d:
+        delay = control.append(*[control.tf([1.0], [1.0] + [0.0] * d, ts) for _ in range(m)])
+        plant = control.series(control.ss(delay), plant)
+    return np.asarray(control.poles(control.feedback(plant, controller, sign=1)))
+
+
+def test_a_pole_the_design_leaves_on_the_circle_is_set_aside_for_the_verdict_of_the_rest():
+    # The level carries no output weight (as a zone output in the unconstrained gains): no gain
+    # sees its integrator (nor the estimator's disturbance on it), so z = 1 stays a pole of the
+    # loop for every gain factor and dead time, and the plain verdict is marginal throughout.
+    # The rest of the loop decides.
+    design = design_controller(
+        A, B, C, output_weight=np.array([1.0, 0.0]), move_weight=np.full(2, 0.5), prediction=30, control=3
+    )
+    estimator = _estimator(A, B, C)
+    loop = control_loop(design, estimator)
+    factors, delays = [0.5, 1.0, 2.0, 4.0, 8.0, 16.0], [0, 3]
+    study = model_error_study(loop, A, B, C, gain_factors=factors, extra_dead_times=delays)
+    for case in study.cases:
+        # python-control's poles of the same loop; those at z = 1 (a defective pair scatters by
+        # about sqrt(eps)) are the level's
+        theirs = _python_control_poles(design, estimator, case.gain_factor, case.extra_dead_time)
+        at_one = np.abs(theirs - 1.0) <= 1e-6
+        assert case.nominal_circle_poles == np.count_nonzero(at_one) >= 1, case
+        rest = float(np.abs(theirs[~at_one]).max())
+        assert case.rest_spectral_radius == pytest.approx(rest, rel=1e-7), case
+        expected = "stable" if rest < 1 - 1e-6 else "unstable" if rest > 1 + 1e-6 else "marginal"
+        assert case.rest_verdict == expected
+        assert case.verdict == ("unstable" if expected == "unstable" else "marginal")
+    verdicts = {c.rest_verdict for c in study.cases}
+    assert verdicts == {"stable", "unstable"}, "the factors asked reach an unstable rest"
+    for d, low, high in study.stable_ranges:
+        row = sorted((c for c in study.cases if c.extra_dead_time == d), key=lambda c: c.gain_factor)
+        assert low is not None and high is not None and low <= 1.0 <= high
+        assert all(c.rest_verdict == "stable" for c in row if low <= c.gain_factor <= high)
+        beyond = [c for c in row if c.gain_factor > high]
+        assert not beyond or beyond[0].rest_verdict != "stable"
+
+
+def test_a_loop_without_poles_on_the_circle_has_the_same_verdict_twice():
+    design, estimator = _design(A, B, C), _estimator(A, B, C)
+    study = model_error_study(
+        control_loop(design, estimator), A, B, C, gain_factors=[0.5, 1.0, 3.0, 6.0], extra_dead_times=[0, 2]
+    )
+    for case in study.cases:
+        assert case.nominal_circle_poles == 0
+        assert (case.rest_verdict, case.rest_spectral_radius) == (case.verdict, case.spectral_radius)

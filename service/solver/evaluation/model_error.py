@@ -19,6 +19,14 @@ of controller, estimator and that plant is
 ``true_plant``; its spectral radius decides the verdict with the tolerance of every
 stable/unstable verdict (:data:`service.solver.design.marginal.MARGINAL_TOLERANCE`).
 
+A design may leave poles on the unit circle by construction: the integrator of a zone output
+(no gain sees it; the move QP holds the output in its zone) or a direction of the inputs that
+moves no weighted output.  A uniform gain error or a longer dead time leaves such a pole where
+it is, so every case would read ``marginal`` and say nothing about the rest of the loop.  Each
+case therefore also gives the verdict on the poles other than those staying at the model's own
+loop's poles on the circle (:func:`set_aside_nominal_circle`), and the stable ranges are those
+of that verdict; a loop without such poles has the same verdict twice.
+
 Accuracy: the eigenvalues come from LAPACK's nonsymmetric solver on the whole loop matrix,
 backward stable; a dead time's register makes a defective eigenvalue at zero whose copies
 scatter by about ``(eps ||M||)^(1/k)`` for a block of size ``k`` (Wilkinson), which moves the
@@ -45,6 +53,7 @@ __all__ = [
     "model_error_study",
     "perturbed_plant",
     "perturbed_plant_with_feedthrough",
+    "set_aside_nominal_circle",
     "stable_factor_range",
 ]
 
@@ -64,12 +73,23 @@ class ModelErrorCase:
     spectral_radius : float
     verdict : {"stable", "marginal", "unstable"}
         Radius below ``1 - MARGINAL_TOLERANCE``, within it of 1, or above ``1 + MARGINAL_TOLERANCE``.
+    nominal_circle_poles : int
+        Poles of this loop set aside as the model's own loop's poles on the unit circle (see
+        :func:`set_aside_nominal_circle`); 0 when that loop has none.
+    rest_spectral_radius : float
+        Largest modulus of the other poles.
+    rest_verdict : {"stable", "marginal", "unstable"}
+        The verdict on the other poles: whether the model error moves a pole beyond those the
+        design leaves on the circle (a zone output's integrator, a free input direction).
     """
 
     gain_factor: float
     extra_dead_time: int
     spectral_radius: float
     verdict: Verdict
+    nominal_circle_poles: int
+    rest_spectral_radius: float
+    rest_verdict: Verdict
 
 
 @dataclass(frozen=True)
@@ -81,9 +101,9 @@ class ModelErrorStudy:
     cases : list of ModelErrorCase
     stable_ranges : list of tuple
         Per extra dead time (in the order given): ``(d, lowest, highest)``, the smallest and
-        largest factor of the run of consecutive stable factors (sorted) that holds the factor
-        nearest 1 (by ``|log f|``); ``lowest`` and ``highest`` are ``None`` when that factor is
-        not stable.
+        largest factor of the run of consecutive factors (sorted) whose ``rest_verdict`` is
+        stable that holds the factor nearest 1 (by ``|log f|``); ``lowest`` and ``highest``
+        are ``None`` when that factor's is not.
     """
 
     cases: list[ModelErrorCase]
@@ -164,6 +184,48 @@ def perturbed_plant_with_feedthrough(
     return a_t, b_t, c_t, np.zeros((p, m))
 
 
+def set_aside_nominal_circle(
+    poles: NDArray[np.complex128], nominal: NDArray[np.complex128], *, tolerance: float = MARGINAL_TOLERANCE
+) -> tuple[int, float]:
+    """Set aside the poles that stay where the model's own loop has poles on the unit circle.
+
+    Parameters
+    ----------
+    poles : ndarray of complex, shape (k,)
+        One perturbed loop's poles.
+    nominal : ndarray of complex, shape (q,)
+        The model's own loop's poles within ``tolerance`` of the circle (``||z| - 1| <=
+        tolerance``): those a design leaves there by construction, such as the integrator of a
+        zone output, which no gain sees, or a direction of the inputs that moves no weighted
+        output.  A gain error or a longer dead time leaves such a pole where it is.
+    tolerance : float, keyword-only
+        A pole of ``poles`` is set aside for a nominal one when it lies within this distance of
+        it and within this of the circle; each nominal pole takes at most one (the nearest).
+
+    Returns
+    -------
+    count : int
+        Poles set aside (at most ``q``).
+    rest_radius : float
+        Largest modulus of the others (0 when none is left).
+
+    Notes
+    -----
+    A nominal pole that the perturbation moves off the circle (by more than ``tolerance``)
+    takes no partner, so the moved pole decides the verdict as any other: the setting aside
+    never hides an instability the perturbation causes.
+    """
+    left = np.ones(poles.size, dtype=bool)
+    on_circle = np.abs(np.abs(poles) - 1.0) <= tolerance
+    for z in nominal:
+        distance = np.where(left & on_circle, np.abs(poles - z), np.inf)
+        nearest = int(np.argmin(distance)) if distance.size else 0
+        if distance.size and distance[nearest] <= tolerance:
+            left[nearest] = False
+    rest = np.abs(poles[left])
+    return int(poles.size - np.count_nonzero(left)), float(rest.max(initial=0.0))
+
+
 def _verdict(radius: float) -> Verdict:
     if radius < 1.0 - MARGINAL_TOLERANCE:
         return "stable"
@@ -184,12 +246,12 @@ def stable_factor_range(cases: Sequence[ModelErrorCase]) -> tuple[float | None, 
     if not ordered:
         return None, None
     centre = min(range(len(ordered)), key=lambda i: abs(np.log(ordered[i].gain_factor)))
-    if ordered[centre].verdict != "stable":
+    if ordered[centre].rest_verdict != "stable":
         return None, None
     low = high = centre
-    while low > 0 and ordered[low - 1].verdict == "stable":
+    while low > 0 and ordered[low - 1].rest_verdict == "stable":
         low -= 1
-    while high < len(ordered) - 1 and ordered[high + 1].verdict == "stable":
+    while high < len(ordered) - 1 and ordered[high + 1].rest_verdict == "stable":
         high += 1
     return ordered[low].gain_factor, ordered[high].gain_factor
 
@@ -231,14 +293,18 @@ def model_error_study(
     """
     cases: list[ModelErrorCase] = []
     ranges: list[tuple[int, float | None, float | None]] = []
+    own = true_loop(loop, a, b, c, feedthrough).poles  # the model's own loop
+    nominal = own[np.abs(np.abs(own) - 1.0) <= MARGINAL_TOLERANCE]
     for d in extra_dead_times:
         row = []
         for f in gain_factors:
             a_t, b_t, c_t, d_t = perturbed_plant_with_feedthrough(
                 a, b, c, feedthrough, gain_factor=float(f), extra_dead_time=int(d)
             )
-            radius = true_loop(loop, a_t, b_t, c_t, d_t if feedthrough is not None else None).spectral_radius
-            row.append(ModelErrorCase(float(f), int(d), radius, _verdict(radius)))
+            perturbed = true_loop(loop, a_t, b_t, c_t, d_t if feedthrough is not None else None)
+            radius = perturbed.spectral_radius
+            aside, rest = set_aside_nominal_circle(perturbed.poles, nominal) if nominal.size else (0, radius)
+            row.append(ModelErrorCase(float(f), int(d), radius, _verdict(radius), aside, rest, _verdict(rest)))
         cases += row
         ranges.append((int(d), *stable_factor_range(row)))
     return ModelErrorStudy(cases=cases, stable_ranges=ranges)
