@@ -514,6 +514,9 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
         sample_time=plant.sample_time,
         analysis=analysis,
         poles=properties.poles,
+        # the analysis breaks the loop at the measured outputs: the zone outputs when they are those
+        floating_outputs=() if inputs.zones is None or plant.measured_own else inputs.zones.outputs,
+        output_labels=[s.name for s in plant.measured],
     )
     gain = unscale_gain(design.gain, input_span=su, output_span=sz)
     limit_check = None

@@ -153,3 +153,22 @@ def test_the_robustness_verdict_of_a_zone_design_is_marginal_as_its_closed_loop_
     assert abs(robustness["spectral_radius"] - 1.0) < 1e-9
     assert robustness["stable"] is False and answer["closed_loop"]["stable"] is False
     assert {m["cause"] for m in answer["closed_loop"]["marginal_modes"]} == {"zone_output"}
+
+
+def test_the_fragility_advice_leaves_the_floating_zone_output_out_at_the_plant_output(client):
+    # The drum level floats in the unconstrained gains: at steady state it takes up what the
+    # other outputs' disturbances do to it, so the plant-output sensitivity of the whole
+    # matrix is above 2 at the grid's low end.  That is no margin of the tracking loops and
+    # no move weight removes it; the advice judges the plant output without the zone output
+    # (tests/solver/test_tuning_advice.py checks that judgment on a hand-computed loop).
+    request = _request()
+    request["analysis"] = {"frequency": True, "points": 100}
+    answer = client.post("/design", json=request).json()
+    at_output = answer["robustness"]["plant_output"]
+    assert at_output["peak_sensitivity"] > 2.0
+    assert at_output["peak_sensitivity_frequency"] < 1e-6  # the steady state, not a resonance
+    fragile = [w["message"] for w in answer["warnings"] if w["code"] == "high_peak_sensitivity"]
+    assert not any(f"at the plant output {at_output['peak_sensitivity']:.3g}" in m for m in fragile)
+    at_input = answer["robustness"]["plant_input"]["peak_sensitivity"]
+    if at_input > 2.0:  # the plant input's peak is judged as always
+        assert fragile and f"at the plant input {at_input:.3g}" in fragile[0]

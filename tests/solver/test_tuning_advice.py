@@ -149,6 +149,31 @@ def test_aggressive_loop_with_an_input_disturbance_estimator_fires():
     assert sensitivity_advice(fa) is not None
 
 
+def _floating_level_loop(k: float):
+    # Hand computation: y1 = u/(z - 0.5), a level y2 = 0.1 u/(z - 1), and u = -k y1: no gain
+    # sees the level (as a zone output in the unconstrained gains).  At the plant output
+    # S = (I + L)^-1 = [[1/(1 + k P1), 0], [-k P2/(1 + k P1), 1]]: S21 grows without bound
+    # as w -> 0 (the level floats), while S11 is the single loop's (z - 0.5)/(z - 0.5 + k).
+    plant = plant_system(np.diag([0.5, 1.0]), np.array([[1.0], [0.1]]), np.eye(2))
+    controller = StateSpace(a=np.zeros((0, 0)), b=np.zeros((0, 2)), c=np.zeros((1, 0)), d=np.array([[-k, 0.0]]))
+    return frequency_analysis(plant, controller, sample_time=1.0)
+
+
+def test_a_floating_zone_output_is_left_out_of_the_peak_at_the_plant_output():
+    fa = _floating_level_loop(0.5)
+    assert not fa.unstable and fa.plant_output.peak_sensitivity > 10.0  # S21 at the grid's low end
+    assert sensitivity_advice(fa) is not None  # the whole matrix: "fragile"
+    # Without the level, S11 = (z - 0.5)/z peaks at 1.5 (z = -1): below 2, no advice.
+    assert sensitivity_advice(fa, floating_outputs=[1], output_labels=["temperature", "level"]) is None
+    # With u = -y1, S11 = (z - 0.5)/(z + 0.5) peaks at 3 (z = -1): the tracked loop is fragile.
+    advice = sensitivity_advice(_floating_level_loop(1.0), floating_outputs=[1], output_labels=["temperature", "level"])
+    assert advice is not None
+    assert (
+        "at the plant output without the zone output(s) 'level', which float in the unconstrained gains 3 (9.54 dB)"
+        in (advice.message)
+    )
+
+
 def test_unstable_loop_gets_no_sensitivity_advice():
     # u = -3 y on 1/(z - 0.5) puts the pole at -2.5: unstable, so peaks are not robustness.
     fa = frequency_analysis(plant_system([[0.5]], [[1.0]], [[1.0]]), proportional(3.0), sample_time=1.0)

@@ -62,7 +62,7 @@ from service.errors import NumericalError
 from service.solver.design.closed_loop import ILL_CONDITIONED, UNIT_CIRCLE_MARGIN, Diagnostic
 from service.solver.design.controller import ControllerDesign, design_controller
 from service.solver.design.spectrum import spectrum_ends
-from service.solver.evaluation.frequency import FrequencyAnalysis
+from service.solver.evaluation.frequency import FrequencyAnalysis, LoopSensitivity
 from service.solver.models.zeros import PlantZeros, plant_zeros
 from service.solver.numerics import format_complex
 
@@ -312,12 +312,37 @@ def slow_pole_advice(
 # --- peak sensitivity ----------------------------------------------------------------------
 
 
-def sensitivity_advice(analysis: FrequencyAnalysis) -> Diagnostic | None:
+def _tracked_peak(loop: LoopSensitivity, grid: NDArray[np.float64], floating: Sequence[int]) -> tuple[float, float]:
+    """Grid maximum of ``sigma_max`` of ``S`` without the rows and columns of ``floating``, and where.
+
+    ``loop.sensitivity`` has shape (N, k, k) on ``grid`` (N,); ``floating`` holds indices below k.
+    """
+    keep = np.setdiff1d(np.arange(loop.sensitivity.shape[-1]), np.asarray(floating, dtype=int))
+    values = np.linalg.svd(loop.sensitivity[:, keep][:, :, keep], compute_uv=False)[:, 0]
+    i = int(np.argmax(values))
+    return float(values[i]), float(grid[i])
+
+
+def sensitivity_advice(
+    analysis: FrequencyAnalysis,
+    *,
+    floating_outputs: Sequence[int] = (),
+    output_labels: Sequence[str] | None = None,
+) -> Diagnostic | None:
     """Advise when the peak sensitivity exceeds :data:`PEAK_SENSITIVITY_LIMIT` (6 dB).
 
     Parameters
     ----------
     analysis : FrequencyAnalysis
+    floating_outputs : sequence of int, keyword-only
+        Signals of the plant-output loop that the unconstrained gains leave floating (zone
+        outputs, when the loop is broken at the controlled outputs).  Their rows and columns
+        of ``S`` are left out of the judgment at the plant output: a floating output passes
+        disturbances of the others to itself at steady state (an integrating level in a zone),
+        a peak no move weight or estimator removes and no margin of the tracking loops.  The
+        peak of the rest is judged instead (grid maximum).  Empty: the whole matrix.
+    output_labels : sequence of str, optional, keyword-only
+        Names of the plant-output loop's signals, for the message.
 
     Returns
     -------
@@ -329,17 +354,32 @@ def sensitivity_advice(analysis: FrequencyAnalysis) -> Diagnostic | None:
     """
     if analysis.unstable:
         return None
-    high = [
-        loop for loop in (analysis.plant_input, analysis.plant_output) if loop.peak_sensitivity > PEAK_SENSITIVITY_LIMIT
+    figures = [
+        (
+            analysis.plant_input,
+            analysis.plant_input.peak_sensitivity,
+            analysis.plant_input.peak_sensitivity_frequency,
+            "",
+        )
     ]
+    output = analysis.plant_output
+    floating = sorted({int(j) for j in floating_outputs if 0 <= int(j) < output.sensitivity.shape[-1]})
+    if floating and len(floating) < output.sensitivity.shape[-1]:
+        peak, where_w = _tracked_peak(output, analysis.frequencies, floating)
+        names = ", ".join(f"'{output_labels[j]}'" if output_labels is not None else f"output {j + 1}" for j in floating)
+        figures.append(
+            (output, peak, where_w, f" without the zone output(s) {names}, which float in the unconstrained gains")
+        )
+    elif not floating:
+        figures.append((output, output.peak_sensitivity, output.peak_sensitivity_frequency, ""))
+    high = [f for f in figures if f[1] > PEAK_SENSITIVITY_LIMIT]
     if not high:
         return None
     where = "; ".join(
-        f"at the plant {loop.location} {loop.peak_sensitivity:.3g} ({loop.peak_sensitivity_db:.3g} dB) "
-        f"at {loop.peak_sensitivity_frequency:.3g} rad per time unit"
-        for loop in high
+        f"at the plant {loop.location}{note} {peak:.3g} ({20.0 * math.log10(peak):.3g} dB) at {w:.3g} rad per time unit"
+        for loop, peak, w, note in high
     )
-    ms = max(loop.peak_sensitivity for loop in high)
+    ms = max(peak for _, peak, _, _ in high)
     gm = ms / (ms - 1.0)
     pm = math.degrees(2.0 * math.asin(1.0 / (2.0 * ms)))
     return Diagnostic(
@@ -597,6 +637,8 @@ def tuning_advice(
     analysis: FrequencyAnalysis | None = None,
     estimator_poles: ArrayLike | None = None,
     poles: ArrayLike | None = None,
+    floating_outputs: Sequence[int] = (),
+    output_labels: Sequence[str] | None = None,
 ) -> list[Diagnostic]:
     """Return every piece of advice that applies, in a fixed order.
 
@@ -611,6 +653,8 @@ def tuning_advice(
     estimator_poles : array_like of complex, optional
     poles : array_like of complex, optional
         The open-loop poles (eigenvalues of ``a``) when the caller has them.
+    floating_outputs, output_labels : optional
+        Of the plant-output loop, for :func:`sensitivity_advice`.
 
     Returns
     -------
@@ -632,7 +676,9 @@ def tuning_advice(
             poles=poles,
             keep_move_weights=hessian is not None or design.hessian.condition_number > ILL_CONDITIONED,
         ),
-        None if analysis is None else sensitivity_advice(analysis),
+        None
+        if analysis is None
+        else sensitivity_advice(analysis, floating_outputs=floating_outputs, output_labels=output_labels),
         non_minimum_phase_advice(
             a, b, c, prediction=design.prediction.prediction, sample_time=sample_time, poles=poles, computed=zeros
         ),
