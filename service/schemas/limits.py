@@ -64,11 +64,13 @@ class LimitsRequest(RequestModel):
     )
     output_min: OptionalVector | None = Field(
         default=None,
-        description="Lowest value of each controlled output (soft unless hard_outputs), engineering units.",
+        description="Lowest value of each controlled output (soft unless hard_outputs), engineering units. "
+        "Applied at the predicted steps some move reaches (past the dead time of the inputs to that output).",
     )
     output_max: OptionalVector | None = Field(
         default=None,
-        description="Highest value of each controlled output (soft unless hard_outputs), engineering units.",
+        description="Highest value of each controlled output (soft unless hard_outputs), engineering units. "
+        "Applied at the predicted steps some move reaches (past the dead time of the inputs to that output).",
     )
     output_softness: Annotated[FiniteFloat, Field(ge=0, le=MAX_OUTPUT_SOFTNESS)] = Field(
         default=DEFAULT_OUTPUT_SOFTNESS,
@@ -142,8 +144,9 @@ class LimitStepReport(ResponseModel):
     )
     active_in_horizon: int = Field(description="Active limits over the whole horizon (later steps included).")
     output_max_slack: list[float] | None = Field(
-        description="Slack used on each output's soft upper limit (its largest violation over the horizon the QP "
-        "accepted), engineering units; null when none was used."
+        description="Slack used on each output's soft upper limit (its largest violation the QP accepted over the "
+        "predicted steps some move reaches: the steps inside the dead time are not limited), engineering units; "
+        "null when none was used."
     )
     output_min_slack: list[float] | None = Field(description="The same for the lower limits.")
     target: list[float] | None = Field(

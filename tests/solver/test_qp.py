@@ -308,3 +308,54 @@ def test_limits_accept_nan_and_none_for_no_limit():
         limits, inputs=[[0.0, -1.5], [0.0, 0.0]], previous_input=[0.0, 0.0], outputs=[[1.25, 9.0], [0.0, 0.0]]
     )
     assert violation.input.tolist() == [0.0, 0.5] and violation.output.tolist() == [0.25, 0.0]
+
+
+def _delayed_lag(delay: int = 4):
+    """y(k+1) = 0.9 y(k) + 0.1 u(k - delay): a first-order lag behind a shift register (invented)."""
+    n = delay + 1
+    a = np.zeros((n, n))
+    a[0, 0], a[0, n - 1] = 0.9, 0.1  # the lag reads the register's oldest sample
+    a[2:, 1:-1] += np.eye(n - 2)  # the register shifts one sample per step
+    b = np.zeros((n, 1))
+    b[1, 0] = 1.0
+    c = np.zeros((1, n))
+    c[0, 0] = 1.0
+    return a, b, c
+
+
+def test_output_limits_inside_the_dead_time_are_left_out(rng):
+    # A disturbance holds the output at 1.3 above its limit 1.0: inside the dead time no move
+    # can change that (G's rows are zero there: u(k) reaches y first at k + delay + 1), so
+    # only the steps the moves reach are limited (common practice: the limits' window starts
+    # past the dead time).  Reference: scipy's trust-constr on the hard problem of those rows.
+    a, b, c = _delayed_lag()
+    design = design_controller(a, b, c, output_weight=[1.0], move_weight=[0.1], prediction=20, control=4)
+    g = design.prediction.moves
+    reached = np.abs(g).max(axis=1) > 0.0
+    assert not reached[:4].any() and reached[4:].all()  # the dead time, by the realization
+    steps = design.prediction.penalized_steps
+    free = np.full(steps, 1.3)
+    error = np.full(steps, 1.1) - free  # a setpoint above the limit pulls the output up
+    nv, rows = g.shape[1], int(reached.sum())
+    reference_problem = MoveProblem(
+        design.hessian.matrix,
+        -(g.T @ error),  # the cost's linear term -G'QE (Q = 1)
+        g[reached],
+        np.full(nv + rows, -np.inf),
+        np.concatenate([np.full(nv, np.inf), 1.0 - free[reached]]),
+    )
+    for hard in (True, False):
+        qp = MoveQP.from_design(design, make_limits(1, 1, output_max=[1.0], output_softness=1e3), hard_outputs=hard)
+        solution = qp.solve(error=error, free_prediction=free, previous_input=np.zeros(1))
+        assert solution.solved, solution.status  # a hard QP had been infeasible: the inputs froze
+        planned = free + g @ solution.moves
+        assert planned[reached].max() <= 1.0 + 1e-7
+        assert solution.output_max_slack[0] == 0.0  # the reachable steps keep the limit
+        reference = reference_solution(reference_problem)  # an interior point: close, not exact
+
+        def cost(z):
+            return 0.5 * z @ reference_problem.hessian @ z + reference_problem.linear @ z
+
+        nu = solution.moves.size
+        assert cost(solution.moves) <= cost(reference) + 1e-9 * abs(cost(reference))
+        np.testing.assert_allclose(solution.moves, reference[:nu], atol=1e-4)

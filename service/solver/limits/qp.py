@@ -27,6 +27,11 @@ the design's law.
 Without the slacks the cost is ``V`` of the design notes less a constant, so when no limit is
 active the solution is ``H^-1 G'QE`` and its first move is ``Kh E``.
 
+Output limits apply at the penalized steps that some move reaches: a step inside the dead
+time of every input to an output keeps its prediction whatever the moves (``G``'s row is zero),
+so its limit is left out (common practice: the limits' window starts past the dead time); held
+there, a hard limit already broken would make every step infeasible and freeze the inputs.
+
 Slacks: one per output bound present (``output_max`` of output j, ``output_min`` of output j),
 shared by all penalized steps, so ``s_b`` is the largest violation of bound ``b`` over the
 prediction horizon and the QP grows by at most ``2 p`` variables, not ``2 p Np``.  The linear
@@ -78,6 +83,7 @@ from service.solver.limits.zones import Zones
 
 __all__ = [
     "PRIMAL_TOLERANCE",
+    "UNREACHED_ROW",
     "WARM_STARTS",
     "ActiveLimit",
     "MoveProblem",
@@ -88,6 +94,10 @@ __all__ = [
 #: Absolute tolerance on every limit, in the units of the limited signal.  DAQP's answer is
 #: exact at its active set; the tolerance only decides when a constraint counts as violated.
 PRIMAL_TOLERANCE = 1e-9
+
+#: A row of ``G`` whose every entry is at most this times ``max |G|`` is reached by no move
+#: (rounding level of the largest entry; common practice for a structural-zero decision).
+UNREACHED_ROW = 64 * float(np.finfo(float).eps)
 
 #: The ways a step can start (see :class:`MoveQP`).
 WARM_STARTS = ("previous", "shifted", "none")
@@ -352,6 +362,17 @@ class MoveQP:
                 np.full(nz, np.inf),
             ]
         )
+        # An output limit at a step that no move reaches (inside the dead time of every input
+        # to that output) is left unbounded: the moves cannot change it, so as a hard row it
+        # could only make the QP infeasible and freeze the inputs, and as a soft one force a
+        # shared slack that would then excuse the same violation at the steps the moves do
+        # reach.  A row counts as unreached when every entry is at rounding level of G's
+        # largest (exact zeros for a dead time's shift register).
+        reach = np.abs(g).max(axis=1) > UNREACHED_ROW * max(float(np.abs(g).max(initial=0.0)), np.finfo(float).tiny)
+        start, stop = self._ranges["upper"]
+        self._upper_template[start:stop][~reach[out_up]] = np.inf
+        start, stop = self._ranges["lower"]
+        self._lower_template[start:stop][~reach[out_lo]] = -np.inf
         # What each constraint is, for the report: kind (0 move, 1 input, 2 output; -1 slack
         # bound or zone row: a zone is no limit), signal index and step.
         kinds = np.full(nv + nr, -1)
