@@ -35,7 +35,7 @@ INPUT_SPANS = np.array([100.0, 50.0])
 OUTPUT_SPANS = np.array([10.0, 80.0])
 
 
-def _request(eu, ey, ex, *, spans: bool, move=R):
+def _request(eu, ey, ex, *, spans: bool, move=R, zone: bool = False):
     su, sy, sx = 10.0 ** np.asarray(eu, float), 10.0 ** np.asarray(ey, float), 10.0 ** np.asarray(ex, float)
     a = A * sx[:, None] / sx[None, :]
     b = B * sx[:, None] / su[None, :]
@@ -62,6 +62,9 @@ def _request(eu, ey, ex, *, spans: bool, move=R):
         "horizons": {"prediction": 20, "control": 4},
         "weights": {"output": q.tolist(), "move": r.tolist()},
     }
+    if zone:  # the level held in a zone: no output weight, its zone weight scaled as Q's entry
+        body["weights"]["output"][1] = 0.0
+        body["zones"] = [None, {"low": -5.0 * sy[1], "high": 5.0 * sy[1], "weight": float(q[1])}]
     return DesignRequest.model_validate(body), (su, sy, sx)
 
 
@@ -109,6 +112,31 @@ def test_rescaling_signals_changes_no_verdict_and_no_gain(eu, ey, ex, spans):
     assert found.closed_loop.spectral_radius == pytest.approx(base.closed_loop.spectral_radius, abs=1e-9)
     for mine, theirs in zip(_back(found, *scale), _back(base, *base_scale), strict=True):
         _same(mine, theirs)
+
+
+@pytest.mark.parametrize(
+    ("eu", "ey", "ex"),
+    [
+        ([0, 0], [6, 0], [0, 0, 0]),
+        ([-4, 3], [9, 0], [0, 0, 0]),
+        ([3, -4], [-6, 2], [5, -5, 3]),
+        ([0, 0], [12, -3], [-8, 0, 8]),
+    ],
+)
+def test_a_zone_output_s_pole_keeps_its_cause_in_any_units(eu, ey, ex):
+    # The level in a zone leaves a closed-loop pole at z = 1 (the zone_output cause).  In
+    # badly scaled units (a composition in parts per trillion beside a valve in %) the rank
+    # decisions behind the cause had called it an uncontrollable mode of another state.
+    base = _outcome(_request([0, 0], [0, 0], [0, 0, 0], spans=False, zone=True)[0])
+    found = _outcome(_request(eu, ey, ex, spans=False, zone=True)[0])
+    assert not isinstance(base, tuple) and not isinstance(found, tuple), found
+
+    def causes(answer):  # the cause and the inputs and outputs it names (tags u1, u2, y1, y2)
+        return sorted((m.cause, tuple(t for t in m.signals if t[0] in "uy")) for m in answer.closed_loop.marginal_modes)
+
+    assert causes(base) and {c for c, _ in causes(base)} == {"zone_output"}
+    assert causes(found) == causes(base)
+    assert sorted(w.code for w in found.warnings) == sorted(w.code for w in base.warnings)
 
 
 def test_tiny_input_with_tiny_move_weight_is_the_same_controller():

@@ -53,6 +53,8 @@ import numpy as np
 import scipy.linalg
 from numpy.typing import NDArray
 
+from service.solver.numerics import balance_states
+
 __all__ = [
     "MARGINAL_TOLERANCE",
     "PART_TOLERANCE",
@@ -186,6 +188,17 @@ def _scale(matrix: NDArray[np.float64]) -> float:
     return value if value > 0.0 else 1.0
 
 
+def _input_scales(a: NDArray[np.float64], b: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Per input, the factor that gives its column of ``B`` the size of ``A`` (1 for a zero column).
+
+    The rank decisions and the naming of input directions are made on the inputs times these
+    factors, so that the inputs' units decide neither.
+    """
+    m = b.shape[1]
+    norms = np.linalg.norm(b, axis=0) if b.size else np.zeros(m)
+    return np.divide(_scale(a), norms, out=np.ones(m), where=norms > 0.0)
+
+
 def _blind_eigenspace(
     big_a: NDArray[np.float64],
     observed: NDArray[np.complex128] | NDArray[np.float64],
@@ -232,8 +245,7 @@ def _structural_modes(
     cw = output_root @ c
     modes: list[MarginalMode] = []
     scale = _scale(a)
-    norms = np.linalg.norm(b, axis=0) if b.size else np.zeros(m)
-    d = np.divide(scale, norms, out=np.ones(m), where=norms > 0.0)
+    d = _input_scales(a, b)
     reference = max(scale, 1.0)
     # Uncontrollable plant modes on the circle: left eigenvectors blind to every input.  Their
     # component of the state stays out of the cost-blind subspace below (the inputs only
@@ -302,7 +314,7 @@ def _structural_modes(
                 real = np.real(v * np.exp(-1j * np.angle(v[np.argmax(np.abs(v))])))
                 real = real / real[np.argmax(np.abs(real))]
                 modes.append(
-                    MarginalMode(pole=1.0 + 0.0j, cause="free_input_direction", inputs=_named(real), direction=real)
+                    MarginalMode(pole=1.0 + 0.0j, cause="free_input_direction", inputs=_named(real / d), direction=real)
                 )
             plant_count = count - _range(moved).shape[1]
         else:
@@ -403,7 +415,11 @@ def _zone_modes(
         )
         out.append(
             MarginalMode(
-                pole=1.0 + 0.0j, cause="zone_output", inputs=_named(real), outputs=touched or zones, direction=real
+                pole=1.0 + 0.0j,
+                cause="zone_output",
+                inputs=_named(real / _input_scales(a, b)),  # named on the balanced inputs
+                outputs=touched or zones,
+                direction=real,
             )
         )
     return out
@@ -458,6 +474,17 @@ def marginal_modes(
         return []  # every structural cause is a closed-loop pole on the circle: none is
     used = np.zeros(computed.size, dtype=bool)
     found: list[MarginalMode] = []
+    # The rank decisions below are made on the states balanced by a diagonal similarity
+    # (powers of two, so exact; the system balancing of balance_states), so that the states'
+    # units do not decide them: a state fed only by an entry of 1e-4 beside one of 1e9 would
+    # otherwise look blind to the inputs.  The poles, the inputs and the outputs do not change.
+    # Each output's row of C is scaled to unit size first (outputs' units are arbitrary too),
+    # with the weights' root scaled back so that W C, the weighted outputs, is unchanged.
+    rows = np.linalg.norm(c_, axis=1) if c_.size else np.ones(c_.shape[0])
+    rows = np.where(rows > 0.0, rows, 1.0)
+    c_, output_root = c_ / rows[:, None], np.asarray(output_root, dtype=float) * rows[None, :]
+    d = balance_states(a_, b_, c_) if a_.size else np.ones(0)
+    a_, b_, c_ = a_ / d[:, None] * d[None, :], b_ / d[:, None], c_ * d[None, :]
     structural = _structural_modes(a_, b_, c_, output_root, weighted, input_weight_root, computed)
     if zone_outputs:
         structural = _zone_modes(
