@@ -395,7 +395,9 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
         integrating=tuple(tag in request.integrating for tag in request.outputs),
         estimation=estimation,
         max_dead_time=max_dead,
-        settling_samples=max(2, int(np.ceil(settling / ts))),
+        # the fit never looks further than the record: a settling time of more samples than a
+        # float holds (a sample time near 1e-308) is the record's length
+        settling_samples=max(2, int(min(np.ceil(settling / ts), estimation))),
         detrend=request.detrend,
         lags=request.correlation_lags,
         notes=tuple(notes),
@@ -494,8 +496,9 @@ def compute_identify(inputs: IdentifyInputs) -> IdentifyOutcome:
             reason = "the fitted parameters are not finite"
         if fit is None or not finite:
             raise NumericalError(
-                f"The fit of {inputs.outputs[i]} failed ({reason}): the data overflow double precision or the "
-                f"pairs cannot be told apart. Check the units and the magnitudes of the columns",
+                f"The fit of {inputs.outputs[i]} failed ({reason}): the data or the sample time overflow double "
+                f"precision, or the pairs cannot be told apart. Check the units and the magnitudes of the columns "
+                f"and of sample_time",
                 field=("data", inputs.outputs[i]),
             )
         fits.append(fit)
@@ -573,7 +576,8 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
                     )
                 )
             for name, flag in zip(names, bound, strict=True):
-                if flag and name == "dead_time" and theta[names.index("dead_time")] > 0:
+                # at its upper limit; a dead time at its lower limit, zero, is no finding
+                if flag and name == "dead_time" and theta[names.index("dead_time")] > 0.5 * inputs.max_dead_time:
                     warnings.append(
                         WarningReport(
                             code="parameter_at_bound",
