@@ -166,6 +166,9 @@ def _sentence(error: Mapping[str, Any]) -> str:
             return f"this field is required: it names the form of the model, one of {forms}"
         tag = (error.get("ctx") or {}).get("tag", "")
         return f"'{tag}' is not a form of model; use one of {forms}"
+    if kind in {"model_type", "model_attributes_type", "dict_type"}:
+        # pydantic's sentence names the Python class ("instance of Horizons"), not the field's type
+        return "input should be a JSON object (a set of named fields)"
     message = str(error.get("msg", "invalid value"))
     return message[0].lower() + message[1:] if message else "invalid value"
 

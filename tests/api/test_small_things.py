@@ -69,3 +69,28 @@ def test_warnings_reach_the_log_as_json_lines_without_source_paths(caplog):
     finally:
         warnings.showwarning = previous
         logging.getLogger("movecast.warnings").handlers.clear()
+
+
+def test_an_object_of_the_wrong_type_is_named_as_a_json_object_not_a_python_class(make_client):
+    # Found in an audit of hostile input: pydantic's sentence for a block of the wrong type named
+    # the schema's Python class ("input should be a valid dictionary or instance of Horizons").
+    client = make_client()
+    cases = [
+        ("/design", lambda b: b.__setitem__("horizons", None), "/horizons"),
+        ("/design", lambda b: b.__setitem__("model", "state_space"), "/model"),
+        ("/design", lambda b: b["weights"].__setitem__("output", {"z1": 1}), "/weights/output"),
+        ("/design/batch", lambda b: b["items"].__setitem__(0, [1]), "/items/0"),
+    ]
+    examples = {"/design": "design_request.json", "/design/batch": "batch_request.json"}
+    for route, edit, where in cases:
+        body = copy.deepcopy(load_example(examples[route]))
+        edit(body)
+        answer = client.post(route, json=body)
+        assert answer.status_code == 422, answer.text
+        details = {e["pointer"]: e["detail"] for e in answer.json()["errors"]}
+        assert where in details, details
+        assert "instance of" not in answer.text and "dictionary" not in answer.text, details
+    answer = client.post("/design", json=[1, 2])
+    assert answer.json()["errors"] == [
+        {"pointer": "", "detail": "input should be a JSON object (a set of named fields)"}
+    ]
