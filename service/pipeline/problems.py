@@ -215,7 +215,9 @@ def problem_of(exc: BaseException, *, base: str = "", scope: Scope = "request") 
     if isinstance(exc, MalformedBody):
         return Problem("malformed-body", 400, exc.detail)
     if isinstance(exc, UnsupportedMediaType):
-        return Problem("unsupported-media-type", 415, exc.detail, headers={"Accept-Post": exc.accepted})
+        # RFC 9110, 15.5.16: Accept-Encoding names the content codings a request may use
+        headers = {"Accept-Encoding": "identity"} if exc.encoding else {"Accept-Post": exc.accepted}
+        return Problem("unsupported-media-type", 415, exc.detail, headers=headers)
     if isinstance(exc, HeavyLaneFull):
         detail = (
             f"The service's lane for large computations is full ({exc.waiting} large requests are "
