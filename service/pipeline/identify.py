@@ -279,7 +279,9 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
                 )
             )
         part = held[:estimation]
-        if np.ptp(part) <= STILL * max(float(np.max(np.abs(part))), 1e-12):
+        # relative to the column's own size, so its unit cannot make it still (a floor of 1e-12
+        # had called an input in units where it reads 1e-13 still however it moved)
+        if np.ptp(part) <= STILL * float(np.max(np.abs(part))):
             still.add(tag)
     operating_point = columns[0].copy()
     outputs = np.zeros((n, len(request.outputs)))
@@ -488,9 +490,11 @@ def compute_identify(inputs: IdentifyInputs) -> IdentifyOutcome:
                     integrating=inputs.integrating[i],
                     detrend=inputs.detrend,
                 )
-        except (ValueError, np.linalg.LinAlgError, FloatingPointError, AssertionError) as exc:
+        except (ValueError, np.linalg.LinAlgError, FloatingPointError, AssertionError):
+            # the reason in the trade's words: the library's ("array must not contain infs or
+            # NaNs") or an assertion's text would name the code, not the data
             fit, finite = None, False
-            reason = str(exc) or type(exc).__name__
+            reason = "its numbers left double precision on the way"
         else:
             finite = bool(all(np.all(np.isfinite(t)) for t in fit.parameters) and np.all(np.isfinite(fit.fitted)))
             reason = "the fitted parameters are not finite"

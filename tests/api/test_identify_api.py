@@ -213,3 +213,24 @@ def test_a_settling_time_of_more_samples_than_a_float_holds_is_the_record_not_a_
     record = client_module.post("/identify", json={**request, "settling_time": 60 * 1e-308})
     assert record.status_code == 200, record.text
     assert beyond.json()["model"] == record.json()["model"]
+
+
+@pytest.mark.parametrize(
+    ("input_unit", "output_unit"), [(1e-13, 1.0), (1e-200, 1.0), (1e200, 1.0), (1.0, 1e-300), (1.0, 1e300)]
+)
+def test_the_data_s_units_do_not_change_the_fit(client_module, input_unit, output_unit) -> None:
+    # Data in other units, u' = u * a and y' = y * c, give the gain K c / a with the same time
+    # constant (a linear model's gain is output units per input unit). Found in an audit of
+    # hostile input: an input reading about 1e-13 was called still (an absolute floor of 1e-12),
+    # and one about 1e-200 was fitted to a gain of -7e-203 (its standard deviation underflowed
+    # in the squares, so the fit saw it unscaled).
+    request = _heater_test(1.0)
+    request["data"] = {
+        "heater": [v * input_unit for v in request["data"]["heater"]],
+        "outlet_temperature": [v * output_unit for v in request["data"]["outlet_temperature"]],
+    }
+    r = client_module.post("/identify", json=request)
+    assert r.status_code == 200, r.text
+    element = r.json()["model"]["elements"][0][0]
+    assert element["gain"] == pytest.approx(2.5 * output_unit / input_unit, rel=0.01)
+    assert element["time_constants"][0] == pytest.approx(-1.0 / np.log(0.8), rel=0.01)

@@ -240,7 +240,12 @@ def _best_start(
 
 def _spread(values: Array) -> float:
     """The standard deviation of ``values`` (1 when it is zero or not finite): the size a signal is fitted at."""
-    size = float(np.std(values)) if values.size else 0.0
+    # the standard deviation of the values divided by their largest size, multiplied back: the
+    # squares of values near 1e-200 (or 1e200) underflow (overflow) in np.std itself
+    largest = float(np.max(np.abs(values))) if values.size else 0.0
+    if not (np.isfinite(largest) and largest > 0.0):
+        return 1.0
+    size = float(np.std(values / largest)) * largest
     return size if np.isfinite(size) and size > 0.0 else 1.0
 
 
