@@ -106,11 +106,16 @@ class MalformedBody(MovecastError):
 
 
 class UnsupportedMediaType(MovecastError):
-    """The request body is sent with a content type other than JSON; ``accepted`` says which."""
+    """The request body is sent with a content type other than JSON; ``accepted`` says which.
 
-    def __init__(self, detail: str, *, accepted: str = "application/json") -> None:
+    ``encoding``: the body was sent compressed (a ``Content-Encoding`` other than identity),
+    which this service does not read (RFC 9110, section 15.5.16).
+    """
+
+    def __init__(self, detail: str, *, accepted: str = "application/json", encoding: bool = False) -> None:
         self.detail = detail
         self.accepted = accepted
+        self.encoding = encoding
         super().__init__(detail)
 
 

@@ -25,7 +25,8 @@ on such a route takes no query parameters (422 naming each one), so a choice is 
 silently ignored.
 
 Problems come back as :class:`~service.errors.MalformedBody` (400),
-:class:`~service.errors.UnsupportedMediaType` (415) or
+:class:`~service.errors.UnsupportedMediaType` (415, also for a compressed body: any
+``Content-Encoding`` but ``identity``) or
 :class:`~service.errors.InvalidRequest` (422, one entry per field, pointers into the body).
 A huge list of bad entries costs little: matrices and vectors stop at their first bad entry
 (``fail_fast``), and a problem lists at most
@@ -335,6 +336,13 @@ class CheckedBodyRoute(APIRoute):
             return keep(cache, key, await unchecked(request), asked=asked)
 
         async def unchecked(request: Request) -> Response:
+            encoding = request.headers.get("content-encoding", "").strip().lower()
+            if encoding not in ("", "identity"):  # read as it is, a compressed body is no JSON
+                raise UnsupportedMediaType(
+                    f"The request body is sent with 'Content-Encoding: {encoding[:40]}'; this service reads "
+                    "bodies uncompressed only: send it without a Content-Encoding.",
+                    encoding=True,
+                )
             content_type = request.headers.get("content-type")
             if reader is not None and csv_content_type(content_type):
                 query = _once(request.query_params)

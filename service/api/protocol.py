@@ -1,6 +1,6 @@
 """The HTTP/1.1 connection handling of ``movecast serve``: uvicorn's h11 protocol, guarded.
 
-:class:`GuardedH11Protocol` is uvicorn's own ``H11Protocol`` with four changes:
+:class:`GuardedH11Protocol` is uvicorn's own ``H11Protocol`` with five changes:
 
 - **problem details from the server itself.**  What uvicorn answers before the app sees a
   request (a request line or header h11 refuses, e.g. ``Content-Length: abc``) is a 400
@@ -14,6 +14,9 @@
   and has not resumed it), the connection is dropped.  A client that reads, however slowly,
   resets it with every drain; one that stops reading cannot keep its answer's bytes in the
   serving process (``service.api.answer_memory``) for longer than that;
+- **unambiguous framing.**  A request with both ``Content-Length`` and ``Transfer-Encoding``
+  (which h11 reads as chunked, a proxy perhaps by its length) is a 400 and the connection is
+  closed (RFC 9112, section 6.3);
 - **a connection cap.**  Past ``MOVECAST_MAX_CONNECTIONS`` open connections per worker, a
   new one is answered 503 with ``Retry-After`` and closed at once.
 
@@ -71,6 +74,25 @@ class GuardedH11Protocol(H11Protocol):
         self.max_connections = settings.max_connections
         self._read_deadline: asyncio.TimerHandle | None = None
         self._send_deadline: asyncio.TimerHandle | None = None
+        self._h11_next_event = self.conn.next_event
+        self.conn.next_event = self._next_event  # type: ignore[method-assign]
+
+    # -- request framing h11 lets through
+    def _next_event(self) -> Any:
+        """h11's next event; a request framed by both Content-Length and Transfer-Encoding is refused.
+
+        h11 reads such a body as chunked.  A proxy in front may have framed it by its length, so
+        the two would disagree on where the next request starts (request smuggling): RFC 9112,
+        section 6.3, lets a server reject it and requires the connection to be closed.  Raised
+        as h11's own protocol error, it gets uvicorn's handling of one: this class's 400 problem,
+        and the connection closed.
+        """
+        event = self._h11_next_event()
+        if isinstance(event, h11.Request):
+            names = {name.lower() for name, _ in event.headers}
+            if b"content-length" in names and b"transfer-encoding" in names:
+                raise h11.RemoteProtocolError("both Content-Length and Transfer-Encoding")
+        return event
 
     # -- the connection cap and the deadline of the first request
     def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]

@@ -436,7 +436,7 @@ def compute_design(inputs: DesignInputs) -> DesignOutcome:
     """
     try:
         with np.errstate(over="raise", invalid="raise"):
-            return _compute_design(inputs)
+            outcome = _compute_design(inputs)
     except FloatingPointError:
         raise NumericalError(
             "The design overflows double precision: some entries of the model, weights or spans "
@@ -444,6 +444,18 @@ def compute_design(inputs: DesignInputs) -> DesignOutcome:
             "the numbers are moderate, or give spans.",
             field=("model",),
         ) from None
+    hessian = outcome.design.hessian
+    if not math.isfinite(hessian.condition_number):
+        # l_max / l_min of finite ends past the largest double (a weight near 1e308): the
+        # answer would hold an infinite condition number.
+        raise NumericalError(
+            f"The Hessian's eigenvalues run from {hessian.smallest_eigenvalue:.3g} to "
+            f"{hessian.largest_eigenvalue:.3g}, so its condition number overflows double precision: "
+            "some output or move weights are far too large for the others (near 1e308). Give the "
+            "weights moderate values.",
+            field=("weights",),
+        )
+    return outcome
 
 
 def _compute_design(inputs: DesignInputs) -> DesignOutcome:

@@ -279,7 +279,9 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
                 )
             )
         part = held[:estimation]
-        if np.ptp(part) <= STILL * max(float(np.max(np.abs(part))), 1e-12):
+        # relative to the column's own size, so its unit cannot make it still (a floor of 1e-12
+        # had called an input in units where it reads 1e-13 still however it moved)
+        if np.ptp(part) <= STILL * float(np.max(np.abs(part))):
             still.add(tag)
     operating_point = columns[0].copy()
     outputs = np.zeros((n, len(request.outputs)))
@@ -395,7 +397,9 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
         integrating=tuple(tag in request.integrating for tag in request.outputs),
         estimation=estimation,
         max_dead_time=max_dead,
-        settling_samples=max(2, int(np.ceil(settling / ts))),
+        # the fit never looks further than the record: a settling time of more samples than a
+        # float holds (a sample time near 1e-308) is the record's length
+        settling_samples=max(2, int(min(np.ceil(settling / ts), estimation))),
         detrend=request.detrend,
         lags=request.correlation_lags,
         notes=tuple(notes),
@@ -486,16 +490,19 @@ def compute_identify(inputs: IdentifyInputs) -> IdentifyOutcome:
                     integrating=inputs.integrating[i],
                     detrend=inputs.detrend,
                 )
-        except (ValueError, np.linalg.LinAlgError, FloatingPointError, AssertionError) as exc:
+        except (ValueError, np.linalg.LinAlgError, FloatingPointError, AssertionError):
+            # the reason in the trade's words: the library's ("array must not contain infs or
+            # NaNs") or an assertion's text would name the code, not the data
             fit, finite = None, False
-            reason = str(exc) or type(exc).__name__
+            reason = "its numbers left double precision on the way"
         else:
             finite = bool(all(np.all(np.isfinite(t)) for t in fit.parameters) and np.all(np.isfinite(fit.fitted)))
             reason = "the fitted parameters are not finite"
         if fit is None or not finite:
             raise NumericalError(
-                f"The fit of {inputs.outputs[i]} failed ({reason}): the data overflow double precision or the "
-                f"pairs cannot be told apart. Check the units and the magnitudes of the columns",
+                f"The fit of {inputs.outputs[i]} failed ({reason}): the data or the sample time overflow double "
+                f"precision, or the pairs cannot be told apart. Check the units and the magnitudes of the columns "
+                f"and of sample_time",
                 field=("data", inputs.outputs[i]),
             )
         fits.append(fit)
@@ -573,7 +580,8 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
                     )
                 )
             for name, flag in zip(names, bound, strict=True):
-                if flag and name == "dead_time" and theta[names.index("dead_time")] > 0:
+                # at its upper limit; a dead time at its lower limit, zero, is no finding
+                if flag and name == "dead_time" and theta[names.index("dead_time")] > 0.5 * inputs.max_dead_time:
                     warnings.append(
                         WarningReport(
                             code="parameter_at_bound",

@@ -16,7 +16,7 @@ from datetime import datetime
 from pydantic import ValidationError
 
 from service.errors import FieldProblem, InvalidRequest
-from service.pipeline.problems import pointer
+from service.pipeline.problems import pointer, validation_problems
 from service.schemas.identify import IdentifyRequest
 from service.schemas.identify_csv import IdentifyCsvOptions
 
@@ -41,27 +41,66 @@ def _number(cell: str) -> float | None:
     return value
 
 
-def _times(cells: list[str], options: IdentifyCsvOptions, column: str) -> list[float]:
+def _float(cell: str) -> float | None:
     try:
-        return [float(c) for c in cells]
+        return float(cell)
     except ValueError:
-        pass
-    stamps = []
-    for k, cell in enumerate(cells):
+        return None
+
+
+def _times(cells: list[str], options: IdentifyCsvOptions, column: str) -> list[float]:
+    """The time column as numbers in the time unit; a problem names the cell by its row.
+
+    The column holds numbers when its first cell is one, else ISO 8601 date-times.
+    """
+    if _float(cells[0]) is not None:
+        times = []
+        for k, cell in enumerate(cells):
+            value = _float(cell)
+            if value is None or not math.isfinite(value):
+                what = "missing" if not cell.strip() else f"{cell!r}, not a finite number"
+                raise InvalidRequest(
+                    [
+                        FieldProblem(
+                            pointer("data", column, k),
+                            f"the time stamp of row {k} is {what} (the column holds numbers)",
+                        )
+                    ]
+                )
+            times.append(value)
+    else:
+        stamps = []
+        for k, cell in enumerate(cells):
+            try:
+                stamps.append(datetime.fromisoformat(cell.strip()))
+            except ValueError:
+                raise InvalidRequest(
+                    [
+                        FieldProblem(
+                            pointer("data", column, k), f"{cell!r} is neither a number nor an ISO 8601 date-time"
+                        )
+                    ]
+                ) from None
         try:
-            stamps.append(datetime.fromisoformat(cell.strip()))
-        except ValueError:
+            first = stamps[0]
+            scale = SECONDS[options.time_unit]
+            times = [(s - first).total_seconds() / scale for s in stamps]
+        except TypeError:
             raise InvalidRequest(
-                [FieldProblem(pointer("data", column, k), f"{cell!r} is neither a number nor an ISO 8601 date-time")]
+                [FieldProblem(pointer("data", column), "time stamps mix dates with and without a time zone")]
             ) from None
-    try:
-        first = stamps[0]
-        scale = SECONDS[options.time_unit]
-        return [(s - first).total_seconds() / scale for s in stamps]
-    except TypeError:
-        raise InvalidRequest(
-            [FieldProblem(pointer("data", column), "time stamps mix dates with and without a time zone")]
-        ) from None
+    for k in range(1, len(times)):
+        if not times[k] > times[k - 1]:
+            raise InvalidRequest(
+                [
+                    FieldProblem(
+                        pointer("data", column, k),
+                        f"time stamps must increase strictly: row {k} ({cells[k].strip()}) is not after row {k - 1} "
+                        f"({cells[k - 1].strip()})",
+                    )
+                ]
+            )
+    return times
 
 
 def identify_request_from_csv(body: bytes, options: IdentifyCsvOptions) -> IdentifyRequest:
@@ -153,7 +192,4 @@ def identify_request_from_csv(body: bytes, options: IdentifyCsvOptions) -> Ident
     try:
         return IdentifyRequest.model_validate(request)
     except ValidationError as exc:
-        problems = [
-            FieldProblem(pointer(*(p for p in e["loc"] if isinstance(p, (str, int)))), e["msg"]) for e in exc.errors()
-        ]
-        raise InvalidRequest(problems) from None
+        raise InvalidRequest(validation_problems(exc.errors())) from None

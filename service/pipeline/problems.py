@@ -166,6 +166,9 @@ def _sentence(error: Mapping[str, Any]) -> str:
             return f"this field is required: it names the form of the model, one of {forms}"
         tag = (error.get("ctx") or {}).get("tag", "")
         return f"'{tag}' is not a form of model; use one of {forms}"
+    if kind in {"model_type", "model_attributes_type", "dict_type"}:
+        # pydantic's sentence names the Python class ("instance of Horizons"), not the field's type
+        return "input should be a JSON object (a set of named fields)"
     message = str(error.get("msg", "invalid value"))
     return message[0].lower() + message[1:] if message else "invalid value"
 
@@ -212,7 +215,9 @@ def problem_of(exc: BaseException, *, base: str = "", scope: Scope = "request") 
     if isinstance(exc, MalformedBody):
         return Problem("malformed-body", 400, exc.detail)
     if isinstance(exc, UnsupportedMediaType):
-        return Problem("unsupported-media-type", 415, exc.detail, headers={"Accept-Post": exc.accepted})
+        # RFC 9110, 15.5.16: Accept-Encoding names the content codings a request may use
+        headers = {"Accept-Encoding": "identity"} if exc.encoding else {"Accept-Post": exc.accepted}
+        return Problem("unsupported-media-type", 415, exc.detail, headers=headers)
     if isinstance(exc, HeavyLaneFull):
         detail = (
             f"The service's lane for large computations is full ({exc.waiting} large requests are "

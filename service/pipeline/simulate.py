@@ -127,6 +127,11 @@ class SimulationOutcome:
 # --------------------------------------------------------------------------- compute
 
 
+#: The largest entry of the loop on a true plant whose poles double precision can compute: the
+#: square root of the largest double (about 1.3e154), past which products of two entries overflow.
+_LARGEST_LOOP_ENTRY = float(np.sqrt(np.finfo(float).max))
+
+
 def _scaled_events(events: list[Event], span: NDArray[np.float64]) -> list[Event]:
     return [Event(e.step, e.value / span) for e in events]
 
@@ -184,7 +189,21 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
         )
         cm, dm = scaled_measured(plant, t.c_measured, t.d_measured)
         true_plant = TruePlant(ts.a, ts.b, ts.c, ts.b_disturbance, c_measured=cm, d_measured=dm)
-        true = true_loop(loop, ts.a, ts.b, cm)  # the estimator reads the true plant's measured outputs
+        try:
+            with np.errstate(over="raise", invalid="raise"):
+                true = true_loop(loop, ts.a, ts.b, cm)  # the estimator reads the true plant's measured outputs
+        except FloatingPointError:
+            true = None
+        # Past the square root of the largest double, products of two entries of the loop's
+        # matrix overflow and its eigenvalues are noise: an entry of 1e308 gave a loop "stable"
+        # with a spectral radius of 3e-17 while the run blew up at its first step.
+        if true is None or not np.all(np.isfinite(true.poles)) or np.abs(true.matrix).max() > _LARGEST_LOOP_ENTRY:
+            raise NumericalError(
+                "The loop on the true plant overflows double precision: some entries of the true plant "
+                "are too large (or too small) for the model's units, so its poles cannot be computed. "
+                "Express the true plant in the model's units, with moderate numbers",
+                field=("scenario", "true_plant"),
+            )
     elif plant.measured_own:  # the model itself, with its own measured outputs (full_state records them)
         cm, dm = scaled_measured(plant)
         true_plant = TruePlant(scaled.a, scaled.b, scaled.c, scaled.b_disturbance, c_measured=cm, d_measured=dm)

@@ -131,7 +131,25 @@ def step_response_parts(
             )
         md = 0 if bd is None else bd.shape[1]
         both = b if bd is None else np.hstack((b, bd))
-        reduced = balanced_truncation(a, both, c, states=wanted, tolerance=model.reduction.tolerance)
+        try:
+            with np.errstate(over="raise", invalid="raise"):
+                reduced = balanced_truncation(a, both, c, states=wanted, tolerance=model.reduction.tolerance)
+            finite = all(np.all(np.isfinite(x)) for x in (reduced.a, reduced.b, reduced.c))
+        except (FloatingPointError, ValueError, np.linalg.LinAlgError):
+            finite = False
+        if not finite:
+            return (
+                None,
+                None,
+                [
+                    FieldProblem(
+                        pointer(*where, "responses"),
+                        "the reduction of these step responses overflows double precision: some coefficients are "
+                        "too large (or too small) for their units (the Gramians hold their squares). Express the "
+                        "signals in units where the numbers are moderate",
+                    )
+                ],
+            )
         a, c = reduced.a, reduced.c
         b, bd = reduced.b[:, :m], (None if bd is None else reduced.b[:, m : m + md])
         roles = None

@@ -449,6 +449,13 @@ RAW_CASES = [
         b"POST /design HTTP/1.1\r\nHost: x\r\nContent-Length: 2\r\nContent-Length: 3\r\n\r\n{}",
     ),
     ("negative Content-Length", b"POST /design HTTP/1.1\r\nHost: x\r\nContent-Length: -1\r\n\r\n{}"),
+    (
+        # framed two ways (request smuggling); found in an audit of hostile input: answered 200 as
+        # chunked with the connection kept open, where RFC 9112, section 6.3, requires it closed
+        "both Content-Length and Transfer-Encoding",
+        b"POST /design HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\nContent-Length: 5\r\n"
+        b"Transfer-Encoding: chunked\r\n\r\n2\r\n{}\r\n0\r\n\r\n",
+    ),
     ("a header line without a colon", b"GET /healthz HTTP/1.1\r\nHost: x\r\nnot a header\r\n\r\n"),
     ("a garbage request line", b"\x16\x03\x01\x02\x00\x01\x00\x01\xfc\x03\x03\r\n\r\n"),
     ("no Host header", b"GET /healthz HTTP/1.1\r\n\r\n"),
@@ -515,6 +522,7 @@ def test_every_hostile_request_gets_a_problem_with_its_status_and_pointer(tmp_pa
                 try:
                     assert head.startswith(f"HTTP/1.1 {status}".encode()), (name, head[:80])
                     assert b"content-type: application/problem+json" in head.lower(), (name, head)
+                    assert status != 400 or b"connection: close" in head.lower(), (name, head)
                     problem = json.loads(body)
                     assert problem["status"] == status and problem["type"].startswith("urn:movecast:problem:"), name
                 except (AssertionError, ValueError) as exc:

@@ -166,3 +166,71 @@ def test_more_correlation_lags_than_samples_to_fit_is_a_422_not_a_500(client_mod
         body["correlation_lags"] = 59
         answer = client_module.post("/identify", json=body)
         assert answer.status_code == 200, answer.text
+
+
+def _heater_test(sample_time: float) -> dict:
+    """An invented plant test: a first-order heater y(k+1) = 0.8 y(k) + 0.5 u(k), seeded noise."""
+    rng = np.random.default_rng(5)
+    u = np.repeat(rng.choice([-1.0, 1.0], size=12), 5)
+    u[:5] = 0.0  # the record starts at rest
+    y = np.zeros(60)
+    for k in range(59):
+        y[k + 1] = 0.8 * y[k] + 0.5 * u[k]
+    y = y + 0.01 * rng.standard_normal(60)
+    return {
+        "sample_time": sample_time,
+        "inputs": ["heater"],
+        "outputs": ["outlet_temperature"],
+        "data": {"heater": (50.0 + u).tolist(), "outlet_temperature": (80.0 + y).tolist()},
+    }
+
+
+@pytest.mark.parametrize("sample_time", [1.0, 1e-15, 3600.0, 1e200])
+def test_the_time_unit_does_not_change_the_fit(client_module, sample_time) -> None:
+    # y(k+1) = 0.8 y(k) + 0.5 u(k) is K/(tau s + 1) sampled under zero-order hold with no dead
+    # time: e^(-T/tau) = 0.8 and K (1 - 0.8) = 0.5 (the textbook zero-order-hold sampling of a
+    # first-order lag), so K = 2.5 and tau = -T / ln 0.8 whatever the time unit of T. Found in an
+    # audit of hostile input: at a sample time of 1e-15 the fit stopped at a gain of -98 and a
+    # time constant at its bound, warned as weak excitation; at 1e200 near its start.
+    r = client_module.post("/identify", json=_heater_test(sample_time))
+    assert r.status_code == 200, r.text
+    answer = r.json()
+    element = answer["model"]["elements"][0][0]
+    assert element["gain"] == pytest.approx(2.5, rel=0.01)
+    assert element["time_constants"][0] == pytest.approx(-sample_time / np.log(0.8), rel=0.01)
+    assert element["dead_time"] == pytest.approx(0.0, abs=1e-6 * sample_time)
+    # a dead time at its lower limit, zero, is no finding (it was warned as "ended at its limit (20)")
+    assert answer["warnings"] == [], answer["warnings"]
+
+
+def test_a_settling_time_of_more_samples_than_a_float_holds_is_the_record_not_a_500(client_module) -> None:
+    # A settling time of 20 time units at a sample time of 1e-308 is 2e309 samples, more than a
+    # float holds (found in an audit of hostile input: a 500). The fit never looks past the
+    # record, so it is answered as a settling time of the whole record (60 samples) is.
+    request = {**_heater_test(1e-308), "settling_time": 20.0}
+    beyond = client_module.post("/identify", json=request)
+    assert beyond.status_code == 200, beyond.text
+    record = client_module.post("/identify", json={**request, "settling_time": 60 * 1e-308})
+    assert record.status_code == 200, record.text
+    assert beyond.json()["model"] == record.json()["model"]
+
+
+@pytest.mark.parametrize(
+    ("input_unit", "output_unit"), [(1e-13, 1.0), (1e-200, 1.0), (1e200, 1.0), (1.0, 1e-300), (1.0, 1e300)]
+)
+def test_the_data_s_units_do_not_change_the_fit(client_module, input_unit, output_unit) -> None:
+    # Data in other units, u' = u * a and y' = y * c, give the gain K c / a with the same time
+    # constant (a linear model's gain is output units per input unit). Found in an audit of
+    # hostile input: an input reading about 1e-13 was called still (an absolute floor of 1e-12),
+    # and one about 1e-200 was fitted to a gain of -7e-203 (its standard deviation underflowed
+    # in the squares, so the fit saw it unscaled).
+    request = _heater_test(1.0)
+    request["data"] = {
+        "heater": [v * input_unit for v in request["data"]["heater"]],
+        "outlet_temperature": [v * output_unit for v in request["data"]["outlet_temperature"]],
+    }
+    r = client_module.post("/identify", json=request)
+    assert r.status_code == 200, r.text
+    element = r.json()["model"]["elements"][0][0]
+    assert element["gain"] == pytest.approx(2.5 * output_unit / input_unit, rel=0.01)
+    assert element["time_constants"][0] == pytest.approx(-1.0 / np.log(0.8), rel=0.01)

@@ -95,6 +95,29 @@ def test_bad_csv_names_the_cell(make_client) -> None:
     assert caught.value.problems[0].pointer == "/inputs"
 
 
+@pytest.mark.parametrize(
+    ("cell", "words"),
+    [
+        ("", "is missing"),
+        ("nan", "'nan', not a finite number"),
+        ("inf", "'inf', not a finite number"),
+        ("8.0", "row 9 (8.0) is not after row 8 (8.0)"),
+        ("3.0", "row 9 (3.0) is not after row 8 (8.0)"),
+    ],
+)
+def test_a_bad_time_stamp_names_its_own_cell(cell, words) -> None:
+    # Found in an audit of hostile input: an empty time cell in row 9 of a numeric time column was
+    # blamed on row 0 ("'0.0' is neither a number nor an ISO 8601 date-time"), and a time of nan,
+    # a repeated or a backward one were named "/time/9", no cell of the CSV.
+    lines = csv_body().decode().splitlines()
+    lines[10] = cell + "," + lines[10].split(",", 1)[1]  # row 9 below the header (minutes 9.0)
+    with pytest.raises(InvalidRequest) as caught:
+        identify_request_from_csv("\n".join(lines).encode(), IdentifyCsvOptions.model_validate(QUERY))
+    (problem,) = caught.value.problems
+    assert problem.pointer == "/data/minutes/9"
+    assert words in problem.detail
+
+
 def test_identify_takes_json_or_csv_and_the_deprecated_path_answers_the_same(make_client) -> None:
     client = make_client()
     csv_headers = {"Content-Type": "text/csv; charset=utf-8"}

@@ -189,6 +189,31 @@ def test_numbers_that_overflow_are_a_422_not_a_500(client, example, edit):
     assert "/model" in problem_pointers(r)
 
 
+@pytest.mark.parametrize("move_weight", [5e307, 1.7e308])
+def test_a_weight_whose_hessian_condition_number_overflows_is_a_422_naming_the_weights(client, example, move_weight):
+    # Found in an audit of hostile input: a move weight near 1e308 gave finite Hessian ends
+    # (l_min about 0.1, l_max about the weight) whose ratio overflows, and the answer's infinite
+    # condition number was a 500 (in `movecast design`, a 422 naming "/condition_number").
+    example["weights"]["move"] = [move_weight, 0.1]
+    r = client.post("/design", json=example)
+    assert r.status_code == 422, r.text
+    (problem,) = r.json()["errors"]
+    assert problem["pointer"] == "/weights"
+    assert "condition number overflows" in problem["detail"]
+
+
+def test_a_huge_move_weight_whose_condition_number_is_finite_still_designs(client, example):
+    # H = G'QG + R with R = diag(1e300, 0.1, ...): by Weyl's inequality its largest eigenvalue
+    # lies within ||G'QG||_2 (a few hundred here) of the largest of R, 1e300 (Weyl's inequality
+    # for the eigenvalues of a sum of symmetric matrices, a textbook formula).
+    example["weights"]["move"] = [1e300, 0.1]
+    r = client.post("/design", json=example)
+    assert r.status_code == 200, r.text
+    hessian = r.json()["hessian"]
+    assert hessian["largest_eigenvalue"] == pytest.approx(1e300, rel=1e-12)
+    assert np.isfinite(hessian["condition_number"])
+
+
 def test_messages_use_the_tag_names(client):
     request = wood_berry_request()
     request["model"]["elements"][1] = [None, None]

@@ -572,6 +572,18 @@ def test_absurd_levels_overflow_into_a_cut_run_not_a_server_error(client, reques
     assert answer["diverged_at"] is not None and len(answer["outputs"]) == answer["diverged_at"]
 
 
+@pytest.mark.parametrize("entry", [("c", 1, 0), ("b", 1, 0)])
+@pytest.mark.parametrize("value", [1e308, -1e308, 1e200])
+def test_a_true_plant_whose_loop_overflows_is_a_422_naming_it(client, request_body, entry, value):
+    # Found in an audit of hostile input: an entry of 1e308 in C of the true plant made the
+    # matrix of the loop on it overflow, and its eigenvalue problem was a 500; in B the loop was
+    # answered "stable" with a spectral radius of 3e-17 (its eigenvalues noise) while the run
+    # blew up at its first step.
+    matrix, i, j = entry
+    request_body["scenario"]["true_plant"][matrix][i][j] = value
+    assert pointers(client, request_body) == ["/scenario/true_plant"]
+
+
 def test_move_blocking_is_simulated_with_the_design_s_gains(client):
     # The law of the design notes with the gains of a blocked design (moves at steps 0, 2, 4).
     body = plain_request(steps=120, kind="full_state", setpoint_changes=[{"step": 5, "setpoint": [1.0, -0.5]}])

@@ -69,3 +69,54 @@ def test_warnings_reach_the_log_as_json_lines_without_source_paths(caplog):
     finally:
         warnings.showwarning = previous
         logging.getLogger("movecast.warnings").handlers.clear()
+
+
+def test_an_object_of_the_wrong_type_is_named_as_a_json_object_not_a_python_class(make_client):
+    # Found in an audit of hostile input: pydantic's sentence for a block of the wrong type named
+    # the schema's Python class ("input should be a valid dictionary or instance of Horizons").
+    client = make_client()
+    cases = [
+        ("/design", lambda b: b.__setitem__("horizons", None), "/horizons"),
+        ("/design", lambda b: b.__setitem__("model", "state_space"), "/model"),
+        ("/design", lambda b: b["weights"].__setitem__("output", {"z1": 1}), "/weights/output"),
+        ("/design/batch", lambda b: b["items"].__setitem__(0, [1]), "/items/0"),
+    ]
+    examples = {"/design": "design_request.json", "/design/batch": "batch_request.json"}
+    for route, edit, where in cases:
+        body = copy.deepcopy(load_example(examples[route]))
+        edit(body)
+        answer = client.post(route, json=body)
+        assert answer.status_code == 422, answer.text
+        details = {e["pointer"]: e["detail"] for e in answer.json()["errors"]}
+        assert where in details, details
+        assert "instance of" not in answer.text and "dictionary" not in answer.text, details
+    answer = client.post("/design", json=[1, 2])
+    assert answer.json()["errors"] == [
+        {"pointer": "", "detail": "input should be a JSON object (a set of named fields)"}
+    ]
+
+
+def test_a_compressed_body_is_a_415_that_says_so(make_client):
+    # Found in an audit of hostile input: a gzip body was answered "not valid UTF-8 (byte 1)", and
+    # a body labelled 'Content-Encoding: br' but sent plain was read as if the label were absent.
+    # RFC 9110, section 15.5.16: an unsupported content coding is a 415, with Accept-Encoding
+    # naming the codings accepted.
+    import gzip
+
+    client = make_client()
+    body = json.dumps(load_example("design_request.json")).encode()
+    csv_body = b"minutes,steam_valve,vessel_temperature\n0,1,2\n"
+    for route, content, kind in [
+        ("/design", gzip.compress(body), "application/json"),
+        ("/design", body, "application/json"),
+        ("/identify?sample_time=1&inputs=steam_valve&outputs=vessel_temperature", gzip.compress(csv_body), "text/csv"),
+    ]:
+        for coding in ("gzip", "br", "GZIP, identity"):
+            answer = client.post(route, content=content, headers={"content-type": kind, "content-encoding": coding})
+            assert answer.status_code == 415, answer.text
+            assert answer.headers["accept-encoding"] == "identity"
+            assert "Content-Encoding" in answer.json()["detail"]
+    plain = client.post(
+        "/design", content=body, headers={"content-type": "application/json", "content-encoding": "identity"}
+    )
+    assert plain.status_code == 200, plain.text

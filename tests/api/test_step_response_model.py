@@ -146,3 +146,18 @@ def test_bad_tables_name_the_field(client, pair) -> None:
     body = assert_problem(client.post("/design", json=long), 422, "invalid-request")
     assert body["errors"][0]["pointer"] == "/model/responses/0/0/coefficients"
     assert "states" in body["errors"][0]["detail"]
+
+
+@pytest.mark.parametrize("value", [1e308, -1e308])
+def test_a_reduction_that_overflows_is_a_422_naming_the_responses(client, pair, value) -> None:
+    # Found in an audit of hostile input: a coefficient of 1e308 overflowed the Gramians of the
+    # balanced truncation (their Lyapunov equations hold its square), a 500; without a
+    # reduction the same table was already a 422.
+    _, stepped = pair
+    stepped["model"]["reduction"] = {"tolerance": 1e-3}
+    stepped["model"]["responses"][0][0]["coefficients"][1] = value
+    r = client.post("/design", json=stepped)
+    assert r.status_code == 422, r.text
+    assert [e["pointer"] for e in r.json()["errors"]] == ["/model/responses"]
+    del stepped["model"]["reduction"]
+    assert client.post("/design", json=stepped).status_code == 422

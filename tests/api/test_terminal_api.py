@@ -137,3 +137,27 @@ def test_riccati_with_measured_outputs_of_their_own_exports_simulate_s_law(clien
     np.testing.assert_allclose(v[:, :1], u, rtol=0, atol=1e-9 * np.abs(u).max())
     if kind == "kalman":  # offset-free through the input-disturbance model (full_state has none)
         assert abs(sim["outputs"][-1][0] - 1.0) < 1e-3  # the unmeasured output held on its setpoint
+
+
+@pytest.mark.parametrize("scale", [1e-9, 1e-6, 1e6, 1e9])
+def test_the_riccati_design_does_not_depend_on_the_inputs_units(client, scale):
+    # Inputs in other units, u' = u / s: B' = s B and R' = s^2 R pose the same problem, whose
+    # gains in the new units are the old ones over s (a change of variables). With Hu = Hp the
+    # first move is the LQR move of the incremental system (dynamic programming; reference:
+    # scipy.linalg.solve_discrete_are). Found in an audit of hostile input: at s = 1e-9 and from
+    # s = 1e6 on the Riccati weight was refused as not existing ("the mode at z = 1 cannot be
+    # moved by the inputs"), the equation's checks being made in the request's units.
+    body = load_example("design_request.json")
+    body["weights"]["terminal"] = "riccati"
+    body["horizons"] = {"prediction": 6, "control": 6, "first_penalized": 1}
+    a, b, c = (np.array(body["model"][k], dtype=float) for k in "abc")
+    q, r = np.diag(body["weights"]["output"]), np.diag(body["weights"]["move"])
+    body["model"]["b"] = (b * scale).tolist()
+    body["weights"]["move"] = (np.diag(r) * scale**2).tolist()
+    answer = client.post("/design", json=body)
+    assert answer.status_code == 200, answer.text
+    gain = answer.json()["gain"]
+    lqr = incremental_lqr(a, b, c, q, r)[0]  # in the original units
+    n = a.shape[0]
+    np.testing.assert_allclose(np.array(gain["state"]) * scale, lqr[:, :n], rtol=1e-6, atol=1e-9)
+    np.testing.assert_allclose(np.array(gain["previous_input"]), lqr[:, n:], rtol=1e-6, atol=1e-9)

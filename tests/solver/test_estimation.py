@@ -298,3 +298,21 @@ def test_the_output_disturbance_reaches_a_sensor_only_on_its_own_signal():
     # a sensor with a feed-through is another signal than the output it reads
     np.testing.assert_array_equal(measured_output_map(c, cm, np.array([[0.0], [0.0], [0.5]])), [[0, 1], [0, 0], [0, 0]])
     np.testing.assert_array_equal(measured_output_map(c, c), np.eye(2))
+
+
+def test_a_riccati_equation_that_overflows_says_so_in_the_trade_s_words():
+    # Found in an audit of hostile input: a measurement noise of 1e308 made the filter's Riccati
+    # equation fail with the library's own words in the answer ("Failed to find a finite
+    # solution.", or "array must not contain infs or NaNs" for an output 1e-300 times its state).
+    with pytest.raises(NumericalError) as caught:
+        design_estimator(
+            [[0.9, 0.0], [0.0, 0.8]],
+            [[1.0], [0.5]],
+            [[1.0, 0.0], [0.0, 1.0]],
+            kind="kalman",
+            disturbance="none",
+            measurement_noise=[1.0, 1e308],
+        )
+    assert caught.value.field == ("estimator",)
+    assert "overflowed double precision" in caught.value.detail
+    assert "Failed" not in caught.value.detail and "NaN" not in caught.value.detail

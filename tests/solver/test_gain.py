@@ -129,6 +129,25 @@ def test_zero_move_weight_on_one_blind_input_names_that_input(rng):
     assert "the moves of outlet carry no move penalty" in str(caught.value)
 
 
+def test_an_unstable_plant_over_a_long_horizon_is_not_blamed_on_unpenalized_moves():
+    # Found in an audit of hostile input: the example vessel with a[0][3] = 100 (open-loop pole
+    # modulus 2.3 by numpy.linalg.eigvals) and Hp = 30 grows its predictions by about 2.3^30, so
+    # G'QG reaches about 1e22 and the move weights of 0.1 are below its rounding (a relative
+    # 1e-16, the double precision of IEEE 754). The 422 said the moves "carry no move penalty"
+    # while they had 0.1 each and the step-response matrix had full rank over them.
+    a = np.array([[0.92, 0.05, 0.0, 100.0], [0.0, 0.85, 0.0, 0.0], [0.0, 0.0, 0.95, 0.03], [0.02, 0.0, 0.0, 0.80]])
+    b = np.array([[0.10, -0.02], [0.20, 0.0], [0.0, 0.08], [0.05, 0.15]])
+    c = np.array([[1.0, 0.0, 0.0, 0.0], [0.0, 0.0, 1.0, 0.0]])
+    assert max(abs(np.linalg.eigvals(a))) > 2.0
+    with pytest.raises(HessianNotPositiveDefinite) as caught:
+        design_controller(a, b, c, output_weight=[1.0, 2.0], move_weight=[0.1, 0.1], prediction=30, control=5)
+    message = str(caught.value)
+    assert "no move penalty" not in message and "rounding level" in message
+    assert "shorten the prediction horizon" in message
+    # and the shorter horizon it advises designs
+    design_controller(a, b, c, output_weight=[1.0, 2.0], move_weight=[0.1, 0.1], prediction=8, control=5)
+
+
 def test_zero_move_weight_with_full_rank_moves_is_accepted(rng):
     # With m <= p and G of full column rank, R = 0 is well-posed (H = G'QG is PD).
     a, b, c = random_plant(rng, 4, 2, 2)

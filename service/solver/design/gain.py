@@ -359,7 +359,10 @@ def factor_hessian(
         m = move_weight.shape[0]
         labels = list(input_labels) if input_labels else [f"u{j + 1}" for j in range(m)]
         inputs, rank, count = _unseen_free_moves(weighted, move_weight, control)
-        if inputs:
+        # free moves explain a singular Hessian only when the outputs do not see them all; with
+        # full rank there (move weights at rounding level next to G'QG, as when an open-loop
+        # unstable plant's predictions grow over a long horizon) the cause is the size of G'QG
+        if inputs and rank < count:
             names = ", ".join(labels[j] for j in inputs)
             why = (
                 f" With {m} inputs and only {outputs} controlled output(s), some combinations "
@@ -378,7 +381,10 @@ def factor_hessian(
         else:
             detail = (
                 f"The Hessian G'QG + R is not numerically positive definite (eigenvalues from "
-                f"{eigenvalues[0]:.3g} to {eigenvalues[-1]:.3g}). Raise the move weights."
+                f"{eigenvalues[0]:.3g} to {eigenvalues[-1]:.3g}): next to what the outputs see of the "
+                f"moves over the prediction horizon (the Hessian's diagonal reaches "
+                f"{float(np.diag(hessian).max()):.3g}) the move weights are at rounding level. An open-loop unstable plant's predictions grow "
+                f"over a long horizon: shorten the prediction horizon; otherwise raise the move weights."
             )
         raise HessianNotPositiveDefinite(detail, field=("weights", "move"))
     return FactoredHessian(

@@ -68,7 +68,7 @@ from service.errors import NumericalError
 from service.solver.design.gain import FactoredHessian, PredictiveGain
 from service.solver.design.weights import weight_root
 from service.solver.estimation.target import target_problem
-from service.solver.numerics import format_complex, pbh_matrix, singular_value_rank
+from service.solver.numerics import balance_states, format_complex, pbh_matrix, singular_value_rank
 
 __all__ = [
     "TERMINAL_FIELD",
@@ -221,6 +221,41 @@ def riccati_terminal_weight(
         one that does not solve the equation, in such cases without raising, so the
         residual and the closed loop ``A_i - B_i K`` are checked explicitly.
     """
+    # Solved in units where every input and state has a moderate size (powers of two, so the
+    # change of variables is exact): u = S v and x = D xi give the incremental state
+    # [x; u] = T [xi; v] with T = diag(D, S), P = T^-T P_s T^-1 and K = S K_s T^-1.  In the
+    # request's units an input scaled by 1e9 (its move weight by 1e18, the same problem) had
+    # made the equation's checks and the PBH verdicts of its failure refuse it.
+    t = _incremental_scales(a, b, c, move_weight)
+    n = a.shape[0]
+    d, s = t[:n], t[n:]
+    a_s, b_s, c_s = a / d[:, None] * d[None, :], b * s / d[:, None], c * d[None, :]
+    p_s, k_s = _riccati_solution(a_s, b_s, c_s, output_weight, move_weight * s[:, None] * s[None, :])
+    return p_s / t[:, None] / t[None, :], s[:, None] * k_s / t[None, :]
+
+
+def _incremental_scales(
+    a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64], move_weight: NDArray[np.float64]
+) -> NDArray[np.float64]:
+    """The diagonal of ``T = diag(D, S)``, powers of two: ``[x; u] = T [xi; v]`` in moderate units.
+
+    ``S`` makes each input's column of ``[B; R^(1/2)]`` about 1 in size (a change of the input's
+    unit scales both alike), ``D`` balances the states of ``(A, B S, C)``
+    (:func:`service.solver.numerics.balance_states`).
+    """
+    column = np.sqrt(np.einsum("ij,ij->j", b, b) + np.clip(np.diag(move_weight), 0.0, None))
+    s = np.exp2(-np.round(np.log2(np.where(column > 0.0, column, 1.0))))
+    return np.concatenate([balance_states(a, b * s, c), s])
+
+
+def _riccati_solution(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    output_weight: NDArray[np.float64],
+    move_weight: NDArray[np.float64],
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """:func:`riccati_terminal_weight` in the units it is solved in (its checks, its failures)."""
     a_i, b_i, c_i = incremental_system(a, b, c)
     state_weight = c_i.T @ output_weight @ c_i
     seen = weight_root(output_weight) @ c_i
@@ -341,7 +376,11 @@ def terminal_weight(
     p, k = riccati_terminal_weight(a, b, c, output_weight, move_weight)
     phi, gamma = terminal_prediction(a, b, prediction=prediction, control=control)
     target = target_problem(a, b, c, output_weight=output_weight).setpoint_map
-    return TerminalWeight(matrix=p, root=weight_root(p), lqr_gain=k, free_response=phi, moves=gamma, target=target)
+    # the root in the units P was solved in (W_s' W_s = T P T, W = W_s T^-1): P's entries may
+    # span the inputs' units squared, past what one eigendecomposition resolves
+    t = _incremental_scales(a, b, c, move_weight)
+    root = weight_root(p * t[:, None] * t[None, :]) / t[None, :]
+    return TerminalWeight(matrix=p, root=root, lqr_gain=k, free_response=phi, moves=gamma, target=target)
 
 
 def terminal_first_move_gain(hessian: FactoredHessian, terminal: TerminalWeight, *, inputs: int) -> NDArray[np.float64]:

@@ -78,6 +78,7 @@ control", AIChE J. 49 (2003) 426-437, doi:10.1002/aic.690490213.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Literal
@@ -607,17 +608,25 @@ def kalman_filter(
     solve with ``S``, no inverse.
     """
     try:
-        with np.errstate(all="ignore"):
+        with np.errstate(all="ignore"):  # an overflow is found below, by the finite checks
             p = scipy.linalg.solve_discrete_are(a.T, c.T, process_noise, measurement_noise)
-        p = 0.5 * (p + p.T)
-        s = c @ p @ c.T + measurement_noise
-        s = 0.5 * (s + s.T)
-        gain = scipy.linalg.cho_solve(scipy.linalg.cho_factor(s), c @ p).T
+            p = 0.5 * (p + p.T)
+            s = c @ p @ c.T + measurement_noise
+            s = 0.5 * (s + s.T)
+            gain = scipy.linalg.cho_solve(scipy.linalg.cho_factor(s), c @ p).T
     except (np.linalg.LinAlgError, ValueError) as exc:
+        # said in the trade's words, not the library's ("array must not contain infs or NaNs")
+        why = (
+            "its numbers overflowed double precision: some entries of the model or of the noise "
+            "covariances are too large (or too small) for their units"
+            if isinstance(exc, ValueError)
+            or not math.isfinite(float(np.abs(process_noise).max()) * float(np.abs(measurement_noise).max()))
+            else "the solver found none"
+        )
         raise NumericalError(
-            f"The Kalman filter's Riccati equation has no stabilizing solution ({exc}). "
-            f"Give every mode on the unit circle some process noise and make the "
-            f"measurement noise covariance positive definite.",
+            f"The Kalman filter's Riccati equation has no stabilizing solution ({why}). "
+            f"Give every mode on the unit circle some process noise, make the "
+            f"measurement noise covariance positive definite, and keep the numbers moderate.",
             field=_NOISE_FIELD,
         ) from exc
     if not np.all(np.isfinite(gain)):

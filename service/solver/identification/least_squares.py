@@ -240,7 +240,12 @@ def _best_start(
 
 def _spread(values: Array) -> float:
     """The standard deviation of ``values`` (1 when it is zero or not finite): the size a signal is fitted at."""
-    size = float(np.std(values)) if values.size else 0.0
+    # the standard deviation of the values divided by their largest size, multiplied back: the
+    # squares of values near 1e-200 (or 1e200) underflow (overflow) in np.std itself
+    largest = float(np.max(np.abs(values))) if values.size else 0.0
+    if not (np.isfinite(largest) and largest > 0.0):
+        return 1.0
+    size = float(np.std(values / largest)) * largest
     return size if np.isfinite(size) and size > 0.0 else 1.0
 
 
@@ -290,8 +295,15 @@ def fit_output(
     difference steps, are the same to rounding whatever the units (a fraction or a flow in
     kg/h); the gains, offset, drift, their standard errors, the residual size and the fitted
     series are multiplied back (a gain by ``y_scale / u_scale``), the time constants and dead
-    times being free of units.
+    times being free of units.  Likewise every time is fitted in samples (the sample time taken
+    as 1, the model's response at the samples depending only on times divided by the sample
+    time and on an integrating rate times it) and multiplied back by the sample time, so that
+    the time unit (hours or a sample time of 1e-15) does not change the fit beyond rounding
+    either: in the time unit, a solver whose parameters differ by 1e15 in size stopped far from
+    the optimum.
     """
+    time_unit = sample_time
+    sample_time, max_dead_time = 1.0, min(max_dead_time / time_unit, float(np.finfo(float).max))
     n = y.shape[0]
     rows = used & np.isfinite(y)
     count = int(rows.sum())
@@ -363,12 +375,19 @@ def fit_output(
     bound = (np.abs(x - lo_a) <= 1e-6 * span) | (np.abs(hi_a - x) <= 1e-6 * span)
     fitted, parts = _simulate(x, u, pairs, sample_time, detrend)
     # back to the data's units: a gain by y_scale / u_scale, the offset and drift by y_scale
+    # and from samples to the time unit: times by the sample time, a rate (an integrating
+    # pair's gain, the drift) divided by it
     units = np.ones(q)
     at = 0
     for pair in pairs:
-        units[at + STRUCTURES[pair.structure].index("gain")] = y_scale / u_scale[pair.column]
-        at += len(STRUCTURES[pair.structure])
+        names = STRUCTURES[pair.structure]
+        rate = 1.0 / time_unit if pair.structure.startswith("integrating") else 1.0
+        units[at : at + len(names)] = time_unit
+        units[at + names.index("gain")] = rate * y_scale / u_scale[pair.column]
+        at += len(names)
     units[at:] = y_scale
+    if detrend:
+        units[at + 1] = y_scale / time_unit
     x, se = x * units, se * units
     parameters, errors, flags = [], [], []
     at = 0
