@@ -182,6 +182,8 @@ def identify_request_from_csv(body: bytes, options: IdentifyCsvOptions) -> Ident
         "data": data,
         "time": time,
         "structure": options.structure,
+        "order": options.order,
+        "block_rows": options.block_rows,
         "detrend": options.detrend,
         "max_dead_time": options.max_dead_time,
         "settling_time": options.settling_time,

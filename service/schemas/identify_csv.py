@@ -40,7 +40,15 @@ class IdentifyCsvOptions(RequestModel):
     time_unit: Literal["s", "min", "h"] = Field(
         default="s", description="Time unit of ISO 8601 time stamps once converted (match the sample time)."
     )
-    structure: Literal["first_order_dead_time", "second_order_dead_time"] = "first_order_dead_time"
+    structure: Literal["first_order_dead_time", "second_order_dead_time", "subspace"] = Field(
+        default="first_order_dead_time", description="As the JSON body's structure."
+    )
+    order: Annotated[int, Field(ge=1, le=100)] | None = Field(
+        default=None, description="Subspace fit: the model order; default read from the singular values."
+    )
+    block_rows: Annotated[int, Field(ge=2, le=200)] | None = Field(
+        default=None, description="Subspace fit: block rows of the Hankel matrices; default up to 20."
+    )
     detrend: bool = False
     max_dead_time: Positive | None = None
     settling_time: Positive | None = None

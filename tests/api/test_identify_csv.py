@@ -193,3 +193,35 @@ def test_movecast_identify_without_a_server(capsys) -> None:
     assert main(["identify", str(example_path("plant_test.csv")), *args, "--inputs=steam"]) == 2
     problem = json.loads(capsys.readouterr().err)
     assert problem["errors"][0]["pointer"] == "/inputs"
+
+
+def test_a_subspace_fit_takes_the_same_choices_from_a_csv(make_client) -> None:
+    # The example plant test with its gaps and spike repaired (a subspace fit needs every
+    # sample), written as a historian's CSV: the same model as the JSON body with the same choices.
+    from tests.api.test_identify_subspace import complete_request
+
+    request = complete_request()
+    request["outlier_limit"] = 50.0  # a check that flags nothing in these repaired data, on both
+    request.pop("validation")
+    tags = [*request["inputs"], *request["outputs"], *request["disturbances"]]
+    rows = zip(*(request["data"][t] for t in tags), strict=True)
+    text = "\n".join([",".join(tags), *(",".join(repr(float(v)) for v in row) for row in rows)]) + "\n"
+    query = {
+        "sample_time": request["sample_time"],
+        "inputs": ",".join(request["inputs"]),
+        "outputs": ",".join(request["outputs"]),
+        "disturbances": ",".join(request["disturbances"]),
+        "structure": "subspace",
+        "order": 4,
+        "block_rows": 12,
+        "max_dead_time": request["max_dead_time"],
+        "settling_time": request["settling_time"],
+        "outlier_limit": 50.0,
+    }
+    client = make_client()
+    from_csv = client.post("/identify", params=query, content=text.encode(), headers={"Content-Type": "text/csv"})
+    assert from_csv.status_code == 200, from_csv.text
+    from_json = client.post("/identify", json={**request, "block_rows": 12})
+    assert from_json.status_code == 200, from_json.text
+    assert from_csv.json()["subspace"]["order"] == 4 and from_csv.json()["subspace"]["block_rows"] == 12
+    assert from_csv.json()["model"] == from_json.json()["model"]
