@@ -59,6 +59,7 @@ def _run_offline(
     """
     from service.pipeline.problems import problem_of
 
+    instance = "/" + example.removesuffix("_request.json")
     try:
         try:
             request = parse(read(source) if read is not None else _read_request(source, example))
@@ -66,9 +67,14 @@ def _run_offline(
             raise MalformedBody(f"The request is not valid JSON: {exc}") from exc
         except OSError as exc:
             raise MalformedBody(f"Cannot read the request: {exc.strerror or exc}") from exc
-        response = answer(request)
     except (ValidationError, MovecastError) as exc:
-        instance = "/" + example.removesuffix("_request.json")
+        print(json.dumps(problem_of(exc).body(instance), indent=2), file=sys.stderr)
+        return EXIT_INVALID
+    try:
+        response = answer(request)
+    except MovecastError as exc:
+        # as the service answers it; any other error (an answer its own model refuses among
+        # them) is the service's fault, as a 500 is, and is not reported against the request
         print(json.dumps(problem_of(exc).body(instance), indent=2), file=sys.stderr)
         return EXIT_INVALID
     if render is None:

@@ -55,3 +55,25 @@ def test_serve_takes_host_port_and_workers():
 def test_openapi_prints_the_served_schema(capsys, client):
     assert main(["openapi"]) == 0
     assert json.loads(capsys.readouterr().out) == client.get("/openapi.json").json()
+
+
+def test_only_the_request_s_own_validation_is_reported_against_the_request(capsys):
+    # A request that fails its model is a 422-style problem (exit 2); an answer that fails its
+    # response model is the service's own fault (the service answers it 500), not the request's.
+    from pydantic import BaseModel, ValidationError
+
+    from service.cli import EXIT_INVALID, _run_offline
+
+    class Strict(BaseModel):
+        value: int
+
+    def answer(request):
+        return Strict.model_validate({"value": "not a number"})
+
+    assert (
+        _run_offline(None, "design_request.json", lambda body: Strict.model_validate({"value": []}), answer)
+        == EXIT_INVALID
+    )
+    assert '"pointer": "/value"' in capsys.readouterr().err
+    with pytest.raises(ValidationError):
+        _run_offline(None, "design_request.json", lambda body: Strict(value=1), answer)
