@@ -11,6 +11,7 @@ from __future__ import annotations
 import csv
 import io
 import math
+import re
 from datetime import datetime
 
 from pydantic import ValidationError
@@ -31,21 +32,28 @@ def _tags(text: str) -> list[str]:
     return [t.strip() for t in text.split(",") if t.strip()]
 
 
+#: A number as a historian writes one: optional sign, digits with an optional decimal point,
+#: optional exponent.  Python's float() also reads '4_0.0' (as 40), 'infinity' and other
+#: scripts' digits, which no CSV export means as numbers.
+PLAIN_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?")
+
+
 def _number(cell: str) -> float | None:
+    """The cell's number, None for a missing value; ValueError saying what is wrong otherwise."""
     text = cell.strip()
     if text.lower() in MISSING:
         return None
+    if not PLAIN_NUMBER.fullmatch(text):
+        raise ValueError(f"{cell!r} is not a number")
     value = float(text)
     if not math.isfinite(value):
-        raise ValueError(text)
+        raise ValueError(f"{cell!r} is too large for double precision (at most about 1.8e308)")
     return value
 
 
 def _float(cell: str) -> float | None:
-    try:
-        return float(cell)
-    except ValueError:
-        return None
+    text = cell.strip()
+    return float(text) if PLAIN_NUMBER.fullmatch(text) else None
 
 
 def _times(cells: list[str], options: IdentifyCsvOptions, column: str) -> list[float]:
@@ -159,8 +167,8 @@ def identify_request_from_csv(body: bytes, options: IdentifyCsvOptions) -> Ident
         for k, row in enumerate(rows[1:]):
             try:
                 values.append(_number(row[j]))
-            except ValueError:
-                raise InvalidRequest([FieldProblem(pointer("data", tag, k), f"{row[j]!r} is not a number")]) from None
+            except ValueError as exc:
+                raise InvalidRequest([FieldProblem(pointer("data", tag, k), str(exc))]) from None
         data[tag] = values
     time = None
     if time_column is not None:

@@ -225,3 +225,31 @@ def test_a_subspace_fit_takes_the_same_choices_from_a_csv(make_client) -> None:
     assert from_json.status_code == 200, from_json.text
     assert from_csv.json()["subspace"]["order"] == 4 and from_csv.json()["subspace"]["block_rows"] == 12
     assert from_csv.json()["model"] == from_json.json()["model"]
+
+
+@pytest.mark.parametrize(
+    ("cell", "words"),
+    [
+        ("4_0.0", "'4_0.0' is not a number"),  # Python's float() reads it as 40
+        ("infinity", "'infinity' is not a number"),
+        ("1e400", "'1e400' is too large for double precision"),
+    ],
+)
+def test_a_data_cell_is_a_plain_number_or_says_what_it_is(cell, words) -> None:
+    # Found in an audit of hostile input: cells Python reads but no CSV export means as numbers.
+    lines = csv_body().decode().splitlines()
+    lines[6] = lines[6].replace("55.0", cell, 1)
+    with pytest.raises(InvalidRequest) as caught:
+        identify_request_from_csv("\n".join(lines).encode(), IdentifyCsvOptions.model_validate(QUERY))
+    (problem,) = caught.value.problems
+    assert problem.pointer == "/data/outlet_valve/5"
+    assert words in problem.detail
+
+
+def test_plain_numbers_in_every_written_form_are_read() -> None:
+    lines = csv_body().decode().splitlines()
+    original = identify_request_from_csv(csv_body(), IdentifyCsvOptions.model_validate(QUERY)).data["outlet_valve"][5]
+    for written in ("55", "55.", "+55.0", " 5.5e1 ", "5.5E+01", "550e-1"):
+        lines[6] = csv_body().decode().splitlines()[6].replace("55.0", written, 1)
+        request = identify_request_from_csv("\n".join(lines).encode(), IdentifyCsvOptions.model_validate(QUERY))
+        assert request.data["outlet_valve"][5] == original == 55.0
