@@ -187,3 +187,19 @@ def test_default_input_disturbance_noise_gives_the_same_estimator_in_any_input_u
     np.testing.assert_allclose(moved.gain[:n], base.gain[:n], rtol=1e-6, atol=1e-9)
     # the disturbance estimate is in the new units: s times the old one
     np.testing.assert_allclose(moved.gain[n:], s[:, None] * base.gain[n:], rtol=1e-6, atol=1e-9 * s.max())
+
+
+@pytest.mark.parametrize("s", [1e6, 1e12, 1e16])
+def test_a_disturbance_model_is_detectable_in_any_state_units(s):
+    # Detectability (rank [[I - A, -Bd], [C, Cd]], Pannocchia and Rawlings 2003) does not
+    # change under a state similarity x = T xi (textbook linear algebra).  With two states in
+    # units 1e12 apart the rank decision had called the example's output disturbance hidden.
+    from service.pipeline.examples import load_example
+
+    model = load_example("design_request.json")["model"]
+    a, b, c = (np.array(model[k], dtype=float) for k in "abc")
+    t = np.diag([s, 1.0, 1.0 / s, 1.0])
+    t_inv = np.diag([1.0 / s, 1.0, s, 1.0])
+    reference = np.sort_complex(design_estimator(a, b, c, kind="output_disturbance").poles)
+    found = np.sort_complex(design_estimator(t_inv @ a @ t, t_inv @ b, c @ t, kind="output_disturbance").poles)
+    np.testing.assert_allclose(found, reference, atol=1e-9)

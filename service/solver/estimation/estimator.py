@@ -93,6 +93,7 @@ from service.solver.estimation.sizes import natural_sizes
 from service.solver.memo import plant_cache
 from service.solver.models.properties import integrating_poles, open_loop_poles
 from service.solver.numerics import (
+    balance_states,
     eigenvalues_by_modulus,
     equilibrated_rank,
     format_complex,
@@ -484,8 +485,16 @@ def _check_detectable(
     input_labels: Sequence[str],
     disturbances: Sequence[str] = (),
 ) -> None:
-    """Raise ``NumericalError`` unless the augmented model is detectable (see module notes)."""
+    """Raise ``NumericalError`` unless the augmented model is detectable (see module notes).
+
+    The rank decisions are made on the states balanced by a diagonal similarity (powers of
+    two, exact; :func:`service.solver.numerics.balance_states`): detectability does not depend
+    on the states' units, and a state in units 1e12 times another's had read as hidden.
+    """
     n, p, nd = a.shape[0], c.shape[0], bd.shape[1]
+    if n:
+        scale = balance_states(a, bd, c)
+        a, bd, c = a / scale[:, None] * scale[None, :], bd / scale[:, None], c * scale[None, :]
     # 1. the plant itself: PBH at every eigenvalue on or outside the unit circle.
     for z in scipy.linalg.eigvals(a, check_finite=False):
         if abs(z) < 1.0 - 1e-9:
