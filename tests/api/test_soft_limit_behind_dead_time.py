@@ -8,19 +8,19 @@ before its dead time is over, so the first predicted steps break the limit whate
 moves, and the output rows inside the dead time tie with each other and with the zone rows.
 The QP is soft, hence always feasible; DAQP had stopped after 10 iterations without progress
 ('cycling') and the step held its input. The reference is scipy.optimize.minimize
-(method='trust-constr') on the very QP of that step.
+(method='trust-constr') on the very QP of that step (tests/solver/test_qp.py's reference_solution).
 """
 
 from __future__ import annotations
 
 import numpy as np
-import scipy.optimize
 
 from service.pipeline.caps import Caps
 from service.pipeline.simulate import run_simulation
 from service.schemas.simulate import SimulateRequest
 from service.solver.limits import qp as qp_module
 from tests.api.test_zone_input_target import ELEMENTS, POINT, _request
+from tests.solver.test_qp import reference_solution
 
 DISTURBANCE_STEP = 150
 
@@ -46,23 +46,6 @@ def _limited_request() -> dict:
     return request
 
 
-def _trust_constr(problem: qp_module.MoveProblem) -> np.ndarray:
-    nv = problem.hessian.shape[0]
-    h, f = problem.hessian, problem.linear
-    result = scipy.optimize.minimize(
-        lambda z: 0.5 * z @ h @ z + f @ z,
-        np.zeros(nv),
-        jac=lambda z: h @ z + f,
-        hess=lambda z: h,
-        method="trust-constr",
-        constraints=[
-            scipy.optimize.LinearConstraint(np.vstack([np.eye(nv), problem.rows]), problem.lower, problem.upper)
-        ],
-        options={"gtol": 1e-12, "xtol": 1e-14, "maxiter": 20000},
-    )
-    return result.x
-
-
 def test_a_soft_limit_broken_inside_the_dead_time_is_solved_at_its_optimum(monkeypatch):
     problems: list[qp_module.MoveProblem] = []
     solve = qp_module.MoveQP.solve
@@ -77,7 +60,7 @@ def test_a_soft_limit_broken_inside_the_dead_time_is_solved_at_its_optimum(monke
     assert not [w for w in answer.warnings if w.code == "limits_fallback"]
     # the step of the disturbance: the soft limit is broken inside the dead time whatever the moves
     problem = problems[DISTURBANCE_STEP]
-    reference = _trust_constr(problem)
+    reference = reference_solution(problem)
     applied = (np.array(answer.inputs[DISTURBANCE_STEP]) - answer.inputs[DISTURBANCE_STEP - 1]) / [
         4000.0,
         20.0,
