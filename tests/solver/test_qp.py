@@ -359,3 +359,20 @@ def test_output_limits_inside_the_dead_time_are_left_out(rng):
         nu = solution.moves.size
         assert cost(solution.moves) <= cost(reference) + 1e-9 * abs(cost(reference))
         np.testing.assert_allclose(solution.moves, reference[:nu], atol=1e-4)
+
+
+def test_a_limit_on_an_output_in_tiny_units_is_kept():
+    # Two loops in units 1e20 apart (invented): u1 moves y1 by 1e10 per unit, u2 moves y2 by
+    # 1e-10, each weighed in its own units.  Whether a move reaches a row is judged against
+    # the same output's rows, so y2's limit holds at every step (checked on the plan itself:
+    # the free prediction plus G dU, the definition of the prediction).
+    a, b, c = np.diag([0.5, 0.5]), np.diag([1e10, 1e-10]), np.eye(2)
+    design = design_controller(a, b, c, output_weight=[1e-20, 1e20], move_weight=[0.1, 0.1], prediction=10, control=3)
+    steps = design.prediction.penalized_steps
+    free = np.tile([0.0, 0.5], steps)  # y2 predicted below its limit of 1 ...
+    error = np.tile([0.0, 3.0], steps) - free  # ... and a setpoint of 3 pulling it above
+    qp = MoveQP.from_design(design, make_limits(2, 2, output_max=[np.nan, 1.0]), hard_outputs=True)
+    solution = qp.solve(error=error, free_prediction=free, previous_input=np.zeros(2))
+    assert solution.solved, solution.status
+    planned = (free + design.prediction.moves @ solution.moves).reshape(steps, 2)
+    assert planned[:, 1].max() <= 1.0 + 1e-9

@@ -95,8 +95,9 @@ __all__ = [
 #: exact at its active set; the tolerance only decides when a constraint counts as violated.
 PRIMAL_TOLERANCE = 1e-9
 
-#: A row of ``G`` whose every entry is at most this times ``max |G|`` is reached by no move
-#: (rounding level of the largest entry; common practice for a structural-zero decision).
+#: A row of ``G`` whose every entry is at most this times the largest entry of the same
+#: output's rows is reached by no move (rounding level; common practice for a structural-zero
+#: decision).
 UNREACHED_ROW = 64 * float(np.finfo(float).eps)
 
 #: The ways a step can start (see :class:`MoveQP`).
@@ -366,9 +367,12 @@ class MoveQP:
         # to that output) is left unbounded: the moves cannot change it, so as a hard row it
         # could only make the QP infeasible and freeze the inputs, and as a soft one force a
         # shared slack that would then excuse the same violation at the steps the moves do
-        # reach.  A row counts as unreached when every entry is at rounding level of G's
-        # largest (exact zeros for a dead time's shift register).
-        reach = np.abs(g).max(axis=1) > UNREACHED_ROW * max(float(np.abs(g).max(initial=0.0)), np.finfo(float).tiny)
+        # reach.  A row counts as unreached when every entry is at rounding level of the
+        # largest entry of the same output's rows (exact zeros for a dead time's shift
+        # register); measured per output, so that no output's units decide for another's.
+        row_size = np.abs(g).max(axis=1, initial=0.0).reshape(steps, p)
+        output_size = row_size.max(axis=0, initial=0.0)
+        reach = (row_size > UNREACHED_ROW * output_size[None, :]).reshape(-1)
         start, stop = self._ranges["upper"]
         self._upper_template[start:stop][~reach[out_up]] = np.inf
         start, stop = self._ranges["lower"]
@@ -395,9 +399,16 @@ class MoveQP:
         # and DAQP then answered 'optimal' with a move far from the optimum.
         self._scale = 1.0 / np.sqrt(np.diag(self._full_hessian))
         scaled_hessian = self._full_hessian * np.outer(self._scale, self._scale)
-        lower, upper = self._scaled_bounds(*self._bounds(np.zeros(m), np.zeros(steps * p)))
+        # ... and each row divided by its size: an output in units 1e20 below another's has
+        # rows of 1e-10 that DAQP otherwise took for degenerate (its limit read infeasible).
+        scaled_rows = self._rows * self._scale
+        sizes = np.linalg.norm(scaled_rows, axis=1) if scaled_rows.size else np.zeros(nr)
+        self._row_scale = np.divide(1.0, sizes, out=np.ones(nr), where=sizes > 0.0)
+        lower, upper = self._daqp_bounds(*self._bounds(np.zeros(m), np.zeros(steps * p)))
         self._model = daqp.Model()
-        self._model.setup(scaled_hessian, np.zeros(nv), np.ascontiguousarray(self._rows * self._scale), upper, lower)
+        self._model.setup(
+            scaled_hessian, np.zeros(nv), np.ascontiguousarray(scaled_rows * self._row_scale[:, None]), upper, lower
+        )
         self._model.settings = {
             "primal_tol": tolerance,
             "eps_prox": 0.0,  # H is positive definite: no proximal regularization
@@ -613,7 +624,7 @@ class MoveQP:
         starts.append(np.zeros_like(self._last_sense))
         for sense in starts:
             try:
-                lower, upper = self._scaled_bounds(qp.lower, qp.upper)
+                lower, upper = self._daqp_bounds(qp.lower, qp.upper)
                 linear = qp.linear * self._scale
                 if sense is None:
                     self._model.update(f=linear, bupper=upper, blower=lower)
@@ -628,6 +639,7 @@ class MoveQP:
                 if np.isfinite(x).all() and self._violation(x, qp) <= 10.0 * self._tolerance:
                     multipliers = np.asarray(info["lam"], dtype=float).copy()
                     multipliers[: self.variables] /= self._scale  # bounds on z to bounds on dU
+                    multipliers[self.variables :] *= self._row_scale  # scaled rows to the rows
                     self._last_sense = _sense_of(multipliers)
                     self._kept = True
                     return self._result(x, multipliers, "optimal", iterations, "active_set")
@@ -653,6 +665,16 @@ class MoveQP:
             np.concatenate([lower[:nv] / self._scale, lower[nv:]]),
             np.concatenate([upper[:nv] / self._scale, upper[nv:]]),
         )
+
+    def _daqp_bounds(
+        self, lower: NDArray[np.float64], upper: NDArray[np.float64]
+    ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """The bounds as DAQP sees them: the variables' in ``z``, the rows' divided by the rows' sizes."""
+        nv = self.variables
+        lower, upper = self._scaled_bounds(lower, upper)
+        lower[nv:] *= self._row_scale
+        upper[nv:] *= self._row_scale
+        return lower, upper
 
     def _violation(self, x: NDArray[np.float64], qp: MoveProblem) -> float:
         """Largest excess over a bound: the variables' in their scaled units ``z``, the rows' in theirs."""
