@@ -338,6 +338,9 @@ def _run(side: str, request: DesignRequest, scenario: ScenarioRequest, caps: Cap
         shifted, point = to_deviations(simulate_request(request, scenario))
         assert isinstance(shifted, SimulateRequest)
         inputs = checked_at_point(lambda: check_simulate_request(shifted, caps), shifted, point, caps)
+        if point is not None:
+            # as /simulate checks the run at its point (a true plant's own operating point is refused)
+            check_operating_point(shifted, point, inputs.design.plant)
         outcome = compute_simulation(inputs)
         return performance_report(inputs.design, outcome), outcome.rows < inputs.steps
 

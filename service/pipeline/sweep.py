@@ -277,7 +277,10 @@ def run_sweep(request: SweepRequest, caps: Caps) -> SweepResponse:
         )
         base = base_run.design
     if point is not None:
-        _in_sweep(lambda: check_operating_point(design, point, base.plant))
+        # With a scenario the point is checked as /simulate checks it (a true plant with an
+        # operating point of its own, a run's measured outputs without operating_point.measured)
+        checked: DesignRequest = design if scenario is None else run_request
+        _in_sweep(lambda: check_operating_point(checked, point, base.plant))
     deviations = request.model_copy(update={"design": design})
     problems = _signal_problem(request)
     if len(request.values) > caps.max_sweep_values:

@@ -341,3 +341,19 @@ def test_an_operating_point_outside_a_limit_points_into_its_side(client):
         p["pointer"].startswith("/proposed/limits/input_max") and "operating point" in p["detail"]
         for p in r.json()["errors"]
     )
+
+
+def test_a_true_plant_with_an_operating_point_of_its_own_is_refused_as_simulate_refuses_it(client):
+    # Reference: the /simulate answer to each side with the same scenario (the comparison's
+    # contract: every number equals what separate /design and /simulate calls give). A true
+    # plant naming an operating point of its own is a 422 of /simulate at the field; the
+    # comparison had run it silently around each side's point (found in an audit).
+    old = _column()
+    scenario = load_example("simulate_request_column.json")["scenario"]
+    scenario["true_plant"]["operating_point"] = copy.deepcopy(old["model"]["operating_point"])
+    run = client.post("/simulate", json={**old, "scenario": scenario})
+    assert run.status_code == 422, run.text
+    r = client.post("/design/compare", json={"in_service": old, "proposed": copy.deepcopy(old), "scenario": scenario})
+    assert r.status_code == 422, r.text
+    assert [p["pointer"] for p in r.json()["errors"]] == ["/scenario/true_plant/operating_point"]
+    assert [p["pointer"] for p in run.json()["errors"]] == ["/scenario/true_plant/operating_point"]

@@ -326,3 +326,22 @@ def test_a_sweep_whose_limit_excludes_the_operating_point_says_so(client):
     assert any(
         p["pointer"].startswith("/design/limits/input_max") and "operating point" in p["detail"] for p in problems
     ), problems
+
+
+def test_a_sweep_refuses_a_true_plant_with_an_operating_point_of_its_own_as_simulate_does(client):
+    # Reference: the /simulate answer to the same request with the value put in (the sweep's
+    # contract: each entry is what a separate call gives). The bundled column in absolute units
+    # with a true plant that names an operating point of its own: /simulate refuses it at the
+    # field; the sweep had run it silently around the model's point (found in an audit).
+    column = load_example("simulate_request_column.json")
+    scenario = column.pop("scenario")
+    scenario["true_plant"]["operating_point"] = copy.deepcopy(column["model"]["operating_point"])
+    single = copy.deepcopy(column)
+    single["weights"]["move"][3] = 0.1
+    run = client.post("/simulate", json={**single, "scenario": scenario})
+    assert run.status_code == 422, run.text
+    sweep = {"design": column, "parameter": "move_weight", "signal": 3, "values": [0.1], "scenario": scenario}
+    r = client.post("/design/sweep", json=sweep)
+    assert r.status_code == 422, r.text
+    assert [p["pointer"] for p in r.json()["errors"]] == [p["pointer"] for p in run.json()["errors"]]
+    assert r.json()["errors"][0]["pointer"] == "/scenario/true_plant/operating_point"
