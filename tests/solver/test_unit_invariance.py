@@ -203,3 +203,32 @@ def test_a_disturbance_model_is_detectable_in_any_state_units(s):
     reference = np.sort_complex(design_estimator(a, b, c, kind="output_disturbance").poles)
     found = np.sort_complex(design_estimator(t_inv @ a @ t, t_inv @ b, c @ t, kind="output_disturbance").poles)
     np.testing.assert_allclose(found, reference, atol=1e-9)
+
+
+def _two_loops(f: float) -> dict:
+    # An invented 2 x 2 plant with dead times (first-order lags): u1 written in units f times
+    # smaller (its gains divided by f, its move weight by f^2): the same controller.
+    def element(gain, tau, dead):
+        return {"gain": gain, "time_constants": [tau], "dead_time": dead}
+
+    elements = [[element(1.5 / f, 4.0, 3), element(-0.4, 6.0, 5)], [element(0.3 / f, 3.0, 2), element(0.9, 5.0, 4)]]
+    return {
+        "model": {"kind": "transfer_matrix", "sample_time": 1.0, "elements": elements},
+        "horizons": {"prediction": 30, "control": 5},
+        "weights": {"output": [1.0, 1.0], "move": [0.05 / f**2, 0.05]},
+        "analysis": {"frequency": True, "points": 300},
+    }
+
+
+def test_the_fragility_verdict_does_not_depend_on_an_input_s_unit():
+    # sigma_max of a multivariable S changes with the units (the input-side peak went from
+    # 1.8 to 73 when u1 was written in units 1000 times smaller, and the 6 dB warning fired);
+    # the verdict is judged on S between signals divided by their natural sizes, which scale
+    # with the units (service.solver.estimation.sizes), so it cannot (found in an audit).
+    answers = [run_design(DesignRequest.model_validate(_two_loops(f)), Caps()) for f in (1.0, 1e3, 1e-3)]
+    radii = [a.closed_loop.spectral_radius for a in answers]
+    assert max(radii) - min(radii) < 1e-9  # the same controller
+    peaks = [a.robustness.plant_input.peak_sensitivity for a in answers]
+    assert max(peaks) > 20.0 * min(peaks)  # the figure of the whole matrix does move with the unit
+    codes = [sorted(w.code for w in a.warnings) for a in answers]
+    assert codes[0] == codes[1] == codes[2]

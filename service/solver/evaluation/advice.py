@@ -312,15 +312,31 @@ def slow_pole_advice(
 # --- peak sensitivity ----------------------------------------------------------------------
 
 
-def _tracked_peak(loop: LoopSensitivity, grid: NDArray[np.float64], floating: Sequence[int]) -> tuple[float, float]:
-    """Grid maximum of ``sigma_max`` of ``S`` without the rows and columns of ``floating``, and where.
+def _judged_peak(
+    loop: LoopSensitivity,
+    grid: NDArray[np.float64],
+    keep: NDArray[np.intp],
+    sizes: NDArray[np.float64] | None,
+) -> tuple[float, float]:
+    """Grid maximum of ``sigma_max(N^-1 S N)`` over the signals ``keep``, and where.
 
-    ``loop.sensitivity`` has shape (N, k, k) on ``grid`` (N,); ``floating`` holds indices below k.
+    ``loop.sensitivity`` has shape (N, k, k) on ``grid`` (N,); ``sizes`` (k,) gives ``N``, the
+    signals' natural sizes (``None``: ``N = I``).  ``N^-1 S N`` is ``S`` between signals
+    divided by their sizes: a change of a signal's unit scales its size alike, so the
+    judgment does not depend on units (``sigma_max`` of a multivariable ``S`` does).
     """
-    keep = np.setdiff1d(np.arange(loop.sensitivity.shape[-1]), np.asarray(floating, dtype=int))
-    values = np.linalg.svd(loop.sensitivity[:, keep][:, :, keep], compute_uv=False)[:, 0]
+    s = loop.sensitivity[:, keep][:, :, keep]
+    if sizes is not None:
+        n = np.asarray(sizes, dtype=float)[keep]
+        s = s * (n[None, None, :] / n[None, :, None])
+    values = np.linalg.svd(s, compute_uv=False)[:, 0]
     i = int(np.argmax(values))
     return float(values[i]), float(grid[i])
+
+
+def _equal(sizes: NDArray[np.float64] | None) -> bool:
+    """Whether ``N = c I``: then ``N^-1 S N = S``."""
+    return sizes is None or not np.size(sizes) or bool(np.all(sizes == np.asarray(sizes).reshape(-1)[0]))
 
 
 def sensitivity_advice(
@@ -328,6 +344,8 @@ def sensitivity_advice(
     *,
     floating_outputs: Sequence[int] = (),
     output_labels: Sequence[str] | None = None,
+    input_sizes: NDArray[np.float64] | None = None,
+    output_sizes: NDArray[np.float64] | None = None,
 ) -> Diagnostic | None:
     """Advise when the peak sensitivity exceeds :data:`PEAK_SENSITIVITY_LIMIT` (6 dB).
 
@@ -343,6 +361,11 @@ def sensitivity_advice(
         peak of the rest is judged instead (grid maximum).  Empty: the whole matrix.
     output_labels : sequence of str, optional, keyword-only
         Names of the plant-output loop's signals, for the message.
+    input_sizes, output_sizes : ndarray, shape (m,) and (py,), optional, keyword-only
+        Natural sizes of the signals at the two break points
+        (:func:`service.solver.estimation.sizes.natural_sizes`; 1 for a signal with a span).
+        Where they differ, the peak is judged on ``S`` between signals divided by their sizes
+        (grid maximum), so that writing a signal in other units changes no verdict.
 
     Returns
     -------
@@ -354,23 +377,33 @@ def sensitivity_advice(
     """
     if analysis.unstable:
         return None
-    figures = [
-        (
-            analysis.plant_input,
-            analysis.plant_input.peak_sensitivity,
-            analysis.plant_input.peak_sensitivity_frequency,
-            "",
-        )
-    ]
+    grid = analysis.frequencies
+    # sizes that are not one per signal of a break point (a full_state estimator's loop is
+    # broken at the states, which have none) leave that point's S as it is
+    if input_sizes is not None and np.size(input_sizes) != analysis.plant_input.sensitivity.shape[-1]:
+        input_sizes = None
+    if output_sizes is not None and np.size(output_sizes) != analysis.plant_output.sensitivity.shape[-1]:
+        output_sizes = None
+    figures = []
+    sized = " (signals divided by their natural sizes, as no span is given for some)"
+    at_input = analysis.plant_input
+    if _equal(input_sizes):
+        figures.append((at_input, at_input.peak_sensitivity, at_input.peak_sensitivity_frequency, ""))
+    else:
+        every = np.arange(at_input.sensitivity.shape[-1])
+        figures.append((at_input, *_judged_peak(at_input, grid, every, input_sizes), sized))
     output = analysis.plant_output
-    floating = sorted({int(j) for j in floating_outputs if 0 <= int(j) < output.sensitivity.shape[-1]})
-    if floating and len(floating) < output.sensitivity.shape[-1]:
-        peak, where_w = _tracked_peak(output, analysis.frequencies, floating)
+    k = output.sensitivity.shape[-1]
+    floating = sorted({int(j) for j in floating_outputs if 0 <= int(j) < k})
+    keep = np.setdiff1d(np.arange(k), np.asarray(floating, dtype=int))
+    note = ""
+    if floating:
         names = ", ".join(f"'{output_labels[j]}'" if output_labels is not None else f"output {j + 1}" for j in floating)
-        figures.append(
-            (output, peak, where_w, f" without the zone output(s) {names}, which float in the unconstrained gains")
-        )
-    elif not floating:
+        note = f" without the zone output(s) {names}, which float in the unconstrained gains"
+    if keep.size and (floating or not _equal(output_sizes)):
+        sizes = None if _equal(output_sizes) else output_sizes
+        figures.append((output, *_judged_peak(output, grid, keep, sizes), note + ("" if sizes is None else sized)))
+    elif keep.size:
         figures.append((output, output.peak_sensitivity, output.peak_sensitivity_frequency, ""))
     high = [f for f in figures if f[1] > PEAK_SENSITIVITY_LIMIT]
     if not high:
@@ -639,6 +672,7 @@ def tuning_advice(
     poles: ArrayLike | None = None,
     floating_outputs: Sequence[int] = (),
     output_labels: Sequence[str] | None = None,
+    loop_sizes: tuple[NDArray[np.float64], NDArray[np.float64]] | None = None,
 ) -> list[Diagnostic]:
     """Return every piece of advice that applies, in a fixed order.
 
@@ -655,6 +689,8 @@ def tuning_advice(
         The open-loop poles (eigenvalues of ``a``) when the caller has them.
     floating_outputs, output_labels : optional
         Of the plant-output loop, for :func:`sensitivity_advice`.
+    loop_sizes : tuple of ndarray, optional
+        The natural sizes of the inputs and of the measured outputs, for :func:`sensitivity_advice`.
 
     Returns
     -------
@@ -678,7 +714,13 @@ def tuning_advice(
         ),
         None
         if analysis is None
-        else sensitivity_advice(analysis, floating_outputs=floating_outputs, output_labels=output_labels),
+        else sensitivity_advice(
+            analysis,
+            floating_outputs=floating_outputs,
+            output_labels=output_labels,
+            input_sizes=None if loop_sizes is None else loop_sizes[0],
+            output_sizes=None if loop_sizes is None else loop_sizes[1],
+        ),
         non_minimum_phase_advice(
             a, b, c, prediction=design.prediction.prediction, sample_time=sample_time, poles=poles, computed=zeros
         ),
