@@ -141,21 +141,7 @@ def test_more_correlation_lags_than_samples_to_fit_is_a_422_not_a_500(client_mod
     # subspace fit alike (found in an independent audit: more lags than samples was a 500).
     # Invented data: a first-order heater, y(k+1) = 0.8 y(k) + 0.5 u(k), from rest, a seeded random
     # binary input, small noise.
-    rng = np.random.default_rng(5)
-    u = np.repeat(rng.choice([-1.0, 1.0], size=12), 5)
-    u[:5] = 0.0  # the record starts at rest
-    y = np.zeros(60)
-    for k in range(59):
-        y[k + 1] = 0.8 * y[k] + 0.5 * u[k]
-    y = y + 0.01 * rng.standard_normal(60)
-    request = {
-        "sample_time": 1.0,
-        "inputs": ["heater"],
-        "outputs": ["outlet_temperature"],
-        "max_dead_time": 5.0,
-        "settling_time": 20.0,
-        "data": {"heater": (50.0 + u).tolist(), "outlet_temperature": (80.0 + y).tolist()},
-    }
+    request = {**_heater_test(1.0), "max_dead_time": 5.0, "settling_time": 20.0}
     for structure in ("first_order_dead_time", "subspace"):
         body = {**copy.deepcopy(request), "structure": structure}
         for lags in (60, 200):
