@@ -4,11 +4,17 @@ from __future__ import annotations
 
 from typing import Annotated, Literal
 
-from pydantic import ConfigDict, Field
+from pydantic import BeforeValidator, ConfigDict, Field
 
 from service.schemas.common import RequestModel
 
 __all__ = ["IdentifyCsvOptions"]
+
+
+def _none_word(value: object) -> object:
+    """A query parameter of 'none' (any case) for a JSON null: a query string has no null."""
+    return None if isinstance(value, str) and value.strip().lower() == "none" else value
+
 
 #: Query parameters arrive as text: numbers here are parsed from it (still finite only).
 QueryFloat = Annotated[float, Field(allow_inf_nan=False)]
@@ -52,7 +58,9 @@ class IdentifyCsvOptions(RequestModel):
     detrend: bool = False
     max_dead_time: Positive | None = None
     settling_time: Positive | None = None
-    outlier_limit: Annotated[QueryFloat, Field(ge=3)] | None = 6.0
+    outlier_limit: Annotated[Annotated[QueryFloat, Field(ge=3)] | None, BeforeValidator(_none_word)] = Field(
+        default=6.0, description="As the JSON body's outlier_limit; 'none' switches the check off."
+    )
     validation_fraction: Annotated[QueryFloat, Field(gt=0, le=0.5)] | None = Field(
         default=None, description="Share of the record, at its end, held out of the fit."
     )

@@ -201,7 +201,7 @@ def test_a_subspace_fit_takes_the_same_choices_from_a_csv(make_client) -> None:
     from tests.api.test_identify_subspace import complete_request
 
     request = complete_request()
-    request["outlier_limit"] = 50.0  # a check that flags nothing in these repaired data, on both
+    assert request["outlier_limit"] is None  # no outlier check: 'none' in a query
     request.pop("validation")
     tags = [*request["inputs"], *request["outputs"], *request["disturbances"]]
     rows = zip(*(request["data"][t] for t in tags), strict=True)
@@ -216,7 +216,7 @@ def test_a_subspace_fit_takes_the_same_choices_from_a_csv(make_client) -> None:
         "block_rows": 12,
         "max_dead_time": request["max_dead_time"],
         "settling_time": request["settling_time"],
-        "outlier_limit": 50.0,
+        "outlier_limit": "none",
     }
     client = make_client()
     from_csv = client.post("/identify", params=query, content=text.encode(), headers={"Content-Type": "text/csv"})
