@@ -20,7 +20,7 @@ from service.errors import FieldProblem, InvalidRequest, NumericalError
 from service.pipeline.arrays import check_weight
 from service.pipeline.caps import Caps, hessian_size, horizon_gain_entries, prediction_entries
 from service.pipeline.estimates import design_memory_bytes
-from service.pipeline.estimator import EstimatorInputs, check_estimator, scaled_estimator, scaled_measured
+from service.pipeline.estimator import EstimatorInputs, check_estimator, scaled_estimator, signal_sizes
 from service.pipeline.fingerprint import design_fingerprint
 from service.pipeline.limits import (
     DesignLimitCheck,
@@ -58,7 +58,6 @@ from service.solver.design.gain import PredictiveGain
 from service.solver.design.marginal import MarginalMode, describe_signals
 from service.solver.design.terminal import terminal_disturbance_maps
 from service.solver.estimation.estimator import Estimator
-from service.solver.estimation.sizes import natural_sizes
 from service.solver.evaluation.advice import merge_warnings, tuning_advice
 from service.solver.evaluation.frequency import FrequencyAnalysis, design_frequency_analysis
 from service.solver.evaluation.model_error import ModelErrorStudy
@@ -523,14 +522,7 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
     if analysis is not None:
         # the fragility verdict is judged in the signals' natural sizes (1 with spans), as the
         # default filter's noises are: a signal written in other units changes no verdict
-        measured = scaled_measured(plant)[0] if plant.measured_own else scaled.c
-        natural = natural_sizes(
-            scaled.a,
-            scaled.b,
-            measured,
-            fixed_outputs=[s.spanned for s in plant.measured],
-            fixed_inputs=[s.spanned for s in plant.inputs],
-        )
+        natural = signal_sizes(plant, scaled, measured=True)
         loop_sizes = (natural.inputs, natural.outputs)
     advice = tuning_advice(
         scaled.a,

@@ -34,6 +34,7 @@ from service.solver.estimation.estimator import (
     design_estimator,
     integrating_outputs,
 )
+from service.solver.estimation.sizes import NaturalSizes, natural_sizes
 from service.solver.models.scaling import ScaledPlant
 
 __all__ = [
@@ -43,6 +44,7 @@ __all__ = [
     "scaled_covariance",
     "scaled_estimator",
     "scaled_measured",
+    "signal_sizes",
 ]
 
 #: The disturbance model each kind but kalman implies.
@@ -200,6 +202,25 @@ def disturbance_spans(plant: DiscretePlant, disturbance: str) -> NDArray[np.floa
     """Spans of the estimated disturbances: the measured outputs' (output and per-output models) or the inputs'."""
     return {"per_output": plant.measured_spans, "output": plant.measured_spans, "input": plant.input_spans}.get(
         disturbance, np.ones(0)
+    )
+
+
+def signal_sizes(plant: DiscretePlant, scaled: ScaledPlant, *, measured: bool) -> NaturalSizes:
+    """The natural sizes of the scaled plant's signals, those with spans fixed at 1.
+
+    The sizes the default filter's noises are written in
+    (:mod:`service.solver.estimation.sizes`): a signal without a span has the size its model
+    gives it, so that its unit decides no verdict.  ``measured``: the sizes of the measured
+    outputs (the sensors, for a model with measured outputs of its own), else of the
+    controlled outputs.
+    """
+    if measured:
+        c = scaled_measured(plant)[0] if plant.measured_own else scaled.c
+        fixed_outputs = [s.spanned for s in plant.measured]
+    else:
+        c, fixed_outputs = scaled.c, [s.spanned for s in plant.outputs]
+    return natural_sizes(
+        scaled.a, scaled.b, c, fixed_outputs=fixed_outputs, fixed_inputs=[s.spanned for s in plant.inputs]
     )
 
 

@@ -34,7 +34,7 @@ from service.errors import NumericalError
 from service.pipeline.caps import Caps
 from service.pipeline.csv_cells import text_cell
 from service.pipeline.design import DesignInputs, DesignOutcome, compute_design, design_response, marginal_mode_reports
-from service.pipeline.estimator import disturbance_spans, scaled_estimator, scaled_measured
+from service.pipeline.estimator import disturbance_spans, scaled_estimator, scaled_measured, signal_sizes
 from service.pipeline.fingerprint import design_fingerprint, fingerprint
 from service.pipeline.limits import LimitedRun, limit_run_reports, limited_run
 from service.pipeline.limits_checks import no_limits
@@ -62,7 +62,6 @@ from service.schemas.simulate import (
 from service.solver.design.marginal import MARGINAL_TOLERANCE
 from service.solver.estimation.estimator import Estimator, unmeasured_outputs
 from service.solver.estimation.loop import TrueLoop, WholeLoop, control_loop, true_loop, whole_loop
-from service.solver.estimation.sizes import natural_sizes
 from service.solver.evaluation.divergence import DIVERGENCE_LEVEL, divergence_onset
 from service.solver.evaluation.performance import Performance, loop_performance
 from service.solver.evaluation.simulation import Event, Scenario, Simulation, TruePlant, simulate_loop
@@ -248,13 +247,7 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
     # Divergence is judged in spans, and a signal without a span in its natural size (the
     # step-response equilibration of the estimator's defaults): in engineering units a flow in
     # kg/h moving 8000 for a setpoint step of 1 degC is no sign of growth without bound.
-    natural = natural_sizes(
-        scaled.a,
-        scaled.b,
-        scaled.c,
-        fixed_outputs=[s.spanned for s in plant.outputs],
-        fixed_inputs=[s.spanned for s in plant.inputs],
-    )
+    natural = signal_sizes(plant, scaled, measured=False)
     ny, nu = natural.outputs, natural.inputs
     sizes = [np.abs(e.value / ny).max(initial=0.0) for e in (*scenario.setpoint_changes, *scenario.output_disturbances)]
     sizes += [np.abs(e.value / nu).max(initial=0.0) for e in scenario.input_disturbances]
