@@ -37,8 +37,7 @@ from service.pipeline.operating_point import (
     to_deviations,
 )
 from service.pipeline.problems import pointer
-from service.pipeline.simulate import compute_simulation, performance_report
-from service.pipeline.simulate_checks import check_simulate_request
+from service.pipeline.simulate import checked_simulation, compute_simulation, performance_report
 from service.pipeline.sweep import simulate_request
 from service.schemas.compare import (
     CompareRequest,
@@ -53,7 +52,7 @@ from service.schemas.compare import (
 )
 from service.schemas.design import DesignRequest, DesignResponse
 from service.schemas.robustness import LoopRobustnessReport
-from service.schemas.simulate import PerformanceReport, ScenarioRequest, SimulateRequest
+from service.schemas.simulate import PerformanceReport, ScenarioRequest
 
 __all__ = [
     "DEFAULT_SEGMENT",
@@ -335,12 +334,7 @@ def _figures(before: PerformanceReport, after: PerformanceReport) -> list[Figure
 
 def _run(side: str, request: DesignRequest, scenario: ScenarioRequest, caps: Caps) -> tuple[PerformanceReport, bool]:
     def run() -> tuple[PerformanceReport, bool]:
-        shifted, point = to_deviations(simulate_request(request, scenario))
-        assert isinstance(shifted, SimulateRequest)
-        inputs = checked_at_point(lambda: check_simulate_request(shifted, caps), shifted, point, caps)
-        if point is not None:
-            # as /simulate checks the run at its point (a true plant's own operating point is refused)
-            check_operating_point(shifted, point, inputs.design.plant)
+        _, _, inputs = checked_simulation(simulate_request(request, scenario), caps)
         outcome = compute_simulation(inputs)
         return performance_report(inputs.design, outcome), outcome.rows < inputs.steps
 

@@ -39,6 +39,7 @@ from service.pipeline.fingerprint import design_fingerprint, fingerprint
 from service.pipeline.limits import LimitedRun, limit_run_reports, limited_run
 from service.pipeline.limits_checks import no_limits
 from service.pipeline.operating_point import (
+    OperatingPointValues,
     check_operating_point,
     checked_at_point,
     simulation_to_absolute,
@@ -69,6 +70,7 @@ from service.solver.models.scaling import scale_plant
 
 __all__ = [
     "SimulationOutcome",
+    "checked_simulation",
     "compute_simulation",
     "performance_report",
     "run_simulation",
@@ -525,8 +527,14 @@ def simulate_response(
     )
 
 
-def run_simulation(request: SimulateRequest, caps: Caps) -> SimulateResponse:
-    """Check, design, estimate, simulate and report: the whole of POST /simulate without HTTP.
+def checked_simulation(
+    request: SimulateRequest, caps: Caps
+) -> tuple[SimulateRequest, OperatingPointValues | None, SimulationInputs]:
+    """The checks of POST /simulate, for every route that runs a scenario as /simulate does.
+
+    Returns the request in deviations from its ``model.operating_point``, that point (None
+    without one) and the checked inputs; the point itself is checked against the run (a true
+    plant's own operating point is refused, measured outputs of their own need theirs).
 
     Raises
     ------
@@ -535,9 +543,21 @@ def run_simulation(request: SimulateRequest, caps: Caps) -> SimulateResponse:
     deviations, point = to_deviations(request)
     assert isinstance(deviations, SimulateRequest)
     inputs = checked_at_point(lambda: check_simulate_request(deviations, caps), deviations, point, caps)
+    if point is not None:
+        check_operating_point(deviations, point, inputs.design.plant)
+    return deviations, point, inputs
+
+
+def run_simulation(request: SimulateRequest, caps: Caps) -> SimulateResponse:
+    """Check, design, estimate, simulate and report: the whole of POST /simulate without HTTP.
+
+    Raises
+    ------
+    InvalidRequest, NumericalError
+    """
+    deviations, point, inputs = checked_simulation(request, caps)
     if point is None:
         return simulate_response(request, inputs, compute_simulation(inputs))
-    check_operating_point(deviations, point, inputs.design.plant)
     response = simulate_response(deviations, inputs, compute_simulation(inputs))
     simulation_to_absolute(response, point, inputs.design.plant)
     response.fingerprint = fingerprint(request)

@@ -28,8 +28,8 @@ from service.pipeline.limits_checks import limit_work_problems
 from service.pipeline.operating_point import check_operating_point, checked_at_point, to_deviations
 from service.pipeline.problems import pointer, problem_of
 from service.pipeline.robustness import not_finite_analysis
-from service.pipeline.simulate import compute_simulation, performance_report
-from service.pipeline.simulate_checks import SimulationInputs, check_simulate_request
+from service.pipeline.simulate import checked_simulation, compute_simulation, performance_report
+from service.pipeline.simulate_checks import SimulationInputs
 from service.schemas.design import DesignRequest, WarningReport
 from service.schemas.simulate import PerformanceReport, ScenarioRequest, SimulateRequest
 from service.schemas.sweep import HORIZON_PARAMETERS, SweepEntryReport, SweepProblem, SweepRequest, SweepResponse
@@ -267,20 +267,17 @@ def run_sweep(request: SweepRequest, caps: Caps) -> SweepResponse:
     if scenario is None:
         design, point = to_deviations(request.design)
         base = _in_sweep(lambda: checked_at_point(lambda: check_design_request(design, caps), design, point, caps))
+        if point is not None:
+            at = point
+            _in_sweep(lambda: check_operating_point(design, at, base.plant))
     else:
-        shifted, point = to_deviations(simulate_request(request.design, scenario))
-        assert isinstance(shifted, SimulateRequest)
-        run_request = shifted
-        design = DesignRequest.model_validate({name: getattr(run_request, name) for name in DesignRequest.model_fields})
-        base_run = _in_sweep(
-            lambda: checked_at_point(lambda: check_simulate_request(run_request, caps), run_request, point, caps)
+        # checked as /simulate checks the run (a true plant with an operating point of its own,
+        # a run's measured outputs without operating_point.measured)
+        run_request, point, base_run = _in_sweep(
+            lambda: checked_simulation(simulate_request(request.design, scenario), caps)
         )
+        design = DesignRequest.model_validate({name: getattr(run_request, name) for name in DesignRequest.model_fields})
         base = base_run.design
-    if point is not None:
-        # With a scenario the point is checked as /simulate checks it (a true plant with an
-        # operating point of its own, a run's measured outputs without operating_point.measured)
-        checked: DesignRequest = design if scenario is None else run_request
-        _in_sweep(lambda: check_operating_point(checked, point, base.plant))
     deviations = request.model_copy(update={"design": design})
     problems = _signal_problem(request)
     if len(request.values) > caps.max_sweep_values:
