@@ -405,6 +405,7 @@ def _zone_modes(
     u = np.linalg.svd(rest, full_matrices=False)[0] if rest.size else np.zeros((m, 0))
     zone_dirs = u[:, : max(len(free) - basis.shape[1], 0)]
     out += kept[: len(free)]
+    d = _input_scales(a, b)
     for v in zone_dirs.T:
         real = v / v[np.argmax(np.abs(v))]
         moved = np.linalg.lstsq(np.eye(n) - a, b @ real, rcond=None)[0] if n else np.zeros(0)
@@ -417,7 +418,7 @@ def _zone_modes(
             MarginalMode(
                 pole=1.0 + 0.0j,
                 cause="zone_output",
-                inputs=_named(real / _input_scales(a, b)),  # named on the balanced inputs
+                inputs=_named(real / d),  # named on the balanced inputs
                 outputs=touched or zones,
                 direction=real,
             )
