@@ -118,6 +118,30 @@ def test_scaled_ends_equal_dense_eigvalsh_of_the_scaled_matrix(rng, separated):
     assert (below.low, below.high) == (reference[0], reference[-1])
 
 
+@pytest.mark.parametrize("layout", ["c_order", "fortran_order", "leading_block_view"])
+@pytest.mark.parametrize("lower", [True, False])
+@pytest.mark.parametrize("scaled", [False, True])
+def test_lanczos_ends_in_every_memory_layout_equal_dense_eigvalsh(rng, layout, lower, scaled):
+    # Reference: scipy.linalg.eigvalsh (of D^-1/2 H D^-1/2 formed explicitly when scaled).
+    # The Lanczos products call BLAS (dsymv, dtrsv) on Fortran-ordered arrays; a C-ordered
+    # matrix, a strided leading block (the "what if" of a shorter control horizon), an upper
+    # factor and a C-ordered factor must all give the same ends.
+    full, _ = _known_spectrum(rng, separated=True, size=520)
+    if layout == "leading_block_view":
+        h = full[:450, :450]  # not contiguous
+    elif layout == "fortran_order":
+        h = np.asfortranarray(full[:450, :450])
+    else:
+        h = np.ascontiguousarray(full[:450, :450])
+    triangle, flag = scipy.linalg.cho_factor(h, lower=lower)
+    factor = (np.ascontiguousarray(triangle) if layout == "c_order" else triangle, flag)
+    ends = spectrum_ends(h, factor=factor, scaled=scaled)
+    reference = scipy.linalg.eigvalsh(jacobi_scaled(np.array(h)) if scaled else np.array(h))
+    assert ends.method == "lanczos"
+    assert ends.low == pytest.approx(reference[0], rel=1e-10)
+    assert ends.high == pytest.approx(reference[-1], rel=1e-10)
+
+
 @pytest.mark.parametrize("size, block", [(7, 3), (60, 4), (61, 1)])
 def test_mirror_upper_gives_the_numbers_of_triu_plus_its_transpose(rng, size, block):
     # Reference: numpy's np.triu(h) + np.triu(h, 1).T, which mirror_upper replaces; the lower
