@@ -135,7 +135,7 @@ def blocked_prediction(prediction: Prediction, steps: Sequence[int]) -> Predicti
     """
     free = check_blocking(steps, control=prediction.control)
     inputs = prediction.free_input.shape[1]
-    return dataclasses.replace(prediction, moves=select_moves(prediction.moves, free, inputs=inputs))
+    return dataclasses.replace(prediction, selected_moves=select_moves(prediction.moves, free, inputs=inputs))
 
 
 def expand_moves(

@@ -126,10 +126,9 @@ def weighted_moves(prediction: Prediction, output_root: NDArray[np.float64]) -> 
     same Toeplitz matrix in ``W S_k`` (:func:`service.solver.design.prediction.block_toeplitz`):
     one small product and one pass over the result instead of a pass over ``G`` as well.
     """
-    g = prediction.moves
     p = output_root.shape[0]
     m = prediction.step_response.shape[2]
-    if g.shape[1] == prediction.control * m:  # every move free: G is the Toeplitz matrix in S_k
+    if prediction.move_columns == prediction.control * m:  # every move free: G is the Toeplitz matrix in S_k
         blocks = np.einsum("ij,kjl->kil", output_root, prediction.step_response)
         return block_toeplitz(
             blocks,
@@ -137,6 +136,7 @@ def weighted_moves(prediction: Prediction, output_root: NDArray[np.float64]) -> 
             control=prediction.control,
             first_penalized=prediction.first_penalized,
         )
+    g = prediction.moves
     if np.count_nonzero(output_root - np.diag(np.diag(output_root))) == 0:
         scale = np.tile(np.diag(output_root), g.shape[0] // p)
         return g * scale[:, None]

@@ -20,6 +20,7 @@ form (common practice); each block follows by substituting the state equation in
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -38,21 +39,45 @@ class Prediction:
         ``Fx``; block row ``i - Hw`` is ``C A^i``.  ``Np = Hp - Hw + 1``.
     free_input : ndarray, shape (Np*p, m)
         ``Fu``; block row ``i - Hw`` is the step response ``S_i``.
-    moves : ndarray, shape (Np*p, Hu*m)
-        ``G``, block lower-triangular (block Toeplitz) step-response matrix.
     step_response : ndarray, shape (Hp+1, p, m)
         ``S_0 = 0, S_1, ..., S_Hp``.
     prediction, control, first_penalized : int
         ``Hp``, ``Hu`` and ``Hw``.
+    selected_moves : ndarray, shape (Np*p, nb*m), or None
+        ``G M``, the free moves' columns of ``G`` under move blocking
+        (:func:`service.solver.design.blocking.blocked_prediction`); ``None``: every move is
+        free and :attr:`moves` is the whole block-Toeplitz ``G``.
     """
 
     free_state: NDArray[np.float64]
     free_input: NDArray[np.float64]
-    moves: NDArray[np.float64]
     step_response: NDArray[np.float64]
     prediction: int
     control: int
     first_penalized: int
+    selected_moves: NDArray[np.float64] | None = None
+
+    @functools.cached_property
+    def moves(self) -> NDArray[np.float64]:
+        """``G``, shape (Np*p, Hu*m) (or ``G M`` with blocking): the step-response matrix of the moves.
+
+        Block lower-triangular (block Toeplitz in ``S_k``), formed on first use and kept:
+        the unconstrained design never needs it (its Hessian and gains come from the
+        Toeplitz structure and ``Wbar G``), and at 4000 x 1000 it is 32 MB and a few
+        milliseconds of memory traffic.  The move QP and move blocking read it.
+        """
+        if self.selected_moves is not None:
+            return self.selected_moves
+        return block_toeplitz(
+            self.step_response, prediction=self.prediction, control=self.control, first_penalized=self.first_penalized
+        )
+
+    @property
+    def move_columns(self) -> int:
+        """Columns of :attr:`moves` (``Hu m``, or ``nb m`` with blocking), without forming it."""
+        if self.selected_moves is not None:
+            return int(self.selected_moves.shape[1])
+        return self.control * int(self.step_response.shape[2])
 
     @property
     def penalized_steps(self) -> int:
@@ -128,11 +153,9 @@ def prediction_matrices(
     c_powers, step = step_response_coefficients(a, b, c, hp)
     free_state = c_powers[hw:].reshape(-1, a.shape[0])
     free_input = step[hw:].reshape(-1, b.shape[1])
-    moves = block_toeplitz(step, prediction=hp, control=hu, first_penalized=hw)
     return Prediction(
         free_state=free_state,
         free_input=free_input,
-        moves=moves,
         step_response=step,
         prediction=hp,
         control=hu,
