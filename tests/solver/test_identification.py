@@ -341,3 +341,24 @@ def test_outliers_of_a_test_that_is_mostly_transients() -> None:
     spikes = flat[[50, len(flat) // 2, -50]]
     y[spikes] += 10.0 * noise * np.array([1.0, -1.0, 1.0])
     assert set(np.nonzero(find_outliers(y, limit=6.0))[0]) >= set(spikes.tolist())
+
+
+def test_resampling_with_absolute_time_stamps() -> None:
+    """Stamps in seconds since 1970 (about 1.78e9), two a second, put on a 1 s sample time.
+
+    The zero-order hold's definition (each instant takes the last value at or before it) and
+    linear interpolation, written out here: the instant t0 + k takes the value stamped there.  A
+    tolerance of a billionth of the stamps' size (1.8 s) had taken the value stamped 1.5 s later."""
+    t0 = 1.7829e9
+    time = t0 + 0.5 * np.arange(41)
+    values = np.arange(41.0)  # the value stamped t0 + 0.5 i is i
+    grid = sample_grid(time, 1.0)
+    np.testing.assert_array_equal(grid - t0, np.arange(21.0))
+    np.testing.assert_array_equal(resample_held(time, values, grid), 2.0 * np.arange(21.0))
+    np.testing.assert_array_equal(resample_interpolated(time, values, grid, sample_time=1.0), 2.0 * np.arange(21.0))
+    # between the stamps: the hold takes the earlier one, the interpolation the mean of the two
+    between = grid[:-1] + 0.25
+    np.testing.assert_array_equal(resample_held(time, values, between), 2.0 * np.arange(20.0))
+    np.testing.assert_allclose(
+        resample_interpolated(time, values, between, sample_time=1.0), 2.0 * np.arange(20.0) + 0.5
+    )
