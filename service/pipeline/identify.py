@@ -110,6 +110,8 @@ class IdentifyInputs:
     notes: tuple[ColumnNote, ...]
     resampling: str | None
     warnings: tuple[WarningReport, ...]
+    moved_with: dict[str, tuple[str, ...]] = field(default_factory=dict)
+    """Per column, the columns whose moves it followed (``correlated_inputs``)."""
 
 
 @dataclass(frozen=True)
@@ -366,12 +368,15 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
             ]
         )
     moves = np.diff(columns[:estimation], axis=0)
+    moved_with: dict[str, list[str]] = {}
     for a in range(len(column_tags)):
         for b in range(a + 1, len(column_tags)):
             if column_tags[a] in still or column_tags[b] in still:
                 continue
             r = float(np.corrcoef(moves[:, a], moves[:, b])[0, 1])
             if abs(r) > CORRELATED:
+                moved_with.setdefault(column_tags[a], []).append(column_tags[b])
+                moved_with.setdefault(column_tags[b], []).append(column_tags[a])
                 warnings.append(
                     WarningReport(
                         code="correlated_inputs",
@@ -380,6 +385,17 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
                     )
                 )
     record = estimation * ts
+    if request.structure != "subspace" and request.max_dead_time is not None and float(request.max_dead_time) >= record:
+        raise InvalidRequest(
+            [
+                FieldProblem(
+                    pointer("max_dead_time"),
+                    f"{float(request.max_dead_time):g} is not shorter than the record to fit ({estimation} samples "
+                    f"of {ts:g}, {record:g} in the time unit): a dead time that long cannot show in the data. Give "
+                    f"a shorter one (the default is a third of the record) or a longer test",
+                )
+            ]
+        )
     max_dead = float(request.max_dead_time) if request.max_dead_time is not None else record / 3.0
     settling = float(request.settling_time) if request.settling_time is not None else record / 4.0
     return IdentifyInputs(
@@ -405,6 +421,7 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
         notes=tuple(notes),
         resampling=resampling,
         warnings=tuple(warnings),
+        moved_with={tag: tuple(others) for tag, others in moved_with.items()},
     )
 
 
@@ -571,12 +588,27 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
             )
             gain, gain_error = float(theta[0]), float(error[0])
             if not np.isfinite(gain_error) or gain_error > WEAK_GAIN * abs(gain):
+                # inputs that moved together are told apart by no amount of moving them so: say so
+                others = [
+                    t for t in inputs.moved_with.get(column, ()) if any(q.column == column_tags.index(t) for q in pairs)
+                ]
+                why = (
+                    f"input {column} moved together with {', '.join(others)}, so its effect on {tag} cannot be "
+                    f"told apart from theirs"
+                    if others
+                    else f"input {column} moved too little to identify its effect on {tag}"
+                )
+                fix = (
+                    f"Repeat the test moving {column} independently of {', '.join(others)}, or leave one of "
+                    f"the pairs out (structure 'none')"
+                    if others
+                    else f"Repeat the test with larger or more moves of {column}, or leave the pair out (structure 'none')"
+                )
+                error_text = f"{gain_error:.2g}" if np.isfinite(gain_error) else "undetermined (infinite)"
                 warnings.append(
                     WarningReport(
                         code="weak_excitation",
-                        message=f"input {column} moved too little to identify its effect on {tag}: gain "
-                        f"{gain:.4g} with a standard error of {gain_error:.2g}. Repeat the test with larger "
-                        f"or more moves of {column}, or leave the pair out (structure 'none')",
+                        message=f"{why}: gain {gain:.4g} with a standard error of {error_text}. {fix}",
                     )
                 )
             for name, flag in zip(names, bound, strict=True):
