@@ -64,6 +64,8 @@ STILL = 1e-9
 WEAK_GAIN = 0.25
 #: Inputs whose moves correlate more than this are reported.
 CORRELATED = 0.9
+#: Structures with a simpler variant of one lag fewer.
+LAGGED = frozenset({"second_order_dead_time", "integrating_first_order_dead_time"})
 #: Integrating variant of each structure (same order).
 INTEGRATING = {
     "first_order_dead_time": "integrating_dead_time",
@@ -354,7 +356,29 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
                 ]
             )
         pairs.append(tuple(row))
+        own = sum(len(STRUCTURES[spec.structure]) for spec in row) + (2 if request.detrend else 1)
         parameters += 2 if request.detrend else 1
+        i = request.outputs.index(tag)
+        count = int(np.isfinite(outputs[:estimation, i]).sum())
+        if count <= own:
+            # no degree of freedom left: any such fit passes through the data, its fit figures say
+            # nothing and its standard errors are undetermined
+            raise InvalidRequest(
+                [
+                    FieldProblem(
+                        pointer("data", tag),
+                        f"{count} samples of {tag} to fit (missing values and outliers left out) for {own} "
+                        f"parameters (its {len(row)} pairs, the offset{' and the drift' if request.detrend else ''}): "
+                        f"a fit needs more samples than parameters, and many more to mean something. Give a longer "
+                        f"record or leave pairs out (structure 'none')"
+                        + (
+                            ", or pairs with one lag fewer (first_order_dead_time, integrating_dead_time)"
+                            if any(spec.structure in LAGGED for spec in row)
+                            else ""
+                        ),
+                    )
+                ]
+            )
     work = identify_work(estimation, parameters)
     if work > caps.max_identify_work:
         raise InvalidRequest(

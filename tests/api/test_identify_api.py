@@ -276,3 +276,35 @@ def test_inputs_moved_together_are_named_as_the_cause_not_too_small_moves(client
     assert weak, warnings
     assert all("moved together with" in m and "moved too little" not in m for m in weak), weak
     assert any(m.startswith("input fuel_gas moved together with feed_flow") for m in weak), weak
+
+
+def test_more_parameters_than_samples_to_fit_is_a_422(client_module) -> None:
+    """Six inputs of two lags each (4 parameters a pair, 25 with the offset) to 24 samples: no
+    degree of freedom is left, so a fit would pass through the data with fit figures that mean
+    nothing (it had answered a 99.8 % fit, every gain undetermined and 'moved too little')."""
+    rng = np.random.default_rng(2)
+    n, m = 24, 6
+    u = rng.choice([-1.0, 1.0], size=(n, m))
+    u[:2] = 0.0
+    y = np.zeros(n)
+    for k in range(n - 1):  # the zero-order-hold recursion of a first-order lag, gain 1 on each input
+        y[k + 1] = 0.8 * y[k] + 0.2 * u[k].sum()
+    data = {f"valve_{j}": (10.0 + u[:, j]).tolist() for j in range(m)}
+    data["header_pressure"] = (50.0 + y).tolist()
+    request = {
+        "sample_time": 1.0,
+        "inputs": [f"valve_{j}" for j in range(m)],
+        "outputs": ["header_pressure"],
+        "data": data,
+        "structure": "second_order_dead_time",
+        "correlation_lags": 5,
+        "max_dead_time": 3.0,
+        "outlier_limit": None,
+    }
+    found = assert_problem(client_module.post("/identify", json=request), 422, "invalid-request")
+    assert [e["pointer"] for e in found["errors"]] == ["/data/header_pressure"]
+    assert "24 samples of header_pressure to fit" in found["errors"][0]["detail"]
+    assert "25 parameters" in found["errors"][0]["detail"]
+    # the same record fits one lag per pair (19 parameters, 5 degrees of freedom)
+    r = client_module.post("/identify", json={**request, "structure": "first_order_dead_time"})
+    assert r.status_code == 200, r.text
