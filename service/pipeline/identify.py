@@ -326,7 +326,8 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
     parameters = 0
     block_rows = 0
     if request.structure == "subspace":
-        block_rows, parameters = _subspace_checks(request, column_tags, outputs, estimation, still)
+        missing_counts = {note.tag: int(np.sum(note.missing < estimation)) for note in notes}
+        block_rows, parameters = _subspace_checks(request, column_tags, outputs, estimation, still, missing_counts)
     for tag in request.outputs if request.structure != "subspace" else ():
         integrating = tag in request.integrating
         default = INTEGRATING[request.structure] if integrating else request.structure
@@ -455,17 +456,31 @@ def _subspace_checks(
     outputs: NDArray[np.float64],
     estimation: int,
     still: set[str],
+    missing_counts: dict[str, int],
 ) -> tuple[int, int]:
-    """Block rows and a parameter count of a subspace fit; every output sample must be there."""
+    """Block rows and a parameter count of a subspace fit; every output sample must be there.
+
+    ``missing_counts``: per output, its missing samples among those to fit (the other gaps are outliers).
+    """
     problems = []
     for i, tag in enumerate(request.outputs):
         gaps = np.nonzero(~np.isfinite(outputs[:estimation, i]))[0]
         if gaps.size:
+            missing = missing_counts[tag]
+            if missing == 0:  # outliers only: the check may be what stands in the way
+                what = (
+                    f"{gaps.size} outliers of the outlier check; review them in data.tags, or switch the check off "
+                    f"(outlier_limit null, 'none' in a query) when they are the plant's own moves"
+                )
+            elif missing == gaps.size:
+                what = f"{gaps.size} missing"
+            else:
+                what = f"{missing} missing and {gaps.size - missing} outliers"
             problems.append(
                 FieldProblem(
                     pointer("data", tag, int(gaps[0])),
-                    f"the subspace fit needs every sample of the outputs, and {tag} misses {gaps.size} (missing or "
-                    f"outliers) from here on: cut the record, or fit first_order_dead_time pairs",
+                    f"the subspace fit needs every sample of the outputs, and {tag} misses {what}, from here "
+                    f"on: cut the record, or fit first_order_dead_time pairs",
                 )
             )
     for tag in column_tags:
