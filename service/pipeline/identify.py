@@ -64,6 +64,8 @@ STILL = 1e-9
 WEAK_GAIN = 0.25
 #: Inputs whose moves correlate more than this are reported.
 CORRELATED = 0.9
+#: Structures with a simpler variant of one lag fewer.
+LAGGED = frozenset({"second_order_dead_time", "integrating_first_order_dead_time"})
 #: Integrating variant of each structure (same order).
 INTEGRATING = {
     "first_order_dead_time": "integrating_dead_time",
@@ -110,6 +112,8 @@ class IdentifyInputs:
     notes: tuple[ColumnNote, ...]
     resampling: str | None
     warnings: tuple[WarningReport, ...]
+    moved_with: dict[str, tuple[str, ...]] = field(default_factory=dict)
+    """Per column, the columns whose moves it followed (``correlated_inputs``)."""
 
 
 @dataclass(frozen=True)
@@ -322,7 +326,8 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
     parameters = 0
     block_rows = 0
     if request.structure == "subspace":
-        block_rows, parameters = _subspace_checks(request, column_tags, outputs, estimation, still)
+        missing_counts = {note.tag: int(np.sum(note.missing < estimation)) for note in notes}
+        block_rows, parameters = _subspace_checks(request, column_tags, outputs, estimation, still, missing_counts)
     for tag in request.outputs if request.structure != "subspace" else ():
         integrating = tag in request.integrating
         default = INTEGRATING[request.structure] if integrating else request.structure
@@ -352,7 +357,29 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
                 ]
             )
         pairs.append(tuple(row))
+        own = sum(len(STRUCTURES[spec.structure]) for spec in row) + (2 if request.detrend else 1)
         parameters += 2 if request.detrend else 1
+        i = request.outputs.index(tag)
+        count = int(np.isfinite(outputs[:estimation, i]).sum())
+        if count <= own:
+            # no degree of freedom left: any such fit passes through the data, its fit figures say
+            # nothing and its standard errors are undetermined
+            raise InvalidRequest(
+                [
+                    FieldProblem(
+                        pointer("data", tag),
+                        f"{count} samples of {tag} to fit (missing values and outliers left out) for {own} "
+                        f"parameters (its {len(row)} pairs, the offset{' and the drift' if request.detrend else ''}): "
+                        f"a fit needs more samples than parameters, and many more to mean something. Give a longer "
+                        f"record or leave pairs out (structure 'none')"
+                        + (
+                            ", or pairs with one lag fewer (first_order_dead_time, integrating_dead_time)"
+                            if any(spec.structure in LAGGED for spec in row)
+                            else ""
+                        ),
+                    )
+                ]
+            )
     work = identify_work(estimation, parameters)
     if work > caps.max_identify_work:
         raise InvalidRequest(
@@ -366,12 +393,15 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
             ]
         )
     moves = np.diff(columns[:estimation], axis=0)
+    moved_with: dict[str, list[str]] = {}
     for a in range(len(column_tags)):
         for b in range(a + 1, len(column_tags)):
             if column_tags[a] in still or column_tags[b] in still:
                 continue
             r = float(np.corrcoef(moves[:, a], moves[:, b])[0, 1])
             if abs(r) > CORRELATED:
+                moved_with.setdefault(column_tags[a], []).append(column_tags[b])
+                moved_with.setdefault(column_tags[b], []).append(column_tags[a])
                 warnings.append(
                     WarningReport(
                         code="correlated_inputs",
@@ -380,6 +410,17 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
                     )
                 )
     record = estimation * ts
+    if request.structure != "subspace" and request.max_dead_time is not None and float(request.max_dead_time) >= record:
+        raise InvalidRequest(
+            [
+                FieldProblem(
+                    pointer("max_dead_time"),
+                    f"{float(request.max_dead_time):g} is not shorter than the record to fit ({estimation} samples "
+                    f"of {ts:g}, {record:g} in the time unit): a dead time that long cannot show in the data. Give "
+                    f"a shorter one (the default is a third of the record) or a longer test",
+                )
+            ]
+        )
     max_dead = float(request.max_dead_time) if request.max_dead_time is not None else record / 3.0
     settling = float(request.settling_time) if request.settling_time is not None else record / 4.0
     return IdentifyInputs(
@@ -405,6 +446,7 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
         notes=tuple(notes),
         resampling=resampling,
         warnings=tuple(warnings),
+        moved_with={tag: tuple(others) for tag, others in moved_with.items()},
     )
 
 
@@ -414,17 +456,31 @@ def _subspace_checks(
     outputs: NDArray[np.float64],
     estimation: int,
     still: set[str],
+    missing_counts: dict[str, int],
 ) -> tuple[int, int]:
-    """Block rows and a parameter count of a subspace fit; every output sample must be there."""
+    """Block rows and a parameter count of a subspace fit; every output sample must be there.
+
+    ``missing_counts``: per output, its missing samples among those to fit (the other gaps are outliers).
+    """
     problems = []
     for i, tag in enumerate(request.outputs):
         gaps = np.nonzero(~np.isfinite(outputs[:estimation, i]))[0]
         if gaps.size:
+            missing = missing_counts[tag]
+            if missing == 0:  # outliers only: the check may be what stands in the way
+                what = (
+                    f"{gaps.size} outliers of the outlier check; review them in data.tags, or switch the check off "
+                    f"(outlier_limit null, 'none' in a query) when they are the plant's own moves"
+                )
+            elif missing == gaps.size:
+                what = f"{gaps.size} missing"
+            else:
+                what = f"{missing} missing and {gaps.size - missing} outliers"
             problems.append(
                 FieldProblem(
                     pointer("data", tag, int(gaps[0])),
-                    f"the subspace fit needs every sample of the outputs, and {tag} misses {gaps.size} (missing or "
-                    f"outliers) from here on: cut the record, or fit first_order_dead_time pairs",
+                    f"the subspace fit needs every sample of the outputs, and {tag} misses {what}, from here "
+                    f"on: cut the record, or fit first_order_dead_time pairs",
                 )
             )
     for tag in column_tags:
@@ -571,12 +627,27 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
             )
             gain, gain_error = float(theta[0]), float(error[0])
             if not np.isfinite(gain_error) or gain_error > WEAK_GAIN * abs(gain):
+                # inputs that moved together are told apart by no amount of moving them so: say so
+                others = [
+                    t for t in inputs.moved_with.get(column, ()) if any(q.column == column_tags.index(t) for q in pairs)
+                ]
+                why = (
+                    f"input {column} moved together with {', '.join(others)}, so its effect on {tag} cannot be "
+                    f"told apart from theirs"
+                    if others
+                    else f"input {column} moved too little to identify its effect on {tag}"
+                )
+                fix = (
+                    f"Repeat the test moving {column} independently of {', '.join(others)}, or leave one of "
+                    f"the pairs out (structure 'none')"
+                    if others
+                    else f"Repeat the test with larger or more moves of {column}, or leave the pair out (structure 'none')"
+                )
+                error_text = f"{gain_error:.2g}" if np.isfinite(gain_error) else "undetermined (infinite)"
                 warnings.append(
                     WarningReport(
                         code="weak_excitation",
-                        message=f"input {column} moved too little to identify its effect on {tag}: gain "
-                        f"{gain:.4g} with a standard error of {gain_error:.2g}. Repeat the test with larger "
-                        f"or more moves of {column}, or leave the pair out (structure 'none')",
+                        message=f"{why}: gain {gain:.4g} with a standard error of {error_text}. {fix}",
                     )
                 )
             for name, flag in zip(names, bound, strict=True):

@@ -86,7 +86,9 @@ class IdentifyRequest(RequestModel):
     pairs: list[PairStructure] = Field(default_factory=list, description="Structures of single pairs.")
     detrend: bool = Field(default=False, description="Fit a linear drift per output as well (reported).")
     max_dead_time: Positive | None = Field(
-        default=None, description="Longest dead time considered, in the time unit; default a third of the record."
+        default=None,
+        description="Longest dead time considered, in the time unit, shorter than the record to fit; default a "
+        "third of the record.",
     )
     settling_time: Positive | None = Field(
         default=None,

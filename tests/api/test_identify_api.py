@@ -220,3 +220,91 @@ def test_the_data_s_units_do_not_change_the_fit(client_module, input_unit, outpu
     element = r.json()["model"]["elements"][0][0]
     assert element["gain"] == pytest.approx(2.5 * output_unit / input_unit, rel=0.01)
     assert element["time_constants"][0] == pytest.approx(-1.0 / np.log(0.8), rel=0.01)
+
+
+def test_a_dead_time_range_longer_than_the_record_is_a_422(client_module) -> None:
+    """60 samples of 1 s: a dead time of 60 s or more cannot show in them (it had been fitted
+    silently, its range past the data).  The record's length is the JSON body's and the CSV's."""
+    request = _heater_test(1.0)
+    for longest, status in ((60.0, 422), (1e6, 422), (59.0, 200)):
+        r = client_module.post("/identify", json={**request, "max_dead_time": longest})
+        if status == 200:
+            assert r.status_code == 200, r.text
+            continue
+        found = assert_problem(r, 422, "invalid-request")
+        assert [e["pointer"] for e in found["errors"]] == ["/max_dead_time"]
+        assert "60 samples of 1" in found["errors"][0]["detail"]
+    held_out = {**request, "max_dead_time": 50.0, "validation": {"fraction": 0.25}}  # 45 samples to fit
+    found = assert_problem(client_module.post("/identify", json=held_out), 422, "invalid-request")
+    assert [e["pointer"] for e in found["errors"]] == ["/max_dead_time"]
+
+
+def test_inputs_moved_together_are_named_as_the_cause_not_too_small_moves(client_module) -> None:
+    """An invented reheater: fuel gas (kg/h) and feed flow (t/h) always moved together (one a fixed
+    multiple of the other) to an outlet temperature.  Their gains cannot be told apart: each is
+    undetermined, and the warning says why (it had said each input 'moved too little')."""
+    rng = np.random.default_rng(3)
+    n = 400
+    fuel = np.zeros(n)
+    k = 20
+    while k < n:
+        hold = int(rng.integers(20, 60))
+        fuel[k : k + hold] = rng.choice([-1.0, 1.0]) * rng.uniform(50.0, 150.0)
+        k += hold
+    feed = fuel * (4.0 / 150.0)
+    # 0.8 y(k) + (1 - 0.8) (0.05 fuel - 0.8 feed): the zero-order-hold sampling of a first-order
+    # lag (the textbook recursion), both pairs with the same lag and no dead time
+    y = np.zeros(n)
+    for i in range(n - 1):
+        y[i + 1] = 0.8 * y[i] + 0.2 * (0.05 * fuel[i] - 0.8 * feed[i])
+    request = {
+        "sample_time": 1.0,
+        "inputs": ["fuel_gas", "feed_flow"],
+        "outputs": ["outlet_temp"],
+        "data": {
+            "fuel_gas": (2400.0 + fuel).tolist(),
+            "feed_flow": (80.0 + feed).tolist(),
+            "outlet_temp": (420.0 + y + 0.01 * rng.standard_normal(n)).tolist(),
+        },
+        "max_dead_time": 10.0,
+    }
+    r = client_module.post("/identify", json=request)
+    assert r.status_code == 200, r.text
+    warnings = r.json()["warnings"]
+    assert "correlated_inputs" in [w["code"] for w in warnings]
+    weak = [w["message"] for w in warnings if w["code"] == "weak_excitation"]
+    assert weak, warnings
+    assert all("moved together with" in m and "moved too little" not in m for m in weak), weak
+    assert any(m.startswith("input fuel_gas moved together with feed_flow") for m in weak), weak
+
+
+def test_more_parameters_than_samples_to_fit_is_a_422(client_module) -> None:
+    """Six inputs of two lags each (4 parameters a pair, 25 with the offset) to 24 samples: no
+    degree of freedom is left, so a fit would pass through the data with fit figures that mean
+    nothing (it had answered a 99.8 % fit, every gain undetermined and 'moved too little')."""
+    rng = np.random.default_rng(2)
+    n, m = 24, 6
+    u = rng.choice([-1.0, 1.0], size=(n, m))
+    u[:2] = 0.0
+    y = np.zeros(n)
+    for k in range(n - 1):  # the zero-order-hold recursion of a first-order lag, gain 1 on each input
+        y[k + 1] = 0.8 * y[k] + 0.2 * u[k].sum()
+    data = {f"valve_{j}": (10.0 + u[:, j]).tolist() for j in range(m)}
+    data["header_pressure"] = (50.0 + y).tolist()
+    request = {
+        "sample_time": 1.0,
+        "inputs": [f"valve_{j}" for j in range(m)],
+        "outputs": ["header_pressure"],
+        "data": data,
+        "structure": "second_order_dead_time",
+        "correlation_lags": 5,
+        "max_dead_time": 3.0,
+        "outlier_limit": None,
+    }
+    found = assert_problem(client_module.post("/identify", json=request), 422, "invalid-request")
+    assert [e["pointer"] for e in found["errors"]] == ["/data/header_pressure"]
+    assert "24 samples of header_pressure to fit" in found["errors"][0]["detail"]
+    assert "25 parameters" in found["errors"][0]["detail"]
+    # the same record fits one lag per pair (19 parameters, 5 degrees of freedom)
+    r = client_module.post("/identify", json={**request, "structure": "first_order_dead_time"})
+    assert r.status_code == 200, r.text

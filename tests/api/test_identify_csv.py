@@ -7,6 +7,7 @@ import json
 
 import numpy as np
 import pytest
+import scipy.signal
 
 from service.cli import main
 from service.errors import InvalidRequest
@@ -253,3 +254,41 @@ def test_plain_numbers_in_every_written_form_are_read() -> None:
         lines[6] = csv_body().decode().splitlines()[6].replace("55.0", written, 1)
         request = identify_request_from_csv("\n".join(lines).encode(), IdentifyCsvOptions.model_validate(QUERY))
         assert request.data["outlet_valve"][5] == original == 55.0
+
+
+def test_absolute_time_stamps_faster_than_the_sample_time_keep_the_dead_time(make_client) -> None:
+    """An invented reheater: fuel gas (kg/h, near 2400) to outlet temperature (degC, near 420),
+    0.05 degC per kg/h, 40 s lag, 9 s dead time, logged twice a second with stamps in seconds
+    since 1970 and fitted at a 1 s sample time.  The truth is simulated by scipy alone
+    (cont2discrete's zero-order hold of the lag at 0.5 s and scipy.signal.dlsim, the dead time as
+    18 samples of shift).  The stamps' size had made the hold take each input 1.5 s late: the dead
+    time came out 10 s."""
+    rng = np.random.default_rng(5)
+    seconds = 900
+    fuel = np.zeros(seconds)
+    k = 60
+    while k < seconds:
+        hold = int(rng.integers(40, 120))
+        fuel[k : k + hold] = rng.choice([-1.0, 1.0]) * rng.uniform(45.0, 150.0)
+        k += hold
+    u = np.repeat(fuel, 2)  # the moves fall on whole seconds, as a 1 s controller makes them
+    a, b, c, d, _ = scipy.signal.cont2discrete(
+        (np.array([[-1 / 40.0]]), np.array([[0.05 / 40.0]]), np.eye(1), np.zeros((1, 1))), 0.5, method="zoh"
+    )
+    _, y, _ = scipy.signal.dlsim((a, b, c, d, 0.5), np.concatenate((np.zeros(18), u[:-18])))
+    y = 420.0 + y.ravel() + rng.normal(scale=0.02, size=u.size)
+    t0 = 1.7829e9
+    lines = ["stamp,fuel_gas,outlet_temp"]
+    lines += [f"{t0 + 0.5 * i:.1f},{2400.0 + u[i]:.17g},{y[i]:.17g}" for i in range(u.size)]
+    query = {"sample_time": 1, "inputs": "fuel_gas", "outputs": "outlet_temp", "max_dead_time": 30}
+    r = make_client().post(
+        "/identify", params=query, content="\n".join(lines) + "\n", headers={"Content-Type": "text/csv"}
+    )
+    assert r.status_code == 200, r.text
+    body = r.json()
+    assert body["data"]["resampling"] is not None
+    values = {p["name"]: p["estimate"] for p in body["pairs"][0]["parameters"]}
+    assert values["dead_time"] == pytest.approx(9.0, abs=0.3)
+    assert values["gain"] == pytest.approx(0.05, rel=0.02)
+    assert values["time_constant"] == pytest.approx(40.0, rel=0.05)
+    assert body["model"]["operating_point"]["inputs"] == [2400.0]

@@ -107,3 +107,20 @@ def test_a_subspace_fit_of_too_low_an_order_warns_of_correlated_residuals(client
         expected = [count > max(1, lags // 10) for count in outside]
         assert codes.count("residuals_correlated") == sum(expected)
         assert any(expected) is warned
+
+
+def test_a_gap_of_outliers_only_names_the_outlier_check(client) -> None:
+    """The example test without its missing samples, its spike kept: the subspace fit refuses the
+    outlier, and says that the outlier check left it out and how to switch it off; with a missing
+    sample as well, both are counted."""
+    request = complete_request()
+    request["data"]["vessel_temperature"][300] += 4.0  # a spike the outlier check finds
+    request["outlier_limit"] = 6.0
+    found = assert_problem(client.post("/identify", json=request), 422, "invalid-request")
+    [error] = [e for e in found["errors"] if e["pointer"].startswith("/data/vessel_temperature")]
+    assert int(error["pointer"].rsplit("/", 1)[1]) <= 300  # the first gap (the check may find more)
+    assert "outliers of the outlier check" in error["detail"] and "outlier_limit null" in error["detail"]
+    request["data"]["vessel_temperature"][200] = None
+    found = assert_problem(client.post("/identify", json=request), 422, "invalid-request")
+    [error] = [e for e in found["errors"] if e["pointer"].startswith("/data/vessel_temperature")]
+    assert error["pointer"] == "/data/vessel_temperature/200" and "1 missing and " in error["detail"]

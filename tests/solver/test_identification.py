@@ -311,3 +311,54 @@ def test_residual_checks_of_white_noise_stay_inside_the_bound() -> None:
     coloured = scipy.signal.lfilter([1.0], [1.0, -0.8], e)
     auto, _ = residual_correlations(coloured, np.ones(4000, bool), u, lags=20)
     assert auto.values[0] == pytest.approx(0.8, abs=0.05) and auto.outside >= 10
+
+
+def test_outliers_of_a_test_that_is_mostly_transients() -> None:
+    """A running median passes the monotone transients of a step test unchanged (zero deviation):
+    those samples say nothing of the noise.  Counted in the scale, more than half the deviations
+    were zero, the scale near zero, and half of this clean record was called outliers."""
+    rng = np.random.default_rng(7)
+    n = 1500
+    u = np.zeros(n)
+    k = 60
+    while k < n:  # an invented reheater's fuel steps: a new level every 40 to 120 s
+        hold = int(rng.integers(40, 120))
+        u[k : k + hold] = rng.choice([-1.0, 1.0]) * rng.uniform(45.0, 150.0)
+        k += hold
+    # the temperature's response, independent of the service: scipy's zero-order-hold
+    # discretization of 0.05/(40 s + 1) and scipy.signal.dlsim, 9 samples of dead time
+    a, b, c, d, _ = scipy.signal.cont2discrete(
+        (np.array([[-1 / 40.0]]), np.array([[0.05 / 40.0]]), np.eye(1), np.zeros((1, 1))), 1.0, method="zoh"
+    )
+    _, clean, _ = scipy.signal.dlsim((a, b, c, d, 1.0), np.concatenate((np.zeros(9), u[:-9])))
+    noise = 0.05
+    y = 420.0 + clean.ravel() + rng.normal(scale=noise, size=n)
+    found = find_outliers(y, limit=6.0)
+    # Gaussian noise beyond 6 standard deviations: about 2e-9 of the samples (the normal tail),
+    # so none is expected; a few may sit where the response turns (its own curvature)
+    assert found.sum() <= 3, int(found.sum())
+    flat = np.nonzero(np.abs(np.diff(clean.ravel(), prepend=0.0)) < 1e-3 * noise)[0]
+    spikes = flat[[50, len(flat) // 2, -50]]
+    y[spikes] += 10.0 * noise * np.array([1.0, -1.0, 1.0])
+    assert set(np.nonzero(find_outliers(y, limit=6.0))[0]) >= set(spikes.tolist())
+
+
+def test_resampling_with_absolute_time_stamps() -> None:
+    """Stamps in seconds since 1970 (about 1.78e9), two a second, put on a 1 s sample time.
+
+    The zero-order hold's definition (each instant takes the last value at or before it) and
+    linear interpolation, written out here: the instant t0 + k takes the value stamped there.  A
+    tolerance of a billionth of the stamps' size (1.8 s) had taken the value stamped 1.5 s later."""
+    t0 = 1.7829e9
+    time = t0 + 0.5 * np.arange(41)
+    values = np.arange(41.0)  # the value stamped t0 + 0.5 i is i
+    grid = sample_grid(time, 1.0)
+    np.testing.assert_array_equal(grid - t0, np.arange(21.0))
+    np.testing.assert_array_equal(resample_held(time, values, grid), 2.0 * np.arange(21.0))
+    np.testing.assert_array_equal(resample_interpolated(time, values, grid, sample_time=1.0), 2.0 * np.arange(21.0))
+    # between the stamps: the hold takes the earlier one, the interpolation the mean of the two
+    between = grid[:-1] + 0.25
+    np.testing.assert_array_equal(resample_held(time, values, between), 2.0 * np.arange(20.0))
+    np.testing.assert_allclose(
+        resample_interpolated(time, values, between, sample_time=1.0), 2.0 * np.arange(20.0) + 0.5
+    )

@@ -30,18 +30,31 @@ def sample_grid(time: Array, sample_time: float) -> Array:
     return grid
 
 
+def _same_instant(time: Array) -> float:
+    """How close two instants are to count as one: a billionth of the record's span, plus the
+    rounding of the time stamps themselves (a few units in the last place of the largest).
+
+    Relative to the span and not to the stamps' size: absolute stamps (seconds since 1970, near
+    1.8e9) had a tolerance of 1.8 s, and a test sampled faster than a 1 s sample time took each
+    input from one stamp later, every dead time one sample too long.
+    """
+    span = float(time[-1] - time[0])
+    return 1e-9 * span + 4.0 * float(np.finfo(float).eps) * max(abs(float(time[0])), abs(float(time[-1])))
+
+
 def resample_held(time: Array, values: Array, grid: Array) -> Array:
     """Each instant of ``grid`` takes the last value at or before it (``nan`` stays ``nan``)."""
-    index = np.searchsorted(time, grid + 1e-9 * max(abs(float(grid[-1])), 1.0), side="right") - 1
+    index = np.searchsorted(time, grid + _same_instant(time), side="right") - 1
     out: Array = values[np.clip(index, 0, values.size - 1)]
     return out
 
 
 def resample_interpolated(time: Array, values: Array, grid: Array, *, sample_time: float) -> Array:
     """Linear interpolation at each instant; ``nan`` across a missing neighbour or a gap over 2 Ts."""
-    right = np.clip(np.searchsorted(time, grid, side="left"), 0, time.size - 1)
+    tolerance = _same_instant(time)
+    right = np.clip(np.searchsorted(time, grid - tolerance, side="left"), 0, time.size - 1)
     left = np.clip(right - 1, 0, time.size - 1)
-    exact = np.isclose(time[right], grid, rtol=0.0, atol=1e-9 * max(sample_time, 1.0))
+    exact = np.abs(time[right] - grid) <= tolerance
     tl, tr = time[left], time[right]
     span = np.where(tr > tl, tr - tl, 1.0)
     w = np.clip((grid - tl) / span, 0.0, 1.0)

@@ -5,8 +5,11 @@
   outlier when it lies farther than ``limit`` robust standard deviations from the median of
   its window; the scale is ``1.4826`` times the median absolute deviation of the signal
   from its running median over the whole record (the factor makes it the standard
-  deviation for Gaussian noise).  A running median passes monotone edges unchanged, so
-  steps and ramps of a plant test are not outliers.
+  deviation for Gaussian noise), taken over the samples that are not their own window's
+  median.  A running median passes monotone edges unchanged, so steps and ramps of a plant
+  test are not outliers; their deviations are exactly zero and say nothing of the noise, so
+  they are not counted in the scale (counted, a test that is mostly transients had a scale
+  near zero and half its clean samples called outliers).
 - Fit measures: the normalized root-mean-square fit ``100 (1 - |y - y_hat| / |y - mean y|)``
   in percent (Ljung, *System Identification*, 2nd ed., 1999, section 16.4) and the
   coefficient of determination ``R^2 = 1 - SS_res / SS_tot``.
@@ -75,8 +78,13 @@ def find_outliers(y: Array, *, limit: float, window: int = 7) -> NDArray[np.bool
     values = y[finite]
     median = scipy.ndimage.median_filter(values, size=window, mode="nearest")
     deviation = values - median
-    scale = 1.4826 * float(np.median(np.abs(deviation - np.median(deviation))))
-    if scale <= 0.0:
+    # a sample that is its window's median (every sample of a monotone stretch) deviates by
+    # exactly zero: no information on the noise, so the scale is read from the others
+    informative = deviation[deviation != 0.0]
+    if informative.size == 0:
+        return out
+    scale = 1.4826 * float(np.median(np.abs(informative - np.median(informative))))
+    if scale <= 0.0:  # a flat signal with a few spikes: their size against the whole record
         scale = float(np.std(deviation))
     if scale <= 0.0:
         return out
