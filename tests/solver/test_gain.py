@@ -129,6 +129,33 @@ def test_zero_move_weight_on_one_blind_input_names_that_input(rng):
     assert "the moves of outlet carry no move penalty" in str(caught.value)
 
 
+def test_move_weights_below_the_rounding_of_collinear_inputs_are_not_called_absent():
+    # Found in an audit of identification: a model fitted to a test that moved two inputs
+    # together has gains of about 1e10 in one direction (invented numbers below). Next to
+    # G'QG near 1e20 the move weights of 1e-4 and 0.1 are below its rounding (a relative
+    # 1e-16, the double precision of IEEE 754), and the two inputs' difference is invisible,
+    # so H is singular; the 422 said the moves "carry no move penalty" while weights were given.
+    a = np.array([[0.9]])
+    b = np.array([[1e9, 2e9]])  # the same direction: u1 - u2 / 2 moves nothing
+    c = np.array([[1.0]])
+    with pytest.raises(HessianNotPositiveDefinite) as caught:
+        design_controller(
+            a,
+            b,
+            c,
+            output_weight=[1.0],
+            move_weight=[1e-4, 0.1],
+            prediction=10,
+            control=2,
+            input_labels=["fuel_gas", "feed_flow"],
+        )
+    message = str(caught.value)
+    assert "fuel_gas, feed_flow" in message
+    assert "no move penalty" in message and "rounding level" in message and "in effect" in message
+    assert "Raise these inputs' move weights" in message
+    assert caught.value.field == ("weights", "move")
+
+
 def test_an_unstable_plant_over_a_long_horizon_is_not_blamed_on_unpenalized_moves():
     # Found in an audit of hostile input: the example vessel with a[0][3] = 100 (open-loop pole
     # modulus 2.3 by numpy.linalg.eigvals) and Hp = 30 grows its predictions by about 2.3^30, so

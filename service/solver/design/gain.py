@@ -370,13 +370,24 @@ def factor_hessian(
                 if outputs is not None and m > outputs
                 else ""
             )
+            if np.any(move_weight[np.ix_(inputs, inputs)]):
+                # weights were given, but below the rounding of what the outputs see of these
+                # inputs (gains of 1e10 moved together, say): in effect none
+                penalty = (
+                    f"carry move weights at rounding level next to what the outputs see of them "
+                    f"(the Hessian's diagonal reaches {float(np.diag(hessian).max()):.3g}), in effect "
+                    f"no move penalty"
+                )
+                fix = "Raise these inputs' move weights to a size next to that diagonal"
+            else:
+                penalty = "carry no move penalty"
+                fix = "Give these inputs a positive move weight"
             detail = (
                 f"The Hessian G'QG + R is not positive definite (smallest eigenvalue "
-                f"{eigenvalues[0]:.3g}): the moves of {names} carry no move penalty, and the "
+                f"{eigenvalues[0]:.3g}): the moves of {names} {penalty}, and the "
                 f"outputs cannot see all of them (the step-response matrix has rank {rank} over "
                 f"those {count} move directions; zero move weight needs full column rank "
-                f"there).{why} Give these inputs a positive move weight, or remove inputs that "
-                f"act in the same direction."
+                f"there).{why} {fix}, or remove inputs that act in the same direction."
             )
         else:
             detail = (
