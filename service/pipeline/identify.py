@@ -252,7 +252,12 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
         raise InvalidRequest(
             [FieldProblem(pointer("data"), f"{estimation} samples to fit; at least {MIN_SAMPLES} are needed")]
         )
-    if request.correlation_lags >= estimation:
+    lags = request.correlation_lags
+    if lags >= estimation and "correlation_lags" not in request.model_fields_set:
+        # the default of 20 on a short record (20 samples is the least a fit takes): a quarter of
+        # the samples (common practice), not a refusal that names a field the client never set
+        lags = max(1, estimation // 4)
+    if lags >= estimation:
         raise InvalidRequest(
             [
                 FieldProblem(
@@ -442,7 +447,7 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
         # float holds (a sample time near 1e-308) is the record's length
         settling_samples=max(2, int(min(np.ceil(settling / ts), estimation))),
         detrend=request.detrend,
-        lags=request.correlation_lags,
+        lags=lags,
         notes=tuple(notes),
         resampling=resampling,
         warnings=tuple(warnings),

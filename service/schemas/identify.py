@@ -102,7 +102,9 @@ class IdentifyRequest(RequestModel):
     )
     validation: ValidationRequest | None = Field(default=None, description="Report the fit on a held-out segment.")
     correlation_lags: Annotated[int, Field(ge=1, le=200)] = Field(
-        default=20, description="Lags of the residual checks; fewer than the samples to fit."
+        default=20,
+        description="Lags of the residual checks; fewer than the samples to fit. Left out: 20, or a quarter of "
+        "the samples to fit when there are not more than 20.",
     )
 
 
