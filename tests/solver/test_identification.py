@@ -343,6 +343,31 @@ def test_outliers_of_a_test_that_is_mostly_transients() -> None:
     assert set(np.nonzero(find_outliers(y, limit=6.0))[0]) >= set(spikes.tolist())
 
 
+@pytest.mark.parametrize("noise", [0.0, 1e-6, 1e-3])
+def test_a_quiet_step_test_has_no_outliers_where_it_turns(noise) -> None:
+    """Found in an audit of identification: with noise far below the plant's moves per sample,
+    a step test's turns (where the response reverses after a dead time) put samples off their
+    running median by about a sample's move, and the check called 6 to 27 of them outliers (the
+    samples that show the dead time).  A spike on a steep transient is still found."""
+    rng = np.random.default_rng(11)
+    n = 600
+    u = np.zeros(n)
+    for start in range(40, n, 70):  # an invented heater's steam steps, reversed every 70 s
+        u[start:] = 20.0 if (start // 70) % 2 == 0 else -20.0
+    # the response, independent of the service: scipy's zero-order-hold discretization of
+    # 0.5/(8 s + 1) and scipy.signal.dlsim, 12 samples of dead time
+    a, b, c, d, _ = scipy.signal.cont2discrete(
+        (np.array([[-1 / 8.0]]), np.array([[0.5 / 8.0]]), np.eye(1), np.zeros((1, 1))), 1.0, method="zoh"
+    )
+    _, clean, _ = scipy.signal.dlsim((a, b, c, d, 1.0), np.concatenate((np.zeros(12), u[:-12])))
+    y = 80.0 + clean.ravel() + (rng.normal(scale=noise, size=n) if noise else 0.0)
+    assert find_outliers(y, limit=6.0).sum() == 0
+    steep = int(np.argmax(np.abs(np.diff(clean.ravel()))))  # the fastest move of the response
+    moved = y.copy()
+    moved[steep] += 8.0 * abs(float(np.diff(clean.ravel())[steep]))
+    assert np.nonzero(find_outliers(moved, limit=6.0))[0].tolist() == [steep]
+
+
 def test_resampling_with_absolute_time_stamps() -> None:
     """Stamps in seconds since 1970 (about 1.78e9), two a second, put on a 1 s sample time.
 
