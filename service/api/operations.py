@@ -62,7 +62,8 @@ COMMON_RESPONSES: dict[int | str, dict[str, Any]] = {
 
 
 UNSUPPORTED_MEDIA_TYPE: dict[str, Any] = {
-    "description": "The body is not sent as JSON (`Content-Type: application/json`).",
+    "description": "The body is not sent as JSON (`Content-Type: application/json`), or is sent compressed "
+    "(any `Content-Encoding` but `identity`); `Accept-Post` or `Accept-Encoding` says what is taken.",
     "content": {PROBLEM_JSON: {}},
 }
 
