@@ -94,6 +94,7 @@ class Problem(TypedDict):
     detail: str
     instance: str
     errors: list[FieldError]
+    omitted_errors: NotRequired[int]  # how many bad fields beyond the 50 that errors lists
 
 
 class BatchItem(TypedDict):

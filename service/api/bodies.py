@@ -352,7 +352,8 @@ class CheckedBodyRoute(APIRoute):
             if not json_content_type(content_type):
                 also = " or as CSV with 'Content-Type: text/csv'" if reader is not None else ""
                 raise UnsupportedMediaType(
-                    f"Send the request body as JSON with 'Content-Type: application/json'{also}."
+                    f"Send the request body as JSON with 'Content-Type: application/json'{also}.",
+                    accepted="application/json, text/csv" if reader is not None else "application/json",
                 )
             if reader is not None and request.query_params:
                 raise InvalidRequest(

@@ -8,7 +8,8 @@
   bytes of answers in flight, ``service.api.answer_memory``);
 - GET /metrics;
 - the shared error responses (401, 413, 503, 500) in the OpenAPI document of every route
-  they can come from;
+  they can come from, and the schema of the problem body (``ProblemReport``) on every
+  ``application/problem+json`` answer it documents;
 - at start-up: a warning when no API key is configured, glibc's threshold for mapping large
   blocks fixed (``service.api.serving.return_large_blocks``), the solver processes started, and
   a SIGTERM hook that turns /readyz to 503 at the *start* of shutdown (the server goes on
@@ -42,6 +43,7 @@ from service.api.problems import PROBLEM_JSON
 from service.api.security import OPEN_PATHS, ApiKeyMiddleware, KeyRing
 from service.api.serving import return_large_blocks
 from service.api.settings import Settings
+from service.schemas.batch import ProblemReport
 
 __all__ = ["COMMON_RESPONSES", "install_operations"]
 
@@ -60,9 +62,33 @@ COMMON_RESPONSES: dict[int | str, dict[str, Any]] = {
 
 
 UNSUPPORTED_MEDIA_TYPE: dict[str, Any] = {
-    "description": "The body is not sent as JSON (`Content-Type: application/json`).",
+    "description": "The body is not sent as JSON (`Content-Type: application/json`), or is sent compressed "
+    "(any `Content-Encoding` but `identity`); `Accept-Post` or `Accept-Encoding` says what is taken.",
     "content": {PROBLEM_JSON: {}},
 }
+
+
+#: Where the problem body's schema sits in the OpenAPI document.
+PROBLEM_SCHEMA_REF = "#/components/schemas/ProblemReport"
+
+
+def _schema_problem_answers(schema: dict[str, Any]) -> None:
+    """Give every ``application/problem+json`` answer of the document the problem body's schema.
+
+    The problem models (:class:`~service.schemas.batch.ProblemReport` and the field entries it
+    lists) are added to the components when no route has put them there already.
+    """
+    components = schema.setdefault("components", {}).setdefault("schemas", {})
+    problem = ProblemReport.model_json_schema(mode="serialization", ref_template="#/components/schemas/{model}")
+    for name, definition in problem.pop("$defs", {}).items():
+        components.setdefault(name, definition)
+    components.setdefault("ProblemReport", problem)
+    for operations in schema.get("paths", {}).values():
+        for operation in operations.values():
+            for response in operation.get("responses", {}).values():
+                media = response.get("content", {}).get(PROBLEM_JSON)
+                if media is not None and "schema" not in media:
+                    media["schema"] = {"$ref": PROBLEM_SCHEMA_REF}
 
 
 def _document_common_responses(app: FastAPI) -> None:
@@ -84,6 +110,7 @@ def _document_common_responses(app: FastAPI) -> None:
                         operation.setdefault("responses", {}).setdefault(str(status), copy.deepcopy(response))
                     if "requestBody" in operation:
                         operation["responses"].setdefault("415", copy.deepcopy(UNSUPPORTED_MEDIA_TYPE))
+            _schema_problem_answers(schema)
         assert app.openapi_schema is not None
         return app.openapi_schema
 

@@ -87,6 +87,13 @@ class ProblemReport(ResponseModel):
     detail: str
     instance: str
     errors: list[FieldProblemReport]
+    omitted_errors: int | None = Field(
+        default=None,
+        ge=1,
+        exclude_if=lambda value: value is None,
+        description="How many more fields were wrong than `errors` lists (it lists at most 50); "
+        "sent only when some were left out.",
+    )
 
 
 class BatchItemResult(ResponseModel):

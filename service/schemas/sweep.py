@@ -93,6 +93,13 @@ class SweepProblem(ResponseModel):
     type: str
     detail: str
     errors: list[dict[str, str]]
+    omitted_errors: int | None = Field(
+        default=None,
+        ge=1,
+        exclude_if=lambda value: value is None,
+        description="How many more fields were wrong than `errors` lists (it lists at most 50); "
+        "sent only when some were left out.",
+    )
 
 
 class SweepEntryReport(ResponseModel):

@@ -57,6 +57,23 @@ def test_a_bad_item_fails_alone_with_pointers_into_the_batch(client, example):
     assert number["fingerprint"] is None
 
 
+def test_an_item_with_more_bad_fields_than_a_problem_lists_counts_the_rest(client, example):
+    # 60 unknown fields: the item's problem lists 50 (MAX_REPORTED_ERRORS) and counts the other 10,
+    # as the same request's own problem does (it had been a 500: the item's model refused the count)
+    crowded = {**example, **{f"extra_{i}": 1 for i in range(60)}}
+    alone = client.post("/design", json=crowded).json()
+    assert (len(alone["errors"]), alone["omitted_errors"]) == (50, 10)
+    r = client.post("/design/batch", json={"items": [_item("crowded", crowded), _item("ok", example)]})
+    assert r.status_code == 200, r.text
+    failed, ok = r.json()["items"]
+    assert failed["status"] == "failed" and ok["status"] == "designed"
+    assert (len(failed["problem"]["errors"]), failed["problem"]["omitted_errors"]) == (50, 10)
+    assert failed["problem"]["errors"][0]["pointer"] == "/items/0/request/extra_0"
+    assert "omitted_errors" not in ok  # sent only when some were left out
+    single = client.post("/design/batch", json={"items": [_item("short", {**example, "extra": 1})]}).json()
+    assert "omitted_errors" not in single["items"][0]["problem"]
+
+
 def test_a_numerical_failure_is_the_items_problem(client, example):
     singular = copy.deepcopy(example)
     singular["model"]["c"] = [[1.0, 0.0, 0.0, 0.0]]

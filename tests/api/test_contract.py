@@ -19,6 +19,7 @@ import tempfile
 from pathlib import Path
 
 import hypothesis
+import jsonschema
 import pytest
 import schemathesis
 from hypothesis import HealthCheck, settings
@@ -188,3 +189,133 @@ FUZZ_SCHEMA = schemathesis.openapi.from_asgi("/openapi.json", FUZZ_APP, config=F
 )
 def test_fuzzed_requests_get_no_server_error_and_conform_to_the_schema(case):
     case.call_and_validate()  # every check enabled in the configuration: all of them
+
+
+# --------------------------------------------------------------------------- answers against the document
+
+#: Every bundled example file with the route it is posted to (openapi/examples/README.md).
+EXAMPLE_ROUTES = {
+    "design_request.json": "/design",
+    "design_request_robustness.json": "/design",
+    "design_request_transfer_matrix.json": "/design",
+    "batch_request.json": "/design/batch",
+    "sweep_request.json": "/design/sweep",
+    "simulate_request.json": "/simulate",
+    "simulate_request_limits.json": "/simulate",
+    "simulate_request_column.json": "/simulate",
+    "simulate_request_measured.json": "/simulate",
+    "compare_request.json": "/design/compare",
+    "export_request.json": "/design/export",
+    "export_request_structured_text.json": "/design/export",
+    "identify_request.json": "/identify",
+}
+#: The choices of the CSV calls of README.md and curl.md.
+CSV_QUERIES = {
+    "/identify": "sample_time=1&inputs=steam_valve,outlet_valve&outputs=vessel_temperature,vessel_level"
+    "&disturbances=inlet_flow&integrating=vessel_level&pairs=vessel_level:steam_valve:none&max_dead_time=20",
+    "/identify/csv": "sample_time=1&inputs=steam_valve&outputs=vessel_temperature",
+}
+#: An RFC 6901 JSON pointer.
+JSON_POINTER = re.compile(r"(/([^~/]|~[01])*)*")
+
+
+def assert_answer_conforms(document: dict, path: str, method: str, response) -> None:
+    """The answer's status and media type are documented for the operation, and its body fits their schema.
+
+    JSON bodies are validated with ``jsonschema`` (JSON Schema 2020-12, the dialect of OpenAPI 3.1)
+    against the committed document, its components included; a problem's fields must be JSON pointers.
+    """
+    responses = document["paths"][path.split("?")[0]][method]["responses"]
+    status = str(response.status_code)
+    assert status in responses, f"{method.upper()} {path}: status {status} is not documented"
+    media = response.headers["content-type"].split(";")[0]
+    content = responses[status].get("content", {})
+    assert media in content, f"{method.upper()} {path} {status}: {media} is not documented (only {list(content)})"
+    schema = content[media].get("schema")
+    assert schema is not None, f"{method.upper()} {path} {status} {media}: no schema"
+    body = response.json() if media.endswith("json") else response.text
+    validator = jsonschema.Draft202012Validator({**schema, "components": document["components"]})
+    problems = [f"/{'/'.join(map(str, e.absolute_path))}: {e.message[:300]}" for e in validator.iter_errors(body)]
+    assert not problems, f"{method.upper()} {path} {status}: {problems[:5]}"
+    if media == "application/problem+json":
+        assert body["status"] == response.status_code
+        for entry in body["errors"]:
+            assert JSON_POINTER.fullmatch(entry["pointer"]), entry
+        if response.status_code == 422:
+            assert body["errors"] and all(e["detail"] for e in body["errors"]), body
+
+
+def test_every_example_answer_conforms_to_the_committed_document(client):
+    document = json.loads(COMMITTED.read_text(encoding="utf-8"))
+    assert set(EXAMPLE_ROUTES) == {p.name for p in EXAMPLES.glob("*.json")}, "a bundled example without its route here"
+    json_body = {"Content-Type": "application/json"}
+    for name, path in EXAMPLE_ROUTES.items():
+        body = (EXAMPLES / name).read_bytes()
+        response = client.post(path, content=body, headers=json_body)
+        assert response.status_code == 200, (name, response.text[:500])
+        assert_answer_conforms(document, path, "post", response)
+    for path, accept in (("/simulate", "text/csv"), ("/design/compare", "text/markdown")):
+        name = next(n for n, p in EXAMPLE_ROUTES.items() if p == path)
+        response = client.post(path, content=(EXAMPLES / name).read_bytes(), headers={**json_body, "Accept": accept})
+        assert response.status_code == 200 and response.headers["content-type"].startswith(accept)
+        assert_answer_conforms(document, path, "post", response)
+    csv = (EXAMPLES / "plant_test.csv").read_bytes()
+    for path, query in CSV_QUERIES.items():
+        response = client.post(f"{path}?{query}", content=csv, headers={"Content-Type": "text/csv"})
+        assert response.status_code == 200, response.text[:500]
+        assert_answer_conforms(document, path, "post", response)
+    for path in ("/healthz", "/readyz"):
+        response = client.get(path)
+        assert response.status_code == 200
+        assert_answer_conforms(document, path, "get", response)
+
+
+@pytest.mark.parametrize("path", sorted(set(EXAMPLE_ROUTES.values())))
+def test_bad_requests_get_documented_problems_that_conform(make_client, path):
+    document = json.loads(COMMITTED.read_text(encoding="utf-8"))
+    example = json.loads((EXAMPLES / next(n for n, p in EXAMPLE_ROUTES.items() if p == path)).read_text())
+    client = make_client(max_body_bytes=200_000)
+    json_body = {"Content-Type": "application/json"}
+    crowded = {**example, **{f"extra_{i}": 1 for i in range(60)}}  # more bad fields than a problem lists
+    bad = [
+        (400, {"content": b'{"model": ', "headers": json_body}),  # not JSON
+        (400, {"content": b'{"\xff": 1}', "headers": json_body}),  # not UTF-8
+        (415, {"content": json.dumps(example).encode(), "headers": {"Content-Type": "text/plain"}}),
+        (415, {"content": json.dumps(example).encode(), "headers": {**json_body, "Content-Encoding": "gzip"}}),
+        (413, {"content": b'{"x": "' + b"a" * 300_000 + b'"}', "headers": json_body}),
+        (422, {"json": {}}),
+        (422, {"json": [1]}),
+        (422, {"json": {**example, "surprise": 1}}),
+        (422, {"content": b'{"a": 1, "a": 2}', "headers": json_body}),
+        (422, {"json": crowded}),
+    ]
+    for status, request in bad:
+        response = client.post(path, **request)
+        assert response.status_code == status, (status, response.text[:300])
+        assert_answer_conforms(document, path, "post", response)
+    assert client.post(path, json=crowded).json()["omitted_errors"] == 10
+    keyed = make_client(api_keys="contract-test-key-0123456789")
+    response = keyed.post(path, json=example)
+    assert response.status_code == 401
+    assert_answer_conforms(document, path, "post", response)
+
+
+def test_the_documents_own_request_examples_get_answers_that_conform(client):
+    document = json.loads(COMMITTED.read_text(encoding="utf-8"))
+    posted = 0
+    for path, operations in document["paths"].items():
+        for method, operation in operations.items():
+            for media, content in operation.get("requestBody", {}).get("content", {}).items():
+                for name, example in (content.get("examples") or {}).items():
+                    if media == "text/csv":  # the choices go in the query: the tags of its header
+                        tags = example["value"].splitlines()[0].split(",")[1:]
+                        query = f"sample_time=1&inputs={tags[0]}&outputs={','.join(tags[1:])}"
+                        response = client.post(
+                            f"{path}?{query}", content=example["value"].encode(), headers={"Content-Type": media}
+                        )
+                    else:
+                        response = client.request(method.upper(), path, json=example["value"])
+                    assert response.status_code == 200, (path, name, response.text[:300])
+                    assert_answer_conforms(document, path, method, response)
+                    posted += 1
+    assert posted >= 12

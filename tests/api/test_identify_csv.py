@@ -3,6 +3,7 @@ resampling, caps, and `movecast identify`."""
 
 from __future__ import annotations
 
+import gzip
 import json
 
 import numpy as np
@@ -140,6 +141,27 @@ def test_identify_refuses_other_content_types_with_415(make_client, content_type
     r = make_client().post("/identify", params=QUERY, content=csv_body(), headers={"Content-Type": content_type})
     body = assert_problem(r, 415, "unsupported-media-type")
     assert "text/csv" in body["detail"] and "application/json" in body["detail"]
+    # Accept-Post (RFC 7694, section 4) lists the media types the path accepts: both of them here
+    assert {t.strip() for t in r.headers["Accept-Post"].split(",")} == {"application/json", "text/csv"}
+
+
+def test_the_deprecated_csv_path_refuses_json_and_compressed_bodies_with_415(make_client) -> None:
+    client = make_client()
+    r = client.post("/identify/csv", params=QUERY, json=load_example("identify_request.json"))
+    body = assert_problem(r, 415, "unsupported-media-type")  # it had been a 422 'input should be a valid bytes'
+    assert "POST /identify" in body["detail"] and r.headers["Accept-Post"] == "text/csv"
+    compressed = gzip.compress(csv_body())
+    r = client.post(
+        "/identify/csv",
+        params=QUERY,
+        content=compressed,
+        headers={"Content-Type": "text/csv", "Content-Encoding": "gzip"},
+    )
+    assert_problem(r, 415, "unsupported-media-type")  # it had been read as CSV: a 422 'not UTF-8'
+    assert r.headers["Accept-Encoding"] == "identity"
+    # any other type is still read as CSV, as this older path always has (curl's default form type)
+    r = client.post("/identify/csv", params=QUERY, content=csv_body(), headers={"Content-Type": "text/plain"})
+    assert r.status_code == 200, r.text
 
 
 def test_identify_query_parameters_go_with_csv_only_and_are_checked(make_client) -> None:

@@ -12,13 +12,14 @@ from fastapi import APIRouter, Request
 from fastapi.responses import JSONResponse, Response
 
 from service import __version__
+from service.schemas.health import HealthReport, ReadinessReport
 
 __all__ = ["router"]
 
 router = APIRouter(tags=["health"])
 
 
-@router.get("/healthz")
+@router.get("/healthz", response_model=HealthReport)
 async def healthz() -> dict[str, str]:
     """Liveness: answers as long as the process serves HTTP."""
     return {"status": "ok", "version": __version__}
@@ -30,7 +31,17 @@ async def healthz_head() -> Response:
     return Response(status_code=200, media_type="application/json")
 
 
-@router.get("/readyz", responses={503: {"description": "Starting or shutting down."}})
+READINESS = {"application/json": {"schema": {"$ref": "#/components/schemas/ReadinessReport"}}}
+
+
+@router.get(
+    "/readyz",
+    response_model=ReadinessReport,
+    responses={
+        200: {"description": "Accepting work: `status` is `ready`."},
+        503: {"description": "Starting or shutting down: `status` is `not_ready`.", "content": READINESS},
+    },
+)
 async def readyz(request: Request) -> JSONResponse:
     """Readiness: 200 while the service accepts work, 503 while starting or shutting down."""
     ready = bool(getattr(request.app.state, "ready", False))

@@ -10,14 +10,15 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Body, Query
+from fastapi import APIRouter, Body, Depends, Query, Request
 from pydantic import ValidationError
 
-from service.api.bodies import csv_body_route
+from service.api.bodies import csv_body_route, json_content_type
 from service.api.compute import BudgetDep
 from service.api.deps import CapsDep
+from service.api.problems import PROBLEM_JSON
 from service.api.routes.design import PROBLEMS
-from service.errors import InvalidRequest
+from service.errors import InvalidRequest, UnsupportedMediaType
 from service.pipeline.examples import example_path, load_example
 from service.pipeline.identify import run_identify
 from service.pipeline.identify_csv import identify_request_from_csv
@@ -38,6 +39,24 @@ def read_csv_request(body: bytes, query: Mapping[str, str]) -> IdentifyRequest:
 
 
 router = APIRouter(tags=["identify"], route_class=csv_body_route(read_csv_request))
+
+#: The problems of POST /identify, whose body may be JSON or CSV.
+IDENTIFY_PROBLEMS: dict[int | str, dict[str, Any]] = {
+    **PROBLEMS,
+    415: {
+        "description": "The body is sent neither as JSON (`application/json`) nor as CSV (`text/csv`), or is "
+        "sent compressed; `Accept-Post` or `Accept-Encoding` says what is taken.",
+        "content": {PROBLEM_JSON: {}},
+    },
+}
+#: The problems of the deprecated POST /identify/csv, which reads any body but JSON as CSV.
+IDENTIFY_CSV_PROBLEMS: dict[int | str, dict[str, Any]] = {
+    **PROBLEMS,
+    415: {
+        "description": "The body is sent as JSON (send JSON columns to POST /identify) or compressed.",
+        "content": {PROBLEM_JSON: {}},
+    },
+}
 
 #: The OpenAPI examples carry two hours of the steam valve and the temperature from the
 #: example plant test (the whole test, every tag, is in openapi/examples/), so that trying
@@ -124,7 +143,7 @@ IDENTIFY_OPENAPI: dict[str, Any] = {
 }
 
 
-@router.post("/identify", response_model=IdentifyResponse, responses=PROBLEMS, openapi_extra=IDENTIFY_OPENAPI)
+@router.post("/identify", response_model=IdentifyResponse, responses=IDENTIFY_PROBLEMS, openapi_extra=IDENTIFY_OPENAPI)
 def identify(
     request: Annotated[
         IdentifyRequest,
@@ -145,7 +164,33 @@ def identify(
     return budget.run(run_identify, request, caps, operation="identify")
 
 
-@router.post("/identify/csv", response_model=IdentifyResponse, responses=PROBLEMS, deprecated=True)
+async def _refuse_what_is_no_csv(http: Request) -> None:
+    """415 for a compressed body or a JSON one on the CSV path, as POST /identify answers them.
+
+    Other content types are read as CSV, as this older path always has (``curl --data-binary``
+    sends a form's content type unless told otherwise).
+    """
+    encoding = http.headers.get("content-encoding", "").strip().lower()
+    if encoding not in ("", "identity"):
+        raise UnsupportedMediaType(
+            f"The request body is sent with 'Content-Encoding: {encoding[:40]}'; this service reads "
+            "bodies uncompressed only: send it without a Content-Encoding.",
+            encoding=True,
+        )
+    if json_content_type(http.headers.get("content-type")):
+        raise UnsupportedMediaType(
+            "This path takes the plant test as CSV ('Content-Type: text/csv'); send JSON columns to POST /identify.",
+            accepted="text/csv",
+        )
+
+
+@router.post(
+    "/identify/csv",
+    response_model=IdentifyResponse,
+    responses=IDENTIFY_CSV_PROBLEMS,
+    deprecated=True,
+    dependencies=[Depends(_refuse_what_is_no_csv)],  # before the body is checked
+)
 def identify_csv(
     body: Annotated[
         bytes,
