@@ -23,6 +23,20 @@ def random_plant(
     return a, rng.normal(size=(n, m)), rng.normal(size=(p, n))
 
 
+def random_steps(
+    rng: np.random.Generator, n: int, *, first: int, hold: tuple[int, int], size: tuple[float, float]
+) -> np.ndarray:
+    """An invented plant test's input moves: zero until ``first``, then a level of random sign and
+    size (``size`` range) held for a random ``hold`` range of samples, again and again."""
+    out = np.zeros(n)
+    k = first
+    while k < n:
+        held = int(rng.integers(*hold))
+        out[k : k + held] = rng.choice([-1.0, 1.0]) * rng.uniform(*size)
+        k += held
+    return out
+
+
 def random_design_request(
     rng: np.random.Generator, *, states: int, signals: int, prediction: int, control: int
 ) -> dict[str, Any]:

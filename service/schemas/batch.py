@@ -12,7 +12,7 @@ from typing import Any, Literal
 
 from pydantic import Field, PrivateAttr, ValidationError
 
-from service.schemas.common import RequestModel, ResponseModel
+from service.schemas.common import OmittedErrors, RequestModel, ResponseModel
 from service.schemas.design import DesignRequest, DesignResponse
 
 __all__ = [
@@ -87,13 +87,7 @@ class ProblemReport(ResponseModel):
     detail: str
     instance: str
     errors: list[FieldProblemReport]
-    omitted_errors: int | None = Field(
-        default=None,
-        ge=1,
-        exclude_if=lambda value: value is None,
-        description="How many more fields were wrong than `errors` lists (it lists at most 50); "
-        "sent only when some were left out.",
-    )
+    omitted_errors: OmittedErrors = None
 
 
 class BatchItemResult(ResponseModel):

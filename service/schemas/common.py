@@ -18,6 +18,7 @@ __all__ = [
     "FiniteFloat",
     "Matrix",
     "MatrixOut",
+    "OmittedErrors",
     "RequestModel",
     "ResponseModel",
     "Vector",
@@ -25,6 +26,17 @@ __all__ = [
 
 FiniteFloat = Annotated[float, Field(strict=True, allow_inf_nan=False)]
 """A finite real number; JSON integers are accepted, booleans and strings are not."""
+
+OmittedErrors = Annotated[
+    int | None,
+    Field(
+        ge=1,
+        exclude_if=lambda value: value is None,
+        description="How many more fields were wrong than `errors` lists (it lists at most 50); "
+        "sent only when some were left out.",
+    ),
+]
+"""A problem's count of the field errors left out of its list (absent when none were)."""
 
 Vector = Annotated[list[FiniteFloat], Field(min_length=1, fail_fast=True)]
 """A non-empty list of numbers of a request (the schema says ``minItems: 1``)."""

@@ -12,7 +12,7 @@ from typing import Annotated, Literal
 from pydantic import Field, ValidationInfo, field_validator
 from pydantic_core import PydanticCustomError
 
-from service.schemas.common import FiniteFloat, RequestModel, ResponseModel
+from service.schemas.common import FiniteFloat, OmittedErrors, RequestModel, ResponseModel
 from service.schemas.design import ADVISORY, DesignRequest, WarningReport
 from service.schemas.simulate import PerformanceReport, ScenarioRequest
 
@@ -93,13 +93,7 @@ class SweepProblem(ResponseModel):
     type: str
     detail: str
     errors: list[dict[str, str]]
-    omitted_errors: int | None = Field(
-        default=None,
-        ge=1,
-        exclude_if=lambda value: value is None,
-        description="How many more fields were wrong than `errors` lists (it lists at most 50); "
-        "sent only when some were left out.",
-    )
+    omitted_errors: OmittedErrors = None
 
 
 class SweepEntryReport(ResponseModel):

@@ -9,6 +9,7 @@ import pytest
 
 from service.pipeline.examples import load_example
 from tests.api.conftest import assert_problem
+from tests.conftest import random_steps
 
 # The example's invented "true" plant (openapi/examples/make_plant_test.py).
 TRUE = {
@@ -262,12 +263,7 @@ def test_inputs_moved_together_are_named_as_the_cause_not_too_small_moves(client
     undetermined, and the warning says why (it had said each input 'moved too little')."""
     rng = np.random.default_rng(3)
     n = 400
-    fuel = np.zeros(n)
-    k = 20
-    while k < n:
-        hold = int(rng.integers(20, 60))
-        fuel[k : k + hold] = rng.choice([-1.0, 1.0]) * rng.uniform(50.0, 150.0)
-        k += hold
+    fuel = random_steps(rng, n, first=20, hold=(20, 60), size=(50.0, 150.0))
     feed = fuel * (4.0 / 150.0)
     # 0.8 y(k) + (1 - 0.8) (0.05 fuel - 0.8 feed): the zero-order-hold sampling of a first-order
     # lag (the textbook recursion), both pairs with the same lag and no dead time

@@ -19,6 +19,7 @@ from service.pipeline.identify_csv import identify_request_from_csv
 from service.schemas.identify import IdentifyRequest
 from service.schemas.identify_csv import IdentifyCsvOptions
 from tests.api.conftest import assert_problem
+from tests.conftest import random_steps
 
 QUERY = {
     "sample_time": 1.0,
@@ -287,12 +288,7 @@ def test_absolute_time_stamps_faster_than_the_sample_time_keep_the_dead_time(mak
     time came out 10 s."""
     rng = np.random.default_rng(5)
     seconds = 900
-    fuel = np.zeros(seconds)
-    k = 60
-    while k < seconds:
-        hold = int(rng.integers(40, 120))
-        fuel[k : k + hold] = rng.choice([-1.0, 1.0]) * rng.uniform(45.0, 150.0)
-        k += hold
+    fuel = random_steps(rng, seconds, first=60, hold=(40, 120), size=(45.0, 150.0))
     u = np.repeat(fuel, 2)  # the moves fall on whole seconds, as a 1 s controller makes them
     a, b, c, d, _ = scipy.signal.cont2discrete(
         (np.array([[-1 / 40.0]]), np.array([[0.05 / 40.0]]), np.eye(1), np.zeros((1, 1))), 0.5, method="zoh"

@@ -12,6 +12,7 @@ from service.solver.identification.diagnostics import find_outliers, fit_measure
 from service.solver.identification.least_squares import PairSpec, fit_output, model_output
 from service.solver.identification.process_models import pair_response
 from service.solver.models.transfer import TransferElement, transfer_matrix_model
+from tests.conftest import random_steps
 
 FO, SO, INT = "first_order_dead_time", "second_order_dead_time", "integrating_dead_time"
 
@@ -319,12 +320,8 @@ def test_outliers_of_a_test_that_is_mostly_transients() -> None:
     were zero, the scale near zero, and half of this clean record was called outliers."""
     rng = np.random.default_rng(7)
     n = 1500
-    u = np.zeros(n)
-    k = 60
-    while k < n:  # an invented reheater's fuel steps: a new level every 40 to 120 s
-        hold = int(rng.integers(40, 120))
-        u[k : k + hold] = rng.choice([-1.0, 1.0]) * rng.uniform(45.0, 150.0)
-        k += hold
+    # an invented reheater's fuel steps: a new level every 40 to 120 s
+    u = random_steps(rng, n, first=60, hold=(40, 120), size=(45.0, 150.0))
     # the temperature's response, independent of the service: scipy's zero-order-hold
     # discretization of 0.05/(40 s + 1) and scipy.signal.dlsim, 9 samples of dead time
     a, b, c, d, _ = scipy.signal.cont2discrete(
