@@ -128,6 +128,10 @@ async function identifyCsv() {
       handleFailure(response, answer, "identify", { inEditor: false });
       return;
     }
+    if (!answer || typeof answer !== "object") {
+      notAnAnswer(response, "identify", { inEditor: false });
+      return;
+    }
     state.request = Object.fromEntries(query);
     state.answer = answer;
     state.endpoint = "identify";
@@ -168,11 +172,12 @@ function clearErrors() {
   $("key-error").textContent = "";
 }
 
-function showProblems(detail, problems, { keepAnswer = false, inEditor = true } = {}) {
+function showProblems(detail, problems, { keepAnswer = false, inEditor = true, title = "Problems with the request" } = {}) {
   // the answer on screen belonged to an earlier request: it goes, so that it is never read as this
   // one's (a download of the answer on screen that fails keeps it)
   if (!keepAnswer) clearResults();
   $("errors").hidden = false;
+  $("errors-title").textContent = title;
   $("errors-detail").textContent = detail;
   const list = $("errors-list");
   list.replaceChildren();
@@ -225,6 +230,10 @@ async function run() {
       handleFailure(response, answer);
       return;
     }
+    if (!answer || typeof answer !== "object") {
+      notAnAnswer(response, endpoint);
+      return;
+    }
     state.request = body;
     state.answer = answer;
     state.endpoint = endpoint;
@@ -237,8 +246,28 @@ async function run() {
   }
 }
 
+/** " Retry after 30 s." from a Retry-After header in seconds (or an HTTP date), else "". */
+export function retryText(header) {
+  if (!header) return "";
+  const seconds = /^\s*\d+\s*$/.test(header) ? Number(header) : Math.round((Date.parse(header) - Date.now()) / 1000);
+  return Number.isFinite(seconds) ? ` Retry after ${Math.max(0, seconds)} s.` : "";
+}
+
+/** A status in words: "503 Service Unavailable" (the number alone when the reason is not sent). */
+function statusWords(response) {
+  return `${response.status}${response.statusText ? ` ${response.statusText}` : ""}`;
+}
+
+/** A successful status whose body is no JSON answer (a proxy's or a login page's HTML, say): said, nothing drawn. */
+function notAnAnswer(response, endpoint, { inEditor = true } = {}) {
+  const type = response.headers.get("content-type") || "no content type";
+  showProblems(`The service answered ${statusWords(response)} to POST /${endpoint}, but not with a JSON answer (${type}): `
+    + "nothing can be shown. Is the page served through a proxy that answered in the service's place?", [], { inEditor, title: "No answer to show" });
+  setStatus(`POST /${endpoint}: ${response.status}, not a JSON answer.`);
+}
+
 function handleFailure(response, problem, endpoint = $("endpoint").value, { keepAnswer = false, inEditor = true } = {}) {
-  const detail = problem?.detail || `The service answered ${response.status}.`;
+  const detail = (problem?.detail || `The service answered ${statusWords(response)}.`) + retryText(response.headers.get("retry-after"));
   if (response.status === 401) {
     $("key-row").hidden = false;
     $("key-error").textContent = detail;
@@ -248,8 +277,10 @@ function handleFailure(response, problem, endpoint = $("endpoint").value, { keep
     return;
   }
   const problems = Array.isArray(problem?.errors) ? problem.errors.map((e) => ({ pointer: e.pointer ?? "", detail: e.detail ?? "" })) : [];
-  showProblems(detail, problems, { keepAnswer, inEditor });
-  setStatus(`POST /${endpoint}: ${response.status} ${problem?.title || ""}`.trim());
+  // a busy or failed service (429, 5xx) is no fault of the request: said so above its words
+  const busy = response.status === 429 || response.status >= 500;
+  showProblems(detail, problems, { keepAnswer, inEditor, title: busy ? "The service could not answer this request" : "Problems with the request" });
+  setStatus(`POST /${endpoint}: ${response.status} ${problem?.title || response.statusText || ""}`.trim());
 }
 
 $("run").addEventListener("click", run);

@@ -640,3 +640,49 @@ def test_a_csv_form_problem_is_listed_without_a_note_in_the_unrelated_editor(wor
     assert "no_such_tag" in errors.inner_text()
     assert page.locator(".note").count() == 0
     assert errors.locator("button.pointer").count() == 0
+
+
+@pytest.mark.parametrize(
+    ("status", "headers", "body", "expected"),
+    [
+        (
+            503,
+            {"Content-Type": "application/problem+json", "Retry-After": "7"},
+            '{"title": "Busy", "status": 503, "detail": "All solver processes are busy.", "errors": []}',
+            ["could not answer", "All solver processes are busy.", "Retry after 7 s."],
+        ),
+        (
+            429,
+            {"Content-Type": "text/html", "Retry-After": "30"},
+            "<html>slow down</html>",
+            ["could not answer", "429 Too Many Requests", "Retry after 30 s."],
+        ),
+        (
+            415,
+            {"Content-Type": "application/problem+json"},
+            '{"title": "Unsupported media type", "status": 415, "detail": "The body must be JSON.", "errors": []}',
+            ["Problems with the request", "The body must be JSON."],
+        ),
+        (
+            200,
+            {"Content-Type": "text/html"},
+            "<html>sign in to the proxy</html>",
+            ["200", "not with a JSON answer", "text/html"],
+        ),
+    ],
+)
+def test_a_failure_from_the_service_or_a_proxy_is_shown_in_words(workbench, status, headers, body, expected):
+    # Found in an audit of the page: a 200 whose body was no JSON (a proxy's page) read "answered"
+    # over an empty page, and a 429 or 503 did not say when to retry (Retry-After; RFC 9110 10.2.3).
+    page = workbench
+    page.route("**/design", lambda route: route.fulfill(status=status, headers=headers, body=body))
+    try:
+        _run_body(page, "design", load_example("design_request.json"))
+        page.get_by_test_id("errors").wait_for(state="visible")
+        text = page.get_by_test_id("errors").inner_text()
+        for words in expected:
+            assert words in text
+        assert page.locator("#summary").is_hidden() and page.locator("#downloads").is_hidden()
+        assert page.get_by_test_id("run").is_enabled()
+    finally:
+        page.unroute("**/design")
