@@ -161,6 +161,33 @@ function zoneEdges(answer, request, name, j) {
   return [at(pick(zones, "low", "min", "lower"), j), at(pick(zones, "high", "max", "upper"), j)];
 }
 
+/**
+ * The input targets of a run, per step and input (engineering units, absolute with an operating
+ * point), for the inputs that carry an input weight (weights.input): scenario.input_targets (default:
+ * the operating point's inputs, else 0) changed by scenario.input_target_changes from their step on.
+ * Null for an input without input weight (its target has no effect) or a request without any.
+ */
+export function inputTargets(request, steps, inputs) {
+  const weight = request?.weights?.input;
+  if (!Array.isArray(weight) || !weight.length) return null;
+  const weighted = Array.from({ length: inputs }, (_, j) => {
+    const w = weight[j];
+    return Array.isArray(w) ? w.some((v) => v !== 0) || weight.some((row) => Array.isArray(row) && row[j] !== 0) : typeof w === "number" && w !== 0;
+  });
+  if (!weighted.some(Boolean)) return null;
+  const scenario = request?.scenario || {};
+  const base = scenario.input_targets ?? request?.model?.operating_point?.inputs ?? Array(inputs).fill(0);
+  const changes = [...(scenario.input_target_changes || [])].sort((a, b) => a.step - b.step);
+  const series = [];
+  let now = base;
+  let next = 0;
+  for (let k = 0; k < steps; k += 1) {
+    while (next < changes.length && changes[next].step <= k) now = changes[next++].value;
+    series.push(now);
+  }
+  return Array.from({ length: inputs }, (_, j) => (weighted[j] ? series.map((row) => at(row, j)) : null));
+}
+
 function axisTitle(signal, fallback) {
   const name = signal?.name ?? fallback;
   return signal?.unit ? `${name} [${signal.unit}]` : name;
@@ -217,6 +244,7 @@ export function drawResponses(container, answer, request) {
   });
   const inputs = columns.inputs || [];
   const initial = request?.scenario?.initial?.input ?? request?.model?.operating_point?.inputs ?? null;
+  const targets = inputTargets(request, time.length, inputs.length);
   inputs.forEach((name, j) => {
     const signal = plant.inputs?.[j] ?? { name };
     const title = axisTitle(signal, name);
@@ -230,6 +258,10 @@ export function drawResponses(container, answer, request) {
       { type: "scatter", mode: "lines", name: `${name}`, x: time, y: u, line: { color: COLOURS.orange, width: 2, shape: "hv" } },
       { type: "bar", name: "move", x: time, y: moves, yaxis: "y2", marker: { color: COLOURS.purple }, hovertemplate: "move %{y}<extra></extra>" },
     ];
+    if (targets?.[j]) traces.push({
+      type: "scatter", mode: "lines", name: "input target", x: time, y: targets[j],
+      line: { color: COLOURS.green, width: 1.5, dash: "dash", shape: "hv" }, hovertemplate: "input target %{y}<extra></extra>",
+    });
     const umin = at(limits.input_min, j);
     const umax = at(limits.input_max, j);
     if (umin !== null) traces.push(level("lower limit", time, umin, COLOURS.vermillion, "dashdot", "limits"));

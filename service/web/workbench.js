@@ -340,6 +340,10 @@ function renderDesign(design, whole, request) {
   $("hessian-size").textContent = h.size ?? "—";
   const loop = whole.whole_loop;
   $("whole-loop").textContent = loop ? `spectral radius ${fmt(loop.spectral_radius)}, ${loopVerdict(loop)}` : "— (no estimator in this answer)";
+  // the controller and estimator designed on the model, run on the scenario's true plant (model error)
+  const truth = whole.true_loop;
+  $("true-loop").textContent = truth ? `spectral radius ${fmt(truth.spectral_radius)}, ${loopVerdict(truth)}` : "— (no true plant in this answer)";
+  $("true-loop").dataset.value = truth ? String(truth.spectral_radius) : "";
   $("conditioning").textContent = conditioningText(h);
   const warnings = [...(design.warnings || []), ...(whole !== design ? whole.warnings || [] : [])];
   const list = $("warnings");
@@ -382,6 +386,11 @@ export function loopVerdict(loop) {
   if (modes.length && !outside) {
     const causes = [...new Set(modes.map((m) => m.cause))].join(", ");
     return `marginal: ${modes.length} pole(s) on the unit circle (${causes}; see the warnings), none outside`;
+  }
+  if (!outside && (loop.poles || []).length) {
+    // a report without causes (the loop on the true plant): on the circle within 1e-6, as the API judges
+    const on = loop.poles.filter((p) => Math.hypot(p.real, p.imag) >= 1 - 1e-6).length;
+    return `marginal: ${on} pole(s) on the unit circle, none outside (see the warnings)`;
   }
   return "NOT stable";
 }
@@ -476,14 +485,31 @@ function renderGains(design, request) {
   }
   const plantBox = $("plant-tables");
   plantBox.replaceChildren();
-  for (const [key, caption] of [["steady_state_gain", "Steady-state gain"], ["relative_gain_array", "Relative gain array"], ["ramp_rate", "Ramp rate (integrating outputs)"]]) {
+  const plantCaptions = [
+    ["steady_state_gain", "Steady-state gain (output unit per input unit)"],
+    ["relative_gain_array", "Relative gain array"],
+    ["ramp_rate", "Ramp rate of the integrating outputs (output unit per sample per input unit)"],
+  ];
+  for (const [key, caption] of plantCaptions) {
     const m = design.plant?.[key];
-    if (m && Array.isArray(m.values)) plantBox.append(matrixTable({ id: `plant-${key}`, caption, rows: m.rows || [], columns: m.columns || [], values: m.values }));
+    if (!m || !Array.isArray(m.values)) continue;
+    // an integrating pair has no steady state: the API gives null, the ramp-rate table its slope
+    const open = key === "steady_state_gain" && m.values.some((row) => row.some((v) => v === null));
+    const text = open ? `${caption}; — : an integrating pair, with no steady state (see the ramp rate)` : caption;
+    plantBox.append(matrixTable({ id: `plant-${key}`, caption: text, rows: m.rows || [], columns: m.columns || [], values: m.values }));
   }
+}
+
+/** A signal's tag with its unit, "name [unit]", from the design's plant block. */
+function tagged(signals, name) {
+  const unit = (signals || []).find((s) => s.name === name)?.unit;
+  return unit ? `${name} [${unit}]` : name;
 }
 
 function renderResponses(answer, request) {
   show("responses", true);
+  const outputs = answer.design?.plant?.outputs;
+  const inputs = answer.design?.plant?.inputs;
   drawResponses($("response-charts"), answer, request);
   const perf = answer.performance;
   const box = $("performance");
@@ -491,22 +517,24 @@ function renderResponses(answer, request) {
   if (perf?.outputs?.length) {
     box.append(recordTable({
       id: "performance-outputs", caption: "Outputs after their last setpoint change (a zone output has none: it is held in its range)",
-      columns: [["output", (o) => (o.zone ? `${o.name} (zone)` : o.name)], ["step", (o) => o.step], ["rise time", (o) => o.rise_time], ["settling time", (o) => o.settling_time],
-        ["overshoot (%)", (o) => o.overshoot_percent], ["IAE", (o) => o.integral_absolute_error], ["final offset", (o) => o.final_offset]],
+      columns: [["output [unit]", (o) => (o.zone ? `${tagged(outputs, o.name)} (zone)` : tagged(outputs, o.name))], ["step (sample)", (o) => o.step],
+        ["rise time (time unit)", (o) => o.rise_time], ["settling time (time unit)", (o) => o.settling_time],
+        ["overshoot (%)", (o) => o.overshoot_percent], ["IAE (unit × time unit)", (o) => o.integral_absolute_error], ["final offset (unit)", (o) => o.final_offset]],
       records: perf.outputs,
     }));
   }
   if (perf?.inputs?.length) {
     box.append(recordTable({
-      id: "performance-inputs", caption: "Inputs", columns: [["input", (o) => o.name], ["total move", (o) => o.total_move], ["largest move", (o) => o.largest_move]],
+      id: "performance-inputs", caption: "Inputs",
+      columns: [["input [unit]", (o) => tagged(inputs, o.name)], ["total move (unit)", (o) => o.total_move], ["largest move (unit)", (o) => o.largest_move]],
       records: perf.inputs,
     }));
   }
   if (Array.isArray(answer.zones) && answer.zones.length) {
     box.append(recordTable({
       id: "performance-zones", caption: "Zone outputs in the run",
-      columns: [["output", (z) => z.output], ["low", (z) => z.low], ["high", (z) => z.high], ["fraction inside", (z) => z.fraction_inside],
-        ["largest excursion", (z) => z.largest_excursion], ["first step outside", (z) => z.first_outside], ["ended inside", (z) => (z.ended_inside ? "yes" : "no")]],
+      columns: [["output [unit]", (z) => tagged(outputs, z.output)], ["low (unit)", (z) => z.low], ["high (unit)", (z) => z.high], ["fraction inside", (z) => z.fraction_inside],
+        ["largest excursion (unit)", (z) => z.largest_excursion], ["first step outside (sample)", (z) => z.first_outside], ["ended inside", (z) => (z.ended_inside ? "yes" : "no")]],
       records: answer.zones,
     }));
   }

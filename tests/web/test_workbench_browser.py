@@ -209,7 +209,7 @@ def test_every_bundled_example_runs_and_every_chart_is_drawn(workbench, server):
             assert set(low["y"]) == {zone["low"]} and set(high["y"]) == {zone["high"]}
             assert "setpoint" not in traces  # a zone output has no setpoint to draw
             cells = page.locator("#performance-zones tbody tr").first.locator("td")
-            assert cells.nth(0).inner_text() == zone["output"]
+            assert cells.nth(0).inner_text() == _tagged(answer, "outputs", zone["output"])
             assert float(cells.nth(3).get_attribute("data-value")) == zone["fraction_inside"]
             assert float(cells.nth(4).get_attribute("data-value")) == zone["largest_excursion"]
             others = {t["name"] for t in drawn_points(page, f"#response-output-{0 if j else 1}")}
@@ -520,8 +520,15 @@ def test_the_figures_of_merit_mark_a_zone_output_and_say_which_step_they_follow(
     rows = table.locator("tbody tr").all()
     for row, figures in zip(rows, answer["performance"]["outputs"], strict=True):
         name = row.locator("td").first.inner_text()
-        assert name == (f"{figures['name']} (zone)" if figures["zone"] else figures["name"])
+        tag = _tagged(answer, "outputs", figures["name"])
+        assert name == (f"{tag} (zone)" if figures["zone"] else tag)
     assert any(f["zone"] for f in answer["performance"]["outputs"])
+
+
+def _tagged(answer: dict[str, Any], kind: str, name: str) -> str:
+    """A tag as the page's tables write it, with the unit the answer's plant block gives it: "name [unit]"."""
+    unit = next(s["unit"] for s in answer["design"]["plant"][kind] if s["name"] == name)
+    return f"{name} [{unit}]" if unit else name
 
 
 def _run_body(page: Any, endpoint: str, body: dict[str, Any]) -> None:
@@ -640,6 +647,152 @@ def test_a_csv_form_problem_is_listed_without_a_note_in_the_unrelated_editor(wor
     assert "no_such_tag" in errors.inner_text()
     assert page.locator(".note").count() == 0
     assert errors.locator("button.pointer").count() == 0
+
+
+def _drum(factor: float = 1.0, *, point: bool = True) -> dict[str, Any]:
+    """An invented plant of our own: a solvent regeneration drum in field units, badly scaled.
+
+    Outputs: outlet temperature (degC, about 182) and drum level (mm, about 1200, integrating);
+    inputs: fuel gas (Nm3/h, about 850), pump speed (rpm, about 1450) and a bypass (%, about 35).
+    The fuel gas acts on the temperature after 24 time units, 12 samples of 2. ``factor``
+    multiplies every gain (a true plant with a gain error).
+    """
+
+    def lag(gain: float, tau: float, dead: float) -> dict[str, Any]:
+        return {"gain": gain * factor, "time_constants": [tau], "dead_time": dead}
+
+    def ramp(gain: float, dead: float) -> dict[str, Any]:
+        return {"gain": gain * factor, "dead_time": dead, "integrating": True}
+
+    model: dict[str, Any] = {
+        "kind": "transfer_matrix",
+        "sample_time": 2.0,
+        "elements": [
+            [lag(0.045, 40.0, 24.0), lag(-0.0021, 30.0, 6.0), lag(-0.35, 20.0, 4.0)],
+            [ramp(-0.0008, 4.0), ramp(0.012, 2.0), ramp(-0.9, 2.0)],
+        ],
+        "inputs": [
+            {"name": "fuel_gas", "unit": "Nm3/h"},
+            {"name": "pump_speed", "unit": "rpm"},
+            {"name": "bypass", "unit": "%"},
+        ],
+        "outputs": [{"name": "outlet_temp", "unit": "degC"}, {"name": "drum_level", "unit": "mm"}],
+    }
+    if point:
+        model["operating_point"] = {"inputs": [850.0, 1450.0, 35.0], "outputs": [182.0, 1200.0]}
+    return model
+
+
+def _drum_run() -> dict[str, Any]:
+    """A /simulate request on the drum: more inputs than outputs with input targets, the level held
+    in a zone, limits in absolute units, and a true plant whose gains are 20 % higher."""
+    return {
+        "model": _drum(),
+        "horizons": {"prediction": 80, "control": 6},
+        "weights": {"output": [1.0, 0.0], "move": [1e-4, 1e-5, 0.01], "input": [1e-5, 1e-6, 0.01]},
+        "zones": [None, {"low": 900.0, "high": 1500.0, "weight": 1.0}],
+        "limits": {
+            "input_min": [600.0, 900.0, 5.0],
+            "input_max": [1100.0, 1800.0, 80.0],
+            "move_max": [20.0, 30.0, 3.0],
+            "output_min": [170.0, None],
+            "output_max": [190.0, None],
+        },
+        "scenario": {
+            "steps": 200,
+            "setpoint_changes": [{"step": 10, "setpoint": [184.0, 1200.0]}],
+            "input_targets": [850.0, 1450.0, 30.0],
+            "input_target_changes": [{"step": 120, "value": [850.0, 1450.0, 28.0]}],
+            "true_plant": _drum(1.2, point=False),
+        },
+    }
+
+
+def test_a_field_layout_is_shown_as_the_service_answers_it_with_units_targets_and_the_true_loop(workbench, server):
+    # Found in an audit of the page on a field layout: the loop on the true plant (the 20 % gain
+    # error) was nowhere on the page, the input targets were not drawn, the ramp-rate table did
+    # not say it is per sample, and the figures of merit gave no units.
+    page = workbench
+    console: list[str] = []
+    outside: list[str] = []
+
+    def on_console(message: Any) -> None:
+        # the browser logs each non-2xx status itself; the page's own errors are what counts
+        if message.type == "error" and "Failed to load resource" not in message.text:
+            console.append(message.text)
+
+    def on_request(sent: Any) -> None:
+        if not sent.url.startswith((server.origin, "data:", "blob:")):
+            outside.append(sent.url)
+
+    page.on("console", on_console)
+    page.on("pageerror", lambda e: console.append(str(e)))
+    page.on("request", on_request)
+    request = _drum_run()
+    answer = server.post("/simulate", request).json()
+    design = answer["design"]
+    _run_body(page, "simulate", request)
+    assert page.get_by_test_id("errors").is_hidden()
+    # the figures are the answer's own numbers
+    assert (
+        float(page.get_by_test_id("spectral-radius").get_attribute("data-value"))
+        == design["closed_loop"]["spectral_radius"]
+    )
+    assert (
+        float(page.get_by_test_id("condition-number").get_attribute("data-value"))
+        == design["hessian"]["condition_number"]
+    )
+    truth = page.get_by_test_id("true-loop")
+    assert float(truth.get_attribute("data-value")) == answer["true_loop"]["spectral_radius"]
+    # the level floats in its zone on the true plant too: a pole on the circle, none outside, as
+    # the API judges it (no true_loop_unstable warning), so the page reads marginal, not unstable
+    assert answer["true_loop"]["stable"] is False
+    assert not any(w["code"] == "true_loop_unstable" for w in answer["warnings"])
+    assert "marginal" in truth.inner_text() and "NOT" not in truth.inner_text()
+    shown = page.get_by_test_id("warnings").inner_text()
+    for warning in design["warnings"] + answer["warnings"]:
+        assert warning["code"] in shown
+    for key in ("setpoint", "state", "previous_input", "input_target"):
+        rows = page.locator(f"#gain-{key} tbody tr").all()
+        shown_gain = [[float(c.get_attribute("data-value")) for c in row.locator("td").all()] for row in rows]
+        assert shown_gain == design["gain"][key]
+    # steady-state gain and ramp rate against the textbook: a first-order pair K e^(-θs)/(τs+1) settles
+    # at K; an integrator K/s under zero-order hold rises by K·Ts per sample
+    steady = page.locator("#plant-steady_state_gain")
+    assert float(steady.locator("tbody tr").nth(0).locator("td").nth(0).get_attribute("data-value")) == pytest.approx(
+        0.045, rel=1e-9
+    )
+    assert "integrating pair" in steady.locator("caption").inner_text()
+    ramp = page.locator("#plant-ramp_rate")
+    assert "per sample" in ramp.locator("caption").inner_text()
+    cells = ramp.locator("tbody tr").nth(1).locator("td").all()
+    assert [float(c.get_attribute("data-value")) for c in cells] == pytest.approx(
+        [-0.0008 * 2, 0.012 * 2, -0.9 * 2], rel=1e-9
+    )
+    # trajectories, limits and zone band in absolute units, on axes that name the unit
+    time = answer["time"]
+    temp = {t["name"]: t for t in drawn_points(page, "#response-output-0")}
+    assert temp["outlet_temp"]["x"] == time and temp["outlet_temp"]["y"] == [row[0] for row in answer["outputs"]]
+    assert set(temp["lower limit"]["y"]) == {170.0} and set(temp["upper limit"]["y"]) == {190.0}
+    level = {t["name"]: t for t in drawn_points(page, "#response-output-1")}
+    assert set(level["zone low"]["y"]) == {900.0} and set(level["zone high"]["y"]) == {1500.0}
+    assert "setpoint" not in level
+    axis = page.eval_on_selector("#response-input-1", "gd => gd._fullLayout.yaxis.title.text")
+    assert axis == "pump_speed [rpm]"
+    # the input targets typed in the request, changed at step 120, on the inputs with an input weight
+    bypass = {t["name"]: t for t in drawn_points(page, "#response-input-2")}
+    assert bypass["input target"]["line"]
+    assert bypass["input target"]["y"] == [30.0] * 120 + [28.0] * 80
+    assert bypass["bypass"]["y"] == [row[2] for row in answer["inputs"]]
+    # moves from the operating point's input (850, 1450, 35 as typed), in the input's unit
+    moves = bypass["move"]["y"]
+    assert moves[0] == pytest.approx(answer["inputs"][0][2] - 35.0, abs=1e-12)
+    heads = [h.inner_text() for h in page.locator("#performance-outputs thead th").all()]
+    assert "rise time (time unit)" in heads and "step (sample)" in heads
+    assert page.locator("#performance-outputs tbody tr").first.locator("td").first.inner_text() == "outlet_temp [degC]"
+    page.remove_listener("console", on_console)
+    page.remove_listener("request", on_request)
+    assert console == [] and outside == []
 
 
 @pytest.mark.parametrize(
