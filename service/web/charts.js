@@ -34,6 +34,11 @@ function config(filename) {
   return {
     responsive: true,
     displaylogo: false,
+    // no "share" button: it would upload the chart (tags, trajectories) to the charting library's
+    // cloud service, off the plant network; the page talks to the service alone
+    showSendToCloud: false,
+    showEditInChartStudio: false,
+    plotlyServerURL: "",
     modeBarButtonsToRemove: ["select2d", "lasso2d"],
     toImageButtonOptions: { format: "png", filename, scale: 2 },
   };

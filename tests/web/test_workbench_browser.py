@@ -839,3 +839,27 @@ def test_a_failure_from_the_service_or_a_proxy_is_shown_in_words(workbench, stat
         assert page.get_by_test_id("run").is_enabled()
     finally:
         page.unroute("**/design")
+
+
+def test_no_chart_offers_to_upload_itself_off_the_plant_network(page, server):
+    # Found in an audit of the page: every chart's toolbar had the charting library's "Share
+    # chart..." button, which uploads the chart (tags and trajectories) to the library's cloud
+    # service; the page must talk to the service alone. Anything else is refused and recorded.
+    outside: list[str] = []
+
+    def only_the_service(route: Any) -> None:
+        if route.request.url.startswith((server.origin, "data:", "blob:")):
+            route.continue_()
+        else:
+            outside.append(route.request.url)
+            route.abort()
+
+    page.context.route("**/*", only_the_service)
+    open_page(page, f"{server.base}/")
+    _run_body(page, "simulate", _drum_run())
+    charts = page.locator(".js-plotly-plot")
+    assert charts.count() >= 6
+    titles = page.eval_on_selector_all(".modebar-btn", "bs => bs.map(b => b.getAttribute('data-title') || '')")
+    assert titles and not [t for t in titles if "share" in t.lower() or "cloud" in t.lower()]
+    assert page.eval_on_selector_all(".js-plotly-plot", "gds => gds.every(gd => gd._context.showSendToCloud === false)")
+    assert outside == []
