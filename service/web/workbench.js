@@ -359,6 +359,19 @@ function renderDesign(design, whole, request) {
     list.append(item);
   }
   $("fingerprint").textContent = whole.fingerprint || design.fingerprint || "";
+  const check = design.limit_check;
+  const plant = design.plant || {};
+  $("limit-check").replaceChildren();
+  if (check?.violated && Array.isArray(check.violations) && check.violations.length) {
+    $("limit-check").append(recordTable({
+      id: "limit-check-table",
+      caption: `The unconstrained law against the limits: its worst sample over ${check.steps} samples after a setpoint step of `
+        + `${(check.nominal_step || []).map((v, i) => `${fmt(v)} on ${tagged(plant.outputs, plant.outputs?.[i]?.name ?? `output ${i + 1}`)}`).join(", ")}`,
+      columns: [["signal [unit]", (v) => limitTag(plant, v)], ["which limit", (v) => `${v.kind} ${v.side}`], ["step (sample)", (v) => v.step],
+        ["value (unit)", (v) => v.value], ["limit (unit)", (v) => v.limit]],
+      records: check.violations,
+    }));
+  }
 
   show("poles", true);
   const estimator = whole.estimator?.poles || whole.whole_loop?.estimator_poles || design.robustness?.estimator?.poles || [];
@@ -500,6 +513,11 @@ function renderGains(design, request) {
   }
 }
 
+/** The tag of a limit's signal with its unit: an input's for input and move limits, an output's for output limits. */
+function limitTag(plant, limit) {
+  return tagged(limit.kind === "output" ? plant.outputs : plant.inputs, limit.signal);
+}
+
 /** A signal's tag with its unit, "name [unit]", from the design's plant block. */
 function tagged(signals, name) {
   const unit = (signals || []).find((s) => s.name === name)?.unit;
@@ -536,6 +554,18 @@ function renderResponses(answer, request) {
       columns: [["output [unit]", (z) => tagged(outputs, z.output)], ["low (unit)", (z) => z.low], ["high (unit)", (z) => z.high], ["fraction inside", (z) => z.fraction_inside],
         ["largest excursion (unit)", (z) => z.largest_excursion], ["first step outside (sample)", (z) => z.first_outside], ["ended inside", (z) => (z.ended_inside ? "yes" : "no")]],
       records: answer.zones,
+    }));
+  }
+  const summary = answer.limit_summary;
+  if (Array.isArray(summary?.signals) && summary.signals.length) {
+    const plant = answer.design?.plant || {};
+    box.append(recordTable({
+      id: "limit-summary", caption: `Limits in the run: how long each was active${summary.fallbacks ? `; ${summary.fallbacks} step(s) whose QP failed held the last input` : ""}`,
+      columns: [["signal [unit]", (l) => limitTag(plant, l)], ["which limit", (l) => `${l.kind} ${l.side}`],
+        // the API gives move_max for both sides of a move: the lower bound of a move is its negative
+        ["value (unit)", (l) => (l.kind === "move" && l.side === "min" ? -l.limit : l.limit)],
+        ["steps at the limit", (l) => l.steps_at_limit], ["fraction of the run", (l) => l.fraction], ["largest slack (unit)", (l) => l.largest_slack]],
+      records: summary.signals,
     }));
   }
   if (answer.diverged_at !== null && answer.diverged_at !== undefined) {

@@ -790,6 +790,28 @@ def test_a_field_layout_is_shown_as_the_service_answers_it_with_units_targets_an
     heads = [h.inner_text() for h in page.locator("#performance-outputs thead th").all()]
     assert "rise time (time unit)" in heads and "step (sample)" in heads
     assert page.locator("#performance-outputs tbody tr").first.locator("td").first.inner_text() == "outlet_temp [degC]"
+    # how long each limit was active, as the answer counts it; a move's lower bound is -move_max
+    rows = page.locator("#limit-summary tbody tr").all()
+    assert len(rows) == len(answer["limit_summary"]["signals"])
+    for row, limit in zip(rows, answer["limit_summary"]["signals"], strict=True):
+        cells = row.locator("td").all()
+        assert cells[1].inner_text() == f"{limit['kind']} {limit['side']}"
+        bound = -limit["limit"] if (limit["kind"], limit["side"]) == ("move", "min") else limit["limit"]
+        assert float(cells[2].get_attribute("data-value")) == bound
+        assert int(cells[3].get_attribute("data-value")) == limit["steps_at_limit"]
+    pump = next(
+        r for r in rows if r.locator("td").nth(0).inner_text() == "pump_speed [rpm]" and "move min" in r.inner_text()
+    )
+    assert float(pump.locator("td").nth(2).get_attribute("data-value")) == -30.0  # move_max typed in the request
+    # the unconstrained law's breaches of the limits (limit_check), each at its worst sample
+    check = design["limit_check"]
+    assert check["violated"]
+    shown_check = page.locator("#limit-check-table tbody tr").all()
+    assert len(shown_check) == len(check["violations"])
+    for row, breach in zip(shown_check, check["violations"], strict=True):
+        cells = row.locator("td").all()
+        assert float(cells[3].get_attribute("data-value")) == breach["value"]
+        assert float(cells[4].get_attribute("data-value")) == breach["limit"]
     page.remove_listener("console", on_console)
     page.remove_listener("request", on_request)
     assert console == [] and outside == []
