@@ -362,6 +362,7 @@ function renderDesign(design, whole, request) {
   const check = design.limit_check;
   const plant = design.plant || {};
   $("limit-check").replaceChildren();
+  renderModelError(design.model_error);
   if (check?.violated && Array.isArray(check.violations) && check.violations.length) {
     $("limit-check").append(recordTable({
       id: "limit-check-table",
@@ -511,6 +512,32 @@ function renderGains(design, request) {
     const text = open ? `${caption}; — : an integrating pair, with no steady state (see the ramp rate)` : caption;
     plantBox.append(matrixTable({ id: `plant-${key}`, caption: text, rows: m.rows || [], columns: m.columns || [], values: m.values }));
   }
+}
+
+/** analysis.model_error: the loop on the model with its gains scaled and its dead times lengthened, and the stable range. */
+function renderModelError(error) {
+  const box = $("model-error");
+  box.replaceChildren();
+  if (!error || !Array.isArray(error.cases) || !error.cases.length) return;
+  const range = (r) => {
+    const where = `${r.extra_dead_time} extra sample(s) of dead time`;
+    if (r.lowest_stable_factor === null || r.lowest_stable_factor === undefined) return `with ${where}, the factor nearest 1 is not stable`;
+    return `with ${where}, stable for gain factors ${fmt(r.lowest_stable_factor)} to ${fmt(r.highest_stable_factor)} (of those tried)`;
+  };
+  box.append(Object.assign(document.createElement("h3"), { textContent: "Model error" }));
+  box.append(Object.assign(document.createElement("p"), {
+    className: "prose", id: "model-error-ranges",
+    textContent: `The loop of this controller and its ${error.estimator} estimator on the model with every gain multiplied by a factor `
+      + `and every dead time lengthened: ${(error.stable_ranges || []).map(range).join("; ")}. Poles the design leaves on the unit circle `
+      + "(a zone output, a spare input direction) are set aside for the verdict on the others.",
+  }));
+  box.append(recordTable({
+    id: "model-error-cases", caption: "Each case asked (analysis.model_error)",
+    columns: [["gain factor", (c) => c.gain_factor], ["extra dead time (samples)", (c) => c.extra_dead_time], ["spectral radius", (c) => c.spectral_radius],
+      ["verdict", (c) => c.verdict], ["poles on the circle by design", (c) => c.nominal_circle_poles], ["other poles' spectral radius", (c) => c.rest_spectral_radius],
+      ["their verdict", (c) => c.rest_verdict]],
+    records: error.cases,
+  }));
 }
 
 /** The tag of a limit's signal with its unit: an input's for input and move limits, an output's for output limits. */
