@@ -7,7 +7,8 @@ import { fmt, matrixTable, recordTable } from "./tables.js";
 
 const KEY_STORE = "movecast.api-key";
 const $ = (id) => document.getElementById(id);
-const state = { request: null, answer: null, endpoint: null, examples: [], csv: null };
+// seq: the number of the latest call; an answer to an earlier one that arrives later is dropped
+const state = { request: null, answer: null, endpoint: null, examples: [], csv: null, seq: 0 };
 const editor = new Editor($("request-text"), $("field-notes"));
 const authRequired = document.querySelector('meta[name="movecast-auth"]')?.content === "required";
 
@@ -121,9 +122,11 @@ async function identifyCsv() {
   $("identify-csv").disabled = true;
   setStatus("Running POST /identify (text/csv)…");
   const started = performance.now();
+  const mine = ++state.seq;
   try {
     const response = await fetch(url(`identify?${query}`), { method: "POST", headers: h, body: state.csv });
     const answer = await response.json().catch(() => null);
+    if (mine !== state.seq) return;  // a later call is running or answered: this answer is not the one to show
     if (!response.ok) {
       handleFailure(response, answer, "identify", { inEditor: false });
       return;
@@ -138,7 +141,7 @@ async function identifyCsv() {
     render("identify", answer, state.request);
     setStatus(`POST /identify (text/csv) answered in ${Math.round(performance.now() - started)} ms.`);
   } catch (error) {
-    setStatus(`The service could not be reached: ${error.message}`);
+    if (mine === state.seq) setStatus(`The service could not be reached: ${error.message}`);
   } finally {
     $("identify-csv").disabled = false;
   }
@@ -210,6 +213,8 @@ function showSyntaxError(text, error) {
 // ---- running -------------------------------------------------------------------------
 
 async function run() {
+  // from now on an answer to any earlier call (a run, a fit) is not this page's to show
+  const mine = ++state.seq;
   clearErrors();
   const text = editor.text;
   let body;
@@ -223,9 +228,11 @@ async function run() {
   $("run").disabled = true;
   setStatus(`Running POST /${endpoint}…`);
   const started = performance.now();
+  // Ctrl+Enter runs while an earlier run is in flight: the later run wins, whichever answers first
   try {
     const response = await fetch(url(endpoint), { method: "POST", headers: headers(), body: text });
     const answer = await response.json().catch(() => null);
+    if (mine !== state.seq) return;
     if (!response.ok) {
       handleFailure(response, answer);
       return;
@@ -240,7 +247,7 @@ async function run() {
     render(endpoint, answer, body);
     setStatus(`POST /${endpoint} answered in ${Math.round(performance.now() - started)} ms.`);
   } catch (error) {
-    setStatus(`The service could not be reached: ${error.message}`);
+    if (mine === state.seq) setStatus(`The service could not be reached: ${error.message}`);
   } finally {
     $("run").disabled = false;
   }

@@ -915,3 +915,42 @@ def test_the_model_error_analysis_is_tabled_and_agrees_with_the_run_on_a_true_pl
     off_circle = [abs(complex(p["real"], p["imag"])) for p in run["true_loop"]["poles"]]
     off_circle = [m for m in off_circle if m < 1 - 1e-6]
     assert at_truth["rest_spectral_radius"] == pytest.approx(max(off_circle), rel=1e-9)
+
+
+def test_an_earlier_run_answering_after_a_later_one_is_not_shown(workbench, server):
+    # Found in an audit of the page: Ctrl+Enter runs while the Run button is disabled, so two runs
+    # can be in flight; the earlier one's answer, arriving last, replaced the later one's on screen.
+    page = workbench
+    first = _drum_run()
+    first.pop("scenario")
+    second = load_example("design_request.json")
+    expected = server.post("/design", second).json()["closed_loop"]["spectral_radius"]
+    assert expected != server.post("/design", first).json()["closed_loop"]["spectral_radius"]
+    held: list[Any] = []
+
+    def hold_the_first(route: Any) -> None:
+        if held:
+            route.continue_()
+        else:
+            held.append(route)
+
+    page.route("**/design", hold_the_first)
+    try:
+        page.fill("#request-text", json.dumps(first))
+        page.select_option("#endpoint", "design")
+        page.get_by_test_id("run").click()
+        page.wait_for_function("document.getElementById('status').textContent.startsWith('Running')")
+        page.fill("#request-text", json.dumps(second))
+        page.focus("#request-text")
+        page.keyboard.press("Control+Enter")
+        page.wait_for_function("document.getElementById('status').textContent.includes('answered')", timeout=60_000)
+        assert float(page.get_by_test_id("spectral-radius").get_attribute("data-value")) == expected
+        with page.expect_response("**/design", timeout=60_000) as late:
+            held[0].continue_()
+        late.value.finished()  # its body is in; the page reads it in the tasks that follow
+        page.evaluate("() => new Promise(r => setTimeout(() => requestAnimationFrame(() => setTimeout(r, 0)), 0))")
+        assert float(page.get_by_test_id("spectral-radius").get_attribute("data-value")) == expected
+        assert json.loads(download(page, "download-request")) == second
+        assert page.get_by_test_id("run").is_enabled()
+    finally:
+        page.unroute("**/design")
