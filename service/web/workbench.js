@@ -62,8 +62,15 @@ async function loadExamples() {
 
 async function openExample(name) {
   const entry = state.examples.find((e) => e.name === name);
-  const response = await fetch(url(`workbench/examples/${encodeURIComponent(name)}`));
-  const body = await response.json();
+  let body;
+  try {
+    const response = await fetch(url(`workbench/examples/${encodeURIComponent(name)}`));
+    if (!response.ok) throw new Error(`the service answered ${statusWords(response)}`);
+    body = await response.json();
+  } catch (error) {
+    setStatus(`The bundled example ${name} could not be opened (${error.message}); the editor is unchanged.`);
+    return;
+  }
   editor.text = prettyJson(body);
   $("endpoint").value = entry ? entry.endpoint : guessEndpoint(body);
   clearErrors();
@@ -710,12 +717,23 @@ function download(name, type, text) {
 
 $("download-request").addEventListener("click", () => download("request.json", "application/json", `${JSON.stringify(state.request, null, 2)}\n`));
 $("download-answer").addEventListener("click", () => download(`answer-${state.endpoint.replace("/", "-")}.json`, "application/json", `${JSON.stringify(state.answer, null, 2)}\n`));
+/** The service could not be reached for a download: said in the status, the answer on screen kept. */
+function unreachable(what, error) {
+  setStatus(`${what}: the service could not be reached (${error.message}); the answer on screen is kept.`);
+}
+
 /** The run's series as the service writes them (POST /simulate with Accept: text/csv), one format everywhere. */
 async function downloadSeries() {
   setStatus("Running POST /simulate (text/csv)…");
-  const response = await fetch(url("simulate"), {
-    method: "POST", headers: { ...headers(), Accept: "text/csv, application/problem+json" }, body: JSON.stringify(state.request),
-  });
+  let response;
+  try {
+    response = await fetch(url("simulate"), {
+      method: "POST", headers: { ...headers(), Accept: "text/csv, application/problem+json" }, body: JSON.stringify(state.request),
+    });
+  } catch (error) {
+    unreachable("POST /simulate (text/csv)", error);
+    return;
+  }
   if (!response.ok) {
     handleFailure(response, await response.json().catch(() => null), "simulate", { keepAnswer: true });
     return;
@@ -729,7 +747,13 @@ $("download-series").addEventListener("click", downloadSeries);
 async function exportLaw(format, name, type) {
   const body = JSON.stringify({ ...state.request, format });
   setStatus("Running POST /design/export…");
-  const response = await fetch(url("design/export"), { method: "POST", headers: { ...headers(), Accept: `${type}, application/problem+json` }, body });
+  let response;
+  try {
+    response = await fetch(url("design/export"), { method: "POST", headers: { ...headers(), Accept: `${type}, application/problem+json` }, body });
+  } catch (error) {
+    unreachable("POST /design/export", error);
+    return;
+  }
   if (!response.ok) {
     handleFailure(response, await response.json().catch(() => null), "design/export", { keepAnswer: true });
     return;
@@ -757,7 +781,9 @@ function start() {
     if (key) sessionStorage.setItem(KEY_STORE, key);
     else sessionStorage.removeItem(KEY_STORE);
   });
-  loadExamples().then(() => document.body.setAttribute("data-ready", "true"));
+  loadExamples()
+    .catch((error) => setStatus(`The bundled examples could not be loaded (${error.message}); paste or open a request instead.`))
+    .finally(() => document.body.setAttribute("data-ready", "true"));
 }
 
 if (window.Plotly) start();

@@ -954,3 +954,29 @@ def test_an_earlier_run_answering_after_a_later_one_is_not_shown(workbench, serv
         assert page.get_by_test_id("run").is_enabled()
     finally:
         page.unroute("**/design")
+
+
+def test_a_service_gone_away_is_said_for_the_examples_and_the_downloads(page, server):
+    # Found in an audit of the page: the examples, the series download and the law export had no
+    # handler for a failed fetch: an uncaught error in the console, a page that never became
+    # ready, or a status left at "Running..." for good.
+    errors: list[str] = []
+    page.on("pageerror", lambda e: errors.append(str(e)))
+    page.route("**/workbench/examples", lambda route: route.abort())
+    open_page(page, f"{server.base}/")
+    assert "examples could not be loaded" in page.locator("#status").inner_text()
+    page.unroute("**/workbench/examples")
+    _run_body(page, "simulate", _drum_run())
+    for path, testid in (("**/simulate", "download-series"), ("**/design/export", "download-law-st")):
+        if testid == "download-law-st":
+            design = _drum_run()
+            design.pop("scenario")
+            _run_body(page, "design", design)
+        page.route(path, lambda route: route.abort())
+        try:
+            page.get_by_test_id(testid).click()
+            page.wait_for_function("document.getElementById('status').textContent.includes('could not be reached')")
+            assert page.locator("#summary").is_visible()  # the answer on screen is kept
+        finally:
+            page.unroute(path)
+    assert errors == []
