@@ -279,7 +279,7 @@ export function drawResponses(container, answer, request) {
     window.Plotly.react(div, traces, baseLayout(`Input ${title}`, {
       xaxis: { title: { text: timeTitle }, anchor: "y2" },
       yaxis: { title: { text: title }, domain: [0.36, 1] },
-      yaxis2: { title: { text: "move" }, domain: [0, 0.26] },
+      yaxis2: { title: { text: signal.unit ? `move [${signal.unit}]` : "move" }, domain: [0, 0.26] },
       bargap: 0,
     }), config(div.dataset.filename));
     drawn.push(div);

@@ -779,6 +779,7 @@ def test_a_field_layout_is_shown_as_the_service_answers_it_with_units_targets_an
     assert "setpoint" not in level
     axis = page.eval_on_selector("#response-input-1", "gd => gd._fullLayout.yaxis.title.text")
     assert axis == "pump_speed [rpm]"
+    assert page.eval_on_selector("#response-input-1", "gd => gd._fullLayout.yaxis2.title.text") == "move [rpm]"
     # the input targets typed in the request, changed at step 120, on the inputs with an input weight
     bypass = {t["name"]: t for t in drawn_points(page, "#response-input-2")}
     assert bypass["input target"]["line"]
