@@ -981,3 +981,18 @@ def test_a_service_gone_away_is_said_for_the_examples_and_the_downloads(page, se
         finally:
             page.unroute(path)
     assert errors == []
+
+
+def test_a_true_plant_that_breaks_the_loop_reads_not_stable(workbench, server):
+    # The drum with every gain five times the model's: the true loop has a pole outside the unit
+    # circle (the API's true_loop_unstable), and the page must not read it as marginal.
+    page = workbench
+    request = _drum_run()
+    request["scenario"]["true_plant"] = _drum(5.0, point=False)
+    answer = server.post("/simulate", request).json()
+    assert answer["true_loop"]["spectral_radius"] > 1 + 1e-6
+    _run_body(page, "simulate", request)
+    truth = page.get_by_test_id("true-loop")
+    assert float(truth.get_attribute("data-value")) == answer["true_loop"]["spectral_radius"]
+    assert "NOT stable" in truth.inner_text()
+    assert "true_loop_unstable" in page.get_by_test_id("warnings").inner_text()
