@@ -104,7 +104,7 @@ function poleTrace(name, poles, symbol, colour, size = 11) {
  * The pole map: the unit circle, the closed-loop, open-loop and estimator poles, and the
  * marginal modes (poles on the unit circle, or those the answer lists as marginal).
  */
-export function drawPoleMap(div, { closed = [], open = [], estimator = [], marginal = [] }) {
+export function drawPoleMap(div, { closed = [], open = [], estimator = [], marginal = [], truth = [] }) {
   const circle = Array.from({ length: 361 }, (_, k) => (k * Math.PI) / 180);
   const traces = [
     {
@@ -115,9 +115,10 @@ export function drawPoleMap(div, { closed = [], open = [], estimator = [], margi
   if (open.length) traces.push(poleTrace("open-loop pole", open, "circle-open", COLOURS.vermillion));
   if (estimator.length) traces.push(poleTrace("estimator pole", estimator, "diamond-open", COLOURS.green));
   if (closed.length) traces.push(poleTrace("closed-loop pole", closed, "x-thin", COLOURS.blue, 12));
+  if (truth.length) traces.push(poleTrace("pole on the true plant", truth, "triangle-up-open", COLOURS.orange, 10));
   if (marginal.length) traces.push(poleTrace("marginal mode", marginal, "square-open", COLOURS.purple, 18));
   let reach = 1.1;
-  for (const p of [...closed, ...open, ...estimator]) reach = Math.max(reach, 1.05 * Math.abs(p.real), 1.05 * Math.abs(p.imag));
+  for (const p of [...closed, ...open, ...estimator, ...truth]) reach = Math.max(reach, 1.05 * Math.abs(p.real), 1.05 * Math.abs(p.imag));
   const layout = baseLayout("Poles in the z-plane", {
     xaxis: { title: { text: "real part" }, range: [-reach, reach], zeroline: true, zerolinecolor: "#d0d0d0" },
     yaxis: { title: { text: "imaginary part" }, range: [-reach, reach], scaleanchor: "x", scaleratio: 1, zeroline: true, zerolinecolor: "#d0d0d0" },

@@ -393,9 +393,10 @@ function renderDesign(design, whole, request) {
   const marginal = marginalModes(design);
   const poleDiv = $("pole-map");
   poleDiv.dataset.filename = "poles";
-  drawPoleMap(poleDiv, { closed: design.closed_loop?.poles || [], open: design.plant?.open_loop_poles || [], estimator, marginal: marginal.poles });
+  const truthPoles = whole.true_loop?.poles || [];
+  drawPoleMap(poleDiv, { closed: design.closed_loop?.poles || [], open: design.plant?.open_loop_poles || [], estimator, marginal: marginal.poles, truth: truthPoles });
   $("marginal").textContent = marginalText(marginal, (design.plant?.inputs || []).map((s) => s.name));
-  renderPoleTable(design, estimator);
+  renderPoleTable(design, estimator, truthPoles);
 
   if (design.robustness?.frequencies) {
     show("robustness", true);
@@ -447,12 +448,13 @@ function marginalText({ modes, poles }, inputs = []) {
   return poles.length ? `${poles.length} closed-loop pole(s) on the unit circle, marked with squares; see the warnings for the cause.` : "No closed-loop pole on the unit circle.";
 }
 
-function renderPoleTable(design, estimator) {
+function renderPoleTable(design, estimator, truth = []) {
   const rows = [];
   const add = (kind, poles) => poles.forEach((p) => rows.push({ kind, ...p }));
   add("closed loop", design.closed_loop?.poles || []);
   add("open loop", design.plant?.open_loop_poles || []);
   add("estimator", estimator);
+  add("loop on the true plant", truth);
   $("pole-table").replaceChildren(recordTable({
     id: "poles-list", caption: "Poles",
     columns: [["kind", (r) => r.kind], ["real", (r) => r.real], ["imaginary", (r) => r.imag], ["modulus", (r) => Math.hypot(r.real, r.imag)]],

@@ -749,6 +749,10 @@ def test_a_field_layout_is_shown_as_the_service_answers_it_with_units_targets_an
     assert answer["true_loop"]["stable"] is False
     assert not any(w["code"] == "true_loop_unstable" for w in answer["warnings"])
     assert "marginal" in truth.inner_text() and "NOT" not in truth.inner_text()
+    poles = answer["true_loop"]["poles"]
+    drawn = {t["name"]: t for t in drawn_points(page, "#pole-map")}
+    on_truth = drawn[f"pole on the true plant ({len(poles)})"]
+    assert on_truth["x"] == [p["real"] for p in poles] and on_truth["y"] == [p["imag"] for p in poles]
     shown = page.get_by_test_id("warnings").inner_text()
     for warning in design["warnings"] + answer["warnings"]:
         assert warning["code"] in shown
