@@ -285,6 +285,23 @@ export function drawResponses(container, answer, request) {
     }), config(div.dataset.filename));
     drawn.push(div);
   });
+  // the measured disturbances the scenario applied (absolute with an operating point), which the
+  // feed-forward gain Kd acts on: without them an output's upset has no visible cause
+  (columns.measured_disturbances || []).forEach((name, k) => {
+    const signal = plant.disturbances?.[k] ?? { name };
+    const title = axisTitle(signal, name);
+    const div = chartBox(container, {
+      id: `response-disturbance-${k}`, testid: "response-chart", label: `Measured disturbance ${name}`, filename: `disturbance-${name}`,
+    });
+    const traces = [{
+      type: "scatter", mode: "lines", name, x: time, y: column(answer.measured_disturbances || [], k),
+      line: { color: COLOURS.vermillion, width: 2, shape: "hv", dash: "dot" },
+    }];
+    window.Plotly.react(div, traces, baseLayout(`Measured disturbance ${title}`, {
+      xaxis: { title: { text: timeTitle } }, yaxis: { title: { text: title } },
+    }), config(div.dataset.filename));
+    drawn.push(div);
+  });
   return fitToCells(drawn);
 }
 

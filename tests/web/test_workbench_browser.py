@@ -1000,3 +1000,28 @@ def test_a_true_plant_that_breaks_the_loop_reads_not_stable(workbench, server):
     assert float(truth.get_attribute("data-value")) == answer["true_loop"]["spectral_radius"]
     assert "NOT stable" in truth.inner_text()
     assert "true_loop_unstable" in page.get_by_test_id("warnings").inner_text()
+
+
+def test_a_measured_disturbance_of_the_run_is_charted_in_its_unit(workbench, server):
+    # Found in an audit of the page: the measured disturbances of a run (the signal Kd acts on)
+    # were not drawn, so an output's upset had no visible cause. The drum with a feed flow of
+    # 40 t/h at the operating point, stepped to 44 t/h at step 60.
+    page = workbench
+    request = _drum_run()
+    feed = [
+        [{"gain": -0.3, "time_constants": [25.0], "dead_time": 8.0}],
+        [{"gain": 2.5, "dead_time": 2.0, "integrating": True}],
+    ]
+    for model in (request["model"], request["scenario"]["true_plant"]):
+        model["disturbance_elements"] = feed
+        model["disturbances"] = [{"name": "feed_flow", "unit": "t/h"}]
+    request["model"]["operating_point"]["disturbances"] = [40.0]
+    request["scenario"]["measured_disturbances"] = [{"step": 60, "value": [44.0]}]
+    answer = server.post("/simulate", request).json()
+    _run_body(page, "simulate", request)
+    traces = {t["name"]: t for t in drawn_points(page, "#response-disturbance-0")}
+    assert traces["feed_flow"]["line"]
+    assert traces["feed_flow"]["y"] == [row[0] for row in answer["measured_disturbances"]]
+    assert traces["feed_flow"]["y"] == [40.0] * 60 + [44.0] * 140  # as typed, absolute
+    title = page.eval_on_selector("#response-disturbance-0", "gd => gd._fullLayout.yaxis.title.text")
+    assert title == "feed_flow [t/h]"
