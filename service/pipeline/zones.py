@@ -111,7 +111,10 @@ def check_zones(
             problems.append(
                 FieldProblem(
                     pointer("zones", j, "high"),
-                    f"high of the zone of '{name}' ({zone.high:g}) is below its low ({zone.low:g})",
+                    # the edges here are deviations from the operating point when it is given: their
+                    # difference is the same in the absolute values the client typed, the edges are not
+                    f"high of the zone of '{name}' lies {zone.low - zone.high:g} below its low; give a high "
+                    "at or above the low",
                 )
             )
         for side, value in (("low", zone.low), ("high", zone.high)):

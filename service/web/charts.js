@@ -34,6 +34,11 @@ function config(filename) {
   return {
     responsive: true,
     displaylogo: false,
+    // no "share" button: it would upload the chart (tags, trajectories) to the charting library's
+    // cloud service, off the plant network; the page talks to the service alone
+    showSendToCloud: false,
+    showEditInChartStudio: false,
+    plotlyServerURL: "",
     modeBarButtonsToRemove: ["select2d", "lasso2d"],
     toImageButtonOptions: { format: "png", filename, scale: 2 },
   };
@@ -99,7 +104,7 @@ function poleTrace(name, poles, symbol, colour, size = 11) {
  * The pole map: the unit circle, the closed-loop, open-loop and estimator poles, and the
  * marginal modes (poles on the unit circle, or those the answer lists as marginal).
  */
-export function drawPoleMap(div, { closed = [], open = [], estimator = [], marginal = [] }) {
+export function drawPoleMap(div, { closed = [], open = [], estimator = [], marginal = [], truth = [] }) {
   const circle = Array.from({ length: 361 }, (_, k) => (k * Math.PI) / 180);
   const traces = [
     {
@@ -110,9 +115,10 @@ export function drawPoleMap(div, { closed = [], open = [], estimator = [], margi
   if (open.length) traces.push(poleTrace("open-loop pole", open, "circle-open", COLOURS.vermillion));
   if (estimator.length) traces.push(poleTrace("estimator pole", estimator, "diamond-open", COLOURS.green));
   if (closed.length) traces.push(poleTrace("closed-loop pole", closed, "x-thin", COLOURS.blue, 12));
+  if (truth.length) traces.push(poleTrace("pole on the true plant", truth, "triangle-up-open", COLOURS.orange, 10));
   if (marginal.length) traces.push(poleTrace("marginal mode", marginal, "square-open", COLOURS.purple, 18));
   let reach = 1.1;
-  for (const p of [...closed, ...open, ...estimator]) reach = Math.max(reach, 1.05 * Math.abs(p.real), 1.05 * Math.abs(p.imag));
+  for (const p of [...closed, ...open, ...estimator, ...truth]) reach = Math.max(reach, 1.05 * Math.abs(p.real), 1.05 * Math.abs(p.imag));
   const layout = baseLayout("Poles in the z-plane", {
     xaxis: { title: { text: "real part" }, range: [-reach, reach], zeroline: true, zerolinecolor: "#d0d0d0" },
     yaxis: { title: { text: "imaginary part" }, range: [-reach, reach], scaleanchor: "x", scaleratio: 1, zeroline: true, zerolinecolor: "#d0d0d0" },
@@ -159,6 +165,33 @@ function zoneEdges(answer, request, name, j) {
   }
   const zones = given || {};
   return [at(pick(zones, "low", "min", "lower"), j), at(pick(zones, "high", "max", "upper"), j)];
+}
+
+/**
+ * The input targets of a run, per step and input (engineering units, absolute with an operating
+ * point), for the inputs that carry an input weight (weights.input): scenario.input_targets (default:
+ * the operating point's inputs, else 0) changed by scenario.input_target_changes from their step on.
+ * Null for an input without input weight (its target has no effect) or a request without any.
+ */
+export function inputTargets(request, steps, inputs) {
+  const weight = request?.weights?.input;
+  if (!Array.isArray(weight) || !weight.length) return null;
+  const weighted = Array.from({ length: inputs }, (_, j) => {
+    const w = weight[j];
+    return Array.isArray(w) ? w.some((v) => v !== 0) || weight.some((row) => Array.isArray(row) && row[j] !== 0) : typeof w === "number" && w !== 0;
+  });
+  if (!weighted.some(Boolean)) return null;
+  const scenario = request?.scenario || {};
+  const base = scenario.input_targets ?? request?.model?.operating_point?.inputs ?? Array(inputs).fill(0);
+  const changes = [...(scenario.input_target_changes || [])].sort((a, b) => a.step - b.step);
+  const series = [];
+  let now = base;
+  let next = 0;
+  for (let k = 0; k < steps; k += 1) {
+    while (next < changes.length && changes[next].step <= k) now = changes[next++].value;
+    series.push(now);
+  }
+  return Array.from({ length: inputs }, (_, j) => (weighted[j] ? series.map((row) => at(row, j)) : null));
 }
 
 function axisTitle(signal, fallback) {
@@ -217,6 +250,7 @@ export function drawResponses(container, answer, request) {
   });
   const inputs = columns.inputs || [];
   const initial = request?.scenario?.initial?.input ?? request?.model?.operating_point?.inputs ?? null;
+  const targets = inputTargets(request, time.length, inputs.length);
   inputs.forEach((name, j) => {
     const signal = plant.inputs?.[j] ?? { name };
     const title = axisTitle(signal, name);
@@ -230,6 +264,10 @@ export function drawResponses(container, answer, request) {
       { type: "scatter", mode: "lines", name: `${name}`, x: time, y: u, line: { color: COLOURS.orange, width: 2, shape: "hv" } },
       { type: "bar", name: "move", x: time, y: moves, yaxis: "y2", marker: { color: COLOURS.purple }, hovertemplate: "move %{y}<extra></extra>" },
     ];
+    if (targets?.[j]) traces.push({
+      type: "scatter", mode: "lines", name: "input target", x: time, y: targets[j],
+      line: { color: COLOURS.green, width: 1.5, dash: "dash", shape: "hv" }, hovertemplate: "input target %{y}<extra></extra>",
+    });
     const umin = at(limits.input_min, j);
     const umax = at(limits.input_max, j);
     if (umin !== null) traces.push(level("lower limit", time, umin, COLOURS.vermillion, "dashdot", "limits"));
@@ -242,8 +280,25 @@ export function drawResponses(container, answer, request) {
     window.Plotly.react(div, traces, baseLayout(`Input ${title}`, {
       xaxis: { title: { text: timeTitle }, anchor: "y2" },
       yaxis: { title: { text: title }, domain: [0.36, 1] },
-      yaxis2: { title: { text: "move" }, domain: [0, 0.26] },
+      yaxis2: { title: { text: signal.unit ? `move [${signal.unit}]` : "move" }, domain: [0, 0.26] },
       bargap: 0,
+    }), config(div.dataset.filename));
+    drawn.push(div);
+  });
+  // the measured disturbances the scenario applied (absolute with an operating point), which the
+  // feed-forward gain Kd acts on: without them an output's upset has no visible cause
+  (columns.measured_disturbances || []).forEach((name, k) => {
+    const signal = plant.disturbances?.[k] ?? { name };
+    const title = axisTitle(signal, name);
+    const div = chartBox(container, {
+      id: `response-disturbance-${k}`, testid: "response-chart", label: `Measured disturbance ${name}`, filename: `disturbance-${name}`,
+    });
+    const traces = [{
+      type: "scatter", mode: "lines", name, x: time, y: column(answer.measured_disturbances || [], k),
+      line: { color: COLOURS.vermillion, width: 2, shape: "hv", dash: "dot" },
+    }];
+    window.Plotly.react(div, traces, baseLayout(`Measured disturbance ${title}`, {
+      xaxis: { title: { text: timeTitle } }, yaxis: { title: { text: title } },
     }), config(div.dataset.filename));
     drawn.push(div);
   });

@@ -7,7 +7,8 @@ import { fmt, matrixTable, recordTable } from "./tables.js";
 
 const KEY_STORE = "movecast.api-key";
 const $ = (id) => document.getElementById(id);
-const state = { request: null, answer: null, endpoint: null, examples: [], csv: null };
+// seq: the number of the latest call; an answer to an earlier one that arrives later is dropped
+const state = { request: null, answer: null, endpoint: null, examples: [], csv: null, seq: 0 };
 const editor = new Editor($("request-text"), $("field-notes"));
 const authRequired = document.querySelector('meta[name="movecast-auth"]')?.content === "required";
 
@@ -61,8 +62,15 @@ async function loadExamples() {
 
 async function openExample(name) {
   const entry = state.examples.find((e) => e.name === name);
-  const response = await fetch(url(`workbench/examples/${encodeURIComponent(name)}`));
-  const body = await response.json();
+  let body;
+  try {
+    const response = await fetch(url(`workbench/examples/${encodeURIComponent(name)}`));
+    if (!response.ok) throw new Error(`the service answered ${statusWords(response)}`);
+    body = await response.json();
+  } catch (error) {
+    setStatus(`The bundled example ${name} could not be opened (${error.message}); the editor is unchanged.`);
+    return;
+  }
   editor.text = prettyJson(body);
   $("endpoint").value = entry ? entry.endpoint : guessEndpoint(body);
   clearErrors();
@@ -121,11 +129,17 @@ async function identifyCsv() {
   $("identify-csv").disabled = true;
   setStatus("Running POST /identify (text/csv)…");
   const started = performance.now();
+  const mine = ++state.seq;
   try {
     const response = await fetch(url(`identify?${query}`), { method: "POST", headers: h, body: state.csv });
     const answer = await response.json().catch(() => null);
+    if (mine !== state.seq) return;  // a later call is running or answered: this answer is not the one to show
     if (!response.ok) {
       handleFailure(response, answer, "identify", { inEditor: false });
+      return;
+    }
+    if (!answer || typeof answer !== "object") {
+      notAnAnswer(response, "identify", { inEditor: false });
       return;
     }
     state.request = Object.fromEntries(query);
@@ -134,7 +148,7 @@ async function identifyCsv() {
     render("identify", answer, state.request);
     setStatus(`POST /identify (text/csv) answered in ${Math.round(performance.now() - started)} ms.`);
   } catch (error) {
-    setStatus(`The service could not be reached: ${error.message}`);
+    if (mine === state.seq) setStatus(`The service could not be reached: ${error.message}`);
   } finally {
     $("identify-csv").disabled = false;
   }
@@ -168,11 +182,12 @@ function clearErrors() {
   $("key-error").textContent = "";
 }
 
-function showProblems(detail, problems, { keepAnswer = false, inEditor = true } = {}) {
+function showProblems(detail, problems, { keepAnswer = false, inEditor = true, title = "Problems with the request" } = {}) {
   // the answer on screen belonged to an earlier request: it goes, so that it is never read as this
   // one's (a download of the answer on screen that fails keeps it)
   if (!keepAnswer) clearResults();
   $("errors").hidden = false;
+  $("errors-title").textContent = title;
   $("errors-detail").textContent = detail;
   const list = $("errors-list");
   list.replaceChildren();
@@ -205,6 +220,8 @@ function showSyntaxError(text, error) {
 // ---- running -------------------------------------------------------------------------
 
 async function run() {
+  // from now on an answer to any earlier call (a run, a fit) is not this page's to show
+  const mine = ++state.seq;
   clearErrors();
   const text = editor.text;
   let body;
@@ -218,11 +235,17 @@ async function run() {
   $("run").disabled = true;
   setStatus(`Running POST /${endpoint}…`);
   const started = performance.now();
+  // Ctrl+Enter runs while an earlier run is in flight: the later run wins, whichever answers first
   try {
     const response = await fetch(url(endpoint), { method: "POST", headers: headers(), body: text });
     const answer = await response.json().catch(() => null);
+    if (mine !== state.seq) return;
     if (!response.ok) {
       handleFailure(response, answer);
+      return;
+    }
+    if (!answer || typeof answer !== "object") {
+      notAnAnswer(response, endpoint);
       return;
     }
     state.request = body;
@@ -231,14 +254,34 @@ async function run() {
     render(endpoint, answer, body);
     setStatus(`POST /${endpoint} answered in ${Math.round(performance.now() - started)} ms.`);
   } catch (error) {
-    setStatus(`The service could not be reached: ${error.message}`);
+    if (mine === state.seq) setStatus(`The service could not be reached: ${error.message}`);
   } finally {
     $("run").disabled = false;
   }
 }
 
+/** " Retry after 30 s." from a Retry-After header in seconds (or an HTTP date), else "". */
+export function retryText(header) {
+  if (!header) return "";
+  const seconds = /^\s*\d+\s*$/.test(header) ? Number(header) : Math.round((Date.parse(header) - Date.now()) / 1000);
+  return Number.isFinite(seconds) ? ` Retry after ${Math.max(0, seconds)} s.` : "";
+}
+
+/** A status in words: "503 Service Unavailable" (the number alone when the reason is not sent). */
+function statusWords(response) {
+  return `${response.status}${response.statusText ? ` ${response.statusText}` : ""}`;
+}
+
+/** A successful status whose body is no JSON answer (a proxy's or a login page's HTML, say): said, nothing drawn. */
+function notAnAnswer(response, endpoint, { inEditor = true } = {}) {
+  const type = response.headers.get("content-type") || "no content type";
+  showProblems(`The service answered ${statusWords(response)} to POST /${endpoint}, but not with a JSON answer (${type}): `
+    + "nothing can be shown. Is the page served through a proxy that answered in the service's place?", [], { inEditor, title: "No answer to show" });
+  setStatus(`POST /${endpoint}: ${response.status}, not a JSON answer.`);
+}
+
 function handleFailure(response, problem, endpoint = $("endpoint").value, { keepAnswer = false, inEditor = true } = {}) {
-  const detail = problem?.detail || `The service answered ${response.status}.`;
+  const detail = (problem?.detail || `The service answered ${statusWords(response)}.`) + retryText(response.headers.get("retry-after"));
   if (response.status === 401) {
     $("key-row").hidden = false;
     $("key-error").textContent = detail;
@@ -248,8 +291,10 @@ function handleFailure(response, problem, endpoint = $("endpoint").value, { keep
     return;
   }
   const problems = Array.isArray(problem?.errors) ? problem.errors.map((e) => ({ pointer: e.pointer ?? "", detail: e.detail ?? "" })) : [];
-  showProblems(detail, problems, { keepAnswer, inEditor });
-  setStatus(`POST /${endpoint}: ${response.status} ${problem?.title || ""}`.trim());
+  // a busy or failed service (429, 5xx) is no fault of the request: said so above its words
+  const busy = response.status === 429 || response.status >= 500;
+  showProblems(detail, problems, { keepAnswer, inEditor, title: busy ? "The service could not answer this request" : "Problems with the request" });
+  setStatus(`POST /${endpoint}: ${response.status} ${problem?.title || response.statusText || ""}`.trim());
 }
 
 $("run").addEventListener("click", run);
@@ -309,6 +354,10 @@ function renderDesign(design, whole, request) {
   $("hessian-size").textContent = h.size ?? "—";
   const loop = whole.whole_loop;
   $("whole-loop").textContent = loop ? `spectral radius ${fmt(loop.spectral_radius)}, ${loopVerdict(loop)}` : "— (no estimator in this answer)";
+  // the controller and estimator designed on the model, run on the scenario's true plant (model error)
+  const truth = whole.true_loop;
+  $("true-loop").textContent = truth ? `spectral radius ${fmt(truth.spectral_radius)}, ${loopVerdict(truth)}` : "— (no true plant in this answer)";
+  $("true-loop").dataset.value = truth ? String(truth.spectral_radius) : "";
   $("conditioning").textContent = conditioningText(h);
   const warnings = [...(design.warnings || []), ...(whole !== design ? whole.warnings || [] : [])];
   const list = $("warnings");
@@ -324,15 +373,30 @@ function renderDesign(design, whole, request) {
     list.append(item);
   }
   $("fingerprint").textContent = whole.fingerprint || design.fingerprint || "";
+  const check = design.limit_check;
+  const plant = design.plant || {};
+  $("limit-check").replaceChildren();
+  renderModelError(design.model_error);
+  if (check?.violated && Array.isArray(check.violations) && check.violations.length) {
+    $("limit-check").append(recordTable({
+      id: "limit-check-table",
+      caption: `The unconstrained law against the limits: its worst sample over ${check.steps} samples after a setpoint step of `
+        + `${(check.nominal_step || []).map((v, i) => `${fmt(v)} on ${tagged(plant.outputs, plant.outputs?.[i]?.name ?? `output ${i + 1}`)}`).join(", ")}`,
+      columns: [["signal [unit]", (v) => limitTag(plant, v)], ["which limit", (v) => `${v.kind} ${v.side}`], ["step (sample)", (v) => v.step],
+        ["value (unit)", (v) => v.value], ["limit (unit)", (v) => v.limit]],
+      records: check.violations,
+    }));
+  }
 
   show("poles", true);
   const estimator = whole.estimator?.poles || whole.whole_loop?.estimator_poles || design.robustness?.estimator?.poles || [];
   const marginal = marginalModes(design);
   const poleDiv = $("pole-map");
   poleDiv.dataset.filename = "poles";
-  drawPoleMap(poleDiv, { closed: design.closed_loop?.poles || [], open: design.plant?.open_loop_poles || [], estimator, marginal: marginal.poles });
+  const truthPoles = whole.true_loop?.poles || [];
+  drawPoleMap(poleDiv, { closed: design.closed_loop?.poles || [], open: design.plant?.open_loop_poles || [], estimator, marginal: marginal.poles, truth: truthPoles });
   $("marginal").textContent = marginalText(marginal, (design.plant?.inputs || []).map((s) => s.name));
-  renderPoleTable(design, estimator);
+  renderPoleTable(design, estimator, truthPoles);
 
   if (design.robustness?.frequencies) {
     show("robustness", true);
@@ -351,6 +415,11 @@ export function loopVerdict(loop) {
   if (modes.length && !outside) {
     const causes = [...new Set(modes.map((m) => m.cause))].join(", ");
     return `marginal: ${modes.length} pole(s) on the unit circle (${causes}; see the warnings), none outside`;
+  }
+  if (!outside && (loop.poles || []).length) {
+    // a report without causes (the loop on the true plant): on the circle within 1e-6, as the API judges
+    const on = loop.poles.filter((p) => Math.hypot(p.real, p.imag) >= 1 - 1e-6).length;
+    return `marginal: ${on} pole(s) on the unit circle, none outside (see the warnings)`;
   }
   return "NOT stable";
 }
@@ -379,12 +448,13 @@ function marginalText({ modes, poles }, inputs = []) {
   return poles.length ? `${poles.length} closed-loop pole(s) on the unit circle, marked with squares; see the warnings for the cause.` : "No closed-loop pole on the unit circle.";
 }
 
-function renderPoleTable(design, estimator) {
+function renderPoleTable(design, estimator, truth = []) {
   const rows = [];
   const add = (kind, poles) => poles.forEach((p) => rows.push({ kind, ...p }));
   add("closed loop", design.closed_loop?.poles || []);
   add("open loop", design.plant?.open_loop_poles || []);
   add("estimator", estimator);
+  add("loop on the true plant", truth);
   $("pole-table").replaceChildren(recordTable({
     id: "poles-list", caption: "Poles",
     columns: [["kind", (r) => r.kind], ["real", (r) => r.real], ["imaginary", (r) => r.imag], ["modulus", (r) => Math.hypot(r.real, r.imag)]],
@@ -445,14 +515,62 @@ function renderGains(design, request) {
   }
   const plantBox = $("plant-tables");
   plantBox.replaceChildren();
-  for (const [key, caption] of [["steady_state_gain", "Steady-state gain"], ["relative_gain_array", "Relative gain array"], ["ramp_rate", "Ramp rate (integrating outputs)"]]) {
+  const plantCaptions = [
+    ["steady_state_gain", "Steady-state gain (output unit per input unit)"],
+    ["relative_gain_array", "Relative gain array"],
+    ["ramp_rate", "Ramp rate of the integrating outputs (output unit per sample per input unit)"],
+  ];
+  for (const [key, caption] of plantCaptions) {
     const m = design.plant?.[key];
-    if (m && Array.isArray(m.values)) plantBox.append(matrixTable({ id: `plant-${key}`, caption, rows: m.rows || [], columns: m.columns || [], values: m.values }));
+    if (!m || !Array.isArray(m.values)) continue;
+    // an integrating pair has no steady state: the API gives null, the ramp-rate table its slope
+    const open = key === "steady_state_gain" && m.values.some((row) => row.some((v) => v === null));
+    const text = open ? `${caption}; — : an integrating pair, with no steady state (see the ramp rate)` : caption;
+    plantBox.append(matrixTable({ id: `plant-${key}`, caption: text, rows: m.rows || [], columns: m.columns || [], values: m.values }));
   }
+}
+
+/** analysis.model_error: the loop on the model with its gains scaled and its dead times lengthened, and the stable range. */
+function renderModelError(error) {
+  const box = $("model-error");
+  box.replaceChildren();
+  if (!error || !Array.isArray(error.cases) || !error.cases.length) return;
+  const range = (r) => {
+    const where = `${r.extra_dead_time} extra sample(s) of dead time`;
+    if (r.lowest_stable_factor === null || r.lowest_stable_factor === undefined) return `with ${where}, the factor nearest 1 is not stable`;
+    return `with ${where}, stable for gain factors ${fmt(r.lowest_stable_factor)} to ${fmt(r.highest_stable_factor)} (of those tried)`;
+  };
+  box.append(Object.assign(document.createElement("h3"), { textContent: "Model error" }));
+  box.append(Object.assign(document.createElement("p"), {
+    className: "prose", id: "model-error-ranges",
+    textContent: `The loop of this controller and its ${error.estimator} estimator on the model with every gain multiplied by a factor `
+      + `and every dead time lengthened: ${(error.stable_ranges || []).map(range).join("; ")}. Poles the design leaves on the unit circle `
+      + "(a zone output, a spare input direction) are set aside for the verdict on the others.",
+  }));
+  box.append(recordTable({
+    id: "model-error-cases", caption: "Each case asked (analysis.model_error)",
+    columns: [["gain factor", (c) => c.gain_factor], ["extra dead time (samples)", (c) => c.extra_dead_time], ["spectral radius", (c) => c.spectral_radius],
+      ["verdict", (c) => c.verdict], ["poles on the circle by design", (c) => c.nominal_circle_poles], ["other poles' spectral radius", (c) => c.rest_spectral_radius],
+      ["their verdict", (c) => c.rest_verdict]],
+    records: error.cases,
+  }));
+}
+
+/** The tag of a limit's signal with its unit: an input's for input and move limits, an output's for output limits. */
+function limitTag(plant, limit) {
+  return tagged(limit.kind === "output" ? plant.outputs : plant.inputs, limit.signal);
+}
+
+/** A signal's tag with its unit, "name [unit]", from the design's plant block. */
+function tagged(signals, name) {
+  const unit = (signals || []).find((s) => s.name === name)?.unit;
+  return unit ? `${name} [${unit}]` : name;
 }
 
 function renderResponses(answer, request) {
   show("responses", true);
+  const outputs = answer.design?.plant?.outputs;
+  const inputs = answer.design?.plant?.inputs;
   drawResponses($("response-charts"), answer, request);
   const perf = answer.performance;
   const box = $("performance");
@@ -460,23 +578,37 @@ function renderResponses(answer, request) {
   if (perf?.outputs?.length) {
     box.append(recordTable({
       id: "performance-outputs", caption: "Outputs after their last setpoint change (a zone output has none: it is held in its range)",
-      columns: [["output", (o) => (o.zone ? `${o.name} (zone)` : o.name)], ["step", (o) => o.step], ["rise time", (o) => o.rise_time], ["settling time", (o) => o.settling_time],
-        ["overshoot (%)", (o) => o.overshoot_percent], ["IAE", (o) => o.integral_absolute_error], ["final offset", (o) => o.final_offset]],
+      columns: [["output [unit]", (o) => (o.zone ? `${tagged(outputs, o.name)} (zone)` : tagged(outputs, o.name))], ["step (sample)", (o) => o.step],
+        ["rise time (time unit)", (o) => o.rise_time], ["settling time (time unit)", (o) => o.settling_time],
+        ["overshoot (%)", (o) => o.overshoot_percent], ["IAE (unit × time unit)", (o) => o.integral_absolute_error], ["final offset (unit)", (o) => o.final_offset]],
       records: perf.outputs,
     }));
   }
   if (perf?.inputs?.length) {
     box.append(recordTable({
-      id: "performance-inputs", caption: "Inputs", columns: [["input", (o) => o.name], ["total move", (o) => o.total_move], ["largest move", (o) => o.largest_move]],
+      id: "performance-inputs", caption: "Inputs",
+      columns: [["input [unit]", (o) => tagged(inputs, o.name)], ["total move (unit)", (o) => o.total_move], ["largest move (unit)", (o) => o.largest_move]],
       records: perf.inputs,
     }));
   }
   if (Array.isArray(answer.zones) && answer.zones.length) {
     box.append(recordTable({
       id: "performance-zones", caption: "Zone outputs in the run",
-      columns: [["output", (z) => z.output], ["low", (z) => z.low], ["high", (z) => z.high], ["fraction inside", (z) => z.fraction_inside],
-        ["largest excursion", (z) => z.largest_excursion], ["first step outside", (z) => z.first_outside], ["ended inside", (z) => (z.ended_inside ? "yes" : "no")]],
+      columns: [["output [unit]", (z) => tagged(outputs, z.output)], ["low (unit)", (z) => z.low], ["high (unit)", (z) => z.high], ["fraction inside", (z) => z.fraction_inside],
+        ["largest excursion (unit)", (z) => z.largest_excursion], ["first step outside (sample)", (z) => z.first_outside], ["ended inside", (z) => (z.ended_inside ? "yes" : "no")]],
       records: answer.zones,
+    }));
+  }
+  const summary = answer.limit_summary;
+  if (Array.isArray(summary?.signals) && summary.signals.length) {
+    const plant = answer.design?.plant || {};
+    box.append(recordTable({
+      id: "limit-summary", caption: `Limits in the run: how long each was active${summary.fallbacks ? `; ${summary.fallbacks} step(s) whose QP failed held the last input` : ""}`,
+      columns: [["signal [unit]", (l) => limitTag(plant, l)], ["which limit", (l) => `${l.kind} ${l.side}`],
+        // the API gives move_max for both sides of a move: the lower bound of a move is its negative
+        ["value (unit)", (l) => (l.kind === "move" && l.side === "min" ? -l.limit : l.limit)],
+        ["steps at the limit", (l) => l.steps_at_limit], ["fraction of the run", (l) => l.fraction], ["largest slack (unit)", (l) => l.largest_slack]],
+      records: summary.signals,
     }));
   }
   if (answer.diverged_at !== null && answer.diverged_at !== undefined) {
@@ -587,12 +719,23 @@ function download(name, type, text) {
 
 $("download-request").addEventListener("click", () => download("request.json", "application/json", `${JSON.stringify(state.request, null, 2)}\n`));
 $("download-answer").addEventListener("click", () => download(`answer-${state.endpoint.replace("/", "-")}.json`, "application/json", `${JSON.stringify(state.answer, null, 2)}\n`));
+/** The service could not be reached for a download: said in the status, the answer on screen kept. */
+function unreachable(what, error) {
+  setStatus(`${what}: the service could not be reached (${error.message}); the answer on screen is kept.`);
+}
+
 /** The run's series as the service writes them (POST /simulate with Accept: text/csv), one format everywhere. */
 async function downloadSeries() {
   setStatus("Running POST /simulate (text/csv)…");
-  const response = await fetch(url("simulate"), {
-    method: "POST", headers: { ...headers(), Accept: "text/csv, application/problem+json" }, body: JSON.stringify(state.request),
-  });
+  let response;
+  try {
+    response = await fetch(url("simulate"), {
+      method: "POST", headers: { ...headers(), Accept: "text/csv, application/problem+json" }, body: JSON.stringify(state.request),
+    });
+  } catch (error) {
+    unreachable("POST /simulate (text/csv)", error);
+    return;
+  }
   if (!response.ok) {
     handleFailure(response, await response.json().catch(() => null), "simulate", { keepAnswer: true });
     return;
@@ -606,7 +749,13 @@ $("download-series").addEventListener("click", downloadSeries);
 async function exportLaw(format, name, type) {
   const body = JSON.stringify({ ...state.request, format });
   setStatus("Running POST /design/export…");
-  const response = await fetch(url("design/export"), { method: "POST", headers: { ...headers(), Accept: `${type}, application/problem+json` }, body });
+  let response;
+  try {
+    response = await fetch(url("design/export"), { method: "POST", headers: { ...headers(), Accept: `${type}, application/problem+json` }, body });
+  } catch (error) {
+    unreachable("POST /design/export", error);
+    return;
+  }
   if (!response.ok) {
     handleFailure(response, await response.json().catch(() => null), "design/export", { keepAnswer: true });
     return;
@@ -634,7 +783,9 @@ function start() {
     if (key) sessionStorage.setItem(KEY_STORE, key);
     else sessionStorage.removeItem(KEY_STORE);
   });
-  loadExamples().then(() => document.body.setAttribute("data-ready", "true"));
+  loadExamples()
+    .catch((error) => setStatus(`The bundled examples could not be loaded (${error.message}); paste or open a request instead.`))
+    .finally(() => document.body.setAttribute("data-ready", "true"));
 }
 
 if (window.Plotly) start();

@@ -157,6 +157,19 @@ def test_bad_zones_are_422_naming_the_field(client, zones, weights, where, words
     assert any(e["pointer"] == where and words in e["detail"] for e in errors), errors
 
 
+def test_a_zone_upside_down_is_named_in_the_values_typed_not_in_deviations(client):
+    # Found in an audit of the workbench: around an operating point the message quoted the edges
+    # as deviations from it (the level's 70/30 % zone read "(-20) is below its low (20)"), numbers
+    # the client never typed.  The gap between the edges is the same in both (70 - 30 = 40).
+    request = copy.deepcopy(SUMP)
+    request["zones"] = [None, {"low": 70.0, "high": 30.0}]
+    response = client.post("/design", json=request)
+    assert response.status_code == 422
+    (error,) = response.json()["errors"]
+    assert error["pointer"] == "/zones/1/high"
+    assert "40 below its low" in error["detail"] and "20" not in error["detail"]
+
+
 def test_zones_with_a_riccati_terminal_weight_are_refused_naming_it(client):
     request = copy.deepcopy(SUMP)
     request["weights"]["terminal"] = "riccati"

@@ -209,7 +209,7 @@ def test_every_bundled_example_runs_and_every_chart_is_drawn(workbench, server):
             assert set(low["y"]) == {zone["low"]} and set(high["y"]) == {zone["high"]}
             assert "setpoint" not in traces  # a zone output has no setpoint to draw
             cells = page.locator("#performance-zones tbody tr").first.locator("td")
-            assert cells.nth(0).inner_text() == zone["output"]
+            assert cells.nth(0).inner_text() == _tagged(answer, "outputs", zone["output"])
             assert float(cells.nth(3).get_attribute("data-value")) == zone["fraction_inside"]
             assert float(cells.nth(4).get_attribute("data-value")) == zone["largest_excursion"]
             others = {t["name"] for t in drawn_points(page, f"#response-output-{0 if j else 1}")}
@@ -520,8 +520,15 @@ def test_the_figures_of_merit_mark_a_zone_output_and_say_which_step_they_follow(
     rows = table.locator("tbody tr").all()
     for row, figures in zip(rows, answer["performance"]["outputs"], strict=True):
         name = row.locator("td").first.inner_text()
-        assert name == (f"{figures['name']} (zone)" if figures["zone"] else figures["name"])
+        tag = _tagged(answer, "outputs", figures["name"])
+        assert name == (f"{tag} (zone)" if figures["zone"] else tag)
     assert any(f["zone"] for f in answer["performance"]["outputs"])
+
+
+def _tagged(answer: dict[str, Any], kind: str, name: str) -> str:
+    """A tag as the page's tables write it, with the unit the answer's plant block gives it: "name [unit]"."""
+    unit = next(s["unit"] for s in answer["design"]["plant"][kind] if s["name"] == name)
+    return f"{name} [{unit}]" if unit else name
 
 
 def _run_body(page: Any, endpoint: str, body: dict[str, Any]) -> None:
@@ -640,3 +647,381 @@ def test_a_csv_form_problem_is_listed_without_a_note_in_the_unrelated_editor(wor
     assert "no_such_tag" in errors.inner_text()
     assert page.locator(".note").count() == 0
     assert errors.locator("button.pointer").count() == 0
+
+
+def _drum(factor: float = 1.0, *, point: bool = True) -> dict[str, Any]:
+    """An invented plant of our own: a solvent regeneration drum in field units, badly scaled.
+
+    Outputs: outlet temperature (degC, about 182) and drum level (mm, about 1200, integrating);
+    inputs: fuel gas (Nm3/h, about 850), pump speed (rpm, about 1450) and a bypass (%, about 35).
+    The fuel gas acts on the temperature after 24 time units, 12 samples of 2. ``factor``
+    multiplies every gain (a true plant with a gain error).
+    """
+
+    def lag(gain: float, tau: float, dead: float) -> dict[str, Any]:
+        return {"gain": gain * factor, "time_constants": [tau], "dead_time": dead}
+
+    def ramp(gain: float, dead: float) -> dict[str, Any]:
+        return {"gain": gain * factor, "dead_time": dead, "integrating": True}
+
+    model: dict[str, Any] = {
+        "kind": "transfer_matrix",
+        "sample_time": 2.0,
+        "elements": [
+            [lag(0.045, 40.0, 24.0), lag(-0.0021, 30.0, 6.0), lag(-0.35, 20.0, 4.0)],
+            [ramp(-0.0008, 4.0), ramp(0.012, 2.0), ramp(-0.9, 2.0)],
+        ],
+        "inputs": [
+            {"name": "fuel_gas", "unit": "Nm3/h"},
+            {"name": "pump_speed", "unit": "rpm"},
+            {"name": "bypass", "unit": "%"},
+        ],
+        "outputs": [{"name": "outlet_temp", "unit": "degC"}, {"name": "drum_level", "unit": "mm"}],
+    }
+    if point:
+        model["operating_point"] = {"inputs": [850.0, 1450.0, 35.0], "outputs": [182.0, 1200.0]}
+    return model
+
+
+def _drum_run() -> dict[str, Any]:
+    """A /simulate request on the drum: more inputs than outputs with input targets, the level held
+    in a zone, limits in absolute units, and a true plant whose gains are 20 % higher."""
+    return {
+        "model": _drum(),
+        "horizons": {"prediction": 80, "control": 6},
+        "weights": {"output": [1.0, 0.0], "move": [1e-4, 1e-5, 0.01], "input": [1e-5, 1e-6, 0.01]},
+        "zones": [None, {"low": 900.0, "high": 1500.0, "weight": 1.0}],
+        "limits": {
+            "input_min": [600.0, 900.0, 5.0],
+            "input_max": [1100.0, 1800.0, 80.0],
+            "move_max": [20.0, 30.0, 3.0],
+            "output_min": [170.0, None],
+            "output_max": [190.0, None],
+        },
+        "scenario": {
+            "steps": 200,
+            "setpoint_changes": [{"step": 10, "setpoint": [184.0, 1200.0]}],
+            "input_targets": [850.0, 1450.0, 30.0],
+            "input_target_changes": [{"step": 120, "value": [850.0, 1450.0, 28.0]}],
+            "true_plant": _drum(1.2, point=False),
+        },
+    }
+
+
+def test_a_field_layout_is_shown_as_the_service_answers_it_with_units_targets_and_the_true_loop(workbench, server):
+    # Found in an audit of the page on a field layout: the loop on the true plant (the 20 % gain
+    # error) was nowhere on the page, the input targets were not drawn, the ramp-rate table did
+    # not say it is per sample, and the figures of merit gave no units.
+    page = workbench
+    console: list[str] = []
+    outside: list[str] = []
+
+    def on_console(message: Any) -> None:
+        # the browser logs each non-2xx status itself; the page's own errors are what counts
+        if message.type == "error" and "Failed to load resource" not in message.text:
+            console.append(message.text)
+
+    def on_request(sent: Any) -> None:
+        if not sent.url.startswith((server.origin, "data:", "blob:")):
+            outside.append(sent.url)
+
+    page.on("console", on_console)
+    page.on("pageerror", lambda e: console.append(str(e)))
+    page.on("request", on_request)
+    request = _drum_run()
+    answer = server.post("/simulate", request).json()
+    design = answer["design"]
+    _run_body(page, "simulate", request)
+    assert page.get_by_test_id("errors").is_hidden()
+    # the figures are the answer's own numbers
+    assert (
+        float(page.get_by_test_id("spectral-radius").get_attribute("data-value"))
+        == design["closed_loop"]["spectral_radius"]
+    )
+    assert (
+        float(page.get_by_test_id("condition-number").get_attribute("data-value"))
+        == design["hessian"]["condition_number"]
+    )
+    truth = page.get_by_test_id("true-loop")
+    assert float(truth.get_attribute("data-value")) == answer["true_loop"]["spectral_radius"]
+    # the level floats in its zone on the true plant too: a pole on the circle, none outside, as
+    # the API judges it (no true_loop_unstable warning), so the page reads marginal, not unstable
+    assert answer["true_loop"]["stable"] is False
+    assert not any(w["code"] == "true_loop_unstable" for w in answer["warnings"])
+    assert "marginal" in truth.inner_text() and "NOT" not in truth.inner_text()
+    poles = answer["true_loop"]["poles"]
+    drawn = {t["name"]: t for t in drawn_points(page, "#pole-map")}
+    on_truth = drawn[f"pole on the true plant ({len(poles)})"]
+    assert on_truth["x"] == [p["real"] for p in poles] and on_truth["y"] == [p["imag"] for p in poles]
+    shown = page.get_by_test_id("warnings").inner_text()
+    for warning in design["warnings"] + answer["warnings"]:
+        assert warning["code"] in shown
+    for key in ("setpoint", "state", "previous_input", "input_target"):
+        rows = page.locator(f"#gain-{key} tbody tr").all()
+        shown_gain = [[float(c.get_attribute("data-value")) for c in row.locator("td").all()] for row in rows]
+        assert shown_gain == design["gain"][key]
+    # steady-state gain and ramp rate against the textbook: a first-order pair K e^(-θs)/(τs+1) settles
+    # at K; an integrator K/s under zero-order hold rises by K·Ts per sample
+    steady = page.locator("#plant-steady_state_gain")
+    assert float(steady.locator("tbody tr").nth(0).locator("td").nth(0).get_attribute("data-value")) == pytest.approx(
+        0.045, rel=1e-9
+    )
+    assert "integrating pair" in steady.locator("caption").inner_text()
+    ramp = page.locator("#plant-ramp_rate")
+    assert "per sample" in ramp.locator("caption").inner_text()
+    cells = ramp.locator("tbody tr").nth(1).locator("td").all()
+    assert [float(c.get_attribute("data-value")) for c in cells] == pytest.approx(
+        [-0.0008 * 2, 0.012 * 2, -0.9 * 2], rel=1e-9
+    )
+    # trajectories, limits and zone band in absolute units, on axes that name the unit
+    time = answer["time"]
+    temp = {t["name"]: t for t in drawn_points(page, "#response-output-0")}
+    assert temp["outlet_temp"]["x"] == time and temp["outlet_temp"]["y"] == [row[0] for row in answer["outputs"]]
+    assert set(temp["lower limit"]["y"]) == {170.0} and set(temp["upper limit"]["y"]) == {190.0}
+    level = {t["name"]: t for t in drawn_points(page, "#response-output-1")}
+    assert set(level["zone low"]["y"]) == {900.0} and set(level["zone high"]["y"]) == {1500.0}
+    assert "setpoint" not in level
+    axis = page.eval_on_selector("#response-input-1", "gd => gd._fullLayout.yaxis.title.text")
+    assert axis == "pump_speed [rpm]"
+    assert page.eval_on_selector("#response-input-1", "gd => gd._fullLayout.yaxis2.title.text") == "move [rpm]"
+    # the input targets typed in the request, changed at step 120, on the inputs with an input weight
+    bypass = {t["name"]: t for t in drawn_points(page, "#response-input-2")}
+    assert bypass["input target"]["line"]
+    assert bypass["input target"]["y"] == [30.0] * 120 + [28.0] * 80
+    assert bypass["bypass"]["y"] == [row[2] for row in answer["inputs"]]
+    # moves from the operating point's input (850, 1450, 35 as typed), in the input's unit
+    moves = bypass["move"]["y"]
+    assert moves[0] == pytest.approx(answer["inputs"][0][2] - 35.0, abs=1e-12)
+    heads = [h.inner_text() for h in page.locator("#performance-outputs thead th").all()]
+    assert "rise time (time unit)" in heads and "step (sample)" in heads
+    assert page.locator("#performance-outputs tbody tr").first.locator("td").first.inner_text() == "outlet_temp [degC]"
+    # how long each limit was active, as the answer counts it; a move's lower bound is -move_max
+    rows = page.locator("#limit-summary tbody tr").all()
+    assert len(rows) == len(answer["limit_summary"]["signals"])
+    for row, limit in zip(rows, answer["limit_summary"]["signals"], strict=True):
+        cells = row.locator("td").all()
+        assert cells[1].inner_text() == f"{limit['kind']} {limit['side']}"
+        bound = -limit["limit"] if (limit["kind"], limit["side"]) == ("move", "min") else limit["limit"]
+        assert float(cells[2].get_attribute("data-value")) == bound
+        assert int(cells[3].get_attribute("data-value")) == limit["steps_at_limit"]
+    pump = next(
+        r for r in rows if r.locator("td").nth(0).inner_text() == "pump_speed [rpm]" and "move min" in r.inner_text()
+    )
+    assert float(pump.locator("td").nth(2).get_attribute("data-value")) == -30.0  # move_max typed in the request
+    # the unconstrained law's breaches of the limits (limit_check), each at its worst sample
+    check = design["limit_check"]
+    assert check["violated"]
+    shown_check = page.locator("#limit-check-table tbody tr").all()
+    assert len(shown_check) == len(check["violations"])
+    for row, breach in zip(shown_check, check["violations"], strict=True):
+        cells = row.locator("td").all()
+        assert float(cells[3].get_attribute("data-value")) == breach["value"]
+        assert float(cells[4].get_attribute("data-value")) == breach["limit"]
+    page.remove_listener("console", on_console)
+    page.remove_listener("request", on_request)
+    assert console == [] and outside == []
+
+
+@pytest.mark.parametrize(
+    ("status", "headers", "body", "expected"),
+    [
+        (
+            503,
+            {"Content-Type": "application/problem+json", "Retry-After": "7"},
+            '{"title": "Busy", "status": 503, "detail": "All solver processes are busy.", "errors": []}',
+            ["could not answer", "All solver processes are busy.", "Retry after 7 s."],
+        ),
+        (
+            429,
+            {"Content-Type": "text/html", "Retry-After": "30"},
+            "<html>slow down</html>",
+            ["could not answer", "429 Too Many Requests", "Retry after 30 s."],
+        ),
+        (
+            415,
+            {"Content-Type": "application/problem+json"},
+            '{"title": "Unsupported media type", "status": 415, "detail": "The body must be JSON.", "errors": []}',
+            ["Problems with the request", "The body must be JSON."],
+        ),
+        (
+            200,
+            {"Content-Type": "text/html"},
+            "<html>sign in to the proxy</html>",
+            ["200", "not with a JSON answer", "text/html"],
+        ),
+    ],
+)
+def test_a_failure_from_the_service_or_a_proxy_is_shown_in_words(workbench, status, headers, body, expected):
+    # Found in an audit of the page: a 200 whose body was no JSON (a proxy's page) read "answered"
+    # over an empty page, and a 429 or 503 did not say when to retry (Retry-After; RFC 9110 10.2.3).
+    page = workbench
+    page.route("**/design", lambda route: route.fulfill(status=status, headers=headers, body=body))
+    try:
+        _run_body(page, "design", load_example("design_request.json"))
+        page.get_by_test_id("errors").wait_for(state="visible")
+        text = page.get_by_test_id("errors").inner_text()
+        for words in expected:
+            assert words in text
+        assert page.locator("#summary").is_hidden() and page.locator("#downloads").is_hidden()
+        assert page.get_by_test_id("run").is_enabled()
+    finally:
+        page.unroute("**/design")
+
+
+def test_no_chart_offers_to_upload_itself_off_the_plant_network(page, server):
+    # Found in an audit of the page: every chart's toolbar had the charting library's "Share
+    # chart..." button, which uploads the chart (tags and trajectories) to the library's cloud
+    # service; the page must talk to the service alone. Anything else is refused and recorded.
+    outside: list[str] = []
+
+    def only_the_service(route: Any) -> None:
+        if route.request.url.startswith((server.origin, "data:", "blob:")):
+            route.continue_()
+        else:
+            outside.append(route.request.url)
+            route.abort()
+
+    page.context.route("**/*", only_the_service)
+    open_page(page, f"{server.base}/")
+    _run_body(page, "simulate", _drum_run())
+    charts = page.locator(".js-plotly-plot")
+    assert charts.count() >= 6
+    titles = page.eval_on_selector_all(".modebar-btn", "bs => bs.map(b => b.getAttribute('data-title') || '')")
+    assert titles and not [t for t in titles if "share" in t.lower() or "cloud" in t.lower()]
+    assert page.eval_on_selector_all(".js-plotly-plot", "gds => gds.every(gd => gd._context.showSendToCloud === false)")
+    assert outside == []
+
+
+def test_the_model_error_analysis_is_tabled_and_agrees_with_the_run_on_a_true_plant(workbench, server):
+    # Found in an audit of the page: analysis.model_error (the loop on the model with its gains
+    # scaled) was answered but nowhere on the page. Its case at 1.2 is the drum's true plant of
+    # the field-layout run (every gain 20 % higher), so its other poles' radius must be the
+    # modulus of the true loop's largest pole off the circle, computed apart by /simulate.
+    page = workbench
+    request = _drum_run()
+    run = server.post("/simulate", request).json()
+    request.pop("scenario")
+    request["analysis"] = {"model_error": {"gain_factors": [0.8, 1.0, 1.2, 1.5], "extra_dead_time": [0, 2]}}
+    answer = server.post("/design", request).json()
+    _run_body(page, "design", request)
+    rows = page.locator("#model-error-cases tbody tr").all()
+    cases = answer["model_error"]["cases"]
+    assert len(rows) == len(cases)
+    for row, case in zip(rows, cases, strict=True):
+        cells = row.locator("td").all()
+        assert float(cells[0].get_attribute("data-value")) == case["gain_factor"]
+        assert float(cells[2].get_attribute("data-value")) == case["spectral_radius"]
+        assert cells[3].inner_text() == case["verdict"] and cells[6].inner_text() == case["rest_verdict"]
+        assert float(cells[5].get_attribute("data-value")) == case["rest_spectral_radius"]
+    text = page.locator("#model-error-ranges").inner_text()
+    for r in answer["model_error"]["stable_ranges"]:
+        assert f"{r['extra_dead_time']} extra sample(s)" in text
+    at_truth = next(c for c in cases if c["gain_factor"] == 1.2 and c["extra_dead_time"] == 0)
+    off_circle = [abs(complex(p["real"], p["imag"])) for p in run["true_loop"]["poles"]]
+    off_circle = [m for m in off_circle if m < 1 - 1e-6]
+    assert at_truth["rest_spectral_radius"] == pytest.approx(max(off_circle), rel=1e-9)
+
+
+def test_an_earlier_run_answering_after_a_later_one_is_not_shown(workbench, server):
+    # Found in an audit of the page: Ctrl+Enter runs while the Run button is disabled, so two runs
+    # can be in flight; the earlier one's answer, arriving last, replaced the later one's on screen.
+    page = workbench
+    first = _drum_run()
+    first.pop("scenario")
+    second = load_example("design_request.json")
+    expected = server.post("/design", second).json()["closed_loop"]["spectral_radius"]
+    assert expected != server.post("/design", first).json()["closed_loop"]["spectral_radius"]
+    held: list[Any] = []
+
+    def hold_the_first(route: Any) -> None:
+        if held:
+            route.continue_()
+        else:
+            held.append(route)
+
+    page.route("**/design", hold_the_first)
+    try:
+        page.fill("#request-text", json.dumps(first))
+        page.select_option("#endpoint", "design")
+        page.get_by_test_id("run").click()
+        page.wait_for_function("document.getElementById('status').textContent.startsWith('Running')")
+        page.fill("#request-text", json.dumps(second))
+        page.focus("#request-text")
+        page.keyboard.press("Control+Enter")
+        page.wait_for_function("document.getElementById('status').textContent.includes('answered')", timeout=60_000)
+        assert float(page.get_by_test_id("spectral-radius").get_attribute("data-value")) == expected
+        with page.expect_response("**/design", timeout=60_000) as late:
+            held[0].continue_()
+        late.value.finished()  # its body is in; the page reads it in the tasks that follow
+        page.evaluate("() => new Promise(r => setTimeout(() => requestAnimationFrame(() => setTimeout(r, 0)), 0))")
+        assert float(page.get_by_test_id("spectral-radius").get_attribute("data-value")) == expected
+        assert json.loads(download(page, "download-request")) == second
+        assert page.get_by_test_id("run").is_enabled()
+    finally:
+        page.unroute("**/design")
+
+
+def test_a_service_gone_away_is_said_for_the_examples_and_the_downloads(page, server):
+    # Found in an audit of the page: the examples, the series download and the law export had no
+    # handler for a failed fetch: an uncaught error in the console, a page that never became
+    # ready, or a status left at "Running..." for good.
+    errors: list[str] = []
+    page.on("pageerror", lambda e: errors.append(str(e)))
+    page.route("**/workbench/examples", lambda route: route.abort())
+    open_page(page, f"{server.base}/")
+    assert "examples could not be loaded" in page.locator("#status").inner_text()
+    page.unroute("**/workbench/examples")
+    _run_body(page, "simulate", _drum_run())
+    for path, testid in (("**/simulate", "download-series"), ("**/design/export", "download-law-st")):
+        if testid == "download-law-st":
+            design = _drum_run()
+            design.pop("scenario")
+            _run_body(page, "design", design)
+        page.route(path, lambda route: route.abort())
+        try:
+            page.get_by_test_id(testid).click()
+            page.wait_for_function("document.getElementById('status').textContent.includes('could not be reached')")
+            assert page.locator("#summary").is_visible()  # the answer on screen is kept
+        finally:
+            page.unroute(path)
+    assert errors == []
+
+
+def test_a_true_plant_that_breaks_the_loop_reads_not_stable(workbench, server):
+    # The drum with every gain five times the model's: the true loop has a pole outside the unit
+    # circle (the API's true_loop_unstable), and the page must not read it as marginal.
+    page = workbench
+    request = _drum_run()
+    request["scenario"]["true_plant"] = _drum(5.0, point=False)
+    answer = server.post("/simulate", request).json()
+    assert answer["true_loop"]["spectral_radius"] > 1 + 1e-6
+    _run_body(page, "simulate", request)
+    truth = page.get_by_test_id("true-loop")
+    assert float(truth.get_attribute("data-value")) == answer["true_loop"]["spectral_radius"]
+    assert "NOT stable" in truth.inner_text()
+    assert "true_loop_unstable" in page.get_by_test_id("warnings").inner_text()
+
+
+def test_a_measured_disturbance_of_the_run_is_charted_in_its_unit(workbench, server):
+    # Found in an audit of the page: the measured disturbances of a run (the signal Kd acts on)
+    # were not drawn, so an output's upset had no visible cause. The drum with a feed flow of
+    # 40 t/h at the operating point, stepped to 44 t/h at step 60.
+    page = workbench
+    request = _drum_run()
+    feed = [
+        [{"gain": -0.3, "time_constants": [25.0], "dead_time": 8.0}],
+        [{"gain": 2.5, "dead_time": 2.0, "integrating": True}],
+    ]
+    for model in (request["model"], request["scenario"]["true_plant"]):
+        model["disturbance_elements"] = feed
+        model["disturbances"] = [{"name": "feed_flow", "unit": "t/h"}]
+    request["model"]["operating_point"]["disturbances"] = [40.0]
+    request["scenario"]["measured_disturbances"] = [{"step": 60, "value": [44.0]}]
+    answer = server.post("/simulate", request).json()
+    _run_body(page, "simulate", request)
+    traces = {t["name"]: t for t in drawn_points(page, "#response-disturbance-0")}
+    assert traces["feed_flow"]["line"]
+    assert traces["feed_flow"]["y"] == [row[0] for row in answer["measured_disturbances"]]
+    assert traces["feed_flow"]["y"] == [40.0] * 60 + [44.0] * 140  # as typed, absolute
+    title = page.eval_on_selector("#response-disturbance-0", "gd => gd._fullLayout.yaxis.title.text")
+    assert title == "feed_flow [t/h]"
