@@ -14,6 +14,7 @@ from numpy.typing import NDArray
 
 from service.errors import FieldProblem
 from service.pipeline.problems import pointer
+from service.solver.numerics import jacobi_scaled
 
 __all__ = ["check_matrix", "check_weight"]
 
@@ -104,7 +105,13 @@ def check_weight(
     -----
     Symmetry is checked to a relative tolerance of 1e-10 of the largest entry; positive
     semidefiniteness by the smallest eigenvalue (``numpy.linalg.eigvalsh``) not below
-    ``-1e-10`` times the largest modulus (common practice for rounding in given data).
+    ``-1e-10`` times the largest modulus (common practice for rounding in given data), and by
+    the smallest eigenvalue of the matrix with every row and column divided by the square
+    root of its diagonal entry (:func:`service.solver.numerics.jacobi_scaled`; for a
+    covariance the correlation matrix) not below ``-1e-10``.  The second test is free of
+    units: without it a covariance of signals of very different sizes (a variance of 1e-10
+    beside one of 100) passed with a correlation of 5 between two of them, as the first
+    test's tolerance follows the largest entry.
     """
     if len(value) == 0:
         return None, [FieldProblem(pointer(*where), f"{what} is empty; give {size} numbers")]
@@ -129,12 +136,16 @@ def check_weight(
     scale = max(float(np.abs(w).max()), np.finfo(float).tiny)
     if float(np.abs(w - w.T).max()) > 1e-10 * scale:
         return None, [FieldProblem(pointer(*where), f"{what} matrix must be symmetric")]
-    smallest = float(np.linalg.eigvalsh(0.5 * (w + w.T))[0])
-    if smallest < -1e-10 * scale:
+    symmetric = 0.5 * (w + w.T)
+    smallest = float(np.linalg.eigvalsh(symmetric)[0])
+    unit_free = float(np.linalg.eigvalsh(jacobi_scaled(symmetric))[0])
+    if smallest < -1e-10 * scale or unit_free < -1e-10:
         return None, [
             FieldProblem(
                 pointer(*where),
-                f"{what} matrix must be positive semidefinite (smallest eigenvalue {smallest:.3g})",
+                f"{what} matrix must be positive semidefinite (smallest eigenvalue {smallest:.3g}; "
+                f"{unit_free:.3g} with each row and column divided by the square root of its diagonal "
+                f"entry, a figure no change of units moves)",
             )
         ]
     return w, []

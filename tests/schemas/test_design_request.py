@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import copy
 
+import numpy as np
 import pytest
 from pydantic import ValidationError
 
@@ -68,6 +69,23 @@ def test_sizes_signs_and_shapes_are_checked(example, edit, where):
     edit(example)
     pointers = [p for p, _ in problems_of(example)]
     assert where in pointers
+
+
+@pytest.mark.parametrize("scale", [1e-6, 1.0, 1e6])
+def test_an_indefinite_weight_matrix_is_refused_in_any_units(example, scale):
+    # [[1, 2], [2, 1]] has eigenvalues 3 and -1: with the first move in units 1e6 times smaller
+    # (or larger) it reads D W D, still indefinite (Sylvester's law of inertia).  Found in an
+    # audit of the estimator: the smallest eigenvalue was judged against the largest entry
+    # alone, so the badly scaled copies (smallest eigenvalue about -3e-12 beside an entry of
+    # 1e12) passed
+    d = np.diag([scale, 1.0 / scale])
+    example["weights"]["move"] = (d @ np.array([[1.0, 2.0], [2.0, 1.0]]) @ d).tolist()
+    [(where, detail)] = problems_of(example)
+    assert where == "/weights/move" and "positive semidefinite" in detail
+    # and a semidefinite one (correlation exactly 1) passes in the same units
+    example["weights"]["move"] = (d @ np.array([[1.0, 1.0], [1.0, 1.0]]) @ d).tolist()
+    example["weights"]["output"] = [1.0, 1.0]
+    check_design_request(DesignRequest.model_validate(example), Caps())
 
 
 def test_messages_say_what_is_wrong(example):
