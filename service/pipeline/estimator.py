@@ -36,6 +36,7 @@ from service.solver.estimation.estimator import (
 )
 from service.solver.estimation.sizes import NaturalSizes, natural_sizes
 from service.solver.models.scaling import ScaledPlant
+from service.solver.numerics import jacobi_scaled
 
 __all__ = [
     "EstimatorInputs",
@@ -118,6 +119,30 @@ def _disturbance_problems(
     return tuple(given), problems
 
 
+#: Smallest eigenvalue of the measurement-noise covariance with unit diagonal
+#: (:func:`service.solver.numerics.jacobi_scaled`) that counts as positive definite: below it,
+#: some combination of the sensors is noise-free up to the rounding of the given data (the
+#: PSD tolerance of :func:`service.pipeline.arrays.check_weight`, common practice).
+_DEFINITE_TOLERANCE = 1e-10
+
+
+def _positive_definite(w: NDArray[np.float64]) -> bool:
+    """Whether a covariance (variances ``(k,)`` or a matrix ``(k, k)``) is positive definite, free of units.
+
+    A variance must be above 0; a matrix needs every diagonal entry above 0 and the smallest
+    eigenvalue of ``D^-1/2 W D^-1/2`` (``D = diag(W)``: the correlation matrix) above
+    :data:`_DEFINITE_TOLERANCE`, so that a change of units moves no verdict (the raw smallest
+    eigenvalue of a covariance of a signal of size 1e-3 beside one of size 1 is positive by
+    rounding alone when the two are correlated by exactly 1).
+    """
+    if w.ndim == 1:
+        return bool(np.min(w) > 0.0)
+    symmetric = 0.5 * (w + w.T)
+    if not np.all(np.diag(symmetric) > 0.0):
+        return False
+    return bool(float(np.linalg.eigvalsh(jacobi_scaled(symmetric))[0]) > _DEFINITE_TOLERANCE)
+
+
 def check_estimator(request: EstimatorRequest, plant: DiscretePlant) -> tuple[EstimatorInputs, list[FieldProblem]]:
     """Check an estimator request against the plant: kinds, covariance sizes, a positive-definite noise.
 
@@ -183,17 +208,16 @@ def check_estimator(request: EstimatorRequest, plant: DiscretePlant) -> tuple[Es
             continue
         w, found = check_weight(value, ("estimator", name), size=size, what=f"{what} of the {of}")
         problems += found
-        if w is not None and name == "measurement_noise":
-            smallest = float(np.min(w)) if w.ndim == 1 else float(np.linalg.eigvalsh(0.5 * (w + w.T))[0])
-            if not smallest > 0.0:
-                where = ("estimator", name, int(np.argmin(w))) if w.ndim == 1 else ("estimator", name)
-                problems.append(
-                    FieldProblem(
-                        pointer(*where),
-                        "the measurement-noise covariance must be positive definite: a noise-free measurement "
-                        "would ask the filter for an infinite gain. Give every output some noise",
-                    )
+        if w is not None and name == "measurement_noise" and not _positive_definite(w):
+            where = ("estimator", name, int(np.argmin(w))) if w.ndim == 1 else ("estimator", name)
+            problems.append(
+                FieldProblem(
+                    pointer(*where),
+                    "the measurement-noise covariance must be positive definite: a noise-free measurement "
+                    "(or a noise-free combination of measurements, such as two sensors correlated by 1) "
+                    "would ask the filter for an infinite gain. Give every output some noise of its own",
                 )
+            )
         covariances[name] = w
     return EstimatorInputs(kind=est.kind, disturbance=disturbance, disturbances=disturbances, **covariances), problems
 
