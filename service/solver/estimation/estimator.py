@@ -78,7 +78,6 @@ control", AIChE J. 49 (2003) 426-437, doi:10.1002/aic.690490213.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Literal
@@ -624,14 +623,26 @@ def kalman_filter(
             s = 0.5 * (s + s.T)
             gain = scipy.linalg.cho_solve(scipy.linalg.cho_factor(s), c @ p).T
     except (np.linalg.LinAlgError, ValueError) as exc:
-        # said in the trade's words, not the library's ("array must not contain infs or NaNs")
-        why = (
-            "its numbers overflowed double precision: some entries of the model or of the noise "
-            "covariances are too large (or too small) for their units"
-            if isinstance(exc, ValueError)
-            or not math.isfinite(float(np.abs(process_noise).max()) * float(np.abs(measurement_noise).max()))
-            else "the solver found none"
-        )
+        # said in the trade's words, not the library's ("array must not contain infs or NaNs").
+        # LinAlgError is a ValueError: only another ValueError (non-finite numbers) or extreme
+        # covariances mean overflow; a LinAlgError on moderate numbers is a mode without noise.
+        extreme = not isinstance(exc, np.linalg.LinAlgError) or _extreme(process_noise, measurement_noise)
+        unexcited = [] if extreme else _unexcited_modes(a, process_noise)
+        if extreme:
+            why = (
+                "its numbers overflowed double precision: some entries of the model or of the noise "
+                "covariances are too large (or too small) for their units"
+            )
+        elif unexcited:
+            why = (
+                f"the process noise does not reach the mode{'s' if len(unexcited) > 1 else ''} at z = "
+                f"{', '.join(format_complex(z) for z in unexcited)} (on or outside the unit circle): no noise "
+                f"moves {'them' if len(unexcited) > 1 else 'it'}, so the filter has no steady state that "
+                f"tracks {'them' if len(unexcited) > 1 else 'it'} (an integrator or a disturbance state given "
+                f"a variance of 0)"
+            )
+        else:
+            why = "the solver found none"
         raise NumericalError(
             f"The Kalman filter's Riccati equation has no stabilizing solution ({why}). "
             f"Give every mode on the unit circle some process noise, make the "
@@ -644,6 +655,43 @@ def kalman_filter(
             field=_NOISE_FIELD,
         )
     return gain, p, s
+
+
+def _extreme(*covariances: NDArray[np.float64]) -> bool:
+    """Whether a nonzero entry of the covariances lies outside ``[1e-150, 1e150]`` (or is not finite).
+
+    Variances that far from 1 are the squares of numbers beyond ``1e+-75`` in the scaled
+    signals: the Riccati equation then loses itself in overflow or underflow, whatever the
+    model (common practice: keep the squares of the numbers inside double precision).
+    """
+    for w in covariances:
+        values = np.abs(w[w != 0.0])
+        if values.size and not (np.all(np.isfinite(values)) and values.min() >= 1e-150 and values.max() <= 1e150):
+            return True
+    return False
+
+
+def _unexcited_modes(a: NDArray[np.float64], process_noise: NDArray[np.float64]) -> list[complex]:
+    """The modes of ``A`` on or outside the unit circle that the process noise does not move.
+
+    PBH test of stabilizability of ``(A, Qw^1/2)``: rank ``[zI - A, Qw] < na`` at an eigenvalue
+    ``z`` with ``|z| >= 1 - 1e-9`` (``Qw`` and ``Qw^1/2`` have the same range; the rank on the
+    equilibrated matrix, :func:`service.solver.numerics.equilibrated_rank`).  Without these
+    the filter Riccati equation has a stabilizing solution (with ``Rv`` positive definite and
+    the augmented pair detectable; de Souza, Gevers and Goodwin, IEEE TAC 31 (1986) 831-838).
+    One conjugate of each pair is listed.
+    """
+    found: list[complex] = []
+    na = a.shape[0]
+    for z in scipy.linalg.eigvals(a, check_finite=False):
+        if abs(z) < 1.0 - 1e-9 or z.imag < -1e-12:
+            continue
+        if any(abs(z - w) <= 1e-9 * max(1.0, abs(z)) for w in found):
+            continue
+        rank, _ = _rank(pbh_matrix(a, complex(z), inputs=process_noise))
+        if rank < na:
+            found.append(complex(z))
+    return found
 
 
 def _covariance(
