@@ -9,7 +9,15 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg
 
-__all__ = ["incremental_lqr", "incremental_lqr_gain", "incremental_system", "receding_horizon_radius"]
+__all__ = [
+    "current_kalman_gain",
+    "horizon_gain",
+    "incremental_lqr",
+    "incremental_lqr_gain",
+    "incremental_system",
+    "prediction_by_sums",
+    "receding_horizon_radius",
+]
 
 
 def incremental_system(a, b, c):
@@ -87,3 +95,50 @@ def _psd_root(weight):
     """The symmetric square root of a positive-semidefinite weight, by ``numpy.linalg.eigh``."""
     values, vectors = np.linalg.eigh(np.atleast_2d(weight))
     return vectors @ np.diag(np.sqrt(np.clip(values, 0.0, None))) @ vectors.T
+
+
+def current_kalman_gain(a, c, process_noise, measurement_noise):
+    """Steady-state Kalman filter in current-estimator form: ``(L, P)``.
+
+    ``P`` the stabilizing solution of ``P = A P A' - A P C' (C P C' + R)^-1 C P A' + Q`` by
+    ``scipy.linalg.solve_discrete_are(A', C', Q, R)`` (the dual of the control equation), and
+    ``L = P C' (C P C' + R)^-1`` (Kalman 1960; the predictor gain is ``A L``).
+    """
+    p = scipy.linalg.solve_discrete_are(a.T, c.T, process_noise, measurement_noise)
+    s = c @ p @ c.T + measurement_noise
+    return np.linalg.solve(s, c @ p).T, p
+
+
+def prediction_by_sums(a, b, c, prediction, control, b_disturbance=None):
+    """``(Fx, Fu, G, Fd)`` of the incremental predictor, written from the sums of the formulation.
+
+    For ``i = 1..Hp``: ``z(k+i) = C A^i x + S_i u(k-1) + sum_{j<min(i,Hu)} S_{i-j} du(k+j)
+    [+ C sum_{t<i} A^t Bd d]``, with the step-response blocks ``S_i = C sum_{t<i} A^t B``
+    (textbook predictive control, incremental form); matrix powers, no recursion shared with
+    the service.
+    """
+    n, m = b.shape
+    p = c.shape[0]
+    step = [np.zeros((p, m))] + [
+        c @ sum(np.linalg.matrix_power(a, t) @ b for t in range(i)) for i in range(1, prediction + 1)
+    ]
+    fx = np.vstack([c @ np.linalg.matrix_power(a, i) for i in range(1, prediction + 1)])
+    fu = np.vstack(step[1:])
+    g = np.zeros((prediction * p, control * m))
+    for i in range(1, prediction + 1):
+        for j in range(min(i, control)):
+            g[(i - 1) * p : i * p, j * m : (j + 1) * m] = step[i - j]
+    fd = None
+    if b_disturbance is not None:
+        fd = np.vstack(
+            [c @ sum(np.linalg.matrix_power(a, t) @ b_disturbance for t in range(i)) for i in range(1, prediction + 1)]
+        )
+    return fx, fu, g, fd
+
+
+def horizon_gain(g, output_weight, move_weight, prediction, control):
+    """``Kh``: the first ``m`` rows of ``(G'QG + R)^-1 G'Q`` with ``Q = I (x) diag(q)``, ``R = I (x) diag(r)``."""
+    q = np.kron(np.eye(prediction), np.diag(output_weight))
+    r = np.kron(np.eye(control), np.diag(move_weight))
+    m = len(move_weight)
+    return np.linalg.solve(g.T @ q @ g + r, g.T @ q)[:m]
