@@ -341,3 +341,21 @@ def test_measured_disturbance_values_out_of_place_are_422s(client):
     body = copy.deepcopy(request())
     body["scenario"]["true_plant"].pop("b_disturbance")
     assert_field_problem(client.post("/simulate", json=body), 422, "/scenario/true_plant")
+
+
+def test_full_covariances_of_badly_scaled_signals_pass_and_give_the_reference_gain(client):
+    # the impurity (variance 1e-10) correlated by 0.9 with the last steam state (variance 100),
+    # the two sensors by 0.5: covariances in any units, which the unit-free checks must accept
+    process = np.diag(PROCESS)
+    process[0, N - 1] = process[N - 1, 0] = 0.9 * np.sqrt(1e-10 * 1e2)
+    measurement = np.diag(MEASUREMENT)
+    measurement[0, 1] = measurement[1, 0] = 0.5 * np.sqrt(4e-10 * 2.5e-5)
+    body = _with_estimator(process_noise=process.tolist(), measurement_noise=measurement.tolist())
+    r = client.post("/simulate", json=body)
+    assert r.status_code == 200, r.text
+    aa, ca = augmented()
+    qw = np.zeros((N + 2, N + 2))
+    qw[:N, :N], qw[N:, N:] = process, np.diag(DISTURBANCE)
+    gain_l, _ = current_kalman_gain(aa, ca, qw, measurement)  # scipy.linalg.solve_discrete_are
+    scaled, expected = _scaled_gain(np.array(r.json()["estimator"]["gain"]["values"])), _scaled_gain(gain_l)
+    np.testing.assert_allclose(scaled, expected, rtol=0, atol=1e-7 * np.abs(expected).max())
