@@ -322,6 +322,13 @@ def _sensors_correlated_by_one() -> list[list[float]]:
         ),
         # three input disturbances, two measured outputs
         (request(estimator={"kind": "input_disturbance"}), "/estimator/kind", "only 2 measured"),
+        # a kalman estimator's model is its `disturbance` field's (given, or its default 'output')
+        (
+            request(estimator={"kind": "kalman", "disturbance": "input"}),
+            "/estimator/disturbance",
+            "Use disturbance 'per_output'",
+        ),
+        (request(estimator={"kind": "kalman"}), "/estimator/disturbance", "rate of 'drum_level'"),
     ],
 )
 def test_bad_estimator_settings_are_422s_naming_the_field(client, body, where, words):

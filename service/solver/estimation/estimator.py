@@ -134,6 +134,7 @@ DEFAULT_MEASUREMENT_NOISE = 1.0
 DETECTABILITY_TOLERANCE = 1e-9
 
 _KIND_FIELD = ("estimator", "kind")
+_DISTURBANCE_FIELD = ("estimator", "disturbance")
 _DISTURBANCES_FIELD = ("estimator", "disturbances")
 _MODEL_FIELD = ("model",)
 _NOISE_FIELD = ("estimator",)
@@ -483,8 +484,13 @@ def _check_detectable(
     output_labels: Sequence[str],
     input_labels: Sequence[str],
     disturbances: Sequence[str] = (),
+    kalman: bool = False,
 ) -> None:
     """Raise ``NumericalError`` unless the augmented model is detectable (see module notes).
+
+    ``kalman``: the disturbance model was chosen by ``estimator.disturbance`` of a kalman
+    estimator (given or its default 'output'), so a model that fails is that field's, and the
+    advice is its value 'per_output'; otherwise the kind implies the model (``estimator.kind``).
 
     The rank decisions are made on the states balanced by a diagonal similarity (powers of
     two, exact; :func:`service.solver.numerics.balance_states`): detectability does not depend
@@ -510,15 +516,17 @@ def _check_detectable(
     if nd == 0:
         return
     name = "per_output" if disturbance == "per_output" else f"{disturbance}_disturbance"
+    model_field = _DISTURBANCE_FIELD if kalman else _KIND_FIELD
+    use = "disturbance 'per_output'" if kalman else "per_output (the default)"
     # 2. counting: at most one disturbance per measured output.
     if nd > p:
         raise NumericalError(
             f"The {name} model adds {nd} disturbances but the plant has only {p} measured "
             f"output(s): at most one constant disturbance per measured output can be "
             f"estimated, so the augmented model is not detectable (rank [[I - A, -Bd], "
-            f"[C, Cd]] < n + nd; Pannocchia and Rawlings 2003). Use per_output (the default), "
+            f"[C, Cd]] < n + nd; Pannocchia and Rawlings 2003). Use {use}, "
             f"which puts one disturbance on each output.",
-            field=_KIND_FIELD,
+            field=model_field,
         )
     # 3. the rank condition at z = 1.
     matrix = np.block([[np.eye(n) - a, -bd], [c, cd]])
@@ -536,13 +544,13 @@ def _check_detectable(
     direction = _format_vector(hidden, labels) if np.abs(hidden).max() > 1e-9 else "(unnamed)"
     flags = integrating_outputs(a, c)
     integrates = bool(np.any(flags))
-    where = _KIND_FIELD
+    where = model_field
     if disturbance == "output" and integrates:
         levels = ", ".join(repr(o) for o, f in zip(output_labels, flags, strict=True) if f)
         why = (
             f"the plant integrates ({levels} see a pole at z = 1), and a constant bias on an "
             f"integrating output looks exactly like a steady drift of its integrator. Use "
-            f"per_output (the default), which models a bias on the rate of {levels} instead."
+            f"{use}, which models a bias on the rate of {levels} instead."
         )
     elif disturbance == "per_output":
         where = _DISTURBANCES_FIELD
@@ -567,7 +575,7 @@ def _check_detectable(
         why = (
             "a zero of the plant at z = 1 hides that disturbance direction: it causes no "
             "steady-state change in any measured output, so it cannot be told apart from "
-            "a shift of the state. Use per_output (the default), which puts one disturbance on each output."
+            f"a shift of the state. Use {use}, which puts one disturbance on each output."
         )
     raise NumericalError(
         f"The {name} model makes the augmented model undetectable: rank [[I - A, -Bd], "
@@ -777,7 +785,8 @@ def design_estimator(
     service.errors.NumericalError
         Pointer ``/estimator/kind`` when the disturbance model makes the augmented model
         undetectable (more disturbances than measured outputs, or a direction hidden at
-        ``z = 1``); ``/model`` when the plant itself is undetectable; ``/estimator`` when the
+        ``z = 1``; ``/estimator/disturbance`` for a kalman estimator, whose model that field
+        chooses, and ``/estimator/disturbances`` for a per-output choice that fails); ``/model`` when the plant itself is undetectable; ``/estimator`` when the
         Riccati equation has no stabilizing solution.
 
     Examples
@@ -853,7 +862,17 @@ def design_estimator(
         output_labels=outputs,
     )
     nd = bd.shape[1]
-    _check_detectable(a_, c_, bd, cd, disturbance=model, output_labels=outputs, input_labels=inputs, disturbances=kinds)
+    _check_detectable(
+        a_,
+        c_,
+        bd,
+        cd,
+        disturbance=model,
+        output_labels=outputs,
+        input_labels=inputs,
+        disturbances=kinds,
+        kalman=kind == "kalman",
+    )
     # Defaults in the signals' natural sizes (service.solver.estimation.sizes): free of units.
     sizes = natural_sizes(a_, b_, c_, fixed_outputs=fixed_outputs, fixed_inputs=fixed_inputs)
     disturbance_sizes = sizes.inputs if model == "input" else sizes.outputs
