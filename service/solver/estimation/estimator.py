@@ -685,9 +685,10 @@ def _unexcited_modes(a: NDArray[np.float64], process_noise: NDArray[np.float64])
     PBH test of stabilizability of ``(A, Qw^1/2)``: rank ``[zI - A, Qw] < na`` at an eigenvalue
     ``z`` with ``|z| >= 1 - 1e-9`` (``Qw`` and ``Qw^1/2`` have the same range; the rank on the
     equilibrated matrix, :func:`service.solver.numerics.equilibrated_rank`).  Without these
-    the filter Riccati equation has a stabilizing solution (with ``Rv`` positive definite and
-    the augmented pair detectable; de Souza, Gevers and Goodwin, IEEE TAC 31 (1986) 831-838).
-    One conjugate of each pair is listed.
+    the filter Riccati equation has a stabilizing solution, given ``Rv`` positive definite and
+    the augmented pair detectable (the standard existence condition of the discrete Riccati
+    equation, the dual of the control one's; common practice).  One conjugate of each pair is
+    listed.
     """
     found: list[complex] = []
     na = a.shape[0]
