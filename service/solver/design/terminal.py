@@ -163,8 +163,11 @@ def _rank_drop(matrix: NDArray[Any]) -> bool:
     return s.size == 0 or singular_value_rank(s, 1e-9) < s.size
 
 
-def _why_no_stabilizing_solution(a_i: NDArray[np.float64], b_i: NDArray[np.float64], seen: NDArray[np.float64]) -> str:
-    """Name the mode that spoils the Riccati equation (PBH tests on the unit circle and outside)."""
+def _why_no_stabilizing_solution(
+    a_i: NDArray[np.float64], b_i: NDArray[np.float64], seen: NDArray[np.float64]
+) -> tuple[str, str]:
+    """Name the mode that spoils the Riccati equation (PBH tests on the unit circle and outside), and the way out."""
+    inputs = b_i.shape[1]
     for z in scipy.linalg.eigvals(a_i, check_finite=False):
         if abs(z) < 1.0 - 1e-9:
             continue
@@ -172,16 +175,29 @@ def _why_no_stabilizing_solution(a_i: NDArray[np.float64], b_i: NDArray[np.float
         if _rank_drop(pbh_matrix(a_i, z, inputs=b_i)):
             return (
                 f"the mode of [x; u] at {where} cannot be moved by the inputs (the incremental "
-                f"system is not stabilizable)"
+                f"system is not stabilizable)",
+                'Use terminal "none", or check the model: no move reaches that mode',
             )
         if abs(abs(z) - 1.0) <= 1e-9 and _rank_drop(pbh_matrix(a_i, z, outputs=seen)):
+            spare = inputs > int(np.linalg.matrix_rank(seen)) if seen.size else True
             return (
                 f"the mode of [x; u] at {where}, on the unit circle, changes no weighted "
                 f"controlled output (with more manipulated variables than weighted controlled "
                 f"outputs, or a plant zero at z = 1, some input combination leaves every "
-                f"output unchanged at steady state)"
+                f"output unchanged at steady state)",
+                'Use terminal "none"'
+                + (
+                    " (spare inputs are steered by input targets, weights.input, which the Riccati "
+                    "terminal weight does not take)"
+                    if spare
+                    else ""
+                )
+                + ", or weight an output that sees this mode",
             )
-    return "the solver found no stabilizing solution"
+    return (
+        "the solver found no stabilizing solution",
+        'Use terminal "none", weight an output that sees every slow mode, or give every move a positive move weight',
+    )
 
 
 def riccati_terminal_weight(
@@ -259,7 +275,7 @@ def _riccati_solution(
     a_i, b_i, c_i = incremental_system(a, b, c)
     state_weight = c_i.T @ output_weight @ c_i
     seen = weight_root(output_weight) @ c_i
-    failure = ""
+    failure = ""  # our own figures of a solution that is not the stabilizing one (the library's words stay out)
     p = k = None
     try:
         with np.errstate(all="ignore"):
@@ -267,23 +283,22 @@ def _riccati_solution(
         p = 0.5 * (p + p.T)
         lhs = move_weight + b_i.T @ p @ b_i
         k = scipy.linalg.cho_solve(scipy.linalg.cho_factor(0.5 * (lhs + lhs.T), lower=True), b_i.T @ p @ a_i)
-    except (np.linalg.LinAlgError, ValueError) as exc:
-        failure = str(exc)
+    except (np.linalg.LinAlgError, ValueError):
+        p = k = None
     if p is not None and k is not None and np.all(np.isfinite(p)) and np.all(np.isfinite(k)):
         residual = a_i.T @ p @ a_i - a_i.T @ p @ b_i @ k + state_weight - p
         scale = max(1.0, float(np.abs(p).max()), float(np.abs(state_weight).max()))
         radius = float(np.abs(scipy.linalg.eigvals(a_i - b_i @ k, check_finite=False)).max(initial=0.0))
         if radius < 1.0 - _STABILIZING_MARGIN and float(np.abs(residual).max()) <= _RESIDUAL * scale:
             return p, k
-        failure = failure or (
-            f"closed-loop spectral radius {radius:.9f}, relative residual {float(np.abs(residual).max()) / scale:.3g}"
+        failure = (
+            f" (the solver's answer leaves the loop with spectral radius {radius:.9f} and a relative "
+            f"residual of {float(np.abs(residual).max()) / scale:.3g})"
         )
-    reason = _why_no_stabilizing_solution(a_i, b_i, seen)
+    reason, advice = _why_no_stabilizing_solution(a_i, b_i, seen)
     raise NumericalError(
         f"The Riccati terminal weight does not exist: the Riccati equation of the incremental "
-        f"system has no stabilizing solution because {reason} ({failure or 'non-finite result'}). "
-        f'Use terminal "none", weight an output that sees this mode, or give every move a '
-        f"positive move weight.",
+        f"system has no stabilizing solution because {reason}{failure}. {advice}.",
         field=TERMINAL_FIELD,
     )
 
