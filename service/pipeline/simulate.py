@@ -440,6 +440,15 @@ def _warnings(inputs: SimulationInputs, outcome: SimulationOutcome) -> list[Warn
                 f"figures of merit are null. Check the true plant against the model, or detune the controller.",
             )
         )
+    if not outcome.estimator.full_state and outcome.estimator.disturbance_size == 0:
+        out.append(
+            WarningReport(
+                code="no_disturbance_model",
+                message="The estimator models no disturbance (estimator.disturbance 'none'): the loop is not "
+                "offset-free, so a constant disturbance or a model error leaves a steady offset on the controlled "
+                "outputs (final_offset shows it). Use disturbance 'per_output' for offset-free control.",
+            )
+        )
     plant = inputs.design.plant
     if plant.measured_own and not outcome.estimator.full_state:
         hidden = unmeasured_outputs(plant.c, plant.c_measured)

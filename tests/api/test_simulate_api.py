@@ -165,6 +165,25 @@ def test_full_state_under_mismatch_leaves_the_classic_offset(client):
     assert max(abs(f["final_offset"]) for f in answer["performance"]["outputs"]) > 1e-3  # ... off the setpoint
 
 
+def test_a_filter_without_a_disturbance_model_leaves_an_offset_and_says_so(client):
+    # Offset-free control needs a disturbance model (Muske and Badgwell 2002; Pannocchia and
+    # Rawlings 2003). A Kalman filter with disturbance 'none' under mismatch and step
+    # disturbances settles off the setpoint; the answer had said nothing of it (found in an
+    # audit of the estimator). With per_output the same run is offset-free and not warned.
+    body = plain_request(steps=900, true_plant=MISMATCH, **EVENTS)
+    body["estimator"] = {"kind": "kalman", "disturbance": "none"}
+    answer = post(client, body).json()
+    codes = [w["code"] for w in answer["warnings"]]
+    assert "no_disturbance_model" in codes
+    assert max(abs(f["final_offset"]) for f in answer["performance"]["outputs"]) > 1e-3
+    body["estimator"] = {"kind": "kalman", "disturbance": "per_output"}
+    answer = post(client, body).json()
+    assert "no_disturbance_model" not in [w["code"] for w in answer["warnings"]]
+    assert max(abs(f["final_offset"]) for f in answer["performance"]["outputs"]) < 1e-6
+    body["estimator"] = {"kind": "full_state"}  # the state read as measured: no estimator to warn about
+    assert "no_disturbance_model" not in [w["code"] for w in post(client, body).json()["warnings"]]
+
+
 def test_the_kalman_gain_is_the_riccati_one_for_the_posted_covariances(client):
     # Reference: scipy.linalg.solve_discrete_are on the dual pair (A', C'), L = P C' S^-1,
     # S = C P C' + R (steady-state Kalman filter, current-estimator form; Kalman 1960).
