@@ -16,6 +16,40 @@ function url(path) {
   return new URL(path, document.baseURI).toString();
 }
 
+// The service answers every call within its compute limit (a 503 past it); the page waits that
+// long and a margin more (the server's figure, in seconds), then gives up and says so.
+const answerWait = Number(document.querySelector('meta[name="movecast-answer-wait"]')?.content) || 35;
+
+function deadlineError() {
+  const error = new Error(`no answer came within ${answerWait} s, the longest the service takes to answer or refuse; `
+    + "a proxy or the network in between holds the call. Try again later");
+  error.deadline = true;
+  return error;
+}
+
+/** What `pending` gives; past the page's deadline (fetch's TimeoutError) the error says so in words. */
+async function withDeadline(pending) {
+  try {
+    return await pending;
+  } catch (error) {
+    throw error?.name === "TimeoutError" || error?.name === "AbortError" ? deadlineError() : error;
+  }
+}
+
+/** fetch with the page's deadline over the whole exchange, the answer's body included. */
+const send = (path, options = {}) => withDeadline(fetch(url(path), { ...options, signal: AbortSignal.timeout(answerWait * 1000) }));
+/** The answer's JSON, or its text; a body that is no JSON or is cut by the deadline is an error. */
+const jsonOf = (response) => withDeadline(response.json());
+const textOf = (response) => withDeadline(response.text());
+
+/** The answer's JSON, or null when its body is no JSON; a body cut by the deadline is an error. */
+function jsonOrNull(response) {
+  return jsonOf(response).catch((error) => {
+    if (error.deadline) throw error;
+    return null;
+  });
+}
+
 function setStatus(text) {
   $("status").textContent = text;
 }
@@ -43,8 +77,8 @@ function guessEndpoint(body) {
 }
 
 async function loadExamples() {
-  const response = await fetch(url("workbench/examples"));
-  state.examples = (await response.json()).filter((e) => [...$("endpoint").options].some((o) => o.value === e.endpoint));
+  const response = await send("workbench/examples");
+  state.examples = (await jsonOf(response)).filter((e) => [...$("endpoint").options].some((o) => o.value === e.endpoint));
   const select = $("example");
   select.replaceChildren();
   for (const e of state.examples) {
@@ -64,9 +98,9 @@ async function openExample(name) {
   const entry = state.examples.find((e) => e.name === name);
   let body;
   try {
-    const response = await fetch(url(`workbench/examples/${encodeURIComponent(name)}`));
+    const response = await send(`workbench/examples/${encodeURIComponent(name)}`);
     if (!response.ok) throw new Error(`the service answered ${statusWords(response)}`);
-    body = await response.json();
+    body = await jsonOf(response);
   } catch (error) {
     setStatus(`The bundled example ${name} could not be opened (${error.message}); the editor is unchanged.`);
     return;
@@ -131,8 +165,8 @@ async function identifyCsv() {
   const started = performance.now();
   const mine = ++state.seq;
   try {
-    const response = await fetch(url(`identify?${query}`), { method: "POST", headers: h, body: state.csv });
-    const answer = await response.json().catch(() => null);
+    const response = await send(`identify?${query}`, { method: "POST", headers: h, body: state.csv });
+    const answer = await jsonOrNull(response);
     if (mine !== state.seq) return;  // a later call is running or answered: this answer is not the one to show
     if (!response.ok) {
       handleFailure(response, answer, "identify", { inEditor: false });
@@ -237,8 +271,8 @@ async function run() {
   const started = performance.now();
   // Ctrl+Enter runs while an earlier run is in flight: the later run wins, whichever answers first
   try {
-    const response = await fetch(url(endpoint), { method: "POST", headers: headers(), body: text });
-    const answer = await response.json().catch(() => null);
+    const response = await send(endpoint, { method: "POST", headers: headers(), body: text });
+    const answer = await jsonOrNull(response);
     if (mine !== state.seq) return;
     if (!response.ok) {
       handleFailure(response, answer);
@@ -727,20 +761,21 @@ function unreachable(what, error) {
 /** The run's series as the service writes them (POST /simulate with Accept: text/csv), one format everywhere. */
 async function downloadSeries() {
   setStatus("Running POST /simulate (text/csv)…");
-  let response;
+  let text;
   try {
-    response = await fetch(url("simulate"), {
+    const response = await send("simulate", {
       method: "POST", headers: { ...headers(), Accept: "text/csv, application/problem+json" }, body: JSON.stringify(state.request),
     });
+    if (!response.ok) {
+      handleFailure(response, await jsonOrNull(response), "simulate", { keepAnswer: true });
+      return;
+    }
+    text = await textOf(response);
   } catch (error) {
     unreachable("POST /simulate (text/csv)", error);
     return;
   }
-  if (!response.ok) {
-    handleFailure(response, await response.json().catch(() => null), "simulate", { keepAnswer: true });
-    return;
-  }
-  download("series.csv", "text/csv", await response.text());
+  download("series.csv", "text/csv", text);
   setStatus("POST /simulate (text/csv) answered: series.csv.");
 }
 
@@ -749,18 +784,19 @@ $("download-series").addEventListener("click", downloadSeries);
 async function exportLaw(format, name, type) {
   const body = JSON.stringify({ ...state.request, format });
   setStatus("Running POST /design/export…");
-  let response;
+  let text;
   try {
-    response = await fetch(url("design/export"), { method: "POST", headers: { ...headers(), Accept: `${type}, application/problem+json` }, body });
+    const response = await send("design/export", { method: "POST", headers: { ...headers(), Accept: `${type}, application/problem+json` }, body });
+    if (!response.ok) {
+      handleFailure(response, await jsonOrNull(response), "design/export", { keepAnswer: true });
+      return;
+    }
+    text = await textOf(response);
   } catch (error) {
     unreachable("POST /design/export", error);
     return;
   }
-  if (!response.ok) {
-    handleFailure(response, await response.json().catch(() => null), "design/export", { keepAnswer: true });
-    return;
-  }
-  download(name, type, await response.text());
+  download(name, type, text);
   setStatus(`POST /design/export answered: ${name}.`);
 }
 

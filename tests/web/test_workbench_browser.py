@@ -1025,3 +1025,35 @@ def test_a_measured_disturbance_of_the_run_is_charted_in_its_unit(workbench, ser
     assert traces["feed_flow"]["y"] == [40.0] * 60 + [44.0] * 140  # as typed, absolute
     title = page.eval_on_selector("#response-disturbance-0", "gd => gd._fullLayout.yaxis.title.text")
     assert title == "feed_flow [t/h]"
+
+
+def test_a_call_that_gets_no_answer_is_given_up_and_said(browser, start_server):
+    # Found in a review of the page: its calls had no deadline, so a proxy that held a call left
+    # "Running POST /design..." on screen for ever with Run disabled. The service answers within
+    # its compute limit (a 503 past it); the page waits that long plus a margin, then says so.
+    quick = start_server(request_timeout_seconds=0.5)
+    context = browser.new_context(viewport={"width": 1280, "height": 900})
+    page = context.new_page()
+    try:
+        open_page(page, f"{quick.base}/")
+        assert page.locator('meta[name="movecast-answer-wait"]').get_attribute("content") == "5.5"
+        held: list[Any] = []
+        page.route("**/design", lambda route: held.append(route))  # taken, never answered: a stuck proxy
+        page.fill("#request-text", json.dumps(load_example("design_request.json")))
+        page.select_option("#endpoint", "design")
+        page.get_by_test_id("run").click()
+        page.wait_for_function("document.getElementById('status').textContent.includes('Running')")
+        assert page.get_by_test_id("run").is_disabled()
+        page.wait_for_function(
+            "document.getElementById('status').textContent.includes('no answer came within')", timeout=30_000
+        )
+        assert held, "the call reached the route that holds it"
+        status = page.locator("#status").inner_text()
+        assert "5.5 s" in status and "could not be reached" in status
+        assert page.get_by_test_id("run").is_enabled()
+        # the same page still answers once the call goes through
+        page.unroute("**/design")
+        _run_body(page, "design", load_example("design_request.json"))
+        assert "answered" in page.locator("#status").inner_text()
+    finally:
+        context.close()

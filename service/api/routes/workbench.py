@@ -26,7 +26,7 @@ from service import __version__
 from service.pipeline.examples import list_examples, load_example
 from service.schemas.design import ADVISORY
 
-__all__ = ["ASSETS", "PLOTLY_ASSET", "router"]
+__all__ = ["ANSWER_WAIT_MARGIN_SECONDS", "ASSETS", "PLOTLY_ASSET", "answer_wait_seconds", "router"]
 
 router = APIRouter(include_in_schema=False)
 
@@ -46,6 +46,21 @@ _ENDPOINTS = (
     ("design_request", "design"),
     ("identify_request", "identify"),
 )
+
+#: Seconds the page waits for an answer beyond the service's compute limit (the limit counts the
+#: queue and the computation; the margin is for the bodies' transfer and a proxy's hop).
+ANSWER_WAIT_MARGIN_SECONDS = 5.0
+
+
+def answer_wait_seconds(request_timeout_seconds: float) -> float:
+    """How long the page waits for an answer before it gives up and says so, in seconds.
+
+    The service answers every call within ``request_timeout_seconds`` (a 503 past it), so an
+    answer that has not come after the margin more is not coming: a proxy in front of the
+    service or the network holds it.  Without a deadline the page would say "Running..." for
+    ever and keep its Run button disabled.
+    """
+    return request_timeout_seconds + ANSWER_WAIT_MARGIN_SECONDS
 
 
 @cache
@@ -68,11 +83,13 @@ def _accepts_gzip(request: Request) -> bool:
 @router.get("/")
 def page(request: Request) -> HTMLResponse:
     """The workbench page."""
-    keys = bool(request.app.state.settings.api_key_values())
+    settings = request.app.state.settings
+    keys = bool(settings.api_key_values())
     text = (
         _web_file("index.html")
         .decode("utf-8")
         .replace("{{auth}}", "required" if keys else "none")
+        .replace("{{answer_wait}}", f"{answer_wait_seconds(settings.request_timeout_seconds):g}")
         .replace("{{version}}", html.escape(__version__))
         .replace("{{advisory}}", html.escape(ADVISORY))
     )
