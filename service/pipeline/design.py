@@ -312,18 +312,6 @@ def _checked_input_weight(
     )
     if s_in is not None and not np.any(s_in):
         s_in = None  # all zero: no input targets
-    if s_in is not None and request.weights.terminal == "riccati":
-        problems.append(
-            FieldProblem(
-                pointer("weights", "input"),
-                "input targets together with a Riccati terminal weight are not supported: input targets "
-                "steer the spare input directions (more manipulated variables than controlled outputs), "
-                "where the Riccati equation of the incremental system has no stabilizing solution (a steady "
-                "input combination that no weighted output sees), and the terminal weight would pull the "
-                "inputs towards another steady state than the input targets. Leave out weights.input or use "
-                "terminal 'none'",
-            )
-        )
     return s_in, problems
 
 

@@ -50,7 +50,8 @@ class Weights(RequestModel):
         "first, then puts the inputs nearest their targets, so reachable setpoints are still met "
         "exactly. With more inputs than outputs they fix the otherwise free input direction. The target "
         "values are scenario.input_targets of /simulate (default: the operating point's inputs, or 0 "
-        "without one). Default: none (all zero is none). Not with terminal 'riccati'.",
+        "without one). Default: none (all zero is none). With terminal 'riccati' it is part of the "
+        "terminal weight's stage cost and target as well.",
     )
     terminal: Literal["none", "riccati"] = Field(
         default="none",
@@ -60,6 +61,9 @@ class Weights(RequestModel):
         "the loop is stable. With a later first penalized step the outputs before it carry no cost, so "
         "the gain is not the LQR gain and stability is not guaranteed: read it from closed_loop. The "
         "terminal penalty is on the distance from the steady-state target of the setpoint (and of the "
-        "disturbance estimate and measured disturbances), so /simulate and /design/export run it "
-        "offset-free; not with zones or weights.input.",
+        "disturbance estimate, measured disturbances and input targets), so /simulate and "
+        "/design/export run it offset-free. With weights.input the stage cost of the Riccati equation "
+        "includes |u - u_s|^2_S, which is what lets more inputs than outputs take it: without input "
+        "targets a steady input combination no output sees leaves the equation without a stabilizing "
+        "solution (a 422 names the field that mends it). Not with zones.",
     )

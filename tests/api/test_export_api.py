@@ -82,6 +82,13 @@ def _three_valves_with_targets():
     return body
 
 
+def _three_valves_with_targets_riccati():
+    body = _three_valves_with_targets()
+    body["weights"]["terminal"] = "riccati"
+    body["horizons"] = {"prediction": 10, "control": 10, "first_penalized": 1}
+    return body
+
+
 def _vessel_riccati():
     body = _vessel()
     body["weights"]["terminal"] = "riccati"
@@ -103,6 +110,7 @@ CASES = {
     "transfer matrix: dead times, integrating level, measured flow, spans": _transfer_matrix,
     "three valves for two outputs": _three_valves,
     "three valves with input targets": _three_valves_with_targets,
+    "three valves with input targets and the Riccati terminal weight": _three_valves_with_targets_riccati,
 }
 
 
@@ -431,6 +439,7 @@ OP_CASES = {
     "transfer matrix with a measured disturbance": _transfer_matrix,
     "transfer matrix with the Riccati terminal weight": _transfer_matrix_riccati,
     "three valves with input targets": _three_valves_with_targets,
+    "three valves with input targets and the Riccati terminal weight": _three_valves_with_targets_riccati,
 }
 
 

@@ -138,9 +138,6 @@ def test_bad_input_weights_and_targets_are_422_naming_the_field(client):
         found = _problems(client.post("/design", json=request))
         assert where in found, found
     request = copy.deepcopy(COLUMN)
-    request["weights"]["terminal"] = "riccati"
-    assert "Riccati" in _problems(client.post("/design", json=request))["/weights/input"]
-    request = copy.deepcopy(COLUMN)
     request["scenario"] = {
         "steps": 10,
         "input_targets": [1.0, 2.0],

@@ -161,3 +161,72 @@ def test_the_riccati_design_does_not_depend_on_the_inputs_units(client, scale):
     n = a.shape[0]
     np.testing.assert_allclose(np.array(gain["state"]) * scale, lqr[:, :n], rtol=1e-6, atol=1e-9)
     np.testing.assert_allclose(np.array(gain["previous_input"]), lqr[:, n:], rtol=1e-6, atol=1e-9)
+
+
+def _spare_valve_body(*, steps=200, limits=False):
+    """The example plant with a third valve that acts as the first one does on both outputs, at half
+    its strength: u1 - 2 u3 leaves every output unchanged (m > p), steered by input targets."""
+    body = _body(6, steps=steps)
+    body["model"]["b"] = [[*row, 0.5 * row[0]] for row in EXAMPLE["model"]["b"]]
+    body["model"]["inputs"].append({"name": "spare_valve", "unit": "%"})
+    body["weights"]["move"] = [*EXAMPLE["weights"]["move"], 0.2]
+    body["weights"]["input"] = [0.02, 0.03, 0.05]
+    body["scenario"]["input_targets"] = [0.0, 0.0, 0.0]
+    body["scenario"]["input_target_changes"] = [{"step": 80, "value": [0.0, 0.0, 0.6]}]
+    if limits:
+        body["limits"] = {"input_min": [-1e4] * 3, "input_max": [1e4] * 3, "move_max": [1e4] * 3}
+    return body
+
+
+def test_a_spare_valve_with_an_input_target_takes_the_riccati_terminal_weight_and_runs_the_lqr_loop(client):
+    # Found in a review of the layouts with spare inputs: the Riccati terminal weight was refused
+    # whenever a design had more inputs than outputs or input targets. With input targets the
+    # stage cost sees the spare direction, so the stabilizing solution exists. Reference: the
+    # LQR gain of the cost with a cross term from python-control's dlqr (Q_i = C_i'QC_i +
+    # E_u'SE_u, R + S, N = E_u'S), its loop written out here on the target deviation with the
+    # steady state from numpy.linalg.lstsq/solve of the target equations (S-weighted, by hand).
+    control = pytest.importorskip("control")
+    from service.solver.design.terminal import incremental_system
+
+    body = _spare_valve_body()
+    run = _post(client, body)
+    b = np.array(body["model"]["b"], dtype=float)
+    s = np.diag(body["weights"]["input"])
+    r = np.diag(body["weights"]["move"])
+    ai, bi, ci = incremental_system(A, b, C)
+    e_u = np.hstack([np.zeros((3, 4)), np.eye(3)])
+    k, _, _ = control.dlqr(ai, bi, ci.T @ Q @ ci + e_u.T @ s @ e_u, r + s, e_u.T @ s)
+    to_state = np.linalg.solve(np.eye(4) - A, b)
+    g0 = C @ to_state
+    s_inv = np.linalg.inv(s)
+
+    def steady(setpoint, targets):  # min |u - u_t|_S subject to G0 u = r (Lagrange multipliers)
+        u = targets + s_inv @ g0.T @ np.linalg.solve(g0 @ s_inv @ g0.T, setpoint - g0 @ targets)
+        return np.concatenate([to_state @ u, u])
+
+    x, u, inputs = np.zeros(4), np.zeros(3), []
+    for step in range(200):
+        setpoint = SETPOINT if step >= 5 else np.zeros(2)
+        targets = np.array([0.0, 0.0, 0.6]) if step >= 80 else np.zeros(3)
+        u = u - k @ (np.concatenate([x, u]) - steady(setpoint, targets))
+        inputs.append(u)
+        x = A @ x + b @ u
+    np.testing.assert_allclose(np.array(run["inputs"]), np.array(inputs), rtol=0, atol=1e-9)
+    # offset-free, and the spare valve settles where the targets and the setpoint put it
+    np.testing.assert_allclose(run["outputs"][-1], SETPOINT, atol=1e-8)
+    np.testing.assert_allclose(run["inputs"][-1], steady(SETPOINT, np.array([0.0, 0.0, 0.6]))[4:], atol=1e-8)
+    assert run["design"]["closed_loop"]["stable"] and run["design"]["closed_loop"]["marginal_modes"] == []
+    # the move QP under limits that never bind gives the same run (its terminal target takes the
+    # input targets as the fixed law does)
+    limited = _post(client, _spare_valve_body(limits=True))
+    np.testing.assert_allclose(np.array(limited["inputs"]), np.array(run["inputs"]), rtol=0, atol=1e-9)
+
+
+def test_a_spare_valve_without_input_targets_is_refused_the_terminal_weight_naming_the_remedy(client):
+    body = _spare_valve_body()
+    del body["weights"]["input"]
+    del body["scenario"]
+    answer = client.post("/design", json=body)
+    assert answer.status_code == 422, answer.text
+    problems = {e["pointer"]: e["detail"] for e in answer.json()["errors"]}
+    assert "z = 1" in problems["/weights/terminal"] and "weights.input" in problems["/weights/terminal"]

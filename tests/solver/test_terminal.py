@@ -165,3 +165,80 @@ def test_whole_move_sequence_with_the_terminal_term_starts_with_the_gain_move(rn
     extra = d.hessian.solve(terminal_gradient(d.terminal, np.r_[x, u], d.terminal.target @ r))
     first = (rhs_moves + extra)[:2]
     np.testing.assert_allclose(first, d.gain.setpoint @ r - d.gain.state @ x - d.gain.previous_input @ u, atol=1e-10)
+
+
+def _hand_target(a, b, c, r, ut, s):
+    """[x_s; u_s] nearest the input targets in S among the steady states with C x_s = r.
+
+    Textbook equality-constrained least squares (Lagrange multipliers): with the steady-state
+    gain G0 = C (I - A)^-1 B and m > p, u_s = u_t + S^-1 G0' (G0 S^-1 G0')^-1 (r - G0 u_t) and
+    x_s = (I - A)^-1 B u_s.
+    """
+    a, b, c, s = (np.asarray(v, dtype=float) for v in (a, b, c, s))
+    to_state = np.linalg.solve(np.eye(a.shape[0]) - a, b)
+    g0 = c @ to_state
+    s_inv = np.linalg.inv(s)
+    u = ut + s_inv @ g0.T @ np.linalg.solve(g0 @ s_inv @ g0.T, r - g0 @ ut)
+    return np.concatenate([to_state @ u, u])
+
+
+@pytest.mark.parametrize("horizon", [1, 4])
+def test_input_targets_give_a_spare_input_the_riccati_terminal_weight_and_the_lqr_law(horizon):
+    # Two valves on one output (m > p): without input targets u1 - u2 is a steady input
+    # combination no output sees, and no stabilizing Riccati solution exists (test above).
+    # With an input weight S on u - u_s the stage cost |C_i xi|_Q + |du|_R + |E_u xi + du|_S
+    # sees it: a cost with a cross term. With Hu = Hp and Hw = 1 the first move is the LQR move
+    # on xi - xi_s (dynamic programming). Reference: python-control's dlqr(A_i, B_i, Q_i, R + S,
+    # N), Q_i = C_i'QC_i + E_u'SE_u, N = E_u'S (its documented cross-weighted problem); the
+    # steady state by hand (_hand_target). Invented plant.
+    control = pytest.importorskip("control")
+    a = np.array([[0.8, 0.1], [0.0, 0.6]])
+    b = np.array([[1.0, 0.5], [0.2, 1.0]])
+    c = np.array([[1.0, 0.5]])
+    q, r, s = np.diag([2.0]), np.diag([0.3, 0.1]), np.diag([0.05, 0.2])
+    d = design_controller(
+        a,
+        b,
+        c,
+        output_weight=[2.0],
+        move_weight=[0.3, 0.1],
+        input_weight=[0.05, 0.2],
+        prediction=horizon,
+        control=horizon,
+        terminal="riccati",
+    )
+    ai, bi, ci = incremental_system(a, b, c)
+    e_u = np.hstack([np.zeros((2, 2)), np.eye(2)])
+    k, p, _ = control.dlqr(ai, bi, ci.T @ q @ ci + e_u.T @ s @ e_u, r + s, e_u.T @ s)
+    np.testing.assert_allclose(d.terminal.matrix, p, rtol=1e-9, atol=1e-10)
+    np.testing.assert_allclose(np.hstack([d.gain.state, d.gain.previous_input]), k, atol=1e-10)
+    # du = -K (xi - xi_s), xi_s = S_r r + S_t u_t: Kr r + Kt u_t = K xi_s for any r, u_t
+    for setpoint, targets in (([1.0], [0.0, 0.0]), ([0.0], [1.0, 0.0]), ([0.0], [0.0, 1.0]), ([-2.0], [0.5, 3.0])):
+        xi_s = _hand_target(a, b, c, np.array(setpoint), np.array(targets), s)
+        np.testing.assert_allclose(d.gain.setpoint @ setpoint + d.gain.input_target @ targets, k @ xi_s, atol=1e-10)
+    # the LQR loop, stable, and no marginal mode left on the spare direction
+    np.testing.assert_allclose(
+        np.sort_complex(d.loop.poles), np.sort_complex(scipy.linalg.eigvals(ai - bi @ k)), atol=1e-8
+    )
+    assert d.loop.stable and not d.loop.marginal
+
+
+def test_an_input_weight_that_misses_the_spare_direction_still_has_no_terminal_weight():
+    # Two inputs acting alike (u1 - u2 unseen at steady state) and an input weight on u1 + u2
+    # only (S = [[1, 1], [1, 1]]): the stage cost still misses u1 - u2, so the existence
+    # condition of the stabilizing solution fails (standard LQ theory); the refusal says which
+    # field can mend it.
+    with pytest.raises(NumericalError) as info:
+        design_controller(
+            [[0.5]],
+            [[1.0, 1.0]],
+            [[1.0]],
+            output_weight=[1.0],
+            move_weight=[1.0, 1.0],
+            input_weight=[[1.0, 1.0], [1.0, 1.0]],
+            prediction=3,
+            control=3,
+            terminal="riccati",
+        )
+    assert info.value.field == ("weights", "terminal")
+    assert "z = 1" in info.value.detail and "weights.input" in info.value.detail

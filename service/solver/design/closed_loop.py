@@ -176,8 +176,8 @@ def design_warnings(
         terminal weight they bring a finite-horizon law nearer to doing nothing, that is to
         the unstable open loop.
     terminal_possible : bool, optional
-        The design could take the Riccati terminal weight (none yet, no input targets), so the
-        advice for an unstable plant may suggest it.
+        The design could take the Riccati terminal weight (none yet; input targets or no more
+        inputs than outputs), so the advice for an unstable plant may suggest it.
 
     Returns
     -------

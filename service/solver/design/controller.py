@@ -159,7 +159,8 @@ def design_controller(
     input_weight : array_like, shape (m,) or (m, m), optional
         ``S`` on ``u - u_target`` over the control horizon's inputs
         (:mod:`service.solver.design.input_target`).  Default none; an all-zero weight is none.
-        Not with the Riccati terminal weight.
+        With the Riccati terminal weight it is in the terminal's stage cost and target too
+        (:mod:`service.solver.design.terminal`).
     input_span : array_like, shape (m,), optional
         When ``b`` is of span-scaled inputs (``u / span``): the spans, so that the input
         directions of the marginal modes, and the warnings that quote them, are in the inputs'
@@ -200,9 +201,14 @@ def design_controller(
     root = weight_root(q)
     weighted = weighted_moves(pred, root)
     rows = weighted
+    s = None if input_weight is None else weight_matrix(input_weight, m)
+    if s is not None and not np.any(s):
+        s = None  # an all-zero input weight is none
     term = None
     if terminal == "riccati":
-        term = terminal_weight(a_, b_, c_, output_weight=q, move_weight=r, prediction=prediction, control=control)
+        term = terminal_weight(
+            a_, b_, c_, output_weight=q, move_weight=r, prediction=prediction, control=control, input_weight=s
+        )
         if free is not None:
             term = dataclasses.replace(term, moves=select_moves(term.moves, free, inputs=m))
         weighted = weighted.copy()
@@ -210,11 +216,7 @@ def design_controller(
         rows = np.vstack([weighted, term.weighted_moves])
     else:
         assert terminal == "none", f"unknown terminal weight {terminal!r}"
-    s = None if input_weight is None else weight_matrix(input_weight, m)
-    penalty = None
-    if s is not None and np.any(s):
-        assert term is None, "input targets with the Riccati terminal weight are not supported"
-        penalty = input_penalty(s, control=control, free=free)
+    penalty = None if s is None else input_penalty(s, control=control, free=free)
     if term is None and (free is None or free == tuple(range(control))):
         matrix = toeplitz_hessian(pred, weighted, root, r)  # G keeps its block-Toeplitz form
     else:
@@ -265,7 +267,9 @@ def design_controller(
         input_labels=input_labels,
         output_labels=output_labels,
         state_labels=state_labels,
-        terminal_possible=term is None and penalty is None,
+        # more inputs than outputs leave a steady input combination no output sees: without
+        # input targets on it the Riccati equation has no stabilizing solution
+        terminal_possible=term is None and (penalty is not None or m <= p),
         **outside,
     )
     return ControllerDesign(

@@ -125,11 +125,13 @@ def with_input_target(
     Returns
     -------
     PredictiveGain
-        ``Kr + Kt0 U_r``, ``Ku + Kt0``, and ``input_target = Kt0 U_t``; ``Kh`` and ``Kx`` as given.
+        ``Kr + Kt0 U_r``, ``Ku + Kt0``, and ``input_target = Kt0 U_t`` (added to the gain's own,
+        the terminal weight's ``Kt S_t``, when it has one); ``Kh`` and ``Kx`` as given.
     """
+    pull = target_gain @ target_input
     return dataclasses.replace(
         gain,
         previous_input=gain.previous_input + target_gain,
         setpoint=gain.setpoint + target_gain @ setpoint_input,
-        input_target=target_gain @ target_input,
+        input_target=pull if gain.input_target is None else gain.input_target + pull,
     )

@@ -47,6 +47,26 @@ law becomes ::
 so ``Kx = Kh Fx + Kt Phi_x``, ``Ku = Kh Fu + Kt Phi_u`` and ``Kr = Kh (1 (x) I) + Kt S_r``
 (``Phi = [Phi_x, Phi_u]``).  ``Kh`` keeps the last stage's columns at zero.
 
+Input targets.  With an input weight ``S`` on ``u - u_s`` (:mod:`service.solver.design.input_target`,
+spare inputs steered to their targets) the stage cost gains ``|u(k+l) - u_s|^2_S`` with
+``u(k+l) = E_u xi(k+l) + du(k+l)``, ``E_u = [0, I_m]``: in deviations from the target a cost
+with a cross term, ::
+
+    |C_i xi|^2_Q + |du|^2_R + |E_u xi + du|^2_S
+        = xi' (C_i' Q C_i + E_u' S E_u) xi + 2 xi' E_u' S du + du' (R + S) du
+
+whose Riccati equation is the one above with ``Q_i = C_i'QC_i + E_u'SE_u``, ``R + S`` for
+``R`` and the cross weight ``N = E_u' S`` (``scipy.linalg.solve_discrete_are(..., s=N)``), and
+``K = (R + S + B_i' P B_i)^-1 (B_i' P A_i + N')`` (the LQ problem with a cross term in the
+forms of scipy's ``solve_discrete_are`` and python-control's ``dlqr`` documentation).
+A spare input combination that no output sees at steady state is seen by ``S``, so the
+stabilizing solution exists where it did not without input targets.  The horizon's
+input-target term covers ``u(k) .. u(k+Hu-1)``, so with ``Hu = Hp`` (and ``Hw = 1``) horizon
+cost plus ``|xi(k+Hp) - xi_s|^2_P`` is again the infinite-horizon cost, and the first move the
+LQR move on ``xi - xi_s``.  The steady state is the target's with the same ``S``: ``xi_s =
+S_r r + S_t u_t`` (``S_t`` the target's ``input_target_map``), so the law's input-target gain
+gains ``Kt S_t``.
+
 Measured disturbances.  A measured disturbance ``d_m`` held over the horizon enters both sides
 of the terminal deviation: the free terminal prediction gains ``Phi_m d_m`` with ``Phi_m =
 [sum_{l<Hp} A^l Bd; 0]``, and the steady state under it moves by ``S_m d_m`` (the target
@@ -66,6 +86,7 @@ from numpy.typing import NDArray
 
 from service.errors import NumericalError
 from service.solver.design.gain import FactoredHessian, PredictiveGain
+from service.solver.design.marginal import MARGINAL_TOLERANCE
 from service.solver.design.weights import weight_root
 from service.solver.estimation.target import target_problem
 from service.solver.numerics import balance_states, format_complex, pbh_matrix, singular_value_rank
@@ -89,8 +110,13 @@ TerminalKind = Literal["none", "riccati"]
 #: The key of the request field a Riccati failure names.
 TERMINAL_FIELD = ("weights", "terminal")
 #: A closed loop ``A_i - B_i K`` with a pole this close to the unit circle (or outside) is not
-#: the stabilizing solution (common practice for a marginal eigenvalue in double precision).
-_STABILIZING_MARGIN = 1e-8
+#: the stabilizing solution: the service's own rule for a marginal pole.  Where no stabilizing
+#: solution exists the solver can return the limit of near-stabilizing ones, whose loop keeps
+#: the unseen mode at ``1 - O(sqrt(eps))`` (a pair of eigenvalues on the circle of the Riccati
+#: equation's symplectic pencil splits by the square root of the rounding, first-order
+#: perturbation of a Jordan block); 1 - 2e-8 was seen with two inputs alike and an input
+#: weight on their sum only, which 1e-8 had let through.
+_STABILIZING_MARGIN = MARGINAL_TOLERANCE
 #: Largest relative residual of the Riccati equation accepted from the solver: ``scipy`` can
 #: return a matrix that does not solve the equation when the problem has no stabilizing
 #: solution, without raising (common practice: put the answer back into the equation).
@@ -115,6 +141,8 @@ class TerminalWeight:
         ``Gamma``: ``xi(k+Hp)`` from the moves (only the free moves' columns with blocking).
     target : ndarray, shape (n+m, p)
         ``S_r``: the steady state ``xi_s = S_r r`` for a constant setpoint.
+    input_target : ndarray, shape (n+m, m), or None
+        ``S_t``: with input targets ``xi_s = S_r r + S_t u_t``; ``None`` without an input weight.
     """
 
     matrix: NDArray[np.float64]
@@ -123,6 +151,7 @@ class TerminalWeight:
     free_response: NDArray[np.float64]
     moves: NDArray[np.float64]
     target: NDArray[np.float64]
+    input_target: NDArray[np.float64] | None = None
 
     @property
     def weighted_moves(self) -> NDArray[np.float64]:
@@ -164,9 +193,13 @@ def _rank_drop(matrix: NDArray[Any]) -> bool:
 
 
 def _why_no_stabilizing_solution(
-    a_i: NDArray[np.float64], b_i: NDArray[np.float64], seen: NDArray[np.float64]
+    a_i: NDArray[np.float64], b_i: NDArray[np.float64], seen: NDArray[np.float64], *, input_targets: bool = False
 ) -> tuple[str, str]:
-    """Name the mode that spoils the Riccati equation (PBH tests on the unit circle and outside), and the way out."""
+    """Name the mode that spoils the Riccati equation (PBH tests on the unit circle and outside), and the way out.
+
+    ``seen`` stacks the rows of the stage cost that see ``[x; u]``: ``W C_i`` and, with input
+    targets (``input_targets``), ``W_S E_u``.
+    """
     inputs = b_i.shape[1]
     for z in scipy.linalg.eigvals(a_i, check_finite=False):
         if abs(z) < 1.0 - 1e-9:
@@ -182,17 +215,16 @@ def _why_no_stabilizing_solution(
             spare = inputs > int(np.linalg.matrix_rank(seen)) if seen.size else True
             return (
                 f"the mode of [x; u] at {where}, on the unit circle, changes no weighted "
-                f"controlled output (with more manipulated variables than weighted controlled "
+                f"controlled output{' and no weighted input' if input_targets else ''} (with more manipulated variables than weighted controlled "
                 f"outputs, or a plant zero at z = 1, some input combination leaves every "
                 f"output unchanged at steady state)",
-                'Use terminal "none"'
-                + (
-                    " (spare inputs are steered by input targets, weights.input, which the Riccati "
-                    "terminal weight does not take)"
-                    if spare
-                    else ""
-                )
-                + ", or weight an output that sees this mode",
+                (
+                    "Give that input combination an input target (a positive input weight on it, "
+                    'weights.input), weight an output that sees this mode, or use terminal "none"'
+                    if spare and not input_targets
+                    else "Weight an output that sees this mode, give the input combination that leaves every "
+                    'output unchanged a positive input weight (weights.input), or use terminal "none"'
+                ),
             )
     return (
         "the solver found no stabilizing solution",
@@ -206,6 +238,7 @@ def riccati_terminal_weight(
     c: NDArray[np.float64],
     output_weight: NDArray[np.float64],
     move_weight: NDArray[np.float64],
+    input_weight: NDArray[np.float64] | None = None,
 ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """Return the stabilizing Riccati solution ``P`` and the LQR gain ``K`` of the incremental system.
 
@@ -219,13 +252,16 @@ def riccati_terminal_weight(
         ``Q``.
     move_weight : ndarray, shape (m, m)
         ``R``.
+    input_weight : ndarray, shape (m, m), optional
+        ``S`` of the input targets: the stage cost gains ``|E_u xi + du|^2_S`` (module notes).
 
     Returns
     -------
     p : ndarray, shape (n+m, n+m)
         Symmetric stabilizing solution (``scipy.linalg.solve_discrete_are``).
     k : ndarray, shape (m, n+m)
-        ``(R + B_i' P B_i)^-1 B_i' P A_i``, by a Cholesky solve.
+        ``(R + B_i' P B_i)^-1 B_i' P A_i`` (with ``S``: ``(R + S + B_i' P B_i)^-1 (B_i' P A_i +
+        N')``), by a Cholesky solve.
 
     Raises
     ------
@@ -242,11 +278,18 @@ def riccati_terminal_weight(
     # [x; u] = T [xi; v] with T = diag(D, S), P = T^-T P_s T^-1 and K = S K_s T^-1.  In the
     # request's units an input scaled by 1e9 (its move weight by 1e18, the same problem) had
     # made the equation's checks and the PBH verdicts of its failure refuse it.
-    t = _incremental_scales(a, b, c, move_weight)
+    t = _incremental_scales(a, b, c, move_weight if input_weight is None else move_weight + input_weight)
     n = a.shape[0]
     d, s = t[:n], t[n:]
     a_s, b_s, c_s = a / d[:, None] * d[None, :], b * s / d[:, None], c * d[None, :]
-    p_s, k_s = _riccati_solution(a_s, b_s, c_s, output_weight, move_weight * s[:, None] * s[None, :])
+    p_s, k_s = _riccati_solution(
+        a_s,
+        b_s,
+        c_s,
+        output_weight,
+        move_weight * s[:, None] * s[None, :],
+        None if input_weight is None else input_weight * s[:, None] * s[None, :],
+    )
     return p_s / t[:, None] / t[None, :], s[:, None] * k_s / t[None, :]
 
 
@@ -270,23 +313,35 @@ def _riccati_solution(
     c: NDArray[np.float64],
     output_weight: NDArray[np.float64],
     move_weight: NDArray[np.float64],
+    input_weight: NDArray[np.float64] | None = None,
 ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """:func:`riccati_terminal_weight` in the units it is solved in (its checks, its failures)."""
     a_i, b_i, c_i = incremental_system(a, b, c)
+    n, m = b.shape
     state_weight = c_i.T @ output_weight @ c_i
     seen = weight_root(output_weight) @ c_i
+    stage_move = move_weight
+    cross = np.zeros((n + m, m))
+    if input_weight is not None:  # |E_u xi + du|^2_S (module notes)
+        e_u = np.hstack([np.zeros((m, n)), np.eye(m)])
+        state_weight = state_weight + e_u.T @ input_weight @ e_u
+        cross = e_u.T @ input_weight
+        stage_move = move_weight + input_weight
+        seen = np.vstack([seen, weight_root(input_weight) @ e_u])
     failure = ""  # our own figures of a solution that is not the stabilizing one (the library's words stay out)
     p = k = None
     try:
         with np.errstate(all="ignore"):
-            p = scipy.linalg.solve_discrete_are(a_i, b_i, state_weight, move_weight)
+            p = scipy.linalg.solve_discrete_are(
+                a_i, b_i, state_weight, stage_move, s=None if input_weight is None else cross
+            )
         p = 0.5 * (p + p.T)
-        lhs = move_weight + b_i.T @ p @ b_i
-        k = scipy.linalg.cho_solve(scipy.linalg.cho_factor(0.5 * (lhs + lhs.T), lower=True), b_i.T @ p @ a_i)
+        lhs = stage_move + b_i.T @ p @ b_i
+        k = scipy.linalg.cho_solve(scipy.linalg.cho_factor(0.5 * (lhs + lhs.T), lower=True), b_i.T @ p @ a_i + cross.T)
     except (np.linalg.LinAlgError, ValueError):
         p = k = None
     if p is not None and k is not None and np.all(np.isfinite(p)) and np.all(np.isfinite(k)):
-        residual = a_i.T @ p @ a_i - a_i.T @ p @ b_i @ k + state_weight - p
+        residual = a_i.T @ p @ a_i - (a_i.T @ p @ b_i + cross) @ k + state_weight - p
         scale = max(1.0, float(np.abs(p).max()), float(np.abs(state_weight).max()))
         radius = float(np.abs(scipy.linalg.eigvals(a_i - b_i @ k, check_finite=False)).max(initial=0.0))
         if radius < 1.0 - _STABILIZING_MARGIN and float(np.abs(residual).max()) <= _RESIDUAL * scale:
@@ -295,7 +350,7 @@ def _riccati_solution(
             f" (the solver's answer leaves the loop with spectral radius {radius:.9f} and a relative "
             f"residual of {float(np.abs(residual).max()) / scale:.3g})"
         )
-    reason, advice = _why_no_stabilizing_solution(a_i, b_i, seen)
+    reason, advice = _why_no_stabilizing_solution(a_i, b_i, seen, input_targets=input_weight is not None)
     raise NumericalError(
         f"The Riccati terminal weight does not exist: the Riccati equation of the incremental "
         f"system has no stabilizing solution because {reason}{failure}. {advice}.",
@@ -364,6 +419,7 @@ def terminal_weight(
     move_weight: NDArray[np.float64],
     prediction: int,
     control: int,
+    input_weight: NDArray[np.float64] | None = None,
 ) -> TerminalWeight:
     """Return the Riccati terminal weight with its prediction and steady-state target map.
 
@@ -378,6 +434,8 @@ def terminal_weight(
         ``R``.
     prediction, control : int
         ``Hp`` and ``Hu``.
+    input_weight : ndarray, shape (m, m), optional
+        ``S`` of the input targets (module notes): in the stage cost and in the target.
 
     Returns
     -------
@@ -388,14 +446,22 @@ def terminal_weight(
     service.errors.NumericalError
         From :func:`riccati_terminal_weight`.
     """
-    p, k = riccati_terminal_weight(a, b, c, output_weight, move_weight)
+    p, k = riccati_terminal_weight(a, b, c, output_weight, move_weight, input_weight)
     phi, gamma = terminal_prediction(a, b, prediction=prediction, control=control)
-    target = target_problem(a, b, c, output_weight=output_weight).setpoint_map
+    target = target_problem(a, b, c, output_weight=output_weight, input_weight=input_weight)
     # the root in the units P was solved in (W_s' W_s = T P T, W = W_s T^-1): P's entries may
     # span the inputs' units squared, past what one eigendecomposition resolves
-    t = _incremental_scales(a, b, c, move_weight)
+    t = _incremental_scales(a, b, c, move_weight if input_weight is None else move_weight + input_weight)
     root = weight_root(p * t[:, None] * t[None, :]) / t[None, :]
-    return TerminalWeight(matrix=p, root=root, lqr_gain=k, free_response=phi, moves=gamma, target=target)
+    return TerminalWeight(
+        matrix=p,
+        root=root,
+        lqr_gain=k,
+        free_response=phi,
+        moves=gamma,
+        target=target.setpoint_map,
+        input_target=None if input_weight is None else target.input_target_map,
+    )
 
 
 def terminal_first_move_gain(hessian: FactoredHessian, terminal: TerminalWeight, *, inputs: int) -> NDArray[np.float64]:
@@ -467,15 +533,21 @@ def with_terminal_gain(
     Returns
     -------
     PredictiveGain
-        ``Kh`` unchanged; ``Kx + Kt Phi_x``, ``Ku + Kt Phi_u``, ``Kr + Kt S_r``.
+        ``Kh`` unchanged; ``Kx + Kt Phi_x``, ``Ku + Kt Phi_u``, ``Kr + Kt S_r``; with input
+        targets also the input-target gain ``Kt S_t`` (added to any the gain has).
     """
     n = gain.state.shape[1]
     through = terminal_gain @ terminal.free_response
+    input_target = gain.input_target
+    if terminal.input_target is not None:
+        pull = terminal_gain @ terminal.input_target
+        input_target = pull if input_target is None else input_target + pull
     return PredictiveGain(
         horizon=gain.horizon,
         state=gain.state + through[:, :n],
         previous_input=gain.previous_input + through[:, n:],
         setpoint=gain.setpoint + terminal_gain @ terminal.target,
+        input_target=input_target,
     )
 
 

@@ -28,7 +28,8 @@ gains ``(X_m - Phi_m) d_m`` (:func:`service.solver.design.terminal.terminal_dist
 so ``Kd += Kt (Phi_m - X_m)``.  With an input weight (input targets,
 :mod:`service.solver.design.input_target`) ``Ku`` includes ``Kt0``, ``K`` and ``Kr`` the
 target's input maps (``- Kt0 U_d S`` and ``+ Kt0 U_r``), and the input targets ``u_t`` are
-inputs of the law through ``Kt = Kt0 U_t``.  On the law's state ``s = [x(k|k-1); u(k-1)]``
+inputs of the law through ``Kt = Kt0 U_t`` (with the terminal weight also ``+ Kt X_t``, the
+terminal target's input-target map).  On the law's state ``s = [x(k|k-1); u(k-1)]``
 and its inputs ``w = [y; r; dm; u_t]`` (``u_t`` only with an input weight; substitution) ::
 
     u(k)   = Cu s + Du w,        Cu = [-K M, I - Ku],   Du = [-K L, Kr, -Kd, Kt]
@@ -180,6 +181,8 @@ def fixed_law(
     terminal = terminal_term(design, estimator, target, b_disturbance=bd if md else None)
     if terminal is not None:  # Kt X_r: the setpoint's way through the terminal target
         setpoint_gain = setpoint_gain + terminal.gain @ terminal.setpoint_map
+        if terminal.input_target_map is not None:  # Kt X_t: the input targets' way through it
+            target_gain = target_gain + terminal.gain @ terminal.input_target_map
     mt = target_gain.shape[1]
     if md:
         fd = disturbance_free_response(

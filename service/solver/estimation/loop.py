@@ -160,6 +160,8 @@ class TerminalTerm:
     measured_map : ndarray, shape (n+m, md)
         ``X_m``: how they move ``xi_s`` (:func:`service.solver.design.terminal.terminal_disturbance_maps`).
         With measured disturbances ``e_t`` gains ``(X_m - Phi_m) d_m``.
+    input_target_map : ndarray, shape (n+m, m), or None
+        ``X_t``: with input targets ``xi_s`` gains ``X_t u_t`` (``None`` without an input weight).
     """
 
     gain: NDArray[np.float64]
@@ -169,6 +171,7 @@ class TerminalTerm:
     disturbance_map: NDArray[np.float64]
     free_measured: NDArray[np.float64] | None = None
     measured_map: NDArray[np.float64] | None = None
+    input_target_map: NDArray[np.float64] | None = None
 
     @property
     def feedforward_shift(self) -> NDArray[np.float64]:
@@ -241,6 +244,7 @@ def terminal_term(
         disturbance_map=target.disturbance_map,
         free_measured=free_measured,
         measured_map=measured_map,
+        input_target_map=None if design.input_weight is None else target.input_target_map,
     )
 
 

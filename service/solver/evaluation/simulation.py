@@ -42,8 +42,8 @@ is called as before and the input targets play no part.
 
 With the Riccati terminal weight (``weights.terminal = "riccati"``) the cost also holds
 ``|xi(k+Hp) - xi_s(k)|^2_P`` on the last predicted ``xi = [x; u]``, with ``xi_s(k) = [x_s; u_s]``
-the step's steady-state target (the linear maps ``X_r r(k) + X_d d(k|k)``, or the target
-rule's steady state).  Its gradient adds ``Gamma' P e_t`` to ``G'Q E``, with the terminal
+the step's steady-state target (the linear maps ``X_r r(k) + X_d d(k|k)``, plus ``X_t u_t(k)``
+with input targets, or the target rule's steady state).  Its gradient adds ``Gamma' P e_t`` to ``G'Q E``, with the terminal
 error ::
 
     e_t(k) = xi_s(k) - (Phi_a x(k|k) + Phi_u u(k-1))        (n+m,)
@@ -475,6 +475,7 @@ def _fixed_law(
     u_d: NDArray[np.float64] | None = None,
     terminal: TerminalTerm | None = None,
     setpoints: NDArray[np.float64] | None = None,
+    input_targets: NDArray[np.float64] | None = None,
 ) -> _FixedLaw:
     """Fold :class:`UnconstrainedPolicy`'s ``Kh`` (and ``Kt0``, ``Kt``) into the pieces of :class:`_FixedLaw`.
 
@@ -483,7 +484,8 @@ def _fixed_law(
     With the terminal weight it adds ``Kt e_t``, ``e_t = X_r r(k) + X_d d(k|k) - Phi_a x(k|k) -
     Phi_u u(k-1)`` (:class:`service.solver.estimation.loop.TerminalTerm`; ``setpoints`` holds
     ``r(k)``): the reference gains ``Kt X_r r(k)``, the state gain ``Kt Phi_a`` less ``Kt X_d``
-    on the disturbance states, the previous-input gain ``Kt Phi_u``.
+    on the disturbance states, the previous-input gain ``Kt Phi_u``.  With both, ``e_t`` gains
+    ``X_t u_t(k)`` (``input_targets`` holds ``u_t(k)``), so the reference gains ``Kt X_t u_t(k)``.
     """
     p = targets_r.shape[1]
     kz = horizon_gain @ np.tile(np.eye(p), (penalized_steps, 1))  # (m, p)
@@ -504,6 +506,9 @@ def _fixed_law(
         assert setpoints is not None
         kt = terminal.gain
         reference += setpoints @ (kt @ terminal.setpoint_map).T
+        if terminal.input_target_map is not None:
+            assert input_targets is not None
+            reference += input_targets @ (kt @ terminal.input_target_map).T
         if fd is not None:  # - Kt (Phi_m - X_m) d_m(k)
             reference -= d_meas @ terminal.feedforward.T
         state = state + kt @ terminal.free_state
@@ -760,6 +765,7 @@ def simulate_loop(
             u_d=u_d if use_d else None,
             terminal=term,
             setpoints=setpoints,
+            input_targets=u_targets if pulled else None,
         )
         run = _linear_run(
             law,
@@ -809,6 +815,8 @@ def simulate_loop(
                     us = target_inputs_r[k]
                     if term is not None:
                         xs = term.setpoint_map @ setpoints[k]
+                        if term.input_target_map is not None:
+                            xs = xs + term.input_target_map @ u_targets[k]
                     if use_d:
                         d = xf[dsl]
                         zs = zs + z_d @ d
