@@ -178,33 +178,41 @@ def _prepare_process_environment(workers: int) -> None:
         atexit.register(shutil.rmtree, made, True)
 
 
-def _settings_or_message() -> Any:
-    """The settings, or None after printing each bad one by its variable (never its value)."""
+#: Options of ``movecast serve`` that override a setting, checked as that setting.
+SERVE_OPTIONS = ("host", "port", "workers")
+
+
+def _settings_or_message(overrides: dict[str, Any] | None = None) -> Any:
+    """The settings, or None after printing each bad one by its variable (never its value).
+
+    ``overrides`` (the options of ``movecast serve``) take the place of their variables and are
+    checked by the same rules; a bad one is named by its option and its variable.
+    """
     from service.api.settings import Settings
 
+    given = overrides or {}
     try:
-        return Settings()
+        return Settings(**given)
     except ValidationError as exc:
         print("movecast: invalid settings, not starting:", file=sys.stderr)
         for error in exc.errors():
-            name = "MOVECAST_" + "_".join(str(p) for p in error["loc"][:1]).upper()
+            field = "_".join(str(p) for p in error["loc"][:1])
+            name = "MOVECAST_" + field.upper()
+            if field in given:
+                name = f"--{field.replace('_', '-')} ({name})"
             print(f"  {name}: {error['msg']}", file=sys.stderr)
         return None
 
 
 def _serve(args: argparse.Namespace) -> int:
-    _prepare_process_environment(args.workers or _positive_env("MOVECAST_WORKERS", 1))
-    settings = _settings_or_message()
+    overrides = {name: getattr(args, name) for name in SERVE_OPTIONS if getattr(args, name) is not None}
+    _prepare_process_environment(overrides.get("workers") or _positive_env("MOVECAST_WORKERS", 1))
+    settings = _settings_or_message(overrides)
     if settings is None:
         return EXIT_INVALID
     from service.api.serving import run_server
 
-    return run_server(
-        settings,
-        host=args.host or settings.host,
-        port=args.port or settings.port,
-        workers=args.workers or settings.workers,
-    )
+    return run_server(settings, host=settings.host, port=settings.port, workers=settings.workers)
 
 
 def _openapi(args: argparse.Namespace) -> int:

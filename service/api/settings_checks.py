@@ -7,6 +7,7 @@ service at start-up instead of surfacing on the first request.
 
 from __future__ import annotations
 
+import ipaddress
 import json
 import re
 from collections.abc import Iterable
@@ -16,6 +17,7 @@ from typing import Any
 __all__ = [
     "LOG_LEVELS",
     "MIN_KEY_LENGTH",
+    "check_host",
     "check_keys",
     "check_log_level",
     "check_origins",
@@ -30,6 +32,8 @@ LOG_LEVELS = ("critical", "error", "warning", "info", "debug")
 #: randomness, e.g. ``secrets.token_urlsafe(16)`` is 22 characters).
 MIN_KEY_LENGTH = 16
 
+#: A host name label (RFC 1123, section 2.1): letters, digits and hyphens, no hyphen at either end.
+_LABEL = re.compile(r"[A-Za-z0-9]([A-Za-z0-9-]{0,61}[A-Za-z0-9])?")
 _ORIGIN = re.compile(r"https?://[A-Za-z0-9.-]+(:[0-9]{1,5})?")
 
 
@@ -103,4 +107,25 @@ def check_log_level(value: Any) -> Any:
         if level not in LOG_LEVELS:
             raise ValueError(f"{value!r} is not a log level; use one of {', '.join(LOG_LEVELS)}")
         return level
+    return value
+
+
+def check_host(value: str) -> str:
+    """Check the address to listen on is an IP address or a host name (nothing else binds).
+
+    An empty address is refused: uvicorn would listen on every interface with it, which is
+    0.0.0.0 said out loud, never an accident.
+    """
+    if not value.strip():
+        raise ValueError(
+            "empty; give an address to listen on, e.g. 127.0.0.1 (this host only) or 0.0.0.0 (every interface)"
+        )
+    try:
+        ipaddress.ip_address(value)
+    except ValueError:
+        labels = value.removesuffix(".").split(".")
+        if len(value) > 253 or not all(_LABEL.fullmatch(label) for label in labels):
+            raise ValueError(
+                f"{value!r} is neither an IP address nor a host name; e.g. 127.0.0.1, 0.0.0.0, :: or localhost"
+            ) from None
     return value
