@@ -7,10 +7,11 @@ service at start-up instead of surfacing on the first request.
 
 from __future__ import annotations
 
+import difflib
 import ipaddress
 import json
 import re
-from collections.abc import Iterable
+from collections.abc import Iterable, Mapping
 from pathlib import Path
 from typing import Any
 
@@ -23,6 +24,7 @@ __all__ = [
     "check_origins",
     "read_key_file",
     "split_list",
+    "unknown_variables",
 ]
 
 #: Log levels of the standard logging module that the service accepts, lower case.
@@ -129,3 +131,20 @@ def check_host(value: str) -> str:
                 f"{value!r} is neither an IP address nor a host name; e.g. 127.0.0.1, 0.0.0.0, :: or localhost"
             ) from None
     return value
+
+
+def unknown_variables(environ: Mapping[str, str], known: Iterable[str], prefix: str = "MOVECAST_") -> list[str]:
+    """A sentence for each variable of ``prefix`` that is no setting, naming the setting it resembles.
+
+    pydantic-settings reads only the variables of its fields, so a misspelt one is ignored in
+    silence; the service then runs on the default the operator meant to change.
+    """
+    names = sorted(set(known))
+    found = []
+    for name in sorted(environ):
+        if not name.startswith(prefix) or name in names:
+            continue
+        near = difflib.get_close_matches(name, names, n=1, cutoff=0.8)
+        hint = f"; did you mean {near[0]}?" if near else "; see the README for the settings"
+        found.append(f"{name} is not a setting and is ignored{hint}")
+    return found

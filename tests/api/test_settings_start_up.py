@@ -98,3 +98,41 @@ def test_a_time_limit_must_be_a_finite_number(monkeypatch, name, value):
     # "nan" had been refused as "less than or equal to 3600", which sends an operator looking
     # for a number that is too large
     assert "finite number" in caught.value.errors()[0]["msg"]
+
+
+def test_a_misspelt_variable_is_named_at_start_up_with_the_setting_it_resembles(monkeypatch, caplog):
+    import logging
+
+    from fastapi.testclient import TestClient
+
+    from service.api.app import create_app
+
+    # pydantic-settings reads only the variables of its fields: a misspelt one was ignored in
+    # silence, and the service ran on the default the operator meant to change
+    monkeypatch.setenv("MOVECAST_REQUEST_TIMEOUT", "5")
+    monkeypatch.setenv("MOVECAST_MAX_BODY_BYTE", "2048")
+    monkeypatch.setenv("MOVECAST_NOTHING_LIKE_IT", "1")
+    with caplog.at_level(logging.WARNING, logger="movecast"), TestClient(create_app(Settings())):
+        pass
+    messages = [r.getMessage() for r in caplog.records if r.name == "movecast.operations"]
+    assert any(
+        "MOVECAST_REQUEST_TIMEOUT is not a setting" in m and "MOVECAST_REQUEST_TIMEOUT_SECONDS" in m for m in messages
+    )
+    assert any("MOVECAST_MAX_BODY_BYTE is not a setting" in m and "MOVECAST_MAX_BODY_BYTES" in m for m in messages)
+    assert any("MOVECAST_NOTHING_LIKE_IT is not a setting" in m for m in messages)
+    assert not any("MOVECAST_MAX_BODY_BYTES is not" in m for m in messages)
+
+
+def test_known_variables_raise_no_warning(monkeypatch, caplog):
+    import logging
+
+    from fastapi.testclient import TestClient
+
+    from service.api.app import create_app
+
+    monkeypatch.setenv("MOVECAST_MAX_BODY_BYTES", "2048")
+    with caplog.at_level(logging.WARNING, logger="movecast"), TestClient(create_app(Settings())):
+        pass
+    assert not any(
+        "is not a setting" in r.getMessage() and "MOVECAST_MAX_BODY" in r.getMessage() for r in caplog.records
+    )
