@@ -39,6 +39,7 @@ import threading
 import time
 from collections.abc import AsyncIterator, Callable
 from dataclasses import dataclass
+from functools import partial
 from multiprocessing.connection import Connection
 from multiprocessing.process import BaseProcess
 from multiprocessing.reduction import ForkingPickler
@@ -139,8 +140,13 @@ class SolverPool:
         self._started = False
         self._closed = False
         self._context = _context()
+        #: Solver processes this pool holds, idle or busy: one fewer while a replacement fails to start.
+        self._owned = 0
+        self._owned_lock = threading.Lock()
+        self._topping_up = threading.Lock()
 
-    def _spawn(self) -> _Solver:
+    def _spawn(self, *, counted: bool = True) -> _Solver:
+        """Start a solver process; ``counted``: one more held (a replacement takes the place of the one it replaces)."""
         parent, child = self._context.Pipe(duplex=True)
         process = self._context.Process(
             target=serve_calls,
@@ -150,6 +156,9 @@ class SolverPool:
         )
         process.start()
         child.close()
+        if counted:
+            with self._owned_lock:
+                self._owned += 1
         return _Solver(process, parent)
 
     def start(self) -> None:
@@ -166,6 +175,43 @@ class SolverPool:
         if solver.process.is_alive():
             solver.process.kill()
         solver.process.join(timeout=5)
+
+    @property
+    def ready(self) -> bool:
+        """Whether the pool is started, not closed, and holds at least one solver process."""
+        return self._started and not self._closed and self._owned > 0
+
+    @property
+    def short(self) -> bool:
+        """Whether the pool holds fewer solver processes than its number (a replacement failed to start)."""
+        return self._started and not self._closed and self._owned < self.processes
+
+    def top_up(self, *, wait: bool = True) -> None:
+        """Start solver processes until the pool holds its number again.
+
+        A start that fails (no memory, no process left under the pids limit) is logged and
+        tried again on the next call, by a request or by the readiness probe.  One caller at a
+        time does it; the others wait for it, or with ``wait=False`` go on at once.
+        """
+        if not self._topping_up.acquire(blocking=wait):
+            return
+        try:
+            while self.short:
+                try:
+                    solver = self._spawn()
+                except Exception as exc:
+                    log.error("starting a solver process failed: %r", exc)
+                    return
+                self._idle.put(solver)
+        finally:
+            self._topping_up.release()
+
+    def _check_owned(self) -> None:
+        """Raise :class:`ComputeDied` (a 503) when the pool holds no solver process: none would come."""
+        if self.short:
+            self.top_up()
+        if self._owned <= 0:
+            raise ComputeDied("no solver process could be started")
 
     @property
     def _waiting(self) -> int:
@@ -186,15 +232,25 @@ class SolverPool:
         Raises :class:`HeavyLaneFull` when ``max_waiting`` calls already wait for this pool.
         """
         while True:
+            self._check_owned()
             solver = self._idle.take(deadline, seconds, cancel)
             if self._usable(solver):
                 return solver
             self._replace(solver)
 
     def _replace(self, solver: _Solver) -> None:
+        """Retire ``solver`` and start another; one that fails to start leaves the pool short (logged)."""
         self._retire(solver)
-        if not self._closed:
-            self._idle.put(self._spawn())
+        if self._closed:
+            return
+        try:
+            fresh = self._spawn(counted=False)
+        except Exception as exc:
+            with self._owned_lock:
+                self._owned -= 1
+            log.error("starting a solver process failed: %r", exc)
+            return
+        self._idle.put(fresh)
 
     def _replace_later(self, loop: asyncio.AbstractEventLoop, solver: _Solver) -> None:
         """:meth:`_replace` in a worker thread (it kills, waits and starts a process), not on the loop."""
@@ -324,6 +380,8 @@ class SolverPool:
     ) -> _Solver:
         """:meth:`_take` on the loop: a dead solver found idle is replaced in a worker thread."""
         while True:
+            if self.short:
+                await loop.run_in_executor(None, self._check_owned)
             solver = await self._idle.atake(deadline, seconds, cancel, gone)
             if self._usable(solver):
                 return solver
@@ -464,6 +522,18 @@ class Lanes:
         """Start both pools' processes now (idempotent)."""
         self.light.start()
         self.heavy.start()
+
+    def ready(self, loop: asyncio.AbstractEventLoop | None = None) -> bool:
+        """Whether both lanes hold a solver process; with ``loop``, a short lane is topped up in a worker thread.
+
+        The readiness probe calls it: a pod whose lane lost its processes leaves the Service's
+        endpoints instead of answering every request of that lane with a time limit, and the
+        probe's next calls start the missing processes, so it comes back by itself.
+        """
+        for pool in (self.light, self.heavy):
+            if loop is not None and pool.short:
+                loop.run_in_executor(None, partial(pool.top_up, wait=False)).add_done_callback(_log_failure)
+        return self.light.ready and self.heavy.ready
 
 
 def solver_lanes(settings: Any) -> Lanes:
