@@ -15,7 +15,7 @@ schemas, so replacing one takes milliseconds, not the second a fresh interpreter
 Two lanes.  Before a request runs, its work is estimated from its sizes
 (:func:`service.pipeline.caps.request_work`).  Work above ``MOVECAST_HEAVY_WORK`` goes to
 the heavy lane (``MOVECAST_HEAVY_SOLVER_PROCESSES``, one by default), everything else to
-the light lane (``MOVECAST_SOLVER_PROCESSES``, one per core by default).  A small request
+the light lane (``MOVECAST_SOLVER_PROCESSES``, one per CPU it may use by default).  A small request
 therefore never queues behind a large one.  The heavy lane's processes also run at a higher
 niceness (``MOVECAST_HEAVY_NICENESS``, 10 by default), so that the operating system gives
 the light lane's processes the CPU first while the heavy lane is busy.  At most
@@ -32,6 +32,7 @@ from __future__ import annotations
 import asyncio
 import atexit
 import logging
+import math
 import multiprocessing
 import os
 import queue
@@ -43,6 +44,7 @@ from functools import partial
 from multiprocessing.connection import Connection
 from multiprocessing.process import BaseProcess
 from multiprocessing.reduction import ForkingPickler
+from pathlib import Path
 from typing import Annotated, Any, TypeVar
 
 import anyio
@@ -70,6 +72,7 @@ __all__ = [
     "Lanes",
     "SolverPool",
     "TimeLimitExceeded",
+    "cgroup_cpu_limit",
     "default_solver_processes",
     "get_budget",
     "solver_lanes",
@@ -89,12 +92,73 @@ log = logging.getLogger("movecast.compute")
 solver_log = logging.getLogger("movecast.solver")
 
 
-def default_solver_processes() -> int:
-    """One light-lane solver process per core this process may run on."""
+def _quota(text: str) -> float | None:
+    """CPUs of a ``cpu.max`` line ("$MAX $PERIOD", or a v1 "quota period" pair); None for none or nonsense."""
+    parts = text.split()
+    if len(parts) != 2 or parts[0] == "max":
+        return None
     try:
-        return max(1, len(os.sched_getaffinity(0)))
+        quota, period = int(parts[0]), int(parts[1])
+    except ValueError:
+        return None
+    return quota / period if quota > 0 and period > 0 else None
+
+
+def cgroup_cpu_limit(root: Path = Path("/sys/fs/cgroup"), own: Path = Path("/proc/self/cgroup")) -> float | None:
+    """CPUs this process's control group may use by its CFS quota, or None when it has none (or it is unknown).
+
+    cgroup v2: the smallest ``cpu.max`` from the process's group up to the root (a parent's
+    limit holds for its children).  cgroup v1: ``cpu.cfs_quota_us`` over ``cpu.cfs_period_us``
+    of the cpu controller, at the process's group or, inside a container, at the mount's root.
+    Kernel documentation, ``admin-guide/cgroup-v2`` ("cpu.max") and ``scheduler/sched-bwc``.
+    """
+    try:
+        lines = own.read_text(encoding="utf-8").splitlines()
+    except OSError:
+        return None
+    limits: list[float] = []
+    for line in lines:
+        number, _, rest = line.partition(":")
+        controllers, _, path = rest.partition(":")
+        relative = path.strip().lstrip("/")
+        if number == "0" and controllers == "":
+            folder = root / relative
+            while True:
+                try:
+                    found = _quota((folder / "cpu.max").read_text(encoding="utf-8"))
+                except (OSError, UnicodeDecodeError):
+                    found = None
+                if found is not None:
+                    limits.append(found)
+                if folder == root or root not in folder.parents:
+                    break
+                folder = folder.parent
+        elif "cpu" in controllers.split(","):
+            for folder in (root / controllers / relative, root / controllers, root / "cpu" / relative, root / "cpu"):
+                try:
+                    quota = (folder / "cpu.cfs_quota_us").read_text(encoding="utf-8").strip()
+                    period = (folder / "cpu.cfs_period_us").read_text(encoding="utf-8").strip()
+                except (OSError, UnicodeDecodeError):
+                    continue
+                found = _quota(f"{quota} {period}")
+                if found is not None:
+                    limits.append(found)
+                break
+    return min(limits) if limits else None
+
+
+def default_solver_processes() -> int:
+    """One light-lane solver process per CPU this process may use: its cores, and its CPU quota rounded up.
+
+    A container limited by a quota (``--cpus``, a Kubernetes CPU limit) still has every core of
+    its host in its affinity mask; without the quota a large host would get a process per core.
+    """
+    try:
+        cores = max(1, len(os.sched_getaffinity(0)))
     except AttributeError:  # not on Linux
-        return max(1, os.cpu_count() or 1)
+        cores = max(1, os.cpu_count() or 1)
+    limit = cgroup_cpu_limit()
+    return cores if limit is None else max(1, min(cores, math.ceil(limit)))
 
 
 def _context() -> Any:

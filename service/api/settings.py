@@ -156,7 +156,7 @@ class Settings(BaseSettings):
         ge=1,
         le=64,
         description="Light-lane solver processes per worker (each runs one computation at a time); "
-        "default one per core.",
+        "default one per CPU it may use (its cores, within a container's CPU quota).",
     )
     heavy_solver_processes: int = Field(
         default=1, ge=1, le=64, description="Heavy-lane solver processes per worker (lower CPU priority)."

@@ -153,8 +153,7 @@ def test_the_compose_memory_limit_holds_every_process_at_its_caps():
 
     Each worker has its own serving process, fork server and both lanes, so everything (its
     footprint included, as measured for one) counts once per worker.  The light lane must be
-    sized in the file: by default it has a process per core the container can see, which on a
-    large host is every core of the host, whatever ``cpus`` says.
+    sized in the file, so that the sum does not hang on its default (a process per CPU).
     """
     compose = yaml.safe_load((ROOT / "deploy" / "compose.yaml").read_text())
     (service,) = compose["services"].values()
