@@ -43,7 +43,7 @@ from service.api.middleware import (
 )
 from service.api.problems import PROBLEM_JSON
 from service.api.security import OPEN_PATHS, ApiKeyMiddleware, KeyRing
-from service.api.serving import return_large_blocks
+from service.api.serving import return_large_blocks, stop_with_the_supervisor
 from service.api.settings import Settings
 from service.api.settings_checks import unknown_variables
 from service.schemas.batch import ProblemReport
@@ -164,6 +164,7 @@ def _wrap_lifespan(app: FastAPI, settings: Settings) -> None:
         for sentence in unknown_variables(os.environ, _variable_names()):
             log.warning(sentence)
         return_large_blocks()  # this serving process only (the solvers keep glibc's default)
+        stop_with_the_supervisor()  # a worker of several stops when its supervisor dies
         solver_lanes(settings).start()
         async with inner(app_) as state:
             undo = _sigterm_hook(app_)
