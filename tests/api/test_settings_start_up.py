@@ -24,7 +24,7 @@ def serve(monkeypatch):
         return 0
 
     monkeypatch.setattr("service.api.serving.run_server", fake_run_server)
-    monkeypatch.setattr(cli, "_prepare_process_environment", lambda workers: None)
+    monkeypatch.setattr(cli, "_prepare_process_environment", lambda workers: None)  # no trouble
     for name in ("MOVECAST_HOST", "MOVECAST_PORT", "MOVECAST_WORKERS"):
         monkeypatch.delenv(name, raising=False)
 
@@ -136,3 +136,21 @@ def test_known_variables_raise_no_warning(monkeypatch, caplog):
     assert not any(
         "is not a setting" in r.getMessage() and "MOVECAST_MAX_BODY" in r.getMessage() for r in caplog.records
     )
+
+
+@pytest.mark.parametrize("kind", ["missing", "file"])
+def test_a_metrics_folder_that_is_no_writable_folder_stops_start_up(monkeypatch, tmp_path, capsys, kind):
+    # prometheus-client writes every sample there: a missing folder had ended in a traceback
+    # from its mmap file on the first metric (FileNotFoundError), after start-up had gone on
+    started: list[int] = []
+    monkeypatch.setattr("service.api.serving.run_server", lambda *a, **k: started.append(1) or 0)
+    environment = {k: v for k, v in __import__("os").environ.items() if not k.startswith("MOVECAST_")}
+    monkeypatch.setattr(cli.os, "environ", environment)
+    folder = tmp_path / "metrics"
+    if kind == "file":
+        folder.write_text("not a folder")
+    environment["PROMETHEUS_MULTIPROC_DIR"] = str(folder)
+    assert cli.main(["serve"]) == 2
+    assert not started
+    err = capsys.readouterr().err
+    assert "  PROMETHEUS_MULTIPROC_DIR: " in err and "writable folder" in err
