@@ -422,3 +422,15 @@ def test_the_image_command_names_a_bad_variable(name, value, tmp_path):
     done = subprocess.run(argv, env=env, capture_output=True, text=True, timeout=120, check=False)
     assert done.returncode == 2, done.stderr
     assert f"  {name}: " in done.stderr, done.stderr
+
+
+def test_every_setting_is_in_the_readme_and_every_documented_variable_is_a_setting() -> None:
+    """Both ways: an operator finds every setting in the README, and each MOVECAST_ name written in
+    the README, DEVELOPERS.md or deploy/ is one the service reads (MOVECAST_CHROMIUM is the
+    browser tests' own, not the service's)."""
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    assert not {name for name in SETTINGS_NAMES if f"`{name}`" not in readme}
+    documents = [ROOT / "README.md", ROOT / "DEVELOPERS.md", *DEPLOY.rglob("*.yaml"), DOCKERFILE]
+    for path in documents:
+        named = set(re.findall(r"MOVECAST_[A-Z0-9_]*[A-Z0-9]", path.read_text(encoding="utf-8")))
+        assert named - SETTINGS_NAMES - {"MOVECAST_CHROMIUM"} == set(), path.name
