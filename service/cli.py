@@ -154,7 +154,7 @@ def _positive_env(name: str, default: int) -> int:
         return default  # the settings check reports it
 
 
-def _prepare_process_environment(workers: int) -> None:
+def _prepare_process_environment(workers: int) -> str | None:
     """Set what numpy and prometheus-client read once, at import: before importing them.
 
     BLAS/OpenMP threads: one, unless the variables are already set.  The service scales by
@@ -165,10 +165,15 @@ def _prepare_process_environment(workers: int) -> None:
     one thread.
     With several workers, a fresh prometheus-client multiprocess folder (or the given one,
     emptied of old samples) so that /metrics adds up every worker.
+
+    Returns a line for the operator when the given folder is no writable folder (nothing set then).
     """
+    folder = os.environ.get("PROMETHEUS_MULTIPROC_DIR")
+    if folder and not (Path(folder).is_dir() and os.access(folder, os.W_OK | os.X_OK)):
+        # prometheus-client writes every sample there: it would fail on the first metric
+        return "  PROMETHEUS_MULTIPROC_DIR: not a writable folder; create it (empty) or unset the variable"
     for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
         os.environ.setdefault(name, "1")
-    folder = os.environ.get("PROMETHEUS_MULTIPROC_DIR")
     if folder:
         for old in Path(folder).glob("*.db"):
             old.unlink()
@@ -176,35 +181,48 @@ def _prepare_process_environment(workers: int) -> None:
         made = tempfile.mkdtemp(prefix="movecast-metrics-")
         os.environ["PROMETHEUS_MULTIPROC_DIR"] = made
         atexit.register(shutil.rmtree, made, True)
+    return None
 
 
-def _settings_or_message() -> Any:
-    """The settings, or None after printing each bad one by its variable (never its value)."""
+#: Options of ``movecast serve`` that override a setting, checked as that setting.
+SERVE_OPTIONS = ("host", "port", "workers")
+
+
+def _settings_or_message(overrides: dict[str, Any] | None = None) -> Any:
+    """The settings, or None after printing each bad one by its variable (never its value).
+
+    ``overrides`` (the options of ``movecast serve``) take the place of their variables and are
+    checked by the same rules; a bad one is named by its option and its variable.
+    """
     from service.api.settings import Settings
 
+    given = overrides or {}
     try:
-        return Settings()
+        return Settings(**given)
     except ValidationError as exc:
         print("movecast: invalid settings, not starting:", file=sys.stderr)
         for error in exc.errors():
-            name = "MOVECAST_" + "_".join(str(p) for p in error["loc"][:1]).upper()
+            field = "_".join(str(p) for p in error["loc"][:1])
+            name = "MOVECAST_" + field.upper()
+            if field in given:
+                name = f"--{field.replace('_', '-')} ({name})"
             print(f"  {name}: {error['msg']}", file=sys.stderr)
         return None
 
 
 def _serve(args: argparse.Namespace) -> int:
-    _prepare_process_environment(args.workers or _positive_env("MOVECAST_WORKERS", 1))
-    settings = _settings_or_message()
+    overrides = {name: getattr(args, name) for name in SERVE_OPTIONS if getattr(args, name) is not None}
+    trouble = _prepare_process_environment(overrides.get("workers") or _positive_env("MOVECAST_WORKERS", 1))
+    if trouble is not None:
+        print("movecast: invalid settings, not starting:", file=sys.stderr)
+        print(trouble, file=sys.stderr)
+        return EXIT_INVALID
+    settings = _settings_or_message(overrides)
     if settings is None:
         return EXIT_INVALID
     from service.api.serving import run_server
 
-    return run_server(
-        settings,
-        host=args.host or settings.host,
-        port=args.port or settings.port,
-        workers=args.workers or settings.workers,
-    )
+    return run_server(settings, host=settings.host, port=settings.port, workers=settings.workers)
 
 
 def _openapi(args: argparse.Namespace) -> int:

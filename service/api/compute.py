@@ -15,7 +15,7 @@ schemas, so replacing one takes milliseconds, not the second a fresh interpreter
 Two lanes.  Before a request runs, its work is estimated from its sizes
 (:func:`service.pipeline.caps.request_work`).  Work above ``MOVECAST_HEAVY_WORK`` goes to
 the heavy lane (``MOVECAST_HEAVY_SOLVER_PROCESSES``, one by default), everything else to
-the light lane (``MOVECAST_SOLVER_PROCESSES``, one per core by default).  A small request
+the light lane (``MOVECAST_SOLVER_PROCESSES``, one per CPU it may use by default).  A small request
 therefore never queues behind a large one.  The heavy lane's processes also run at a higher
 niceness (``MOVECAST_HEAVY_NICENESS``, 10 by default), so that the operating system gives
 the light lane's processes the CPU first while the heavy lane is busy.  At most
@@ -32,6 +32,7 @@ from __future__ import annotations
 import asyncio
 import atexit
 import logging
+import math
 import multiprocessing
 import os
 import queue
@@ -39,9 +40,11 @@ import threading
 import time
 from collections.abc import AsyncIterator, Callable
 from dataclasses import dataclass
+from functools import partial
 from multiprocessing.connection import Connection
 from multiprocessing.process import BaseProcess
 from multiprocessing.reduction import ForkingPickler
+from pathlib import Path
 from typing import Annotated, Any, TypeVar
 
 import anyio
@@ -69,6 +72,7 @@ __all__ = [
     "Lanes",
     "SolverPool",
     "TimeLimitExceeded",
+    "cgroup_cpu_limit",
     "default_solver_processes",
     "get_budget",
     "solver_lanes",
@@ -88,12 +92,73 @@ log = logging.getLogger("movecast.compute")
 solver_log = logging.getLogger("movecast.solver")
 
 
-def default_solver_processes() -> int:
-    """One light-lane solver process per core this process may run on."""
+def _quota(text: str) -> float | None:
+    """CPUs of a ``cpu.max`` line ("$MAX $PERIOD", or a v1 "quota period" pair); None for none or nonsense."""
+    parts = text.split()
+    if len(parts) != 2 or parts[0] == "max":
+        return None
     try:
-        return max(1, len(os.sched_getaffinity(0)))
+        quota, period = int(parts[0]), int(parts[1])
+    except ValueError:
+        return None
+    return quota / period if quota > 0 and period > 0 else None
+
+
+def cgroup_cpu_limit(root: Path = Path("/sys/fs/cgroup"), own: Path = Path("/proc/self/cgroup")) -> float | None:
+    """CPUs this process's control group may use by its CFS quota, or None when it has none (or it is unknown).
+
+    cgroup v2: the smallest ``cpu.max`` from the process's group up to the root (a parent's
+    limit holds for its children).  cgroup v1: ``cpu.cfs_quota_us`` over ``cpu.cfs_period_us``
+    of the cpu controller, at the process's group or, inside a container, at the mount's root.
+    Kernel documentation, ``admin-guide/cgroup-v2`` ("cpu.max") and ``scheduler/sched-bwc``.
+    """
+    try:
+        lines = own.read_text(encoding="utf-8").splitlines()
+    except OSError:
+        return None
+    limits: list[float] = []
+    for line in lines:
+        number, _, rest = line.partition(":")
+        controllers, _, path = rest.partition(":")
+        relative = path.strip().lstrip("/")
+        if number == "0" and controllers == "":
+            folder = root / relative
+            while True:
+                try:
+                    found = _quota((folder / "cpu.max").read_text(encoding="utf-8"))
+                except (OSError, UnicodeDecodeError):
+                    found = None
+                if found is not None:
+                    limits.append(found)
+                if folder == root or root not in folder.parents:
+                    break
+                folder = folder.parent
+        elif "cpu" in controllers.split(","):
+            for folder in (root / controllers / relative, root / controllers, root / "cpu" / relative, root / "cpu"):
+                try:
+                    quota = (folder / "cpu.cfs_quota_us").read_text(encoding="utf-8").strip()
+                    period = (folder / "cpu.cfs_period_us").read_text(encoding="utf-8").strip()
+                except (OSError, UnicodeDecodeError):
+                    continue
+                found = _quota(f"{quota} {period}")
+                if found is not None:
+                    limits.append(found)
+                break
+    return min(limits) if limits else None
+
+
+def default_solver_processes() -> int:
+    """One light-lane solver process per CPU this process may use: its cores, and its CPU quota rounded up.
+
+    A container limited by a quota (``--cpus``, a Kubernetes CPU limit) still has every core of
+    its host in its affinity mask; without the quota a large host would get a process per core.
+    """
+    try:
+        cores = max(1, len(os.sched_getaffinity(0)))
     except AttributeError:  # not on Linux
-        return max(1, os.cpu_count() or 1)
+        cores = max(1, os.cpu_count() or 1)
+    limit = cgroup_cpu_limit()
+    return cores if limit is None else max(1, min(cores, math.ceil(limit)))
 
 
 def _context() -> Any:
@@ -139,8 +204,13 @@ class SolverPool:
         self._started = False
         self._closed = False
         self._context = _context()
+        #: Solver processes this pool holds, idle or busy: one fewer while a replacement fails to start.
+        self._owned = 0
+        self._owned_lock = threading.Lock()
+        self._topping_up = threading.Lock()
 
-    def _spawn(self) -> _Solver:
+    def _spawn(self, *, counted: bool = True) -> _Solver:
+        """Start a solver process; ``counted``: one more held (a replacement takes the place of the one it replaces)."""
         parent, child = self._context.Pipe(duplex=True)
         process = self._context.Process(
             target=serve_calls,
@@ -150,6 +220,9 @@ class SolverPool:
         )
         process.start()
         child.close()
+        if counted:
+            with self._owned_lock:
+                self._owned += 1
         return _Solver(process, parent)
 
     def start(self) -> None:
@@ -166,6 +239,43 @@ class SolverPool:
         if solver.process.is_alive():
             solver.process.kill()
         solver.process.join(timeout=5)
+
+    @property
+    def ready(self) -> bool:
+        """Whether the pool is started, not closed, and holds at least one solver process."""
+        return self._started and not self._closed and self._owned > 0
+
+    @property
+    def short(self) -> bool:
+        """Whether the pool holds fewer solver processes than its number (a replacement failed to start)."""
+        return self._started and not self._closed and self._owned < self.processes
+
+    def top_up(self, *, wait: bool = True) -> None:
+        """Start solver processes until the pool holds its number again.
+
+        A start that fails (no memory, no process left under the pids limit) is logged and
+        tried again on the next call, by a request or by the readiness probe.  One caller at a
+        time does it; the others wait for it, or with ``wait=False`` go on at once.
+        """
+        if not self._topping_up.acquire(blocking=wait):
+            return
+        try:
+            while self.short:
+                try:
+                    solver = self._spawn()
+                except Exception as exc:
+                    log.error("starting a solver process failed: %r", exc)
+                    return
+                self._idle.put(solver)
+        finally:
+            self._topping_up.release()
+
+    def _check_owned(self) -> None:
+        """Raise :class:`ComputeDied` (a 503) when the pool holds no solver process: none would come."""
+        if self.short:
+            self.top_up()
+        if self._owned <= 0:
+            raise ComputeDied("no solver process could be started")
 
     @property
     def _waiting(self) -> int:
@@ -186,15 +296,25 @@ class SolverPool:
         Raises :class:`HeavyLaneFull` when ``max_waiting`` calls already wait for this pool.
         """
         while True:
+            self._check_owned()
             solver = self._idle.take(deadline, seconds, cancel)
             if self._usable(solver):
                 return solver
             self._replace(solver)
 
     def _replace(self, solver: _Solver) -> None:
+        """Retire ``solver`` and start another; one that fails to start leaves the pool short (logged)."""
         self._retire(solver)
-        if not self._closed:
-            self._idle.put(self._spawn())
+        if self._closed:
+            return
+        try:
+            fresh = self._spawn(counted=False)
+        except Exception as exc:
+            with self._owned_lock:
+                self._owned -= 1
+            log.error("starting a solver process failed: %r", exc)
+            return
+        self._idle.put(fresh)
 
     def _replace_later(self, loop: asyncio.AbstractEventLoop, solver: _Solver) -> None:
         """:meth:`_replace` in a worker thread (it kills, waits and starts a process), not on the loop."""
@@ -324,6 +444,8 @@ class SolverPool:
     ) -> _Solver:
         """:meth:`_take` on the loop: a dead solver found idle is replaced in a worker thread."""
         while True:
+            if self.short:
+                await loop.run_in_executor(None, self._check_owned)
             solver = await self._idle.atake(deadline, seconds, cancel, gone)
             if self._usable(solver):
                 return solver
@@ -464,6 +586,18 @@ class Lanes:
         """Start both pools' processes now (idempotent)."""
         self.light.start()
         self.heavy.start()
+
+    def ready(self, loop: asyncio.AbstractEventLoop | None = None) -> bool:
+        """Whether both lanes hold a solver process; with ``loop``, a short lane is topped up in a worker thread.
+
+        The readiness probe calls it: a pod whose lane lost its processes leaves the Service's
+        endpoints instead of answering every request of that lane with a time limit, and the
+        probe's next calls start the missing processes, so it comes back by itself.
+        """
+        for pool in (self.light, self.heavy):
+            if loop is not None and pool.short:
+                loop.run_in_executor(None, partial(pool.top_up, wait=False)).add_done_callback(_log_failure)
+        return self.light.ready and self.heavy.ready
 
 
 def solver_lanes(settings: Any) -> Lanes:

@@ -10,7 +10,8 @@
 - the shared error responses (401, 413, 503, 500) in the OpenAPI document of every route
   they can come from, and the schema of the problem body (``ProblemReport``) on every
   ``application/problem+json`` answer it documents;
-- at start-up: a warning when no API key is configured, glibc's threshold for mapping large
+- at start-up: a warning when no API key is configured, one for each ``MOVECAST_*`` variable
+  that is no setting (a misspelt name would otherwise be ignored in silence), glibc's threshold for mapping large
   blocks fixed (``service.api.serving.return_large_blocks``), the solver processes started, and
   a SIGTERM hook that turns /readyz to 503 at the *start* of shutdown (the server goes on
   answering in-flight requests; readiness must not wait for them).
@@ -20,6 +21,7 @@ from __future__ import annotations
 
 import copy
 import logging
+import os
 import signal
 import threading
 from collections.abc import AsyncIterator, Callable
@@ -41,8 +43,9 @@ from service.api.middleware import (
 )
 from service.api.problems import PROBLEM_JSON
 from service.api.security import OPEN_PATHS, ApiKeyMiddleware, KeyRing
-from service.api.serving import return_large_blocks
+from service.api.serving import return_large_blocks, stop_with_the_supervisor
 from service.api.settings import Settings
+from service.api.settings_checks import unknown_variables
 from service.schemas.batch import ProblemReport
 
 __all__ = ["COMMON_RESPONSES", "install_operations"]
@@ -142,6 +145,12 @@ def _sigterm_hook(app: FastAPI) -> Callable[[], None]:
     return undo
 
 
+def _variable_names() -> list[str]:
+    """Every ``MOVECAST_*`` variable the settings read."""
+    prefix = str(Settings.model_config.get("env_prefix", ""))
+    return [prefix + name.upper() for name in Settings.model_fields]
+
+
 def _wrap_lifespan(app: FastAPI, settings: Settings) -> None:
     inner = app.router.lifespan_context
 
@@ -152,7 +161,10 @@ def _wrap_lifespan(app: FastAPI, settings: Settings) -> None:
                 "no API key configured (MOVECAST_API_KEYS, MOVECAST_API_KEYS_FILE): "
                 "every endpoint is open to anyone who can reach this port"
             )
+        for sentence in unknown_variables(os.environ, _variable_names()):
+            log.warning(sentence)
         return_large_blocks()  # this serving process only (the solvers keep glibc's default)
+        stop_with_the_supervisor()  # a worker of several stops when its supervisor dies
         solver_lanes(settings).start()
         async with inner(app_) as state:
             undo = _sigterm_hook(app_)

@@ -18,7 +18,10 @@ from __future__ import annotations
 
 import ctypes
 import math
+import multiprocessing
+import os
 import signal
+import sys
 from types import FrameType
 
 from service.api.logs import logging_config
@@ -30,6 +33,7 @@ __all__ = [
     "graceful_shutdown_seconds",
     "return_large_blocks",
     "run_server",
+    "stop_with_the_supervisor",
 ]
 
 #: Seconds added to the compute time limit for answering the last requests.
@@ -63,6 +67,35 @@ def return_large_blocks(threshold: int = MMAP_THRESHOLD_BYTES) -> bool:
     mallopt.argtypes = [ctypes.c_int, ctypes.c_int]
     mallopt.restype = ctypes.c_int
     return bool(mallopt(_M_MMAP_THRESHOLD, threshold))
+
+
+#: ``PR_SET_PDEATHSIG`` of Linux's ``prctl`` (linux/prctl.h).
+_PR_SET_PDEATHSIG = 1
+
+
+def stop_with_the_supervisor() -> bool:
+    """In a worker of a multi-process server, have the kernel send it SIGTERM when its supervisor dies.
+
+    uvicorn's workers (``MOVECAST_WORKERS`` > 1) do not watch their supervisor: one killed
+    outright (SIGKILL, the OOM killer) left every worker serving on the shared socket, with
+    its solver processes, holding the port against a restart.  With ``PR_SET_PDEATHSIG``
+    (Linux ``prctl(2)``) such a worker gets SIGTERM and shuts down as gracefully as on a
+    normal stop: in-flight requests finish, the solvers exit with it.  Called at each serving
+    process's start-up; a process started by no Python parent (``movecast serve`` with one
+    worker) is left alone.  Returns whether the request was made.
+    """
+    parent = multiprocessing.parent_process()
+    if parent is None or not sys.platform.startswith("linux"):
+        return False
+    try:
+        prctl = ctypes.CDLL(None, use_errno=True).prctl
+    except (OSError, AttributeError):
+        return False
+    if prctl(_PR_SET_PDEATHSIG, int(signal.SIGTERM), 0, 0, 0) != 0:
+        return False
+    if os.getppid() != parent.pid:  # it died before the request was made
+        os.kill(os.getpid(), signal.SIGTERM)
+    return True
 
 
 def graceful_shutdown_seconds(settings: Settings) -> int:

@@ -124,16 +124,22 @@ class Settings(BaseSettings):
         "(answered again without computing; 0 keeps none).",
     )
     request_timeout_seconds: float = Field(
-        default=30.0, gt=0, le=3600, description="Compute time limit of one request, queueing included."
+        default=30.0,
+        allow_inf_nan=False,
+        gt=0,
+        le=3600,
+        description="Compute time limit of one request, queueing included.",
     )
     read_timeout_seconds: float = Field(
         default=15.0,
+        allow_inf_nan=False,
         gt=0,
         le=600,
         description="A request must arrive whole (line, headers, body) within this time of its first byte; else 408.",
     )
     send_stall_seconds: float = Field(
         default=30.0,
+        allow_inf_nan=False,
         gt=0,
         le=3600,
         description="A client that takes none of a response for this long is dropped (the socket's buffer stays "
@@ -150,7 +156,7 @@ class Settings(BaseSettings):
         ge=1,
         le=64,
         description="Light-lane solver processes per worker (each runs one computation at a time); "
-        "default one per core.",
+        "default one per CPU it may use (its cores, within a container's CPU quota).",
     )
     heavy_solver_processes: int = Field(
         default=1, ge=1, le=64, description="Heavy-lane solver processes per worker (lower CPU priority)."
@@ -201,6 +207,20 @@ class Settings(BaseSettings):
     @classmethod
     def _keys(cls, value: tuple[SecretStr, ...]) -> tuple[SecretStr, ...]:
         checks.check_keys((k.get_secret_value() for k in value), source="MOVECAST_API_KEYS")
+        return value
+
+    @field_validator("host")
+    @classmethod
+    def _host(cls, value: str) -> str:
+        return checks.check_host(value)
+
+    @field_validator("api_keys_file")
+    @classmethod
+    def _key_file(cls, value: Path | None) -> Path | None:
+        # read here to name MOVECAST_API_KEYS_FILE in the error (a model validator's error names
+        # no field); _read_key_file below keeps the keys
+        if value is not None:
+            checks.read_key_file(value)
         return value
 
     @field_validator("log_level", mode="before")

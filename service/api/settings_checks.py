@@ -7,20 +7,24 @@ service at start-up instead of surfacing on the first request.
 
 from __future__ import annotations
 
+import difflib
+import ipaddress
 import json
 import re
-from collections.abc import Iterable
+from collections.abc import Iterable, Mapping
 from pathlib import Path
 from typing import Any
 
 __all__ = [
     "LOG_LEVELS",
     "MIN_KEY_LENGTH",
+    "check_host",
     "check_keys",
     "check_log_level",
     "check_origins",
     "read_key_file",
     "split_list",
+    "unknown_variables",
 ]
 
 #: Log levels of the standard logging module that the service accepts, lower case.
@@ -30,6 +34,8 @@ LOG_LEVELS = ("critical", "error", "warning", "info", "debug")
 #: randomness, e.g. ``secrets.token_urlsafe(16)`` is 22 characters).
 MIN_KEY_LENGTH = 16
 
+#: A host name label (RFC 1123, section 2.1): letters, digits and hyphens, no hyphen at either end.
+_LABEL = re.compile(r"[A-Za-z0-9]([A-Za-z0-9-]{0,61}[A-Za-z0-9])?")
 _ORIGIN = re.compile(r"https?://[A-Za-z0-9.-]+(:[0-9]{1,5})?")
 
 
@@ -104,3 +110,41 @@ def check_log_level(value: Any) -> Any:
             raise ValueError(f"{value!r} is not a log level; use one of {', '.join(LOG_LEVELS)}")
         return level
     return value
+
+
+def check_host(value: str) -> str:
+    """Check the address to listen on is an IP address or a host name (nothing else binds).
+
+    An empty address is refused: uvicorn would listen on every interface with it, which is
+    0.0.0.0 said out loud, never an accident.
+    """
+    if not value.strip():
+        raise ValueError(
+            "empty; give an address to listen on, e.g. 127.0.0.1 (this host only) or 0.0.0.0 (every interface)"
+        )
+    try:
+        ipaddress.ip_address(value)
+    except ValueError:
+        labels = value.removesuffix(".").split(".")
+        if len(value) > 253 or not all(_LABEL.fullmatch(label) for label in labels):
+            raise ValueError(
+                f"{value!r} is neither an IP address nor a host name; e.g. 127.0.0.1, 0.0.0.0, :: or localhost"
+            ) from None
+    return value
+
+
+def unknown_variables(environ: Mapping[str, str], known: Iterable[str], prefix: str = "MOVECAST_") -> list[str]:
+    """A sentence for each variable of ``prefix`` that is no setting, naming the setting it resembles.
+
+    pydantic-settings reads only the variables of its fields, so a misspelt one is ignored in
+    silence; the service then runs on the default the operator meant to change.
+    """
+    names = sorted(set(known))
+    found = []
+    for name in sorted(environ):
+        if not name.startswith(prefix) or name in names:
+            continue
+        near = difflib.get_close_matches(name, names, n=1, cutoff=0.8)
+        hint = f"; did you mean {near[0]}?" if near else "; see the README for the settings"
+        found.append(f"{name} is not a setting and is ignored{hint}")
+    return found

@@ -115,3 +115,34 @@ def test_the_readme_gives_the_uvicorn_command_these_tests_run():
     readme = (Path(__file__).resolve().parents[2] / "README.md").read_text(encoding="utf-8")
     assert "uvicorn service.api.app:create_app --factory" in readme
     assert "--http service.api.protocol:GuardedH11Protocol" in readme
+
+
+def test_the_readme_s_uvicorn_command_parses_as_written_without_any_setting(tmp_path):
+    """The README's uvicorn command, expanded by a shell with no ``MOVECAST_*`` variable set, is
+    taken by uvicorn's own option parser (click), which checks every option's type.
+
+    With ``--timeout-keep-alive "$MOVECAST_KEEP_ALIVE_SECONDS"`` an unset variable had expanded to
+    '' and uvicorn stopped at once ("'' is not a valid integer").
+    """
+    import os
+    import re
+    import shlex
+    import subprocess
+
+    from uvicorn.main import main as uvicorn_main
+
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text(encoding="utf-8")
+    (block,) = [b for b in re.findall(r"```sh\n(.+?)\n```", readme, flags=re.S) if "GuardedH11Protocol" in b]
+    command = block.replace("\\\n", " ")
+    env = {name: value for name, value in os.environ.items() if not name.startswith("MOVECAST_")}
+    # the shell expands the variables; printf prints each word it would pass on a line of its own
+    expanded = subprocess.run(
+        ["sh", "-c", "printf '%s\\0' " + command], env=env, capture_output=True, check=True, timeout=30
+    ).stdout.decode()
+    words = expanded.split("\0")[:-1]
+    assert words[:2] == ["OMP_NUM_THREADS=1", "uvicorn"], shlex.join(words)
+    with uvicorn_main.make_context("uvicorn", words[2:]) as context:
+        params = context.params
+    assert params["factory"] is True and params["http"] == "service.api.protocol:GuardedH11Protocol"
+    assert params["timeout_keep_alive"] == 5  # MOVECAST_KEEP_ALIVE_SECONDS's default
+    assert not params["access_log"]

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import os
 import threading
 import time
@@ -62,7 +63,12 @@ def test_design_work_grows_with_every_size():
 
 
 def test_default_light_lane_has_one_process_per_core():
-    assert default_solver_processes() == len(os.sched_getaffinity(0))
+    # per core of the affinity mask, within the CPU quota of the control group (test_cpu_limit.py)
+    from service.api.compute import cgroup_cpu_limit
+
+    limit = cgroup_cpu_limit()
+    cores = len(os.sched_getaffinity(0))
+    assert default_solver_processes() == (cores if limit is None else max(1, min(cores, math.ceil(limit))))
 
 
 def _blas_threads() -> int:

@@ -140,3 +140,32 @@ def test_a_memory_error_in_the_solver_is_a_422_problem(make_client, example, mon
     body = assert_problem(client.post("/design", json=example), 422, "out-of-memory")
     assert "memory" in body["detail"]
     assert os.getpid()  # the serving process itself is untouched
+
+
+def _compose_bytes(size: str) -> int:
+    """A Compose byte value ("1g", "1280m", "512k", "1024b"; Compose file reference, units b k m g)."""
+    number, unit = re.fullmatch(r"(\d+)([bkmg]?)", size.lower()).groups()
+    return int(number) * {"": 1, "b": 1, "k": 1024, "m": 1024**2, "g": 1024**3}[unit]
+
+
+def test_the_compose_memory_limit_holds_every_process_at_its_caps():
+    """The sum of the Kubernetes check above, for deploy/compose.yaml, once per worker process.
+
+    Each worker has its own serving process, fork server and both lanes, so everything (its
+    footprint included, as measured for one) counts once per worker.  The light lane must be
+    sized in the file, so that the sum does not hang on its default (a process per CPU).
+    """
+    compose = yaml.safe_load((ROOT / "deploy" / "compose.yaml").read_text())
+    (service,) = compose["services"].values()
+    environment = {k: str(v) for k, v in service["environment"].items()}
+    default_workers = re.fullmatch(r"\$\{MOVECAST_WORKERS:-(\d+)\}", environment["MOVECAST_WORKERS"])
+    workers = int(default_workers.group(1)) if default_workers else int(environment["MOVECAST_WORKERS"])
+    assert "MOVECAST_SOLVER_PROCESSES" in environment, "the light lane is sized by the host's cores otherwise"
+    light = int(environment["MOVECAST_SOLVER_PROCESSES"])
+    heavy = int(environment.get("MOVECAST_HEAVY_SOLVER_PROCESSES", Settings().heavy_solver_processes))
+    heavy_memory = int(environment.get("MOVECAST_HEAVY_MEMORY_BYTES", Settings().heavy_memory_bytes))
+    cache = int(environment.get("MOVECAST_ANSWER_CACHE_BYTES", Settings().answer_cache_bytes))
+    answers = int(environment.get("MOVECAST_MAX_ANSWER_MEMORY_BYTES", Settings().max_answer_memory_bytes))
+    per_worker = heavy * Caps().max_request_memory_bytes + light * heavy_memory + cache + answers + OVERHEAD
+    limit = _compose_bytes(service["deploy"]["resources"]["limits"]["memory"])
+    assert workers * per_worker + SLACK <= limit, (workers, per_worker, limit)

@@ -136,3 +136,20 @@ def test_logging_config_is_json_on_stderr_without_uvicorn_access_lines():
     assert config["root"]["level"] == "WARNING"
     assert config["loggers"]["uvicorn.access"]["handlers"] == []
     assert config["loggers"]["uvicorn.access"]["propagate"] is False
+
+
+def test_an_unhandled_error_logs_the_route_template_never_the_caller_s_path(make_client, log_lines):
+    client = make_client()
+
+    def explode(rest: str) -> None:
+        raise RuntimeError("failed")
+
+    client.app.add_api_route("/explode/{rest:path}", explode)
+    odd = "x" * 8000 + "/%22%7D%20%7B%22level%22:%22forged"
+    assert client.get(f"/explode/{odd}").status_code == 500
+    errors = [line for line in log_lines() if line["level"] == "error"]
+    assert errors
+    for line in errors + [line for line in log_lines() if line["logger"] == "movecast.access"]:
+        # the lines name the route, never the path: the caller chose the path
+        assert line["route"] == "/explode/{rest:path}"
+        assert "xxxx" not in json.dumps(line) and "forged" not in json.dumps(line)

@@ -190,3 +190,74 @@ def test_serve_sizes_thread_pools_and_the_metrics_folder_before_numpy(monkeypatc
     cli._prepare_process_environment(2)
     assert os.environ["OMP_NUM_THREADS"] == "3"
     assert not list(folder.glob("*.db")), "old samples are wiped at start-up"
+
+
+def _living(pids: list[int]) -> list[int]:
+    """The processes of ``pids`` still running (a zombie waiting for its reaper has stopped)."""
+    alive = []
+    for pid in pids:
+        try:
+            state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+        except OSError:
+            continue
+        if state not in {"Z", "X"}:
+            alive.append(pid)
+    return alive
+
+
+def test_workers_and_their_solvers_stop_when_the_supervisor_is_killed(tmp_path):
+    """``movecast serve --workers 2`` killed outright (SIGKILL, as the OOM killer does): no process
+    it started may go on, or the orphaned workers keep serving on its port with their solvers."""
+    from tests.api.live import descendants
+
+    port = free_port()
+    base = f"http://127.0.0.1:{port}"
+    env = {**os.environ, "MOVECAST_HOST": "127.0.0.1", "MOVECAST_SOLVER_PROCESSES": "1", "PYTHONPATH": str(ROOT)}
+    log_path = tmp_path / "server.log"
+    started: list[int] = []
+    with log_path.open("w", encoding="utf-8") as log:
+        process = subprocess.Popen(
+            [sys.executable, "-m", "service.cli", "serve", "--port", str(port), "--workers", "2"],
+            cwd=ROOT,
+            env=env,
+            stdout=log,
+            stderr=subprocess.STDOUT,
+        )
+    try:
+        wait_ready(base, process, seconds=120)
+        # both workers up, each with its fork server and its light and heavy solvers
+        for _ in range(600):
+            started = descendants(process.pid)
+            if len([pid for pid in started if "movecast-solver" in _cmdline(pid) or _is_solver(pid)]) >= 4:
+                break
+            time.sleep(0.1)
+        assert len(started) >= 6, started
+        process.kill()
+        process.wait(timeout=30)
+        for _ in range(600):
+            if not _living(started):
+                break
+            time.sleep(0.1)
+        assert not _living(started), [_cmdline(pid)[:80] for pid in _living(started)]
+    finally:
+        if process.poll() is None:
+            process.kill()
+            process.wait(timeout=10)
+        for pid in _living(started):
+            os.kill(pid, signal.SIGKILL)
+
+
+def _cmdline(pid: int) -> str:
+    try:
+        return Path(f"/proc/{pid}/cmdline").read_bytes().replace(b"\0", b" ").decode(errors="replace")
+    except OSError:
+        return ""
+
+
+def _is_solver(pid: int) -> bool:
+    """A process forked by a fork server (the solvers): its parent runs multiprocessing.forkserver."""
+    try:
+        parent = int(Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[1])
+    except OSError:
+        return False
+    return "multiprocessing.forkserver" in _cmdline(parent)

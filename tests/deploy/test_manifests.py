@@ -325,9 +325,8 @@ def test_dockerfile_health_check_calls_healthz_with_python() -> None:
 
 def test_dockerfile_serves_with_settings_from_the_environment() -> None:
     (command,) = _runtime("CMD")
-    assert "exec movecast serve" in command
-    for option, name in (("--host", "HOST"), ("--port", "PORT"), ("--workers", "WORKERS")):
-        assert f'{option} \\"$MOVECAST_{name}\\"' in command, option
+    # exec form, no shell: the server is PID 1 and gets SIGTERM; it reads its variables itself
+    assert command == '["movecast", "serve"]'
     env = _image_env()
     assert env["MOVECAST_HOST"] == "0.0.0.0"
     assert env["OMP_NUM_THREADS"] == env["OPENBLAS_NUM_THREADS"] == "1"
@@ -399,3 +398,39 @@ def test_compose_reads_api_keys_from_a_file_secret_kept_out_of_git() -> None:
     secret_file = pathlib.PurePosixPath(compose["secrets"][name]["file"])
     ignored = (DEPLOY / ".gitignore").read_text(encoding="utf-8").splitlines()
     assert f"{secret_file.parts[-2]}/" in ignored
+
+
+@pytest.mark.parametrize(("name", "value"), [("MOVECAST_WORKERS", "two"), ("MOVECAST_PORT", "")])
+def test_the_image_command_names_a_bad_variable(name, value, tmp_path):
+    """The image's CMD, run here as the container would (exec form, or the shell of the shell form).
+
+    The container is configured by its variables only, so a bad one must be reported by its
+    name; passing them on as options had the options' parser answer instead
+    ("argument --workers: invalid int value").
+    """
+    import json
+    import os
+    import subprocess
+    import sys
+
+    (command,) = _runtime("CMD")
+    argv = json.loads(command)
+    bin_dir = pathlib.Path(sys.executable).parent
+    assert (bin_dir / "movecast").exists(), "the project's console script is installed"
+    env = {**_image_env(), "PATH": f"{bin_dir}{os.pathsep}{os.environ.get('PATH', '')}", name: value}
+    env["MOVECAST_API_KEYS_FILE"] = str(tmp_path / "absent")  # even a valid rest stops before serving
+    done = subprocess.run(argv, env=env, capture_output=True, text=True, timeout=120, check=False)
+    assert done.returncode == 2, done.stderr
+    assert f"  {name}: " in done.stderr, done.stderr
+
+
+def test_every_setting_is_in_the_readme_and_every_documented_variable_is_a_setting() -> None:
+    """Both ways: an operator finds every setting in the README, and each MOVECAST_ name written in
+    the README, DEVELOPERS.md or deploy/ is one the service reads (MOVECAST_CHROMIUM is the
+    browser tests' own, not the service's)."""
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    assert not {name for name in SETTINGS_NAMES if f"`{name}`" not in readme}
+    documents = [ROOT / "README.md", ROOT / "DEVELOPERS.md", *DEPLOY.rglob("*.yaml"), DOCKERFILE]
+    for path in documents:
+        named = set(re.findall(r"MOVECAST_[A-Z0-9_]*[A-Z0-9]", path.read_text(encoding="utf-8")))
+        assert named - SETTINGS_NAMES - {"MOVECAST_CHROMIUM"} == set(), path.name

@@ -1,0 +1,87 @@
+"""Readiness follows the solver pool: a lane that lost every process is not ready, and comes back.
+
+A solver process whose replacement cannot start (no memory, the pod's pids limit) used to
+leave its pool one process short for good; with none left, every request of that lane waited
+for its time limit while /readyz said ready, so the load balancer kept sending them.  Here the
+start of a process is made to fail (an ``OSError`` as ``fork`` raises it, EAGAIN), the
+processes are killed, and then starting is allowed again.
+"""
+
+from __future__ import annotations
+
+import errno
+import os
+import signal
+import time
+
+import pytest
+
+from service.api.compute import SolverPool, solver_lanes
+from service.api.settings import Settings
+from service.errors import ComputeDied
+
+pytestmark = pytest.mark.skipif(os.name != "posix", reason="POSIX signals")
+
+
+def _no_process(*args, **kwargs):
+    raise OSError(errno.EAGAIN, "Resource temporarily unavailable")
+
+
+def _kill_idle(pool: SolverPool) -> None:
+    for solver in list(pool._idle.queue):
+        os.kill(solver.process.pid, signal.SIGKILL)
+        solver.process.join(timeout=10)
+
+
+def test_a_pool_that_cannot_start_a_solver_answers_solver_died_at_once_and_recovers(monkeypatch):
+    pool = SolverPool(processes=1)
+    try:
+        pool.start()
+        _kill_idle(pool)
+        monkeypatch.setattr(pool, "_spawn", _no_process)
+        # the dead solver is found, its replacement fails: a 503 of its own kind, not an OSError (a 500)
+        with pytest.raises(ComputeDied):
+            pool.run(abs, (-3,), deadline=time.monotonic() + 300, seconds=300)
+        assert not pool.ready and pool.short
+        # the pool holds no process now: the next call is told so at once (it had waited for its
+        # time limit, here 300 s, for a solver that would never come)
+        with pytest.raises(ComputeDied):
+            pool.run(abs, (-3,), deadline=time.monotonic() + 300, seconds=300)
+        monkeypatch.undo()
+        assert pool.run(abs, (-3,), deadline=time.monotonic() + 300, seconds=300)[0] == 3
+        assert pool.ready and not pool.short
+    finally:
+        pool.close()
+
+
+def test_readyz_says_not_ready_while_a_lane_has_no_solver_and_ready_once_it_is_started_again(
+    make_client, monkeypatch, example
+):
+    # every request in the heavy lane (heavy_work 1), and sizes no other test uses, so these
+    # pools are this test's own
+    settings = {"solver_processes": 5, "heavy_solver_processes": 1, "heavy_queue": 613, "heavy_work": 1.0}
+    client = make_client(**settings)
+    lanes = solver_lanes(Settings(**settings))
+    try:
+        assert client.get("/readyz").status_code == 200
+        heavy = lanes.heavy
+        monkeypatch.setattr(heavy, "_spawn", _no_process)
+        _kill_idle(heavy)
+        # the request finds its solver dead and cannot start another: told to retry (it had
+        # been a 500), and the readiness probe takes the pod out of the load balancer's set
+        answer = client.post("/design", json=example, headers={"Cache-Control": "no-store"})
+        assert answer.status_code == 503, answer.text
+        assert answer.headers["retry-after"] == "1"
+        answer = client.get("/readyz")
+        assert answer.status_code == 503 and answer.json() == {"status": "not_ready"}
+        monkeypatch.undo()
+        # the probe starts the missing process (in a worker thread): ready again within a bound
+        for _ in range(300):
+            if client.get("/readyz").status_code == 200:
+                break
+            time.sleep(0.1)
+        assert client.get("/readyz").status_code == 200
+        assert client.post("/design", json=example, headers={"Cache-Control": "no-store"}).status_code == 200
+    finally:
+        lanes.light.close()
+        lanes.heavy.close()
