@@ -210,6 +210,23 @@ def _settings_or_message(overrides: dict[str, Any] | None = None) -> Any:
         return None
 
 
+def _unresolved_host(host: str, *, from_option: bool) -> str | None:
+    """A line for the operator when ``host`` names no address of this machine's resolver, else None.
+
+    A host name that passes the settings' check but does not resolve had stopped inside the
+    server with the resolver's own words ("Name or service not known"), naming no setting.
+    """
+    import socket
+
+    try:
+        socket.getaddrinfo(host, None, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)
+    except (OSError, UnicodeError) as exc:
+        name = "--host (MOVECAST_HOST)" if from_option else "MOVECAST_HOST"
+        reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+        return f"  {name}: {host!r} does not resolve to an address to listen on ({reason}); give an IP address"
+    return None
+
+
 def _serve(args: argparse.Namespace) -> int:
     overrides = {name: getattr(args, name) for name in SERVE_OPTIONS if getattr(args, name) is not None}
     trouble = _prepare_process_environment(overrides.get("workers") or _positive_env("MOVECAST_WORKERS", 1))
@@ -219,6 +236,11 @@ def _serve(args: argparse.Namespace) -> int:
         return EXIT_INVALID
     settings = _settings_or_message(overrides)
     if settings is None:
+        return EXIT_INVALID
+    unresolved = _unresolved_host(settings.host, from_option="host" in overrides)
+    if unresolved is not None:
+        print("movecast: invalid settings, not starting:", file=sys.stderr)
+        print(unresolved, file=sys.stderr)
         return EXIT_INVALID
     from service.api.serving import run_server
 

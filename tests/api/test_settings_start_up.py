@@ -72,6 +72,20 @@ def test_serve_options_override_the_environment(serve, monkeypatch):
     assert serve("--port", "8200", "--host", "::1") == [{"host": "::1", "port": 8200, "workers": 3}]
 
 
+@pytest.mark.parametrize(
+    ("argv", "named"), [(["--host", "no-such-host.invalid"], "--host (MOVECAST_HOST)"), ([], "MOVECAST_HOST")]
+)
+def test_a_host_name_that_does_not_resolve_is_named_before_the_server_starts(serve, monkeypatch, capsys, argv, named):
+    # a well-formed name the resolver does not know had stopped inside the server with the
+    # resolver's own words, naming no setting (found in an operations audit); ".invalid" is
+    # reserved never to resolve (RFC 2606, section 2)
+    monkeypatch.setenv("MOVECAST_HOST", "no-such-host.invalid")
+    assert serve(*argv) == [], "no server may start"
+    err = capsys.readouterr().err
+    assert err.startswith("movecast: invalid settings, not starting:")
+    assert f"  {named}: 'no-such-host.invalid' does not resolve" in err
+
+
 @pytest.mark.parametrize("host", ["", "   ", "not a host", "http://0.0.0.0", "host:8000", "-bad.example", "a..b"])
 def test_a_host_that_is_no_address_is_refused(monkeypatch, host):
     # an empty MOVECAST_HOST made uvicorn listen on every interface (":8000"), silently
