@@ -326,3 +326,179 @@ def test_writing_the_unit_in_other_units_changes_no_verdict_and_no_gain(client):
         ):
             converted = np.diag(left) @ np.array(ref[key]) @ np.diag(right)
             np.testing.assert_allclose(np.array(gain[key]), converted, rtol=1e-6, atol=1e-9 * np.abs(converted).max())
+
+
+def test_the_run_on_the_true_plant_is_offset_free_keeps_the_zone_and_the_target(client):
+    request = _simulation()
+    response = client.post("/simulate", json=request)
+    assert response.status_code == 200, response.text
+    answer = response.json()
+    outputs, inputs = np.array(answer["outputs"]), np.array(answer["inputs"])
+    # absolute units: the run starts at rest at the operating point (the inputs move at once,
+    # towards the circulation flow's target)
+    np.testing.assert_allclose(outputs[0], POINT["outputs"], rtol=1e-12)
+    # offset-free on the setpoint outputs despite 20 % more gain and an unmeasured 1500 Pa step
+    # (Pannocchia and Rawlings 2003: one detectable step disturbance per measured output)
+    assert abs(outputs[-1, 0] - SETPOINT[0]) < 1e-3  # degC
+    assert abs(outputs[-1, 1] - SETPOINT[1]) < 1e-2  # Pa
+    # the level floats inside its zone at every sample; the answer says so
+    zone = DESIGN["zones"][2]
+    assert zone["low"] <= outputs[:, 2].min() and outputs[:, 2].max() <= zone["high"]
+    (report,) = answer["zones"]
+    assert report["fraction_inside"] == 1.0 and report["ended_inside"]
+    # the spare circulation flow settles at its target; every input within its limits and moves
+    assert abs(inputs[-1, 1] - TARGETS[1]) < 1.0  # kg/h
+    assert np.all(inputs >= np.array(LIMITS["input_min"]) - 1e-6)
+    assert np.all(inputs <= np.array(LIMITS["input_max"]) + 1e-6)
+    assert np.all(np.abs(np.diff(inputs, axis=0)) <= np.array(LIMITS["move_max"]) * (1 + 1e-9))
+    # the true loop against the exported law closed around python-control's realization of the
+    # true plant: equal poles off the circle (the realization is not minimal: it adds circle poles)
+    law = client.post("/design/export", json=_design(format="state_space")).json()
+    mine = np.sort(np.abs(_law_on_plant(law, _python_control_plant(GAIN_ERROR))))[::-1]
+    reported = _moduli(answer["true_loop"]["poles"])
+    off = mine[np.abs(mine - 1.0) > 1e-6]
+    np.testing.assert_allclose(reported[np.abs(reported - 1.0) > 1e-6][:10], off[:10], rtol=1e-9)
+    assert answer["true_loop"]["spectral_radius"] == pytest.approx(1.0, abs=1e-9)
+    codes = {w["code"] for w in answer["warnings"]} | {w["code"] for w in answer["design"]["warnings"]}
+    assert not codes & {"true_loop_unstable", "run_diverging", "unstable_closed_loop", "setpoint_out_of_reach"}
+    assert answer["diverged_at"] is None
+
+
+def test_the_model_error_study_agrees_with_the_exported_law_on_perturbed_plants(client):
+    factors = [0.5, 1.2, 2.0, 3.0]
+    answer = client.post(
+        "/design", json=_design(analysis={"model_error": {"gain_factors": factors, "extra_dead_time": [0]}})
+    ).json()
+    law = client.post("/design/export", json=_design(format="state_space")).json()
+    for case, factor in zip(answer["model_error"]["cases"], factors, strict=True):
+        assert case["gain_factor"] == factor
+        mine = _law_on_plant(law, _python_control_plant(factor))
+        # the zone level's two poles at 1 are set aside by design; the realization adds one more
+        off = np.sort(np.abs(mine[np.abs(np.abs(mine) - 1.0) > 1e-6]))[::-1]
+        assert case["nominal_circle_poles"] == 2
+        assert case["rest_spectral_radius"] == pytest.approx(off[0], rel=1e-8)
+        expected = "stable" if off[0] < 1 - 1e-6 else "unstable"
+        assert case["rest_verdict"] == expected, factor
+    verdicts = [c["rest_verdict"] for c in answer["model_error"]["cases"]]
+    assert verdicts == ["stable", "stable", "stable", "unstable"]
+    (span,) = answer["model_error"]["stable_ranges"]
+    assert (span["lowest_stable_factor"], span["highest_stable_factor"]) == (0.5, 2.0)
+
+
+def test_sweep_and_batch_entries_equal_separate_designs(client):
+    values = [1e-4, 1e-3, 1e-2]
+    sweep = client.post(
+        "/design/sweep", json={"design": DESIGN, "parameter": "move_weight", "signal": 0, "values": values}
+    ).json()
+    proposed = _design()
+    proposed["model"] = _model(GAIN_ERROR)
+    batch = client.post(
+        "/design/batch",
+        json={"items": [{"id": "as_tested", "request": DESIGN}, {"id": "re_identified", "request": proposed}]},
+    ).json()
+    for entry, value in zip(sweep["entries"], values, strict=True):
+        request = _design()
+        request["weights"]["move"][0] = value
+        alone = client.post("/design", json=request).json()
+        assert entry["status"] == "designed" and entry["fingerprint"] == alone["fingerprint"]
+        assert entry["spectral_radius"] == alone["closed_loop"]["spectral_radius"]
+        assert entry["condition_number"] == alone["hessian"]["condition_number"]
+        assert [w["code"] for w in entry["warnings"]] == [w["code"] for w in alone["warnings"]]
+    for item, request in zip(batch["items"], (DESIGN, proposed), strict=True):
+        alone = client.post("/design", json=request).json()
+        assert item["status"] == "designed" and item["fingerprint"] == alone["fingerprint"]
+        assert item["result"]["gain"] == alone["gain"]
+    # a scheduler's second pass with the fingerprints it holds: nothing to recompute
+    again = client.post(
+        "/design/batch",
+        json={
+            "items": [
+                {"id": i["id"], "request": r, "known_fingerprint": i["fingerprint"]}
+                for i, r in zip(batch["items"], (DESIGN, proposed), strict=True)
+            ]
+        },
+    ).json()
+    assert [i["status"] for i in again["items"]] == ["unchanged", "unchanged"]
+
+
+def test_the_change_review_reports_the_gains_both_designs_give(client):
+    proposed = _design()
+    proposed["model"] = _model(GAIN_ERROR)
+    answer = client.post("/design/compare", json={"in_service": DESIGN, "proposed": proposed}).json()
+    before = client.post("/design", json=DESIGN).json()
+    after = client.post("/design", json=proposed).json()
+    labels = before["gain"]["labels"]
+    checked = 0
+    for change in answer["gain_changes"]:
+        if change["gain"] != "setpoint":
+            continue
+        i, j = labels["rows"].index(change["row"]), labels["setpoint"].index(change["column"])
+        assert change["in_service"] == before["gain"]["setpoint"][i][j]
+        assert change["proposed"] == after["gain"]["setpoint"][i][j]
+        assert change["change"] == pytest.approx(change["proposed"] - change["in_service"], rel=1e-12, abs=1e-300)
+        checked += 1
+    assert checked == 4 * 3  # every entry of Kr, the zone level's zero column included
+    assert answer["in_service"]["fingerprint"] == before["fingerprint"]
+    assert answer["proposed"]["hessian_condition_number"] == after["hessian"]["condition_number"]
+
+
+def test_a_plant_test_of_the_unit_gives_back_the_model_that_made_it(client, rng):
+    # Data of our own: the unit realized by python-control, random input steps of plant-test
+    # size (conftest.random_steps) around the operating point, white measurement noise. The
+    # fitted parameters must be the ones that made the data, within four standard errors
+    # (plus a hundredth of a sample for the dead times, whose grid the fit interpolates).
+    from tests.conftest import random_steps
+
+    samples = 1500
+    sizes = [(20, 60), (300, 1000), (2, 6), (300, 1000)]
+    moves = np.column_stack([random_steps(rng, samples, first=20, hold=(15, 60), size=s) for s in sizes])
+    a, b, c = _python_control_plant(1.0)
+    x, response = np.zeros(a.shape[0]), []
+    for k in range(samples):
+        response.append(c @ x)
+        x = a @ x + b @ moves[k]
+    noise = np.array([0.05, 20.0, 0.02])
+    measured = np.array(response) + rng.normal(size=(samples, 3)) * noise
+    data = {s["name"]: list(moves[:, j] + POINT["inputs"][j]) for j, s in enumerate(INPUTS)}
+    data |= {s["name"]: list(measured[:, i] + POINT["outputs"][i]) for i, s in enumerate(OUTPUTS)}
+    names_in, names_out = [s["name"] for s in INPUTS], [s["name"] for s in OUTPUTS]
+    pairs = [
+        {"output": names_out[i], "input": names_in[j], "structure": "none"}
+        for i, row in enumerate(_elements())
+        for j, e in enumerate(row)
+        if e is None
+    ]
+    request = {
+        "sample_time": TS,
+        "inputs": names_in,
+        "outputs": names_out,
+        "data": data,
+        "structure": "first_order_dead_time",
+        "integrating": ["flash_drum_level"],
+        "pairs": pairs,
+        "max_dead_time": 15.0,
+    }
+    response = client.post("/identify", json=request)
+    assert response.status_code == 200, response.text
+    answer = response.json()
+    fitted = {(p["output"], p["input"]): {q["name"]: q for q in p["parameters"]} for p in answer["pairs"]}
+    for i, row in enumerate(_elements()):
+        for j, element in enumerate(row):
+            if element is None:
+                assert (names_out[i], names_in[j]) not in fitted or not fitted[(names_out[i], names_in[j])]
+                continue
+            got = fitted[(names_out[i], names_in[j])]
+            truth = {"gain": element["gain"], "dead_time": element["dead_time"]}
+            if not element["integrating"]:
+                truth["time_constant"] = element["time_constants"][0]
+            for name, value in truth.items():
+                slack = 0.01 if name == "dead_time" else 0.0
+                estimate = got[name]
+                assert abs(estimate["estimate"] - value) <= 4 * estimate["standard_error"] + slack, (i, j, name)
+    # the operating point is the record's start, and the fitted model is a design request's model
+    np.testing.assert_allclose(answer["model"]["operating_point"]["inputs"], POINT["inputs"])
+    offsets = np.array(answer["model"]["operating_point"]["outputs"])
+    assert np.all(np.abs(offsets - POINT["outputs"]) <= 4 * noise)
+    design = client.post("/design", json={**_design(), "model": answer["model"]})
+    assert design.status_code == 200
+    assert {w["code"] for w in design.json()["warnings"]} == {"zone_output", "zone_outputs_not_in_gains"}
