@@ -50,7 +50,7 @@ from service.schemas.compare import (
     ScenarioComparison,
     SideReport,
 )
-from service.schemas.design import DesignRequest, DesignResponse
+from service.schemas.design import DesignRequest, DesignResponse, PoleReport
 from service.schemas.robustness import LoopRobustnessReport
 from service.schemas.simulate import PerformanceReport, ScenarioRequest
 
@@ -192,11 +192,27 @@ def _designed(inputs: DesignInputs, point: OperatingPointValues | None) -> Desig
     return response
 
 
-def _dominant(response: DesignResponse, sample_time: float) -> DominantPoleReport:
-    pole = response.closed_loop.poles[0]
+def _pole_report(pole: PoleReport, sample_time: float) -> DominantPoleReport:
     modulus = math.hypot(pole.real, pole.imag)
     tau = -sample_time / math.log(modulus) if 0.0 < modulus < 1.0 else None
     return DominantPoleReport(pole=pole, modulus=modulus, time_constant=tau)
+
+
+def _dominant(response: DesignResponse, sample_time: float) -> DominantPoleReport:
+    return _pole_report(response.closed_loop.poles[0], sample_time)
+
+
+def _settling(response: DesignResponse, sample_time: float) -> DominantPoleReport | None:
+    """The largest pole once each marginal mode's pole is set aside (the nearest pole to it, once each)."""
+    left = list(response.closed_loop.poles)
+    for mode in response.closed_loop.marginal_modes:
+        if not left:
+            break
+        gaps = [abs(complex(p.real, p.imag) - complex(mode.pole.real, mode.pole.imag)) for p in left]
+        left.pop(gaps.index(min(gaps)))
+    if not left:
+        return None
+    return _pole_report(max(left, key=lambda p: math.hypot(p.real, p.imag)), sample_time)
 
 
 def default_scenario(
@@ -294,6 +310,7 @@ def _side(request: DesignRequest, response: DesignResponse, sample_time: float) 
         fingerprint=design_fingerprint(request),
         poles=response.closed_loop.poles,
         dominant_pole=_dominant(response, sample_time),
+        settling_pole=_settling(response, sample_time),
         stable=response.closed_loop.stable,
         hessian_condition_number=response.hessian.condition_number,
         warnings=[w.code for w in response.warnings],
@@ -326,6 +343,7 @@ def _figures(before: PerformanceReport, after: PerformanceReport) -> list[Figure
                 settling_time=[a.settling_time, b.settling_time],
                 overshoot_percent=[a.overshoot_percent, b.overshoot_percent],
                 integral_absolute_error=[a.integral_absolute_error, b.integral_absolute_error],
+                zone=a.zone,
                 settling_change_percent=change,
             )
         )

@@ -502,3 +502,31 @@ def test_a_plant_test_of_the_unit_gives_back_the_model_that_made_it(client, rng)
     design = client.post("/design", json={**_design(), "model": answer["model"]})
     assert design.status_code == 200
     assert {w["code"] for w in design.json()["warnings"]} == {"zone_output", "zone_outputs_not_in_gains"}
+
+
+def test_the_change_review_says_what_the_zone_level_and_the_settling_pole_do(client):
+    # Found in this audit: the change record said "flash_drum_level settles within the scenario
+    # with neither design" of a zone output (it has no setpoint to settle at, by design) and "The
+    # dominant closed-loop pole moves from modulus 1 to 1" (the zone level's integrator, on the
+    # circle by design on both sides) instead of the pole the loop settles by.
+    # Reference: the closed-loop poles of each side's /design answer with the poles of its
+    # closed_loop.marginal_modes set aside (the design notes: poles on the circle with a cause).
+    proposed = _design()
+    proposed["model"] = _model(GAIN_ERROR)
+    answer = client.post("/design/compare", json={"in_service": DESIGN, "proposed": proposed}).json()
+    text = " ".join(answer["summary"])
+    assert "flash_drum_level settles" not in text
+    assert "flash_drum_level is a zone output" in text
+    assert "from modulus 1 to 1" not in text
+    for side, request in (("in_service", DESIGN), ("proposed", proposed)):
+        design = client.post("/design", json=request).json()
+        moduli = _moduli(design["closed_loop"]["poles"])
+        settling = _rest(moduli, len(design["closed_loop"]["marginal_modes"]))
+        assert answer[side]["settling_pole"]["modulus"] == pytest.approx(settling, rel=1e-12)
+        assert answer[side]["dominant_pole"]["modulus"] == pytest.approx(1.0, abs=1e-9)
+        assert f"{settling:.4g}" in text
+    assert [f["zone"] for f in answer["scenario"]["outputs"]] == [False, False, True]
+    markdown = client.post(
+        "/design/compare", json={"in_service": DESIGN, "proposed": proposed}, headers={"Accept": "text/markdown"}
+    ).text
+    assert "zone output: no setpoint to settle at" in markdown and "dominant pole off the circle" in markdown
