@@ -530,3 +530,43 @@ def test_the_change_review_says_what_the_zone_level_and_the_settling_pole_do(cli
         "/design/compare", json={"in_service": DESIGN, "proposed": proposed}, headers={"Accept": "text/markdown"}
     ).text
     assert "zone output: no setpoint to settle at" in markdown and "dominant pole off the circle" in markdown
+
+
+def _reference_slow_pole(a, b, c, q, r, s) -> float:
+    """The slowest pole off the unit circle of the least-squares law's loop on ``[x; u(k-1)]``."""
+    kx, ku, _, _, _ = _least_squares_law(a, b, c, q, r, s, HP, HU)
+    m = b.shape[1]
+    loop = np.block([[a - b @ kx, b @ (np.eye(m) - ku)], [-kx, np.eye(m) - ku]])
+    moduli = np.abs(np.linalg.eigvals(loop))
+    return float(moduli[moduli < 1 - 1e-6].max())
+
+
+@pytest.mark.parametrize(
+    ("input_weight", "move_scale", "spare"),
+    [(1e-8, 1.0, True), (1e-1, 1e5, False)],
+    ids=["light input target", "heavy move weights"],
+)
+def test_the_slow_pole_advice_names_the_weight_that_speeds_the_mode(client, input_weight, move_scale, spare):
+    # Found in this audit: with a light input target on the spare circulation flow, the slow
+    # pole (0.9973, 366 samples) was advised "raise the output weights to speed it up", which
+    # slows it (0.9993 with every output weight times 10) and brings pole_near_unit_circle; the
+    # input weight sets it (0.85 with it times 100). Reference: the loop of the least-squares
+    # law (numpy.linalg.lstsq, eigvals) on the sampled model, with S doubled and Q times 10.
+    request = _design(analysis={"sampled_model": True})
+    request["weights"]["input"][1] = input_weight
+    request["weights"]["move"] = list(np.array(MOVE_WEIGHT) * move_scale)
+    answer = client.post("/design", json=request).json()
+    (advice,) = [w["message"] for w in answer["warnings"] if w["code"] == "slow_pole"]
+    sampled = answer["plant"]["sampled_model"]
+    a, b, c = (np.array(sampled[k]) for k in "abc")
+    q, r = np.diag(OUTPUT_WEIGHT), np.diag(request["weights"]["move"])
+    s = np.diag(request["weights"]["input"])
+    nominal = _reference_slow_pole(a, b, c, q, r, s)
+    heavier_input = _reference_slow_pole(a, b, c, q, r, 2 * s)
+    heavier_outputs = _reference_slow_pole(a, b, c, 10 * q, r, s)
+    if spare:
+        assert heavier_input < nominal and heavier_outputs > nominal  # the input weight sets it
+        assert "weights.input" in advice and "raise the output weights" not in advice
+    else:
+        assert heavier_outputs < nominal  # the outputs set it
+        assert "raise the output weights" in advice and "weights.input" not in advice
