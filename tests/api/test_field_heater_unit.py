@@ -318,6 +318,20 @@ def test_writing_the_unit_in_other_units_changes_no_verdict_and_no_gain(client):
             (c["verdict"], c["rest_verdict"]) for c in reference["model_error"]["cases"]
         ], name
         assert answer["closed_loop"]["stable"] is reference["closed_loop"]["stable"]
+        # the frequency grid: the zone level's poles at 1 sit there to rounding, which moves with
+        # the units; they had set the grid's low end (2.4e-11, 9.0e-10 and 2.3e-9 rad per minute in
+        # the three cases) and with it the peaks reported (at the plant output 6.3e8, 1.7e7 and
+        # 1.4e13; at the plant input 150, 42 and 4.9e7, where the last two cases differ only by
+        # uniform factors on the outputs and on the inputs, which leave S unchanged)
+        np.testing.assert_allclose(
+            answer["robustness"]["frequencies"], reference["robustness"]["frequencies"], rtol=1e-12
+        )
+        if name == "outputs 1e3, inputs 1e-6":  # kPa and t/h with every output x1e3, every input x1e-3
+            alike, _, _ = answers["kPa and t/h"]
+            for side in ("plant_input", "plant_output"):  # S' = (cI) S (cI)^-1 = S (textbook identity)
+                assert answer["robustness"][side]["peak_sensitivity"] == pytest.approx(
+                    alike["robustness"][side]["peak_sensitivity"], rel=1e-6
+                ), side
         gain, ref = answer["gain"], reference["gain"]
         for key, left, right in (
             ("setpoint", inp, 1 / out),
