@@ -584,3 +584,42 @@ def test_the_slow_pole_advice_names_the_weight_that_speeds_the_mode(client, inpu
     else:
         assert heavier_outputs < nominal  # the outputs set it
         assert "raise the output weights" in advice and "weights.input" not in advice
+
+
+@pytest.mark.parametrize("missing", ["outputs", "inputs"])
+def test_an_operating_point_of_inputs_alone_is_refused_naming_the_missing_list(client, missing):
+    # Found in this audit: with operating_point.inputs alone, /simulate read the setpoints 358
+    # degC and 1.28e5 Pa as steps of 358 degC and 128000 Pa from the model's origin (the inputs
+    # absolute, the outputs deviations) and drove the drum draw to -45309 kg/h with no warning.
+    # Common practice: a linear model's operating point is one steady state, every signal's value.
+    request = _simulation(steps=20)
+    del request["model"]["operating_point"][missing]
+    response = client.post("/simulate", json=request)
+    assert response.status_code == 422
+    errors = {e["pointer"]: e["detail"] for e in response.json()["errors"]}
+    detail = errors[f"/model/operating_point/{missing}"]
+    assert "deviations" in detail and "absolute" in detail
+
+
+def test_the_zone_level_s_poles_are_on_the_circle_not_outside_in_extended_precision(client):
+    # The design's verdict "marginal, not unstable" for the two poles at 1: the loop matrix of
+    # [x; u(k-1)] built from the answer's own sampled model and gains, its eigenvalues in
+    # 40-digit arithmetic (mpmath.eig): none outside 1 + 1e-12, exactly two within 1e-12 of 1.
+    import mpmath
+
+    answer = client.post("/design", json=_design(analysis={"sampled_model": True})).json()
+    sampled = answer["plant"]["sampled_model"]
+    a, b = np.array(sampled["a"]), np.array(sampled["b"])
+    kx, ku = np.array(answer["gain"]["state"]), np.array(answer["gain"]["previous_input"])
+    m = b.shape[1]
+    loop = np.block([[a - b @ kx, b @ (np.eye(m) - ku)], [-kx, np.eye(m) - ku]])
+    with mpmath.workdps(40):
+        moduli = sorted(
+            (abs(z) for z in mpmath.eig(mpmath.matrix(loop.tolist()), left=False, right=False)), reverse=True
+        )
+        assert moduli[0] <= 1 + mpmath.mpf("1e-12")
+        assert [abs(x - 1) < mpmath.mpf("1e-12") for x in moduli[:3]] == [True, True, False]
+        reported = _moduli(answer["closed_loop"]["poles"])
+        assert abs(float(moduli[2]) - reported[2]) < 1e-12
+    assert {mode["cause"] for mode in answer["closed_loop"]["marginal_modes"]} == {"zone_output"}
+    assert "unstable_closed_loop" not in {w["code"] for w in answer["warnings"]}
