@@ -10,7 +10,8 @@ summary sentences and the Markdown for the change record.  Each side may carry i
 ``model.operating_point`` (a plant moved to a new operating point): it is checked and
 designed in deviations from it, and answered in absolute units, as /design does.
 
-The default scenario steps every controlled output at once by its span (1 without spans),
+The default scenario steps every controlled output at once by its span (without one, by its
+natural size, the size of the default filter's noise for it, so that its unit decides nothing),
 from rest on each design's own model (from the design in service's operating point, in
 absolute units, when it has one), and runs for ten time constants of the slower
 dominant closed-loop pole after the step (at least 50 and at most 2000 samples; 200 when a
@@ -36,6 +37,7 @@ from service.pipeline.operating_point import (
     design_to_absolute,
     to_deviations,
 )
+from service.pipeline.plant import DiscretePlant
 from service.pipeline.problems import pointer
 from service.pipeline.simulate import checked_simulation, compute_simulation, performance_report
 from service.pipeline.sweep import simulate_request
@@ -53,6 +55,8 @@ from service.schemas.compare import (
 from service.schemas.design import DesignRequest, DesignResponse, PoleReport
 from service.schemas.robustness import LoopRobustnessReport
 from service.schemas.simulate import PerformanceReport, ScenarioRequest
+from service.solver.estimation.sizes import natural_sizes
+from service.solver.models.scaling import scale_plant
 
 __all__ = [
     "DEFAULT_SEGMENT",
@@ -215,6 +219,27 @@ def _settling(response: DesignResponse, sample_time: float) -> DominantPoleRepor
     return _pole_report(max(left, key=lambda p: math.hypot(p.real, p.imag)), sample_time)
 
 
+def _step_sizes(plant: DiscretePlant) -> list[float]:
+    """One span per output that has one, else the output's natural size in its own unit.
+
+    The natural sizes are those of the default filter's noises
+    (:func:`service.solver.estimation.sizes.natural_sizes`, on the plant with its spans): a
+    step of 1 in an output's own unit would make the comparison's figures depend on that unit,
+    because every output steps at once and each one's step sets how much the others' steps
+    disturb it (a pressure stepped by 1 Pa took the temperature's coupling as a 32 % overshoot,
+    by 1 kPa as 1.8 %).
+    """
+    scaled = scale_plant(plant.a, plant.b, plant.c, input_span=plant.input_spans, output_span=plant.output_spans)
+    sizes = natural_sizes(
+        scaled.a,
+        scaled.b,
+        scaled.c,
+        fixed_outputs=[s.spanned for s in plant.outputs],
+        fixed_inputs=[s.spanned for s in plant.inputs],
+    )
+    return [s.span if s.spanned else float(size) for s, size in zip(plant.outputs, sizes.outputs, strict=True)]
+
+
 def default_scenario(
     responses: list[DesignResponse], inputs: DesignInputs, *, point: OperatingPointValues | None = None
 ) -> ScenarioRequest:
@@ -230,7 +255,7 @@ def default_scenario(
     else:
         slowest = max(t for t in taus if t is not None)
         segment = min(max(math.ceil(SETTLING_TIME_CONSTANTS * slowest), MIN_SEGMENT), MAX_SEGMENT)
-    setpoint = [s.span for s in plant.outputs]
+    setpoint = _step_sizes(plant)
     if point is not None and point.outputs is not None:
         setpoint = [z0 + step for z0, step in zip(point.outputs, setpoint, strict=True)]
     return ScenarioRequest.model_validate(

@@ -37,7 +37,8 @@ class CompareRequest(RequestModel):
     scenario: ScenarioRequest | None = Field(
         default=None,
         description="The scenario both designs run (as /simulate runs it, each with its own estimator). Default: "
-        "a setpoint step of one span (1 without spans) on every controlled output at once, on each design's own "
+        "a setpoint step of one span (without one, of the output's natural size, the size of the default filter's "
+        "noise for it, so that no unit decides the figures) on every controlled output at once, on each design's own "
         "model, long enough for the slower design to settle.",
     )
 

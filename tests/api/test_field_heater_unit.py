@@ -623,3 +623,30 @@ def test_the_zone_level_s_poles_are_on_the_circle_not_outside_in_extended_precis
         assert abs(float(moduli[2]) - reported[2]) < 1e-12
     assert {mode["cause"] for mode in answer["closed_loop"]["marginal_modes"]} == {"zone_output"}
     assert "unstable_closed_loop" not in {w["code"] for w in answer["warnings"]}
+
+
+def test_the_change_review_s_default_scenario_does_not_depend_on_the_units(client):
+    # Found in this audit: without spans the default scenario stepped every output by 1 in its
+    # own unit at once, so the pressure's figures were mostly the temperature step's coupling
+    # into a 1 Pa step: "flash_drum_pressure settles 15 % faster ...; its overshoot rises from
+    # 32 % to 44 %" with the pressure in Pa, "settles 1 % faster", overshoot 1.8 % -> 1.7 %, in kPa.
+    # Reference: the run is linear (no limits), so its settling times and overshoots in % are
+    # the same for steps of any common size; a change of units is such a change (common practice).
+    figures = {}
+    for name, (out, inp) in _UNIT_CASES.items():
+        proposed = _design()
+        proposed["model"] = _model(GAIN_ERROR)
+        body = {"in_service": _in_units(_design(), out, inp), "proposed": _in_units(proposed, out, inp)}
+        answer = client.post("/design/compare", json=body).json()
+        figures[name] = [(*f["settling_time"], *f["overshoot_percent"]) for f in answer["scenario"]["outputs"][:2]]
+    reference = np.array(figures["as written"], dtype=float)
+    for name, values in figures.items():
+        # settling times to 1 %, overshoots to 1 % or 0.01 percentage points (a few are rounding)
+        np.testing.assert_allclose(np.array(values, dtype=float), reference, rtol=1e-2, atol=1e-2, err_msg=name)
+    # with spans the step is one span of each output, as before
+    spanned = _design()
+    for signal, span in zip(spanned["model"]["outputs"], (20.0, 2e4, 100.0), strict=True):
+        signal["span"] = span
+    answer = client.post("/design/compare", json={"in_service": spanned, "proposed": spanned}).json()
+    (change,) = answer["scenario"]["scenario"]["setpoint_changes"]
+    np.testing.assert_allclose(change["setpoint"], np.add(POINT["outputs"], [20.0, 2e4, 100.0]))
