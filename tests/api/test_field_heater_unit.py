@@ -160,10 +160,11 @@ def _least_squares_law(a, b, c, q, r, s, hp, hu):
     return kx, ku, kr, kt, g.T @ g
 
 
-def _python_control_plant(factor: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _python_control_plant(factor: float, extra_dead_time: int = 0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """The plant realized element by element with python-control: ``K (1 - a) / (z - a) z^-d``
     (zero-order hold of a first-order lag, textbook) or ``K / (z - 1) z^-d`` (an integrator),
-    stacked block-diagonally (a non-minimal realization of the same transfer matrix)."""
+    stacked block-diagonally (a non-minimal realization of the same transfer matrix); every
+    element ``factor`` times its gain and ``extra_dead_time`` samples longer (``f z^-d P(z)``)."""
     blocks = []
     for i, row in enumerate(_elements(factor)):
         for j, e in enumerate(row):
@@ -174,7 +175,7 @@ def _python_control_plant(factor: float) -> tuple[np.ndarray, np.ndarray, np.nda
             else:
                 pole = np.exp(-TS / e["time_constants"][0])
                 g = control.tf([e["gain"] * (1.0 - pole)], [1.0, -pole], dt=TS)
-            g = g * control.tf([1.0], [1.0] + [0.0] * int(e["dead_time"]), dt=TS)
+            g = g * control.tf([1.0], [1.0] + [0.0] * (int(e["dead_time"]) + extra_dead_time), dt=TS)
             blocks.append((i, j, control.ss(g)))
     n = sum(s.nstates for _, _, s in blocks)
     a, b, c = np.zeros((n, n)), np.zeros((n, 4)), np.zeros((3, n))
@@ -381,12 +382,13 @@ def test_the_run_on_the_true_plant_is_offset_free_keeps_the_zone_and_the_target(
 def test_the_model_error_study_agrees_with_the_exported_law_on_perturbed_plants(client):
     factors = [0.5, 1.2, 2.0, 3.0]
     answer = client.post(
-        "/design", json=_design(analysis={"model_error": {"gain_factors": factors, "extra_dead_time": [0]}})
+        "/design", json=_design(analysis={"model_error": {"gain_factors": factors, "extra_dead_time": [0, 2]}})
     ).json()
     law = client.post("/design/export", json=_design(format="state_space")).json()
-    for case, factor in zip(answer["model_error"]["cases"], factors, strict=True):
-        assert case["gain_factor"] == factor
-        mine = _law_on_plant(law, _python_control_plant(factor))
+    cases = [(f, d) for d in (0, 2) for f in factors]
+    for case, (factor, extra) in zip(answer["model_error"]["cases"], cases, strict=True):
+        assert (case["gain_factor"], case["extra_dead_time"]) == (factor, extra)
+        mine = _law_on_plant(law, _python_control_plant(factor, extra))
         # the zone level's two poles at 1 are set aside by design; the realization adds one more
         off = np.sort(np.abs(mine[np.abs(np.abs(mine) - 1.0) > 1e-6]))[::-1]
         assert case["nominal_circle_poles"] == 2
@@ -394,9 +396,9 @@ def test_the_model_error_study_agrees_with_the_exported_law_on_perturbed_plants(
         expected = "stable" if off[0] < 1 - 1e-6 else "unstable"
         assert case["rest_verdict"] == expected, factor
     verdicts = [c["rest_verdict"] for c in answer["model_error"]["cases"]]
-    assert verdicts == ["stable", "stable", "stable", "unstable"]
-    (span,) = answer["model_error"]["stable_ranges"]
-    assert (span["lowest_stable_factor"], span["highest_stable_factor"]) == (0.5, 2.0)
+    assert verdicts == ["stable", "stable", "stable", "unstable", "stable", "stable", "unstable", "unstable"]
+    spans = [(r["lowest_stable_factor"], r["highest_stable_factor"]) for r in answer["model_error"]["stable_ranges"]]
+    assert spans == [(0.5, 2.0), (0.5, 1.2)]
 
 
 def test_sweep_and_batch_entries_equal_separate_designs(client):
@@ -422,6 +424,17 @@ def test_sweep_and_batch_entries_equal_separate_designs(client):
         alone = client.post("/design", json=request).json()
         assert item["status"] == "designed" and item["fingerprint"] == alone["fingerprint"]
         assert item["result"]["gain"] == alone["gain"]
+    # with a scenario, each entry's figures of merit are those of /simulate at that value
+    run = _simulation(steps=300)
+    scenario = run.pop("scenario")
+    swept = client.post(
+        "/design/sweep",
+        json={"design": run, "parameter": "move_weight", "signal": 1, "values": [1e-7, 1e-6], "scenario": scenario},
+    ).json()
+    for entry, value in zip(swept["entries"], [1e-7, 1e-6], strict=True):
+        alone = _simulation(steps=300)
+        alone["weights"]["move"][1] = value
+        assert entry["performance"] == client.post("/simulate", json=alone).json()["performance"]
     # a scheduler's second pass with the fingerprints it holds: nothing to recompute
     again = client.post(
         "/design/batch",
