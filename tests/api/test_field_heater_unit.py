@@ -681,3 +681,19 @@ def test_a_full_state_run_on_the_true_plant_says_it_is_not_offset_free(client):
     # the default estimator is offset-free and says nothing of the kind
     default = client.post("/simulate", json=_simulation()).json()
     assert "no_disturbance_model" not in {w["code"] for w in default["warnings"]}
+
+
+def test_the_structured_text_block_carries_the_design_s_warnings(client):
+    # Found in this audit: the Structured Text block of this design said nothing of the zone:
+    # its fixed law leaves the integrating drum level floating (it drifts without the move QP),
+    # which the JSON export and /design warn about (zone_output, zone_outputs_not_in_gains), but
+    # the generated code, the file that goes to the control system's review, did not.
+    # Common practice: generated code carries its design's caveats where the reviewer reads it.
+    source = client.post("/design/export", json=_design(format="structured_text")).text
+    header = source[: source.index("*)")]
+    codes = [w["code"] for w in client.post("/design", json=DESIGN).json()["warnings"]]
+    assert codes and "Design warnings" in header
+    for code in codes:
+        assert f"- {code}:" in header
+    assert "drifts" in header
+    assert source.count("(*") == source.count("*)")  # every comment closed: the messages cannot break out
