@@ -10,7 +10,8 @@ summary sentences and the Markdown for the change record.  Each side may carry i
 ``model.operating_point`` (a plant moved to a new operating point): it is checked and
 designed in deviations from it, and answered in absolute units, as /design does.
 
-The default scenario steps every controlled output at once by its span (1 without spans),
+The default scenario steps every controlled output at once by its span (without one, by its
+natural size, the size of the default filter's noise for it, so that its unit decides nothing),
 from rest on each design's own model (from the design in service's operating point, in
 absolute units, when it has one), and runs for ten time constants of the slower
 dominant closed-loop pole after the step (at least 50 and at most 2000 samples; 200 when a
@@ -36,6 +37,7 @@ from service.pipeline.operating_point import (
     design_to_absolute,
     to_deviations,
 )
+from service.pipeline.plant import DiscretePlant
 from service.pipeline.problems import pointer
 from service.pipeline.simulate import checked_simulation, compute_simulation, performance_report
 from service.pipeline.sweep import simulate_request
@@ -50,9 +52,11 @@ from service.schemas.compare import (
     ScenarioComparison,
     SideReport,
 )
-from service.schemas.design import DesignRequest, DesignResponse
+from service.schemas.design import DesignRequest, DesignResponse, PoleReport
 from service.schemas.robustness import LoopRobustnessReport
 from service.schemas.simulate import PerformanceReport, ScenarioRequest
+from service.solver.estimation.sizes import natural_sizes
+from service.solver.models.scaling import scale_plant
 
 __all__ = [
     "DEFAULT_SEGMENT",
@@ -192,11 +196,48 @@ def _designed(inputs: DesignInputs, point: OperatingPointValues | None) -> Desig
     return response
 
 
-def _dominant(response: DesignResponse, sample_time: float) -> DominantPoleReport:
-    pole = response.closed_loop.poles[0]
+def _pole_report(pole: PoleReport, sample_time: float) -> DominantPoleReport:
     modulus = math.hypot(pole.real, pole.imag)
     tau = -sample_time / math.log(modulus) if 0.0 < modulus < 1.0 else None
     return DominantPoleReport(pole=pole, modulus=modulus, time_constant=tau)
+
+
+def _dominant(response: DesignResponse, sample_time: float) -> DominantPoleReport:
+    return _pole_report(response.closed_loop.poles[0], sample_time)
+
+
+def _settling(response: DesignResponse, sample_time: float) -> DominantPoleReport | None:
+    """The largest pole once each marginal mode's pole is set aside (the nearest pole to it, once each)."""
+    left = list(response.closed_loop.poles)
+    for mode in response.closed_loop.marginal_modes:
+        if not left:
+            break
+        gaps = [abs(complex(p.real, p.imag) - complex(mode.pole.real, mode.pole.imag)) for p in left]
+        left.pop(gaps.index(min(gaps)))
+    if not left:
+        return None
+    return _pole_report(max(left, key=lambda p: math.hypot(p.real, p.imag)), sample_time)
+
+
+def _step_sizes(plant: DiscretePlant) -> list[float]:
+    """One span per output that has one, else the output's natural size in its own unit.
+
+    The natural sizes are those of the default filter's noises
+    (:func:`service.solver.estimation.sizes.natural_sizes`, on the plant with its spans): a
+    step of 1 in an output's own unit would make the comparison's figures depend on that unit,
+    because every output steps at once and each one's step sets how much the others' steps
+    disturb it (a pressure stepped by 1 Pa took the temperature's coupling as a 32 % overshoot,
+    by 1 kPa as 1.8 %).
+    """
+    scaled = scale_plant(plant.a, plant.b, plant.c, input_span=plant.input_spans, output_span=plant.output_spans)
+    sizes = natural_sizes(
+        scaled.a,
+        scaled.b,
+        scaled.c,
+        fixed_outputs=[s.spanned for s in plant.outputs],
+        fixed_inputs=[s.spanned for s in plant.inputs],
+    )
+    return [s.span if s.spanned else float(size) for s, size in zip(plant.outputs, sizes.outputs, strict=True)]
 
 
 def default_scenario(
@@ -214,7 +255,7 @@ def default_scenario(
     else:
         slowest = max(t for t in taus if t is not None)
         segment = min(max(math.ceil(SETTLING_TIME_CONSTANTS * slowest), MIN_SEGMENT), MAX_SEGMENT)
-    setpoint = [s.span for s in plant.outputs]
+    setpoint = _step_sizes(plant)
     if point is not None and point.outputs is not None:
         setpoint = [z0 + step for z0, step in zip(point.outputs, setpoint, strict=True)]
     return ScenarioRequest.model_validate(
@@ -294,6 +335,7 @@ def _side(request: DesignRequest, response: DesignResponse, sample_time: float) 
         fingerprint=design_fingerprint(request),
         poles=response.closed_loop.poles,
         dominant_pole=_dominant(response, sample_time),
+        settling_pole=_settling(response, sample_time),
         stable=response.closed_loop.stable,
         hessian_condition_number=response.hessian.condition_number,
         warnings=[w.code for w in response.warnings],
@@ -326,6 +368,7 @@ def _figures(before: PerformanceReport, after: PerformanceReport) -> list[Figure
                 settling_time=[a.settling_time, b.settling_time],
                 overshoot_percent=[a.overshoot_percent, b.overshoot_percent],
                 integral_absolute_error=[a.integral_absolute_error, b.integral_absolute_error],
+                zone=a.zone,
                 settling_change_percent=change,
             )
         )

@@ -7,7 +7,7 @@ the JSON carries them in full.
 
 from __future__ import annotations
 
-from service.schemas.compare import CompareResponse, LoopRobustnessChange, SideReport
+from service.schemas.compare import CompareResponse, DominantPoleReport, LoopRobustnessChange, SideReport
 from service.schemas.design import ADVISORY
 
 __all__ = ["HIGH_PEAK_SENSITIVITY", "compare_markdown", "summary"]
@@ -30,6 +30,12 @@ def _direction(before: float, after: float, up: str = "rises", down: str = "fall
 def _speed_sentences(answer: CompareResponse) -> list[str]:
     out = []
     for f in answer.scenario.outputs:
+        if f.zone:
+            out.append(
+                f"{f.name} is a zone output: it has no setpoint to settle at (the move QP of /simulate holds it "
+                f"in its zone), so the scenario gives it no settling figures."
+            )
+            continue
         (s0, s1), (o0, o1) = f.settling_time, f.overshoot_percent
         if s0 is not None and s1 is not None and f.settling_change_percent is not None:
             change = f.settling_change_percent
@@ -103,8 +109,9 @@ def summary(answer: CompareResponse, *, same_model: bool) -> list[str]:
     if verdicts[1] == "unstable":
         out.append("The proposed design's closed loop is UNSTABLE: do not put it in service.")
     elif verdicts[1] == "marginal":
+        also = " (as is the one in service)" if verdicts[0] == "marginal" else ""
         out.append(
-            "The proposed design's closed loop is marginal, not unstable: a pole sits on the unit circle "
+            f"The proposed design's closed loop is marginal{also}, not unstable: a pole sits on the unit circle "
             "(its warnings name the cause and the fix; /design lists it under closed_loop.marginal_modes), "
             "so the loop does not settle along that mode"
             + (" (the one in service is stable)." if verdicts[0] == "stable" else ".")
@@ -117,7 +124,17 @@ def summary(answer: CompareResponse, *, same_model: bool) -> list[str]:
     out += _speed_sentences(answer)
     out += _robustness_sentences(answer)
     p0, p1 = before.dominant_pole, after.dominant_pole
-    text = f"The dominant closed-loop pole moves from modulus {p0.modulus:.4g} to {p1.modulus:.4g}"
+    what = "The dominant closed-loop pole"
+    if (
+        before.settling_pole is not None
+        and after.settling_pole is not None
+        and (before.settling_pole != p0 or after.settling_pole != p1)
+    ):
+        # a pole held on the unit circle by a named cause (a zone output's integrator) does not
+        # move with the tuning: the mode the loop settles by is the largest of the others
+        p0, p1 = before.settling_pole, after.settling_pole
+        what = "The dominant closed-loop pole off the unit circle (the poles on it are named in the warnings)"
+    text = f"{what} moves from modulus {p0.modulus:.4g} to {p1.modulus:.4g}"
     if p0.time_constant is not None and p1.time_constant is not None:
         text += f" (time constant {_g(p0.time_constant)} -> {_g(p1.time_constant)})"
     out.append(text + ".")
@@ -142,6 +159,14 @@ def summary(answer: CompareResponse, *, same_model: bool) -> list[str]:
     if new:
         out.append(f"New warnings with the proposed design: {', '.join(new)}.")
     return out
+
+
+def _modulus(pole: DominantPoleReport | None) -> str:
+    return "none" if pole is None else f"{pole.modulus:.4g}"
+
+
+def _time_constant(pole: DominantPoleReport | None) -> str:
+    return "none" if pole is None else _g(pole.time_constant)
 
 
 def _row(*cells: object) -> str:
@@ -170,6 +195,14 @@ def compare_markdown(answer: CompareResponse, *, largest: int = 20) -> str:
         _row("stable", *(_STABLE_CELL[_verdict(side)] for side in (b, a))),
         _row("dominant pole modulus", f"{b.dominant_pole.modulus:.4g}", f"{a.dominant_pole.modulus:.4g}"),
         _row("dominant time constant", _g(b.dominant_pole.time_constant), _g(a.dominant_pole.time_constant)),
+        *(
+            [
+                _row("dominant pole off the circle", *(_modulus(side.settling_pole) for side in (b, a))),
+                _row("its time constant", *(_time_constant(side.settling_pole) for side in (b, a))),
+            ]
+            if any(side.settling_pole != side.dominant_pole for side in (b, a))
+            else []
+        ),
         _row("Hessian condition number", f"{b.hessian_condition_number:.3g}", f"{a.hessian_condition_number:.3g}"),
         _row("warnings", ", ".join(b.warnings) or "none", ", ".join(a.warnings) or "none"),
     ]
@@ -199,6 +232,9 @@ def compare_markdown(answer: CompareResponse, *, largest: int = 20) -> str:
         _row("---", "---", "---", "---", "---", "---"),
     ]
     for f in answer.scenario.outputs:
+        if f.zone:
+            lines.append(_row(f"{f.name} (zone output: no setpoint to settle at)", "", "", "", "", ""))
+            continue
         change = "" if f.settling_change_percent is None else f"{f.settling_change_percent:+.0f} %"
         lines.append(
             _row(

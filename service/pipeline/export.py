@@ -417,6 +417,7 @@ def block_source(request: ExportRequest, inputs: ExportInputs, outcome: ExportOu
             generated=generated,
             sample_time=plant.sample_time,
             estimator=f"{est.kind}, disturbance model {est.disturbance}",
+            warnings=tuple((w.code, w.message) for w in outcome.design.warnings),
         ),
         input_min=None if limits is None else limits[0],
         input_max=None if limits is None else limits[1],

@@ -171,6 +171,22 @@ def check_operating_point(request: DesignRequest, point: OperatingPointValues, p
                     f"needs one value per {what[:-1]} ({len(signals)}), got {len(values)}",
                 )
             )
+    # A steady state is a whole: with one list alone the others' values would be deviations
+    # from the model's origin while the given ones are absolute (a setpoint of 358 degC read as a
+    # step of 358 degC), a silently wrong run.
+    given = [(name, what) for name, values, signals, what in sizes if values is not None and signals]
+    for name, values, signals, what in sizes:
+        if values is None and signals and given:
+            other, other_what = given[0]
+            problems.append(
+                FieldProblem(
+                    pointer("model", "operating_point", name),
+                    f"the operating point gives the {other_what}' values ({other}) but not the {what}': their "
+                    f"values in this request and its answer would then be deviations from the model's origin "
+                    f"while the {other_what}' are absolute. Give one value per {what[:-1]} ({len(signals)}), "
+                    f"its steady value at this operating point",
+                )
+            )
     py = int(plant.c_measured.shape[0])
     full_state = isinstance(request, ExportRequest) and request.estimator.kind == "full_state"
     if point.measured is not None and not plant.measured_own:

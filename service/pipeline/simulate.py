@@ -440,7 +440,18 @@ def _warnings(inputs: SimulationInputs, outcome: SimulationOutcome) -> list[Warn
                 f"figures of merit are null. Check the true plant against the model, or detune the controller.",
             )
         )
-    if not outcome.estimator.full_state and outcome.estimator.disturbance_size == 0:
+    if outcome.estimator.full_state:
+        out.append(
+            WarningReport(
+                code="no_disturbance_model",
+                message="The full_state estimator reads the plant's states and models no disturbance: the loop is "
+                "not offset-free, so an unmeasured disturbance or a model error (a true_plant that differs from "
+                "the model) leaves a steady offset on the controlled outputs (final_offset shows it). Use an "
+                "estimator that reads the outputs with a disturbance model (the default per_output) for "
+                "offset-free control.",
+            )
+        )
+    elif outcome.estimator.disturbance_size == 0:
         out.append(
             WarningReport(
                 code="no_disturbance_model",

@@ -122,6 +122,8 @@ class BlockText:
     generated: str
     sample_time: float
     estimator: str
+    #: The design's warnings (code, message), as /design answers them, written into the header.
+    warnings: tuple[tuple[str, str], ...] = ()
 
 
 def _wrap(text: str, width: int = 92, indent: str = "   ") -> list[str]:
@@ -248,6 +250,19 @@ def structured_text(
                 "   variables and keeps its state in deviations (zero: at rest at the operating point).",
             ]
             if absolute
+            else []
+        ),
+        *(
+            [
+                "",
+                "   Design warnings (as /design answers them for this request; resolve each before use):",
+                *(
+                    line
+                    for code, message in about.warnings
+                    for line in _wrap(f"- {_comment(code)}: {_comment(message)}", indent="     ")
+                ),
+            ]
+            if about.warnings
             else []
         ),
         "",

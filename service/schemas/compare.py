@@ -37,7 +37,8 @@ class CompareRequest(RequestModel):
     scenario: ScenarioRequest | None = Field(
         default=None,
         description="The scenario both designs run (as /simulate runs it, each with its own estimator). Default: "
-        "a setpoint step of one span (1 without spans) on every controlled output at once, on each design's own "
+        "a setpoint step of one span (without one, of the output's natural size, the size of the default filter's "
+        "noise for it, so that no unit decides the figures) on every controlled output at once, on each design's own "
         "model, long enough for the slower design to settle.",
     )
 
@@ -77,6 +78,12 @@ class SideReport(ResponseModel):
     fingerprint: str = Field(description="The fingerprint /design gives this request.")
     poles: list[PoleReport] = Field(description="Closed-loop poles, by descending modulus (as /design).")
     dominant_pole: DominantPoleReport
+    settling_pole: DominantPoleReport | None = Field(
+        default=None,
+        description="The pole of largest modulus once the poles of closed_loop.marginal_modes are set aside (a "
+        "zone output's integrator, a free input direction: on the unit circle by a named cause): the mode "
+        "the loop settles by; equal to dominant_pole when no pole is set aside, null when none is left.",
+    )
     stable: bool
     hessian_condition_number: float
     warnings: list[str] = Field(description="Codes of /design's warnings.")
@@ -112,6 +119,11 @@ class FigureChange(ResponseModel):
     settling_time: list[float | None]
     overshoot_percent: list[float | None]
     integral_absolute_error: list[float | None]
+    zone: bool = Field(
+        default=False,
+        description="A zone output (zones): held in its range by the move QP, it has no setpoint to settle at, "
+        "so it has no settling figures.",
+    )
     settling_change_percent: float | None = Field(
         description="100 (proposed - in service) / in service of the settling time (negative: faster)."
     )

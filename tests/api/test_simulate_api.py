@@ -180,8 +180,12 @@ def test_a_filter_without_a_disturbance_model_leaves_an_offset_and_says_so(clien
     answer = post(client, body).json()
     assert "no_disturbance_model" not in [w["code"] for w in answer["warnings"]]
     assert max(abs(f["final_offset"]) for f in answer["performance"]["outputs"]) < 1e-6
-    body["estimator"] = {"kind": "full_state"}  # the state read as measured: no estimator to warn about
-    assert "no_disturbance_model" not in [w["code"] for w in post(client, body).json()["warnings"]]
+    # full_state reads the states and models no disturbance either: under the same mismatch it
+    # settles off the setpoint too, and says so (found in a field-layout audit: it had been silent)
+    body["estimator"] = {"kind": "full_state"}
+    answer = post(client, body).json()
+    assert "no_disturbance_model" in [w["code"] for w in answer["warnings"]]
+    assert max(abs(f["final_offset"]) for f in answer["performance"]["outputs"]) > 1e-3
 
 
 def test_the_kalman_gain_is_the_riccati_one_for_the_posted_covariances(client):

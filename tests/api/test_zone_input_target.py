@@ -166,12 +166,9 @@ def test_the_fragility_advice_leaves_the_floating_zone_output_out_at_the_plant_o
     answer = client.post("/design", json=request).json()
     at_output = answer["robustness"]["plant_output"]
     assert at_output["peak_sensitivity"] > 2.0
-    # at the grid's low end (the steady state), not a resonance. The grid's span follows the
-    # loop's slowest pole off z = 1, so where the low end lies depends on how the zone's own
-    # pole at z = 1 rounds: on this project's CI machine of 2026-12-04 it lies within 1e-12 of
-    # 1 (set aside) and the grid starts four decades below Nyquist, at 3.1e-4 rad/s, where the
-    # test had asked for below 1e-6
-    assert at_output["peak_sensitivity_frequency"] == min(answer["robustness"]["frequencies"])
+    # the steady state, not a resonance: the peak is at the grid's low end (a decade below the
+    # slowest pole off z = 1), where the level's take-up grows towards zero frequency
+    assert at_output["peak_sensitivity_frequency"] == answer["robustness"]["frequencies"][0]
     fragile = [w["message"] for w in answer["warnings"] if w["code"] == "high_peak_sensitivity"]
     assert not any(f"at the plant output {at_output['peak_sensitivity']:.3g}" in m for m in fragile)
     at_input = answer["robustness"]["plant_input"]["peak_sensitivity"]

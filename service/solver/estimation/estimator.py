@@ -268,13 +268,17 @@ def _integrator_space(a: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDAr
     sample time).  Returns ``(N, d)``; ``N`` has no columns when no pole is at 1.
     """
     n = a.shape[0]
-    if n == 0 or integrating_poles(a, poles=open_loop_poles(a)) == 0:
+    count = 0 if n == 0 else integrating_poles(a, poles=open_loop_poles(a))
+    if count == 0:
         return np.zeros((n, 0)), np.ones(n)
     _, (scale, _) = scipy.linalg.matrix_balance(a, permute=False, separate=True)
     balanced = a / scale[:, None] * scale[None, :]
     _, s, vt = np.linalg.svd(np.eye(n) - balanced)
     limit = DETECTABILITY_TOLERANCE * max(float(np.linalg.norm(balanced, 1)), 1.0)
-    rank = min(int(np.count_nonzero(s > limit)), n - 1)  # at least one mode: a pole is at 1
+    # At least one mode and at most ``count`` (the geometric multiplicity of the eigenvalue 1 is
+    # at most its algebraic one): a slow mode off 1 whose singular value the tolerance cannot
+    # tell from zero on a badly scaled model is not an integrator.
+    rank = min(max(int(np.count_nonzero(s > limit)), n - count), n - 1)
     return scale[:, None] * vt[rank:].T, scale
 
 

@@ -230,6 +230,8 @@ def slow_pole_advice(
     estimator_poles: ArrayLike | None = None,
     keep_move_weights: bool = False,
     poles: ArrayLike | None = None,
+    b: ArrayLike | None = None,
+    c: ArrayLike | None = None,
 ) -> Diagnostic | None:
     """Advise when the dominant closed-loop pole is slower than the prediction horizon.
 
@@ -249,6 +251,9 @@ def slow_pole_advice(
         Poles of the estimator (``Estimator.poles``); they join the loop's poles.
     poles : array_like of complex, optional
         The eigenvalues of ``a`` when the caller has them (they are computed otherwise).
+    b, c : array_like, optional
+        The plant's input and output matrices: with them and input targets, a slow mode the
+        input weight sets (a spare direction of the inputs) is advised as such.
 
     Returns
     -------
@@ -288,6 +293,13 @@ def slow_pole_advice(
             "model, or give weight to an output that sees this mode; more tuning will not "
             "speed it up otherwise."
         )
+    elif owner == "controller" and b is not None and c is not None and _input_target_mode(a, b, c, design, pole):
+        whose = (
+            "It is a mode of the spare inputs: along a direction of the inputs that moves no weighted "
+            "output, only the input targets' weight (weights.input) pulls the inputs back, against "
+            "their move weights. Raise weights.input of the inputs along it, or lower their move "
+            "weights, to speed it up; heavier output weights slow it further."
+        )
     elif owner == "estimator":
         whose = (
             "It is an estimator pole: the filter corrects its estimate slowly. Raise the "
@@ -307,6 +319,40 @@ def slow_pole_advice(
         f"{_seconds(tau, sample_time)}, longer than the prediction horizon of {hp} samples, so "
         f"the controller plans over a window in which this mode does not settle. {whose}",
     )
+
+
+def _input_target_mode(a: ArrayLike, b: ArrayLike, c: ArrayLike, design: ControllerDesign, pole: complex) -> bool:
+    """Whether the slow closed-loop mode of ``pole`` is held back by the input targets' weight.
+
+    The design is made again with the input weight ``S`` doubled, everything else equal: along
+    a spare direction of the inputs (one that moves no weighted output) only ``S`` pulls the
+    inputs, against their move weights, so the mode's distance from the unit circle grows with
+    it (by half again at least, here), while heavier output weights would slow it.  A mode the
+    outputs set hardly moves.  Both designs are the service's own, so the test is free of units.
+    """
+    if design.input_penalty is None:
+        return False
+    pred = design.prediction
+    try:
+        other = design_controller(
+            a,
+            b,
+            c,
+            output_weight=design.output_weight,
+            move_weight=design.move_weight,
+            prediction=pred.prediction,
+            control=pred.control,
+            first_penalized=pred.first_penalized,
+            blocking=design.blocking,
+            input_weight=2.0 * design.input_penalty.weight,
+        )
+    except NumericalError:  # pragma: no cover - a heavier input weight keeps the Hessian definite
+        return False
+    moduli = np.abs(other.loop.poles)
+    inside = moduli[(moduli > 0.0) & (moduli < 1.0 - UNIT_CIRCLE_MARGIN)]
+    if inside.size == 0:  # pragma: no cover - the nominal design had one
+        return False
+    return bool(1.0 - inside.max() > 1.5 * (1.0 - abs(pole)))
 
 
 # --- peak sensitivity ----------------------------------------------------------------------
@@ -711,6 +757,8 @@ def tuning_advice(
             estimator_poles=estimator_poles,
             poles=poles,
             keep_move_weights=hessian is not None or design.hessian.condition_number > ILL_CONDITIONED,
+            b=b,
+            c=c,
         ),
         None
         if analysis is None

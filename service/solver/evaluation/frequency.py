@@ -241,12 +241,15 @@ def loop_decades(poles: NDArray[np.complex128], *, sample_time: float, decades: 
     float
         ``max(decades, log10(pi/Ts / (w_slow / 10)))`` capped at :data:`MAX_DECADES`, with
         ``w_slow = min |ln z| / Ts`` over the poles that are neither at ``z = 0`` nor at
-        ``z = 1`` (the continuous-time equivalent ``s = ln(z) / Ts``; a mode's corner
+        ``z = 1`` (within ``MARGINAL_TOLERANCE``) (the continuous-time equivalent ``s = ln(z) / Ts``; a mode's corner
         frequency is ``|s|``).  Crossovers and peaks sit near the corners of the loop's own
         poles, so the grid then covers them however slow the loop is.
     """
     z = np.asarray(poles, dtype=complex)
-    z = z[(np.abs(z) > 1e-300) & (np.abs(z - 1.0) > 1e-12)]
+    # A pole at 1 (an integrator, a zone output's or a free direction's pole) sits there
+    # to rounding, and its rounding moves with the signals' units: every pole within the
+    # verdicts' tolerance of 1 is at 1, so the grid is the same in any units.
+    z = z[(np.abs(z) > 1e-300) & (np.abs(z - 1.0) > MARGINAL_TOLERANCE)]
     if z.size == 0:
         return float(decades)
     corner = float(np.abs(np.log(z)).min()) / sample_time
