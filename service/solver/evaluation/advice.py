@@ -53,6 +53,7 @@ from __future__ import annotations
 import math
 import warnings
 from collections.abc import Sequence
+from typing import Literal
 
 import numpy as np
 import scipy.linalg
@@ -92,6 +93,37 @@ def _seconds(samples: float, sample_time: float | None) -> str:
     return "" if sample_time is None else f" ({samples * sample_time:.4g} in the unit of the sample time)"
 
 
+def _redesigned(
+    a: ArrayLike,
+    b: ArrayLike,
+    c: ArrayLike,
+    design: ControllerDesign,
+    *,
+    move_weight: NDArray[np.float64] | None = None,
+    control: int | None = None,
+    blocking: Sequence[int] | Literal["same"] | None = "same",
+    input_weight: NDArray[np.float64] | None = None,
+) -> ControllerDesign:
+    """The same design (weights, horizons, terminal weight, blocking, input weight) with the given changes.
+
+    Raises :class:`service.errors.NumericalError` as :func:`design_controller` does.
+    """
+    pred = design.prediction
+    return design_controller(
+        a,
+        b,
+        c,
+        output_weight=design.output_weight,
+        move_weight=design.move_weight if move_weight is None else move_weight,
+        prediction=pred.prediction,
+        control=pred.control if control is None else control,
+        first_penalized=pred.first_penalized,
+        terminal="none" if design.terminal is None else "riccati",
+        blocking=design.blocking if blocking == "same" else blocking,
+        input_weight=design.input_weight if input_weight is None else input_weight,
+    )
+
+
 # --- ill-conditioned Hessian ---------------------------------------------------------------
 
 
@@ -116,21 +148,10 @@ def _condition_number(
     if design.terminal is None and design.blocking is None and (design.input_penalty is None or same_horizon):
         # (the input-target term's blocks depend on Hu, so a shorter Hu with it is designed anew)
         return _updated_condition_number(design, move_scale=move_scale, control=control)
-    pred = design.prediction
     blocking = None if design.blocking is None else [j for j in design.blocking if j < control]
     try:
-        other = design_controller(
-            a,
-            b,
-            c,
-            output_weight=design.output_weight,
-            move_weight=move_scale * design.move_weight,
-            prediction=pred.prediction,
-            control=control,
-            first_penalized=pred.first_penalized,
-            terminal="none" if design.terminal is None else "riccati",
-            blocking=blocking,
-            input_weight=design.input_weight,
+        other = _redesigned(
+            a, b, c, design, move_weight=move_scale * design.move_weight, control=control, blocking=blocking
         )
     except NumericalError:
         return None
@@ -332,20 +353,8 @@ def _input_target_mode(a: ArrayLike, b: ArrayLike, c: ArrayLike, design: Control
     """
     if design.input_penalty is None:
         return False
-    pred = design.prediction
     try:
-        other = design_controller(
-            a,
-            b,
-            c,
-            output_weight=design.output_weight,
-            move_weight=design.move_weight,
-            prediction=pred.prediction,
-            control=pred.control,
-            first_penalized=pred.first_penalized,
-            blocking=design.blocking,
-            input_weight=2.0 * design.input_penalty.weight,
-        )
+        other = _redesigned(a, b, c, design, input_weight=2.0 * design.input_penalty.weight)
     except NumericalError:  # pragma: no cover - a heavier input weight keeps the Hessian definite
         return False
     moduli = np.abs(other.loop.poles)
