@@ -367,6 +367,16 @@ def _seconds(duration: str) -> float:
     return sum(float(n) * units[u] for n, u in parts)
 
 
+def test_the_image_runs_as_many_workers_as_the_deployments_are_sized_for() -> None:
+    # the compose file's and the pod's memory limits hold one worker's processes at their caps
+    # (tests/api/test_memory_bound.py); the image's own default had been two workers
+    compose_default = re.fullmatch(
+        r"\$\{MOVECAST_WORKERS:-(\d+)\}", str(_compose_service()["environment"]["MOVECAST_WORKERS"])
+    )
+    assert compose_default is not None
+    assert _image_env()["MOVECAST_WORKERS"] == compose_default.group(1) == _settings()["MOVECAST_WORKERS"] == "1"
+
+
 def test_compose_builds_the_dockerfile_from_the_repository_root() -> None:
     build = _compose_service()["build"]
     context = (DEPLOY / build["context"]).resolve()
