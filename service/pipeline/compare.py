@@ -21,7 +21,7 @@ loop does not settle), so that both designs can settle.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, replace
 from typing import TypeVar
 
@@ -219,15 +219,20 @@ def _settling(response: DesignResponse, sample_time: float) -> DominantPoleRepor
     return _pole_report(max(left, key=lambda p: math.hypot(p.real, p.imag)), sample_time)
 
 
-def _step_sizes(plant: DiscretePlant) -> list[float]:
-    """One span per output that has one, else the output's natural size in its own unit.
+#: A tag or state: ``(kind, name)`` with kind ``"inputs"``, ``"outputs"``, ``"states"`` or ``"disturbances"``.
+SignalKey = tuple[str, str]
+
+
+def signal_sizes(plant: DiscretePlant) -> dict[SignalKey, float]:
+    """Each signal's size in its own unit: its span where it has one, else its natural size.
 
     The natural sizes are those of the default filter's noises
-    (:func:`service.solver.estimation.sizes.natural_sizes`, on the plant with its spans): a
-    step of 1 in an output's own unit would make the comparison's figures depend on that unit,
-    because every output steps at once and each one's step sets how much the others' steps
-    disturb it (a pressure stepped by 1 Pa took the temperature's coupling as a 32 % overshoot,
-    by 1 kPa as 1.8 %).
+    (:func:`service.solver.estimation.sizes.natural_sizes`, on the plant with its spans; a
+    scaled plant keeps the model's states, so the states' sizes are in the model's own state
+    coordinates).  A measured disturbance without a span, which the natural sizes do not
+    cover, and a state no output sees (natural size 0) count 1.  They make the comparison free
+    of the units the signals are written in: the default scenario's step and the ranking of
+    the gain changes.
     """
     scaled = scale_plant(plant.a, plant.b, plant.c, input_span=plant.input_spans, output_span=plant.output_spans)
     sizes = natural_sizes(
@@ -237,7 +242,27 @@ def _step_sizes(plant: DiscretePlant) -> list[float]:
         fixed_outputs=[s.spanned for s in plant.outputs],
         fixed_inputs=[s.spanned for s in plant.inputs],
     )
-    return [s.span if s.spanned else float(size) for s, size in zip(plant.outputs, sizes.outputs, strict=True)]
+    found: dict[SignalKey, float] = {}
+    for kind, signals, natural in (("outputs", plant.outputs, sizes.outputs), ("inputs", plant.inputs, sizes.inputs)):
+        for signal, size in zip(signals, natural, strict=True):
+            found[(kind, signal.name)] = signal.span if signal.spanned else (float(size) if size > 0.0 else 1.0)
+    for name, size in zip(plant.state_labels, sizes.states, strict=True):
+        found[("states", name)] = float(size) if size > 0.0 else 1.0
+    for signal in plant.disturbances:
+        found[("disturbances", signal.name)] = signal.span if signal.spanned else 1.0
+    return found
+
+
+def _step_sizes(plant: DiscretePlant) -> list[float]:
+    """One span per output that has one, else the output's natural size in its own unit (:func:`signal_sizes`).
+
+    A step of 1 in an output's own unit would make the comparison's figures depend on that
+    unit, because every output steps at once and each one's step sets how much the others'
+    steps disturb it (a pressure stepped by 1 Pa took the temperature's coupling as a 32 %
+    overshoot, by 1 kPa as 1.8 %).
+    """
+    sizes = signal_sizes(plant)
+    return [sizes[("outputs", s.name)] for s in plant.outputs]
 
 
 def default_scenario(
@@ -279,31 +304,26 @@ def _gain_entries(response: DesignResponse) -> dict[tuple[str, str, str], float]
     return out
 
 
-#: Which signal list names the columns of each gain (Kx's columns are states: no span).
-_COLUMN_SIGNALS = {"setpoint": "outputs", "previous_input": "inputs", "disturbance": "disturbances"}
+#: Which signals name the columns of each gain.
+_COLUMN_SIGNALS = {"setpoint": "outputs", "state": "states", "previous_input": "inputs", "disturbance": "disturbances"}
 
 
-def _span_of(responses: tuple[DesignResponse, ...], signals: str, name: str) -> float:
-    """The span of tag ``name`` in list ``signals`` of the first design that gives one; 1 without."""
-    for response in responses:
-        for signal in getattr(response.plant, signals):
-            if signal.name == name and signal.span is not None:
-                return float(signal.span)
-    return 1.0
-
-
-def gain_changes(before: DesignResponse, after: DesignResponse) -> list[GainChange]:
+def gain_changes(
+    before: DesignResponse, after: DesignResponse, sizes: Mapping[SignalKey, float] | None = None
+) -> list[GainChange]:
     """Every entry of Kr, Kx, Ku and Kd of either design, largest scaled change first (unmatched last).
 
-    The scaled change is ``change * span(column) / span(row)``: the change of the gain between
-    the signals divided by their spans (the in-service design's spans, the proposed one's
-    where it has none; 1 for a tag without a span and for a state), so that gains in different
-    engineering units rank by what they do to the signals in their typical ranges.  Without
-    any span it is the change itself.
+    The scaled change is ``change * size(column) / size(row)`` (rows are inputs, columns
+    outputs, states, inputs or measured disturbances): the change of the gain between the
+    signals divided by their sizes, so that gains in different engineering units rank by what
+    they do to the signals in their typical ranges, and the ranking does not depend on the
+    units the tags are written in.  ``sizes`` (:func:`signal_sizes`; the design in service's,
+    then the proposed one's for what only it has) gives them; a signal it lacks counts 1, and
+    without ``sizes`` it is the change itself.
     """
     old, new = _gain_entries(before), _gain_entries(after)
     keys = list(old) + [k for k in new if k not in old]
-    both = (before, after)
+    found = sizes or {}
     changes = []
     for key in keys:
         a, b = old.get(key), new.get(key)
@@ -311,9 +331,8 @@ def gain_changes(before: DesignResponse, after: DesignResponse) -> list[GainChan
         relative = None if change is None or a is None or a == 0.0 else change / abs(a)
         scaled = None
         if change is not None:
-            column = _COLUMN_SIGNALS.get(key[0])
-            column_span = 1.0 if column is None else _span_of(both, column, key[2])
-            scaled = change * column_span / _span_of(both, "inputs", key[1])
+            column = found.get((_COLUMN_SIGNALS[key[0]], key[2]), 1.0)
+            scaled = change * column / found.get(("inputs", key[1]), 1.0)
         changes.append(
             GainChange(
                 gain=key[0],
@@ -409,7 +428,11 @@ def compare_response(request: CompareRequest, inputs: CompareInputs, caps: Caps)
         )
     answer = CompareResponse(
         summary=[],
-        gain_changes=gain_changes(before, after),
+        gain_changes=gain_changes(
+            before,
+            after,
+            {**signal_sizes(inputs.proposed_inputs.plant), **signal_sizes(inputs.in_service_inputs.plant)},
+        ),
         in_service=_side(inputs.in_service, before, sample_time),
         proposed=_side(inputs.proposed, after, sample_time),
         robustness=robustness,

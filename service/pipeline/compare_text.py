@@ -144,10 +144,10 @@ def summary(answer: CompareResponse, *, same_model: bool) -> list[str]:
     if matched and matched[0].change:
         c = matched[0]
         relative = "" if c.relative_change is None else f" ({100 * c.relative_change:+.0f} %)"
-        # ranked by the change between span-scaled signals; say so when a span made a difference
+        # ranked by the change between signals divided by their sizes; say so when a size made a difference
         scaled = any(g.scaled_change != g.change for g in matched)
         out.append(
-            f"The largest gain change{' (signals divided by their spans)' if scaled else ''} is "
+            f"The largest gain change{' (signals divided by their spans or natural sizes)' if scaled else ''} is "
             f"{_GAIN_SYMBOL[c.gain]}[{c.row}, {c.column}]: {_g(c.in_service)} -> {_g(c.proposed)}{relative}."
         )
     if not same_model:

@@ -54,10 +54,11 @@ class GainChange(ResponseModel):
     change: float | None = Field(description="proposed - in_service.")
     relative_change: float | None = Field(description="change / |in_service|; null where in_service is 0 or absent.")
     scaled_change: float | None = Field(
-        description="change * span(column) / span(row): the change between the signals divided by their spans "
-        "(the in-service design's tags, the proposed one's where it gives none; span 1 for a tag without one and "
-        "for a state), unit-free where both tags have spans; the list is ranked by it. Null where either design "
-        "has no such entry."
+        description="change * size(column) / size(row): the change between the signals divided by their sizes, "
+        "a tag's span where it has one, else its natural size in its own unit (a state's natural size for Kx; 1 "
+        "for a measured disturbance without a span and for a state no output sees), from the in-service design's "
+        "model, the proposed one's for what only it has. It does not depend on the units the tags are written in; "
+        "the list is ranked by it. Null where either design has no such entry."
     )
 
 

@@ -79,16 +79,17 @@ def test_every_gain_entry_changes_by_the_difference_of_the_designs_largest_first
         assert c["change"] == pytest.approx(b - a, abs=1e-15)
         if a != 0.0:
             assert c["relative_change"] == pytest.approx((b - a) / abs(a), rel=1e-12)
-    sizes = [abs(c["change"]) for c in changes]
-    assert sizes == sorted(sizes, reverse=True)
-    assert sizes[0] > 0
+    ranked = [abs(c["scaled_change"]) for c in changes]  # by the change between signals divided by their sizes
+    assert ranked == sorted(ranked, reverse=True)
+    assert ranked[0] > 0
 
 
 def test_gain_changes_rank_by_the_change_between_span_scaled_signals(client):
     # Badly scaled units (invented spans): a temperature whose span is 0.5 degC beside a level
     # in % of 100.  Entries are ranked by change * span(column) / span(row), the gain between
-    # signals divided by their spans (common practice for comparing gains in mixed units),
-    # with span 1 for states; computed here from the two /design answers and the tags.
+    # signals divided by their spans (common practice for comparing gains in mixed units);
+    # computed here from the two /design answers and the tags. A state has no span: its
+    # column is divided by one size, the state's natural size (the same for every row).
     body = _faster_level()
     for side in ("in_service", "proposed"):
         model = body[side]["model"]
@@ -100,19 +101,28 @@ def test_gain_changes_rank_by_the_change_between_span_scaled_signals(client):
     old, new = (client.post("/design", json=body[s]).json()["gain"] for s in ("in_service", "proposed"))
     model = body["in_service"]["model"]
     spans = {t["name"]: t["span"] for t in model["inputs"] + model["outputs"]}
+    state_sizes: dict[str, list[float]] = {}
     for c in answer["gain_changes"]:
         i = old["labels"]["rows"].index(c["row"])
         j = old["labels"][c["gain"]].index(c["column"])
         change = new[c["gain"]][i][j] - old[c["gain"]][i][j]
-        column = 1.0 if c["gain"] == "state" else spans[c["column"]]
+        if c["gain"] == "state":
+            if change:
+                state_sizes.setdefault(c["column"], []).append(c["scaled_change"] * spans[c["row"]] / change)
+            continue
+        column = spans[c["column"]]
         assert c["scaled_change"] == pytest.approx(change * column / spans[c["row"]], rel=1e-12, abs=1e-300)
+    assert state_sizes
+    for found in state_sizes.values():
+        assert min(found) > 0
+        np.testing.assert_allclose(found, found[0], rtol=1e-9)
     scaled = [abs(c["scaled_change"]) for c in answer["gain_changes"]]
     assert scaled == sorted(scaled, reverse=True)
     absolute = max(answer["gain_changes"], key=lambda c: abs(c["change"]))
     top = answer["gain_changes"][0]
     assert (top["gain"], top["column"]) != (absolute["gain"], absolute["column"]), "the spans change the ranking"
     text = " ".join(answer["summary"])
-    assert "The largest gain change (signals divided by their spans) is" in text
+    assert "The largest gain change (signals divided by their spans or natural sizes) is" in text
     assert f"[{top['row']}, {top['column']}]" in text
 
 

@@ -697,3 +697,31 @@ def test_the_structured_text_block_carries_the_design_s_warnings(client):
         assert f"- {code}:" in header
     assert "drifts" in header
     assert source.count("(*") == source.count("*)")  # every comment closed: the messages cannot break out
+
+
+def test_the_change_review_ranks_the_gain_changes_the_same_in_any_units(client):
+    # Left open by this audit, then fixed: the ranking divided the change by the spans, 1 for a
+    # tag without one and for a state, so with the pressure in Pa the record named
+    # Kr[circulation, temperature] as the largest change and in kPa a Kx entry. Tags without
+    # spans and states are now divided by their natural sizes. Reference: a change of units is
+    # a change of coordinates, under which the change between signals in their typical ranges
+    # is the same (common practice); the entries are matched by tag across the unit systems.
+    ranked = {}
+    for name, (out, inp) in _UNIT_CASES.items():
+        proposed = _design()
+        proposed["model"] = _model(GAIN_ERROR)
+        body = {"in_service": _in_units(_design(), out, inp), "proposed": _in_units(proposed, out, inp)}
+        answer = client.post("/design/compare", json=body).json()
+        ranked[name] = [((c["gain"], c["row"], c["column"]), c["scaled_change"]) for c in answer["gain_changes"]]
+        largest = next(s for s in answer["summary"] if "largest gain change" in s)
+        assert largest.split(" is ")[1].split(":")[0] == "K{}[{}, {}]".format(
+            {"state": "x", "setpoint": "r", "previous_input": "u", "disturbance": "d"}[ranked[name][0][0][0]],
+            *ranked[name][0][0][1:],
+        )
+    reference = dict(ranked["as written"])
+    top = [key for key, _ in ranked["as written"][:8]]
+    for name, entries in ranked.items():
+        assert [key for key, _ in entries[:8]] == top, name
+        found = dict(entries)
+        for key, value in reference.items():
+            assert found[key] == pytest.approx(value, rel=1e-2, abs=1e-9 * abs(ranked["as written"][0][1])), (name, key)
