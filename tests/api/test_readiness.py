@@ -34,7 +34,7 @@ def _kill_idle(pool: SolverPool) -> None:
 
 
 def test_a_pool_that_cannot_start_a_solver_answers_solver_died_at_once_and_recovers(monkeypatch):
-    pool = SolverPool(processes=1)
+    pool = SolverPool(processes=1, start_retry_seconds=0.0)  # each call may try a start
     try:
         pool.start()
         _kill_idle(pool)
@@ -85,3 +85,86 @@ def test_readyz_says_not_ready_while_a_lane_has_no_solver_and_ready_once_it_is_s
     finally:
         lanes.light.close()
         lanes.heavy.close()
+
+
+def test_while_starts_keep_failing_requests_are_told_at_once_without_a_start_each(monkeypatch, caplog):
+    # A pool whose processes cannot start (the pids limit reached) had tried a start, and
+    # logged its failure, for every request: a fork attempt and an error line per request at
+    # the request rate.  After a failed start the next is tried only after a pause (set far
+    # beyond this test here, so no second try can come); the requests meanwhile get 503 at once.
+    pool = SolverPool(processes=1, start_retry_seconds=3600.0)
+    tries: list[int] = []
+
+    def failing(*args, **kwargs):
+        tries.append(1)
+        _no_process()
+
+    try:
+        pool.start()
+        _kill_idle(pool)
+        monkeypatch.setattr(pool, "_spawn", failing)
+        caplog.set_level("ERROR", logger="movecast.compute")
+        for _ in range(20):
+            with pytest.raises(ComputeDied):
+                pool.run(abs, (-3,), deadline=time.monotonic() + 300, seconds=300)
+        pool.top_up()  # as the readiness probe calls it
+        assert len(tries) == 1
+        assert sum("starting a solver process failed" in r.getMessage() for r in caplog.records) == 1
+        assert not pool.ready
+    finally:
+        pool.close()
+
+
+def test_a_start_that_fails_part_way_is_a_503_and_the_pool_is_filled_to_its_number_not_beyond(monkeypatch):
+    # The second of two processes fails to start.  That had been an OSError (a 500) out of
+    # start(), and the next start() had started two more: three held for a pool of two.
+    pool = SolverPool(processes=2, start_retry_seconds=0.0)
+    spawn = pool._spawn
+    started: list[int] = []
+
+    def once(*args, **kwargs):
+        if started:
+            _no_process()
+        started.append(1)
+        return spawn(*args, **kwargs)
+
+    try:
+        monkeypatch.setattr(pool, "_spawn", once)
+        with pytest.raises(ComputeDied):
+            pool.start()
+        assert pool.ready and pool.short  # one held: it serves, and the next call starts the other
+        monkeypatch.undo()
+        pool.start()
+        assert pool.run(abs, (-3,), deadline=time.monotonic() + 300, seconds=300)[0] == 3
+        assert pool._owned == 2 and pool._idle.qsize() == 2
+        assert len({solver.process.pid for solver in pool._idle.queue}) == 2
+    finally:
+        pool.close()
+
+
+def test_a_pool_closed_while_it_starts_a_process_leaves_none_running(monkeypatch):
+    pool = SolverPool(processes=1, start_retry_seconds=0.0)
+    try:
+        pool.start()
+        _kill_idle(pool)
+        monkeypatch.setattr(pool, "_spawn", _no_process)
+        with pytest.raises(ComputeDied):
+            pool.run(abs, (-3,), deadline=time.monotonic() + 300, seconds=300)
+        monkeypatch.undo()
+        spawn = pool._spawn
+        fresh = []
+
+        def closed_meanwhile(*args, **kwargs):
+            solver = spawn(*args, **kwargs)
+            fresh.append(solver)
+            pool.close()  # the server stops while the probe's top-up starts a process
+            return solver
+
+        monkeypatch.setattr(pool, "_spawn", closed_meanwhile)
+        pool.top_up()
+        assert fresh, "the top-up started no process"
+        fresh[0].process.join(timeout=30)
+        assert not fresh[0].process.is_alive()
+        assert pool._idle.qsize() == 0
+    finally:
+        pool.close()
