@@ -645,9 +645,31 @@ class Lanes:
         return self.light.ready and self.heavy.ready
 
 
+#: The light lane's default size of each serving process (by pid), read once.
+_default_light: dict[int, int] = {}
+
+
+def _light_processes(settings: Any) -> int:
+    """``solver_processes``, or the serving process's :func:`default_solver_processes`, read once.
+
+    Read once: it reads control-group files (tens of microseconds), and every request and every
+    readiness probe asks for the lanes.  And a quota that reads otherwise later (a pod resized
+    in place) must not name another pool than the one started: the probe would look at a pool
+    never started, and a request would start a second set of processes beside the first.
+    """
+    if settings.solver_processes:
+        return int(settings.solver_processes)
+    pid = os.getpid()
+    found = _default_light.get(pid)
+    if found is None:
+        with _pools_lock:
+            found = _default_light.setdefault(pid, default_solver_processes())
+    return found
+
+
 def solver_lanes(settings: Any) -> Lanes:
     """The serving process's two lanes for these settings (``service.api.settings.Settings``)."""
-    light = settings.solver_processes or default_solver_processes()
+    light = _light_processes(settings)
     return Lanes(
         # One BLAS thread in the light lane: its problems are small by the lane's definition,
         # and a BLAS thread pool costs them more than it saves (a small design: 4.4 ms with one

@@ -168,3 +168,25 @@ def test_a_pool_closed_while_it_starts_a_process_leaves_none_running(monkeypatch
         assert pool._idle.qsize() == 0
     finally:
         pool.close()
+
+
+def test_readyz_stays_ready_when_the_cpu_quota_reads_otherwise_after_start_up(make_client, monkeypatch):
+    # The light lane's default size is read from the affinity mask and the CPU quota.  Read on
+    # every request and probe, a quota that changed (an in-place resize of the pod) named a
+    # pool of another size: never started, so /readyz said 503 for good (and a request started
+    # a second set of processes beside the first).
+    from service.api import compute
+
+    monkeypatch.setattr(os, "sched_getaffinity", lambda pid: set(range(8)), raising=False)
+    monkeypatch.setattr(compute, "cgroup_cpu_limit", lambda: 1.0)
+    monkeypatch.setattr(compute, "_default_light", {})  # this test's own reading, forgotten after it
+    client = make_client(heavy_queue=619)  # a heavy pool no other test uses
+    settings = client.app.state.settings
+    lanes = solver_lanes(settings)
+    try:
+        assert client.get("/readyz").status_code == 200
+        monkeypatch.setattr(compute, "cgroup_cpu_limit", lambda: 3.0)
+        assert client.get("/readyz").status_code == 200
+        assert solver_lanes(settings).light is lanes.light
+    finally:
+        lanes.heavy.close()  # the light pool (one process) is shared with other tests
