@@ -354,7 +354,10 @@ class SolverPool:
         except Exception as exc:
             with self._owned_lock:
                 self._owned -= 1
+                none_left = self._owned <= 0
             self._start_failed(exc)
+            if none_left:  # the calls waiting for a solver would wait out their time limit for none
+                self._idle.fail_waiting(partial(ComputeDied, "no solver process could be started"))
             return
         self._keep(fresh)
 

@@ -190,3 +190,46 @@ def test_readyz_stays_ready_when_the_cpu_quota_reads_otherwise_after_start_up(ma
         assert solver_lanes(settings).light is lanes.light
     finally:
         lanes.heavy.close()  # the light pool (one process) is shared with other tests
+
+
+@pytest.mark.parametrize("on_loop", [False, True], ids=["thread", "event-loop"])
+def test_a_call_waiting_when_the_last_solver_is_lost_is_told_at_once(monkeypatch, on_loop):
+    # One solver, busy; a second call waits for it.  The solver is killed and its replacement
+    # cannot start: the waiting call had waited out its whole time limit for a solver that
+    # could not come (here 600 s; the join below gives up long before).
+    import asyncio
+    import threading
+
+    pool = SolverPool(processes=1, start_retry_seconds=3600.0)
+    outcomes: dict[str, BaseException | int] = {}
+
+    def call(name: str, function, args) -> None:
+        try:
+            if on_loop and name == "waiting":
+                run = pool.arun(function, args, deadline=time.monotonic() + 600, seconds=600)
+                outcomes[name] = asyncio.run(run)[0]
+            else:
+                outcomes[name] = pool.run(function, args, deadline=time.monotonic() + 600, seconds=600)[0]
+        except BaseException as exc:
+            outcomes[name] = exc
+
+    try:
+        pool.start()
+        (solver,) = list(pool._idle.queue)
+        busy = threading.Thread(target=call, args=("busy", time.sleep, (600.0,)), daemon=True)
+        busy.start()
+        while pool._idle.qsize():
+            time.sleep(0.01)
+        waiting = threading.Thread(target=call, args=("waiting", abs, (-3,)), daemon=True)
+        waiting.start()
+        while pool._waiting < 1:
+            time.sleep(0.01)
+        monkeypatch.setattr(pool, "_spawn", _no_process)
+        os.kill(solver.process.pid, signal.SIGKILL)
+        busy.join(timeout=120)
+        waiting.join(timeout=120)
+        assert isinstance(outcomes.get("busy"), ComputeDied)
+        assert isinstance(outcomes.get("waiting"), ComputeDied), outcomes
+        assert pool._waiting == 0 and not pool.ready
+    finally:
+        pool.close()
