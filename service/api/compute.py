@@ -87,6 +87,11 @@ PRELOAD = ["numpy", "scipy.linalg", "service.pipeline.design", "service.api.comp
 #: Largest answer (bytes, as estimated) that :meth:`Budget.arun` reads on the event loop; a
 #: larger one is read in a worker thread, so the loop never copies megabytes for one request.
 LOOP_ANSWER_BYTES = 1024 * 1024
+#: Seconds after a solver process failed to start before a pool tries another start.  Meanwhile
+#: a request that finds its lane without a process is answered 503 at once, without a fork
+#: attempt and an error line of its own (the pids limit or the memory is spent: a start per
+#: request would only keep it so, and flood the log at the request rate).
+START_RETRY_SECONDS = 1.0
 log = logging.getLogger("movecast.compute")
 #: Warnings raised inside compute calls (numpy overflow and the like), one JSON line each.
 solver_log = logging.getLogger("movecast.solver")
@@ -188,14 +193,24 @@ class SolverPool:
         Added to each solver process's CPU niceness (0: as the serving process).
     max_waiting : int or None
         Most calls waiting for a free solver; one more raises :class:`HeavyLaneFull`.
+    start_retry_seconds : float
+        After a solver process failed to start, how long no other start is tried
+        (:data:`START_RETRY_SECONDS`).
 
     Processes start on first use; :meth:`close` stops them (also at interpreter exit).
     """
 
     def __init__(
-        self, *, processes: int, blas_threads: int = 1, niceness: int = 0, max_waiting: int | None = None
+        self,
+        *,
+        processes: int,
+        blas_threads: int = 1,
+        niceness: int = 0,
+        max_waiting: int | None = None,
+        start_retry_seconds: float = START_RETRY_SECONDS,
     ) -> None:
         self.processes = processes
+        self.start_retry_seconds = start_retry_seconds
         self.blas_threads = blas_threads
         self.niceness = niceness
         self.max_waiting = max_waiting
@@ -208,6 +223,8 @@ class SolverPool:
         self._owned = 0
         self._owned_lock = threading.Lock()
         self._topping_up = threading.Lock()
+        #: ``time.monotonic()`` before which no start is tried (a start failed just before).
+        self._next_start = 0.0
 
     def _spawn(self, *, counted: bool = True) -> _Solver:
         """Start a solver process; ``counted``: one more held (a replacement takes the place of the one it replaces)."""
@@ -226,13 +243,33 @@ class SolverPool:
         return _Solver(process, parent)
 
     def start(self) -> None:
-        """Start the solver processes now (idempotent)."""
+        """Start the solver processes now (idempotent).
+
+        Raises :class:`ComputeDied` (a 503) when one could not be started; the pool is started
+        all the same, one short, and the missing ones are started later (:meth:`top_up`).
+        """
         with self._lock:
             if self._started or self._closed:
                 return
-            for _ in range(self.processes):
-                self._idle.put(self._spawn())
             self._started = True
+            while self._owned < self.processes:
+                try:
+                    solver = self._spawn()
+                except Exception as exc:
+                    self._start_failed(exc)
+                    raise ComputeDied("a solver process could not be started") from exc
+                self._keep(solver)
+
+    def _start_failed(self, exc: BaseException) -> None:
+        """Log a failed start; no other start is tried for ``start_retry_seconds``."""
+        self._next_start = time.monotonic() + self.start_retry_seconds
+        log.error("starting a solver process failed: %r", exc)
+
+    def _keep(self, solver: _Solver) -> None:
+        """Give a fresh solver to the idle ones; stop it if the pool was closed meanwhile."""
+        self._idle.put(solver)
+        if self._closed:
+            self._retire_idle()
 
     def _retire(self, solver: _Solver) -> None:
         solver.conn.close()
@@ -254,26 +291,31 @@ class SolverPool:
         """Start solver processes until the pool holds its number again.
 
         A start that fails (no memory, no process left under the pids limit) is logged and
-        tried again on the next call, by a request or by the readiness probe.  One caller at a
+        tried again by a later call, by a request or by the readiness probe, once
+        ``start_retry_seconds`` have passed (a call before then does nothing).  One caller at a
         time does it; the others wait for it, or with ``wait=False`` go on at once.
         """
-        if not self._topping_up.acquire(blocking=wait):
+        if time.monotonic() < self._next_start or not self._topping_up.acquire(blocking=wait):
             return
         try:
-            while self.short:
+            while self.short and time.monotonic() >= self._next_start:
                 try:
                     solver = self._spawn()
                 except Exception as exc:
-                    log.error("starting a solver process failed: %r", exc)
+                    self._start_failed(exc)
                     return
-                self._idle.put(solver)
+                self._keep(solver)
         finally:
             self._topping_up.release()
 
     def _check_owned(self) -> None:
-        """Raise :class:`ComputeDied` (a 503) when the pool holds no solver process: none would come."""
+        """Raise :class:`ComputeDied` (a 503) when the pool holds no solver process: none would come.
+
+        A pool short of its number but holding some is topped up only if nobody does it
+        already: the call goes on with the processes there are.
+        """
         if self.short:
-            self.top_up()
+            self.top_up(wait=self._owned <= 0)
         if self._owned <= 0:
             raise ComputeDied("no solver process could be started")
 
@@ -312,9 +354,12 @@ class SolverPool:
         except Exception as exc:
             with self._owned_lock:
                 self._owned -= 1
-            log.error("starting a solver process failed: %r", exc)
+                none_left = self._owned <= 0
+            self._start_failed(exc)
+            if none_left:  # the calls waiting for a solver would wait out their time limit for none
+                self._idle.fail_waiting(partial(ComputeDied, "no solver process could be started"))
             return
-        self._idle.put(fresh)
+        self._keep(fresh)
 
     def _replace_later(self, loop: asyncio.AbstractEventLoop, solver: _Solver) -> None:
         """:meth:`_replace` in a worker thread (it kills, waits and starts a process), not on the loop."""
@@ -479,6 +524,9 @@ class SolverPool:
         """Stop every idle solver; busy ones stop when their pipe closes."""
         with self._lock:
             self._closed = True
+        self._retire_idle()
+
+    def _retire_idle(self) -> None:
         while True:
             try:
                 self._retire(self._idle.get_nowait())
@@ -600,9 +648,31 @@ class Lanes:
         return self.light.ready and self.heavy.ready
 
 
+#: The light lane's default size of each serving process (by pid), read once.
+_default_light: dict[int, int] = {}
+
+
+def _light_processes(settings: Any) -> int:
+    """``solver_processes``, or the serving process's :func:`default_solver_processes`, read once.
+
+    Read once: it reads control-group files (tens of microseconds), and every request and every
+    readiness probe asks for the lanes.  And a quota that reads otherwise later (a pod resized
+    in place) must not name another pool than the one started: the probe would look at a pool
+    never started, and a request would start a second set of processes beside the first.
+    """
+    if settings.solver_processes:
+        return int(settings.solver_processes)
+    pid = os.getpid()
+    found = _default_light.get(pid)
+    if found is None:
+        with _pools_lock:
+            found = _default_light.setdefault(pid, default_solver_processes())
+    return found
+
+
 def solver_lanes(settings: Any) -> Lanes:
     """The serving process's two lanes for these settings (``service.api.settings.Settings``)."""
-    light = settings.solver_processes or default_solver_processes()
+    light = _light_processes(settings)
     return Lanes(
         # One BLAS thread in the light lane: its problems are small by the lane's definition,
         # and a BLAS thread pool costs them more than it saves (a small design: 4.4 ms with one

@@ -9,7 +9,9 @@ resolves on the task's loop (``call_soon_threadsafe``), so a solver given back f
 thread reaches a task safely.
 
 A caller that stops waiting (its deadline passed, its client left) leaves the queue; if a
-solver was already on its way to it, the solver is given back, never lost.
+solver was already on its way to it, the solver is given back, never lost.  When no solver can
+come any more (the pool lost its last one), :meth:`IdleSolvers.fail_waiting` wakes every
+waiting caller with an error instead.
 """
 
 from __future__ import annotations
@@ -20,6 +22,7 @@ import threading
 import time
 from collections import deque
 from collections.abc import Callable
+from contextlib import suppress
 from typing import Any, Generic, TypeVar
 
 from service.errors import Cancelled, HeavyLaneFull, TimeLimitExceeded
@@ -79,16 +82,21 @@ async def await_within(
 
 
 class _ThreadWaiter(Generic[S]):
-    """A worker thread waiting for a solver: ``solver`` is set, then ``ready``."""
+    """A worker thread waiting for a solver: ``solver`` (or ``error``) is set, then ``ready``."""
 
-    __slots__ = ("ready", "solver")
+    __slots__ = ("error", "ready", "solver")
 
     def __init__(self) -> None:
         self.ready = threading.Event()
         self.solver: S | None = None
+        self.error: BaseException | None = None
 
     def hand(self, solver: S, give_back: Callable[[S], None]) -> None:
         self.solver = solver
+        self.ready.set()
+
+    def fail(self, error: BaseException) -> None:
+        self.error = error
         self.ready.set()
 
 
@@ -112,6 +120,14 @@ class _TaskWaiter(Generic[S]):
             give_back(solver)
         else:
             self.future.set_result(solver)
+
+    def fail(self, error: BaseException) -> None:
+        with suppress(RuntimeError):  # the loop is closed: nobody waits there
+            self.loop.call_soon_threadsafe(self._fail, error)
+
+    def _fail(self, error: BaseException) -> None:
+        if not self.future.done():
+            self.future.set_exception(error)
 
 
 class IdleSolvers(Generic[S]):
@@ -146,6 +162,15 @@ class IdleSolvers(Generic[S]):
                 return
             waiter = self._waiters.popleft()
         waiter.hand(solver, self.put)
+
+    def fail_waiting(self, error: Callable[[], BaseException]) -> int:
+        """Wake every waiting caller with ``error()`` raised (no solver will come); how many were waiting."""
+        with self._lock:
+            waiters = list(self._waiters)
+            self._waiters.clear()
+        for waiter in waiters:
+            waiter.fail(error())
+        return len(waiters)
 
     def get_nowait(self) -> S:
         """An idle solver; ``queue.Empty`` when none is."""
@@ -192,14 +217,16 @@ class IdleSolvers(Generic[S]):
         try:
             while not waiter.ready.wait(wait_slice(deadline, seconds, cancel, queued=True)):
                 pass
-            assert waiter.solver is not None
-            return waiter.solver
         except BaseException:
-            if not self._leave(waiter):  # handed over meanwhile: give it back
+            if not self._leave(waiter):  # handed over (or failed) meanwhile: give a solver back
                 waiter.ready.wait()
-                assert waiter.solver is not None
-                self.put(waiter.solver)
+                if waiter.solver is not None:
+                    self.put(waiter.solver)
             raise
+        if waiter.error is not None:
+            raise waiter.error
+        assert waiter.solver is not None
+        return waiter.solver
 
     async def atake(
         self,
@@ -220,9 +247,10 @@ class IdleSolvers(Generic[S]):
             await await_within(waiter.future, deadline, seconds, cancel, gone, queued=True)
             return waiter.future.result()
         except BaseException:
-            if not self._leave(waiter):  # handed over, or on its way (the loop resolves it)
+            if not self._leave(waiter):  # handed over, or on its way (the loop resolves it), or failed
                 if waiter.future.done() and not waiter.future.cancelled():
-                    self.put(waiter.future.result())
+                    if waiter.future.exception() is None:
+                        self.put(waiter.future.result())
                 else:
                     waiter.future.cancel()  # _resolve then gives the solver back
             raise
