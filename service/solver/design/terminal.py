@@ -193,7 +193,12 @@ def _rank_drop(matrix: NDArray[Any]) -> bool:
 
 
 def _why_no_stabilizing_solution(
-    a_i: NDArray[np.float64], b_i: NDArray[np.float64], seen: NDArray[np.float64], *, input_targets: bool = False
+    a_i: NDArray[np.float64],
+    b_i: NDArray[np.float64],
+    seen: NDArray[np.float64],
+    *,
+    input_targets: bool = False,
+    slow_loop: float | None = None,
 ) -> tuple[str, str, bool]:
     """Name the mode that spoils the Riccati equation (PBH tests on the unit circle and outside), and the way out.
 
@@ -242,6 +247,20 @@ def _why_no_stabilizing_solution(
                 ),
                 False,
             )
+    if slow_loop is not None:
+        # every mode on or near the circle is reached and seen, and the solver's answer solves the
+        # equation with a loop inside the circle: a genuine stabilizing solution, only slow (a
+        # direction the stage cost sees faintly: on a spare input combination the pole is about
+        # 1 - sqrt(S/R), LQ theory for the scalar problem)
+        return (
+            f"its loop's slowest pole, at modulus 1 - {1.0 - slow_loop:.3g}, is within {_STABILIZING_MARGIN:g} of "
+            "the unit circle, which the service counts as marginal rather than stable: some direction is "
+            "weighted far more lightly than the moves that steer it (an input weight many orders of magnitude "
+            "below the move weights, or a faint output weight)",
+            "Raise the weight on that direction (weights.input for a spare input combination, weights.output "
+            'for an output) or lower its move weights, or use terminal "none"',
+            True,
+        )
     return (
         "the solver found no stabilizing solution",
         'Use terminal "none", weight an output that sees every slow mode, or give every move a positive move weight',
@@ -346,6 +365,7 @@ def _riccati_solution(
         stage_move = move_weight + input_weight
         seen = np.vstack([seen, weight_root(input_weight) @ e_u])
     failure = ""  # our own figures of a solution that is not the stabilizing one (the library's words stay out)
+    slow_loop = None  # the spectral radius of a solution of the equation whose loop is inside the circle
     p = k = None
     try:
         with np.errstate(all="ignore"):
@@ -363,11 +383,15 @@ def _riccati_solution(
         radius = float(np.abs(scipy.linalg.eigvals(a_i - b_i @ k, check_finite=False)).max(initial=0.0))
         if radius < 1.0 - _STABILIZING_MARGIN and float(np.abs(residual).max()) <= _RESIDUAL * scale:
             return p, k
+        if radius < 1.0 - 1e-9 and float(np.abs(residual).max()) <= _RESIDUAL * scale:
+            slow_loop = radius
         failure = (
             f" (the solver's answer leaves the loop with spectral radius {radius:.9f} and a relative "
             f"residual of {float(np.abs(residual).max()) / scale:.3g})"
         )
-    reason, advice, kept = _why_no_stabilizing_solution(a_i, b_i, seen, input_targets=input_weight is not None)
+    reason, advice, kept = _why_no_stabilizing_solution(
+        a_i, b_i, seen, input_targets=input_weight is not None, slow_loop=slow_loop
+    )
     header = (
         "The Riccati terminal weight does not give a stable loop: the Riccati equation of the incremental "
         "system has no solution whose loop is stable by the service's marginal rule because"
