@@ -55,6 +55,7 @@ from service.solver.design.closed_loop import ILL_CONDITIONED, Diagnostic
 from service.solver.design.controller import ControllerDesign, design_controller
 from service.solver.design.feedforward import disturbance_free_response, feedforward_gain
 from service.solver.design.gain import PredictiveGain
+from service.solver.design.input_target import measured_input_target_map
 from service.solver.design.marginal import MarginalMode, describe_signals
 from service.solver.design.terminal import terminal_disturbance_maps
 from service.solver.estimation.estimator import Estimator
@@ -492,6 +493,15 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
                 input_weight=design.input_weight,
             )
             kd = kd + design.terminal_gain @ (free - steady)
+        if design.input_target_gain is not None and design.input_weight is not None:  # - Kt0 U_m
+            kd = kd - design.input_target_gain @ measured_input_target_map(
+                scaled.a,
+                scaled.b,
+                scaled.c,
+                scaled.b_disturbance,
+                output_weight=design.output_weight,
+                input_weight=design.input_weight,
+            )
         feedforward = unscale_feedforward(kd, input_span=su, disturbance_span=sd)
     estimator, analysis, model_error = None, None, None
     if inputs.frequency_points is not None or inputs.model_error is not None:

@@ -89,6 +89,25 @@ def _three_valves_with_targets_riccati():
     return body
 
 
+def _transfer_matrix_bypass_riccati():
+    """The transfer matrix with a bypass valve (three valves, two outputs), input targets, the Riccati
+    terminal weight, Hu < Hp, Hw = 2 and blocked moves: the measured flow moves the input target
+    (found in a review: the exported law and /simulate had both left that out)."""
+    body = _transfer_matrix()
+    model = body["model"]
+    model["elements"][0].append({"gain": 0.5, "time_constants": [6.0], "dead_time": 1.0})
+    model["elements"][1].append({"gain": -0.02, "integrating": True, "dead_time": 1.0})
+    model["inputs"].append({"name": "bypass_valve", "unit": "%", "span": 50.0})
+    body["estimator"] = {"kind": "kalman", "disturbance": "per_output", "measurement_noise": [0.01, 0.5]}
+    body["weights"].update({"move": [0.2, 0.2, 0.4], "input": [0.01, 0.02, 0.05], "terminal": "riccati"})
+    body["horizons"] = {"prediction": 12, "control": 4, "first_penalized": 2, "move_steps": [0, 1, 3]}
+    body["scenario"]["true_plant"] = _gain_error(model)
+    body["scenario"]["input_targets"] = [0.0, 0.0, 1.0]
+    body["scenario"]["input_target_changes"] = [{"step": 100, "value": [0.5, -0.3, -1.0]}]
+    body["scenario"]["input_disturbances"] = [{"step": 90, "value": [1.0, 0.0, 0.0]}]
+    return body
+
+
 def _vessel_riccati():
     body = _vessel()
     body["weights"]["terminal"] = "riccati"
@@ -111,6 +130,7 @@ CASES = {
     "three valves for two outputs": _three_valves,
     "three valves with input targets": _three_valves_with_targets,
     "three valves with input targets and the Riccati terminal weight": _three_valves_with_targets_riccati,
+    "transfer matrix, bypass valve, input targets, measured flow, Riccati, blocked": _transfer_matrix_bypass_riccati,
 }
 
 
@@ -440,6 +460,7 @@ OP_CASES = {
     "transfer matrix with the Riccati terminal weight": _transfer_matrix_riccati,
     "three valves with input targets": _three_valves_with_targets,
     "three valves with input targets and the Riccati terminal weight": _three_valves_with_targets_riccati,
+    "transfer matrix, bypass valve, input targets, measured flow, Riccati, blocked": _transfer_matrix_bypass_riccati,
 }
 
 

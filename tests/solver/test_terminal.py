@@ -225,3 +225,59 @@ def test_input_targets_give_a_spare_input_the_riccati_terminal_weight_and_the_lq
         np.sort_complex(d.loop.poles), np.sort_complex(scipy.linalg.eigvals(ai - bi @ k)), atol=1e-8
     )
     assert d.loop.stable and not d.loop.marginal
+
+
+def test_a_stable_mode_no_output_sees_within_the_marginal_band_is_refused_naming_it():
+    # The stabilizing check's margin is the service's marginal rule (1e-6). A slow stable state
+    # that no weighted output sees (pole 1 - 5e-7, a slow leak of an unmeasured tank) leaves the
+    # Riccati equation a genuine stabilizing solution, whose loop keeps that pole (LQ theory:
+    # an unobservable stable mode of the cost is not moved). Found in a review: the refusal said
+    # the solution does not exist and "the solver found no stabilizing solution". References:
+    # mpmath's eigenvalues (40 digits) of the loop A_i - B_i K with K of python-control's dlqr.
+    control = pytest.importorskip("control")
+    mpmath = pytest.importorskip("mpmath")
+    a = np.array([[0.8, 0.0], [0.0, 1.0 - 5e-7]])
+    b, c = np.array([[1.0], [0.3]]), np.array([[1.0, 0.0]])
+    ai, bi, ci = incremental_system(a, b, c)
+    k, _, _ = control.dlqr(ai, bi, ci.T @ ci, np.array([[0.1]]))
+    mpmath.mp.dps = 40
+    moduli = sorted(float(abs(z)) for z in mpmath.eig(mpmath.matrix((ai - bi @ k).tolist()))[0])
+    assert 1.0 - 1e-6 < moduli[-1] < 1.0 - 1e-8  # stabilizing, but marginal by the service's rule
+    with pytest.raises(NumericalError) as info:
+        design_controller(a, b, c, output_weight=[1.0], move_weight=[0.1], prediction=5, control=5, terminal="riccati")
+    detail = info.value.detail
+    assert info.value.field == ("weights", "terminal")
+    assert "1 - 5e-07" in detail and "marginal" in detail and "Weight an output that sees this mode" in detail
+    assert "does not exist" not in detail and "found no stabilizing solution" not in detail
+    # the same loop without the terminal weight is accepted and names the mode as marginal
+    plain = design_controller(a, b, c, output_weight=[1.0], move_weight=[0.1], prediction=5, control=5)
+    assert [mode.cause for mode in plain.loop.marginal] == ["unobservable_mode"]
+
+
+def test_a_spare_direction_weighted_faintly_is_refused_as_slow_not_as_missing():
+    # Two valves alike on one output; the input weight is 1e-13 of the move weight. On the spare
+    # combination (u1 - u2) the stage cost is the scalar LQ problem v+ = v + dv, s v^2 + 2 s v dv
+    # + (r + s) dv^2, whose Riccati solution is p = (-s + sqrt(s^2 + 4 s r)) / 2 and loop pole
+    # 1 - (p + s) / (r + s + p) (solved by hand, evaluated with mpmath at 40 digits): genuine,
+    # but at 1 - 3.16e-7, inside the marginal band. Found in a review: the refusal said the
+    # solution does not exist.
+    mpmath = pytest.importorskip("mpmath")
+    mpmath.mp.dps = 40
+    s, r = mpmath.mpf("1e-13"), mpmath.mpf(1)
+    p = (-s + mpmath.sqrt(s * s + 4 * s * r)) / 2
+    gap = (p + s) / (r + s + p)  # 1 - pole
+    with pytest.raises(NumericalError) as info:
+        design_controller(
+            [[0.5]],
+            [[1.0, 1.0]],
+            [[1.0]],
+            output_weight=[1.0],
+            move_weight=[1.0, 1.0],
+            input_weight=[1e-13, 1e-13],
+            prediction=20,
+            control=20,
+            terminal="riccati",
+        )
+    detail = info.value.detail
+    assert f"1 - {float(gap):.3g}" in detail and "marginal" in detail and "weights.input" in detail
+    assert "does not exist" not in detail

@@ -232,3 +232,47 @@ def test_the_fragility_verdict_does_not_depend_on_an_input_s_unit():
     assert max(peaks) > 20.0 * min(peaks)  # the figure of the whole matrix does move with the unit
     codes = [sorted(w.code for w in a.warnings) for a in answers]
     assert codes[0] == codes[1] == codes[2]
+
+
+# Three valves for two outputs (a spare direction), a full input weight S (invented numbers).
+A3 = np.array([[0.85, 0.05, 0.0], [0.0, 0.7, 0.1], [0.02, 0.0, 0.6]])
+B3 = np.array([[0.4, -0.3, 0.1], [0.2, 0.3, 0.25], [0.0, 0.1, -0.2]])
+C3 = np.array([[1.0, 0.0, 0.5], [0.0, 1.0, 0.0]])
+S3 = np.array([[0.2, 0.05, 0.0], [0.05, 0.3, -0.04], [0.0, -0.04, 0.25]])
+
+
+def _kkt_target(r, ut):
+    """[x_s; u_s] = argmin |u - u_t|_S subject to (I - A) x = B u, C x = r, in the first units (the
+    KKT system of the equality-constrained least squares by numpy.linalg.solve; textbook)."""
+    h = np.zeros((6, 6))
+    h[3:, 3:] = S3
+    e = np.block([[np.eye(3) - A3, -B3], [C3, np.zeros((2, 3))]])
+    kkt = np.block([[h, e.T], [e, np.zeros((5, 5))]])
+    return np.linalg.solve(kkt, np.concatenate([np.zeros(3), S3 @ ut, np.zeros(3), r]))[:6]
+
+
+@pytest.mark.parametrize("scale", [1.0, 1e6, 1e9])
+@pytest.mark.parametrize("terminal", ["none", "riccati"])
+def test_input_targets_give_the_same_target_and_gains_with_an_input_in_tiny_units(scale, terminal):
+    # Found in a review of the Riccati terminal weight with input targets: the recycle valve in
+    # units a million times smaller (B's column / 1e6, its move and input weights / 1e12, the
+    # same problem) had moved its steady-state target by 1e-4 of its size, and 1e9 by more than
+    # its size, so the spare valve settled elsewhere (and Kr, Kt with it). Reference: the target
+    # by hand in the first units (_kkt_target), and the transformation rule of the module notes.
+    from service.solver.estimation.target import steady_state_target, target_problem
+
+    d = np.array([1.0, scale, 1.0])  # u' = D u
+    b, r_w, s_w = B3 / d[None, :], np.diag([0.3, 0.2, 0.5]) / np.outer(d, d), S3 / np.outer(d, d)
+    r, ut = np.array([1.0, -0.5]), np.array([0.2, 0.0, -0.3])
+    found = steady_state_target(target_problem(A3, b, C3, output_weight=[1.0, 2.0], input_weight=s_w), r, None, d * ut)
+    want = _kkt_target(r, ut)
+    np.testing.assert_allclose(found.state, want[:3], rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(found.input / d, want[3:], rtol=1e-10, atol=1e-12)
+    design = {"output_weight": [1.0, 2.0], "prediction": 6, "control": 6, "terminal": terminal}
+    first = design_controller(A3, B3, C3, move_weight=np.diag([0.3, 0.2, 0.5]), input_weight=S3, **design)
+    other = design_controller(A3, b, C3, move_weight=r_w, input_weight=s_w, **design)
+    # du' = D du: Kr' = D Kr, Kt' = D Kt D^-1, Kx' = D Kx, Ku' = D Ku D^-1
+    np.testing.assert_allclose(other.gain.setpoint / d[:, None], first.gain.setpoint, rtol=1e-8, atol=1e-12)
+    got_t = other.gain.input_target / d[:, None] * d[None, :]
+    np.testing.assert_allclose(got_t, first.gain.input_target, rtol=1e-8, atol=1e-12)
+    np.testing.assert_allclose(other.gain.state / d[:, None], first.gain.state, rtol=1e-8, atol=1e-12)

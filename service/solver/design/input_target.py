@@ -28,6 +28,14 @@ in terms of the raw setpoint and input targets is ::
     du(k) = (Kr + Kt0 U_r) r + Kt0 U_t u_t - Kx x(k) - (Ku + Kt0) u(k-1)
 
 which :func:`with_input_target` returns as the design's gains (``Kt = Kt0 U_t``).
+
+Measured disturbances.  A measured disturbance ``d_m`` held at its value moves the target too:
+the steady state under ``Bd d_m`` needs other inputs, ``u_s = U_r r + U_t u_t + U_m d_m`` with
+``U_m`` the input rows of the target's disturbance map for ``Bd`` (the same ``Q`` and ``S``).
+Pulling the inputs towards the target without ``U_m d_m`` pulls them away from the steady state
+that holds the outputs on their setpoints, and the loop settles with an offset.  So the
+feed-forward gain ``Kd`` of ``du = ... - Kd d_m`` (:mod:`service.solver.design.feedforward`) gains
+``- Kt0 U_m`` (:func:`measured_input_target_map`).
 """
 
 from __future__ import annotations
@@ -40,8 +48,9 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.solver.design.gain import FactoredHessian, PredictiveGain
+from service.solver.estimation.target import target_problem
 
-__all__ = ["InputPenalty", "input_penalty", "input_target_gain", "with_input_target"]
+__all__ = ["InputPenalty", "input_penalty", "input_target_gain", "measured_input_target_map", "with_input_target"]
 
 
 @dataclass(frozen=True)
@@ -135,3 +144,38 @@ def with_input_target(
         setpoint=gain.setpoint + target_gain @ setpoint_input,
         input_target=pull if gain.input_target is None else gain.input_target + pull,
     )
+
+
+def measured_input_target_map(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    b_disturbance: NDArray[np.float64],
+    *,
+    output_weight: NDArray[np.float64],
+    input_weight: NDArray[np.float64],
+) -> NDArray[np.float64]:
+    """Return ``U_m``: how a held measured disturbance moves the target's inputs (module notes).
+
+    Parameters
+    ----------
+    a : ndarray, shape (n, n)
+    b : ndarray, shape (n, m)
+    c : ndarray, shape (p, n)
+        The model the design was made on (no disturbance states).
+    b_disturbance : ndarray, shape (n, md)
+        ``Bd`` of the measured disturbances.
+    output_weight, input_weight : ndarray
+        ``Q`` and ``S`` of the design (the target's fit and tie-break).
+
+    Returns
+    -------
+    ndarray, shape (m, md)
+        The input rows of the target's disturbance map with ``Bd`` (:mod:`service.solver.estimation.target`).
+    """
+    n = np.asarray(a).shape[0]
+    problem = target_problem(
+        a, b, c, disturbance_input=b_disturbance, output_weight=output_weight, input_weight=input_weight
+    )
+    result: NDArray[np.float64] = problem.disturbance_map[n:]
+    return result

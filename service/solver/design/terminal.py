@@ -193,16 +193,23 @@ def _rank_drop(matrix: NDArray[Any]) -> bool:
 
 
 def _why_no_stabilizing_solution(
-    a_i: NDArray[np.float64], b_i: NDArray[np.float64], seen: NDArray[np.float64], *, input_targets: bool = False
-) -> tuple[str, str]:
+    a_i: NDArray[np.float64],
+    b_i: NDArray[np.float64],
+    seen: NDArray[np.float64],
+    *,
+    input_targets: bool = False,
+    slow_loop: float | None = None,
+) -> tuple[str, str, bool]:
     """Name the mode that spoils the Riccati equation (PBH tests on the unit circle and outside), and the way out.
 
     ``seen`` stacks the rows of the stage cost that see ``[x; u]``: ``W C_i`` and, with input
-    targets (``input_targets``), ``W_S E_u``.
+    targets (``input_targets``), ``W_S E_u``.  The last item says whether the stabilizing solution
+    exists all the same (a stable mode no weighted signal sees, within the marginal band, which
+    the loop keeps where it is).
     """
     inputs = b_i.shape[1]
     for z in scipy.linalg.eigvals(a_i, check_finite=False):
-        if abs(z) < 1.0 - 1e-9:
+        if abs(z) < 1.0 - _STABILIZING_MARGIN:  # a mode this near the circle counts as on it (marginal rule)
             continue
         where = f"z = {format_complex(z)}"
         if _rank_drop(pbh_matrix(a_i, z, inputs=b_i)):
@@ -210,8 +217,21 @@ def _why_no_stabilizing_solution(
                 f"the mode of [x; u] at {where} cannot be moved by the inputs (the incremental "
                 f"system is not stabilizable)",
                 'Use terminal "none", or check the model: no move reaches that mode',
+                False,
             )
-        if abs(abs(z) - 1.0) <= 1e-9 and _rank_drop(pbh_matrix(a_i, z, outputs=seen)):
+        if abs(abs(z) - 1.0) <= _STABILIZING_MARGIN and _rank_drop(pbh_matrix(a_i, z, outputs=seen)):
+            if abs(z) < 1.0 - 1e-9:
+                # a stable mode that no weighted signal sees: the stabilizing solution exists, but
+                # its loop keeps the mode where it is, within the marginal band
+                return (
+                    f"the mode of [x; u] at modulus 1 - {1.0 - abs(z):.3g}, within {_STABILIZING_MARGIN:g} "
+                    f"of the unit circle, changes no weighted controlled output{' and no weighted input' if input_targets else ''}, "
+                    "so the terminal weight's loop keeps it there, which the service counts as marginal "
+                    "rather than stable",
+                    'Weight an output that sees this mode, or use terminal "none" (its loop keeps the mode '
+                    "as well, and closed_loop.marginal_modes names it)",
+                    True,
+                )
             spare = inputs > int(np.linalg.matrix_rank(seen)) if seen.size else True
             return (
                 f"the mode of [x; u] at {where}, on the unit circle, changes no weighted "
@@ -225,10 +245,26 @@ def _why_no_stabilizing_solution(
                     else "Weight an output that sees this mode, give the input combination that leaves every "
                     'output unchanged a positive input weight (weights.input), or use terminal "none"'
                 ),
+                False,
             )
+    if slow_loop is not None:
+        # every mode on or near the circle is reached and seen, and the solver's answer solves the
+        # equation with a loop inside the circle: a genuine stabilizing solution, only slow (a
+        # direction the stage cost sees faintly: on a spare input combination the pole is about
+        # 1 - sqrt(S/R), LQ theory for the scalar problem)
+        return (
+            f"its loop's slowest pole, at modulus 1 - {1.0 - slow_loop:.3g}, is within {_STABILIZING_MARGIN:g} of "
+            "the unit circle, which the service counts as marginal rather than stable: some direction is "
+            "weighted far more lightly than the moves that steer it (an input weight many orders of magnitude "
+            "below the move weights, or a faint output weight)",
+            "Raise the weight on that direction (weights.input for a spare input combination, weights.output "
+            'for an output) or lower its move weights, or use terminal "none"',
+            True,
+        )
     return (
         "the solver found no stabilizing solution",
         'Use terminal "none", weight an output that sees every slow mode, or give every move a positive move weight',
+        False,
     )
 
 
@@ -329,6 +365,7 @@ def _riccati_solution(
         stage_move = move_weight + input_weight
         seen = np.vstack([seen, weight_root(input_weight) @ e_u])
     failure = ""  # our own figures of a solution that is not the stabilizing one (the library's words stay out)
+    slow_loop = None  # the spectral radius of a solution of the equation whose loop is inside the circle
     p = k = None
     try:
         with np.errstate(all="ignore"):
@@ -346,14 +383,24 @@ def _riccati_solution(
         radius = float(np.abs(scipy.linalg.eigvals(a_i - b_i @ k, check_finite=False)).max(initial=0.0))
         if radius < 1.0 - _STABILIZING_MARGIN and float(np.abs(residual).max()) <= _RESIDUAL * scale:
             return p, k
+        if radius < 1.0 - 1e-9 and float(np.abs(residual).max()) <= _RESIDUAL * scale:
+            slow_loop = radius
         failure = (
             f" (the solver's answer leaves the loop with spectral radius {radius:.9f} and a relative "
             f"residual of {float(np.abs(residual).max()) / scale:.3g})"
         )
-    reason, advice = _why_no_stabilizing_solution(a_i, b_i, seen, input_targets=input_weight is not None)
+    reason, advice, kept = _why_no_stabilizing_solution(
+        a_i, b_i, seen, input_targets=input_weight is not None, slow_loop=slow_loop
+    )
+    header = (
+        "The Riccati terminal weight does not give a stable loop: the Riccati equation of the incremental "
+        "system has no solution whose loop is stable by the service's marginal rule because"
+        if kept
+        else "The Riccati terminal weight does not exist: the Riccati equation of the incremental "
+        "system has no stabilizing solution because"
+    )
     raise NumericalError(
-        f"The Riccati terminal weight does not exist: the Riccati equation of the incremental "
-        f"system has no stabilizing solution because {reason}{failure}. {advice}.",
+        f"{header} {reason}{failure}. {advice}.",
         field=TERMINAL_FIELD,
     )
 

@@ -29,7 +29,9 @@ so ``Kd += Kt (Phi_m - X_m)``.  With an input weight (input targets,
 :mod:`service.solver.design.input_target`) ``Ku`` includes ``Kt0``, ``K`` and ``Kr`` the
 target's input maps (``- Kt0 U_d S`` and ``+ Kt0 U_r``), and the input targets ``u_t`` are
 inputs of the law through ``Kt = Kt0 U_t`` (with the terminal weight also ``+ Kt X_t``, the
-terminal target's input-target map).  On the law's state ``s = [x(k|k-1); u(k-1)]``
+terminal target's input-target map); with measured disturbances the target's inputs move by
+``U_m d_m`` as well, so ``Kd -= Kt0 U_m``
+(:func:`service.solver.design.input_target.measured_input_target_map`).  On the law's state ``s = [x(k|k-1); u(k-1)]``
 and its inputs ``w = [y; r; dm; u_t]`` (``u_t`` only with an input weight; substitution) ::
 
     u(k)   = Cu s + Du w,        Cu = [-K M, I - Ku],   Du = [-K L, Kr, -Kd, Kt]
@@ -71,6 +73,7 @@ from numpy.typing import NDArray
 
 from service.solver.design.controller import ControllerDesign
 from service.solver.design.feedforward import disturbance_free_response
+from service.solver.design.input_target import measured_input_target_map
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.loop import estimator_target, terminal_term
 from service.solver.estimation.realization import StateSpace, estimate_feedback_gain
@@ -195,6 +198,15 @@ def fixed_law(
         feedforward = kh @ fd
         if terminal is not None:  # Kt (Phi_m - X_m): the disturbance on both sides of the terminal deviation
             feedforward = feedforward + terminal.feedforward
+        if kt0 is not None and design.input_weight is not None:  # - Kt0 U_m: the target's inputs under d_m
+            feedforward = feedforward - kt0 @ measured_input_target_map(
+                estimator.model_a,
+                estimator.model_b,
+                estimator.model_c,
+                bd,
+                output_weight=design.output_weight,
+                input_weight=design.input_weight,
+            )
     else:
         feedforward = np.zeros((m, 0))
     lg, cy = estimator.gain, estimator.c_measured

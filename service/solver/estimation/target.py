@@ -233,7 +233,10 @@ def target_problem(
     drops the directions whose weighted input part is below :data:`SPARE_INPUT_TOLERANCE`:
     they move no input (such as the state of an integrating output of weight 0, a level in a
     zone), so the least-norm solution leaves them at zero; inverting their rounding would move
-    ``u_s`` off the setpoints' steady state.
+    ``u_s`` off the setpoints' steady state.  With an input weight the maps are formed with the
+    inputs in units of moderate size (``u = T v``, ``T`` powers of two from the columns of ``[B;
+    S^(1/2)]``), so a change of an input's unit changes no target; the least-norm choice among
+    ties ``S`` leaves open is then the one in those units.
     """
     a_ = np.asarray(a, dtype=float)
     b_ = np.asarray(b, dtype=float)
@@ -250,22 +253,20 @@ def target_problem(
     fit = np.hstack([c_, np.zeros((pz, m))])
     null = scipy.linalg.null_space(steady)  # (n+m, k)
     particular = scipy.linalg.pinv(steady) @ bd  # (n+m, nd)
-    solve = scipy.linalg.pinv(w @ fit @ null)  # (k, pz)
-    setpoint_map = null @ solve @ w
-    disturbance_map = particular - setpoint_map @ (dz + fit @ particular)
-    target_map = np.zeros((n + m, m))
     if np.any(s_in):
-        spare = null @ scipy.linalg.null_space(w @ fit @ null)  # N N2: (n+m, k2), orthonormal columns
-        if spare.shape[1]:
-            v = weight_root(s_in)
-            # A spare direction that moves no input (the state of an integrator no weighted
-            # output sees: a level in a zone) has an input part of rounding size; it must not
-            # be inverted, or the target's inputs leave the setpoints' steady state.
-            floor = SPARE_INPUT_TOLERANCE * float(np.linalg.norm(v, 2)) * float(np.linalg.norm(null[n:], 2))
-            pull = spare @ scipy.linalg.pinv(v @ spare[n:], atol=floor, rtol=0.0) @ v  # N N2 (V J N N2)^+ V
-            target_map = pull
-            setpoint_map = setpoint_map - pull @ setpoint_map[n:]
-            disturbance_map = disturbance_map - pull @ disturbance_map[n:]
+        # Solved in input units where every input's column of [B; S^(1/2)] is about 1 in size
+        # (powers of two, so the change of variables is exact): u = T v.  In the request's
+        # units an input scaled by 1e9 (its input weight by 1e-18, the same problem) had left
+        # the spare input's target wrong by more than its own size, and 1e6 by 1e-4.
+        t = _input_scales(b_, s_in)
+        maps = _target_maps(a_, b_ * t, c_, bd, dz, w, s_in * t[:, None] * t[None, :])
+        setpoint_map, disturbance_map, target_map = maps
+        setpoint_map[n:] *= t[:, None]
+        disturbance_map[n:] *= t[:, None]
+        target_map[n:] *= t[:, None]
+        target_map /= t[None, :]
+    else:
+        setpoint_map, disturbance_map, target_map = _target_maps(a_, b_, c_, bd, dz, w, s_in)
     output_setpoint_map = fit @ setpoint_map
     output_disturbance_map = fit @ disturbance_map + dz
     full = np.vstack([steady, fit])
@@ -291,6 +292,46 @@ def target_problem(
         input_weight=s_in,
         input_target_map=target_map,
     )
+
+
+def _input_scales(b: NDArray[np.float64], input_weight: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Powers of two ``T`` with each column of ``[B T; (T S T)^(1/2)]`` about 1 in size (a change of an input's unit scales both alike)."""
+    column = np.sqrt(np.einsum("ij,ij->j", b, b) + np.clip(np.diag(input_weight), 0.0, None))
+    return np.exp2(-np.round(np.log2(np.where(column > 0.0, column, 1.0))))
+
+
+def _target_maps(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    bd: NDArray[np.float64],
+    dz: NDArray[np.float64],
+    w: NDArray[np.float64],
+    s_in: NDArray[np.float64],
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+    """``S_r``, ``S_d`` and ``S_t`` of :func:`target_problem` (its notes) in the units given."""
+    n, m, pz = a.shape[0], b.shape[1], c.shape[0]
+    steady = np.hstack([np.eye(n) - a, -b])
+    fit = np.hstack([c, np.zeros((pz, m))])
+    null = scipy.linalg.null_space(steady)  # (n+m, k)
+    particular = scipy.linalg.pinv(steady) @ bd  # (n+m, nd)
+    solve = scipy.linalg.pinv(w @ fit @ null)  # (k, pz)
+    setpoint_map = null @ solve @ w
+    disturbance_map = particular - setpoint_map @ (dz + fit @ particular)
+    target_map = np.zeros((n + m, m))
+    if np.any(s_in):
+        spare = null @ scipy.linalg.null_space(w @ fit @ null)  # N N2: (n+m, k2), orthonormal columns
+        if spare.shape[1]:
+            v = weight_root(s_in)
+            # A spare direction that moves no input (the state of an integrator no weighted
+            # output sees: a level in a zone) has an input part of rounding size; it must not
+            # be inverted, or the target's inputs leave the setpoints' steady state.
+            floor = SPARE_INPUT_TOLERANCE * float(np.linalg.norm(v, 2)) * float(np.linalg.norm(null[n:], 2))
+            pull = spare @ scipy.linalg.pinv(v @ spare[n:], atol=floor, rtol=0.0) @ v  # N N2 (V J N N2)^+ V
+            target_map = pull
+            setpoint_map = setpoint_map - pull @ setpoint_map[n:]
+            disturbance_map = disturbance_map - pull @ disturbance_map[n:]
+    return setpoint_map, disturbance_map, target_map
 
 
 def steady_state_target(

@@ -30,12 +30,14 @@ The bracketed terms are there with measured disturbances ``d_m`` (``b_disturbanc
 model's ``Bd`` enters the estimator's prediction, and its free response ``Fd`` (``Cz sum_{l<i}
 A^l Bd`` at steps ``Hw..Hp``, :func:`service.solver.design.feedforward.disturbance_free_response`)
 the free prediction, so the unconstrained law is ``du = Kr r - Kx x - Ku u(k-1) - Kd d_m`` with
-``Kd = Kh Fd``.  The steady-state target does not use ``d_m``: with a reachable setpoint its
-outputs are the setpoint whatever ``d_m`` is.
+``Kd = Kh Fd``.  The steady-state target's outputs do not use ``d_m``: with a reachable setpoint
+they are the setpoint whatever ``d_m`` is.  Its inputs do, with an input weight (below).
 
 With an input weight (``weights.input``) the target also takes the input targets ``u_t``
 (``Scenario.input_targets``, held over the run, or changed by ``input_target_changes``):
-``u_s(k) = U_r r(k) + U_d d(k|k) + U_t u_t(k)``, and the policy receives ``target_input=u_s(k)``,
+``u_s(k) = U_r r(k) + U_d d(k|k) + U_t u_t(k) [+ U_m d_m(k)]`` (``U_m``: the steady state under
+``Bd d_m`` needs other inputs, :func:`service.solver.design.input_target.measured_input_target_map`;
+a target rule's ``u_s`` gains it too), and the policy receives ``target_input=u_s(k)``,
 which its input penalty pulls towards (:mod:`service.solver.design.input_target`); the
 unconstrained move is ``du = Kh E + Kt0 (u_s - u(k-1))``.  Without an input weight the policy
 is called as before and the input targets play no part.
@@ -84,6 +86,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.controller import ControllerDesign
 from service.solver.design.feedforward import disturbance_free_response
+from service.solver.design.input_target import measured_input_target_map
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.loop import ControlLoop, TerminalTerm, control_loop, terminal_term
 
@@ -724,10 +727,21 @@ def simulate_loop(
     offset = d_out @ seen.T + noise  # what adds to Cy_true x in what the filter reads
 
     target = loop.target
+    u_m = None  # U_m: how the measured disturbances move the target's inputs (with input targets)
     targets_r = setpoints @ target.output_setpoint_map.T  # Z_r r(k), all steps at once
     target_inputs_r = setpoints @ target.setpoint_map[n:].T
     if pulled:
         target_inputs_r = target_inputs_r + u_targets @ target.input_target_map[n:].T  # + U_t u_t(k)
+        if md and loop.design.input_weight is not None:  # + U_m d_m(k): the target's inputs under d_m
+            u_m = measured_input_target_map(
+                est.model_a,
+                est.model_b,
+                est.model_c,
+                bd,
+                output_weight=loop.design.output_weight,
+                input_weight=loop.design.input_weight,
+            )
+            target_inputs_r = target_inputs_r + d_meas @ u_m.T
     z_d = target.output_disturbance_map
     u_d = target.disturbance_map[n:]
     use_d = nd > 0 and bool(np.any(z_d) or np.any(u_d))
@@ -808,8 +822,10 @@ def simulate_loop(
                     else:
                         ruled = target_rule(setpoint=setpoints[k], disturbance=xf[dsl])
                     zs, us = ruled[0], ruled[1]
-                    if term is not None:
+                    if term is not None:  # the terminal error adds X_m d_m itself (feedforward_shift)
                         xs = np.concatenate([ruled[2], us])
+                    if u_m is not None:  # the rule's target knows no measured disturbance: + U_m d_m
+                        us = us + u_m @ d_meas[k]
                 else:
                     zs = targets_r[k]
                     us = target_inputs_r[k]
