@@ -53,11 +53,9 @@ from service.schemas.design import (
 )
 from service.solver.design.closed_loop import ILL_CONDITIONED, Diagnostic
 from service.solver.design.controller import ControllerDesign, design_controller
-from service.solver.design.feedforward import disturbance_free_response, feedforward_gain
+from service.solver.design.feedforward import design_feedforward_gain
 from service.solver.design.gain import PredictiveGain
-from service.solver.design.input_target import measured_input_target_map
 from service.solver.design.marginal import MarginalMode, describe_signals
-from service.solver.design.terminal import terminal_disturbance_maps
 from service.solver.estimation.estimator import Estimator
 from service.solver.evaluation.advice import merge_warnings, tuning_advice
 from service.solver.evaluation.frequency import FrequencyAnalysis, design_frequency_analysis
@@ -474,34 +472,7 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
     )
     feedforward = None
     if scaled.b_disturbance is not None and sd is not None:
-        fd = disturbance_free_response(
-            scaled.a,
-            scaled.b_disturbance,
-            scaled.c,
-            prediction=inputs.prediction,
-            first_penalized=inputs.first_penalized,
-        )
-        kd = feedforward_gain(design.gain.horizon, fd)
-        if design.terminal is not None and design.terminal_gain is not None:  # + Kt (Phi_m - S_m)
-            free, steady = terminal_disturbance_maps(
-                scaled.a,
-                scaled.b,
-                scaled.c,
-                scaled.b_disturbance,
-                output_weight=design.output_weight,
-                prediction=inputs.prediction,
-                input_weight=design.input_weight,
-            )
-            kd = kd + design.terminal_gain @ (free - steady)
-        if design.input_target_gain is not None and design.input_weight is not None:  # - Kt0 U_m
-            kd = kd - design.input_target_gain @ measured_input_target_map(
-                scaled.a,
-                scaled.b,
-                scaled.c,
-                scaled.b_disturbance,
-                output_weight=design.output_weight,
-                input_weight=design.input_weight,
-            )
+        kd = design_feedforward_gain(design, scaled.a, scaled.b, scaled.c, scaled.b_disturbance)
         feedforward = unscale_feedforward(kd, input_span=su, disturbance_span=sd)
     estimator, analysis, model_error = None, None, None
     if inputs.frequency_points is not None or inputs.model_error is not None:

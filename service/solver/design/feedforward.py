@@ -19,12 +19,19 @@ the Hessian nor the closed-loop poles.
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from service.solver.design.input_target import measured_input_target_map
 from service.solver.design.prediction import step_response_coefficients
+from service.solver.design.terminal import terminal_disturbance_maps
 
-__all__ = ["disturbance_free_response", "feedforward_gain"]
+if TYPE_CHECKING:
+    from service.solver.design.controller import ControllerDesign
+
+__all__ = ["design_feedforward_gain", "disturbance_free_response", "feedforward_gain"]
 
 
 def disturbance_free_response(
@@ -97,3 +104,58 @@ def feedforward_gain(horizon_gain: ArrayLike, free_disturbance: ArrayLike) -> ND
     assert kh.shape[1] == fd.shape[0], (kh.shape, fd.shape)
     result: NDArray[np.float64] = kh @ fd
     return result
+
+
+def design_feedforward_gain(
+    design: ControllerDesign,
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    b_disturbance: NDArray[np.float64],
+) -> NDArray[np.float64]:
+    """Return the whole feed-forward gain ``Kd`` of a design, every term its options add.
+
+    ``Kd = Kh Fd`` (:func:`feedforward_gain`), plus ``Kt (Phi_m - S_m)`` with the Riccati
+    terminal weight (the held disturbance moves both the free terminal prediction and the
+    steady state, :func:`service.solver.design.terminal.terminal_disturbance_maps`), less
+    ``Kt0 U_m`` with input targets (the target's inputs move with the disturbance,
+    :func:`service.solver.design.input_target.measured_input_target_map`).  /design's answer and
+    the fixed law of /simulate and the export take it from here, so the terms cannot part.
+
+    Parameters
+    ----------
+    design : ControllerDesign
+        Designed on ``(a, b, c)``.
+    a : ndarray, shape (n, n)
+    b : ndarray, shape (n, m)
+    c : ndarray, shape (p, n)
+        The model the design was made on (no disturbance states).
+    b_disturbance : ndarray, shape (n, md)
+        ``Bd`` of the measured disturbances, in the same signals.
+
+    Returns
+    -------
+    ndarray, shape (m, md)
+        ``du(k) = ... - Kd d_m(k)``.
+    """
+    pred = design.prediction
+    fd = disturbance_free_response(
+        a, b_disturbance, c, prediction=pred.prediction, first_penalized=pred.first_penalized
+    )
+    kd = feedforward_gain(design.gain.horizon, fd)
+    if design.terminal is not None and design.terminal_gain is not None:  # + Kt (Phi_m - S_m)
+        free, steady = terminal_disturbance_maps(
+            a,
+            b,
+            c,
+            b_disturbance,
+            output_weight=design.output_weight,
+            prediction=pred.prediction,
+            input_weight=design.input_weight,
+        )
+        kd = kd + design.terminal_gain @ (free - steady)
+    if design.input_target_gain is not None and design.input_weight is not None:  # - Kt0 U_m
+        kd = kd - design.input_target_gain @ measured_input_target_map(
+            a, b, c, b_disturbance, output_weight=design.output_weight, input_weight=design.input_weight
+        )
+    return kd

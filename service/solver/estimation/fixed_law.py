@@ -72,8 +72,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.solver.design.controller import ControllerDesign
-from service.solver.design.feedforward import disturbance_free_response
-from service.solver.design.input_target import measured_input_target_map
+from service.solver.design.feedforward import design_feedforward_gain
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.loop import estimator_target, terminal_term
 from service.solver.estimation.realization import StateSpace, estimate_feedback_gain
@@ -187,26 +186,8 @@ def fixed_law(
         if terminal.input_target_map is not None:  # Kt X_t: the input targets' way through it
             target_gain = target_gain + terminal.gain @ terminal.input_target_map
     mt = target_gain.shape[1]
-    if md:
-        fd = disturbance_free_response(
-            estimator.a,
-            bda,
-            estimator.c_controlled,
-            prediction=pred.prediction,
-            first_penalized=pred.first_penalized,
-        )
-        feedforward = kh @ fd
-        if terminal is not None:  # Kt (Phi_m - X_m): the disturbance on both sides of the terminal deviation
-            feedforward = feedforward + terminal.feedforward
-        if kt0 is not None and design.input_weight is not None:  # - Kt0 U_m: the target's inputs under d_m
-            feedforward = feedforward - kt0 @ measured_input_target_map(
-                estimator.model_a,
-                estimator.model_b,
-                estimator.model_c,
-                bd,
-                output_weight=design.output_weight,
-                input_weight=design.input_weight,
-            )
+    if md:  # the design's whole Kd (the same function as /design's answer)
+        feedforward = design_feedforward_gain(design, estimator.model_a, estimator.model_b, estimator.model_c, bd)
     else:
         feedforward = np.zeros((m, 0))
     lg, cy = estimator.gain, estimator.c_measured
