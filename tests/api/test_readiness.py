@@ -33,15 +33,20 @@ def _kill_idle(pool: SolverPool) -> None:
         solver.process.join(timeout=10)
 
 
+def _lose_the_only_solver(pool: SolverPool, monkeypatch) -> None:
+    """Start the pool, kill its solver and make every start fail; the call that finds it dead is a 503."""
+    pool.start()
+    _kill_idle(pool)
+    monkeypatch.setattr(pool, "_spawn", _no_process)
+    with pytest.raises(ComputeDied):
+        pool.run(abs, (-3,), deadline=time.monotonic() + 300, seconds=300)
+
+
 def test_a_pool_that_cannot_start_a_solver_answers_solver_died_at_once_and_recovers(monkeypatch):
     pool = SolverPool(processes=1, start_retry_seconds=0.0)  # each call may try a start
     try:
-        pool.start()
-        _kill_idle(pool)
-        monkeypatch.setattr(pool, "_spawn", _no_process)
         # the dead solver is found, its replacement fails: a 503 of its own kind, not an OSError (a 500)
-        with pytest.raises(ComputeDied):
-            pool.run(abs, (-3,), deadline=time.monotonic() + 300, seconds=300)
+        _lose_the_only_solver(pool, monkeypatch)
         assert not pool.ready and pool.short
         # the pool holds no process now: the next call is told so at once (it had waited for its
         # time limit, here 300 s, for a solver that would never come)
@@ -145,11 +150,7 @@ def test_a_start_that_fails_part_way_is_a_503_and_the_pool_is_filled_to_its_numb
 def test_a_pool_closed_while_it_starts_a_process_leaves_none_running(monkeypatch):
     pool = SolverPool(processes=1, start_retry_seconds=0.0)
     try:
-        pool.start()
-        _kill_idle(pool)
-        monkeypatch.setattr(pool, "_spawn", _no_process)
-        with pytest.raises(ComputeDied):
-            pool.run(abs, (-3,), deadline=time.monotonic() + 300, seconds=300)
+        _lose_the_only_solver(pool, monkeypatch)
         monkeypatch.undo()
         spawn = pool._spawn
         fresh = []

@@ -99,6 +99,21 @@ def test_terminal_none_is_the_default_and_changes_nothing(rng):
     assert none.terminal is None and none.terminal_gain is None
 
 
+def _two_inputs_alike(input_weight, *, horizon):
+    """The Riccati design of two inputs acting alike on one output (invented), Hu = Hp = horizon."""
+    return design_controller(
+        [[0.5]],
+        [[1.0, 1.0]],
+        [[1.0]],
+        output_weight=[1.0],
+        move_weight=[1.0, 1.0],
+        input_weight=input_weight,
+        prediction=horizon,
+        control=horizon,
+        terminal="riccati",
+    )
+
+
 @pytest.mark.parametrize("input_weight", [None, [[1.0, 1.0], [1.0, 1.0]]], ids=["no input weight", "on u1 + u2"])
 def test_more_inputs_than_outputs_has_no_stabilizing_terminal_weight(input_weight):
     # Two inputs acting alike on one output: u1 - u2 held is an equilibrium of [x; u] on the
@@ -107,17 +122,7 @@ def test_more_inputs_than_outputs_has_no_stabilizing_terminal_weight(input_weigh
     # u1 + u2 alone still misses u1 - u2; there the solver returned a near-stabilizing limit
     # whose loop kept a pole at 1 - 2e-8, which the check must not take for the solution.
     with pytest.raises(NumericalError) as info:
-        design_controller(
-            [[0.5]],
-            [[1.0, 1.0]],
-            [[1.0]],
-            output_weight=[1.0],
-            move_weight=[1.0, 1.0],
-            input_weight=input_weight,
-            prediction=3,
-            control=3,
-            terminal="riccati",
-        )
+        _two_inputs_alike(input_weight, horizon=3)
     assert info.value.field == ("weights", "terminal")
     assert "z = 1" in info.value.detail
     # every move has a positive weight: the advice is about the spare input, not the move weights
@@ -267,17 +272,7 @@ def test_a_spare_direction_weighted_faintly_is_refused_as_slow_not_as_missing():
     p = (-s + mpmath.sqrt(s * s + 4 * s * r)) / 2
     gap = (p + s) / (r + s + p)  # 1 - pole
     with pytest.raises(NumericalError) as info:
-        design_controller(
-            [[0.5]],
-            [[1.0, 1.0]],
-            [[1.0]],
-            output_weight=[1.0],
-            move_weight=[1.0, 1.0],
-            input_weight=[1e-13, 1e-13],
-            prediction=20,
-            control=20,
-            terminal="riccati",
-        )
+        _two_inputs_alike([1e-13, 1e-13], horizon=20)
     detail = info.value.detail
     assert f"1 - {float(gap):.3g}" in detail and "marginal" in detail and "weights.input" in detail
     assert "does not exist" not in detail
