@@ -29,6 +29,7 @@ from service.errors import FieldProblem, InvalidRequest, NumericalError
 from service.pipeline.caps import Caps
 from service.pipeline.compare_text import summary
 from service.pipeline.design import DesignInputs, check_design_request, compute_design, design_response
+from service.pipeline.estimator import signal_sizes as estimator_signal_sizes
 from service.pipeline.fingerprint import design_fingerprint
 from service.pipeline.operating_point import (
     OperatingPointValues,
@@ -55,7 +56,6 @@ from service.schemas.compare import (
 from service.schemas.design import DesignRequest, DesignResponse, PoleReport
 from service.schemas.robustness import LoopRobustnessReport
 from service.schemas.simulate import PerformanceReport, ScenarioRequest
-from service.solver.estimation.sizes import natural_sizes
 from service.solver.models.scaling import scale_plant
 
 __all__ = [
@@ -235,13 +235,7 @@ def signal_sizes(plant: DiscretePlant) -> dict[SignalKey, float]:
     the gain changes.
     """
     scaled = scale_plant(plant.a, plant.b, plant.c, input_span=plant.input_spans, output_span=plant.output_spans)
-    sizes = natural_sizes(
-        scaled.a,
-        scaled.b,
-        scaled.c,
-        fixed_outputs=[s.spanned for s in plant.outputs],
-        fixed_inputs=[s.spanned for s in plant.inputs],
-    )
+    sizes = estimator_signal_sizes(plant, scaled, measured=False)  # the default filter's, of the controlled outputs
     found: dict[SignalKey, float] = {}
     for kind, signals, natural in (("outputs", plant.outputs, sizes.outputs), ("inputs", plant.inputs, sizes.inputs)):
         for signal, size in zip(signals, natural, strict=True):
