@@ -143,6 +143,7 @@ def design_feedforward_gain(
         a, b_disturbance, c, prediction=pred.prediction, first_penalized=pred.first_penalized
     )
     kd = feedforward_gain(design.gain.horizon, fd)
+    steady = None  # S_m, [x_s; u_s] under the held disturbance, when the terminal weight needs it
     if design.terminal is not None and design.terminal_gain is not None:  # + Kt (Phi_m - S_m)
         free, steady = terminal_disturbance_maps(
             a,
@@ -155,7 +156,13 @@ def design_feedforward_gain(
         )
         kd = kd + design.terminal_gain @ (free - steady)
     if design.input_target_gain is not None and design.input_weight is not None:  # - Kt0 U_m
-        kd = kd - design.input_target_gain @ measured_input_target_map(
-            a, b, c, b_disturbance, output_weight=design.output_weight, input_weight=design.input_weight
+        # U_m is the input rows of S_m (the same target problem): formed once when both need it
+        u_m = (
+            steady[a.shape[0] :]
+            if steady is not None
+            else measured_input_target_map(
+                a, b, c, b_disturbance, output_weight=design.output_weight, input_weight=design.input_weight
+            )
         )
+        kd = kd - design.input_target_gain @ u_m
     return kd
