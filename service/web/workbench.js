@@ -22,7 +22,7 @@ const answerWait = Number(document.querySelector('meta[name="movecast-answer-wai
 
 function deadlineError() {
   const error = new Error(`no answer came within ${answerWait} s, the longest the service takes to answer or refuse; `
-    + "a proxy or the network in between holds the call. Try again later");
+    + "a proxy or the network in between holds the call. Try again later.");
   error.deadline = true;
   return error;
 }
