@@ -15,7 +15,7 @@ References beside each check:
   constrained least squares ``min |u - u_t|^2_S`` subject to the true plant's steady-state
   gain ``G (u - u_0) = r - z_0``, solved from its KKT system with ``numpy.linalg.solve``.
   With a uniform gain error the controller's own target problem has the same row space, so
-  an offset-free loop (a bias per output, Muske and Badgwell 2002) settles there; as the
+  an offset-free loop (a bias per output; common practice) settles there; as the
   trim valve's weight grows it settles on its input target, the other two inputs then
   solving ``G u = r`` alone (``numpy.linalg.solve`` of the 2 x 2 system).
 """
