@@ -175,11 +175,14 @@ def limited_run(
     loop: ControlLoop,
     *,
     zones: ZoneInputs | None = None,
+    b_disturbance: NDArray[np.float64] | None = None,
 ) -> LimitedRun:
     """Set up the move QP and the reachable target of a run under ``limits`` (scaled by the model's spans).
 
     ``zones`` adds the zone outputs' slacks to the QP (``service.solver.limits.zones``); a run
     with zones and no limits passes :func:`service.pipeline.limits_checks.no_limits`.
+    ``b_disturbance`` (the model's measured-disturbance matrix, in the loop's scaled signals)
+    puts the held measured disturbances into the reachable target.
 
     With move blocking the QP's moves are the free (blocked) moves: the input is held between
     them, so its limits are met at each block's start and each free move is one move.
@@ -210,7 +213,8 @@ def limited_run(
                 zones=held,
             )
             policy = ConstrainedPolicy(qp, scaled)
-        target = ReachableTargetRule.from_loop(loop, scaled)
+        measured = None if b_disturbance is None or not b_disturbance.shape[1] else b_disturbance
+        target = ReachableTargetRule.from_loop(loop, scaled, b_disturbance=measured)
         exact = GainWhenFreePolicy(
             policy, loop.horizon_gain, design.input_target_gain, None if loop.terminal is None else loop.terminal.gain
         )

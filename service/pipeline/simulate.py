@@ -226,7 +226,9 @@ def compute_simulation(inputs: SimulationInputs) -> SimulationOutcome:
     limits, zones = inputs.design.limits, inputs.design.zones
     limited = None
     if limits is not None or zones is not None:  # zones alone also need the QP: it holds them
-        limited = limited_run(limits or no_limits(plant), plant, outcome.design, loop, zones=zones)
+        limited = limited_run(
+            limits or no_limits(plant), plant, outcome.design, loop, zones=zones, b_disturbance=scaled.b_disturbance
+        )
     with np.errstate(over="ignore", invalid="ignore"):  # absurd levels overflow: the series are cut below
         sim = simulate_loop(
             outcome.design,

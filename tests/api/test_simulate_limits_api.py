@@ -354,3 +354,42 @@ def test_the_default_softness_is_the_solver_s():
     from service.schemas.limits import LimitsRequest
 
     assert LimitsRequest().output_softness == DEFAULT_OUTPUT_SOFTNESS
+
+
+def test_a_measured_disturbance_beyond_the_valves_moves_the_target_and_is_said(client):
+    # A measured inlet flow (invented: a step of 12 kg/h into the vessel) whose rejection
+    # alone needs more steam than the valve has.  The steady state under it is x_s =
+    # (I - A)^-1 (B u + Bd d_m) (common practice), and the nearest reachable one in the weighted
+    # sense is min |W S_z^-1 (G_ss u + G_m d_m - r)| subject to the input limits, by
+    # scipy.optimize.lsq_linear (the reference).  Before the flow step the setpoint is reachable;
+    # after it the run must settle on the reference and report the corrected target.
+    low, high = np.array([-0.5, -0.3]), np.array([0.5, 0.3])
+    bd = np.array([[0.004], [0.0], [0.0015], [0.0]])
+    r = np.array([0.8, -0.2])
+    body = request(
+        steps=700,
+        kind="output_disturbance",
+        limits={"input_min": low.tolist(), "input_max": high.tolist()},
+        setpoint_changes=[{"step": 5, "setpoint": r.tolist()}],
+        measured_disturbances=[{"step": 300, "value": [12.0]}],
+    )
+    body["model"]["b_disturbance"] = bd.tolist()
+    body["model"]["disturbances"] = [{"name": "inlet_flow", "unit": "kg/h", "span": 10.0}]
+    gain = steady_gain()
+    g_m = C @ np.linalg.solve(np.eye(A.shape[0]) - A, bd)
+    weight = np.diag(np.sqrt(np.array(EXAMPLE["weights"]["output"])) / OUTPUT_SPAN)
+    before = np.linalg.solve(gain, r)
+    assert np.all((before > low) & (before < high))  # reachable before the flow step
+    reference = scipy.optimize.lsq_linear(
+        weight @ gain, weight @ (r - g_m @ [12.0]), bounds=(low, high), method="bvls", tol=1e-14
+    )
+    assert reference.success and np.abs(reference.fun).max() > 1e-3  # out of reach after it
+    answer = post(client, body).json()
+    u, z = np.array(answer["inputs"]), np.array(answer["outputs"])
+    np.testing.assert_allclose(z[295], r, atol=1e-6)
+    np.testing.assert_allclose(u[-1], reference.x, atol=1e-7)
+    np.testing.assert_allclose(z[-1], gain @ reference.x + g_m @ [12.0], atol=1e-7)
+    rows = rows_by_step(answer)
+    np.testing.assert_allclose(rows[699]["target"], gain @ reference.x + g_m @ [12.0], atol=1e-6)
+    assert all(rows[k]["target"] is None for k in range(200, 300) if k in rows)
+    assert any(w["code"] == "setpoint_out_of_reach" for w in answer["warnings"])

@@ -60,6 +60,29 @@ def test_the_law_driven_by_the_run_s_measurements_gives_the_run_s_inputs(kind, d
     np.testing.assert_allclose(v[:, 2:], run.moves, rtol=0, atol=1e-10 * scale)
 
 
+@pytest.mark.parametrize("kind", ["output_disturbance", "full_state"])
+def test_with_one_valve_for_two_outputs_the_law_follows_the_measured_disturbance_s_best_fit(kind):
+    # No steady state meets both setpoints: the loop tracks the target's best fit, which a
+    # held measured disturbance moves (Z_m d_m).  The exported law must carry that in Kd, or
+    # it would run another loop than /simulate's (scipy's dlsim as the reference simulation).
+    b = B[:, :1]
+    design = design_controller(A, b, C, output_weight=np.array([1.0, 2.0]), move_weight=[0.1], prediction=30, control=5)
+    estimator = design_estimator(A, b, C, kind=kind)
+    scenario = Scenario(
+        steps=150,
+        setpoint_changes=[Event(10, np.array([1.0, -0.5]))],
+        measured_disturbances=[Event(20, np.array([1.0])), Event(90, np.array([-2.0]))],
+    )
+    run = simulate_loop(design, estimator, scenario, b_disturbance=BD)
+    law = fixed_law(design, estimator, b_disturbance=BD)
+    sys = law.system
+    ins = run.states if kind == "full_state" else run.measured
+    w = np.hstack([ins, run.setpoints, run.measured_disturbances])
+    _, v, _ = scipy.signal.dlsim((sys.a, sys.b, sys.c, sys.d, 1.0), w)
+    scale = np.abs(run.inputs).max()
+    np.testing.assert_allclose(v[:, :1], run.inputs, rtol=0, atol=1e-10 * scale)
+
+
 def test_the_split_form_with_the_input_applied_unchanged_is_the_system():
     estimator = design_estimator(A, B, C, kind="output_disturbance")
     law = fixed_law(_design(), estimator)

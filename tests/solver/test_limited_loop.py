@@ -181,3 +181,33 @@ def test_excursions_by_hand_and_against_limit_violations():
     worst = limit_violations(limits, inputs=u, previous_input=[0.0], outputs=z)
     assert worst.input[0] == pytest.approx(0.5) and worst.move[0] == pytest.approx(0.4) and worst.output[0] == 1.0
     assert limit_excursions(make_limits(1, 1, input_max=2.0), inputs=u, previous_input=[0.0], outputs=z) == ()
+
+
+@pytest.mark.parametrize("kind", ["full_state", "output_disturbance"])
+def test_a_measured_disturbance_moves_the_reachable_target(rng, kind):
+    # A held measured disturbance d_m changes the steady state the inputs can reach:
+    # x_s = (I - A)^-1 (B u_s + Bd d_m).  Reference: min |W (G_ss u + G_m d_m - r)| subject to the
+    # input limits (scipy.optimize.lsq_linear, bounded least squares), G_m = C (I - A)^-1 Bd.
+    # The setpoint is reachable before the disturbance and not after it: the rule must say so
+    # and the loop must settle on the reference, not push against the limit for the setpoint.
+    a, b, c, design, estimator = setup(rng, kind)
+    bd = rng.standard_normal((N, 1))
+    loop = control_loop(design, estimator)
+    limits = make_limits(M, P, input_min=-0.4, input_max=0.4)
+    gain = c @ np.linalg.solve(np.eye(N) - a, b)
+    g_m = c @ np.linalg.solve(np.eye(N) - a, bd)
+    r = gain @ np.array([0.2, -0.2])  # reachable with both inputs inside +-0.4
+    # a disturbance whose rejection alone needs an input of about 1.6 (four times the limit)
+    d_m = np.array([1.6 / np.abs(np.linalg.solve(gain, g_m)).max()])
+    scenario = Scenario(steps=300, setpoint_changes=[Event(0, r)], measured_disturbances=[Event(100, d_m)])
+    rule = ReachableTargetRule.from_loop(loop, limits, b_disturbance=bd)
+    policy = GainWhenFreePolicy(ConstrainedPolicy.from_design(design, limits), design.gain.horizon)
+    sim = simulate_loop(design, estimator, scenario, loop=loop, policy=policy, target_rule=rule, b_disturbance=bd)
+    weight = np.diag(np.sqrt([1.0, 2.0]))
+    reference = scipy.optimize.lsq_linear(
+        weight @ gain, weight @ (r - g_m @ d_m), bounds=(-0.4, 0.4), method="bvls", tol=1e-14
+    )
+    assert rule.reachable[99] and not rule.reachable[-1]
+    np.testing.assert_allclose(sim.inputs[-1], reference.x, atol=1e-6)
+    np.testing.assert_allclose(sim.outputs[-1], gain @ reference.x + g_m @ d_m, atol=1e-6)
+    np.testing.assert_allclose(sim.targets[-1], gain @ reference.x + g_m @ d_m, atol=1e-8)

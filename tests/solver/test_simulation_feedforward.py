@@ -102,3 +102,34 @@ def test_many_events_hold_as_the_naive_definition_says(rng):
             last = max(e.step for e in at_or_before)
             expected[k] = [e for e in at_or_before if e.step == last][-1].value  # later in the list wins
     np.testing.assert_allclose(sim.outputs - sim.states @ C.T, expected, rtol=0, atol=1e-14)
+
+
+def test_with_an_unreachable_setpoint_a_measured_disturbance_moves_the_best_fit():
+    # One valve for two outputs: no steady state meets both setpoints, and the target is the
+    # Q-weighted best fit (Muske and Badgwell 2002's target calculation, least squares).  A held
+    # measured disturbance moves the steady outputs by G_m d_m, so the best fit is
+    # u* = argmin |W (G u + G_m d_m - r)| (numpy lstsq, the reference), G = C (I - A)^-1 B,
+    # G_m = C (I - A)^-1 Bd.  The loop must settle there and say so in its targets; on the
+    # fixed-law path (one linear recursion) and on the step loop alike.
+    from service.solver.evaluation.simulation import UnconstrainedPolicy
+
+    b = B[:, :1]
+    weights = np.array([1.0, 3.0])
+    d = design_controller(A, b, C, output_weight=weights, move_weight=[0.1], prediction=30, control=3)
+    gain = C @ np.linalg.solve(np.eye(2) - A, b)
+    g_m = C @ np.linalg.solve(np.eye(2) - A, BD)
+    r, d_m = np.array([1.0, 0.4]), np.array([2.5])
+    scenario = Scenario(steps=400, setpoint_changes=[Event(0, r)], measured_disturbances=[Event(150, d_m)])
+    w = np.diag(np.sqrt(weights))
+    u_star = np.linalg.lstsq(w @ gain, w @ (r - g_m @ d_m), rcond=None)[0]
+    z_star = gain @ u_star + g_m @ d_m
+    for kind in ("full_state", "output_disturbance"):
+        est = design_estimator(A, b, C, kind=kind)
+        fixed = simulate_loop(d, est, scenario, b_disturbance=BD)
+        stepped = simulate_loop(d, est, scenario, b_disturbance=BD, policy=UnconstrainedPolicy(d.gain.horizon))
+        for sim in (fixed, stepped):
+            assert sim.diverged_at is None
+            np.testing.assert_allclose(sim.outputs[-1], z_star, atol=1e-8)
+            np.testing.assert_allclose(sim.targets[-1], z_star, atol=1e-10)
+            np.testing.assert_allclose(sim.inputs[-1], u_star, atol=1e-8)
+        np.testing.assert_allclose(fixed.inputs, stepped.inputs, rtol=1e-9, atol=1e-11)

@@ -282,6 +282,22 @@ def test_terminal_run_with_a_measured_disturbance_is_the_lqr_loop_on_the_shifted
     policy = UnconstrainedPolicy(design.gain.horizon, None, design.terminal_gain)
     stepped = simulate_loop(design, estimator, scenario, b_disturbance=BD, policy=lambda **kw: policy(**kw))
     np.testing.assert_allclose(stepped.inputs, run.inputs, rtol=0, atol=1e-12)
+    # under limits out of the way the reachable-target rule, given d_m, holds X_m d_m in its
+    # steady state: the terminal error then gains only - Phi_m d_m, and the run is the same
+    loop = control_loop(design, estimator)
+    wide = _wide()
+    limited = simulate_loop(
+        design,
+        estimator,
+        scenario,
+        loop=loop,
+        b_disturbance=BD,
+        policy=GainWhenFreePolicy(
+            ConstrainedPolicy.from_design(design, wide), loop.horizon_gain, None, design.terminal_gain
+        ),
+        target_rule=ReachableTargetRule.from_loop(loop, wide, b_disturbance=BD),
+    )
+    np.testing.assert_allclose(limited.inputs, run.inputs, rtol=0, atol=1e-10)
 
 
 def test_terminal_fixed_law_with_a_measured_disturbance_is_the_run():

@@ -24,14 +24,14 @@ from typing import TYPE_CHECKING
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from service.solver.design.input_target import measured_input_target_map
 from service.solver.design.prediction import step_response_coefficients
-from service.solver.design.terminal import terminal_disturbance_maps
+from service.solver.design.terminal import terminal_free_disturbance
+from service.solver.estimation.target import TargetProblem, target_problem
 
 if TYPE_CHECKING:
     from service.solver.design.controller import ControllerDesign
 
-__all__ = ["design_feedforward_gain", "disturbance_free_response", "feedforward_gain"]
+__all__ = ["design_feedforward_gain", "disturbance_free_response", "feedforward_gain", "measured_target"]
 
 
 def disturbance_free_response(
@@ -112,15 +112,29 @@ def design_feedforward_gain(
     b: NDArray[np.float64],
     c: NDArray[np.float64],
     b_disturbance: NDArray[np.float64],
+    *,
+    target_outputs: bool = False,
 ) -> NDArray[np.float64]:
     """Return the whole feed-forward gain ``Kd`` of a design, every term its options add.
 
-    ``Kd = Kh Fd`` (:func:`feedforward_gain`), plus ``Kt (Phi_m - S_m)`` with the Riccati
-    terminal weight (the held disturbance moves both the free terminal prediction and the
-    steady state, :func:`service.solver.design.terminal.terminal_disturbance_maps`), less
-    ``Kt0 U_m`` with input targets (the target's inputs move with the disturbance,
-    :func:`service.solver.design.input_target.measured_input_target_map`).  /design's answer and
-    the fixed law of /simulate and the export take it from here, so the terms cannot part.
+    ``Kd = Kh Fd`` (:func:`feedforward_gain`); a held disturbance also moves the steady-state
+    target, ``[x_s; u_s]`` by ``S_m d_m`` and its outputs by ``Z_m d_m``
+    (:func:`service.solver.estimation.target.with_measured_disturbances`), which adds:
+
+    - ``- Kh (1 (x) Z_m)`` for a law that tracks the target's outputs (``target_outputs``: the
+      estimator's law, whose setpoint gain is ``Kh (1 (x) Z_r)``), where a setpoint is not
+      reachable (``Z_m = 0`` otherwise): the best fit to the setpoint moves with the
+      disturbance, and ``E`` with it.  /design's own law tracks ``r`` itself (``Kr = Kh (1 (x)
+      I)``) and leaves this term out;
+    - ``+ Kt (Phi_m - S_m)`` with the Riccati terminal weight (the held disturbance moves both
+      the free terminal prediction and the steady state,
+      :func:`service.solver.design.terminal.terminal_free_disturbance`);
+    - ``- Kt0 U_m`` with input targets (``U_m`` the input rows of ``S_m``: the target's inputs
+      move with the disturbance).
+
+    /design's answer and the fixed law of /simulate and the export take it from here, so the
+    terms cannot part.  The target's ``S_m`` and ``Z_m`` come from one target problem
+    (:func:`measured_target`).
 
     Parameters
     ----------
@@ -132,6 +146,9 @@ def design_feedforward_gain(
         The model the design was made on (no disturbance states).
     b_disturbance : ndarray, shape (n, md)
         ``Bd`` of the measured disturbances, in the same signals.
+    target_outputs : bool, optional
+        Whether the law tracks the steady-state target's outputs ``Z_r r + Z_m d_m`` (default
+        False: it tracks ``r``).
 
     Returns
     -------
@@ -142,27 +159,38 @@ def design_feedforward_gain(
     fd = disturbance_free_response(
         a, b_disturbance, c, prediction=pred.prediction, first_penalized=pred.first_penalized
     )
-    kd = feedforward_gain(design.gain.horizon, fd)
-    steady = None  # S_m, [x_s; u_s] under the held disturbance, when the terminal weight needs it
+    kh = design.gain.horizon
+    kd = feedforward_gain(kh, fd)
+    measured = measured_target(a, b, c, b_disturbance, design)
+    z_m = measured.output_disturbance_map  # (p, md)
+    if target_outputs and np.any(z_m):  # - Kh (1 (x) Z_m)
+        kd = kd - kh @ np.tile(z_m, (fd.shape[0] // z_m.shape[0], 1))
     if design.terminal is not None and design.terminal_gain is not None:  # + Kt (Phi_m - S_m)
-        free, steady = terminal_disturbance_maps(
-            a,
-            b,
-            c,
-            b_disturbance,
-            output_weight=design.output_weight,
-            prediction=pred.prediction,
-            input_weight=design.input_weight,
-        )
-        kd = kd + design.terminal_gain @ (free - steady)
+        free = terminal_free_disturbance(a, b_disturbance, inputs=b.shape[1], prediction=pred.prediction)
+        kd = kd + design.terminal_gain @ (free - measured.disturbance_map)
     if design.input_target_gain is not None and design.input_weight is not None:  # - Kt0 U_m
-        # U_m is the input rows of S_m (the same target problem): formed once when both need it
-        u_m = (
-            steady[a.shape[0] :]
-            if steady is not None
-            else measured_input_target_map(
-                a, b, c, b_disturbance, output_weight=design.output_weight, input_weight=design.input_weight
-            )
-        )
-        kd = kd - design.input_target_gain @ u_m
+        kd = kd - design.input_target_gain @ measured.disturbance_map[a.shape[0] :]
     return kd
+
+
+def measured_target(
+    a: NDArray[np.float64],
+    b: NDArray[np.float64],
+    c: NDArray[np.float64],
+    b_disturbance: NDArray[np.float64],
+    design: ControllerDesign,
+) -> TargetProblem:
+    """The target equations of ``(a, b, c)`` with the measured disturbances as their disturbances.
+
+    Weighted as the design's own target (``Q``, and ``S`` with input targets), so that its
+    ``disturbance_map`` is ``S_m`` (n+m, md) and its ``output_disturbance_map`` is ``Z_m`` (p, md)
+    of :func:`service.solver.estimation.target.with_measured_disturbances`.
+    """
+    return target_problem(
+        a,
+        b,
+        c,
+        disturbance_input=b_disturbance,
+        output_weight=design.output_weight,
+        input_weight=design.input_weight,
+    )

@@ -35,7 +35,7 @@ the steady state under ``Bd d_m`` needs other inputs, ``u_s = U_r r + U_t u_t + 
 Pulling the inputs towards the target without ``U_m d_m`` pulls them away from the steady state
 that holds the outputs on their setpoints, and the loop settles with an offset.  So the
 feed-forward gain ``Kd`` of ``du = ... - Kd d_m`` (:mod:`service.solver.design.feedforward`) gains
-``- Kt0 U_m`` (:func:`measured_input_target_map`).
+``- Kt0 U_m`` (:func:`service.solver.design.feedforward.measured_target`).
 """
 
 from __future__ import annotations
@@ -48,9 +48,8 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.solver.design.gain import FactoredHessian, PredictiveGain
-from service.solver.estimation.target import target_problem
 
-__all__ = ["InputPenalty", "input_penalty", "input_target_gain", "measured_input_target_map", "with_input_target"]
+__all__ = ["InputPenalty", "input_penalty", "input_target_gain", "with_input_target"]
 
 
 @dataclass(frozen=True)
@@ -144,38 +143,3 @@ def with_input_target(
         setpoint=gain.setpoint + target_gain @ setpoint_input,
         input_target=pull if gain.input_target is None else gain.input_target + pull,
     )
-
-
-def measured_input_target_map(
-    a: NDArray[np.float64],
-    b: NDArray[np.float64],
-    c: NDArray[np.float64],
-    b_disturbance: NDArray[np.float64],
-    *,
-    output_weight: NDArray[np.float64],
-    input_weight: NDArray[np.float64],
-) -> NDArray[np.float64]:
-    """Return ``U_m``: how a held measured disturbance moves the target's inputs (module notes).
-
-    Parameters
-    ----------
-    a : ndarray, shape (n, n)
-    b : ndarray, shape (n, m)
-    c : ndarray, shape (p, n)
-        The model the design was made on (no disturbance states).
-    b_disturbance : ndarray, shape (n, md)
-        ``Bd`` of the measured disturbances.
-    output_weight, input_weight : ndarray
-        ``Q`` and ``S`` of the design (the target's fit and tie-break).
-
-    Returns
-    -------
-    ndarray, shape (m, md)
-        The input rows of the target's disturbance map with ``Bd`` (:mod:`service.solver.estimation.target`).
-    """
-    n = np.asarray(a).shape[0]
-    problem = target_problem(
-        a, b, c, disturbance_input=b_disturbance, output_weight=output_weight, input_weight=input_weight
-    )
-    result: NDArray[np.float64] = problem.disturbance_map[n:]
-    return result

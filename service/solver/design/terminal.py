@@ -99,6 +99,7 @@ __all__ = [
     "riccati_terminal_weight",
     "terminal_disturbance_maps",
     "terminal_first_move_gain",
+    "terminal_free_disturbance",
     "terminal_gradient",
     "terminal_prediction",
     "terminal_weight",
@@ -632,14 +633,25 @@ def terminal_disturbance_maps(
     target : ndarray, shape (n+m, md)
         ``S_m``: ``[x_s; u_s]`` of the target equations with ``Bd d_m`` (module notes).
     """
-    n, m = b.shape
     bd = np.asarray(b_disturbance, dtype=float)
-    md = bd.shape[1]
-    acc = np.zeros((n, md))
-    for _ in range(prediction):
-        acc = a @ acc + bd
-    free = np.vstack([acc, np.zeros((m, md))])
+    free = terminal_free_disturbance(a, bd, inputs=b.shape[1], prediction=prediction)
     target = target_problem(
         a, b, c, disturbance_input=bd, output_weight=output_weight, input_weight=input_weight
     ).disturbance_map
     return free, target
+
+
+def terminal_free_disturbance(
+    a: NDArray[np.float64], b_disturbance: NDArray[np.float64], *, inputs: int, prediction: int
+) -> NDArray[np.float64]:
+    """Return ``Phi_m = [sum_{l<Hp} A^l Bd; 0]``, shape (n+m, md): a held ``d_m`` in ``xi_free(k+Hp)``.
+
+    The recursion ``F_l = A F_(l-1) + Bd`` from ``F_0 = 0`` (``Hp`` steps of the held
+    disturbance); the inputs (``m = inputs`` rows) do not move without moves.
+    """
+    bd = np.asarray(b_disturbance, dtype=float)
+    n, md = bd.shape
+    acc = np.zeros((n, md))
+    for _ in range(prediction):
+        acc = a @ acc + bd
+    return np.vstack([acc, np.zeros((inputs, md))])

@@ -11,8 +11,9 @@ prior estimate (plant states and disturbance estimate) and ``u(k-1)`` the last i
 ``K = Kh (Fx_a - (1 (x) I_p) Z_d S)`` is the feedback on the augmented estimate of
 :func:`service.solver.estimation.realization.estimate_feedback_gain`, ``Kr = Kh (1 (x) Z_r)``
 the setpoint gain through the steady-state target's setpoint map ``Z_r`` (the identity for a
-reachable setpoint), ``Kd = Kh Fd`` the feed-forward gain on the measured disturbances
-(:mod:`service.solver.design.feedforward`).
+reachable setpoint), ``Kd = Kh (Fd - 1 (x) Z_m)`` the feed-forward gain on the measured
+disturbances (:mod:`service.solver.design.feedforward`; ``Z_m``, how a held measured
+disturbance moves the target's outputs, is zero when every setpoint is reachable).
 
 With the Riccati terminal weight the cost also holds ``|xi(k+Hp) - xi_s|^2_P`` on ``xi = [x;
 u]``, whose gradient adds ``Kt e_t`` to the first move with the terminal error ::
@@ -31,7 +32,7 @@ target's input maps (``- Kt0 U_d S`` and ``+ Kt0 U_r``), and the input targets `
 inputs of the law through ``Kt = Kt0 U_t`` (with the terminal weight also ``+ Kt X_t``, the
 terminal target's input-target map); with measured disturbances the target's inputs move by
 ``U_m d_m`` as well, so ``Kd -= Kt0 U_m``
-(:func:`service.solver.design.input_target.measured_input_target_map`).  On the law's state ``s = [x(k|k-1); u(k-1)]``
+(:func:`service.solver.design.feedforward.measured_target`).  On the law's state ``s = [x(k|k-1); u(k-1)]``
 and its inputs ``w = [y; r; dm; u_t]`` (``u_t`` only with an input weight; substitution) ::
 
     u(k)   = Cu s + Du w,        Cu = [-K M, I - Ku],   Du = [-K L, Kr, -Kd, Kt]
@@ -187,7 +188,9 @@ def fixed_law(
             target_gain = target_gain + terminal.gain @ terminal.input_target_map
     mt = target_gain.shape[1]
     if md:  # the design's whole Kd (the same function as /design's answer)
-        feedforward = design_feedforward_gain(design, estimator.model_a, estimator.model_b, estimator.model_c, bd)
+        feedforward = design_feedforward_gain(
+            design, estimator.model_a, estimator.model_b, estimator.model_c, bd, target_outputs=True
+        )
     else:
         feedforward = np.zeros((m, 0))
     lg, cy = estimator.gain, estimator.c_measured

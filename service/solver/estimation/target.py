@@ -62,6 +62,7 @@ __all__ = [
     "TargetProblem",
     "steady_state_target",
     "target_problem",
+    "with_measured_disturbances",
 ]
 
 #: A target counts as exact when its output misses the setpoint by at most this much, relative
@@ -291,6 +292,42 @@ def target_problem(
         every_setpoint_reachable=reach,
         input_weight=s_in,
         input_target_map=target_map,
+    )
+
+
+def with_measured_disturbances(problem: TargetProblem, b_disturbance: ArrayLike) -> TargetProblem:
+    """The same target equations with held measured disturbances ``d_m`` after the estimated ``d``.
+
+    A measured disturbance enters the steady state like an estimated one that the controlled
+    outputs do not see directly: the disturbance columns become ``[Bd, Bd_m]`` and
+    ``[Dz, 0]``, so the target of ``[d; d_m]`` is ``S_d d + S_m d_m`` (the maps are linear,
+    column by column: the first ``nd`` columns are ``problem``'s own, to rounding).  ``S_m`` moves
+    the target's states and inputs (a steady state under ``Bd_m d_m`` needs other inputs), and
+    ``Z_m``, its output map, is nonzero only where a setpoint is not reachable: the best fit to
+    the setpoint then moves with ``d_m``.
+
+    Parameters
+    ----------
+    problem : TargetProblem
+    b_disturbance : array_like, shape (n, md)
+        ``Bd_m`` of the measured disturbances, in the problem's signals.
+
+    Returns
+    -------
+    TargetProblem
+        With ``nd + md`` disturbance columns.
+    """
+    bd_m = np.asarray(b_disturbance, dtype=float)
+    n, pz = problem.state_size, problem.c.shape[0]
+    assert bd_m.ndim == 2 and bd_m.shape[0] == n, bd_m.shape
+    return target_problem(
+        problem.a,
+        problem.b,
+        problem.c,
+        disturbance_input=np.hstack([problem.disturbance_input, bd_m]),
+        disturbance_output=np.hstack([problem.disturbance_output, np.zeros((pz, bd_m.shape[1]))]),
+        output_weight=problem.output_weight,
+        input_weight=problem.input_weight if np.any(problem.input_weight) else None,
     )
 
 

@@ -30,14 +30,16 @@ The bracketed terms are there with measured disturbances ``d_m`` (``b_disturbanc
 model's ``Bd`` enters the estimator's prediction, and its free response ``Fd`` (``Cz sum_{l<i}
 A^l Bd`` at steps ``Hw..Hp``, :func:`service.solver.design.feedforward.disturbance_free_response`)
 the free prediction, so the unconstrained law is ``du = Kr r - Kx x - Ku u(k-1) - Kd d_m`` with
-``Kd = Kh Fd``.  The steady-state target's outputs do not use ``d_m``: with a reachable setpoint
-they are the setpoint whatever ``d_m`` is.  Its inputs do, with an input weight (below).
+``Kd = Kh Fd``.  The steady-state target moves with the held ``d_m`` too
+(:func:`service.solver.estimation.target.with_measured_disturbances`): its inputs and states
+always (``U_m``, ``X_m``: a steady state under ``Bd d_m`` needs other inputs), its outputs
+by ``Z_m d_m`` only where a setpoint is not reachable (the best fit moves with ``d_m``; a
+reachable setpoint is met whatever ``d_m`` is), so ``z_s(k) = Z_r r(k) + Z_d d(k|k) + Z_m
+d_m(k)``.
 
 With an input weight (``weights.input``) the target also takes the input targets ``u_t``
 (``Scenario.input_targets``, held over the run, or changed by ``input_target_changes``):
-``u_s(k) = U_r r(k) + U_d d(k|k) + U_t u_t(k) [+ U_m d_m(k)]`` (``U_m``: the steady state under
-``Bd d_m`` needs other inputs, :func:`service.solver.design.input_target.measured_input_target_map`;
-a target rule's ``u_s`` gains it too), and the policy receives ``target_input=u_s(k)``,
+``u_s(k) = U_r r(k) + U_d d(k|k) + U_t u_t(k) [+ U_m d_m(k)]``, and the policy receives ``target_input=u_s(k)``,
 which its input penalty pulls towards (:mod:`service.solver.design.input_target`); the
 unconstrained move is ``du = Kh E + Kt0 (u_s - u(k-1))``.  Without an input weight the policy
 is called as before and the input targets play no part.
@@ -54,8 +56,8 @@ error ::
 ``terminal_error=e_t(k)``; the unconstrained move is ``du = Kh E + Kt e_t``.  With measured
 disturbances both sides move with the held ``d_m(k)``: ``e_t`` gains ``(X_m - Phi_m) d_m(k)``
 (the steady state under ``d_m`` and its free response to the horizon's end,
-:func:`service.solver.design.terminal.terminal_disturbance_maps`); under a target rule the
-rule's steady state is shifted by ``X_m d_m(k)`` likewise.
+:func:`service.solver.design.terminal.terminal_disturbance_maps`); a target rule is given
+``d_m(k)`` and its steady state holds ``X_m d_m(k)`` itself, so ``e_t`` gains ``- Phi_m d_m(k)``.
 
 Events hold from their step on: a setpoint change sets ``r``, an output (input) disturbance
 event sets the level of ``d_out`` (``d_in``) — each event replaces the previous level, it does
@@ -79,16 +81,16 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Protocol
+from typing import Any, Protocol
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.controller import ControllerDesign
 from service.solver.design.feedforward import disturbance_free_response
-from service.solver.design.input_target import measured_input_target_map
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.loop import ControlLoop, TerminalTerm, control_loop, terminal_term
+from service.solver.estimation.target import target_problem
 
 __all__ = [
     "DIVERGENCE_LIMIT",
@@ -182,6 +184,10 @@ class TargetRule(Protocol):
     Riccati terminal weight it passes ``with_state=True`` and the rule returns ``(z_s, u_s,
     x_s)``: the terminal target needs the steady state's plant states ``x_s`` (n,) as well.
 
+    With measured disturbances the loop also passes ``measured_disturbance=d_m(k)`` (shape
+    (md,)), and the rule's steady state must be the one under them (inputs, states and, where
+    a setpoint is not reachable, outputs all move with ``d_m``).
+
     ``setpoint`` has shape (p,) (``r(k)``), ``disturbance`` shape (nd,) (the disturbance part
     of ``x(k|k)``; empty without a disturbance model), both in the design's signals; the rule
     returns the target outputs ``z_s`` (p,), which the controller tracks, and the target
@@ -196,6 +202,7 @@ class TargetRule(Protocol):
         disturbance: NDArray[np.float64],
         input_target: NDArray[np.float64] | None = None,
         with_state: bool = False,
+        measured_disturbance: NDArray[np.float64] | None = None,
     ) -> tuple[NDArray[np.float64], ...]: ...
 
 
@@ -727,21 +734,21 @@ def simulate_loop(
     offset = d_out @ seen.T + noise  # what adds to Cy_true x in what the filter reads
 
     target = loop.target
-    u_m = None  # U_m: how the measured disturbances move the target's inputs (with input targets)
     targets_r = setpoints @ target.output_setpoint_map.T  # Z_r r(k), all steps at once
     target_inputs_r = setpoints @ target.setpoint_map[n:].T
     if pulled:
         target_inputs_r = target_inputs_r + u_targets @ target.input_target_map[n:].T  # + U_t u_t(k)
-        if md and loop.design.input_weight is not None:  # + U_m d_m(k): the target's inputs under d_m
-            u_m = measured_input_target_map(
-                est.model_a,
-                est.model_b,
-                est.model_c,
-                bd,
-                output_weight=loop.design.output_weight,
-                input_weight=loop.design.input_weight,
-            )
-            target_inputs_r = target_inputs_r + d_meas @ u_m.T
+    if md:  # + Z_m d_m(k), U_m d_m(k): the target under the held measured disturbances
+        measured_target = target_problem(
+            est.model_a,
+            est.model_b,
+            est.model_c,
+            disturbance_input=bd,
+            output_weight=loop.design.output_weight,
+            input_weight=loop.design.input_weight,
+        )
+        targets_r = targets_r + d_meas @ measured_target.output_disturbance_map.T
+        target_inputs_r = target_inputs_r + d_meas @ measured_target.disturbance_map[n:].T
     z_d = target.output_disturbance_map
     u_d = target.disturbance_map[n:]
     use_d = nd > 0 and bool(np.any(z_d) or np.any(u_d))
@@ -810,22 +817,17 @@ def simulate_loop(
                 xf = x if full else xp + gain @ (ym - cy @ xp)
                 xs = None
                 if target_rule is not None:
+                    extra: dict[str, Any] = {}
                     if term is not None:
-                        ruled = target_rule(
-                            setpoint=setpoints[k],
-                            disturbance=xf[dsl],
-                            input_target=u_targets[k] if pulled else None,
-                            with_state=True,
-                        )
-                    elif pulled:
-                        ruled = target_rule(setpoint=setpoints[k], disturbance=xf[dsl], input_target=u_targets[k])
-                    else:
-                        ruled = target_rule(setpoint=setpoints[k], disturbance=xf[dsl])
+                        extra["with_state"] = True
+                    if pulled:
+                        extra["input_target"] = u_targets[k]
+                    if md:
+                        extra["measured_disturbance"] = d_meas[k]
+                    ruled = target_rule(setpoint=setpoints[k], disturbance=xf[dsl], **extra)
                     zs, us = ruled[0], ruled[1]
-                    if term is not None:  # the terminal error adds X_m d_m itself (feedforward_shift)
+                    if term is not None:  # the rule's steady state holds X_m d_m already
                         xs = np.concatenate([ruled[2], us])
-                    if u_m is not None:  # the rule's target knows no measured disturbance: + U_m d_m
-                        us = us + u_m @ d_meas[k]
                 else:
                     zs = targets_r[k]
                     us = target_inputs_r[k]
@@ -849,8 +851,11 @@ def simulate_loop(
                 if term is not None:
                     assert xs is not None
                     terminal_error = xs - term.free_prediction(xf, u)
-                    if md:
+                    if md and target_rule is None:  # + (X_m - Phi_m) d_m
                         terminal_error = terminal_error + term.feedforward_shift @ d_meas[k]
+                    elif md:  # the rule's steady state holds X_m d_m: - Phi_m d_m
+                        assert term.free_measured is not None
+                        terminal_error = terminal_error - term.free_measured @ d_meas[k]
                     asked["terminal_error"] = terminal_error
                 result = policy(error=error, free_prediction=free, previous_input=u, step=k, **asked)
                 du = np.asarray(result.move, dtype=float)

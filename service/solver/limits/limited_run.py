@@ -30,7 +30,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.gain import PredictiveGain
 from service.solver.estimation.loop import ControlLoop
-from service.solver.estimation.target import TargetProblem
+from service.solver.estimation.target import TargetProblem, with_measured_disturbances
 from service.solver.evaluation.simulation import PolicyStep
 from service.solver.limits.bounds import Limits, limit_violations
 from service.solver.limits.policy import ConstrainedPolicy, StepReport
@@ -159,17 +159,33 @@ class ReachableTargetRule:
     Stateful (the QP workspaces and the record): one instance per run.
     """
 
-    def __init__(self, problem: ReachableTargetProblem, target: TargetProblem) -> None:
+    def __init__(self, problem: ReachableTargetProblem, target: TargetProblem, *, measured: int = 0) -> None:
         self.problem = problem
         self.target = target
+        self.measured = measured
         self.statuses: list[str] = []
         self.reachable: list[bool] = []
 
     @classmethod
-    def from_loop(cls, loop: ControlLoop, limits: Limits) -> ReachableTargetRule:
-        """Set up the target QP of ``loop``'s target equations under ``limits``' input limits."""
+    def from_loop(
+        cls, loop: ControlLoop, limits: Limits, *, b_disturbance: NDArray[np.float64] | None = None
+    ) -> ReachableTargetRule:
+        """Set up the target QP of ``loop``'s target equations under ``limits``' input limits.
+
+        With ``b_disturbance`` (``Bd`` (n, md) of the measured disturbances, in the loop's
+        signals) the target equations also hold the held measured disturbances
+        (:func:`service.solver.estimation.target.with_measured_disturbances`): a disturbance that
+        needs more input than the limits allow makes the setpoint unreachable, and the target
+        moves to the nearest steady state the inputs can hold under it.
+        """
+        target = loop.target
+        measured = 0 if b_disturbance is None else int(np.asarray(b_disturbance).shape[1])
+        if measured:
+            target = with_measured_disturbances(target, np.asarray(b_disturbance, dtype=float))
         return cls(
-            ReachableTargetProblem(loop.target, input_min=limits.input_min, input_max=limits.input_max), loop.target
+            ReachableTargetProblem(target, input_min=limits.input_min, input_max=limits.input_max),
+            target,
+            measured=measured,
         )
 
     def __call__(
@@ -179,11 +195,19 @@ class ReachableTargetRule:
         disturbance: NDArray[np.float64],
         input_target: NDArray[np.float64] | None = None,
         with_state: bool = False,
+        measured_disturbance: NDArray[np.float64] | None = None,
     ) -> tuple[NDArray[np.float64], ...]:
-        """Return ``(z_s, u_s)`` of the nearest reachable steady state for ``r``, ``d`` (and ``u_t``).
+        """Return ``(z_s, u_s)`` of the nearest reachable steady state for ``r``, ``d`` (and ``u_t``, ``d_m``).
 
-        With ``with_state`` also its plant states ``x_s`` (the terminal weight's target).
+        With ``with_state`` also its plant states ``x_s`` (the terminal weight's target).  A rule
+        set up with measured disturbances takes their held levels ``d_m`` (md,) as
+        ``measured_disturbance`` (zero when left out).
         """
+        # a rule set up without them would leave d_m out of the target (a programming error)
+        assert measured_disturbance is None or measured_disturbance.size == self.measured, self.measured
+        if self.measured:
+            held = np.zeros(self.measured) if measured_disturbance is None else measured_disturbance
+            disturbance = np.concatenate([disturbance, held])
         target = self.problem.solve(setpoint, disturbance if disturbance.size else None, input_target)
         self.statuses.append(target.status)
         self.reachable.append(target.reachable)
