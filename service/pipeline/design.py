@@ -527,7 +527,11 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
             ),
             *merge_warnings(design.warnings, advice),
             # on the span-scaled signals when both lists have spans, else unit-free
-            *plant_warnings(properties, balanced=not (bool(np.any(su != 1.0)) and bool(np.any(sz != 1.0)))),
+            *plant_warnings(
+                properties,
+                balanced=not (bool(np.any(su != 1.0)) and bool(np.any(sz != 1.0))),
+                output_labels=[sig.name for sig in plant.outputs],
+            ),
             *uncontrollable_mode_warnings(
                 scaled.a, scaled.b, labels=plant.state_labels, loop_poles=design.loop.poles, poles=properties.poles
             ),

@@ -9,10 +9,12 @@ import pytest
 
 from service.solver.models.properties import (
     gain_condition_number,
+    input_gain_error_magnification,
     open_loop_poles,
     plant_properties,
     plant_warnings,
     relative_gain_array,
+    relative_gain_warning,
     steady_state_gain,
 )
 from service.solver.models.sampling import sample_zero_order_hold
@@ -171,3 +173,23 @@ def test_poles_are_the_eigenvalues_by_descending_modulus() -> None:
 def test_model_without_states_is_its_feed_through() -> None:
     steady = steady_state_gain(np.zeros((0, 0)), np.zeros((0, 2)), np.zeros((1, 0)), [[3.0, -1.0]])
     np.testing.assert_array_equal(steady.gain, [[3.0, -1.0]])
+
+
+def test_large_relative_gains_warns_from_ten_and_quotes_the_worst_input_gain_error() -> None:
+    # Reference: the relative gain array by its definition G .* (G^-1)^T, and the diagonal of
+    # G E G^-1 over the corners of |e_j| <= 0.2 by numpy (sum_j lambda_ij e_j).
+    mild = plant_properties(np.diag([0.5, 0.5]), np.array([[2.0, 0.3], [0.2, 1.5]]), np.eye(2))
+    assert [w.code for w in plant_warnings(mild)] == []
+    gain = np.array([[1.0, 0.9], [0.9, 1.0]])  # lambda_11 = 1 / (1 - 0.81) = 5.26
+    assert relative_gain_warning(plant_properties(np.diag([0.5, 0.5]), gain, np.eye(2))) is None
+    gain = np.array([[1.0, 0.95], [0.95, 1.0]])  # lambda_11 = 1 / (1 - 0.9025) = 10.26
+    props = plant_properties(np.diag([0.5, 0.5]), gain * 0.5, np.eye(2))
+    warning = relative_gain_warning(props, output_labels=["a", "b"])
+    assert warning is not None and warning.code == "large_relative_gains"
+    assert "10.3" in warning.message
+    worst = max(np.abs(np.diag(gain @ np.diag(e) @ np.linalg.inv(gain))).max() for e in [(0.2, 0.2), (0.2, -0.2)])
+    np.testing.assert_allclose(input_gain_error_magnification(props.relative_gain).max(), worst, rtol=1e-10)
+    assert f"{100 * worst:.4g} %" in warning.message
+    # a non-square plant has no relative gain array and no such warning
+    wide = plant_properties(np.diag([0.5, 0.2]), np.eye(2), np.array([[1.0, 0.0], [0.0, 1.0], [1.0, 1.0]]))
+    assert relative_gain_warning(wide) is None

@@ -32,6 +32,7 @@ each sum to one and it does not change when inputs or outputs are rescaled.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -43,18 +44,22 @@ from service.solver.memo import plant_cache
 from service.solver.numerics import balance_states, eigenvalues_by_modulus, equilibrate
 
 __all__ = [
+    "INPUT_GAIN_ERROR",
     "INTEGRATING_SEARCH",
     "INTEGRATING_TOLERANCE",
+    "LARGE_RELATIVE_GAIN",
     "NEAR_SINGULAR_GAIN",
     "PlantProperties",
     "SteadyStateGain",
     "balanced_condition_number",
     "gain_condition_number",
+    "input_gain_error_magnification",
     "integrating_poles",
     "open_loop_poles",
     "plant_properties",
     "plant_warnings",
     "relative_gain_array",
+    "relative_gain_warning",
     "steady_state_gain",
 ]
 
@@ -71,6 +76,14 @@ INTEGRATING_SEARCH = 1e-3
 #: some output direction then needs input moves a thousand times larger than another
 #: (common practice; meaningful only on scaled signals).
 NEAR_SINGULAR_GAIN = 1e3
+#: Largest magnitude of an element of the relative gain array above which a plant is called
+#: sensitive to independent gain errors on its inputs (common practice: elements of 10 and more
+#: make a controller that decouples the outputs fragile to such errors; a relative gain does
+#: not change with the units of any signal).
+LARGE_RELATIVE_GAIN = 10.0
+#: The error on each input's gain quoted by the ``large_relative_gains`` warning (20 %, the
+#: usual first question of input gain error, common practice).
+INPUT_GAIN_ERROR = 0.2
 
 
 @dataclass(frozen=True)
@@ -414,10 +427,84 @@ def plant_properties(
     )
 
 
+def input_gain_error_magnification(relative_gain: ArrayLike, error: float = INPUT_GAIN_ERROR) -> NDArray[np.float64]:
+    """Return, per output, the worst diagonal entry of ``G E G^-1`` over input gain errors ``|e_j| <= error``.
+
+    Parameters
+    ----------
+    relative_gain : array_like, shape (p, p)
+        The relative gain array ``Lambda = G .* (G^-1)^T`` of a square nonsingular gain ``G``.
+    error : float
+        Largest relative error of each input's gain (0.2: 20 %).
+
+    Returns
+    -------
+    ndarray, shape (p,)
+        ``error * sum_j |lambda_ij|``.
+
+    Notes
+    -----
+    A true plant ``G (I + E)`` with ``E = diag(e)`` (each input's gain in error on its own) is the
+    model with the output error ``G E G^-1`` at steady state, whose diagonal is
+    ``(G E G^-1)_ii = sum_j g_ij e_j (G^-1)_ji = sum_j lambda_ij e_j`` (the definition of the
+    relative gain array); its largest magnitude over ``|e_j| <= error`` takes ``e_j = error
+    sign(lambda_ij)``.  A controller that inverts the model (tight, decoupling tuning) meets
+    that output error in full.
+    """
+    lam = np.asarray(relative_gain, dtype=float)
+    return np.asarray(error * np.abs(lam).sum(axis=1), dtype=float)
+
+
+def relative_gain_warning(
+    properties: PlantProperties,
+    *,
+    output_labels: Sequence[str] | None = None,
+    threshold: float = LARGE_RELATIVE_GAIN,
+    error: float = INPUT_GAIN_ERROR,
+) -> Diagnostic | None:
+    """Return ``large_relative_gains`` when an element of the relative gain array reaches ``threshold``.
+
+    Parameters
+    ----------
+    properties : PlantProperties
+        With its relative gain array (``None``: no warning).
+    output_labels : sequence of str, optional
+        The controlled outputs' names, for the message.
+    threshold : float, keyword-only
+        :data:`LARGE_RELATIVE_GAIN`.
+    error : float, keyword-only
+        The input gain error the message quotes (:data:`INPUT_GAIN_ERROR`).
+    """
+    lam = properties.relative_gain
+    if lam is None or not np.all(np.isfinite(lam)):
+        return None
+    largest = float(np.abs(lam).max())
+    if largest < threshold:
+        return None
+    worst = input_gain_error_magnification(lam, error)
+    i = int(np.argmax(worst))
+    name = output_labels[i] if output_labels is not None else f"output {i + 1}"
+    return Diagnostic(
+        "large_relative_gains",
+        f"The relative gain array has elements up to {largest:.3g} in magnitude (at or above {threshold:g}): "
+        f"the outputs strongly interact, and a gain error on each input of its own is magnified on the "
+        f"outputs. An error of {100 * error:g} % on each input's gain, in the worst directions, acts on "
+        f"{name} like an error of up to {100 * worst[i]:.4g} % of its gain (the diagonal of G E G^-1, "
+        f"sum_j lambda_ij e_j). A tight tuning that decouples the outputs (small move weights) then "
+        f"responds far from its nominal response, though nominal margins and uniform gain factors "
+        f"(analysis.model_error) look fine. Preview the loop on a true_plant whose input gains differ "
+        f"by {100 * error:g} % in opposite directions, and raise the move weights (detune) if it degrades.",
+    )
+
+
 def plant_warnings(
-    properties: PlantProperties, *, near_singular: float = NEAR_SINGULAR_GAIN, balanced: bool = False
+    properties: PlantProperties,
+    *,
+    near_singular: float = NEAR_SINGULAR_GAIN,
+    balanced: bool = False,
+    output_labels: Sequence[str] | None = None,
 ) -> list[Diagnostic]:
-    """Return the warnings about a plant: ``near_singular_gain`` when its condition is high.
+    """Return the warnings about a plant: ``near_singular_gain`` and ``large_relative_gains``.
 
     Parameters
     ----------
@@ -428,6 +515,9 @@ def plant_warnings(
         Judge the equilibrated gain (:func:`balanced_condition_number`), for signals in
         arbitrary units; default ``False``: the gain as given, meaningful on signals scaled
         by their spans.
+    output_labels : sequence of str, keyword-only, optional
+        For :func:`relative_gain_warning` (the relative gains need no scaling: they are the
+        same in any units).
 
     Returns
     -------
@@ -446,4 +536,7 @@ def plant_warnings(
                 f"model error there. Check the gains, the scaling, or control fewer outputs.",
             )
         )
+    interaction = relative_gain_warning(properties, output_labels=output_labels)
+    if interaction is not None:
+        found.append(interaction)
     return found
