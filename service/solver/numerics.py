@@ -78,6 +78,7 @@ __all__ = [
     "observable_basis",
     "pbh_matrix",
     "singular_value_rank",
+    "unit_free_scaling",
 ]
 
 
@@ -321,6 +322,71 @@ def equilibrate(
         fc = np.where(cn > 0.0, np.exp2(np.round(-0.5 * np.log2(np.where(cn > 0.0, cn, 1.0)))), 1.0)
         if np.all(fr == 1.0) and np.all(fc == 1.0):
             break
+        rows *= fr
+        columns *= fc
+        work = work * fr[:, None] * fc[None, :]
+    return rows, columns
+
+
+def unit_free_scaling(
+    matrix: NDArray[np.float64], *, sweeps: int = 200, tolerance: float = 1e-13
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Return row and column scalings whose scaled matrix is the same whatever the matrix's units.
+
+    Parameters
+    ----------
+    matrix : ndarray, shape (r, c)
+        Real, finite.
+    sweeps : int, keyword-only
+        Most iterations of the second stage.
+    tolerance : float, keyword-only
+        The second stage stops when every row and column max-norm is within this of 1 (in
+        logarithms).
+
+    Returns
+    -------
+    rows : ndarray, shape (r,)
+    columns : ndarray, shape (c,)
+        Positive; ``diag(rows) @ matrix @ diag(columns)`` equals, up to rounding, the same
+        product for ``D1 @ matrix @ D2`` with any positive diagonal ``D1``, ``D2`` (any change
+        of units of the rows and columns).  Zero rows and columns keep scale 1.
+
+    Notes
+    -----
+    Two stages, each covariant with a diagonal scaling, so their result is not a function of the
+    units (:func:`equilibrate` rounds to powers of two and stops at a fixed point that depends on
+    where it starts: its scaled matrix, and a condition number taken on it, move with the units
+    by tens of per cent):
+
+    1. ``log |m_ij| = a_i + b_j + e_ij`` fitted by least squares over the nonzero entries
+       (``numpy.linalg.lstsq``); the residuals ``e_ij`` of a least-squares fit are unique even
+       where ``a`` and ``b`` are not, and a change of units shifts ``a`` and ``b`` only, so
+       ``m_ij exp(-a_i - b_j)`` is the same in any units (two-way analysis of the logarithms,
+       common practice);
+    2. max-norm equilibration of that matrix by square-root sweeps without rounding (Ruiz,
+       RAL-TR-2001-034, 2001), a continuous function of a matrix that no longer depends on units.
+    """
+    r, c = matrix.shape
+    rows, columns = np.ones(r), np.ones(c)
+    nonzero = np.argwhere(matrix != 0.0)
+    if nonzero.size == 0:
+        return rows, columns
+    incidence = np.zeros((nonzero.shape[0], r + c))
+    incidence[np.arange(nonzero.shape[0]), nonzero[:, 0]] = 1.0
+    incidence[np.arange(nonzero.shape[0]), r + nonzero[:, 1]] = 1.0
+    logs = np.log(np.abs(matrix[nonzero[:, 0], nonzero[:, 1]]))
+    fit = np.linalg.lstsq(incidence, logs, rcond=None)[0]
+    seen_rows = np.isin(np.arange(r), nonzero[:, 0])
+    seen_columns = np.isin(np.arange(c), nonzero[:, 1])
+    rows[seen_rows] = np.exp(-fit[:r][seen_rows])
+    columns[seen_columns] = np.exp(-fit[r:][seen_columns])
+    work = np.abs(matrix) * rows[:, None] * columns[None, :]
+    for _ in range(sweeps):
+        rn = np.where(seen_rows, work.max(axis=1, initial=0.0), 1.0)
+        cn = np.where(seen_columns, work.max(axis=0, initial=0.0), 1.0)
+        if max(np.abs(np.log(rn)).max(initial=0.0), np.abs(np.log(cn)).max(initial=0.0)) <= tolerance:
+            break
+        fr, fc = 1.0 / np.sqrt(rn), 1.0 / np.sqrt(cn)
         rows *= fr
         columns *= fc
         work = work * fr[:, None] * fc[None, :]

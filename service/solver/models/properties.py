@@ -41,7 +41,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.closed_loop import Diagnostic
 from service.solver.memo import plant_cache
-from service.solver.numerics import balance_states, eigenvalues_by_modulus, equilibrate
+from service.solver.numerics import balance_states, eigenvalues_by_modulus, unit_free_scaling
 
 __all__ = [
     "INPUT_GAIN_ERROR",
@@ -132,7 +132,7 @@ class PlantProperties:
     poles : ndarray of complex, shape (n,)
         Eigenvalues of ``A``, by descending modulus.
     balanced_condition_number : float or None
-        Condition number of the gain with its rows and columns equilibrated
+        Condition number of the gain with its rows and columns scaled free of units
         (:func:`balanced_condition_number`): the same in any units, and the one the
         ``near_singular_gain`` verdict uses.
     """
@@ -350,22 +350,24 @@ def relative_gain_array(gain: ArrayLike) -> NDArray[np.float64]:
 
 
 def balanced_condition_number(gain: ArrayLike) -> float:
-    """Return the condition number of a gain after equilibrating its rows and columns.
+    """Return the condition number of a gain after scaling its rows and columns free of units.
 
     Parameters
     ----------
     gain : array_like, shape (p, m)
+        Finite.
 
     Notes
     -----
-    Rows and columns scaled to unit max-norm (:func:`service.solver.numerics.equilibrate`):
-    a change of units of any input or output leaves it unchanged, and it approximates the
-    minimized condition number over all diagonal scalings, the unit-free measure of how hard
-    a plant is to control (Skogestad and Postlethwaite, *Multivariable Feedback Control*,
-    2nd ed., 2005, sec. 3.3.4).
+    Rows and columns scaled by :func:`service.solver.numerics.unit_free_scaling` (the
+    logarithms' row and column effects removed by least squares, then max-norm
+    equilibration): a change of units of any input or output leaves it unchanged up to
+    rounding, and it lies at or a little above the minimized condition number over all
+    diagonal scalings, the unit-free measure of how hard a plant is to control (common
+    practice).
     """
     g = np.asarray(gain, dtype=float)
-    rows, columns = equilibrate(g)
+    rows, columns = unit_free_scaling(g)
     return gain_condition_number(g * rows[:, None] * columns[None, :])
 
 
