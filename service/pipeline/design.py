@@ -587,6 +587,7 @@ def _plant_report(checked: DesignInputs, plant: DiscretePlant, outcome: DesignOu
     to_engineering = sz[:, None] / su[None, :]
     rga = outcome.properties.relative_gain
     condition = outcome.properties.condition_number
+    balanced = outcome.properties.balanced_condition_number
     sampled = None
     if checked.sampled_model:
         sampled = SampledModelReport(
@@ -608,6 +609,7 @@ def _plant_report(checked: DesignInputs, plant: DiscretePlant, outcome: DesignOu
         ramp_rate=_labelled(steady.ramp_rate * to_engineering, outputs, inputs),
         relative_gain_array=None if rga is None else _labelled(rga, outputs, inputs),
         gain_condition_number=None if condition is None else _optional(condition),
+        balanced_gain_condition_number=None if balanced is None else _optional(balanced),
         open_loop_poles=_poles(outcome.properties.poles),
         sampled_model=sampled,
         reduction=plant.reduction,
