@@ -123,6 +123,13 @@ def summary(answer: CompareResponse, *, same_model: bool) -> list[str]:
         out.append(f"The scenario run blew up with the design {which}.")
     out += _speed_sentences(answer)
     out += _robustness_sentences(answer)
+    if "large_relative_gains" in after.warnings and answer.scenario.scenario.true_plant is None:
+        out.append(
+            "The plant has large relative gains (warning large_relative_gains): these figures are for the model "
+            "itself, and the tighter a tuning decouples the outputs, the more a gain error on each input of its "
+            "own degrades it. Compare with a scenario whose true_plant has its input gains 20 % apart in "
+            "opposite directions before choosing the faster design."
+        )
     p0, p1 = before.dominant_pole, after.dominant_pole
     what = "The dominant closed-loop pole"
     if (

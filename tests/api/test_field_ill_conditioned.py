@@ -475,3 +475,30 @@ def test_the_blending_unit_s_loop_verdict_matches_its_poles_in_50_digits(client,
     assert answer["closed_loop"]["stable"] is (not marginal)
     codes = {w["code"] for w in answer["warnings"]}
     assert ("marginal_pole" in codes) is marginal
+
+
+def test_the_change_review_of_a_tighter_column_tuning_says_its_figures_are_for_the_model_alone(client):
+    # Found in this audit: the review of a move weight of 1 -> 1e-4 on the column read as a plain
+    # improvement (settles 53 % faster, overshoot 2 % -> 0 %, peak |S| 1.64 -> 1.65), while on the
+    # true plant diag(1.2, 0.8) the proposed design overshoots far more than the one in service.
+    in_service, proposed = _column_design(dead=1.0, move=1.0), _column_design(dead=1.0, move=1e-4)
+    body = {"in_service": in_service, "proposed": proposed, "robustness": True}
+    answer = client.post("/design/compare", json=body).json()
+    sentence = [s for s in answer["summary"] if "large_relative_gains" in s]
+    assert len(sentence) == 1 and "true_plant" in sentence[0]
+    # what it warns of, by the reference: the exported laws on the true plant (dlsim)
+    peaks = [
+        np.abs(_reference_run(client, side, _column_plant(1, INPUT_ERROR), [1.0, 0.0], 200)[0]).max()
+        for side in (in_service, proposed)
+    ]
+    assert peaks[1] > 3 * peaks[0]
+    # with a true plant in the scenario the figures are those of the true plant: no such sentence
+    body["scenario"] = {
+        "steps": 150,
+        "setpoint_changes": [{"step": 0, "setpoint": [1.0, 0.0]}],
+        "true_plant": _column_model(1.0, INPUT_ERROR),
+    }
+    answer = client.post("/design/compare", json=body).json()
+    assert not [s for s in answer["summary"] if "large_relative_gains" in s]
+    overshoot = answer["scenario"]["outputs"][0]["overshoot_percent"]
+    assert overshoot[1] > 3 * overshoot[0]
