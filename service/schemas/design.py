@@ -247,14 +247,15 @@ class PlantReport(ResponseModel):
     gain_condition_number: float | None = Field(
         description="2-norm condition number of the steady-state gain of the signals as given, each divided by "
         "its span where it has one: it changes with the units of signals without spans (see "
-        "balanced_gain_condition_number). Null when some pair integrates."
+        "balanced_gain_condition_number). Null when some pair integrates, or when the gain is singular (an "
+        "infinite condition number; the near_singular_gain warning says so)."
     )
     balanced_gain_condition_number: float | None = Field(
         default=None,
         description="2-norm condition number of the steady-state gain with its rows and columns equilibrated "
         "(each scaled to unit largest magnitude): the same in any units, at or a little above the least "
         "condition number over all scalings of the signals. The near_singular_gain warning judges it unless "
-        "every input and every output has a span. Null when some pair integrates.",
+        "every input and every output has a span. Null as gain_condition_number is.",
     )
     open_loop_poles: list[PoleReport]
     sampled_model: SampledModelReport | None = Field(default=None, description="When analysis.sampled_model is true.")

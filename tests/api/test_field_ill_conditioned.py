@@ -319,6 +319,22 @@ def test_a_plant_with_mild_interaction_gets_no_relative_gain_warning(client):
     assert _warning(answer, "large_relative_gains") is None
 
 
+def test_a_singular_gain_has_null_condition_numbers_and_the_warning_says_why(client):
+    # Reference: numpy's SVD of a gain with a zero column has a zero singular value, so its
+    # condition number is infinite, which JSON cannot carry: null, as the schema says.
+    request = _column_design()
+    for i in range(2):
+        request["model"]["elements"][i][1]["gain"] = 0.0
+    gain = np.array([[87.8, 0.0], [108.2, 0.0]])
+    assert np.linalg.svd(gain, compute_uv=False)[-1] == 0.0
+    answer = client.post("/design", json=request).json()
+    plant = answer["plant"]
+    assert plant["gain_condition_number"] is None and plant["balanced_gain_condition_number"] is None
+    assert plant["relative_gain_array"] is None
+    warning = _warning(answer, "near_singular_gain")
+    assert warning is not None and "condition number inf" in warning["message"]
+
+
 # --- the blending unit (invented) ---------------------------------------------------------------
 
 # The gain in normalized units (singular values 1.62, 3.1e-2, 8.0e-4), then per unit of each signal;
