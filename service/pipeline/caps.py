@@ -436,6 +436,7 @@ def _design_request_work(request: DesignRequest) -> int:
         for d in study.extra_dead_time:
             size = 2 * n + 2 * p + m + d * min(m, p)
             work += len(study.gain_factors) * 10 * size**3
+        work += len(study.input_gain_factors) * 10 * (2 * n + 2 * p + m) ** 3
     return work
 
 

@@ -104,7 +104,8 @@ def _design(request: DesignRequest) -> tuple[int, int]:
     if study is not None:
         longest = max(study.extra_dead_time, default=0)
         size = 2 * n + nd + 2 * m + longest * min(m, p)
-        peak += 8 * 4 * size * size + answer_memory_bytes(8 * len(study.gain_factors) * len(study.extra_dead_time))
+        cases = len(study.gain_factors) * len(study.extra_dead_time) + len(study.input_gain_factors)
+        peak += 8 * 4 * size * size + answer_memory_bytes(8 * cases + m * len(study.input_gain_factors))
     return peak, numbers
 
 
@@ -263,7 +264,7 @@ def _design_past_caps(request: DesignRequest, caps: Caps) -> bool:
         return True
     study = request.analysis.model_error
     if study is not None:
-        cases = len(study.gain_factors) * len(study.extra_dead_time)
+        cases = len(study.gain_factors) * len(study.extra_dead_time) + len(study.input_gain_factors)
         longest = max(study.extra_dead_time, default=0)
         if cases > caps.max_model_error_cases or n + longest * min(m, p) > caps.max_states:
             return True

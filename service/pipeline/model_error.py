@@ -21,6 +21,7 @@ from service.pipeline.plant import DiscretePlant
 from service.pipeline.problems import pointer
 from service.schemas.model_error import (
     ModelErrorCaseReport,
+    ModelErrorInputCaseReport,
     ModelErrorRangeReport,
     ModelErrorReport,
     ModelErrorRequest,
@@ -43,6 +44,7 @@ class ModelErrorInputs:
 
     gain_factors: tuple[float, ...]
     extra_dead_times: tuple[int, ...]
+    input_gain_factors: tuple[tuple[float, ...], ...] = ()
 
 
 def check_model_error(
@@ -68,16 +70,28 @@ def check_model_error(
         return None, []
     problems: list[FieldProblem] = []
     factors, delays = tuple(request.gain_factors), tuple(request.extra_dead_time)
+    by_input = tuple(tuple(f) for f in request.input_gain_factors)
     full_state = estimator.kind == "full_state"
     cases = len(factors) * len(delays)
-    if cases > caps.max_model_error_cases:
+    if cases + len(by_input) > caps.max_model_error_cases:
+        extra = f" and {len(by_input)} input gain factor vectors" if by_input else ""
         problems.append(
             FieldProblem(
                 pointer(*_WHERE, "gain_factors"),
-                f"{len(factors)} gain factors times {len(delays)} extra dead times make {cases} loops to analyse; "
-                f"this service analyses at most {caps.max_model_error_cases}. Give fewer factors or dead times",
+                f"{len(factors)} gain factors times {len(delays)} extra dead times{extra} make "
+                f"{cases + len(by_input)} loops to analyse; this service analyses at most "
+                f"{caps.max_model_error_cases}. Give fewer factors or dead times",
             )
         )
+    for i, vector in enumerate(by_input):
+        if len(vector) != plant.input_count:
+            problems.append(
+                FieldProblem(
+                    pointer(*_WHERE, "input_gain_factors", i),
+                    f"has {len(vector)} factors; give one per manipulated variable ({plant.input_count}: "
+                    f"{', '.join(s.name for s in plant.inputs)})",
+                )
+            )
     register = min(plant.input_count, int(plant.c_measured.shape[0]))  # on the inputs or the measured outputs
     for i, d in enumerate(delays):
         if d and full_state:
@@ -98,6 +112,7 @@ def check_model_error(
             )
     if not problems:
         work = model_error_work(plant, estimator, gain_factors=len(factors), extra_dead_times=delays)
+        work += model_error_work(plant, estimator, gain_factors=len(by_input), extra_dead_times=(0,))
         if work > caps.max_model_error_work:
             problems.append(
                 FieldProblem(
@@ -109,7 +124,7 @@ def check_model_error(
             )
     if problems:
         return None, problems
-    return ModelErrorInputs(gain_factors=factors, extra_dead_times=delays), []
+    return ModelErrorInputs(gain_factors=factors, extra_dead_times=delays, input_gain_factors=by_input), []
 
 
 def compute_model_error(
@@ -139,6 +154,7 @@ def compute_model_error(
             feedthrough=None if estimator.full_state else feedthrough,
             gain_factors=inputs.gain_factors,
             extra_dead_times=inputs.extra_dead_times,
+            input_gain_factors=inputs.input_gain_factors,
         )
     except np.linalg.LinAlgError as exc:  # I + K L (f - 1) D_m singular
         raise NumericalError(
@@ -147,7 +163,8 @@ def compute_model_error(
             "that difference cancels the command). Give other gain factors, or change d_measured",
             field=_WHERE,
         ) from exc
-    if not all(math.isfinite(case.spectral_radius) for case in study.cases):
+    radii = [case.spectral_radius for case in study.cases] + [case.spectral_radius for case in study.input_cases]
+    if not all(math.isfinite(radius) for radius in radii):
         raise NumericalError(
             "The poles of a perturbed loop are not finite numbers: the model's numbers or the factors are too "
             "large for the loop's eigenvalues in double precision. Rescale the model or give smaller factors",
@@ -174,6 +191,17 @@ def model_error_report(study: ModelErrorStudy, estimator: Estimator) -> ModelErr
         stable_ranges=[
             ModelErrorRangeReport(extra_dead_time=d, lowest_stable_factor=low, highest_stable_factor=high)
             for d, low, high in study.stable_ranges
+        ],
+        input_gain_cases=[
+            ModelErrorInputCaseReport(
+                input_gain_factors=list(case.input_gain_factors),
+                spectral_radius=case.spectral_radius,
+                verdict=case.verdict,
+                nominal_circle_poles=case.nominal_circle_poles,
+                rest_spectral_radius=case.rest_spectral_radius,
+                rest_verdict=case.rest_verdict,
+            )
+            for case in study.input_cases
         ],
         tolerance=MARGINAL_TOLERANCE,
         estimator=estimator.kind,

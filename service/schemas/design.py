@@ -315,8 +315,9 @@ class DesignResponse(ResponseModel):
     )
     model_error: ModelErrorReport | None = Field(
         default=None,
-        description="When analysis.model_error is given: how much uniform gain error and extra dead time the "
-        "tuning tolerates (scaled signals; a design aid, not a guarantee for other kinds of model error).",
+        description="When analysis.model_error is given: how much uniform gain error and extra dead time, and "
+        "which gain errors per input, the tuning tolerates (scaled signals; a design aid, not a guarantee for "
+        "other kinds of model error).",
     )
     zones: list[ZoneReport] | None = Field(
         default=None,

@@ -18,6 +18,7 @@ __all__ = [
     "MAX_GAIN_FACTOR",
     "MIN_GAIN_FACTOR",
     "ModelErrorCaseReport",
+    "ModelErrorInputCaseReport",
     "ModelErrorRangeReport",
     "ModelErrorReport",
     "ModelErrorRequest",
@@ -52,6 +53,14 @@ class ModelErrorRequest(RequestModel):
         "input or per output, whichever are fewer, within the service's state cap. Needs an estimator other "
         "than full_state for values above 0 (full_state reads the model's own states).",
     )
+    input_gain_factors: list[list[GainFactor]] = Field(
+        default_factory=list,
+        max_length=_LONGEST_LIST,
+        description="Each entry one factor per manipulated variable, multiplying the gains of every element of "
+        "that input's column (the plant G diag(f): each input's gain in error on its own, e.g. [1.2, 0.8]), "
+        "without extra dead time. Reported in input_gain_cases; they count towards the service's cap on the "
+        "cases. Empty: none.",
+    )
 
 
 class ModelErrorCaseReport(ResponseModel):
@@ -78,6 +87,17 @@ class ModelErrorCaseReport(ResponseModel):
     )
 
 
+class ModelErrorInputCaseReport(ResponseModel):
+    """The loop on the model with each input's gains multiplied by a factor of its own."""
+
+    input_gain_factors: list[float] = Field(description="One per manipulated variable, as asked.")
+    spectral_radius: float = Field(description="As in cases.")
+    verdict: Literal["stable", "marginal", "unstable"] = Field(description="As in cases.")
+    nominal_circle_poles: int = Field(description="As in cases.")
+    rest_spectral_radius: float = Field(description="As in cases.")
+    rest_verdict: Literal["stable", "marginal", "unstable"] = Field(description="As in cases.")
+
+
 class ModelErrorRangeReport(ResponseModel):
     """The range of gain factors found stable at one extra dead time."""
 
@@ -91,9 +111,12 @@ class ModelErrorRangeReport(ResponseModel):
 
 
 class ModelErrorReport(ResponseModel):
-    """How much uniform gain error and extra dead time the tuning tolerates (design aid)."""
+    """How much uniform gain error and extra dead time, and which gain errors per input, the tuning tolerates (design aid)."""
 
     cases: list[ModelErrorCaseReport] = Field(description="Every factor for every extra dead time, as asked.")
     stable_ranges: list[ModelErrorRangeReport] = Field(description="One per extra dead time, as asked.")
+    input_gain_cases: list[ModelErrorInputCaseReport] = Field(
+        default_factory=list, description="One per entry of input_gain_factors, as asked (empty when none)."
+    )
     tolerance: float = Field(description="The tolerance of the verdicts around the unit circle.")
     estimator: str = Field(description="The estimator kind in the loop (the request's estimator.kind).")

@@ -7,7 +7,8 @@ time lengthened by ``d`` samples, i.e. the transfer matrix ::
     P_true(z) = f z^-d P(z),        P(z) = C (zI - A)^-1 B  [+ D_m]
 
 (a uniform gain error and a uniform extra delay, the usual first questions of robustness to
-model error, common practice), with ``C`` the measured outputs the estimator reads (the
+model error, common practice; and, without extra delay, ``P(z) diag(f)``, each input's gain
+in error on its own, which a plant with large relative gains is sensitive to), with ``C`` the measured outputs the estimator reads (the
 sensors, when the model has measured outputs of its own: the true plant's sensors see the
 true plant; a measured feed-through ``D_m`` is scaled and delayed with the rest, while the
 estimator still subtracts the model's ``D_m u(k)``).  It is realized with ``B`` (and ``D_m``)
@@ -38,7 +39,7 @@ Pure functions on arrays.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Literal
 
 import numpy as np
@@ -49,6 +50,7 @@ from service.solver.estimation.loop import ControlLoop, true_loop
 
 __all__ = [
     "ModelErrorCase",
+    "ModelErrorInputCase",
     "ModelErrorStudy",
     "model_error_study",
     "perturbed_plant",
@@ -58,6 +60,26 @@ __all__ = [
 ]
 
 Verdict = Literal["stable", "marginal", "unstable"]
+
+
+@dataclass(frozen=True)
+class ModelErrorInputCase:
+    """The loop on the model with each input's gains multiplied by its own factor (``P diag(f)``).
+
+    Attributes
+    ----------
+    input_gain_factors : tuple of float
+        ``f``, one per input.
+    spectral_radius, verdict, nominal_circle_poles, rest_spectral_radius, rest_verdict
+        As in :class:`ModelErrorCase`.
+    """
+
+    input_gain_factors: tuple[float, ...]
+    spectral_radius: float
+    verdict: Verdict
+    nominal_circle_poles: int
+    rest_spectral_radius: float
+    rest_verdict: Verdict
 
 
 @dataclass(frozen=True)
@@ -104,10 +126,13 @@ class ModelErrorStudy:
         largest factor of the run of consecutive factors (sorted) whose ``rest_verdict`` is
         stable that holds the factor nearest 1 (by ``|log f|``); ``lowest`` and ``highest``
         are ``None`` when that factor's is not.
+    input_cases : list of ModelErrorInputCase
+        One per vector of input gain factors, in the order given.
     """
 
     cases: list[ModelErrorCase]
     stable_ranges: list[tuple[int, float | None, float | None]]
+    input_cases: list[ModelErrorInputCase] = field(default_factory=list)
 
 
 def perturbed_plant(
@@ -131,10 +156,10 @@ def perturbed_plant_with_feedthrough(
     c: NDArray[np.float64],
     d: NDArray[np.float64] | None,
     *,
-    gain_factor: float,
+    gain_factor: float | NDArray[np.float64],
     extra_dead_time: int,
 ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
-    """Return a realization of ``f z^-d (C (zI - A)^-1 B + D)``.
+    """Return a realization of ``f z^-d (C (zI - A)^-1 B + D)``, or of ``z^-d P(z) diag(f)``.
 
     Parameters
     ----------
@@ -143,8 +168,9 @@ def perturbed_plant_with_feedthrough(
     c : ndarray, shape (p, n)
     d : ndarray, shape (p, m), or None
         The feed-through (a measured output's ``D_m``); ``None``: zero.
-    gain_factor : float, keyword-only
-        ``f``.
+    gain_factor : float or ndarray of shape (m,), keyword-only
+        ``f``: one factor for every element, or one per input (each column of ``B`` and ``D``
+        multiplied by its own; a scalar delay commutes with ``diag(f)``, so either register holds).
     extra_dead_time : int, keyword-only
         ``d >= 0`` samples.
 
@@ -159,7 +185,8 @@ def perturbed_plant_with_feedthrough(
     p = c.shape[0]
     delay = int(extra_dead_time)
     feed = np.zeros((p, m)) if d is None else np.asarray(d, dtype=float)
-    scaled_b, scaled_d = gain_factor * b, gain_factor * feed
+    factor = np.asarray(gain_factor, dtype=float)  # () or (m,): broadcast along the columns
+    scaled_b, scaled_d = b * factor, feed * factor
     if delay == 0:
         return a.copy(), scaled_b, c.copy(), scaled_d
     if m <= p:  # u(k) enters the register; x(k+1) = A x(k) + f B w_d(k), y = C x + f D w_d
@@ -265,6 +292,7 @@ def model_error_study(
     feedthrough: NDArray[np.float64] | None = None,
     gain_factors: Sequence[float],
     extra_dead_times: Sequence[int],
+    input_gain_factors: Sequence[Sequence[float]] = (),
 ) -> ModelErrorStudy:
     """Return the loop's spectral radius on the model perturbed by every factor and extra dead time.
 
@@ -286,13 +314,15 @@ def model_error_study(
     extra_dead_times : sequence of int, keyword-only
         Samples ``d >= 0`` (``0`` only for a ``full_state`` estimator, which reads the model's
         states).
+    input_gain_factors : sequence of sequence of float, keyword-only
+        Each one positive factor per input (``P diag(f)``, no extra dead time); default none.
 
     Returns
     -------
     ModelErrorStudy
     """
 
-    def loop_poles(f: float, d: int) -> NDArray[np.complex128]:
+    def loop_poles(f: float | NDArray[np.float64], d: int) -> NDArray[np.complex128]:
         a_t, b_t, c_t, d_t = perturbed_plant_with_feedthrough(a, b, c, feedthrough, gain_factor=f, extra_dead_time=d)
         return true_loop(loop, a_t, b_t, c_t, d_t if feedthrough is not None else None).poles
 
@@ -310,4 +340,14 @@ def model_error_study(
             row.append(ModelErrorCase(float(f), int(d), radius, _verdict(radius), aside, rest, _verdict(rest)))
         cases += row
         ranges.append((int(d), *stable_factor_range(row)))
-    return ModelErrorStudy(cases=cases, stable_ranges=ranges)
+    input_cases: list[ModelErrorInputCase] = []
+    for factors in input_gain_factors:
+        vector = np.asarray(factors, dtype=float)
+        assert vector.shape == (b.shape[1],), vector.shape
+        poles = loop_poles(vector, 0)
+        radius = float(np.abs(poles).max(initial=0.0))
+        aside, rest = set_aside_nominal_circle(poles, nominal) if nominal.size else (0, radius)
+        input_cases.append(
+            ModelErrorInputCase(tuple(float(v) for v in vector), radius, _verdict(radius), aside, rest, _verdict(rest))
+        )
+    return ModelErrorStudy(cases=cases, stable_ranges=ranges, input_cases=input_cases)
