@@ -363,8 +363,8 @@ def unit_free_scaling(
        where ``a`` and ``b`` are not, and a change of units shifts ``a`` and ``b`` only, so
        ``m_ij exp(-a_i - b_j)`` is the same in any units (two-way analysis of the logarithms,
        common practice);
-    2. max-norm equilibration of that matrix by square-root sweeps without rounding (Ruiz,
-       RAL-TR-2001-034, 2001), a continuous function of a matrix that no longer depends on units.
+    2. max-norm equilibration of that matrix by square-root sweeps without rounding (the sweeps
+       of :func:`equilibrate`), a continuous function of a matrix that no longer depends on units.
     """
     r, c = matrix.shape
     rows, columns = np.ones(r), np.ones(c)
