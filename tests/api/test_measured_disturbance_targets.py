@@ -389,3 +389,41 @@ def test_the_heater_s_exported_law_with_dead_times_and_gain_error_is_the_run(cli
     u = np.array(run["inputs"])
     np.testing.assert_allclose(v[:, :2], u, rtol=0, atol=1e-10 * np.abs(u).max())
     assert np.abs(np.diff(u[:, 1])).max() > 1.0  # the draw does move
+
+
+@pytest.mark.parametrize("unit", [1e3, 1e9], ids=["kg/h", "a unit 1e9 times smaller"])
+def test_the_out_of_reach_verdict_does_not_depend_on_the_feed_s_unit(client, unit):
+    # The same feed in a smaller unit and without a span (values times ``unit``, b_disturbance
+    # divided by it) is the same plant: the run and every verdict must stay the same (a change
+    # of units changes no verdict, common practice).  Found in this review: the verdict's
+    # tolerance grew with the feed's raw value, so in the smaller unit a setpoint out of reach
+    # by several spans was called reachable, and neither the corrected target nor the warning
+    # was reported.  The reference: scipy.optimize.lsq_linear in t/h, as above.
+    body = _ramped(False, False)
+    body["model"]["b_disturbance"] = (BD2 / unit).tolist()
+    body["model"]["disturbances"][0].pop("span")
+    body["model"]["operating_point"]["disturbances"] = [D02[0] * unit]
+    for event in body["scenario"]["measured_disturbances"]:
+        event["value"] = [event["value"][0] * unit]
+    run = _post(client, "/simulate", body).json()
+    rows = _rows(run)
+    gain = C2 @ np.linalg.solve(np.eye(3) - A2, B2)
+    g_m = C2 @ np.linalg.solve(np.eye(3) - A2, BD2)
+    w = np.diag(np.sqrt(Q2) / ZSPAN2)
+    out_of_reach = 0
+    for i, feed in enumerate(FEEDS2):
+        k = HOLD * (i + 2) - 1
+        d_m = np.array([feed]) - D02
+        ref = scipy.optimize.lsq_linear(
+            w @ gain, w @ (SP2 - Z02 - g_m @ d_m), bounds=(LO2 - U02, HI2 - U02), method="bvls", tol=1e-14
+        )
+        target = rows.get(k, {}).get("target")
+        if np.abs(ref.fun).max() > 1e-9:
+            out_of_reach += 1
+            assert target is not None, k
+            z = gain @ ref.x + g_m @ d_m
+            np.testing.assert_allclose(np.array(target) - Z02, z, rtol=0, atol=1e-9 * np.abs(z).max())
+        else:
+            assert target is None, (k, target)
+    assert out_of_reach >= 3
+    assert any(w["code"] == "setpoint_out_of_reach" for w in run["warnings"])

@@ -41,7 +41,12 @@ import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.weights import weight_root
-from service.solver.estimation.target import REACHABLE_TOLERANCE, TargetProblem, steady_state_target
+from service.solver.estimation.target import (
+    REACHABLE_TOLERANCE,
+    TargetProblem,
+    reachable_scale,
+    steady_state_target,
+)
 
 __all__ = ["TARGET_TOLERANCE", "ReachableTarget", "ReachableTargetProblem", "reachable_target"]
 
@@ -246,7 +251,7 @@ class ReachableTargetProblem:
         u = np.clip(xu[n:], self._low, self._high)  # remove tolerance-sized excursions
         output = problem.c @ xu[:n] + problem.disturbance_output @ d
         offset = output - r
-        scale = max(1.0, float(np.abs(r).max(initial=0.0)), float(np.abs(d).max(initial=0.0)))
+        scale = reachable_scale(problem, r, d)  # d_m by its effect on the outputs, not its unit
         gap = self._tolerance * np.maximum(1.0, np.abs(u))
         return ReachableTarget(
             state=xu[:n].copy(),
