@@ -60,6 +60,7 @@ __all__ = [
     "SPARE_INPUT_TOLERANCE",
     "SteadyStateTarget",
     "TargetProblem",
+    "input_scales",
     "steady_state_target",
     "target_problem",
     "with_measured_disturbances",
@@ -259,7 +260,7 @@ def target_problem(
         # (powers of two, so the change of variables is exact): u = T v.  In the request's
         # units an input scaled by 1e9 (its input weight by 1e-18, the same problem) had left
         # the spare input's target wrong by more than its own size, and 1e6 by 1e-4.
-        t = _input_scales(b_, s_in)
+        t = input_scales(b_, s_in)
         maps = _target_maps(a_, b_ * t, c_, bd, dz, w, s_in * t[:, None] * t[None, :])
         setpoint_map, disturbance_map, target_map = maps
         setpoint_map[n:] *= t[:, None]
@@ -331,8 +332,24 @@ def with_measured_disturbances(problem: TargetProblem, b_disturbance: ArrayLike)
     )
 
 
-def _input_scales(b: NDArray[np.float64], input_weight: NDArray[np.float64]) -> NDArray[np.float64]:
-    """Powers of two ``T`` with each column of ``[B T; (T S T)^(1/2)]`` about 1 in size (a change of an input's unit scales both alike)."""
+def input_scales(b: NDArray[np.float64], input_weight: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Return the input scales ``T`` of the target's moderate input units ``u = T v``.
+
+    Parameters
+    ----------
+    b : ndarray, shape (n, m)
+        ``B``, in the request's input units.
+    input_weight : ndarray, shape (m, m)
+        ``S`` (zeros: none).
+
+    Returns
+    -------
+    ndarray, shape (m,)
+        Powers of two (so the change of variables is exact) with each column of
+        ``[B T; (T S T)^(1/2)]`` about 1 in size: a change of an input's unit scales both alike,
+        so ``v`` does not depend on it (to a factor of at most ``sqrt(2)``).  An input with a
+        zero column keeps ``T = 1``.
+    """
     column = np.sqrt(np.einsum("ij,ij->j", b, b) + np.clip(np.diag(input_weight), 0.0, None))
     return np.exp2(-np.round(np.log2(np.where(column > 0.0, column, 1.0))))
 

@@ -28,6 +28,18 @@ where the fit is optimal, again a positive-semidefinite QP with the fit's level 
 rows; the least norm then holds both levels (the rows of an orthonormal basis of the row space
 of ``[V1'; V J N]``, ``J`` picking ``u_s``).  Input targets so act in the spare directions only.
 
+Units.  The fit and the input stage are solved with the inputs in units of moderate size,
+``u = T v`` with ``T`` the powers of two of :func:`service.solver.estimation.target.input_scales`
+(``N`` and ``P0`` then of ``[I - A, -B T]``, ``V T`` for ``V``, the limits and ``u_t`` divided
+by ``T``): the change of variables is exact, and a change of an input's unit no longer changes
+the target (in the request's units an input in units 1e9 times smaller had made the QPs stop at
+their iteration limit or put the target off by more than its size).  The least norm is the
+unconstrained target's own: with an input weight ``|[x_s; v_s]|``, in the same moderate units as
+:func:`service.solver.estimation.target.target_problem`'s maps; without one ``|[x_s; u_s]|`` in
+the request's units, solved in their basis ``N`` from the fit's minimizer.  So the target is the
+same on both sides of the switch between the unconstrained maps and the QPs, and it moves
+continuously as a limit starts to bind.
+
 Only the limits' row bounds change with ``(r, d, u_t)``: every workspace is set up once.
 """
 
@@ -41,11 +53,13 @@ import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.weights import weight_root
-from service.solver.estimation.target import REACHABLE_TOLERANCE, TargetProblem, steady_state_target
+from service.solver.estimation.target import REACHABLE_TOLERANCE, TargetProblem, input_scales, steady_state_target
 
 __all__ = ["TARGET_TOLERANCE", "ReachableTarget", "ReachableTargetProblem", "reachable_target"]
 
-#: Absolute tolerance on the input limits of the target, in input units.
+#: Absolute tolerance on the input limits of the target, in the moderate input units ``v``
+#: (``u = T v``, :func:`service.solver.estimation.target.input_scales`), so the same whatever an
+#: input's unit; the least-norm stage without an input weight holds it in the request's units.
 TARGET_TOLERANCE = 1e-10
 # DAQP's constraint-state value of an equality (its documentation, "sense").
 _EQUALITY = 5
@@ -98,7 +112,8 @@ class ReachableTargetProblem:
     input_min, input_max : array_like, shape (m,)
         Input limits; ``-inf``/``+inf`` (or ``NaN``) where absent.
     tolerance : float, optional
-        Absolute tolerance on the limits (default 1e-10).
+        Absolute tolerance on the limits in the moderate input units (default
+        :data:`TARGET_TOLERANCE`).
 
     Notes
     -----
@@ -120,10 +135,18 @@ class ReachableTargetProblem:
         high[np.isnan(high)] = np.inf
         self._problem, self._n, self._m = problem, n, m
         self._low, self._high, self._tolerance = low, high, tolerance
-        null = problem.null_space  # (n+m, k)
+        # Moderate input units u = T v (those of target_problem's maps with an input weight).
+        weighted = bool(np.any(problem.input_weight))
+        t = input_scales(problem.b, problem.input_weight)
+        self._scales = t
+        self._low_v, self._high_v = low / t, high / t
+        steady = np.hstack([np.eye(n) - problem.a, -problem.b * t])
+        null = scipy.linalg.null_space(steady)  # N in [x; v], (n+m, k)
+        self._null = null
+        self._particular = scipy.linalg.pinv(steady) @ problem.disturbance_input  # P0 in [x; v], (n+m, nd)
         k = null.shape[1]
         self._limited = np.flatnonzero(np.isfinite(low) | np.isfinite(high))
-        self._rows = np.ascontiguousarray(null[n:][self._limited])  # u_s rows of N
+        self._rows = np.ascontiguousarray(null[n:][self._limited])  # v_s rows of N
         fit, _ = problem.output_equations(np.zeros(problem.c.shape[0]), np.zeros(problem.disturbance_input.shape[1]))
         root = weight_root(problem.output_weight)
         self._root = root
@@ -142,10 +165,10 @@ class ReachableTargetProblem:
         self._fit_model.settings = {"primal_tol": tolerance, "eta_prox": 1e-12, "iter_limit": 2000}
         self._input_model: daqp.Model | None = None
         self._levels = self._visible  # the rows whose level the least norm keeps, (k, rank)
-        if np.any(problem.input_weight) and rank < k:
-            v = weight_root(problem.input_weight)
+        if weighted and rank < k:
+            v = weight_root(problem.input_weight * t[:, None] * t[None, :])  # V T
             self._input_root = v
-            self._input_seen = v @ null[n:]  # V J N, (m, k)
+            self._input_seen = v @ null[n:]  # V T J N, (m, k)
             rows = np.ascontiguousarray(np.vstack([self._visible.T, self._rows]))
             self._input_sense = np.concatenate([np.full(rank, _EQUALITY), np.zeros(self._limited.size)]).astype(
                 np.int32
@@ -164,16 +187,30 @@ class ReachableTargetProblem:
             _, sv2, vt2 = scipy.linalg.svd(stacked, full_matrices=True)
             both = int(np.count_nonzero(sv2 > max(stacked.shape) * np.finfo(float).eps * sv2.max(initial=0.0)))
             self._levels = vt2[:both].T
-        levels = self._levels.shape[1]
-        if levels < k:
-            rows = np.ascontiguousarray(np.vstack([self._levels.T, self._rows]))
+        # The least norm is the unconstrained target's own: |[x_s; v_s]| with an input weight (the
+        # same basis), the request's |[x_s; u_s]| without one (its basis, levels and limit rows).
+        self._norm_scales, self._norm_null, self._norm_particular = t, null, self._particular
+        if not weighted:
+            self._norm_scales, self._norm_null, self._norm_particular = (
+                np.ones(m),
+                problem.null_space,
+                problem.particular,
+            )
+            seen = root @ fit @ problem.null_space
+            _, sv3, vt3 = scipy.linalg.svd(seen, full_matrices=True)
+            kept = int(np.count_nonzero(sv3 > max(seen.shape) * np.finfo(float).eps * sv3.max(initial=0.0)))
+            self._levels = vt3[:kept].T
+        levels, k_norm = self._levels.shape[1], self._norm_null.shape[1]
+        if levels < k_norm:
+            norm_rows = self._norm_null[n:][self._limited]
+            rows = np.ascontiguousarray(np.vstack([self._levels.T, norm_rows]))
             self._norm_sense = np.concatenate([np.full(levels, _EQUALITY), np.zeros(self._limited.size)]).astype(
                 np.int32
             )
             upper = np.concatenate([np.zeros(levels), bounds[0]])
             lower = np.concatenate([np.zeros(levels), bounds[1]])
             self._norm_model = daqp.Model()
-            self._norm_model.setup(np.eye(k), np.zeros(k), rows, upper, lower, self._norm_sense)
+            self._norm_model.setup(np.eye(k_norm), np.zeros(k_norm), rows, upper, lower, self._norm_sense)
             self._norm_model.settings = {"primal_tol": tolerance, "eps_prox": 0.0, "iter_limit": 2000}
 
     def solve(
@@ -195,24 +232,24 @@ class ReachableTargetProblem:
         ReachableTarget
             Never raises on a failed solve: see :attr:`ReachableTarget.solved`.
         """
-        problem, n = self._problem, self._n
+        problem, n, t = self._problem, self._n, self._scales
         r = np.asarray(setpoint, dtype=float)
         nd = problem.disturbance_input.shape[1]
         d = np.zeros(nd) if disturbance is None else np.asarray(disturbance, dtype=float)
         ut = np.zeros(self._m) if input_target is None else np.asarray(input_target, dtype=float)
         free = steady_state_target(problem, r, d, ut)
-        if self._fit_model is None or self._inside(free.input):
+        if self._fit_model is None or self._inside(free.input / t):
             return self._target(np.concatenate([free.state, free.input]), r, d, True, "unconstrained")
 
-        base = problem.particular @ d  # P0 d, orthogonal to every N c
+        base = self._particular @ d  # P0 d in [x; v], orthogonal to every N c
         fit, goal = problem.output_equations(r, d)
         residual = self._root @ (goal - fit @ base)  # W (r - Dz d - F P0 d)
-        upper = self._high[self._limited] - base[n:][self._limited]
-        lower = self._low[self._limited] - base[n:][self._limited]
+        upper = self._high_v[self._limited] - base[n:][self._limited]
+        lower = self._low_v[self._limited] - base[n:][self._limited]
         c, status = _run(self._fit_model, -(self._seen.T @ residual), upper, lower, None)
         if c is not None and self._input_model is not None:
             level = self._visible.T @ c
-            pull = self._input_root @ (ut - base[n:])  # V (u_t - J P0 d)
+            pull = self._input_root @ (ut / t - base[n:])  # V T (T^-1 u_t - J P0 d)
             c3, _ = _run(
                 self._input_model,
                 -(self._input_seen.T @ pull),
@@ -221,41 +258,49 @@ class ReachableTargetProblem:
                 self._input_sense,
             )
             c = c3 if c3 is not None else c  # the fit's minimizer stays optimal for the outputs
-        if c is not None and self._norm_model is not None:
-            level = self._levels.T @ c
-            c2, _ = _run(
-                self._norm_model,
-                np.zeros(self._k),
-                np.concatenate([level, upper]),
-                np.concatenate([level, lower]),
-                self._norm_sense,
-            )
-            c = c2 if c2 is not None else c  # the fit's own minimizer is optimal, just not least norm
         if c is None:
             clipped = np.clip(free.input, self._low, self._high)
             return self._target(np.concatenate([free.state, clipped]), r, d, False, status)
-        return self._target(base + problem.null_space @ c, r, d, True, "optimal")
+        xv = base + self._null @ c
+        xu = np.concatenate([xv[:n], t * xv[n:]])  # the fit's (and inputs') minimizer, [x_s; u_s]
+        if self._norm_model is not None:
+            ts = self._norm_scales
+            start = self._norm_null.T @ np.concatenate([xu[:n], xu[n:] / ts])  # its c (P0 d orthogonal to N)
+            base = self._norm_particular @ d
+            level = self._levels.T @ start
+            c2, _ = _run(
+                self._norm_model,
+                np.zeros(self._norm_null.shape[1]),
+                np.concatenate([level, self._high[self._limited] / ts[self._limited] - base[n:][self._limited]]),
+                np.concatenate([level, self._low[self._limited] / ts[self._limited] - base[n:][self._limited]]),
+                self._norm_sense,
+            )
+            if c2 is not None:  # else the fit's own minimizer is optimal, just not least norm
+                xn = base + self._norm_null @ c2
+                xu = np.concatenate([xn[:n], ts * xn[n:]])
+        return self._target(xu, r, d, True, "optimal")
 
-    def _inside(self, u: NDArray[np.float64]) -> bool:
-        return bool(np.all(u >= self._low - self._tolerance) and np.all(u <= self._high + self._tolerance))
+    def _inside(self, v: NDArray[np.float64]) -> bool:
+        return bool(np.all(v >= self._low_v - self._tolerance) and np.all(v <= self._high_v + self._tolerance))
 
     def _target(
         self, xu: NDArray[np.float64], r: NDArray[np.float64], d: NDArray[np.float64], solved: bool, status: str
     ) -> ReachableTarget:
         problem, n = self._problem, self._n
         u = np.clip(xu[n:], self._low, self._high)  # remove tolerance-sized excursions
+        v = u / self._scales
         output = problem.c @ xu[:n] + problem.disturbance_output @ d
         offset = output - r
         scale = max(1.0, float(np.abs(r).max(initial=0.0)), float(np.abs(d).max(initial=0.0)))
-        gap = self._tolerance * np.maximum(1.0, np.abs(u))
+        gap = self._tolerance * np.maximum(1.0, np.abs(v))  # in the moderate units
         return ReachableTarget(
             state=xu[:n].copy(),
             input=u,
             output=output,
             offset=offset,
             reachable=bool(np.abs(offset).max(initial=0.0) <= REACHABLE_TOLERANCE * scale),
-            input_at_min=np.abs(u - self._low) <= gap,
-            input_at_max=np.abs(u - self._high) <= gap,
+            input_at_min=np.abs(v - self._low_v) <= gap,
+            input_at_max=np.abs(v - self._high_v) <= gap,
             solved=solved,
             status=status,
         )
