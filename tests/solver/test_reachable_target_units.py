@@ -178,3 +178,30 @@ def test_without_an_input_weight_a_square_plant_s_limited_target_is_the_same_in_
     np.testing.assert_allclose(target.input / d, want, rtol=1e-9, atol=1e-12)
     np.testing.assert_allclose(target.state, np.linalg.solve(np.eye(3) - A, B @ want), rtol=1e-9, atol=1e-12)
     assert target.input_at_max.tolist() == [True, False, False]
+
+
+@pytest.mark.parametrize("scale", [1e6, 1e9, 1e12])
+@pytest.mark.parametrize("weighted", [True, False])
+def test_the_limited_target_is_the_same_with_the_states_and_outputs_in_tiny_units(scale, weighted):
+    # States and outputs in units `scale` times smaller (x' = f x, z' = f z: B' = f B, C' = C,
+    # Q' = Q / f^2, r' = f r; the same problem).  Found in a review: the target QPs were posed with
+    # Hessians of size 1/f^2 and answers of size f against the solver's absolute tolerances, and
+    # came back "optimal" with the outputs 10 % off a reachable setpoint and the valves 0.19 off.
+    # References: _kkt in the first units (with S), the bounded least squares on the steady-state
+    # gain (scipy.optimize.lsq_linear, "bvls"; without S, three outputs for a unique target).
+    c = C if weighted else np.vstack([C, [0.0, 0.0, 1.0]])
+    r = R if weighted else np.array([1.0, -0.5, 0.3])
+    q = np.ones(c.shape[0])
+    low, high = (LOW, HIGH) if weighted else (np.array([-10.0, -10.0, -10.0]), np.array([0.17, 10.0, 10.0]))
+    if weighted:
+        want, _ = _kkt(A, B, C, S, R, UT, [(2, LOW[2])])
+    else:
+        k = c @ np.linalg.solve(np.eye(3) - A, B)
+        u = scipy.optimize.lsq_linear(k, r, bounds=(low, high), method="bvls", tol=1e-14).x
+        want = np.concatenate([np.linalg.solve(np.eye(3) - A, B @ u), u])
+    problem = target_problem(A, scale * B, c, output_weight=q / scale**2, input_weight=S if weighted else None)
+    solver = ReachableTargetProblem(problem, input_min=low, input_max=high)
+    target = solver.solve(scale * r, None, UT if weighted else None)
+    assert target.solved and target.status == "optimal"
+    np.testing.assert_allclose(target.state / scale, want[:3], rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(target.input, want[3:], rtol=1e-9, atol=1e-12)

@@ -40,6 +40,14 @@ the request's units, solved in their basis ``N`` from the fit's minimizer.  So t
 same on both sides of the switch between the unconstrained maps and the QPs, and it moves
 continuously as a limit starts to bind.
 
+Scale.  Each QP is posed with its Hessian divided by its 2-norm, its variable ``c`` divided by
+the size ``sigma`` of the unconstrained target (``max(|x_s|, |u_s|, |u_s clipped into the
+limits|)``, infinity norms, in the QP's units) and each limit row ``J_i N`` divided by its norm:
+DAQP's tolerances are absolute, so the tolerance on input ``i``'s limit becomes
+``tolerance * sigma * |J_i N|``, relative to the size the target gives that input.  (With the
+states and outputs in units 1e6 times smaller the unscaled QPs had come back "optimal" with the
+outputs 10 % off a reachable setpoint.)
+
 Only the limits' row bounds change with ``(r, d, u_t)``: every workspace is set up once.
 """
 
@@ -57,9 +65,9 @@ from service.solver.estimation.target import REACHABLE_TOLERANCE, TargetProblem,
 
 __all__ = ["TARGET_TOLERANCE", "ReachableTarget", "ReachableTargetProblem", "reachable_target"]
 
-#: Absolute tolerance on the input limits of the target, in the moderate input units ``v``
-#: (``u = T v``, :func:`service.solver.estimation.target.input_scales`), so the same whatever an
-#: input's unit; the least-norm stage without an input weight holds it in the request's units.
+#: Tolerance on the input limits of the target, relative to the target's size (the module's
+#: notes, "Scale"): input ``i`` may pass its limit by ``TARGET_TOLERANCE * sigma * |J_i N|``, in
+#: the moderate input units ``v`` (``u = T v``), so its meaning does not change with the units.
 TARGET_TOLERANCE = 1e-10
 # DAQP's constraint-state value of an equality (its documentation, "sense").
 _EQUALITY = 5
@@ -112,8 +120,8 @@ class ReachableTargetProblem:
     input_min, input_max : array_like, shape (m,)
         Input limits; ``-inf``/``+inf`` (or ``NaN``) where absent.
     tolerance : float, optional
-        Absolute tolerance on the limits in the moderate input units (default
-        :data:`TARGET_TOLERANCE`).
+        Tolerance on the limits, relative to the target's size (default
+        :data:`TARGET_TOLERANCE`, which says how).
 
     Notes
     -----
@@ -146,7 +154,10 @@ class ReachableTargetProblem:
         self._particular = scipy.linalg.pinv(steady) @ problem.disturbance_input  # P0 in [x; v], (n+m, nd)
         k = null.shape[1]
         self._limited = np.flatnonzero(np.isfinite(low) | np.isfinite(high))
-        self._rows = np.ascontiguousarray(null[n:][self._limited])  # v_s rows of N
+        # Each input's reach in the basis, ||J_i N|| (1 where zero): the limit rows are posed of
+        # norm 1 and their tolerance is relative to the size of the input they bound.
+        self._reach = _row_norms(null[n:])
+        self._rows = np.ascontiguousarray((null[n:] / self._reach[:, None])[self._limited])  # v_s rows of N
         fit, _ = problem.output_equations(np.zeros(problem.c.shape[0]), np.zeros(problem.disturbance_input.shape[1]))
         root = weight_root(problem.output_weight)
         self._root = root
@@ -161,7 +172,8 @@ class ReachableTargetProblem:
         if self._limited.size == 0:
             return  # no limit: the unconstrained target is always the answer
         self._fit_model = daqp.Model()
-        self._fit_model.setup(self._seen.T @ self._seen, np.zeros(k), self._rows, *bounds)
+        self._fit_scale = _hessian_scale(self._seen)
+        self._fit_model.setup(self._seen.T @ self._seen / self._fit_scale, np.zeros(k), self._rows, *bounds)
         self._fit_model.settings = {"primal_tol": tolerance, "eta_prox": 1e-12, "iter_limit": 2000}
         self._input_model: daqp.Model | None = None
         self._levels = self._visible  # the rows whose level the least norm keeps, (k, rank)
@@ -173,9 +185,10 @@ class ReachableTargetProblem:
             self._input_sense = np.concatenate([np.full(rank, _EQUALITY), np.zeros(self._limited.size)]).astype(
                 np.int32
             )
+            self._input_scale = _hessian_scale(self._input_seen)
             self._input_model = daqp.Model()
             self._input_model.setup(
-                self._input_seen.T @ self._input_seen,
+                self._input_seen.T @ self._input_seen / self._input_scale,
                 np.zeros(k),
                 rows,
                 np.concatenate([np.zeros(rank), bounds[0]]),
@@ -202,7 +215,8 @@ class ReachableTargetProblem:
             self._levels = vt3[:kept].T
         levels, k_norm = self._levels.shape[1], self._norm_null.shape[1]
         if levels < k_norm:
-            norm_rows = self._norm_null[n:][self._limited]
+            self._norm_reach = _row_norms(self._norm_null[n:])
+            norm_rows = (self._norm_null[n:] / self._norm_reach[:, None])[self._limited]
             rows = np.ascontiguousarray(np.vstack([self._levels.T, norm_rows]))
             self._norm_sense = np.concatenate([np.full(levels, _EQUALITY), np.zeros(self._limited.size)]).astype(
                 np.int32
@@ -238,21 +252,26 @@ class ReachableTargetProblem:
         d = np.zeros(nd) if disturbance is None else np.asarray(disturbance, dtype=float)
         ut = np.zeros(self._m) if input_target is None else np.asarray(input_target, dtype=float)
         free = steady_state_target(problem, r, d, ut)
-        if self._fit_model is None or self._inside(free.input / t):
-            return self._target(np.concatenate([free.state, free.input]), r, d, True, "unconstrained")
+        free_v = free.input / t
+        # The target's size in the moderate units: the QPs are solved in c / size, so their
+        # tolerances are relative to it (absolute ones meant nothing for a target of size 1e6).
+        size = _size(free.state, free_v, self._low_v, self._high_v)
+        if self._fit_model is None or self._inside(free_v, size * self._reach):
+            return self._target(np.concatenate([free.state, free.input]), r, d, True, "unconstrained", size)
 
         base = self._particular @ d  # P0 d in [x; v], orthogonal to every N c
         fit, goal = problem.output_equations(r, d)
         residual = self._root @ (goal - fit @ base)  # W (r - Dz d - F P0 d)
-        upper = self._high_v[self._limited] - base[n:][self._limited]
-        lower = self._low_v[self._limited] - base[n:][self._limited]
-        c, status = _run(self._fit_model, -(self._seen.T @ residual), upper, lower, None)
+        reach = size * self._reach[self._limited]
+        upper = (self._high_v[self._limited] - base[n:][self._limited]) / reach
+        lower = (self._low_v[self._limited] - base[n:][self._limited]) / reach
+        c, status = _run(self._fit_model, -(self._seen.T @ residual) / (self._fit_scale * size), upper, lower, None)
         if c is not None and self._input_model is not None:
             level = self._visible.T @ c
             pull = self._input_root @ (ut / t - base[n:])  # V T (T^-1 u_t - J P0 d)
             c3, _ = _run(
                 self._input_model,
-                -(self._input_seen.T @ pull),
+                -(self._input_seen.T @ pull) / (self._input_scale * size),
                 np.concatenate([level, upper]),
                 np.concatenate([level, lower]),
                 self._input_sense,
@@ -260,31 +279,41 @@ class ReachableTargetProblem:
             c = c3 if c3 is not None else c  # the fit's minimizer stays optimal for the outputs
         if c is None:
             clipped = np.clip(free.input, self._low, self._high)
-            return self._target(np.concatenate([free.state, clipped]), r, d, False, status)
-        xv = base + self._null @ c
+            return self._target(np.concatenate([free.state, clipped]), r, d, False, status, size)
+        xv = base + self._null @ (size * c)
         xu = np.concatenate([xv[:n], t * xv[n:]])  # the fit's (and inputs') minimizer, [x_s; u_s]
         if self._norm_model is not None:
             ts = self._norm_scales
-            start = self._norm_null.T @ np.concatenate([xu[:n], xu[n:] / ts])  # its c (P0 d orthogonal to N)
+            # its c (P0 d orthogonal to N), in the least norm's units and divided by their size
+            norm_size = size if ts is t else _size(free.state, free.input, self._low, self._high)
+            start = self._norm_null.T @ np.concatenate([xu[:n], xu[n:] / ts]) / norm_size
             base = self._norm_particular @ d
             level = self._levels.T @ start
+            limited, reach = self._limited, norm_size * self._norm_reach[self._limited]
             c2, _ = _run(
                 self._norm_model,
                 np.zeros(self._norm_null.shape[1]),
-                np.concatenate([level, self._high[self._limited] / ts[self._limited] - base[n:][self._limited]]),
-                np.concatenate([level, self._low[self._limited] / ts[self._limited] - base[n:][self._limited]]),
+                np.concatenate([level, (self._high[limited] / ts[limited] - base[n:][limited]) / reach]),
+                np.concatenate([level, (self._low[limited] / ts[limited] - base[n:][limited]) / reach]),
                 self._norm_sense,
             )
             if c2 is not None:  # else the fit's own minimizer is optimal, just not least norm
-                xn = base + self._norm_null @ c2
+                xn = base + self._norm_null @ (norm_size * c2)
                 xu = np.concatenate([xn[:n], ts * xn[n:]])
-        return self._target(xu, r, d, True, "optimal")
+        return self._target(xu, r, d, True, "optimal", size)
 
-    def _inside(self, v: NDArray[np.float64]) -> bool:
-        return bool(np.all(v >= self._low_v - self._tolerance) and np.all(v <= self._high_v + self._tolerance))
+    def _inside(self, v: NDArray[np.float64], sizes: NDArray[np.float64]) -> bool:
+        gap = self._tolerance * sizes
+        return bool(np.all(v >= self._low_v - gap) and np.all(v <= self._high_v + gap))
 
     def _target(
-        self, xu: NDArray[np.float64], r: NDArray[np.float64], d: NDArray[np.float64], solved: bool, status: str
+        self,
+        xu: NDArray[np.float64],
+        r: NDArray[np.float64],
+        d: NDArray[np.float64],
+        solved: bool,
+        status: str,
+        size: float,
     ) -> ReachableTarget:
         problem, n = self._problem, self._n
         u = np.clip(xu[n:], self._low, self._high)  # remove tolerance-sized excursions
@@ -292,7 +321,7 @@ class ReachableTargetProblem:
         output = problem.c @ xu[:n] + problem.disturbance_output @ d
         offset = output - r
         scale = max(1.0, float(np.abs(r).max(initial=0.0)), float(np.abs(d).max(initial=0.0)))
-        gap = self._tolerance * np.maximum(1.0, np.abs(v))  # in the moderate units
+        gap = self._tolerance * size * self._reach  # in the moderate units
         return ReachableTarget(
             state=xu[:n].copy(),
             input=u,
@@ -330,6 +359,33 @@ def reachable_target(
     [2.0, 1.0, True]
     """
     return ReachableTargetProblem(problem, input_min=input_min, input_max=input_max).solve(setpoint, disturbance)
+
+
+def _hessian_scale(seen: NDArray[np.float64]) -> float:
+    """``||G||_2^2`` of a Hessian ``G'G`` (1 when zero): the QPs are posed with Hessians of size 1."""
+    top = float(np.linalg.norm(seen, 2)) if seen.size else 0.0
+    return top * top if top > 0.0 else 1.0
+
+
+def _row_norms(rows: NDArray[np.float64]) -> NDArray[np.float64]:
+    """The 2-norms of the rows (1 where zero), shape (m,)."""
+    norms = np.linalg.norm(rows, axis=1)
+    return np.where(norms > 0.0, norms, 1.0)
+
+
+def _size(
+    state: NDArray[np.float64], inputs: NDArray[np.float64], low: NDArray[np.float64], high: NDArray[np.float64]
+) -> float:
+    """``max(|x_s|, |u_s|, |clip(u_s)|)`` (infinity norms) of the unconstrained target, 1 when zero.
+
+    The scale of the target QPs' variables and of their tolerances: the target without limits and
+    its inputs clipped into the limits bound the size of the answer's parts that the limits move.
+    """
+    clipped = np.clip(inputs, low, high)
+    top = max(
+        float(np.abs(state).max(initial=0.0)), float(np.abs(inputs).max(initial=0.0)), float(np.abs(clipped).max())
+    )
+    return top if top > 0.0 and np.isfinite(top) else 1.0
 
 
 def _run(
