@@ -6,7 +6,8 @@ must not move (the transformation rule of the change of variables; textbook).  T
 checked against the lexicographic target written out by hand in the first units (the KKT system
 of an equality-constrained least-squares problem with the limit's active set known, solved by
 ``numpy.linalg.solve``; its multiplier certifies the active set; textbook), and, where the input
-weight leaves ties, the least-norm point of the optimal set by ``numpy.linalg.pinv`` (textbook).
+weight leaves ties, the least-norm point of the optimal set by ``numpy.linalg.pinv`` or by its KKT
+system in 60-digit arithmetic (``mpmath``; textbook).
 
 Plant (invented): three valves on two first-order lags and a coupled third state, two controlled
 outputs, so one valve direction is spare; the input weight S and the input targets place it.
@@ -14,6 +15,7 @@ outputs, so one valve direction is spare; the input weight S and the input targe
 
 from __future__ import annotations
 
+import mpmath
 import numpy as np
 import pytest
 import scipy.optimize
@@ -205,3 +207,73 @@ def test_the_limited_target_is_the_same_with_the_states_and_outputs_in_tiny_unit
     assert target.solved and target.status == "optimal"
     np.testing.assert_allclose(target.state / scale, want[:3], rtol=1e-9, atol=1e-12)
     np.testing.assert_allclose(target.input, want[3:], rtol=1e-9, atol=1e-12)
+
+
+BD = np.array([[0.0, 0.3], [0.1, 0.0], [0.0, -0.2]])  # a feed disturbance on the states
+DZ = np.array([[1.0, 0.0], [0.0, 0.0]])  # and a bias on the first output
+DIST = np.array([0.4, -0.7])
+
+
+def _least_norm_mp(e, g):
+    """The least-norm solution of ``e xi = g`` (full row rank) by its KKT system ``[I e'; e 0]``
+    in 60-digit arithmetic (mpmath.lu_solve; textbook), rounded to floats."""
+    mpmath.mp.dps = 60
+    rows, cols = e.shape
+    kkt = mpmath.matrix(cols + rows, cols + rows)
+    for i in range(cols):
+        kkt[i, i] = 1
+    for i in range(rows):
+        for j in range(cols):
+            kkt[cols + i, j] = kkt[j, cols + i] = mpmath.mpf(float(e[i, j]))
+    sol = mpmath.lu_solve(kkt, mpmath.matrix([0] * cols + [mpmath.mpf(float(x)) for x in g]))
+    return np.array([float(sol[i]) for i in range(cols)])
+
+
+@pytest.mark.parametrize("scale", [1.0, 1e6, 1e9])
+def test_with_a_disturbance_and_no_input_weight_the_tie_is_the_least_norm_in_the_request_s_units(scale):
+    # Four valves, two outputs, no input weight, a disturbance estimate: with the third valve on
+    # its limit one direction is left, which the least norm |[x_s; u_s]| decides in the request's
+    # units (the unconstrained target's own tie-break).  Reference: the least-norm solution of
+    # the equalities with the active set known, in those units (_least_norm_mp).  (The second
+    # valve in units 1e9 times larger instead gives it a weight of 1e-18 in that norm: a tie
+    # break of condition 1e9, which a solve in those units meets to about 1e-8 only.)
+    n, m = B1.shape
+    d = np.array([1.0, scale, 1.0, 1.0])
+    b = B1 / d[None, :]
+    problem = target_problem(A, b, C, disturbance_input=BD, disturbance_output=DZ)
+    free = steady_state_target(problem, R, DIST)
+    bound = 0.5 * free.input[2]
+    low, high = np.full(m, -10.0) * d, np.full(m, 10.0) * d
+    if bound > 0.0:
+        high[2] = bound
+    else:
+        low[2] = bound
+    target = ReachableTargetProblem(problem, input_min=low, input_max=high).solve(R, DIST)
+    e = np.vstack([np.hstack([np.eye(n) - A, -b]), np.hstack([C, np.zeros((2, m))]), np.eye(n + m)[[n + 2]]])
+    want = _least_norm_mp(e, np.concatenate([BD @ DIST, R - DZ @ DIST, [bound]]))
+    others = [0, 1, 3]
+    assert np.all(want[n:][others] > low[others]) and np.all(want[n:][others] < high[others])  # only u_3 held
+    assert target.status == "optimal" and target.reachable
+    np.testing.assert_allclose(target.state, want[:n], rtol=1e-12, atol=1e-13)
+    np.testing.assert_allclose(target.input / d, want[n:] / d, rtol=1e-12, atol=1e-13)
+
+
+@pytest.mark.parametrize("scale", [1e6, 1e9, 1e-9])
+@pytest.mark.parametrize("which", [0, 1, 2])
+def test_with_a_disturbance_the_limited_target_is_the_same_in_any_input_unit(scale, which):
+    # As above with the disturbance estimate: the base P0 d of the steady states is taken in the
+    # moderate units too.  Reference: _kkt's system with the disturbance on its right-hand side.
+    dd, b, s, low, high, ut = _scaled(scale, which)
+    problem = target_problem(A, b, C, disturbance_input=BD, disturbance_output=DZ, input_weight=s)
+    target = ReachableTargetProblem(problem, input_min=low, input_max=high).solve(R, DIST, ut)
+    n, m = B.shape
+    e = np.vstack([np.hstack([np.eye(n) - A, -B]), np.hstack([C, np.zeros((2, m))]), np.eye(n + m)[[n + 2]]])
+    h = np.zeros((n + m, n + m))
+    h[n:, n:] = S
+    kkt = np.block([[h, e.T], [e, np.zeros((e.shape[0], e.shape[0]))]])
+    rhs = np.concatenate([np.zeros(n), S @ UT, BD @ DIST, R - DZ @ DIST, [LOW[2]]])
+    sol = np.linalg.solve(kkt, rhs)
+    assert sol[-1] < 0.0  # the lower limit pushes (as in test_the_hand_reference_is_the_limited_target)
+    assert target.status == "optimal" and target.reachable and target.input_at_min[2]
+    np.testing.assert_allclose(target.state, sol[:n], rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(target.input / dd, sol[n : n + m], rtol=1e-9, atol=1e-12)

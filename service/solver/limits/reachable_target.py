@@ -36,17 +36,21 @@ the target (in the request's units an input in units 1e9 times smaller had made 
 their iteration limit or put the target off by more than its size).  The least norm is the
 unconstrained target's own: with an input weight ``|[x_s; v_s]|``, in the same moderate units as
 :func:`service.solver.estimation.target.target_problem`'s maps; without one ``|[x_s; u_s]|`` in
-the request's units, solved in their basis ``N`` from the fit's minimizer.  So the target is the
-same on both sides of the switch between the unconstrained maps and the QPs, and it moves
-continuously as a limit starts to bind.
+the request's units, solved in their basis ``N`` (:attr:`TargetProblem.null_space`), its level
+``V1' c = Sigma1^-1 U1' W F ([x_s; u_s] - P0 d)`` (``W F N = U1 Sigma1 V1'``) read off the fit's
+minimizer's outputs.  So the target is the same on both sides of the switch between the
+unconstrained maps and the QPs, and it moves continuously as a limit starts to bind.
 
-Scale.  Each QP is posed with its Hessian divided by its 2-norm, its variable ``c`` divided by
-the size ``sigma`` of the unconstrained target (``max(|x_s|, |u_s|, |u_s clipped into the
-limits|)``, infinity norms, in the QP's units) and each limit row ``J_i N`` divided by its norm:
-DAQP's tolerances are absolute, so the tolerance on input ``i``'s limit becomes
-``tolerance * sigma * |J_i N|``, relative to the size the target gives that input.  (With the
-states and outputs in units 1e6 times smaller the unscaled QPs had come back "optimal" with the
-outputs 10 % off a reachable setpoint.)
+Scale.  DAQP's tolerances are absolute, so the QPs in the moderate units are posed at the
+target's size: each Hessian divided by its 2-norm, the variable ``c`` divided by the size
+``sigma`` of the unconstrained target (``max(|x_s|, |v_s|, |v_s clipped into the limits|)``,
+infinity norms) and each limit row ``J_i N`` divided by its norm.  The tolerance on input ``i``'s
+limit so becomes ``tolerance * sigma * |J_i N|``, relative to the size the target can give that
+input.  (Posed as they come, with the states and outputs in units 1e6 times smaller the QPs had
+come back "optimal" with the outputs 10 % off a reachable setpoint.)  The least-norm stage
+without an input weight, in the request's units, keeps its identity Hessian, its rows as they
+are and the tolerance absolute in those units: posed at the target's size it lost digits (1e-7
+of the target with the states 1e9 times larger than the inputs).
 
 Only the limits' row bounds change with ``(r, d, u_t)``: every workspace is set up once.
 """
@@ -66,8 +70,9 @@ from service.solver.estimation.target import REACHABLE_TOLERANCE, TargetProblem,
 __all__ = ["TARGET_TOLERANCE", "ReachableTarget", "ReachableTargetProblem", "reachable_target"]
 
 #: Tolerance on the input limits of the target, relative to the target's size (the module's
-#: notes, "Scale"): input ``i`` may pass its limit by ``TARGET_TOLERANCE * sigma * |J_i N|``, in
-#: the moderate input units ``v`` (``u = T v``), so its meaning does not change with the units.
+#: notes, "Scale"): input ``i`` may pass its limit by ``TARGET_TOLERANCE * sigma * |J_i N|`` in
+#: the moderate input units ``v`` (``u = T v``), so its meaning does not change with the units
+#: (the least-norm stage without an input weight: by ``TARGET_TOLERANCE`` in the request's units).
 TARGET_TOLERANCE = 1e-10
 # DAQP's constraint-state value of an equality (its documentation, "sense").
 _EQUALITY = 5
@@ -210,12 +215,15 @@ class ReachableTargetProblem:
                 problem.particular,
             )
             seen = root @ fit @ problem.null_space
-            _, sv3, vt3 = scipy.linalg.svd(seen, full_matrices=True)
+            u3, sv3, vt3 = scipy.linalg.svd(seen, full_matrices=True)
             kept = int(np.count_nonzero(sv3 > max(seen.shape) * np.finfo(float).eps * sv3.max(initial=0.0)))
             self._levels = vt3[:kept].T
+            # V1' c from the fitted outputs alone (W F N = U1 Sigma1 V1'), not through u_s
+            self._level_map = (u3[:, :kept] / sv3[:kept]).T @ root @ fit  # (rank, n+m)
         levels, k_norm = self._levels.shape[1], self._norm_null.shape[1]
         if levels < k_norm:
-            self._norm_reach = _row_norms(self._norm_null[n:])
+            # rows of norm 1 in the moderate units; as they are in the request's (notes, "Scale")
+            self._norm_reach = _row_norms(self._norm_null[n:]) if weighted else np.ones(m)
             norm_rows = (self._norm_null[n:] / self._norm_reach[:, None])[self._limited]
             rows = np.ascontiguousarray(np.vstack([self._levels.T, norm_rows]))
             self._norm_sense = np.concatenate([np.full(levels, _EQUALITY), np.zeros(self._limited.size)]).astype(
@@ -254,7 +262,7 @@ class ReachableTargetProblem:
         free = steady_state_target(problem, r, d, ut)
         free_v = free.input / t
         # The target's size in the moderate units: the QPs are solved in c / size, so their
-        # tolerances are relative to it (absolute ones meant nothing for a target of size 1e6).
+        # tolerances are relative to it (the module's notes, "Scale").
         size = _size(free.state, free_v, self._low_v, self._high_v)
         if self._fit_model is None or self._inside(free_v, size * self._reach):
             return self._target(np.concatenate([free.state, free.input]), r, d, True, "unconstrained", size)
@@ -284,11 +292,12 @@ class ReachableTargetProblem:
         xu = np.concatenate([xv[:n], t * xv[n:]])  # the fit's (and inputs') minimizer, [x_s; u_s]
         if self._norm_model is not None:
             ts = self._norm_scales
-            # its c (P0 d orthogonal to N), in the least norm's units and divided by their size
-            norm_size = size if ts is t else _size(free.state, free.input, self._low, self._high)
-            start = self._norm_null.T @ np.concatenate([xu[:n], xu[n:] / ts]) / norm_size
+            norm_size = size if ts is t else 1.0  # the module's notes, "Scale"
             base = self._norm_particular @ d
-            level = self._levels.T @ start
+            if ts is t:
+                level = self._levels.T @ c  # the same basis: V' c, divided by the same size
+            else:
+                level = self._level_map @ (xu - base)  # from the fitted outputs (x_s only)
             limited, reach = self._limited, norm_size * self._norm_reach[self._limited]
             c2, _ = _run(
                 self._norm_model,
