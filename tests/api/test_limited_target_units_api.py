@@ -75,8 +75,8 @@ def _held_target():
 
 @pytest.mark.parametrize("f", [1e6, 1e9])
 def test_a_boil_up_in_g_or_mg_per_h_gives_the_run_of_the_boil_up_in_t_per_h(client, f):
-    # Found in a review: in mg/h the target QP under the preheat's limit failed and the run
-    # moved the inputs by up to 1.3 (t/h, %) away from the run in t/h.
+    # Found in a review: in mg/h the run under the preheat's limit (its target QPs in the
+    # request's units) moved the inputs by up to 1.3 (t/h, %) away from the run in t/h.
     first, _ = _request(1.0)
     other, d = _request(f)
     runs = []

@@ -188,7 +188,8 @@ def test_the_limited_target_is_the_same_with_the_states_and_outputs_in_tiny_unit
     # States and outputs in units `scale` times smaller (x' = f x, z' = f z: B' = f B, C' = C,
     # Q' = Q / f^2, r' = f r; the same problem).  Found in a review: the target QPs were posed with
     # Hessians of size 1/f^2 and answers of size f against the solver's absolute tolerances, and
-    # came back "optimal" with the outputs 10 % off a reachable setpoint and the valves 0.19 off.
+    # came back "optimal" with the outputs at (1.12, -0.84) for the reachable setpoint (1, -0.5)
+    # and the valves 0.26 off.
     # References: _kkt in the first units (with S), the bounded least squares on the steady-state
     # gain (scipy.optimize.lsq_linear, "bvls"; without S, three outputs for a unique target).
     c = C if weighted else np.vstack([C, [0.0, 0.0, 1.0]])

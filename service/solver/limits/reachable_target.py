@@ -47,7 +47,7 @@ target's size: each Hessian divided by its 2-norm, the variable ``c`` divided by
 infinity norms) and each limit row ``J_i N`` divided by its norm.  The tolerance on input ``i``'s
 limit so becomes ``tolerance * sigma * |J_i N|``, relative to the size the target can give that
 input.  (Posed as they come, with the states and outputs in units 1e6 times smaller the QPs had
-come back "optimal" with the outputs 10 % off a reachable setpoint.)  The least-norm stage
+come back "optimal" with the outputs at (1.12, -0.84) for the reachable setpoint (1, -0.5).)  The least-norm stage
 without an input weight, in the request's units, keeps its identity Hessian, its rows as they
 are and the tolerance absolute in those units: posed at the target's size it lost digits (1e-7
 of the target with the states 1e9 times larger than the inputs).
