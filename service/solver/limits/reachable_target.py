@@ -44,13 +44,14 @@ unconstrained maps and the QPs, and it moves continuously as a limit starts to b
 Scale.  DAQP's tolerances are absolute, so the QPs in the moderate units are posed at the
 target's size: each Hessian divided by its 2-norm, the variable ``c`` divided by the size
 ``sigma`` of the unconstrained target (``max(|x_s|, |v_s|, |v_s clipped into the limits|)``,
-infinity norms) and each limit row ``J_i N`` divided by its norm.  The tolerance on input ``i``'s
-limit so becomes ``tolerance * sigma * |J_i N|``, relative to the size the target can give that
-input.  (Posed as they come, with the states and outputs in units 1e6 times smaller the QPs had
-come back "optimal" with the outputs at (1.12, -0.84) for the reachable setpoint (1, -0.5).)  The least-norm stage
-without an input weight, in the request's units, keeps its identity Hessian, its rows as they
-are and the tolerance absolute in those units: posed at the target's size it lost digits (1e-7
-of the target with the states 1e9 times larger than the inputs).
+infinity norms) and each limit row ``J_i N`` divided by its norm.  The tolerance on input
+``i``'s limit so becomes ``tolerance * sigma * |J_i N|``, relative to the size the target can
+give that input.  (Posed as they came, with the states and outputs in units 1e6 times smaller,
+the QPs had come back "optimal" with the outputs at (1.12, -0.84) for the reachable setpoint
+(1, -0.5).)  The least-norm stage without an input weight, in the request's units, keeps its
+identity Hessian, its rows as they are and the tolerance absolute in those units: posed at
+the target's size it lost digits (1e-7 of the target with the states 1e9 times larger than
+the inputs).
 
 Only the limits' row bounds change with ``(r, d, u_t)``: every workspace is set up once.
 """
