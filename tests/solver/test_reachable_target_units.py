@@ -278,3 +278,52 @@ def test_with_a_disturbance_the_limited_target_is_the_same_in_any_input_unit(sca
     assert target.status == "optimal" and target.reachable and target.input_at_min[2]
     np.testing.assert_allclose(target.state, sol[:n], rtol=1e-9, atol=1e-12)
     np.testing.assert_allclose(target.input / dd, sol[n : n + m], rtol=1e-9, atol=1e-12)
+
+
+def _state_scaled(f, j):
+    """The same plant with state ``j`` in units ``f`` times smaller (``x' = D x``, ``D = diag(..f..)``):
+    ``(D, A', B', C')`` with ``A' = D A D^-1``, ``B' = D B``, ``C' = C D^-1`` (change of state
+    coordinates; textbook)."""
+    d = np.ones(3)
+    d[j] = f
+    return d, A * d[:, None] / d[None, :], B * d[:, None], C / d[None, :]
+
+
+@pytest.mark.parametrize("f", [1e-9, 1e6, 1e9, 1e12])
+@pytest.mark.parametrize("j", [0, 1, 2])
+def test_a_state_in_other_units_changes_neither_target_nor_verdict(f, j):
+    # States are the model's own business: a realization in other state units is the same plant,
+    # so (x_s / D, u_s) and the reachable verdict must not move.  Reference: the hand KKT target
+    # in the first units.  On the request's states the maps had lost 1e-9 of the target with a
+    # state 1e9 apart (the setpoint then called out of reach), 4e-6 with 1e12.
+    want, _ = _kkt(A, B, C, S, R, UT, [])
+    d, a, b, c = _state_scaled(f, j)
+    free = steady_state_target(target_problem(a, b, c, input_weight=S), R, None, UT)
+    assert free.reachable
+    np.testing.assert_allclose(free.state / d, want[:3], rtol=0, atol=1e-12)
+    np.testing.assert_allclose(free.input, want[3:], rtol=0, atol=1e-12)
+    # under the binding limit: the third valve held at -0.25, the target by hand
+    held, mult = _kkt(A, B, C, S, R, UT, [(2, LOW[2])])
+    assert mult[-1] < 0  # a lower bound that pushes up (the sign convention of _kkt): the active set is right
+    limited = ReachableTargetProblem(target_problem(a, b, c, input_weight=S), input_min=LOW, input_max=HIGH)
+    got = limited.solve(R, None, UT)
+    assert got.status == "optimal" and got.reachable
+    np.testing.assert_allclose(got.state / d, held[:3], rtol=0, atol=1e-10)
+    np.testing.assert_allclose(got.input, held[3:], rtol=0, atol=1e-10)
+
+
+@pytest.mark.parametrize("f", [1e-9, 1e9])
+def test_a_state_in_other_units_without_an_input_weight_keeps_the_square_target(f):
+    # Two of the valves for two outputs (no ties, no input weight): the target is unique, so it
+    # must be the same in any state units.  Reference: scipy.optimize.lsq_linear (bvls) on the
+    # steady-state gain C (I - A)^-1 B under the limits, in the first units.
+    sq = B[:, :2]
+    gain = C @ np.linalg.solve(np.eye(3) - A, sq)
+    low, high = np.array([-0.3, -0.3]), np.array([0.3, 0.3])
+    far = 3.0 * R
+    ref = scipy.optimize.lsq_linear(gain, far, bounds=(low, high), method="bvls", tol=1e-14)
+    d, a, b, c = _state_scaled(f, 1)
+    got = ReachableTargetProblem(target_problem(a, b[:, :2], c), input_min=low, input_max=high).solve(far)
+    np.testing.assert_allclose(got.input, ref.x, atol=1e-9)
+    np.testing.assert_allclose(got.output, gain @ ref.x, atol=1e-9)
+    assert not got.reachable

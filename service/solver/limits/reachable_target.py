@@ -142,6 +142,10 @@ class ReachableTargetProblem:
         input_max: ArrayLike,
         tolerance: float = TARGET_TOLERANCE,
     ) -> None:
+        # Solved in the balanced states the target maps were solved in (x = D x_b), so a change
+        # of a state's unit changes nothing; only the answer's states are given back in x.
+        self._state_scales = problem.state_scales
+        problem = problem.balanced()
         n, m = problem.state_size, problem.b.shape[1]
         low = np.array(input_min, dtype=float).reshape(m)
         high = np.array(input_max, dtype=float).reshape(m)
@@ -333,7 +337,7 @@ class ReachableTargetProblem:
         scale = max(1.0, float(np.abs(r).max(initial=0.0)), float(np.abs(d).max(initial=0.0)))
         gap = self._tolerance * size * self._reach  # in the moderate units
         return ReachableTarget(
-            state=xu[:n].copy(),
+            state=xu[:n] * self._state_scales,
             input=u,
             output=output,
             offset=offset,
