@@ -40,6 +40,9 @@ __all__ = ["run_sweep", "simulate_request", "substituted_request"]
 T = TypeVar("T")
 
 
+WEIGHT_FIELDS = {"move_weight": "move", "output_weight": "output", "input_weight": "input"}
+
+
 def _weight(
     weight: list[float] | list[list[float]], signal: int | None, value: float, size: int
 ) -> list[float] | list[list[float]]:
@@ -54,12 +57,26 @@ def _weight(
     return diagonal
 
 
+def _base_weight(design: DesignRequest, field: str) -> list[float] | list[list[float]]:
+    """The base request's weight ``field``; an absent input weight is zero on every input.
+
+    ``weights.input`` absent and all zero mean the same (no input targets), so a sweep of one
+    input's weight on such a base keeps the other inputs at 0.  The number of inputs is that
+    of the move weight, one per manipulated variable (the base request is checked before).
+    """
+    weight: list[float] | list[list[float]] | None = getattr(design.weights, field)
+    if weight is None:
+        return [0.0] * len(design.weights.move)
+    return weight
+
+
 def substituted_request(request: SweepRequest, value: float) -> DesignRequest:
     """The base design request with the swept parameter set to ``value``.
 
-    A weight sweep sets one diagonal entry (``signal``) or every signal's weight (a diagonal);
-    a horizon sweep sets the horizon (with move blocking, steps beyond a swept control horizon
-    are dropped).
+    A weight sweep sets one diagonal entry (``signal``; a full matrix keeps its other entries)
+    or every signal's weight (a diagonal); an absent ``weights.input`` is taken as zero on
+    every input.  A horizon sweep sets the horizon (with move blocking, steps beyond a swept
+    control horizon are dropped).
     """
     base = request.design
     if request.parameter in HORIZON_PARAMETERS:
@@ -68,8 +85,8 @@ def substituted_request(request: SweepRequest, value: float) -> DesignRequest:
         if request.parameter == "control" and steps is not None:
             update["move_steps"] = [j for j in steps if j < int(value)] or [0]
         return base.model_copy(update={"horizons": base.horizons.model_copy(update=update)})
-    field = "move" if request.parameter == "move_weight" else "output"
-    weight = getattr(base.weights, field)
+    field = WEIGHT_FIELDS[request.parameter]
+    weight = _base_weight(base, field)
     updated = _weight(weight, request.signal, float(value), len(weight))
     return base.model_copy(update={"weights": base.weights.model_copy(update={field: updated})})
 
@@ -77,14 +94,15 @@ def substituted_request(request: SweepRequest, value: float) -> DesignRequest:
 def _signal_problem(request: SweepRequest) -> list[FieldProblem]:
     if request.signal is None:
         return []
-    field = "move" if request.parameter == "move_weight" else "output"
-    size = len(getattr(request.design.weights, field))
+    field = WEIGHT_FIELDS[request.parameter]
+    size = len(_base_weight(request.design, field))
     if request.signal >= size:
-        return [
-            FieldProblem(
-                pointer("signal"), f"signal {request.signal} does not exist: the {field} weight has {size} entries"
-            )
-        ]
+        has = (
+            f"the plant has {size} manipulated variables"
+            if field == "input" and request.design.weights.input is None
+            else f"the {field} weight has {size} entries"
+        )
+        return [FieldProblem(pointer("signal"), f"signal {request.signal} does not exist: {has}")]
     return []
 
 

@@ -18,7 +18,7 @@ from service.schemas.simulate import PerformanceReport, ScenarioRequest
 
 __all__ = ["SweepEntryReport", "SweepParameter", "SweepProblem", "SweepRequest", "SweepResponse"]
 
-SweepParameter = Literal["move_weight", "output_weight", "prediction", "control", "first_penalized"]
+SweepParameter = Literal["move_weight", "output_weight", "input_weight", "prediction", "control", "first_penalized"]
 HORIZON_PARAMETERS = frozenset({"prediction", "control", "first_penalized"})
 
 
@@ -27,13 +27,21 @@ class SweepRequest(RequestModel):
 
     design: DesignRequest = Field(description="The base design request; every entry changes only the swept parameter.")
     parameter: SweepParameter = Field(
-        description="'move_weight' or 'output_weight' (of one signal, or of all), or a horizon: "
-        "'prediction', 'control' or 'first_penalized'."
+        description="'move_weight', 'output_weight' or 'input_weight' (weights.move, weights.output, "
+        "weights.input; of one signal, or of all), or a horizon: 'prediction', 'control' or 'first_penalized'. "
+        "A base request without weights.input has an input weight of zero on every input (none): "
+        "'input_weight' of one signal then sets that input's weight to the value and every other "
+        "input's to 0, and of every input a diagonal of the value. A value of 0 switches that input's "
+        "target off (of every input: all of them, as in /design); with weights.terminal 'riccati' an entry "
+        "that leaves spare inputs without an input weight fails as /design refuses it (at "
+        "/design/weights/terminal)."
     )
     signal: Annotated[int, Field(strict=True, ge=0)] | None = Field(
         default=None,
-        description="For a weight: the 0-based index of the signal whose (diagonal) weight is swept; "
-        "null sets every signal's weight to the value. Not allowed when sweeping a horizon.",
+        description="For a weight: the 0-based index of the signal (output for 'output_weight', "
+        "manipulated variable otherwise) whose diagonal weight is swept; a full-matrix weight keeps "
+        "its other entries. null sets every signal's weight to the value (a diagonal). Not allowed "
+        "when sweeping a horizon.",
     )
     values: Annotated[list[FiniteFloat], Field(min_length=1)] = Field(
         description="The values to try, in order: weights >= 0, horizons whole numbers >= 1 (a 422 at "

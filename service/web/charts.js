@@ -366,6 +366,8 @@ export function chosenValue(request) {
   };
   if (parameter === "move_weight") return weight(design.weights?.move);
   if (parameter === "output_weight") return weight(design.weights?.output);
+  // no weights.input is a zero input weight on every input (the sweep's own reading of it)
+  if (parameter === "input_weight") return design.weights?.input == null ? 0 : weight(design.weights.input);
   if (parameter) return design.horizons?.[parameter];
   return undefined;
 }

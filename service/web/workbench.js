@@ -653,7 +653,7 @@ function renderResponses(answer, request) {
 function renderSweep(answer, request) {
   show("sweep", true);
   const { chosen, isChosen } = drawSweep($("sweep-charts"), answer, request);
-  const weight = answer.parameter === "move_weight" || answer.parameter === "output_weight";
+  const weight = ["move_weight", "output_weight", "input_weight"].includes(answer.parameter);
   const which = !weight ? "" : request.signal === null || request.signal === undefined ? " of every signal" : ` of signal ${request.signal}`;
   $("sweep-text").textContent = `${answer.parameter}${which} at ${answer.entries?.length ?? 0} values`
     + (chosen !== undefined ? `; the base request's value ${chosen} is starred.` : ".");

@@ -448,6 +448,32 @@ def test_sweep_and_batch_entries_equal_separate_designs(client):
     assert [i["status"] for i in again["items"]] == ["unchanged", "unchanged"]
 
 
+def test_an_input_weight_sweep_of_the_circulation_flow_equals_separate_runs(client):
+    # the spare input's input weight swept with the scenario: each entry is the /simulate run of
+    # the request with that weight written in; switched off (0) the spare direction is free, as
+    # /design says, and as it grows the flow settles nearer its target (common practice: the
+    # input target's pull trades against the other inputs' targets in the steady state)
+    values = [0.0, 1e-7, 1e-6, 1e-5]
+    run = _simulation(steps=300)
+    scenario = run.pop("scenario")
+    swept = client.post(
+        "/design/sweep",
+        json={"design": run, "parameter": "input_weight", "signal": 1, "values": values, "scenario": scenario},
+    ).json()
+    settled = []
+    for entry, value in zip(swept["entries"], values, strict=True):
+        alone = _simulation(steps=300)
+        alone["weights"]["input"][1] = value
+        answer = client.post("/simulate", json=alone).json()
+        assert entry["status"] == "designed" and entry["fingerprint"] == answer["design"]["fingerprint"]
+        assert entry["performance"] == answer["performance"]
+        assert entry["warnings"] == answer["design"]["warnings"]
+        settled.append(answer["inputs"][-1][1])
+    assert "free_input_direction" in [w["code"] for w in swept["entries"][0]["warnings"]]
+    gaps = [abs(u - TARGETS[1]) for u in settled]
+    assert gaps == sorted(gaps, reverse=True) and gaps[-1] < 1e-3 * TARGETS[1] < gaps[0]
+
+
 def test_the_change_review_reports_the_gains_both_designs_give(client):
     proposed = _design()
     proposed["model"] = _model(GAIN_ERROR)
