@@ -363,8 +363,8 @@ def balanced_condition_number(gain: ArrayLike) -> float:
     logarithms' row and column effects removed by least squares, then max-norm
     equilibration): a change of units of any input or output leaves it unchanged up to
     rounding, and it lies at or a little above the minimized condition number over all
-    diagonal scalings, the unit-free measure of how hard a plant is to control (common
-    practice).
+    diagonal scalings, the unit-free measure of how hard a plant is to control (S. Skogestad
+    and I. Postlethwaite, *Multivariable Feedback Control*, 2nd ed., 2005, sec. 3.3.4).
     """
     g = np.asarray(gain, dtype=float)
     rows, columns = unit_free_scaling(g)
