@@ -7,7 +7,7 @@ JSON pointer; the solver sees only clean arrays.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from numpy.typing import NDArray
@@ -32,7 +32,13 @@ from service.schemas.identify import (
 from service.schemas.model import TransferElementModel, TransferMatrixModel
 from service.schemas.signals import OperatingPoint, SignalTag
 from service.solver.identification.data import hold_missing, resample_held, resample_interpolated, sample_grid
-from service.solver.identification.diagnostics import Correlation, find_outliers, fit_measures, residual_correlations
+from service.solver.identification.diagnostics import (
+    Correlation,
+    find_outliers,
+    fit_measures,
+    outliers_of_fit,
+    residual_correlations,
+)
 from service.solver.identification.least_squares import OutputFit, PairSpec, fit_output
 from service.solver.identification.process_models import STRUCTURES, element_of, step_values
 from service.solver.identification.subspace import SubspaceModel, moesp
@@ -100,6 +106,9 @@ class IdentifyInputs:
     block_rows: int
     outputs_data: NDArray[np.float64]
     """``(N, p)``, ``nan`` where missing or an outlier."""
+    outputs_measured: NDArray[np.float64]
+    """``(N, p)``, ``nan`` where missing only (the outliers' own values kept)."""
+    outlier_limit: float | None
     pairs: tuple[tuple[PairSpec, ...], ...]
     """Per output, the pairs to fit."""
     integrating: tuple[bool, ...]
@@ -123,6 +132,8 @@ class IdentifyOutcome:
     fits: tuple[OutputFit, ...]
     warnings: tuple[WarningReport, ...] = field(default=())
     subspace: SubspaceModel | None = None
+    checked: IdentifyInputs | None = None
+    """The inputs with the outliers as the fitted models judged them (None: as checked)."""
 
 
 def identify_work(samples: int, parameters: int) -> int:
@@ -229,6 +240,27 @@ def _columns(
     return out, how, []
 
 
+def _output_note(
+    tag: str, missing: NDArray[np.int64], outliers: NDArray[np.int64], limit: float | None, *, judged: bool = False
+) -> tuple[ColumnNote, WarningReport | None]:
+    """What was found in an output's column and done with it, and its ``samples_left_out`` warning
+    (``judged``: the outliers were confirmed on the fitted model's residuals)."""
+    parts = []
+    if missing.size:
+        parts.append(f"{missing.size} missing")
+    if outliers.size:
+        parts.append(
+            f"{outliers.size} outliers (beyond {limit:g} robust standard deviations from the running median"
+            + (" and from the fitted model)" if judged else ")")
+        )
+    note = ColumnNote(tag, missing, outliers, "left out of the fit" if parts else "none needed")
+    if not parts:
+        return note, None
+    return note, WarningReport(
+        code="samples_left_out", message=f"{tag}: {' and '.join(parts)} samples left out of the fit"
+    )
+
+
 def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
     """Check the request against itself and the caps; clean the data and say how.
 
@@ -294,6 +326,7 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
             still.add(tag)
     operating_point = columns[0].copy()
     outputs = np.zeros((n, len(request.outputs)))
+    measured = np.zeros_like(outputs)
     for i, tag in enumerate(request.outputs):
         values = data[tag].copy()
         missing = np.nonzero(~np.isfinite(values))[0]
@@ -311,21 +344,14 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
             if request.outlier_limit is not None
             else np.zeros(0, dtype=np.int64)
         )
+        measured[:, i] = values
+        values = values.copy()
         values[outliers] = np.nan
         outputs[:, i] = values
-        parts = []
-        if missing.size:
-            parts.append(f"{missing.size} missing")
-        if outliers.size:
-            parts.append(f"{outliers.size} outliers (beyond {request.outlier_limit:g} robust standard deviations)")
-        handling = "left out of the fit" if parts else "none needed"
-        notes.append(ColumnNote(tag, missing, outliers, handling))
-        if parts:
-            warnings.append(
-                WarningReport(
-                    code="samples_left_out", message=f"{tag}: {' and '.join(parts)} samples left out of the fit"
-                )
-            )
+        note, warning = _output_note(tag, missing, outliers, request.outlier_limit)
+        notes.append(note)
+        if warning is not None:
+            warnings.append(warning)
     overrides = {(p.output, p.input): p.structure for p in request.pairs}
     pairs: list[tuple[PairSpec, ...]] = []
     parameters = 0
@@ -439,6 +465,8 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
         columns=columns,
         operating_point=operating_point,
         outputs_data=outputs,
+        outputs_measured=measured,
+        outlier_limit=request.outlier_limit,
         pairs=tuple(pairs),
         integrating=tuple(tag in request.integrating for tag in request.outputs),
         estimation=estimation,
@@ -535,39 +563,85 @@ def compute_identify(inputs: IdentifyInputs) -> IdentifyOutcome:
     used = np.zeros(n, dtype=bool)
     used[: inputs.estimation] = True
     fits = []
-    for i, pairs in enumerate(inputs.pairs):
+    revised = inputs
+    for i in range(len(inputs.pairs)):
         y = inputs.outputs_data[:, i]
-        fit: OutputFit | None = None
-        try:
-            with np.errstate(all="ignore"):
-                fit = fit_output(
-                    y,
-                    deviations,
-                    pairs,
-                    sample_time=inputs.sample_time,
-                    used=used & np.isfinite(y),
-                    max_dead_time=inputs.max_dead_time,
-                    settling_samples=inputs.settling_samples,
-                    integrating=inputs.integrating[i],
-                    detrend=inputs.detrend,
-                )
-        except (ValueError, np.linalg.LinAlgError, FloatingPointError, AssertionError):
-            # the reason in the trade's words: the library's ("array must not contain infs or
-            # NaNs") or an assertion's text would name the code, not the data
-            fit, finite = None, False
-            reason = "its numbers left double precision on the way"
-        else:
-            finite = bool(all(np.all(np.isfinite(t)) for t in fit.parameters) and np.all(np.isfinite(fit.fitted)))
-            reason = "the fitted parameters are not finite"
-        if fit is None or not finite:
-            raise NumericalError(
-                f"The fit of {inputs.outputs[i]} failed ({reason}): the data or the sample time overflow double "
-                f"precision, or the pairs cannot be told apart. Check the units and the magnitudes of the columns "
-                f"and of sample_time",
-                field=("data", inputs.outputs[i]),
+        fit = _fit_one(inputs, i, y, deviations, used)
+        note = inputs.notes[len(inputs.inputs) + len(inputs.disturbances) + i]
+        if note.outliers.size and inputs.outlier_limit is not None:
+            # a running median calls the plant's own sharp turns outliers too: keep out only the
+            # samples the fitted model does not explain either, and fit again without the others
+            measured = inputs.outputs_measured[:, i]
+            kept = outliers_of_fit(
+                measured, fit.fitted, used & np.isfinite(y), note.outliers, limit=inputs.outlier_limit
             )
+            if kept.size < note.outliers.size:
+                y = measured.copy()
+                y[kept] = np.nan
+                fit = _fit_one(inputs, i, y, deviations, used)
+            revised = _with_outliers(revised, i, y, kept)
         fits.append(fit)
-    return IdentifyOutcome(fits=tuple(fits))
+    return IdentifyOutcome(fits=tuple(fits), checked=revised if revised is not inputs else None)
+
+
+def _with_outliers(
+    inputs: IdentifyInputs, i: int, y: NDArray[np.float64], outliers: NDArray[np.int64]
+) -> IdentifyInputs:
+    """``inputs`` with output ``i``'s samples ``y`` and its outliers as the fitted model judged them."""
+    at = len(inputs.inputs) + len(inputs.disturbances) + i
+    old = inputs.notes[at]
+    _, old_warning = _output_note(old.tag, old.missing, old.outliers, inputs.outlier_limit)
+    note, warning = _output_note(old.tag, old.missing, outliers, inputs.outlier_limit, judged=True)
+    warnings = list(inputs.warnings)
+    assert old_warning is not None  # an outlier was found, so the check warned of it
+    at_warning = warnings.index(old_warning)
+    warnings[at_warning : at_warning + 1] = [warning] if warning is not None else []
+    data = inputs.outputs_data.copy()
+    data[:, i] = y
+    notes = list(inputs.notes)
+    notes[at] = note
+    return replace(inputs, outputs_data=data, notes=tuple(notes), warnings=tuple(warnings))
+
+
+def _fit_one(
+    inputs: IdentifyInputs,
+    i: int,
+    y: NDArray[np.float64],
+    deviations: NDArray[np.float64],
+    used: NDArray[np.bool_],
+) -> OutputFit:
+    """The fit of output ``i`` to the samples ``y`` (``nan``: left out); a failure in the trade's words."""
+    pairs = inputs.pairs[i]
+    fit: OutputFit | None = None
+    try:
+        with np.errstate(all="ignore"):
+            fit = fit_output(
+                y,
+                deviations,
+                pairs,
+                sample_time=inputs.sample_time,
+                used=used & np.isfinite(y),
+                max_dead_time=inputs.max_dead_time,
+                settling_samples=inputs.settling_samples,
+                integrating=inputs.integrating[i],
+                detrend=inputs.detrend,
+            )
+    except (ValueError, np.linalg.LinAlgError, FloatingPointError, AssertionError):
+        # the reason in the trade's words: the library's ("array must not contain infs or
+        # NaNs") or an assertion's text would name the code, not the data
+        fit, finite = None, False
+        reason = "its numbers left double precision on the way"
+    else:
+        finite = bool(all(np.all(np.isfinite(t)) for t in fit.parameters) and np.all(np.isfinite(fit.fitted)))
+        reason = "the fitted parameters are not finite"
+    if fit is None or not finite:
+        raise NumericalError(
+            f"The fit of {inputs.outputs[i]} failed ({reason}): the data or the sample time overflow double "
+            f"precision, or the pairs cannot be told apart. Check the units and the magnitudes of the columns "
+            f"and of sample_time",
+            field=("data", inputs.outputs[i]),
+        )
+    return fit
 
 
 def _number(value: float) -> float | None:
@@ -596,6 +670,7 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
         from service.pipeline.identify_subspace import subspace_response
 
         return subspace_response(inputs, outcome.subspace, data_report(inputs))
+    inputs = outcome.checked or inputs
     ts = inputs.sample_time
     column_tags = [*inputs.inputs, *inputs.disturbances]
     m = len(inputs.inputs)

@@ -98,7 +98,8 @@ class IdentifyRequest(RequestModel):
     outlier_limit: Annotated[FiniteFloat, Field(ge=3)] | None = Field(
         default=6.0,
         description="An output sample farther than this many robust standard deviations from its running "
-        "median is an outlier: left out of the fit and reported. null: no outlier check.",
+        "median, and from the fitted model's output (the model fitted without it), is an outlier: left out of "
+        "the fit and reported (the subspace fit judges on the running median only). null: no outlier check.",
     )
     validation: ValidationRequest | None = Field(default=None, description="Report the fit on a held-out segment.")
     correlation_lags: Annotated[int, Field(ge=1, le=200)] = Field(

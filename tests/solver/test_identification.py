@@ -8,7 +8,12 @@ import scipy.optimize
 import scipy.signal
 
 from service.solver.identification.data import hold_missing, resample_held, resample_interpolated, sample_grid
-from service.solver.identification.diagnostics import find_outliers, fit_measures, residual_correlations
+from service.solver.identification.diagnostics import (
+    find_outliers,
+    fit_measures,
+    outliers_of_fit,
+    residual_correlations,
+)
 from service.solver.identification.least_squares import PairSpec, fit_output, model_output
 from service.solver.identification.process_models import pair_response
 from service.solver.models.transfer import TransferElement, transfer_matrix_model
@@ -384,3 +389,23 @@ def test_resampling_with_absolute_time_stamps() -> None:
     np.testing.assert_allclose(
         resample_interpolated(time, values, between, sample_time=1.0), 2.0 * np.arange(20.0) + 0.5
     )
+
+
+def test_outliers_of_fit_keep_only_what_the_model_does_not_explain() -> None:
+    """The residual-based Hampel test written out by hand: the residuals' median and 1.4826 times
+    their median absolute deviation over the fitted samples (numpy), a candidate kept when it lies
+    farther than the limit from that median."""
+    rng = np.random.default_rng(2)
+    fitted = np.linspace(0.0, 10.0, 200)
+    y = fitted + rng.normal(scale=0.1, size=200)
+    candidates = np.array([20, 90, 150])
+    y[90] += 3.0  # a spike the model does not explain; 20 and 150 are the plant's own samples
+    used = np.ones(200, dtype=bool)
+    used[candidates] = False
+    r = (y - fitted)[used]
+    scale = 1.4826 * np.median(np.abs(r - np.median(r)))
+    want = [k for k in candidates if abs(y[k] - fitted[k] - np.median(r)) > 6.0 * scale]
+    assert want == [90]
+    assert outliers_of_fit(y, fitted, used, candidates, limit=6.0).tolist() == want
+    exact = fitted.copy()  # a fit exact to rounding calls none of its samples an outlier
+    assert outliers_of_fit(exact + 1e-15, exact, used, candidates, limit=6.0).size == 0

@@ -29,7 +29,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-__all__ = ["Correlation", "find_outliers", "fit_measures", "residual_correlations"]
+__all__ = ["Correlation", "find_outliers", "fit_measures", "outliers_of_fit", "residual_correlations"]
 
 Array = NDArray[np.float64]
 
@@ -103,6 +103,52 @@ def find_outliers(y: Array, *, limit: float, window: int = 7) -> NDArray[np.bool
         scale = np.maximum(scale, np.median(around, axis=1))
     out[np.nonzero(finite)[0]] = np.abs(deviation) > limit * scale
     return out
+
+
+def outliers_of_fit(
+    y: Array, fitted: Array, used: NDArray[np.bool_], candidates: NDArray[np.int64], *, limit: float
+) -> NDArray[np.int64]:
+    """The candidates (of :func:`find_outliers`) that the fitted model does not explain either.
+
+    Parameters
+    ----------
+    y : ndarray, shape (N,)
+        The output as measured, candidates' values included (``nan`` where missing).
+    fitted : ndarray, shape (N,)
+        The model's output, fitted without the candidates.
+    used : ndarray of bool, shape (N,)
+        Samples of that fit (the candidates are not among them).
+    candidates : ndarray of int, shape (C,)
+    limit : float, keyword-only
+        In robust standard deviations, as for :func:`find_outliers`.
+
+    Returns
+    -------
+    ndarray of int, shape (<= C,)
+        The candidates whose residual ``y - fitted`` lies farther than ``limit`` robust standard
+        deviations (1.4826 times the median absolute deviation of the residuals over ``used``) from
+        the residuals' median.
+
+    Notes
+    -----
+    A running median cannot tell a spike from the plant's own sharp turn (a fast response to a
+    short move of its input); the fitted model can: a sample it explains as well as the others is
+    no outlier.  This is the residual-based outlier test of robust regression (Hampel's identifier
+    applied to the residuals of the fit instead of to the signal; Pearson 2002, section III).  The
+    scale has a floor of ``1e-9`` of the output's spread, so a fit that is exact to rounding does not
+    call its own rounding an outlier.
+    """
+    residual = y - fitted
+    r = residual[used & np.isfinite(residual)]
+    if r.size == 0 or candidates.size == 0:
+        return candidates.copy()
+    centre = float(np.median(r))
+    scale = 1.4826 * float(np.median(np.abs(r - centre)))
+    present = y[np.isfinite(y)]
+    scale = max(scale, 1e-9 * float(np.std(present)) if present.size else 0.0)
+    off = np.abs(residual[candidates] - centre)
+    kept: NDArray[np.int64] = candidates[~(off <= limit * scale)]
+    return kept
 
 
 def fit_measures(y: Array, fitted: Array, used: NDArray[np.bool_]) -> tuple[float, float]:
