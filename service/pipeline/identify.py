@@ -36,6 +36,7 @@ from service.solver.identification.diagnostics import (
     Correlation,
     find_outliers,
     fit_measures,
+    frozen_runs,
     outliers_of_fit,
     residual_correlations,
 )
@@ -68,6 +69,8 @@ WORK_PER_PARAMETER = 2_000
 STILL = 1e-9
 #: A gain whose standard error exceeds this share of it counts as not identified.
 WEAK_GAIN = 0.25
+#: An output reading exactly one value this many samples in a row is a candidate frozen sensor.
+FROZEN_SAMPLES = 10
 #: Inputs whose moves correlate more than this are reported.
 CORRELATED = 0.9
 #: Structures with a simpler variant of one lag fewer.
@@ -87,6 +90,8 @@ class ColumnNote:
     missing: NDArray[np.int64]
     outliers: NDArray[np.int64]
     handling: str
+    frozen: NDArray[np.int64] = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
+    """Samples of an output's stretches that read one value (a frozen sensor), left out."""
 
 
 @dataclass(frozen=True)
@@ -241,10 +246,17 @@ def _columns(
 
 
 def _output_note(
-    tag: str, missing: NDArray[np.int64], outliers: NDArray[np.int64], limit: float | None, *, judged: bool = False
+    tag: str,
+    missing: NDArray[np.int64],
+    outliers: NDArray[np.int64],
+    limit: float | None,
+    *,
+    frozen: NDArray[np.int64] | None = None,
+    judged: bool = False,
 ) -> tuple[ColumnNote, WarningReport | None]:
     """What was found in an output's column and done with it, and its ``samples_left_out`` warning
-    (``judged``: the outliers were confirmed on the fitted model's residuals)."""
+    (``judged``: the outliers and frozen stretches were confirmed on the fitted model's residuals)."""
+    frozen = np.zeros(0, dtype=np.int64) if frozen is None else frozen
     parts = []
     if missing.size:
         parts.append(f"{missing.size} missing")
@@ -253,7 +265,12 @@ def _output_note(
             f"{outliers.size} outliers (beyond {limit:g} robust standard deviations from the running median"
             + (" and from the fitted model)" if judged else ")")
         )
-    note = ColumnNote(tag, missing, outliers, "left out of the fit" if parts else "none needed")
+    if frozen.size:
+        parts.append(
+            f"{frozen.size} frozen (the same value {FROZEN_SAMPLES} or more samples in a row, from sample "
+            f"{int(frozen[0])}, where the fitted model moves: a stuck sensor or a gap filled by the historian)"
+        )
+    note = ColumnNote(tag, missing, outliers, "left out of the fit" if parts else "none needed", frozen)
     if not parts:
         return note, None
     return note, WarningReport(
@@ -347,6 +364,10 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
         measured[:, i] = values
         values = values.copy()
         values[outliers] = np.nan
+        if request.outlier_limit is not None and request.structure != "subspace":
+            # candidates only: the fit keeps out those its model does not explain
+            for start, stop in frozen_runs(measured[:, i], min_length=FROZEN_SAMPLES):
+                values[start:stop] = np.nan
         outputs[:, i] = values
         note, warning = _output_note(tag, missing, outliers, request.outlier_limit)
         notes.append(note)
@@ -568,39 +589,61 @@ def compute_identify(inputs: IdentifyInputs) -> IdentifyOutcome:
         y = inputs.outputs_data[:, i]
         fit = _fit_one(inputs, i, y, deviations, used)
         note = inputs.notes[len(inputs.inputs) + len(inputs.disturbances) + i]
-        if note.outliers.size and inputs.outlier_limit is not None:
-            # a running median calls the plant's own sharp turns outliers too: keep out only the
-            # samples the fitted model does not explain either, and fit again without the others
-            measured = inputs.outputs_measured[:, i]
-            kept = outliers_of_fit(
-                measured, fit.fitted, used & np.isfinite(y), note.outliers, limit=inputs.outlier_limit
-            )
-            if kept.size < note.outliers.size:
+        measured = inputs.outputs_measured[:, i]
+        runs = frozen_runs(measured, min_length=FROZEN_SAMPLES) if inputs.outlier_limit is not None else []
+        if note.outliers.size or runs:
+            assert inputs.outlier_limit is not None
+            # a running median calls the plant's own sharp turns outliers too, and a quiet plant
+            # measured without noise reads one value for long: keep out only the samples the fitted
+            # model does not explain either (a frozen stretch whole), and fit again without the others
+            present = used & np.isfinite(y)
+            kept = outliers_of_fit(measured, fit.fitted, present, note.outliers, limit=inputs.outlier_limit)
+            stuck = [
+                np.arange(a, b)
+                for a, b in runs
+                if outliers_of_fit(measured, fit.fitted, present, np.arange(a, b), limit=inputs.outlier_limit).size
+            ]
+            frozen = np.concatenate(stuck) if stuck else np.zeros(0, dtype=np.int64)
+            left_out = np.union1d(kept, frozen).astype(np.int64)
+            if left_out.size < int(np.sum(~np.isfinite(y) & np.isfinite(measured))):
                 y = measured.copy()
-                y[kept] = np.nan
+                y[left_out] = np.nan
                 fit = _fit_one(inputs, i, y, deviations, used)
-            revised = _with_outliers(revised, i, y, kept)
+            revised = _with_outliers(revised, i, y, kept, frozen)
         fits.append(fit)
     return IdentifyOutcome(fits=tuple(fits), checked=revised if revised is not inputs else None)
 
 
 def _with_outliers(
-    inputs: IdentifyInputs, i: int, y: NDArray[np.float64], outliers: NDArray[np.int64]
+    inputs: IdentifyInputs,
+    i: int,
+    y: NDArray[np.float64],
+    outliers: NDArray[np.int64],
+    frozen: NDArray[np.int64],
 ) -> IdentifyInputs:
-    """``inputs`` with output ``i``'s samples ``y`` and its outliers as the fitted model judged them."""
+    """``inputs`` with output ``i``'s samples ``y`` and its outliers and frozen stretches as the
+    fitted model judged them."""
     at = len(inputs.inputs) + len(inputs.disturbances) + i
     old = inputs.notes[at]
     _, old_warning = _output_note(old.tag, old.missing, old.outliers, inputs.outlier_limit)
-    note, warning = _output_note(old.tag, old.missing, outliers, inputs.outlier_limit, judged=True)
+    note, warning = _output_note(old.tag, old.missing, outliers, inputs.outlier_limit, frozen=frozen, judged=True)
     warnings = list(inputs.warnings)
-    assert old_warning is not None  # an outlier was found, so the check warned of it
-    at_warning = warnings.index(old_warning)
-    warnings[at_warning : at_warning + 1] = [warning] if warning is not None else []
+    if old_warning is not None:
+        at_warning = warnings.index(old_warning)
+        warnings[at_warning : at_warning + 1] = [warning] if warning is not None else []
+    elif warning is not None:  # frozen stretches only: after the other warnings of the data
+        warnings.insert(_after_data_warnings(warnings), warning)
     data = inputs.outputs_data.copy()
     data[:, i] = y
     notes = list(inputs.notes)
     notes[at] = note
     return replace(inputs, outputs_data=data, notes=tuple(notes), warnings=tuple(warnings))
+
+
+def _after_data_warnings(warnings: list[WarningReport]) -> int:
+    """Where the warnings about the data (missing samples, samples left out) end."""
+    data = [k for k, w in enumerate(warnings) if w.code in ("missing_samples", "samples_left_out")]
+    return data[-1] + 1 if data else 0
 
 
 def _fit_one(
@@ -853,6 +896,8 @@ def data_report(inputs: IdentifyInputs) -> DataReport:
                 tag=note.tag,
                 missing=int(note.missing.size),
                 outliers=int(note.outliers.size),
+                frozen=int(note.frozen.size),
+                first_frozen=note.frozen[:20].tolist(),
                 first_missing=note.missing[:20].tolist(),
                 first_outliers=note.outliers[:20].tolist(),
                 handling=note.handling,

@@ -140,3 +140,33 @@ def test_sharp_turns_of_a_fast_pressure_are_not_outliers_and_a_spike_still_is(cl
     # the truth within an engineer's tolerance: 2 % on the gain, half a sample on the times
     assert fitted["gain"] == pytest.approx(1.5, rel=0.02)
     assert abs(fitted["dead_time"] - 5.0) <= 0.5 and abs(fitted["time_constant"] - 0.6) <= 0.5
+
+
+def test_a_frozen_pressure_transmitter_is_left_out_and_said(client) -> None:
+    """Found in an audit: the top pressure's transmitter froze for 100 minutes mid-test (the
+    historian repeats its last value), and nothing said so: the feed's gain came out 30 % low and
+    the steam's 6.6 % low, with no warning but correlated residuals.  A stretch that reads one
+    value 10 or more samples in a row where the model fitted without it moves is left out and
+    reported as frozen; the gains then lie within 2 % of the true plant (scipy reference above)."""
+    data = step_test()
+    stuck = data["top_pressure"][799]
+    data["top_pressure"][800:900] = stuck
+    r = client.post("/identify", json=request_of(data))
+    assert r.status_code == 200, r.text
+    body = r.json()
+    fitted = parameters(body)
+    for key in [k for k in TRUE if k[0] == "top_pressure"]:
+        assert fitted[key]["gain"] == pytest.approx(TRUE[key][0], rel=0.02), key
+    (tag,) = [t for t in body["data"]["tags"] if t["tag"] == "top_pressure"]
+    # the 100 stuck samples, and the genuine one they repeat (it reads the same value)
+    assert tag["frozen"] == 101 and tag["first_frozen"][:2] == [799, 800]
+    assert any("frozen" in w["message"] and "top_pressure" in w["message"] for w in body["warnings"])
+    # the quiet start of a record without noise reads one value too, and is no frozen sensor:
+    # the model fitted without it explains it, so it is kept
+    quiet = {t: v.copy() for t, v in data.items()}
+    quiet["top_pressure"][:15] = LEVEL["top_pressure"]  # before any move reaches it (steam at 10, 5 min later)
+    quiet["top_pressure"][800:900] = np.nan
+    r = client.post("/identify", json=request_of(quiet))
+    assert r.status_code == 200, r.text
+    (tag,) = [t for t in r.json()["data"]["tags"] if t["tag"] == "top_pressure"]
+    assert tag["frozen"] == 0 and tag["missing"] == 100

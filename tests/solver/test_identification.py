@@ -11,6 +11,7 @@ from service.solver.identification.data import hold_missing, resample_held, resa
 from service.solver.identification.diagnostics import (
     find_outliers,
     fit_measures,
+    frozen_runs,
     outliers_of_fit,
     residual_correlations,
 )
@@ -409,3 +410,12 @@ def test_outliers_of_fit_keep_only_what_the_model_does_not_explain() -> None:
     assert outliers_of_fit(y, fitted, used, candidates, limit=6.0).tolist() == want
     exact = fitted.copy()  # a fit exact to rounding calls none of its samples an outlier
     assert outliers_of_fit(exact + 1e-15, exact, used, candidates, limit=6.0).size == 0
+
+
+def test_frozen_runs_are_stretches_of_one_value() -> None:
+    """Runs of exactly one value of at least the length asked, as half-open ranges; a missing
+    sample ends a run (written out by hand)."""
+    y = np.array([1.0, 2.0, 2.0, 2.0, 3.0, np.nan, 4.0, 4.0, 4.0, 4.0])
+    assert frozen_runs(y, min_length=3) == [(1, 4), (6, 10)]
+    assert frozen_runs(y, min_length=4) == [(6, 10)]
+    assert frozen_runs(np.full(5, np.nan), min_length=2) == []

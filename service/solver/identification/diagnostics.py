@@ -29,7 +29,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-__all__ = ["Correlation", "find_outliers", "fit_measures", "outliers_of_fit", "residual_correlations"]
+__all__ = ["Correlation", "find_outliers", "fit_measures", "frozen_runs", "outliers_of_fit", "residual_correlations"]
 
 Array = NDArray[np.float64]
 
@@ -103,6 +103,39 @@ def find_outliers(y: Array, *, limit: float, window: int = 7) -> NDArray[np.bool
         scale = np.maximum(scale, np.median(around, axis=1))
     out[np.nonzero(finite)[0]] = np.abs(deviation) > limit * scale
     return out
+
+
+def frozen_runs(y: Array, *, min_length: int) -> list[tuple[int, int]]:
+    """Stretches where ``y`` reads exactly the same value ``min_length`` samples or more in a row.
+
+    Parameters
+    ----------
+    y : ndarray, shape (N,)
+        ``nan`` where missing (a missing sample ends a run).
+    min_length : int, keyword-only
+
+    Returns
+    -------
+    list of (start, stop)
+        Half-open sample ranges, in order.
+
+    Notes
+    -----
+    A measurement with noise never repeats itself exactly for long; a sensor that froze, or a
+    historian that filled a gap with the last value it had, does.  So does a quiet plant measured
+    without noise or coarsely quantized: a run is only a candidate, kept out of the fit when the
+    model fitted without it does not explain it (:func:`outliers_of_fit` on its samples).
+    """
+    runs = []
+    n = y.size
+    start = 0
+    for k in range(1, n + 1):
+        if k < n and np.isfinite(y[k]) and y[k] == y[k - 1]:
+            continue
+        if k - start >= min_length and np.isfinite(y[start]):
+            runs.append((start, k))
+        start = k
+    return runs
 
 
 def outliers_of_fit(
