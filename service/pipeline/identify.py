@@ -33,6 +33,7 @@ from service.schemas.model import TransferElementModel, TransferMatrixModel
 from service.schemas.signals import OperatingPoint, SignalTag
 from service.solver.identification.data import hold_missing, resample_held, resample_interpolated, sample_grid
 from service.solver.identification.diagnostics import (
+    Z99,
     Correlation,
     find_outliers,
     fit_measures,
@@ -749,33 +750,19 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
                 )
             )
             gain, gain_error = float(theta[0]), float(error[0])
-            if not np.isfinite(gain_error) or gain_error > WEAK_GAIN * abs(gain):
-                # inputs that moved together are told apart by no amount of moving them so: say so
-                others = [
-                    t for t in inputs.moved_with.get(column, ()) if any(q.column == column_tags.index(t) for q in pairs)
-                ]
-                why = (
-                    f"input {column} moved together with {', '.join(others)}, so its effect on {tag} cannot be "
-                    f"told apart from theirs"
-                    if others
-                    else f"input {column} moved too little to identify its effect on {tag}"
-                )
-                fix = (
-                    f"Repeat the test moving {column} independently of {', '.join(others)}, or leave one of "
-                    f"the pairs out (structure 'none')"
-                    if others
-                    else f"Repeat the test with larger or more moves of {column}, or leave the pair out (structure 'none')"
-                )
-                error_text = f"{gain_error:.2g}" if np.isfinite(gain_error) else "undetermined (infinite)"
-                warnings.append(
-                    WarningReport(
-                        code="weak_excitation",
-                        message=f"{why}: gain {gain:.4g} with a standard error of {error_text}. {fix}",
-                    )
-                )
+            # a gain within its 99 % interval of zero: the data show no effect, whatever the cause
+            unseen = not (np.isfinite(gain_error) and abs(gain) > Z99 * gain_error)
+            if unseen or gain_error > WEAK_GAIN * abs(gain):
+                warnings.append(_weak_gain_warning(inputs, tag, column, pairs, gain, gain_error, unseen=unseen))
             for name, flag in zip(names, bound, strict=True):
-                # at its upper limit; a dead time at its lower limit, zero, is no finding
-                if flag and name == "dead_time" and theta[names.index("dead_time")] > 0.5 * inputs.max_dead_time:
+                # at its upper limit; a dead time at its lower limit, zero, is no finding, nor is
+                # the dead time of an effect the data do not show (it is warned of above)
+                if (
+                    flag
+                    and not unseen
+                    and name == "dead_time"
+                    and theta[names.index("dead_time")] > 0.5 * inputs.max_dead_time
+                ):
                     warnings.append(
                         WarningReport(
                             code="parameter_at_bound",
@@ -847,6 +834,48 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
         step_responses=steps,
         data=data,
         warnings=warnings,
+    )
+
+
+def _weak_gain_warning(
+    inputs: IdentifyInputs,
+    tag: str,
+    column: str,
+    pairs: tuple[PairSpec, ...],
+    gain: float,
+    gain_error: float,
+    *,
+    unseen: bool,
+) -> WarningReport:
+    """The warning of a gain the data determine poorly (``unseen``: not told from zero at 99 %)."""
+    column_tags = [*inputs.inputs, *inputs.disturbances]
+    error_text = f"{gain_error:.2g}" if np.isfinite(gain_error) else "undetermined (infinite)"
+    # inputs that moved together are told apart by no amount of moving them so: say so
+    others = [t for t in inputs.moved_with.get(column, ()) if any(q.column == column_tags.index(t) for q in pairs)]
+    if others:
+        return WarningReport(
+            code="weak_excitation",
+            message=f"input {column} moved together with {', '.join(others)}, so its effect on {tag} cannot be "
+            f"told apart from theirs: gain {gain:.4g} with a standard error of {error_text}. Repeat the test "
+            f"moving {column} independently of {', '.join(others)}, or leave one of the pairs out (structure "
+            f"'none')",
+        )
+    if unseen:
+        # as likely no effect as too small a move: the data cannot say which, so the warning names both
+        moves = inputs.columns[: inputs.estimation, column_tags.index(column)]
+        interval = f"{Z99 * gain_error:.2g}" if np.isfinite(gain_error) else "an undetermined amount"
+        return WarningReport(
+            code="no_significant_effect",
+            message=f"the effect of {column} on {tag} cannot be told from zero: gain {gain:.4g} +- {interval} "
+            f"(99 %), with {column} moved over a range of {float(np.ptp(moves)):.4g}. Either {column} does not "
+            f"act on {tag} (leave the pair out, structure 'none'), or its moves were too small or too few to "
+            f"show it (repeat the test with larger moves of {column})",
+        )
+    return WarningReport(
+        code="weak_excitation",
+        message=f"input {column} moved too little to identify its effect on {tag}: gain {gain:.4g} with a "
+        f"standard error of {error_text}. Repeat the test with larger or more moves of {column}, or leave the "
+        f"pair out (structure 'none')",
     )
 
 
