@@ -216,3 +216,62 @@ def test_a_pair_the_plant_lacks_is_warned_as_no_effect_not_as_too_small_a_move(i
     # the real pairs are not warned of: each is well determined
     real = [w for w in identified["warnings"] if w["code"] in ("weak_excitation", "no_significant_effect")]
     assert real == about
+
+
+def true_model(operating_point: dict[str, Any]) -> dict[str, Any]:
+    """The invented true plant as a /design transfer matrix (the pairs of TRUE, nothing else)."""
+
+    def element(output: str, column: str) -> dict[str, Any] | None:
+        if (output, column) not in TRUE:
+            return None
+        gain, tau, theta = TRUE[(output, column)]
+        return {
+            "gain": gain,
+            "time_constants": [] if tau is None else [tau],
+            "dead_time": theta,
+            "integrating": tau is None,
+        }
+
+    return {
+        "kind": "transfer_matrix",
+        "sample_time": TS,
+        "elements": [[element(o, i) for i in INPUTS] for o in OUTPUTS],
+        "disturbance_elements": [[element(o, d) for d in DISTURBANCES] for o in OUTPUTS],
+        "inputs": [{"name": t} for t in INPUTS],
+        "outputs": [{"name": t} for t in OUTPUTS],
+        "disturbances": [{"name": t} for t in DISTURBANCES],
+        "operating_point": operating_point,
+    }
+
+
+def test_the_identified_model_designs_as_the_true_plant_does(identified, client) -> None:
+    """The answer's model posted unchanged to /design gives the law the true plant gives, within
+    2 % (relative Frobenius norm) on the horizon gain Kh, the setpoint gain Kr and the
+    previous-input gain Ku (each independent of the state realization), and the same closed-loop
+    spectral radius to 0.005.  Truth: the invented plant TRUE, designed with the same tuning and
+    the true operating point.  The pressure in Pa and the steam in kg/h are weighted as an engineer
+    would (1e-4 on a pressure a thousand times the temperature's size, 1e-5 on moves of
+    hundreds of kg/h)."""
+    tuning = {
+        "horizons": {"prediction": 40, "control": 6},
+        "weights": {"output": [1.0, 1e-4, 1.0], "move": [1e-5, 1e-5, 0.05]},
+    }
+    model = identified["model"]
+    truth = true_model(
+        {
+            "inputs": [START[t] for t in INPUTS],
+            "outputs": [LEVEL[t] for t in OUTPUTS],
+            "disturbances": [START["feed_flow"]],
+        }
+    )
+    answers = []
+    for m in (model, truth):
+        r = client.post("/design", json={**tuning, "model": m})
+        assert r.status_code == 200, r.text
+        answers.append(r.json())
+    got, want = answers
+    for name in ("horizon", "setpoint", "previous_input"):
+        a, b = np.asarray(got["gain"][name]), np.asarray(want["gain"][name])
+        assert a.shape == b.shape and np.linalg.norm(a - b) <= 0.02 * np.linalg.norm(b), name
+    assert got["closed_loop"]["spectral_radius"] == pytest.approx(want["closed_loop"]["spectral_radius"], abs=0.005)
+    assert got["closed_loop"]["stable"] and want["closed_loop"]["stable"]
