@@ -15,7 +15,14 @@ from service.solver.identification.diagnostics import (
     outliers_of_fit,
     residual_correlations,
 )
-from service.solver.identification.least_squares import PairSpec, fit_output, model_output
+from service.solver.identification.least_squares import (
+    FIR_BLOCKS,
+    FIR_SINGLE,
+    PairSpec,
+    fit_output,
+    lag_blocks,
+    model_output,
+)
 from service.solver.identification.process_models import pair_response
 from service.solver.models.transfer import TransferElement, transfer_matrix_model
 from tests.conftest import random_steps
@@ -419,3 +426,40 @@ def test_frozen_runs_are_stretches_of_one_value() -> None:
     assert frozen_runs(y, min_length=3) == [(1, 4), (6, 10)]
     assert frozen_runs(y, min_length=4) == [(6, 10)]
     assert frozen_runs(np.full(5, np.nan), min_length=2) == []
+
+
+def test_lag_blocks_cover_every_lag_once() -> None:
+    """Short impulse responses keep one coefficient a lag; long ones share coefficients in blocks
+    that cover lags 1 .. length once each, one lag a block up to FIR_SINGLE."""
+    np.testing.assert_array_equal(lag_blocks(10), np.arange(1, 12))
+    edges = lag_blocks(5000)
+    assert edges[0] == 1 and edges[-1] == 5001 and np.all(np.diff(edges) >= 1)
+    np.testing.assert_array_equal(edges[: FIR_SINGLE + 1], np.arange(1, FIR_SINGLE + 2))
+    assert edges.size - 1 <= FIR_SINGLE + FIR_BLOCKS
+
+
+def test_a_long_record_of_a_slow_pair_is_fitted_from_blocked_starts() -> None:
+    """20 000 samples of a slow pair (0.8/(60 s + 1), 14 s dead time): the starts come from the
+    blocked impulse response (a quarter of the record long); the fit recovers the truth (scipy's
+    zero-order-hold discretization and scipy.signal.dlsim) within 1 % on the gain and the lag and
+    half a sample on the dead time."""
+    rng = np.random.default_rng(8)
+    n = 20000
+    u = random_steps(rng, n, first=50, hold=(150, 400), size=(5.0, 10.0))
+    a, b, c, d, _ = scipy.signal.cont2discrete(
+        (np.array([[-1 / 60.0]]), np.array([[0.8 / 60.0]]), np.eye(1), np.zeros((1, 1))), 1.0, method="zoh"
+    )
+    _, clean, _ = scipy.signal.dlsim((a, b, c, d, 1.0), np.concatenate((np.zeros(14), u[:-14])))
+    y = 200.0 + clean.ravel() + rng.normal(scale=0.05, size=n)
+    fit = fit_output(
+        y,
+        u[:, None],
+        [PairSpec(0, FO)],
+        sample_time=1.0,
+        used=np.ones(n, dtype=bool),
+        max_dead_time=n / 3,
+        settling_samples=n // 4,
+    )
+    gain, tau, theta = fit.parameters[0]
+    assert gain == pytest.approx(0.8, rel=0.01) and tau == pytest.approx(60.0, rel=0.01)
+    assert abs(theta - 14.0) <= 0.5
