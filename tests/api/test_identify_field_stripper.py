@@ -387,3 +387,30 @@ def test_bad_cells_name_their_column_and_row(export, client) -> None:
     )
     body = assert_problem(r, 422, "invalid-request")
     assert body["errors"][0]["pointer"] == "/body/7"
+
+
+def test_the_command_line_takes_every_choice_the_query_takes(export, tmp_path, capsys) -> None:
+    """Found in an audit: the README's query choices outlier_limit=none and structure=subspace
+    (with order and block_rows) were refused by movecast identify (argparse: 'invalid float
+    value: none'; 'invalid choice: subspace').  With the check off nothing is left out as an
+    outlier; the subspace fit answers a state-space model of the order asked."""
+    import json
+
+    from service.cli import main
+
+    path = tmp_path / "stripper_test.csv"
+    path.write_bytes(export)
+    options = [f"--{name.replace('_', '-')}={value}" for name, value in QUERY.items()]
+    assert main(["identify", str(path), *options, "--outlier-limit=none"]) == 0
+    body = json.loads(capsys.readouterr().out)
+    assert all(t["outliers"] == 0 for t in body["data"]["tags"])
+    quiet = [
+        f"--{n.replace('_', '-')}={v}" for n, v in QUERY.items() if n not in ("integrating", "pairs", "max_dead_time")
+    ]
+    # the subspace fit needs every output sample: the part of the record between the empty cells
+    # (rows 300 to 302) and the outage (from row 1000)
+    text = export.decode("utf-8-sig").split("\r\n")
+    path.write_text("\r\n".join([text[0], *text[305:1000]]) + "\r\n", encoding="utf-8")
+    assert main(["identify", str(path), *quiet, "--structure=subspace", "--order=6", "--block-rows=10"]) == 0
+    body = json.loads(capsys.readouterr().out)
+    assert body["model"]["kind"] == "state_space" and body["subspace"]["order"] == 6
