@@ -380,6 +380,8 @@ def test_bad_cells_name_their_column_and_row(export, client) -> None:
     r = client.post("/identify", params=QUERY, content=comma.encode(), headers={"content-type": "text/csv"})
     body = assert_problem(r, 422, "invalid-request")
     assert body["errors"][0]["pointer"] == "/data/reboiler_steam/0"
+    # found in an audit: it said only "'14000,0' is not a number"; the cause is named now
+    assert "decimal comma" in body["errors"][0]["detail"]
     lines = text.split("\r\n")
     lines[7] = lines[7].rsplit(";", 1)[0]  # a row one cell short
     r = client.post(
