@@ -416,3 +416,52 @@ def test_the_command_line_takes_every_choice_the_query_takes(export, tmp_path, c
     assert main(["identify", str(path), *quiet, "--structure=subspace", "--order=6", "--block-rows=10"]) == 0
     body = json.loads(capsys.readouterr().out)
     assert body["model"]["kind"] == "state_space" and body["subspace"]["order"] == 6
+
+
+def test_a_reflux_that_barely_moved_is_warned_on_every_output_and_nothing_else_is(client) -> None:
+    """The reflux moved by 2 to 4 kg/h (a hundredth of its planned moves) while the other inputs
+    moved as planned: every output's warning names the reflux (too small a move, or an effect not
+    told from zero, which names both causes), and no other input; the other gains stay within 2 %
+    of the true plant (scipy reference above)."""
+    rng = np.random.default_rng(17)  # moves of their own, not the steam's pattern again
+    data = step_test()
+    small = random_steps(rng, 1200, first=25, hold=(15, 45), size=(2.0, 4.0))
+    reflux_moves = np.asarray(data["reflux_flow"]) - START["reflux_flow"]
+    data["reflux_flow"] = START["reflux_flow"] + small
+    for y in OUTPUTS:  # the outputs as the plant would have answered the small moves
+        for (o, i), p in TRUE.items():
+            if o == y and i == "reflux_flow":
+                data[y] = data[y] - true_response(*p, reflux_moves, TS) + true_response(*p, small, TS)
+    r = client.post("/identify", json=request_of(data))
+    assert r.status_code == 200, r.text
+    body = r.json()
+    weak = [w for w in body["warnings"] if w["code"] in ("weak_excitation", "no_significant_effect")]
+    assert all("reflux_flow" in w["message"] for w in weak), weak
+    for output in OUTPUTS:
+        assert any(f"on {output}" in w["message"] for w in weak), (output, weak)
+    fitted = parameters(body)
+    for key, (gain, _, _) in TRUE.items():
+        if key[1] != "reflux_flow":
+            assert fitted[key]["gain"] == pytest.approx(gain, rel=0.02), key
+
+
+def test_a_drifting_temperature_is_fitted_with_its_drift_and_said_to_leave_dynamics(client) -> None:
+    """A slow random walk (0.01 degC a minute) and a linear drift of 0.002 degC/min on the bottoms
+    temperature, fitted with detrend: the gains within 5 % of the true plant (scipy reference
+    above), the drift estimate near the linear part, and a warning that the residuals are
+    correlated (the walk is no straight line)."""
+    rng = np.random.default_rng(9)
+    data = step_test()
+    walk = np.cumsum(0.01 * rng.standard_normal(1200))
+    data["bottoms_temperature"] = data["bottoms_temperature"] + walk + 0.002 * np.arange(1200)
+    r = client.post("/identify", json=request_of(data, detrend=True))
+    assert r.status_code == 200, r.text
+    body = r.json()
+    fitted = parameters(body)
+    for key in [k for k in TRUE if k[0] == "bottoms_temperature"]:
+        assert fitted[key]["gain"] == pytest.approx(TRUE[key][0], rel=0.05), key
+    (fit,) = [f for f in body["fits"] if f["output"] == "bottoms_temperature"]
+    # the walk's own trend over the record adds to the linear part: within 0.002 degC/min of it
+    slope = np.polyfit(np.arange(1200.0), walk, 1)[0]
+    assert fit["drift"]["estimate"] == pytest.approx(0.002 + slope, abs=0.002)
+    assert any(w["code"] == "residuals_correlated" and "bottoms_temperature" in w["message"] for w in body["warnings"])
