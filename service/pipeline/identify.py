@@ -38,6 +38,7 @@ from service.solver.identification.diagnostics import (
     find_outliers,
     fit_measures,
     frozen_runs,
+    moves_correlation,
     outliers_of_fit,
     residual_correlations,
 )
@@ -447,21 +448,29 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
         )
     moves = np.diff(columns[:estimation], axis=0)
     moved_with: dict[str, list[str]] = {}
+    # shifted by up to the longest dead time, one input's response passes for the other's
+    longest = float(request.max_dead_time) if request.max_dead_time is not None else estimation * ts / 3.0
+    shift = int(min(np.ceil(longest / ts), estimation - 2)) if request.structure != "subspace" else 0
     for a in range(len(column_tags)):
         for b in range(a + 1, len(column_tags)):
             if column_tags[a] in still or column_tags[b] in still:
                 continue
-            r = float(np.corrcoef(moves[:, a], moves[:, b])[0, 1])
+            r, lag = moves_correlation(moves[:, a], moves[:, b], max_lag=shift)
             if abs(r) > CORRELATED:
                 moved_with.setdefault(column_tags[a], []).append(column_tags[b])
                 moved_with.setdefault(column_tags[b], []).append(column_tags[a])
-                warnings.append(
-                    WarningReport(
-                        code="correlated_inputs",
-                        message=f"inputs {column_tags[a]} and {column_tags[b]} moved together (correlation of their "
-                        f"moves {r:.2f}); their separate effects are poorly determined: move them independently",
-                    )
+                pair = (
+                    f"inputs {column_tags[a]} and {column_tags[b]} moved together (correlation of their moves {r:.2f}"
                 )
+                if lag == 0:
+                    text = f"{pair}); their separate effects are poorly determined: move them independently"
+                else:  # a caution: a shift longer than the dead times can tell apart still separates them
+                    text = (
+                        f"{pair}, {column_tags[b]} {abs(lag)} samples {'after' if lag > 0 else 'before'} "
+                        f"{column_tags[a]}); a fit can trade the one's gain and dead time for the other's: check "
+                        f"their standard errors, and move them independently"
+                    )
+                warnings.append(WarningReport(code="correlated_inputs", message=text))
     record = estimation * ts
     if request.structure != "subspace" and request.max_dead_time is not None and float(request.max_dead_time) >= record:
         raise InvalidRequest(

@@ -12,6 +12,7 @@ from service.solver.identification.diagnostics import (
     find_outliers,
     fit_measures,
     frozen_runs,
+    moves_correlation,
     outliers_of_fit,
     residual_correlations,
 )
@@ -463,3 +464,17 @@ def test_a_long_record_of_a_slow_pair_is_fitted_from_blocked_starts() -> None:
     gain, tau, theta = fit.parameters[0]
     assert gain == pytest.approx(0.8, rel=0.01) and tau == pytest.approx(60.0, rel=0.01)
     assert abs(theta - 14.0) <= 0.5
+
+
+def test_moves_correlation_finds_a_shifted_copy() -> None:
+    """At lag 0 it is numpy's correlation coefficient; a copy of the moves 15 samples later is found
+    at lag 15 with correlation 1 (up to the samples shifted out), and not within a range of 10."""
+    rng = np.random.default_rng(6)
+    a = rng.normal(size=500) * (rng.random(500) < 0.05)
+    b = rng.normal(size=500)
+    r, lag = moves_correlation(a, b, max_lag=0)
+    assert lag == 0 and r == pytest.approx(np.corrcoef(a, b)[0, 1], abs=1e-12)
+    later = np.concatenate((np.zeros(15), 0.3 * a[:-15]))
+    r, lag = moves_correlation(a, later, max_lag=20)
+    assert lag == 15 and r > 0.95
+    assert abs(moves_correlation(a, later, max_lag=10)[0]) < 0.5

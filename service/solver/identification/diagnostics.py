@@ -27,9 +27,18 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import scipy.signal
 from numpy.typing import NDArray
 
-__all__ = ["Correlation", "find_outliers", "fit_measures", "frozen_runs", "outliers_of_fit", "residual_correlations"]
+__all__ = [
+    "Correlation",
+    "find_outliers",
+    "fit_measures",
+    "frozen_runs",
+    "moves_correlation",
+    "outliers_of_fit",
+    "residual_correlations",
+]
 
 Array = NDArray[np.float64]
 
@@ -103,6 +112,43 @@ def find_outliers(y: Array, *, limit: float, window: int = 7) -> NDArray[np.bool
         scale = np.maximum(scale, np.median(around, axis=1))
     out[np.nonzero(finite)[0]] = np.abs(deviation) > limit * scale
     return out
+
+
+def moves_correlation(a: Array, b: Array, *, max_lag: int) -> tuple[float, int]:
+    """The strongest correlation of two inputs' moves, ``b`` shifted by up to ``max_lag`` samples.
+
+    Parameters
+    ----------
+    a, b : ndarray, shape (N,)
+        The moves (sample-to-sample changes) of two inputs.
+    max_lag : int, keyword-only
+        Largest shift either way, in samples (0: at the same samples only).
+
+    Returns
+    -------
+    r : float
+        The normalized cross-correlation ``sum_k a~(k) b~(k + lag) / (|a~| |b~|)`` of the moves less
+        their means, of largest size over the lags (at lag 0 the correlation coefficient itself);
+        ``0`` when either does not move.
+    lag : int
+        Its lag: ``b`` moved ``lag`` samples after ``a`` (before, when negative).
+
+    Notes
+    -----
+    Inputs moved together a few samples apart are as inseparable to a fit with dead times as
+    inputs moved at once: a dead time longer by the shift turns one's response into the other's.
+    The correlation at every lag comes from ``scipy.signal.correlate`` (by FFT for long records).
+    """
+    x, y = a - np.mean(a), b - np.mean(b)
+    norm = float(np.sqrt(np.dot(x, x) * np.dot(y, y)))
+    if not norm > 0.0:
+        return 0.0, 0
+    full = scipy.signal.correlate(y, x, mode="full") / norm  # index n - 1 + lag: y(k + lag) x(k)
+    n = x.size
+    lags = np.arange(-(n - 1), n)
+    inside = np.abs(lags) <= max_lag
+    best = int(np.argmax(np.abs(np.where(inside, full, 0.0))))
+    return float(full[best]), int(lags[best])
 
 
 def frozen_runs(y: Array, *, min_length: int) -> list[tuple[int, int]]:
