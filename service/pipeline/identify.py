@@ -366,10 +366,6 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
         measured[:, i] = values
         values = values.copy()
         values[outliers] = np.nan
-        if request.outlier_limit is not None and request.structure != "subspace":
-            # candidates only: the fit keeps out those its model does not explain
-            for start, stop in frozen_runs(measured[:, i], min_length=FROZEN_SAMPLES):
-                values[start:stop] = np.nan
         outputs[:, i] = values
         note, warning = _output_note(tag, missing, outliers, request.outlier_limit)
         notes.append(note)
@@ -597,10 +593,17 @@ def compute_identify(inputs: IdentifyInputs) -> IdentifyOutcome:
     revised = inputs
     for i in range(len(inputs.pairs)):
         y = inputs.outputs_data[:, i]
-        fit = _fit_one(inputs, i, y, deviations, used)
         note = inputs.notes[len(inputs.inputs) + len(inputs.disturbances) + i]
         measured = inputs.outputs_measured[:, i]
         runs = frozen_runs(measured, min_length=FROZEN_SAMPLES) if inputs.outlier_limit is not None else []
+        if runs:  # candidates only, left out of the first fit: the second keeps those its model explains
+            y = y.copy()
+            for start, stop in runs:
+                y[start:stop] = np.nan
+            parameters = sum(len(STRUCTURES[spec.structure]) for spec in inputs.pairs[i]) + 1 + inputs.detrend
+            if int(np.isfinite(y[: inputs.estimation]).sum()) <= max(MIN_SAMPLES, 2 * parameters):
+                y = inputs.outputs_data[:, i]  # too few samples without them: judge them on the fit with them
+        fit = _fit_one(inputs, i, y, deviations, used)
         if note.outliers.size or runs:
             assert inputs.outlier_limit is not None
             # a running median calls the plant's own sharp turns outliers too, and a quiet plant
