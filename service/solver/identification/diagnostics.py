@@ -212,8 +212,8 @@ def outliers_of_fit(
     -----
     A running median cannot tell a spike from the plant's own sharp turn (a fast response to a
     short move of its input); the fitted model can: a sample it explains as well as the others is
-    no outlier.  This is the residual-based outlier test of robust regression (Hampel's identifier
-    applied to the residuals of the fit instead of to the signal; Pearson 2002, section III).  The
+    no outlier.  This is the residual-based outlier test of robust regression (the Hampel identifier
+    applied to the residuals of the fit instead of to the signal; common practice).  The
     scale has a floor of ``1e-9`` of the output's spread, so a fit that is exact to rounding does not
     call its own rounding an outlier.
     """
