@@ -44,18 +44,18 @@ def _request(b, u0, inputs, weights_output=(1.0, 1.0), **extra):
     return body
 
 
-ONE_VALVE = dict(b=[[0.3], [0.8]], u0=[45.0], inputs=[{"name": "steam_valve", "unit": "%"}])
+ONE_VALVE = {"b": [[0.3], [0.8]], "u0": [45.0], "inputs": [{"name": "steam_valve", "unit": "%"}]}
 # two valves whose steady effects are proportional: G has rank 1 (invented)
-TIED = dict(
-    b=[[0.1, 0.2], [0.2, 0.4]],
-    u0=[45.0, 30.0],
-    inputs=[{"name": "steam_valve", "unit": "%"}, {"name": "bypass_valve", "unit": "%"}],
-)
-SQUARE = dict(
-    b=[[0.1, -0.05], [0.2, 0.3]],
-    u0=[45.0, 30.0],
-    inputs=[{"name": "steam_valve", "unit": "%"}, {"name": "vent_valve", "unit": "%"}],
-)
+TIED = {
+    "b": [[0.1, 0.2], [0.2, 0.4]],
+    "u0": [45.0, 30.0],
+    "inputs": [{"name": "steam_valve", "unit": "%"}, {"name": "bypass_valve", "unit": "%"}],
+}
+SQUARE = {
+    "b": [[0.1, -0.05], [0.2, 0.3]],
+    "u0": [45.0, 30.0],
+    "inputs": [{"name": "steam_valve", "unit": "%"}, {"name": "vent_valve", "unit": "%"}],
+}
 
 
 def _gain(layout):
