@@ -62,13 +62,15 @@ __all__ = [
     "SteadyStateTarget",
     "TargetProblem",
     "input_scales",
+    "reachable_scale",
     "steady_state_target",
     "target_problem",
     "with_measured_disturbances",
 ]
 
 #: A target counts as exact when its output misses the setpoint by at most this much, relative
-#: to ``max(1, |r|, |d|)`` (infinity norms; common practice for a least-squares residual).
+#: to ``max(1, |r|, |d|)`` (infinity norms; common practice for a least-squares residual; held
+#: measured disturbances by their effect on the outputs, :func:`reachable_scale`).
 REACHABLE_TOLERANCE = 1e-9
 
 #: A direction of the spare steady states counts as moving no input when its weighted input
@@ -149,6 +151,10 @@ class TargetProblem:
     free_directions : int
         Steady-state directions that neither the output fit nor the input weight place: the
         least norm ``|[x_s; u_s]|`` picks them (0: the target is unique).
+    measured : int
+        How many of the last disturbance columns are held measured disturbances ``d_m``
+        (:func:`with_measured_disturbances`; 0 otherwise).  Their values are in their own units,
+        so :func:`reachable_scale` sizes them by their effect on the outputs instead.
     """
 
     a: NDArray[np.float64]
@@ -168,6 +174,7 @@ class TargetProblem:
     input_target_map: NDArray[np.float64]
     state_scales: NDArray[np.float64]
     free_directions: int
+    measured: int = 0
 
     @property
     def state_size(self) -> int:
@@ -404,7 +411,7 @@ def with_measured_disturbances(problem: TargetProblem, b_disturbance: ArrayLike)
     bd_m = np.asarray(b_disturbance, dtype=float)
     n, pz = problem.state_size, problem.c.shape[0]
     assert bd_m.ndim == 2 and bd_m.shape[0] == n, bd_m.shape
-    return target_problem(
+    joined = target_problem(
         problem.a,
         problem.b,
         problem.c,
@@ -413,6 +420,41 @@ def with_measured_disturbances(problem: TargetProblem, b_disturbance: ArrayLike)
         output_weight=problem.output_weight,
         input_weight=problem.input_weight if np.any(problem.input_weight) else None,
     )
+    return replace(joined, measured=problem.measured + bd_m.shape[1])
+
+
+def reachable_scale(problem: TargetProblem, setpoint: ArrayLike, disturbance: ArrayLike) -> float:
+    """Return the size a target's offset is judged against: ``max(1, |r|, |d|, |Cz x0(d_m)|)``.
+
+    A target counts as exact when ``|z_s - r| <= REACHABLE_TOLERANCE * scale`` (infinity norms).
+    ``r`` and the estimated ``d`` enter by their values; the held measured disturbances (the
+    problem's last :attr:`TargetProblem.measured` columns) are in units of their own, so they
+    enter by their effect on the controlled outputs, ``Cz x0`` with ``[x0; u0] = P0 d_m`` the
+    least-norm steady state under ``Bd_m d_m`` (the size of what the inputs cancel, where the
+    rounding comes from).  A change of a measured disturbance's unit then changes no verdict:
+    by its raw value, a feed in a unit 1e9 times smaller without a span had called a setpoint
+    out of reach by several spans reachable.
+
+    Parameters
+    ----------
+    problem : TargetProblem
+    setpoint : array_like, shape (pz,)
+    disturbance : array_like, shape (nd,)
+        The estimated ``d``, then ``d_m``.
+
+    Returns
+    -------
+    float
+    """
+    r = np.asarray(setpoint, dtype=float)
+    d = np.asarray(disturbance, dtype=float)
+    split = d.size - problem.measured
+    scale = max(1.0, float(np.abs(r).max(initial=0.0)), float(np.abs(d[:split]).max(initial=0.0)))
+    if problem.measured:
+        n = problem.state_size
+        effect = problem.c @ (problem.particular[:n, split:] @ d[split:])
+        scale = max(scale, float(np.abs(effect).max(initial=0.0)))
+    return scale
 
 
 def input_scales(b: NDArray[np.float64], input_weight: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -518,6 +560,5 @@ def steady_state_target(
         xu = xu + problem.input_target_map @ np.asarray(input_target, dtype=float)
     output = problem.c @ xu[:n] + problem.disturbance_output @ d
     offset = output - r
-    scale = max(1.0, float(np.abs(r).max(initial=0.0)), float(np.abs(d).max(initial=0.0)))
-    reachable = bool(np.abs(offset).max(initial=0.0) <= REACHABLE_TOLERANCE * scale)
+    reachable = bool(np.abs(offset).max(initial=0.0) <= REACHABLE_TOLERANCE * reachable_scale(problem, r, d))
     return SteadyStateTarget(state=xu[:n], input=xu[n:], output=output, offset=offset, reachable=reachable)

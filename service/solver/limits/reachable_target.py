@@ -66,7 +66,13 @@ import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.weights import weight_root
-from service.solver.estimation.target import REACHABLE_TOLERANCE, TargetProblem, input_scales, steady_state_target
+from service.solver.estimation.target import (
+    REACHABLE_TOLERANCE,
+    TargetProblem,
+    input_scales,
+    reachable_scale,
+    steady_state_target,
+)
 
 __all__ = ["TARGET_TOLERANCE", "ReachableTarget", "ReachableTargetProblem", "reachable_target"]
 
@@ -334,7 +340,7 @@ class ReachableTargetProblem:
         v = u / self._scales
         output = problem.c @ xu[:n] + problem.disturbance_output @ d
         offset = output - r
-        scale = max(1.0, float(np.abs(r).max(initial=0.0)), float(np.abs(d).max(initial=0.0)))
+        scale = reachable_scale(problem, r, d)  # d_m by its effect on the outputs, not its unit
         gap = self._tolerance * size * self._reach  # in the moderate units
         return ReachableTarget(
             state=xu[:n] * self._state_scales,
