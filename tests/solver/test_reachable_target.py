@@ -146,3 +146,31 @@ def test_saturating_step_settles_on_the_reachable_target_without_windup(rng):
 
     chased = run(raw)
     assert all(any(x.kind == "input" for x in r.active_limits) for r in chased.reports[-10:])
+
+
+@pytest.mark.parametrize("unit", [1.0, 1e6, 1e12])
+def test_the_verdict_under_a_measured_disturbance_does_not_depend_on_its_unit(rng, unit):
+    # The same measured disturbance in a unit ``unit`` times smaller (Bd_m / unit, d_m * unit) is
+    # the same plant: the target and the verdict must not change (a change of units changes no
+    # verdict, common practice).  The setpoint is out of reach inside the limits by about 1e-3
+    # (reference: scipy.optimize.lsq_linear, bounded least squares), far above any rounding.
+    from service.solver.estimation.target import with_measured_disturbances
+
+    n, m = 3, 2
+    a, b, c = random_plant(rng, n, m, m, radius=0.7)
+    bd = rng.normal(size=(n, 1))
+    k, k_m = steady_gain(a, b, c), steady_gain(a, bd, c)
+    low, high = -np.ones(m), np.ones(m)
+    d_m = np.array([0.7])
+    u_edge = np.array([1.0 + 1e-3, 0.2])  # just beyond the upper limit of the first input
+    r = k @ u_edge + k_m @ d_m
+    reference = scipy.optimize.lsq_linear(k, r - k_m @ d_m, bounds=(low, high), method="bvls", tol=1e-14)
+    assert np.abs(reference.fun).max() > 1e-5
+    problem = with_measured_disturbances(target_problem(a, b, c), bd / unit)
+    target = reachable_target(problem, r, d_m * unit, input_min=low, input_max=high)
+    assert not target.reachable
+    np.testing.assert_allclose(target.input, reference.x, rtol=0, atol=1e-8)
+    np.testing.assert_allclose(target.output, k @ reference.x + k_m @ d_m, rtol=0, atol=1e-8)
+    # a setpoint inside the limits stays reachable in every unit
+    inside = reachable_target(problem, k @ np.array([0.5, -0.2]) + k_m @ d_m, d_m * unit, input_min=low, input_max=high)
+    assert inside.reachable

@@ -10,6 +10,7 @@ formulation, see the README).
 
 from __future__ import annotations
 
+import copy
 import csv
 import io
 import json
@@ -33,6 +34,19 @@ ENDPOINTS = {
 }
 READY = "body[data-ready=true]"
 EXAMPLES = example_path("plant_test.csv").parent
+
+#: Three valves for two outputs (invented): one input combination no output sees at steady state.
+SPARE_INPUT_DESIGN = {
+    "model": {
+        "kind": "state_space",
+        "a": [[0.9, 0.0], [0.0, 0.8]],
+        "b": [[1.0, 0.5, 0.2], [0.0, 1.0, 0.3]],
+        "c": [[1.0, 0.0], [0.0, 1.0]],
+        "sample_time": 1.0,
+    },
+    "horizons": {"prediction": 20, "control": 3},
+    "weights": {"output": [1.0, 1.0], "move": [0.1, 0.1, 0.1]},
+}
 
 
 def endpoint_of(name: str) -> str | None:
@@ -586,17 +600,7 @@ def test_what_an_audit_of_the_page_found_missing_is_shown(workbench, server):
     assert page.get_by_test_id("errors").is_visible() and page.locator("#summary").is_hidden()
     assert page.locator("#gains").is_hidden() and page.locator("#downloads").is_hidden()
     # a sweep entry with a pole on the circle and none outside is marginal, as /design says
-    spare = {
-        "model": {
-            "kind": "state_space",
-            "a": [[0.9, 0.0], [0.0, 0.8]],
-            "b": [[1.0, 0.5, 0.2], [0.0, 1.0, 0.3]],
-            "c": [[1.0, 0.0], [0.0, 1.0]],
-            "sample_time": 1.0,
-        },
-        "horizons": {"prediction": 20, "control": 3},
-        "weights": {"output": [1.0, 1.0], "move": [0.1, 0.1, 0.1]},
-    }
+    spare = copy.deepcopy(SPARE_INPUT_DESIGN)
     sweep = {"design": spare, "parameter": "move_weight", "values": [0.1, 1.0]}
     entries = server.post("/design/sweep", sweep).json()["entries"]
     assert all(e["stable"] is False for e in entries)
@@ -611,17 +615,7 @@ def test_an_input_weight_sweep_names_its_signal_and_stars_the_base_s_zero_weight
     # the sweep's input_weight parameter: a base without weights.input has a zero input weight on
     # every input (the sweep's reading, README), so the entry at 0 is the base request's value
     page = workbench
-    spare = {
-        "model": {
-            "kind": "state_space",
-            "a": [[0.9, 0.0], [0.0, 0.8]],
-            "b": [[1.0, 0.5, 0.2], [0.0, 1.0, 0.3]],
-            "c": [[1.0, 0.0], [0.0, 1.0]],
-            "sample_time": 1.0,
-        },
-        "horizons": {"prediction": 20, "control": 3},
-        "weights": {"output": [1.0, 1.0], "move": [0.1, 0.1, 0.1]},
-    }
+    spare = copy.deepcopy(SPARE_INPUT_DESIGN)
     sweep = {"design": spare, "parameter": "input_weight", "signal": 2, "values": [0.0, 0.05]}
     answer = server.post("/design/sweep", sweep).json()
     assert [e["status"] for e in answer["entries"]] == ["designed", "designed"]

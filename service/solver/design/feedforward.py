@@ -114,6 +114,7 @@ def design_feedforward_gain(
     b_disturbance: NDArray[np.float64],
     *,
     target_outputs: bool = False,
+    measured: TargetProblem | None = None,
 ) -> NDArray[np.float64]:
     """Return the whole feed-forward gain ``Kd`` of a design, every term its options add.
 
@@ -149,6 +150,9 @@ def design_feedforward_gain(
     target_outputs : bool, optional
         Whether the law tracks the steady-state target's outputs ``Z_r r + Z_m d_m`` (default
         False: it tracks ``r``).
+    measured : TargetProblem, optional
+        :func:`measured_target` of the same arguments, when the caller has it (formed here
+        otherwise).
 
     Returns
     -------
@@ -161,7 +165,8 @@ def design_feedforward_gain(
     )
     kh = design.gain.horizon
     kd = feedforward_gain(kh, fd)
-    measured = measured_target(a, b, c, b_disturbance, design)
+    if measured is None:
+        measured = measured_target(a, b, c, b_disturbance, design)
     z_m = measured.output_disturbance_map  # (p, md)
     if target_outputs and np.any(z_m):  # - Kh (1 (x) Z_m)
         kd = kd - kh @ np.tile(z_m, (fd.shape[0] // z_m.shape[0], 1))

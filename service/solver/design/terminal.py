@@ -72,7 +72,8 @@ of the terminal deviation: the free terminal prediction gains ``Phi_m d_m`` with
 [sum_{l<Hp} A^l Bd; 0]``, and the steady state under it moves by ``S_m d_m`` (the target
 equations with ``Bd d_m`` on their right-hand side, :mod:`service.solver.estimation.target`).
 So the feed-forward gain ``Kd = Kh Fd`` of :mod:`service.solver.design.feedforward` gains the
-terminal part ``Kt (Phi_m - S_m)`` (:func:`terminal_disturbance_maps`): ``du = ... - Kd d_m``.
+terminal part ``Kt (Phi_m - S_m)`` (:func:`terminal_free_disturbance` for ``Phi_m``,
+:func:`service.solver.design.feedforward.measured_target` for ``S_m``): ``du = ... - Kd d_m``.
 """
 
 from __future__ import annotations
@@ -97,7 +98,6 @@ __all__ = [
     "TerminalWeight",
     "incremental_system",
     "riccati_terminal_weight",
-    "terminal_disturbance_maps",
     "terminal_first_move_gain",
     "terminal_free_disturbance",
     "terminal_gradient",
@@ -597,48 +597,6 @@ def with_terminal_gain(
         setpoint=gain.setpoint + terminal_gain @ terminal.target,
         input_target=input_target,
     )
-
-
-def terminal_disturbance_maps(
-    a: NDArray[np.float64],
-    b: NDArray[np.float64],
-    c: NDArray[np.float64],
-    b_disturbance: NDArray[np.float64],
-    *,
-    output_weight: NDArray[np.float64],
-    prediction: int,
-    input_weight: NDArray[np.float64] | None = None,
-) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-    """Return ``Phi_m`` and ``S_m``: how a held measured disturbance moves ``xi(k+Hp)`` and ``xi_s``.
-
-    Parameters
-    ----------
-    a : ndarray, shape (n, n)
-    b : ndarray, shape (n, m)
-    c : ndarray, shape (p, n)
-    b_disturbance : ndarray, shape (n, md)
-        ``Bd`` of the measured disturbances.
-    output_weight : ndarray, shape (p, p)
-        ``Q`` (the target's fit, as for ``S_r``).
-    prediction : int
-        ``Hp``.
-    input_weight : ndarray, shape (m, m), optional
-        ``S`` of the input targets (the target's tie-break), when there is one.
-
-    Returns
-    -------
-    free : ndarray, shape (n+m, md)
-        ``Phi_m = [sum_{l<Hp} A^l Bd; 0]`` (the recursion ``F_l = A F_(l-1) + Bd``; the
-        inputs do not move without moves).
-    target : ndarray, shape (n+m, md)
-        ``S_m``: ``[x_s; u_s]`` of the target equations with ``Bd d_m`` (module notes).
-    """
-    bd = np.asarray(b_disturbance, dtype=float)
-    free = terminal_free_disturbance(a, bd, inputs=b.shape[1], prediction=prediction)
-    target = target_problem(
-        a, b, c, disturbance_input=bd, output_weight=output_weight, input_weight=input_weight
-    ).disturbance_map
-    return free, target
 
 
 def terminal_free_disturbance(

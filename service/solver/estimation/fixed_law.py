@@ -25,7 +25,7 @@ steady-state target, ``Phi = [Phi_a, Phi_u]`` the free prediction to the horizon
 Every term is linear in the estimate, the last input and the setpoint, so the law keeps its
 form with ``K += Kt (Phi_a - X_d S)`` (in ``estimate_feedback_gain``), ``Ku += Kt Phi_u`` (in
 the design's previous-input gain) and ``Kr += Kt X_r``; with measured disturbances ``e_t``
-gains ``(X_m - Phi_m) d_m`` (:func:`service.solver.design.terminal.terminal_disturbance_maps`),
+gains ``(X_m - Phi_m) d_m`` (:func:`service.solver.design.terminal.terminal_free_disturbance`),
 so ``Kd += Kt (Phi_m - X_m)``.  With an input weight (input targets,
 :mod:`service.solver.design.input_target`) ``Ku`` includes ``Kt0``, ``K`` and ``Kr`` the
 target's input maps (``- Kt0 U_d S`` and ``+ Kt0 U_r``), and the input targets ``u_t`` are
@@ -73,7 +73,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from service.solver.design.controller import ControllerDesign
-from service.solver.design.feedforward import design_feedforward_gain
+from service.solver.design.feedforward import design_feedforward_gain, measured_target
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.loop import estimator_target, terminal_term
 from service.solver.estimation.realization import StateSpace, estimate_feedback_gain
@@ -181,16 +181,16 @@ def fixed_law(
     if kt0 is not None:  # u_s = U_r r + U_d d + U_t u_t; U_d is in K already
         setpoint_gain = setpoint_gain + kt0 @ target.setpoint_map[n:]
         target_gain = kt0 @ target.input_target_map[n:]
-    terminal = terminal_term(design, estimator, target, b_disturbance=bd if md else None)
+    model = (estimator.model_a, estimator.model_b, estimator.model_c)
+    under_dm = measured_target(*model, bd, design) if md else None  # S_m, Z_m: formed once for both
+    terminal = terminal_term(design, estimator, target, b_disturbance=bd if md else None, measured=under_dm)
     if terminal is not None:  # Kt X_r: the setpoint's way through the terminal target
         setpoint_gain = setpoint_gain + terminal.gain @ terminal.setpoint_map
         if terminal.input_target_map is not None:  # Kt X_t: the input targets' way through it
             target_gain = target_gain + terminal.gain @ terminal.input_target_map
     mt = target_gain.shape[1]
     if md:  # the design's whole Kd (the same function as /design's answer)
-        feedforward = design_feedforward_gain(
-            design, estimator.model_a, estimator.model_b, estimator.model_c, bd, target_outputs=True
-        )
+        feedforward = design_feedforward_gain(design, *model, bd, target_outputs=True, measured=under_dm)
     else:
         feedforward = np.zeros((m, 0))
     lg, cy = estimator.gain, estimator.c_measured

@@ -43,9 +43,10 @@ from numpy.typing import NDArray
 
 from service.solver.design.closed_loop import closed_loop_matrix
 from service.solver.design.controller import ControllerDesign
+from service.solver.design.feedforward import measured_target
 from service.solver.design.marginal import MARGINAL_TOLERANCE
 from service.solver.design.prediction import prediction_matrices
-from service.solver.design.terminal import terminal_disturbance_maps, terminal_prediction
+from service.solver.design.terminal import terminal_free_disturbance, terminal_prediction
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.target import TargetProblem, target_problem
 from service.solver.numerics import eigenvalues_by_modulus
@@ -158,7 +159,8 @@ class TerminalTerm:
     free_measured : ndarray, shape (n+m, md)
         ``Phi_m``: how held measured disturbances move ``xi_free(k+Hp)`` (no columns without).
     measured_map : ndarray, shape (n+m, md)
-        ``X_m``: how they move ``xi_s`` (:func:`service.solver.design.terminal.terminal_disturbance_maps`).
+        ``X_m``: how they move ``xi_s`` (the disturbance map of
+        :func:`service.solver.design.feedforward.measured_target`).
         With measured disturbances ``e_t`` gains ``(X_m - Phi_m) d_m``.
     input_target_map : ndarray, shape (n+m, m), or None
         ``X_t``: with input targets ``xi_s`` gains ``X_t u_t`` (``None`` without an input weight).
@@ -200,6 +202,7 @@ def terminal_term(
     target: TargetProblem,
     *,
     b_disturbance: NDArray[np.float64] | None = None,
+    measured: TargetProblem | None = None,
 ) -> TerminalTerm | None:
     """Return the terminal term of a design with the Riccati terminal weight (else ``None``).
 
@@ -213,6 +216,9 @@ def terminal_term(
     b_disturbance : ndarray, shape (n, md), optional
         ``Bd`` of the measured disturbances (design signals): fills ``free_measured`` and
         ``measured_map``.
+    measured : TargetProblem, optional
+        :func:`service.solver.design.feedforward.measured_target` of ``b_disturbance``, when
+        the caller has it already (formed here otherwise).
 
     Returns
     -------
@@ -227,15 +233,12 @@ def terminal_term(
     )  # (n+m, na+m)
     free_measured = measured_map = None
     if b_disturbance is not None and b_disturbance.shape[1]:
-        free_measured, measured_map = terminal_disturbance_maps(
-            estimator.model_a,
-            estimator.model_b,
-            estimator.model_c,
-            b_disturbance,
-            output_weight=design.output_weight,
-            prediction=pred.prediction,
-            input_weight=design.input_weight,
+        free_measured = terminal_free_disturbance(
+            estimator.model_a, b_disturbance, inputs=estimator.model_b.shape[1], prediction=pred.prediction
         )
+        if measured is None:
+            measured = measured_target(estimator.model_a, estimator.model_b, estimator.model_c, b_disturbance, design)
+        measured_map = measured.disturbance_map
     return TerminalTerm(
         gain=design.terminal_gain,
         free_state=phi[:, :na],

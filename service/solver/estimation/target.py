@@ -47,26 +47,30 @@ control", AIChE J. 49 (2003) 426-437, doi:10.1002/aic.690490213.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.weights import weight_matrix, weight_root
+from service.solver.numerics import balance_states
 
 __all__ = [
     "REACHABLE_TOLERANCE",
     "SPARE_INPUT_TOLERANCE",
     "SteadyStateTarget",
     "TargetProblem",
+    "input_scales",
+    "reachable_scale",
     "steady_state_target",
     "target_problem",
     "with_measured_disturbances",
 ]
 
 #: A target counts as exact when its output misses the setpoint by at most this much, relative
-#: to ``max(1, |r|, |d|)`` (infinity norms; common practice for a least-squares residual).
+#: to ``max(1, |r|, |d|)`` (infinity norms; common practice for a least-squares residual; held
+#: measured disturbances by their effect on the outputs, :func:`reachable_scale`).
 REACHABLE_TOLERANCE = 1e-9
 
 #: A direction of the spare steady states counts as moving no input when its weighted input
@@ -138,6 +142,19 @@ class TargetProblem:
         ``S`` of the input targets (zeros: no input targets; ``S_t = 0``).
     input_target_map : ndarray, shape (n+m, m)
         ``S_t``: the part of ``[x_s; u_s]`` that follows the input targets ``u_t``.
+    state_scales : ndarray, shape (n,)
+        ``D`` (powers of two) of the balanced states ``x = D x_b`` the maps were solved in
+        (:func:`service.solver.numerics.balance_states`; ones when the least norm picks
+        something, ``free_directions > 0``: its tie-break is in the request's states);
+        ``null_space`` is orthonormal in ``[x_b; u]``, and :meth:`balanced` gives the whole
+        problem there.
+    free_directions : int
+        Steady-state directions that neither the output fit nor the input weight place: the
+        least norm ``|[x_s; u_s]|`` picks them (0: the target is unique).
+    measured : int
+        How many of the last disturbance columns are held measured disturbances ``d_m``
+        (:func:`with_measured_disturbances`; 0 otherwise).  Their values are in their own units,
+        so :func:`reachable_scale` sizes them by their effect on the outputs instead.
     """
 
     a: NDArray[np.float64]
@@ -155,10 +172,53 @@ class TargetProblem:
     every_setpoint_reachable: bool
     input_weight: NDArray[np.float64]
     input_target_map: NDArray[np.float64]
+    state_scales: NDArray[np.float64]
+    free_directions: int
+    measured: int = 0
 
     @property
     def state_size(self) -> int:
         return int(self.a.shape[0])
+
+    def in_states(
+        self,
+        scales: NDArray[np.float64],
+        *,
+        a: NDArray[np.float64],
+        b: NDArray[np.float64],
+        c: NDArray[np.float64],
+        disturbance_input: NDArray[np.float64],
+    ) -> TargetProblem:
+        """The same problem in the states ``x = D x_b`` (``D = diag(scales)``), given its model there.
+
+        Every map's state rows are multiplied by ``scales``; powers of two keep it exact.
+        """
+        n = self.state_size
+        lift = np.concatenate([scales, np.ones(self.b.shape[1])])[:, None]
+        return replace(
+            self,
+            a=a,
+            b=b,
+            c=c,
+            disturbance_input=disturbance_input,
+            null_space=self.null_space * lift,
+            particular=self.particular * lift,
+            setpoint_map=self.setpoint_map * lift,
+            disturbance_map=self.disturbance_map * lift,
+            input_target_map=self.input_target_map * lift,
+            state_scales=self.state_scales[:n] * scales,
+        )
+
+    def balanced(self) -> TargetProblem:
+        """The problem in the balanced states ``x_b = D^-1 x`` it was solved in (``state_scales`` ones)."""
+        ds = self.state_scales
+        return self.in_states(
+            1.0 / ds,
+            a=self.a * ds[None, :] / ds[:, None],
+            b=self.b / ds[:, None],
+            c=self.c * ds[None, :],
+            disturbance_input=self.disturbance_input / ds[:, None],
+        )
 
     def steady_state_equations(
         self, disturbance: NDArray[np.float64]
@@ -237,7 +297,11 @@ def target_problem(
     ``u_s`` off the setpoints' steady state.  With an input weight the maps are formed with the
     inputs in units of moderate size (``u = T v``, ``T`` powers of two from the columns of ``[B;
     S^(1/2)]``), so a change of an input's unit changes no target; the least-norm choice among
-    ties ``S`` leaves open is then the one in those units.
+    ties ``S`` leaves open is then the one in those units.  A unique target (no direction left
+    to the least norm, ``free_directions = 0``) is solved in balanced states ``x = D x_b``
+    (:func:`service.solver.numerics.balance_states`, powers of two), so a change of a state's
+    unit changes neither the target nor the verdict ``every_setpoint_reachable``; where the
+    least norm picks something, it is taken in the request's states, as it always was.
     """
     a_ = np.asarray(a, dtype=float)
     b_ = np.asarray(b, dtype=float)
@@ -249,6 +313,31 @@ def target_problem(
     assert bd.shape == (n, nd) and dz.shape == (pz, nd), (bd.shape, dz.shape)
     q = np.eye(pz) if output_weight is None else weight_matrix(output_weight, pz)
     s_in = np.zeros((m, m)) if input_weight is None else weight_matrix(input_weight, m)
+    # A unique target is solved in balanced states x = D x_b (powers of two, so exact): with a
+    # state in units 1e9 apart the maps had lost 1e-9 of the target, enough to call a reachable
+    # setpoint out of reach, and 1e12 lost 4e-6.  Where the least norm picks something its
+    # tie-break stays in the request's states (a least norm is defined in some units).
+    ds = balance_states(a_, b_, c_)
+    inner = _balanced_target_problem(
+        a_ / ds[:, None] * ds[None, :], b_ / ds[:, None], c_ * ds[None, :], bd / ds[:, None], dz, q, s_in
+    )
+    if inner.free_directions or not np.any(ds != 1.0):
+        return _balanced_target_problem(a_, b_, c_, bd, dz, q, s_in) if np.any(ds != 1.0) else inner
+    return inner.in_states(ds, a=a_, b=b_, c=c_, disturbance_input=bd)
+
+
+def _balanced_target_problem(
+    a_: NDArray[np.float64],
+    b_: NDArray[np.float64],
+    c_: NDArray[np.float64],
+    bd: NDArray[np.float64],
+    dz: NDArray[np.float64],
+    q: NDArray[np.float64],
+    s_in: NDArray[np.float64],
+) -> TargetProblem:
+    """:func:`target_problem` of a model whose states are balanced already (``state_scales`` ones)."""
+    n, m, pz = a_.shape[0], b_.shape[1], c_.shape[0]
+    nd = bd.shape[1]
     w = weight_root(q)
     steady = np.hstack([np.eye(n) - a_, -b_])
     fit = np.hstack([c_, np.zeros((pz, m))])
@@ -259,15 +348,15 @@ def target_problem(
         # (powers of two, so the change of variables is exact): u = T v.  In the request's
         # units an input scaled by 1e9 (its input weight by 1e-18, the same problem) had left
         # the spare input's target wrong by more than its own size, and 1e6 by 1e-4.
-        t = _input_scales(b_, s_in)
+        t = input_scales(b_, s_in)
         maps = _target_maps(a_, b_ * t, c_, bd, dz, w, s_in * t[:, None] * t[None, :])
-        setpoint_map, disturbance_map, target_map = maps
+        setpoint_map, disturbance_map, target_map, free = maps
         setpoint_map[n:] *= t[:, None]
         disturbance_map[n:] *= t[:, None]
         target_map[n:] *= t[:, None]
         target_map /= t[None, :]
     else:
-        setpoint_map, disturbance_map, target_map = _target_maps(a_, b_, c_, bd, dz, w, s_in)
+        setpoint_map, disturbance_map, target_map, free = _target_maps(a_, b_, c_, bd, dz, w, s_in)
     output_setpoint_map = fit @ setpoint_map
     output_disturbance_map = fit @ disturbance_map + dz
     full = np.vstack([steady, fit])
@@ -292,6 +381,8 @@ def target_problem(
         every_setpoint_reachable=reach,
         input_weight=s_in,
         input_target_map=target_map,
+        state_scales=np.ones(n),
+        free_directions=free,
     )
 
 
@@ -320,7 +411,7 @@ def with_measured_disturbances(problem: TargetProblem, b_disturbance: ArrayLike)
     bd_m = np.asarray(b_disturbance, dtype=float)
     n, pz = problem.state_size, problem.c.shape[0]
     assert bd_m.ndim == 2 and bd_m.shape[0] == n, bd_m.shape
-    return target_problem(
+    joined = target_problem(
         problem.a,
         problem.b,
         problem.c,
@@ -329,10 +420,61 @@ def with_measured_disturbances(problem: TargetProblem, b_disturbance: ArrayLike)
         output_weight=problem.output_weight,
         input_weight=problem.input_weight if np.any(problem.input_weight) else None,
     )
+    return replace(joined, measured=problem.measured + bd_m.shape[1])
 
 
-def _input_scales(b: NDArray[np.float64], input_weight: NDArray[np.float64]) -> NDArray[np.float64]:
-    """Powers of two ``T`` with each column of ``[B T; (T S T)^(1/2)]`` about 1 in size (a change of an input's unit scales both alike)."""
+def reachable_scale(problem: TargetProblem, setpoint: ArrayLike, disturbance: ArrayLike) -> float:
+    """Return the size a target's offset is judged against: ``max(1, |r|, |d|, |Cz x0(d_m)|)``.
+
+    A target counts as exact when ``|z_s - r| <= REACHABLE_TOLERANCE * scale`` (infinity norms).
+    ``r`` and the estimated ``d`` enter by their values; the held measured disturbances (the
+    problem's last :attr:`TargetProblem.measured` columns) are in units of their own, so they
+    enter by their effect on the controlled outputs, ``Cz x0`` with ``[x0; u0] = P0 d_m`` the
+    least-norm steady state under ``Bd_m d_m`` (the size of what the inputs cancel, where the
+    rounding comes from).  A change of a measured disturbance's unit then changes no verdict:
+    by its raw value, a feed in a unit 1e9 times smaller without a span had called a setpoint
+    out of reach by several spans reachable.
+
+    Parameters
+    ----------
+    problem : TargetProblem
+    setpoint : array_like, shape (pz,)
+    disturbance : array_like, shape (nd,)
+        The estimated ``d``, then ``d_m``.
+
+    Returns
+    -------
+    float
+    """
+    r = np.asarray(setpoint, dtype=float)
+    d = np.asarray(disturbance, dtype=float)
+    split = d.size - problem.measured
+    scale = max(1.0, float(np.abs(r).max(initial=0.0)), float(np.abs(d[:split]).max(initial=0.0)))
+    if problem.measured:
+        n = problem.state_size
+        effect = problem.c @ (problem.particular[:n, split:] @ d[split:])
+        scale = max(scale, float(np.abs(effect).max(initial=0.0)))
+    return scale
+
+
+def input_scales(b: NDArray[np.float64], input_weight: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Return the input scales ``T`` of the target's moderate input units ``u = T v``.
+
+    Parameters
+    ----------
+    b : ndarray, shape (n, m)
+        ``B``, in the request's input units.
+    input_weight : ndarray, shape (m, m)
+        ``S`` (zeros: none).
+
+    Returns
+    -------
+    ndarray, shape (m,)
+        Powers of two (so the change of variables is exact) with each column of
+        ``[B T; (T S T)^(1/2)]`` about 1 in size: a change of an input's unit scales both alike,
+        so ``v`` does not depend on it (to a factor of at most ``sqrt(2)``).  An input with a
+        zero column keeps ``T = 1``.
+    """
     column = np.sqrt(np.einsum("ij,ij->j", b, b) + np.clip(np.diag(input_weight), 0.0, None))
     return np.exp2(-np.round(np.log2(np.where(column > 0.0, column, 1.0))))
 
@@ -345,8 +487,10 @@ def _target_maps(
     dz: NDArray[np.float64],
     w: NDArray[np.float64],
     s_in: NDArray[np.float64],
-) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
-    """``S_r``, ``S_d`` and ``S_t`` of :func:`target_problem` (its notes) in the units given."""
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], int]:
+    """``S_r``, ``S_d`` and ``S_t`` of :func:`target_problem` (its notes) in the units given, and
+    the number of steady-state directions that neither the fit nor the input weight place (the
+    least norm picks them)."""
     n, m, pz = a.shape[0], b.shape[1], c.shape[0]
     steady = np.hstack([np.eye(n) - a, -b])
     fit = np.hstack([c, np.zeros((pz, m))])
@@ -356,19 +500,22 @@ def _target_maps(
     setpoint_map = null @ solve @ w
     disturbance_map = particular - setpoint_map @ (dz + fit @ particular)
     target_map = np.zeros((n + m, m))
+    spare = null @ scipy.linalg.null_space(w @ fit @ null)  # N N2: (n+m, k2), orthonormal columns
+    free = spare.shape[1]  # steady-state directions the fit leaves free
     if np.any(s_in):
-        spare = null @ scipy.linalg.null_space(w @ fit @ null)  # N N2: (n+m, k2), orthonormal columns
         if spare.shape[1]:
             v = weight_root(s_in)
             # A spare direction that moves no input (the state of an integrator no weighted
             # output sees: a level in a zone) has an input part of rounding size; it must not
             # be inverted, or the target's inputs leave the setpoints' steady state.
             floor = SPARE_INPUT_TOLERANCE * float(np.linalg.norm(v, 2)) * float(np.linalg.norm(null[n:], 2))
-            pull = spare @ scipy.linalg.pinv(v @ spare[n:], atol=floor, rtol=0.0) @ v  # N N2 (V J N N2)^+ V
+            placed, fixed = scipy.linalg.pinv(v @ spare[n:], atol=floor, rtol=0.0, return_rank=True)
+            free -= int(fixed)  # less those the input weight places
+            pull = spare @ placed @ v  # N N2 (V J N N2)^+ V
             target_map = pull
             setpoint_map = setpoint_map - pull @ setpoint_map[n:]
             disturbance_map = disturbance_map - pull @ disturbance_map[n:]
-    return setpoint_map, disturbance_map, target_map
+    return setpoint_map, disturbance_map, target_map, free
 
 
 def steady_state_target(
@@ -413,6 +560,5 @@ def steady_state_target(
         xu = xu + problem.input_target_map @ np.asarray(input_target, dtype=float)
     output = problem.c @ xu[:n] + problem.disturbance_output @ d
     offset = output - r
-    scale = max(1.0, float(np.abs(r).max(initial=0.0)), float(np.abs(d).max(initial=0.0)))
-    reachable = bool(np.abs(offset).max(initial=0.0) <= REACHABLE_TOLERANCE * scale)
+    reachable = bool(np.abs(offset).max(initial=0.0) <= REACHABLE_TOLERANCE * reachable_scale(problem, r, d))
     return SteadyStateTarget(state=xu[:n], input=xu[n:], output=output, offset=offset, reachable=reachable)

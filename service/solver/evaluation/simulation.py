@@ -56,7 +56,8 @@ error ::
 ``terminal_error=e_t(k)``; the unconstrained move is ``du = Kh E + Kt e_t``.  With measured
 disturbances both sides move with the held ``d_m(k)``: ``e_t`` gains ``(X_m - Phi_m) d_m(k)``
 (the steady state under ``d_m`` and its free response to the horizon's end,
-:func:`service.solver.design.terminal.terminal_disturbance_maps`); a target rule is given
+:func:`service.solver.design.feedforward.measured_target`,
+:func:`service.solver.design.terminal.terminal_free_disturbance`); a target rule is given
 ``d_m(k)`` and its steady state holds ``X_m d_m(k)`` itself, so ``e_t`` gains ``- Phi_m d_m(k)``.
 
 Events hold from their step on: a setpoint change sets ``r``, an output (input) disturbance
@@ -87,10 +88,9 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.controller import ControllerDesign
-from service.solver.design.feedforward import disturbance_free_response
+from service.solver.design.feedforward import disturbance_free_response, measured_target
 from service.solver.estimation.estimator import Estimator
 from service.solver.estimation.loop import ControlLoop, TerminalTerm, control_loop, terminal_term
-from service.solver.estimation.target import target_problem
 
 __all__ = [
     "DIVERGENCE_LIMIT",
@@ -701,8 +701,10 @@ def simulate_loop(
     assert steps >= 1, steps
     pulled = loop.design.input_target_gain is not None
     term = loop.terminal
+    # the target equations under the held measured disturbances: Z_m, U_m (and X_m below)
+    under_dm = measured_target(est.model_a, est.model_b, est.model_c, bd, loop.design) if md else None
     if term is not None and md:
-        term = terminal_term(loop.design, est, loop.target, b_disturbance=bd)
+        term = terminal_term(loop.design, est, loop.target, b_disturbance=bd, measured=under_dm)
     if policy is None:
         policy = UnconstrainedPolicy(
             loop.horizon_gain, loop.design.input_target_gain, None if term is None else term.gain
@@ -738,17 +740,9 @@ def simulate_loop(
     target_inputs_r = setpoints @ target.setpoint_map[n:].T
     if pulled:
         target_inputs_r = target_inputs_r + u_targets @ target.input_target_map[n:].T  # + U_t u_t(k)
-    if md:  # + Z_m d_m(k), U_m d_m(k): the target under the held measured disturbances
-        measured_target = target_problem(
-            est.model_a,
-            est.model_b,
-            est.model_c,
-            disturbance_input=bd,
-            output_weight=loop.design.output_weight,
-            input_weight=loop.design.input_weight,
-        )
-        targets_r = targets_r + d_meas @ measured_target.output_disturbance_map.T
-        target_inputs_r = target_inputs_r + d_meas @ measured_target.disturbance_map[n:].T
+    if under_dm is not None:  # + Z_m d_m(k), U_m d_m(k): the target under the held measured disturbances
+        targets_r = targets_r + d_meas @ under_dm.output_disturbance_map.T
+        target_inputs_r = target_inputs_r + d_meas @ under_dm.disturbance_map[n:].T
     z_d = target.output_disturbance_map
     u_d = target.disturbance_map[n:]
     use_d = nd > 0 and bool(np.any(z_d) or np.any(u_d))
