@@ -119,6 +119,8 @@ IDENTIFY_OPTIONS = (
     "time_column",
     "time_unit",
     "structure",
+    "order",
+    "block_rows",
     "max_dead_time",
     "settling_time",
     "outlier_limit",
@@ -290,11 +292,15 @@ def build_parser() -> argparse.ArgumentParser:
     identify.add_argument("--pairs", help="single pairs as output:input:structure, comma-separated")
     identify.add_argument("--time-column", dest="time_column", help="column of the time stamps")
     identify.add_argument("--time-unit", dest="time_unit", choices=("s", "min", "h"), help="unit of date-times")
-    identify.add_argument("--structure", choices=("first_order_dead_time", "second_order_dead_time"))
+    identify.add_argument("--structure", choices=("first_order_dead_time", "second_order_dead_time", "subspace"))
+    identify.add_argument("--order", type=int, help="subspace fit: the model order")
+    identify.add_argument("--block-rows", dest="block_rows", type=int, help="subspace fit: block rows")
     identify.add_argument("--detrend", action="store_true", help="fit a linear drift per output")
     identify.add_argument("--max-dead-time", dest="max_dead_time", type=float)
     identify.add_argument("--settling-time", dest="settling_time", type=float)
-    identify.add_argument("--outlier-limit", dest="outlier_limit", type=float)
+    identify.add_argument(
+        "--outlier-limit", dest="outlier_limit", help="robust standard deviations, or 'none' for no outlier check"
+    )
     identify.add_argument("--validation-fraction", dest="validation_fraction", type=float)
     identify.add_argument("--correlation-lags", dest="correlation_lags", type=int)
     identify.set_defaults(run=_identify)

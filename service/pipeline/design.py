@@ -57,6 +57,7 @@ from service.solver.design.feedforward import design_feedforward_gain
 from service.solver.design.gain import PredictiveGain
 from service.solver.design.marginal import MarginalMode, describe_signals
 from service.solver.estimation.estimator import Estimator
+from service.solver.estimation.setpoint_reach import setpoint_reach, setpoint_reach_warnings
 from service.solver.evaluation.advice import merge_warnings, tuning_advice
 from service.solver.evaluation.frequency import FrequencyAnalysis, design_frequency_analysis
 from service.solver.evaluation.model_error import ModelErrorStudy
@@ -531,6 +532,13 @@ def _compute_design(inputs: DesignInputs) -> DesignOutcome:
                 properties,
                 balanced=not (bool(np.any(su != 1.0)) and bool(np.any(sz != 1.0))),
                 output_labels=[sig.name for sig in plant.outputs],
+            ),
+            *setpoint_reach_warnings(
+                setpoint_reach(scaled.a, scaled.b, scaled.c, design.output_weight),
+                inputs=scaled.b.shape[1],
+                weighted_labels=[
+                    sig.name for sig, q in zip(plant.outputs, np.diag(design.output_weight), strict=True) if q > 0
+                ],
             ),
             *uncontrollable_mode_warnings(
                 scaled.a, scaled.b, labels=plant.state_labels, loop_poles=design.loop.poles, poles=properties.poles

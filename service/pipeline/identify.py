@@ -7,7 +7,7 @@ JSON pointer; the solver sees only clean arrays.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from numpy.typing import NDArray
@@ -32,7 +32,16 @@ from service.schemas.identify import (
 from service.schemas.model import TransferElementModel, TransferMatrixModel
 from service.schemas.signals import OperatingPoint, SignalTag
 from service.solver.identification.data import hold_missing, resample_held, resample_interpolated, sample_grid
-from service.solver.identification.diagnostics import Correlation, find_outliers, fit_measures, residual_correlations
+from service.solver.identification.diagnostics import (
+    Z99,
+    Correlation,
+    find_outliers,
+    fit_measures,
+    frozen_runs,
+    moves_correlation,
+    outliers_of_fit,
+    residual_correlations,
+)
 from service.solver.identification.least_squares import OutputFit, PairSpec, fit_output
 from service.solver.identification.process_models import STRUCTURES, element_of, step_values
 from service.solver.identification.subspace import SubspaceModel, moesp
@@ -62,6 +71,8 @@ WORK_PER_PARAMETER = 2_000
 STILL = 1e-9
 #: A gain whose standard error exceeds this share of it counts as not identified.
 WEAK_GAIN = 0.25
+#: An output reading exactly one value this many samples in a row is a candidate frozen sensor.
+FROZEN_SAMPLES = 10
 #: Inputs whose moves correlate more than this are reported.
 CORRELATED = 0.9
 #: Structures with a simpler variant of one lag fewer.
@@ -81,6 +92,8 @@ class ColumnNote:
     missing: NDArray[np.int64]
     outliers: NDArray[np.int64]
     handling: str
+    frozen: NDArray[np.int64] = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
+    """Samples of an output's stretches that read one value (a frozen sensor), left out."""
 
 
 @dataclass(frozen=True)
@@ -100,6 +113,9 @@ class IdentifyInputs:
     block_rows: int
     outputs_data: NDArray[np.float64]
     """``(N, p)``, ``nan`` where missing or an outlier."""
+    outputs_measured: NDArray[np.float64]
+    """``(N, p)``, ``nan`` where missing only (the outliers' own values kept)."""
+    outlier_limit: float | None
     pairs: tuple[tuple[PairSpec, ...], ...]
     """Per output, the pairs to fit."""
     integrating: tuple[bool, ...]
@@ -123,6 +139,8 @@ class IdentifyOutcome:
     fits: tuple[OutputFit, ...]
     warnings: tuple[WarningReport, ...] = field(default=())
     subspace: SubspaceModel | None = None
+    checked: IdentifyInputs | None = None
+    """The inputs with the outliers as the fitted models judged them (None: as checked)."""
 
 
 def identify_work(samples: int, parameters: int) -> int:
@@ -229,6 +247,39 @@ def _columns(
     return out, how, []
 
 
+def _output_note(
+    tag: str,
+    missing: NDArray[np.int64],
+    outliers: NDArray[np.int64],
+    limit: float | None,
+    *,
+    frozen: NDArray[np.int64] | None = None,
+    judged: bool = False,
+) -> tuple[ColumnNote, WarningReport | None]:
+    """What was found in an output's column and done with it, and its ``samples_left_out`` warning
+    (``judged``: the outliers and frozen stretches were confirmed on the fitted model's residuals)."""
+    frozen = np.zeros(0, dtype=np.int64) if frozen is None else frozen
+    parts = []
+    if missing.size:
+        parts.append(f"{missing.size} missing")
+    if outliers.size:
+        parts.append(
+            f"{outliers.size} outliers (beyond {limit:g} robust standard deviations from the running median"
+            + (" and from the fitted model)" if judged else ")")
+        )
+    if frozen.size:
+        parts.append(
+            f"{frozen.size} frozen (the same value {FROZEN_SAMPLES} or more samples in a row, from sample "
+            f"{int(frozen[0])}, where the fitted model moves: a stuck sensor or a gap filled by the historian)"
+        )
+    note = ColumnNote(tag, missing, outliers, "left out of the fit" if parts else "none needed", frozen)
+    if not parts:
+        return note, None
+    return note, WarningReport(
+        code="samples_left_out", message=f"{tag}: {' and '.join(parts)} samples left out of the fit"
+    )
+
+
 def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
     """Check the request against itself and the caps; clean the data and say how.
 
@@ -294,6 +345,7 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
             still.add(tag)
     operating_point = columns[0].copy()
     outputs = np.zeros((n, len(request.outputs)))
+    measured = np.zeros_like(outputs)
     for i, tag in enumerate(request.outputs):
         values = data[tag].copy()
         missing = np.nonzero(~np.isfinite(values))[0]
@@ -311,21 +363,14 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
             if request.outlier_limit is not None
             else np.zeros(0, dtype=np.int64)
         )
+        measured[:, i] = values
+        values = values.copy()
         values[outliers] = np.nan
         outputs[:, i] = values
-        parts = []
-        if missing.size:
-            parts.append(f"{missing.size} missing")
-        if outliers.size:
-            parts.append(f"{outliers.size} outliers (beyond {request.outlier_limit:g} robust standard deviations)")
-        handling = "left out of the fit" if parts else "none needed"
-        notes.append(ColumnNote(tag, missing, outliers, handling))
-        if parts:
-            warnings.append(
-                WarningReport(
-                    code="samples_left_out", message=f"{tag}: {' and '.join(parts)} samples left out of the fit"
-                )
-            )
+        note, warning = _output_note(tag, missing, outliers, request.outlier_limit)
+        notes.append(note)
+        if warning is not None:
+            warnings.append(warning)
     overrides = {(p.output, p.input): p.structure for p in request.pairs}
     pairs: list[tuple[PairSpec, ...]] = []
     parameters = 0
@@ -399,21 +444,29 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
         )
     moves = np.diff(columns[:estimation], axis=0)
     moved_with: dict[str, list[str]] = {}
+    # shifted by up to the longest dead time, one input's response passes for the other's
+    longest = float(request.max_dead_time) if request.max_dead_time is not None else estimation * ts / 3.0
+    shift = int(min(np.ceil(longest / ts), estimation - 2)) if request.structure != "subspace" else 0
     for a in range(len(column_tags)):
         for b in range(a + 1, len(column_tags)):
             if column_tags[a] in still or column_tags[b] in still:
                 continue
-            r = float(np.corrcoef(moves[:, a], moves[:, b])[0, 1])
+            r, lag = moves_correlation(moves[:, a], moves[:, b], max_lag=shift)
             if abs(r) > CORRELATED:
                 moved_with.setdefault(column_tags[a], []).append(column_tags[b])
                 moved_with.setdefault(column_tags[b], []).append(column_tags[a])
-                warnings.append(
-                    WarningReport(
-                        code="correlated_inputs",
-                        message=f"inputs {column_tags[a]} and {column_tags[b]} moved together (correlation of their "
-                        f"moves {r:.2f}); their separate effects are poorly determined: move them independently",
-                    )
+                pair = (
+                    f"inputs {column_tags[a]} and {column_tags[b]} moved together (correlation of their moves {r:.2f}"
                 )
+                if lag == 0:
+                    text = f"{pair}); their separate effects are poorly determined: move them independently"
+                else:  # a caution: a shift longer than the dead times can tell apart still separates them
+                    text = (
+                        f"{pair}, {column_tags[b]} {abs(lag)} samples {'after' if lag > 0 else 'before'} "
+                        f"{column_tags[a]}); a fit can trade the one's gain and dead time for the other's: check "
+                        f"their standard errors, and move them independently"
+                    )
+                warnings.append(WarningReport(code="correlated_inputs", message=text))
     record = estimation * ts
     if request.structure != "subspace" and request.max_dead_time is not None and float(request.max_dead_time) >= record:
         raise InvalidRequest(
@@ -439,6 +492,8 @@ def check_identify(request: IdentifyRequest, caps: Caps) -> IdentifyInputs:
         columns=columns,
         operating_point=operating_point,
         outputs_data=outputs,
+        outputs_measured=measured,
+        outlier_limit=request.outlier_limit,
         pairs=tuple(pairs),
         integrating=tuple(tag in request.integrating for tag in request.outputs),
         estimation=estimation,
@@ -535,39 +590,114 @@ def compute_identify(inputs: IdentifyInputs) -> IdentifyOutcome:
     used = np.zeros(n, dtype=bool)
     used[: inputs.estimation] = True
     fits = []
-    for i, pairs in enumerate(inputs.pairs):
+    revised = inputs
+    for i in range(len(inputs.pairs)):
         y = inputs.outputs_data[:, i]
-        fit: OutputFit | None = None
-        try:
-            with np.errstate(all="ignore"):
-                fit = fit_output(
-                    y,
-                    deviations,
-                    pairs,
-                    sample_time=inputs.sample_time,
-                    used=used & np.isfinite(y),
-                    max_dead_time=inputs.max_dead_time,
-                    settling_samples=inputs.settling_samples,
-                    integrating=inputs.integrating[i],
-                    detrend=inputs.detrend,
-                )
-        except (ValueError, np.linalg.LinAlgError, FloatingPointError, AssertionError):
-            # the reason in the trade's words: the library's ("array must not contain infs or
-            # NaNs") or an assertion's text would name the code, not the data
-            fit, finite = None, False
-            reason = "its numbers left double precision on the way"
-        else:
-            finite = bool(all(np.all(np.isfinite(t)) for t in fit.parameters) and np.all(np.isfinite(fit.fitted)))
-            reason = "the fitted parameters are not finite"
-        if fit is None or not finite:
-            raise NumericalError(
-                f"The fit of {inputs.outputs[i]} failed ({reason}): the data or the sample time overflow double "
-                f"precision, or the pairs cannot be told apart. Check the units and the magnitudes of the columns "
-                f"and of sample_time",
-                field=("data", inputs.outputs[i]),
-            )
+        note = inputs.notes[len(inputs.inputs) + len(inputs.disturbances) + i]
+        measured = inputs.outputs_measured[:, i]
+        runs = frozen_runs(measured, min_length=FROZEN_SAMPLES) if inputs.outlier_limit is not None else []
+        if runs:  # candidates only, left out of the first fit: the second keeps those its model explains
+            y = y.copy()
+            for start, stop in runs:
+                y[start:stop] = np.nan
+            parameters = sum(len(STRUCTURES[spec.structure]) for spec in inputs.pairs[i]) + 1 + inputs.detrend
+            if int(np.isfinite(y[: inputs.estimation]).sum()) <= max(MIN_SAMPLES, 2 * parameters):
+                y = inputs.outputs_data[:, i]  # too few samples without them: judge them on the fit with them
+        fit = _fit_one(inputs, i, y, deviations, used)
+        if note.outliers.size or runs:
+            assert inputs.outlier_limit is not None
+            # a running median calls the plant's own sharp turns outliers too, and a quiet plant
+            # measured without noise reads one value for long: keep out only the samples the fitted
+            # model does not explain either (a frozen stretch whole), and fit again without the others
+            present = used & np.isfinite(y)
+            kept = outliers_of_fit(measured, fit.fitted, present, note.outliers, limit=inputs.outlier_limit)
+            stuck = [
+                np.arange(a, b)
+                for a, b in runs
+                if outliers_of_fit(measured, fit.fitted, present, np.arange(a, b), limit=inputs.outlier_limit).size
+            ]
+            frozen = np.concatenate(stuck) if stuck else np.zeros(0, dtype=np.int64)
+            left_out = np.union1d(kept, frozen).astype(np.int64)
+            if left_out.size < int(np.sum(~np.isfinite(y) & np.isfinite(measured))):
+                y = measured.copy()
+                y[left_out] = np.nan
+                fit = _fit_one(inputs, i, y, deviations, used)
+            revised = _with_outliers(revised, i, y, kept, frozen)
         fits.append(fit)
-    return IdentifyOutcome(fits=tuple(fits))
+    return IdentifyOutcome(fits=tuple(fits), checked=revised if revised is not inputs else None)
+
+
+def _with_outliers(
+    inputs: IdentifyInputs,
+    i: int,
+    y: NDArray[np.float64],
+    outliers: NDArray[np.int64],
+    frozen: NDArray[np.int64],
+) -> IdentifyInputs:
+    """``inputs`` with output ``i``'s samples ``y`` and its outliers and frozen stretches as the
+    fitted model judged them."""
+    at = len(inputs.inputs) + len(inputs.disturbances) + i
+    old = inputs.notes[at]
+    _, old_warning = _output_note(old.tag, old.missing, old.outliers, inputs.outlier_limit)
+    note, warning = _output_note(old.tag, old.missing, outliers, inputs.outlier_limit, frozen=frozen, judged=True)
+    warnings = list(inputs.warnings)
+    if old_warning is not None:
+        at_warning = warnings.index(old_warning)
+        warnings[at_warning : at_warning + 1] = [warning] if warning is not None else []
+    elif warning is not None:  # frozen stretches only: after the other warnings of the data
+        warnings.insert(_after_data_warnings(warnings), warning)
+    data = inputs.outputs_data.copy()
+    data[:, i] = y
+    notes = list(inputs.notes)
+    notes[at] = note
+    return replace(inputs, outputs_data=data, notes=tuple(notes), warnings=tuple(warnings))
+
+
+def _after_data_warnings(warnings: list[WarningReport]) -> int:
+    """Where the warnings about the data (missing samples, samples left out) end."""
+    data = [k for k, w in enumerate(warnings) if w.code in ("missing_samples", "samples_left_out")]
+    return data[-1] + 1 if data else 0
+
+
+def _fit_one(
+    inputs: IdentifyInputs,
+    i: int,
+    y: NDArray[np.float64],
+    deviations: NDArray[np.float64],
+    used: NDArray[np.bool_],
+) -> OutputFit:
+    """The fit of output ``i`` to the samples ``y`` (``nan``: left out); a failure in the trade's words."""
+    pairs = inputs.pairs[i]
+    fit: OutputFit | None = None
+    try:
+        with np.errstate(all="ignore"):
+            fit = fit_output(
+                y,
+                deviations,
+                pairs,
+                sample_time=inputs.sample_time,
+                used=used & np.isfinite(y),
+                max_dead_time=inputs.max_dead_time,
+                settling_samples=inputs.settling_samples,
+                integrating=inputs.integrating[i],
+                detrend=inputs.detrend,
+            )
+    except (ValueError, np.linalg.LinAlgError, FloatingPointError, AssertionError):
+        # the reason in the trade's words: the library's ("array must not contain infs or
+        # NaNs") or an assertion's text would name the code, not the data
+        fit, finite = None, False
+        reason = "its numbers left double precision on the way"
+    else:
+        finite = bool(all(np.all(np.isfinite(t)) for t in fit.parameters) and np.all(np.isfinite(fit.fitted)))
+        reason = "the fitted parameters are not finite"
+    if fit is None or not finite:
+        raise NumericalError(
+            f"The fit of {inputs.outputs[i]} failed ({reason}): the data or the sample time overflow double "
+            f"precision, or the pairs cannot be told apart. Check the units and the magnitudes of the columns "
+            f"and of sample_time",
+            field=("data", inputs.outputs[i]),
+        )
+    return fit
 
 
 def _number(value: float) -> float | None:
@@ -596,6 +726,7 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
         from service.pipeline.identify_subspace import subspace_response
 
         return subspace_response(inputs, outcome.subspace, data_report(inputs))
+    inputs = outcome.checked or inputs
     ts = inputs.sample_time
     column_tags = [*inputs.inputs, *inputs.disturbances]
     m = len(inputs.inputs)
@@ -631,33 +762,19 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
                 )
             )
             gain, gain_error = float(theta[0]), float(error[0])
-            if not np.isfinite(gain_error) or gain_error > WEAK_GAIN * abs(gain):
-                # inputs that moved together are told apart by no amount of moving them so: say so
-                others = [
-                    t for t in inputs.moved_with.get(column, ()) if any(q.column == column_tags.index(t) for q in pairs)
-                ]
-                why = (
-                    f"input {column} moved together with {', '.join(others)}, so its effect on {tag} cannot be "
-                    f"told apart from theirs"
-                    if others
-                    else f"input {column} moved too little to identify its effect on {tag}"
-                )
-                fix = (
-                    f"Repeat the test moving {column} independently of {', '.join(others)}, or leave one of "
-                    f"the pairs out (structure 'none')"
-                    if others
-                    else f"Repeat the test with larger or more moves of {column}, or leave the pair out (structure 'none')"
-                )
-                error_text = f"{gain_error:.2g}" if np.isfinite(gain_error) else "undetermined (infinite)"
-                warnings.append(
-                    WarningReport(
-                        code="weak_excitation",
-                        message=f"{why}: gain {gain:.4g} with a standard error of {error_text}. {fix}",
-                    )
-                )
+            # a gain within its 99 % interval of zero: the data show no effect, whatever the cause
+            unseen = not (np.isfinite(gain_error) and abs(gain) > Z99 * gain_error)
+            if unseen or gain_error > WEAK_GAIN * abs(gain):
+                warnings.append(_weak_gain_warning(inputs, tag, column, pairs, gain, gain_error, unseen=unseen))
             for name, flag in zip(names, bound, strict=True):
-                # at its upper limit; a dead time at its lower limit, zero, is no finding
-                if flag and name == "dead_time" and theta[names.index("dead_time")] > 0.5 * inputs.max_dead_time:
+                # at its upper limit; a dead time at its lower limit, zero, is no finding, nor is
+                # the dead time of an effect the data do not show (it is warned of above)
+                if (
+                    flag
+                    and not unseen
+                    and name == "dead_time"
+                    and theta[names.index("dead_time")] > 0.5 * inputs.max_dead_time
+                ):
                     warnings.append(
                         WarningReport(
                             code="parameter_at_bound",
@@ -732,6 +849,48 @@ def identify_response(inputs: IdentifyInputs, outcome: IdentifyOutcome) -> Ident
     )
 
 
+def _weak_gain_warning(
+    inputs: IdentifyInputs,
+    tag: str,
+    column: str,
+    pairs: tuple[PairSpec, ...],
+    gain: float,
+    gain_error: float,
+    *,
+    unseen: bool,
+) -> WarningReport:
+    """The warning of a gain the data determine poorly (``unseen``: not told from zero at 99 %)."""
+    column_tags = [*inputs.inputs, *inputs.disturbances]
+    error_text = f"{gain_error:.2g}" if np.isfinite(gain_error) else "undetermined (infinite)"
+    # inputs that moved together are told apart by no amount of moving them so: say so
+    others = [t for t in inputs.moved_with.get(column, ()) if any(q.column == column_tags.index(t) for q in pairs)]
+    if others:
+        return WarningReport(
+            code="weak_excitation",
+            message=f"input {column} moved together with {', '.join(others)}, so its effect on {tag} cannot be "
+            f"told apart from theirs: gain {gain:.4g} with a standard error of {error_text}. Repeat the test "
+            f"moving {column} independently of {', '.join(others)}, or leave one of the pairs out (structure "
+            f"'none')",
+        )
+    if unseen:
+        # as likely no effect as too small a move: the data cannot say which, so the warning names both
+        moves = inputs.columns[: inputs.estimation, column_tags.index(column)]
+        interval = f"{Z99 * gain_error:.2g}" if np.isfinite(gain_error) else "an undetermined amount"
+        return WarningReport(
+            code="no_significant_effect",
+            message=f"the effect of {column} on {tag} cannot be told from zero: gain {gain:.4g} +- {interval} "
+            f"(99 %), with {column} moved over a range of {float(np.ptp(moves)):.4g}. Either {column} does not "
+            f"act on {tag} (leave the pair out, structure 'none'), or its moves were too small or too few to "
+            f"show it (repeat the test with larger moves of {column})",
+        )
+    return WarningReport(
+        code="weak_excitation",
+        message=f"input {column} moved too little to identify its effect on {tag}: gain {gain:.4g} with a "
+        f"standard error of {error_text}. Repeat the test with larger or more moves of {column}, or leave the "
+        f"pair out (structure 'none')",
+    )
+
+
 def correlated_residuals(tag: str, auto: Correlation, *, remedy: str) -> list[WarningReport]:
     """``residuals_correlated`` for output ``tag`` when more than a tenth of the lags (at least one) of
     its residuals' autocorrelation fall outside the 99 % bound; ``remedy`` names the first thing to try."""
@@ -778,6 +937,8 @@ def data_report(inputs: IdentifyInputs) -> DataReport:
                 tag=note.tag,
                 missing=int(note.missing.size),
                 outliers=int(note.outliers.size),
+                frozen=int(note.frozen.size),
+                first_frozen=note.frozen[:20].tolist(),
                 first_missing=note.missing[:20].tolist(),
                 first_outliers=note.outliers[:20].tolist(),
                 handling=note.handling,

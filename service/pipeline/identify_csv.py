@@ -36,6 +36,8 @@ def _tags(text: str) -> list[str]:
 #: optional exponent.  Python's float() also reads '4_0.0' (as 40), 'infinity' and other
 #: scripts' digits, which no CSV export means as numbers.
 PLAIN_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?")
+#: A number written with a decimal comma, as some locales' exports do ('14000,5').
+DECIMAL_COMMA = re.compile(r"[+-]?\d+,\d+(?:[eE][+-]?\d+)?")
 
 
 def _number(cell: str) -> float | None:
@@ -44,6 +46,11 @@ def _number(cell: str) -> float | None:
     if text.lower() in MISSING:
         return None
     if not PLAIN_NUMBER.fullmatch(text):
+        if DECIMAL_COMMA.fullmatch(text):
+            raise ValueError(
+                f"{cell!r} is not a number: write the decimals after a point (a decimal comma is not read, "
+                f"since a comma may separate the cells)"
+            )
         raise ValueError(f"{cell!r} is not a number")
     value = float(text)
     if not math.isfinite(value):

@@ -63,6 +63,7 @@ from service.schemas.simulate import (
 from service.solver.design.marginal import MARGINAL_TOLERANCE
 from service.solver.estimation.estimator import Estimator, unmeasured_outputs
 from service.solver.estimation.loop import TrueLoop, WholeLoop, control_loop, true_loop, whole_loop
+from service.solver.estimation.target import REACHABLE_TOLERANCE
 from service.solver.evaluation.divergence import DIVERGENCE_LEVEL, divergence_onset
 from service.solver.evaluation.performance import Performance, loop_performance
 from service.solver.evaluation.simulation import Event, Scenario, Simulation, TruePlant, simulate_loop
@@ -477,7 +478,29 @@ def _warnings(inputs: SimulationInputs, outcome: SimulationOutcome) -> list[Warn
                 )
             )
     out += [WarningReport(code=d.code, message=d.message) for d in inputs.limit_warnings]
+    out += _out_of_reach(outcome)
     return out
+
+
+def _out_of_reach(outcome: SimulationOutcome) -> list[WarningReport]:
+    """``setpoints_out_of_reach`` of /design, when this run's targets missed its setpoints.
+
+    Only without limits and zones: under them the target rule's reports say it
+    (``setpoint_out_of_reach``).  Judged on the weighted outputs, in the scaled signals, to
+    :data:`service.solver.estimation.target.REACHABLE_TOLERANCE` of the setpoints' size.
+    """
+    reach = next((d for d in outcome.design.warnings if d.code == "setpoints_out_of_reach"), None)
+    if reach is None or outcome.limited is not None:
+        return []
+    sim, rows = outcome.simulation, outcome.rows
+    weighted = np.diag(outcome.design.design.output_weight) > 0
+    setpoints = sim.setpoints[:rows][:, weighted]
+    miss = np.abs(sim.targets[:rows][:, weighted] - setpoints).max(axis=1, initial=0.0)
+    size = max(1.0, float(np.abs(setpoints).max(initial=0.0)))
+    off = np.flatnonzero(miss > REACHABLE_TOLERANCE * size)
+    if not off.size:
+        return []
+    return [WarningReport(code=reach.code, message=f"From step {int(off[0])} of this run: {reach.message}")]
 
 
 def simulate_response(

@@ -98,7 +98,9 @@ class IdentifyRequest(RequestModel):
     outlier_limit: Annotated[FiniteFloat, Field(ge=3)] | None = Field(
         default=6.0,
         description="An output sample farther than this many robust standard deviations from its running "
-        "median is an outlier: left out of the fit and reported. null: no outlier check.",
+        "median, and from the fitted model's output (the model fitted without it), is an outlier: left out of "
+        "the fit and reported (the subspace fit judges on the running median only); so is a frozen stretch (data.tags "
+        "frozen). null: neither check.",
     )
     validation: ValidationRequest | None = Field(default=None, description="Report the fit on a held-out segment.")
     correlation_lags: Annotated[int, Field(ge=1, le=200)] = Field(
@@ -181,6 +183,12 @@ class TagDataReport(ResponseModel):
     outliers: int
     first_missing: list[int] = Field(description="Sample indices of the first missing values (at most 20).")
     first_outliers: list[int] = Field(description="Sample indices of the first outliers (at most 20).")
+    frozen: int = Field(
+        default=0,
+        description="Samples of an output that read one value 10 or more samples in a row where the fitted "
+        "model moves (a stuck sensor, or a gap the historian filled with its last value).",
+    )
+    first_frozen: list[int] = Field(default_factory=list, description="Sample indices of the first (at most 20).")
     handling: str = Field(description="What was done with them.")
 
 

@@ -154,6 +154,38 @@ def test_identify_estimate_bounds_its_peak(repeat, structure):
     assert_bounded(request, lambda: run_identify(request, CAPS).model_dump_json())
 
 
+def test_a_long_identification_record_stays_within_its_estimate():
+    """Found in an audit: the impulse response behind the fit's starts had one coefficient a lag up
+    to a quarter of the record, so its regressors grew with the square of the samples: one pair of
+    8000 samples peaked at 367 MB against an estimate of 42 MB (and took 10 s).  An invented heater's
+    steam to outlet pressure, 1.5 Pa per kg/h, 4 min lag, 5 min dead time, white noise."""
+    rng = np.random.default_rng(1)
+    n = 8000
+    steam = np.zeros(n)
+    k = 10
+    while k < n:  # a new level every 15 to 45 samples
+        held = int(rng.integers(15, 45))
+        steam[k : k + held] = rng.choice([-1.0, 1.0]) * rng.uniform(400.0, 800.0)
+        k += held
+    pressure = np.zeros(n)
+    a = np.exp(-1.0 / 4.0)  # the zero-order-hold recursion of 1.5/(4 s + 1), input 5 samples late
+    for i in range(5, n - 1):
+        pressure[i + 1] = a * pressure[i] + 1.5 * (1.0 - a) * steam[i - 5]
+    request = IdentifyRequest.model_validate(
+        {
+            "sample_time": 1.0,
+            "inputs": ["steam"],
+            "outputs": ["pressure"],
+            "max_dead_time": 20.0,
+            "data": {
+                "steam": (1.4e4 + steam).tolist(),
+                "pressure": (1.2e5 + pressure + 30.0 * rng.standard_normal(n)).tolist(),
+            },
+        }
+    )
+    assert_bounded(request, lambda: run_identify(request, CAPS).model_dump_json())
+
+
 # ------------------------------------------------------------------------- the cap and the lanes
 
 

@@ -8,8 +8,22 @@ import scipy.optimize
 import scipy.signal
 
 from service.solver.identification.data import hold_missing, resample_held, resample_interpolated, sample_grid
-from service.solver.identification.diagnostics import find_outliers, fit_measures, residual_correlations
-from service.solver.identification.least_squares import PairSpec, fit_output, model_output
+from service.solver.identification.diagnostics import (
+    find_outliers,
+    fit_measures,
+    frozen_runs,
+    moves_correlation,
+    outliers_of_fit,
+    residual_correlations,
+)
+from service.solver.identification.least_squares import (
+    FIR_BLOCKS,
+    FIR_SINGLE,
+    PairSpec,
+    fit_output,
+    lag_blocks,
+    model_output,
+)
 from service.solver.identification.process_models import pair_response
 from service.solver.models.transfer import TransferElement, transfer_matrix_model
 from tests.conftest import random_steps
@@ -384,3 +398,83 @@ def test_resampling_with_absolute_time_stamps() -> None:
     np.testing.assert_allclose(
         resample_interpolated(time, values, between, sample_time=1.0), 2.0 * np.arange(20.0) + 0.5
     )
+
+
+def test_outliers_of_fit_keep_only_what_the_model_does_not_explain() -> None:
+    """The residual-based Hampel test written out by hand: the residuals' median and 1.4826 times
+    their median absolute deviation over the fitted samples (numpy), a candidate kept when it lies
+    farther than the limit from that median."""
+    rng = np.random.default_rng(2)
+    fitted = np.linspace(0.0, 10.0, 200)
+    y = fitted + rng.normal(scale=0.1, size=200)
+    candidates = np.array([20, 90, 150])
+    y[90] += 3.0  # a spike the model does not explain; 20 and 150 are the plant's own samples
+    used = np.ones(200, dtype=bool)
+    used[candidates] = False
+    r = (y - fitted)[used]
+    scale = 1.4826 * np.median(np.abs(r - np.median(r)))
+    want = [k for k in candidates if abs(y[k] - fitted[k] - np.median(r)) > 6.0 * scale]
+    assert want == [90]
+    assert outliers_of_fit(y, fitted, used, candidates, limit=6.0).tolist() == want
+    exact = fitted.copy()  # a fit exact to rounding calls none of its samples an outlier
+    assert outliers_of_fit(exact + 1e-15, exact, used, candidates, limit=6.0).size == 0
+
+
+def test_frozen_runs_are_stretches_of_one_value() -> None:
+    """Runs of exactly one value of at least the length asked, as half-open ranges; a missing
+    sample ends a run (written out by hand)."""
+    y = np.array([1.0, 2.0, 2.0, 2.0, 3.0, np.nan, 4.0, 4.0, 4.0, 4.0])
+    assert frozen_runs(y, min_length=3) == [(1, 4), (6, 10)]
+    assert frozen_runs(y, min_length=4) == [(6, 10)]
+    assert frozen_runs(np.full(5, np.nan), min_length=2) == []
+
+
+def test_lag_blocks_cover_every_lag_once() -> None:
+    """Short impulse responses keep one coefficient a lag; long ones share coefficients in blocks
+    that cover lags 1 .. length once each, one lag a block up to FIR_SINGLE."""
+    np.testing.assert_array_equal(lag_blocks(10), np.arange(1, 12))
+    edges = lag_blocks(5000)
+    assert edges[0] == 1 and edges[-1] == 5001 and np.all(np.diff(edges) >= 1)
+    np.testing.assert_array_equal(edges[: FIR_SINGLE + 1], np.arange(1, FIR_SINGLE + 2))
+    assert edges.size - 1 <= FIR_SINGLE + FIR_BLOCKS
+
+
+def test_a_long_record_of_a_slow_pair_is_fitted_from_blocked_starts() -> None:
+    """20 000 samples of a slow pair (0.8/(60 s + 1), 14 s dead time): the starts come from the
+    blocked impulse response (a quarter of the record long); the fit recovers the truth (scipy's
+    zero-order-hold discretization and scipy.signal.dlsim) within 1 % on the gain and the lag and
+    half a sample on the dead time."""
+    rng = np.random.default_rng(8)
+    n = 20000
+    u = random_steps(rng, n, first=50, hold=(150, 400), size=(5.0, 10.0))
+    a, b, c, d, _ = scipy.signal.cont2discrete(
+        (np.array([[-1 / 60.0]]), np.array([[0.8 / 60.0]]), np.eye(1), np.zeros((1, 1))), 1.0, method="zoh"
+    )
+    _, clean, _ = scipy.signal.dlsim((a, b, c, d, 1.0), np.concatenate((np.zeros(14), u[:-14])))
+    y = 200.0 + clean.ravel() + rng.normal(scale=0.05, size=n)
+    fit = fit_output(
+        y,
+        u[:, None],
+        [PairSpec(0, FO)],
+        sample_time=1.0,
+        used=np.ones(n, dtype=bool),
+        max_dead_time=n / 3,
+        settling_samples=n // 4,
+    )
+    gain, tau, theta = fit.parameters[0]
+    assert gain == pytest.approx(0.8, rel=0.01) and tau == pytest.approx(60.0, rel=0.01)
+    assert abs(theta - 14.0) <= 0.5
+
+
+def test_moves_correlation_finds_a_shifted_copy() -> None:
+    """At lag 0 it is numpy's correlation coefficient; a copy of the moves 15 samples later is found
+    at lag 15 with correlation 1 (up to the samples shifted out), and not within a range of 10."""
+    rng = np.random.default_rng(6)
+    a = rng.normal(size=500) * (rng.random(500) < 0.05)
+    b = rng.normal(size=500)
+    r, lag = moves_correlation(a, b, max_lag=0)
+    assert lag == 0 and r == pytest.approx(np.corrcoef(a, b)[0, 1], abs=1e-12)
+    later = np.concatenate((np.zeros(15), 0.3 * a[:-15]))
+    r, lag = moves_correlation(a, later, max_lag=20)
+    assert lag == 15 and r > 0.95
+    assert abs(moves_correlation(a, later, max_lag=10)[0]) < 0.5

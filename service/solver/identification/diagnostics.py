@@ -27,9 +27,18 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import scipy.signal
 from numpy.typing import NDArray
 
-__all__ = ["Correlation", "find_outliers", "fit_measures", "residual_correlations"]
+__all__ = [
+    "Correlation",
+    "find_outliers",
+    "fit_measures",
+    "frozen_runs",
+    "moves_correlation",
+    "outliers_of_fit",
+    "residual_correlations",
+]
 
 Array = NDArray[np.float64]
 
@@ -103,6 +112,122 @@ def find_outliers(y: Array, *, limit: float, window: int = 7) -> NDArray[np.bool
         scale = np.maximum(scale, np.median(around, axis=1))
     out[np.nonzero(finite)[0]] = np.abs(deviation) > limit * scale
     return out
+
+
+def moves_correlation(a: Array, b: Array, *, max_lag: int) -> tuple[float, int]:
+    """The strongest correlation of two inputs' moves, ``b`` shifted by up to ``max_lag`` samples.
+
+    Parameters
+    ----------
+    a, b : ndarray, shape (N,)
+        The moves (sample-to-sample changes) of two inputs.
+    max_lag : int, keyword-only
+        Largest shift either way, in samples (0: at the same samples only).
+
+    Returns
+    -------
+    r : float
+        The normalized cross-correlation ``sum_k a~(k) b~(k + lag) / (|a~| |b~|)`` of the moves less
+        their means, of largest size over the lags (at lag 0 the correlation coefficient itself);
+        ``0`` when either does not move.
+    lag : int
+        Its lag: ``b`` moved ``lag`` samples after ``a`` (before, when negative).
+
+    Notes
+    -----
+    Inputs moved together a few samples apart are as inseparable to a fit with dead times as
+    inputs moved at once: a dead time longer by the shift turns one's response into the other's.
+    The correlation at every lag comes from ``scipy.signal.correlate`` (by FFT for long records).
+    """
+    x, y = a - np.mean(a), b - np.mean(b)
+    norm = float(np.sqrt(np.dot(x, x) * np.dot(y, y)))
+    if not norm > 0.0:
+        return 0.0, 0
+    full = scipy.signal.correlate(y, x, mode="full") / norm  # index n - 1 + lag: y(k + lag) x(k)
+    n = x.size
+    lags = np.arange(-(n - 1), n)
+    inside = np.abs(lags) <= max_lag
+    best = int(np.argmax(np.abs(np.where(inside, full, 0.0))))
+    return float(full[best]), int(lags[best])
+
+
+def frozen_runs(y: Array, *, min_length: int) -> list[tuple[int, int]]:
+    """Stretches where ``y`` reads exactly the same value ``min_length`` samples or more in a row.
+
+    Parameters
+    ----------
+    y : ndarray, shape (N,)
+        ``nan`` where missing (a missing sample ends a run).
+    min_length : int, keyword-only
+
+    Returns
+    -------
+    list of (start, stop)
+        Half-open sample ranges, in order.
+
+    Notes
+    -----
+    A measurement with noise never repeats itself exactly for long; a sensor that froze, or a
+    historian that filled a gap with the last value it had, does.  So does a quiet plant measured
+    without noise or coarsely quantized: a run is only a candidate, kept out of the fit when the
+    model fitted without it does not explain it (:func:`outliers_of_fit` on its samples).
+    """
+    runs = []
+    n = y.size
+    start = 0
+    for k in range(1, n + 1):
+        if k < n and np.isfinite(y[k]) and y[k] == y[k - 1]:
+            continue
+        if k - start >= min_length and np.isfinite(y[start]):
+            runs.append((start, k))
+        start = k
+    return runs
+
+
+def outliers_of_fit(
+    y: Array, fitted: Array, used: NDArray[np.bool_], candidates: NDArray[np.int64], *, limit: float
+) -> NDArray[np.int64]:
+    """The candidates (of :func:`find_outliers`) that the fitted model does not explain either.
+
+    Parameters
+    ----------
+    y : ndarray, shape (N,)
+        The output as measured, candidates' values included (``nan`` where missing).
+    fitted : ndarray, shape (N,)
+        The model's output, fitted without the candidates.
+    used : ndarray of bool, shape (N,)
+        Samples of that fit (the candidates are not among them).
+    candidates : ndarray of int, shape (C,)
+    limit : float, keyword-only
+        In robust standard deviations, as for :func:`find_outliers`.
+
+    Returns
+    -------
+    ndarray of int, shape (<= C,)
+        The candidates whose residual ``y - fitted`` lies farther than ``limit`` robust standard
+        deviations (1.4826 times the median absolute deviation of the residuals over ``used``) from
+        the residuals' median.
+
+    Notes
+    -----
+    A running median cannot tell a spike from the plant's own sharp turn (a fast response to a
+    short move of its input); the fitted model can: a sample it explains as well as the others is
+    no outlier.  This is the residual-based outlier test of robust regression (the Hampel identifier
+    applied to the residuals of the fit instead of to the signal; common practice).  The
+    scale has a floor of ``1e-9`` of the output's spread, so a fit that is exact to rounding does not
+    call its own rounding an outlier.
+    """
+    residual = y - fitted
+    r = residual[used & np.isfinite(residual)]
+    if r.size == 0 or candidates.size == 0:
+        return candidates.copy()
+    centre = float(np.median(r))
+    scale = 1.4826 * float(np.median(np.abs(r - centre)))
+    present = y[np.isfinite(y)]
+    scale = max(scale, 1e-9 * float(np.std(present)) if present.size else 0.0)
+    off = np.abs(residual[candidates] - centre)
+    kept: NDArray[np.int64] = candidates[~(off <= limit * scale)]
+    return kept
 
 
 def fit_measures(y: Array, fitted: Array, used: NDArray[np.bool_]) -> tuple[float, float]:
