@@ -23,6 +23,26 @@ def random_plant(
     return a, rng.normal(size=(n, m)), rng.normal(size=(p, n))
 
 
+def stacked_elements(
+    blocks: list[tuple[int, int, Any]], outputs: int, inputs: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``(A, B, C)`` of single-input single-output realizations stacked block-diagonally.
+
+    ``blocks`` holds ``(output i, input j, system)``, each system with ``A``, ``B`` (one column)
+    and ``C`` (one row), such as python-control's ``ss``: a non-minimal realization of the
+    transfer matrix whose element ``(i, j)`` is the sum of the systems placed there.
+    """
+    n = sum(s.nstates for _, _, s in blocks)
+    a, b, c = np.zeros((n, n)), np.zeros((n, inputs)), np.zeros((outputs, n))
+    k = 0
+    for i, j, s in blocks:
+        a[k : k + s.nstates, k : k + s.nstates] = s.A
+        b[k : k + s.nstates, j] = s.B[:, 0]
+        c[i, k : k + s.nstates] = s.C[0]
+        k += s.nstates
+    return a, b, c
+
+
 def random_steps(
     rng: np.random.Generator, n: int, *, first: int, hold: tuple[int, int], size: tuple[float, float]
 ) -> np.ndarray:

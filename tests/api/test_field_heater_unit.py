@@ -33,6 +33,8 @@ import control
 import numpy as np
 import pytest
 
+from tests.conftest import stacked_elements
+
 TS = 1.0
 HP, HU = 60, 6
 POINT = {"inputs": [850.0, 1.4e4, 30.0, 1.2e4], "outputs": [352.0, 1.25e5, 50.0]}
@@ -177,15 +179,7 @@ def _python_control_plant(factor: float, extra_dead_time: int = 0) -> tuple[np.n
                 g = control.tf([e["gain"] * (1.0 - pole)], [1.0, -pole], dt=TS)
             g = g * control.tf([1.0], [1.0] + [0.0] * (int(e["dead_time"]) + extra_dead_time), dt=TS)
             blocks.append((i, j, control.ss(g)))
-    n = sum(s.nstates for _, _, s in blocks)
-    a, b, c = np.zeros((n, n)), np.zeros((n, 4)), np.zeros((3, n))
-    k = 0
-    for i, j, s in blocks:
-        a[k : k + s.nstates, k : k + s.nstates] = s.A
-        b[k : k + s.nstates, j] = s.B[:, 0]
-        c[i, k : k + s.nstates] = s.C[0]
-        k += s.nstates
-    return a, b, c
+    return stacked_elements(blocks, 3, 4)
 
 
 def _law_on_plant(law: dict[str, Any], plant: tuple[np.ndarray, np.ndarray, np.ndarray]) -> np.ndarray:

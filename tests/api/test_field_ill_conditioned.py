@@ -41,6 +41,8 @@ import pytest
 import scipy.optimize
 import scipy.signal
 
+from tests.conftest import stacked_elements
+
 TS = 1.0  # min
 TAU = 75.0  # min
 COLUMN = np.array([[87.8, -86.4], [108.2, -109.6]])
@@ -457,15 +459,7 @@ def _blend_plant():
             pole = np.exp(-TS / _BLEND_TAU[i][j])
             element = control.tf([BLEND[i, j] * (1 - pole)], [1.0, -pole], dt=TS) * control.tf([1.0], [1.0, 0.0], dt=TS)
             blocks.append((i, j, control.ss(element)))
-    n = sum(s.nstates for _, _, s in blocks)
-    a, b, c = np.zeros((n, n)), np.zeros((n, 3)), np.zeros((3, n))
-    k = 0
-    for i, j, s in blocks:
-        a[k : k + s.nstates, k : k + s.nstates] = s.A
-        b[k : k + s.nstates, j] = s.B[:, 0]
-        c[i, k : k + s.nstates] = s.C[0]
-        k += s.nstates
-    return a, b, c
+    return stacked_elements(blocks, 3, 3)
 
 
 @pytest.mark.parametrize("weights", ["sizes", "engineering units"])
