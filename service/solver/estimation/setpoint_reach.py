@@ -10,13 +10,18 @@ with fewer manipulated variables than controlled outputs, or a steady-state gain
 rank, cannot hold every output on its own setpoint).  Outputs of weight 0 (a zone, an output
 only watched) take no part.
 
-The rank is decided on the target's balanced states (its ``state_scales``) with a relative
-tolerance, so a change of a state's unit changes no verdict; the outputs and inputs are those
-the caller scaled (by their spans).
+The rank is decided on balanced states (:func:`service.solver.numerics.balance_states`, as
+the target's) with a relative tolerance, so a change of a state's unit changes no verdict; the
+outputs and inputs are those the caller scaled (by their spans).  Without a pole at 1 the
+steady states are ``x_s = (I - A)^-1 B u_s`` and the rank is that of ``W G`` (one LU
+factorization, the gain the same in any state units: the large design's 200 states cost about
+a millisecond); with one (an integrator, or ``I - A`` too ill-conditioned to solve) it comes
+from the null space of the balanced ``[I - A, -B]``.
 """
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -25,8 +30,8 @@ import scipy.linalg
 from numpy.typing import NDArray
 
 from service.solver.design.closed_loop import Diagnostic
-from service.solver.design.weights import weight_root
-from service.solver.estimation.target import target_problem
+from service.solver.design.weights import weight_matrix, weight_root
+from service.solver.numerics import balance_states
 
 __all__ = ["SetpointReach", "setpoint_reach", "setpoint_reach_warnings"]
 
@@ -73,10 +78,21 @@ def setpoint_reach(
         Ranks decided as ``numpy.linalg.matrix_rank`` does (``max(shape) * eps`` of the largest
         singular value), on the balanced states.
     """
-    balanced = target_problem(a, b, c, output_weight=output_weight).balanced()
-    n = balanced.state_size
-    root = weight_root(balanced.output_weight)
-    seen = root @ balanced.c @ balanced.null_space[:n]  # W Cz N (balanced states), (p, k)
+    root = weight_root(weight_matrix(output_weight, c.shape[0]))
+    n = a.shape[0]
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", scipy.linalg.LinAlgWarning)
+        try:  # no pole at 1: the steady states are x_s = (I - A)^-1 B u_s, one LU with m columns
+            gain = c @ scipy.linalg.solve(np.eye(n) - a, b)  # G, the same in any state units
+        except (scipy.linalg.LinAlgWarning, np.linalg.LinAlgError):
+            gain = None
+    if gain is not None and np.all(np.isfinite(gain)):
+        seen = root @ gain
+    else:  # a pole at (or next to) 1, an integrator: the null space of [I - A, -B] (one SVD)
+        ds = balance_states(a, b, c)  # x = D x_b (powers of two, exact)
+        ab, bb, cb = a / ds[:, None] * ds[None, :], b / ds[:, None], c * ds[None, :]
+        null = scipy.linalg.null_space(np.hstack([np.eye(n) - ab, -bb]))
+        seen = root @ cb @ null[:n]  # W Cz N (balanced states), (p, k)
     return SetpointReach(reached=_rank(seen), weighted=_rank(root))
 
 
