@@ -73,6 +73,7 @@ __all__ = [
     "equilibrated_rank",
     "feedback_poles",
     "format_complex",
+    "in_scaled_states",
     "is_real",
     "jacobi_scaled",
     "observable_basis",
@@ -439,6 +440,17 @@ def jacobi_scaled(matrix: NDArray[np.float64]) -> NDArray[np.float64]:
     d = np.diag(matrix).copy()
     root = np.sqrt(np.where(d > 0.0, d, 1.0))
     return matrix / root[:, None] / root[None, :]
+
+
+def in_scaled_states(
+    scales: NDArray[np.float64], a: NDArray[np.float64], b: NDArray[np.float64], c: NDArray[np.float64]
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+    """Return ``(D^-1 A D, D^-1 B, C D)``: the system in the states ``x_b = D^-1 x``, ``D = diag(scales)``.
+
+    Shapes (n, n), (n, m), (p, n); with the powers of two of :func:`balance_states` the change
+    of coordinates is exact.
+    """
+    return a / scales[:, None] * scales[None, :], b / scales[:, None], c * scales[None, :]
 
 
 def balance_states(

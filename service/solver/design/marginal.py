@@ -53,7 +53,7 @@ import numpy as np
 import scipy.linalg
 from numpy.typing import NDArray
 
-from service.solver.numerics import balance_states
+from service.solver.numerics import balance_states, in_scaled_states
 
 __all__ = [
     "MARGINAL_TOLERANCE",
@@ -485,7 +485,7 @@ def marginal_modes(
     rows = np.where(rows > 0.0, rows, 1.0)
     c_, output_root = c_ / rows[:, None], np.asarray(output_root, dtype=float) * rows[None, :]
     d = balance_states(a_, b_, c_) if a_.size else np.ones(0)
-    a_, b_, c_ = a_ / d[:, None] * d[None, :], b_ / d[:, None], c_ * d[None, :]
+    a_, b_, c_ = in_scaled_states(d, a_, b_, c_)
     structural = _structural_modes(a_, b_, c_, output_root, weighted, input_weight_root, computed)
     if zone_outputs:
         structural = _zone_modes(

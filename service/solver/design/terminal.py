@@ -90,7 +90,7 @@ from service.solver.design.gain import FactoredHessian, PredictiveGain
 from service.solver.design.marginal import MARGINAL_TOLERANCE
 from service.solver.design.weights import weight_root
 from service.solver.estimation.target import target_problem
-from service.solver.numerics import balance_states, format_complex, pbh_matrix, singular_value_rank
+from service.solver.numerics import balance_states, format_complex, in_scaled_states, pbh_matrix, singular_value_rank
 
 __all__ = [
     "TERMINAL_FIELD",
@@ -318,7 +318,7 @@ def riccati_terminal_weight(
     t = _incremental_scales(a, b, c, move_weight if input_weight is None else move_weight + input_weight)
     n = a.shape[0]
     d, s = t[:n], t[n:]
-    a_s, b_s, c_s = a / d[:, None] * d[None, :], b * s / d[:, None], c * d[None, :]
+    a_s, b_s, c_s = in_scaled_states(d, a, b * s, c)
     p_s, k_s = _riccati_solution(
         a_s,
         b_s,

@@ -31,7 +31,7 @@ from numpy.typing import NDArray
 
 from service.solver.design.closed_loop import Diagnostic
 from service.solver.design.weights import weight_matrix, weight_root
-from service.solver.numerics import balance_states
+from service.solver.numerics import balance_states, in_scaled_states
 
 __all__ = ["SetpointReach", "setpoint_reach", "setpoint_reach_warnings"]
 
@@ -89,8 +89,7 @@ def setpoint_reach(
     if gain is not None and np.all(np.isfinite(gain)):
         seen = root @ gain
     else:  # a pole at (or next to) 1, an integrator: the null space of [I - A, -B] (one SVD)
-        ds = balance_states(a, b, c)  # x = D x_b (powers of two, exact)
-        ab, bb, cb = a / ds[:, None] * ds[None, :], b / ds[:, None], c * ds[None, :]
+        ab, bb, cb = in_scaled_states(balance_states(a, b, c), a, b, c)  # x = D x_b, exact
         null = scipy.linalg.null_space(np.hstack([np.eye(n) - ab, -bb]))
         seen = root @ cb @ null[:n]  # W Cz N (balanced states), (p, k)
     return SetpointReach(reached=_rank(seen), weighted=_rank(root))

@@ -54,7 +54,7 @@ import scipy.linalg
 from numpy.typing import ArrayLike, NDArray
 
 from service.solver.design.weights import weight_matrix, weight_root
-from service.solver.numerics import balance_states
+from service.solver.numerics import balance_states, in_scaled_states
 
 __all__ = [
     "REACHABLE_TOLERANCE",
@@ -193,7 +193,6 @@ class TargetProblem:
 
         Every map's state rows are multiplied by ``scales``; powers of two keep it exact.
         """
-        n = self.state_size
         lift = np.concatenate([scales, np.ones(self.b.shape[1])])[:, None]
         return replace(
             self,
@@ -206,19 +205,14 @@ class TargetProblem:
             setpoint_map=self.setpoint_map * lift,
             disturbance_map=self.disturbance_map * lift,
             input_target_map=self.input_target_map * lift,
-            state_scales=self.state_scales[:n] * scales,
+            state_scales=self.state_scales * scales,
         )
 
     def balanced(self) -> TargetProblem:
         """The problem in the balanced states ``x_b = D^-1 x`` it was solved in (``state_scales`` ones)."""
         ds = self.state_scales
-        return self.in_states(
-            1.0 / ds,
-            a=self.a * ds[None, :] / ds[:, None],
-            b=self.b / ds[:, None],
-            c=self.c * ds[None, :],
-            disturbance_input=self.disturbance_input / ds[:, None],
-        )
+        a, b, c = in_scaled_states(ds, self.a, self.b, self.c)
+        return self.in_states(1.0 / ds, a=a, b=b, c=c, disturbance_input=self.disturbance_input / ds[:, None])
 
     def steady_state_equations(
         self, disturbance: NDArray[np.float64]
@@ -318,15 +312,15 @@ def target_problem(
     # setpoint out of reach, and 1e12 lost 4e-6.  Where the least norm picks something its
     # tie-break stays in the request's states (a least norm is defined in some units).
     ds = balance_states(a_, b_, c_)
-    inner = _balanced_target_problem(
-        a_ / ds[:, None] * ds[None, :], b_ / ds[:, None], c_ * ds[None, :], bd / ds[:, None], dz, q, s_in
-    )
-    if inner.free_directions or not np.any(ds != 1.0):
-        return _balanced_target_problem(a_, b_, c_, bd, dz, q, s_in) if np.any(ds != 1.0) else inner
+    if np.all(ds == 1.0):
+        return _solved_target_problem(a_, b_, c_, bd, dz, q, s_in)
+    inner = _solved_target_problem(*in_scaled_states(ds, a_, b_, c_), bd / ds[:, None], dz, q, s_in)
+    if inner.free_directions:  # the least norm picks something: its tie-break in the request's states
+        return _solved_target_problem(a_, b_, c_, bd, dz, q, s_in)
     return inner.in_states(ds, a=a_, b=b_, c=c_, disturbance_input=bd)
 
 
-def _balanced_target_problem(
+def _solved_target_problem(
     a_: NDArray[np.float64],
     b_: NDArray[np.float64],
     c_: NDArray[np.float64],
@@ -335,7 +329,7 @@ def _balanced_target_problem(
     q: NDArray[np.float64],
     s_in: NDArray[np.float64],
 ) -> TargetProblem:
-    """:func:`target_problem` of a model whose states are balanced already (``state_scales`` ones)."""
+    """:func:`target_problem` solved in the states given (``state_scales`` ones)."""
     n, m, pz = a_.shape[0], b_.shape[1], c_.shape[0]
     nd = bd.shape[1]
     w = weight_root(q)
