@@ -213,8 +213,7 @@ def limited_run(
                 zones=held,
             )
             policy = ConstrainedPolicy(qp, scaled)
-        measured = None if b_disturbance is None or not b_disturbance.shape[1] else b_disturbance
-        target = ReachableTargetRule.from_loop(loop, scaled, b_disturbance=measured)
+        target = ReachableTargetRule.from_loop(loop, scaled, b_disturbance=b_disturbance)
         exact = GainWhenFreePolicy(
             policy, loop.horizon_gain, design.input_target_gain, None if loop.terminal is None else loop.terminal.gain
         )

@@ -161,6 +161,7 @@ class ReachableTargetProblem:
         self._low, self._high, self._tolerance = low, high, tolerance
         # Moderate input units u = T v (those of target_problem's maps with an input weight).
         weighted = bool(np.any(problem.input_weight))
+        self._weighted = weighted  # the least norm in the moderate units (else the request's)
         t = input_scales(problem.b, problem.input_weight)
         self._scales = t
         self._low_v, self._high_v = low / t, high / t
@@ -303,9 +304,9 @@ class ReachableTargetProblem:
         xu = np.concatenate([xv[:n], t * xv[n:]])  # the fit's (and inputs') minimizer, [x_s; u_s]
         if self._norm_model is not None:
             ts = self._norm_scales
-            norm_size = size if ts is t else 1.0  # the module's notes, "Scale"
+            norm_size = size if self._weighted else 1.0  # the module's notes, "Scale"
             base = self._norm_particular @ d
-            if ts is t:
+            if self._weighted:
                 level = self._levels.T @ c  # the same basis: V' c, divided by the same size
             else:
                 level = self._level_map @ (xu - base)  # from the fitted outputs (x_s only)
